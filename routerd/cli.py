@@ -1,0 +1,65 @@
+"""The ``routerd`` command line: one entry point, subcommands from the shells.
+
+Owns: argument parsing and dispatch only.  Each subcommand lives in the module that owns
+its job; this table names them.  A command module provides ``configure(parser)`` and
+``run(args) -> int`` (exit code).  Modules are imported only when their command is
+built, and heavy imports (matplotlib, zmq) stay inside ``run``.
+"""
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+from collections.abc import Sequence
+
+from . import __version__
+
+# name → (module, one-line help).  Order is the order of `routerd --help`.
+COMMANDS: dict[str, tuple[str, str]] = {
+    "validate": ("routerd.validate", "check config, topology or scenario files and report every error"),
+    "simulate": ("sim.commands_simulate", "run the packet-level simulator on a topology with one policy"),
+    "sweep": ("sim.commands_sweep", "simulate rates x policies x seeds and draw delivery time against load"),
+    "serve": ("routerd.service", "run the routing policy service (observations in, tables out, metrics)"),
+}
+
+
+def _available() -> dict[str, tuple[str, str]]:
+    out = {}
+    for name, (mod, helptext) in COMMANDS.items():
+        try:
+            importlib.util.find_spec(mod)  # type: ignore[attr-defined]
+        except ModuleNotFoundError:
+            continue
+        if importlib.util.find_spec(mod) is not None:  # type: ignore[attr-defined]
+            out[name] = (mod, helptext)
+    return out
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="routerd",
+        description="Adaptive next-hop tables for test-lab overlay networks, learned online from "
+                    "measured hop latency (Q-routing), with a packet-level simulator to validate "
+                    "settings offline first.",
+    )
+    p.add_argument("--version", action="version", version=f"routerd {__version__}")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+    for name, (mod, helptext) in _available().items():
+        m = importlib.import_module(mod)
+        sp = sub.add_parser(name, help=helptext, description=helptext)
+        m.configure(sp)
+        sp.set_defaults(_run=m.run)
+    return p
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "_run", None):
+        parser.print_help()
+        return 2
+    try:
+        return int(args._run(args) or 0)
+    except KeyboardInterrupt:
+        print("interrupted", file=sys.stderr)
+        return 130

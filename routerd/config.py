@@ -1,0 +1,293 @@
+"""The one config module: schema, defaults, loading, overrides, checking.
+
+Owns: every tunable of every command, as one declarative table (``SCHEMA``) of key path →
+type, default, range, choices and a one-line meaning. Units are in the key names
+(``_s``, ``_bps``, ``_pkts``). Errors name the file, the key path, the value and the rule,
+e.g. ``configs/lab.yaml: engine.explore.max_rate: 1.4 is above 1.0``.
+
+A config is a nested dict of plain values, frozen into a :class:`Config` that gives typed
+access by path (``cfg["engine.step.alpha"]``) and sections as dicts.  ``tunable=True`` marks
+keys that a running service may change on reload (SIGHUP) without a restart.
+
+Must not import: sockets, zmq, prometheus, the engine or the simulator.
+"""
+from __future__ import annotations
+
+import copy
+import math
+import os
+from collections.abc import Iterable, Mapping
+from dataclasses import dataclass
+from typing import Any
+
+from .errors import ConfigError, Problem
+
+
+@dataclass(frozen=True, slots=True)
+class Field:
+    kind: type | tuple[type, ...]
+    default: Any
+    doc: str
+    lo: float | None = None
+    hi: float | None = None
+    lo_open: bool = False  # True: value must be > lo, not >= lo
+    hi_open: bool = False
+    choices: tuple[Any, ...] | None = None
+    tunable: bool = False
+    nullable: bool = False
+
+
+F = Field
+SCHEMA: dict[str, Field] = {
+    # -- topology --------------------------------------------------------------------
+    "topology.file": F(str, None, "topology file or topohub:GROUP/NAME; none: the built-in demo lab", nullable=True),
+    "topology.default_capacity_bps": F(float, None, "capacity for links whose file gives none", lo=0, lo_open=True, nullable=True),
+    "topology.default_buffer_pkts": F(int, None, "buffer for links whose file gives none", lo=1, nullable=True),
+    # -- engine: step sizes --------------------------------------------------------------
+    "engine.step.mode": F(str, "decaying", "constant: alpha; decaying: max(floor, c / n^kappa) per entry", choices=("constant", "decaying"), tunable=True),
+    "engine.step.alpha": F(float, 0.5, "constant step size", lo=0, hi=1, lo_open=True, tunable=True),
+    "engine.step.c": F(float, 1.0, "decaying step: scale c", lo=0, hi=1, lo_open=True, tunable=True),
+    "engine.step.kappa": F(float, 0.6, "decaying step: exponent, in (1/2, 1] for Robbins-Monro", lo=0.5, hi=1, lo_open=True, tunable=True),
+    "engine.step.floor": F(float, 0.05, "decaying step: lower bound (keeps tracking; 0 = pure Robbins-Monro)", lo=0, hi=1, tunable=True),
+    # -- engine: values ----------------------------------------------------------------
+    "engine.initial.mode": F(str, "shortest", "initial Q: delay-shortest distances or a constant", choices=("shortest", "constant")),
+    "engine.initial.value_s": F(float, 0.1, "initial Q when mode is constant", lo=0),
+    "engine.ceiling_s": F(float, 10.0, "estimate given to dead links; upper clip of every estimate", lo=0, lo_open=True, tunable=True),
+    # -- engine: decisions -------------------------------------------------------------
+    "engine.hysteresis.margin": F(float, 0.05, "a challenger must beat the incumbent by this fraction", lo=0, hi=1, hi_open=True, tunable=True),
+    "engine.explore.basis": F(str, "td", "what sets each entry's exploration share: recent TD error or visit counts", choices=("td", "visits"), tunable=True),
+    "engine.explore.min_rate": F(float, 0.0, "exploration share floor per (node, destination)", lo=0, hi=1, tunable=True),
+    "engine.explore.max_rate": F(float, 0.1, "exploration share ceiling per (node, destination)", lo=0, hi=1, tunable=True),
+    "engine.explore.cap": F(float, 0.2, "global cap: no share is ever above this", lo=0, hi=1, tunable=True),
+    "engine.explore.td_ref": F(float, 0.2, "relative TD error (|delta| / estimate) at which the share reaches max_rate", lo=0, lo_open=True, tunable=True),
+    "engine.explore.td_smoothing": F(float, 0.1, "weight of a new |TD error| in its moving average", lo=0, hi=1, lo_open=True, tunable=True),
+    "engine.explore.visits_half": F(float, 50.0, "visits at which the share is halfway down to min_rate", lo=0, lo_open=True, tunable=True),
+    # -- service -----------------------------------------------------------------------
+    "service.ingest": F(str, "tcp://127.0.0.1:7301", "ingest endpoint (ROUTER)"),
+    "service.pull": F(str, None, "fire-and-forget ingest endpoint (PULL)", nullable=True),
+    "service.publish": F(str, "tcp://127.0.0.1:7302", "tables endpoint (PUB)"),
+    "service.control": F(str, "tcp://127.0.0.1:7303", "control endpoint (REP)"),
+    "service.metrics": F(str, "127.0.0.1:9307", "metrics HTTP address HOST:PORT"),
+    "service.state_dir": F(str, "./routerd-state", "journal and snapshots directory"),
+    "service.publish_interval_s": F(float, 2.0, "every node's table is published at this interval", lo=0, lo_open=True, tunable=True),
+    "service.debounce_s": F(float, 0.05, "changed tables are published at most this often", lo=0, tunable=True),
+    "service.snapshot_interval_s": F(float, 60.0, "engine snapshot interval", lo=0, lo_open=True, tunable=True),
+    "service.max_message_bytes": F(int, 16 * 1024 * 1024, "frames larger than this are refused", lo=1024),
+    "service.log_format": F(str, "text", "log lines as plain text or JSON lines", choices=("text", "json")),
+    "service.journal.fsync": F(str, "batch", "fsync the journal after each batch, every interval, or never", choices=("batch", "interval", "never")),
+    "service.journal.fsync_interval_s": F(float, 0.05, "fsync interval when fsync is 'interval'", lo=0, lo_open=True),
+    "service.journal.segment_bytes": F(int, 64 * 1024 * 1024, "journal segment size before a new one starts", lo=4096),
+    # -- simulator ---------------------------------------------------------------------
+    "sim.decision_interval_s": F(float, 0.05, "virtual time between table recomputations (like the service's debounce)", lo=0, lo_open=True),
+    "sim.ttl": F(int, 64, "packet TTL in hops", lo=1, hi=255),
+    "sim.feedback": F(str, "delayed", "estimate returns after the link's propagation delay, or instantly", choices=("delayed", "instant")),
+}
+
+
+def defaults() -> dict[str, Any]:
+    """A fresh nested dict holding every default."""
+    out: dict[str, Any] = {}
+    for path, f in SCHEMA.items():
+        _set(out, path, copy.deepcopy(f.default))
+    return out
+
+
+def _set(d: dict[str, Any], path: str, value: Any) -> None:
+    parts = path.split(".")
+    for p in parts[:-1]:
+        d = d.setdefault(p, {})
+    d[parts[-1]] = value
+
+
+def _flatten(d: Mapping[str, Any], prefix: str = "") -> Iterable[tuple[str, Any]]:
+    for k, v in d.items():
+        path = f"{prefix}{k}"
+        if isinstance(v, Mapping) and not any(s == path for s in SCHEMA):
+            if not v and not any(s.startswith(path + ".") for s in SCHEMA):
+                yield path, v
+            yield from _flatten(v, path + ".")
+        else:
+            yield path, v
+
+
+def check_value(path: str, value: Any, where: str) -> tuple[Any, Problem | None]:
+    """Coerce one value to its field's type, or say exactly what is wrong with it."""
+    f = SCHEMA.get(path)
+    loc = f"{where}: {path}"
+    if f is None:
+        near = [s for s in SCHEMA if s.rsplit(".", 1)[-1] == path.rsplit(".", 1)[-1]]
+        hint = f" (did you mean {near[0]}?)" if near else ""
+        return None, Problem(loc, value, f"is not a known setting{hint}")
+    if value is None:
+        if f.nullable:
+            return None, None
+        return None, Problem(loc, value, "must be set")
+    kinds = f.kind if isinstance(f.kind, tuple) else (f.kind,)
+    v = value
+    if float in kinds and isinstance(value, int) and not isinstance(value, bool):
+        v = float(value)
+    if float in kinds and isinstance(value, str):
+        try:
+            v = float(value)
+        except ValueError:
+            pass
+    if int in kinds and isinstance(value, float) and value.is_integer():
+        v = int(value)
+    if isinstance(v, bool) and bool not in kinds:
+        return None, Problem(loc, value, f"must be {_kind_name(kinds)}, not true/false")
+    if not isinstance(v, kinds):
+        return None, Problem(loc, value, f"must be {_kind_name(kinds)}")
+    if isinstance(v, float) and not math.isfinite(v):
+        return None, Problem(loc, value, "must be a finite number")
+    if f.choices is not None and v not in f.choices:
+        return None, Problem(loc, value, f"is not one of {', '.join(map(str, f.choices))}")
+    if f.lo is not None and isinstance(v, (int, float)):
+        if v < f.lo or (f.lo_open and v == f.lo):
+            return None, Problem(loc, value, f"is {'at or ' if f.lo_open and v == f.lo else ''}below {f.lo:g}" + (" (must be above it)" if f.lo_open else ""))
+    if f.hi is not None and isinstance(v, (int, float)):
+        if v > f.hi or (f.hi_open and v == f.hi):
+            return None, Problem(loc, value, f"is {'at or ' if f.hi_open and v == f.hi else ''}above {f.hi:g}" + (" (must be below it)" if f.hi_open else ""))
+    return v, None
+
+
+def _kind_name(kinds: tuple[type, ...]) -> str:
+    names = {str: "a string", float: "a number", int: "a whole number", bool: "true or false"}
+    return " or ".join(names.get(k, k.__name__) for k in kinds)
+
+
+def _cross_checks(flat: dict[str, Any], where: str) -> list[Problem]:
+    p: list[Problem] = []
+    lo, hi, cap = flat["engine.explore.min_rate"], flat["engine.explore.max_rate"], flat["engine.explore.cap"]
+    if lo > hi:
+        p.append(Problem(f"{where}: engine.explore.min_rate", lo, f"is above engine.explore.max_rate ({hi})"))
+    if hi > cap:
+        p.append(Problem(f"{where}: engine.explore.max_rate", hi, f"is above the global cap engine.explore.cap ({cap})"))
+    if flat["engine.initial.value_s"] > flat["engine.ceiling_s"]:
+        p.append(Problem(f"{where}: engine.initial.value_s", flat["engine.initial.value_s"],
+                         f"is above engine.ceiling_s ({flat['engine.ceiling_s']})"))
+    return p
+
+
+class Config:
+    """A checked, immutable config. ``cfg["a.b.c"]`` gives one value; ``cfg.section("a.b")`` a dict."""
+
+    __slots__ = ("_flat", "source")
+
+    def __init__(self, flat: Mapping[str, Any], source: str = "<defaults>"):
+        self._flat = dict(flat)
+        self.source = source
+
+    def __getitem__(self, path: str) -> Any:
+        return self._flat[path]
+
+    def get(self, path: str, default: Any = None) -> Any:
+        return self._flat.get(path, default)
+
+    def section(self, prefix: str) -> dict[str, Any]:
+        n = len(prefix) + 1
+        return {k[n:]: v for k, v in self._flat.items() if k.startswith(prefix + ".")}
+
+    def flat(self) -> dict[str, Any]:
+        return dict(self._flat)
+
+    def nested(self) -> dict[str, Any]:
+        out: dict[str, Any] = {}
+        for k, v in self._flat.items():
+            _set(out, k, v)
+        return out
+
+    def with_overrides(self, overrides: Mapping[str, Any], where: str = "override") -> Config:
+        return from_mapping_flat({**self._flat, **overrides}, where, base=None)
+
+    def tunable_diff(self, other: Config) -> tuple[dict[str, Any], list[str]]:
+        """(changed tunable keys → new value, changed keys that need a restart)."""
+        changed = {k: other[k] for k in SCHEMA if self._flat.get(k) != other.get(k)}
+        tun = {k: v for k, v in changed.items() if SCHEMA[k].tunable}
+        return tun, sorted(k for k in changed if not SCHEMA[k].tunable)
+
+    def __eq__(self, other: object) -> bool:
+        return isinstance(other, Config) and other._flat == self._flat
+
+    def __repr__(self) -> str:
+        return f"Config(source={self.source!r})"
+
+
+def from_mapping_flat(flat_in: Mapping[str, Any], where: str, base: Config | None) -> Config:
+    flat = dict(base.flat()) if base is not None else {k: f.default for k, f in SCHEMA.items()}
+    problems: list[Problem] = []
+    for k, v in flat_in.items():
+        cv, prob = check_value(k, v, where)
+        if prob:
+            problems.append(prob)
+        else:
+            flat[k] = cv
+    if not problems:
+        problems += _cross_checks(flat, where)
+    if problems:
+        raise ConfigError(problems)
+    return Config(flat, where)
+
+
+def from_mapping(doc: Any, where: str = "<mapping>", base: Config | None = None) -> Config:
+    """Check a nested mapping (a parsed YAML file) against the schema."""
+    if doc is None:
+        doc = {}
+    if not isinstance(doc, Mapping):
+        raise ConfigError(Problem(where, type(doc).__name__, "must be a mapping of sections"))
+    flat = dict(_flatten(doc))
+    return from_mapping_flat(flat, where, base)
+
+
+def load(path: str | None = None, overrides: Iterable[str] = ()) -> Config:
+    """Load a YAML config file (or the defaults) and apply ``KEY=VALUE`` overrides."""
+    cfg = Config({k: f.default for k, f in SCHEMA.items()})
+    if path is not None:
+        import yaml
+
+        if not os.path.exists(path):
+            raise ConfigError(Problem(path, path, "does not exist"))
+        try:
+            with open(path, encoding="utf-8") as fh:
+                doc = yaml.safe_load(fh)
+        except yaml.YAMLError as e:
+            raise ConfigError(Problem(path, "", f"is not valid YAML: {e}")) from None
+        cfg = from_mapping(doc, path)
+    ov: dict[str, Any] = {}
+    problems: list[Problem] = []
+    for item in overrides:
+        if "=" not in item:
+            problems.append(Problem("--set", item, "must look like KEY=VALUE"))
+            continue
+        k, raw = item.split("=", 1)
+        ov[k.strip()] = parse_scalar(raw)
+    if problems:
+        raise ConfigError(problems)
+    if ov:
+        cfg = from_mapping_flat(ov, (path or "defaults") + " + --set", base=cfg)
+    return cfg
+
+
+def parse_scalar(raw: str) -> Any:
+    """A --set value: YAML scalar rules (numbers, true/false, null, strings)."""
+    import yaml
+
+    try:
+        return yaml.safe_load(raw)
+    except yaml.YAMLError:
+        return raw
+
+
+def describe() -> str:
+    """Every setting with its default and meaning, for ``routerd validate --schema``."""
+    lines = []
+    for k, f in SCHEMA.items():
+        rng = ""
+        if f.choices:
+            rng = " {" + "|".join(map(str, f.choices)) + "}"
+        elif f.lo is not None or f.hi is not None:
+            lo = "-inf" if f.lo is None else f"{f.lo:g}"
+            hi = "inf" if f.hi is None else f"{f.hi:g}"
+            rng = f" {'(' if f.lo_open else '['}{lo}, {hi}{')' if f.hi_open else ']'}"
+        tun = " (reloadable)" if f.tunable else ""
+        lines.append(f"{k} = {f.default!r}{rng}{tun}\n    {f.doc}")
+    return "\n".join(lines)

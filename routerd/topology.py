@@ -1,0 +1,663 @@
+"""The one topology model used by the engine, the simulator, the service and replay.
+
+Owns: nodes by name, directed links (propagation delay in seconds, capacity in bit/s,
+buffer in packets), the neighbour-slot layout the engine indexes by, delay-shortest
+distances, optional demand matrices, and the loaders for the formats we read:
+
+* our own YAML format (see ``configs/`` for examples)::
+
+      topology:
+        name: lab-ring
+        defaults: {capacity_bps: 10.0e6, buffer_pkts: 64}
+        nodes: [a, b, c]
+        links:
+          - {between: [a, b], delay_s: 0.002}           # undirected: two links
+          - {from: b, to: c, delay_s: 0.001, capacity_bps: 2.0e6}  # one direction
+        demands:                                          # optional, any unit
+          - {from: a, to: c, rate: 3.0}
+
+* GraphML (open standard), edge attributes ``delay_s``, ``capacity_bps``, ``buffer_pkts``;
+* networkx node-link JSON as shipped by the ``topohub`` package (edge ``dist`` in km →
+  propagation delay at 5 µs/km, the ITU-T G.114 planning figure for fibre);
+* ``topohub:GROUP/NAME`` references when topohub is installed.
+
+Missing capacity or buffer values come from the file's own defaults or from the caller
+(the command line), never silently; without either, the link is an error.
+
+Must not import: sockets, zmq, prometheus, the engine, the simulator. Reads files only in
+the ``load_*`` functions; ``Topology`` itself is an immutable value.
+"""
+from __future__ import annotations
+
+import hashlib
+import heapq
+import json
+import math
+import os
+import xml.etree.ElementTree as ET
+from collections.abc import Iterable, Mapping
+from dataclasses import dataclass, field
+from functools import cached_property
+from typing import Any
+
+import numpy as np
+
+from .errors import Problem, TopologyError
+
+#: Propagation in fibre, seconds per km (ITU-T G.114 planning figure, 5 µs/km).
+FIBRE_S_PER_KM = 5e-6
+
+
+@dataclass(frozen=True, slots=True)
+class LinkSpec:
+    """One directed link as read from a file, before it is checked."""
+
+    src: str
+    dst: str
+    delay_s: float
+    capacity_bps: float | None
+    buffer_pkts: float | None
+    where: str  # for error messages: "file: links[3]"
+
+
+@dataclass(frozen=True, slots=True)
+class LinkDefaults:
+    """Values for links whose file gives no capacity or buffer (from the command line)."""
+
+    capacity_bps: float | None = None
+    buffer_pkts: int | None = None
+
+
+@dataclass(frozen=True, eq=False)
+class Topology:
+    """An immutable, validated network.  Build with :func:`build` or a ``load_*`` function.
+
+    Node ``i`` is ``nodes[i]``. Link ``k`` goes ``src[k] → dst[k]``. Neighbour slots:
+    ``slots[x, j]`` is the j-th out-neighbour of x (ascending node index) or -1.
+    """
+
+    name: str
+    nodes: tuple[str, ...]
+    src: np.ndarray  # int32, per link
+    dst: np.ndarray  # int32, per link
+    delay_s: np.ndarray  # float64, per link
+    capacity_bps: np.ndarray  # float64, per link
+    buffer_pkts: np.ndarray  # int64, per link
+    demands: np.ndarray | None = None  # (n, n) float64, arbitrary unit; None if absent
+    source: str = ""
+    meta: Mapping[str, Any] = field(default_factory=dict)
+
+    # ---- basic shape -------------------------------------------------------------
+    @property
+    def n(self) -> int:
+        return len(self.nodes)
+
+    @property
+    def n_links(self) -> int:
+        return int(self.src.shape[0])
+
+    @cached_property
+    def index(self) -> dict[str, int]:
+        return {name: i for i, name in enumerate(self.nodes)}
+
+    @cached_property
+    def link_index(self) -> dict[tuple[int, int], int]:
+        return {(int(a), int(b)): k for k, (a, b) in enumerate(zip(self.src, self.dst))}
+
+    @cached_property
+    def neighbours(self) -> tuple[tuple[int, ...], ...]:
+        out: list[list[int]] = [[] for _ in range(self.n)]
+        for a, b in zip(self.src.tolist(), self.dst.tolist()):
+            out[a].append(b)
+        return tuple(tuple(sorted(v)) for v in out)
+
+    @cached_property
+    def max_degree(self) -> int:
+        return max((len(v) for v in self.neighbours), default=0)
+
+    @cached_property
+    def slots(self) -> np.ndarray:
+        """(n, K) int32: out-neighbour per slot, -1 where a node has fewer than K."""
+        k = max(self.max_degree, 1)
+        s = np.full((self.n, k), -1, dtype=np.int32)
+        for x, nb in enumerate(self.neighbours):
+            s[x, : len(nb)] = nb
+        return s
+
+    @cached_property
+    def slot_link(self) -> np.ndarray:
+        """(n, K) int32: link index behind each slot, -1 where absent."""
+        s = np.full(self.slots.shape, -1, dtype=np.int32)
+        li = self.link_index
+        for x, nb in enumerate(self.neighbours):
+            for j, y in enumerate(nb):
+                s[x, j] = li[(x, y)]
+        return s
+
+    @cached_property
+    def slot_of(self) -> np.ndarray:
+        """(n, n) int16/int32: slot of neighbour y at node x, or -1 if y is not a neighbour."""
+        dtype = np.int16 if self.max_degree < 32000 else np.int32
+        s = np.full((self.n, self.n), -1, dtype=dtype)
+        for x, nb in enumerate(self.neighbours):
+            for j, y in enumerate(nb):
+                s[x, y] = j
+        return s
+
+    @cached_property
+    def digest(self) -> str:
+        """Short stable id of the node list (wire `topology` id): indices mean the same nodes."""
+        h = hashlib.sha256("\n".join(self.nodes).encode()).hexdigest()
+        return h[:16]
+
+    def link(self, a: str, b: str) -> int:
+        """Index of the directed link a → b; KeyError with a clear message otherwise."""
+        try:
+            return self.link_index[(self.index[a], self.index[b])]
+        except KeyError:
+            raise KeyError(f"no link {a} -> {b} in topology {self.name!r}") from None
+
+    # ---- paths -------------------------------------------------------------------
+    def shortest_delays(self, weights: np.ndarray | None = None) -> np.ndarray:
+        """(n, n) matrix D[x, d]: least total link weight from x to d (default: delay_s).
+
+        Dijkstra from every destination over reversed links. Unreachable: inf.
+        """
+        if weights is None:
+            return self._shortest_delays
+        return _all_pairs(self.n, self.src, self.dst, np.asarray(weights, dtype=float))
+
+    @cached_property
+    def _shortest_delays(self) -> np.ndarray:
+        return _all_pairs(self.n, self.src, self.dst, self.delay_s)
+
+    @cached_property
+    def hop_distances(self) -> np.ndarray:
+        return _all_pairs(self.n, self.src, self.dst, np.ones(self.n_links))
+
+    def spt_next_hops(self, dist: np.ndarray | None = None) -> np.ndarray:
+        """(n, n) int32 next hop N[x, d] on a delay-shortest path (-1 on the diagonal).
+
+        Ties go to the lowest node index, so the result is deterministic.
+        """
+        D = self.shortest_delays() if dist is None else dist
+        nh = np.full((self.n, self.n), -1, dtype=np.int32)
+        slots = self.slots
+        valid = slots >= 0
+        w = np.where(valid, self.delay_s[np.where(valid, self.slot_link, 0)], np.inf)
+        for x in range(self.n):
+            ys = slots[x][valid[x]]
+            if ys.size == 0:
+                continue
+            cost = w[x][valid[x]][:, None] + D[ys, :]  # (deg, n)
+            best = np.argmin(cost, axis=0)
+            nh[x] = ys[best]
+            nh[x, x] = -1
+        return nh
+
+    def stats(self) -> dict[str, float]:
+        """Counts in the terms topohub's ``stats`` uses (undirected links, hop paths)."""
+        und = {tuple(sorted((int(a), int(b)))) for a, b in zip(self.src, self.dst)}
+        H = self.hop_distances
+        off = ~np.eye(self.n, dtype=bool)
+        D = self.shortest_delays()
+        # hops along the delay-shortest path (topohub's "sdp" = shortest-distance path)
+        nh = self.spt_next_hops()
+        sdp_hops = _path_hops(nh)
+        return {
+            "nodes": self.n,
+            "links": len(und),
+            "diameter_hops": float(H[off].max()) if self.n > 1 else 0.0,
+            "avg_hops": float(H[off].mean()) if self.n > 1 else 0.0,
+            "avg_sdp_hops": float(sdp_hops[off].mean()) if self.n > 1 else 0.0,
+            "diameter_delay_s": float(D[off].max()) if self.n > 1 else 0.0,
+        }
+
+    def summary(self) -> str:
+        s = self.stats()
+        return (
+            f"topology {self.name!r}: {self.n} nodes, {self.n_links} directed links, "
+            f"diameter {int(s['diameter_hops'])} hops / {s['diameter_delay_s'] * 1e3:.3f} ms"
+            + (", demand matrix" if self.demands is not None else "")
+        )
+
+    def with_capacity(self, link: int, capacity_bps: float) -> Topology:
+        cap = self.capacity_bps.copy()
+        cap[link] = capacity_bps
+        return _replace(self, capacity_bps=cap)
+
+
+def _replace(t: Topology, **kw: Any) -> Topology:
+    fields = dict(
+        name=t.name, nodes=t.nodes, src=t.src, dst=t.dst, delay_s=t.delay_s,
+        capacity_bps=t.capacity_bps, buffer_pkts=t.buffer_pkts, demands=t.demands,
+        source=t.source, meta=t.meta,
+    )
+    fields.update(kw)
+    return Topology(**fields)
+
+
+def _all_pairs(n: int, src: np.ndarray, dst: np.ndarray, w: np.ndarray) -> np.ndarray:
+    rev: list[list[tuple[int, float]]] = [[] for _ in range(n)]
+    for a, b, c in zip(src.tolist(), dst.tolist(), w.tolist()):
+        rev[b].append((a, c))
+    D = np.full((n, n), np.inf)
+    for d in range(n):
+        dist = [math.inf] * n
+        dist[d] = 0.0
+        heap = [(0.0, d)]
+        while heap:
+            du, u = heapq.heappop(heap)
+            if du > dist[u]:
+                continue
+            for v, c in rev[u]:
+                nd = du + c
+                if nd < dist[v]:
+                    dist[v] = nd
+                    heapq.heappush(heap, (nd, v))
+        D[:, d] = dist
+    return D
+
+
+def _path_hops(nh: np.ndarray) -> np.ndarray:
+    n = nh.shape[0]
+    hops = np.zeros((n, n))
+    for d in range(n):
+        for x in range(n):
+            h, y = 0, x
+            while y != d and y >= 0 and h <= n:
+                y = int(nh[y, d])
+                h += 1
+            hops[x, d] = h if y == d else np.inf
+    return hops
+
+
+# ---- building and checking --------------------------------------------------------
+
+def build(
+    name: str,
+    nodes: Iterable[str],
+    links: Iterable[LinkSpec],
+    *,
+    defaults: LinkDefaults = LinkDefaults(),
+    demands: Mapping[tuple[str, str], float] | None = None,
+    source: str = "",
+    meta: Mapping[str, Any] | None = None,
+) -> Topology:
+    """Check everything and build a Topology, or raise TopologyError listing every problem."""
+    where0 = source or name
+    problems: list[Problem] = []
+    node_list = list(nodes)
+    index: dict[str, int] = {}
+    for i, nm in enumerate(node_list):
+        if not isinstance(nm, str) or not nm:
+            problems.append(Problem(f"{where0}: nodes[{i}]", nm, "is not a non-empty name"))
+        elif nm in index:
+            problems.append(Problem(f"{where0}: nodes[{i}]", nm, "is a duplicate node name"))
+        else:
+            index[nm] = i
+    if len(index) < 2 and not problems:
+        problems.append(Problem(f"{where0}: nodes", len(index), "nodes: a topology needs at least 2"))
+    src, dst, dly, cap, buf = [], [], [], [], []
+    seen: dict[tuple[int, int], str] = {}
+    for ls in links:
+        bad = False
+        for end in (ls.src, ls.dst):
+            if end not in index:
+                problems.append(Problem(ls.where, end, "is not a declared node"))
+                bad = True
+        if bad:
+            continue
+        if ls.src == ls.dst:
+            problems.append(Problem(ls.where, f"{ls.src} -> {ls.dst}", "is a self-loop"))
+            continue
+        key = (index[ls.src], index[ls.dst])
+        if key in seen:
+            problems.append(
+                Problem(ls.where, f"{ls.src} -> {ls.dst}", f"duplicates the link at {seen[key]}")
+            )
+            continue
+        seen[key] = ls.where
+        c = ls.capacity_bps if ls.capacity_bps is not None else defaults.capacity_bps
+        b = ls.buffer_pkts if ls.buffer_pkts is not None else defaults.buffer_pkts
+        for label, v, positive in (
+            ("delay_s", ls.delay_s, False),
+            ("capacity_bps", c, True),
+            ("buffer_pkts", b, True),
+        ):
+            if v is None:
+                problems.append(
+                    Problem(f"{ls.where}.{label}", None,
+                            "is missing and no default was given (file defaults or command line)")
+                )
+                bad = True
+                continue
+            try:
+                fv = float(v)  # type: ignore[arg-type]
+            except (TypeError, ValueError):
+                problems.append(Problem(f"{ls.where}.{label}", v, "is not a number"))
+                bad = True
+                continue
+            if math.isnan(fv) or math.isinf(fv):
+                problems.append(Problem(f"{ls.where}.{label}", v, "is not a finite number"))
+                bad = True
+            elif fv < 0 or (positive and fv == 0):
+                rule = "must be > 0" if positive else "must be >= 0"
+                problems.append(Problem(f"{ls.where}.{label}", v, rule))
+                bad = True
+            elif label == "buffer_pkts" and fv != int(fv):
+                problems.append(Problem(f"{ls.where}.{label}", v, "must be a whole number of packets"))
+                bad = True
+        if bad:
+            continue
+        src.append(key[0]); dst.append(key[1])
+        dly.append(float(ls.delay_s)); cap.append(float(c)); buf.append(int(float(b)))  # type: ignore[arg-type]
+    dem = None
+    if demands is not None:
+        dem = np.zeros((len(node_list), len(node_list)))
+        for (a, b), v in demands.items():
+            w = f"{where0}: demands[{a} -> {b}]"
+            if a not in index or b not in index:
+                problems.append(Problem(w, f"{a} -> {b}", "names a node that is not declared"))
+                continue
+            try:
+                fv = float(v)
+            except (TypeError, ValueError):
+                problems.append(Problem(w, v, "is not a number"))
+                continue
+            if not math.isfinite(fv) or fv < 0:
+                problems.append(Problem(w, v, "must be a finite number >= 0"))
+                continue
+            if a != b:
+                dem[index[a], index[b]] += fv
+    if not problems:
+        # connectivity: every node must reach every other (strongly connected)
+        n = len(node_list)
+        adj: list[list[int]] = [[] for _ in range(n)]
+        radj: list[list[int]] = [[] for _ in range(n)]
+        for a, b in zip(src, dst):
+            adj[a].append(b); radj[b].append(a)
+        for graph, what in ((adj, "reached from"), (radj, "able to reach")):
+            seen_n = {0}
+            stack = [0]
+            while stack:
+                u = stack.pop()
+                for v in graph[u]:
+                    if v not in seen_n:
+                        seen_n.add(v); stack.append(v)
+            if len(seen_n) < n:
+                missing = [node_list[i] for i in range(n) if i not in seen_n]
+                shown = ", ".join(missing[:8]) + (" ..." if len(missing) > 8 else "")
+                problems.append(
+                    Problem(f"{where0}: graph", shown,
+                            f"not {what} node {node_list[0]!r}: the graph is disconnected")
+                )
+                break
+    if problems:
+        raise TopologyError(problems)
+    return Topology(
+        name=name,
+        nodes=tuple(node_list),
+        src=np.asarray(src, dtype=np.int32),
+        dst=np.asarray(dst, dtype=np.int32),
+        delay_s=np.asarray(dly, dtype=np.float64),
+        capacity_bps=np.asarray(cap, dtype=np.float64),
+        buffer_pkts=np.asarray(buf, dtype=np.int64),
+        demands=dem,
+        source=source,
+        meta=dict(meta or {}),
+    )
+
+
+# ---- loaders ------------------------------------------------------------------------
+
+def load(spec: str, defaults: LinkDefaults = LinkDefaults()) -> Topology:
+    """Load a topology from a file path or a ``topohub:GROUP/NAME`` reference."""
+    if spec.startswith("topohub:"):
+        return load_topohub(spec[len("topohub:"):], defaults)
+    if not os.path.exists(spec):
+        raise TopologyError(Problem(spec, spec, "does not exist"))
+    ext = os.path.splitext(spec)[1].lower()
+    if ext in (".yaml", ".yml"):
+        import yaml  # only the loader needs it
+
+        try:
+            with open(spec, encoding="utf-8") as fh:
+                doc = yaml.safe_load(fh)
+        except yaml.YAMLError as e:
+            raise TopologyError(Problem(spec, "", f"is not valid YAML: {e}")) from None
+        return from_mapping(doc, source=spec, defaults=defaults)
+    if ext == ".graphml":
+        return load_graphml(spec, defaults)
+    if ext == ".json":
+        try:
+            with open(spec, encoding="utf-8") as fh:
+                doc = json.load(fh)
+        except json.JSONDecodeError as e:
+            raise TopologyError(Problem(spec, "", f"is not valid JSON: {e}")) from None
+        return from_node_link(doc, source=spec, defaults=defaults)
+    raise TopologyError(
+        Problem(spec, ext or "(none)", "is not a known topology extension (.yaml, .yml, .graphml, .json)")
+    )
+
+
+def from_mapping(doc: Any, *, source: str = "<mapping>",
+                 defaults: LinkDefaults = LinkDefaults()) -> Topology:
+    """Our YAML format, already parsed (a dict with a top-level ``topology`` key)."""
+    if not isinstance(doc, dict) or not isinstance(doc.get("topology"), dict):
+        raise TopologyError(Problem(source, type(doc).__name__,
+                                    "must be a mapping with a 'topology' mapping at the top"))
+    t = doc["topology"]
+    problems: list[Problem] = []
+    known = {"name", "defaults", "nodes", "links", "demands", "description"}
+    for k in t:
+        if k not in known:
+            problems.append(Problem(f"{source}: topology.{k}", k, f"is not a known key ({', '.join(sorted(known))})"))
+    name = str(t.get("name") or os.path.splitext(os.path.basename(source))[0])
+    fdef = t.get("defaults") or {}
+    if not isinstance(fdef, dict):
+        problems.append(Problem(f"{source}: topology.defaults", fdef, "must be a mapping"))
+        fdef = {}
+    for k in fdef:
+        if k not in ("capacity_bps", "buffer_pkts"):
+            problems.append(Problem(f"{source}: topology.defaults.{k}", k,
+                                    "is not a known key (capacity_bps, buffer_pkts)"))
+    eff = LinkDefaults(
+        capacity_bps=fdef.get("capacity_bps", defaults.capacity_bps),
+        buffer_pkts=fdef.get("buffer_pkts", defaults.buffer_pkts),
+    )
+    nodes = t.get("nodes")
+    if not isinstance(nodes, list):
+        problems.append(Problem(f"{source}: topology.nodes", nodes, "must be a list of node names"))
+        nodes = []
+    links_doc = t.get("links")
+    if not isinstance(links_doc, list):
+        problems.append(Problem(f"{source}: topology.links", links_doc, "must be a list of links"))
+        links_doc = []
+    specs: list[LinkSpec] = []
+    for i, ln in enumerate(links_doc):
+        w = f"{source}: topology.links[{i}]"
+        if not isinstance(ln, dict):
+            problems.append(Problem(w, ln, "must be a mapping"))
+            continue
+        extra = set(ln) - {"between", "from", "to", "delay_s", "capacity_bps", "buffer_pkts"}
+        if extra:
+            problems.append(Problem(w, sorted(extra), "are not known link keys"))
+        if "delay_s" not in ln:
+            problems.append(Problem(f"{w}.delay_s", None, "is missing"))
+            continue
+        ends: list[tuple[Any, Any]]
+        if "between" in ln:
+            b = ln["between"]
+            if not (isinstance(b, list) and len(b) == 2):
+                problems.append(Problem(f"{w}.between", b, "must be a list of two node names"))
+                continue
+            ends = [(b[0], b[1]), (b[1], b[0])]
+        elif "from" in ln and "to" in ln:
+            ends = [(ln["from"], ln["to"])]
+        else:
+            problems.append(Problem(w, ln, "needs 'between: [a, b]' or 'from' and 'to'"))
+            continue
+        for a, b2 in ends:
+            specs.append(LinkSpec(str(a), str(b2), ln["delay_s"], ln.get("capacity_bps"),
+                                  ln.get("buffer_pkts"), w))
+    dem = None
+    if t.get("demands") is not None:
+        dem = {}
+        dd = t["demands"]
+        if not isinstance(dd, list):
+            problems.append(Problem(f"{source}: topology.demands", dd, "must be a list"))
+        else:
+            for i, row in enumerate(dd):
+                if not (isinstance(row, dict) and {"from", "to", "rate"} <= set(row)):
+                    problems.append(Problem(f"{source}: topology.demands[{i}]", row,
+                                            "must be a mapping with from, to, rate"))
+                    continue
+                dem[(str(row["from"]), str(row["to"]))] = row["rate"]
+    try:
+        topo = build(name, [str(x) for x in nodes], specs, defaults=eff, demands=dem, source=source)
+    except TopologyError as e:
+        raise TopologyError(problems + e.problems) from None  # type: ignore[operator]
+    if problems:
+        raise TopologyError(problems)
+    return topo
+
+
+def load_graphml(path: str, defaults: LinkDefaults = LinkDefaults()) -> Topology:
+    """GraphML (http://graphml.graphdrawing.org/): nodes by id, edge data by key name."""
+    try:
+        root = ET.parse(path).getroot()
+    except ET.ParseError as e:
+        raise TopologyError(Problem(path, "", f"is not valid GraphML/XML: {e}")) from None
+    ns = ""
+    if root.tag.startswith("{"):
+        ns = root.tag.split("}")[0] + "}"
+    keys: dict[str, str] = {}
+    for k in root.iter(f"{ns}key"):
+        keys[k.get("id", "")] = k.get("attr.name") or k.get("id", "")
+    graphs = list(root.iter(f"{ns}graph"))
+    if not graphs:
+        raise TopologyError(Problem(path, "", "has no <graph> element"))
+    g = graphs[0]
+    directed = g.get("edgedefault", "undirected") == "directed"
+    nodes = [nd.get("id", "") for nd in g.iter(f"{ns}node")]
+    specs: list[LinkSpec] = []
+    problems: list[Problem] = []
+    for i, e in enumerate(g.iter(f"{ns}edge")):
+        data = {keys.get(d.get("key", ""), d.get("key", "")): (d.text or "").strip()
+                for d in e.iter(f"{ns}data")}
+        w = f"{path}: edge[{i}] ({e.get('source')} - {e.get('target')})"
+        if "delay_s" not in data:
+            problems.append(Problem(f"{w}.delay_s", None, "is missing"))
+            continue
+        a, b = e.get("source", ""), e.get("target", "")
+        edir = e.get("directed")
+        is_dir = directed if edir is None else edir == "true"
+        for s, t in ([(a, b)] if is_dir else [(a, b), (b, a)]):
+            specs.append(LinkSpec(s, t, _num(data.get("delay_s")), _num(data.get("capacity_bps")),
+                                  _num(data.get("buffer_pkts")), w))
+    name = g.get("id") or os.path.splitext(os.path.basename(path))[0]
+    try:
+        topo = build(name, nodes, specs, defaults=defaults, source=path)
+    except TopologyError as e:
+        raise TopologyError(problems + e.problems) from None  # type: ignore[operator]
+    if problems:
+        raise TopologyError(problems)
+    return topo
+
+
+def _num(s: str | None) -> Any:
+    if s is None or s == "":
+        return None
+    try:
+        return float(s)
+    except ValueError:
+        return s  # build() reports "is not a number" with the location
+
+
+def from_node_link(doc: Any, *, source: str = "<node-link>",
+                   defaults: LinkDefaults = LinkDefaults()) -> Topology:
+    """networkx node-link JSON (``edges`` or ``links`` key), topohub's flavour included.
+
+    Node names: the ``name`` attribute when every node has a distinct one, else the id.
+    Edge delay: ``delay_s`` if present, else ``dist`` (km) × 5 µs/km. Capacity and buffer:
+    ``capacity_bps``/``buffer_pkts`` if present, else the caller's defaults.
+    """
+    if not isinstance(doc, dict) or "nodes" not in doc:
+        raise TopologyError(Problem(source, type(doc).__name__, "is not a node-link document"))
+    raw_nodes = doc["nodes"]
+    ids = [nd.get("id") for nd in raw_nodes]
+    names = [nd.get("name") for nd in raw_nodes]
+    use_names = all(isinstance(x, str) and x for x in names) and len(set(names)) == len(names)
+    label = {i: (str(nm) if use_names else str(i)) for i, nm in zip(ids, names)}
+    edges = doc.get("edges", doc.get("links", []))
+    directed = bool(doc.get("directed", False))
+    specs: list[LinkSpec] = []
+    problems: list[Problem] = []
+    for i, e in enumerate(edges):
+        w = f"{source}: edges[{i}] ({e.get('source')} - {e.get('target')})"
+        if e.get("source") not in label or e.get("target") not in label:
+            problems.append(Problem(w, (e.get("source"), e.get("target")), "names an unknown node id"))
+            continue
+        if "delay_s" in e:
+            delay = e["delay_s"]
+        elif "dist" in e:
+            try:
+                delay = float(e["dist"]) * FIBRE_S_PER_KM
+            except (TypeError, ValueError):
+                problems.append(Problem(f"{w}.dist", e["dist"], "is not a number"))
+                continue
+        else:
+            problems.append(Problem(w, None, "has neither delay_s nor dist (km)"))
+            continue
+        a, b = label[e["source"]], label[e["target"]]
+        for s, t in ([(a, b)] if directed else [(a, b), (b, a)]):
+            specs.append(LinkSpec(s, t, delay, e.get("capacity_bps"), e.get("buffer_pkts"), w))
+    g = doc.get("graph") or {}
+    dem = None
+    if isinstance(g.get("demands"), dict):
+        dem = {}
+        by_id = {str(k): v for k, v in label.items()}
+        for a, row in g["demands"].items():
+            for b, v in (row or {}).items():
+                dem[(by_id.get(str(a), str(a)), by_id.get(str(b), str(b)))] = v
+    name = str(g.get("name") or os.path.splitext(os.path.basename(source))[0])
+    meta = {"stats": g.get("stats", {})} if isinstance(g.get("stats"), dict) else {}
+    try:
+        topo = build(name, [label[i] for i in ids], specs, defaults=defaults, demands=dem,
+                     source=source, meta=meta)
+    except TopologyError as e:
+        raise TopologyError(problems + e.problems) from None  # type: ignore[operator]
+    if problems:
+        raise TopologyError(problems)
+    return topo
+
+
+def load_topohub(key: str, defaults: LinkDefaults = LinkDefaults()) -> Topology:
+    """A topology from the installed ``topohub`` package, e.g. ``sndlib/abilene``."""
+    try:
+        import topohub  # type: ignore[import-not-found]
+    except ImportError:
+        raise TopologyError(Problem(f"topohub:{key}", key,
+                                    "needs the 'topohub' package (pip install topohub)")) from None
+    try:
+        doc = topohub.get(key)
+    except Exception as e:  # topohub raises KeyError, but also OSError on odd keys
+        raise TopologyError(Problem(f"topohub:{key}", key, f"is not in topohub: {e}")) from None
+    return from_node_link(doc, source=f"topohub:{key}", defaults=defaults)
+
+
+def to_mapping(t: Topology) -> dict[str, Any]:
+    """Our YAML format for a topology (directed links, explicit values)."""
+    return {
+        "topology": {
+            "name": t.name,
+            "nodes": list(t.nodes),
+            "links": [
+                {"from": t.nodes[a], "to": t.nodes[b], "delay_s": float(d),
+                 "capacity_bps": float(c), "buffer_pkts": int(bf)}
+                for a, b, d, c, bf in zip(t.src.tolist(), t.dst.tolist(), t.delay_s.tolist(),
+                                          t.capacity_bps.tolist(), t.buffer_pkts.tolist())
+            ],
+        }
+    }

@@ -1,0 +1,104 @@
+"""``routerd validate FILE...``: check config, topology and scenario files.
+
+Prints ``OK`` and a one-line summary per good file, or every problem found, each naming
+the file, the key path or element, the bad value and the rule.  Exit 1 if any file is bad.
+
+The file's kind is told from its content: a mapping with a ``topology`` mapping holding
+``nodes`` is a topology; one with a ``scenario`` key is a scenario; other mappings are
+configs.  GraphML and node-link JSON files are topologies.  A config that names a
+topology file has that file checked too.
+"""
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+from typing import Any
+
+from . import config as _config
+from . import topology as _topology
+from .errors import InputError, Problem
+
+
+def configure(p: argparse.ArgumentParser) -> None:
+    p.add_argument("files", nargs="*", metavar="FILE", help="config, topology or scenario files "
+                   "(topohub:GROUP/NAME references work too)")
+    p.add_argument("--capacity-bps", type=float, default=None,
+                   help="capacity for topology links that give none")
+    p.add_argument("--buffer-pkts", type=int, default=None,
+                   help="buffer for topology links that give none")
+    p.add_argument("--schema", action="store_true", help="print every config setting with its default and range")
+
+
+def kind_of(path: str) -> tuple[str, Any]:
+    """('topology' | 'scenario' | 'config', parsed document or None)."""
+    if path.startswith("topohub:"):
+        return "topology", None
+    ext = os.path.splitext(path)[1].lower()
+    if ext in (".graphml", ".json"):
+        return "topology", None
+    import yaml
+
+    try:
+        with open(path, encoding="utf-8") as fh:
+            doc = yaml.safe_load(fh)
+    except FileNotFoundError:
+        raise InputError(Problem(path, path, "does not exist")) from None
+    except yaml.YAMLError as e:
+        raise InputError(Problem(path, "", f"is not valid YAML: {e}")) from None
+    if isinstance(doc, dict) and isinstance(doc.get("topology"), dict) and "nodes" in doc["topology"]:
+        return "topology", doc
+    if isinstance(doc, dict) and "scenario" in doc:
+        return "scenario", doc
+    return "config", doc
+
+
+def check_file(path: str, defaults: _topology.LinkDefaults) -> str:
+    """Summary line for a good file; raises InputError listing every problem otherwise."""
+    kind, doc = kind_of(path)
+    if kind == "topology":
+        if doc is not None:
+            t = _topology.from_mapping(doc, source=path, defaults=defaults)
+        else:
+            t = _topology.load(path, defaults)
+        return t.summary()
+    if kind == "scenario":
+        from sim import scenario as _scenario  # the simulator owns the scenario format
+
+        sc = _scenario.from_mapping(doc, source=path)
+        return sc.summary()
+    cfg = _config.from_mapping(doc, path)
+    tfile = cfg["topology.file"]
+    extra = ""
+    if tfile:
+        base = os.path.dirname(path)
+        tpath = tfile if tfile.startswith("topohub:") or os.path.isabs(tfile) else os.path.join(base, tfile)
+        d = _topology.LinkDefaults(
+            cfg["topology.default_capacity_bps"] if cfg["topology.default_capacity_bps"] else defaults.capacity_bps,
+            cfg["topology.default_buffer_pkts"] if cfg["topology.default_buffer_pkts"] else defaults.buffer_pkts,
+        )
+        extra = "; " + _topology.load(tpath, d).summary()
+    changed = sum(1 for k, f in _config.SCHEMA.items() if cfg[k] != f.default)
+    return f"config: {changed} setting(s) differ from the defaults{extra}"
+
+
+def run(args: argparse.Namespace) -> int:
+    if args.schema:
+        print(_config.describe())
+        return 0
+    if not args.files:
+        print("routerd validate: name at least one FILE (or --schema)", file=sys.stderr)
+        return 2
+    defaults = _topology.LinkDefaults(args.capacity_bps, args.buffer_pkts)
+    bad = 0
+    for path in args.files:
+        try:
+            summary = check_file(path, defaults)
+        except InputError as e:
+            bad += 1
+            print(f"{path}: {len(e.problems)} problem(s)")
+            for p in e.problems:
+                print(f"  {p}")
+            continue
+        print(f"OK {path}: {summary}")
+    return 1 if bad else 0
