@@ -1,0 +1,654 @@
+"""Wire protocol v1: the one place msgpack bytes become validated values and back.
+
+Owns every message shape the service speaks (ingest batches, acknowledgements, errors,
+table publications, control requests and replies), the fixed sets of rejection reasons,
+and the name ↔ index mapping of the wire.  Decoding never raises on peer input: it
+returns a value (:class:`Ingest`, a dict) or a :class:`WireError` that says which field
+held which value and which rule it broke.
+
+Must not import: zmq, prometheus, files or clocks.  Imports numpy, msgpack, the
+topology model and the engine's value types (``HopBatch``, ``REJECT_REASONS``) only.
+Never pickle: only plain msgpack types cross the wire.
+
+Messages (all msgpack maps; strings UTF-8, byte strings msgpack ``bin``)
+-----------------------------------------------------------------------
+Ingest, named rows (ROUTER or PULL)::
+
+    {"v": 1, "reporter": str, "batch": int,
+     "hops":  [[from, via, dst, latency_s] | [from, via, dst, latency_s, estimate_s], ...],
+     "links": [[from, to, "down" | "up"], ...]}            # hops, links both optional
+
+Ingest, columnar fast path (same endpoints)::
+
+    {"v": 1, "reporter": str, "batch": int, "topology": id,
+     "cols": {"from": bin, "via": bin, "dst": bin, "latency_s": bin[, "estimate_s": bin]},
+     "links": [...]}                                         # links optional, named as above
+
+Node columns are little-endian int32 indices into the service's node list (control
+``{"op": "nodes"}``), numeric columns little-endian float64; an ``estimate_s`` of NaN
+means "absent".  ``topology`` must equal the service's id (:attr:`Topology.digest`), or
+the whole batch is refused, so indices never silently shift.
+
+**Row indexing.**  A batch's rows are numbered: hop rows ``0 .. H-1`` (H = number of
+hops, in order), then link rows ``H .. H+L-1`` (link j is row ``H + j``).  Every
+``rejected`` entry of an acknowledgement uses this numbering.
+
+Acknowledgement: ``{"v": 1, "batch": n, "accepted": k, "rejected": [[row, reason], ...]}``
+(``accepted`` counts hop and link rows).  A frame that cannot be read as a batch at all:
+``{"v": 1, "error": reason}`` plus ``"batch": n`` whenever the batch number could be read.
+Error reasons start with a fixed code (:data:`FRAME_ERRORS`) followed by ``": "`` and a
+description naming the field and the value, e.g. ``"bad_version: field 'v' is 2, expected 1"``.
+
+Envelope.  Clients send one payload frame, which may be preceded by one empty delimiter
+frame (REQ adds it; :mod:`routerd.client`'s DEALER adds it too, so the service can answer
+both the same way).  Anything else is ``extra_frames``.
+
+Tables (PUB), multipart::
+
+    [b"tables/" + node, {"v": 1, "node": x, "seq": n, "epoch": e,
+                         "routes": {dst: [[next_hop, weight], ...]}}]
+
+Control (REP): a request ``{"op": "tables" | "estimates" | "health" | "snapshot" | "link" |
+"nodes", ...}`` (``"v": 1`` optional); replies ``{"v": 1, ...}`` or ``{"v": 1, "error": reason}``.
+``nodes`` → ``{"v": 1, "nodes": [name, ...], "topology": id}``; ``estimates`` needs
+``"node"``; ``link`` needs ``"from"``, ``"to"``, ``"state"``.
+
+Row rejection reasons (:data:`REASONS`, a fixed set: metrics label on it): decode time
+adds ``bad_row`` (not a list of 4 or 5 / 3 items, a name that is not a string),
+``unknown_node``, ``bad_latency`` / ``bad_estimate`` (not a number),
+``bad_link_state`` (not "down" or "up"), ``not_neighbour`` (a link that does not exist);
+the engine adds its own at observe time (:data:`routerd.engine.REJECT_REASONS`: values
+that are NaN, infinite or negative, a ``via`` that is not a neighbour, ``from == dst``,
+a hop over a link marked down).
+"""
+from __future__ import annotations
+
+import math
+from itertools import chain
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from types import SimpleNamespace
+from typing import Any
+
+import msgpack
+import numpy as np
+
+from .engine import REJECT_REASONS as _ENGINE_REASONS
+from .engine import HopBatch
+from .topology import Topology
+
+VERSION = 1
+
+#: Reasons a row is refused at decode time.
+DECODE_REASONS: tuple[str, ...] = (
+    "bad_row", "unknown_node", "bad_latency", "bad_estimate", "bad_link_state", "not_neighbour",
+)
+#: Every row rejection reason, decode time and engine (a fixed tuple: metrics labels use it).
+REASONS: tuple[str, ...] = DECODE_REASONS + tuple(r for r in _ENGINE_REASONS
+                                                   if r not in DECODE_REASONS)
+
+#: Codes that start every whole-frame error reason (a fixed tuple: metrics labels use it).
+FRAME_ERRORS: tuple[str, ...] = (
+    "not_msgpack",        # the bytes do not parse as one msgpack object
+    "not_a_map",          # the object is not a map
+    "oversized",          # the frame is larger than the service accepts
+    "bad_version",        # "v" missing or not 1
+    "bad_reporter",       # "reporter" missing, not a string, empty or too long
+    "bad_batch",          # "batch" missing or not a whole number in [0, 2^63)
+    "unknown_field",      # a key this version does not define
+    "conflicting_formats",  # both "hops" and "cols"
+    "bad_hops",           # "hops" is not a list
+    "bad_links",          # "links" is not a list
+    "bad_cols",           # "cols" malformed: missing column, not bytes, lengths differ
+    "wrong_topology",     # "topology" missing or not the service's id
+    "too_many_rows",      # more rows than the service takes in one batch
+    "extra_frames",       # the envelope had more frames than one payload (service side)
+    "bad_request",        # a control request that is malformed
+    "unknown_op",         # a control request with an op we do not know
+)
+
+CONTROL_OPS: tuple[str, ...] = ("tables", "estimates", "health", "snapshot", "link", "nodes")
+LINK_STATES: tuple[str, ...] = ("down", "up")
+TABLE_TOPIC = b"tables/"
+MAX_REPORTER_LEN = 256
+
+_INGEST_KEYS = frozenset({"v", "reporter", "batch", "hops", "links", "cols", "topology"})
+_COLS_REQUIRED = ("from", "via", "dst", "latency_s")
+_COLS_KEYS = frozenset(_COLS_REQUIRED + ("estimate_s",))
+_I4 = np.dtype("<i4")
+_F8 = np.dtype("<f8")
+
+
+# ---- values ------------------------------------------------------------------------------
+@dataclass(frozen=True, slots=True)
+class WireError:
+    """A frame that cannot be read at all.  A value, not an exception.
+
+    ``reason`` is ``"<code>: <what, where, why>"`` with the code from :data:`FRAME_ERRORS`;
+    ``batch``/``reporter`` are filled in when they could be read (so the error reply can
+    name the batch)."""
+
+    reason: str
+    batch: int | None = None
+    reporter: str | None = None
+
+    @property
+    def code(self) -> str:
+        c = self.reason.split(":", 1)[0]
+        return c if c in FRAME_ERRORS else "bad_request"
+
+
+@dataclass(frozen=True, slots=True)
+class Ingest:
+    """A decoded batch.  ``hops`` holds node indices; ``hop_rows[i]`` is the original row
+    number of ``hops`` row i; ``links`` are (src, dst, up) index triples from rows
+    ``link_rows``; ``rejected`` lists the rows refused at decode time."""
+
+    reporter: str
+    batch: int
+    hops: HopBatch
+    hop_rows: np.ndarray
+    links: tuple[tuple[int, int, bool], ...]
+    link_rows: tuple[int, ...]
+    rejected: tuple[tuple[int, str], ...]
+    rows_total: int = 0
+    columnar: bool = False
+
+    def rejections(self, engine_rejected: Sequence[tuple[int, str]] = ()) -> list[list[Any]]:
+        """Every rejected row in wire numbering, sorted: decode-time ones plus the engine's
+        (whose indices point into ``hops`` and are mapped back through ``hop_rows``)."""
+        out = [[int(r), s] for r, s in self.rejected]
+        if len(engine_rejected):
+            rows = self.hop_rows
+            out += [[int(rows[i]), s] for i, s in engine_rejected]
+        out.sort(key=lambda p: p[0])
+        return out
+
+
+class BadReply(ValueError):
+    """A reply or publication from the service that does not follow wire protocol v1."""
+
+
+# ---- helpers -----------------------------------------------------------------------------
+def _show(value: Any, limit: int = 60) -> str:
+    """A bounded repr for error messages (peer values can be huge)."""
+    try:
+        s = repr(value)
+    except Exception:  # pragma: no cover - repr of msgpack values does not fail
+        s = f"<{type(value).__name__}>"
+    return s if len(s) <= limit else s[: limit - 3] + "..."
+
+
+def _is_int(x: Any) -> bool:
+    return isinstance(x, int) and not isinstance(x, bool)
+
+
+def _is_num(x: Any) -> bool:
+    return (isinstance(x, (int, float))) and not isinstance(x, bool)
+
+
+def topology_id(nodes: Sequence[str]) -> str:
+    """The wire ``topology`` id of a node list — :attr:`Topology.digest`'s own code, applied
+    to a bare list (so a client holding only names computes the same id)."""
+    return Topology.digest.func(SimpleNamespace(nodes=tuple(nodes)))  # type: ignore[attr-defined]
+
+
+def _unpack(frame: Any, max_bytes: int | None) -> Any:
+    """msgpack → object, or WireError.  Limits keep a hostile frame from allocating more
+    than its own size; ext types are refused (we define none on the wire)."""
+    try:
+        buf = memoryview(frame)
+    except TypeError:
+        return WireError(f"not_msgpack: the frame is a {type(frame).__name__}, not bytes")
+    n = buf.nbytes
+    if max_bytes is not None and n > max_bytes:
+        return WireError(f"oversized: the frame is {n} bytes, the limit is {max_bytes}")
+    if n == 0:
+        return WireError("not_msgpack: the frame is empty")
+    try:
+        return msgpack.unpackb(buf, raw=False, strict_map_key=False, use_list=True,
+                               max_ext_len=0, max_bin_len=n, max_str_len=n,
+                               max_array_len=n, max_map_len=n)
+    except msgpack.ExtraData:
+        return WireError("not_msgpack: the frame holds more than one msgpack object")
+    except Exception as e:  # every parse failure of peer bytes is the peer's fault
+        return WireError(f"not_msgpack: {type(e).__name__}: {_show(str(e), 80)}")
+
+
+def _header(obj: Any) -> tuple[str, int] | WireError:
+    if not isinstance(obj, dict):
+        return WireError(f"not_a_map: the frame is a msgpack {type(obj).__name__}, expected a map")
+    bn = obj.get("batch")
+    batch = bn if _is_int(bn) and 0 <= bn < 2**63 else None
+    rep = obj.get("reporter")
+    reporter = rep if isinstance(rep, str) else None
+    v = obj.get("v", "<missing>")
+    if not (_is_int(v) and v == VERSION):
+        return WireError(f"bad_version: field 'v' is {_show(v)}, expected {VERSION}", batch, reporter)
+    if "reporter" not in obj:
+        return WireError("bad_reporter: field 'reporter' is missing", batch)
+    if not isinstance(rep, str) or not rep or len(rep) > MAX_REPORTER_LEN:
+        return WireError(f"bad_reporter: field 'reporter' is {_show(rep)}, expected a non-empty "
+                         f"string of at most {MAX_REPORTER_LEN} characters", batch)
+    if "batch" not in obj:
+        return WireError("bad_batch: field 'batch' is missing", None, reporter)
+    if batch is None:
+        return WireError(f"bad_batch: field 'batch' is {_show(bn)}, expected a whole number "
+                         "in [0, 2^63)", None, reporter)
+    extra = [k for k in obj if k not in _INGEST_KEYS]
+    if extra:
+        return WireError(f"unknown_field: {_show(extra[0])} is not a field of a v1 batch "
+                         f"(fields: {', '.join(sorted(_INGEST_KEYS))})", batch, reporter)
+    return reporter, batch
+
+
+# ---- ingest ------------------------------------------------------------------------------
+def decode_ingest(frame: bytes, topo: Topology, *, max_rows: int | None = None,
+                  max_bytes: int | None = None) -> Ingest | WireError:
+    """Decode one ingest frame against ``topo``.  Never raises on any input."""
+    try:
+        return _decode_ingest(frame, topo, max_rows, max_bytes)
+    except Exception as e:  # a bug of ours must not take the service down; say so loudly
+        return WireError(f"bad_request: internal decoder error {type(e).__name__}: "
+                         f"{_show(str(e), 80)} (please report)")
+
+
+def _decode_ingest(frame: Any, topo: Topology, max_rows: int | None,
+                   max_bytes: int | None) -> Ingest | WireError:
+    obj = _unpack(frame, max_bytes)
+    if isinstance(obj, WireError):
+        return obj
+    h = _header(obj)
+    if isinstance(h, WireError):
+        return h
+    reporter, batch = h
+
+    def err(msg: str) -> WireError:
+        return WireError(msg, batch, reporter)
+
+    links_in = obj.get("links", [])
+    if links_in is None:
+        links_in = []
+    if not isinstance(links_in, list):
+        return err(f"bad_links: field 'links' is a {type(links_in).__name__}, expected a list")
+    if "cols" in obj:
+        if "hops" in obj:
+            return err("conflicting_formats: a batch has 'hops' or 'cols', not both")
+        cols = _decode_cols(obj, topo, err)
+        if isinstance(cols, WireError):
+            return cols
+        hops, hop_rows, rej = cols
+        columnar = True
+    else:
+        if "topology" in obj and obj["topology"] != topo.digest:
+            return err(f"wrong_topology: field 'topology' is {_show(obj['topology'])}, the "
+                       f"service's is {topo.digest!r}")
+        hops_in = obj.get("hops", [])
+        if hops_in is None:
+            hops_in = []
+        if not isinstance(hops_in, list):
+            return err(f"bad_hops: field 'hops' is a {type(hops_in).__name__}, expected a list")
+        if max_rows is not None and len(hops_in) + len(links_in) > max_rows:
+            return err(f"too_many_rows: {len(hops_in) + len(links_in)} rows, the limit is {max_rows}")
+        res = _rows_fast(hops_in, topo)
+        if res is None:
+            res = _rows_slow(hops_in, topo)
+        hops, hop_rows, rej = res
+        columnar = False
+    n_h = _hop_count(hop_rows, rej)
+    if max_rows is not None and n_h + len(links_in) > max_rows:
+        return err(f"too_many_rows: {n_h + len(links_in)} rows, the limit is {max_rows}")
+    links, link_rows, lrej = _decode_links(links_in, topo, n_h)
+    return Ingest(reporter, batch, hops, hop_rows, links, link_rows, tuple(rej) + lrej,
+                  n_h + len(links_in), columnar)
+
+
+def _hop_count(hop_rows: np.ndarray, rej: Sequence[tuple[int, str]]) -> int:
+    return int(hop_rows.shape[0]) + len(rej)
+
+
+def _decode_cols(obj: dict[Any, Any], topo: Topology, err: Any
+                 ) -> tuple[HopBatch, np.ndarray, list[tuple[int, str]]] | WireError:
+    if "topology" not in obj:
+        return err("wrong_topology: a columnar batch needs field 'topology' (the service's "
+                   f"id is {topo.digest!r}; ask control {{'op': 'nodes'}})")
+    if obj["topology"] != topo.digest:
+        return err(f"wrong_topology: field 'topology' is {_show(obj['topology'])}, the "
+                   f"service's is {topo.digest!r} (node indices would not match)")
+    cols = obj["cols"]
+    if not isinstance(cols, dict):
+        return err(f"bad_cols: field 'cols' is a {type(cols).__name__}, expected a map")
+    for k in cols:
+        if k not in _COLS_KEYS:
+            return err(f"bad_cols: column {_show(k)} is not defined (columns: "
+                       f"{', '.join(sorted(_COLS_KEYS))})")
+    arrs: dict[str, np.ndarray] = {}
+    m: int | None = None
+    for k in _COLS_REQUIRED + ("estimate_s",):
+        if k not in cols:
+            if k == "estimate_s":
+                continue
+            return err(f"bad_cols: column {k!r} is missing")
+        b = cols[k]
+        if not isinstance(b, bytes):
+            return err(f"bad_cols: column {k!r} is a {type(b).__name__}, expected bytes (msgpack bin)")
+        dt = _I4 if k in ("from", "via", "dst") else _F8
+        if len(b) % dt.itemsize:
+            return err(f"bad_cols: column {k!r} has {len(b)} bytes, not a multiple of {dt.itemsize}")
+        a = np.frombuffer(b, dtype=dt)
+        if m is None:
+            m = a.shape[0]
+        elif a.shape[0] != m:
+            return err(f"bad_cols: column {k!r} has {a.shape[0]} rows, column 'from' has {m}")
+        arrs[k] = a
+    assert m is not None
+    n = topo.n
+    s = arrs["from"].astype(np.int64)
+    v = arrs["via"].astype(np.int64)
+    d = arrs["dst"].astype(np.int64)
+    lat = arrs["latency_s"].astype(np.float64)
+    est = arrs["estimate_s"].astype(np.float64) if "estimate_s" in arrs else np.full(m, np.nan)
+    bad = (s < 0) | (s >= n) | (v < 0) | (v >= n) | (d < 0) | (d >= n)
+    if bad.any():
+        keep = np.flatnonzero(~bad)
+        rej = [(int(i), "unknown_node") for i in np.flatnonzero(bad)]
+        return (HopBatch(s[keep], v[keep], d[keep], lat[keep], est[keep]), keep, rej)
+    return HopBatch(s, v, d, lat, est), np.arange(m, dtype=np.int64), []
+
+
+def _rows_fast(rows: list[Any], topo: Topology
+               ) -> tuple[HopBatch, np.ndarray, list[tuple[int, str]]] | None:
+    """All rows well formed (the common case) in C-level loops; None → take the slow path."""
+    m = len(rows)
+    if m == 0:
+        e = np.empty(0, dtype=np.int64)
+        return HopBatch(e, e, e, np.empty(0), np.empty(0)), e, []
+    try:
+        if set(map(type, rows)) != {list}:
+            return None
+        lens = set(map(len, rows))
+        if len(lens) != 1:
+            return None
+        width = lens.pop()
+        if width not in (4, 5):
+            return None
+        cols = list(zip(*rows))
+        # topo.index has only str keys, so any other type fails the lookup (KeyError or
+        # TypeError) and the row goes to the slow path: no separate type check needed.
+        look = topo.index.__getitem__
+        sv = np.fromiter(map(look, chain(cols[0], cols[1], cols[2])), dtype=np.int64, count=3 * m)
+        s, v, d = sv[:m], sv[m:2 * m], sv[2 * m:]
+        if not set(map(type, cols[3])) <= {float, int}:
+            return None
+        lat = np.array(cols[3], dtype=np.float64)
+        if width == 5:
+            et = set(map(type, cols[4]))
+            if not et <= {float, int, type(None)}:
+                return None
+            if type(None) in et:
+                est = np.array([math.nan if x is None else x for x in cols[4]], dtype=np.float64)
+            else:
+                est = np.array(cols[4], dtype=np.float64)
+        else:
+            est = np.full(m, np.nan)
+    except (KeyError, TypeError, OverflowError, ValueError):
+        return None
+    return HopBatch(s, v, d, lat, est), np.arange(m, dtype=np.int64), []
+
+
+def _rows_slow(rows: list[Any], topo: Topology
+               ) -> tuple[HopBatch, np.ndarray, list[tuple[int, str]]]:
+    """Row by row, naming the reason of each refused row.  Same result as the fast path
+    wherever that one applies (tested)."""
+    idx = topo.index
+    s: list[int] = []
+    v: list[int] = []
+    d: list[int] = []
+    lat: list[float] = []
+    est: list[float] = []
+    keep: list[int] = []
+    rej: list[tuple[int, str]] = []
+    for i, r in enumerate(rows):
+        if not isinstance(r, list) or len(r) not in (4, 5):
+            rej.append((i, "bad_row"))
+            continue
+        a, b, c = r[0], r[1], r[2]
+        if not (isinstance(a, str) and isinstance(b, str) and isinstance(c, str)):
+            rej.append((i, "bad_row"))
+            continue
+        ia, ib, ic = idx.get(a), idx.get(b), idx.get(c)
+        if ia is None or ib is None or ic is None:
+            rej.append((i, "unknown_node"))
+            continue
+        x = r[3]
+        if not _is_num(x):
+            rej.append((i, "bad_latency"))
+            continue
+        e = r[4] if len(r) == 5 else None
+        if e is not None and not _is_num(e):
+            rej.append((i, "bad_estimate"))
+            continue
+        try:
+            xf = float(x)
+            ef = math.nan if e is None else float(e)
+        except OverflowError:  # an int beyond float range
+            rej.append((i, "bad_latency" if e is None or _fits(x) else "bad_estimate"))
+            continue
+        s.append(ia); v.append(ib); d.append(ic); lat.append(xf); est.append(ef); keep.append(i)
+    hb = HopBatch(np.array(s, dtype=np.int64), np.array(v, dtype=np.int64),
+                  np.array(d, dtype=np.int64), np.array(lat, dtype=np.float64),
+                  np.array(est, dtype=np.float64))
+    return hb, np.array(keep, dtype=np.int64), rej
+
+
+def _fits(x: Any) -> bool:
+    try:
+        float(x)
+        return True
+    except OverflowError:
+        return False
+
+
+def _decode_links(links: list[Any], topo: Topology, first_row: int
+                  ) -> tuple[tuple[tuple[int, int, bool], ...], tuple[int, ...],
+                             tuple[tuple[int, str], ...]]:
+    idx = topo.index
+    li = topo.link_index
+    out: list[tuple[int, int, bool]] = []
+    rows: list[int] = []
+    rej: list[tuple[int, str]] = []
+    for j, r in enumerate(links):
+        row = first_row + j
+        if not isinstance(r, list) or len(r) != 3 or not isinstance(r[0], str) \
+                or not isinstance(r[1], str):
+            rej.append((row, "bad_row"))
+            continue
+        a, b = idx.get(r[0]), idx.get(r[1])
+        if a is None or b is None:
+            rej.append((row, "unknown_node"))
+            continue
+        if r[2] not in LINK_STATES or not isinstance(r[2], str):
+            rej.append((row, "bad_link_state"))
+            continue
+        if (a, b) not in li:
+            rej.append((row, "not_neighbour"))
+            continue
+        out.append((a, b, r[2] == "up"))
+        rows.append(row)
+    return tuple(out), tuple(rows), tuple(rej)
+
+
+def encode_ingest_rows(reporter: str, batch: int, hops: Sequence[Sequence[Any]],
+                       links: Sequence[Sequence[Any]] = ()) -> bytes:
+    """A named-row batch.  ``hops`` rows are ``[from, via, dst, latency_s(, estimate_s)]``."""
+    obj: dict[str, Any] = {"v": VERSION, "reporter": reporter, "batch": int(batch),
+                           "hops": [list(r) for r in hops]}
+    if len(links):
+        obj["links"] = [list(r) for r in links]
+    return _pack(obj)
+
+
+def encode_ingest_cols(reporter: str, batch: int, topology_id: str, src: Any, via: Any,
+                       dst: Any, latency: Any, estimate: Any = None,
+                       links: Sequence[Sequence[Any]] = ()) -> bytes:
+    """A columnar batch from index and seconds arrays (anything numpy accepts)."""
+    cols: dict[str, bytes] = {
+        "from": np.ascontiguousarray(src, dtype=_I4).tobytes(),
+        "via": np.ascontiguousarray(via, dtype=_I4).tobytes(),
+        "dst": np.ascontiguousarray(dst, dtype=_I4).tobytes(),
+        "latency_s": np.ascontiguousarray(latency, dtype=_F8).tobytes(),
+    }
+    if estimate is not None:
+        cols["estimate_s"] = np.ascontiguousarray(estimate, dtype=_F8).tobytes()
+    obj: dict[str, Any] = {"v": VERSION, "reporter": reporter, "batch": int(batch),
+                           "topology": topology_id, "cols": cols}
+    if len(links):
+        obj["links"] = [list(r) for r in links]
+    return _pack(obj)
+
+
+# ---- replies -----------------------------------------------------------------------------
+def _plain(o: Any) -> Any:
+    """msgpack ``default``: numpy scalars and arrays to plain values; anything else is a bug."""
+    if isinstance(o, np.generic):
+        return o.item()
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    if isinstance(o, (tuple, frozenset, set)):
+        return list(o)
+    raise TypeError(f"cannot put a {type(o).__name__} on the wire")
+
+
+def _pack(obj: Any) -> bytes:
+    return msgpack.packb(obj, use_bin_type=True, default=_plain)
+
+
+def encode_ack(batch: int, accepted: int, rejected: Sequence[Sequence[Any]] = ()) -> bytes:
+    return _pack({"v": VERSION, "batch": int(batch), "accepted": int(accepted),
+                  "rejected": [[int(r), str(s)] for r, s in rejected]})
+
+
+def encode_error(reason: str | WireError, batch: int | None = None) -> bytes:
+    """``{"v": 1, "error": reason}`` (plus ``"batch"`` when known)."""
+    if isinstance(reason, WireError):
+        batch = reason.batch if batch is None else batch
+        reason = reason.reason
+    obj: dict[str, Any] = {"v": VERSION, "error": reason}
+    if batch is not None:
+        obj["batch"] = int(batch)
+    return _pack(obj)
+
+
+def encode_reply(obj: Mapping[str, Any]) -> bytes:
+    """A control reply: the map with ``"v": 1`` added."""
+    return _pack({"v": VERSION, **obj})
+
+
+def encode_request(obj: Mapping[str, Any]) -> bytes:
+    """A control request (client side)."""
+    return _pack(dict(obj))
+
+
+def decode_reply(data: bytes) -> dict[str, Any]:
+    """A reply from the service (ack, error or control reply).  Raises :class:`BadReply`."""
+    try:
+        obj = msgpack.unpackb(data, raw=False, strict_map_key=False, max_ext_len=0)
+    except Exception as e:
+        raise BadReply(f"reply is not msgpack: {type(e).__name__}: {_show(str(e), 80)}") from None
+    if not isinstance(obj, dict):
+        raise BadReply(f"reply is a {type(obj).__name__}, expected a map")
+    if obj.get("v") != VERSION:
+        raise BadReply(f"reply has 'v' {_show(obj.get('v'))}, expected {VERSION}")
+    return obj
+
+
+# ---- tables ------------------------------------------------------------------------------
+def table_message(node_name: str, seq: int, epoch: int | str,
+                  routes: Mapping[str, Sequence[Sequence[Any]]]) -> list[bytes]:
+    """The two frames of one table publication."""
+    body = _pack({"v": VERSION, "node": node_name, "seq": int(seq), "epoch": epoch,
+                  "routes": {d: [[h, float(w)] for h, w in ws] for d, ws in routes.items()}})
+    return [TABLE_TOPIC + node_name.encode(), body]
+
+
+def decode_table(frames: Sequence[bytes]) -> dict[str, Any]:
+    """A table publication back to its map.  Raises :class:`BadReply`."""
+    if len(frames) != 2:
+        raise BadReply(f"a table publication has 2 frames, got {len(frames)}")
+    topic = bytes(frames[0])
+    if not topic.startswith(TABLE_TOPIC):
+        raise BadReply(f"topic {_show(topic)} does not start with {TABLE_TOPIC!r}")
+    obj = decode_reply(bytes(frames[1]))
+    node = obj.get("node")
+    if not isinstance(node, str) or topic[len(TABLE_TOPIC):] != node.encode():
+        raise BadReply(f"topic {_show(topic)} does not match node {_show(node)}")
+    if not _is_int(obj.get("seq")) or not isinstance(obj.get("routes"), dict):
+        raise BadReply("a table publication needs an integer 'seq' and a map 'routes'")
+    return obj
+
+
+def routes_by_name(engine: Any, x: int) -> dict[str, list[list[Any]]]:
+    """Engine.routes(x) with node names: ``{dst: [[next_hop, weight], ...]}``."""
+    names = engine.topo.nodes
+    return {names[d]: [[names[y], float(w)] for y, w in ws] for d, ws in engine.routes(x).items()}
+
+
+def tables_by_name(engine: Any) -> dict[str, dict[str, list[list[Any]]]]:
+    """Every node's table (the control ``tables`` reply's ``"tables"`` value)."""
+    return {engine.topo.nodes[x]: routes_by_name(engine, x) for x in range(engine.n)}
+
+
+def estimates_by_name(engine: Any, x: int) -> dict[str, dict[str, float]]:
+    """x's estimates over live links: ``{dst: {neighbour: seconds}}`` (control ``estimates``)."""
+    names = engine.topo.nodes
+    slots = engine.topo.slots[x]
+    live = [(j, names[int(y)]) for j, y in enumerate(slots.tolist())
+            if y >= 0 and bool(engine.live[x, j])]
+    q = engine.Q[x]
+    return {names[d]: {nm: float(q[d, j]) for j, nm in live}
+            for d in range(engine.n) if d != x}
+
+
+def nodes_reply(topo: Topology) -> dict[str, Any]:
+    """The control ``nodes`` reply."""
+    return {"v": VERSION, "nodes": list(topo.nodes), "topology": topo.digest}
+
+
+# ---- control -----------------------------------------------------------------------------
+def decode_control(frame: bytes, topo: Topology | None = None) -> dict[str, Any] | WireError:
+    """A control request, checked (names too when ``topo`` is given).  Never raises."""
+    try:
+        return _decode_control(frame, topo)
+    except Exception as e:  # pragma: no cover - defensive, as in decode_ingest
+        return WireError(f"bad_request: internal decoder error {type(e).__name__}: {_show(str(e), 80)}")
+
+
+def _decode_control(frame: Any, topo: Topology | None) -> dict[str, Any] | WireError:
+    obj = _unpack(frame, None)
+    if isinstance(obj, WireError):
+        return obj
+    if not isinstance(obj, dict):
+        return WireError(f"not_a_map: the request is a msgpack {type(obj).__name__}, expected a map")
+    if "v" in obj and not (_is_int(obj["v"]) and obj["v"] == VERSION):
+        return WireError(f"bad_version: field 'v' is {_show(obj['v'])}, expected {VERSION}")
+    op = obj.get("op")
+    if op not in CONTROL_OPS or not isinstance(op, str):
+        return WireError(f"unknown_op: field 'op' is {_show(op)}, expected one of "
+                         f"{', '.join(CONTROL_OPS)}")
+    names = ("node",) if op == "estimates" else ("from", "to") if op == "link" else ()
+    for k in names:
+        val = obj.get(k)
+        if not isinstance(val, str):
+            return WireError(f"bad_request: op {op!r} needs field {k!r} as a node name, "
+                             f"got {_show(val)}")
+        if topo is not None and val not in topo.index:
+            return WireError(f"bad_request: field {k!r} is {_show(val)}, not a node of "
+                             f"topology {topo.name!r}")
+    if op == "link":
+        st = obj.get("state")
+        if st not in LINK_STATES or not isinstance(st, str):
+            return WireError(f"bad_request: field 'state' is {_show(st)}, expected 'down' or 'up'")
+        if topo is not None and (topo.index[obj["from"]], topo.index[obj["to"]]) not in topo.link_index:
+            return WireError(f"bad_request: there is no link {obj['from']} -> {obj['to']} in "
+                             f"topology {topo.name!r}")
+    return obj
