@@ -81,6 +81,9 @@ SCHEMA: dict[str, Field] = {
     "sim.decision_interval_s": F(float, 0.05, "virtual time between table recomputations (like the service's debounce)", lo=0, lo_open=True),
     "sim.ttl": F(int, 64, "packet TTL in hops", lo=1, hi=255),
     "sim.feedback": F(str, "delayed", "estimate returns after the link's propagation delay, or instantly", choices=("delayed", "instant")),
+    "sim.series_interval_s": F(float, 1.0, "virtual time per row of the simulator's time series (CSV, plots)", lo=0, lo_open=True),
+    "sim.flows_per_pair": F(int, 8, "flow ids per (source, destination) pair; ecmp hashes the flow id", lo=1),
+    "sim.estimate": F(str, "published", "qrouting: the estimate a node reports: the Q of the next hop it publishes, or the minimum over its live next hops (engine.estimate)", choices=("published", "min")),
 }
 
 

@@ -7,13 +7,22 @@ indices into ``topology.nodes``.  Randomness comes only from the Generator hande
 
 Call order per run::
 
-    attach(topology, rng, settings)  once
+    attach(topology, rng, settings)  once; settings is the run's routerd.config.Config
+    offered(demand_pps, mean_bits)   once, before the first packet: the expected offered
+                                     load, packets/s per (source, destination), time-averaged
     next_hop(x, d, flow, now)        whenever a packet for d is at x (x != d)
     on_hop(x, y, d, latency_s, now)  when a packet handed by x to y reaches y at `now`;
                                      latency_s = queueing + transmission + propagation
     on_link(x, y, up, now)           a link event from a scenario
     tick(now)                        every `tick_interval_s` of virtual time
     stats()                          at the end: a dict of plain numbers for summary.json
+
+The fast path.  ``table`` (optional) is a list of n lists of n ints the simulator reads
+before calling ``next_hop``: ``table[x][d] >= 0`` is the next hop, ``-1`` means no route
+(the packet is dropped), ``-2`` means "call next_hop" (e.g. a random split).  A policy
+that changes its routes mutates the rows in place; the simulator keeps a reference.  A
+policy that leaves ``table`` as None is asked on every hop.  ``on_hop`` is only called
+when a subclass overrides it.
 """
 from __future__ import annotations
 
@@ -28,11 +37,16 @@ class Policy:
     name = "base"
     #: virtual seconds between tick() calls; None = never ticked
     tick_interval_s: float | None = None
+    #: optional fast-path next-hop table, see the module docstring
+    table: list[list[int]] | None = None
 
     def attach(self, topology: Topology, rng: np.random.Generator, settings: Any) -> None:
         self.topo = topology
         self.rng = rng
         self.settings = settings
+
+    def offered(self, demand_pps: np.ndarray, mean_bits: float) -> None:
+        """The expected offered load: (n, n) packets/s, and the mean packet size in bits."""
 
     def next_hop(self, x: int, d: int, flow: int, now: float) -> int:
         """The neighbour x hands this packet to, or -1 to drop it (no route)."""

@@ -1,0 +1,137 @@
+"""``routerd simulate``: run the packet-level simulator once and write its results.
+
+Owns: the command's options and its output files (``summary.json``, ``series.csv``,
+``links.csv``, with ``--plot`` ``delivery.png`` and ``utilisation.png``).
+Must not import at module level: matplotlib (only ``--plot`` needs it).
+"""
+from __future__ import annotations
+
+import argparse
+import csv
+import json
+import math
+import os
+import sys
+from typing import Any
+
+from routerd.errors import InputError
+
+from . import policies as _policies
+from .run import SimSpec, run as run_sim
+
+
+def configure(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--topology", metavar="FILE", default=None,
+                   help="topology file (.yaml, .graphml, .json) or topohub:GROUP/NAME; "
+                        "default: the config's topology.file, else the built-in demo lab")
+    p.add_argument("--policy", required=True, choices=_policies.NAMES, help="routing policy")
+    p.add_argument("--rate", metavar="PPS", type=float, required=True,
+                   help="network-wide injection rate, packets/s (Poisson)")
+    p.add_argument("--duration", metavar="S", type=float, required=True,
+                   help="virtual seconds to simulate")
+    p.add_argument("--seed", metavar="N", type=int, required=True,
+                   help="random seed: same inputs and seed give the same summary")
+    p.add_argument("--packet-bytes", metavar="B", type=float, default=1000.0,
+                   help="packet size in bytes (the mean with --size-dist exp; default 1000)")
+    p.add_argument("--size-dist", choices=("fixed", "exp"), default="fixed",
+                   help="packet sizes fixed or exponentially distributed (default fixed)")
+    p.add_argument("--warmup", metavar="S", type=float, default=None,
+                   help="statistics cover packets injected after this (default: a tenth of --duration)")
+    p.add_argument("--scenario", metavar="FILE", default=None,
+                   help="scenario YAML: load steps, ramps, bursts and link events")
+    p.add_argument("--demands", action="store_true",
+                   help="pick source and destination in proportion to the topology's demand matrix "
+                        "(default: uniform over distinct pairs)")
+    p.add_argument("--plot", action="store_true", help="also draw PNGs (needs matplotlib)")
+    p.add_argument("--out", metavar="DIR", required=True, help="output directory (created)")
+    p.add_argument("--config", metavar="FILE", default=None, help="routerd config file")
+    p.add_argument("--set", metavar="KEY=VALUE", action="append", default=[], dest="overrides",
+                   help="override one config setting, e.g. --set sim.feedback=instant (repeatable)")
+    p.add_argument("--capacity-bps", type=float, default=None,
+                   help="capacity for links whose topology gives none (topohub files)")
+    p.add_argument("--buffer-pkts", type=int, default=None,
+                   help="buffer for links whose topology gives none (topohub files)")
+    p.add_argument("--quiet", action="store_true", help="no progress on stderr")
+
+
+def spec_from_args(args: argparse.Namespace) -> SimSpec:
+    return SimSpec(
+        policy=args.policy, rate_pps=args.rate, duration_s=args.duration, seed=args.seed,
+        topology=args.topology, packet_bytes=args.packet_bytes, size_dist=args.size_dist,
+        warmup_s=args.warmup, scenario=args.scenario, demands=args.demands,
+        config=args.config, overrides=tuple(args.overrides), capacity_bps=args.capacity_bps,
+        buffer_pkts=args.buffer_pkts, series=True, progress=not args.quiet,
+    )
+
+
+def _clean(v: Any) -> Any:
+    """JSON has no NaN: write null for statistics that do not exist (no deliveries)."""
+    if isinstance(v, float) and not math.isfinite(v):
+        return None
+    return v
+
+
+def write_outputs(result: dict[str, Any], out: str) -> list[str]:
+    os.makedirs(out, exist_ok=True)
+    written = []
+    path = os.path.join(out, "summary.json")
+    with open(path, "w", encoding="utf-8") as fh:
+        json.dump({k: _clean(v) for k, v in result["summary"].items()}, fh, indent=2, sort_keys=True)
+        fh.write("\n")
+    written.append(path)
+    links = result["links"]
+    s = result["series"]
+    path = os.path.join(out, "series.csv")
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh)
+        w.writerow(["t_s", "delivered", "mean_delivery_s", "dropped", "ttl_expired", "in_network"]
+                   + [f"util:{ln['from']}->{ln['to']}" for ln in links])
+        for i, t in enumerate(s["t_s"]):
+            md = s["mean_delivery_s"][i]
+            w.writerow([f"{t:.6g}", s["delivered"][i], "" if not math.isfinite(md) else f"{md:.6g}",
+                        s["dropped"][i], s["ttl_expired"][i], s["in_network"][i]]
+                       + [f"{u:.4f}" for u in s["link_util"][i]])
+    written.append(path)
+    path = os.path.join(out, "links.csv")
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh)
+        w.writerow(["from", "to", "capacity_bps", "delay_s", "utilisation", "packets"])
+        for ln in links:
+            w.writerow([ln["from"], ln["to"], f"{ln['capacity_bps']:.6g}", f"{ln['delay_s']:.6g}",
+                        f"{ln['utilisation']:.4f}", ln["packets"]])
+    written.append(path)
+    return written
+
+
+def run(args: argparse.Namespace) -> int:
+    spec = spec_from_args(args)
+    try:
+        result = run_sim(spec)
+    except InputError as e:
+        print(f"routerd simulate: {len(e.problems)} problem(s)", file=sys.stderr)
+        for p in e.problems:
+            print(f"  {p}", file=sys.stderr)
+        return 2
+    written = write_outputs(result, args.out)
+    if args.plot:
+        try:
+            from . import plots
+        except ImportError as e:  # matplotlib missing
+            print(f"routerd simulate: --plot needs matplotlib ({e})", file=sys.stderr)
+            return 2
+        from .run import load_inputs
+
+        _, topo, _ = load_inputs(spec)
+        written += plots.draw_all(result, topo, args.out)
+    s = result["summary"]
+    print(f"{s['policy']} on {s['topology']}: offered {s['offered']}, delivered {s['delivered']}, "
+          f"dropped {s['dropped']}, ttl expired {s['ttl_expired']}; mean delivery "
+          f"{_ms(s['mean_delivery_s'])} (p99 {_ms(s['p99_delivery_s'])}), {s['events']} events "
+          f"in {s['wall_s']:.2f} s")
+    for p in written:
+        print(f"wrote {p}")
+    return 0
+
+
+def _ms(v: float) -> str:
+    return "n/a" if not math.isfinite(v) else f"{v * 1e3:.3f} ms"

@@ -1,0 +1,415 @@
+"""The discrete-event loop: packets, output queues, links, virtual time.
+
+Owns: the event heap, per-packet state, per-link FIFO drop-tail queues, TTL, link
+events, delivery/drop accounting, the time series and the Little's-law bookkeeping.
+Must not import: zmq, prometheus, matplotlib, YAML, the command line.  It knows nothing
+of how a policy routes (it asks the policy) or where traffic comes from (it pulls from a
+traffic source).
+
+Theory of operation
+-------------------
+Model.  Each directed link k is a FIFO output queue at its tail node with room for
+``buffer_pkts[k]`` packets, *the one being transmitted included* (so a lone link is an
+M/M/1/K queue with K = buffer_pkts), a transmitter of ``capacity_bps[k]`` and a
+propagation delay ``delay_s[k]``.  A packet arriving at a full queue is dropped (drop
+tail).  Transmission takes ``bits / capacity``; the packet then propagates and arrives at
+the head node, which forwards it by asking the policy.
+
+One event per hop.  Because a queue is FIFO with known service times, a packet's
+departure time is fixed when it enters the queue: ``dep = max(now, free_at[k]) + tx``.
+So entering the queue schedules the arrival at the far end (``dep + delay``) at once and
+no "transmission done" event is needed.  The queue's occupancy at time t is the number of
+packets with ``dep > t`` (a deque of departure times, trimmed from the left).  A capacity
+change applies to packets that enter the queue after it.  A link going down drops every
+packet still in its queue (``dep > t``, the one in transmission included) and refuses new
+ones; packets already on the wire arrive.
+
+Events are plain ``(time, code)`` tuples: ``code >= 0`` is the arrival of packet ``code``
+at ``p_node[code]``; negative codes are the few control events (next injection, policy
+tick, series sample, warm-up mark, link event i).  A packet has at most one pending
+event, and a dropped packet's id is only reused after its stale event pops, so codes are
+unique in the heap and ties break deterministically.
+
+TTL.  A packet starts with ``ttl`` hops; each forwarding uses one; a packet at a node
+other than its destination with none left is counted in ``ttl_expired`` (a loop).
+
+Accounting.  ``offered``, ``delivered``, ``dropped`` and ``ttl_expired`` and every delivery
+statistic count packets *injected* at or after the warm-up; the time series counts every
+packet, by the interval it left the network in.  The number of packets in the
+network is integrated over time after the warm-up so Little's law L = lambda W can be
+checked on every run (Little, Operations Research 9, 1961).
+"""
+from __future__ import annotations
+
+import math
+import time
+from collections import deque
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import dataclass
+from heapq import heappop, heappush
+from typing import Any
+
+from routerd.topology import Topology
+
+from .policy import Policy
+
+# control event codes (packet ids are >= 0)
+_INJECT = -1
+_TICK = -2
+_SAMPLE = -3
+_WARMUP = -4
+_LINK0 = -5  # link event i has code _LINK0 - i
+
+#: A packet from a traffic source: (inject time s, source node, destination node, bits, flow id).
+PacketTuple = tuple[float, int, int, float, int]
+
+
+@dataclass(frozen=True, slots=True)
+class LinkEvent:
+    """A scheduled change to one or more directed links (indices into the topology)."""
+
+    t: float
+    links: tuple[int, ...]
+    action: str  # "down" | "up" | "capacity"
+    capacity_bps: float | None = None
+
+
+def run_core(
+    topo: Topology,
+    policy: Policy,
+    packets: Iterator[PacketTuple],
+    *,
+    duration_s: float,
+    warmup_s: float = 0.0,
+    ttl: int = 64,
+    series_interval_s: float = 1.0,
+    link_events: Sequence[LinkEvent] = (),
+    progress: Callable[[float, int], None] | None = None,
+    progress_every: int = 1 << 16,
+) -> dict[str, Any]:
+    """Simulate until ``duration_s`` of virtual time; return raw counts, samples and series.
+
+    ``policy`` must already be attached.  ``packets`` yields :data:`PacketTuple` in
+    non-decreasing time order.  ``progress(t, events)`` is called every
+    ``progress_every`` events.  The result is a dict of plain Python values.
+    """
+    n = topo.n
+    nl = topo.n_links
+    src_l = topo.src.tolist()
+    dst_l = topo.dst.tolist()
+    delay = topo.delay_s.tolist()
+    inv_cap = [1.0 / c for c in topo.capacity_bps.tolist()]
+    buf = topo.buffer_pkts.tolist()
+    link_of: list[dict[int, int]] = [{} for _ in range(n)]
+    for k in range(nl):
+        link_of[src_l[k]][dst_l[k]] = k
+    up = [True] * nl
+    free_at = [0.0] * nl
+    queues: list[deque[float]] = [deque() for _ in range(nl)]
+    busy = [0.0] * nl          # seconds transmitting, all time
+    carried = [0] * nl         # packets entered, all time
+
+    # policy hooks: a table entry >= 0 is the next hop, -1 no route, -2 "ask next_hop"
+    table = policy.table
+    if table is None:
+        table = [[-2] * n for _ in range(n)]
+    next_hop = policy.next_hop
+    on_hop = policy.on_hop if type(policy).on_hop is not Policy.on_hop else None
+    tick_iv = policy.tick_interval_s
+
+    # packet state, parallel lists indexed by packet id
+    p_node: list[int] = []     # node the pending event happens at
+    p_dst: list[int] = []      # destination, -1 = free id
+    p_t0: list[float] = []     # injection time
+    p_ttl: list[int] = []
+    p_flow: list[int] = []
+    p_bits: list[float] = []
+    p_hops: list[int] = []
+    p_prev: list[int] = []     # node that sent it on its current hop, -1 at injection
+    p_enq: list[float] = []    # time it entered p_prev's output queue
+    p_link: list[int] = []     # link of its current hop, -1 none
+    p_dep: list[float] = []    # departure time from that link's queue
+    p_dead: list[bool] = []    # dropped while its arrival event is still in the heap
+    free_ids: list[int] = []
+
+    heap: list[tuple[float, int]] = []
+    end = float(duration_s)
+    warm = float(warmup_s)
+    nxt = packets.__next__
+    try:
+        pending = nxt()
+    except StopIteration:
+        pending = None
+    if pending is not None:
+        heappush(heap, (pending[0], _INJECT))
+    if tick_iv is not None:
+        heappush(heap, (float(tick_iv), _TICK))
+    ivl = float(series_interval_s)
+    heappush(heap, (ivl, _SAMPLE))
+    if warm > 0:
+        heappush(heap, (warm, _WARMUP))
+    for i, ev in enumerate(sorted(link_events, key=lambda e: e.t)):
+        heappush(heap, (float(ev.t), _LINK0 - i))
+    events_sorted = sorted(link_events, key=lambda e: e.t)
+
+    # counters for packets injected at/after warm-up (the "measured" packets)
+    offered = delivered = ttl_expired = 0
+    drop_buf = drop_down = drop_noroute = 0
+    offered_all = delivered_all = dropped_all = ttl_all = 0
+    deliveries: list[float] = []
+    hops_sum = 0
+    sys_sum = 0.0       # time in system of measured packets that left (any way)
+    left = 0
+    # Little's law: number in network integrated over [warm, end]
+    in_net = 0
+    area = 0.0
+    last_t = 0.0
+    measuring = warm <= 0.0
+    # series: per bin
+    s_t: list[float] = []
+    s_deliv: list[int] = []
+    s_dsum: list[float] = []
+    s_drop: list[int] = []
+    s_ttl: list[int] = []
+    s_busy: list[list[float]] = []
+    s_in_net: list[int] = []
+    b_deliv = 0
+    b_dsum = 0.0
+    b_drop = 0
+    b_ttl = 0
+    last_busy = [0.0] * nl
+    busy_warm = [0.0] * nl
+    events = 0
+    t = 0.0
+    wall0 = time.perf_counter()
+
+    while heap:
+        t, c = heappop(heap)
+        if t > end:
+            t = end
+            break
+        events += 1
+        if progress is not None and not events % progress_every:
+            progress(t, events)
+        if c >= 0:
+            if p_dead[c]:
+                p_dead[c] = False
+                p_dst[c] = -1
+                free_ids.append(c)
+                continue
+            y = p_node[c]
+            d = p_dst[c]
+            if on_hop is not None:
+                on_hop(p_prev[c], y, d, t - p_enq[c], t)
+            if y == d:
+                t0 = p_t0[c]
+                if t0 >= warm:
+                    delivered += 1
+                    dt = t - t0
+                    deliveries.append(dt)
+                    hops_sum += p_hops[c]
+                    sys_sum += dt
+                    left += 1
+                b_deliv += 1
+                b_dsum += t - t0
+                delivered_all += 1
+                if measuring:
+                    area += in_net * (t - last_t)
+                    last_t = t
+                in_net -= 1
+                p_dst[c] = -1
+                free_ids.append(c)
+                continue
+            x = y
+        elif c == _INJECT:
+            t0, x, d, bits, flow = pending  # type: ignore[misc]
+            try:
+                pending = nxt()
+                heappush(heap, (pending[0], _INJECT))
+            except StopIteration:
+                pending = None
+            if free_ids:
+                c = free_ids.pop()
+                p_node[c] = x; p_dst[c] = d; p_t0[c] = t; p_ttl[c] = ttl
+                p_flow[c] = flow; p_bits[c] = bits; p_hops[c] = 0; p_prev[c] = -1
+                p_enq[c] = t; p_link[c] = -1
+            else:
+                c = len(p_dst)
+                p_node.append(x); p_dst.append(d); p_t0.append(t); p_ttl.append(ttl)
+                p_flow.append(flow); p_bits.append(bits); p_hops.append(0); p_prev.append(-1)
+                p_enq.append(t); p_link.append(-1); p_dep.append(0.0); p_dead.append(False)
+            if t >= warm:
+                offered += 1
+            offered_all += 1
+            if measuring:
+                area += in_net * (t - last_t)
+                last_t = t
+            in_net += 1
+            if x == d:  # a source never sends to itself; count it delivered in 0 s
+                raise ValueError(f"traffic source produced a packet from node {x} to itself")
+        elif c == _TICK:
+            policy.tick(t)
+            heappush(heap, (t + tick_iv, _TICK))  # type: ignore[operator]
+            continue
+        elif c == _SAMPLE:
+            s_t.append(t); s_deliv.append(b_deliv); s_dsum.append(b_dsum)
+            s_drop.append(b_drop); s_ttl.append(b_ttl); s_in_net.append(in_net)
+            s_busy.append([(busy[k] - last_busy[k]) / ivl for k in range(nl)])
+            last_busy = busy[:]
+            b_deliv = 0; b_dsum = 0.0; b_drop = 0; b_ttl = 0
+            heappush(heap, (t + ivl, _SAMPLE))
+            continue
+        elif c == _WARMUP:
+            measuring = True
+            last_t = t
+            area = 0.0
+            busy_warm = busy[:]
+            continue
+        else:
+            ev = events_sorted[_LINK0 - c]
+            for k in ev.links:
+                if ev.action == "capacity":
+                    inv_cap[k] = 1.0 / float(ev.capacity_bps)  # type: ignore[arg-type]
+                    continue
+                going_up = ev.action == "up"
+                if up[k] == going_up:
+                    continue
+                up[k] = going_up
+                if not going_up:
+                    # drop what is still queued on k (dep > t); packets on the wire arrive
+                    for pid in range(len(p_dst)):
+                        if p_link[pid] == k and p_dst[pid] >= 0 and not p_dead[pid] and p_dep[pid] > t:
+                            p_dead[pid] = True
+                            if p_t0[pid] >= warm:
+                                drop_down += 1
+                                sys_sum += t - p_t0[pid]
+                                left += 1
+                            b_drop += 1
+                            dropped_all += 1
+                            if measuring:
+                                area += in_net * (t - last_t)
+                                last_t = t
+                            in_net -= 1
+                    # the unsent part of the transmission time was never used
+                    if free_at[k] > t:
+                        busy[k] -= free_at[k] - t
+                        free_at[k] = t
+                    queues[k].clear()
+                policy.on_link(src_l[k], dst_l[k], going_up, t)
+            continue
+
+        # ---- forward packet c from node x (fresh injection or arrival in transit) ----
+        ttl_c = p_ttl[c]
+        d = p_dst[c]
+        if ttl_c <= 0:
+            reason = 3
+        else:
+            h = table[x][d]
+            if h < -1:
+                h = next_hop(x, d, p_flow[c], t)
+            if h < 0:
+                reason = 2
+            else:
+                k = link_of[x][h]
+                if up[k]:
+                    q = queues[k]
+                    while q and q[0] <= t:
+                        q.popleft()
+                    if len(q) < buf[k]:
+                        f = free_at[k]
+                        start = f if f > t else t
+                        dep = start + p_bits[c] * inv_cap[k]
+                        free_at[k] = dep
+                        q.append(dep)
+                        busy[k] += dep - start
+                        carried[k] += 1
+                        p_node[c] = h
+                        p_prev[c] = x
+                        p_enq[c] = t
+                        p_link[c] = k
+                        p_dep[c] = dep
+                        p_ttl[c] = ttl_c - 1
+                        p_hops[c] += 1
+                        heappush(heap, (dep + delay[k], c))
+                        continue
+                    reason = 0
+                else:
+                    reason = 1
+        # the packet leaves the network here: dropped (reason 0 buffer, 1 link down,
+        # 2 no route) or TTL expired (3)
+        t0 = p_t0[c]
+        if reason == 3:
+            b_ttl += 1
+        else:
+            b_drop += 1
+        if t0 >= warm:
+            if reason == 3:
+                ttl_expired += 1
+            else:
+                if reason == 0:
+                    drop_buf += 1
+                elif reason == 1:
+                    drop_down += 1
+                else:
+                    drop_noroute += 1
+            sys_sum += t - t0
+            left += 1
+        if reason == 3:
+            ttl_all += 1
+        else:
+            dropped_all += 1
+        if measuring:
+            area += in_net * (t - last_t)
+            last_t = t
+        in_net -= 1
+        p_dst[c] = -1
+        free_ids.append(c)
+
+    t_end = max(t, end) if not heap else end
+    if measuring:
+        area += in_net * (t_end - last_t)
+    window = max(t_end - warm, 0.0)
+    wall = time.perf_counter() - wall0
+    return {
+        "offered": offered,
+        "delivered": delivered,
+        "dropped": drop_buf + drop_down + drop_noroute,
+        "dropped_buffer": drop_buf,
+        "dropped_link_down": drop_down,
+        "dropped_no_route": drop_noroute,
+        "ttl_expired": ttl_expired,
+        "in_flight_end": in_net,
+        "offered_all": offered_all,
+        "delivered_all": delivered_all,
+        "dropped_all": dropped_all,
+        "ttl_expired_all": ttl_all,
+        "deliveries": deliveries,
+        "hops_sum": hops_sum,
+        "events": events,
+        "wall_s": wall,
+        "window_s": window,
+        "little_area": area,
+        "left": left,
+        "sys_sum": sys_sum,
+        "busy_s": busy,
+        "carried": carried,
+        "series": {
+            "t_s": s_t, "delivered": s_deliv, "delivery_sum_s": s_dsum, "dropped": s_drop,
+            "ttl_expired": s_ttl, "in_network": s_in_net, "link_util": s_busy,
+        },
+        "series_interval_s": ivl,
+        "end_s": t_end,
+        "busy_window_s": [busy[k] - busy_warm[k] for k in range(nl)],
+    }
+
+
+def percentile(sorted_vals: Sequence[float], q: float) -> float:
+    """The q-quantile (0..1) of sorted values by linear interpolation (NaN when empty)."""
+    m = len(sorted_vals)
+    if m == 0:
+        return math.nan
+    pos = q * (m - 1)
+    lo = int(math.floor(pos))
+    hi = min(lo + 1, m - 1)
+    w = pos - lo
+    return float(sorted_vals[lo] * (1 - w) + sorted_vals[hi] * w)

@@ -1,0 +1,263 @@
+"""Run one simulation from a plain spec and return plain results.
+
+Owns: turning a :class:`SimSpec` (or a dict of its fields) into a topology, config,
+scenario, traffic source and policy; running :func:`sim.core.run_core`; and reducing the
+raw counts to the summary (the keys of ``summary.json``) and the time series.
+:func:`run` is a pure function of its spec (the wall-clock time is the one exception,
+reported as ``wall_s``), takes and returns only picklable plain values, and so can be
+mapped over a process pool as it is.
+Must not import: zmq, prometheus, matplotlib (plots live in :mod:`sim.plots`).
+"""
+from __future__ import annotations
+
+import math
+import os
+import sys
+import time
+from collections.abc import Mapping, Sequence
+from dataclasses import asdict, dataclass, field, fields
+from typing import Any
+
+import numpy as np
+
+from routerd import config as _config
+from routerd import topology as _topology
+from routerd.errors import InputError, Problem
+
+from . import policies as _policies
+from . import scenario as _scenario
+from .core import percentile, run_core
+from .traffic import PoissonTraffic
+
+DEMO_TOPOLOGY = os.path.join(os.path.dirname(_topology.__file__), "data", "demo-lab.yaml")
+
+#: Student's t 0.975 quantile for 19 degrees of freedom (standard t tables), used for the
+#: 95% confidence interval from 20 batch means.
+T975_19 = 2.093
+BATCHES = 20
+
+
+@dataclass
+class SimSpec:
+    """Everything that determines a run.  Same spec → same summary (apart from wall_s).
+
+    ``topology``: a file path, ``topohub:GROUP/NAME``, a mapping in our YAML format, or
+    None (the config's ``topology.file``, else the built-in demo lab).  ``scenario``: a
+    file path, a parsed mapping, or None.  ``warmup_s`` None means a tenth of the
+    duration.  ``config``/``overrides``: a config file and ``KEY=VALUE`` strings.
+    """
+
+    policy: str = "shortest"
+    rate_pps: float = 100.0
+    duration_s: float = 10.0
+    seed: int = 1
+    topology: Any = None
+    packet_bytes: float = 1000.0
+    size_dist: str = "fixed"
+    warmup_s: float | None = None
+    scenario: Any = None
+    demands: bool = False
+    config: str | None = None
+    overrides: Sequence[str] = field(default_factory=tuple)
+    capacity_bps: float | None = None
+    buffer_pkts: int | None = None
+    series: bool = True
+    progress: bool = False
+
+    @classmethod
+    def of(cls, spec: SimSpec | Mapping[str, Any]) -> SimSpec:
+        if isinstance(spec, SimSpec):
+            return spec
+        known = {f.name for f in fields(cls)}
+        bad = sorted(set(spec) - known)
+        if bad:
+            raise InputError(Problem("spec", bad, f"are not simulation spec keys ({', '.join(sorted(known))})"))
+        return cls(**dict(spec))
+
+    def to_dict(self) -> dict[str, Any]:
+        d = asdict(self)
+        d["overrides"] = list(self.overrides)
+        return d
+
+
+def _check(spec: SimSpec) -> list[Problem]:
+    p: list[Problem] = []
+    if not (isinstance(spec.rate_pps, (int, float)) and math.isfinite(spec.rate_pps) and spec.rate_pps >= 0):
+        p.append(Problem("--rate", spec.rate_pps, "must be a finite number >= 0 (packets/s)"))
+    if not (isinstance(spec.duration_s, (int, float)) and math.isfinite(spec.duration_s) and spec.duration_s > 0):
+        p.append(Problem("--duration", spec.duration_s, "must be a finite number > 0 (seconds)"))
+    if spec.warmup_s is not None and not (0 <= spec.warmup_s < spec.duration_s):
+        p.append(Problem("--warmup", spec.warmup_s, f"must be >= 0 and below the duration ({spec.duration_s:g} s)"))
+    if not (spec.packet_bytes > 0 and math.isfinite(spec.packet_bytes)):
+        p.append(Problem("--packet-bytes", spec.packet_bytes, "must be > 0"))
+    if spec.size_dist not in ("fixed", "exp"):
+        p.append(Problem("--size-dist", spec.size_dist, "is not fixed or exp"))
+    if spec.policy not in _policies.NAMES:
+        p.append(Problem("--policy", spec.policy, f"is not a policy ({', '.join(_policies.NAMES)})"))
+    return p
+
+
+def load_inputs(spec: SimSpec) -> tuple[_config.Config, _topology.Topology, _scenario.Scenario]:
+    """Config, topology and scenario for a spec; InputError listing every problem."""
+    problems = _check(spec)
+    if problems:
+        raise InputError(problems)
+    cfg = _config.load(spec.config, spec.overrides)
+    cap = spec.capacity_bps if spec.capacity_bps is not None else cfg["topology.default_capacity_bps"]
+    bufp = spec.buffer_pkts if spec.buffer_pkts is not None else cfg["topology.default_buffer_pkts"]
+    defaults = _topology.LinkDefaults(cap, bufp)
+    t = spec.topology
+    if t is None:
+        t = cfg["topology.file"] or DEMO_TOPOLOGY
+    if isinstance(t, _topology.Topology):
+        topo = t
+    elif isinstance(t, Mapping):
+        topo = _topology.from_mapping(t, source="<spec>", defaults=defaults)
+    else:
+        topo = _topology.load(str(t), defaults)
+    sc = spec.scenario
+    if sc is None:
+        scen = _scenario.empty()
+    elif isinstance(sc, _scenario.Scenario):
+        scen = sc
+    elif isinstance(sc, Mapping):
+        scen = _scenario.from_mapping(sc, source="<spec>")
+    else:
+        scen = _scenario.load(str(sc))
+    if spec.demands and topo.demands is None:
+        raise InputError(Problem("--demands", topo.source or topo.name,
+                                 "this topology carries no demand matrix"))
+    return cfg, topo, scen
+
+
+def run(spec: SimSpec | Mapping[str, Any]) -> dict[str, Any]:
+    """Run one simulation.  Returns ``{"summary": {...}, "series": {...}, "links": [...]}``.
+
+    Raises :class:`routerd.errors.InputError` for bad inputs (before anything runs).
+    """
+    sp = SimSpec.of(spec)
+    cfg, topo, scen = load_inputs(sp)
+    warm = sp.duration_s / 10.0 if sp.warmup_s is None else float(sp.warmup_s)
+    ss = np.random.SeedSequence(int(sp.seed))
+    r_traffic, r_policy = (np.random.default_rng(s) for s in ss.spawn(2))
+    traffic = PoissonTraffic(
+        topo.n, sp.rate_pps, r_traffic, packet_bytes=sp.packet_bytes, size_dist=sp.size_dist,
+        pair_weights=topo.demands if sp.demands else None, scenario=scen,
+        duration_s=sp.duration_s, warmup_s=warm, flows_per_pair=cfg["sim.flows_per_pair"],
+    )
+    link_events = scen.link_events(topo)
+    policy = _policies.make(sp.policy)
+    policy.attach(topo, r_policy, cfg)
+    policy.offered(traffic.demand_pps(), traffic.mean_bits())
+    progress = _progress_printer(sp.duration_s) if sp.progress else None
+    raw = run_core(topo, policy, traffic.packets(), duration_s=sp.duration_s, warmup_s=warm,
+                   ttl=cfg["sim.ttl"], series_interval_s=cfg["sim.series_interval_s"],
+                   link_events=link_events, progress=progress)
+    if progress is not None:
+        progress(sp.duration_s, raw["events"], final=True)
+    return reduce(raw, sp, topo, policy.name, warm, policy.stats())
+
+
+def reduce(raw: dict[str, Any], sp: SimSpec, topo: _topology.Topology, policy: str,
+           warm: float, pstats: Mapping[str, float]) -> dict[str, Any]:
+    """Raw counts from :func:`run_core` → the summary, the series and per-link figures."""
+    dl = raw["deliveries"]
+    srt = sorted(dl)
+    m = len(dl)
+    mean = float(sum(dl) / m) if m else math.nan
+    # batch means (Law & Kelton, Simulation Modeling and Analysis, ch. 9): 20 batches of
+    # consecutive deliveries, a t-based 95% half-width
+    ci = math.nan
+    if m >= BATCHES * 10:
+        bs = m // BATCHES
+        means = [sum(dl[i * bs:(i + 1) * bs]) / bs for i in range(BATCHES)]
+        mu = sum(means) / BATCHES
+        var = sum((x - mu) ** 2 for x in means) / (BATCHES - 1)
+        ci = T975_19 * math.sqrt(var / BATCHES)
+    win = raw["window_s"]
+    util = [b / win if win > 0 else math.nan for b in raw["busy_window_s"]]
+    L = raw["little_area"] / win if win > 0 else math.nan
+    lam = raw["left"] / win if win > 0 else math.nan
+    W = raw["sys_sum"] / raw["left"] if raw["left"] else math.nan
+    summary: dict[str, Any] = {
+        "policy": policy,
+        "topology": topo.name,
+        "nodes": topo.n,
+        "links": topo.n_links,
+        "seed": int(sp.seed),
+        "rate_pps": float(sp.rate_pps),
+        "duration_s": float(sp.duration_s),
+        "warmup_s": warm,
+        "packet_bytes": float(sp.packet_bytes),
+        "size_dist": sp.size_dist,
+        "demands": bool(sp.demands),
+        "offered": raw["offered"],
+        "delivered": raw["delivered"],
+        "dropped": raw["dropped"],
+        "dropped_buffer": raw["dropped_buffer"],
+        "dropped_link_down": raw["dropped_link_down"],
+        "dropped_no_route": raw["dropped_no_route"],
+        "ttl_expired": raw["ttl_expired"],
+        "in_flight_at_end": raw["offered"] - raw["delivered"] - raw["dropped"] - raw["ttl_expired"],
+        "delivery_ratio": raw["delivered"] / raw["offered"] if raw["offered"] else math.nan,
+        "mean_delivery_s": mean,
+        "mean_delivery_ci95_s": ci,
+        "p50_delivery_s": percentile(srt, 0.50),
+        "p95_delivery_s": percentile(srt, 0.95),
+        "p99_delivery_s": percentile(srt, 0.99),
+        "max_delivery_s": float(srt[-1]) if srt else math.nan,
+        "mean_hops": raw["hops_sum"] / m if m else math.nan,
+        "throughput_pps": m / win if win > 0 else math.nan,
+        "link_util_max": max(util) if util else math.nan,
+        "link_util_mean": sum(util) / len(util) if util else math.nan,
+        "little_L": L,
+        "little_lambda_W": lam * W if raw["left"] else math.nan,
+        "events": raw["events"],
+        "wall_s": raw["wall_s"],
+    }
+    for k, v in pstats.items():
+        summary[f"policy_{k}"] = v
+    links = [
+        {"link": k, "from": topo.nodes[a], "to": topo.nodes[b], "capacity_bps": float(c),
+         "delay_s": float(dly), "utilisation": util[k], "packets": raw["carried"][k]}
+        for k, (a, b, c, dly) in enumerate(zip(topo.src.tolist(), topo.dst.tolist(),
+                                               topo.capacity_bps.tolist(), topo.delay_s.tolist()))
+    ]
+    series: dict[str, Any] = {}
+    if sp.series:
+        s = raw["series"]
+        series = {
+            "t_s": s["t_s"],
+            "delivered": s["delivered"],
+            "mean_delivery_s": [ds / c if c else math.nan for ds, c in zip(s["delivery_sum_s"], s["delivered"])],
+            "dropped": s["dropped"],
+            "ttl_expired": s["ttl_expired"],
+            "in_network": s["in_network"],
+            "link_util": s["link_util"],
+            "interval_s": raw["series_interval_s"],
+        }
+    return {"summary": summary, "series": series, "links": links}
+
+
+def _progress_printer(duration: float) -> Any:
+    t0 = time.perf_counter()
+    state = {"last": 0.0, "shown": False}
+
+    def show(t: float, events: int, final: bool = False) -> None:
+        now = time.perf_counter()
+        if final:
+            if state["shown"]:
+                print(f"\rsimulated {duration:g} s: {events} events in {now - t0:.1f} s" + " " * 10,
+                      file=sys.stderr, flush=True)
+            return
+        if now - t0 < 2.0 or now - state["last"] < 0.5:
+            return
+        state["last"] = now
+        state["shown"] = True
+        frac = min(t / duration, 1.0)
+        eta = (now - t0) * (1 - frac) / frac if frac > 0 else math.nan
+        bar = "#" * int(frac * 30)
+        print(f"\r[{bar:<30}] {frac * 100:5.1f}%  t={t:.2f}/{duration:g} s  {events} events  "
+              f"eta {eta:.0f} s", end="", file=sys.stderr, flush=True)
+
+    return show
