@@ -1,0 +1,893 @@
+"""``routerd serve``: the daemon shell — sockets, journal, snapshots, metrics, signals.
+
+Owns the event loop and nothing else: no learning logic (that is :mod:`routerd.engine`),
+no message shapes (:mod:`routerd.wire`), no file formats (:mod:`routerd.journal`), no
+metric names (:mod:`routerd.metrics`).  Must not import: the simulator.
+
+Theory of operation
+-------------------
+One thread runs one ``zmq.Poller`` over the work sockets (ingest ROUTER, optional PULL,
+control REP), the ingest socket's monitor (disconnections) and a stop pipe (an inproc
+PAIR the signal handlers write to).  The poll timeout is the time to the next deadline
+(debounced decision, periodic publication, snapshot), so there are no sleeps.  One loop
+iteration:
+
+1. drain up to ``service.max_drain`` frames from the ingest sockets; for each, decode
+   (:func:`wire.decode_ingest`), skip a duplicate (same reporter and batch number, kept
+   in a bounded per-reporter window), else apply its link rows and hop rows to the
+   engine and append them to the journal;
+2. group commit: one :meth:`Journal.flush_sync` (one fsync) for everything appended,
+   *then* send every acknowledgement — an ack always means "durably journaled";
+3. answer at most one control request (REP) — state-changing ones after step 2's commit;
+4. when tables are pending and ``service.debounce_s`` has passed since the last decision,
+   call :meth:`Engine.decide` (journaled as a ``tick`` so replay makes the same calls in
+   the same places) and publish the nodes whose table changed; every
+   ``service.publish_interval_s`` publish every node;
+5. every ``service.snapshot_interval_s`` write a snapshot and retire the journal
+   segments it covers.
+
+Start-up restores the newest readable snapshot, then replays the journal after it with
+:func:`journal.replay_into` — the same code path an offline replay uses — so the state
+after a restart equals the state before it.  The snapshot carries the engine settings in
+force when it was taken and the duplicate windows, so neither is lost.
+
+Shutdown (SIGTERM, SIGINT): stop taking frames, answer the ones in hand, decide, write
+the final snapshot, publish every table, close with a bounded linger, exit 0.  A watchdog
+thread ends the process with status 1 if that takes longer than
+``service.shutdown_timeout_s``.  SIGHUP re-reads the config file and applies the changed
+tunables (:meth:`Config.tunable_diff`, :meth:`Engine.reconfigure`, journaled as a
+``config`` record); a bad file is logged and the running config kept.
+"""
+from __future__ import annotations
+
+import argparse
+import gc
+import json
+import math
+import os
+import signal
+import sys
+import threading
+import time
+from collections import OrderedDict
+from collections.abc import Iterable, Mapping
+from dataclasses import asdict
+from importlib import resources
+from typing import Any
+
+import numpy as np
+
+from . import __version__
+from . import config as _config
+from . import journal as _journal
+from . import topology as _topology
+from . import wire
+from .cautions import CAUTIONS
+from .engine import Engine, EngineSettings
+from .errors import InputError
+from .journal import accepted_part as _accepted_part
+from .journal import apply_batch as _apply_batch
+from .journal import batch_body as _batch_body
+from .journal import engine_state as _engine_state
+
+#: Service-side row rejection reasons (added to :data:`wire.REASONS` for the metrics).
+SERVICE_REASONS = ("duplicate",)
+#: Frames up to this much above ``service.max_message_bytes`` are still read so they can
+#: be answered ``oversized``; beyond it libzmq's MAXMSGSIZE cuts the peer off unanswered
+#: (counted as a disconnect), so a hostile peer cannot make us buffer arbitrarily much.
+OVERSIZE_ANSWER_SLACK = 1 << 20
+#: Rejections remembered per deduplicated batch (a re-ack repeats at most this many).
+DEDUP_REJECTIONS = 256
+
+_FLAG_KEYS = {"ingest": "service.ingest", "pull": "service.pull", "publish": "service.publish",
+              "control": "service.control", "metrics": "service.metrics",
+              "state_dir": "service.state_dir"}
+
+
+# ---- command line ------------------------------------------------------------------------
+def configure(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--config", metavar="FILE", help="YAML config (sections topology, engine, "
+                   "service); every key: routerd validate --schema")
+    p.add_argument("--topology", metavar="FILE", help="topology file or topohub:GROUP/NAME "
+                   "(default: the config's topology.file, else the built-in demo lab)")
+    p.add_argument("--ingest", metavar="EP", help="ingest endpoint, ROUTER (default tcp://127.0.0.1:7301)")
+    p.add_argument("--pull", metavar="EP", help="fire-and-forget ingest endpoint, PULL (default: off)")
+    p.add_argument("--publish", metavar="EP", help="tables endpoint, PUB (default tcp://127.0.0.1:7302)")
+    p.add_argument("--control", metavar="EP", help="control endpoint, REP (default tcp://127.0.0.1:7303)")
+    p.add_argument("--metrics", metavar="HOST:PORT", help="Prometheus page address (default "
+                   "127.0.0.1:9307; port 0 picks a free one)")
+    p.add_argument("--state-dir", metavar="DIR", help="journal and snapshots (default ./routerd-state)")
+
+
+def load_config(args: argparse.Namespace) -> _config.Config:
+    """The config file (or defaults) with the command-line flags on top."""
+    cfg = _config.load(getattr(args, "config", None))
+    ov: dict[str, Any] = {}
+    for attr, key in _FLAG_KEYS.items():
+        v = getattr(args, attr, None)
+        if v is not None:
+            ov[key] = v
+    if getattr(args, "topology", None):
+        ov["topology.file"] = os.path.abspath(args.topology) if not args.topology.startswith(
+            "topohub:") else args.topology
+    elif cfg["topology.file"] and getattr(args, "config", None):
+        tf = cfg["topology.file"]
+        if not tf.startswith("topohub:") and not os.path.isabs(tf):
+            # a config's topology file is relative to the config file (as `validate` reads it)
+            ov["topology.file"] = os.path.normpath(os.path.join(os.path.dirname(
+                os.path.abspath(args.config)), tf))
+    return cfg.with_overrides(ov, where=f"{args.config or 'defaults'} + command line") if ov else cfg
+
+
+def load_topology(cfg: _config.Config) -> _topology.Topology:
+    d = _topology.LinkDefaults(cfg["topology.default_capacity_bps"], cfg["topology.default_buffer_pkts"])
+    spec = cfg["topology.file"]
+    if spec:
+        return _topology.load(spec, d)
+    ref = resources.files("routerd") / "data" / "demo-lab.yaml"
+    with resources.as_file(ref) as path:
+        return _topology.load(str(path), d)
+
+
+def run(args: argparse.Namespace) -> int:
+    try:
+        cfg = load_config(args)
+        topo = load_topology(cfg)
+    except InputError as e:
+        print(f"routerd serve: cannot start:\n{e}", file=sys.stderr)
+        return 2
+    svc = Service(cfg, topo, reload_args=args)
+    try:
+        svc.start()
+    except StartError as e:
+        print(f"routerd serve: cannot start: {e}", file=sys.stderr)
+        svc.close()
+        return 2
+    return svc.serve()
+
+
+class StartError(Exception):
+    """The service cannot start (an endpoint in use, a state dir for another topology...)."""
+
+
+# ---- logging -----------------------------------------------------------------------------
+class Log:
+    """Plain text or JSON lines on stderr; one line per event, fields as key=value."""
+
+    def __init__(self, fmt: str = "text", stream: Any = None):
+        self.fmt = fmt
+        self.stream = stream or sys.stderr
+
+    def _emit(self, level: str, msg: str, fields: Mapping[str, Any]) -> None:
+        ts = time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime()) + f".{int(time.time() * 1000) % 1000:03d}Z"
+        if self.fmt == "json":
+            line = json.dumps({"ts": ts, "level": level, "msg": msg, **fields}, default=str)
+        else:
+            extra = " ".join(f"{k}={v}" for k, v in fields.items())
+            line = f"{ts} {level:<5} {msg}" + (f" {extra}" if extra else "")
+        try:
+            print(line, file=self.stream, flush=True)
+        except (OSError, ValueError):  # a closed log pipe must not stop the service
+            pass
+
+    def info(self, msg: str, **f: Any) -> None:
+        self._emit("INFO", msg, f)
+
+    def warn(self, msg: str, **f: Any) -> None:
+        self._emit("WARN", msg, f)
+
+    def error(self, msg: str, **f: Any) -> None:
+        self._emit("ERROR", msg, f)
+
+
+# ---- duplicate detection -----------------------------------------------------------------
+class Dedup:
+    """Recent batch numbers per reporter, with the acknowledgement each got.
+
+    Bounded: ``per_reporter`` batches per reporter (oldest forgotten first) and
+    ``reporters`` reporters (least recently seen forgotten first); at most
+    :data:`DEDUP_REJECTIONS` rejections are kept per batch.
+    """
+
+    def __init__(self, per_reporter: int, reporters: int):
+        self.per_reporter = per_reporter
+        self.reporters = reporters
+        self._by: OrderedDict[str, OrderedDict[int, tuple[int, tuple[tuple[int, str], ...]]]] = OrderedDict()
+
+    def get(self, reporter: str, batch: int) -> tuple[int, tuple[tuple[int, str], ...]] | None:
+        w = self._by.get(reporter)
+        return None if w is None else w.get(batch)
+
+    def put(self, reporter: str, batch: int, accepted: int, rejected: Iterable[Any]) -> None:
+        w = self._by.get(reporter)
+        if w is None:
+            w = self._by[reporter] = OrderedDict()
+            while len(self._by) > self.reporters:
+                self._by.popitem(last=False)
+        else:
+            self._by.move_to_end(reporter)
+        rej: list[tuple[int, str]] = []
+        for r, s in rejected:
+            if len(rej) >= DEDUP_REJECTIONS:
+                break
+            rej.append((int(r), str(s)))
+        w[batch] = (int(accepted), tuple(rej))
+        while len(w) > self.per_reporter:
+            w.popitem(last=False)
+
+    def export(self) -> list[Any]:
+        return [[rep, [[b, a, [list(x) for x in rj]] for b, (a, rj) in w.items()]]
+                for rep, w in self._by.items()]
+
+    def restore(self, data: Iterable[Any]) -> None:
+        for rep, entries in data:
+            for b, a, rj in entries:
+                self.put(str(rep), int(b), int(a), [tuple(x) for x in rj])
+
+    def __len__(self) -> int:
+        return sum(len(w) for w in self._by.values())
+
+
+# ---- the service -------------------------------------------------------------------------
+class Service:
+    """One running daemon.  ``start()`` binds and restores, ``serve()`` loops until a
+    stop signal and returns the exit status; ``request_stop()`` works from any thread."""
+
+    def __init__(self, cfg: _config.Config, topo: _topology.Topology, *,
+                 reload_args: argparse.Namespace | None = None, out: Any = None):
+        from . import metrics as _metrics
+
+        self.cfg = cfg
+        self.topo = topo
+        self.reload_args = reload_args
+        self.out = out or sys.stdout
+        self.log = Log(cfg["service.log_format"])
+        self.counters = _metrics.Counters(row_reasons=wire.REASONS + SERVICE_REASONS,
+                                          frame_reasons=wire.FRAME_ERRORS)
+        self.lock = threading.Lock()          # engine + counters vs. the metrics thread
+        self.engine: Engine | None = None
+        self.dedup = Dedup(cfg["service.dedup_batches"], cfg["service.dedup_reporters"])
+        self.journal: Any = None
+        self.snapshots: Any = None
+        self.ctx: Any = None
+        self.sockets: dict[str, Any] = {}
+        self.endpoints: dict[str, str] = {}
+        self.metrics_server: Any = None
+        self.metrics_port: int | None = None
+        self.epoch = time.time_ns()           # rises on every start: subscribers see a restart
+        self.seq = [0] * topo.n
+        self.started = time.monotonic()
+        self.last_snapshot_at: float | None = None
+        self.last_snapshot_record: int | None = None
+        self.restored: dict[str, Any] = {}
+        self._pending_nodes: set[int] = set()
+        self._touched = False
+        self._last_decide = -math.inf
+        self._next_publish_all = 0.0
+        self._next_snapshot = 0.0
+        self._stop = False
+        self._reload = False
+        self._sig_tx: Any = None
+        self._sig_rx: Any = None
+        self._last_record = 0
+        self._unsynced = False
+        self._unsynced_since = 0.0
+        self._monitor: Any = None
+
+    # -- metrics source -------------------------------------------------------------------
+    def engine_statistics(self) -> Any:
+        with self.lock:
+            assert self.engine is not None
+            return self.engine.statistics()
+
+    def journal_bytes(self) -> int:
+        j = self.journal
+        return int(j.bytes_total) if j is not None else 0
+
+    def snapshot_age_s(self) -> float | None:
+        return None if self.last_snapshot_at is None else time.monotonic() - self.last_snapshot_at
+
+    def uptime_s(self) -> float:
+        return time.monotonic() - self.started
+
+    def info(self) -> Mapping[str, str]:
+        return {"version": __version__, "topology": self.topo.digest}
+
+    # -- start-up -------------------------------------------------------------------------
+    def start(self) -> None:
+        import zmq
+
+        cfg = self.cfg
+        state_dir = cfg["service.state_dir"]
+        try:
+            os.makedirs(state_dir, exist_ok=True)
+        except OSError as e:
+            raise StartError(f"state dir {state_dir}: {e.strerror}") from None
+        self._restore(state_dir)
+        self.ctx = zmq.Context()
+        self._bind_all(zmq)
+        self._start_metrics()
+        self._install_signals()
+        now = time.monotonic()
+        self._next_publish_all = now            # a fresh subscriber gets tables at once
+        self._next_snapshot = now + cfg["service.snapshot_interval_s"]
+        self._banner()
+        if cfg["service.gc_freeze"]:
+            # everything alive now (topology, engine arrays' owners, modules) lives as long
+            # as the process: keep the collector from walking it on every generation-2 pass
+            gc.collect()
+            gc.freeze()
+
+    def _restore(self, state_dir: str) -> None:
+        """Open the journal (recovery cuts a torn or corrupt tail), then the newest good
+        snapshot plus the journal after it — :func:`journal.restore`, the offline path."""
+        cfg = self.cfg
+        want = EngineSettings.from_config(cfg)
+        snaps = _journal.SnapshotStore(_journal.snapshot_dir(state_dir))
+        newest = max((no for no, _ in snaps.list()), default=0)
+        try:
+            self.journal = _journal.Journal(
+                _journal.journal_dir(state_dir), fsync=cfg["service.journal.fsync"],
+                fsync_interval_s=cfg["service.journal.fsync_interval_s"],
+                segment_bytes=cfg["service.journal.segment_bytes"], start_after=newest)
+        except OSError as e:
+            raise StartError(f"journal in {state_dir}: {e}") from None
+        for line in self.journal.recovery.lines()[1:]:
+            self.log.warn("journal recovery", detail=line)
+        try:
+            r = _journal.restore(state_dir, self.topo, want, on_record=self._remember_record)
+        except (ValueError, _journal.JournalError) as e:
+            raise StartError(f"state dir {state_dir}: {e} (another topology needs another "
+                             "--state-dir)") from None
+        for p in r.snapshot_problems:
+            self.log.warn("snapshot fallback", detail=p)
+        if r.read.stopped is not None:
+            c = r.read.stopped
+            self.log.warn("journal read stopped early", segment=c.segment, offset=c.offset,
+                          detail=c.detail)
+        if r.snapshot_record:
+            # the snapshot's windows first, then the tail's batches on top (on_record ran
+            # before we got here, so put the tail back after the restore)
+            tail = self.dedup
+            self.dedup = Dedup(cfg["service.dedup_batches"], cfg["service.dedup_reporters"])
+            self.dedup.restore(r.state.get("dedup", ()))
+            self.dedup.restore(tail.export())
+            self.restored["snapshot_record"] = r.snapshot_record
+            self.last_snapshot_record = r.snapshot_record
+        self.restored["replayed"] = r.replay.records
+        self.snapshots = snaps
+        self.engine = r.engine
+        self._last_record = self.journal.last_record
+        self._append("start", {"topology": self.topo.digest, "nodes": list(self.topo.nodes),
+                               "settings": asdict(r.engine.settings), "epoch": self.epoch})
+        if r.engine.settings != want:
+            self._reconfigure_engine(want)
+        self._commit()
+
+    def _bind_all(self, zmq: Any) -> None:
+        cfg = self.cfg
+        hwm = cfg["service.hwm_msgs"]
+        linger_ms = int(cfg["service.linger_s"] * 1000)
+        hb_ms = int(cfg["service.heartbeat_s"] * 1000)
+        maxmsg = cfg["service.max_message_bytes"] + OVERSIZE_ANSWER_SLACK
+
+        def mk(kind: int, name: str, ep: str, *, maxsize: int | None = maxmsg) -> Any:
+            s = self.ctx.socket(kind)
+            s.sndhwm = hwm
+            s.rcvhwm = hwm
+            s.linger = linger_ms
+            if maxsize is not None:
+                s.setsockopt(zmq.MAXMSGSIZE, maxsize)
+            if hb_ms > 0:
+                s.setsockopt(zmq.HEARTBEAT_IVL, hb_ms)
+                s.setsockopt(zmq.HEARTBEAT_TIMEOUT, 3 * hb_ms)
+                s.setsockopt(zmq.HEARTBEAT_TTL, 3 * hb_ms)
+            if kind == zmq.ROUTER:
+                # an ack for a peer that is gone (or whose queue is full) raises instead of
+                # vanishing, so it is counted
+                s.setsockopt(zmq.ROUTER_MANDATORY, 1)
+            try:
+                s.bind(ep)
+            except zmq.ZMQError as e:
+                s.close(0)
+                raise StartError(f"{name} endpoint {ep}: {e.strerror}") from None
+            self.sockets[name] = s
+            self.endpoints[name] = s.last_endpoint.decode()
+            return s
+
+        mk(zmq.ROUTER, "ingest", cfg["service.ingest"])
+        if cfg["service.pull"]:
+            mk(zmq.PULL, "pull", cfg["service.pull"])
+        mk(zmq.PUB, "publish", cfg["service.publish"], maxsize=None)
+        mk(zmq.REP, "control", cfg["service.control"])
+        self._monitor = self.sockets["ingest"].get_monitor_socket(zmq.EVENT_DISCONNECTED)
+        pipe = f"inproc://routerd-stop-{id(self)}"
+        self._sig_rx = self.ctx.socket(zmq.PAIR)
+        self._sig_rx.linger = 0
+        self._sig_rx.bind(pipe)
+        self._sig_tx = self.ctx.socket(zmq.PAIR)
+        self._sig_tx.linger = 0
+        self._sig_tx.sndhwm = 16
+        self._sig_tx.connect(pipe)
+
+    def _start_metrics(self) -> None:
+        from . import metrics as _metrics
+
+        addr = self.cfg["service.metrics"]
+        try:
+            self.metrics_server, self.metrics_port, _ = _metrics.serve(addr, self)
+        except (OSError, ValueError) as e:
+            raise StartError(f"metrics address {addr}: {e}") from None
+        host = _metrics.parse_address(addr)[0]
+        shown = f"[{host}]" if ":" in host else host
+        self.endpoints["metrics"] = f"http://{shown}:{self.metrics_port}/metrics"
+
+    def _install_signals(self) -> None:
+        if threading.current_thread() is not threading.main_thread():
+            return  # embedded in a test thread: stop with request_stop()
+
+        def on_signal(signum: int, _frame: Any) -> None:
+            self._signal(signum)
+
+        for s in (signal.SIGTERM, signal.SIGINT, signal.SIGHUP):
+            signal.signal(s, on_signal)
+
+    def _signal(self, signum: int) -> None:
+        # runs in the main thread between bytecodes, never inside a call on _sig_tx
+        import zmq
+
+        try:
+            self._sig_tx.send(bytes([signum]), zmq.NOBLOCK)
+        except zmq.ZMQError:
+            pass  # the pipe already holds unread signals: the loop will wake anyway
+
+    def request_stop(self) -> None:
+        """Ask the loop to stop (thread-safe: only sets a flag the loop reads each turn)."""
+        self._stop = True
+
+    def _banner(self) -> None:
+        t = self.topo
+        w = self.out
+        na = "- (off)"
+        lines = [
+            f"routerd {__version__}: serving topology {t.name!r} — {t.n} nodes, {t.n_links} "
+            f"directed links (topology id {t.digest})",
+            f"  ingest   {self.endpoints['ingest']}   ROUTER: batches, each acknowledged once journaled",
+            f"  pull     {self.endpoints.get('pull', na)}   PULL: the same batches, fire-and-forget",
+            f"  publish  {self.endpoints['publish']}   PUB: tables/<node>, on change and every "
+            f"{self.cfg['service.publish_interval_s']:g} s",
+            f"  control  {self.endpoints['control']}   REP: tables, estimates, health, snapshot, link, nodes",
+            f"  metrics  {self.endpoints['metrics']}",
+            f"  state    {os.path.abspath(self.cfg['service.state_dir'])}   (journal fsync: "
+            f"{self.cfg['service.journal.fsync']}; "
+            + (f"restored snapshot at record {self.restored['snapshot_record']}, "
+               if "snapshot_record" in self.restored else "no snapshot, ")
+            + f"{self.restored.get('replayed', 0)} journal records replayed)",
+            CAUTIONS,
+            f"routerd: ready (pid {os.getpid()}, epoch {self.epoch})",
+        ]
+        try:
+            print("\n".join(lines), file=w, flush=True)
+        except (OSError, ValueError):
+            pass
+        self.log.info("started", topology=t.name, nodes=t.n, links=t.n_links, epoch=self.epoch,
+                      **{k: v for k, v in self.endpoints.items()})
+
+    # -- journal records (bodies are journal.py's; the service only fills them) ---------
+    def _append(self, kind: str, body: Mapping[str, Any]) -> None:
+        # sync=False: the loop commits once per turn (group commit) before any ack
+        self._last_record = self.journal.append(kind, body, sync=False)
+        if not self._unsynced:
+            self._unsynced = True
+            self._unsynced_since = time.monotonic()
+
+    def _journal_link(self, a: int, b: int, up: bool, t: float) -> None:
+        self._append("link", {"from": a, "to": b, "up": up, "t": t})
+
+    def _journal_tick(self, t: float) -> None:
+        self._append("tick", {"t": t})
+
+    def _journal_config(self) -> None:
+        assert self.engine is not None
+        self._append("config", {"settings": asdict(self.engine.settings)})
+
+    def _remember_record(self, rec: Any) -> None:
+        """Rebuild the duplicate windows from replayed batch records."""
+        if rec.kind == "batch" and "ack" in rec.body:
+            b, ack = rec.body, rec.body["ack"]
+            self.dedup.put(b["reporter"], b["batch"], ack.get("accepted", 0), ack.get("rejected", ()))
+
+    def _commit(self) -> None:
+        """Make this turn's appends durable as the fsync policy promises (group commit):
+        ``batch`` — one fsync now; ``interval`` — once ``fsync_interval_s`` has passed since
+        the first unsynced append (the poll wakes for it); ``never`` — the OS decides."""
+        if not self._unsynced:
+            return
+        pol = self.journal.fsync
+        if pol == "batch":
+            self.journal.commit()
+            self.counters.fsyncs += 1
+        elif pol == "interval":
+            if not self.journal.maybe_sync():
+                return
+            self.counters.fsyncs += 1
+        self._unsynced = False
+        self.counters.group_commits += 1
+
+    # -- the loop -------------------------------------------------------------------------
+    def serve(self) -> int:
+        import zmq
+
+        poller = zmq.Poller()
+        ingest = self.sockets["ingest"]
+        pull = self.sockets.get("pull")
+        control = self.sockets["control"]
+        for s in (ingest, pull, control, self._monitor, self._sig_rx):
+            if s is not None:
+                poller.register(s, zmq.POLLIN)
+        try:
+            while not self._stop:
+                events = dict(poller.poll(self._timeout_ms()))
+                if self._sig_rx in events:
+                    self._read_signals(zmq)
+                if self._monitor in events:
+                    self._read_monitor(zmq)
+                if self._reload:
+                    self._reload = False
+                    self._do_reload()
+                acks: list[tuple[Any, list[Any]]] = []
+                reply: bytes | None = None
+                with self.lock:
+                    if ingest in events:
+                        self._drain(zmq, ingest, "router", acks)
+                    if pull is not None and pull in events:
+                        self._drain(zmq, pull, "pull", None)
+                    if control in events:
+                        reply = self._control_one(zmq, control)
+                # group commit: one fsync (policy "batch") covers every batch of this turn
+                self._commit()
+                for sock, parts in acks:
+                    self._send_ack(zmq, sock, parts)
+                if reply is not None:
+                    control.send(reply)
+                self._housekeeping()
+        except Exception as e:  # a bug of ours: say so loudly, keep the journal consistent
+            import traceback
+
+            self.log.error("internal error; stopping without a final snapshot (the journal "
+                           "holds every acknowledged batch)", error=f"{type(e).__name__}: {e}",
+                           traceback=traceback.format_exc().replace("\n", " | "))
+            self.close()
+            return 1
+        return self._shutdown()
+
+    def _timeout_ms(self) -> int:
+        now = time.monotonic()
+        t = min(self._next_publish_all, self._next_snapshot)
+        if self._touched:
+            t = min(t, self._last_decide + self.cfg["service.debounce_s"])
+        if self._unsynced:
+            t = min(t, self._unsynced_since + self.cfg["service.journal.fsync_interval_s"])
+        return max(0, math.ceil((t - now) * 1000))
+
+    def _read_signals(self, zmq: Any) -> None:
+        while True:
+            try:
+                b = self._sig_rx.recv(zmq.NOBLOCK)
+            except zmq.Again:
+                return
+            for signum in b:
+                if signum == signal.SIGHUP:
+                    self._reload = True
+                else:
+                    self.log.info("stopping", signal=signal.Signals(signum).name)
+                    self._stop = True
+
+    def _read_monitor(self, zmq: Any) -> None:
+        from zmq.utils.monitor import recv_monitor_message
+
+        while True:
+            try:
+                ev = recv_monitor_message(self._monitor, zmq.NOBLOCK)
+            except zmq.Again:
+                return
+            if ev.get("event") == zmq.EVENT_DISCONNECTED:
+                self.counters.ingest_disconnects += 1
+
+    def _drain(self, zmq: Any, sock: Any, name: str, acks: list[Any] | None) -> None:
+        routed = acks is not None
+        for _ in range(self.cfg["service.max_drain"]):
+            try:
+                parts = sock.recv_multipart(zmq.NOBLOCK)
+            except zmq.Again:
+                return
+            self.counters.batches_by_socket[name] += 1
+            env: list[bytes] = []
+            body = parts
+            if routed:
+                env, body = parts[:1], parts[1:]
+            if body and body[0] == b"" and len(body) > 1:
+                env, body = env + [b""], body[1:]
+            if len(body) != 1:
+                self.counters.refuse("extra_frames")
+                out = wire.encode_error(f"extra_frames: expected one payload frame (after an "
+                                        f"optional empty delimiter), got {len(body)}")
+            else:
+                out = self._ingest_one(body[0])
+            if routed:
+                acks.append((sock, env + [out]))
+
+    def _ingest_one(self, payload: bytes) -> bytes:
+        eng = self.engine
+        assert eng is not None
+        cfg = self.cfg
+        c = self.counters
+        ing = wire.decode_ingest(payload, self.topo, max_rows=cfg["service.max_rows"],
+                                 max_bytes=cfg["service.max_message_bytes"])
+        if isinstance(ing, wire.WireError):
+            c.refuse(ing.code)
+            return wire.encode_error(ing)
+        seen = self.dedup.get(ing.reporter, ing.batch)
+        if seen is not None:
+            c.batches["duplicate"] += 1
+            c.reject("duplicate", ing.rows_total)
+            return wire.encode_ack(ing.batch, seen[0], seen[1])
+        now = time.time()
+        t0 = time.perf_counter()
+        # hops first, then links: journal.apply_batch, the one order replay uses too
+        res, changed = _apply_batch(eng, ing.hops, ing.links, now)
+        dt = time.perf_counter() - t0
+        rejected = ing.rejections(res.rejected)
+        accepted = res.accepted + len(ing.links)
+        self._append("batch", _batch_body(ing.reporter, ing.batch, now,
+                                          _accepted_part(ing.hops, res.rejected), ing.links,
+                                          {"accepted": accepted, "rejected": rejected}))
+        c.batches["accepted"] += 1
+        c.observations_accepted += res.accepted
+        c.link_reports_accepted += len(ing.links)
+        for _, reason in rejected:
+            c.reject(reason)
+        if res.accepted:
+            c.td_error.observe_many(np.abs(res.td_errors))
+        c.update_duration.observe(dt)
+        if res.accepted or any(changed):
+            self._touched = True
+        self.dedup.put(ing.reporter, ing.batch, accepted, rejected)
+        return wire.encode_ack(ing.batch, accepted, rejected)
+
+    def _send_ack(self, zmq: Any, sock: Any, parts: list[Any]) -> None:
+        try:
+            sock.send_multipart(parts, zmq.NOBLOCK)
+        except zmq.ZMQError:  # EHOSTUNREACH (peer gone) or EAGAIN (its queue is full)
+            self.counters.acks_undeliverable += 1
+
+    # -- control --------------------------------------------------------------------------
+    def _control_one(self, zmq: Any, sock: Any) -> bytes | None:
+        try:
+            parts = sock.recv_multipart(zmq.NOBLOCK)
+        except zmq.Again:
+            return None
+        if len(parts) != 1:
+            self.counters.control_request("other", False)
+            return wire.encode_error(f"extra_frames: a control request is one frame, got {len(parts)}")
+        req = wire.decode_control(parts[0], self.topo)
+        if isinstance(req, wire.WireError):
+            self.counters.control_request("other", False)
+            return wire.encode_error(req.reason)
+        op = req["op"]
+        try:
+            out = self._control(op, req)
+        except StartError as e:  # an operation that failed for a reason we can state
+            self.counters.control_request(op, False)
+            return wire.encode_error(f"bad_request: {e}")
+        self.counters.control_request(op, True)
+        return wire.encode_reply(out)
+
+    def _control(self, op: str, req: Mapping[str, Any]) -> dict[str, Any]:
+        eng = self.engine
+        assert eng is not None
+        t = self.topo
+        if op == "tables":
+            return {"tables": wire.tables_by_name(eng)}
+        if op == "estimates":
+            return {"estimates": wire.estimates_by_name(eng, t.index[req["node"]])}
+        if op == "nodes":
+            out = wire.nodes_reply(t)
+            out.pop("v", None)
+            return out
+        if op == "health":
+            return self.health()
+        if op == "snapshot":
+            rec = self._snapshot("request")
+            return {"snapshot": {"record": rec}}
+        if op == "link":
+            a, b = t.index[req["from"]], t.index[req["to"]]
+            up = req["state"] == "up"
+            now = time.time()
+            changed = eng.set_link(a, b, up, now)
+            if changed:
+                self._journal_link(a, b, up, now)
+                self._touched = True
+            self.counters.link_reports_accepted += 1
+            self.log.info("link override", link=f"{req['from']}->{req['to']}", state=req["state"],
+                          changed=changed)
+            return {"link": {"from": req["from"], "to": req["to"], "state": req["state"],
+                             "changed": changed}}
+        raise StartError(f"op {op!r} is not served")  # wire.decode_control admits only known ops
+
+    def health(self) -> dict[str, Any]:
+        c = self.counters
+        st = self.engine.statistics() if self.engine is not None else None
+        return {
+            "status": "stopping" if self._stop else "ok",
+            "uptime_s": self.uptime_s(),
+            "epoch": self.epoch,
+            "version": __version__,
+            "topology": {"name": self.topo.name, "id": self.topo.digest, "nodes": self.topo.n,
+                         "links": self.topo.n_links},
+            "counts": {
+                "batches": dict(c.batches),
+                "observations_accepted": c.observations_accepted,
+                "observations_rejected": {k: v for k, v in c.observations_rejected.items() if v},
+                "frames_refused": {k: v for k, v in c.refused.items() if v},
+                "link_reports": c.link_reports_accepted,
+                "publications": dict(c.publications),
+                "engine_updates": st.updates if st else 0,
+                "route_changes": st.route_changes if st else 0,
+                "loops_prevented": st.loops_prevented if st else 0,
+                "links_down": st.links_down if st else 0,
+                "acks_undeliverable": c.acks_undeliverable,
+                "dedup_entries": len(self.dedup),
+            },
+            "journal": {"bytes": self.journal_bytes(), "last_record": self._last_record,
+                        "fsync": self.cfg["service.journal.fsync"]},
+            "last_snapshot": None if self.last_snapshot_at is None else {
+                "record": self.last_snapshot_record, "age_s": self.snapshot_age_s()},
+            "restored": dict(self.restored),
+        }
+
+    # -- decisions, tables, snapshots ----------------------------------------------------
+    def _housekeeping(self) -> None:
+        now = time.monotonic()
+        cfg = self.cfg
+        if self._touched and now - self._last_decide >= cfg["service.debounce_s"]:
+            self._decide_and_publish(now)
+        if now >= self._next_publish_all:
+            if self._touched:
+                self._decide_and_publish(now)
+            self._publish(range(self.topo.n), "interval")
+            self._next_publish_all = now + cfg["service.publish_interval_s"]
+        if now >= self._next_snapshot:
+            if self._last_record != self.last_snapshot_record:
+                self._snapshot("interval")
+            self._next_snapshot = now + cfg["service.snapshot_interval_s"]
+
+    def _decide_and_publish(self, now_mono: float) -> None:
+        eng = self.engine
+        assert eng is not None
+        with self.lock:
+            t = time.time()
+            d = eng.decide(t)
+            self._journal_tick(t)
+        self._touched = False
+        self._last_decide = now_mono
+        if d.changed_nodes:
+            self._publish(sorted(d.changed_nodes), "change")
+
+    def _publish(self, nodes: Iterable[int], cause: str) -> None:
+        import zmq
+
+        eng = self.engine
+        assert eng is not None
+        pub = self.sockets["publish"]
+        names = self.topo.nodes
+        n = 0
+        for x in nodes:
+            self.seq[x] += 1
+            frames = wire.table_message(names[x], self.seq[x], self.epoch, wire.routes_by_name(eng, x))
+            try:
+                pub.send_multipart(frames, zmq.NOBLOCK)
+            except zmq.Again:  # PUB drops rather than blocks; subscribers see the seq gap
+                pass
+            n += 1
+        self.counters.publications[cause] += n
+
+    def _snapshot(self, cause: str) -> int:
+        eng = self.engine
+        assert eng is not None
+        with self.lock:
+            self._commit()
+            state = _engine_state(eng, dedup=self.dedup.export())
+            rec = self._last_record
+        self.snapshots.write(state, rec)
+        # retire only what every kept snapshot covers: a corrupt newest one has a fallback
+        self.journal.retire_before(self.snapshots.retire_point())
+        self.last_snapshot_at = time.monotonic()
+        self.last_snapshot_record = rec
+        self.counters.snapshots[cause] += 1
+        self.log.info("snapshot", cause=cause, record=rec, journal_bytes=self.journal_bytes())
+        return rec
+
+    # -- reload ---------------------------------------------------------------------------
+    def _reconfigure_engine(self, settings: EngineSettings) -> None:
+        assert self.engine is not None
+        with self.lock:
+            self.engine.reconfigure(settings)
+            self._journal_config()
+            self._touched = True
+
+    def _do_reload(self) -> None:
+        args = self.reload_args
+        src = getattr(args, "config", None) if args is not None else None
+        try:
+            if args is None:
+                raise InputError("the service was started without a command line to re-read")
+            new = load_config(args)
+            tun, restart = self.cfg.tunable_diff(new)
+            merged = self.cfg.with_overrides(tun, where=f"{src or 'defaults'} (reload)")
+            settings = EngineSettings.from_config(merged)
+        except (InputError, ValueError) as e:
+            self.counters.reloads["rejected"] += 1
+            self.log.error("reload rejected; keeping the running config", file=src,
+                           reason=str(e).replace("\n", "; "))
+            return
+        self.cfg = merged
+        assert self.engine is not None
+        if settings != self.engine.settings:
+            self._reconfigure_engine(settings)
+            self._commit()
+        self.counters.reloads["applied"] += 1
+        self.log.info("reloaded", file=src, changed=",".join(sorted(tun)) or "-",
+                      needs_restart=",".join(restart) or "-")
+
+    # -- shutdown -------------------------------------------------------------------------
+    def _shutdown(self) -> int:
+        limit = self.cfg["service.shutdown_timeout_s"]
+        dog = threading.Timer(limit, _overdue, args=(limit,))
+        dog.daemon = True
+        dog.start()
+        try:
+            if self._touched:
+                self._decide_and_publish(time.monotonic())
+            self._snapshot("shutdown")
+            self._publish(range(self.topo.n), "final")
+        finally:
+            self.close()
+            dog.cancel()
+        self.log.info("stopped", record=self._last_record)
+        return 0
+
+    def close(self) -> None:
+        """Release everything (idempotent); queued replies get ``service.linger_s``."""
+        if self.metrics_server is not None:
+            self.metrics_server.shutdown()
+            self.metrics_server.server_close()
+            self.metrics_server = None
+        if getattr(self, "_monitor", None) is not None:
+            try:
+                self.sockets["ingest"].disable_monitor()
+            except Exception:
+                pass
+            self._monitor.close(0)
+            self._monitor = None
+        for s in self.sockets.values():
+            s.close()
+        self.sockets = {}
+        for s in (self._sig_tx, self._sig_rx):
+            if s is not None:
+                s.close(0)
+        self._sig_tx = self._sig_rx = None
+        if self.ctx is not None:
+            self.ctx.term()
+            self.ctx = None
+        if self.journal is not None:
+            self._commit()
+            self.journal.close()
+            self.journal = None
+
+
+def _overdue(limit: float) -> None:
+    print(f"routerd serve: shutdown took longer than {limit:g} s; exiting now", file=sys.stderr, flush=True)
+    os._exit(1)
+
+
