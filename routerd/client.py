@@ -1,0 +1,482 @@
+"""Client side of wire protocol v1: a batching reporter, a table subscriber, control calls.
+
+Owns the reporter's delivery rules (batch numbers, acknowledgements, retries, memory bound),
+the subscriber's gap detection, and the one-shot control request.  Every message shape
+comes from :mod:`routerd.wire`; nothing is encoded here by hand.
+
+Must not import: the engine, the journal, the service, prometheus.
+
+Delivery (theory of operation).  A :class:`Reporter` numbers its batches (by default from
+the wall clock in microseconds, so a restarted reporter with the same name never reuses a
+number the service may still remember), sends each over a DEALER socket as soon as it is
+full, and keeps it until the service acknowledges it.  A batch without an acknowledgement
+after ``timeout_s`` is sent again with the *same* number (the service applies a batch
+once and acknowledges repeats again); after ``retries`` resends :class:`DeliveryError` is
+raised and the batch stays pending (the next :meth:`Reporter.flush` tries again).  Memory is
+bounded: at most ``max_pending`` unacknowledged batches of at most ``batch_rows`` rows; when
+full, adding rows **blocks** until an acknowledgement frees a place, and raises
+:class:`DeliveryError` if none comes within the retry budget.  LINGER is 0 on every socket:
+delivery is certain once acknowledged, never because something was queued at exit.
+"""
+from __future__ import annotations
+
+import time
+from collections import Counter, deque
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import zmq
+
+from . import wire
+
+
+class DeliveryError(Exception):
+    """Batches were not acknowledged within the retry budget (the service is unreachable
+    or too slow).  ``batches`` lists their numbers; they stay pending."""
+
+    def __init__(self, msg: str, batches: Sequence[int] = ()):
+        super().__init__(msg)
+        self.batches = list(batches)
+
+
+class ServiceError(Exception):
+    """The service refused a batch as a whole (an ``{"error": ...}`` reply)."""
+
+    def __init__(self, reason: str, batch: int | None = None):
+        super().__init__(f"service refused batch {batch}: {reason}" if batch is not None
+                         else f"service error: {reason}")
+        self.reason = reason
+        self.batch = batch
+
+
+class UnknownNode(ValueError):
+    """A node name that is not in the service's node list (columnar format only: the named
+    format sends it and the service counts it as ``unknown_node``)."""
+
+
+@dataclass(frozen=True, slots=True)
+class Ack:
+    batch: int
+    accepted: int
+    rejected: tuple[tuple[int, str], ...]
+
+
+def _socket(ctx: zmq.Context, kind: int) -> zmq.Socket:
+    s = ctx.socket(kind)
+    s.linger = 0                       # never block close/term on what is still queued
+    s.setsockopt(zmq.RECONNECT_IVL, 100)
+    s.setsockopt(zmq.RECONNECT_IVL_MAX, 2000)
+    s.setsockopt(zmq.MAXMSGSIZE, 64 * 1024 * 1024)
+    return s
+
+
+def control(endpoint: str, request: Mapping[str, Any], timeout_s: float = 2.0, *,
+            context: zmq.Context | None = None) -> dict[str, Any]:
+    """One control request → its reply map (which may hold ``"error"``).  A fresh REQ
+    socket with LINGER 0 each time, so a dead service costs ``timeout_s`` and never hangs.
+    Raises TimeoutError when no reply arrives in time, wire.BadReply on a malformed one."""
+    ctx = context or zmq.Context.instance()
+    s = _socket(ctx, zmq.REQ)
+    try:
+        s.connect(endpoint)
+        try:
+            s.send(wire.encode_request(request), flags=zmq.NOBLOCK)
+        except zmq.Again:
+            if not s.poll(int(timeout_s * 1000), zmq.POLLOUT):
+                raise TimeoutError(f"could not send op {request.get('op')!r} to {endpoint} "
+                                   f"within {timeout_s} s") from None
+            s.send(wire.encode_request(request))
+        if not s.poll(int(timeout_s * 1000), zmq.POLLIN):
+            raise TimeoutError(f"no reply from {endpoint} to op {request.get('op')!r} "
+                               f"within {timeout_s} s")
+        return wire.decode_reply(s.recv())
+    finally:
+        s.close()
+
+
+@dataclass
+class _Pending:
+    frame: bytes
+    rows: int
+    sent_at: float | None
+    attempts: int
+    cols: tuple[np.ndarray, ...] | None      # columnar: (src, via, dst, lat, est) indices
+    links: list[list[Any]]
+    nodes: tuple[str, ...] | None
+
+
+class Reporter:
+    """Batches hop (and link) rows by node name and delivers them with acknowledgements.
+
+    ``endpoint``: the service's ingest endpoint.  Columnar (default) needs the node list:
+    ``topology_nodes`` (a Topology, or names with ``topology_id``, else the id is computed
+    from the names) or ``control`` (the control endpoint, asked ``{"op": "nodes"}``).
+    """
+
+    def __init__(self, endpoint: str, reporter_name: str, *,
+                 topology_nodes: Any = None, topology_id: str | None = None,
+                 control: str | None = None, columnar: bool = True, batch_rows: int = 1024,
+                 max_pending: int = 16, timeout_s: float = 2.0, retries: int = 5,
+                 first_batch: int | None = None, context: zmq.Context | None = None,
+                 on_ack: Callable[[Ack], None] | None = None):
+        if not reporter_name or len(reporter_name) > wire.MAX_REPORTER_LEN:
+            raise ValueError(f"reporter name {reporter_name!r} must be 1..{wire.MAX_REPORTER_LEN} characters")
+        if batch_rows < 1 or max_pending < 1 or timeout_s <= 0 or retries < 0:
+            raise ValueError("batch_rows and max_pending must be >= 1, timeout_s > 0, retries >= 0")
+        self.endpoint = endpoint
+        self.name = reporter_name
+        self.columnar = columnar
+        self.batch_rows = batch_rows
+        self.max_pending = max_pending
+        self.timeout_s = float(timeout_s)
+        self.retries = retries
+        self.control_endpoint = control
+        self.on_ack = on_ack
+        self._ctx = context or zmq.Context.instance()
+        self.nodes: tuple[str, ...] | None = None
+        self.topology_id: str | None = None
+        self._index: dict[str, int] = {}
+        if columnar:
+            self._set_nodes(topology_nodes, topology_id)
+        self._next_batch = time.time_ns() // 1000 if first_batch is None else int(first_batch)
+        self._pending: dict[int, _Pending] = {}
+        self._order: deque[int] = deque()
+        self._clear_buffer()
+        # statistics
+        self.batches_sent = 0
+        self.resends = 0
+        self.accepted = 0
+        self.rejected: Counter[str] = Counter()
+        self.late_acks = 0
+        self.last_ack: Ack | None = None
+        self._sock = _socket(self._ctx, zmq.DEALER)
+        self._sock.sndhwm = max(2 * max_pending, 16)
+        self._sock.rcvhwm = max(2 * max_pending, 16)
+        self._sock.connect(endpoint)
+
+    # ---- node list --------------------------------------------------------------------
+    def _set_nodes(self, nodes: Any, tid: str | None) -> None:
+        if nodes is None:
+            if self.control_endpoint is None:
+                raise ValueError("the columnar format needs the service's node list: pass "
+                                 "control=<control endpoint> or topology_nodes=..., "
+                                 "or use columnar=False")
+            rep = control(self.control_endpoint, {"op": "nodes"}, self.timeout_s, context=self._ctx)
+            if "error" in rep or not isinstance(rep.get("nodes"), list):
+                raise ServiceError(f"op 'nodes' answered {rep!r}")
+            nodes, tid = rep["nodes"], rep["topology"]
+        elif hasattr(nodes, "nodes") and hasattr(nodes, "digest"):
+            nodes, tid = nodes.nodes, nodes.digest
+        self.nodes = tuple(nodes)
+        self.topology_id = tid if tid is not None else wire.topology_id(self.nodes)
+        self._index = {n: i for i, n in enumerate(self.nodes)}
+
+    def _ix(self, name: str) -> int:
+        try:
+            return self._index[name]
+        except KeyError:
+            raise UnknownNode(f"node {name!r} is not in the service's node list "
+                              f"(topology {self.topology_id})") from None
+
+    # ---- adding rows --------------------------------------------------------------------
+    def _clear_buffer(self) -> None:
+        self._s: list[Any] = []
+        self._v: list[Any] = []
+        self._d: list[Any] = []
+        self._lat: list[float] = []
+        self._est: list[float] = []
+        self._has_est = False
+        self._rows: list[list[Any]] = []
+        self._links: list[list[Any]] = []
+
+    def _buffered(self) -> int:
+        return len(self._lat) + len(self._rows) + len(self._links)
+
+    def add_hop(self, frm: str, via: str, dst: str, latency_s: float,
+                estimate_s: float | None = None) -> None:
+        """One hop: ``frm`` handed a packet for ``dst`` to ``via``; it took ``latency_s``."""
+        if self.columnar:
+            self._s.append(self._ix(frm)); self._v.append(self._ix(via)); self._d.append(self._ix(dst))
+            self._lat.append(latency_s)
+            if estimate_s is None:
+                self._est.append(np.nan)
+            else:
+                self._est.append(estimate_s)
+                self._has_est = True
+        else:
+            self._rows.append([frm, via, dst, latency_s] if estimate_s is None
+                              else [frm, via, dst, latency_s, estimate_s])
+        if self._buffered() >= self.batch_rows:
+            self._send_buffer()
+
+    def add_hops(self, frm: Sequence[str], via: Sequence[str], dst: Sequence[str],
+                 latency_s: Sequence[float], estimate_s: Sequence[float] | None = None) -> None:
+        """Many hops at once (columns of names and seconds)."""
+        est = [None] * len(frm) if estimate_s is None else estimate_s
+        for a, b, c, x, e in zip(frm, via, dst, latency_s, est):
+            self.add_hop(a, b, c, x, None if e is None or e != e else e)
+
+    def add_link(self, frm: str, to: str, state: str) -> None:
+        """A link event: ``state`` is "down" or "up"."""
+        if state not in wire.LINK_STATES:
+            raise ValueError(f"link state {state!r} is not 'down' or 'up'")
+        if self.columnar:
+            self._ix(frm), self._ix(to)
+        self._links.append([frm, to, state])
+        if self._buffered() >= self.batch_rows:
+            self._send_buffer()
+
+    # ---- sending --------------------------------------------------------------------------
+    def _send_buffer(self) -> None:
+        n = self._buffered()
+        if n == 0:
+            return
+        self._wait_for_room()
+        b = self._next_batch
+        self._next_batch += 1
+        if self.columnar:
+            assert self.topology_id is not None
+            cols = (np.array(self._s, dtype=np.int32), np.array(self._v, dtype=np.int32),
+                    np.array(self._d, dtype=np.int32), np.array(self._lat, dtype=np.float64),
+                    np.array(self._est, dtype=np.float64))
+            frame = wire.encode_ingest_cols(self.name, b, self.topology_id, *cols[:4],
+                                            estimate=cols[4] if self._has_est else None,
+                                            links=self._links)
+            p = _Pending(frame, n, None, 0, cols, self._links, self.nodes)
+        else:
+            frame = wire.encode_ingest_rows(self.name, b, self._rows, self._links)
+            p = _Pending(frame, n, None, 0, None, self._links, None)
+        self._clear_buffer()
+        self._pending[b] = p
+        self._order.append(b)
+        self._transmit(b, p)
+
+    def _transmit(self, b: int, p: _Pending) -> None:
+        try:
+            self._sock.send_multipart([b"", p.frame], flags=zmq.NOBLOCK, copy=False)
+        except zmq.Again:
+            return  # queue full or no peer yet: the pump retries it
+        if p.sent_at is not None:
+            self.resends += 1
+        else:
+            self.batches_sent += 1
+        p.sent_at = time.monotonic()
+        p.attempts += 1
+
+    def _wait_for_room(self) -> None:
+        if len(self._pending) < self.max_pending:
+            return
+        deadline = time.monotonic() + self.timeout_s * (self.retries + 1)
+        while len(self._pending) >= self.max_pending:
+            left = deadline - time.monotonic()
+            if left <= 0:
+                raise DeliveryError(
+                    f"{len(self._pending)} batches pending at {self.endpoint} (the limit is "
+                    f"{self.max_pending}) and none acknowledged within "
+                    f"{self.timeout_s * (self.retries + 1):g} s", list(self._pending))
+            self.pump(min(left, self.timeout_s / 4))
+
+    def pump(self, timeout_s: float = 0.0) -> int:
+        """Take acknowledgements for up to ``timeout_s`` and resend overdue batches.
+        Returns the number of replies handled."""
+        handled = 0
+        wait_ms = max(0, int(timeout_s * 1000))
+        while self._sock.poll(wait_ms, zmq.POLLIN):
+            frames = self._sock.recv_multipart()
+            self._reply(frames[-1])
+            handled += 1
+            wait_ms = 0
+        self._resend_overdue()
+        return handled
+
+    def _reply(self, data: bytes) -> None:
+        rep = wire.decode_reply(data)
+        b = rep.get("batch")
+        if "error" in rep:
+            reason = str(rep["error"])
+            p = self._pending.get(b) if isinstance(b, int) else None
+            if p is not None and reason.startswith("wrong_topology") and p.cols is not None:
+                self._reencode_named(b, p)
+                return
+            if p is not None:
+                self._drop(b)
+            raise ServiceError(reason, b if isinstance(b, int) else None)
+        if not isinstance(b, int) or b not in self._pending:
+            self.late_acks += 1
+            return
+        rej = tuple((int(i), str(r)) for i, r in rep.get("rejected", ()))
+        ack = Ack(b, int(rep.get("accepted", 0)), rej)
+        self._drop(b)
+        self.accepted += ack.accepted
+        self.rejected.update(r for _, r in rej)
+        self.last_ack = ack
+        if self.on_ack is not None:
+            self.on_ack(ack)
+
+    def _drop(self, b: int) -> None:
+        del self._pending[b]
+        try:
+            self._order.remove(b)
+        except ValueError:  # pragma: no cover - kept in step with _pending
+            pass
+
+    def _reencode_named(self, b: int, p: _Pending) -> None:
+        """The service's node list changed under us: resend this batch by name (always
+        meaningful; unknown names come back as unknown_node) and refetch the list."""
+        assert p.cols is not None and p.nodes is not None
+        names = np.array(p.nodes, dtype=object)
+        s, v, d, lat, est = p.cols
+        rows = [[a, y, c, float(x)] if e != e else [a, y, c, float(x), float(e)]
+                for a, y, c, x, e in zip(names[s], names[v], names[d], lat.tolist(), est.tolist())]
+        p.frame = wire.encode_ingest_rows(self.name, b, rows, p.links)
+        p.cols = None
+        p.sent_at = None
+        p.attempts = 0
+        if self.control_endpoint is not None:
+            self._set_nodes(None, None)
+        else:
+            self.columnar = False   # no way to learn the new list: named rows from now on
+        self._transmit(b, p)
+
+    def _resend_overdue(self) -> None:
+        now = time.monotonic()
+        failed = []
+        for b in list(self._order):
+            p = self._pending[b]
+            if p.sent_at is None:
+                self._transmit(b, p)
+            elif now - p.sent_at >= self.timeout_s:
+                if p.attempts > self.retries:
+                    failed.append(b)
+                    continue
+                self._transmit(b, p)
+        if failed:
+            for b in failed:
+                self._pending[b].attempts = 0   # a later flush() starts a fresh budget
+            raise DeliveryError(f"batches {failed[:5]}{'...' if len(failed) > 5 else ''} not "
+                                f"acknowledged by {self.endpoint} after {self.retries} resends",
+                                failed)
+
+    # ---- finishing ----------------------------------------------------------------------------
+    @property
+    def pending(self) -> int:
+        """Unacknowledged batches."""
+        return len(self._pending)
+
+    @property
+    def pending_rows(self) -> int:
+        return sum(p.rows for p in self._pending.values()) + self._buffered()
+
+    def flush(self) -> None:
+        """Send what is buffered and wait until every batch is acknowledged (or raise
+        :class:`DeliveryError` when the retry budget runs out)."""
+        self._send_buffer()
+        while self._pending:
+            self.pump(self.timeout_s / 4)
+
+    def close(self, flush: bool = True) -> None:
+        """Flush (unless ``flush=False``), then close the socket.  Unacknowledged batches
+        are lost only with ``flush=False`` or after a DeliveryError."""
+        try:
+            if flush and not self._sock.closed:
+                self.flush()
+        finally:
+            if not self._sock.closed:
+                self._sock.close()
+
+    def __enter__(self) -> Reporter:
+        return self
+
+    def __exit__(self, exc_type: Any, *exc: Any) -> None:
+        self.close(flush=exc_type is None)
+
+
+class TableSubscriber:
+    """Keeps the latest table of every node from the service's PUB endpoint.
+
+    Gap detection: within one ``epoch`` (one service run) ``seq`` rises by one per node per
+    publication; a jump of k counts k - 1 missed publications in ``gaps[node]``.  A new
+    epoch resets the count base (``restarts``); a ``seq`` that does not rise is counted in
+    ``stale``.
+    """
+
+    def __init__(self, endpoint: str, nodes: Sequence[str] | None = None, *,
+                 context: zmq.Context | None = None, max_drain: int = 100_000):
+        self._ctx = context or zmq.Context.instance()
+        self._sock = _socket(self._ctx, zmq.SUB)
+        self._sock.rcvhwm = 100_000
+        if nodes is None:
+            self._sock.setsockopt(zmq.SUBSCRIBE, wire.TABLE_TOPIC)
+        else:
+            for n in nodes:
+                self._sock.setsockopt(zmq.SUBSCRIBE, wire.TABLE_TOPIC + n.encode())
+        self._sock.connect(endpoint)
+        self.max_drain = max_drain
+        self.tables: dict[str, dict[str, list[list[Any]]]] = {}
+        self.seq: dict[str, int] = {}
+        self.epoch: dict[str, Any] = {}
+        self.gaps: Counter[str] = Counter()
+        self.stale: Counter[str] = Counter()
+        self.restarts = 0
+        self.received = 0
+        self.malformed = 0
+        self.last_error: str | None = None
+
+    def _take(self, frames: list[bytes]) -> None:
+        try:
+            msg = wire.decode_table(frames)
+        except wire.BadReply as e:
+            self.malformed += 1
+            self.last_error = str(e)
+            return
+        node, seq, ep = msg["node"], msg["seq"], msg.get("epoch")
+        self.received += 1
+        if node in self.seq and self.epoch.get(node) == ep:
+            prev = self.seq[node]
+            if seq <= prev:
+                self.stale[node] += 1
+                return
+            if seq > prev + 1:
+                self.gaps[node] += seq - prev - 1
+        elif node in self.seq:
+            self.restarts += 1
+        self.seq[node] = seq
+        self.epoch[node] = ep
+        self.tables[node] = msg["routes"]
+
+    def poll(self, timeout_s: float = 0.0) -> int:
+        """Wait up to ``timeout_s`` for publications, take every one available; returns
+        how many were taken."""
+        got = 0
+        wait_ms = max(0, int(timeout_s * 1000))
+        while got < self.max_drain and self._sock.poll(wait_ms, zmq.POLLIN):
+            self._take(self._sock.recv_multipart())
+            got += 1
+            wait_ms = 0
+        return got
+
+    def wait_for(self, predicate: Callable[[TableSubscriber], bool], timeout_s: float) -> bool:
+        """Poll until ``predicate(self)`` holds or ``timeout_s`` passes."""
+        deadline = time.monotonic() + timeout_s
+        while not predicate(self):
+            left = deadline - time.monotonic()
+            if left <= 0:
+                return False
+            self.poll(min(left, 0.1))
+        return True
+
+    @property
+    def gaps_total(self) -> int:
+        return sum(self.gaps.values())
+
+    def close(self) -> None:
+        if not self._sock.closed:
+            self._sock.close()
+
+    def __enter__(self) -> TableSubscriber:
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.close()
