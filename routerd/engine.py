@@ -289,73 +289,172 @@ class Engine:
         else:
             q = np.full((n, n, k), s.initial_value_s)
         q = np.where(self._present[:, None, :], q, np.inf)
-        return np.minimum(q, s.ceiling_s)
+        # C order: the update paths index flat views of Q
+        return np.ascontiguousarray(np.minimum(q, s.ceiling_s))
 
     def reconfigure(self, settings: EngineSettings) -> None:
         """Adopt new tunables (a reload), keeping all learned state."""
         self.settings = settings
         self._alphas = None
-        self.Q = np.where(self._present[:, None, :], np.minimum(self.Q, settings.ceiling_s), np.inf)
+        q = np.where(self._present[:, None, :], np.minimum(self.Q, settings.ceiling_s), np.inf)
+        # dead links hold exactly the (new) ceiling: the update reads mins without a live mask
+        q[np.broadcast_to((self._present & ~self.live)[:, None, :], q.shape)] = settings.ceiling_s
+        self.Q = np.ascontiguousarray(q)
         self._dirty[:] = True
 
     # ---- observations ---------------------------------------------------------------
     def check(self, b: HopBatch) -> np.ndarray:
         """Per-row reason code (index into REJECT_REASONS) or -1 when the row is acceptable."""
+        code, _ = self._check(b)
+        return np.full(len(b), _OK, dtype=np.int64) if code is None else code
+
+    def _check(self, b: HopBatch) -> tuple[np.ndarray | None, np.ndarray]:
+        """(codes or None when every row is acceptable, neighbour slot of each row).
+
+        One combined pass answers the common all-good case; only a batch with a bad row
+        pays for the per-reason codes, assigned lowest precedence first so the first rule
+        a row breaks (in REJECT_REASONS order) is the one reported.
+        """
         n = self.n
-        code = np.full(len(b), _OK, dtype=np.int64)
         s, v, d = b.src, b.via, b.dst
+        lat, est = b.latency, b.estimate
         inr = (s >= 0) & (s < n) & (v >= 0) & (v < n) & (d >= 0) & (d < n)
-        code[~inr] = _R["unknown_node"]
-        ss, vv = np.where(inr, s, 0), np.where(inr, v, 0)
+        if inr.all():
+            ss, vv = s, v
+        else:
+            ss, vv = np.where(inr, s, 0), np.where(inr, v, 0)
         slot = self._slot_of[ss, vv].astype(np.int64)
-        code[(code == _OK) & (slot < 0)] = _R["not_neighbour"]
-        code[(code == _OK) & (s == d)] = _R["at_destination"]
-        lat_ok = np.isfinite(b.latency) & (b.latency >= 0)
-        code[(code == _OK) & ~lat_ok] = _R["bad_latency"]
-        est = b.estimate
-        est_ok = np.isnan(est) | (np.isfinite(est) & (est >= 0))
-        code[(code == _OK) & ~est_ok] = _R["bad_estimate"]
-        ok = code == _OK
-        down = np.zeros(len(b), dtype=bool)
-        down[ok] = ~self.live[ss[ok], slot[ok]]
-        code[down] = _R["link_down"]
-        return code
+        nb = slot >= 0
+        live = self.live[ss, slot]                     # slot -1 reads garbage: masked by nb
+        lat_ok = (lat >= 0) & (lat < math.inf)         # False for NaN
+        est_ok = np.isnan(est) | ((est >= 0) & (est < math.inf))
+        good = inr & nb & (s != d) & lat_ok & est_ok & live
+        if good.all():
+            return None, slot
+        code = np.full(len(b), _OK, dtype=np.int64)
+        code[~live] = _R["link_down"]
+        code[~est_ok] = _R["bad_estimate"]
+        code[~lat_ok] = _R["bad_latency"]
+        code[s == d] = _R["at_destination"]
+        code[~nb] = _R["not_neighbour"]
+        code[~inr] = _R["unknown_node"]
+        return code, slot
 
     def observe(self, batch: HopBatch, now: float | None = None) -> ObserveResult:
-        """Apply a batch of hop observations, in order.  Bad rows are rejected, not fatal."""
+        """Apply a batch of hop observations, in order.  Bad rows are rejected, not fatal.
+
+        Small batches (< SCALAR_BATCH rows) take a per-row path; larger ones the
+        vectorised rounds.  Both give bit-for-bit the result of applying the rows one by
+        one in order (see the module docstring).
+        """
         if now is not None:
             self.now = float(now)
-        code = self.check(batch)
-        ok = code == _OK
-        bad = np.flatnonzero(~ok)
-        rejected = tuple((int(i), REJECT_REASONS[int(code[i])]) for i in bad)
-        for _, r in rejected:
-            self._rejected[r] += 1
-        good = batch if bad.size == 0 else batch.take(np.flatnonzero(ok))
+        m = len(batch)
+        if m < SCALAR_BATCH:
+            return self._observe_rows(batch.src.tolist(), batch.via.tolist(), batch.dst.tolist(),
+                                      batch.latency.tolist(), batch.estimate.tolist())
+        code, slot = self._check(batch)
+        rejected: tuple[tuple[int, str], ...] = ()
+        good = batch
+        if code is not None:
+            ok = code == _OK
+            bad = np.flatnonzero(~ok)
+            rejected = tuple((i, REJECT_REASONS[c]) for i, c in zip(bad.tolist(), code[bad].tolist()))
+            for _, r in rejected:
+                self._rejected[r] += 1
+            keep = np.flatnonzero(ok)
+            good = batch.take(keep)
+            slot = slot[keep]
         m = len(good)
         if m == 0:
             return ObserveResult(0, rejected, np.empty(0))
-        f, v, d = good.src, good.via, good.dst
-        slot = self._slot_of[f, v].astype(np.int64)
-        lat = good.latency
-        est = good.estimate
         tde = np.empty(m)
         if m < SCALAR_BATCH:
-            self._apply_scalar(np.arange(m), f, v, d, slot, lat, est, tde)
+            self._apply_scalar(np.arange(m), good.src, good.via, good.dst, slot,
+                               good.latency, good.estimate, tde)
         else:
-            self._apply_rounds(f, v, d, slot, lat, est, tde)
-        self._updates += m
-        a = np.abs(tde)
-        w = 1.0 - 0.999 ** m
-        self._td_mean = (1 - w) * self._td_mean + w * float(a.mean())
-        self._td_max = float(a.max())
-        self._dirty[np.unique(d)] = True
+            self._apply_rounds(good.src, good.via, good.dst, slot, good.latency, good.estimate, tde)
+        self._dirty[good.dst] = True
+        self._account(m, float(np.abs(tde).mean()), float(np.abs(tde).max()))
         return ObserveResult(m, rejected, tde)
 
     def observe_one(self, src: int, via: int, dst: int, latency: float,
                     estimate: float | None = None, now: float | None = None) -> ObserveResult:
-        e = math.nan if estimate is None else estimate
-        return self.observe(HopBatch.of([src], [via], [dst], [latency], [e]), now)
+        """One hop observation (same rules as a one-row :meth:`observe`)."""
+        if now is not None:
+            self.now = float(now)
+        e = math.nan if estimate is None else float(estimate)
+        return self._observe_rows([int(src)], [int(via)], [int(dst)], [float(latency)], [e])
+
+    def _account(self, m: int, td_abs_mean: float, td_abs_max: float) -> None:
+        self._updates += m
+        w = 1.0 - 0.999 ** m
+        self._td_mean = (1 - w) * self._td_mean + w * td_abs_mean
+        self._td_max = td_abs_max
+
+    def _observe_rows(self, xs: list[int], ys: list[int], ds: list[int], lats: list[float],
+                      ests: list[float]) -> ObserveResult:
+        """The per-row path: check and apply each row in Python floats, in order.
+
+        Checks in REJECT_REASONS order, exactly like :meth:`_check`; the update is the
+        same arithmetic as :meth:`_apply_vector`, one IEEE operation at a time.
+        """
+        n, K = self.n, self.k
+        Qf, Nf, tdf = _flat(self.Q), _flat(self.N), _flat(self.td)
+        slot_of, live, dirty = self._slot_of, self.live, self._dirty
+        s = self.settings
+        ceil, sm = s.ceiling_s, s.td_smoothing
+        keep = 1.0 - sm
+        self._alpha_table(0)
+        tab = self._alphas_list
+        inf = math.inf
+        rejected: list[tuple[int, str]] = []
+        tde: list[float] = []
+        for i, (x, y, d, lat, e) in enumerate(zip(xs, ys, ds, lats, ests)):
+            if not (0 <= x < n and 0 <= y < n and 0 <= d < n):
+                reason = "unknown_node"
+            else:
+                j = slot_of.item(x, y)
+                if j < 0:
+                    reason = "not_neighbour"
+                elif x == d:
+                    reason = "at_destination"
+                elif not (0.0 <= lat < inf):
+                    reason = "bad_latency"
+                elif e == e and not (0.0 <= e < inf):
+                    reason = "bad_estimate"
+                elif not live.item(x, j):
+                    reason = "link_down"
+                else:
+                    if y == d:
+                        tail = 0.0
+                    elif e == e:  # not NaN: the neighbour's own estimate
+                        tail = e
+                    else:  # absent slots hold inf, dead ones exactly the ceiling
+                        rb = (y * n + d) * K
+                        tail = min(Qf[rb:rb + K].tolist())
+                    target = lat + tail
+                    w = x * n + d
+                    k = w * K + j
+                    old = Qf.item(k)
+                    nn = Nf.item(k) + 1
+                    Nf[k] = nn
+                    if nn >= len(tab):
+                        self._alpha_table(nn)
+                        tab = self._alphas_list
+                    delta = target - old
+                    new = old + tab[nn] * delta
+                    Qf[k] = ceil if new > ceil else (0.0 if new < 0.0 else new)
+                    tdf[w] = keep * tdf.item(w) + sm * abs(delta)
+                    dirty[d] = True
+                    tde.append(delta)
+                    continue
+            rejected.append((i, reason))
+            self._rejected[reason] += 1
+        if tde:
+            a = [abs(t) for t in tde]
+            self._account(len(tde), sum(a) / len(a), max(a))
+        return ObserveResult(len(tde), tuple(rejected), np.array(tde, dtype=np.float64))
 
     def _alpha_table(self, upto: int) -> np.ndarray:
         """Step size by update count, tabulated so the scalar and vector paths agree to the bit."""
@@ -375,38 +474,39 @@ class Engine:
 
     def _apply_scalar(self, rows: np.ndarray, f: np.ndarray, v: np.ndarray, d: np.ndarray,
                       slot: np.ndarray, lat: np.ndarray, est: np.ndarray, tde: np.ndarray) -> None:
-        Q, N, live, td = self.Q, self.N, self.live, self.td
+        """Checked rows, one at a time, in the order of ``rows``; TD errors into ``tde``."""
+        n, K = self.n, self.k
+        Qf, Nf, tdf = _flat(self.Q), _flat(self.N), _flat(self.td)
         ceil = self.settings.ceiling_s
         sm = self.settings.td_smoothing
+        keep = 1.0 - sm
         self._alpha_table(0)
         tab = self._alphas_list
-        for i in rows.tolist():
-            x, y, dd, j = int(f[i]), int(v[i]), int(d[i]), int(slot[i])
+        r = rows.tolist()
+        for i, x, y, dd, j, la, e in zip(r, f[rows].tolist(), v[rows].tolist(), d[rows].tolist(),
+                                         slot[rows].tolist(), lat[rows].tolist(),
+                                         est[rows].tolist()):
             if y == dd:
                 tail = 0.0
-            elif est[i] == est[i]:  # not NaN
-                tail = float(est[i])
+            elif e == e:  # not NaN
+                tail = e
             else:
-                qy = Q[y, dd][live[y]]
-                tail = float(qy.min()) if qy.size else ceil
-            target = float(lat[i]) + tail
-            old = float(Q[x, dd, j])
-            nn = int(N[x, dd, j]) + 1
-            N[x, dd, j] = nn
+                rb = (y * n + dd) * K
+                tail = min(Qf[rb:rb + K].tolist())
+            target = la + tail
+            w = x * n + dd
+            k = w * K + j
+            old = Qf.item(k)
+            nn = Nf.item(k) + 1
+            Nf[k] = nn
             if nn >= len(tab):
                 self._alpha_table(nn)
                 tab = self._alphas_list
-            a = tab[nn]
             delta = target - old
-            new = old + a * delta
-            Q[x, dd, j] = ceil if new > ceil else (0.0 if new < 0.0 else new)
-            td[x, dd] = (1 - sm) * td[x, dd] + sm * abs(delta)
+            new = old + tab[nn] * delta
+            Qf[k] = ceil if new > ceil else (0.0 if new < 0.0 else new)
+            tdf[w] = keep * tdf.item(w) + sm * abs(delta)
             tde[i] = delta
-
-    def _first_pos(self, keys: np.ndarray, pos: np.ndarray) -> np.ndarray:
-        """Scratch array holding, for each key, the lowest position it occurs at (caller resets)."""
-        np.minimum.at(self._scratch, keys, pos)
-        return self._scratch
 
     def _apply_rounds(self, f: np.ndarray, v: np.ndarray, d: np.ndarray, slot: np.ndarray,
                       lat: np.ndarray, est: np.ndarray, tde: np.ndarray) -> None:
@@ -417,11 +517,15 @@ class Engine:
         needs_read = (v != d) & np.isnan(est)
         rkey = np.where(needs_read, v * n + d, -1)
         rem = np.arange(len(f))
+        first = True
         while rem.size:
             if rem.size < SCALAR_BATCH:
                 self._apply_scalar(rem, f, v, d, slot, lat, est, tde)
                 return
-            W, R = wkey[rem], rkey[rem]
+            if first:
+                W, R = wkey, rkey
+            else:
+                W, R = wkey[rem], rkey[rem]
             pos = np.arange(rem.size)
             hasr = R >= 0
             Rr = np.where(hasr, R, 0)
@@ -431,16 +535,21 @@ class Engine:
             blocked |= hasr & (scratch[Rr] < pos)             # an earlier row writes what I read
             scratch[W] = big
             # an earlier *deferred* row reads the key I write (fixpoint: deferral spreads)
-            while True:
+            nblocked = int(blocked.sum())
+            while nblocked:
                 rb = blocked & hasr
                 if not rb.any():
                     break
                 np.minimum.at(scratch, R[rb], pos[rb])
                 nb = blocked | (scratch[W] < pos)
                 scratch[R[rb]] = big
-                if nb.sum() == blocked.sum():
+                cnt = int(nb.sum())
+                if cnt == nblocked:
                     break
-                blocked = nb
+                blocked, nblocked = nb, cnt
+            if nblocked == 0:
+                self._apply_vector(None if first else rem, f, v, d, slot, lat, est, tde)
+                return
             go = rem[~blocked]
             if go.size < max(4, rem.size // 16):
                 # mostly a chain: the scalar path is cheaper than more rounds
@@ -448,31 +557,48 @@ class Engine:
                 return
             self._apply_vector(go, f, v, d, slot, lat, est, tde)
             rem = rem[blocked]
+            first = False
 
-    def _apply_vector(self, rows: np.ndarray, f: np.ndarray, v: np.ndarray, d: np.ndarray,
+    def _apply_vector(self, rows: np.ndarray | None, f: np.ndarray, v: np.ndarray, d: np.ndarray,
                       slot: np.ndarray, lat: np.ndarray, est: np.ndarray, tde: np.ndarray) -> None:
-        """Rows with pairwise-distinct write keys and no read of another's write key."""
-        Q, N = self.Q, self.N
+        """Rows (None: all) with pairwise-distinct write keys and no read of another's write key.
+
+        Reads all happen before writes, so a row reading a key that a *later* row of the
+        same round writes sees the old value, as it would in order.
+        """
+        n, K = self.n, self.k
+        Qf, Nf, tdf = _flat(self.Q), _flat(self.N), _flat(self.td)
         s = self.settings
-        x, y, dd, j = f[rows], v[rows], d[rows], slot[rows]
-        e = est[rows]
-        tail = np.where(np.isnan(e), 0.0, e)
-        need = np.isnan(e) & (y != dd)
-        if need.any():
-            yy, dn = y[need], dd[need]
-            qy = np.where(self.live[yy], Q[yy, dn], np.inf)
-            mins = qy.min(axis=1)
-            tail[need] = np.where(np.isfinite(mins), mins, s.ceiling_s)
-        target = lat[rows] + tail
-        old = Q[x, dd, j]
-        nn = N[x, dd, j] + 1
-        N[x, dd, j] = nn
+        if rows is None:
+            x, y, dd, j, e, la = f, v, d, slot, est, lat
+        else:
+            x, y, dd, j, e, la = f[rows], v[rows], d[rows], slot[rows], est[rows], lat[rows]
+        nan = np.isnan(e)
+        at_d = y == dd
+        tail = np.where(nan | at_d, 0.0, e)              # y == d: nothing left to go
+        need = nan & ~at_d
+        # min over y's slots: absent slots hold inf and dead ones exactly the ceiling,
+        # so no live mask is needed (an all-dead node reads the ceiling, as it should)
+        if need.all():
+            tail = _row_min(self.Q.reshape(n * n, K).take(y * n + dd, axis=0))
+        elif need.any():
+            g = self.Q.reshape(n * n, K).take((y * n + dd)[need], axis=0)
+            tail[need] = _row_min(g)
+        target = la + tail
+        w = x * n + dd
+        k = w * K + j
+        old = Qf.take(k)
+        nn = Nf.take(k) + 1
+        Nf[k] = nn
         delta = target - old
-        alpha = self._alpha_table(int(nn.max()))[nn]
-        Q[x, dd, j] = np.clip(old + alpha * delta, 0.0, s.ceiling_s)
+        alpha = self._alpha_table(int(nn.max())).take(nn)
+        Qf[k] = np.clip(old + alpha * delta, 0.0, s.ceiling_s)
         sm = s.td_smoothing
-        self.td[x, dd] = (1 - sm) * self.td[x, dd] + sm * np.abs(delta)
-        tde[rows] = delta
+        tdf[w] = (1.0 - sm) * tdf.take(w) + sm * np.abs(delta)
+        if rows is None:
+            tde[:] = delta
+        else:
+            tde[rows] = delta
 
     # ---- link state -----------------------------------------------------------------
     def set_link(self, src: int, dst: int, up: bool, now: float | None = None) -> bool:
@@ -487,7 +613,8 @@ class Engine:
         self.live[src, j] = up
         ceil = self.settings.ceiling_s
         if up:
-            vy = self.values()[dst]                    # y's current best per destination
+            qd = np.where(self.live[dst][None, :], self.Q[dst], np.inf).min(axis=1)
+            vy = np.where(np.isfinite(qd), qd, ceil)   # y's current best per destination
             fresh = self._link_delay[src, j] + np.where(np.arange(self.n) == dst, 0.0, vy)
             self.Q[src, :, j] = np.minimum(fresh, ceil)
             self.N[src, :, j] = 0
@@ -543,10 +670,11 @@ class Engine:
             t = self.topo
             up = np.zeros(t.n_links, dtype=bool)
             up[t.slot_link[self.live]] = True
-            w = np.where(up, t.delay_s, np.inf)
-            dist = t.shortest_delays(w)
-            nh = t.spt_next_hops(dist) if up.all() else _spt_masked(t, dist, up)
-            self._live_spt = np.where(np.isfinite(dist), nh, -1)
+            if up.all():  # the static tree: computed once per topology
+                nh = t.spt_next_hops()
+            else:
+                nh = t.shortest_paths(np.where(up, t.delay_s, np.inf))[1]
+            self._live_spt = nh.astype(np.int64)
         return self._live_spt
 
     def decide(self, now: float | None = None) -> Decision:
@@ -559,29 +687,39 @@ class Engine:
         if ds.size == 0:
             return Decision(frozenset(), 0, 0)
         s = self.settings
-        n = self.n
+        n, K = self.n, self.k
+        m = ds.size
+        sel: Any = slice(None) if m == n else ds       # a view, not a copy, when all are due
         xs = np.arange(n)
-        live = self.live[:, None, :]                                # (n, 1, K)
-        q = np.where(live, self.Q[:, ds, :], np.inf)                # (n, m, K)
-        best = np.argmin(q, axis=2)                                 # (n, m)
-        bestv = np.take_along_axis(q, best[..., None], axis=2)[..., 0]
-        inc = self.greedy[:, ds]
-        incv = np.take_along_axis(q, np.maximum(inc, 0)[..., None], axis=2)[..., 0]
+        live2 = self.live                                           # (n, K)
+        q = np.where(live2[:, None, :], self.Q[:, sel, :], np.inf)  # (n, m, K)
+        best, bestv = _argmin_last(q)                               # (n, m)
+        inc = self.greedy[:, sel]
+        qf = q.reshape(n * m, K)
+        cell = np.arange(n * m)
+        incv = qf[cell, np.maximum(inc, 0).ravel()].reshape(n, m)
         incv = np.where(inc >= 0, incv, np.inf)
         keep = np.isfinite(incv) & ~(bestv < incv * (1.0 - s.margin))
         choice = np.where(keep, inc, best)
         choice = np.where(np.isfinite(bestv), choice, -1)
-        choice[ds, np.arange(ds.size)] = -1                         # x == d
+        choice[ds, np.arange(m)] = -1                               # x == d
         # loop freedom, per destination table (rows = destinations)
-        nh = np.where(choice >= 0, np.take_along_axis(self._slots, np.maximum(choice, 0), axis=1), -1).T
-        prev_nh = np.where(inc >= 0, np.take_along_axis(self._slots, np.maximum(inc, 0), axis=1), -1).T
-        level = np.zeros_like(nh)
+        slots_f = self._slots.reshape(-1)
+        base = (xs * K)[:, None]
+        nh = np.where(choice >= 0, slots_f[base + np.maximum(choice, 0)], -1).T.copy()
+        prev_nh = np.where(inc >= 0, slots_f[base + np.maximum(inc, 0)], -1).T
+        level = np.zeros(nh.shape, dtype=np.int8)
         prevented = 0
-        while True:
-            cyc = _loops.cycle_mask(nh)
-            if not cyc.any():
+        rows = np.arange(m)                     # tables that may still hold a loop
+        for _ in range(2 * n + 3):
+            cyc_r = _loops.cycle_mask(nh[rows])
+            hit = cyc_r.any(axis=1)
+            if not hit.any():
                 break
-            prevented += int(cyc.sum())
+            rows, cyc_r = rows[hit], cyc_r[hit]
+            cyc = np.zeros(nh.shape, dtype=bool)
+            cyc[rows] = cyc_r
+            prevented += int(cyc_r.sum())
             up1 = cyc & (level == 0)
             up2 = cyc & (level >= 1)
             if up1.any():
@@ -597,36 +735,47 @@ class Engine:
             if up2.any():
                 nh[up2] = self._spt_live()[:, ds].T[up2]
                 level[up2] = 2
+        else:  # unreachable: the live shortest-path tree has no loop (ties break by hops)
+            raise AssertionError("loop fallback did not converge")
         choice = np.where(nh.T >= 0, self._slot_of[xs[:, None], np.maximum(nh.T, 0)], -1).astype(np.int64)
         # exploration candidates: strictly lower (depth, index) potential, live, not greedy
         dep = _loops.depths(nh, ds).T                                # (n, m): depth of x for ds[i]
         ys = np.maximum(self._slots, 0)                              # (n, K)
-        dy = dep[ys]                                                 # (n, K, m)
-        dy = dy.transpose(0, 2, 1)                                   # (n, m, K)
-        dx = dep[:, :, None]
-        lower = (dy < dx) | ((dy == dx) & (ys[:, None, :] < xs[:, None, None]))
-        reach = dy <= n
-        alt = live & lower & reach & (np.arange(self.k)[None, None, :] != choice[..., None])
-        alt &= (choice >= 0)[..., None]
+        routed = choice >= 0
+        alt = np.zeros((n, m, K), dtype=bool)
+        any_alt = np.zeros((n, m), dtype=bool)
+        for c in range(K):
+            yc = ys[:, c]
+            dy = dep[yc]                                             # (n, m)
+            lower = (dy < dep) | ((dy == dep) & (yc < xs)[:, None])
+            a = lower & (dy <= n) & (choice != c) & routed & live2[:, c][:, None]
+            alt[:, :, c] = a
+            any_alt |= a
         # exploration share per (x, d)
         if s.explore_basis == "td":
-            vx = np.take_along_axis(q, np.maximum(choice, 0)[..., None], axis=2)[..., 0]
-            rel = self.td[:, ds] / np.maximum(np.where(np.isfinite(vx), vx, s.ceiling_s), 1e-12)
+            vx = qf[cell, np.maximum(choice, 0).ravel()].reshape(n, m)
+            rel = self.td[:, sel] / np.maximum(np.where(np.isfinite(vx), vx, s.ceiling_s), 1e-12)
             frac = np.minimum(1.0, rel / s.td_ref)
         else:
-            visits = self.N[:, ds, :].sum(axis=2)
+            Nd = self.N[:, sel, :]
+            visits = Nd[:, :, 0].copy()
+            for c in range(1, K):
+                visits += Nd[:, :, c]
             frac = s.visits_half / (s.visits_half + visits)
         eps = np.minimum(s.explore_min + (s.explore_max - s.explore_min) * frac, s.eps_max)
-        eps = np.where(alt.any(axis=2), eps, 0.0)
+        eps = np.where(any_alt, eps, 0.0)
         # what changed
-        old_g = self.greedy[:, ds]
+        old_g = self.greedy[:, sel]
         changed_g = (old_g != choice)
-        changed_w = changed_g | (self.alt[:, ds, :] != alt).any(axis=2) | (np.abs(self.eps[:, ds] - eps) > 1e-9)
+        old_alt = self.alt[:, sel, :]
+        changed_w = changed_g | (np.abs(self.eps[:, sel] - eps) > 1e-9)
+        for c in range(K):
+            changed_w |= old_alt[:, :, c] != alt[:, :, c]
         self._route_changes += int(changed_g.sum())
         self._loops_prevented += prevented
-        self.greedy[:, ds] = choice
-        self.alt[:, ds, :] = alt
-        self.eps[:, ds] = eps
+        self.greedy[:, sel] = choice
+        self.alt[:, sel, :] = alt
+        self.eps[:, sel] = eps
         nodes = frozenset(np.flatnonzero(changed_w.any(axis=1)).tolist())
         return Decision(nodes, int(changed_g.sum()), prevented)
 
@@ -675,7 +824,7 @@ class Engine:
             cur = getattr(eng, k)
             if a.shape != cur.shape:
                 raise ValueError(f"state array {k} has shape {a.shape}, expected {cur.shape}")
-            setattr(eng, k, a.astype(cur.dtype, copy=True))
+            setattr(eng, k, np.array(a, dtype=cur.dtype, order="C", copy=True))
         for k in cls._SCALARS:
             setattr(eng, k, type(getattr(eng, k))(state[k]))
         eng._rejected = {r: int(state["rejected"].get(r, 0)) for r in REJECT_REASONS}
@@ -688,20 +837,35 @@ class Engine:
                    for k in ("Q", "N", "td", "greedy", "eps", "alt", "live"))
 
 
-def _spt_masked(t: Topology, dist: np.ndarray, up: np.ndarray) -> np.ndarray:
-    """Shortest-path next hops using only links marked up."""
-    n = t.n
-    nh = np.full((n, n), -1, dtype=np.int32)
-    for x, nb in enumerate(t.neighbours):
-        cand = [(t.link_index[(x, y)], y) for y in nb if up[t.link_index[(x, y)]]]
-        if not cand:
-            continue
-        ys = np.array([y for _, y in cand])
-        w = np.array([t.delay_s[k] for k, _ in cand])
-        cost = w[:, None] + dist[ys, :]
-        nh[x] = ys[np.argmin(cost, axis=0)]
-        nh[x, x] = -1
-    return nh
+def _flat(a: np.ndarray) -> np.ndarray:
+    """A 1-d view of a state array (never a copy: writes through it must land)."""
+    if not a.flags.c_contiguous:
+        raise RuntimeError("engine state array is not C-contiguous")
+    return a.reshape(-1)
+
+
+def _argmin_last(q: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(argmin, min) over the last (short) axis, first index on ties, like ``np.argmin``."""
+    bestv = q[..., 0].copy()
+    best = np.zeros(bestv.shape, dtype=np.int64)
+    for c in range(1, q.shape[-1]):
+        col = q[..., c]
+        best[col < bestv] = c
+        np.minimum(bestv, col, out=bestv)
+    return best, bestv
+
+
+def _row_min(g: np.ndarray) -> np.ndarray:
+    """Min of each row of a short-rowed (m, K) array.
+
+    numpy's ``min(axis=1)`` over a short inner axis runs a slow per-row loop; K
+    elementwise minima over columns give the same values (min is exact) several times
+    faster.
+    """
+    out = g[:, 0].copy()
+    for c in range(1, g.shape[1]):
+        np.minimum(out, g[:, c], out=out)
+    return out
 
 
 def settings_with(settings: EngineSettings, **changes: Any) -> EngineSettings:

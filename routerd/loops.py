@@ -22,6 +22,23 @@ def _jumps(n: int) -> int:
     return max(1, int(np.ceil(np.log2(max(n, 2)))) + 1)
 
 
+def _successor(nh: np.ndarray) -> np.ndarray:
+    """Flat successor array over all tables: (m * (n + 1),), sinks at each row's end.
+
+    Node x of table i is ``i * (n + 1) + x``; -1 entries point at the row's sink, which
+    points at itself.  One flat ``take`` per jump is much cheaper than
+    ``take_along_axis``.
+    """
+    m, n = nh.shape
+    w = n + 1
+    f = np.empty((m, w), dtype=np.int64)
+    f[:, :n] = nh
+    f[:, n] = n
+    f[f < 0] = n
+    f += (np.arange(m, dtype=np.int64) * w)[:, None]
+    return f.reshape(-1)
+
+
 def cycle_mask(nh: np.ndarray) -> np.ndarray:
     """Boolean mask, same shape as ``nh`` (m, n): True where the node lies on a loop.
 
@@ -29,16 +46,14 @@ def cycle_mask(nh: np.ndarray) -> np.ndarray:
     """
     nh = np.asarray(nh)
     m, n = nh.shape
-    sink = n
-    f = np.where(nh < 0, sink, nh).astype(np.int64)
-    f = np.concatenate([f, np.full((m, 1), sink, dtype=np.int64)], axis=1)
-    g = f
+    if m == 0:
+        return np.zeros((0, n), dtype=bool)
+    g = _successor(nh)
     for _ in range(_jumps(n + 1)):
-        g = np.take_along_axis(g, g, axis=1)
-    on = np.zeros((m, n + 1), dtype=bool)
-    rows = np.repeat(np.arange(m), n + 1)
-    on[rows, g.ravel()] = True
-    return on[:, :n]
+        g = g.take(g)
+    on = np.zeros(m * (n + 1), dtype=bool)
+    on[g] = True
+    return on.reshape(m, n + 1)[:, :n]
 
 
 def find_loops(nh: np.ndarray) -> list[tuple[int, list[int]]]:
@@ -76,16 +91,18 @@ def depths(nh: np.ndarray, dests: np.ndarray) -> np.ndarray:
     """
     nh = np.asarray(nh)
     m, n = nh.shape
-    sink = n
-    f = np.where(nh < 0, sink, nh).astype(np.int64)
-    f = np.concatenate([f, np.full((m, 1), sink, dtype=np.int64)], axis=1)
+    w = n + 1
+    if m == 0:
+        return np.zeros((0, n), dtype=np.int64)
     r = np.arange(m)
-    f[r, dests] = dests  # the destination absorbs
-    hop = np.ones((m, n + 1), dtype=np.int64)
-    hop[r, dests] = 0
-    hop[:, sink] = 0
+    f = _successor(nh)
+    dflat = r * w + np.asarray(dests, dtype=np.int64)
+    f[dflat] = dflat  # the destination absorbs
+    hop = np.ones(m * w, dtype=np.int64)
+    hop[dflat] = 0
+    hop[r * w + n] = 0
     for _ in range(_jumps(n + 1)):
-        hop = hop + np.take_along_axis(hop, f, axis=1)
-        f = np.take_along_axis(f, f, axis=1)
-    reached = f[:, :n] == dests[:, None]
-    return np.where(reached, np.minimum(hop[:, :n], n + 1), n + 1)
+        hop = hop + hop.take(f)
+        f = f.take(f)
+    reached = (f == np.repeat(dflat, w)).reshape(m, w)[:, :n]
+    return np.where(reached, np.minimum(hop.reshape(m, w)[:, :n], n + 1), n + 1)

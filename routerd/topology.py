@@ -161,26 +161,48 @@ class Topology:
     def shortest_delays(self, weights: np.ndarray | None = None) -> np.ndarray:
         """(n, n) matrix D[x, d]: least total link weight from x to d (default: delay_s).
 
-        Dijkstra from every destination over reversed links. Unreachable: inf.
+        Dijkstra from every destination over reversed links. Unreachable: inf.  A link of
+        weight inf is unusable (how callers leave out links that are down).
         """
         if weights is None:
-            return self._shortest_delays
+            return self._paths[0]
+        return self.shortest_paths(weights)[0]
+
+    def shortest_paths(self, weights: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """(D, NH): least-weight distances and a next-hop table on those paths.
+
+        ``NH[x, d]`` is x's next hop in the shortest-path tree Dijkstra grows from d (-1 on
+        the diagonal and where d is unreachable).  Being a tree it has no loop even when
+        zero-weight links make several paths tie; among tied paths the first one found
+        wins, which is deterministic for a given topology.  Without ``weights`` (delays)
+        the read-only result is computed once per topology.
+        """
+        if weights is None:
+            return self._paths
         return _all_pairs(self.n, self.src, self.dst, np.asarray(weights, dtype=float))
 
     @cached_property
-    def _shortest_delays(self) -> np.ndarray:
-        return _all_pairs(self.n, self.src, self.dst, self.delay_s)
+    def _paths(self) -> tuple[np.ndarray, np.ndarray]:
+        D, NH = _all_pairs(self.n, self.src, self.dst, self.delay_s)
+        D.setflags(write=False)
+        NH.setflags(write=False)
+        return D, NH
 
     @cached_property
     def hop_distances(self) -> np.ndarray:
-        return _all_pairs(self.n, self.src, self.dst, np.ones(self.n_links))
+        return _all_pairs(self.n, self.src, self.dst, np.ones(self.n_links))[0]
 
     def spt_next_hops(self, dist: np.ndarray | None = None) -> np.ndarray:
         """(n, n) int32 next hop N[x, d] on a delay-shortest path (-1 on the diagonal).
 
-        Ties go to the lowest node index, so the result is deterministic.
+        Without ``dist``: the read-only tree of :meth:`shortest_paths`, loop-free by
+        construction.  With ``dist``: per (x, d) the neighbour minimising
+        ``delay(x, y) + dist[y, d]``, ties to the lowest node index — loop-free only when
+        every link delay is positive (zero-delay ties can point two nodes at each other).
         """
-        D = self.shortest_delays() if dist is None else dist
+        if dist is None:
+            return self._paths[1]
+        D = dist
         nh = np.full((self.n, self.n), -1, dtype=np.int32)
         slots = self.slots
         valid = slots >= 0
@@ -196,21 +218,36 @@ class Topology:
         return nh
 
     def stats(self) -> dict[str, float]:
-        """Counts in the terms topohub's ``stats`` uses (undirected links, hop paths)."""
+        """Counts in the terms topohub's ``stats`` uses, plus delay figures of our own.
+
+        ``links`` counts undirected links; ``diameter_hops`` is the longest hop-shortest
+        path.  ``avg_sdp_hops`` follows topohub's definition (``topohub.graph.path_stats``
+        and ``topo_stats``): per node pair, the hops of its shortest (edge-disjoint) paths
+        — all of hop-shortest length, so the pair's hop distance — averaged with the
+        pair's demand as weight (demand a→b, else b→a, else 0), or unweighted when the
+        topology has no demands or they sum to zero.  ``avg_hops`` is the plain mean hop
+        distance; ``avg_delay_path_hops`` the mean hops along delay-shortest paths.
+        """
         und = {tuple(sorted((int(a), int(b)))) for a, b in zip(self.src, self.dst)}
+        if self.n < 2:
+            return {"nodes": self.n, "links": len(und), "diameter_hops": 0.0, "avg_hops": 0.0,
+                    "avg_sdp_hops": 0.0, "avg_delay_path_hops": 0.0, "diameter_delay_s": 0.0}
         H = self.hop_distances
         off = ~np.eye(self.n, dtype=bool)
         D = self.shortest_delays()
-        # hops along the delay-shortest path (topohub's "sdp" = shortest-distance path)
-        nh = self.spt_next_hops()
-        sdp_hops = _path_hops(nh)
+        dem = self.demands
+        if dem is not None and float(dem.sum()) > 0:
+            wgt = np.where(dem > 0, dem, dem.T)
+        else:
+            wgt = np.ones_like(H)
         return {
             "nodes": self.n,
             "links": len(und),
-            "diameter_hops": float(H[off].max()) if self.n > 1 else 0.0,
-            "avg_hops": float(H[off].mean()) if self.n > 1 else 0.0,
-            "avg_sdp_hops": float(sdp_hops[off].mean()) if self.n > 1 else 0.0,
-            "diameter_delay_s": float(D[off].max()) if self.n > 1 else 0.0,
+            "diameter_hops": float(H[off].max()),
+            "avg_hops": float(H[off].mean()),
+            "avg_sdp_hops": float((H * wgt)[off].sum() / wgt[off].sum()),
+            "avg_delay_path_hops": float(_tree_hops(self.spt_next_hops())[off].mean()),
+            "diameter_delay_s": float(D[off].max()),
         }
 
     def summary(self) -> str:
@@ -237,39 +274,48 @@ def _replace(t: Topology, **kw: Any) -> Topology:
     return Topology(**fields)
 
 
-def _all_pairs(n: int, src: np.ndarray, dst: np.ndarray, w: np.ndarray) -> np.ndarray:
+def _all_pairs(n: int, src: np.ndarray, dst: np.ndarray,
+               w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """All-pairs least weights (n, n) and next hops (n, n) int32 by one Dijkstra per target."""
     rev: list[list[tuple[int, float]]] = [[] for _ in range(n)]
     for a, b, c in zip(src.tolist(), dst.tolist(), w.tolist()):
-        rev[b].append((a, c))
+        if c < math.inf:
+            rev[b].append((a, c))
     D = np.full((n, n), np.inf)
+    NH = np.full((n, n), -1, dtype=np.int32)
+    pop, push = heapq.heappop, heapq.heappush
     for d in range(n):
         dist = [math.inf] * n
+        via = [-1] * n
         dist[d] = 0.0
         heap = [(0.0, d)]
         while heap:
-            du, u = heapq.heappop(heap)
+            du, u = pop(heap)
             if du > dist[u]:
                 continue
             for v, c in rev[u]:
                 nd = du + c
                 if nd < dist[v]:
                     dist[v] = nd
-                    heapq.heappush(heap, (nd, v))
+                    via[v] = u
+                    push(heap, (nd, v))
         D[:, d] = dist
-    return D
+        NH[:, d] = via
+    return D, NH
 
 
-def _path_hops(nh: np.ndarray) -> np.ndarray:
+def _tree_hops(nh: np.ndarray) -> np.ndarray:
+    """Hops from x to d along a loop-free next-hop table ``nh[x, d]`` (inf: no route)."""
     n = nh.shape[0]
-    hops = np.zeros((n, n))
-    for d in range(n):
-        for x in range(n):
-            h, y = 0, x
-            while y != d and y >= 0 and h <= n:
-                y = int(nh[y, d])
-                h += 1
-            hops[x, d] = h if y == d else np.inf
-    return hops
+    cols = np.arange(n)[None, :]
+    nxt = np.maximum(nh, 0)
+    h = np.where(np.eye(n, dtype=bool), 0.0, np.inf)
+    for _ in range(n):
+        hn = np.where(nh >= 0, h[nxt, cols] + 1.0, h)
+        if np.array_equal(hn, h):
+            break
+        h = hn
+    return h
 
 
 # ---- building and checking --------------------------------------------------------
