@@ -285,7 +285,8 @@ class Service:
         return int(j.bytes_total) if j is not None else 0
 
     def snapshot_age_s(self) -> float | None:
-        return None if self.last_snapshot_at is None else time.monotonic() - self.last_snapshot_at
+        # wall clock: the newest snapshot may come from before this start (its file time)
+        return None if self.last_snapshot_at is None else max(0.0, time.time() - self.last_snapshot_at)
 
     def uptime_s(self) -> float:
         return time.monotonic() - self.started
@@ -354,6 +355,9 @@ class Service:
             self.dedup.restore(tail.export())
             self.restored["snapshot_record"] = r.snapshot_record
             self.last_snapshot_record = r.snapshot_record
+            newest = snaps.list()
+            if newest:
+                self.last_snapshot_at = os.path.getmtime(newest[-1][1])
         self.restored["replayed"] = r.replay.records
         self.snapshots = snaps
         self.engine = r.engine
@@ -802,7 +806,7 @@ class Service:
         self.snapshots.write(state, rec)
         # retire only what every kept snapshot covers: a corrupt newest one has a fallback
         self.journal.retire_before(self.snapshots.retire_point())
-        self.last_snapshot_at = time.monotonic()
+        self.last_snapshot_at = time.time()
         self.last_snapshot_record = rec
         self.counters.snapshots[cause] += 1
         self.log.info("snapshot", cause=cause, record=rec, journal_bytes=self.journal_bytes())

@@ -1,0 +1,302 @@
+"""routerd serve: learning end to end, bad input, lifecycle (SIGTERM, SIGHUP), start-up errors.
+
+Real service processes on ipc:// endpoints in tmp dirs (tests/service_harness.py); every
+process is killed in a ``finally``.  The reference for "learned the right routes" is
+networkx's Dijkstra (``nx.all_pairs_dijkstra_path_length``) over the same link delays.
+"""
+from __future__ import annotations
+
+import argparse
+import math
+import os
+import shutil
+import signal
+import tempfile
+import time
+from collections.abc import Iterator
+
+import msgpack
+import networkx as nx
+import numpy as np
+import pytest
+import zmq
+
+from routerd import client, config, journal, wire
+from routerd.service import Dedup, load_config, load_topology
+from service_harness import ServiceProc, running, service_args
+
+DEMO = load_topology(config.load(None))
+
+
+@pytest.fixture
+def base() -> Iterator[str]:
+    # ipc:// paths are limited to ~100 bytes: keep the directory short
+    d = tempfile.mkdtemp(prefix="rd-", dir="/tmp")
+    try:
+        yield d
+    finally:
+        shutil.rmtree(d, ignore_errors=True)
+
+
+def write(path: str, text: str) -> str:
+    with open(path, "w", encoding="utf-8") as fh:
+        fh.write(text)
+    return path
+
+
+def nx_graph(topo, delays: np.ndarray) -> nx.DiGraph:
+    g = nx.DiGraph()
+    for k in range(topo.n_links):
+        g.add_edge(topo.nodes[topo.src[k]], topo.nodes[topo.dst[k]], weight=float(delays[k]))
+    return g
+
+
+def off_shortest(tables: dict, g: nx.DiGraph) -> list[tuple[str, str, str]]:
+    """(node, destination, next hop) where the greedy next hop is on no shortest path."""
+    # reference: networkx Dijkstra; a next hop y of x for d is on a shortest path iff
+    # w(x, y) + dist(y, d) == dist(x, d) (Bellman's optimality condition)
+    dist = dict(nx.all_pairs_dijkstra_path_length(g))
+    bad = []
+    for x, routes in tables.items():
+        for d in g.nodes:
+            if d == x:
+                continue
+            ws = routes.get(d)
+            if not ws:
+                bad.append((x, d, "-"))
+                continue
+            y = ws[0][0]
+            if abs(g[x][y]["weight"] + dist[y][d] - dist[x][d]) > 1e-9 * max(1.0, dist[x][d]):
+                bad.append((x, d, y))
+    return bad
+
+
+def random_rows(topo, rng, m: int, delays: np.ndarray):
+    link = rng.integers(0, topo.n_links, m)
+    x, y = topo.src[link].astype(np.int64), topo.dst[link].astype(np.int64)
+    d = rng.integers(0, topo.n - 1, m)
+    d = np.where(d >= x, d + 1, d)
+    return x, y, d, delays[link]
+
+
+# A tracking setting: a constant step of 0.5.  Q-routing carries bad news slowly (estimates
+# bootstrap off neighbours that still hold the old, low value), so with the default decaying
+# step the degraded-trunk phase below takes ~700 batches offline; with 0.5, ~110.
+LEARN_CFG = """\
+engine:
+  step: {mode: constant, alpha: 0.5}
+  initial: {mode: constant, value_s: 0.05}   # start far from the answer: it must be learned
+  hysteresis: {margin: 0.0}
+service:
+  debounce_s: 0.01
+  publish_interval_s: 0.5
+"""
+
+
+# ---- learning ---------------------------------------------------------------------------
+@pytest.mark.slow
+def test_learns_dijkstra_then_follows_a_degraded_link(base: str) -> None:
+    cfg = write(os.path.join(base, "learn.yaml"), LEARN_CFG)
+    topo = DEMO
+    rng = np.random.default_rng(7)
+    delays = topo.delay_s.copy()
+    with running(base, config=cfg) as sp:
+        sub = client.TableSubscriber(sp.endpoints["publish"])
+        rep = client.Reporter(sp.endpoints["ingest"], "learner", control=sp.endpoints["control"],
+                              batch_rows=256, max_pending=8)
+        try:
+            def send(batches: int) -> None:
+                for _ in range(batches):
+                    x, y, d, lat = random_rows(topo, rng, 256, delays)
+                    rep.add_hops([topo.nodes[i] for i in x], [topo.nodes[i] for i in y],
+                                 [topo.nodes[i] for i in d], lat.tolist())
+                rep.flush()
+                sub.poll(0.05)
+
+            def tables_after_decision() -> dict:
+                time.sleep(0.05)          # > debounce_s: the last batch has been decided
+                return client.control(sp.endpoints["control"], {"op": "tables"})["tables"]
+
+            g0 = nx_graph(topo, delays)
+            assert off_shortest(tables_after_decision(), g0), \
+                "constant initial estimates should not already give shortest paths"
+            learned_after = None
+            for rnd in range(1, 41):
+                send(10)
+                if not off_shortest(tables_after_decision(), g0):
+                    learned_after = rnd * 10
+                    break
+            assert learned_after is not None, off_shortest(tables_after_decision(), g0)[:10]
+
+            # degrade the trunk (both directions) 40-fold: west-east routes must leave it
+            for a, b in (("w3", "e3"), ("e3", "w3")):
+                delays[topo.link(a, b)] = 0.04
+            g1 = nx_graph(topo, delays)
+            moved = off_shortest(tables_after_decision(), g1)
+            assert moved, "the degradation must make some current routes wrong"
+            moved_after = None
+            for rnd in range(1, 61):
+                send(5)
+                if not off_shortest(tables_after_decision(), g1):
+                    moved_after = rnd * 5
+                    break
+            # bound: 300 batches of 256 rows (76,800 rows, ~1,600 per directed link)
+            assert moved_after is not None, off_shortest(tables_after_decision(), g1)[:10]
+            assert rep.accepted == rep.batches_sent * 256
+
+            # the subscriber saw every node's seq rise, without gaps, within one epoch
+            sub.wait_for(lambda s: len(s.seq) == topo.n, 5.0)
+            assert set(sub.seq) == set(topo.nodes)
+            assert all(s >= 3 for s in sub.seq.values()), sub.seq
+            assert set(sub.epoch.values()) == {sp.epoch}
+            assert sub.gaps_total == 0 and sub.restarts == 0 and not sub.stale
+            # what the subscriber holds is what control says
+            sub.poll(1.0)
+            ctl = client.control(sp.endpoints["control"], {"op": "tables"})["tables"]
+            for node in ("w1", "e6", "r2"):
+                assert sub.tables[node] == ctl[node]
+            print(f"learned after {learned_after} batches; followed the degraded trunk after "
+                  f"{moved_after} more")
+        finally:
+            rep.close(flush=False)
+            sub.close()
+
+
+# ---- bad input --------------------------------------------------------------------------
+BAD_CFG = """\
+service:
+  max_message_bytes: 65536
+  dedup_batches: 50
+  debounce_s: 0.01
+"""
+
+
+def metric_values(text: str) -> dict[tuple[str, tuple], float]:
+    from prometheus_client.parser import text_string_to_metric_families
+
+    out = {}
+    for fam in text_string_to_metric_families(text):
+        for s in fam.samples:
+            out[(s.name, tuple(sorted(s.labels.items())))] = s.value
+    return out
+
+
+def rejected(vals: dict, reason: str) -> float:
+    return vals[("routerd_observations_total", (("reason", reason), ("result", "rejected")))]
+
+
+def refused(vals: dict, reason: str) -> float:
+    return vals[("routerd_batches_total", (("reason", reason), ("result", "refused")))]
+
+
+@pytest.mark.slow
+def test_bad_input_is_answered_counted_and_good_rows_still_apply(base: str) -> None:
+    cfg = write(os.path.join(base, "bad.yaml"), BAD_CFG)
+    with running(base, config=cfg) as sp:
+        ctx = zmq.Context.instance()
+        d = sp.socket(zmq.DEALER, "ingest", rcvtimeo_ms=5000)
+
+        def ask(*frames: bytes) -> dict:
+            d.send_multipart([b"", *frames])
+            return msgpack.unpackb(d.recv_multipart()[-1], raw=False)
+
+        def batch(n: int, **kw) -> bytes:
+            return msgpack.packb({"v": 1, "reporter": "bad", "batch": n, **kw}, use_bin_type=True)
+
+        # whole frames that cannot be read
+        assert ask(b"\xc1\x00").get("error", "").startswith("not_msgpack")
+        assert ask(msgpack.packb([1, 2])).get("error", "").startswith("not_a_map")
+        r = ask(msgpack.packb({"v": 2, "reporter": "bad", "batch": 1}))
+        assert r["error"].startswith("bad_version") and r["batch"] == 1
+        assert ask(msgpack.packb({"v": 1, "reporter": 5, "batch": 1}))["error"].startswith("bad_reporter")
+        assert ask(msgpack.packb({"v": 1, "reporter": "bad", "batch": "one"}))["error"].startswith("bad_batch")
+        assert ask(batch(2, hops="w1"))["error"].startswith("bad_hops")
+        assert ask(batch(3, hops=[], extra=1))["error"].startswith("unknown_field")
+        assert ask(batch(4, cols={}, topology="nope"))["error"].startswith("wrong_topology")
+        assert ask(batch(5), b"second payload")["error"].startswith("extra_frames")
+        big = batch(6, hops=[["w1", "w2", "w3", 0.001]] * 4000)    # > 65,536 bytes
+        assert len(big) > 65536
+        assert ask(big)["error"].startswith("oversized")
+
+        # one mixed batch: the good rows apply, each bad one is named
+        before = client.control(sp.endpoints["control"], {"op": "estimates", "node": "w1"})
+        q0 = before["estimates"]["w3"]["w2"]
+        rows = [
+            ["w1", "w2", "w3", 0.0123],            # 0 good
+            ["w1", "w2", "w3", float("nan")],      # 1 NaN
+            ["w1", "w2", "w3", float("inf")],      # 2 inf
+            ["w1", "w2", "w3", -0.001],            # 3 negative
+            ["w1", "zz", "w3", 0.001],             # 4 unknown node
+            ["w1", "e1", "w3", 0.001],             # 5 e1 is not w1's neighbour
+            ["w2", "w1", "w4", 0.002],             # 6 good
+            ["w1", "w2", "w3", "fast"],            # 7 wrong type
+            ["w1", "w2"],                          # 8 malformed row
+            ["w3", "w3", "w3", 0.001],             # 9 w3 is not its own neighbour
+        ]
+        ack = ask(batch(10, hops=rows, links=[["w1", "w2", "sideways"], ["w1", "e1", "down"]]))
+        assert ack["accepted"] == 2
+        assert ack["rejected"] == [[1, "bad_latency"], [2, "bad_latency"], [3, "bad_latency"],
+                                   [4, "unknown_node"], [5, "not_neighbour"], [7, "bad_latency"],
+                                   [8, "bad_row"], [9, "not_neighbour"],
+                                   [10, "bad_link_state"], [11, "not_neighbour"]]
+        after = client.control(sp.endpoints["control"], {"op": "estimates", "node": "w1"})
+        q1 = after["estimates"]["w3"]["w2"]
+        # first update of that entry: step c / 1^kappa = 1, so Q = latency + min_z Q[w2, w3, z]
+        # (the Q-routing update, Boyan & Littman 1994; w2's best for w3 is its 0.5 ms link)
+        assert q0 != q1 and math.isclose(q1, 0.0123 + 0.0005, rel_tol=1e-12)
+
+        # a re-sent batch is acknowledged again, not applied again
+        again = ask(batch(10, hops=rows, links=[["w1", "w2", "sideways"], ["w1", "e1", "down"]]))
+        assert again == ack
+        assert client.control(sp.endpoints["control"], {"op": "estimates", "node": "w1"}) == after
+
+        # a link reported down: the hops over it are refused until it comes back up
+        assert ask(batch(11, links=[["w3", "e3", "down"]]))["accepted"] == 1
+        r = ask(batch(12, hops=[["w3", "e3", "e4", 0.001]]))
+        assert r["accepted"] == 0 and r["rejected"] == [[0, "link_down"]]
+        assert ask(batch(13, links=[["w3", "e3", "up"]]))["accepted"] == 1
+
+        # a flood of tiny batches: all answered, memory for duplicates stays bounded
+        flood = 3000
+        for i in range(flood):
+            d.send_multipart([b"", wire.encode_ingest_rows("flood", i, [["w4", "w5", "w6", 0.0005]])])
+        acks = [msgpack.unpackb(d.recv_multipart()[-1], raw=False) for _ in range(flood)]
+        assert sorted(a["batch"] for a in acks) == list(range(flood))
+        assert all(a["accepted"] == 1 for a in acks)
+
+        # a frame far beyond the limit is cut off by libzmq (MAXMSGSIZE): no answer, the
+        # peer is disconnected and counted, and the service goes on serving
+        cut = sp.socket(zmq.DEALER, "ingest", rcvtimeo_ms=1500)
+        cut.send_multipart([b"", b"\x00" * (65536 + (1 << 20) + 10)])
+        with pytest.raises(zmq.Again):
+            cut.recv_multipart()
+        cut.close(0)
+
+        h = client.control(sp.endpoints["control"], {"op": "health"})
+        assert h["status"] == "ok"
+        # bounded: reporter "bad" has 4 applied batches, "flood" keeps only its last 50
+        assert h["counts"]["dedup_entries"] == 4 + 50
+
+        deadline = time.monotonic() + 5
+        while True:
+            vals = metric_values(sp.metrics_text())
+            if vals[("routerd_ingest_disconnects_total", ())] >= 1 or time.monotonic() > deadline:
+                break
+            time.sleep(0.1)
+        assert vals[("routerd_ingest_disconnects_total", ())] >= 1
+        expect_rows = {"bad_latency": 4, "unknown_node": 1, "not_neighbour": 3, "bad_row": 1,
+                       "bad_link_state": 1, "link_down": 1, "duplicate": 12,
+                       "bad_estimate": 0, "at_destination": 0}
+        for reason, n in expect_rows.items():
+            assert rejected(vals, reason) == n, reason
+        for reason in ("not_msgpack", "not_a_map", "bad_version", "bad_reporter", "bad_batch",
+                       "bad_hops", "unknown_field", "wrong_topology", "extra_frames", "oversized"):
+            assert refused(vals, reason) == 1, reason
+        assert refused(vals, "too_many_rows") == 0
+        assert vals[("routerd_observations_total", (("result", "accepted"),))] == 2 + flood
+        assert vals[("routerd_batches_total", (("result", "duplicate"),))] == 1
+        assert vals[("routerd_link_reports_total", ())] == 2
+        # and it still serves: a good batch is acknowledged and applied
+        assert ask(batch(99, hops=[["e1", "e2", "e3", 0.0007]]))["accepted"] == 1
+        d.close(0)
+        del ctx
