@@ -1,0 +1,331 @@
+"""routerd.client against a small in-test fake service (ROUTER + REP threads on ipc://)
+that decodes with routerd.wire and acknowledges.  The real daemon's end-to-end tests
+live with the service."""
+from __future__ import annotations
+
+import shutil
+import tempfile
+import threading
+import time
+from collections.abc import Iterator
+from typing import Any
+
+import numpy as np
+import pytest
+import zmq
+
+from routerd import client, topology, wire
+
+DEMO = "routerd/data/demo-lab.yaml"
+
+
+@pytest.fixture(scope="module")
+def topo() -> topology.Topology:
+    return topology.load(DEMO)
+
+
+@pytest.fixture()
+def ctx() -> Iterator[zmq.Context]:
+    c = zmq.Context()
+    yield c
+    c.term()      # hangs if any socket was left open with linger: a test of its own
+
+
+@pytest.fixture()
+def eps() -> Iterator[tuple[str, str, str]]:
+    d = tempfile.mkdtemp(prefix="rdc", dir="/tmp")    # ipc paths must stay short
+    yield f"ipc://{d}/ingest", f"ipc://{d}/control", f"ipc://{d}/tables"
+    shutil.rmtree(d, ignore_errors=True)
+
+
+class FakeService:
+    """Decodes batches with wire.decode_ingest, applies each (reporter, batch) once,
+    acknowledges every copy.  ``drop_acks``: how many acks of each batch to swallow."""
+
+    def __init__(self, ctx: zmq.Context, topo: topology.Topology, ingest: str, control: str,
+                 *, drop_acks: int = 0, hold: bool = False, error: str | None = None,
+                 nodes_topo: topology.Topology | None = None):
+        self.topo, self.drop_acks, self.hold, self.error = topo, drop_acks, hold, error
+        self.nodes_topo = nodes_topo or topo
+        self.router = ctx.socket(zmq.ROUTER)
+        self.router.linger = 0
+        self.router.bind(ingest)
+        self.rep = ctx.socket(zmq.REP)
+        self.rep.linger = 0
+        self.rep.bind(control)
+        self.applied: dict[tuple[str, int], wire.Ingest] = {}
+        self.order: list[tuple[str, int]] = []
+        self.copies: dict[tuple[str, int], int] = {}
+        self.acks_sent: dict[tuple[str, int], bytes] = {}
+        self.errors: list[wire.WireError] = []
+        self._stop = threading.Event()
+        self._t = threading.Thread(target=self._run, daemon=True)
+        self._t.start()
+
+    def _run(self) -> None:
+        poller = zmq.Poller()
+        poller.register(self.router, zmq.POLLIN)
+        poller.register(self.rep, zmq.POLLIN)
+        while not self._stop.is_set():
+            for sock, _ in poller.poll(20):
+                if sock is self.rep:
+                    req = wire.decode_control(self.rep.recv(), self.nodes_topo)
+                    if isinstance(req, wire.WireError):
+                        self.rep.send(wire.encode_error(req))
+                    else:
+                        self.rep.send(wire.encode_reply(wire.nodes_reply(self.nodes_topo)))
+                    continue
+                frames = self.router.recv_multipart()
+                ident, payload = frames[0], frames[-1]
+                assert frames[1:-1] == [b""]          # the documented envelope
+                out = self._handle(payload)
+                if out is not None:
+                    self.router.send_multipart([ident, b"", out])
+        self.router.close()
+        self.rep.close()
+
+    def _handle(self, payload: bytes) -> bytes | None:
+        ing = wire.decode_ingest(payload, self.topo)
+        if isinstance(ing, wire.WireError):
+            self.errors.append(ing)
+            return wire.encode_error(ing)
+        if self.error is not None:
+            return wire.encode_error(self.error, ing.batch)
+        key = (ing.reporter, ing.batch)
+        self.copies[key] = self.copies.get(key, 0) + 1
+        if key not in self.applied:
+            self.applied[key] = ing
+            self.order.append(key)
+            self.acks_sent[key] = wire.encode_ack(ing.batch, len(ing.hops) + len(ing.links),
+                                                  ing.rejections())
+        if self.hold or self.copies[key] <= self.drop_acks:
+            return None
+        return self.acks_sent[key]
+
+    def rows(self) -> list[tuple[str, str, str, float]]:
+        names = self.topo.nodes
+        out = []
+        for key in self.order:
+            h = self.applied[key].hops
+            out += [(names[a], names[b], names[c], float(x))
+                    for a, b, c, x in zip(h.src, h.via, h.dst, h.latency)]
+        return out
+
+    def close(self) -> None:
+        self._stop.set()
+        self._t.join(5)
+        assert not self._t.is_alive()
+
+
+@pytest.fixture()
+def fake(ctx: zmq.Context, topo: topology.Topology, eps: tuple[str, str, str]) -> Iterator[Any]:
+    made: list[FakeService] = []
+
+    def make(**kw: Any) -> FakeService:
+        f = FakeService(ctx, topo, eps[0], eps[1], **kw)
+        made.append(f)
+        return f
+    yield make
+    for f in made:
+        f.close()
+
+
+def _hops(topo: topology.Topology, m: int, seed: int = 0) -> list[tuple[str, str, str, float]]:
+    rng = np.random.default_rng(seed)
+    out = []
+    for _ in range(m):
+        x = int(rng.integers(0, topo.n))
+        y = int(rng.choice(topo.neighbours[x]))
+        d = int(rng.integers(0, topo.n))
+        out.append((topo.nodes[x], topo.nodes[y], topo.nodes[d], float(rng.random() * 0.01)))
+    return out
+
+
+# ---- delivery ---------------------------------------------------------------------------------
+@pytest.mark.parametrize("columnar", [True, False])
+def test_every_row_delivered_once_in_order(ctx: zmq.Context, topo: topology.Topology,
+                                           eps: tuple[str, str, str], fake: Any,
+                                           columnar: bool) -> None:
+    svc = fake()
+    hops = _hops(topo, 2500)
+    acks: list[client.Ack] = []
+    with client.Reporter(eps[0], "probe-a", control=eps[1], columnar=columnar, batch_rows=1000,
+                         timeout_s=1.0, context=ctx, on_ack=acks.append) as rep:
+        for h in hops:
+            rep.add_hop(*h)
+        rep.add_link("w1", "w2", "down")
+        rep.flush()
+        assert rep.pending == 0 and rep.pending_rows == 0
+        assert rep.accepted == 2501 and not rep.rejected
+    assert svc.rows() == hops
+    batches = [b for _, b in svc.order]
+    assert batches == list(range(batches[0], batches[0] + 3))     # consecutive numbers
+    assert [a.batch for a in acks] == batches and [a.accepted for a in acks] == [1000, 1000, 501]
+    assert all(svc.applied[k].columnar == columnar for k in svc.order)
+    last = svc.applied[svc.order[-1]]
+    assert last.links == ((topo.index["w1"], topo.index["w2"], False),)
+    assert last.link_rows == (500,)                               # after the 500 hop rows
+
+
+def test_estimates_travel(ctx: zmq.Context, topo: topology.Topology,
+                          eps: tuple[str, str, str], fake: Any) -> None:
+    svc = fake()
+    with client.Reporter(eps[0], "p", topology_nodes=topo, context=ctx, timeout_s=1.0) as rep:
+        rep.add_hop("w1", "w2", "w3", 0.001, 0.004)
+        rep.add_hop("w1", "w2", "w3", 0.002)
+    h = svc.applied[svc.order[0]].hops
+    assert h.estimate[0] == 0.004 and np.isnan(h.estimate[1])
+
+
+def test_named_rows_unknown_node_rejected_by_service(ctx: zmq.Context, topo: topology.Topology,
+                                                     eps: tuple[str, str, str], fake: Any) -> None:
+    fake()
+    with client.Reporter(eps[0], "p", columnar=False, context=ctx, timeout_s=1.0) as rep:
+        rep.add_hop("w1", "w2", "w3", 0.001)
+        rep.add_hop("w1", "saturn", "w3", 0.001)
+        rep.flush()
+        assert rep.accepted == 1 and rep.rejected == {"unknown_node": 1}
+        assert rep.last_ack is not None and rep.last_ack.rejected == ((1, "unknown_node"),)
+
+
+def test_columnar_unknown_node_is_a_local_error(ctx: zmq.Context, topo: topology.Topology,
+                                                eps: tuple[str, str, str]) -> None:
+    rep = client.Reporter(eps[0], "p", topology_nodes=topo.nodes, context=ctx)
+    assert rep.topology_id == topo.digest                 # computed from the names
+    with pytest.raises(client.UnknownNode, match="'saturn'"):
+        rep.add_hop("w1", "saturn", "w3", 0.001)
+    with pytest.raises(ValueError, match="'sideways'"):
+        rep.add_link("w1", "w2", "sideways")
+    rep.close(flush=False)
+    with pytest.raises(ValueError, match="node list"):
+        client.Reporter(eps[0], "p", context=ctx)          # columnar, no way to get the list
+
+
+def test_lost_acks_resent_with_same_number(ctx: zmq.Context, topo: topology.Topology,
+                                           eps: tuple[str, str, str], fake: Any) -> None:
+    svc = fake(drop_acks=2)
+    hops = _hops(topo, 300, seed=3)
+    with client.Reporter(eps[0], "p", topology_nodes=topo, batch_rows=100, timeout_s=0.1,
+                         retries=5, context=ctx) as rep:
+        for h in hops:
+            rep.add_hop(*h)
+        rep.flush()
+        assert rep.resends >= 6 and rep.batches_sent == 3
+    assert all(c == 3 for c in svc.copies.values())       # each batch arrived three times
+    assert svc.rows() == hops                             # and was applied once
+
+
+def test_service_down_then_up(ctx: zmq.Context, topo: topology.Topology,
+                              eps: tuple[str, str, str], fake: Any) -> None:
+    rep = client.Reporter(eps[0], "p", topology_nodes=topo, timeout_s=0.05, retries=2, context=ctx)
+    rep.add_hop("w1", "w2", "w3", 0.001)
+    t0 = time.monotonic()
+    with pytest.raises(client.DeliveryError) as ei:
+        rep.flush()
+    assert time.monotonic() - t0 < 5
+    assert len(ei.value.batches) == 1 and rep.pending == 1     # still pending, not lost
+    svc = fake()
+    rep.flush()                                                # a fresh retry budget
+    assert rep.pending == 0 and len(svc.order) == 1
+    rep.close()
+
+
+def test_memory_bound_blocks_then_raises(ctx: zmq.Context, topo: topology.Topology,
+                                         eps: tuple[str, str, str], fake: Any) -> None:
+    fake(hold=True)                         # takes batches, never acknowledges
+    rep = client.Reporter(eps[0], "p", topology_nodes=topo, batch_rows=10, max_pending=2,
+                          timeout_s=0.05, retries=1, context=ctx)
+    for h in _hops(topo, 20):
+        rep.add_hop(*h)                     # two full batches: both pending
+    assert rep.pending == 2
+    t0 = time.monotonic()
+    with pytest.raises(client.DeliveryError, match="limit is 2"):
+        for h in _hops(topo, 10):
+            rep.add_hop(*h)                 # the third batch waits for room, none comes
+    assert 0.05 <= time.monotonic() - t0 < 5
+    assert rep.pending == 2 and rep.pending_rows == 30
+    rep.close(flush=False)
+
+
+def test_wrong_topology_resent_by_name(ctx: zmq.Context, topo: topology.Topology,
+                                       eps: tuple[str, str, str], fake: Any) -> None:
+    """The service's node list changed (another order): the batch comes back refused as a
+    whole, is resent by name, and the reporter learns the new list."""
+    other = topology.build(topo.name, list(reversed(topo.nodes)),
+                           [topology.LinkSpec(topo.nodes[a], topo.nodes[b], float(dl), 1e7, 50, "x")
+                            for a, b, dl in zip(topo.src, topo.dst, topo.delay_s)])
+    svc = fake(nodes_topo=other)
+    svc.topo = other
+    with client.Reporter(eps[0], "p", topology_nodes=topo, control=eps[1], context=ctx,
+                         timeout_s=1.0) as rep:
+        rep.add_hop("w1", "w2", "e3", 0.001)
+        rep.flush()
+        assert rep.topology_id == other.digest and rep.accepted == 1
+        rep.add_hop("e1", "e2", "w3", 0.002)
+        rep.flush()
+    assert [e.code for e in svc.errors] == ["wrong_topology"]
+    assert svc.rows() == [("w1", "w2", "e3", 0.001), ("e1", "e2", "w3", 0.002)]
+    assert [svc.applied[k].columnar for k in svc.order] == [False, True]
+
+
+def test_whole_batch_error_raises(ctx: zmq.Context, topo: topology.Topology,
+                                  eps: tuple[str, str, str], fake: Any) -> None:
+    fake(error="bad_reporter: field 'reporter' is 'p', which this service does not accept")
+    rep = client.Reporter(eps[0], "p", topology_nodes=topo, context=ctx, timeout_s=1.0)
+    rep.add_hop("w1", "w2", "w3", 0.001)
+    with pytest.raises(client.ServiceError) as ei:
+        rep.flush()
+    assert ei.value.reason.startswith("bad_reporter") and ei.value.batch is not None
+    assert rep.pending == 0
+    rep.close()
+
+
+def test_first_batch_number_from_the_clock(ctx: zmq.Context, topo: topology.Topology,
+                                           eps: tuple[str, str, str], fake: Any) -> None:
+    svc = fake()
+    for _ in range(2):   # a restarted reporter with the same name must not reuse numbers
+        with client.Reporter(eps[0], "same", topology_nodes=topo, context=ctx, timeout_s=1.0) as rep:
+            rep.add_hop("w1", "w2", "w3", 0.001)
+    (a, b) = [n for _, n in svc.order]
+    assert b > a and abs(a - time.time_ns() // 1000) < 60_000_000
+
+
+# ---- control ----------------------------------------------------------------------------------
+def test_control_nodes_and_timeout(ctx: zmq.Context, topo: topology.Topology,
+                                   eps: tuple[str, str, str], fake: Any) -> None:
+    fake()
+    rep = client.control(eps[1], {"op": "nodes"}, 1.0, context=ctx)
+    assert rep == {"v": 1, "nodes": list(topo.nodes), "topology": topo.digest}
+    rep = client.control(eps[1], {"op": "fly"}, 1.0, context=ctx)
+    assert rep["error"].startswith("unknown_op")
+    t0 = time.monotonic()
+    with pytest.raises(TimeoutError, match="no reply"):
+        client.control(eps[2], {"op": "health"}, 0.2, context=ctx)   # nobody there
+    assert time.monotonic() - t0 < 3
+
+
+# ---- tables -----------------------------------------------------------------------------------
+def test_subscriber_keeps_latest_and_counts_gaps(ctx: zmq.Context, eps: tuple[str, str, str]) -> None:
+    pub = ctx.socket(zmq.PUB)
+    pub.linger = 0
+    pub.bind(eps[2])
+    sub = client.TableSubscriber(eps[2], context=ctx)
+    try:
+        # PUB/SUB joins late: publish a warm-up node until the subscription is in place
+        deadline = time.monotonic() + 5
+        while sub.received == 0 and time.monotonic() < deadline:
+            pub.send_multipart(wire.table_message("warm", 1, 1, {}))
+            sub.poll(0.05)
+        assert sub.received
+        routes = {"e1": [["w2", 0.9], ["w6", 0.1]]}
+        for seq in (1, 2, 5, 6, 6):                    # 3 and 4 lost; 6 twice
+            pub.send_multipart(wire.table_message("w1", seq, 7, routes | {"seq": [[str(seq), 1.0]]}))
+        pub.send_multipart([b"tables/w1", b"\xc1"])   # malformed
+        pub.send_multipart(wire.table_message("w1", 1, 8, routes))   # a restart: new epoch
+        assert sub.wait_for(lambda s: s.epoch.get("w1") == 8, 5)
+        assert sub.gaps["w1"] == 2 and sub.gaps_total == 2
+        assert sub.stale["w1"] == 1 and sub.malformed == 1 and sub.restarts == 1
+        assert sub.seq["w1"] == 1 and sub.tables["w1"] == routes
+    finally:
+        sub.close()
+        pub.close()
