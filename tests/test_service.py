@@ -300,3 +300,185 @@ def test_bad_input_is_answered_counted_and_good_rows_still_apply(base: str) -> N
         assert ask(batch(99, hops=[["e1", "e2", "e3", 0.0007]]))["accepted"] == 1
         d.close(0)
         del ctx
+
+
+# ---- lifecycle ----------------------------------------------------------------------------
+def wait_log(sp: ServiceProc, needle: str, timeout: float = 10.0) -> str:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        for line in list(sp.stderr_lines):
+            if needle in line:
+                return line
+        time.sleep(0.05)
+    raise AssertionError(f"no log line with {needle!r} in:\n{sp.log()}")
+
+
+@pytest.mark.slow
+def test_sigterm_final_snapshot_final_tables_and_restart_restores(base: str) -> None:
+    sp = ServiceProc(base, service_args(base))
+    try:
+        sub = client.TableSubscriber(sp.endpoints["publish"])
+        rep = client.Reporter(sp.endpoints["ingest"], "term", topology_nodes=DEMO, batch_rows=64)
+        rng = np.random.default_rng(3)
+        for _ in range(20):
+            x, y, d, lat = random_rows(DEMO, rng, 64, DEMO.delay_s * 3)
+            rep.add_hops([DEMO.nodes[i] for i in x], [DEMO.nodes[i] for i in y],
+                         [DEMO.nodes[i] for i in d], lat.tolist())
+        rep.flush()
+        rep.close()
+        est = {n: client.control(sp.endpoints["control"], {"op": "estimates", "node": n})["estimates"]
+               for n in ("w1", "e3", "r2")}
+        sub.poll(0.5)
+        seen = sub.received
+        t0 = time.monotonic()
+        sp.signal(signal.SIGTERM)
+        assert sp.wait(15) == 0
+        took = time.monotonic() - t0
+        assert took < 10, took
+        # the final tables: every node once more
+        sub.poll(1.0)
+        assert sub.received - seen >= DEMO.n
+        sub.close()
+        assert "stopped" in sp.log()
+        store = journal.SnapshotStore(journal.snapshot_dir(sp.state_dir))
+        state, rec = store.latest()
+        last = max(r.no for r in journal.iter_records(journal.journal_dir(sp.state_dir)))
+        assert rec == last
+        dedup = dict((r, [b for b, _, _ in w]) for r, w in state["dedup"])
+        assert len(dedup["term"]) == 20
+    finally:
+        sp.kill()
+    # a restart on the same state dir restores the snapshot: the same estimates
+    sp2 = ServiceProc(base, service_args(base))
+    try:
+        assert any(f"restored snapshot at record {rec}" in line for line in sp2.stdout_lines)
+        assert sp2.epoch != sp.epoch
+        for n, e in est.items():
+            assert client.control(sp2.endpoints["control"], {"op": "estimates", "node": n})["estimates"] == e
+        sp2.signal(signal.SIGINT)
+        assert sp2.wait(15) == 0
+    finally:
+        sp2.kill()
+
+
+@pytest.mark.slow
+def test_sighup_applies_good_tunables_and_rejects_a_bad_file(base: str) -> None:
+    cfg = os.path.join(base, "hup.yaml")
+    write(cfg, "engine:\n  explore: {max_rate: 0.1}\nservice:\n  publish_interval_s: 1.0\n")
+    sp = ServiceProc(base, service_args(base, "--config", cfg))
+    try:
+        ctl = sp.endpoints["control"]
+        # good: two tunables, and one key that needs a restart (reported, not applied)
+        write(cfg, "engine:\n  explore: {max_rate: 0.05}\nservice:\n  publish_interval_s: 0.5\n"
+                   "  max_drain: 64\n")
+        sp.signal(signal.SIGHUP)
+        line = wait_log(sp, "reloaded")
+        assert "engine.explore.max_rate" in line and "service.publish_interval_s" in line
+        assert "needs_restart=service.max_drain" in line
+        # bad: a value out of range, then a file that is not YAML — each rejected, logged
+        write(cfg, "engine:\n  explore: {max_rate: 1.4}\n")
+        sp.signal(signal.SIGHUP)
+        line = wait_log(sp, "reload rejected")
+        assert "engine.explore.max_rate" in line and "1.4" in line
+        write(cfg, "engine: [unclosed\n")
+        sp.signal(signal.SIGHUP)
+        deadline = time.monotonic() + 10
+        while sum("reload rejected" in x for x in sp.stderr_lines) < 2:
+            assert time.monotonic() < deadline, sp.log()
+            time.sleep(0.05)
+        assert client.control(ctl, {"op": "health"})["status"] == "ok"
+        vals = metric_values(sp.metrics_text())
+        assert vals[("routerd_reloads_total", (("result", "applied"),))] == 1
+        assert vals[("routerd_reloads_total", (("result", "rejected"),))] == 2
+        sp.signal(signal.SIGTERM)
+        assert sp.wait(15) == 0
+        # the running settings were the good reload's: the final snapshot says so, and the
+        # journal holds the config record a replay applies
+        state, _ = journal.SnapshotStore(journal.snapshot_dir(sp.state_dir)).latest()
+        assert state["settings"]["explore_max"] == 0.05
+        recs = [r for r in journal.iter_records(journal.journal_dir(sp.state_dir)) if r.kind == "config"]
+        assert recs and recs[-1].body["settings"]["explore_max"] == 0.05
+    finally:
+        sp.kill()
+
+
+@pytest.mark.slow
+def test_start_up_errors_are_clear(base: str) -> None:
+    import subprocess
+    import sys
+
+    def serve(*args: str) -> subprocess.CompletedProcess:
+        return subprocess.run([sys.executable, "-m", "routerd", "serve", *args], capture_output=True,
+                              text=True, timeout=60)
+
+    bad = write(os.path.join(base, "bad.yaml"), "service:\n  debounce_s: -1\n")
+    r = serve("--config", bad, *service_args(base))
+    assert r.returncode == 2 and "service.debounce_s" in r.stderr and "below 0" in r.stderr
+    r = serve(*service_args(base, "--topology", os.path.join(base, "missing.yaml")))
+    assert r.returncode == 2 and "does not exist" in r.stderr
+    r = serve(*service_args(base, "--ingest", "tcp://127.0.0.1:notaport"))
+    assert r.returncode == 2 and "ingest endpoint" in r.stderr
+    # a state dir written for another topology is refused, not reinterpreted
+    other = write(os.path.join(base, "tiny.yaml"), "topology:\n  name: tiny\n  defaults: "
+                  "{capacity_bps: 1.0e6, buffer_pkts: 10}\n  nodes: [a, b]\n  links:\n"
+                  "    - {between: [a, b], delay_s: 0.001}\n")
+    sd = os.path.join(base, "other-state")
+    sp = ServiceProc(base, service_args(base, "--topology", other, "--state-dir", sd))
+    try:
+        sp.signal(signal.SIGTERM)
+        assert sp.wait(15) == 0
+    finally:
+        sp.kill()
+    r = serve(*service_args(base, "--state-dir", sd))
+    assert r.returncode == 2 and "another topology" in r.stderr, r.stderr
+
+
+# ---- units ------------------------------------------------------------------------------
+def test_dedup_is_bounded_per_reporter_and_in_reporters() -> None:
+    d = Dedup(per_reporter=3, reporters=2)
+    for b in range(5):
+        d.put("a", b, 1, [])
+    assert [d.get("a", b) is not None for b in range(5)] == [False, False, True, True, True]
+    d.put("b", 0, 2, [(0, "bad_row")] * 1000)
+    assert len(d.get("b", 0)[1]) == 256              # rejections kept per batch are capped
+    d.get("a", 4)
+    d.put("a", 5, 1, [])                             # "a" seen last: "b" is the oldest
+    d.put("c", 0, 1, [])
+    assert d.get("b", 0) is None and d.get("a", 5) is not None and d.get("c", 0) is not None
+    e = Dedup(3, 2)
+    e.restore(d.export())
+    assert e.export() == d.export() and len(e) == len(d) == 4
+
+
+def test_flags_override_the_config_and_topology_paths_are_relative_to_it(tmp_path) -> None:
+    sub = tmp_path / "etc"
+    sub.mkdir()
+    cfg = sub / "c.yaml"
+    cfg.write_text("topology:\n  file: ../topo.yaml\nservice:\n  ingest: tcp://127.0.0.1:1\n"
+                   "  control: tcp://127.0.0.1:2\n")
+    ns = argparse.Namespace(config=str(cfg), topology=None, ingest="ipc:///tmp/x", pull=None,
+                            publish=None, control=None, metrics="127.0.0.1:0", state_dir=None)
+    c = load_config(ns)
+    assert c["service.ingest"] == "ipc:///tmp/x"          # the flag wins
+    assert c["service.control"] == "tcp://127.0.0.1:2"    # the file where no flag is given
+    assert c["service.metrics"] == "127.0.0.1:0"
+    assert c["service.publish"] == config.SCHEMA["service.publish"].default
+    assert c["topology.file"] == str(tmp_path / "topo.yaml")
+    ns.topology = "topohub:sndlib/abilene"
+    assert load_config(ns)["topology.file"] == "topohub:sndlib/abilene"
+
+
+def test_serve_flags_are_exactly_the_documented_ones() -> None:
+    from routerd.service import configure
+
+    p = argparse.ArgumentParser()
+    configure(p)
+    flags = {s for a in p._actions for s in a.option_strings} - {"-h", "--help"}
+    assert flags == {"--config", "--topology", "--ingest", "--pull", "--publish", "--control",
+                     "--metrics", "--state-dir"}
+    # with neither a config nor flags: the built-in demo lab on loopback
+    c = load_config(p.parse_args([]))
+    assert load_topology(c).name == "demo-lab"
+    for k in ("service.ingest", "service.publish", "service.control"):
+        assert c[k].startswith("tcp://127.0.0.1:")
+    assert c["service.metrics"].startswith("127.0.0.1:")
