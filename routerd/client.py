@@ -20,6 +20,7 @@ delivery is certain once acknowledged, never because something was queued at exi
 """
 from __future__ import annotations
 
+import math
 import time
 from collections import Counter, deque
 from collections.abc import Callable, Mapping, Sequence
@@ -216,7 +217,7 @@ class Reporter:
         """Many hops at once (columns of names and seconds)."""
         est = [None] * len(frm) if estimate_s is None else estimate_s
         for a, b, c, x, e in zip(frm, via, dst, latency_s, est):
-            self.add_hop(a, b, c, x, None if e is None or e != e else e)
+            self.add_hop(a, b, c, x, None if e is None or math.isnan(e) else e)
 
     def add_link(self, frm: str, to: str, state: str) -> None:
         """A link event: ``state`` is "down" or "up"."""
@@ -296,13 +297,14 @@ class Reporter:
         b = rep.get("batch")
         if "error" in rep:
             reason = str(rep["error"])
-            p = self._pending.get(b) if isinstance(b, int) else None
-            if p is not None and reason.startswith("wrong_topology") and p.cols is not None:
-                self._reencode_named(b, p)
-                return
-            if p is not None:
-                self._drop(b)
-            raise ServiceError(reason, b if isinstance(b, int) else None)
+            bn = b if isinstance(b, int) else None
+            p = self._pending.get(bn) if bn is not None else None
+            if bn is not None and p is not None:
+                if reason.startswith("wrong_topology") and p.cols is not None:
+                    self._reencode_named(bn, p)
+                    return
+                self._drop(bn)
+            raise ServiceError(reason, bn)
         if not isinstance(b, int) or b not in self._pending:
             self.late_acks += 1
             return
@@ -328,7 +330,7 @@ class Reporter:
         assert p.cols is not None and p.nodes is not None
         names = np.array(p.nodes, dtype=object)
         s, v, d, lat, est = p.cols
-        rows = [[a, y, c, float(x)] if e != e else [a, y, c, float(x), float(e)]
+        rows = [[a, y, c, float(x)] if math.isnan(e) else [a, y, c, float(x), float(e)]
                 for a, y, c, x, e in zip(names[s], names[v], names[d], lat.tolist(), est.tolist())]
         p.frame = wire.encode_ingest_rows(self.name, b, rows, p.links)
         p.cols = None
@@ -389,7 +391,7 @@ class Reporter:
     def __enter__(self) -> Reporter:
         return self
 
-    def __exit__(self, exc_type: Any, *exc: Any) -> None:
+    def __exit__(self, exc_type: object, *exc: object) -> None:
         self.close(flush=exc_type is None)
 
 
@@ -478,5 +480,5 @@ class TableSubscriber:
     def __enter__(self) -> TableSubscriber:
         return self
 
-    def __exit__(self, *exc: Any) -> None:
+    def __exit__(self, *exc: object) -> None:
         self.close()

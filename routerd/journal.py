@@ -122,7 +122,7 @@ def pack(obj: Any) -> bytes:
     return msgpack.packb(obj, use_bin_type=True, default=_default)
 
 
-def unpack(data: bytes) -> Any:
+def unpack(data: bytes | memoryview) -> Any:
     return msgpack.unpackb(data, raw=False, strict_map_key=False, ext_hook=_ext_hook)
 
 
@@ -542,7 +542,7 @@ class Journal:
     def __enter__(self) -> Journal:
         return self
 
-    def __exit__(self, *exc: Any) -> None:
+    def __exit__(self, *exc: object) -> None:
         self.close()
 
 
@@ -608,7 +608,7 @@ class SnapshotStore:
             raise ValueError(f"{path}: CRC mismatch")
         try:
             obj = unpack(body)
-        except Exception as e:
+        except Exception as e:  # noqa: BLE001 - any decode failure means a bad file
             raise ValueError(f"{path}: does not decode: {e}") from None
         if not isinstance(obj, dict) or obj.get("record_no") != no or not isinstance(obj.get("state"), dict):
             raise ValueError(f"{path}: not a snapshot body")

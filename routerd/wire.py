@@ -64,9 +64,9 @@ a hop over a link marked down).
 from __future__ import annotations
 
 import math
-from itertools import chain
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from itertools import chain
 from types import SimpleNamespace
 from typing import Any
 
@@ -157,11 +157,11 @@ class Ingest:
     def rejections(self, engine_rejected: Sequence[tuple[int, str]] = ()) -> list[list[Any]]:
         """Every rejected row in wire numbering, sorted: decode-time ones plus the engine's
         (whose indices point into ``hops`` and are mapped back through ``hop_rows``)."""
-        out = [[int(r), s] for r, s in self.rejected]
+        out: list[list[Any]] = [[int(r), s] for r, s in self.rejected]
         if len(engine_rejected):
             rows = self.hop_rows
             out += [[int(rows[i]), s] for i, s in engine_rejected]
-        out.sort(key=lambda p: p[0])
+        out.sort(key=lambda p: int(p[0]))
         return out
 
 
@@ -174,7 +174,7 @@ def _show(value: Any, limit: int = 60) -> str:
     """A bounded repr for error messages (peer values can be huge)."""
     try:
         s = repr(value)
-    except Exception:  # pragma: no cover - repr of msgpack values does not fail
+    except Exception:  # noqa: BLE001 # pragma: no cover - repr of msgpack values does not fail
         s = f"<{type(value).__name__}>"
     return s if len(s) <= limit else s[: limit - 3] + "..."
 
@@ -211,7 +211,7 @@ def _unpack(frame: Any, max_bytes: int | None) -> Any:
                                max_array_len=n, max_map_len=n)
     except msgpack.ExtraData:
         return WireError("not_msgpack: the frame holds more than one msgpack object")
-    except Exception as e:  # every parse failure of peer bytes is the peer's fault
+    except Exception as e:  # noqa: BLE001 -  # every parse failure of peer bytes is the peer's fault
         return WireError(f"not_msgpack: {type(e).__name__}: {_show(str(e), 80)}")
 
 
@@ -219,7 +219,7 @@ def _header(obj: Any) -> tuple[str, int] | WireError:
     if not isinstance(obj, dict):
         return WireError(f"not_a_map: the frame is a msgpack {type(obj).__name__}, expected a map")
     bn = obj.get("batch")
-    batch = bn if _is_int(bn) and 0 <= bn < 2**63 else None
+    batch = bn if isinstance(bn, int) and not isinstance(bn, bool) and 0 <= bn < 2**63 else None
     rep = obj.get("reporter")
     reporter = rep if isinstance(rep, str) else None
     v = obj.get("v", "<missing>")
@@ -239,7 +239,7 @@ def _header(obj: Any) -> tuple[str, int] | WireError:
     if extra:
         return WireError(f"unknown_field: {_show(extra[0])} is not a field of a v1 batch "
                          f"(fields: {', '.join(sorted(_INGEST_KEYS))})", batch, reporter)
-    return reporter, batch
+    return rep, batch
 
 
 # ---- ingest ------------------------------------------------------------------------------
@@ -248,7 +248,7 @@ def decode_ingest(frame: bytes, topo: Topology, *, max_rows: int | None = None,
     """Decode one ingest frame against ``topo``.  Never raises on any input."""
     try:
         return _decode_ingest(frame, topo, max_rows, max_bytes)
-    except Exception as e:  # a bug of ours must not take the service down; say so loudly
+    except Exception as e:  # noqa: BLE001 -  # a bug of ours must not take the service down; say so loudly
         return WireError(f"bad_request: internal decoder error {type(e).__name__}: "
                          f"{_show(str(e), 80)} (please report)")
 
@@ -553,7 +553,7 @@ def decode_reply(data: bytes) -> dict[str, Any]:
     """A reply from the service (ack, error or control reply).  Raises :class:`BadReply`."""
     try:
         obj = msgpack.unpackb(data, raw=False, strict_map_key=False, max_ext_len=0)
-    except Exception as e:
+    except Exception as e:  # noqa: BLE001 - any parse failure is the peer's
         raise BadReply(f"reply is not msgpack: {type(e).__name__}: {_show(str(e), 80)}") from None
     if not isinstance(obj, dict):
         raise BadReply(f"reply is a {type(obj).__name__}, expected a map")
@@ -619,7 +619,7 @@ def decode_control(frame: bytes, topo: Topology | None = None) -> dict[str, Any]
     """A control request, checked (names too when ``topo`` is given).  Never raises."""
     try:
         return _decode_control(frame, topo)
-    except Exception as e:  # pragma: no cover - defensive, as in decode_ingest
+    except Exception as e:  # noqa: BLE001 -  # pragma: no cover - defensive, as in decode_ingest
         return WireError(f"bad_request: internal decoder error {type(e).__name__}: {_show(str(e), 80)}")
 
 

@@ -183,7 +183,7 @@ def test_bad_record_number_is_corruption(tmp_path: pytest.TempPathFactory) -> No
     d = str(tmp_path)
     j = _fill(d, 3)
     j.close()
-    (first, seg) = J._segments(d)[0]
+    (_, seg) = J._segments(d)[0]
     data = bytearray(_read(seg))
     off = 16 + 20 + struct.unpack_from("<I", data, 16 + 4)[0]    # second record
     length = struct.unpack_from("<I", data, off + 4)[0]
@@ -210,7 +210,7 @@ def test_rollover_and_retirement(tmp_path: pytest.TempPathFactory) -> None:
     cut = firsts[2] + 1          # inside the third segment
     assert j.retire_before(cut) == 2
     assert [f for f, _ in J._segments(d)] == firsts[2:]
-    assert [r.no for r in j.records(after=cut)][0] == cut + 1
+    assert next(r.no for r in j.records(after=cut)) == cut + 1
     assert j.bytes_total == sum(os.path.getsize(p) for _, p in J._segments(d))
     # the segment being written is never retired
     j.retire_before(10**9)
