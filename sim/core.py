@@ -85,13 +85,12 @@ def run_core(
     series_interval_s: float = 1.0,
     link_events: Sequence[LinkEvent] = (),
     progress: Callable[[float, int], None] | None = None,
-    progress_every: int = 1 << 16,
 ) -> dict[str, Any]:
     """Simulate until ``duration_s`` of virtual time; return raw counts, samples and series.
 
     ``policy`` must already be attached.  ``packets`` yields :data:`PacketTuple` in
-    non-decreasing time order.  ``progress(t, events)`` is called every
-    ``progress_every`` events.  The result is a dict of plain Python values.
+    non-decreasing time order.  ``progress(t, events)`` is called at every
+    series sample.  The result is a dict of plain Python values.
     """
     n = topo.n
     nl = topo.n_links
@@ -119,17 +118,14 @@ def run_core(
 
     # packet state, parallel lists indexed by packet id
     p_node: list[int] = []     # node the pending event happens at
-    p_dst: list[int] = []      # destination, -1 = free id
+    p_dst: list[int] = []      # destination; -1 = free id, -2 = dropped, arrival still pending
     p_t0: list[float] = []     # injection time
     p_ttl: list[int] = []
     p_flow: list[int] = []
     p_bits: list[float] = []
-    p_hops: list[int] = []
     p_prev: list[int] = []     # node that sent it on its current hop, -1 at injection
     p_enq: list[float] = []    # time it entered p_prev's output queue
-    p_link: list[int] = []     # link of its current hop, -1 none
     p_dep: list[float] = []    # departure time from that link's queue
-    p_dead: list[bool] = []    # dropped while its arrival event is still in the heap
     free_ids: list[int] = []
 
     heap: list[tuple[float, int]] = []
@@ -148,9 +144,13 @@ def run_core(
     heappush(heap, (ivl, _SAMPLE))
     if warm > 0:
         heappush(heap, (warm, _WARMUP))
-    for i, ev in enumerate(sorted(link_events, key=lambda e: e.t)):
-        heappush(heap, (float(ev.t), _LINK0 - i))
     events_sorted = sorted(link_events, key=lambda e: e.t)
+    for i, ev in enumerate(events_sorted):
+        heappush(heap, (float(ev.t), _LINK0 - i))
+    # the end: after every event at t <= end (the most negative code pops first on a tie)
+    end_code = _LINK0 - len(events_sorted)
+    heappush(heap, (math.nextafter(end, math.inf), end_code))
+    ctrl_pushed = len(heap) - (1 if pending is not None else 0)
 
     # counters for packets injected at/after warm-up (the "measured" packets)
     offered = delivered = ttl_expired = 0
@@ -179,26 +179,20 @@ def run_core(
     b_ttl = 0
     last_busy = [0.0] * nl
     busy_warm = [0.0] * nl
-    events = 0
+    pushed_hops = 0
+    inj_pushed = 1 if pending is not None else 0
     t = 0.0
     wall0 = time.perf_counter()
 
-    while heap:
+    while True:
         t, c = heappop(heap)
-        if t > end:
-            t = end
-            break
-        events += 1
-        if progress is not None and not events % progress_every:
-            progress(t, events)
         if c >= 0:
-            if p_dead[c]:
-                p_dead[c] = False
+            d = p_dst[c]
+            if d < 0:  # dropped at a link cut while on its way: now the id is free
                 p_dst[c] = -1
                 free_ids.append(c)
                 continue
             y = p_node[c]
-            d = p_dst[c]
             if on_hop is not None:
                 on_hop(p_prev[c], y, d, t - p_enq[c], t)
             if y == d:
@@ -207,7 +201,7 @@ def run_core(
                     delivered += 1
                     dt = t - t0
                     deliveries.append(dt)
-                    hops_sum += p_hops[c]
+                    hops_sum += ttl - p_ttl[c]
                     sys_sum += dt
                     left += 1
                 b_deliv += 1
@@ -226,18 +220,18 @@ def run_core(
             try:
                 pending = nxt()
                 heappush(heap, (pending[0], _INJECT))
+                inj_pushed += 1
             except StopIteration:
                 pending = None
             if free_ids:
                 c = free_ids.pop()
                 p_node[c] = x; p_dst[c] = d; p_t0[c] = t; p_ttl[c] = ttl
-                p_flow[c] = flow; p_bits[c] = bits; p_hops[c] = 0; p_prev[c] = -1
-                p_enq[c] = t; p_link[c] = -1
+                p_flow[c] = flow; p_bits[c] = bits; p_prev[c] = -1; p_enq[c] = t
             else:
                 c = len(p_dst)
                 p_node.append(x); p_dst.append(d); p_t0.append(t); p_ttl.append(ttl)
-                p_flow.append(flow); p_bits.append(bits); p_hops.append(0); p_prev.append(-1)
-                p_enq.append(t); p_link.append(-1); p_dep.append(0.0); p_dead.append(False)
+                p_flow.append(flow); p_bits.append(bits); p_prev.append(-1)
+                p_enq.append(t); p_dep.append(0.0)
             if t >= warm:
                 offered += 1
             offered_all += 1
@@ -250,6 +244,7 @@ def run_core(
         elif c == _TICK:
             policy.tick(t)
             heappush(heap, (t + tick_iv, _TICK))  # type: ignore[operator]
+            ctrl_pushed += 1
             continue
         elif c == _SAMPLE:
             s_t.append(t); s_deliv.append(b_deliv); s_dsum.append(b_dsum)
@@ -258,6 +253,9 @@ def run_core(
             last_busy = busy[:]
             b_deliv = 0; b_dsum = 0.0; b_drop = 0; b_ttl = 0
             heappush(heap, (t + ivl, _SAMPLE))
+            ctrl_pushed += 1
+            if progress is not None:
+                progress(t, pushed_hops + inj_pushed + ctrl_pushed - len(heap))
             continue
         elif c == _WARMUP:
             measuring = True
@@ -265,6 +263,9 @@ def run_core(
             area = 0.0
             busy_warm = busy[:]
             continue
+        elif c == end_code:
+            t = end
+            break
         else:
             ev = events_sorted[_LINK0 - c]
             for k in ev.links:
@@ -277,9 +278,11 @@ def run_core(
                 up[k] = going_up
                 if not going_up:
                     # drop what is still queued on k (dep > t); packets on the wire arrive
+                    a_k, b_k = src_l[k], dst_l[k]
                     for pid in range(len(p_dst)):
-                        if p_link[pid] == k and p_dst[pid] >= 0 and not p_dead[pid] and p_dep[pid] > t:
-                            p_dead[pid] = True
+                        if (p_dst[pid] >= 0 and p_prev[pid] == a_k and p_node[pid] == b_k
+                                and p_dep[pid] > t):
+                            p_dst[pid] = -2
                             if p_t0[pid] >= warm:
                                 drop_down += 1
                                 sys_sum += t - p_t0[pid]
@@ -326,10 +329,9 @@ def run_core(
                         p_node[c] = h
                         p_prev[c] = x
                         p_enq[c] = t
-                        p_link[c] = k
                         p_dep[c] = dep
                         p_ttl[c] = ttl_c - 1
-                        p_hops[c] += 1
+                        pushed_hops += 1
                         heappush(heap, (dep + delay[k], c))
                         continue
                     reason = 0
@@ -365,7 +367,9 @@ def run_core(
         p_dst[c] = -1
         free_ids.append(c)
 
-    t_end = max(t, end) if not heap else end
+    t_end = end
+    # every pop was an event; the end marker and what is still queued were not
+    events = pushed_hops + inj_pushed + ctrl_pushed - len(heap) - 1
     if measuring:
         area += in_net * (t_end - last_t)
     window = max(t_end - warm, 0.0)

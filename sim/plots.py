@@ -60,6 +60,7 @@ def plot_delivery(result: dict[str, Any], path: str) -> str:
     fig, ax = plt.subplots(figsize=(8, 4.5), dpi=100)
     ax.plot(t, md, color="tab:blue", marker=".", label="mean delivery time")
     ax.set_xlabel("virtual time (s)")
+    ax.set_ylim(bottom=0, top=max(1e-3, float(np.nanmax(md)) * 1.1) if np.isfinite(md).any() else 1.0)
     ax.set_ylabel("mean delivery time per interval (ms)", color="tab:blue")
     if summ.get("warmup_s", 0) > 0:
         ax.axvline(summ["warmup_s"], color="grey", ls=":", lw=1)

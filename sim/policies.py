@@ -122,8 +122,8 @@ class QRouting(Policy):
             self._prop[a][b] = 0.0 if self.instant else float(topology.delay_s[k])
         self._rows: list[tuple[float, int, int, int, float, float]] = []
         self.table = [[-1] * n for _ in range(n)]
-        self._split: list[list[tuple[tuple[int, ...], tuple[float, ...]] | None]] = [
-            [None] * n for _ in range(n)]
+        self._split: list[dict[int, tuple[tuple[int, ...], tuple[float, ...]]]] = [
+            {} for _ in range(n)]
         self._slots = topology.slots.astype(np.int64)
         self._u: list[float] = []
         self._ui = 0
@@ -136,39 +136,41 @@ class QRouting(Policy):
 
     # -- forwarding ----------------------------------------------------------------
     def _refresh(self, nodes: Any) -> None:
-        """Rebuild the cached tables of ``nodes`` from the engine's published weights."""
+        """Rebuild the fast-path rows of ``nodes`` from the engine's published tables.
+
+        Entries that split traffic become -2; their weights are read from
+        ``Engine.weights`` on first use after each change (a tick touches far fewer
+        (node, destination) pairs than a table holds)."""
         xs = np.fromiter(nodes, dtype=np.int64)
         if xs.size == 0:
             return
         eng = self.engine
         g = eng.greedy[xs]                                             # (m, n) slot
-        sl = self._slots[xs]                                           # (m, K)
-        nh = np.where(g >= 0, np.take_along_axis(sl, np.maximum(g, 0), axis=1), -1)
-        alt = eng.alt[xs]                                              # (m, n, K)
-        eps = eng.eps[xs]
-        explore = (g >= 0) & alt.any(axis=2) & (eps > 0)  # zero share: greedy only
+        nh = np.where(g >= 0, np.take_along_axis(self._slots[xs], np.maximum(g, 0), axis=1), -1)
+        explore = (g >= 0) & eng.alt[xs].any(axis=2) & (eng.eps[xs] > 0)  # zero share: greedy only
         row_vals = np.where(explore, -2, nh).tolist()
         for i, x in enumerate(xs.tolist()):
             self.table[x][:] = row_vals[i]
-        ii, dd = np.nonzero(explore)
-        if ii.size:
-            for i, d, e, hop, a in zip(ii.tolist(), dd.tolist(), eps[ii, dd].tolist(),
-                                       nh[ii, dd].tolist(), alt[ii, dd].tolist()):
-                x = int(xs[i])
-                srow = sl[i]
-                alts = [int(srow[j]) for j, on in enumerate(a) if on]
-                share = e / len(alts)
-                hops = (hop, *alts)
-                cum = [1.0 - e]
-                for _ in alts:
-                    cum.append(cum[-1] + share)
-                cum[-1] = 1.0
-                self._split[x][d] = (hops, tuple(cum))
+            self._split[x] = {}
+
+    def split(self, x: int, d: int) -> tuple[tuple[int, ...], tuple[float, ...]]:
+        """(next hops, cumulative weights) of x for d, from ``Engine.weights``, cached."""
+        sp = self._split[x].get(d)
+        if sp is None:
+            w = self.engine.weights(x, d)
+            acc = 0.0
+            cum = []
+            for _, v in w:
+                acc += v
+                cum.append(acc)
+            cum[-1] = 1.0
+            sp = self._split[x][d] = (tuple(h for h, _ in w), tuple(cum))
+        return sp
 
     def next_hop(self, x: int, d: int, flow: int, now: float) -> int:
-        sp = self._split[x][d]
-        if sp is None:
+        if self.table[x][d] != -2:  # type: ignore[index]
             return self.table[x][d]  # type: ignore[index]
+        sp = self._split[x].get(d) or self.split(x, d)
         if self._ui >= len(self._u):
             self._u = self.rng.random(4096).tolist()
             self._ui = 0
@@ -208,8 +210,6 @@ class QRouting(Policy):
         dec = self.engine.decide(now)
         self.ticks += 1
         if dec.changed_nodes:
-            for x in dec.changed_nodes:
-                self._split[x] = [None] * self.topo.n
             self._refresh(sorted(dec.changed_nodes))
         self._V = self._estimates()
 

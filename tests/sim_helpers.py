@@ -1,0 +1,12 @@
+"""Shared checks for the simulator's tests (imported by tests/test_sim_*.py)."""
+from __future__ import annotations
+
+from typing import Any
+
+
+def assert_little(s: dict[str, Any], rel: float = 0.03) -> None:
+    """Little's law L = lambda W (Little, Operations Research 9, 1961): the time-average
+    number of packets in the network equals the rate at which packets leave times their
+    mean time in it.  Only edge effects at the window's ends separate the two measures."""
+    L, lw = s["little_L"], s["little_lambda_W"]
+    assert abs(L - lw) <= rel * max(L, 1e-9) + 1e-3, (L, lw)

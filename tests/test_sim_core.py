@@ -1,0 +1,157 @@
+"""The event loop against queueing theory, plus TTL, link-down and determinism checks.
+
+Tolerances come from each run's own 95% confidence interval (batch means for delays,
+independent replications for blocking), never a guessed percentage.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from routerd import config, topology
+from sim.core import LinkEvent, run_core
+from sim.policies import Shortest
+from sim.policy import Policy
+from sim.run import run
+from sim.traffic import PoissonTraffic
+from sim_helpers import assert_little
+
+MU = 1000.0  # packets/s: 8 Mbit/s over 1000-byte packets
+
+
+def one_link(buffer_pkts: int = 100000, delay_s: float = 0.0) -> dict:
+    # two nodes; all traffic a -> b (the demand matrix), b -> a only keeps the graph connected
+    return {"topology": {
+        "name": "one-link", "nodes": ["a", "b"],
+        "links": [{"from": "a", "to": "b", "delay_s": delay_s, "capacity_bps": 8.0e6,
+                   "buffer_pkts": buffer_pkts},
+                  {"from": "b", "to": "a", "delay_s": delay_s, "capacity_bps": 8.0e6,
+                   "buffer_pkts": buffer_pkts}],
+        "demands": [{"from": "a", "to": "b", "rate": 1.0}]}}
+
+
+def sim_one_link(lam: float, dist: str, seed: int = 1, duration: float = 300.0, **kw) -> dict:
+    return run({"policy": "shortest", "rate_pps": lam, "duration_s": duration, "seed": seed,
+                "topology": one_link(**kw), "demands": True, "packet_bytes": 1000.0,
+                "size_dist": dist, "warmup_s": 10.0, "series": False})["summary"]
+
+
+def assert_within_ci(measured: float, ci95: float, theory: float) -> None:
+    # the CI must be informative (a few percent of the value) for the check to mean anything
+    assert math.isfinite(ci95) and 0 < ci95 < 0.05 * theory, (ci95, theory)
+    # 1.5 half-widths is about 3 standard errors
+    assert abs(measured - theory) <= 1.5 * ci95, (measured, theory, ci95)
+
+
+@pytest.mark.parametrize("lam", [500.0, 800.0])
+def test_mm1_mean_sojourn(lam: float) -> None:
+    # M/M/1: W = 1 / (mu - lambda) (Kleinrock, Queueing Systems Vol. 1, 1975, eq. 3.26)
+    s = sim_one_link(lam, "exp")
+    assert_within_ci(s["mean_delivery_s"], s["mean_delivery_ci95_s"], 1.0 / (MU - lam))
+    assert s["dropped"] == 0 and s["ttl_expired"] == 0
+    assert_little(s)
+    # the link is busy a fraction rho of the time (utilisation law)
+    assert s["link_util_max"] == pytest.approx(lam / MU, rel=0.03)
+
+
+def test_md1_pollaczek_khinchine() -> None:
+    # M/D/1 by the Pollaczek-Khinchine mean-value formula (Kleinrock 1975, eq. 5.73):
+    # W = 1/mu + rho / (2 mu (1 - rho)) for deterministic service
+    lam = 800.0
+    rho = lam / MU
+    s = sim_one_link(lam, "fixed")
+    assert_within_ci(s["mean_delivery_s"], s["mean_delivery_ci95_s"],
+                     1.0 / MU + rho / (2 * MU * (1 - rho)))
+    assert_little(s)
+
+
+def test_propagation_adds_its_delay() -> None:
+    lam = 500.0
+    s = sim_one_link(lam, "exp", delay_s=0.004)
+    assert_within_ci(s["mean_delivery_s"], s["mean_delivery_ci95_s"], 1.0 / (MU - lam) + 0.004)
+    assert_little(s)
+
+
+def test_mm1k_blocking_probability() -> None:
+    # M/M/1/K blocking: P_K = (1 - rho) rho^K / (1 - rho^(K+1)) (Kleinrock 1975, eq. 3.45);
+    # K counts the packet in transmission, as buffer_pkts does
+    K, lam = 5, 900.0
+    rho = lam / MU
+    pk = (1 - rho) * rho ** K / (1 - rho ** (K + 1))
+    reps = [sim_one_link(lam, "exp", seed=s, duration=60.0, buffer_pkts=K) for s in range(1, 9)]
+    for s in reps:
+        assert_little(s)
+        assert s["dropped"] == s["dropped_buffer"]
+    p = np.array([s["dropped"] / s["offered"] for s in reps])
+    # 95% CI from 8 independent replications, Student's t with 7 d.o.f. = 2.365 (standard tables)
+    half = 2.365 * p.std(ddof=1) / math.sqrt(len(p))
+    assert 0 < half < 0.05 * pk
+    assert abs(p.mean() - pk) <= 1.5 * half, (p.mean(), pk, half)
+
+
+class PingPong(Policy):
+    """A deliberately broken policy: node 0 and node 1 hand packets for 2 back and forth."""
+
+    name = "pingpong"
+
+    def next_hop(self, x: int, d: int, flow: int, now: float) -> int:
+        if d == 2:
+            return 1 if x == 0 else 0 if x == 1 else -1
+        return d if d in self.topo.neighbours[x] else 1
+
+
+def line3() -> topology.Topology:
+    return topology.from_mapping({"topology": {
+        "name": "line", "nodes": ["a", "b", "c"], "defaults": {"capacity_bps": 1e7, "buffer_pkts": 100},
+        "links": [{"between": ["a", "b"], "delay_s": 0.001}, {"between": ["b", "c"], "delay_s": 0.001}]}})
+
+
+def test_ttl_expiry_counts_a_loop() -> None:
+    topo = line3()
+    pol = PingPong()
+    pol.attach(topo, np.random.default_rng(0), config.load(None))
+    w = np.zeros((3, 3))
+    w[0, 2] = 1.0  # every packet a -> c: a and b bounce it until its TTL runs out
+    tr = PoissonTraffic(3, 50.0, np.random.default_rng(1), pair_weights=w, duration_s=10.0)
+    raw = run_core(topo, pol, tr.packets(), duration_s=10.0, ttl=16)
+    assert raw["offered"] > 300
+    assert raw["delivered"] == 0 and raw["dropped"] == 0
+    # everything that left the network left by TTL expiry, after exactly 16 hops
+    assert raw["ttl_expired"] == raw["offered"] - raw["in_flight_end"]
+    assert raw["in_flight_end"] <= 3
+
+
+def test_link_down_drops_queued_packets_and_counts_them() -> None:
+    topo = line3()
+    pol = Shortest()
+    pol.attach(topo, np.random.default_rng(0), None)
+    # saturate a -> b so its queue is full when the link goes down at t = 5
+    w = np.zeros((3, 3))
+    w[0, 1] = 1.0
+    tr = PoissonTraffic(3, 1500.0, np.random.default_rng(1), pair_weights=w, duration_s=10.0)
+    k = topo.link("a", "b")
+    ev = [LinkEvent(5.0, (k,), "down"), LinkEvent(7.0, (k,), "up")]
+    raw = run_core(topo, pol, tr.packets(), duration_s=10.0, link_events=ev)
+    down = raw["dropped_link_down"]
+    # at least a full queue was lost at the cut, and 2 s of arrivals after it (1500/s)
+    assert down >= 100 + 2 * 1500 * 0.9
+    assert raw["dropped"] == raw["dropped_buffer"] + down + raw["dropped_no_route"]
+    assert raw["offered"] == raw["delivered"] + raw["dropped"] + raw["ttl_expired"] + raw["in_flight_end"]
+    # traffic flows again after the link comes back: the last series bins deliver
+    assert raw["series"]["delivered"][-1] > 1000
+
+
+def test_same_seed_same_summary_and_different_seed_differs() -> None:
+    spec = {"policy": "qrouting", "rate_pps": 900.0, "duration_s": 6.0, "seed": 7,
+            "scenario": {"scenario": {"load": [{"step": 1.5, "at_s": 3}],
+                                      "links": [{"at_s": 4, "between": ["w3", "e3"], "down": True}]}}}
+    a = run(spec)
+    b = run(spec)
+    c = run({**spec, "seed": 8})
+    for r in (a, b, c):
+        r["summary"].pop("wall_s")
+    assert a == b
+    assert a["summary"] != c["summary"]
+    assert_little(a["summary"])
