@@ -47,6 +47,8 @@ CONTROL_OPS = ("tables", "estimates", "health", "snapshot", "link", "nodes", "ot
 CONTROL_RESULTS = ("ok", "error")
 #: Snapshot causes.
 SNAPSHOT_CAUSES = ("interval", "request", "shutdown")
+#: Reload outcomes.
+RELOAD_RESULTS = ("applied", "rejected")
 #: Ingest sockets.
 INGEST_SOCKETS = ("router", "pull")
 
@@ -57,7 +59,7 @@ class Histo:
     Counts are per bucket (not cumulative) until exported; ``+Inf`` is the last bucket.
     """
 
-    __slots__ = ("bounds", "counts", "sum", "_lock")
+    __slots__ = ("_lock", "bounds", "counts", "sum")
 
     def __init__(self, bounds: Sequence[float]):
         b = np.asarray(bounds, dtype=np.float64)
@@ -123,7 +125,7 @@ class Counters:
     control: dict[tuple[str, str], int] = field(
         default_factory=lambda: {(o, r): 0 for o in CONTROL_OPS for r in CONTROL_RESULTS})
     snapshots: dict[str, int] = field(default_factory=lambda: dict.fromkeys(SNAPSHOT_CAUSES, 0))
-    reloads: dict[str, int] = field(default_factory=lambda: {"applied": 0, "rejected": 0})
+    reloads: dict[str, int] = field(default_factory=lambda: dict.fromkeys(RELOAD_RESULTS, 0))
     acks_undeliverable: int = 0
     ingest_disconnects: int = 0
     fsyncs: int = 0

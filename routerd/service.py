@@ -41,6 +41,7 @@ tunables (:meth:`Config.tunable_diff`, :meth:`Engine.reconfigure`, journaled as 
 from __future__ import annotations
 
 import argparse
+import contextlib
 import gc
 import json
 import math
@@ -57,11 +58,10 @@ from typing import Any
 
 import numpy as np
 
-from . import __version__
+from . import __version__, wire
 from . import config as _config
 from . import journal as _journal
 from . import topology as _topology
-from . import wire
 from .cautions import CAUTIONS
 from .engine import Engine, EngineSettings
 from .errors import InputError
@@ -173,7 +173,7 @@ class Log:
     def info(self, msg: str, **f: Any) -> None:
         self._emit("INFO", msg, f)
 
-    def warn(self, msg: str, **f: Any) -> None:
+    def warning(self, msg: str, **f: Any) -> None:
         self._emit("WARN", msg, f)
 
     def error(self, msg: str, **f: Any) -> None:
@@ -334,17 +334,17 @@ class Service:
         except OSError as e:
             raise StartError(f"journal in {state_dir}: {e}") from None
         for line in self.journal.recovery.lines()[1:]:
-            self.log.warn("journal recovery", detail=line)
+            self.log.warning("journal recovery", detail=line)
         try:
             r = _journal.restore(state_dir, self.topo, want, on_record=self._remember_record)
         except (ValueError, _journal.JournalError) as e:
             raise StartError(f"state dir {state_dir}: {e} (another topology needs another "
                              "--state-dir)") from None
         for p in r.snapshot_problems:
-            self.log.warn("snapshot fallback", detail=p)
+            self.log.warning("snapshot fallback", detail=p)
         if r.read.stopped is not None:
             c = r.read.stopped
-            self.log.warn("journal read stopped early", segment=c.segment, offset=c.offset,
+            self.log.warning("journal read stopped early", segment=c.segment, offset=c.offset,
                           detail=c.detail)
         if r.snapshot_record:
             # the snapshot's windows first, then the tail's batches on top (on_record ran
@@ -355,9 +355,9 @@ class Service:
             self.dedup.restore(tail.export())
             self.restored["snapshot_record"] = r.snapshot_record
             self.last_snapshot_record = r.snapshot_record
-            newest = snaps.list()
-            if newest:
-                self.last_snapshot_at = os.path.getmtime(newest[-1][1])
+            kept = snaps.list()
+            if kept:
+                self.last_snapshot_at = os.path.getmtime(kept[-1][1])
         self.restored["replayed"] = r.replay.records
         self.snapshots = snaps
         self.engine = r.engine
@@ -454,12 +454,12 @@ class Service:
         w = self.out
         na = "- (off)"
         lines = [
-            f"routerd {__version__}: serving topology {t.name!r} — {t.n} nodes, {t.n_links} "
-            f"directed links (topology id {t.digest})",
+            (f"routerd {__version__}: serving topology {t.name!r} — {t.n} nodes, {t.n_links} "
+             f"directed links (topology id {t.digest})"),
             f"  ingest   {self.endpoints['ingest']}   ROUTER: batches, each acknowledged once journaled",
             f"  pull     {self.endpoints.get('pull', na)}   PULL: the same batches, fire-and-forget",
-            f"  publish  {self.endpoints['publish']}   PUB: tables/<node>, on change and every "
-            f"{self.cfg['service.publish_interval_s']:g} s",
+            (f"  publish  {self.endpoints['publish']}   PUB: tables/<node>, on change and every "
+             f"{self.cfg['service.publish_interval_s']:g} s"),
             f"  control  {self.endpoints['control']}   REP: tables, estimates, health, snapshot, link, nodes",
             f"  metrics  {self.endpoints['metrics']}",
             f"  state    {os.path.abspath(self.cfg['service.state_dir'])}   (journal fsync: "
@@ -555,7 +555,7 @@ class Service:
                 if reply is not None:
                     control.send(reply)
                 self._housekeeping()
-        except Exception as e:  # a bug of ours: say so loudly, keep the journal consistent
+        except Exception as e:  # noqa: BLE001 - a bug of ours: say so loudly, keep the journal consistent
             import traceback
 
             self.log.error("internal error; stopping without a final snapshot (the journal "
@@ -618,7 +618,7 @@ class Service:
                                         f"optional empty delimiter), got {len(body)}")
             else:
                 out = self._ingest_one(body[0])
-            if routed:
+            if acks is not None:
                 acks.append((sock, env + [out]))
 
     def _ingest_one(self, payload: bytes) -> bytes:
@@ -868,10 +868,10 @@ class Service:
             self.metrics_server.server_close()
             self.metrics_server = None
         if getattr(self, "_monitor", None) is not None:
-            try:
+            import zmq
+
+            with contextlib.suppress(zmq.ZMQError):
                 self.sockets["ingest"].disable_monitor()
-            except Exception:
-                pass
             self._monitor.close(0)
             self._monitor = None
         for s in self.sockets.values():

@@ -20,10 +20,10 @@ import networkx as nx
 import numpy as np
 import pytest
 import zmq
+from service_harness import ServiceProc, running, service_args
 
 from routerd import client, config, journal, wire
 from routerd.service import Dedup, load_config, load_topology
-from service_harness import ServiceProc, running, service_args
 
 DEMO = load_topology(config.load(None))
 
@@ -344,7 +344,7 @@ def test_sigterm_final_snapshot_final_tables_and_restart_restores(base: str) -> 
         state, rec = store.latest()
         last = max(r.no for r in journal.iter_records(journal.journal_dir(sp.state_dir)))
         assert rec == last
-        dedup = dict((r, [b for b, _, _ in w]) for r, w in state["dedup"])
+        dedup = {r: [b for b, _, _ in w] for r, w in state["dedup"]}
         assert len(dedup["term"]) == 20
     finally:
         sp.kill()
@@ -409,7 +409,7 @@ def test_start_up_errors_are_clear(base: str) -> None:
 
     def serve(*args: str) -> subprocess.CompletedProcess:
         return subprocess.run([sys.executable, "-m", "routerd", "serve", *args], capture_output=True,
-                              text=True, timeout=60)
+                              text=True, timeout=60, check=False)
 
     bad = write(os.path.join(base, "bad.yaml"), "service:\n  debounce_s: -1\n")
     r = serve("--config", bad, *service_args(base))
