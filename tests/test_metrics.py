@@ -7,6 +7,7 @@ conventions ("Metric and label naming": ``_total`` counters, base units).
 """
 from __future__ import annotations
 
+import math
 import shutil
 import subprocess
 import tempfile
@@ -130,8 +131,8 @@ def test_histograms_are_cumulative_with_le_inclusive_and_inf_equal_to_count() ->
     buckets = {s.labels["le"]: s.value for s in fam.samples if s.name.endswith("_bucket")}
     # "le" is less-than-or-equal (exposition format): 0.001 falls in the first bucket
     assert buckets == {"0.001": 2, "0.01": 4, "0.1": 6, "+Inf": 7}
-    count = [s.value for s in fam.samples if s.name.endswith("_count")][0]
-    total = [s.value for s in fam.samples if s.name.endswith("_sum")][0]
+    count = next(s.value for s in fam.samples if s.name.endswith("_count"))
+    total = next(s.value for s in fam.samples if s.name.endswith("_sum"))
     assert count == 7 and total == pytest.approx(0.0 + 0.001 + 0.0011 + 0.05 + 0.1 + 3.0 + 0.01)
     with pytest.raises(ValueError):
         metrics.Histo((0.1, 0.01))
@@ -151,7 +152,7 @@ def test_snapshot_age_is_nan_before_the_first_snapshot() -> None:
     src = FakeSource()
     src.snapshot_age_s = lambda: None  # type: ignore[method-assign]
     v = families(page(src))["routerd_snapshot_age_seconds"].samples[0].value
-    assert v != v
+    assert math.isnan(v)
 
 
 def test_parse_address() -> None:
