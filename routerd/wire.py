@@ -27,7 +27,9 @@ Ingest, columnar fast path (same endpoints)::
 Node columns are little-endian int32 indices into the service's node list (control
 ``{"op": "nodes"}``), numeric columns little-endian float64; an ``estimate_s`` of NaN
 means "absent".  ``topology`` must equal the service's id (:attr:`Topology.digest`), or
-the whole batch is refused, so indices never silently shift.
+the whole batch is refused, so indices never silently shift.  A named-row batch may
+carry ``topology`` too (then it must match as well); unknown top-level fields are refused
+(``unknown_field``) rather than ignored, so a misspelt ``"hop"`` never loses data silently.
 
 **Row indexing.**  A batch's rows are numbered: hop rows ``0 .. H-1`` (H = number of
 hops, in order), then link rows ``H .. H+L-1`` (link j is row ``H + j``).  Every
@@ -67,6 +69,7 @@ import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from itertools import chain
+from operator import itemgetter
 from types import SimpleNamespace
 from typing import Any
 
@@ -375,8 +378,8 @@ def _rows_fast(rows: list[Any], topo: Topology
         cols = list(zip(*rows))
         # topo.index has only str keys, so any other type fails the lookup (KeyError or
         # TypeError) and the row goes to the slow path: no separate type check needed.
-        look = topo.index.__getitem__
-        sv = np.fromiter(map(look, chain(cols[0], cols[1], cols[2])), dtype=np.int64, count=3 * m)
+        # one C-level lookup of all 3m names (itemgetter of >= 3 keys returns a tuple)
+        sv = np.array(itemgetter(*chain(cols[0], cols[1], cols[2]))(topo.index), dtype=np.int64)
         s, v, d = sv[:m], sv[m:2 * m], sv[2 * m:]
         if not set(map(type, cols[3])) <= {float, int}:
             return None
