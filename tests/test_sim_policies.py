@@ -149,3 +149,4 @@ def test_qrouting_beats_shortest_on_the_demo_bottleneck() -> None:
     assert hi_s["mean_delivery_s"] >= 4.0 * hi_q["mean_delivery_s"]
     assert hi_s["dropped"] > 1000
     assert hi_q["dropped"] <= hi_s["dropped"] / 10
+
