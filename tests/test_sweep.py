@@ -1,0 +1,170 @@
+"""``routerd sweep`` (sim/commands_sweep.py): the table, the aggregation over seeds, the
+plot, determinism across worker counts, and bad input."""
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+import os
+
+import numpy as np
+import pytest
+
+from routerd import cli
+from sim import commands_sweep as sw
+
+ARGS = ["sweep", "--rates", "300,1500", "--policies", "shortest,mindelay", "--seeds", "2",
+        "--duration", "3", "--jobs", "2", "--quiet"]
+
+
+@pytest.fixture(scope="module")
+def small_sweep(tmp_path_factory: pytest.TempPathFactory) -> str:
+    out = str(tmp_path_factory.mktemp("sweep"))
+    assert cli.main(ARGS + ["--out", out]) == 0
+    return out
+
+
+def test_table_has_one_row_per_run(small_sweep: str) -> None:
+    with open(os.path.join(small_sweep, "sweep.csv"), newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert len(rows) == 2 * 2 * 2
+    assert {(r["policy"], float(r["rate_pps"]), int(r["seed"])) for r in rows} == {
+        (p, r, s) for p in ("shortest", "mindelay") for r in (300.0, 1500.0) for s in (1, 2)}
+    head = list(rows[0])
+    assert head[: len(sw.LEAD)] == list(sw.LEAD)
+    for r in rows:
+        assert int(r["offered"]) > 0 and float(r["mean_delivery_s"]) > 0
+    # mindelay's model figure is in its rows only
+    assert all(r["policy_mindelay_model_delay_s"] for r in rows if r["policy"] == "mindelay")
+    assert not any(r["policy_mindelay_model_delay_s"] for r in rows if r["policy"] == "shortest")
+    with open(os.path.join(small_sweep, "sweep.json")) as fh:
+        doc = json.load(fh)
+    assert len(doc["runs"]) == 8 and len(doc["points"]) == 4
+    assert doc["sweep"]["seeds"] == 2 and doc["sweep"]["rates_pps"] == [300.0, 1500.0]
+    csv_means = sorted(float(r["mean_delivery_s"]) for r in rows)
+    json_means = sorted(r["mean_delivery_s"] for r in doc["runs"])
+    assert csv_means == pytest.approx(json_means, rel=1e-8)
+
+
+def test_points_are_seed_means_with_t_intervals(small_sweep: str) -> None:
+    with open(os.path.join(small_sweep, "sweep.json")) as fh:
+        doc = json.load(fh)
+    for p in doc["points"]:
+        xs = [r["mean_delivery_s"] for r in doc["runs"]
+              if r["policy"] == p["policy"] and r["rate_pps"] == p["rate_pps"]]
+        assert len(xs) == 2
+        mu = sum(xs) / 2
+        sd = math.sqrt(sum((x - mu) ** 2 for x in xs))  # n - 1 = 1
+        # independent replications (Law & Kelton, ch. 9): mu ± t(0.975, 1) s / sqrt(2)
+        assert p["mean_delivery_s"] == pytest.approx(mu)
+        assert p["ci95_s"] == pytest.approx(sw.t975(1) * sd / math.sqrt(2))
+        assert p["ci_basis"] == "seeds"
+    by = {(p["policy"], p["rate_pps"]): p for p in doc["points"]}
+    # the demo lab's trunk saturates under shortest paths at 1500/s; the optimum does not
+    assert by[("shortest", 1500.0)]["mean_delivery_s"] > 3 * by[("mindelay", 1500.0)]["mean_delivery_s"]
+
+
+def test_png_decodes_and_is_not_blank(small_sweep: str) -> None:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.image as mpimg
+
+    img = mpimg.imread(os.path.join(small_sweep, "sweep.png"))
+    assert img.ndim == 3 and img.shape[0] > 300 and img.shape[1] > 300
+    rgb = img[..., :3]
+    assert rgb.std() > 0.05
+    # both policies' line colours are drawn
+    for hexcol in (sw.COLOURS["shortest"], sw.COLOURS["mindelay"]):
+        want = np.array([int(hexcol[i:i + 2], 16) / 255 for i in (1, 3, 5)])
+        close = np.all(np.abs(rgb - want) < 0.04, axis=2)
+        assert close.sum() > 50, hexcol
+
+
+def test_student_t_table_against_the_distribution() -> None:
+    # Student's t density f(t) = Γ((ν+1)/2) / (sqrt(νπ) Γ(ν/2)) (1 + t²/ν)^(-(ν+1)/2)
+    # (Abramowitz & Stegun 26.7.1); the tabulated t(0.975, ν) must have CDF 0.975 to the
+    # table's three decimals.
+    for nu in range(1, len(sw.T975) + 1):
+        t = sw.t975(nu)
+        c = math.gamma((nu + 1) / 2) / (math.sqrt(nu * math.pi) * math.gamma(nu / 2))
+        xs = np.linspace(0.0, t, 200001)
+        pdf = c * (1 + xs**2 / nu) ** (-(nu + 1) / 2)
+        cdf = 0.5 + float(np.sum((pdf[1:] + pdf[:-1]) * 0.5 * np.diff(xs)))
+        assert abs(cdf - 0.975) <= 0.0005 * pdf[-1] + 1e-7, (nu, cdf)
+    assert sw.t975(1000) == 1.96
+
+
+def test_results_do_not_depend_on_the_worker_count() -> None:
+    specs = [{"policy": p, "rate_pps": r, "seed": s, "duration_s": 2.0, "series": False}
+             for p in ("qrouting", "ecmp") for r in (400.0,) for s in (1, 2)]
+    one = sw.run_grid(specs, jobs=1)
+    two = sw.run_grid(specs, jobs=2)
+    strip = [{k: v for k, v in r.items() if k != "wall_s"} for r in one]
+    assert strip == [{k: v for k, v in r.items() if k != "wall_s"} for r in two]
+    assert [(r["policy"], r["seed"]) for r in one] == [(s["policy"], s["seed"]) for s in specs]
+
+
+def test_a_failing_run_is_recorded_and_the_rest_kept() -> None:
+    rows = sw.run_grid([{"policy": "shortest", "rate_pps": 200.0, "seed": 1, "duration_s": 1.0,
+                         "series": False},
+                        {"policy": "shortest", "rate_pps": 200.0, "seed": 2, "duration_s": 1.0,
+                         "series": False, "topology": "/no/such/file.yaml"}], jobs=1)
+    assert "error" not in rows[0] and "does not exist" in rows[1]["error"]
+    pts = sw.aggregate(rows)
+    assert len(pts) == 1 and pts[0]["runs"] == 1 and pts[0]["ci_basis"] == "batch_means"
+
+
+def test_bad_input_is_reported_before_anything_runs(tmp_path: "os.PathLike[str]",
+                                                    capsys: pytest.CaptureFixture[str]) -> None:
+    out = os.path.join(str(tmp_path), "o")
+    rc = cli.main(["sweep", "--rates", "100,fast", "--policies", "shortest,psychic", "--seeds", "0",
+                   "--out", out])
+    err = capsys.readouterr().err
+    assert rc == 2
+    assert "--rates[1]: 'fast' is not a number" in err
+    assert "'psychic' is not a policy" in err
+    assert "--seeds: 0 must be >= 1" in err
+    assert not os.path.exists(out)
+    rc = cli.main(["sweep", "--rate-range", "500:100:4", "--out", out])
+    assert rc == 2 and "FIRST <= LAST" in capsys.readouterr().err
+    rc = cli.main(["sweep", "--rates", "100", "--topology", "/no/such.yaml", "--out", out])
+    assert rc == 2 and "does not exist" in capsys.readouterr().err
+
+
+def test_rate_range_and_policy_lists() -> None:
+    assert sw.parse_rates(None, "100:400:4") == [100.0, 200.0, 300.0, 400.0]
+    assert sw.parse_rates("400, 100,400", None) == [100.0, 400.0]
+    assert sw.parse_policies("qrouting,shortest,qrouting") == ["qrouting", "shortest"]
+
+
+class _Stream(io.StringIO):
+    def __init__(self, tty: bool):
+        super().__init__()
+        self._tty = tty
+
+    def isatty(self) -> bool:
+        return self._tty
+
+
+def test_progress_bar_only_after_a_few_seconds() -> None:
+    quiet = _Stream(tty=True)
+    bar = sw.ProgressBar(10, stream=quiet, after_s=60.0)
+    for i in range(1, 11):
+        bar.update(i)
+    bar.close()
+    assert quiet.getvalue() == ""
+    log = _Stream(tty=False)
+    bar = sw.ProgressBar(10, stream=log, after_s=0.0)
+    for i in range(1, 11):
+        bar.update(i)
+    bar.close()
+    lines = log.getvalue().splitlines()
+    assert lines[-1].startswith("100%  10/10 runs")
+    assert len(lines) == 10 and "\r" not in log.getvalue()
+    term = _Stream(tty=True)
+    bar = sw.ProgressBar(4, stream=term, after_s=0.0)
+    bar.update(4)
+    bar.close()
+    assert term.getvalue().startswith("\r[") and term.getvalue().endswith("\n")
