@@ -409,6 +409,9 @@ class TableSubscriber:
         self._ctx = context or zmq.Context.instance()
         self._sock = _socket(self._ctx, zmq.SUB)
         self._sock.rcvhwm = 100_000
+        # topics match by prefix ("tables/w1" also matches "tables/w10"): keep the set to
+        # drop what a prefix lets through
+        self.only: frozenset[str] | None = None if nodes is None else frozenset(nodes)
         if nodes is None:
             self._sock.setsockopt(zmq.SUBSCRIBE, wire.TABLE_TOPIC)
         else:
@@ -434,6 +437,8 @@ class TableSubscriber:
             self.last_error = str(e)
             return
         node, seq, ep = msg["node"], msg["seq"], msg.get("epoch")
+        if self.only is not None and node not in self.only:
+            return
         self.received += 1
         if node in self.seq and self.epoch.get(node) == ep:
             prev = self.seq[node]

@@ -776,7 +776,8 @@ def restore(state_dir: str, topo: Topology, settings: EngineSettings, *,
     read = ReadReport()
     if snap is not None:
         state, after = snap
-        eng = Engine.from_state(topo, settings_from_dict(state["settings"]), state["engine"])
+        s_snap = settings_from_dict(state["settings"]) if "settings" in state else settings
+        eng = Engine.from_state(topo, s_snap, state["engine"])
     else:
         state, after = {}, 0
         first = next(iter_records(jdir, 0), None)

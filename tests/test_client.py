@@ -329,3 +329,22 @@ def test_subscriber_keeps_latest_and_counts_gaps(ctx: zmq.Context, eps: tuple[st
     finally:
         sub.close()
         pub.close()
+
+
+def test_subscriber_node_filter_is_exact(ctx: zmq.Context, eps: tuple[str, str, str]) -> None:
+    pub = ctx.socket(zmq.PUB)
+    pub.linger = 0
+    pub.bind(eps[2])
+    sub = client.TableSubscriber(eps[2], ["w1"], context=ctx)
+    try:
+        deadline = time.monotonic() + 5
+        seq = 0
+        while "w1" not in sub.tables and time.monotonic() < deadline:
+            seq += 1
+            pub.send_multipart(wire.table_message("w10", seq, 1, {}))   # prefix of no interest
+            pub.send_multipart(wire.table_message("w1", seq, 1, {}))
+            sub.poll(0.05)
+        assert "w1" in sub.tables and set(sub.tables) == {"w1"}
+    finally:
+        sub.close()
+        pub.close()
