@@ -434,8 +434,8 @@ def _rows_slow(rows: list[Any], topo: Topology
         try:
             xf = float(x)
             ef = math.nan if e is None else float(e)
-        except OverflowError:  # an int beyond float range
-            rej.append((i, "bad_latency" if e is None or _fits(x) else "bad_estimate"))
+        except OverflowError:  # an int beyond float range (msgpack ints cannot be; API use)
+            rej.append((i, "bad_latency" if not _fits(x) else "bad_estimate"))
             continue
         s.append(ia); v.append(ib); d.append(ic); lat.append(xf); est.append(ef); keep.append(i)
     hb = HopBatch(np.array(s, dtype=np.int64), np.array(v, dtype=np.int64),
