@@ -16,7 +16,7 @@ from typing import Any
 
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
-from sim.commands_sweep import run_grid  # noqa: E402
+from sim.commands_sweep import run_grid
 
 
 def grid(duration_s: float) -> list[dict[str, Any]]:

@@ -27,6 +27,13 @@ from routerd import loops as _loops
 from routerd.topology import Topology
 
 
+def by_source(n: int, src: np.ndarray) -> np.ndarray:
+    """(L, n) one-hot matrix S[k, x] = 1 if link k leaves x: ``v @ S`` sums per-link values per node."""
+    S = np.zeros((len(src), n))
+    S[np.arange(len(src)), np.asarray(src, dtype=np.int64)] = 1.0
+    return S
+
+
 def link_arrays(topo: Topology) -> tuple[int, np.ndarray, np.ndarray]:
     """(n, src, dst) of a topology as int64 arrays."""
     return topo.n, topo.src.astype(np.int64), topo.dst.astype(np.int64)
@@ -119,14 +126,19 @@ def flows_from_fractions(n: int, src: np.ndarray, dst: np.ndarray, frac: np.ndar
     frac = np.asarray(frac, dtype=float)
     r = np.array(demand, dtype=float)
     np.fill_diagonal(r, 0.0)
-    P = np.zeros((n, n, n))  # P[d, x, y]
-    np.add.at(P, (slice(None), src, dst), frac)
-    P[np.arange(n), np.arange(n), :] = 0.0  # nothing leaves the destination for itself
-    A = np.eye(n)[None, :, :] - P.transpose(0, 2, 1)
-    try:
-        t = np.linalg.solve(A, r.T[:, :, None])[:, :, 0]  # (d, x)
-    except np.linalg.LinAlgError:
-        raise ValueError("the splits trap traffic in a loop (flow balance is singular)") from None
+    t = np.zeros((n, n))  # t[d, x]
+    step = max(1, 2_000_000 // (n * n))  # destinations per block: bounded memory
+    for d0 in range(0, n, step):
+        ds = np.arange(d0, min(n, d0 + step))
+        flat = np.zeros((len(ds), n * n))  # flat[d, x * n + y]: share x sends to y
+        np.add.at(flat.T, src * n + dst, frac[ds].T)  # parallel links add up
+        P = flat.reshape(len(ds), n, n)
+        P[np.arange(len(ds)), ds, :] = 0.0  # nothing leaves the destination for itself
+        A = np.eye(n)[None, :, :] - P.transpose(0, 2, 1)
+        try:
+            t[ds] = np.linalg.solve(A, r.T[ds][:, :, None])[:, :, 0]
+        except np.linalg.LinAlgError:
+            raise ValueError("the splits trap traffic in a loop (flow balance is singular)") from None
     if not np.all(np.isfinite(t)) or np.any(t < -1e-9 * max(1.0, float(r.sum()))):
         raise ValueError("the splits trap traffic in a loop (no finite flow balance)")
     t = np.maximum(t, 0.0)
@@ -141,19 +153,22 @@ def split_cycles(n: int, src: np.ndarray, dst: np.ndarray, frac: np.ndarray,
 
     Returns ``[(d, [x0, x1, ..., x0]), ...]`` with one cycle per offending destination.
     """
+    src, dst = np.asarray(src), np.asarray(dst)
     out = []
     for d in range(n):
         live = np.flatnonzero(np.asarray(frac[d]) > min_share)
-        cyc = find_cycle(n, np.asarray(src)[live], np.asarray(dst)[live])
+        cyc = find_cycle(n, src[live], dst[live])
         if cyc is not None:
-            out.append((d, [int(np.asarray(src)[live][k]) for k in cyc] + [int(np.asarray(src)[live][cyc[0]])]))
+            nodes = [int(src[live[k]]) for k in cyc]
+            out.append((d, nodes + nodes[:1]))
     return out
 
 
 def find_cycle(n: int, src: np.ndarray, dst: np.ndarray) -> list[int] | None:
     """Indices (into src/dst) of the links of one directed cycle, in order, or None."""
+    src_l = np.asarray(src).tolist()
     adj: list[list[tuple[int, int]]] = [[] for _ in range(n)]
-    for k, (a, b) in enumerate(zip(np.asarray(src).tolist(), np.asarray(dst).tolist())):
+    for k, (a, b) in enumerate(zip(src_l, np.asarray(dst).tolist())):
         adj[a].append((b, k))
     colour = [0] * n  # 0 new, 1 on the stack, 2 done
     via = [-1] * n  # link that entered the node on the current DFS path
@@ -177,7 +192,7 @@ def find_cycle(n: int, src: np.ndarray, dst: np.ndarray) -> list[int] | None:
                     while x != v:
                         kk = via[x]
                         cyc.append(kk)
-                        x = int(np.asarray(src)[kk])
+                        x = src_l[kk]
                     return cyc[::-1]
             else:
                 colour[u] = 2

@@ -201,7 +201,7 @@ def run_one(spec: Mapping[str, Any]) -> dict[str, Any]:
     """One run's summary, or ``{"error": ...}`` with the spec's keys if it failed."""
     try:
         return dict(run_sim(dict(spec))["summary"])
-    except Exception as e:  # one failed run must not lose the others
+    except Exception as e:  # noqa: BLE001 -- one failed run must not lose the others
         return {"policy": spec["policy"], "rate_pps": float(spec["rate_pps"]),
                 "seed": int(spec["seed"]), "error": f"{type(e).__name__}: {e}"}
 
@@ -302,7 +302,7 @@ class ProgressBar:
 def _dur(s: float) -> str:
     if not math.isfinite(s):
         return "?"
-    s = int(round(s))
+    s = round(s)
     return f"{s // 60}m{s % 60:02d}s" if s >= 60 else f"{s}s"
 
 
@@ -325,7 +325,7 @@ def aggregate(rows: Iterable[Mapping[str, Any]]) -> list[dict[str, Any]]:
             half = t975(k - 1) * sd / math.sqrt(k)
             basis = "seeds"
         elif k == 1:
-            one = [r for r in rs if _finite(r.get("mean_delivery_s"))][0]
+            one = next(r for r in rs if _finite(r.get("mean_delivery_s")))
             half = float(one.get("mean_delivery_ci95_s", math.nan))
             basis = "batch_means"
         else:

@@ -17,14 +17,23 @@ number of packets in it::
 
 with γ the total offered rate.  D is convex and depends only on the total link flows.
 
-Flow deviation is the Frank–Wolfe method on this cost.  Each iteration takes the
-marginal lengths ∂D/∂f_l = C_l/(C_l − f_l)² + p_l, routes every destination's whole
-demand on its shortest marginal-length in-tree (the all-or-nothing flow v), and moves
-to f + α(v − f) with α ∈ [0, 1] minimising D on that segment (exact 1-D search: the
-derivative is monotone).  Each destination's flow moves with the same α, so the
-per-destination flows stay convex combinations of trees and conserve traffic.  The
-duality gap Σ_l ∂D/∂f_l · (f_l − v_l) bounds D(f) − D* from above; iteration stops when
-it is below ``tol · D(f)`` or at ``max_iter``.
+Flow deviation is the Frank–Wolfe method on this cost.  It takes the marginal lengths
+∂D/∂f_l = C_l/(C_l − f_l)² + p_l, routes every destination's whole demand on its
+shortest marginal-length in-tree (the all-or-nothing flow v), and moves to
+f + α(v − f) with α ∈ [0, 1] minimising D on that segment (exact 1-D search: the
+derivative is monotone).  The duality gap Σ_l ∂D/∂f_l · (f_l − v_l) bounds D(f) − D*
+from above; iteration stops when it is below ``tol · D(f)`` or at ``max_iter``.
+
+Two step rules share that frame (``method``).  ``classic`` is the textbook step: every
+destination moves by one α.  It gets close fast and then crawls: old trees only shrink
+by (1 − α) per step, so flow lingers on paths that are no longer shortest (measured on
+abilene at 90% load: relative gap 1.4e-4 after 3000 steps, shares over 1% still on paths
+0.03% longer than the best).  ``paths`` (the default) applies the same deviation one
+(source, destination) pair at a time: each pair keeps its flow as a set of paths, and
+for every destination in turn the marginal lengths are refreshed, the shortest-route
+tree is found, and each pair moves flow from every other path it uses onto its shortest
+one, by the amount that minimises D exactly.  Paths that stop being shortest are
+emptied, so it converges to clean supports (same case: gap 1e-12 in 30 sweeps).
 
 Feasibility.  The start (shortest paths at zero load) may overload links, where D is
 infinite.  Instead of the original two-phase start we minimise a penalised cost that
@@ -320,7 +329,7 @@ class _PathShift:
                 self.pairs[d] = rows
 
     def _walk(self, bl: list[int], s: int, d: int) -> tuple[int, ...]:
-        path = []
+        path: list[int] = []
         x = s
         for _ in range(self.n):
             if x == d:
@@ -443,8 +452,7 @@ def _gd(f: float, c: float, rho: float) -> tuple[float, float]:
 
 def _cancel_cycles(n: int, src: np.ndarray, dst: np.ndarray, f: np.ndarray) -> int:
     """Remove every directed cycle from one destination's flow ``f`` (in place); count them."""
-    count = 0
-    for _ in range(len(f) + 1):  # each cancellation empties at least one link
+    for count in range(len(f) + 1):  # each cancellation empties at least one link
         live = np.flatnonzero(f > 0)
         cyc = analytic.find_cycle(n, src[live], dst[live])
         if cyc is None:
@@ -454,19 +462,17 @@ def _cancel_cycles(n: int, src: np.ndarray, dst: np.ndarray, f: np.ndarray) -> i
         f[ks] -= m
         f[ks[np.argmin(f[ks])]] = 0.0
         f[f < 0] = 0.0
-        count += 1
     raise AssertionError("cycle cancelling did not terminate")  # cannot happen: see loop bound
 
 
 def _shares(n: int, src: np.ndarray, fd: np.ndarray, min_share: float) -> np.ndarray:
     """Split shares from per-destination flows; NaN rows (no flow at x for d) stay zero."""
-    out_flow = np.zeros((n, n))  # (d, x)
-    np.add.at(out_flow, (slice(None), src), fd)
+    S = analytic.by_source(n, src)
+    out_flow = fd @ S  # (d, x)
     with np.errstate(divide="ignore", invalid="ignore"):
         frac = np.where(out_flow[:, src] > 0, fd / out_flow[:, src], 0.0)
     frac[frac < min_share] = 0.0
-    tot = np.zeros((n, n))
-    np.add.at(tot, (slice(None), src), frac)
+    tot = frac @ S
     with np.errstate(divide="ignore", invalid="ignore"):
         frac = np.where(tot[:, src] > 0, frac / tot[:, src], 0.0)
     return frac
@@ -476,8 +482,7 @@ def _fallback_fractions(n: int, src: np.ndarray, dst: np.ndarray, lengths: np.nd
                         frac: np.ndarray) -> np.ndarray:
     """Give every (x, d) without a share its shortest marginal-length link (share 1)."""
     frac = frac.copy()
-    tot = np.zeros((n, n))
-    np.add.at(tot, (slice(None), src), frac)
+    tot = frac @ analytic.by_source(n, src)
     D = analytic.all_distances(n, src, dst, lengths)
     best = _best_links(n, src, dst, lengths, D)  # (d, x)
     dd, xx = np.nonzero((tot == 0) & (best >= 0))
@@ -547,7 +552,7 @@ def _lookup(settings: Any, keys: tuple[str, ...]) -> Any:
             if callable(get):
                 try:
                     v = get(f"sim.{k}")
-                except Exception:  # a config object that raises on unknown keys
+                except (KeyError, TypeError, ValueError):  # a config that refuses unknown keys
                     v = None
                 if v is not None:
                     return v

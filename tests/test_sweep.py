@@ -116,7 +116,7 @@ def test_a_failing_run_is_recorded_and_the_rest_kept() -> None:
     assert len(pts) == 1 and pts[0]["runs"] == 1 and pts[0]["ci_basis"] == "batch_means"
 
 
-def test_bad_input_is_reported_before_anything_runs(tmp_path: "os.PathLike[str]",
+def test_bad_input_is_reported_before_anything_runs(tmp_path: os.PathLike[str],
                                                     capsys: pytest.CaptureFixture[str]) -> None:
     out = os.path.join(str(tmp_path), "o")
     rc = cli.main(["sweep", "--rates", "100,fast", "--policies", "shortest,psychic", "--seeds", "0",
