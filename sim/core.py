@@ -85,12 +85,17 @@ def run_core(
     series_interval_s: float = 1.0,
     link_events: Sequence[LinkEvent] = (),
     progress: Callable[[float, int], None] | None = None,
+    observer: Callable[[dict[str, Any]], None] | None = None,
 ) -> dict[str, Any]:
     """Simulate until ``duration_s`` of virtual time; return raw counts, samples and series.
 
     ``policy`` must already be attached.  ``packets`` yields :data:`PacketTuple` in
     non-decreasing time order.  ``progress(t, events)`` is called at every
     series sample.  The result is a dict of plain Python values.
+    ``observer(view)`` (live displays, partial results after an interrupt) is called at
+    every series sample with ``t_s``, all-packet totals (``delivered``, ``dropped``,
+    ``ttl_expired``, ``in_network``) and live references to the measured ``deliveries``
+    list and the ``series`` lists so far; it must not modify them.
     """
     n = topo.n
     nl = topo.n_links
@@ -99,6 +104,7 @@ def run_core(
     delay = topo.delay_s.tolist()
     inv_cap = [1.0 / c for c in topo.capacity_bps.tolist()]
     buf = topo.buffer_pkts.tolist()
+    trim = [min(b, 32) for b in buf]
     link_of: list[dict[int, int]] = [{} for _ in range(n)]
     for k in range(nl):
         link_of[src_l[k]][dst_l[k]] = k
@@ -125,7 +131,6 @@ def run_core(
     p_bits: list[float] = []
     p_prev: list[int] = []     # node that sent it on its current hop, -1 at injection
     p_enq: list[float] = []    # time it entered p_prev's output queue
-    p_dep: list[float] = []    # departure time from that link's queue
     free_ids: list[int] = []
 
     heap: list[tuple[float, int]] = []
@@ -179,7 +184,6 @@ def run_core(
     b_ttl = 0
     last_busy = [0.0] * nl
     busy_warm = [0.0] * nl
-    pushed_hops = 0
     inj_pushed = 1 if pending is not None else 0
     t = 0.0
     wall0 = time.perf_counter()
@@ -231,7 +235,7 @@ def run_core(
                 c = len(p_dst)
                 p_node.append(x); p_dst.append(d); p_t0.append(t); p_ttl.append(ttl)
                 p_flow.append(flow); p_bits.append(bits); p_prev.append(-1)
-                p_enq.append(t); p_dep.append(0.0)
+                p_enq.append(t)
             if t >= warm:
                 offered += 1
             offered_all += 1
@@ -255,7 +259,14 @@ def run_core(
             heappush(heap, (t + ivl, _SAMPLE))
             ctrl_pushed += 1
             if progress is not None:
-                progress(t, pushed_hops + inj_pushed + ctrl_pushed - len(heap))
+                progress(t, sum(carried) + inj_pushed + ctrl_pushed - len(heap))
+            if observer is not None:
+                observer({"t_s": t, "delivered": delivered_all, "dropped": dropped_all,
+                          "ttl_expired": ttl_all, "in_network": in_net,
+                          "deliveries": deliveries,
+                          "series": {"t_s": s_t, "delivered": s_deliv, "delivery_sum_s": s_dsum,
+                                     "dropped": s_drop, "ttl_expired": s_ttl,
+                                     "in_network": s_in_net, "link_util": s_busy}})
             continue
         elif c == _WARMUP:
             measuring = True
@@ -277,11 +288,13 @@ def run_core(
                     continue
                 up[k] = going_up
                 if not going_up:
-                    # drop what is still queued on k (dep > t); packets on the wire arrive
+                    # drop what is still queued on k: packets whose departure is after t,
+                    # i.e. whose arrival is after t + delay; packets on the wire arrive
                     a_k, b_k = src_l[k], dst_l[k]
-                    for pid in range(len(p_dst)):
-                        if (p_dst[pid] >= 0 and p_prev[pid] == a_k and p_node[pid] == b_k
-                                and p_dep[pid] > t):
+                    t_wire = t + delay[k]
+                    for te, pid in heap:
+                        if (pid >= 0 and te > t_wire and p_dst[pid] >= 0 and p_prev[pid] == a_k
+                                and p_node[pid] == b_k):
                             p_dst[pid] = -2
                             if p_t0[pid] >= warm:
                                 drop_down += 1
@@ -303,7 +316,6 @@ def run_core(
 
         # ---- forward packet c from node x (fresh injection or arrival in transit) ----
         ttl_c = p_ttl[c]
-        d = p_dst[c]
         if ttl_c <= 0:
             reason = 3
         else:
@@ -316,8 +328,11 @@ def run_core(
                 k = link_of[x][h]
                 if up[k]:
                     q = queues[k]
-                    while q and q[0] <= t:
-                        q.popleft()
+                    # departures before t are trimmed only when the deque is long enough
+                    # to matter: the occupancy is exact whenever it is compared
+                    if len(q) >= trim[k]:
+                        while q and q[0] <= t:
+                            q.popleft()
                     if len(q) < buf[k]:
                         f = free_at[k]
                         start = f if f > t else t
@@ -329,9 +344,7 @@ def run_core(
                         p_node[c] = h
                         p_prev[c] = x
                         p_enq[c] = t
-                        p_dep[c] = dep
                         p_ttl[c] = ttl_c - 1
-                        pushed_hops += 1
                         heappush(heap, (dep + delay[k], c))
                         continue
                     reason = 0
@@ -369,7 +382,7 @@ def run_core(
 
     t_end = end
     # every pop was an event; the end marker and what is still queued were not
-    events = pushed_hops + inj_pushed + ctrl_pushed - len(heap) - 1
+    events = sum(carried) + inj_pushed + ctrl_pushed - len(heap) - 1
     if measuring:
         area += in_net * (t_end - last_t)
     window = max(t_end - warm, 0.0)
