@@ -24,11 +24,11 @@ import numpy as np
 
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
-from routerd import config, topology  # noqa: E402
-from sim import policies  # noqa: E402
-from sim.core import run_core  # noqa: E402
-from sim.run import DEMO_TOPOLOGY  # noqa: E402
-from sim.traffic import PoissonTraffic  # noqa: E402
+from routerd import config, topology
+from sim import policies
+from sim.core import run_core
+from sim.run import DEMO_TOPOLOGY
+from sim.traffic import PoissonTraffic
 
 
 def random_mesh(n: int, seed: int = 1) -> topology.Topology:

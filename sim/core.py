@@ -335,7 +335,7 @@ def run_core(
                             q.popleft()
                     if len(q) < buf[k]:
                         f = free_at[k]
-                        start = f if f > t else t
+                        start = f if f > t else t  # noqa: PLR1730 (no call in the hot loop)
                         dep = start + p_bits[c] * inv_cap[k]
                         free_at[k] = dep
                         q.append(dep)

@@ -149,8 +149,10 @@ class QRouting(Policy):
         nh = np.where(g >= 0, np.take_along_axis(self._slots[xs], np.maximum(g, 0), axis=1), -1)
         explore = (g >= 0) & eng.alt[xs].any(axis=2) & (eng.eps[xs] > 0)  # zero share: greedy only
         row_vals = np.where(explore, -2, nh).tolist()
+        table = self.table
+        assert table is not None
         for i, x in enumerate(xs.tolist()):
-            self.table[x][:] = row_vals[i]
+            table[x][:] = row_vals[i]
             self._split[x] = {}
 
     def split(self, x: int, d: int) -> tuple[tuple[int, ...], tuple[float, ...]]:
@@ -265,7 +267,10 @@ def get(name: str) -> type[Policy]:
             raise InputError(Problem("--policy", name,
                                      f"is not available in this build ({mod} is missing)")) from None
         raise
-    return getattr(m, cls)  # type: ignore[no-any-return]
+    found = getattr(m, cls, None)
+    if found is None:
+        raise InputError(Problem("--policy", name, f"is not available in this build ({ref} is missing)"))
+    return found  # type: ignore[no-any-return]
 
 
 def make(name: str) -> Policy:

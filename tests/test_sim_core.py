@@ -9,6 +9,7 @@ import math
 
 import numpy as np
 import pytest
+from sim_helpers import assert_little
 
 from routerd import config, topology
 from sim.core import LinkEvent, run_core
@@ -16,7 +17,6 @@ from sim.policies import Shortest
 from sim.policy import Policy
 from sim.run import run
 from sim.traffic import PoissonTraffic
-from sim_helpers import assert_little
 
 MU = 1000.0  # packets/s: 8 Mbit/s over 1000-byte packets
 

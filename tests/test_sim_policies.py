@@ -5,12 +5,12 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from sim_helpers import assert_little
 
 from routerd import config, topology
 from routerd.errors import InputError
 from sim import policies
 from sim.run import DEMO_TOPOLOGY, run
-from sim_helpers import assert_little
 
 
 def mesh() -> dict:
