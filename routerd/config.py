@@ -93,6 +93,10 @@ SCHEMA: dict[str, Field] = {
     "sim.series_interval_s": F(float, 1.0, "virtual time per row of the simulator's time series (CSV, plots)", lo=0, lo_open=True),
     "sim.flows_per_pair": F(int, 8, "flow ids per (source, destination) pair; ecmp hashes the flow id", lo=1),
     "sim.estimate": F(str, "published", "qrouting: the estimate a node reports: the Q of the next hop it publishes, or the minimum over its live next hops (engine.estimate)", choices=("published", "min")),
+    # -- simulator, closed loop (--policy service): sim/closedloop.py ----------------------
+    "sim.service.speed": F(float, 1.0, "closed loop: virtual seconds per wall-clock second (1 = real time)", lo=0.01, hi=1000),
+    "sim.service.estimate_nodes": F(int, 0, "closed loop: nodes whose estimates are fetched from the service per decision interval, round robin (0 = all)", lo=0),
+    "sim.service.timeout_s": F(float, 5.0, "closed loop: how long to wait for the service's acknowledgements and control replies", lo=0, lo_open=True),
 }
 
 

@@ -17,14 +17,18 @@ from typing import Any
 from routerd.errors import InputError
 
 from . import policies as _policies
-from .run import SimSpec, run as run_sim
+from .run import SimSpec
+from .run import run as run_sim
 
 
 def configure(p: argparse.ArgumentParser) -> None:
     p.add_argument("--topology", metavar="FILE", default=None,
                    help="topology file (.yaml, .graphml, .json) or topohub:GROUP/NAME; "
                         "default: the config's topology.file, else the built-in demo lab")
-    p.add_argument("--policy", required=True, choices=_policies.NAMES, help="routing policy")
+    p.add_argument("--policy", required=True, metavar="NAME",
+                   help=f"routing policy: {', '.join(_policies.NAMES)}; service[:ENDPOINTS] drives a "
+                        "live routerd serve (started for the run, or the one at "
+                        "ingest=EP,publish=EP,control=EP)")
     p.add_argument("--rate", metavar="PPS", type=float, required=True,
                    help="network-wide injection rate, packets/s (Poisson)")
     p.add_argument("--duration", metavar="S", type=float, required=True,
@@ -52,6 +56,9 @@ def configure(p: argparse.ArgumentParser) -> None:
     p.add_argument("--buffer-pkts", type=int, default=None,
                    help="buffer for links whose topology gives none (topohub files)")
     p.add_argument("--quiet", action="store_true", help="no progress on stderr")
+    p.add_argument("--speed", metavar="X", type=float, default=None,
+                   help="--policy service: virtual seconds per wall-clock second "
+                        "(default 1, real time; same as --set sim.service.speed=X)")
 
 
 def spec_from_args(args: argparse.Namespace) -> SimSpec:
@@ -59,7 +66,9 @@ def spec_from_args(args: argparse.Namespace) -> SimSpec:
         policy=args.policy, rate_pps=args.rate, duration_s=args.duration, seed=args.seed,
         topology=args.topology, packet_bytes=args.packet_bytes, size_dist=args.size_dist,
         warmup_s=args.warmup, scenario=args.scenario, demands=args.demands,
-        config=args.config, overrides=tuple(args.overrides), capacity_bps=args.capacity_bps,
+        config=args.config, capacity_bps=args.capacity_bps,
+        overrides=tuple(args.overrides) + ((f"sim.service.speed={args.speed}",)
+                                           if getattr(args, "speed", None) is not None else ()),
         buffer_pkts=args.buffer_pkts, series=True, progress=not args.quiet,
     )
 

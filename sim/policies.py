@@ -250,13 +250,16 @@ REGISTRY: dict[str, str] = {
     "ecmp": "sim.policies:Ecmp",
     "qrouting": "sim.policies:QRouting",
     "mindelay": "sim.mindelay:MinDelay",
+    # the closed loop: a live `routerd serve` routes; `service:ENDPOINTS` names a running one
+    "service": "sim.closedloop:ServicePolicy",
 }
 NAMES: tuple[str, ...] = tuple(REGISTRY)
 
 
 def get(name: str) -> type[Policy]:
-    """The policy class registered under ``name``; InputError if unknown or unavailable."""
-    ref = REGISTRY.get(name)
+    """The policy class registered under ``name`` (an argument after ``:`` is ignored
+    here); InputError if unknown or unavailable."""
+    ref = REGISTRY.get(name.partition(":")[0])
     if ref is None:
         raise InputError(Problem("--policy", name, f"is not a policy ({', '.join(NAMES)})"))
     mod, cls = ref.split(":")
@@ -274,4 +277,11 @@ def get(name: str) -> type[Policy]:
 
 
 def make(name: str) -> Policy:
-    return get(name)()
+    """A fresh policy; ``NAME:ARG`` hands ARG to a policy that takes one (``takes_argument``)."""
+    base, sep, arg = name.partition(":")
+    cls = get(base)
+    if not sep:
+        return cls()
+    if not getattr(cls, "takes_argument", False):
+        raise InputError(Problem("--policy", name, f"policy {base!r} takes no argument after ':'"))
+    return cls(arg)  # type: ignore[call-arg]

@@ -92,7 +92,7 @@ def _check(spec: SimSpec) -> list[Problem]:
         p.append(Problem("--packet-bytes", spec.packet_bytes, "must be > 0"))
     if spec.size_dist not in ("fixed", "exp"):
         p.append(Problem("--size-dist", spec.size_dist, "is not fixed or exp"))
-    if spec.policy not in _policies.NAMES:
+    if spec.policy.partition(":")[0] not in _policies.NAMES:  # NAME[:ARG]
         p.append(Problem("--policy", spec.policy, f"is not a policy ({', '.join(_policies.NAMES)})"))
     return p
 
@@ -130,10 +130,16 @@ def load_inputs(spec: SimSpec) -> tuple[_config.Config, _topology.Topology, _sce
     return cfg, topo, scen
 
 
-def run(spec: SimSpec | Mapping[str, Any]) -> dict[str, Any]:
+def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
+        observer: Any = None) -> dict[str, Any]:
     """Run one simulation.  Returns ``{"summary": {...}, "series": {...}, "links": [...]}``.
 
     Raises :class:`routerd.errors.InputError` for bad inputs (before anything runs).
+    ``policy``: an unattached :class:`sim.policy.Policy` instance to use instead of
+    ``spec.policy`` (the caller keeps a reference, e.g. to read its final tables).
+    ``observer``: passed to :func:`sim.core.run_core` (live views at every sample).
+    A policy with a ``close()`` method (one that holds processes or sockets) is closed
+    at the end, also when the run is interrupted.
     """
     sp = SimSpec.of(spec)
     cfg, topo, scen = load_inputs(sp)
@@ -146,16 +152,22 @@ def run(spec: SimSpec | Mapping[str, Any]) -> dict[str, Any]:
         duration_s=sp.duration_s, warmup_s=warm, flows_per_pair=cfg["sim.flows_per_pair"],
     )
     link_events = scen.link_events(topo)
-    policy = _policies.make(sp.policy)
-    policy.attach(topo, r_policy, cfg)
-    policy.offered(traffic.demand_pps(), traffic.mean_bits())
-    progress = _progress_printer(sp.duration_s) if sp.progress else None
-    raw = run_core(topo, policy, traffic.packets(), duration_s=sp.duration_s, warmup_s=warm,
-                   ttl=cfg["sim.ttl"], series_interval_s=cfg["sim.series_interval_s"],
-                   link_events=link_events, progress=progress)
-    if progress is not None:
-        progress(sp.duration_s, raw["events"], final=True)
-    return reduce(raw, sp, topo, policy.name, warm, policy.stats())
+    if policy is None:
+        policy = _policies.make(sp.policy)
+    try:
+        policy.attach(topo, r_policy, cfg)
+        policy.offered(traffic.demand_pps(), traffic.mean_bits())
+        progress = _progress_printer(sp.duration_s) if sp.progress else None
+        raw = run_core(topo, policy, traffic.packets(), duration_s=sp.duration_s, warmup_s=warm,
+                       ttl=cfg["sim.ttl"], series_interval_s=cfg["sim.series_interval_s"],
+                       link_events=link_events, progress=progress, observer=observer)
+        if progress is not None:
+            progress(sp.duration_s, raw["events"], final=True)
+        return reduce(raw, sp, topo, policy.name, warm, policy.stats())
+    finally:
+        close = getattr(policy, "close", None)
+        if close is not None:
+            close()
 
 
 def reduce(raw: dict[str, Any], sp: SimSpec, topo: _topology.Topology, policy: str,
