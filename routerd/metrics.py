@@ -16,6 +16,7 @@ Must not import: zmq, the journal, the wire module (the service passes the reaso
 """
 from __future__ import annotations
 
+import bisect
 import threading
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
