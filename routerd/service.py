@@ -244,7 +244,9 @@ class Service:
         self.log = Log(cfg["service.log_format"])
         self.counters = _metrics.Counters(row_reasons=wire.REASONS + SERVICE_REASONS,
                                           frame_reasons=wire.FRAME_ERRORS)
-        self.lock = threading.Lock()          # engine + counters vs. the metrics thread
+        # engine + counters vs. the metrics thread; re-entrant: a control "snapshot" runs
+        # under the loop's hold of it
+        self.lock = threading.RLock()
         self.engine: Engine | None = None
         self.dedup = Dedup(cfg["service.dedup_batches"], cfg["service.dedup_reporters"])
         self.journal: Any = None
