@@ -70,8 +70,9 @@ class LinkEvent:
 
     t: float
     links: tuple[int, ...]
-    action: str  # "down" | "up" | "capacity"
+    action: str  # "down" | "up" | "capacity" | "delay"
     capacity_bps: float | None = None
+    delay_s: float | None = None  # "delay": the propagation delay of packets sent from t on
 
 
 def run_core(
@@ -282,6 +283,9 @@ def run_core(
             for k in ev.links:
                 if ev.action == "capacity":
                     inv_cap[k] = 1.0 / float(ev.capacity_bps)  # type: ignore[arg-type]
+                    continue
+                if ev.action == "delay":  # a link trace (sim.linktrace)
+                    delay[k] = float(ev.delay_s)  # type: ignore[arg-type]
                     continue
                 going_up = ev.action == "up"
                 if up[k] == going_up:
