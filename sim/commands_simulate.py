@@ -29,10 +29,11 @@ def configure(p: argparse.ArgumentParser) -> None:
                    help=f"routing policy: {', '.join(_policies.NAMES)}; service[:ENDPOINTS] drives a "
                         "live routerd serve (started for the run, or the one at "
                         "ingest=EP,publish=EP,control=EP)")
-    p.add_argument("--rate", metavar="PPS", type=float, required=True,
-                   help="network-wide injection rate, packets/s (Poisson)")
-    p.add_argument("--duration", metavar="S", type=float, required=True,
-                   help="virtual seconds to simulate")
+    p.add_argument("--rate", metavar="PPS", type=float, default=None,
+                   help="network-wide injection rate, packets/s (Poisson); needed unless --traffic")
+    p.add_argument("--duration", metavar="S", type=float, default=None,
+                   help="virtual seconds to simulate (needed unless --traffic; with it, default: "
+                        "the trace's span + 1 s)")
     p.add_argument("--seed", metavar="N", type=int, required=True,
                    help="random seed: same inputs and seed give the same summary")
     p.add_argument("--packet-bytes", metavar="B", type=float, default=1000.0,
@@ -57,8 +58,19 @@ def configure(p: argparse.ArgumentParser) -> None:
                    help="buffer for links whose topology gives none (topohub files)")
     p.add_argument("--quiet", action="store_true", help="no progress on stderr")
     p.add_argument("--speed", metavar="X", type=float, default=None,
-                   help="--policy service: virtual seconds per wall-clock second "
-                        "(default 1, real time; same as --set sim.service.speed=X)")
+                   help="with --traffic: replay the trace X times faster (its timestamps and "
+                        "--link-trace's divided by X); else --policy service: virtual seconds per "
+                        "wall-clock second (default 1, real time; same as --set sim.service.speed=X)")
+    p.add_argument("--traffic", metavar="FILE", default=None,
+                   help="trace-driven traffic instead of Poisson: a pcap or pcapng capture, or a CSV "
+                        "or JSON-lines flow log (time,source,destination,bytes)")
+    p.add_argument("--address-map", metavar="FILE", default=None,
+                   help="YAML: node name -> list of IP addresses or CIDR prefixes (for --traffic)")
+    p.add_argument("--allow-truncated", action="store_true",
+                   help="use the packets before the point where a capture is cut short or corrupt")
+    p.add_argument("--link-trace", metavar="FILE", default=None,
+                   help="per-link delays over time, CSV t_s,from,to,delay_s (from routerd replay "
+                        "--export-link-trace, or your own)")
 
 
 def spec_from_args(args: argparse.Namespace) -> SimSpec:
@@ -68,7 +80,13 @@ def spec_from_args(args: argparse.Namespace) -> SimSpec:
         warmup_s=args.warmup, scenario=args.scenario, demands=args.demands,
         config=args.config, capacity_bps=args.capacity_bps,
         overrides=tuple(args.overrides) + ((f"sim.service.speed={args.speed}",)
-                                           if getattr(args, "speed", None) is not None else ()),
+                                           if getattr(args, "speed", None) is not None
+                                           and getattr(args, "traffic", None) is None else ()),
+        traffic=getattr(args, "traffic", None), address_map=getattr(args, "address_map", None),
+        trace_speed=(args.speed if getattr(args, "traffic", None) is not None
+                     and getattr(args, "speed", None) is not None else 1.0),
+        allow_truncated=getattr(args, "allow_truncated", False),
+        link_trace=getattr(args, "link_trace", None),
         buffer_pkts=args.buffer_pkts, series=True, progress=not args.quiet,
     )
 
@@ -137,6 +155,8 @@ def run(args: argparse.Namespace) -> int:
           f"dropped {s['dropped']}, ttl expired {s['ttl_expired']}; mean delivery "
           f"{_ms(s['mean_delivery_s'])} (p99 {_ms(s['p99_delivery_s'])}), {s['events']} events "
           f"in {s['wall_s']:.2f} s")
+    for line in result.get("trace_lines", ()):   # sim.trace: what the trace could not inject
+        print(line)
     for p in written:
         print(f"wrote {p}")
     return 0

@@ -63,6 +63,13 @@ class SimSpec:
     buffer_pkts: int | None = None
     series: bool = True
     progress: bool = False
+    # trace-driven runs (sim.trace, sim.linktrace): a capture or flow log replaces the
+    # Poisson source (duration None: the trace's span plus sim.trace.DRAIN_S)
+    traffic: str | None = None
+    address_map: str | None = None
+    trace_speed: float = 1.0
+    allow_truncated: bool = False
+    link_trace: str | None = None
 
     @classmethod
     def of(cls, spec: SimSpec | Mapping[str, Any]) -> SimSpec:
@@ -82,11 +89,17 @@ class SimSpec:
 
 def _check(spec: SimSpec) -> list[Problem]:
     p: list[Problem] = []
-    if not (isinstance(spec.rate_pps, (int, float)) and math.isfinite(spec.rate_pps) and spec.rate_pps >= 0):
+    if spec.traffic is None and spec.rate_pps is None:
+        p.append(Problem("--rate", None, "is needed (or --traffic FILE)"))
+    elif spec.traffic is None and not (isinstance(spec.rate_pps, (int, float))
+                                       and math.isfinite(spec.rate_pps) and spec.rate_pps >= 0):
         p.append(Problem("--rate", spec.rate_pps, "must be a finite number >= 0 (packets/s)"))
-    if not (isinstance(spec.duration_s, (int, float)) and math.isfinite(spec.duration_s) and spec.duration_s > 0):
+    if spec.duration_s is None and spec.traffic is not None:
+        pass  # the trace's span
+    elif not (isinstance(spec.duration_s, (int, float)) and math.isfinite(spec.duration_s) and spec.duration_s > 0):
         p.append(Problem("--duration", spec.duration_s, "must be a finite number > 0 (seconds)"))
-    if spec.warmup_s is not None and not (0 <= spec.warmup_s < spec.duration_s):
+    if spec.warmup_s is not None and spec.duration_s is not None \
+            and not (0 <= spec.warmup_s < spec.duration_s):
         p.append(Problem("--warmup", spec.warmup_s, f"must be >= 0 and below the duration ({spec.duration_s:g} s)"))
     if not (spec.packet_bytes > 0 and math.isfinite(spec.packet_bytes)):
         p.append(Problem("--packet-bytes", spec.packet_bytes, "must be > 0"))
@@ -143,15 +156,20 @@ def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
     """
     sp = SimSpec.of(spec)
     cfg, topo, scen = load_inputs(sp)
+    from . import linktrace as _linktrace
+    from . import trace as _trace
+
+    sp, trace_src = _trace.prepare(sp, cfg, topo)   # --traffic: a capture or a flow log
+    ltrace = _linktrace.for_spec(sp, topo)          # --link-trace: link delays over time
     warm = sp.duration_s / 10.0 if sp.warmup_s is None else float(sp.warmup_s)
     ss = np.random.SeedSequence(int(sp.seed))
     r_traffic, r_policy = (np.random.default_rng(s) for s in ss.spawn(2))
-    traffic = PoissonTraffic(
+    traffic: Any = trace_src if trace_src is not None else PoissonTraffic(
         topo.n, sp.rate_pps, r_traffic, packet_bytes=sp.packet_bytes, size_dist=sp.size_dist,
         pair_weights=topo.demands if sp.demands else None, scenario=scen,
         duration_s=sp.duration_s, warmup_s=warm, flows_per_pair=cfg["sim.flows_per_pair"],
     )
-    link_events = scen.link_events(topo)
+    link_events = scen.link_events(topo) + (ltrace.events(sp.trace_speed) if ltrace else [])
     if policy is None:
         policy = _policies.make(sp.policy)
     try:
@@ -163,7 +181,8 @@ def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
                        link_events=link_events, progress=progress, observer=observer)
         if progress is not None:
             progress(sp.duration_s, raw["events"], final=True)
-        return reduce(raw, sp, topo, policy.name, warm, policy.stats())
+        return _trace.annotate(reduce(raw, sp, topo, policy.name, warm, policy.stats()),
+                               trace_src, ltrace)
     finally:
         close = getattr(policy, "close", None)
         if close is not None:

@@ -765,3 +765,45 @@ def load_traffic(path: str, topo: Topology, address_map: str | None = None, *,
         return load_capture(path, topo, amap, speed=speed, allow_truncated=allow_truncated,
                             flows_per_pair=flows_per_pair)
     return load_flow_log(path, topo, amap, speed=speed, flows_per_pair=flows_per_pair)
+
+
+# ---- the simulator's hooks (sim.run calls these) -----------------------------------------
+#: seconds simulated after a trace's last packet when no duration is given (for the
+#: packets still in flight to arrive)
+DRAIN_S = 1.0
+
+
+def prepare(spec: Any, cfg: Any, topo: Topology) -> tuple[Any, TraceTraffic | None]:
+    """(spec with duration and rate filled from the trace, the trace source) for a run
+    with ``spec.traffic``; ``(spec, None)`` without one.  TraceError for bad inputs."""
+    from dataclasses import replace
+
+    path = getattr(spec, "traffic", None)
+    if path is None:
+        return spec, None
+    src = load_traffic(path, topo, getattr(spec, "address_map", None),
+                       speed=getattr(spec, "trace_speed", 1.0),
+                       allow_truncated=getattr(spec, "allow_truncated", False),
+                       flows_per_pair=cfg["sim.flows_per_pair"])
+    dur = spec.duration_s if spec.duration_s is not None else src.span_s + DRAIN_S
+    src = src.until(dur)
+    return replace(spec, duration_s=float(dur), rate_pps=len(src) / dur), src
+
+
+def annotate(result: dict[str, Any], src: TraceTraffic | None, link_trace: Any = None) -> dict[str, Any]:
+    """Put the trace's import report (and the link trace's size) into a run's result."""
+    s = result["summary"]
+    if src is not None:
+        rep = src.report
+        result["trace"] = rep.to_dict()
+        result["trace_lines"] = rep.lines()
+        s["trace_records"] = rep.records
+        s["trace_injected"] = rep.injected
+        s["trace_not_injected"] = sum(rep.skipped.values())
+        for r, c in rep.skipped.items():
+            s[f"trace_skipped_{r}"] = c
+        s["trace_truncated_at_byte"] = rep.truncated_at
+    if link_trace is not None:
+        result["link_trace"] = link_trace.to_dict()
+        s["link_trace_changes"] = len(link_trace.changes)
+    return result
