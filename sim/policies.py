@@ -125,6 +125,9 @@ class QRouting(Policy):
         self._split: list[dict[int, tuple[tuple[int, ...], tuple[float, ...]]]] = [
             {} for _ in range(n)]
         self._slots = topology.slots.astype(np.int64)
+        self._slot_rows: list[list[int]] = self._slots.tolist()
+        self._greedy_hop: list[list[int]] = [[-1] * n for _ in range(n)]
+        self._eps_row: list[list[float]] = [[0.0] * n for _ in range(n)]
         self._u: list[float] = []
         self._ui = 0
         self.rows_applied = 0
@@ -149,24 +152,41 @@ class QRouting(Policy):
         nh = np.where(g >= 0, np.take_along_axis(self._slots[xs], np.maximum(g, 0), axis=1), -1)
         explore = (g >= 0) & eng.alt[xs].any(axis=2) & (eng.eps[xs] > 0)  # zero share: greedy only
         row_vals = np.where(explore, -2, nh).tolist()
+        greedy_rows = nh.tolist()
+        eps_rows = eng.eps[xs].tolist()
         table = self.table
         assert table is not None
         for i, x in enumerate(xs.tolist()):
             table[x][:] = row_vals[i]
+            self._greedy_hop[x] = greedy_rows[i]
+            self._eps_row[x] = eps_rows[i]
             self._split[x] = {}
 
     def split(self, x: int, d: int) -> tuple[tuple[int, ...], tuple[float, ...]]:
-        """(next hops, cumulative weights) of x for d, from ``Engine.weights``, cached."""
+        """(next hops, cumulative weights) of x for d, cached until x's table changes.
+
+        Exactly ``Engine.weights(x, d)`` (greedy hop first with 1 - eps, then each
+        alternate in slot order with an equal share of eps; a test holds them equal),
+        built from the rows cached at the last refresh instead of a numpy call per entry.
+        """
         sp = self._split[x].get(d)
         if sp is None:
-            w = self.engine.weights(x, d)
-            acc = 0.0
-            cum = []
-            for _, v in w:
-                acc += v
-                cum.append(acc)
-            cum[-1] = 1.0
-            sp = self._split[x][d] = (tuple(h for h, _ in w), tuple(cum))
+            sl = self._slot_rows[x]
+            alts = [sl[j] for j, on in enumerate(self.engine.alt[x, d].tolist()) if on]
+            e = self._eps_row[x][d]
+            hops = (self._greedy_hop[x][d], *alts)
+            if not alts:
+                sp = (hops, (1.0,))
+            else:
+                share = e / len(alts)
+                acc = 1.0 - e
+                cum = [acc]
+                for _ in alts:
+                    acc += share
+                    cum.append(acc)
+                cum[-1] = 1.0
+                sp = (hops, tuple(cum))
+            self._split[x][d] = sp
         return sp
 
     def next_hop(self, x: int, d: int, flow: int, now: float) -> int:
