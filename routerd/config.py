@@ -81,6 +81,7 @@ SCHEMA: dict[str, Field] = {
     "service.linger_s": F(float, 1.0, "at shutdown, how long queued replies and final tables may still go out", lo=0),
     "service.heartbeat_s": F(float, 5.0, "ZMTP heartbeat interval; a peer silent for three intervals is dropped (0 = off)", lo=0),
     "service.max_rows": F(int, 262144, "rows (hops + links) taken in one batch; more is refused as too_many_rows", lo=1),
+    "service.publish_budget_s": F(float, 0.005, "time per loop turn spent publishing due tables before ingest is served again (the rest go out next turn)", lo=0, lo_open=True, tunable=True),
     "service.max_drain": F(int, 256, "ingest frames taken per loop iteration: one journal group commit (one fsync) covers them all", lo=1),
     "service.dedup_batches": F(int, 1024, "batch numbers remembered per reporter to re-acknowledge a re-sent batch without applying it twice", lo=1),
     "service.dedup_reporters": F(int, 4096, "reporters remembered for duplicate detection (the least recently seen is forgotten first)", lo=1),

@@ -21,8 +21,11 @@ iteration:
 3. answer at most one control request (REP) — state-changing ones after step 2's commit;
 4. when tables are pending and ``service.debounce_s`` has passed since the last decision,
    call :meth:`Engine.decide` (journaled as a ``tick`` so replay makes the same calls in
-   the same places) and publish the nodes whose table changed; every
-   ``service.publish_interval_s`` publish every node;
+   the same places) and queue the nodes whose table changed; every
+   ``service.publish_interval_s`` queue every node.  Queued tables go out oldest first
+   for at most ``service.publish_budget_s`` per turn (a node queued twice goes out once,
+   with its latest table), so a round of changes on a large network never holds ingest
+   up for long;
 5. every ``service.snapshot_interval_s`` write a snapshot and retire the journal
    segments it covers.
 
@@ -262,7 +265,7 @@ class Service:
         self.last_snapshot_at: float | None = None
         self.last_snapshot_record: int | None = None
         self.restored: dict[str, Any] = {}
-        self._pending_nodes: set[int] = set()
+        self._pub_queue: OrderedDict[int, str] = OrderedDict()   # node → why it is due
         self._touched = False
         self._last_decide = -math.inf
         self._next_publish_all = 0.0
@@ -569,6 +572,8 @@ class Service:
 
     def _timeout_ms(self) -> int:
         now = time.monotonic()
+        if self._pub_queue:
+            return 0          # tables still due: take what arrived, then publish more
         t = min(self._next_publish_all, self._next_snapshot)
         if self._touched:
             t = min(t, self._last_decide + self.cfg["service.debounce_s"])
@@ -761,8 +766,10 @@ class Service:
         if now >= self._next_publish_all:
             if self._touched:
                 self._decide_and_publish(now)
-            self._publish(range(self.topo.n), "interval")
+            self._queue_publish(range(self.topo.n), "interval")
             self._next_publish_all = now + cfg["service.publish_interval_s"]
+        if self._pub_queue:
+            self._publish_due(cfg["service.publish_budget_s"])
         if now >= self._next_snapshot:
             if self._last_record != self.last_snapshot_record:
                 self._snapshot("interval")
@@ -778,7 +785,26 @@ class Service:
         self._touched = False
         self._last_decide = now_mono
         if d.changed_nodes:
-            self._publish(sorted(d.changed_nodes), "change")
+            self._queue_publish(sorted(d.changed_nodes), "change")
+
+    def _queue_publish(self, nodes: Iterable[int], cause: str) -> None:
+        """Mark tables due.  A node already due keeps its place: it goes out once, with the
+        table as it is when its turn comes (changes coalesce, memory stays <= n)."""
+        q = self._pub_queue
+        for x in nodes:
+            if x not in q:
+                q[x] = cause
+
+    def _publish_due(self, budget_s: float) -> None:
+        """Publish due tables, oldest first, for at most ``budget_s`` this turn — so a big
+        round of changes cannot hold up ingest for longer than that."""
+        q = self._pub_queue
+        end = time.perf_counter() + budget_s
+        while q:
+            x, cause = q.popitem(last=False)
+            self._publish((x,), cause)
+            if time.perf_counter() >= end:
+                break
 
     def _publish(self, nodes: Iterable[int], cause: str) -> None:
         import zmq
@@ -856,6 +882,7 @@ class Service:
             if self._touched:
                 self._decide_and_publish(time.monotonic())
             self._snapshot("shutdown")
+            self._pub_queue.clear()
             self._publish(range(self.topo.n), "final")
         finally:
             self.close()
