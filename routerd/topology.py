@@ -681,16 +681,40 @@ def from_node_link(doc: Any, *, source: str = "<node-link>",
 
 def load_topohub(key: str, defaults: LinkDefaults = LinkDefaults()) -> Topology:
     """A topology from the installed ``topohub`` package, e.g. ``sndlib/abilene``."""
+    return from_node_link(topohub_doc(key), source=f"topohub:{key}", defaults=defaults)
+
+
+def topohub_doc(key: str) -> dict[str, Any]:
+    """topohub's node-link document for ``GROUP/NAME``, read from the package's data files.
+
+    Equivalent to ``topohub.get(key)`` (demand keys become ints, as there), but closes the
+    file it opens (topohub 1.5's ``get`` leaves it to the garbage collector).
+    """
+    where = f"topohub:{key}"
     try:
+        import importlib.resources
+
         import topohub  # type: ignore[import-not-found]
     except ImportError:
-        raise TopologyError(Problem(f"topohub:{key}", key,
-                                    "needs the 'topohub' package (pip install topohub)")) from None
+        raise TopologyError(Problem(where, key, "needs the 'topohub' package (pip install topohub)")) from None
+    parts = key.split("/")
+    if not key or any(p in ("", ".", "..") or not all(c.isalnum() or c in "-_." for c in p)
+                      for p in parts):
+        raise TopologyError(Problem(where, key, "is not a GROUP/NAME key (e.g. sndlib/abilene)"))
+    res = importlib.resources.files(topohub) / "data" / (key + ".json")
     try:
-        doc = topohub.get(key)
-    except Exception as e:  # topohub raises KeyError, but also OSError on odd keys
-        raise TopologyError(Problem(f"topohub:{key}", key, f"is not in topohub: {e}")) from None
-    return from_node_link(doc, source=f"topohub:{key}", defaults=defaults)
+        with res.open("rb") as fh:
+            doc = json.load(fh)
+    except OSError:
+        raise TopologyError(Problem(where, key, "is not in topohub (see topohub's data/ "
+                                    "directory for GROUP/NAME keys)")) from None
+    except json.JSONDecodeError as e:
+        raise TopologyError(Problem(where, key, f"is not valid node-link JSON: {e}")) from None
+    g = doc.get("graph") or {}
+    if isinstance(g.get("demands"), dict):
+        g["demands"] = {int(a): {int(b): v for b, v in (row or {}).items()}
+                        for a, row in g["demands"].items()}
+    return doc
 
 
 def to_mapping(t: Topology) -> dict[str, Any]:

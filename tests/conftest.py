@@ -1,0 +1,53 @@
+"""Shared fixtures for the learning-core tests (topology, engine, loops, config, validate)."""
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import numpy as np
+import pytest
+
+from routerd import topology as T
+
+
+def ring_with_chords(n: int, chords: int, seed: int = 0, *, zero_delay: bool = False) -> T.Topology:
+    """A connected graph of our own: a ring plus `chords` random chords, seeded delays."""
+    rng = np.random.default_rng(seed)
+    names = [f"h{i}" for i in range(n)]
+    pairs = {tuple(sorted((i, (i + 1) % n))) for i in range(n)}
+    while len(pairs) < min(n + chords, n * (n - 1) // 2):
+        a, b = (int(v) for v in rng.integers(0, n, 2))
+        if a != b:
+            pairs.add((min(a, b), max(a, b)))
+    specs = []
+    for a, b in sorted(pairs):
+        delay = 0.0 if zero_delay and rng.random() < 0.5 else float(rng.uniform(1e-4, 5e-3))
+        specs.append(T.LinkSpec(names[a], names[b], delay, 1e9, 100, f"ring[{a}-{b}]"))
+        specs.append(T.LinkSpec(names[b], names[a], delay, 1e9, 100, f"ring[{b}-{a}]"))
+    return T.build(f"ring-{n}", names, specs)
+
+
+@pytest.fixture(scope="session")
+def make_ring() -> Callable[..., T.Topology]:
+    return ring_with_chords
+
+
+@pytest.fixture(scope="session")
+def small_ring() -> T.Topology:
+    """8 nodes, 6 chords: small enough that random rows collide often (chains, repeats)."""
+    return ring_with_chords(8, 6, seed=7)
+
+
+def topohub_json(key: str) -> dict:
+    """The dataset's own file, read directly (the reference side of topohub checks)."""
+    import importlib.resources
+    import json
+
+    import topohub
+
+    with (importlib.resources.files(topohub) / "data" / f"{key}.json").open("rb") as fh:
+        return json.load(fh)
+
+
+@pytest.fixture(scope="session")
+def topohub_raw() -> Callable[[str], dict]:
+    return topohub_json
