@@ -60,13 +60,17 @@ class Histo:
     Counts are per bucket (not cumulative) until exported; ``+Inf`` is the last bucket.
     """
 
-    __slots__ = ("_lock", "bounds", "counts", "sum")
+    __slots__ = ("_blist", "_lock", "bounds", "counts", "sum")
+
+    #: Below this many values a Python bisect beats numpy's per-call overhead.
+    SMALL = 16
 
     def __init__(self, bounds: Sequence[float]):
         b = np.asarray(bounds, dtype=np.float64)
         if b.ndim != 1 or b.size == 0 or np.any(np.diff(b) <= 0):
             raise ValueError("histogram bounds must be a rising sequence")
         self.bounds = b
+        self._blist = b.tolist()
         self.counts = np.zeros(b.size + 1, dtype=np.int64)
         self.sum = 0.0
         self._lock = threading.Lock()
@@ -74,6 +78,10 @@ class Histo:
     def observe_many(self, values: np.ndarray) -> None:
         v = np.asarray(values, dtype=np.float64)
         if v.size == 0:
+            return
+        if v.size < self.SMALL:
+            for x in v.tolist():
+                self.observe(x)
             return
         # Prometheus buckets are "less than or equal": side="left" puts v == bound in it
         idx = np.searchsorted(self.bounds, v, side="left")
@@ -84,10 +92,10 @@ class Histo:
             self.sum += s
 
     def observe(self, value: float) -> None:
-        i = int(np.searchsorted(self.bounds, value, side="left"))
+        i = bisect.bisect_left(self._blist, value)   # the same rule as side="left"
         with self._lock:
             self.counts[i] += 1
-            self.sum += float(value)
+            self.sum += value
 
     def exported(self) -> tuple[list[tuple[str, float]], float]:
         """(cumulative ``[(le, count), ...]`` ending in ``+Inf``, sum)."""

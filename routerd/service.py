@@ -303,7 +303,13 @@ class Service:
     def start(self) -> None:
         import zmq
 
+        from . import metrics as _metrics
+
         cfg = self.cfg
+        try:
+            _metrics.parse_address(cfg["service.metrics"])   # before anything is written
+        except ValueError as e:
+            raise StartError(str(e)) from None
         state_dir = cfg["service.state_dir"]
         try:
             os.makedirs(state_dir, exist_ok=True)
@@ -425,8 +431,8 @@ class Service:
         addr = self.cfg["service.metrics"]
         try:
             self.metrics_server, self.metrics_port, _ = _metrics.serve(addr, self)
-        except (OSError, ValueError) as e:
-            raise StartError(f"metrics address {addr}: {e}") from None
+        except OSError as e:
+            raise StartError(f"metrics address {addr}: {e.strerror or e}") from None
         host = _metrics.parse_address(addr)[0]
         shown = f"[{host}]" if ":" in host else host
         self.endpoints["metrics"] = f"http://{shown}:{self.metrics_port}/metrics"

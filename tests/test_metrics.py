@@ -208,3 +208,15 @@ def test_live_service_page_over_http(base: str) -> None:
     upd = fams["routerd_update_duration_seconds"]
     assert [s.value for s in upd.samples if s.name.endswith("_count")] == [4]   # 4 batches
     promtool_check(text)
+
+
+def test_histogram_small_and_vector_paths_agree() -> None:
+    rng = np.random.default_rng(3)
+    bounds = metrics.TD_BUCKETS_S
+    vals = np.concatenate([rng.exponential(0.01, 500), np.array(bounds)])   # bounds exactly too
+    one, many = metrics.Histo(bounds), metrics.Histo(bounds)
+    for chunk in np.array_split(vals, 100):          # < SMALL values per call: bisect path
+        one.observe_many(chunk)
+    many.observe_many(vals)                          # one call: numpy path
+    assert one.counts.tolist() == many.counts.tolist()
+    assert one.sum == pytest.approx(many.sum)

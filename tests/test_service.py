@@ -482,3 +482,57 @@ def test_serve_flags_are_exactly_the_documented_ones() -> None:
     for k in ("service.ingest", "service.publish", "service.control"):
         assert c[k].startswith("tcp://127.0.0.1:")
     assert c["service.metrics"].startswith("127.0.0.1:")
+
+
+@pytest.mark.slow
+def test_control_ops_pull_endpoint_and_json_logs(base: str) -> None:
+    cfg = write(os.path.join(base, "j.yaml"), "service:\n  log_format: json\n  debounce_s: 0.01\n")
+    with running(base, pull=True, config=cfg) as sp:
+        ctl = sp.endpoints["control"]
+        nodes = client.control(ctl, {"op": "nodes"})
+        assert nodes == {"v": 1, "nodes": list(DEMO.nodes), "topology": DEMO.digest}
+        t = client.control(ctl, {"op": "tables"})["tables"]
+        assert set(t) == set(DEMO.nodes) and set(t["w1"]) == set(DEMO.nodes) - {"w1"}
+        for ws in t["w1"].values():
+            assert math.isclose(sum(w for _, w in ws), 1.0)
+        e = client.control(ctl, {"op": "estimates", "node": "w3"})["estimates"]
+        assert set(e["e3"]) == {"w2", "w4", "e3"}          # w3's neighbours
+        assert "error" in client.control(ctl, {"op": "estimates", "node": "nowhere"})
+        assert client.control(ctl, {"op": "bogus"})["error"].startswith("unknown_op")
+        r = client.control(ctl, {"op": "link", "from": "w3", "to": "e3", "state": "down"})
+        assert r["link"]["changed"] is True
+        assert "e3" not in client.control(ctl, {"op": "estimates", "node": "w3"})["estimates"]["e4"]
+        assert client.control(ctl, {"op": "link", "from": "w3", "to": "e3", "state": "down"})["link"]["changed"] is False
+        assert "error" in client.control(ctl, {"op": "link", "from": "w3", "to": "e1", "state": "down"})
+        # the override reaches the published tables: no w3 route crosses the trunk
+        time.sleep(0.1)
+        t = client.control(ctl, {"op": "tables"})["tables"]
+        assert all(h != "e3" for ws in t["w3"].values() for h, _ in ws)
+        snap = client.control(ctl, {"op": "snapshot"})["snapshot"]
+        h = client.control(ctl, {"op": "health"})
+        assert h["last_snapshot"]["record"] == snap["record"] and h["status"] == "ok"
+        # raw REP garbage: answered, the REP socket stays usable
+        s = sp.socket(zmq.REQ, "control")
+        s.send(b"\xc1")
+        assert msgpack.unpackb(s.recv(), raw=False)["error"].startswith("not_msgpack")
+        s.close(0)
+        # fire-and-forget: applied and counted like acknowledged batches
+        push = sp.socket(zmq.PUSH, "pull")
+        for i in range(50):
+            push.send(wire.encode_ingest_rows("probe", i, [["e1", "e2", "e3", 0.0006]] * 4))
+        push.send(b"not msgpack")
+        deadline = time.monotonic() + 10
+        while client.control(ctl, {"op": "health"})["counts"]["observations_accepted"] < 200:
+            assert time.monotonic() < deadline
+            time.sleep(0.05)
+        push.close(0)
+        vals = metric_values(sp.metrics_text())
+        assert vals[("routerd_ingest_frames_total", (("socket", "pull"),))] == 51
+        assert refused(vals, "not_msgpack") == 1
+        sp.signal(signal.SIGTERM)
+        assert sp.wait(15) == 0
+    import json
+
+    logs = [json.loads(x) for x in sp.stderr_lines if x.startswith("{")]
+    assert {"started", "link override", "snapshot", "stopping", "stopped"} <= {x["msg"] for x in logs}
+    assert all({"ts", "level", "msg"} <= set(x) for x in logs)

@@ -17,11 +17,11 @@ import msgpack
 import numpy as np
 import pytest
 import zmq
+from service_harness import ServiceProc, service_args
 
 from routerd import client, config, journal, wire
 from routerd.engine import Engine, EngineSettings
 from routerd.service import load_topology
-from service_harness import ServiceProc, service_args
 
 DEMO = load_topology(config.load(None))
 
