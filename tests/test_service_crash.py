@@ -7,6 +7,7 @@ after the kill) bit for bit (:meth:`Engine.same_state`).
 """
 from __future__ import annotations
 
+import os
 import shutil
 import signal
 import tempfile
@@ -133,3 +134,47 @@ def test_kill_9_mid_stream_then_restart_keeps_every_acknowledged_batch(base: str
     state, _ = journal.SnapshotStore(journal.snapshot_dir(state_dir)).latest()
     eng = Engine.from_state(DEMO, journal.settings_from_dict(state["settings"]), state["engine"])
     assert eng.same_state(ref)
+
+
+@pytest.mark.slow
+def test_interval_snapshots_retire_segments_and_kill_9_restores_the_state_before(base: str) -> None:
+    cfg = f"{base}/snap.yaml"
+    with open(cfg, "w", encoding="utf-8") as fh:
+        fh.write("service:\n  snapshot_interval_s: 0.2\n  journal:\n    segment_bytes: 4096\n")
+    sp = ServiceProc(base, [*service_args(base), "--config", cfg])
+    rng = np.random.default_rng(5)
+    try:
+        d = sp.socket(zmq.DEALER, "ingest")
+        t_end = time.monotonic() + 2.0
+        n = 0
+        while time.monotonic() < t_end:       # one batch at a time: nothing is in flight after
+            link = rng.integers(0, DEMO.n_links, 20)
+            dd = rng.integers(0, DEMO.n - 1, 20)
+            dd = np.where(dd >= DEMO.src[link], dd + 1, dd)
+            d.send_multipart([b"", wire.encode_ingest_cols("snap", n, DEMO.digest, DEMO.src[link],
+                                                           DEMO.dst[link], dd, DEMO.delay_s[link] * 2)])
+            assert msgpack.unpackb(d.recv_multipart()[-1], raw=False)["accepted"] == 20
+            n += 1
+        d.close(0)
+        ctl = sp.endpoints["control"]
+        before = {x: client.control(ctl, {"op": "estimates", "node": x})["estimates"] for x in DEMO.nodes}
+        h = client.control(ctl, {"op": "health"})
+        snaps = journal.SnapshotStore(journal.snapshot_dir(sp.state_dir)).list()
+        segs = [f for f in os.listdir(journal.journal_dir(sp.state_dir)) if f.endswith(".rj")]
+        assert len(snaps) == 3                                  # the last three are kept
+        first_seg = min(int(f[4:24]) for f in segs)
+        assert first_seg > 1, "segments covered by every kept snapshot are retired"
+        assert first_seg <= snaps[0][0] + 1                     # ... and none the oldest needs
+        assert h["journal"]["bytes"] < n * 20 * 40              # far less than all batches
+        sp.proc.send_signal(signal.SIGKILL)
+        sp.proc.wait(10)
+    finally:
+        sp.kill()
+    sp = ServiceProc(base, [*service_args(base), "--config", cfg])
+    try:
+        assert any("restored snapshot at record" in line for line in sp.stdout_lines)
+        ctl = sp.endpoints["control"]
+        for x in DEMO.nodes:
+            assert client.control(ctl, {"op": "estimates", "node": x})["estimates"] == before[x], x
+    finally:
+        sp.kill()
