@@ -130,14 +130,29 @@ def write_outputs(result: dict[str, Any], out: str) -> list[str]:
     return written
 
 
+#: problems printed before the rest are summarised in one line
+SHOW_PROBLEMS = 12
+
+
+def report_problems(e: InputError) -> None:
+    probs = e.problems
+    print(f"routerd simulate: {len(probs)} problem(s)", file=sys.stderr)
+    for p in probs[:SHOW_PROBLEMS]:
+        print(f"  {p}", file=sys.stderr)
+    if len(probs) > SHOW_PROBLEMS:
+        print(f"  ... and {len(probs) - SHOW_PROBLEMS} more (routerd validate lists them all)",
+              file=sys.stderr)
+    if any("no default was given" in str(p) for p in probs):
+        print("hint: --capacity-bps and --buffer-pkts give links without those values a default "
+              "(topohub topologies carry none)", file=sys.stderr)
+
+
 def run(args: argparse.Namespace) -> int:
     spec = spec_from_args(args)
     try:
         result = run_sim(spec)
     except InputError as e:
-        print(f"routerd simulate: {len(e.problems)} problem(s)", file=sys.stderr)
-        for p in e.problems:
-            print(f"  {p}", file=sys.stderr)
+        report_problems(e)
         return 2
     written = write_outputs(result, args.out)
     if args.plot:

@@ -81,3 +81,14 @@ def test_bad_inputs_exit_2_with_every_problem(tmp_path, capsys) -> None:
         rc = e.code
     assert rc == 2 and "teleport" in capsys.readouterr().err
     assert not (tmp_path / "o" / "summary.json").exists()
+
+
+def test_many_problems_are_summarised_with_a_hint(tmp_path, capsys) -> None:
+    rc = main(["simulate", "--topology", "topohub:sndlib/abilene", "--policy", "shortest",
+               "--rate", "10", "--duration", "1", "--seed", "1", "--out", str(tmp_path / "o")])
+    assert rc == 2
+    err = capsys.readouterr().err.splitlines()
+    assert err[0].startswith("routerd simulate: ") and "problem(s)" in err[0]
+    assert sum(1 for ln in err if ln.startswith("  topohub:")) == 12
+    assert any("more (routerd validate lists them all)" in ln for ln in err)
+    assert err[-1].startswith("hint: --capacity-bps and --buffer-pkts")
