@@ -77,3 +77,12 @@ def test_link_down_under_qrouting_routes_around() -> None:
     assert q["dropped_link_down"] < s["dropped_link_down"] / 20
     assert q["delivery_ratio"] > 0.99
     assert_little(q)
+
+
+@pytest.mark.parametrize("overrides", [["sim.estimate=min"], ["sim.feedback=instant"],
+                                       ["sim.decision_interval_s=0.2", "sim.ttl=8"]])
+def test_qrouting_settings_run(overrides: list[str]) -> None:
+    s = run({"policy": "qrouting", "rate_pps": 400.0, "duration_s": 4.0, "seed": 1,
+             "overrides": overrides, "series": False})["summary"]
+    assert s["delivery_ratio"] > 0.99 and s["policy_engine_updates"] > 1000
+    assert_little(s)
