@@ -18,7 +18,7 @@ to the engine (batches, link overrides, reloads and every ``decide`` as a ``tick
 
 Variants (what-if).  A variant is the recorded settings with some ``engine.*`` keys
 changed: ``--set KEY=VALUE`` (and the ``engine.*`` keys in which ``--config FILE``
-differs from the settings the replay starts with) define the primary variant, whose
+differs from the settings the service ended with) define the primary variant, whose
 tables go to ``tables.json``; each ``--compare KEY=VALUE[,KEY=VALUE...]`` adds one more.
 The overrides apply from the start and again on top of every recorded reload.  All
 variants see the same records in one pass over the journal; at every ``tick`` each one
@@ -247,6 +247,15 @@ def find_start(src: Source, fallback: EngineSettings) -> Start:
                               "the records before it" + (f" ({'; '.join(problems)})" if problems else "")))
 
 
+def last_settings(src: Source, start: Start) -> EngineSettings:
+    """The recorded settings in force after the journal's last record."""
+    s = start.settings
+    for r in J.iter_records(src.journal_dir, start.after):
+        if r.kind in ("start", "config") and "settings" in r.body:
+            s = J.settings_from_dict(r.body["settings"])
+    return s
+
+
 # ---- running -----------------------------------------------------------------------------
 @dataclass
 class Run:
@@ -257,11 +266,17 @@ class Run:
     route_changes: list[int] = field(default_factory=list)
     exploration: list[float] = field(default_factory=list)
     differing: list[int] = field(default_factory=list)
-    pair_seconds: np.ndarray | None = None
-    ever: np.ndarray | None = None
-    first_t: np.ndarray | None = None
+    pair_seconds: np.ndarray = field(init=False)   # (n, n) seconds routed differently
+    ever: np.ndarray = field(init=False)           # (n, n) routed differently at some tick
+    first_t: np.ndarray = field(init=False)        # (n, n) the first such tick's time
     prev_diff: np.ndarray | None = None
     last_decision: Decision | None = None
+
+    def __post_init__(self) -> None:
+        n = self.engine.n
+        self.pair_seconds = np.zeros((n, n))
+        self.ever = np.zeros((n, n), dtype=bool)
+        self.first_t = np.full((n, n), np.nan)
 
     def on_tick(self, _r: J.Record, d: Decision) -> None:
         self.last_decision = d
@@ -290,7 +305,7 @@ class LinkTrace:
     def add(self, t_rel: float, src: np.ndarray, via: np.ndarray, lat: np.ndarray) -> None:
         if not len(src):
             return
-        b = int(math.floor(t_rel / self.iv))
+        b = math.floor(t_rel / self.iv)
         e = self.bins.get(b)
         if e is None:
             L = self.topo.n_links
@@ -325,11 +340,6 @@ def replay(src: Source, topo: _topology.Topology, variants: Sequence[Variant], *
     start = find_start(src, fallback or EngineSettings())
     base = Run(Variant(RECORDED), make_engine(topo, start, Variant(RECORDED)))
     others = [Run(v, make_engine(topo, start, v)) for v in variants]
-    n = topo.n
-    for r in [base, *others]:
-        r.pair_seconds = np.zeros((n, n))
-        r.ever = np.zeros((n, n), dtype=bool)
-        r.first_t = np.full((n, n), np.nan)
     rejected0 = sum(base.engine.statistics().rejected.values())
     tick_t: list[float] = []
     t_first: list[float] = []
@@ -338,20 +348,20 @@ def replay(src: Source, topo: _topology.Topology, variants: Sequence[Variant], *
     counts = {"batches": 0, "hops": 0, "links": 0, "ticks": 0, "configs": 0, "starts": 0}
 
     def on_record(rec: J.Record) -> None:
-        t = rec.body.get("t")
-        if t is not None:
-            t = float(t)
+        raw_t = rec.body.get("t")
+        t = math.nan if raw_t is None else float(raw_t)
+        if raw_t is not None:
             if not t_first:
                 t_first.append(t)
             t_last[0] = t
         for o in others:
             J.replay_into(o.engine, [o.variant.record(rec)], on_tick=o.on_tick)
-        if rec.kind == "batch" and link_trace is not None and t is not None:
+        if rec.kind == "batch" and link_trace is not None and raw_t is not None:
             h = J.batch_hops(rec.body)
             link_trace.add(t - t_first[0], h.src, h.via, h.latency)
         if rec.kind != "tick":
             return
-        tick_t.append(float(t))  # type: ignore[arg-type]
+        tick_t.append(t)
         g0 = base.engine.next_hops()
         for run_ in [base, *others]:
             eng = run_.engine
@@ -362,9 +372,9 @@ def replay(src: Source, topo: _topology.Topology, variants: Sequence[Variant], *
             run_.differing.append(int(diff.sum()))
             if run_.prev_diff is not None and len(tick_t) > 1:
                 run_.pair_seconds += run_.prev_diff * (tick_t[-1] - tick_t[-2])
-            new = diff & ~run_.ever      # type: ignore[operator]
-            run_.first_t[new] = float(t)  # type: ignore[index]
-            run_.ever |= diff             # type: ignore[operator]
+            new = diff & ~run_.ever
+            run_.first_t[new] = t
+            run_.ever |= diff
             run_.prev_diff = diff
 
     t0 = time.perf_counter()
@@ -385,7 +395,7 @@ def replay(src: Source, topo: _topology.Topology, variants: Sequence[Variant], *
 
 # ---- the command ---------------------------------------------------------------------------
 def _load_config_and_topology(args: argparse.Namespace) -> tuple[_config.Config | None, _topology.Topology]:
-    from .service import load_config, load_topology   # the service's own rules for both
+    from .service import load_config, load_topology  # the service's own rules for both
 
     ns = argparse.Namespace(config=args.config, topology=args.topology)
     cfg = load_config(ns)
@@ -414,10 +424,13 @@ def replay_command(args: argparse.Namespace) -> dict[str, Any]:
     try:
         cfg, topo = _load_config_and_topology(args)
         _check_topology(src, topo)
-        start_settings = find_start(src, EngineSettings()).settings
+        start = find_start(src, EngineSettings())
+        start_settings = start.settings
         primary_changes: dict[str, Any] = {}
         if cfg is not None:
-            primary_changes.update(diff_settings(start_settings, EngineSettings.from_config(cfg)))
+            # against the settings the service ended with: its config file as it is now
+            last = last_settings(src, start)
+            primary_changes.update(diff_settings(last, EngineSettings.from_config(cfg)))
         primary_changes.update(parse_changes(args.overrides, "--set"))
         variants: list[Variant] = []
         primary: Variant | None = None
@@ -460,9 +473,8 @@ def _safe(label: str) -> str:
 
 def summarise(run_: Run, topo: _topology.Topology, total_s: float) -> dict[str, Any]:
     ps = run_.pair_seconds
-    assert ps is not None and run_.ever is not None
     ever = int(run_.ever.sum())
-    routed = int((topo.n * (topo.n - 1)))
+    routed = int(topo.n * (topo.n - 1))
     top = np.argsort(-ps, axis=None)[:10]
     return {
         "variant": run_.variant.label,
@@ -546,7 +558,6 @@ def write_outputs(args: argparse.Namespace, topo: _topology.Topology, res: dict[
             w.writerow(["variant", "node", "destination", "seconds_differing", "first_differing_t_s"])
             for r in others:
                 ps, ft = r.pair_seconds, r.first_t
-                assert ps is not None and ft is not None and r.ever is not None
                 for i in np.flatnonzero(r.ever).tolist():
                     x, d = divmod(i, topo.n)
                     w.writerow([r.variant.label, topo.nodes[x], topo.nodes[d],
@@ -614,8 +625,8 @@ def plot(runs: Sequence[Run], tick_t: Sequence[float], t0: float, path: str,
     for i, r in enumerate(runs):
         rec = r.variant.label == RECORDED
         # the recorded run: thick, black, underneath, so a variant that matches it shows
-        st = dict(lw=3.0, color="black", alpha=0.45, zorder=1) if rec else \
-            dict(lw=1.4, color=f"C{i - 1}", zorder=2)
+        st = {"lw": 3.0, "color": "black", "alpha": 0.45, "zorder": 1} if rec else \
+            {"lw": 1.4, "color": f"C{i - 1}", "zorder": 2}
         axes[0].step(t, np.cumsum(r.route_changes), where="post", label=r.variant.label, **st)
         axes[1].plot(t, r.exploration, label=r.variant.label, **st)
         if not rec:

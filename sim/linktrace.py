@@ -25,6 +25,7 @@ reading, not used.  ``--speed`` divides ``t_s`` as it divides a capture's timest
 from __future__ import annotations
 
 import csv
+import io
 import math
 from dataclasses import dataclass
 
@@ -62,49 +63,49 @@ class LinkTrace:
 def load(path: str, topo: Topology) -> LinkTrace:
     """Read a link trace; InputError listing every bad row with file and line."""
     try:
-        fh = open(path, encoding="utf-8", newline="")
-    except OSError as e:
-        raise InputError(Problem(path, path, f"cannot be read: {e.strerror}")) from None
+        with open(path, encoding="utf-8", newline="") as fh:
+            text = fh.read()
+    except (OSError, UnicodeDecodeError) as e:
+        raise InputError(Problem(path, path, f"cannot be read as text: {e}")) from None
     problems: list[Problem] = []
     rows: list[tuple[float, int, float, int]] = []
-    with fh:
-        rd = csv.reader(fh)
-        header = [h.strip() for h in next(rd, [])]
-        missing = [c for c in COLUMNS if c not in header]
-        if missing:
-            raise InputError(Problem(f"{path}:1", ",".join(header),
-                                     f"lacks the column(s) {', '.join(missing)} "
-                                     f"(needs {','.join(COLUMNS)})"))
-        col = {c: header.index(c) for c in COLUMNS}
-        for row in rd:
-            if not row or all(not c.strip() for c in row):
-                continue
-            where = f"{path}:{rd.line_num}"
-            if len(row) < len(header):
-                problems.append(Problem(where, ",".join(row), f"has {len(row)} fields, the header {len(header)}"))
-                continue
-            a, b = row[col["from"]].strip(), row[col["to"]].strip()
-            try:
-                t = float(row[col["t_s"]])
-                d = float(row[col["delay_s"]])
-            except ValueError:
-                problems.append(Problem(where, ",".join(row), "t_s and delay_s must be numbers"))
-                continue
-            if not (math.isfinite(t) and t >= 0):
-                problems.append(Problem(where, t, "t_s must be a finite number >= 0"))
-                continue
-            if not (math.isfinite(d) and d >= 0):
-                problems.append(Problem(where, d, "delay_s must be a finite number >= 0"))
-                continue
-            if a not in topo.index or b not in topo.index:
-                bad = a if a not in topo.index else b
-                problems.append(Problem(where, bad, f"is not a node of topology {topo.name!r}"))
-                continue
-            k = topo.link_index.get((topo.index[a], topo.index[b]))
-            if k is None:
-                problems.append(Problem(where, f"{a}->{b}", f"is not a link of topology {topo.name!r}"))
-                continue
-            rows.append((t, k, d, rd.line_num))
+    rd = csv.reader(io.StringIO(text))
+    header = [h.strip() for h in next(rd, [])]
+    missing = [c for c in COLUMNS if c not in header]
+    if missing:
+        raise InputError(Problem(f"{path}:1", ",".join(header),
+                                 f"lacks the column(s) {', '.join(missing)} "
+                                 f"(needs {','.join(COLUMNS)})"))
+    col = {c: header.index(c) for c in COLUMNS}
+    for row in rd:
+        if not row or all(not c.strip() for c in row):
+            continue
+        where = f"{path}:{rd.line_num}"
+        if len(row) < len(header):
+            problems.append(Problem(where, ",".join(row), f"has {len(row)} fields, the header {len(header)}"))
+            continue
+        a, b = row[col["from"]].strip(), row[col["to"]].strip()
+        try:
+            t = float(row[col["t_s"]])
+            d = float(row[col["delay_s"]])
+        except ValueError:
+            problems.append(Problem(where, ",".join(row), "t_s and delay_s must be numbers"))
+            continue
+        if not (math.isfinite(t) and t >= 0):
+            problems.append(Problem(where, t, "t_s must be a finite number >= 0"))
+            continue
+        if not (math.isfinite(d) and d >= 0):
+            problems.append(Problem(where, d, "delay_s must be a finite number >= 0"))
+            continue
+        if a not in topo.index or b not in topo.index:
+            bad = a if a not in topo.index else b
+            problems.append(Problem(where, bad, f"is not a node of topology {topo.name!r}"))
+            continue
+        k = topo.link_index.get((topo.index[a], topo.index[b]))
+        if k is None:
+            problems.append(Problem(where, f"{a}->{b}", f"is not a link of topology {topo.name!r}"))
+            continue
+        rows.append((t, k, d, rd.line_num))
     if problems:
         shown = problems[:20]
         if len(problems) > 20:

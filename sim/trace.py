@@ -52,7 +52,7 @@ from dataclasses import dataclass, field
 from datetime import datetime
 from decimal import Decimal, InvalidOperation
 from fractions import Fraction
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 
@@ -272,8 +272,8 @@ class TraceReport:
         }
 
     def lines(self) -> list[str]:
-        out = [f"trace {self.source} ({self.format}): {self.records} records, {self.injected} "
-               f"packets injected over {self.span_s:.6g} s (speed x{self.speed:g})"]
+        out = [(f"trace {self.source} ({self.format}): {self.records} records, {self.injected} "
+               f"packets injected over {self.span_s:.6g} s (speed x{self.speed:g})")]
         for r, c in self.skipped.items():
             if c:
                 out.append(f"  not injected, {r.replace('_', ' ')}: {c}")
@@ -374,7 +374,7 @@ def _walk_pcapng(buf: bytes, out: list[_Rec]) -> None:
         elif first:
             raise _Cut(0, "a pcapng file must start with a section header block")
         first = False
-        order = "little" if le else "big"
+        order: Literal["little", "big"] = "little" if le else "big"
         btype = int.from_bytes(buf[off:off + 4], order)
         blen = int.from_bytes(buf[off + 4:off + 8], order)
         if blen < 12 or blen % 4:
@@ -617,7 +617,7 @@ _OPTIONAL = ("packets", "duration_s")
 
 def _time_ns(v: Any) -> int:
     if isinstance(v, bool):
-        raise ValueError("true/false is not a time")
+        raise TypeError("true/false is not a time")
     if isinstance(v, (int, float)):
         if not math.isfinite(v):
             raise ValueError("not a finite number")
@@ -635,7 +635,7 @@ def _time_ns(v: Any) -> int:
 
 def _num(v: Any, what: str, lo_open: bool = False) -> float:
     if isinstance(v, bool):
-        raise ValueError(f"{what} must be a number")
+        raise TypeError(f"{what} must be a number")
     x = float(v)
     if not math.isfinite(x) or x < 0 or (lo_open and x == 0):
         raise ValueError(f"{what} must be a finite number {'above' if lo_open else 'at least'} 0")
@@ -656,16 +656,16 @@ def load_flow_log(path: str, topo: Topology, amap: AddressMap | None, *, speed: 
     problems: list[Problem] = []
     rows: list[tuple[int, Mapping[str, Any]]] = []
     if jsonl:
-        for i, line in enumerate(text.splitlines(), 1):
-            if not line.strip():
+        for i, text_line in enumerate(text.splitlines(), 1):
+            if not text_line.strip():
                 continue
             try:
-                obj = json.loads(line)
+                obj = json.loads(text_line)
             except json.JSONDecodeError as e:
-                problems.append(Problem(f"{path}:{i}", line[:40], f"is not JSON ({e.msg})"))
+                problems.append(Problem(f"{path}:{i}", text_line[:40], f"is not JSON ({e.msg})"))
                 continue
             if not isinstance(obj, dict):
-                problems.append(Problem(f"{path}:{i}", line[:40], "is not a JSON object"))
+                problems.append(Problem(f"{path}:{i}", text_line[:40], "is not a JSON object"))
                 continue
             rows.append((i, obj))
     else:
