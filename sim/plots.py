@@ -65,6 +65,12 @@ def plot_delivery(result: dict[str, Any], path: str) -> str:
     if summ.get("warmup_s", 0) > 0:
         ax.axvline(summ["warmup_s"], color="grey", ls=":", lw=1)
         ax.text(summ["warmup_s"], ax.get_ylim()[1], " warm-up", va="top", fontsize=8, color="grey")
+    for ev in result.get("link_events", []):
+        ax.axvline(ev["t_s"], color="tab:green" if ev["action"] == "up" else "tab:purple",
+                   ls="--", lw=1)
+        label = ev["links"][0].replace("->", "-") if ev["links"] else ""
+        ax.text(ev["t_s"], ax.get_ylim()[1] * 0.97, f" {label} {ev['action']}", va="top",
+                fontsize=7, rotation=90, color="dimgrey")
     ax2 = ax.twinx()
     ax2.bar(t - s["interval_s"] / 2, drops, width=s["interval_s"] * 0.8, color="tab:red",
             alpha=0.3, label="drops + TTL expiries")

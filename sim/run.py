@@ -145,7 +145,8 @@ def load_inputs(spec: SimSpec) -> tuple[_config.Config, _topology.Topology, _sce
 
 def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
         observer: Any = None) -> dict[str, Any]:
-    """Run one simulation.  Returns ``{"summary": {...}, "series": {...}, "links": [...]}``.
+    """Run one simulation.  Returns ``{"summary": {...}, "series": {...}, "links": [...],
+    "link_events": [...]}`` (the scenario's link events: ``t_s``, ``action``, ``links``).
 
     Raises :class:`routerd.errors.InputError` for bad inputs (before anything runs).
     ``policy``: an unattached :class:`sim.policy.Policy` instance to use instead of
@@ -169,7 +170,8 @@ def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
         pair_weights=topo.demands if sp.demands else None, scenario=scen,
         duration_s=sp.duration_s, warmup_s=warm, flows_per_pair=cfg["sim.flows_per_pair"],
     )
-    link_events = scen.link_events(topo) + (ltrace.events(sp.trace_speed) if ltrace else [])
+    scen_events = scen.link_events(topo)
+    link_events = scen_events + (ltrace.events(sp.trace_speed) if ltrace else [])
     if policy is None:
         policy = _policies.make(sp.policy)
     try:
@@ -181,8 +183,13 @@ def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
                        link_events=link_events, progress=progress, observer=observer)
         if progress is not None:
             progress(sp.duration_s, raw["events"], final=True)
-        return _trace.annotate(reduce(raw, sp, topo, policy.name, warm, policy.stats()),
-                               trace_src, ltrace)
+        result = reduce(raw, sp, topo, policy.name, warm, policy.stats())
+        # the scenario's link events, for plots and readers of the result
+        result["link_events"] = [
+            {"t_s": ev.t, "action": ev.action,
+             "links": [f"{topo.nodes[topo.src[k]]}->{topo.nodes[topo.dst[k]]}" for k in ev.links]}
+            for ev in scen_events]
+        return _trace.annotate(result, trace_src, ltrace)
     finally:
         close = getattr(policy, "close", None)
         if close is not None:
