@@ -440,7 +440,8 @@ def build(
                 )
                 break
     if problems:
-        raise TopologyError(problems)
+        # an undirected link is two directed ones: report each problem once
+        raise TopologyError(list(dict.fromkeys(problems)))
     return Topology(
         name=name,
         nodes=tuple(node_list),

@@ -1,0 +1,136 @@
+"""``routerd validate FILE...`` (routerd/validate.py): exit codes and what it prints.
+
+Contract (issue 2): ``OK`` and a one-line summary per good file, or every error found,
+each naming the file, the element or key path, the bad value and the rule; exit 1.
+"""
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+
+import networkx as nx
+import pytest
+import yaml
+
+from routerd import cli, config
+
+GOOD_TOPO = {"topology": {
+    "name": "bench-lab", "defaults": {"capacity_bps": 1.0e7, "buffer_pkts": 20},
+    "nodes": ["a", "b", "c"],
+    "links": [{"between": ["a", "b"], "delay_s": 0.001}, {"between": ["b", "c"], "delay_s": 0.002},
+              {"between": ["c", "a"], "delay_s": 0.004}]}}
+
+
+def _w(tmp_path, name: str, doc) -> str:  # type: ignore[no-untyped-def]
+    p = tmp_path / name
+    p.write_text(doc if isinstance(doc, str) else yaml.safe_dump(doc))
+    return str(p)
+
+
+def _run(capsys, *argv: str) -> tuple[int, list[str]]:  # type: ignore[no-untyped-def]
+    rc = cli.main(["validate", *argv])
+    out = capsys.readouterr().out
+    return rc, out.splitlines()
+
+
+def test_good_topology_and_config(tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    topo = _w(tmp_path, "lab.yaml", GOOD_TOPO)
+    cfg = _w(tmp_path, "routerd.yaml", {"topology": {"file": "lab.yaml"},
+                                        "engine": {"step": {"alpha": 0.25, "mode": "constant"}}})
+    rc, lines = _run(capsys, topo, cfg)
+    assert rc == 0
+    assert lines[0] == (f"OK {topo}: topology 'bench-lab': 3 nodes, 6 directed links, "
+                        "diameter 1 hops / 3.000 ms")  # c -> a via b: 2 + 1 ms
+    # a config that names a topology (relative to the config file) gets it checked too
+    assert lines[1].startswith(f"OK {cfg}: config: 3 setting(s) differ from the defaults; "
+                               "topology 'bench-lab'")
+    assert len(lines) == 2
+
+
+def test_bad_files_list_every_problem_and_exit_1(tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    bad_topo = dict(GOOD_TOPO["topology"])
+    bad_topo["nodes"] = ["a", "b", "c", "d"]
+    bad_topo["links"] = GOOD_TOPO["topology"]["links"] + [
+        {"between": ["a", "zz"], "delay_s": 0.001}, {"from": "b", "to": "b", "delay_s": 0.001},
+        {"between": ["a", "d"], "delay_s": -1}, {"from": "b", "to": "a", "delay_s": 0.001}]
+    topo = _w(tmp_path, "bad-topo.yaml", {"topology": bad_topo})
+    cfg = _w(tmp_path, "bad.yaml", {"engine": {"explore": {"max_rate": 1.4}, "step": {"kappa": 2}}})
+    good = _w(tmp_path, "good.yaml", GOOD_TOPO)
+    rc, lines = _run(capsys, topo, cfg, good)
+    assert rc == 1
+    text = "\n".join(lines)
+    # each problem once, though an undirected link is checked as two directed ones
+    assert f"{topo}: 4 problem(s)" in lines
+    assert f"  {topo}: topology.links[3]: 'zz' is not a declared node" in lines
+    assert f"  {topo}: topology.links[4]: 'b -> b' is a self-loop" in lines
+    assert f"  {topo}: topology.links[5].delay_s: -1 must be >= 0" in lines
+    assert (f"  {topo}: topology.links[6]: 'b -> a' duplicates the link at {topo}: "
+            "topology.links[0]") in lines
+    assert f"{cfg}: 2 problem(s)" in lines
+    assert f"  {cfg}: engine.explore.max_rate: 1.4 is above 1" in lines
+    assert f"  {cfg}: engine.step.kappa: 2 is above 1" in lines
+    assert f"OK {good}: topology 'bench-lab'" in text  # good files still reported
+
+
+def test_missing_and_unreadable_files(tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    missing = str(tmp_path / "nope.yaml")
+    junk = _w(tmp_path, "junk.yaml", "engine: [1, 2\n")
+    rc, lines = _run(capsys, missing, junk)
+    assert rc == 1
+    assert f"  {missing}: '{missing}' does not exist" in lines
+    assert any(ln.startswith(f"  {junk}: '' is not valid YAML") for ln in lines)
+
+
+def test_config_naming_a_bad_topology_fails(tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    cfg = _w(tmp_path, "c.yaml", {"topology": {"file": "absent.yaml"}})
+    rc, lines = _run(capsys, cfg)
+    assert rc == 1 and any("absent.yaml" in ln and "does not exist" in ln for ln in lines)
+
+
+def test_topohub_reference_needs_capacities(capsys) -> None:  # type: ignore[no-untyped-def]
+    rc, lines = _run(capsys, "topohub:sndlib/abilene")
+    assert rc == 1
+    assert any("capacity_bps: None is missing and no default was given" in ln for ln in lines)
+    rc, lines = _run(capsys, "topohub:sndlib/abilene", "--capacity-bps", "1e9", "--buffer-pkts", "64")
+    assert rc == 0
+    assert lines == ["OK topohub:sndlib/abilene: topology 'abilene': 12 nodes, 30 directed links, "
+                     "diameter 5 hops / 23.534 ms, demand matrix"]
+
+
+def test_graphml_file(tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    G = nx.Graph()
+    G.add_edge("p", "q", delay_s=0.001, capacity_bps=1e6, buffer_pkts=5)
+    G.add_edge("q", "r", delay_s=0.001, capacity_bps=1e6, buffer_pkts=5)
+    path = str(tmp_path / "g.graphml")
+    nx.write_graphml(G, path)  # networkx as the reference GraphML writer
+    rc, lines = _run(capsys, path)
+    assert rc == 0 and lines[0].startswith(f"OK {path}: topology ")
+
+
+def test_schema_and_usage(capsys) -> None:  # type: ignore[no-untyped-def]
+    rc, lines = _run(capsys, "--schema")
+    assert rc == 0
+    assert sum(1 for ln in lines if " = " in ln and not ln.startswith(" ")) == len(config.SCHEMA)
+    assert cli.main(["validate"]) == 2
+    assert "name at least one FILE" in capsys.readouterr().err
+
+
+def test_as_a_subprocess(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    good = _w(tmp_path, "t.yaml", GOOD_TOPO)
+    bad = _w(tmp_path, "c.yaml", {"engine": {"ceiling_s": -1}})
+    env = dict(os.environ, PYTHONPATH=os.getcwd())
+    ok = subprocess.run([sys.executable, "-m", "routerd", "validate", good], capture_output=True,
+                        text=True, timeout=60, env=env)
+    assert ok.returncode == 0 and ok.stdout.startswith(f"OK {good}: ")
+    no = subprocess.run([sys.executable, "-m", "routerd", "validate", bad], capture_output=True,
+                        text=True, timeout=60, env=env)
+    assert no.returncode == 1
+    assert f"  {bad}: engine.ceiling_s: -1 is at or below 0" not in no.stdout  # -1 is below, not at
+    assert f"  {bad}: engine.ceiling_s: -1 is below 0 (must be above it)" in no.stdout
+
+
+@pytest.mark.parametrize("path", ["routerd/data/demo-lab.yaml"])
+def test_shipped_files_validate(path: str, capsys) -> None:  # type: ignore[no-untyped-def]
+    rc, lines = _run(capsys, path)
+    assert rc == 0 and lines[0].startswith(f"OK {path}: topology 'demo-lab': 16 nodes")
