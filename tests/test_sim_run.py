@@ -70,7 +70,9 @@ def test_no_deliveries_gives_nan_statistics() -> None:
 
 def test_link_down_under_qrouting_routes_around() -> None:
     sc = {"scenario": {"links": [{"at_s": 3, "between": ["w3", "e3"], "down": True}]}}
-    q = run({"policy": "qrouting", "rate_pps": 600.0, "duration_s": 10.0, "seed": 2, "scenario": sc})["summary"]
+    rq = run({"policy": "qrouting", "rate_pps": 600.0, "duration_s": 10.0, "seed": 2, "scenario": sc})
+    assert rq["link_events"] == [{"t_s": 3.0, "action": "down", "links": ["w3->e3", "e3->w3"]}]
+    q = rq["summary"]
     s = run({"policy": "shortest", "rate_pps": 600.0, "duration_s": 10.0, "seed": 2, "scenario": sc})["summary"]
     # shortest keeps sending into the dead trunk; qrouting loses only what was queued on it
     assert s["dropped_link_down"] > 1000
