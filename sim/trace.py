@@ -230,9 +230,11 @@ def _overlaps(entries: Sequence[_Entry], topo: Topology, path: str) -> list[Prob
                 stack.pop()
             for outer in stack:
                 if outer.node != e.node:
-                    out.append(Problem(f"{path}:{e.line}", str(e.net),
-                                       f"of {topo.nodes[e.node]} overlaps {outer.net} of "
-                                       f"{topo.nodes[outer.node]} (line {outer.line}): an address "
+                    # reported at the entry further down the file, naming the other's line
+                    a, b = (e, outer) if e.line >= outer.line else (outer, e)
+                    out.append(Problem(f"{path}:{a.line}", str(a.net),
+                                       f"of {topo.nodes[a.node]} overlaps {b.net} of "
+                                       f"{topo.nodes[b.node]} (line {b.line}): an address "
                                        "must belong to one node"))
             stack.append(e)
     return out
