@@ -90,13 +90,31 @@ def test_symmetric_square_splits_evenly() -> None:
     assert a != c
 
 
-def test_infeasible_demand_is_reported_not_crashed() -> None:
-    # 3.2 packets/s cannot cross links of 2 + 1 packets/s
+def test_infeasible_demand_is_proven_quickly_not_crashed() -> None:
+    # 3.2 packets/s cannot cross links of 2 + 1 packets/s: at most 3/3.2 = 0.9375 of it
+    # fits.  Weak duality of the maximum concurrent flow problem (Shahrokhi & Matula,
+    # J. ACM 37, 1990) bounds that factor from above, so the bound proves infeasibility.
     res = two_links(3.2)
     assert not res.feasible
     assert math.isinf(res.delay_s)
     assert res.max_utilisation >= 1.0
+    assert 3.0 / 3.2 - 1e-12 <= res.load_factor_bound < 1.0
+    assert res.iterations <= 20
     assert res.fractions[1].sum() == pytest.approx(1.0)  # still a full spread for node 0
+
+
+def test_the_duality_gap_brackets_the_optimum() -> None:
+    # T* = 1.25708 (the worked example above) lies between the bound and the value, for a
+    # converged run and for one cut short after a single iteration
+    for kw in ({}, {"max_iter": 1, "tol": 0.0}):
+        res = md.flow_deviation(2, np.array([0, 0]), np.array([1, 1]), np.array([2.0, 1.0]),
+                                np.zeros(2), np.array([[0.0, 1.5], [0.0, 0.0]]), **kw)
+        assert res.delay_lower_s <= 1.25708 + 1e-5 and res.delay_s >= 1.25708 - 1e-5
+    t, dem, _ = abilene(0.9)
+    short = md.for_topology(t, dem, 1000.0, max_iter=2, tol=0.0)
+    full = md.for_topology(t, dem, 1000.0, tol=1e-9)
+    assert short.delay_lower_s <= full.delay_s * (1 + 1e-9) <= short.delay_s * (1 + 1e-9)
+    assert full.delay_lower_s == pytest.approx(full.delay_s, rel=1e-8)
 
 
 def test_bad_inputs_have_clear_messages() -> None:
