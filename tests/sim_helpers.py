@@ -10,3 +10,11 @@ def assert_little(s: dict[str, Any], rel: float = 0.03) -> None:
     mean time in it.  Only edge effects at the window's ends separate the two measures."""
     L, lw = s["little_L"], s["little_lambda_W"]
     assert abs(L - lw) <= rel * max(L, 1e-9) + 1e-3, (L, lw)
+
+
+def assert_little_raw(raw: dict[str, Any], rel: float = 0.03) -> None:
+    """The same check on :func:`sim.core.run_core`'s raw result."""
+    win = raw["window_s"]
+    L = raw["little_area"] / win
+    lw = raw["left"] / win * (raw["sys_sum"] / raw["left"]) if raw["left"] else 0.0
+    assert abs(L - lw) <= rel * max(L, 1e-9) + 1e-3, (L, lw)

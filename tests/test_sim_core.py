@@ -9,7 +9,7 @@ import math
 
 import numpy as np
 import pytest
-from sim_helpers import assert_little
+from sim_helpers import assert_little, assert_little_raw
 
 from routerd import config, topology
 from sim.core import LinkEvent, run_core
@@ -121,6 +121,7 @@ def test_ttl_expiry_counts_a_loop() -> None:
     # everything that left the network left by TTL expiry, after exactly 16 hops
     assert raw["ttl_expired"] == raw["offered"] - raw["in_flight_end"]
     assert raw["in_flight_end"] <= 3
+    assert_little_raw(raw)
 
 
 def test_link_down_drops_queued_packets_and_counts_them() -> None:
@@ -141,6 +142,7 @@ def test_link_down_drops_queued_packets_and_counts_them() -> None:
     assert raw["offered"] == raw["delivered"] + raw["dropped"] + raw["ttl_expired"] + raw["in_flight_end"]
     # traffic flows again after the link comes back: the last series bins deliver
     assert raw["series"]["delivered"][-1] > 1000
+    assert_little_raw(raw)
 
 
 def test_same_seed_same_summary_and_different_seed_differs() -> None:
