@@ -19,14 +19,16 @@ One event per hop.  Because a queue is FIFO with known service times, a packet's
 departure time is fixed when it enters the queue: ``dep = max(now, free_at[k]) + tx``.
 So entering the queue schedules the arrival at the far end (``dep + delay``) at once and
 no "transmission done" event is needed.  The queue's occupancy at time t is the number of
-packets with ``dep > t`` (a deque of departure times, trimmed from the left).  A capacity
+packets with ``dep > t`` (a deque of departure times, trimmed from the left whenever it
+holds 32 entries or the buffer size, so the count is exact wherever it is compared).  A capacity
 change applies to packets that enter the queue after it.  A link going down drops every
 packet still in its queue (``dep > t``, the one in transmission included) and refuses new
 ones; packets already on the wire arrive.
 
 Events are plain ``(time, code)`` tuples: ``code >= 0`` is the arrival of packet ``code``
 at ``p_node[code]``; negative codes are the few control events (next injection, policy
-tick, series sample, warm-up mark, link event i).  A packet has at most one pending
+tick, series sample, warm-up mark, link event i, and an end marker just after
+``duration_s`` that sorts first among ties).  A packet has at most one pending
 event, and a dropped packet's id is only reused after its stale event pops, so codes are
 unique in the heap and ties break deterministically.
 
