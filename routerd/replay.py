@@ -362,6 +362,12 @@ def replay(src: Source, topo: _topology.Topology, variants: Sequence[Variant], *
         if rec.kind != "tick":
             return
         tick_t.append(t)
+        if not others:   # nothing to compare: only the recorded run's own figures
+            d = base.last_decision
+            base.route_changes.append(d.route_changes if d is not None else 0)
+            base.exploration.append(base.engine.exploration_share())
+            base.differing.append(0)
+            return
         g0 = base.engine.next_hops()
         for run_ in [base, *others]:
             eng = run_.engine
