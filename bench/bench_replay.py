@@ -117,8 +117,7 @@ def write_capture(path: str, topo: T.Topology, count: int) -> str:
             w.writepkt(eth_ip_udp(hosts[a], hosts[b], 64), ts=t)
     amap = path + ".map.yaml"
     with open(amap, "w", encoding="utf-8") as fh:
-        for i, nm in enumerate(topo.nodes):
-            fh.write(f"{nm}: [10.{i // 250}.{i % 250}.0/24]\n")
+        fh.writelines(f"{nm}: [10.{i // 250}.{i % 250}.0/24]\n" for i, nm in enumerate(topo.nodes))
     return amap
 
 
