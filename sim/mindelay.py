@@ -251,8 +251,10 @@ def flow_deviation(
     if gamma <= 0:
         z = np.zeros(L)
         frac = _fallback_fractions(n, src, dst, mm1_marginal(z, cap, prop), np.zeros((n, L)))
-        return MinDelayResult(z, np.zeros((n, L)), frac, 0.0, 0.0, 0.0, 0.0, 0, True, True,
-                              0.0, rho_levels[0], mm1_marginal(z, cap, prop))
+        # no traffic: nothing to optimise, and T = D/γ is undefined (NaN)
+        return MinDelayResult(z, np.zeros((n, L)), frac, 0.0, math.nan, 0.0, 0.0, 0, True, True,
+                              0.0, rho_levels[0], mm1_marginal(z, cap, prop),
+                              delay_lower_s=math.nan)
 
     fd, best0, _ = _all_or_nothing(n, src, dst, mm1_marginal(np.zeros(L), cap, prop), r)
     step = _classic if method == "classic" else _PathShift(n, src, dst, r, best0).sweep
@@ -706,7 +708,7 @@ class MinDelay(Policy):
             "mindelay_rel_gap": float(r.rel_gap),
             "mindelay_max_utilisation": float(r.max_utilisation),
         }
-        if r.feasible:
+        if r.feasible and r.gamma > 0:
             out["mindelay_model_delay_s"] = float(r.delay_s)
             # the optimum's T lies in [model_delay_lower_s, model_delay_s]
             out["mindelay_model_delay_lower_s"] = float(r.delay_lower_s)

@@ -301,3 +301,16 @@ def test_simulated_mindelay_matches_its_model_and_beats_shortest() -> None:
     assert abs(s["mean_delivery_s"] - model) <= 1.5 * s["mean_delivery_ci95_s"] + 0.04 * model
     sp = run({**base, "policy": "shortest"})["summary"]
     assert s["mean_delivery_s"] < sp["mean_delivery_s"]
+
+
+def test_no_traffic_gives_routes_but_no_model_delay() -> None:
+    # nothing offered: T = D/γ is undefined, so no model figure; packets still get routes
+    s = run({"policy": "mindelay", "rate_pps": 0.0, "duration_s": 1.0, "seed": 1,
+             "series": False})["summary"]
+    assert s["offered"] == 0 and "policy_mindelay_model_delay_s" not in s
+    t, _, _ = abilene(0.5)
+    p = md.MinDelay()
+    p.attach(t, np.random.default_rng(1), None)
+    p.offered(np.zeros((t.n, t.n)), 8000.0)
+    assert p.table is not None
+    assert all(p.table[x][d] >= 0 for x in range(t.n) for d in range(t.n) if x != d)
