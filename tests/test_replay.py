@@ -415,3 +415,19 @@ def test_service_run_journal_replay_gives_identical_tables(base: str, tmp_path: 
     for f in ("tables.json", "ticks.csv"):
         with open(os.path.join(out1, f), "rb") as a, open(os.path.join(out2, f), "rb") as b:
             assert a.read() == b.read(), f
+
+
+def test_torn_journal_tail_is_reported_and_the_rest_replayed(tmp_path: Any,
+                                                             capsys: pytest.CaptureFixture[str]) -> None:
+    d = str(tmp_path / "state")
+    w = synthetic(d)
+    seg = J._segments(J.journal_dir(d))[-1][1]
+    size = os.path.getsize(seg)
+    with open(seg, "ab") as fh:
+        fh.write(b"RJ\x00\x00\xff\x00")          # half a record header: a write cut short
+    assert main(["replay", d, "--out", str(tmp_path / "o"), "--no-plot"]) == 0
+    out = capsys.readouterr().out
+    assert f"ends early in {os.path.basename(seg)} at byte {size}" in out
+    with open(tmp_path / "o" / "tables.json") as fh:
+        assert json.load(fh)["tables"] == wire.tables_by_name(w.eng)
+    assert os.path.getsize(seg) == size + 6       # read-only: the journal is left as it was
