@@ -242,6 +242,8 @@ class Demo:
                 self.progress_obj.done()
             print("\nrouterd demo: interrupted; stopping the service and writing the partial "
                   "results", file=sys.stderr)
+            if self.proc is not None and self.proc.running:
+                self._scrape_metrics(timeout_s=2.0)
         finally:
             signal.signal(signal.SIGTERM, old_term)
             if self.policy is not None:
@@ -302,20 +304,12 @@ class Demo:
         return ", ".join(f"link {a}-{b} DOWN since {at:g} s" for (a, b), at in down.items())
 
     def _finish_service(self) -> None:
-        import urllib.request
-
         assert self.policy is not None
         try:
             self.health = self.policy.final_health or self.policy.health()
         except Exception:  # noqa: BLE001 - health is a nicety; the run's figures are kept
             self.health = None
-        if self.metrics_url:
-            try:
-                with urllib.request.urlopen(self.metrics_url, timeout=5) as r:
-                    self._write_text("metrics.prom", r.read().decode())
-            except OSError as e:
-                print(f"routerd demo: could not read the metrics page {self.metrics_url}: {e}",
-                      file=sys.stderr)
+        self._scrape_metrics()
         self.policy.close()
         rc = self.proc.stop()
         for f in ("topology.yaml", "service.yaml", "service.out", "service.log"):
@@ -323,6 +317,19 @@ class Demo:
             if os.path.exists(p):
                 self.written.append(p)
         print(f"service stopped (exit status {rc}); its final snapshot is in {self.state_dir}")
+
+    def _scrape_metrics(self, timeout_s: float = 5.0) -> None:
+        """The service's metrics page as it is now → metrics.prom."""
+        import urllib.request
+
+        if not self.metrics_url:
+            return
+        try:
+            with urllib.request.urlopen(self.metrics_url, timeout=timeout_s) as r:
+                self._write_text("metrics.prom", r.read().decode())
+        except OSError as e:
+            print(f"routerd demo: could not read the metrics page {self.metrics_url}: {e}",
+                  file=sys.stderr)
 
     # -- files ---------------------------------------------------------------------------------
     def _path(self, rel: str) -> str:
@@ -384,8 +391,9 @@ class Demo:
     def _print_where(self) -> None:
         print(f"service state (journal and snapshots): {self.state_dir}")
         if self.metrics_url:
-            print(f"metrics were served at {self.metrics_url} during the run (its last page: "
-                  f"{os.path.join(self.out, 'metrics.prom')})")
+            prom = os.path.join(self.out, "metrics.prom")
+            print(f"metrics were served at {self.metrics_url} during the run"
+                  + (f" (its last page: {prom})" if os.path.exists(prom) else ""))
         topo = os.path.join(self.out, "service", "topology.yaml")
         print(f"to bring the service back from that state and scrape it again: routerd serve "
               f"--topology {topo} --state-dir {self.state_dir} --metrics 127.0.0.1:9307")
