@@ -192,7 +192,7 @@ class Source:
 def locate(path: str) -> Source:
     """A state dir, a journal dir or one segment file → where to read."""
     if not os.path.exists(path):
-        raise ReplayError(Problem(path, path, "does not exist"))
+        raise ReplayError(f"{path}: does not exist")
     if os.path.isfile(path):
         base = os.path.basename(path)
         if not J._SEG_RE.match(base):
@@ -206,7 +206,8 @@ def locate(path: str) -> Source:
         return Source(jd, sd if os.path.isdir(sd) else None)
     if J._segments(path):
         return Source(path, None)
-    raise ReplayError(Problem(path, path, "holds neither journal/ nor journal segments (seg-*.rj)"))
+    raise ReplayError(f"{path}: holds neither journal/ nor journal segments (seg-*.rj): give the "
+                      "service's state dir (service.state_dir) or its journal/ dir")
 
 
 @dataclass

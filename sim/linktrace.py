@@ -66,7 +66,7 @@ def load(path: str, topo: Topology) -> LinkTrace:
         with open(path, encoding="utf-8", newline="") as fh:
             text = fh.read()
     except (OSError, UnicodeDecodeError) as e:
-        raise InputError(Problem(path, path, f"cannot be read as text: {e}")) from None
+        raise InputError(f"{path}: cannot be read as a text link trace: {e}") from None
     problems: list[Problem] = []
     rows: list[tuple[float, int, float, int]] = []
     rd = csv.reader(io.StringIO(text))

@@ -151,7 +151,7 @@ def load_address_map(path: str, topo: Topology) -> AddressMap:
         with open(path, encoding="utf-8") as fh:
             text = fh.read()
     except OSError as e:
-        raise TraceError(Problem(path, path, f"cannot be read: {e.strerror}")) from None
+        raise TraceError(f"{path}: cannot be read: {e.strerror}") from None
     try:
         root = yaml.compose(text, Loader=yaml.SafeLoader)
     except yaml.YAMLError as e:
@@ -566,13 +566,13 @@ def load_capture(path: str, topo: Topology, amap: AddressMap | None, *, speed: f
         with open(path, "rb") as fh:
             buf = fh.read()
     except OSError as e:
-        raise TraceError(Problem(path, path, f"cannot be read: {e.strerror}")) from None
+        raise TraceError(f"{path}: cannot be read: {e.strerror}") from None
     fmt = capture_format(buf)
     if fmt is None:
         raise TraceError(Problem(path, buf[:4].hex(), "is not the magic number of a pcap or pcapng file"))
     if amap is None:
-        raise TraceError(Problem(path, fmt, "a capture holds IP addresses: give --address-map "
-                                            "to turn them into nodes"))
+        raise TraceError(f"{path}: a {fmt} capture holds IP addresses, not node names: give "
+                         "--address-map FILE (YAML: node name -> addresses or CIDR prefixes)")
     rep = TraceReport(path, fmt)
     recs: list[_Rec] = []
     try:
@@ -651,8 +651,11 @@ def load_flow_log(path: str, topo: Topology, amap: AddressMap | None, *, speed: 
     try:
         with open(path, encoding="utf-8", newline="") as fh:
             text = fh.read()
-    except (OSError, UnicodeDecodeError) as e:
-        raise TraceError(Problem(path, path, f"cannot be read as text: {e}")) from None
+    except UnicodeDecodeError as e:
+        raise TraceError(f"{path}: neither a pcap or pcapng capture nor a UTF-8 text flow log "
+                         f"({e.reason} at byte {e.start})") from None
+    except OSError as e:
+        raise TraceError(f"{path}: cannot be read: {e.strerror}") from None
     jsonl = path.lower().endswith((".jsonl", ".ndjson", ".json")) or text.lstrip()[:1] == "{"
     rep = TraceReport(path, "jsonl" if jsonl else "csv")
     problems: list[Problem] = []
@@ -760,7 +763,7 @@ def load_traffic(path: str, topo: Topology, address_map: str | None = None, *,
     """Any trace (capture by its magic number, else a flow log) → a traffic source."""
     amap = load_address_map(address_map, topo) if address_map else None
     if not os.path.exists(path):
-        raise TraceError(Problem(path, path, "does not exist"))
+        raise TraceError(f"{path}: does not exist")
     with open(path, "rb") as fh:
         head = fh.read(4)
     if capture_format(head) is not None:
