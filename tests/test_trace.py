@@ -407,3 +407,25 @@ def test_simulate_command_with_a_trace(tmp_path: Any, amap: str, capsys: pytest.
         assert json.load(fh)["offered"] == 4
     assert main(["simulate", "--policy", "shortest", "--seed", "1", "--out", out]) == 2
     assert "--rate" in capsys.readouterr().err
+
+
+@pytest.mark.skipif(shutil.which("mergecap") is None, reason="mergecap is not installed "
+                    "(Debian: apt-get install wireshark-common)")
+def test_pcapng_with_two_interfaces_of_different_resolution(tmp_path: Any, amap: str) -> None:
+    # Wireshark's mergecap keeps one interface description per input: microseconds for the
+    # first capture, nanoseconds (if_tsresol 9) for the second; times interleave
+    a, b, m = (str(tmp_path / n) for n in ("a.pcap", "b.pcap", "m.pcapng"))
+    with open(a, "wb") as fh:
+        w = dpkt.pcap.Writer(fh)
+        for i in range(3):
+            w.writepkt(eth(ip4("10.0.1.5", "10.1.3.9", 10)), ts=1000.0 + i * 0.5)
+    with open(b, "wb") as fh:
+        w = dpkt.pcap.Writer(fh, nano=True)
+        for i in range(3):
+            w.writepkt(eth(ip4("10.1.3.9", "10.0.2.5", 10)), ts=1000.25 + i * 0.5 + 7e-9)
+    subprocess.run(["mergecap", "-I", "none", "-w", m, a, b], check=True, capture_output=True)
+    src = TR.load_traffic(m, DEMO, amap)
+    ns = [0, 250_000_007, 500_000_000, 750_000_007, 1_000_000_000, 1_250_000_007]
+    np.testing.assert_array_equal(src.t, np.array(ns, dtype=np.int64) / 1e9)
+    w1, e3, w2 = (DEMO.index[x] for x in ("w1", "e3", "w2"))
+    assert src.src.tolist() == [w1, e3] * 3 and src.dst.tolist() == [e3, w2] * 3
