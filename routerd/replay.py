@@ -457,6 +457,9 @@ def replay_command(args: argparse.Namespace) -> dict[str, Any]:
             v.settings(start_settings)     # refuse bad combinations before the long part
         lt = LinkTrace(topo, args.link_trace_interval) if args.export_link_trace else None
         res = replay(src, topo, variants, fallback=start_settings, link_trace=lt)
+    except (J.JournalError, ValueError) as e:
+        # a later start record for another topology, a snapshot or settings that do not fit
+        raise ReplayError(f"{args.source}: cannot be replayed: {e}") from None
     finally:
         if src.cleanup:
             shutil.rmtree(src.cleanup, ignore_errors=True)
@@ -593,6 +596,8 @@ def _printed(info: Mapping[str, Any], summaries: Sequence[Mapping[str, Any]], co
                    f"time in {info['wall_s']:.3f} s"
                    + (f" ({info['observations_per_s']:.0f} observations/s)"
                       if info["observations_per_s"] else ""))
+    for pr in info["snapshot_problems"]:
+        out.append(f"warning: {pr}")
     if read.stopped is not None:
         c = read.stopped
         out.append(f"warning: the journal ends early in {c.segment} at byte {c.offset}: {c.detail}; "

@@ -311,6 +311,16 @@ def test_clear_errors(tmp_path: Any, capsys: pytest.CaptureFixture[str]) -> None
     assert DEMO.digest in err and "give the service's --topology" in err
 
 
+def test_a_restart_on_another_topology_is_refused(tmp_path: Any) -> None:
+    d = str(tmp_path / "state")
+    synthetic(d)
+    j = J.Journal(J.journal_dir(d))
+    j.append("start", {"topology": "0123456789abcdef", "nodes": ["a", "b"], "epoch": 2})
+    j.close()
+    with pytest.raises(R.ReplayError, match="cannot be replayed: record .* written for topology 0123456789abcdef"):
+        R.replay_command(args_for(d, str(tmp_path / "o")))
+
+
 def test_retired_journal_without_snapshot_is_refused(tmp_path: Any) -> None:
     d = str(tmp_path / "state")
     synthetic(d)
