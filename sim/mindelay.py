@@ -549,6 +549,18 @@ def for_topology(topo: Topology, demand_pps: np.ndarray, mean_packet_bytes: floa
     return flow_deviation(n, src, dst, cap, topo.delay_s, demand_pps, **kw)
 
 
+def slot_shares(topo: Topology, result: MinDelayResult) -> np.ndarray:
+    """(n, n, K) shares W[x, d, j] of x's j-th neighbour (``topo.slots[x, j]``) for d.
+
+    The layout of the engine's tables, so a min-delay routing can be compared with (or
+    published like) a learned one.  Rows sum to 1 for x != d; absent slots hold 0.
+    """
+    sl = topo.slot_link
+    W = result.fractions.T[np.maximum(sl, 0)]  # (n, K, n): [x, j, d]
+    W = np.where((sl >= 0)[:, :, None], W, 0.0)
+    return np.ascontiguousarray(W.transpose(0, 2, 1))
+
+
 # ---- the policy adapter --------------------------------------------------------------
 
 def offered_demand(topo: Topology, rate_pps: float, *, use_demands: bool = False,

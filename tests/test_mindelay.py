@@ -215,10 +215,14 @@ def test_splits_are_loop_free_for_every_destination() -> None:
             assert nx.is_directed_acyclic_graph(g)  # networkx as the reference check
             # every node has a way to d (flow-free nodes fall back to a shortest link)
             assert all(nx.has_path(g, x, d) for x in range(n))
-        shares = np.zeros((n, n))
-        np.add.at(shares, (slice(None), src), res.fractions)
+        W = md.slot_shares(t, res)  # per (node, destination) over next-hop slots
         off = ~np.eye(n, dtype=bool)
-        assert np.allclose(shares.T[off], 1.0)
+        assert np.allclose(W.sum(axis=2)[off], 1.0)
+        assert np.all(W.sum(axis=2)[~off] == 0.0)
+        x, d = 0, n - 1
+        for j, y in enumerate(t.slots[x]):
+            if y >= 0:
+                assert W[x, d, j] == res.fractions[d, t.link_index[(x, int(y))]]
 
 
 def test_classic_flows_hold_circulations_and_the_splits_still_do_not(
