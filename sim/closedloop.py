@@ -390,6 +390,7 @@ class ServicePolicy(Policy):
         # statistics
         self.ticks = 0
         self.rows_sent = 0
+        self.links_sent = 0
         self.batches = 0
         self.tables_taken = 0
         self.estimate_requests = 0
@@ -576,6 +577,7 @@ class ServicePolicy(Policy):
 
     def on_link(self, x: int, y: int, up: bool, now: float) -> None:
         self.reporter.add_link(self.names[x], self.names[y], "up" if up else "down")
+        self.links_sent += 1
         self._flush()
 
     def tick(self, now: float) -> None:
@@ -667,7 +669,9 @@ class ServicePolicy(Policy):
         out: dict[str, float] = {
             "service_speed": self.speed,
             "service_ticks": float(self.ticks),
-            "service_rows_sent": float(self.rows_sent),
+            "service_rows_sent": float(self.rows_sent),        # hop rows
+            "service_link_rows_sent": float(self.links_sent),
+            # acknowledged rows, hop and link rows together (as the wire counts them)
             "service_rows_accepted": float(self.reporter.accepted) if self.reporter else 0.0,
             "service_rows_rejected": float(sum(self.reporter.rejected.values())) if self.reporter else 0.0,
             "service_batches": float(self.batches),
@@ -681,6 +685,11 @@ class ServicePolicy(Policy):
             "pacing_ticks_behind": float(self.ticks_behind),
             "exploration_share": self.exploration_share(),
         }
+        if self.reporter is not None:
+            # by reason: rows of packets that were on the wire when their link went down
+            # arrive afterwards and are refused as link_down, in process as well
+            for reason, k in sorted(self.reporter.rejected.items()):
+                out[f"service_rows_rejected_{reason}"] = float(k)
         try:
             h = self.health()
             self.final_health = h
