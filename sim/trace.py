@@ -285,7 +285,8 @@ class TraceReport:
             top = ", ".join(f"{a} ({c})" for a, c in self.unmapped_addresses.most_common(5))
             out.append(f"  most frequent unmapped addresses: {top}")
         if self.reordered:
-            out.append(f"  {self.reordered} records were out of time order (sorted)")
+            out.append(f"  {self.reordered} packets were out of time order in the file "
+                       "(sorted by time)")
         if self.truncation:
             out.append(f"  capture cut short at byte {self.truncated_at}: {self.truncation}; "
                        "the records before it were used (--allow-truncated)")
