@@ -536,3 +536,37 @@ def test_control_ops_pull_endpoint_and_json_logs(base: str) -> None:
     logs = [json.loads(x) for x in sp.stderr_lines if x.startswith("{")]
     assert {"started", "link override", "snapshot", "stopping", "stopped"} <= {x["msg"] for x in logs}
     assert all({"ts", "level", "msg"} <= set(x) for x in logs)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("policy", ["interval", "never"])
+def test_other_fsync_policies_acknowledge_and_stop_cleanly(base: str, policy: str) -> None:
+    cfg = write(os.path.join(base, "f.yaml"),
+                f"service:\n  journal:\n    fsync: {policy}\n    fsync_interval_s: 0.2\n")
+    sp = ServiceProc(base, [*service_args(base), "--config", cfg])
+    try:
+        t0 = time.monotonic()
+        with client.Reporter(sp.endpoints["ingest"], "f", topology_nodes=DEMO, batch_rows=8,
+                             max_pending=1) as rep:          # one batch at a time
+            for i in range(160):
+                rep.add_hop("w1", "w2", "e3", 0.002 + i * 1e-6)
+        took = time.monotonic() - t0
+        assert rep.accepted == 160 and took < 10, took
+        h = client.control(sp.endpoints["control"], {"op": "health"})
+        assert h["journal"]["fsync"] == policy and h["counts"]["observations_accepted"] == 160
+        time.sleep(0.5)    # idle: the poll must still wake for the interval's fsync
+        took = time.monotonic() - t0
+        vals = metric_values(sp.metrics_text())
+        fsyncs = vals[("routerd_journal_fsyncs_total", ())]
+        if policy == "never":
+            assert fsyncs == 0
+        else:   # at most one per interval (plus the start-up one), not one per batch
+            assert 1 <= fsyncs <= 2 + took / 0.2, fsyncs
+        sp.signal(signal.SIGTERM)
+        assert sp.wait(15) == 0
+    finally:
+        sp.kill()
+    # nothing acknowledged is missing from the journal the clean stop left behind
+    n = sum(len(journal.batch_hops(r.body)) for r in
+            journal.iter_records(journal.journal_dir(sp.state_dir)) if r.kind == "batch")
+    assert n == 160
