@@ -409,6 +409,9 @@ def _walk_pcapng(buf: bytes, out: list[_Rec]) -> None:
                     pb = (P.EnhancedPacketBlockLE if le else P.EnhancedPacketBlock)(blk)
                 else:
                     pb = (P.PacketBlockLE if le else P.PacketBlock)(blk)
+                if pb.caplen > blen - 32:       # 28-byte header, 4-byte trailing length
+                    raise _Cut(off, f"packet block's captured length {pb.caplen} does not fit "
+                                    f"its {blen}-byte block")
                 if pb.iface_id >= len(ifaces):
                     raise _Cut(off, f"packet block names interface {pb.iface_id}, "
                                     f"{len(ifaces)} are described")
