@@ -88,7 +88,7 @@ def _figures(sh_mean: float, q_mean: float, sv_mean: float, sv_lost_fail: int) -
     base = {"p99_delivery_s": 0.02, "delivered": 100, "offered": 100, "lost": 0,
             "lost_during_failure": 0, "peak_mean_delivery_s": 0.01, "trunk_util_peak": 0.5,
             "detour_share": 0.6, "route_changes": 10.0, "exploration_share": 0.01}
-    return {"peak_from_s": 10.0, "peak_rate_pps": 1300.0,
+    return {"peak_from_s": 10.0, "peak_rate_pps": 1300.0, "hall_pairs_static_on_trunk": 1.0,
             "failures": [{"link": "w3-w4", "down_s": 15.0, "up_s": 21.0}],
             "shortest": {**base, "mean_delivery_s": sh_mean, "trunk_util_peak": 1.0, "lost": 50,
                          "lost_during_failure": 40},
@@ -100,6 +100,7 @@ def test_reading_follows_the_figures() -> None:
     d = demo.Demo("/nonexistent", 30.0, 1, 1.0)
     good = d.reading(_figures(0.0447, 0.0063, 0.0064, 0))
     assert "44.7 ms" in good and "7.1 times faster" in good and "saturated" in good
+    assert "every hall-to-hall packet over the trunk" in good
     assert "1.6% above the in-process learner — the same behaviour" in good
     assert "40 of them while w3-w4 was down" in good
     bad = d.reading(_figures(0.0060, 0.0063, 0.0090, 12))
