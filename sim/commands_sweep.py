@@ -448,22 +448,23 @@ def plot(points: Sequence[Mapping[str, Any]], meta: Mapping[str, Any], out: str,
 
 
 def text_table(points: Sequence[Mapping[str, Any]]) -> str:
-    """Mean delivery time (ms) per rate and policy, for the terminal."""
+    """Mean delivery time (ms) ± half-width per rate and policy, and the share lost."""
     pols = list(dict.fromkeys(p["policy"] for p in points))
     rates = sorted({p["rate_pps"] for p in points})
     by = {(p["policy"], p["rate_pps"]): p for p in points}
-    w = max([len(p) for p in pols] + [10]) + 2
-    lines = ["rate pkt/s".ljust(12) + "".join(p.rjust(w + 8) for p in pols)]
+    cells: dict[tuple[str, float], str] = {}
+    for (pol, r), p in by.items():
+        if not _finite(p["mean_delivery_s"]):
+            cells[(pol, r)] = "n/a"
+            continue
+        ci = f"±{p['ci95_s'] * 1e3:.2f}" if _finite(p["ci95_s"]) else ""
+        lost = p["lost_fraction"]
+        tail = f" ({lost * 100:.1f}% lost)" if _finite(lost) and lost >= 0.0005 else ""
+        cells[(pol, r)] = f"{p['mean_delivery_s'] * 1e3:.2f}{ci} ms{tail}"
+    w = max([len(c) for c in cells.values()] + [len(p) for p in pols] + [8]) + 3
+    lines = ["rate pkt/s".ljust(12) + "".join(p.rjust(w) for p in pols)]
     for r in rates:
-        cells = []
-        for pol in pols:
-            p = by.get((pol, r))
-            if p is None or not _finite(p["mean_delivery_s"]):
-                cells.append("n/a".rjust(w + 8))
-            else:
-                ci = f"±{p['ci95_s'] * 1e3:.2f}" if _finite(p["ci95_s"]) else ""
-                cells.append(f"{p['mean_delivery_s'] * 1e3:.2f}{ci} ms".rjust(w + 8))
-        lines.append(f"{r:<12g}" + "".join(cells))
+        lines.append(f"{r:<12g}" + "".join(cells.get((pol, r), "n/a").rjust(w) for pol in pols))
     return "\n".join(lines)
 
 

@@ -168,3 +168,16 @@ def test_progress_bar_only_after_a_few_seconds() -> None:
     bar.update(4)
     bar.close()
     assert term.getvalue().startswith("\r[") and term.getvalue().endswith("\n")
+
+
+def test_terminal_table_shows_losses() -> None:
+    pts = [{"policy": "shortest", "rate_pps": 300.0, "mean_delivery_s": 0.0054, "ci95_s": 0.0002,
+            "lost_fraction": 0.239},
+           {"policy": "qrouting", "rate_pps": 300.0, "mean_delivery_s": 0.0069, "ci95_s": 0.0001,
+            "lost_fraction": 0.0},
+           {"policy": "qrouting", "rate_pps": 900.0, "mean_delivery_s": math.nan, "ci95_s": math.nan,
+            "lost_fraction": 1.0}]
+    text = sw.text_table(pts)
+    assert "5.40±0.20 ms (23.9% lost)" in text
+    assert "6.90±0.10 ms" in text and "6.90±0.10 ms (" not in text
+    assert text.splitlines()[2].split()[:3] == ["900", "n/a", "n/a"]
