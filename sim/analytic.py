@@ -1,7 +1,7 @@
 """Analytic link loads: what a static split routing puts on each link, no simulation.
 
 Owns the array form of a routing used by the model-based parts of the simulator
-(:mod:`sim.mindelay`, the ECMP check against topohub, the sweep's model column):
+(:mod:`sim.mindelay`, and the ECMP check against topohub's figures):
 
 * ``frac[d, k]`` — the share of the traffic for destination ``d`` that is at node
   ``src[k]`` and leaves it on link ``k``.  For every (x, d) with x != d the shares of
