@@ -529,6 +529,15 @@ def test_control_ops_pull_endpoint_and_json_logs(base: str) -> None:
         vals = metric_values(sp.metrics_text())
         assert vals[("routerd_ingest_frames_total", (("socket", "pull"),))] == 51
         assert refused(vals, "not_msgpack") == 1
+        # a late subscriber has every node's table within one publish interval (2 s here)
+        late = client.TableSubscriber(sp.endpoints["publish"])
+        try:
+            t0 = time.monotonic()
+            assert late.wait_for(lambda s: len(s.tables) == DEMO.n, 3.5)
+            assert time.monotonic() - t0 < 2.0 + 1.0
+            assert late.tables["w3"] == client.control(ctl, {"op": "tables"})["tables"]["w3"]
+        finally:
+            late.close()
         sp.signal(signal.SIGTERM)
         assert sp.wait(15) == 0
     import json
