@@ -19,6 +19,9 @@ from typing import Any
 
 import numpy as np
 import pytest
+import yaml
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from routerd import config
 from routerd.service import load_topology
@@ -429,3 +432,49 @@ def test_pcapng_with_two_interfaces_of_different_resolution(tmp_path: Any, amap:
     np.testing.assert_array_equal(src.t, np.array(ns, dtype=np.int64) / 1e9)
     w1, e3, w2 = (DEMO.index[x] for x in ("w1", "e3", "w2"))
     assert src.src.tolist() == [w1, e3] * 3 and src.dst.tolist() == [e3, w2] * 3
+
+
+# ---- properties ------------------------------------------------------------------------------
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 2**32 - 1), st.integers(8, 32), st.integers(0, 5)),
+                min_size=1, max_size=12),
+       st.lists(st.integers(0, 2**32 - 1), min_size=1, max_size=40))
+def test_lookup_equals_a_linear_scan(prefixes: list[tuple[int, int, int]], probes: list[int]) -> None:
+    # reference: ipaddress's own containment test over every entry, one by one
+    nodes = DEMO.nodes[:6]
+    entries: dict[str, list[str]] = {}
+    nets: list[tuple[ipaddress.IPv4Network, str]] = []
+    for addr, plen, who in prefixes:
+        net = ipaddress.ip_network((addr, plen), strict=False)
+        if any(net.overlaps(o) and n != nodes[who] for o, n in nets):
+            continue                                   # the map refuses those (tested above)
+        nets.append((net, nodes[who]))
+        entries.setdefault(nodes[who], []).append(str(net))
+    m = TR.address_map_from_node(yaml.compose(yaml.safe_dump(entries)), DEMO, "<prop>")
+    for a in probes + [int(n.network_address) for n, _ in nets] + [int(n.broadcast_address) for n, _ in nets]:
+        ip = ipaddress.ip_address(a)
+        want = next((DEMO.index[n] for net, n in nets if ip in net), -1)
+        assert m.lookup(ip.packed) == want
+
+
+@settings(max_examples=80, deadline=None)
+@given(st.data())
+def test_damaged_captures_never_crash(tmp_path_factory: Any, data: Any) -> None:
+    d = tmp_path_factory.mktemp("fuzz")
+    amap = d / "map.yaml"
+    amap.write_text(MAP)
+    p = str(d / "c.pcapng") if data.draw(st.booleans()) else str(d / "c.pcap")
+    (write_pcapng if p.endswith("ng") else write_pcap)(p, frames())
+    buf = bytearray(_get(p))
+    for _ in range(data.draw(st.integers(1, 6))):
+        i = data.draw(st.integers(0, len(buf) - 1))
+        buf[i] = data.draw(st.integers(0, 255))
+    cut = data.draw(st.integers(0, len(buf)))
+    _put(p, bytes(buf[:cut]))
+    try:
+        src = TR.load_traffic(p, DEMO, str(amap), allow_truncated=True)
+    except TR.TraceError:
+        return                                          # a clear refusal (e.g. a bad magic)
+    rep = src.report
+    assert rep.injected + sum(rep.skipped.values()) == rep.records
+    assert (np.diff(src.t) >= 0).all()
