@@ -148,6 +148,11 @@ def report_problems(e: InputError) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    if getattr(args, "traffic", None) is not None and (args.rate is not None or args.demands):
+        # sim.trace: the trace decides what is sent when; a rate would be silently ignored
+        print("routerd simulate: --rate and --demands do not apply with --traffic (the trace "
+              "sets the packets; --speed scales its timing)", file=sys.stderr)
+        return 2
     spec = spec_from_args(args)
     try:
         result = run_sim(spec)
