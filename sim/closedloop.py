@@ -294,7 +294,7 @@ class ServiceProcess:
             shutil.rmtree(self.base, ignore_errors=True)
         return self.returncode
 
-    def __enter__(self) -> ServiceProcess:
+    def __enter__(self) -> ServiceProcess:  # noqa: PYI034 - Self needs Python 3.11
         self.start()
         return self
 
@@ -391,6 +391,8 @@ class ServicePolicy(Policy):
         self.ticks = 0
         self.rows_sent = 0
         self.links_sent = 0
+        self.link_feedback_s: list[float] = []
+        self._link_wait_since: float | None = None
         self.batches = 0
         self.tables_taken = 0
         self.estimate_requests = 0
@@ -579,6 +581,8 @@ class ServicePolicy(Policy):
         self.reporter.add_link(self.names[x], self.names[y], "up" if up else "down")
         self.links_sent += 1
         self._flush()
+        if self._link_wait_since is None:
+            self._link_wait_since = time.monotonic()
 
     def tick(self, now: float) -> None:
         self._pace(now)
@@ -637,6 +641,11 @@ class ServicePolicy(Policy):
         sub = self.subscriber
         sub.poll(0)
         seen = self._seen
+        if self._link_wait_since is not None and any(seen.get(k) != v for k, v in sub.seq.items()):
+            # the first publication after a link report: how long a topology change takes
+            # to come back as tables (wall clock; bounded above by our tick cadence)
+            self.link_feedback_s.append(time.monotonic() - self._link_wait_since)
+            self._link_wait_since = None
         for node, seq in sub.seq.items():
             if seen.get(node) != seq:
                 seen[node] = seq
@@ -680,6 +689,7 @@ class ServicePolicy(Policy):
             "service_table_gaps": float(self.subscriber.gaps_total) if self.subscriber else 0.0,
             "service_estimate_requests": float(self.estimate_requests),
             "pacing_wait_s": self.wait_s,
+            "link_feedback_max_s": max(self.link_feedback_s, default=math.nan),
             "pacing_lag_max_s": self.lag_max_s,
             "pacing_lag_mean_s": self.lag_sum_s / self.ticks if self.ticks else 0.0,
             "pacing_ticks_behind": float(self.ticks_behind),
