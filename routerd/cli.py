@@ -22,6 +22,8 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "serve": ("routerd.service", "run the routing policy service (observations in, tables out, metrics)"),
     "demo": ("routerd.demo", "see routerd work in under a minute: a live service driven by the simulator, compared with static routes"),
     "replay": ("routerd.replay", "re-run a service journal offline: reproduce its tables or compare other settings"),
+    "agent": ("routerd.agent", "run the forwarding agent of one overlay node (UDP, tables from the service, probes)"),
+    "lab": ("routerd.lab", "build an emulated lab on this host (namespaces, veth, tbf), run service and agents, offer traffic"),
 }
 
 

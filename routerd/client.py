@@ -371,6 +371,11 @@ class Reporter:
     def pending_rows(self) -> int:
         return sum(p.rows for p in self._pending.values()) + self._buffered()
 
+    def send_now(self) -> None:
+        """Send what is buffered as one batch now, without waiting for acknowledgements
+        (blocks only as adding rows does: when ``max_pending`` batches are unacknowledged)."""
+        self._send_buffer()
+
     def flush(self) -> None:
         """Send what is buffered and wait until every batch is acknowledged (or raise
         :class:`DeliveryError` when the retry budget runs out)."""

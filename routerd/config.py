@@ -98,6 +98,22 @@ SCHEMA: dict[str, Field] = {
     "sim.service.speed": F(float, 1.0, "closed loop: virtual seconds per wall-clock second (1 = real time)", lo=0.01, hi=1000),
     "sim.service.estimate_nodes": F(int, 0, "closed loop: nodes whose estimates are fetched from the service per decision interval, round robin (0 = all)", lo=0),
     "sim.service.timeout_s": F(float, 5.0, "closed loop: how long to wait for the service's acknowledgements and control replies", lo=0, lo_open=True),
+    # -- agent (routerd agent: one per overlay node) -------------------------------------
+    "agent.underlay": F(str, None, "underlay map: the UDP address of each end of each overlay link (relative to the config file)", nullable=True),
+    "agent.local": F(str, "127.0.0.1:7400", "UDP HOST:PORT where local applications hand the agent overlay packets"),
+    "agent.deliver": F(str, "127.0.0.1:7401", "UDP HOST:PORT the agent hands packets for its own node to"),
+    "agent.metrics": F(str, "127.0.0.1:9308", "agent metrics HTTP address HOST:PORT (port 0: any free one)"),
+    "agent.probe_interval_s": F(float, 0.1, "probe interval per link (hop latency and failure detection)", lo=0.001, hi=60),
+    "agent.detect_multiplier": F(int, 3, "probes missed before a link is down: detection time = multiplier x interval (as in BFD, RFC 5880)", lo=1, hi=255),
+    "agent.flowlet_gap_s": F(float, 0.05, "a flow idle this long may move to another next hop (flowlet pinning)", lo=0),
+    "agent.latency": F(str, "two_way", "hop latency from probe timestamps: two_way (NTP-style, no clock sync needed) or one_way (needs synchronised clocks)", choices=("two_way", "one_way")),
+    "agent.propagation": F(str, "none", "emulate: hold each received packet for its link's delay_s (for labs without netem)", choices=("none", "emulate")),
+    "agent.report_interval_s": F(float, 0.25, "hop rows are handed to the service at least this often", lo=0.001, hi=60),
+    "agent.report_batch_rows": F(int, 512, "rows per ingest batch", lo=1),
+    "agent.report_buffer_rows": F(int, 100000, "rows kept while the service is unreachable (the oldest are dropped, counted)", lo=1),
+    "agent.table_stale_s": F(float, 6.0, "no table and no acknowledgement for this long: the service counts as unreachable (non-stop forwarding)", lo=0, lo_open=True),
+    "agent.hold_max_pkts": F(int, 100000, "packets held at once for emulated propagation (beyond: dropped, counted)", lo=1),
+    "agent.seed": F(int, 0, "seed of the weighted next-hop choice (mixed with the node index)", lo=0),
 }
 
 
