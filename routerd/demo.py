@@ -203,7 +203,7 @@ class Demo:
         from sim import closedloop
         from sim import scenario as _scenario
 
-        os.makedirs(self.out, exist_ok=True)
+        self._prepare_out()
         self.scenario_doc = stretched_scenario(self.duration)
         self.scenario = _scenario.from_mapping(self.scenario_doc, source="demo-scenario.yaml")
         self._write_text("scenario.yaml", self._scenario_yaml())
@@ -261,6 +261,26 @@ class Demo:
         return 0
 
     progress_obj: Progress | None = None
+
+    def _prepare_out(self) -> None:
+        """A fresh --out: an earlier demo's results there are replaced (its service state
+        too, or the new service would start from what the old one learned); a non-empty
+        directory that holds no demo is refused rather than written into."""
+        import shutil
+
+        if os.path.isdir(self.out) and os.listdir(self.out):
+            marks = [os.path.join(self.out, "service", "service.yaml"),
+                     os.path.join(self.out, "scenario.yaml")]
+            if not any(os.path.exists(m) for m in marks):
+                raise InputError(f"--out {self.out}: the directory is not empty and holds no "
+                                 "earlier demo; choose another --out")
+            print(f"routerd demo: replacing the earlier demo results in {self.out}")
+            for rel in ("state", "service", "runs"):
+                shutil.rmtree(os.path.join(self.out, rel), ignore_errors=True)
+            for rel in FILES:
+                if "/" not in rel and os.path.exists(os.path.join(self.out, rel)):
+                    os.remove(os.path.join(self.out, rel))
+        os.makedirs(self.out, exist_ok=True)
 
     # -- the live run -----------------------------------------------------------------------
     def _live(self) -> None:
@@ -395,7 +415,10 @@ class Demo:
             print(f"metrics were served at {self.metrics_url} during the run"
                   + (f" (its last page: {prom})" if os.path.exists(prom) else ""))
         topo = os.path.join(self.out, "service", "topology.yaml")
-        print(f"to bring the service back from that state and scrape it again: routerd serve "
+        print(f"replay the run offline (or try other settings with --compare KEY=VALUE): "
+              f"routerd replay {self.state_dir} --topology {topo} --out "
+              f"{os.path.join(self.out, 'replay')}")
+        print(f"bring the service back from that state and scrape it again: routerd serve "
               f"--topology {topo} --state-dir {self.state_dir} --metrics 127.0.0.1:9307")
 
     def _write_summary(self, figs: dict[str, Any] | None, reading: str | None,

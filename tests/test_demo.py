@@ -229,3 +229,24 @@ def test_demo_sigint_leaves_no_process_and_writes_partial_results(tmp_path: Path
     # the service stopped in order: its shutdown snapshot is there
     assert any((out / "state" / "snapshots").iterdir())
     assert "partial results in" in rest
+
+
+def test_out_dir_earlier_demo_replaced_other_content_refused(tmp_path: Path) -> None:
+    from routerd.errors import InputError
+
+    old = tmp_path / "old"
+    (old / "state" / "journal").mkdir(parents=True)
+    (old / "state" / "journal" / "seg-1.rj").write_bytes(b"x")
+    (old / "scenario.yaml").write_text("scenario: {}\n")
+    (old / "delivery.png").write_bytes(b"png")
+    (old / "notes.txt").write_text("mine")
+    demo.Demo(str(old), 30.0, 1, 1.0)._prepare_out()
+    # the old service state would have seeded the new run: gone, with the old results
+    assert not (old / "state").exists() and not (old / "delivery.png").exists()
+    assert (old / "notes.txt").read_text() == "mine"      # not the demo's: kept
+    other = tmp_path / "other"
+    other.mkdir()
+    (other / "data.csv").write_text("1\n")
+    with pytest.raises(InputError, match="holds no earlier demo"):
+        demo.Demo(str(other), 30.0, 1, 1.0)._prepare_out()
+    assert (other / "data.csv").exists()
