@@ -839,6 +839,14 @@ class Engine:
             setattr(eng, k, type(getattr(eng, k))(state[k]))
         eng._rejected = {r: int(state["rejected"].get(r, 0)) for r in REJECT_REASONS}
         eng._live_spt = None
+        # saved under another ceiling: restore the invariants the update relies on
+        # (present slots within [0, ceiling], dead ones exactly at it, absent ones inf)
+        ceil = settings.ceiling_s
+        dead = np.broadcast_to((eng._present & ~eng.live)[:, None, :], eng.Q.shape)
+        if not (np.all(eng.Q[dead] == ceil) and np.all(eng.Q[eng.Q < math.inf] <= ceil)):
+            q = np.where(eng._present[:, None, :], np.minimum(eng.Q, ceil), np.inf)
+            q[dead] = ceil
+            eng.Q = np.ascontiguousarray(q)
         return eng
 
     def same_state(self, other: Engine) -> bool:

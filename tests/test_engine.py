@@ -672,3 +672,18 @@ def test_engine_module_is_pure() -> None:
     names |= {n.module.split(".")[0] for n in ast.walk(tree)
               if isinstance(n, ast.ImportFrom) and n.module and n.level == 0}
     assert names <= {"__future__", "math", "collections", "dataclasses", "typing", "numpy"}
+
+
+def test_restore_under_a_higher_ceiling_keeps_dead_links_out_of_reads() -> None:
+    t = line("x", "y", "d", extra=(("y", "z"), ("z", "d")))
+    e = Engine(t, EngineSettings(ceiling_s=1.0))
+    x, y, d = (t.index[k] for k in "xyd")
+    e.set_link(y, d, False)
+    e.Q[y, d, slot(t, "y", "z")] = 0.9
+    f = Engine.from_state(t, EngineSettings(ceiling_s=20.0), e.export_state())
+    assert f.Q[y, d, slot(t, "y", "d")] == 20.0
+    f.Q[y, d, slot(t, "y", "z")] = 5.0
+    f.Q[y, d, slot(t, "y", "x")] = 6.0
+    assert f.estimate(y, d) == 5.0
+    f.observe_one(x, y, d, 0.0)  # reads y's live minimum (5.0), not the dead link (20.0)
+    assert float(f.Q[x, d, slot(t, "x", "y")]) == 5.0  # first update of the entry: alpha 1
