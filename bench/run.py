@@ -105,6 +105,10 @@ def table(res: dict[str, Any]) -> str:
         lines.append(f"{k.ljust(w)}  {vs}  {str(f['unit']):<10} {float(f['ratio']):8.3f}  {f['against']}")
     for mod, err in res.get("_errors", {}).items():
         lines.append(f"{mod}: FAILED: {err}")
+    secs = res.get("_meta", {}).get("seconds", {})
+    if secs:
+        lines.append("seconds: " + ", ".join(f"{m} {s:.1f}" for m, s in secs.items())
+                     + f" (total {sum(secs.values()):.1f})")
     return "\n".join(lines)
 
 
