@@ -198,7 +198,7 @@ class AgentMetrics:
         self.dropped = Counter("routerd_agent_packets_dropped", "Data packets dropped, by reason", ["reason"], registry=r)
         self.ttl_expired = Counter("routerd_agent_ttl_expired", "Data packets dropped because their TTL ran out", registry=r)
         self.malformed = Counter("routerd_agent_malformed_packets", "Packets refused as malformed, by reason", ["reason"], registry=r)
-        self.fallback = Counter("routerd_agent_fallback_forwarded", "Data packets sent by the static fallback (no usable table entry)", registry=r)
+        self.fallback = Counter("routerd_agent_fallback_forwarded", "Flowlets pinned by the static fallback (no usable table entry)", registry=r)
         self.probes = Counter("routerd_agent_probes", "Probe traffic by event (sent, answered, echoed, late)", ["event"], registry=r)
         self.latency = Histogram("routerd_agent_hop_latency_seconds", "Measured hop latency per probe echo", buckets=LATENCY_BUCKETS_S, registry=r)
         self.link_changes = Counter("routerd_agent_link_state_changes", "Link state changes detected, by new state", ["state"], registry=r)
@@ -704,7 +704,6 @@ class Agent:
             self.detections.append({"neighbour": self.topo.nodes[y], "from": old,
                                     "after_s": now - ln.last_echo,
                                     "at": time.time()})
-            self.flowlets = {k: p for k, p in self.flowlets.items() if p[0] != y}
         self.link_reports[y] = state
         self.m.link_changes.labels(state).inc()
         self.m.links_down.set(sum(1 for v in self.links.values() if v.state == "down"))
@@ -717,11 +716,18 @@ class Agent:
         rep = self.reporter
         room = (rep.max_pending - rep.pending - 1) * rep.batch_rows
         try:
-            if room > 0:
+            if room > 0 and self.link_reports:
+                # link rows in a batch of their own, ahead of the hop rows: the service
+                # applies a batch's hops before its links, and a link coming back up is
+                # re-admitted with a fresh estimate that the hop rows measured after it
+                # must correct, not precede
+                rep.send_now()
                 for y, st in list(self.link_reports.items()):
                     rep.add_link(self.name, self.topo.nodes[y], st)
                     del self.link_reports[y]
-                    room -= 1
+                rep.send_now()
+                room = (rep.max_pending - rep.pending - 1) * rep.batch_rows
+            if room > 0:
                 n = min(room, len(self.rows))
                 for _ in range(n):
                     a, b, c, lat, e = self.rows.popleft()

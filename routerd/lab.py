@@ -419,11 +419,11 @@ class Lab:
             out.append({"link": k, "from": t.nodes[a], "to": t.nodes[b], **st})
         return out
 
-    def tables(self) -> dict[str, Any] | None:
+    def tables(self, timeout_s: float = 3.0) -> dict[str, Any] | None:
         from .client import control
 
         try:
-            rep = control(self.endpoints["control"], {"op": "tables"}, 3.0)
+            rep = control(self.endpoints["control"], {"op": "tables"}, timeout_s)
         except (TimeoutError, Exception):  # noqa: BLE001 - a dead service is an answer too
             return None
         return rep.get("tables")
@@ -456,10 +456,45 @@ class Traffic:
             s.close()
 
 
+class TableSampler:
+    """Fetches every table from the service every ``interval_s`` in a thread of its own (so a
+    dead service never holds the traffic loop up): ``samples`` = [(t_s, tables or None)]."""
+
+    def __init__(self, lab: Lab, t0: float, interval_s: float = 0.5):
+        self.lab = lab
+        self.t0 = t0
+        self.interval_s = interval_s
+        self.samples: list[tuple[float, Any]] = []
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._loop, daemon=True)
+        self._thread.start()
+
+    def _loop(self) -> None:
+        while not self._stop.wait(self.interval_s):
+            self.samples.append((time.monotonic() - self.t0, self.lab.tables(timeout_s=0.4)))
+
+    def stop(self) -> None:
+        self._stop.set()
+        self._thread.join(5)
+
+
 def offer(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, int, float, int]],
           duration_s: float, drain_s: float, events: Sequence[Event], ttl: int,
           progress: bool = False) -> dict[str, Any]:
     """Send the packets at their times (wall clock), take deliveries, run the events."""
+    t0 = time.monotonic()
+    sampler = TableSampler(lab, t0)
+    try:
+        out = _offer_loop(lab, traffic, packets, duration_s, drain_s, events, ttl, progress, t0)
+    finally:
+        sampler.stop()
+    out["table_samples"] = sampler.samples
+    return out
+
+
+def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, int, float, int]],
+                duration_s: float, drain_s: float, events: Sequence[Event], ttl: int,
+                progress: bool, t0: float) -> dict[str, Any]:
     topo = lab.topo
     tag = ov.topology_tag(topo.digest)
     size = int(lab.packet_bytes)
@@ -470,7 +505,6 @@ def offer(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, int, f
     dlv: dict[int, tuple[float, float, int]] = {}    # seq → (delivered at s, delivery s, hops)
     send_err = 0
     dup = 0
-    t0 = time.monotonic()
     pending = sorted(events, key=lambda e: e.at_s)
     it = iter(packets)
     nxt = next(it, None)
@@ -536,7 +570,7 @@ def offer(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, int, f
             last_show = now
             print(f"\rlab: t={now:5.1f}/{duration_s:g} s  sent {seq}  delivered {len(dlv)}",
                   end="", file=sys.stderr, flush=True)
-    if progress:
+    if progress and last_show > 0:
         print("", file=sys.stderr)
     return {"inj_t": inj_t, "inj_s": inj_s, "inj_d": inj_d, "dlv": dlv,
             "send_errors": send_err, "duplicates": dup, "elapsed_s": time.monotonic() - t0}
@@ -804,6 +838,7 @@ def _run(args: argparse.Namespace, topo: Any, topo_path: str, events: list[Event
                                 if e.kind == "capacity" else {}), **e.info} for e in events],
                  "service_epochs": lab.service_epochs, "tables_start": tables_start,
                  "tables_end": tables_end, "tc": tc,
+                 "table_samples": res["table_samples"],
                  "agents": {topo.nodes[i]: s for i, s in enumerate(statuses)}}
         written = write_outputs(args.out, summary, lab, res, extra)
         s = summary

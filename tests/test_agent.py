@@ -1,0 +1,448 @@
+"""routerd.agent on loopback: weights, flowlets, probes, failure detection, TTL, malformed
+packets, reports and non-stop forwarding — real UDP sockets and real zmq, no root needed.
+
+A diamond of our own: s reaches t through x (slow: 4 ms to x) or y (fast).  The agents run
+in threads of this process; a stand-in service (PUB for tables, ROUTER that decodes with
+routerd.wire and acknowledges) lets the tests choose the tables and read every row sent.
+"""
+from __future__ import annotations
+
+import math
+import os
+import shutil
+import socket
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from collections.abc import Callable, Iterator
+from typing import Any
+
+import pytest
+import yaml
+import zmq
+from prometheus_client import CollectorRegistry, generate_latest
+from prometheus_client.parser import text_string_to_metric_families
+
+from routerd import agent as A
+from routerd import config as C
+from routerd import overlay as ov
+from routerd import topology as T
+from routerd import wire
+
+NODES = ["s", "x", "y", "t"]
+TOPO_DOC = {"topology": {"name": "diamond", "defaults": {"capacity_bps": 1e7, "buffer_pkts": 50},
+                         "nodes": NODES,
+                         "links": [{"between": ["s", "x"], "delay_s": 0.004},
+                                   {"between": ["s", "y"], "delay_s": 0.001},
+                                   {"between": ["x", "t"], "delay_s": 0.001},
+                                   {"between": ["y", "t"], "delay_s": 0.001}]}}
+
+
+def free_udp_port() -> int:
+    s = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    s.bind(("127.0.0.1", 0))
+    p = s.getsockname()[1]
+    s.close()
+    return p
+
+
+def wait_until(pred: Callable[[], bool], timeout: float = 10.0) -> bool:
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        if pred():
+            return True
+        time.sleep(0.02)
+    return pred()
+
+
+class FakeService:
+    """PUB tables/<node> and a ROUTER that acknowledges every batch (decoded by routerd.wire)."""
+
+    def __init__(self, base: str, topo: T.Topology, epoch: int = 1):
+        self.topo = topo
+        self.ctx = zmq.Context()
+        self.pub = self.ctx.socket(zmq.PUB)
+        self.pub.linger = 0
+        self.pub.bind(f"ipc://{base}/pub")
+        self.router = self.ctx.socket(zmq.ROUTER)
+        self.router.linger = 0
+        self.router.bind(f"ipc://{base}/ingest")
+        self.epoch = epoch
+        self.seq = 0
+        self.hops: list[tuple[str, str, str, float, float]] = []
+        self.links: list[tuple[str, str, str]] = []
+        self.tables: dict[str, dict[str, list[list[Any]]]] = {}
+        self._stop = threading.Event()
+        self._lock = threading.Lock()
+        self._thread = threading.Thread(target=self._loop, daemon=True)
+        self._thread.start()
+
+    def set_table(self, node: str, routes: dict[str, list[list[Any]]]) -> None:
+        with self._lock:
+            self.tables[node] = routes
+
+    def _loop(self) -> None:
+        names = self.topo.nodes
+        last_pub = 0.0
+        while not self._stop.is_set():
+            if self.router.poll(20):
+                parts = self.router.recv_multipart()
+                ing = wire.decode_ingest(parts[-1], self.topo)
+                if isinstance(ing, wire.WireError):
+                    out = wire.encode_error(ing)
+                else:
+                    h = ing.hops
+                    with self._lock:
+                        for a, b, c, lat, e in zip(h.src.tolist(), h.via.tolist(), h.dst.tolist(),
+                                                   h.latency.tolist(), h.estimate.tolist()):
+                            self.hops.append((names[a], names[b], names[c], lat, e))
+                        for a, b, up in ing.links:
+                            self.links.append((names[a], names[b], "up" if up else "down"))
+                    out = wire.encode_ack(ing.batch, ing.rows_total, ing.rejections())
+                self.router.send_multipart(parts[:-1] + [out])
+            if time.monotonic() - last_pub > 0.05:
+                last_pub = time.monotonic()
+                with self._lock:
+                    for node, routes in self.tables.items():
+                        self.seq += 1
+                        self.pub.send_multipart(wire.table_message(node, self.seq, self.epoch, routes))
+
+    def close(self) -> None:
+        self._stop.set()
+        self._thread.join(5)
+        self.pub.close(0)
+        self.router.close(0)
+        self.ctx.term()
+
+
+class AgentThread:
+    def __init__(self, agent: A.Agent, registry: CollectorRegistry):
+        self.agent = agent
+        self.registry = registry
+        self.error: BaseException | None = None
+        self.thread = threading.Thread(target=self._run, daemon=True)
+        self.opened = threading.Event()
+        self.thread.start()
+        assert self.opened.wait(10), "agent did not open"
+        if self.error:
+            raise self.error
+
+    def _run(self) -> None:
+        try:
+            self.agent.open()
+            self.opened.set()
+            self.agent.run()
+        except BaseException as e:  # noqa: BLE001 - surfaced to the test
+            self.error = e
+            self.opened.set()
+        finally:
+            self.agent.close()
+
+    def stop(self) -> None:
+        self.agent.request_stop()
+        self.thread.join(10)
+        assert not self.thread.is_alive()
+
+    def metric(self, name: str, labels: dict[str, str] | None = None) -> float:
+        """A sample read back through prometheus_client's own text parser."""
+        text = generate_latest(self.registry).decode()
+        for fam in text_string_to_metric_families(text):
+            for smp in fam.samples:
+                if smp.name == name and (labels is None or all(smp.labels.get(k) == v for k, v in labels.items())):
+                    return smp.value
+        raise KeyError(name)
+
+
+class Diamond:
+    """Four agents on loopback plus the stand-in service, all in one tmp dir."""
+
+    def __init__(self, base: str, **agent_keys: Any):
+        self.base = base
+        tp = os.path.join(base, "topo.yaml")
+        with open(tp, "w") as fh:
+            yaml.safe_dump(TOPO_DOC, fh)
+        self.topo = T.load(tp)
+        self.ports = {n: {"local": free_udp_port(), "deliver": free_udp_port()} for n in NODES}
+        links = []
+        for a, b in (("s", "x"), ("s", "y"), ("x", "t"), ("y", "t")):
+            links.append({"between": [a, b], "addresses": [f"127.0.0.1:{free_udp_port()}",
+                                                           f"127.0.0.1:{free_udp_port()}"]})
+        ul = os.path.join(base, "underlay.yaml")
+        with open(ul, "w") as fh:
+            yaml.safe_dump({"underlay": {"links": links}}, fh)
+        keys = {"agent.probe_interval_s": 0.05, "agent.detect_multiplier": 3,
+                "agent.report_interval_s": 0.05, "agent.table_stale_s": 0.6,
+                "agent.propagation": "emulate", "agent.latency": "one_way",
+                "agent.flowlet_gap_s": 0.0, **agent_keys}
+        flat = {"topology.file": tp, "service.ingest": f"ipc://{base}/ingest",
+                "service.publish": f"ipc://{base}/pub", "agent.underlay": ul, **keys}
+        self.cfg = C.from_mapping_flat(flat, "test", base=None)
+        self.config_path = os.path.join(base, "cfg.yaml")
+        with open(self.config_path, "w") as fh:
+            yaml.safe_dump(self.cfg.nested(), fh)
+        self.underlay = A.load_underlay(ul, self.topo)
+        self.service = FakeService(base, self.topo)
+        self.agents: dict[str, AgentThread] = {}
+        self.sink: dict[str, socket.socket] = {}
+        for n in NODES:
+            r = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+            r.bind(("127.0.0.1", self.ports[n]["deliver"]))
+            r.settimeout(0.05)
+            r.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, 1 << 20)
+            self.sink[n] = r
+        self.tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+        self.tag = ov.topology_tag(self.topo.digest)
+
+    def start(self, name: str) -> AgentThread:
+        reg = CollectorRegistry()
+        ag = A.Agent(self.cfg, self.topo, name, registry=reg, underlay=self.underlay,
+                     local=f"127.0.0.1:{self.ports[name]['local']}",
+                     deliver=f"127.0.0.1:{self.ports[name]['deliver']}")
+        self.agents[name] = AgentThread(ag, reg)
+        return self.agents[name]
+
+    def start_all(self) -> None:
+        for n in NODES:
+            self.start(n)
+        assert wait_until(lambda: all(ln.state == "up" for a in self.agents.values()
+                                      for ln in a.agent.links.values()), 10)
+
+    def send(self, src: str, dst: str, flow: int, seq: int, ttl: int = 16) -> None:
+        i = self.topo.index
+        pkt = ov.data_packet(self.tag, i[src], i[dst], flow, seq, time.time_ns(), ttl, 64)
+        self.tx.sendto(pkt, ("127.0.0.1", self.ports[src]["local"]))
+
+    def received(self, node: str, timeout: float = 1.0) -> list[ov.Header]:
+        out = []
+        end = time.monotonic() + timeout
+        s = self.sink[node]
+        while time.monotonic() < end:
+            try:
+                data = s.recv(65535)
+            except TimeoutError:
+                continue
+            h = ov.decode(data, nodes=self.topo.n, topo=self.tag)
+            assert not isinstance(h, ov.Malformed)
+            out.append(h[0])
+            end = max(end, time.monotonic() + 0.2)
+        return out
+
+    def forwarded(self, name: str) -> int:
+        return self.agents[name].agent.counts["forwarded"]
+
+    def close(self) -> None:
+        for a in self.agents.values():
+            if a.thread.is_alive():
+                a.stop()
+        self.service.close()
+        for s in list(self.sink.values()) + [self.tx]:
+            s.close()
+
+
+@pytest.fixture
+def diamond() -> Iterator[Callable[..., Diamond]]:
+    made: list[Diamond] = []
+    dirs: list[str] = []
+
+    def make(**keys: Any) -> Diamond:
+        base = tempfile.mkdtemp(prefix="rda-", dir="/tmp")   # ipc:// paths stay short
+        dirs.append(base)
+        d = Diamond(base, **keys)
+        made.append(d)
+        return d
+
+    yield make
+    for d in made:
+        d.close()
+    for b in dirs:
+        shutil.rmtree(b, ignore_errors=True)
+
+
+def test_weights_are_honoured_per_flowlet(diamond: Callable[..., Diamond]) -> None:
+    d = diamond()
+    d.service.set_table("s", {"t": [["x", 0.8], ["y", 0.2]]})
+    d.start_all()
+    assert wait_until(lambda: d.agents["s"].agent.routes != {}, 5)
+    n = 1000
+    for i in range(n):
+        d.send("s", "t", flow=i, seq=i)
+        if i % 50 == 49:
+            time.sleep(0.01)          # pacing: loopback UDP drops bursts beyond its buffer
+    got = d.received("t", timeout=2.0)
+    assert len(got) == n
+    via_x = d.forwarded("x")
+    # binomial(n, 0.8): mean 800, sd = sqrt(n p (1-p)) = 12.6; a 4-sd band (textbook normal
+    # approximation; a false failure about once in 16,000 runs)
+    sd = math.sqrt(n * 0.8 * 0.2)
+    assert abs(via_x - 0.8 * n) < 4 * sd, via_x
+    assert d.forwarded("x") + d.forwarded("y") == n
+    assert all(h.ttl == 16 - 2 for h in got)     # two hops, one TTL each
+
+
+def test_flowlet_stays_pinned_and_repins_on_table_change_and_link_down(diamond: Callable[..., Diamond]) -> None:
+    d = diamond(**{"agent.flowlet_gap_s": 30.0})
+    d.service.set_table("s", {"t": [["x", 0.5], ["y", 0.5]]})
+    d.start_all()
+    assert wait_until(lambda: d.agents["s"].agent.routes != {}, 5)
+    for i in range(100):
+        d.send("s", "t", flow=7, seq=i)
+    assert len(d.received("t")) == 100
+    fx, fy = d.forwarded("x"), d.forwarded("y")
+    assert sorted((fx, fy)) == [0, 100]               # one flow, one next hop
+    s = d.agents["s"]
+    assert s.metric("routerd_agent_flowlet_pins_total", {"cause": "new"}) == 1
+    # the entry changes: the flow moves to the only next hop left
+    d.service.set_table("s", {"t": [["y", 1.0]]})
+    assert wait_until(lambda: d.agents["s"].agent.routes.get(3) == ((2,), (1.0,)), 5)
+    for i in range(100, 150):
+        d.send("s", "t", flow=7, seq=i)
+    assert len(d.received("t")) == 50
+    assert d.forwarded("y") - fy == 50
+    assert s.metric("routerd_agent_flowlet_pins_total", {"cause": "table"}) == 1
+    # y goes away: after detection the flow leaves y (static fallback via x)
+    d.agents["y"].stop()
+    assert wait_until(lambda: s.agent.links[2].state == "down", 5)
+    x0 = d.forwarded("x")
+    for i in range(150, 170):
+        d.send("s", "t", flow=7, seq=i)
+    assert len(d.received("t")) == 20
+    assert d.forwarded("x") - x0 == 20
+    assert s.metric("routerd_agent_flowlet_pins_total", {"cause": "link"}) == 1
+    assert s.metric("routerd_agent_fallback_forwarded_total") == 1   # one flowlet pinned by it
+
+
+def test_probes_measure_emulated_delay_and_report_hop_rows(diamond: Callable[..., Diamond]) -> None:
+    d = diamond()
+    d.start_all()
+    assert wait_until(lambda: sum(1 for h in d.service.hops if h[:2] == ("s", "x")) >= 30, 10)
+    rows = [h for h in d.service.hops if h[:2] == ("s", "x")]
+    # one row per destination other than s for every echo
+    assert {r[2] for r in rows} == {"x", "y", "t"}
+    # propagation is emulated at the receiver: each probe spends delay_s (4 ms) on the way
+    lat = [r[3] for r in rows]
+    assert min(lat) >= 0.004
+    fast = [h[3] for h in d.service.hops if h[:2] == ("s", "y")]
+    assert min(fast) >= 0.001 and sorted(fast)[len(fast) // 2] < sorted(lat)[len(lat) // 2]
+    assert all(math.isnan(r[4]) for r in rows)      # no estimates: the echoes carried none
+    s = d.agents["s"]
+    echoes = s.metric("routerd_agent_probes_total", {"event": "echoed"})
+    assert echoes >= len(rows) / 3                  # the s-x echoes, and those of s-y
+    assert s.metric("routerd_agent_hop_latency_seconds_count") == echoes
+
+
+def test_failure_detection_reports_down_then_up(diamond: Callable[..., Diamond]) -> None:
+    d = diamond()
+    d.start_all()
+    assert wait_until(lambda: ("s", "x", "up") in d.service.links, 5)
+    d.agents["x"].stop()
+    assert wait_until(lambda: ("s", "x", "down") in d.service.links, 5)
+    det = [e for e in d.agents["s"].agent.detections if e["neighbour"] == "x"]
+    # BFD detection time (RFC 5880 section 6.8.4): multiplier x interval = 3 x 50 ms without
+    # an echo; it cannot fire earlier than that
+    assert det and det[-1]["after_s"] >= 3 * 0.05
+    assert d.agents["s"].metric("routerd_agent_links_down") == 1
+    d.start("x")
+    assert wait_until(lambda: d.service.links.count(("s", "x", "up")) >= 2, 5)
+    assert d.agents["s"].metric("routerd_agent_link_state_changes_total", {"state": "up"}) >= 2
+
+
+def test_ttl_expiry_and_malformed_packets_are_counted(diamond: Callable[..., Diamond]) -> None:
+    d = diamond()
+    d.service.set_table("s", {"t": [["y", 1.0]]})
+    d.start_all()
+    d.send("s", "t", flow=1, seq=1, ttl=0)           # cannot leave s
+    d.send("s", "t", flow=1, seq=2, ttl=1)           # reaches y with 0 left: expires there
+    d.send("s", "t", flow=1, seq=3, ttl=2)           # just enough
+    got = d.received("t")
+    assert [h.seq for h in got] == [3]
+    assert wait_until(lambda: d.agents["s"].agent.counts["ttl_expired"] == 1
+                      and d.agents["y"].agent.counts["ttl_expired"] == 1, 3)
+    assert d.agents["s"].metric("routerd_agent_ttl_expired_total") == 1
+    local = ("127.0.0.1", d.ports["s"]["local"])
+    d.tx.sendto(b"\x01\x00", local)                                            # short
+    d.tx.sendto(ov.data_packet(d.tag ^ 1, 0, 3, 1, 1, 1, 5, 40), local)        # wrong_topology
+    d.tx.sendto(ov.data_packet(d.tag, 0, 3, 1, 1, 1, 5, 40) + b"!", local)     # bad_length
+    d.tx.sendto(ov.probe(d.tag, 0, 1, 1, 1), local)                            # not data: dropped
+    s = d.agents["s"]
+    assert wait_until(lambda: s.agent.counts["malformed"] == 3, 3)
+    for reason in ("short", "wrong_topology", "bad_length"):
+        assert s.metric("routerd_agent_malformed_packets_total", {"reason": reason}) == 1
+    assert s.metric("routerd_agent_packets_dropped_total", {"reason": "not_data"}) == 1
+    # on a link socket too: garbage from the neighbour's address is counted, not fatal
+    x_end = d.underlay[(1, 0)][0]          # x's address on the s-x link
+    s_end = d.underlay[(0, 1)][0]
+    g = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    g.bind(("127.0.0.1", 0))
+    g.close()
+    d.agents["x"].stop()                    # free x's port to send from it
+    g = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    g.bind(x_end)
+    g.sendto(b"\x09" * 40, s_end)
+    g.close()
+    assert wait_until(lambda: s.metric("routerd_agent_malformed_packets_total", {"reason": "bad_version"}) == 1, 3)
+
+
+def test_nonstop_forwarding_and_resync(diamond: Callable[..., Diamond]) -> None:
+    d = diamond()
+    d.service.set_table("s", {"t": [["x", 1.0]]})
+    d.start_all()
+    s = d.agents["s"]
+    assert wait_until(lambda: s.agent.routes != {}, 5)
+    assert s.metric("routerd_agent_nonstop_forwarding") == 0
+    base = d.base
+    d.service.close()                                   # the service is gone
+    assert wait_until(lambda: s.metric("routerd_agent_nonstop_forwarding") == 1, 5)
+    for i in range(20):
+        d.send("s", "t", flow=i, seq=i)
+    assert len(d.received("t")) == 20                   # still forwarding, on the last table
+    assert d.forwarded("x") == 20                       # ... and by it, not by the fallback
+    d.agents["y"].stop()                                # a link fails while the service is away
+    assert wait_until(lambda: s.agent.links[2].state == "down", 5)
+    d.service = FakeService(base, d.topo, epoch=2)       # it comes back: a new epoch
+    d.service.set_table("s", {"t": [["x", 1.0]]})
+    assert wait_until(lambda: s.metric("routerd_agent_nonstop_forwarding") == 0, 5)
+    assert s.metric("routerd_agent_service_restarts_seen_total") == 1
+    assert s.metric("routerd_agent_nonstop_periods_total") == 1
+    # what it saw down while the service was away reaches the new service
+    assert wait_until(lambda: ("s", "y", "down") in d.service.links, 5)
+
+
+def test_underlay_and_node_errors(tmp_path: Any) -> None:
+    topo = T.from_mapping(TOPO_DOC, source="diamond")
+    bad = tmp_path / "u.yaml"
+    bad.write_text(yaml.safe_dump({"underlay": {"links": [
+        {"between": ["s", "q"], "addresses": ["127.0.0.1:1", "127.0.0.1:2"]},
+        {"between": ["s", "t"], "addresses": ["127.0.0.1:1", "127.0.0.1:2"]},
+        {"between": ["s", "x"], "addresses": ["127.0.0.1", "127.0.0.1:2"]},
+        {"between": ["s", "y"]}]}}))
+    with pytest.raises(A.InputError) as ei:
+        A.load_underlay(str(bad), topo)
+    msg = str(ei.value)
+    assert "underlay.links[0].between: 'q' is not a node" in msg
+    assert "underlay.links[1].between: ['s', 't'] is not a link" in msg
+    assert "underlay.links[2].addresses[0]: '127.0.0.1' is not HOST:PORT" in msg
+    assert "underlay.links[3]" in msg
+    good = tmp_path / "g.yaml"
+    good.write_text(yaml.safe_dump({"underlay": {"links": [
+        {"between": ["s", "x"], "addresses": ["127.0.0.1:1", "127.0.0.1:2"]}]}}))
+    ul = A.load_underlay(str(good), topo)
+    with pytest.raises(A.InputError, match="gives no addresses for them"):
+        A.link_ends(0, topo, ul, str(good))
+    cfg = C.from_mapping_flat({"agent.underlay": str(good)}, "t", base=None)
+    with pytest.raises(A.InputError, match="'zz' is not a node"):
+        A.Agent(cfg, topo, "zz", registry=CollectorRegistry())
+
+
+def test_cli_refuses_unknown_node(tmp_path: Any) -> None:
+    tp = tmp_path / "topo.yaml"
+    tp.write_text(yaml.safe_dump(TOPO_DOC))
+    cf = tmp_path / "c.yaml"
+    cf.write_text(yaml.safe_dump({"topology": {"file": "topo.yaml"}, "agent": {"underlay": "none.yaml"}}))
+    for node, want in (("zz", "'zz' is not a node of topology 'diamond'"),
+                       ("s", "none.yaml' does not exist (agent.underlay)")):
+        r = subprocess.run([sys.executable, "-m", "routerd", "agent", "--node", node, "--config",
+                            str(cf)], capture_output=True, text=True, timeout=60)
+        assert r.returncode == 2, r.stderr
+        assert want in r.stderr
