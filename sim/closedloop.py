@@ -450,7 +450,8 @@ class ServicePolicy(Policy):
         self.subscriber = TableSubscriber(eps.publish, context=self._ctx)
         self.reporter = Reporter(eps.ingest, f"sim-{os.getpid()}-{id(self) & 0xFFFF:x}",
                                  topology_nodes=topology, batch_rows=1 << 20, max_pending=4,
-                                 timeout_s=self.timeout_s, retries=2, context=self._ctx)
+                                 # three tries in all within sim.service.timeout_s
+                                 timeout_s=self.timeout_s / 3, retries=2, context=self._ctx)
         # propagation delay of each link: when the row is due back at the sender
         self._prop: list[dict[int, float]] = [{} for _ in range(n)]
         for k, (a, b) in enumerate(zip(topology.src.tolist(), topology.dst.tolist())):
@@ -482,6 +483,17 @@ class ServicePolicy(Policy):
                 raise ServiceLost(Problem(self._ctl.endpoint, r.get("op"),
                                           f"was refused by the service: {rep['error']}"))
         return out
+
+    def _lost(self, endpoint: str, detail: str) -> ServiceLost:
+        """The error for a service that stopped answering; says so plainly when it is the
+        one we started and it has exited."""
+        p = self._own_process
+        if p is not None and not p.running:
+            rc = p.proc.poll() if p.proc is not None else None
+            return ServiceLost(Problem("routerd serve", f"pid {p.pid}",
+                                       f"exited (status {rc}) in the middle of the run; "
+                                       f"its last log lines:\n{p.log_tail()}"))
+        return ServiceLost(Problem(endpoint, "service", f"stopped answering: {detail}"))
 
     # -- forwarding ---------------------------------------------------------------------
     def _take_routes(self, x: int, routes: Mapping[str, Sequence[Sequence[Any]]]) -> None:
@@ -538,7 +550,7 @@ class ServicePolicy(Policy):
         try:
             reps = self._ask([{"op": "estimates", "node": self.names[x]} for x in xs])
         except TimeoutError as e:
-            raise ServiceLost(Problem(self.endpoints.control, "estimates", str(e))) from None
+            raise self._lost(self.endpoints.control, str(e)) from None
         ix = self.index
         for x, rep in zip(xs, reps):
             est: dict[int, dict[int, float]] = {}
@@ -634,7 +646,7 @@ class ServicePolicy(Policy):
         try:
             self.reporter.flush()
         except (DeliveryError, ServiceError) as e:
-            raise ServiceLost(Problem(self.endpoints.ingest, "batch", f"was not acknowledged: {e}")) from None
+            raise self._lost(self.endpoints.ingest, f"batch was not acknowledged: {e}") from None
         self.batches += 1
 
     def _take_tables(self) -> None:
@@ -718,7 +730,8 @@ class ServicePolicy(Policy):
         if self.closed:
             return
         self.closed = True
-        if self._ctl is not None and self.final_tables is None:
+        dead = self._own_process is not None and not self._own_process.running
+        if self._ctl is not None and self.final_tables is None and not dead:
             import zmq
 
             from routerd import wire

@@ -284,3 +284,30 @@ def _is_service(pid: int) -> bool:
             return b"\x00serve\x00--config\x00" in fh.read()
     except OSError:
         return False
+
+
+@pytest.mark.slow
+def test_service_dying_mid_run_is_reported_not_a_crash(tmp_path: Any) -> None:
+    """kill -9 of the service the closed loop started: the run ends with a clear message
+    (which process, its exit status) and exit status 2, within the configured timeout."""
+    proc = subprocess.Popen([sys.executable, "-m", "routerd", "simulate", "--policy", "service",
+                             "--rate", "300", "--duration", "60", "--seed", "1", "--quiet",
+                             "--set", "sim.service.timeout_s=1", "--out", str(tmp_path / "o")],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        kids: list[int] = []
+        deadline = time.monotonic() + 60
+        while time.monotonic() < deadline and not kids:
+            kids = [k for k in _children(proc.pid) if _is_service(k)]
+            time.sleep(0.2)
+        assert kids
+        time.sleep(2.0)
+        os.kill(kids[0], signal.SIGKILL)
+        _, err = proc.communicate(timeout=30)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait(10)
+    assert proc.returncode == 2, err
+    assert "routerd serve" in err and "exited (status -9) in the middle of the run" in err
+    assert "Traceback" not in err
