@@ -724,13 +724,14 @@ class Demo:
             se = self.results[pol]["series"]
             t = np.asarray(se["t_s"], dtype=float)
             iv = float(se.get("interval_s", 1.0))
+            ls = "--" if pol == "service" else "-"      # it lies on top of qrouting's line
             ax.plot(t - iv / 2, np.asarray(se["delivered"], dtype=float) / iv, color=COLOURS[pol],
-                    marker=".", lw=1, label=f"delivered: {LABELS[pol]}")
+                    marker=".", lw=1, ls=ls, label=f"delivered: {LABELS[pol]}")
             util = np.asarray(se["link_util"], dtype=float)
             # the simulator books a packet's transmission when it enters the queue, so a
             # saturated link's "busy" share of a second can exceed 1: shown as 100%
             ax2.plot(t - iv / 2, np.minimum(util[:, trunk].max(axis=1), 1.0) * 100,
-                     color=COLOURS[pol], marker=".", label=LABELS[pol])
+                     color=COLOURS[pol], marker=".", ls=ls, label=LABELS[pol])
         ax.set_ylabel("packets/s")
         ax.set_ylim(bottom=0)
         ax.legend(loc="lower right", fontsize=8)
@@ -741,9 +742,11 @@ class Demo:
         ax2.set_ylabel(f"trunk {TRUNK[0]}-{TRUNK[1]} utilisation\n(busier direction, %; 100 = saturated)")
         ax2.set_ylim(0, 110)
         ax2.set_xlabel("time (s)")
-        for a, b, _ in self._downs():
+        for a, b, ends in self._downs():
             for axx in (ax, ax2):
                 axx.axvspan(a, b, color="tab:red", alpha=0.08)
+            ax.text((a + b) / 2, 60, f"{ends[0]}-{ends[1]} down", color="tab:red", fontsize=8,
+                    ha="center")
         ax2.grid(alpha=0.3)
         fig.tight_layout()
         fig.savefig(path)
