@@ -105,7 +105,7 @@ def loop_update(Q: np.ndarray, x: list[int], y: list[int], d: list[int], j: list
 
 
 def run(quick: bool) -> dict[str, dict[str, Any]]:
-    budget = 0.12 if quick else 1.0  # seconds per candidate and shape
+    budget = 0.25 if quick else 1.0  # seconds per candidate and shape
     figs: dict[str, dict[str, Any]] = {}
     ratios_big: list[float] = []
     rng = np.random.default_rng(20261201)
@@ -138,7 +138,7 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
                 lambda: eng.observe(b).accepted,
                 lambda: (floor_update(Qf, b.src, b.via, b.dst, j, b.latency, 0.5), m)[1],
                 lambda: (loop_update(Qf, lx, ly, ld, lj, ll, 0.5), cut)[1],
-            ], budget, trials=3 if quick else 5)
+            ], budget, trials=5)
             tag = f"n{n}_b{m}"
             figs[f"update_rows_per_s_{tag}"] = {
                 "value": eng_rate, "unit": "rows/s", "ratio": eng_rate / floor_rate,
