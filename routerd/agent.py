@@ -196,6 +196,7 @@ class AgentMetrics:
         self.injected = Counter("routerd_agent_packets_injected", "Data packets handed in by local applications", registry=r)
         self.delivered = Counter("routerd_agent_packets_delivered", "Data packets for this node handed to the local application", registry=r)
         self.dropped = Counter("routerd_agent_packets_dropped", "Data packets dropped, by reason", ["reason"], registry=r)
+        self.delivery = Histogram("routerd_agent_delivery_seconds", "Delivery time of packets for this node, from the origin timestamp (needs synchronised clocks)", buckets=LATENCY_BUCKETS_S, registry=r)
         self.ttl_expired = Counter("routerd_agent_ttl_expired", "Data packets dropped because their TTL ran out", registry=r)
         self.malformed = Counter("routerd_agent_malformed_packets", "Packets refused as malformed, by reason", ["reason"], registry=r)
         self.fallback = Counter("routerd_agent_fallback_forwarded", "Flowlets pinned by the static fallback (no usable table entry)", registry=r)
@@ -503,6 +504,7 @@ class Agent:
         if h.dst == self.me:
             self.counts["delivered"] += 1
             self.m.delivered.inc()
+            self.m.delivery.observe(max(0.0, (time.time_ns() - h.origin_ns) / 1e9))
             try:
                 assert self.local_sock is not None
                 self.local_sock.sendto(data, self.deliver_addr)

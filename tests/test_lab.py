@@ -1,0 +1,254 @@
+"""routerd lab: real namespaces, veth pairs, tbf, a real service and one agent per node.
+
+The slow tests need root and working ``ip netns``; elsewhere they are skipped with the
+reason.  Each runs ``routerd lab`` as a child process on configs/lab-small.yaml and reads
+what it wrote; every test ends by checking that no namespace and no process of the lab is
+left behind.
+"""
+from __future__ import annotations
+
+import argparse
+import csv
+import json
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from collections.abc import Iterator
+from typing import Any
+
+import networkx as nx
+import pytest
+
+from routerd import lab as L
+from routerd import topology as T
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+TOPO = os.path.join(ROOT, "configs", "lab-small.yaml")
+
+
+def _lab_unavailable() -> str | None:
+    if not sys.platform.startswith("linux"):
+        return "the lab needs Linux"
+    if os.geteuid() != 0:
+        return "the lab needs root (network namespaces, veth, tc)"
+    if shutil.which("ip") is None or shutil.which("tc") is None:
+        return "the lab needs iproute2 (ip, tc)"
+    name = f"rdtest{os.getpid()}"
+    r = subprocess.run(["ip", "netns", "add", name], capture_output=True, text=True)
+    if r.returncode != 0:
+        return f"ip netns add failed here: {r.stderr.strip()}"
+    subprocess.run(["ip", "netns", "del", name], capture_output=True)
+    return None
+
+
+REASON = _lab_unavailable()
+needs_lab = pytest.mark.skipif(REASON is not None, reason=f"lab tests skipped: {REASON}")
+
+
+def lab_processes() -> list[str]:
+    """Command lines of live processes that belong to some lab run (its run dir is in them)."""
+    out = []
+    for pid in os.listdir("/proc"):
+        if not pid.isdigit():
+            continue
+        try:
+            with open(f"/proc/{pid}/cmdline", "rb") as fh:
+                cmd = fh.read().replace(b"\0", b" ").decode(errors="replace")
+        except OSError:
+            continue
+        if f"/tmp/{L.PREFIX}-" in cmd and "routerd" in cmd:
+            out.append(f"{pid}: {cmd}")
+    return out
+
+
+def assert_nothing_left(pid: int) -> None:
+    ns = [n for n in L.list_namespaces() if n.startswith(f"{L.PREFIX}{pid}-")]
+    assert ns == [], f"namespaces left behind: {ns}"
+    assert lab_processes() == []
+
+
+def run_lab(out: str, *extra: str, duration: float = 4.0, rate: float = 150.0,
+            timeout: float = 90.0) -> tuple[subprocess.CompletedProcess[str], int]:
+    p = subprocess.Popen([sys.executable, "-m", "routerd", "lab", "--topology", TOPO,
+                          "--duration", str(duration), "--rate", str(rate), "--out", out,
+                          "--quiet", *extra], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                         text=True)
+    try:
+        so, se = p.communicate(timeout=timeout)
+    except subprocess.TimeoutExpired:
+        p.kill()
+        so, se = p.communicate()
+        raise
+    return subprocess.CompletedProcess(p.args, p.returncode, so, se), p.pid
+
+
+def read_out(out: str) -> tuple[dict[str, Any], dict[str, Any], list[dict[str, str]], list[dict[str, str]]]:
+    with open(os.path.join(out, "summary.json")) as fh:
+        s = json.load(fh)
+    with open(os.path.join(out, "lab.json")) as fh:
+        x = json.load(fh)
+    with open(os.path.join(out, "deliveries.csv")) as fh:
+        d = list(csv.DictReader(fh))
+    with open(os.path.join(out, "series.csv")) as fh:
+        ser = list(csv.DictReader(fh))
+    return s, x, d, ser
+
+
+def mean_delivery(rows: list[dict[str, str]], lo: float, hi: float) -> float:
+    v = [float(r["delivery_s"]) for r in rows if r["delivered"] == "1" and lo <= float(r["inject_s"]) < hi]
+    assert v, f"no deliveries injected in [{lo}, {hi})"
+    return sum(v) / len(v)
+
+
+@pytest.fixture
+def outdir(tmp_path: Any) -> Iterator[str]:
+    yield str(tmp_path / "lab")
+
+
+def test_refuses_without_root(monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]) -> None:
+    monkeypatch.setattr(os, "geteuid", lambda: 1000)
+    args = argparse.Namespace(topology=TOPO, duration=1.0, rate=10.0, out="/nonexistent")
+    assert L.run(args) == 2
+    err = capsys.readouterr().err
+    assert "needs root" in err and "network namespaces" in err
+
+
+def test_plan_addresses_are_private_slash30s() -> None:
+    topo = T.load(TOPO)
+    pairs = L.plan_pairs(topo)
+    assert len(pairs) == 8                      # 8 two-way links in lab-small
+    import ipaddress
+
+    seen = set()
+    for p in pairs:
+        a, b = ipaddress.ip_address(p.addr_a), ipaddress.ip_address(p.addr_b)
+        net = ipaddress.ip_network(f"{p.addr_a}/30", strict=False)
+        assert b in net and a != b and net.subnet_of(ipaddress.ip_network("10.254.0.0/16"))
+        assert a.is_private and net not in seen
+        seen.add(net)
+    assert L.tbf_args(2e6, 40, 400)[:3] == ["tbf", "rate", "2000000bit"]
+
+
+def test_bad_event_options_are_refused() -> None:
+    topo = T.load(TOPO)
+    with pytest.raises(L.InputError, match="is not a link"):
+        L.parse_capacity_change("3:a1:b2:1e5", topo)
+    with pytest.raises(L.InputError, match="T:FROM:TO:BPS"):
+        L.parse_capacity_change("3:a1", topo)
+    with pytest.raises(L.InputError, match="T\\[:DOWN_S\\]"):
+        L.parse_kill("soon")
+    ev = L.parse_kill("4:3")
+    assert [(e.kind, e.at_s) for e in ev] == [("kill_service", 4.0), ("restart_service", 7.0)]
+
+
+@pytest.mark.slow
+@needs_lab
+def test_lab_delivers_end_to_end_with_the_simulators_keys(outdir: str) -> None:
+    r, pid = run_lab(outdir, duration=4.0, rate=150.0)
+    assert r.returncode == 0, r.stderr
+    s, x, rows, _ = read_out(outdir)
+    # the simulator's summary keys, all of them (sim.run.reduce is the reference)
+    from sim.run import run as sim_run
+
+    ref = sim_run({"policy": "shortest", "rate_pps": 50.0, "duration_s": 0.5, "topology": TOPO,
+                   "series": False})["summary"]
+    assert set(ref) <= set(s), set(ref) - set(s)
+    assert s["mode"] == "lab" and s["nodes"] == 7 and s["links"] == 16
+    assert s["offered"] > 400 and s["delivery_ratio"] > 0.97
+    # every delivered packet took at least its pair's shortest propagation delay (emulated
+    # in user space), computed independently with networkx's Dijkstra
+    g = nx.DiGraph()
+    topo = T.load(TOPO)
+    for a, b, dly in zip(topo.src.tolist(), topo.dst.tolist(), topo.delay_s.tolist()):
+        g.add_edge(topo.nodes[a], topo.nodes[b], w=dly)
+    sp = dict(nx.all_pairs_dijkstra_path_length(g, weight="w"))
+    hops = dict(nx.all_pairs_shortest_path_length(g))
+    done = [rw for rw in rows if rw["delivered"] == "1"]
+    assert len(done) > 400
+    for rw in done:
+        assert float(rw["delivery_s"]) >= sp[rw["src"]][rw["dst"]] - 1e-6, rw
+        assert int(rw["hops"]) >= hops[rw["src"]][rw["dst"]], rw
+    # real sockets across namespaces: every agent forwarded or delivered, over veth
+    assert all(a["counts"]["delivered"] > 0 for a in x["agents"].values())
+    assert sum(t["packets"] for t in x["tc"]) >= s["lab_forwarded"]
+    assert_nothing_left(pid)
+
+
+@pytest.mark.slow
+@needs_lab
+def test_capacity_cut_moves_routes_and_delivery_recovers(outdir: str) -> None:
+    # cut m -> b1 (on the short west-east way) from 4 Mbit/s to 64 kbit/s at t = 4 s
+    r, pid = run_lab(outdir, "--capacity-change", "4:m:b1:64e3", duration=14.0, rate=200.0)
+    assert r.returncode == 0, r.stderr
+    s, x, rows, _ = read_out(outdir)
+    before = mean_delivery(rows, 1.0, 4.0)
+    hurt = max(mean_delivery(rows, t, t + 0.5) for t in (4.0, 4.5, 5.0, 5.5, 6.0))
+    after = mean_delivery(rows, 11.0, 14.0)
+    assert hurt > 5 * before, (before, hurt)          # the cut is felt ...
+    assert after < 2 * before + 0.005, (before, after)  # ... and delivery time recovers
+    # the service moved a1's traffic for b1 off m at some point after the cut
+    samples = [(t, tb) for t, tb in x["table_samples"] if tb is not None]
+    pre = [tb["a1"]["b1"] for t, tb in samples if t < 4.0]
+    assert pre and all(dict(map(tuple, e)).get("m", 0) > 0.5 for e in pre)
+    post = [dict(map(tuple, tb["a1"]["b1"])).get("m", 0.0) for t, tb in samples if t > 4.0]
+    assert min(post) < 0.5, post
+    assert s["dropped_buffer"] >= 0 and x["tc"]
+    assert_nothing_left(pid)
+
+
+@pytest.mark.slow
+@needs_lab
+def test_agents_forward_through_a_service_kill_and_resynchronise(outdir: str) -> None:
+    r, pid = run_lab(outdir, "--kill-service", "3:3", duration=10.0, rate=150.0)
+    assert r.returncode == 0, r.stderr
+    s, x, rows, _ = read_out(outdir)
+    out_rows = [rw for rw in rows if 3.3 <= float(rw["inject_s"]) < 5.8]
+    assert len(out_rows) > 200
+    ratio = sum(rw["delivered"] == "1" for rw in out_rows) / len(out_rows)
+    assert ratio > 0.97, ratio                        # non-stop forwarding on the last tables
+    samples = x["table_samples"]
+    assert any(tb is None for t, tb in samples if 3.3 < t < 5.8)   # the service was gone
+    assert any(tb is not None for t, tb in samples if t > 7.5)    # ... and came back
+    e1, e2 = x["service_epochs"]
+    assert e2 > e1
+    for name, a in x["agents"].items():
+        assert a["counts"]["nonstop_periods"] >= 1, name   # said so in its metrics
+        assert a["counts"]["resyncs"] >= 1, name
+        assert a["table"]["epoch"] == e2, name           # on the new service's tables
+        assert not a["nonstop"], name
+    assert_nothing_left(pid)
+
+
+@pytest.mark.slow
+@needs_lab
+def test_ctrl_c_tears_everything_down(outdir: str) -> None:
+    p = subprocess.Popen([sys.executable, "-m", "routerd", "lab", "--topology", TOPO,
+                          "--duration", "60", "--rate", "50", "--out", outdir, "--quiet"],
+                         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        assert p.stderr is not None
+        deadline = time.monotonic() + 60
+        seen = []
+        while time.monotonic() < deadline:
+            line = p.stderr.readline()
+            if not line:
+                break
+            seen.append(line)
+            if "agents up" in line:
+                break
+        assert any("agents up" in ln for ln in seen), "".join(seen)
+        assert [n for n in L.list_namespaces() if n.startswith(f"{L.PREFIX}{p.pid}-")]
+        time.sleep(1.0)
+        p.send_signal(signal.SIGINT)
+        _, err = p.communicate(timeout=30)
+    finally:
+        if p.poll() is None:
+            p.kill()
+            p.wait()
+    assert p.returncode == 130, err
+    assert "interrupted" in err
+    assert not os.path.exists(os.path.join(outdir, "summary.json"))
+    assert_nothing_left(p.pid)
