@@ -20,6 +20,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "simulate": ("sim.commands_simulate", "run the packet-level simulator on a topology with one policy"),
     "sweep": ("sim.commands_sweep", "simulate rates x policies x seeds and draw delivery time against load"),
     "serve": ("routerd.service", "run the routing policy service (observations in, tables out, metrics)"),
+    "keys": ("routerd.security", "write a CURVE key pair (NAME.key, NAME.key_secret) for the service or a reporter"),
     "demo": ("routerd.demo", "see routerd work in under a minute: a live service driven by the simulator, compared with static routes"),
     "replay": ("routerd.replay", "re-run a service journal offline: reproduce its tables or compare other settings"),
     "agent": ("routerd.agent", "run the forwarding agent of one overlay node (UDP, tables from the service, probes)"),

@@ -114,6 +114,23 @@ SCHEMA: dict[str, Field] = {
     "agent.table_stale_s": F(float, 6.0, "no table and no acknowledgement for this long: the service counts as unreachable (non-stop forwarding)", lo=0, lo_open=True),
     "agent.hold_max_pkts": F(int, 100000, "packets held at once for emulated propagation (beyond: dropped, counted)", lo=1),
     "agent.seed": F(int, 0, "seed of the weighted next-hop choice (mixed with the node index)", lo=0),
+    # -- plausibility guards (routerd/guards.py), applied by the service before the engine --
+    "guards.floor_fraction": F(float, 1.0, "a hop latency below this fraction of the link's propagation delay (or an estimate below it of the shortest propagation distance) is rejected as below_floor (0 = off)", lo=0, hi=1, tunable=True),
+    "guards.ceiling_s": F(float, 60.0, "a hop latency or estimate above this is rejected as above_ceiling (0 = off)", lo=0, tunable=True),
+    "guards.jump.factor": F(float, 0.0, "a latency outside [ref/f, ref*f] of the link's reference is clipped or held (0 = off; else > 1)", lo=0, tunable=True),
+    "guards.jump.action": F(str, "hold", "a jump is clipped to the band edge, or held until jump.confirm samples on the same side confirm it", choices=("clip", "hold"), tunable=True),
+    "guards.jump.confirm": F(int, 3, "out-of-band samples on one side that confirm a level shift (hold)", lo=1, tunable=True),
+    "guards.jump.smoothing": F(float, 0.2, "weight of an accepted sample in the link's reference latency", lo=0, hi=1, lo_open=True, tunable=True),
+    "guards.rate.batches_per_s": F(float, 0.0, "per-reporter token bucket: batches per second (0 = unlimited); excess batches are refused as rate_limited", lo=0, tunable=True),
+    "guards.rate.burst_batches": F(float, 50.0, "per-reporter token bucket: batch burst", lo=1, tunable=True),
+    "guards.rate.rows_per_s": F(float, 0.0, "per-reporter token bucket: rows per second (0 = unlimited)", lo=0, tunable=True),
+    "guards.rate.burst_rows": F(float, 1.0e6, "per-reporter token bucket: row burst", lo=1, tunable=True),
+    "guards.rate.max_reporters": F(int, 4096, "reporters with a token bucket (the least recently seen is forgotten first)", lo=1, tunable=True),
+    # -- security (routerd/security.py): CURVE and reporter authorisation ------------------
+    "security.server_key": F(str, None, "the service's CURVE secret certificate (NAME.key_secret from routerd keys); with security.allow: CURVE on every ZeroMQ endpoint", nullable=True),
+    "security.allow": F(str, None, "allow file (YAML): reporter name -> public_key (Z85 or a .key file) and nodes it may speak for", nullable=True),
+    "security.control_readonly": F(str, None, "a second control endpoint without CURVE serving read-only ops only (tables, estimates, health, nodes)", nullable=True),
+    "service.storage_retry_s": F(float, 1.0, "after a journal write failed (disk full, unwritable), how often the service tries to resume", lo=0.01),
 }
 
 
@@ -198,6 +215,9 @@ def _cross_checks(flat: dict[str, Any], where: str) -> list[Problem]:
     if flat["engine.initial.value_s"] > flat["engine.ceiling_s"]:
         p.append(Problem(f"{where}: engine.initial.value_s", flat["engine.initial.value_s"],
                          f"is above engine.ceiling_s ({flat['engine.ceiling_s']})"))
+    jf = flat["guards.jump.factor"]
+    if 0 < jf <= 1:
+        p.append(Problem(f"{where}: guards.jump.factor", jf, "must be 0 (off) or above 1"))
     return p
 
 

@@ -44,7 +44,7 @@ BATCH_RESULTS = ("accepted", "duplicate", "refused")
 #: Why table publications happen.
 PUBLICATION_CAUSES = ("change", "interval", "final")
 #: Control operations counted by name; anything else counts as "other".
-CONTROL_OPS = ("tables", "estimates", "health", "snapshot", "link", "nodes", "other")
+CONTROL_OPS = ("tables", "estimates", "health", "snapshot", "link", "nodes", "reload", "other")
 CONTROL_RESULTS = ("ok", "error")
 #: Snapshot causes.
 SNAPSHOT_CAUSES = ("interval", "request", "shutdown")

@@ -45,7 +45,9 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import dataclasses
 import gc
+import glob
 import json
 import math
 import os
@@ -63,18 +65,25 @@ import numpy as np
 
 from . import __version__, wire
 from . import config as _config
+from . import guards as _guards
 from . import journal as _journal
+from . import security as _security
 from . import topology as _topology
 from .cautions import CAUTIONS
-from .engine import Engine, EngineSettings
+from .engine import Engine, EngineSettings, HopBatch
 from .errors import InputError
 from .journal import accepted_part as _accepted_part
 from .journal import apply_batch as _apply_batch
 from .journal import batch_body as _batch_body
 from .journal import engine_state as _engine_state
 
-#: Service-side row rejection reasons (added to :data:`wire.REASONS` for the metrics).
-SERVICE_REASONS = ("duplicate",)
+#: Service-side row rejection reasons (added to :data:`wire.REASONS` for the metrics):
+#: duplicates, rows outside the reporter's rights, and the plausibility guards' reasons.
+SERVICE_REASONS = ("duplicate", _security.NOT_AUTHORISED) + _guards.REASONS
+#: Service-side whole-frame refusals (added to :data:`wire.FRAME_ERRORS`): a batch whose
+#: key is not the named reporter's, a reporter over its rate, a journal that cannot be
+#: written (nothing of the batch was stored: send it again later).
+SERVICE_FRAME_ERRORS = (_security.NOT_AUTHORISED, _guards.RATE_LIMITED, "unavailable")
 #: Frames up to this much above ``service.max_message_bytes`` are still read so they can
 #: be answered ``oversized``; beyond it libzmq's MAXMSGSIZE cuts the peer off unanswered
 #: (counted as a disconnect), so a hostile peer cannot make us buffer arbitrarily much.
@@ -84,7 +93,13 @@ DEDUP_REJECTIONS = 256
 
 _FLAG_KEYS = {"ingest": "service.ingest", "pull": "service.pull", "publish": "service.publish",
               "control": "service.control", "metrics": "service.metrics",
-              "state_dir": "service.state_dir"}
+              "state_dir": "service.state_dir", "server_key": "security.server_key",
+              "allow": "security.allow", "control_readonly": "security.control_readonly"}
+_PATH_KEYS = ("security.server_key", "security.allow")
+
+
+class StorageDown(Exception):
+    """The journal cannot be written now; nothing may be acknowledged until it can."""
 
 
 # ---- command line ------------------------------------------------------------------------
@@ -100,6 +115,12 @@ def configure(p: argparse.ArgumentParser) -> None:
     p.add_argument("--metrics", metavar="HOST:PORT", help="Prometheus page address (default "
                    "127.0.0.1:9307; port 0 picks a free one)")
     p.add_argument("--state-dir", metavar="DIR", help="journal and snapshots (default ./routerd-state)")
+    p.add_argument("--server-key", metavar="FILE", help="CURVE on every ZeroMQ endpoint: the "
+                   "service's secret key file (NAME.key_secret, from routerd keys); needs --allow")
+    p.add_argument("--allow", metavar="FILE", help="allow file (YAML): reporter name -> public_key "
+                   "and the nodes it may report for; needs --server-key")
+    p.add_argument("--control-readonly", metavar="EP", help="a second control endpoint without "
+                   "CURVE for read-only ops (tables, estimates, health, nodes); default: off")
 
 
 def load_config(args: argparse.Namespace) -> _config.Config:
@@ -109,7 +130,12 @@ def load_config(args: argparse.Namespace) -> _config.Config:
     for attr, key in _FLAG_KEYS.items():
         v = getattr(args, attr, None)
         if v is not None:
-            ov[key] = v
+            ov[key] = os.path.abspath(v) if key in _PATH_KEYS else v
+    if getattr(args, "config", None):
+        for key in _PATH_KEYS:   # a config's key and allow files are relative to the config file
+            f = cfg[key]
+            if key not in ov and f and not os.path.isabs(f):
+                ov[key] = os.path.normpath(os.path.join(os.path.dirname(os.path.abspath(args.config)), f))
     if getattr(args, "topology", None):
         ov["topology.file"] = os.path.abspath(args.topology) if not args.topology.startswith(
             "topohub:") else args.topology
@@ -246,7 +272,16 @@ class Service:
         self.out = out or sys.stdout
         self.log = Log(cfg["service.log_format"])
         self.counters = _metrics.Counters(row_reasons=wire.REASONS + SERVICE_REASONS,
-                                          frame_reasons=wire.FRAME_ERRORS)
+                                          frame_reasons=wire.FRAME_ERRORS + SERVICE_FRAME_ERRORS)
+        self.guards = _guards.Guards(topo, _guards.GuardSettings.from_config(cfg))
+        self.allow: _security.Allow | None = None      # CURVE on when set
+        self.server_keys: tuple[bytes, bytes] | None = None
+        self.auth: Any = None
+        self._down: str | None = None      # why the journal cannot be written (None: it can)
+        self._turn_failed = False
+        self._next_resume = 0.0
+        self.storage_failures = 0
+        self.storage_resumed = 0
         # engine + counters vs. the metrics thread; re-entrant: a control "snapshot" runs
         # under the loop's hold of it
         self.lock = threading.RLock()
@@ -310,6 +345,7 @@ class Service:
             _metrics.parse_address(cfg["service.metrics"])   # before anything is written
         except ValueError as e:
             raise StartError(str(e)) from None
+        self._load_security()
         state_dir = cfg["service.state_dir"]
         try:
             os.makedirs(state_dir, exist_ok=True)
@@ -317,6 +353,9 @@ class Service:
             raise StartError(f"state dir {state_dir}: {e.strerror}") from None
         self._restore(state_dir)
         self.ctx = zmq.Context()
+        if self.allow is not None:
+            # the ZAP handler must run before the first CURVE socket binds
+            self.auth = _security.start_authenticator(self.ctx, self.allow)
         self._bind_all(zmq)
         self._start_metrics()
         self._install_signals()
@@ -330,12 +369,27 @@ class Service:
             gc.collect()
             gc.freeze()
 
+    def _load_security(self) -> None:
+        """Key and allow file, checked before anything binds or is written."""
+        try:
+            sk, al = _security.check_pair(self.cfg)
+            if sk is None or al is None:
+                return
+            self.server_keys = _security.load_server_key(sk)
+            self.allow = _security.load_allow(al, self.topo)
+        except InputError as e:
+            raise StartError(f"security:\n{e}") from None
+
     def _restore(self, state_dir: str) -> None:
         """Open the journal (recovery cuts a torn or corrupt tail), then the newest good
         snapshot plus the journal after it — :func:`journal.restore`, the offline path."""
         cfg = self.cfg
         want = EngineSettings.from_config(cfg)
-        snaps = _journal.SnapshotStore(_journal.snapshot_dir(state_dir))
+        self.dedup = Dedup(cfg["service.dedup_batches"], cfg["service.dedup_reporters"])
+        try:
+            snaps = _journal.SnapshotStore(_journal.snapshot_dir(state_dir))
+        except OSError as e:
+            raise StartError(f"snapshots in {state_dir}: {e}") from None
         newest = max((no for no, _ in snaps.list()), default=0)
         try:
             self.journal = _journal.Journal(
@@ -373,11 +427,14 @@ class Service:
         self.snapshots = snaps
         self.engine = r.engine
         self._last_record = self.journal.last_record
-        self._append("start", {"topology": self.topo.digest, "nodes": list(self.topo.nodes),
-                               "settings": asdict(r.engine.settings), "epoch": self.epoch})
-        if r.engine.settings != want:
-            self._reconfigure_engine(want)
-        self._commit()
+        try:
+            self._append("start", {"topology": self.topo.digest, "nodes": list(self.topo.nodes),
+                                   "settings": asdict(r.engine.settings), "epoch": self.epoch})
+            if r.engine.settings != want:
+                self._reconfigure_engine(want)
+            self._commit()
+        except StorageDown as e:
+            raise StartError(f"state dir {state_dir}: {e}") from None
 
     def _bind_all(self, zmq: Any) -> None:
         cfg = self.cfg
@@ -401,6 +458,8 @@ class Service:
                 # an ack for a peer that is gone (or whose queue is full) raises instead of
                 # vanishing, so it is counted
                 s.setsockopt(zmq.ROUTER_MANDATORY, 1)
+            if self.server_keys is not None and name != "control_ro":
+                _security.make_server(s, *self.server_keys)    # before bind
             try:
                 s.bind(ep)
             except zmq.ZMQError as e:
@@ -415,6 +474,8 @@ class Service:
             mk(zmq.PULL, "pull", cfg["service.pull"])
         mk(zmq.PUB, "publish", cfg["service.publish"], maxsize=None)
         mk(zmq.REP, "control", cfg["service.control"])
+        if cfg["security.control_readonly"]:
+            mk(zmq.REP, "control_ro", cfg["security.control_readonly"])
         self._monitor = self.sockets["ingest"].get_monitor_socket(zmq.EVENT_DISCONNECTED)
         pipe = f"inproc://routerd-stop-{id(self)}"
         self._sig_rx = self.ctx.socket(zmq.PAIR)
@@ -471,7 +532,13 @@ class Service:
             f"  pull     {self.endpoints.get('pull', na)}   PULL: the same batches, fire-and-forget",
             (f"  publish  {self.endpoints['publish']}   PUB: tables/<node>, on change and every "
              f"{self.cfg['service.publish_interval_s']:g} s"),
-            f"  control  {self.endpoints['control']}   REP: tables, estimates, health, snapshot, link, nodes",
+            (f"  control  {self.endpoints['control']}   REP: tables, estimates, health, nodes; "
+             "snapshot, link, reload" + (" (control keys only)" if self.allow is not None else "")),
+            *([(f"  control-readonly  {self.endpoints['control_ro']}   REP without CURVE: "
+                f"{', '.join(_security.READ_OPS)}")] if "control_ro" in self.endpoints else []),
+            (f"  security CURVE on every ZeroMQ endpoint; {len(self.allow)} keys allowed "
+             f"({'; '.join(_security.describe(self.allow))})" if self.allow is not None
+             else "  security off: any local peer may report (give --server-key and --allow)"),
             f"  metrics  {self.endpoints['metrics']}",
             f"  state    {os.path.abspath(self.cfg['service.state_dir'])}   (journal fsync: "
             f"{self.cfg['service.journal.fsync']}; "
@@ -491,7 +558,13 @@ class Service:
     # -- journal records (bodies are journal.py's; the service only fills them) ---------
     def _append(self, kind: str, body: Mapping[str, Any]) -> None:
         # sync=False: the loop commits once per turn (group commit) before any ack
-        self._last_record = self.journal.append(kind, body, sync=False)
+        if self.journal is None:
+            raise StorageDown(self._down or "the journal is closed")
+        try:
+            self._last_record = self.journal.append(kind, body, sync=False)
+        except (OSError, _journal.JournalError) as e:
+            self._storage_failed(f"journal append: {_os_reason(e)}")
+            raise StorageDown(self._down) from None
         if not self._unsynced:
             self._unsynced = True
             self._unsynced_since = time.monotonic()
@@ -516,18 +589,94 @@ class Service:
         """Make this turn's appends durable as the fsync policy promises (group commit):
         ``batch`` — one fsync now; ``interval`` — once ``fsync_interval_s`` has passed since
         the first unsynced append (the poll wakes for it); ``never`` — the OS decides."""
-        if not self._unsynced:
+        if not self._unsynced or self.journal is None:
             return
         pol = self.journal.fsync
-        if pol == "batch":
-            self.journal.commit()
-            self.counters.fsyncs += 1
-        elif pol == "interval":
-            if not self.journal.maybe_sync():
-                return
-            self.counters.fsyncs += 1
+        try:
+            if pol == "batch":
+                self.journal.commit()
+                self.counters.fsyncs += 1
+            elif pol == "interval":
+                if not self.journal.maybe_sync():
+                    return
+                self.counters.fsyncs += 1
+        except OSError as e:
+            self._storage_failed(f"journal fsync: {_os_reason(e)}")
+            raise StorageDown(self._down) from None
         self._unsynced = False
         self.counters.group_commits += 1
+
+    # -- storage failures ----------------------------------------------------------------
+    def _storage_failed(self, reason: str) -> None:
+        """The journal could not be written: stop acknowledging, and put the engine back to
+        what the journal holds (it may have applied a batch or a decision that is not
+        stored).  :meth:`_try_resume` reopens the journal every ``service.storage_retry_s``."""
+        first = self._down is None
+        self._down = reason
+        self._turn_failed = True
+        self._unsynced = False
+        self.storage_failures += 1
+        if first:
+            self.log.error("storage failed: not acknowledging batches until the journal can be "
+                           "written again", reason=reason,
+                           state_dir=os.path.abspath(self.cfg["service.state_dir"]))
+        j, self.journal = self.journal, None
+        if j is not None:
+            try:
+                j.close()
+            except OSError:
+                with contextlib.suppress(OSError):
+                    os.close(j._fd)   # close without the sync that just failed
+        self._rebuild_from_disk()
+        self._next_resume = time.monotonic() + self.cfg["service.storage_retry_s"]
+
+    def _rebuild_from_disk(self) -> None:
+        """Engine and duplicate windows from the state directory, read-only."""
+        cfg = self.cfg
+        fresh = Dedup(cfg["service.dedup_batches"], cfg["service.dedup_reporters"])
+        old, self.dedup = self.dedup, fresh
+        try:
+            r = _journal.restore(cfg["service.state_dir"], self.topo, EngineSettings.from_config(cfg),
+                                 on_record=self._remember_record)
+        except Exception as e:  # noqa: BLE001 - reading back failed too: keep what we have
+            self.dedup = old
+            self.log.error("storage: cannot read the state back; tables stay as they are",
+                           error=f"{type(e).__name__}: {e}")
+            return
+        if r.snapshot_record:
+            tail = self.dedup
+            self.dedup = Dedup(cfg["service.dedup_batches"], cfg["service.dedup_reporters"])
+            self.dedup.restore(r.state.get("dedup", ()))
+            self.dedup.restore(tail.export())
+        with self.lock:
+            self.engine = r.engine
+
+    def _try_resume(self) -> None:
+        if self._down is None or time.monotonic() < self._next_resume:
+            return
+        reason, dedup = self._down, self.dedup
+        self._down = None
+        try:
+            self._restore(self.cfg["service.state_dir"])
+        except StartError as e:
+            if self.journal is not None:
+                with contextlib.suppress(OSError):
+                    self.journal.close()
+                self.journal = None
+            if self._down is None:   # it failed before writing: the state in hand stands
+                self._down, self.dedup = reason, dedup
+            self._next_resume = time.monotonic() + self.cfg["service.storage_retry_s"]
+            self.log.warning("storage still unavailable", detail=str(e).replace("\n", "; "))
+            return
+        self.storage_resumed += 1
+        self._touched = True
+        self.log.info("storage back: acknowledging again", record=self._last_record,
+                      replayed=self.restored.get("replayed", 0))
+
+    def _unavailable(self, batch: int | None = None) -> bytes:
+        self.counters.refuse("unavailable")
+        return wire.encode_error(f"unavailable: the journal cannot be written ({self._down}); "
+                                 "nothing of this batch was stored, send it again later", batch)
 
     # -- the loop -------------------------------------------------------------------------
     def serve(self) -> int:
@@ -537,7 +686,8 @@ class Service:
         ingest = self.sockets["ingest"]
         pull = self.sockets.get("pull")
         control = self.sockets["control"]
-        for s in (ingest, pull, control, self._monitor, self._sig_rx):
+        control_ro = self.sockets.get("control_ro")
+        for s in (ingest, pull, control, control_ro, self._monitor, self._sig_rx):
             if s is not None:
                 poller.register(s, zmq.POLLIN)
         try:
@@ -550,8 +700,10 @@ class Service:
                 if self._reload:
                     self._reload = False
                     self._do_reload()
-                acks: list[tuple[Any, list[Any]]] = []
+                acks: list[tuple[Any, list[Any], int | None]] = []
                 reply: bytes | None = None
+                reply_ro: bytes | None = None
+                self._turn_failed = False
                 with self.lock:
                     if ingest in events:
                         self._drain(zmq, ingest, "router", acks)
@@ -559,12 +711,23 @@ class Service:
                         self._drain(zmq, pull, "pull", None)
                     if control in events:
                         reply = self._control_one(zmq, control)
+                    if control_ro is not None and control_ro in events:
+                        reply_ro = self._control_one(zmq, control_ro, readonly=True)
                 # group commit: one fsync (policy "batch") covers every batch of this turn
-                self._commit()
-                for sock, parts in acks:
+                with contextlib.suppress(StorageDown):
+                    self._commit()
+                if self._turn_failed:
+                    # something of this turn may not be stored: acknowledge none of it
+                    acks = [(sk, parts[:-1] + [self._unavailable(b)], b) for sk, parts, b in acks]
+                    if reply is not None:
+                        reply = wire.encode_error(f"unavailable: the journal cannot be written "
+                                                  f"({self._down})")
+                for sock, parts, _ in acks:
                     self._send_ack(zmq, sock, parts)
                 if reply is not None:
                     control.send(reply)
+                if reply_ro is not None:
+                    control_ro.send(reply_ro)
                 self._housekeeping()
         except Exception as e:  # noqa: BLE001 - a bug of ours: say so loudly, keep the journal consistent
             import traceback
@@ -613,9 +776,17 @@ class Service:
 
     def _drain(self, zmq: Any, sock: Any, name: str, acks: list[Any] | None) -> None:
         routed = acks is not None
+        curve = self.allow is not None
+        peer: _security.Reporter | None = None
         for _ in range(self.cfg["service.max_drain"]):
             try:
-                parts = sock.recv_multipart(zmq.NOBLOCK)
+                if curve:
+                    frames = sock.recv_multipart(zmq.NOBLOCK, copy=False)
+                    assert self.allow is not None
+                    peer = self.allow.for_user_id(_security.user_id(frames[-1]))
+                    parts = [f.bytes for f in frames]
+                else:
+                    parts = sock.recv_multipart(zmq.NOBLOCK)
             except zmq.Again:
                 return
             self.counters.batches_by_socket[name] += 1
@@ -625,30 +796,84 @@ class Service:
                 env, body = parts[:1], parts[1:]
             if body and body[0] == b"" and len(body) > 1:
                 env, body = env + [b""], body[1:]
+            bno: int | None = None
             if len(body) != 1:
                 self.counters.refuse("extra_frames")
                 out = wire.encode_error(f"extra_frames: expected one payload frame (after an "
                                         f"optional empty delimiter), got {len(body)}")
             else:
-                out = self._ingest_one(body[0])
+                out, bno = self._ingest_one(body[0], peer)
             if acks is not None:
-                acks.append((sock, env + [out]))
+                acks.append((sock, env + [out], bno))
 
-    def _ingest_one(self, payload: bytes) -> bytes:
-        eng = self.engine
-        assert eng is not None
+    def _ingest_one(self, payload: bytes, peer: _security.Reporter | None = None
+                    ) -> tuple[bytes, int | None]:
+        """One frame → its answer (and its batch number when it could be read)."""
         cfg = self.cfg
         c = self.counters
         ing = wire.decode_ingest(payload, self.topo, max_rows=cfg["service.max_rows"],
                                  max_bytes=cfg["service.max_message_bytes"])
         if isinstance(ing, wire.WireError):
             c.refuse(ing.code)
-            return wire.encode_error(ing)
+            return wire.encode_error(ing), ing.batch
+        if self.allow is not None and (peer is None or peer.name != ing.reporter):
+            c.refuse(_security.NOT_AUTHORISED)
+            who = "no allowed key" if peer is None else f"the key of reporter {peer.name!r}"
+            return wire.encode_error(f"not_authorised: the batch names reporter "
+                                     f"{wire._show(ing.reporter)} but came with {who}",
+                                     ing.batch), ing.batch
+        if self._down is not None:
+            return self._unavailable(ing.batch), ing.batch
         seen = self.dedup.get(ing.reporter, ing.batch)
         if seen is not None:
             c.batches["duplicate"] += 1
             c.reject("duplicate", ing.rows_total)
-            return wire.encode_ack(ing.batch, seen[0], seen[1])
+            return wire.encode_ack(ing.batch, seen[0], seen[1]), ing.batch
+        if not self.guards.admit(ing.reporter, ing.rows_total, time.monotonic()):
+            c.refuse(_guards.RATE_LIMITED)
+            g = self.guards.settings
+            return wire.encode_error(
+                f"rate_limited: reporter {wire._show(ing.reporter)} is over its rate "
+                f"({g.rate_batches_per_s:g} batches/s, {g.rate_rows_per_s:g} rows/s; 0 = "
+                "unlimited); nothing was applied, send it again later", ing.batch), ing.batch
+        try:
+            return self._apply_ingest(self._screen(ing, peer)), ing.batch
+        except StorageDown:
+            return self._unavailable(ing.batch), ing.batch
+
+    def _screen(self, ing: wire.Ingest, peer: _security.Reporter | None) -> wire.Ingest:
+        """Authorisation (CURVE on) and the plausibility guards: the rows that may reach
+        the engine, the others added to the batch's rejections in wire numbering."""
+        hops = ing.hops
+        rows = ing.hop_rows
+        rej = list(ing.rejected)
+        links, link_rows = ing.links, ing.link_rows
+        if peer is not None:
+            ok = _security.hop_rights(peer, hops.src)
+            if not ok.all():
+                rej += [(int(rows[i]), _security.NOT_AUTHORISED) for i in np.flatnonzero(~ok)]
+                keep = np.flatnonzero(ok)
+                hops, rows = hops.take(keep), rows[keep]
+            lok = _security.link_rights(peer, links)
+            if not all(lok):
+                rej += [(r, _security.NOT_AUTHORISED) for r, k in zip(link_rows, lok) if not k]
+                links = tuple(x for x, k in zip(links, lok) if k)
+                link_rows = tuple(r for r, k in zip(link_rows, lok) if k)
+        chk = self.guards.check(hops.src, hops.via, hops.dst, hops.latency, hops.estimate)
+        if chk.rejected or chk.clipped:
+            k = chk.keep
+            rej += [(int(rows[i]), r) for i, r in chk.rejected]
+            hops = HopBatch(hops.src[k], hops.via[k], hops.dst[k], chk.latency, hops.estimate[k])
+            rows = rows[k]
+        if hops is ing.hops and links is ing.links:
+            return ing
+        return dataclasses.replace(ing, hops=hops, hop_rows=rows, links=links,
+                                   link_rows=link_rows, rejected=tuple(rej))
+
+    def _apply_ingest(self, ing: wire.Ingest) -> bytes:
+        eng = self.engine
+        assert eng is not None
+        c = self.counters
         now = time.time()
         t0 = time.perf_counter()
         # hops first, then links: journal.apply_batch, the one order replay uses too
@@ -656,6 +881,8 @@ class Service:
         dt = time.perf_counter() - t0
         rejected = ing.rejections(res.rejected)
         accepted = res.accepted + len(ing.links)
+        # StorageDown from here: the engine holds a batch the journal lacks — the failure
+        # handler has already put the engine back to what is stored
         self._append("batch", _batch_body(ing.reporter, ing.batch, now,
                                           _accepted_part(ing.hops, res.rejected), ing.links,
                                           {"accepted": accepted, "rejected": rejected}))
@@ -679,9 +906,17 @@ class Service:
             self.counters.acks_undeliverable += 1
 
     # -- control --------------------------------------------------------------------------
-    def _control_one(self, zmq: Any, sock: Any) -> bytes | None:
+    def _control_one(self, zmq: Any, sock: Any, readonly: bool = False) -> bytes | None:
+        peer: _security.Reporter | None = None
+        curve = self.allow is not None and not readonly
         try:
-            parts = sock.recv_multipart(zmq.NOBLOCK)
+            if curve:
+                frames = sock.recv_multipart(zmq.NOBLOCK, copy=False)
+                assert self.allow is not None
+                peer = self.allow.for_user_id(_security.user_id(frames[-1]))
+                parts = [f.bytes for f in frames]
+            else:
+                parts = sock.recv_multipart(zmq.NOBLOCK)
         except zmq.Again:
             return None
         if len(parts) != 1:
@@ -692,8 +927,21 @@ class Service:
             self.counters.control_request("other", False)
             return wire.encode_error(req.reason)
         op = req["op"]
+        if readonly and op not in _security.READ_OPS:
+            self.counters.control_request(op, False)
+            return wire.encode_error(f"not_authorised: op {op!r} changes state; the read-only "
+                                     f"control endpoint serves {', '.join(_security.READ_OPS)}")
+        if curve and not _security.may_control(peer, op):
+            self.counters.control_request(op, False)
+            who = "no allowed key" if peer is None else f"the key of {peer.name!r}"
+            return wire.encode_error(f"not_authorised: op {op!r} changes state and came with "
+                                     f"{who}, which has no control right (control: true in "
+                                     "the allow file)")
         try:
             out = self._control(op, req)
+        except StorageDown as e:
+            self.counters.control_request(op, False)
+            return wire.encode_error(f"unavailable: the journal cannot be written ({e})")
         except StartError as e:  # an operation that failed for a reason we can state
             self.counters.control_request(op, False)
             return wire.encode_error(f"bad_request: {e}")
@@ -717,7 +965,11 @@ class Service:
         if op == "snapshot":
             rec = self._snapshot("request")
             return {"snapshot": {"record": rec}}
+        if op == "reload":
+            return {"reload": self._do_reload()}
         if op == "link":
+            if self._down is not None:
+                raise StorageDown(self._down)
             a, b = t.index[req["from"]], t.index[req["to"]]
             up = req["state"] == "up"
             now = time.time()
@@ -761,12 +1013,31 @@ class Service:
             "last_snapshot": None if self.last_snapshot_at is None else {
                 "record": self.last_snapshot_record, "age_s": self.snapshot_age_s()},
             "restored": dict(self.restored),
+            "storage": {"ok": self._down is None, "reason": self._down,
+                        "failures": self.storage_failures, "resumed": self.storage_resumed},
+            "guards": {"rejected": dict(self.guards.stats.rejected),
+                       "clipped": self.guards.stats.clipped,
+                       "rate_limited_batches": self.guards.stats.rate_limited_batches,
+                       "reporters_tracked": self.guards.reporters_tracked},
+            "security": {"curve": self.allow is not None,
+                         "reporters": [] if self.allow is None else
+                         [r.name for r in self.allow.reporters]},
         }
 
     # -- decisions, tables, snapshots ----------------------------------------------------
     def _housekeeping(self) -> None:
         now = time.monotonic()
         cfg = self.cfg
+        if self._down is not None:
+            # no decisions (they would be journaled) and no snapshots; tables keep going out
+            self._try_resume()
+        if self._down is not None:
+            if now >= self._next_publish_all:
+                self._queue_publish(range(self.topo.n), "interval")
+                self._next_publish_all = now + cfg["service.publish_interval_s"]
+            if self._pub_queue:
+                self._publish_due(cfg["service.publish_budget_s"])
+            return
         if self._touched and now - self._last_decide >= cfg["service.debounce_s"]:
             self._decide_and_publish(now)
         if now >= self._next_publish_all:
@@ -776,9 +1047,10 @@ class Service:
             self._next_publish_all = now + cfg["service.publish_interval_s"]
         if self._pub_queue:
             self._publish_due(cfg["service.publish_budget_s"])
-        if now >= self._next_snapshot:
+        if now >= self._next_snapshot and self._down is None:
             if self._last_record != self.last_snapshot_record:
-                self._snapshot("interval")
+                with contextlib.suppress(StartError, StorageDown):   # logged, retried next interval
+                    self._snapshot("interval")
             self._next_snapshot = now + cfg["service.snapshot_interval_s"]
 
     def _decide_and_publish(self, now_mono: float) -> None:
@@ -787,7 +1059,10 @@ class Service:
         with self.lock:
             t = time.time()
             d = eng.decide(t)
-            self._journal_tick(t)
+            try:
+                self._journal_tick(t)
+            except StorageDown:
+                return   # the engine was put back to what is stored; decide again on resume
         self._touched = False
         self._last_decide = now_mono
         if d.changed_nodes:
@@ -833,11 +1108,22 @@ class Service:
     def _snapshot(self, cause: str) -> int:
         eng = self.engine
         assert eng is not None
+        if self._down is not None or self.journal is None:
+            raise StorageDown(self._down or "the journal is closed")
         with self.lock:
             self._commit()
             state = _engine_state(eng, dedup=self.dedup.export())
             rec = self._last_record
-        self.snapshots.write(state, rec)
+        try:
+            self.snapshots.write(state, rec)
+        except OSError as e:
+            # the journal still holds everything: a failed snapshot loses nothing
+            for tmp in glob.glob(os.path.join(self.snapshots.dir, f".snap-*.tmp{os.getpid()}")):
+                with contextlib.suppress(OSError):
+                    os.unlink(tmp)
+            self.log.error("snapshot failed; the journal keeps every record", cause=cause,
+                           reason=_os_reason(e))
+            raise StartError(f"snapshot failed: {_os_reason(e)}") from None
         # retire only what every kept snapshot covers: a corrupt newest one has a fallback
         self.journal.retire_before(self.snapshots.retire_point())
         self.last_snapshot_at = time.time()
@@ -849,12 +1135,15 @@ class Service:
     # -- reload ---------------------------------------------------------------------------
     def _reconfigure_engine(self, settings: EngineSettings) -> None:
         assert self.engine is not None
+        if self.journal is None:
+            raise StorageDown(self._down or "the journal is closed")
         with self.lock:
             self.engine.reconfigure(settings)
             self._journal_config()
             self._touched = True
 
-    def _do_reload(self) -> None:
+    def _do_reload(self) -> dict[str, Any]:
+        """Re-read the config (SIGHUP, control ``reload``); what changed, or why not."""
         args = self.reload_args
         src = getattr(args, "config", None) if args is not None else None
         try:
@@ -868,15 +1157,22 @@ class Service:
             self.counters.reloads["rejected"] += 1
             self.log.error("reload rejected; keeping the running config", file=src,
                            reason=str(e).replace("\n", "; "))
-            return
-        self.cfg = merged
+            return {"applied": False, "reason": str(e)}
         assert self.engine is not None
         if settings != self.engine.settings:
-            self._reconfigure_engine(settings)
-            self._commit()
+            try:
+                self._reconfigure_engine(settings)
+                self._commit()
+            except StorageDown as e:
+                self.counters.reloads["rejected"] += 1
+                self.log.error("reload not applied: the journal cannot be written", reason=str(e))
+                return {"applied": False, "reason": f"unavailable: {e}"}
+        self.cfg = merged
+        self.guards.reconfigure(_guards.GuardSettings.from_config(merged))
         self.counters.reloads["applied"] += 1
         self.log.info("reloaded", file=src, changed=",".join(sorted(tun)) or "-",
                       needs_restart=",".join(restart) or "-")
+        return {"applied": True, "changed": sorted(tun), "needs_restart": list(restart)}
 
     # -- shutdown -------------------------------------------------------------------------
     def _shutdown(self) -> int:
@@ -885,9 +1181,15 @@ class Service:
         dog.daemon = True
         dog.start()
         try:
-            if self._touched:
-                self._decide_and_publish(time.monotonic())
-            self._snapshot("shutdown")
+            if self._down is not None:
+                self.log.warning("stopping while the journal cannot be written: no final "
+                                 "snapshot; what is stored is what was acknowledged",
+                                 reason=self._down)
+            else:
+                if self._touched:
+                    self._decide_and_publish(time.monotonic())
+                with contextlib.suppress(StartError, StorageDown):   # logged; the journal has it all
+                    self._snapshot("shutdown")
             self._pub_queue.clear()
             self._publish(range(self.topo.n), "final")
         finally:
@@ -916,13 +1218,28 @@ class Service:
             if s is not None:
                 s.close(0)
         self._sig_tx = self._sig_rx = None
+        if self.auth is not None:
+            self.auth.stop()
+            self.auth = None
         if self.ctx is not None:
             self.ctx.term()
             self.ctx = None
         if self.journal is not None:
-            self._commit()
-            self.journal.close()
-            self.journal = None
+            with contextlib.suppress(StorageDown):
+                self._commit()
+            j, self.journal = self.journal, None
+            if j is not None:
+                with contextlib.suppress(OSError):
+                    j.close()
+
+
+def _os_reason(e: BaseException) -> str:
+    """An OSError as its errno name and text (``ENOSPC: No space left on device``)."""
+    import errno
+
+    if isinstance(e, OSError) and e.errno is not None:
+        return f"{errno.errorcode.get(e.errno, e.errno)}: {e.strerror}"
+    return f"{type(e).__name__}: {e}"
 
 
 def _overdue(limit: float) -> None:

@@ -51,7 +51,7 @@ Tables (PUB), multipart::
                          "routes": {dst: [[next_hop, weight], ...]}}]
 
 Control (REP): a request ``{"op": "tables" | "estimates" | "health" | "snapshot" | "link" |
-"nodes", ...}`` (``"v": 1`` optional); replies ``{"v": 1, ...}`` or ``{"v": 1, "error": reason}``.
+"nodes" | "reload", ...}`` (``"v": 1`` optional); replies ``{"v": 1, ...}`` or ``{"v": 1, "error": reason}``.
 ``nodes`` → ``{"v": 1, "nodes": [name, ...], "topology": id}``; ``estimates`` needs
 ``"node"``; ``link`` needs ``"from"``, ``"to"``, ``"state"``.
 
@@ -110,7 +110,8 @@ FRAME_ERRORS: tuple[str, ...] = (
     "unknown_op",         # a control request with an op we do not know
 )
 
-CONTROL_OPS: tuple[str, ...] = ("tables", "estimates", "health", "snapshot", "link", "nodes")
+CONTROL_OPS: tuple[str, ...] = ("tables", "estimates", "health", "snapshot", "link", "nodes",
+                                 "reload")
 LINK_STATES: tuple[str, ...] = ("down", "up")
 TABLE_TOPIC = b"tables/"
 MAX_REPORTER_LEN = 256

@@ -475,7 +475,9 @@ def test_serve_flags_are_exactly_the_documented_ones() -> None:
     configure(p)
     flags = {s for a in p._actions for s in a.option_strings} - {"-h", "--help"}
     assert flags == {"--config", "--topology", "--ingest", "--pull", "--publish", "--control",
-                     "--metrics", "--state-dir"}
+                     "--metrics", "--state-dir",
+                     # issue 7: CURVE and the read-only control endpoint
+                     "--server-key", "--allow", "--control-readonly"}
     # with neither a config nor flags: the built-in demo lab on loopback
     c = load_config(p.parse_args([]))
     assert load_topology(c).name == "demo-lab"

@@ -1,0 +1,340 @@
+"""Plausibility guards: which decoded hop rows may reach the engine, and how fast a reporter may send.
+
+Owns the physical and statistical checks applied to a decoded batch *before*
+:meth:`routerd.engine.Engine.observe` (the service applies them; the simulator and replay
+can apply the same object to the same rows), the per-reporter token buckets, and the
+fixed set of reasons they count under.
+
+Pure: numpy and the project's topology model only — no sockets, files, clocks, metrics.
+Time comes in as ``now`` (seconds, any monotonic origin).  Must not import the engine's
+state, zmq, prometheus, the service or the simulator.
+
+Theory of operation
+-------------------
+A hop row ``(x, y, d, l, e)`` says x handed a packet for d to neighbour y, the hop took
+``l`` seconds, and y's own remaining estimate was ``e`` (NaN: absent).  Checks, in this
+order; the first one a row breaks is its reason (:data:`REASONS`):
+
+(NaN, infinite or negative values are left to the engine, which refuses them as
+``bad_latency`` / ``bad_estimate`` — one reason per fault, counted once.)
+
+``below_floor``
+    ``l < floor_fraction * delay_s(x → y)``: faster than light in the link, as the topology
+    gives its propagation delay; or ``e < floor_fraction * D(y, d)`` with ``D`` the
+    delay-shortest distance — no path from y to d is that fast.  A reporter that claims a
+    near-zero latency to attract traffic is stopped here.
+``above_ceiling``
+    ``l`` or ``e`` above ``ceiling_s``.
+``jump_held``
+    (``jump_action = "hold"``) ``l`` lies outside ``[ref / f, ref * f]`` for the link's
+    reference latency ``ref`` and ``f = jump_factor``.  The row is held back until
+    ``jump_confirm`` out-of-band samples on the same side have been seen since the link's
+    last in-band sample (counted over batches); the confirming samples are let through
+    and the reference jumps to their mean — a genuine level shift (a link that became
+    congested) gets through after ``jump_confirm`` samples, one wild sample never does.
+    With ``jump_action = "clip"`` such a row is let through with ``l`` clipped to the band
+    edge instead (counted as ``clipped``, not a rejection).
+
+The reference of a link starts at its propagation delay (when positive) and follows the
+accepted samples as an exponentially weighted mean with weight ``jump_smoothing`` per
+sample; within one batch the band is the one at the start of the batch, and the ``k``
+accepted samples of a link move the reference as ``ref ← (1-w)^k ref + (1-(1-w)^k) mean``.
+
+Rate limits: a token bucket per reporter for batches and one for rows (rate per second,
+burst capacity).  A batch that finds either bucket short is refused as a whole
+(``rate_limited``) and consumes nothing, so a reporter that slows down is served again at
+once.  The bucket table holds at most ``max_reporters`` entries (least recently seen
+forgotten first): memory stays bounded whatever names arrive.
+
+Guard state (references, pending counts, buckets) is advisory and not journaled: the
+journal records what the engine applied, after the guards, so a replay needs no guards.
+"""
+from __future__ import annotations
+
+import math
+from collections import OrderedDict
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from .topology import Topology
+
+#: Row rejection reasons added by the guards (a fixed tuple: metrics labels use it).
+REASONS: tuple[str, ...] = ("below_floor", "above_ceiling", "jump_held")
+#: Whole-batch refusal code of the rate limiter.
+RATE_LIMITED = "rate_limited"
+JUMP_ACTIONS: tuple[str, ...] = ("clip", "hold")
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class GuardSettings:
+    """Every guard tunable; 0 switches a limit off where the field says so.  Misuse raises
+    ValueError (user-facing checks are :mod:`routerd.config`'s)."""
+
+    floor_fraction: float = 1.0          # 0: no propagation floor
+    ceiling_s: float = 60.0              # inf: no ceiling
+    jump_factor: float = 0.0             # 0: no jump guard; else > 1
+    jump_action: str = "hold"
+    jump_confirm: int = 3
+    jump_smoothing: float = 0.2
+    rate_batches_per_s: float = 0.0      # 0: unlimited
+    rate_burst_batches: float = 50.0
+    rate_rows_per_s: float = 0.0         # 0: unlimited
+    rate_burst_rows: float = 1_000_000.0
+    max_reporters: int = 4096
+
+    def __post_init__(self) -> None:
+        if not (0.0 <= self.floor_fraction <= 1.0):
+            raise ValueError(f"floor_fraction {self.floor_fraction} is outside [0, 1]")
+        if not self.ceiling_s > 0:
+            raise ValueError(f"ceiling_s {self.ceiling_s} must be positive")
+        if self.jump_factor != 0 and not self.jump_factor > 1:
+            raise ValueError(f"jump_factor {self.jump_factor} must be 0 (off) or above 1")
+        if self.jump_action not in JUMP_ACTIONS:
+            raise ValueError(f"jump_action {self.jump_action!r} is not one of {JUMP_ACTIONS}")
+        if self.jump_confirm < 1:
+            raise ValueError(f"jump_confirm {self.jump_confirm} is below 1")
+        if not (0.0 < self.jump_smoothing <= 1.0):
+            raise ValueError(f"jump_smoothing {self.jump_smoothing} is outside (0, 1]")
+        for k in ("rate_batches_per_s", "rate_rows_per_s"):
+            if getattr(self, k) < 0:
+                raise ValueError(f"{k} {getattr(self, k)} is negative")
+        for k in ("rate_burst_batches", "rate_burst_rows"):
+            if not getattr(self, k) >= 1:
+                raise ValueError(f"{k} {getattr(self, k)} is below 1")
+        if self.max_reporters < 1:
+            raise ValueError(f"max_reporters {self.max_reporters} is below 1")
+
+    @classmethod
+    def from_config(cls, cfg: Any) -> GuardSettings:
+        """From a :class:`routerd.config.Config` (the ``guards.*`` keys)."""
+        ceil = cfg["guards.ceiling_s"]
+        return cls(floor_fraction=cfg["guards.floor_fraction"],
+                   ceiling_s=math.inf if ceil == 0 else ceil,
+                   jump_factor=cfg["guards.jump.factor"], jump_action=cfg["guards.jump.action"],
+                   jump_confirm=cfg["guards.jump.confirm"],
+                   jump_smoothing=cfg["guards.jump.smoothing"],
+                   rate_batches_per_s=cfg["guards.rate.batches_per_s"],
+                   rate_burst_batches=cfg["guards.rate.burst_batches"],
+                   rate_rows_per_s=cfg["guards.rate.rows_per_s"],
+                   rate_burst_rows=cfg["guards.rate.burst_rows"],
+                   max_reporters=cfg["guards.rate.max_reporters"])
+
+
+@dataclass(frozen=True, slots=True)
+class Checked:
+    """What the guards made of a batch's hop rows.
+
+    ``keep`` — indices (into the batch) of the rows that may go to the engine, in order;
+    ``latency`` — their latencies (clipped where ``jump_action`` is ``clip``);
+    ``rejected`` — ``(index, reason)`` of the others, in index order;
+    ``clipped`` — how many kept rows had their latency clipped."""
+
+    keep: np.ndarray
+    latency: np.ndarray
+    rejected: tuple[tuple[int, str], ...]
+    clipped: int = 0
+
+
+@dataclass
+class _Bucket:
+    batches: float
+    rows: float
+    at: float
+
+
+@dataclass
+class GuardStats:
+    """Counts since start, by reason (rejections), plus clipped rows and refused batches."""
+
+    rejected: dict[str, int] = field(default_factory=lambda: dict.fromkeys(REASONS, 0))
+    clipped: int = 0
+    rate_limited_batches: int = 0
+    rate_limited_rows: int = 0
+
+
+class Guards:
+    """The guards of one topology.  :meth:`check` filters hop rows, :meth:`admit` applies
+    the rate limits; both take ``now`` from the caller."""
+
+    def __init__(self, topo: Topology, settings: GuardSettings | None = None):
+        self.topo = topo
+        self.settings = settings or GuardSettings()
+        n = topo.n
+        self._n = n
+        # link index per (x, y), -1 where y is not a neighbour of x
+        lk = np.full((n, n), -1, dtype=np.int64)
+        if topo.n_links:
+            lk[np.asarray(topo.src, dtype=np.int64), np.asarray(topo.dst, dtype=np.int64)] = \
+                np.arange(topo.n_links)
+        self._link = lk
+        self._delay = np.asarray(topo.delay_s, dtype=np.float64)
+        self._dist = np.asarray(topo.shortest_delays(), dtype=np.float64)
+        self._ref = np.where(self._delay > 0, self._delay, np.nan)
+        self._pending = np.zeros((max(topo.n_links, 1), 2), dtype=np.int64)   # side 0 low, 1 high
+        self._buckets: OrderedDict[str, _Bucket] = OrderedDict()
+        self.stats = GuardStats()
+
+    def reconfigure(self, settings: GuardSettings) -> None:
+        self.settings = settings
+        while len(self._buckets) > settings.max_reporters:
+            self._buckets.popitem(last=False)
+
+    # ---- rate limits ------------------------------------------------------------------
+    def admit(self, reporter: str, rows: int, now: float) -> bool:
+        """True when ``reporter`` may send a batch of ``rows`` rows at ``now`` (the tokens are
+        taken); False: refuse the batch as :data:`RATE_LIMITED` (nothing is taken)."""
+        s = self.settings
+        if s.rate_batches_per_s <= 0 and s.rate_rows_per_s <= 0:
+            return True
+        b = self._buckets.get(reporter)
+        if b is None:
+            b = self._buckets[reporter] = _Bucket(s.rate_burst_batches, s.rate_burst_rows, now)
+            while len(self._buckets) > s.max_reporters:
+                self._buckets.popitem(last=False)
+        else:
+            self._buckets.move_to_end(reporter)
+            dt = max(0.0, now - b.at)
+            b.batches = min(s.rate_burst_batches, b.batches + dt * s.rate_batches_per_s)
+            b.rows = min(s.rate_burst_rows, b.rows + dt * s.rate_rows_per_s)
+            b.at = max(b.at, now)
+        ok_b = s.rate_batches_per_s <= 0 or b.batches >= 1.0
+        # a batch larger than the whole row burst could never pass: it passes on a full bucket
+        need = min(float(rows), s.rate_burst_rows)
+        ok_r = s.rate_rows_per_s <= 0 or b.rows >= need
+        if not (ok_b and ok_r):
+            self.stats.rate_limited_batches += 1
+            self.stats.rate_limited_rows += int(rows)
+            return False
+        if s.rate_batches_per_s > 0:
+            b.batches -= 1.0
+        if s.rate_rows_per_s > 0:
+            b.rows -= need
+        return True
+
+    @property
+    def reporters_tracked(self) -> int:
+        return len(self._buckets)
+
+    # ---- hop rows -----------------------------------------------------------------------
+    def check(self, src: np.ndarray, via: np.ndarray, dst: np.ndarray, latency: np.ndarray,
+              estimate: np.ndarray) -> Checked:
+        """Apply the plausibility guards to hop rows given as columns (indices, seconds;
+        ``estimate`` NaN = absent).  Rows with indices out of range or a ``via`` that is not
+        a neighbour are passed through untouched: the engine names those."""
+        s = self.settings
+        src = np.asarray(src, dtype=np.int64)
+        via = np.asarray(via, dtype=np.int64)
+        dst = np.asarray(dst, dtype=np.int64)
+        lat = np.asarray(latency, dtype=np.float64)
+        est = np.asarray(estimate, dtype=np.float64)
+        m = src.shape[0]
+        code = np.full(m, -1, dtype=np.int64)
+        if m == 0:
+            return Checked(np.empty(0, np.int64), np.empty(0), ())
+        n = self._n
+        ok_ix = (src >= 0) & (src < n) & (via >= 0) & (via < n) & (dst >= 0) & (dst < n)
+        link = np.full(m, -1, dtype=np.int64)
+        link[ok_ix] = self._link[src[ok_ix], via[ok_ix]]
+        known = link >= 0
+
+        def mark(mask: np.ndarray, reason: int) -> None:
+            code[mask & (code == -1)] = reason
+
+        # values the engine refuses itself (NaN, inf, negative) are its to name
+        engine_bad = ~np.isfinite(lat) | (lat < 0) | np.isinf(est) | (est < 0)
+        code[engine_bad] = -2
+        with np.errstate(invalid="ignore"):
+            if s.floor_fraction > 0:
+                floor_l = np.zeros(m)
+                floor_l[known] = s.floor_fraction * self._delay[link[known]]
+                low = known & (lat < floor_l)
+                has_e = known & ~np.isnan(est) & (via != dst)
+                floor_e = np.zeros(m)
+                floor_e[has_e] = s.floor_fraction * self._dist[via[has_e], dst[has_e]]
+                low |= has_e & (est < floor_e)
+                mark(low, 0)
+            mark((lat > s.ceiling_s) | (est > s.ceiling_s), 1)
+        out_lat = lat.copy()
+        clipped = 0
+        if s.jump_factor > 0:
+            clipped = self._jumps(code, link, known, out_lat)
+        keep = np.flatnonzero(code < 0)
+        bad = np.flatnonzero(code >= 0)
+        code[code == -2] = -1
+        rejected = tuple((int(i), REASONS[int(code[i])]) for i in bad)
+        for _, r in rejected:
+            self.stats.rejected[r] += 1
+        self.stats.clipped += clipped
+        return Checked(keep, out_lat[keep], rejected, clipped)
+
+    def _jumps(self, code: np.ndarray, link: np.ndarray, known: np.ndarray,
+               out_lat: np.ndarray) -> int:
+        """The jump guard (module docstring): marks held rows in ``code`` (reason 3), clips
+        ``out_lat`` in clip mode, updates references and pending counts.  Rows marked -2 (the
+        engine's to refuse) are not looked at.  Returns rows clipped."""
+        s = self.settings
+        f = s.jump_factor
+        cand = np.flatnonzero(known & (code == -1))
+        if cand.size == 0:
+            return 0
+        lk = link[cand]
+        ref = self._ref[lk]
+        lat = out_lat[cand]
+        has_ref = ~np.isnan(ref)
+        with np.errstate(invalid="ignore"):
+            lo_b = np.where(has_ref, ref / f, -np.inf)
+            hi_b = np.where(has_ref, ref * f, np.inf)
+        side = np.where(lat < lo_b, 0, np.where(lat > hi_b, 1, -1))
+        clipped = 0
+        confirmed = np.zeros(cand.size, dtype=bool)
+        if s.jump_action == "clip":
+            out = side >= 0
+            clipped = int(out.sum())
+            lat = np.clip(lat, lo_b, hi_b)
+            out_lat[cand] = lat
+        else:
+            out = np.flatnonzero(side >= 0)
+            if out.size:
+                # 1-based rank of each out-of-band row among its (link, side) group, in order
+                key = lk[out] * 2 + side[out]
+                order = np.argsort(key, kind="stable")
+                ks = key[order]
+                starts = np.r_[0, np.flatnonzero(np.diff(ks)) + 1]
+                group_start = np.repeat(starts, np.diff(np.r_[starts, ks.size]))
+                rank = np.empty(out.size, dtype=np.int64)
+                rank[order] = np.arange(ks.size) - group_start + 1
+                before = self._pending[lk[out], side[out]]
+                conf = before + rank >= s.jump_confirm
+                confirmed[out[conf]] = True
+                held = out[~conf]
+                code[cand[held]] = 2
+        # references and pending counts, per link
+        w = s.jump_smoothing
+        inband = side < 0
+        if s.jump_action == "clip":
+            inband = np.ones(cand.size, dtype=bool)     # every clipped row is let through
+        for L in np.unique(lk).tolist():
+            on = lk == L
+            c = on & confirmed
+            if c.any():
+                self._ref[L] = float(lat[c].mean())
+                self._pending[L] = 0
+                continue
+            ib = on & inband
+            k = int(ib.sum())
+            if k:
+                mean = float(lat[ib].mean())
+                r = self._ref[L]
+                a = (1.0 - w) ** k
+                self._ref[L] = mean if math.isnan(r) else a * r + (1.0 - a) * mean
+                self._pending[L] = 0
+            if s.jump_action == "hold":
+                for sd in (0, 1):
+                    self._pending[L, sd] += int((on & (side == sd)).sum())
+        return clipped
+
+    def reference_s(self, link: int) -> float:
+        """The jump guard's current reference latency of ``link`` (NaN: none yet)."""
+        return float(self._ref[link])
