@@ -702,13 +702,9 @@ class Engine:
         sel: Any = slice(None) if m == n else ds       # a view, not a copy, when all are due
         xs = np.arange(n)
         live2 = self.live                                           # (n, K)
-        q = np.where(live2[:, None, :], self.Q[:, sel, :], np.inf)  # (n, m, K)
-        best, bestv = _argmin_last(q)                               # (n, m)
+        best, bestv = self._best_live(sel, m)                       # (n, m)
         inc = self.greedy[:, sel]
-        qf = q.reshape(n * m, K)
-        cell = np.arange(n * m)
-        incv = qf[cell, np.maximum(inc, 0).ravel()].reshape(n, m)
-        incv = np.where(inc >= 0, incv, np.inf)
+        incv = self._q_at(ds, inc)
         keep = np.isfinite(incv) & ~(bestv < incv * (1.0 - s.margin))
         choice = np.where(keep, inc, best)
         choice = np.where(np.isfinite(bestv), choice, -1)
@@ -748,22 +744,24 @@ class Engine:
         else:  # unreachable: the live shortest-path tree has no loop (ties break by hops)
             raise AssertionError("loop fallback did not converge")
         choice = np.where(nh.T >= 0, self._slot_of[xs[:, None], np.maximum(nh.T, 0)], -1).astype(np.int64)
-        # exploration candidates: strictly lower (depth, index) potential, live, not greedy
+        # exploration candidates: strictly lower (depth, index) potential, live, not greedy.
+        # potential = depth * n + node (depth n + 1 = cannot reach d), so "lower" is one
+        # integer compare; a candidate must also reach d (potential below (n + 1) * n)
         dep = _loops.depths(nh, ds).T                                # (n, m): depth of x for ds[i]
-        ys = np.maximum(self._slots, 0)                              # (n, K)
+        pot = dep.astype(np.int64) * n + xs[:, None]
         routed = choice >= 0
-        alt = np.zeros((n, m, K), dtype=bool)
-        any_alt = np.zeros((n, m), dtype=bool)
+        bound = np.where(routed, np.minimum(pot, (n + 1) * n), -1)  # unrouted: no candidate
+        pot_ext = np.vstack([pot, np.full((1, m), np.iinfo(np.int64).max)])  # row n: never lower
+        ys = np.where(live2, self._slots, n)                         # dead or absent -> row n
+        altk = np.empty((K, n, m), dtype=bool)
         for c in range(K):
-            yc = ys[:, c]
-            dy = dep[yc]                                             # (n, m)
-            lower = (dy < dep) | ((dy == dep) & (yc < xs)[:, None])
-            a = lower & (dy <= n) & (choice != c) & routed & live2[:, c][:, None]
-            alt[:, :, c] = a
-            any_alt |= a
+            np.less(pot_ext[ys[:, c]], bound, out=altk[c])
+            altk[c] &= choice != c
+        any_alt = altk.any(axis=0)
+        alt = np.ascontiguousarray(altk.transpose(1, 2, 0))          # (n, m, K)
         # exploration share per (x, d)
         if s.explore_basis == "td":
-            vx = qf[cell, np.maximum(choice, 0).ravel()].reshape(n, m)
+            vx = self._q_at(ds, choice)
             rel = self.td[:, sel] / np.maximum(np.where(np.isfinite(vx), vx, s.ceiling_s), 1e-12)
             frac = np.minimum(1.0, rel / s.td_ref)
         else:
@@ -788,6 +786,42 @@ class Engine:
         self.eps[:, sel] = eps
         nodes = frozenset(np.flatnonzero(changed_w.any(axis=1)).tolist())
         return Decision(nodes, int(changed_g.sum()), prevented)
+
+    def _best_live(self, sel: Any, m: int) -> tuple[np.ndarray, np.ndarray]:
+        """(slot, value) of the lowest live estimate per (node, destination in sel).
+
+        Works through Q in blocks of nodes small enough to stay in cache, one slot
+        column at a time (first slot on ties, like ``np.argmin``); dead slots count as inf.
+        """
+        n, K = self.n, self.k
+        best = np.zeros((n, m), dtype=np.int64)
+        bestv = np.empty((n, m))
+        live = self.live
+        step = max(1, (1 << 19) // max(1, m * K))   # about 4 MB of Q per block
+        for x0 in range(0, n, step):
+            x1 = min(n, x0 + step)
+            qb = self.Q[x0:x1, sel, :]
+            bb, bv = best[x0:x1], bestv[x0:x1]
+            for c in range(K):
+                col = qb[:, :, c]
+                lc = live[x0:x1, c]
+                if not lc.all():
+                    col = np.where(lc[:, None], col, np.inf)
+                if c == 0:
+                    bv[:] = col
+                    continue
+                bb[col < bv] = c
+                np.minimum(bv, col, out=bv)
+        return best, bestv
+
+    def _q_at(self, ds: np.ndarray, slot: np.ndarray) -> np.ndarray:
+        """Q[x, ds[i], slot[x, i]] where that slot is live, else inf (slot -1: inf)."""
+        n, K = self.n, self.k
+        xs = np.arange(n)[:, None]
+        sl = np.maximum(slot, 0)
+        v = _flat(self.Q).take((xs * n + ds[None, :]) * K + sl)
+        ok = (slot >= 0) & _flat(self.live).take(xs * K + sl)
+        return np.where(ok, v, np.inf)
 
     # ---- statistics and state ---------------------------------------------------------
     def exploration_share(self) -> float:
@@ -860,17 +894,6 @@ def _flat(a: np.ndarray) -> np.ndarray:
     if not a.flags.c_contiguous:
         raise RuntimeError("engine state array is not C-contiguous")
     return a.reshape(-1)
-
-
-def _argmin_last(q: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """(argmin, min) over the last (short) axis, first index on ties, like ``np.argmin``."""
-    bestv = q[..., 0].copy()
-    best = np.zeros(bestv.shape, dtype=np.int64)
-    for c in range(1, q.shape[-1]):
-        col = q[..., c]
-        best[col < bestv] = c
-        np.minimum(bestv, col, out=bestv)
-    return best, bestv
 
 
 def _row_min(g: np.ndarray) -> np.ndarray:

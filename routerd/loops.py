@@ -31,11 +31,12 @@ def _successor(nh: np.ndarray) -> np.ndarray:
     """
     m, n = nh.shape
     w = n + 1
-    f = np.empty((m, w), dtype=np.int64)
+    it = np.int32 if m * w < 2 ** 31 else np.int64   # half the memory traffic when it fits
+    f = np.empty((m, w), dtype=it)
     f[:, :n] = nh
     f[:, n] = n
     f[f < 0] = n
-    f += (np.arange(m, dtype=np.int64) * w)[:, None]
+    f += (np.arange(m, dtype=it) * w)[:, None]
     return f.reshape(-1)
 
 
@@ -96,13 +97,14 @@ def depths(nh: np.ndarray, dests: np.ndarray) -> np.ndarray:
         return np.zeros((0, n), dtype=np.int64)
     r = np.arange(m)
     f = _successor(nh)
-    dflat = r * w + np.asarray(dests, dtype=np.int64)
+    dflat = (r * w + np.asarray(dests, dtype=np.int64)).astype(f.dtype)
     f[dflat] = dflat  # the destination absorbs
-    hop = np.ones(m * w, dtype=np.int64)
+    hop = np.ones(m * w, dtype=np.int32)  # saturates below: at most n + 1 is kept
     hop[dflat] = 0
     hop[r * w + n] = 0
+    cap = n + 1
     for _ in range(_jumps(n + 1)):
-        hop = hop + hop.take(f)
+        hop = np.minimum(hop + hop.take(f), cap)  # capped: no overflow however long
         f = f.take(f)
     reached = (f == np.repeat(dflat, w)).reshape(m, w)[:, :n]
     return np.where(reached, np.minimum(hop.reshape(m, w)[:, :n], n + 1), n + 1)
