@@ -283,15 +283,16 @@ class Engine:
     def _initial_q(self) -> np.ndarray:
         n, k = self.n, self.k
         s = self.settings
-        if s.initial_mode == "shortest":
-            ys = np.maximum(self._slots, 0)
-            # Q[x, d, j] = delay(x, y_j) + D(y_j, d)
-            q = self._link_delay[:, None, :] + self._static_dist[ys].transpose(0, 2, 1)
-        else:
-            q = np.full((n, n, k), s.initial_value_s)
-        q = np.where(self._present[:, None, :], q, np.inf)
-        # C order: the update paths index flat views of Q
-        return np.ascontiguousarray(np.minimum(q, s.ceiling_s))
+        ys = np.maximum(self._slots, 0)
+        q = np.empty((n, n, k))  # C order: the update paths index flat views of Q
+        for c in range(k):  # one slot column at a time: no (n, K, n) temporary
+            if s.initial_mode == "shortest":
+                # Q[x, d, j] = delay(x, y_j) + D(y_j, d)
+                col = self._link_delay[:, c, None] + self._static_dist[ys[:, c]]
+            else:
+                col = np.full((n, n), s.initial_value_s)
+            q[:, :, c] = np.where(self._present[:, c, None], np.minimum(col, s.ceiling_s), np.inf)
+        return q
 
     def reconfigure(self, settings: EngineSettings) -> None:
         """Adopt new tunables (a reload), keeping all learned state."""
