@@ -29,8 +29,9 @@ order; the first one a row breaks is its reason (:data:`REASONS`):
     (``jump_action = "hold"``) ``l`` lies outside ``[ref / f, ref * f]`` for the link's
     reference latency ``ref`` and ``f = jump_factor``.  The row is held back until
     ``jump_confirm`` out-of-band samples on the same side have been seen since the link's
-    last in-band sample (counted over batches); the confirming samples are let through
-    and the reference jumps to their mean — a genuine level shift (a link that became
+    last in-band sample (counted in row order, across batches); from the confirming
+    sample on, that side's samples of the batch are let through and the reference jumps
+    to their mean — a genuine level shift (a link that became
     congested) gets through after ``jump_confirm`` samples, one wild sample never does.
     With ``jump_action = "clip"`` such a row is let through with ``l`` clipped to the band
     edge instead (counted as ``clipped``, not a rejection).
@@ -271,7 +272,7 @@ class Guards:
 
     def _jumps(self, code: np.ndarray, link: np.ndarray, known: np.ndarray,
                out_lat: np.ndarray) -> int:
-        """The jump guard (module docstring): marks held rows in ``code`` (reason 3), clips
+        """The jump guard (module docstring): marks held rows in ``code`` (reason 2), clips
         ``out_lat`` in clip mode, updates references and pending counts.  Rows marked -2 (the
         engine's to refuse) are not looked at.  Returns rows clipped."""
         s = self.settings
@@ -295,21 +296,25 @@ class Guards:
             lat = np.clip(lat, lo_b, hi_b)
             out_lat[cand] = lat
         else:
-            out = np.flatnonzero(side >= 0)
-            if out.size:
-                # 1-based rank of each out-of-band row among its (link, side) group, in order
-                key = lk[out] * 2 + side[out]
-                order = np.argsort(key, kind="stable")
-                ks = key[order]
-                starts = np.r_[0, np.flatnonzero(np.diff(ks)) + 1]
-                group_start = np.repeat(starts, np.diff(np.r_[starts, ks.size]))
-                rank = np.empty(out.size, dtype=np.int64)
-                rank[order] = np.arange(ks.size) - group_start + 1
-                before = self._pending[lk[out], side[out]]
-                conf = before + rank >= s.jump_confirm
-                confirmed[out[conf]] = True
-                held = out[~conf]
-                code[cand[held]] = 2
+            # links with in-band samples only: their pending counts start over
+            odd = np.unique(lk[side >= 0])
+            self._pending[np.setdiff1d(np.unique(lk[side < 0]), odd)] = 0
+            # in row order per link (out-of-band rows are rare: a loop over their links only)
+            for L in odd.tolist():
+                p = self._pending[L].copy()
+                shifted = [False, False]
+                for i in np.flatnonzero(lk == L).tolist():
+                    sd = int(side[i])
+                    if sd < 0:
+                        p[:] = 0
+                        continue
+                    p[sd] += 1
+                    if shifted[sd] or p[sd] >= s.jump_confirm:
+                        confirmed[i] = True
+                        shifted[sd] = True
+                    else:
+                        code[cand[i]] = 2
+                self._pending[L] = 0 if any(shifted) else p
         # references and pending counts, per link
         w = s.jump_smoothing
         inband = side < 0
@@ -320,7 +325,6 @@ class Guards:
             c = on & confirmed
             if c.any():
                 self._ref[L] = float(lat[c].mean())
-                self._pending[L] = 0
                 continue
             ib = on & inband
             k = int(ib.sum())
@@ -329,10 +333,6 @@ class Guards:
                 r = self._ref[L]
                 a = (1.0 - w) ** k
                 self._ref[L] = mean if math.isnan(r) else a * r + (1.0 - a) * mean
-                self._pending[L] = 0
-            if s.jump_action == "hold":
-                for sd in (0, 1):
-                    self._pending[L, sd] += int((on & (side == sd)).sum())
         return clipped
 
     def reference_s(self, link: int) -> float:
