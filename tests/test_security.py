@@ -1,0 +1,332 @@
+"""routerd.security: key pairs, the allow file, CURVE on every endpoint, reporters bound to their nodes."""
+from __future__ import annotations
+
+import os
+import shutil
+import stat
+import subprocess
+import sys
+import textwrap
+from collections.abc import Iterator
+from typing import Any
+
+import msgpack
+import pytest
+import zmq
+import zmq.auth
+
+from routerd import security, service
+from routerd import topology as T
+from routerd.errors import InputError
+from service_harness import ServiceProc, service_args, short_base
+
+DEMO = os.path.join(os.path.dirname(__file__), "..", "routerd", "data", "demo-lab.yaml")
+
+
+def _demo() -> T.Topology:
+    return T.load(DEMO)
+
+
+def _routerd(*args: str) -> subprocess.CompletedProcess[str]:
+    return subprocess.run([sys.executable, "-m", "routerd", *args], capture_output=True,
+                          text=True, timeout=60)
+
+
+# ---- keys ------------------------------------------------------------------------------------
+def test_keys_command_writes_a_zeromq_certificate_pair(tmp_path: Any) -> None:
+    out = tmp_path / "k"
+    r = _routerd("keys", "--out", str(out), "agent-w1")
+    assert r.returncode == 0, r.stderr
+    pub, sec = out / "agent-w1.key", out / "agent-w1.key_secret"
+    # pyzmq's own reader is the reference for the certificate format
+    p1, s1 = zmq.auth.load_certificate(str(pub))
+    p2, s2 = zmq.auth.load_certificate(str(sec))
+    assert s1 is None and p1 == p2 and s2 is not None and len(p1) == 40
+    assert stat.S_IMODE(os.stat(sec).st_mode) == 0o600
+    assert p1.decode() in r.stdout
+    again = _routerd("keys", "--out", str(out), "agent-w1")
+    assert again.returncode == 2 and "refusing to overwrite" in again.stderr
+    assert _routerd("keys", "--out", str(out), "agent-w1", "--force").returncode == 0
+    assert zmq.auth.load_certificate(str(pub))[0] != p1
+    bad = _routerd("keys", "--out", str(out), "../evil")
+    assert bad.returncode == 2 and "plain file name" in bad.stderr
+    assert "NAME.key_secret" in _routerd("keys", "--help").stdout
+
+
+def test_server_key_must_hold_a_secret(tmp_path: Any) -> None:
+    pub, sec = security.create_keys(str(tmp_path), "svc")
+    assert security.load_server_key(sec)[1]
+    with pytest.raises(InputError, match="holds no secret key"):
+        security.load_server_key(pub)
+    with pytest.raises(InputError, match="no such key file"):
+        security.load_server_key(str(tmp_path / "nope.key_secret"))
+    (tmp_path / "empty.key_secret").write_text("")
+    with pytest.raises(InputError, match="empty"):
+        security.load_server_key(str(tmp_path / "empty.key_secret"))
+    with pytest.raises(InputError, match="is a directory"):
+        security.load_server_key(str(tmp_path))
+
+
+# ---- allow file ------------------------------------------------------------------------------
+def _keys(d: Any, *names: str) -> dict[str, str]:
+    out = {}
+    for n in names:
+        pub, _ = security.create_keys(str(d), n)
+        out[n] = security.read_public(pub).decode()
+    return out
+
+
+def test_allow_file_reads_keys_inline_and_from_files(tmp_path: Any) -> None:
+    k = _keys(tmp_path / "keys", "w1", "ops")
+    f = tmp_path / "allow.yaml"
+    f.write_text(textwrap.dedent(f"""\
+        w1:
+          public_key: "{k['w1']}"
+          nodes: [w1, w2]
+        ops:
+          public_key: keys/ops.key
+          nodes: []
+          control: true
+        """))
+    a = security.load_allow(str(f), _demo())
+    assert len(a) == 2
+    assert a.by_name["w1"].nodes == ("w1", "w2") and not a.by_name["w1"].control
+    assert a.by_name["ops"].control and a.by_name["ops"].public_key.decode() == k["ops"]
+    assert a.for_user_id(k["w1"]).name == "w1"
+    assert a.for_user_id("x" * 40) is None and a.for_user_id(None) is None
+    assert a.callback("", k["w1"].encode()) and not a.callback("", b"y" * 40)
+
+
+def test_allow_file_errors_name_file_line_and_key(tmp_path: Any) -> None:
+    k = _keys(tmp_path, "a", "b")
+    f = tmp_path / "allow.yaml"
+    f.write_text(textwrap.dedent(f"""\
+        a:
+          public_key: "{k['a']}"
+          nodes: [w1, nowhere]
+        b:
+          public_key: "{k['a']}"
+          nodes: w2
+        c:
+          public_key: "not a key"
+          nodes: []
+          colour: blue
+        d:
+          nodes: []
+          control: "yes"
+        """))
+    with pytest.raises(InputError) as ei:
+        security.load_allow(str(f), _demo())
+    msg = str(ei.value)
+    assert f"{f}:3: a.nodes: 'nowhere' is not a node of topology 'demo-lab'" in msg
+    assert f"{f}:5: b.public_key" in msg and "also the key of 'a'" in msg
+    assert f"{f}:6: b.nodes: 'w2' must be a list of node names" in msg
+    assert f"{f}:8: c.public_key: 'not a key' is neither a Z85 key" in msg
+    assert f"{f}:10: c.colour" in msg
+    assert f"{f}:11: d" in msg and "has no public_key" in msg
+    assert f"{f}:13: d.control" in msg
+
+
+def test_missing_empty_or_twice_listed_allow_files_stop(tmp_path: Any) -> None:
+    with pytest.raises(InputError, match="no such allow file"):
+        security.load_allow(str(tmp_path / "none.yaml"), _demo())
+    (tmp_path / "e.yaml").write_text("# nobody yet\n")
+    with pytest.raises(InputError, match="lists no reporters"):
+        security.load_allow(str(tmp_path / "e.yaml"), _demo())
+    (tmp_path / "l.yaml").write_text("- a\n- b\n")
+    with pytest.raises(InputError, match="must map reporter names"):
+        security.load_allow(str(tmp_path / "l.yaml"), _demo())
+    k = _keys(tmp_path, "a", "b")
+    (tmp_path / "d.yaml").write_text(f"a: {{public_key: '{k['a']}', nodes: []}}\n"
+                                     f"a: {{public_key: '{k['b']}', nodes: []}}\n")
+    with pytest.raises(InputError, match=r"d.yaml:2: a: 'a' is listed twice"):
+        security.load_allow(str(tmp_path / "d.yaml"), _demo())
+
+
+def test_rights_follow_the_nodes() -> None:
+    import numpy as np
+
+    t = _demo()
+    mask = np.zeros(t.n, dtype=bool)
+    mask[t.index["w1"]] = True
+    rep = security.Reporter("w1", b"k" * 40, ("w1",), mask)
+    w1, w2, w3 = (t.index[x] for x in ("w1", "w2", "w3"))
+    assert security.hop_rights(rep, np.array([w1, w2, w1, 99, -1])).tolist() == \
+        [True, False, True, False, False]
+    assert security.link_rights(rep, [(w1, w2, True), (w2, w1, False), (w2, w3, True)]) == \
+        [True, True, False]
+    assert security.may_control(rep, "health") and not security.may_control(rep, "link")
+    assert not security.may_control(None, "health")
+    ops = security.Reporter("ops", b"o" * 40, (), mask, control=True)
+    assert all(security.may_control(ops, op) for op in security.STATE_OPS)
+
+
+# ---- start-up ------------------------------------------------------------------------------
+@pytest.mark.slow
+def test_serve_refuses_to_start_without_a_usable_key_or_allow_file(tmp_path: Any) -> None:
+    base = short_base(tmp_path)
+    try:
+        _, sec = security.create_keys(base, "svc")
+        (tmp_path / "empty.yaml").write_text("")
+        cases = [
+            (["--server-key", sec], "needs both --server-key and --allow"),
+            (["--allow", str(tmp_path / "empty.yaml")], "needs both"),
+            (["--server-key", sec, "--allow", str(tmp_path / "none.yaml")], "no such allow file"),
+            (["--server-key", sec, "--allow", str(tmp_path / "empty.yaml")], "lists no reporters"),
+            (["--server-key", os.path.join(base, "svc.key"), "--allow", str(tmp_path / "empty.yaml")],
+             "holds no secret key"),
+        ]
+        for extra, want in cases:
+            r = _routerd("serve", *service_args(base), *extra)
+            assert r.returncode == 2, (extra, r.stderr)
+            assert "cannot start" in r.stderr and want in r.stderr, (extra, r.stderr)
+            assert not os.path.exists(os.path.join(base, "state")), "wrote state before checking keys"
+    finally:
+        shutil.rmtree(base, ignore_errors=True)
+
+
+# ---- a running CURVE service -------------------------------------------------------------
+class Curve:
+    """A CURVE service on ipc:// with reporters w1 (node w1), e3 (node e3), ops (control)."""
+
+    def __init__(self, base: str, tmp: Any, *extra: str):
+        kd = os.path.join(base, "keys")
+        _, self.server_secret = security.create_keys(kd, "svc")
+        self.server_public = security.read_public(os.path.join(kd, "svc.key"))
+        self.secrets = {}
+        for n in ("w1", "e3", "ops", "stranger"):
+            self.secrets[n] = security.create_keys(kd, n)[1]
+        allow = os.path.join(base, "allow.yaml")
+        with open(allow, "w") as fh:
+            fh.write("w1: {public_key: keys/w1.key, nodes: [w1]}\n"
+                     "e3: {public_key: keys/e3.key, nodes: [e3]}\n"
+                     "ops: {public_key: keys/ops.key, nodes: [], control: true}\n")
+        self.ctx = zmq.Context()
+        self.sp = ServiceProc(base, service_args(base, "--server-key", self.server_secret,
+                                                 "--allow", allow, *extra))
+        for line in self.sp.stdout_lines:
+            if line.startswith("  control-readonly"):
+                self.sp.endpoints["control_ro"] = line.split()[1]
+
+    def sock(self, kind: int, name: str, who: str | None, timeout_ms: int = 5000) -> Any:
+        s = self.ctx.socket(kind)
+        s.linger = 0
+        s.rcvtimeo = timeout_ms
+        s.sndtimeo = timeout_ms
+        if who is not None:
+            security.make_client(s, self.secrets[who], self.server_public)
+        s.connect(self.sp.endpoints[name])
+        return s
+
+    def send(self, who: str | None, obj: dict[str, Any], timeout_ms: int = 5000) -> dict[str, Any]:
+        s = self.sock(zmq.DEALER, "ingest", who, timeout_ms)
+        try:
+            s.send_multipart([b"", msgpack.packb(obj, use_bin_type=True)])
+            return msgpack.unpackb(s.recv_multipart()[-1], raw=False)
+        finally:
+            s.close(0)
+
+    def control(self, who: str | None, req: dict[str, Any], name: str = "control",
+                timeout_ms: int = 5000) -> dict[str, Any]:
+        s = self.sock(zmq.REQ, name, who, timeout_ms)
+        try:
+            s.send(msgpack.packb(req, use_bin_type=True))
+            return msgpack.unpackb(s.recv(), raw=False)
+        finally:
+            s.close(0)
+
+    def close(self) -> None:
+        self.sp.kill()
+        self.ctx.destroy(0)
+
+
+@pytest.fixture
+def curve(tmp_path: Any) -> Iterator[Curve]:
+    base = short_base(tmp_path)
+    c = Curve(base, tmp_path, "--control-readonly", f"ipc://{base}/ro")
+    try:
+        yield c
+    finally:
+        c.close()
+        shutil.rmtree(base, ignore_errors=True)
+
+
+def _batch(rep: str, n: int, hops: list[list[Any]], links: list[list[Any]] = ()) -> dict[str, Any]:
+    return {"v": 1, "reporter": rep, "batch": n, "hops": hops, "links": list(links)}
+
+
+@pytest.mark.slow
+def test_curve_service_binds_reporters_to_their_nodes(curve: Curve) -> None:
+    assert any("CURVE on every ZeroMQ endpoint; 3 keys allowed" in ln for ln in curve.sp.stdout_lines)
+    ack = curve.send("w1", _batch("w1", 1, [["w1", "w2", "e1", 0.01], ["w2", "w1", "e1", 0.01],
+                                            ["w1", "w6", "e6", 0.01]],
+                                  [["w1", "w2", "down"], ["w3", "e3", "down"], ["w2", "w1", "up"]]))
+    # rows 0-2 hops, 3-5 links: w2's hop and the w3-e3 link are not w1's to report
+    assert ack["accepted"] == 4, ack
+    assert ack["rejected"] == [[1, "not_authorised"], [4, "not_authorised"]]
+    # a batch that names another reporter is refused whole
+    err = curve.send("w1", _batch("e3", 2, [["e3", "w3", "w1", 0.01]]))
+    assert err["error"].startswith("not_authorised:") and "'w1'" in err["error"] and err["batch"] == 2
+    h = curve.control("w1", {"op": "health"})
+    assert h["counts"]["observations_rejected"]["not_authorised"] == 2
+    assert h["counts"]["frames_refused"]["not_authorised"] == 1
+    assert h["security"] == {"curve": True, "reporters": ["w1", "e3", "ops"]}
+    assert 'reason="not_authorised"' in curve.sp.metrics_text()
+
+
+@pytest.mark.slow
+def test_unknown_keys_and_plain_peers_get_nothing(curve: Curve) -> None:
+    for who in ("stranger", None):
+        with pytest.raises(zmq.Again):
+            curve.send(who, _batch("w1", 9, [["w1", "w2", "e1", 0.01]]), timeout_ms=800)
+        with pytest.raises(zmq.Again):
+            curve.control(who, {"op": "health"}, timeout_ms=800)
+        sub = curve.sock(zmq.SUB, "publish", who, timeout_ms=800)
+        sub.subscribe(b"")
+        try:
+            with pytest.raises(zmq.Again):
+                sub.recv_multipart()
+        finally:
+            sub.close(0)
+    # an allowed key does get tables (every publish interval, at once for a new subscriber)
+    sub = curve.sock(zmq.SUB, "publish", "e3", timeout_ms=5000)
+    sub.subscribe(b"tables/")
+    try:
+        assert curve.control("ops", {"op": "snapshot"})["snapshot"]["record"] >= 1
+        assert sub.recv_multipart()[0].startswith(b"tables/")
+    finally:
+        sub.close(0)
+    assert curve.control("w1", {"op": "health"})["counts"]["batches"]["accepted"] == 0
+
+
+@pytest.mark.slow
+def test_state_changing_control_needs_a_control_key(curve: Curve) -> None:
+    for op in ({"op": "link", "from": "w1", "to": "w2", "state": "down"}, {"op": "snapshot"},
+               {"op": "reload"}):
+        r = curve.control("w1", op)
+        assert r["error"].startswith("not_authorised:") and "control: true" in r["error"], r
+    assert curve.control("w1", {"op": "tables"})["tables"]
+    r = curve.control("ops", {"op": "link", "from": "w1", "to": "w2", "state": "down"})
+    assert r["link"]["changed"] is True
+    r = curve.control("ops", {"op": "reload"})
+    assert r["reload"]["applied"] is True and r["reload"]["needs_restart"] == []
+    # the read-only endpoint: no CURVE, read-only ops only
+    assert curve.control(None, {"op": "health"}, name="control_ro")["status"] == "ok"
+    r = curve.control(None, {"op": "snapshot"}, name="control_ro")
+    assert r["error"].startswith("not_authorised: op 'snapshot' changes state")
+    h = curve.control("ops", {"op": "health"})
+    assert h["counts"]["links_down"] == 1
+
+
+def test_service_config_resolves_key_paths_relative_to_the_config(tmp_path: Any) -> None:
+    import argparse
+
+    (tmp_path / "c.yaml").write_text("security:\n  server_key: keys/svc.key_secret\n"
+                                     "  allow: allow.yaml\n")
+    p = argparse.ArgumentParser()
+    service.configure(p)
+    cfg = service.load_config(p.parse_args(["--config", str(tmp_path / "c.yaml")]))
+    assert cfg["security.server_key"] == str(tmp_path / "keys" / "svc.key_secret")
+    assert cfg["security.allow"] == str(tmp_path / "allow.yaml")
+    cfg = service.load_config(p.parse_args(["--allow", "x.yaml"]))
+    assert cfg["security.allow"] == os.path.abspath("x.yaml")
