@@ -34,9 +34,9 @@ from typing import Any
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 sys.path.insert(0, ROOT)
 
-from routerd import lab as L  # noqa: E402
-from routerd import overlay as ov  # noqa: E402
-from routerd import topology as T  # noqa: E402
+from routerd import lab as L
+from routerd import overlay as ov
+from routerd import topology as T
 
 PORT = 7400
 BARE = r"""
@@ -67,10 +67,10 @@ def _unavailable() -> str | None:
     except L.LabError as e:
         return str(e)
     name = f"rdbenchprobe{os.getpid()}"
-    r = subprocess.run(["ip", "netns", "add", name], capture_output=True, text=True)
+    r = subprocess.run(["ip", "netns", "add", name], capture_output=True, text=True, check=False)
     if r.returncode != 0:
         return f"ip netns add failed: {r.stderr.strip()}"
-    subprocess.run(["ip", "netns", "del", name], capture_output=True)
+    subprocess.run(["ip", "netns", "del", name], capture_output=True, check=False)
     return None
 
 

@@ -134,12 +134,12 @@ def load_underlay(path: str, topo: Any) -> dict[tuple[int, int], tuple[tuple[str
         raise InputError(Problem(f"{path}: underlay.links", links, "must be a list of links"))
     out: dict[tuple[int, int], tuple[tuple[str, int], tuple[str, int]]] = {}
     problems: list[Problem] = []
-    for i, e in enumerate(links):
+    for i, ent in enumerate(links):
         w = f"{path}: underlay.links[{i}]"
-        if not isinstance(e, dict) or set(e) != {"between", "addresses"}:
-            problems.append(Problem(w, e, "must have exactly the keys between and addresses"))
+        if not isinstance(ent, dict) or set(ent) != {"between", "addresses"}:
+            problems.append(Problem(w, ent, "must have exactly the keys between and addresses"))
             continue
-        bt, ad = e["between"], e["addresses"]
+        bt, ad = ent["between"], ent["addresses"]
         if not (isinstance(bt, list) and len(bt) == 2 and all(isinstance(x, str) for x in bt)):
             problems.append(Problem(f"{w}.between", bt, "must be two node names"))
             continue
@@ -232,8 +232,19 @@ class AgentMetrics:
 
 # ---- the agent -----------------------------------------------------------------------------
 class _Link:
-    __slots__ = ("delay_s", "detect_s", "end", "last_echo", "lat_n", "lat_sum", "outstanding",
-                 "seq", "sock", "state", "since")
+    __slots__ = (
+        "delay_s",
+        "detect_s",
+        "end",
+        "last_echo",
+        "lat_n",
+        "lat_sum",
+        "outstanding",
+        "seq",
+        "since",
+        "sock",
+        "state",
+    )
 
     def __init__(self, end: LinkEnd, sock: socket.socket, delay_s: float, now: float,
                  detect_s: float):
@@ -331,14 +342,14 @@ class Agent:
         from .client import Reporter, TableSubscriber
 
         now = time.monotonic()
-        ctx = zmq.Context.instance()
+        ctx: zmq.Context[Any] = zmq.Context.instance()
         try:
             for e in self.ends:
                 s = socket.socket(socket.AF_INET6 if ":" in e.local[0] else socket.AF_INET, socket.SOCK_DGRAM)
                 s.setblocking(False)
                 s.bind(e.local)
                 s.connect(e.remote)
-                k = self.topo.link_index[(e.neighbour, self.me)] if (e.neighbour, self.me) in self.topo.link_index else None
+                k = self.topo.link_index.get((e.neighbour, self.me))
                 delay = float(self.topo.delay_s[k]) if k is not None else 0.0
                 ln = _Link(e, s, delay, now, self.detect_s)
                 self.links[e.neighbour] = ln
@@ -385,7 +396,7 @@ class Agent:
             if now >= end:
                 break
             wait = min(_MAX_WAIT_S, self._next_deadline(now) - now, end - now)
-            events = self.poller.poll(max(0, int(math.ceil(wait * 1000))))
+            events = self.poller.poll(max(0, math.ceil(wait * 1000)))
             for what, _ev in events:
                 if what is sub_sock:
                     self._take_tables()

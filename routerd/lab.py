@@ -80,7 +80,7 @@ def check_host() -> None:
 
 
 def sh(*cmd: str, check: bool = True) -> subprocess.CompletedProcess[str]:
-    r = subprocess.run(list(cmd), capture_output=True, text=True, timeout=30)
+    r = subprocess.run(list(cmd), capture_output=True, text=True, timeout=30, check=False)
     if check and r.returncode != 0:
         raise LabError(f"`{' '.join(cmd)}` failed (exit {r.returncode}): {r.stderr.strip() or r.stdout.strip()}")
     return r
@@ -227,7 +227,7 @@ def parse_kill(text: str) -> list[Event]:
 
 # ---- the lab -----------------------------------------------------------------------------
 class Lab:
-    """One lab run.  Use as a context manager: ``__exit__`` always tears down."""
+    """One lab run: ``build``, ``start_service``, ``start_agents``, ... and always ``teardown``."""
 
     def __init__(self, topo: Any, cfg_doc: dict[str, Any], *, run_dir: str,
                  packet_bytes: float = 400.0, log: Any = None):
@@ -337,12 +337,11 @@ class Lab:
 
     def start_agents(self) -> None:
         for i, name in enumerate(self.topo.nodes):
-            log = open(os.path.join(self.run_dir, "agents", f"{i}.log"), "wb")
             cmd = ["ip", "netns", "exec", self.ns[i], sys.executable, "-m", "routerd", "agent",
                    "--node", name, "--config", self.config_path,
                    "--status-file", self.status_path(i)]
-            p = subprocess.Popen(cmd, stdout=log, stderr=subprocess.STDOUT, start_new_session=True)
-            log.close()
+            with open(os.path.join(self.run_dir, "agents", f"{i}.log"), "wb") as log:
+                p = subprocess.Popen(cmd, stdout=log, stderr=subprocess.STDOUT, start_new_session=True)
             self.agents[i] = p
             self.children.append(p)
 
@@ -398,12 +397,6 @@ class Lab:
                 _kill_ns_pids(ns)
             remove_leftovers(only_pid=self.pid)
 
-    def __enter__(self) -> Lab:
-        return self
-
-    def __exit__(self, *exc: object) -> None:
-        self.teardown()
-
     # -- measurements ------------------------------------------------------------------
     def tc_stats(self) -> list[dict[str, Any]]:
         """Per directed link: bytes, packets and drops at its sender's tbf."""
@@ -413,8 +406,8 @@ class Lab:
             p = self.pair_of(a, b)
             r = sh("tc", "-n", self.ns[a], "-s", "-j", "qdisc", "show", "dev", p.dev, check=False)
             st: dict[str, Any] = {"bytes": 0, "packets": 0, "drops": 0}
-            with contextlib.suppress(ValueError, IndexError, KeyError):
-                q = [x for x in json.loads(r.stdout) if x.get("kind") == "tbf"][0]
+            with contextlib.suppress(ValueError, StopIteration, KeyError):
+                q = next(x for x in json.loads(r.stdout) if x.get("kind") == "tbf")
                 st = {"bytes": int(q["bytes"]), "packets": int(q["packets"]), "drops": int(q["drops"])}
             out.append({"link": k, "from": t.nodes[a], "to": t.nodes[b], **st})
         return out
@@ -571,7 +564,7 @@ def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, 
             print(f"\rlab: t={now:5.1f}/{duration_s:g} s  sent {seq}  delivered {len(dlv)}",
                   end="", file=sys.stderr, flush=True)
     if progress and last_show > 0:
-        print("", file=sys.stderr)
+        print(file=sys.stderr)
     return {"inj_t": inj_t, "inj_s": inj_s, "inj_d": inj_d, "dlv": dlv,
             "send_errors": send_err, "duplicates": dup, "elapsed_s": time.monotonic() - t0}
 
@@ -681,7 +674,7 @@ def write_outputs(out: str, summary: dict[str, Any], lab: Lab, res: dict[str, An
     paths.append(p)
     # series by injection time: what a packet sent then experienced
     p = os.path.join(out, "series.csv")
-    nb = int(math.ceil(summary["duration_s"] / series_dt))
+    nb = math.ceil(summary["duration_s"] / series_dt)
     sums = [0.0] * nb
     cnt = [0] * nb
     sent = [0] * nb
@@ -786,8 +779,9 @@ def run(args: argparse.Namespace) -> int:
 def _run(args: argparse.Namespace, topo: Any, topo_path: str, events: list[Event]) -> int:
     import numpy as np
 
-    from . import config as _config
     from sim.traffic import PoissonTraffic
+
+    from . import config as _config
 
     removed = remove_leftovers()
     if removed:
@@ -857,8 +851,8 @@ def _run(args: argparse.Namespace, topo: Any, topo_path: str, events: list[Event
         return 1
     finally:
         # no signal may interrupt the teardown itself
-        for s in old:
-            signal.signal(s, signal.SIG_IGN)
+        for sig in old:
+            signal.signal(sig, signal.SIG_IGN)
         try:
             if traffic is not None:
                 traffic.close()
@@ -871,5 +865,5 @@ def _run(args: argparse.Namespace, topo: Any, topo_path: str, events: list[Event
                 shutil.rmtree(run_dir, ignore_errors=True)
             else:
                 print(f"routerd lab: run directory kept: {run_dir}", file=sys.stderr)
-            for s, h in old.items():
-                signal.signal(s, h)
+            for sig, h in old.items():
+                signal.signal(sig, h)

@@ -14,7 +14,8 @@ N = 7
 
 
 def _hdr(**kw: int) -> ov.Header:
-    base = dict(kind=ov.KIND_DATA, ttl=64, topo=TAG, src=1, dst=5, flow=77, seq=9, origin_ns=123)
+    base = {"kind": ov.KIND_DATA, "ttl": 64, "topo": TAG, "src": 1, "dst": 5, "flow": 77,
+            "seq": 9, "origin_ns": 123}
     base.update(kw)
     return ov.Header(**base)
 
@@ -39,7 +40,7 @@ def test_layout_matches_the_documented_offsets() -> None:
                        origin_ns=0x1122334455667788), b"xyz")
     assert ov.HEADER_BYTES == 30 and len(b) == 33
     assert b[0] == 1 and b[1] == ov.KIND_DATA and b[2] == 17 and b[3] == 0
-    be = lambda o, n: int.from_bytes(b[o:o + n], "big")  # noqa: E731
+    be = lambda o, n: int.from_bytes(b[o:o + n], "big")
     assert be(4, 4) == TAG and be(8, 2) == 3 and be(10, 2) == 6
     assert be(12, 4) == 0xA1B2C3D4 and be(16, 4) == 0x01020304
     assert be(20, 8) == 0x1122334455667788 and be(28, 2) == 3 and b[30:] == b"xyz"
