@@ -102,7 +102,7 @@ def table(res: dict[str, Any]) -> str:
     for k, f in rows:
         v = float(f["value"])
         vs = f"{v:14.4g}" if abs(v) < 1e6 else f"{v:14.4e}"
-        lines.append(f"{k.ljust(w)}  {vs}  {str(f['unit']):<10} {float(f['ratio']):8.3f}  {f['against']}")
+        lines.append(f"{k.ljust(w)}  {vs}  {f['unit']!s:<10} {float(f['ratio']):8.3f}  {f['against']}")
     for mod, err in res.get("_errors", {}).items():
         lines.append(f"{mod}: FAILED: {err}")
     secs = res.get("_meta", {}).get("seconds", {})

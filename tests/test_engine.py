@@ -21,9 +21,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from routerd import config
+from routerd import config, loops
 from routerd import engine as E
-from routerd import loops
 from routerd import topology as T
 from routerd.engine import Engine, EngineSettings, HopBatch
 
@@ -71,7 +70,7 @@ def test_hand_worked_update_min_over_live_neighbours() -> None:
     # t = min over y's *live* neighbours z of Q[y, d, z] (Boyan & Littman 1994)
     t = line("x", "y", "d", extra=(("y", "z"), ("z", "d")))
     e = Engine(t, const_settings())
-    x, y, z, d = (t.index[k] for k in "xyzd")
+    x, y, _z, d = (t.index[k] for k in "xyzd")
     e.Q[y, d, slot(t, "y", "d")] = 5.0
     e.Q[y, d, slot(t, "y", "z")] = 6.0
     e.Q[y, d, slot(t, "y", "x")] = 12.0
@@ -491,7 +490,7 @@ def test_link_down_and_up() -> None:
     t = line("x", "y", "d", extra=(("x", "z"), ("z", "d")))
     s = EngineSettings(ceiling_s=3.0)
     e = Engine(t, s)
-    x, y, z, d = (t.index[k] for k in "xyzd")
+    x, y, _z, d = (t.index[k] for k in "xyzd")
     e.decide(0.0)
     assert e.set_link(x, y, False, now=1.0) is True
     assert e.set_link(x, y, False) is False  # already down
@@ -536,7 +535,7 @@ def test_no_count_to_infinity() -> None:
 def test_reconfigure_keeps_dead_links_at_the_new_ceiling() -> None:
     t = line("x", "y", "d", extra=(("x", "z"), ("z", "d")))
     e = Engine(t, EngineSettings(ceiling_s=1.0))
-    x, y, z, d = (t.index[k] for k in "xyzd")
+    x, y, _z, d = (t.index[k] for k in "xyzd")
     e.set_link(y, d, False)
     e.reconfigure(E.settings_with(e.settings, ceiling_s=50.0))
     assert np.all(e.Q[y, :, slot(t, "y", "d")] == 50.0)

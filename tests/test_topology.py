@@ -326,7 +326,7 @@ def test_slots_and_shortest_path_tree(make_ring) -> None:  # type: ignore[no-unt
     # links down (weight inf) are left out
     w = t.delay_s.copy()
     w[t.link_index[(0, 1)]] = math.inf
-    D2, NH2 = t.shortest_paths(w)
+    _, NH2 = t.shortest_paths(w)
     assert NH2[0, 1] != 1
     assert t.digest == T.build("x", t.nodes, [T.LinkSpec("h0", "h1", 0, 1, 1, "l"),
                                                T.LinkSpec("h1", "h0", 0, 1, 1, "l")] + [

@@ -120,11 +120,11 @@ def test_as_a_subprocess(tmp_path) -> None:  # type: ignore[no-untyped-def]
     good = _w(tmp_path, "t.yaml", GOOD_TOPO)
     bad = _w(tmp_path, "c.yaml", {"engine": {"ceiling_s": -1}})
     env = dict(os.environ, PYTHONPATH=os.getcwd())
-    ok = subprocess.run([sys.executable, "-m", "routerd", "validate", good], capture_output=True,
-                        text=True, timeout=60, env=env)
+    ok = subprocess.run([sys.executable, "-m", "routerd", "validate", good],
+                        capture_output=True, check=False, text=True, timeout=60, env=env)
     assert ok.returncode == 0 and ok.stdout.startswith(f"OK {good}: ")
-    no = subprocess.run([sys.executable, "-m", "routerd", "validate", bad], capture_output=True,
-                        text=True, timeout=60, env=env)
+    no = subprocess.run([sys.executable, "-m", "routerd", "validate", bad],
+                        capture_output=True, check=False, text=True, timeout=60, env=env)
     assert no.returncode == 1
     assert f"  {bad}: engine.ceiling_s: -1 is at or below 0" not in no.stdout  # -1 is below, not at
     assert f"  {bad}: engine.ceiling_s: -1 is below 0 (must be above it)" in no.stdout
