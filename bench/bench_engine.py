@@ -104,6 +104,11 @@ def loop_update(Q: np.ndarray, x: list[int], y: list[int], d: list[int], j: list
         Q[xi, di, ji] = q + alpha * (li + tail - q)
 
 
+def _counted(rows: int, fn: Callable[..., None], *args: Any) -> int:
+    fn(*args)
+    return rows
+
+
 def run(quick: bool) -> dict[str, dict[str, Any]]:
     budget = 0.25 if quick else 1.0  # seconds per candidate and shape
     figs: dict[str, dict[str, Any]] = {}
@@ -136,8 +141,8 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
             ll = b.latency[:cut].tolist()
             eng_rate, floor_rate, loop_rate = best_rates([
                 lambda: eng.observe(b).accepted,
-                lambda: (floor_update(Qf, b.src, b.via, b.dst, j, b.latency, 0.5), m)[1],
-                lambda: (loop_update(Qf, lx, ly, ld, lj, ll, 0.5), cut)[1],
+                lambda: _counted(m, floor_update, Qf, b.src, b.via, b.dst, j, b.latency, 0.5),
+                lambda: _counted(cut, loop_update, Qf, lx, ly, ld, lj, ll, 0.5),
             ], budget, trials=5)
             tag = f"n{n}_b{m}"
             figs[f"update_rows_per_s_{tag}"] = {
