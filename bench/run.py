@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import argparse
 import glob
-import importlib.util
+import importlib
 import json
 import math
 import os
@@ -35,12 +35,13 @@ def discover(only: list[str] | None = None) -> list[str]:
 
 
 def load_module(path: str) -> Any:
+    """Import ``bench/NAME.py`` as top-level module NAME (bench/ on sys.path), so worker
+    processes a benchmark starts can import it again by name (pickling by reference)."""
+    d = os.path.dirname(os.path.abspath(path))
+    if d not in sys.path:
+        sys.path.insert(0, d)
     name = os.path.splitext(os.path.basename(path))[0]
-    spec = importlib.util.spec_from_file_location(f"routerd_bench_{name}", path)
-    assert spec is not None and spec.loader is not None
-    mod = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(mod)
-    return mod
+    return importlib.import_module(name)
 
 
 def check_figures(mod: str, figs: Any) -> list[str]:

@@ -641,8 +641,18 @@ class Engine:
     # ---- reading ----------------------------------------------------------------------
     def values(self) -> np.ndarray:
         """(n, n) V[x, d] = min over x's live slots of Q[x, d, :] (0 on the diagonal)."""
-        q = np.where(self.live[:, None, :], self.Q, np.inf).min(axis=2)
-        q = np.where(np.isfinite(q), q, self.settings.ceiling_s)
+        # dead slots hold exactly the ceiling and absent ones inf, so the plain min over
+        # all slots is the min over live ones (the ceiling when none is live)
+        n, K = self.n, self.k
+        q = np.empty((n, n))
+        step = max(1, (1 << 19) // max(1, n * K))   # about 4 MB of Q per block
+        for x0 in range(0, n, step):
+            qb = self.Q[x0:x0 + step]
+            out = q[x0:x0 + step]
+            np.copyto(out, qb[:, :, 0])
+            for c in range(1, K):
+                np.minimum(out, qb[:, :, c], out=out)
+        np.minimum(q, self.settings.ceiling_s, out=q)
         np.fill_diagonal(q, 0.0)
         return q
 
