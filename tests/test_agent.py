@@ -313,8 +313,12 @@ def test_flowlet_stays_pinned_and_repins_on_table_change_and_link_down(diamond: 
     assert s.metric("routerd_agent_fallback_forwarded_total") == 1   # one flowlet pinned by it
 
 
-def test_probes_measure_emulated_delay_and_report_hop_rows(diamond: Callable[..., Diamond]) -> None:
-    d = diamond()
+@pytest.mark.parametrize("method", ["one_way", "two_way"])
+def test_probes_measure_emulated_delay_and_report_hop_rows(diamond: Callable[..., Diamond],
+                                                           method: str) -> None:
+    # both directions of s-x hold packets 4 ms, so the one-way delay and the NTP-style
+    # two-way estimate ((t4 - t1) - (t3 - t2)) / 2 are both at least 4 ms
+    d = diamond(**{"agent.latency": method})
     d.start_all()
     assert wait_until(lambda: sum(1 for h in d.service.hops if h[:2] == ("s", "x")) >= 30, 10)
     rows = [h for h in d.service.hops if h[:2] == ("s", "x")]
