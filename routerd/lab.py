@@ -189,7 +189,7 @@ def tbf_args(capacity_bps: float, buffer_pkts: int, packet_bytes: float) -> list
 @dataclass
 class Event:
     at_s: float
-    kind: str                 # "capacity" | "kill_service" | "restart_service"
+    kind: str                 # "capacity" | "down" | "up" | "kill_service" | "restart_service"
     src: int = -1
     dst: int = -1
     bps: float = 0.0
@@ -211,6 +211,17 @@ def parse_capacity_change(text: str, topo: Any) -> Event:
     if not (tf >= 0 and bf >= 8000):
         raise InputError(Problem("--capacity-change", text, "T must be >= 0 and BPS >= 8000"))
     return Event(tf, "capacity", topo.index[a], topo.index[b], bf)
+
+
+def scenario_events(scen: Any, topo: Any) -> list[Event]:
+    """A simulator scenario's link events (sim.scenario) as lab events, one per directed link."""
+    out = []
+    for ev in scen.link_events(topo):
+        for k in ev.links:
+            a, b = int(topo.src[k]), int(topo.dst[k])
+            out.append(Event(float(ev.t), ev.action, a, b,
+                             float(ev.capacity_bps) if ev.capacity_bps is not None else 0.0))
+    return out
 
 
 def parse_kill(text: str) -> list[Event]:
@@ -285,6 +296,15 @@ class Lab:
         sh("tc", "-n", self.ns[a], "qdisc", "change", "dev", p.dev, "root",
            *tbf_args(bps, int(self.topo.buffer_pkts[k]), self.packet_bytes))
         self.capacity[k] = bps
+
+    def set_link(self, a: int, b: int, up: bool) -> None:
+        """Cut (or restore) the direction a -> b: a blackhole route in a's namespace for b's
+        veth address, so a's packets to b are dropped before they leave (b -> a still
+        flows; the agents' probes see the cut in both, as BFD does for a one-way fault)."""
+        p = self.pair_of(a, b)
+        peer = p.addr_b if p.a == a else p.addr_a
+        sh("ip", "-n", self.ns[a], "route", "add" if not up else "del", "blackhole", f"{peer}/32",
+           check=not up)
 
     def _write_files(self) -> None:
         import yaml
@@ -531,6 +551,10 @@ def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, 
                     lab.set_capacity(ev.src, ev.dst, ev.bps)
                     lab.log(f"t={now:.1f} s: capacity {topo.nodes[ev.src]} -> {topo.nodes[ev.dst]} "
                             f"set to {ev.bps:g} bit/s")
+                elif ev.kind in ("down", "up"):
+                    ev.info["tables_before"] = lab.tables()
+                    lab.set_link(ev.src, ev.dst, ev.kind == "up")
+                    lab.log(f"t={now:.1f} s: link {topo.nodes[ev.src]} -> {topo.nodes[ev.dst]} {ev.kind}")
                 elif ev.kind == "kill_service":
                     lab.kill_service()
                     lab.log(f"t={now:.1f} s: service killed (SIGKILL)")
@@ -715,14 +739,64 @@ def configure(p: argparse.ArgumentParser) -> None:
                    help="statistics cover packets sent after this (default: a tenth of --duration)")
     p.add_argument("--config", metavar="FILE", help="routerd config whose engine/service/agent "
                    "settings the lab starts from (endpoints and lab-specific agent keys are set by the lab)")
+    p.add_argument("--scenario", metavar="FILE", default=None,
+                   help="the simulator's scenario YAML: its load steps, ramps and bursts shape the "
+                        "traffic; its link events cut links (down/up) and change tbf rates (capacity_bps)")
     p.add_argument("--capacity-change", action="append", default=[], metavar="T:FROM:TO:BPS",
                    help="at T seconds set the tbf rate of link FROM -> TO to BPS (repeatable)")
     p.add_argument("--kill-service", metavar="T[:DOWN_S]",
                    help="at T seconds kill -9 the service; restart it DOWN_S later (default 2)")
+    p.add_argument("--compare-sim", metavar="POLICY", default=None,
+                   help="also simulate the same topology, rate, duration, seed and scenario with "
+                        "POLICY (e.g. qrouting, shortest) into DIR/sim/ and print both side by side")
     p.add_argument("--drain", type=float, default=1.0, metavar="S",
                    help="seconds to wait for packets still in flight after the last one is sent")
     p.add_argument("--keep", action="store_true", help="keep the run directory (configs, agent logs)")
     p.add_argument("--quiet", action="store_true", help="no progress line")
+
+
+#: summary keys shown side by side by --compare-sim
+COMPARE_KEYS = ("offered", "delivered", "delivery_ratio", "mean_delivery_s", "p50_delivery_s",
+                "p95_delivery_s", "p99_delivery_s", "mean_hops", "throughput_pps", "link_util_max",
+                "ttl_expired")
+
+
+def compare_with_sim(args: argparse.Namespace, lab_summary: dict[str, Any], topo_path: str,
+                     events: Sequence[Event]) -> dict[str, Any]:
+    """Simulate the same run (packets carry the veth's per-packet overhead there too) and
+    print the two summaries side by side; writes DIR/sim/ and DIR/compare.txt."""
+    from sim.commands_simulate import write_outputs as sim_write
+    from sim.run import run as sim_run
+
+    spec = {"policy": args.compare_sim, "rate_pps": args.rate, "duration_s": args.duration,
+            "seed": args.seed, "topology": topo_path, "packet_bytes": args.packet_bytes + WIRE_OVERHEAD,
+            "scenario": getattr(args, "scenario", None), "demands": args.demands,
+            "warmup_s": lab_summary["warmup_s"], "config": args.config}
+    res = sim_run(spec)
+    sim_write(res, os.path.join(args.out, "sim"))
+    ss = res["summary"]
+    lines = [f"{'':<18}{'lab (service)':>16}{'sim (' + args.compare_sim + ')':>18}"]
+    for k in COMPARE_KEYS:
+        a, b = lab_summary.get(k), ss.get(k)
+
+        def fmt(v: Any, key: str = k) -> str:
+            if not isinstance(v, (int, float)) or (isinstance(v, float) and not math.isfinite(v)):
+                return "n/a"
+            if key.endswith("_s"):
+                return f"{v * 1e3:.3f} ms"
+            return f"{v:.4g}" if isinstance(v, float) else str(v)
+
+        lines.append(f"{k:<18}{fmt(a):>16}{fmt(b):>18}")
+    skipped = [e.kind for e in events if e.kind in ("kill_service", "restart_service")]
+    skipped += ["capacity"] * sum(1 for e in events if e.kind == "capacity" and not getattr(args, "scenario", None))
+    if skipped:
+        lines.append(f"note: not simulated: {', '.join(sorted(set(skipped)))} events given on the "
+                     "command line (put link events in --scenario to simulate them)")
+    text = "\n".join(lines)
+    print(text)
+    with open(os.path.join(args.out, "compare.txt"), "w", encoding="utf-8") as fh:
+        fh.write(text + "\n")
+    return ss
 
 
 def lab_config(base: str | None, topo_path: str, run_dir: str) -> dict[str, Any]:
@@ -761,7 +835,12 @@ def run(args: argparse.Namespace) -> int:
         topo = _topology.load(topo_path)
         if topo.n > 250:
             raise InputError(Problem("--topology", topo.n, "nodes are too many for a one-host lab (250 at most)"))
+        from sim import scenario as _scenario
+
+        scen = _scenario.load(args.scenario) if getattr(args, "scenario", None) else None
         events: list[Event] = [parse_capacity_change(c, topo) for c in args.capacity_change]
+        if scen is not None:
+            events += scenario_events(scen, topo)
         if args.kill_service:
             events += parse_kill(args.kill_service)
         for name, v, lo in (("--duration", args.duration, 0.0), ("--rate", args.rate, 0.0)):
@@ -773,10 +852,11 @@ def run(args: argparse.Namespace) -> int:
     except InputError as e:
         print(f"routerd lab: {e}", file=sys.stderr)
         return 2
-    return _run(args, topo, topo_path, events)
+    return _run(args, topo, topo_path, events, scen)
 
 
-def _run(args: argparse.Namespace, topo: Any, topo_path: str, events: list[Event]) -> int:
+def _run(args: argparse.Namespace, topo: Any, topo_path: str, events: list[Event],
+         scen: Any = None) -> int:
     import numpy as np
 
     from sim.traffic import PoissonTraffic
@@ -813,7 +893,7 @@ def _run(args: argparse.Namespace, topo: Any, topo_path: str, events: list[Event
         rng = np.random.default_rng(np.random.SeedSequence(int(args.seed)).spawn(2)[0])
         src = PoissonTraffic(topo.n, args.rate, rng, packet_bytes=args.packet_bytes,
                              pair_weights=topo.demands if args.demands else None,
-                             duration_s=args.duration, warmup_s=warm,
+                             duration_s=args.duration, warmup_s=warm, scenario=scen,
                              flows_per_pair=cfg["sim.flows_per_pair"])
         traffic = Traffic(lab)
         tables_start = lab.tables()
@@ -829,7 +909,8 @@ def _run(args: argparse.Namespace, topo: Any, topo_path: str, events: list[Event
         extra = {"namespaces": lab.ns, "pairs": [p.__dict__ for p in lab.pairs],
                  "events": [{"kind": e.kind, "at_s": e.at_s,
                              **({"from": topo.nodes[e.src], "to": topo.nodes[e.dst], "bps": e.bps}
-                                if e.kind == "capacity" else {}), **e.info} for e in events],
+                                if e.kind in ("capacity", "down", "up") else {}), **e.info}
+                            for e in events],
                  "service_epochs": lab.service_epochs, "tables_start": tables_start,
                  "tables_end": tables_end, "tc": tc,
                  "table_samples": res["table_samples"],
@@ -842,6 +923,8 @@ def _run(args: argparse.Namespace, topo: Any, topo_path: str, events: list[Event
               f"{s['lab_forwarded']} hops forwarded")
         for p in written:
             print(f"wrote {p}")
+        if args.compare_sim:
+            compare_with_sim(args, summary, topo_path, events)
         return 0
     except Interrupted as e:
         print(f"routerd lab: interrupted ({e}); tearing down", file=sys.stderr)

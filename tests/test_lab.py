@@ -252,3 +252,37 @@ def test_ctrl_c_tears_everything_down(outdir: str) -> None:
     assert "interrupted" in err
     assert not os.path.exists(os.path.join(outdir, "summary.json"))
     assert_nothing_left(p.pid)
+
+
+@pytest.mark.slow
+@needs_lab
+def test_scenario_link_failure_and_side_by_side_with_the_simulator(outdir: str) -> None:
+    # configs/lab-small-cut.yaml: m - b1 down at 4 s, up at 8 s, load x1.5 from 10 s
+    scen = os.path.join(ROOT, "configs", "lab-small-cut.yaml")
+    r, pid = run_lab(outdir, "--scenario", scen, "--compare-sim", "qrouting", duration=12.0,
+                     rate=150.0)
+    assert r.returncode == 0, r.stderr
+    s, x, rows, _ = read_out(outdir)
+    with open(os.path.join(outdir, "sim", "summary.json")) as fh:
+        sim = json.load(fh)
+    # the same traffic source and seed on both sides: the very same packets are offered
+    assert s["offered"] == sim["offered"]
+    # and the lab's delivery time is in the simulator's range (propagation dominates here)
+    assert 0.5 < s["mean_delivery_s"] / sim["mean_delivery_s"] < 2.0, (s["mean_delivery_s"], sim["mean_delivery_s"])
+    assert "lab (service)" in r.stdout and os.path.exists(os.path.join(outdir, "compare.txt"))
+    # the cut is detected by missed probes on both ends (BFD detection time 3 x 100 ms) ...
+    for node, nb in (("m", "b1"), ("b1", "m")):
+        det = [d for d in x["agents"][node]["detections"] if d["neighbour"] == nb]
+        assert det and det[0]["after_s"] >= 0.3, (node, det)
+    # ... after which traffic goes around it, and comes back when it is up again
+    during = [rw for rw in rows if 4.6 <= float(rw["inject_s"]) < 8.0]
+    assert sum(rw["delivered"] == "1" for rw in during) / len(during) > 0.97
+    kinds = [(e["kind"], e["from"], e["to"]) for e in x["events"]]
+    assert ("down", "m", "b1") in kinds and ("up", "b1", "m") in kinds
+    assert all(a["links"][nb]["state"] == "up" for n, a in x["agents"].items()
+               for nb in a["links"])
+    # the load step is in the offered series (x1.5 from 10 s)
+    early = sum(1 for rw in rows if 8.5 <= float(rw["inject_s"]) < 10.0)
+    late = sum(1 for rw in rows if 10.0 <= float(rw["inject_s"]) < 11.5)
+    assert late > 1.2 * early
+    assert_nothing_left(pid)
