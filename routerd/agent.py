@@ -23,7 +23,10 @@ than ``agent.flowlet_gap_s`` apart, so a flow is not reordered; it is re-pinned 
 idle gap, when the table's entry for its destination changes, or when its link goes
 down.  Next hops whose link is down are left out and the weights of the rest are
 renormalised; with none left (or before the first table) the agent uses a static
-fallback: the delay-shortest path over the links it believes up.  TTL: a packet that
+fallback: the delay-shortest path over the links it believes up.  A packet is never sent
+straight back to the neighbour it came from while another way exists: the service's tables
+are loop-free, so such a hop only appears while two nodes hold tables of different
+moments, and it would bounce the packet between them until they agree.  TTL: a packet that
 arrives with TTL 0 and is not for this node is dropped as expired; else it leaves with
 TTL - 1.
 
@@ -82,7 +85,7 @@ from .errors import InputError, Problem
 #: Why a packet is dropped by the agent (a fixed set: a metrics label uses it).
 DROP_REASONS = ("no_route", "send_error", "hold_full", "not_data")
 #: Why a flowlet was (re-)pinned.
-REPIN_CAUSES = ("new", "idle", "table", "link")
+REPIN_CAUSES = ("new", "idle", "table", "link", "return")
 LINK_STATES = ("init", "up", "down")
 #: Hop latency histogram buckets, seconds (sub-millisecond veth hops up to congested ones).
 LATENCY_BUCKETS_S = (1e-4, 2.5e-4, 5e-4, 1e-3, 2.5e-3, 5e-3, 0.01, 0.025, 0.05, 0.1, 0.25,
@@ -199,6 +202,7 @@ class AgentMetrics:
         self.delivery = Histogram("routerd_agent_delivery_seconds", "Delivery time of packets for this node, from the origin timestamp (needs synchronised clocks)", buckets=LATENCY_BUCKETS_S, registry=r)
         self.ttl_expired = Counter("routerd_agent_ttl_expired", "Data packets dropped because their TTL ran out", registry=r)
         self.malformed = Counter("routerd_agent_malformed_packets", "Packets refused as malformed, by reason", ["reason"], registry=r)
+        self.returns_avoided = Counter("routerd_agent_returns_avoided", "Next-hop choices that would have sent a packet straight back where it came from and took another way", registry=r)
         self.fallback = Counter("routerd_agent_fallback_forwarded", "Flowlets pinned by the static fallback (no usable table entry)", registry=r)
         self.probes = Counter("routerd_agent_probes", "Probe traffic by event (sent, answered, echoed, late)", ["event"], registry=r)
         self.latency = Histogram("routerd_agent_hop_latency_seconds", "Measured hop latency per probe echo", buckets=LATENCY_BUCKETS_S, registry=r)
@@ -312,6 +316,7 @@ class Agent:
         self.table_epoch: Any = None
         self.table_seq: int | None = None
         self.fallback_nh: list[int] = [-1] * topo.n
+        self._fallback_excl: dict[int, list[int]] = {}
         self.flowlets: dict[tuple[int, int], list[Any]] = {}  # key → [nh, last_t, version]
         # reporting
         self.rows: deque[tuple[str, str, str, float, float | None]] = deque(maxlen=cfg["agent.report_buffer_rows"])
@@ -321,7 +326,8 @@ class Agent:
         self.counts: dict[str, int] = {k: 0 for k in (
             "forwarded", "injected", "delivered", "ttl_expired", "fallback", "probes_sent",
             "probes_answered", "echoes", "echoes_late", "tables", "resyncs", "nonstop_periods",
-            "rows_sent", "rows_dropped", "malformed", "delivery_errors", "refused")}
+            "rows_sent", "rows_dropped", "malformed", "delivery_errors", "refused",
+            "returns_avoided")}
         self.drops: dict[str, int] = dict.fromkeys(DROP_REASONS, 0)
         self.malformed: dict[str, int] = dict.fromkeys(ov.MALFORMED_REASONS, 0)
         self.detections: deque[dict[str, Any]] = deque(maxlen=32)
@@ -499,7 +505,7 @@ class Agent:
             return
         h, payload = d
         if h.kind == ov.KIND_DATA:
-            self._handle_data(data, h, time.monotonic())
+            self._handle_data(data, h, time.monotonic(), ln.end.neighbour)
         elif h.kind == ov.KIND_PROBE:
             self._answer(ln, h, t2)
         else:
@@ -511,7 +517,7 @@ class Agent:
         self.m.malformed.labels(reason).inc()
 
     # -- forwarding ------------------------------------------------------------------------
-    def _handle_data(self, data: bytes, h: ov.Header, now: float) -> None:
+    def _handle_data(self, data: bytes, h: ov.Header, now: float, came: int = -1) -> None:
         if h.dst == self.me:
             self.counts["delivered"] += 1
             self.m.delivered.inc()
@@ -527,7 +533,7 @@ class Agent:
             self.counts["ttl_expired"] += 1
             self.m.ttl_expired.inc()
             return
-        nh = self._next_hop(h.dst, h.flow, now)
+        nh = self._next_hop(h.dst, h.flow, now, came)
         if nh < 0:
             self.drops["no_route"] += 1
             self.m.dropped.labels("no_route").inc()
@@ -545,7 +551,7 @@ class Agent:
         ln = self.links.get(y)
         return ln is not None and ln.state != "down"
 
-    def _next_hop(self, dst: int, flow: int, now: float) -> int:
+    def _next_hop(self, dst: int, flow: int, now: float, came: int = -1) -> int:
         key = (dst, flow)
         pin = self.flowlets.get(key)
         ver = self.entry_version.get(dst, 0)
@@ -557,20 +563,34 @@ class Agent:
                 cause = "link"
             elif now - pin[1] > self.gap:
                 cause = "idle"
+            elif pin[0] == came:
+                cause = "return"
             else:
                 pin[1] = now
                 return int(pin[0])
-        nh = self._choose(dst)
+        nh = self._choose(dst, came)
         if nh >= 0:
             self.flowlets[key] = [nh, now, ver]
             self.m.repins.labels(cause).inc()
         return nh
 
-    def _choose(self, dst: int) -> int:
+    def _choose(self, dst: int, came: int = -1) -> int:
+        """A next hop for ``dst`` by the table's weights over usable links; never straight
+        back to ``came`` (the neighbour the packet came from) while another way exists.
+
+        The service's tables are loop-free per destination, so a table hop pointing back
+        where the packet came from means two nodes hold tables of different moments (a
+        change in flight, a link just lost): taking another way then avoids a two-node
+        loop that would last until the tables agree."""
         ent = self.routes.get(dst)
+        back = came >= 0 and came != dst
         if ent is not None:
             hops, weights = ent
             live = [(y, w) for y, w in zip(hops, weights) if w > 0 and self._usable(y)]
+            if back and any(y == came for y, _ in live):
+                self.m.returns_avoided.inc()
+                self.counts["returns_avoided"] += 1
+                live = [(y, w) for y, w in live if y != came]
             if live:
                 if len(live) == 1:
                     return live[0][0]
@@ -582,21 +602,36 @@ class Agent:
                         return y
                 return live[-1][0]
         y = self.fallback_nh[dst]
+        if back and y == came:
+            alt = self._fallback_without(came)[dst]
+            y = alt if alt >= 0 else came     # no other way at all: back it goes (TTL bounds it)
         if y >= 0:
             self.counts["fallback"] += 1
             self.m.fallback.inc()
         return y
 
+    def _fallback_without(self, y: int) -> list[int]:
+        got = self._fallback_excl.get(y)
+        if got is None:
+            got = self._fallback_excl[y] = self._shortest(exclude=y)
+        return got
+
     def _recompute_fallback(self) -> None:
+        self._fallback_excl = {}
+        self.fallback_nh = self._shortest()
+
+    def _shortest(self, exclude: int = -1) -> list[int]:
+        """Next hops of this node on delay-shortest paths over the links it believes up
+        (and without the link to ``exclude``)."""
         import numpy as np
 
         t = self.topo
         w = t.delay_s.astype(float).copy()
         for y, ln in self.links.items():
-            if ln.state == "down":
+            if ln.state == "down" or y == exclude:
                 w[t.link_index[(self.me, y)]] = np.inf
         _, nh = t.shortest_paths(w)
-        self.fallback_nh = [int(v) for v in nh[self.me].tolist()]
+        return [int(v) for v in nh[self.me].tolist()]
 
     def _prune(self, now: float) -> None:
         old = [k for k, p in self.flowlets.items() if now - p[1] > max(self.gap, 1.0)]

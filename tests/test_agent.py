@@ -451,3 +451,20 @@ def test_cli_refuses_unknown_node(tmp_path: Any) -> None:
                            check=False)
         assert r.returncode == 2, r.stderr
         assert want in r.stderr
+
+
+def test_never_straight_back_while_another_way_exists(diamond: Callable[..., Diamond]) -> None:
+    # tables of different moments: s sends t's packets to x, x's (stale) table sends them
+    # back to s.  x takes another way (its fallback, x - t) instead of bouncing them.
+    d = diamond()
+    d.service.set_table("s", {"t": [["x", 1.0]]})
+    d.service.set_table("x", {"t": [["s", 1.0]]})
+    d.start_all()
+    assert wait_until(lambda: d.agents["s"].agent.routes != {} and d.agents["x"].agent.routes != {}, 5)
+    for i in range(10):
+        d.send("s", "t", flow=i, seq=i)
+    got = d.received("t")
+    assert len(got) == 10 and all(h.ttl == 16 - 2 for h in got)      # s -> x -> t
+    x = d.agents["x"]
+    assert x.metric("routerd_agent_returns_avoided_total") == 10
+    assert d.agents["s"].agent.counts["ttl_expired"] == 0
