@@ -673,6 +673,17 @@ class Service:
         self.log.info("storage back: acknowledging again", record=self._last_record,
                       replayed=self.restored.get("replayed", 0))
 
+    def _unacknowledge(self, answer: bytes, batch: int | None) -> bytes:
+        """This turn's answer when its commit failed: an ack becomes ``unavailable`` (the
+        batch is in the journal file but not known durable: the reporter sends it again and
+        gets it acknowledged as a duplicate once the journal syncs); errors stay."""
+        try:
+            if "error" in wire.decode_reply(answer):
+                return answer
+        except wire.BadReply:  # pragma: no cover - we encoded it ourselves
+            pass
+        return self._unavailable(batch)
+
     def _unavailable(self, batch: int | None = None) -> bytes:
         self.counters.refuse("unavailable")
         return wire.encode_error(f"unavailable: the journal cannot be written ({self._down}); "
@@ -718,7 +729,8 @@ class Service:
                     self._commit()
                 if self._turn_failed:
                     # something of this turn may not be stored: acknowledge none of it
-                    acks = [(sk, parts[:-1] + [self._unavailable(b)], b) for sk, parts, b in acks]
+                    acks = [(sk, parts[:-1] + [self._unacknowledge(parts[-1], b)], b)
+                            for sk, parts, b in acks]
                     if reply is not None:
                         reply = wire.encode_error(f"unavailable: the journal cannot be written "
                                                   f"({self._down})")
