@@ -67,6 +67,7 @@ from typing import Any
 import numpy as np
 
 from . import loops as _loops
+from . import variants as _variants
 from .topology import Topology
 
 # Reasons an observation row is rejected.  A fixed set: metrics label on it.
@@ -106,6 +107,16 @@ class EngineSettings:
     td_ref: float = 0.2
     td_smoothing: float = 0.1
     visits_half: float = 50.0
+    # published refinements (routerd.variants): which one, and their parameters
+    variant: str = "plain"
+    echo_damping: float = 0.5
+    echo_smoothing: float = 0.2
+    pred_beta: float = 0.7
+    pred_gamma: float = 0.9
+    conf_decay: float = 0.9
+    conf_interval_s: float = 1.0
+    conf_initial: float = 0.0
+    conf_min_step: float = 0.05
 
     def __post_init__(self) -> None:
         bad: list[str] = []
@@ -132,6 +143,7 @@ class EngineSettings:
                        f"got {self.explore_min}, {self.explore_max}, {self.explore_cap}")
         if not self.td_ref > 0 or not 0 < self.td_smoothing <= 1 or not self.visits_half > 0:
             bad.append("td_ref and visits_half must be > 0, td_smoothing in (0, 1]")
+        bad += _variants.problems(self)
         if bad:
             raise ValueError("; ".join(bad))
 
@@ -153,6 +165,7 @@ class EngineSettings:
             explore_max=cfg["engine.explore.max_rate"], explore_cap=cfg["engine.explore.cap"],
             td_ref=cfg["engine.explore.td_ref"], td_smoothing=cfg["engine.explore.td_smoothing"],
             visits_half=cfg["engine.explore.visits_half"],
+            **_variants.from_config(cfg),
         )
 
 
@@ -274,6 +287,8 @@ class Engine:
         self._route_changes = 0
         self._loops_prevented = 0
         self._decisions = 0
+        self._variant = _variants.make(self)   # None: the plain core path
+        self._qdec = self.Q                     # the values decide() compares
         self.decide(0.0)
         # the first tables are the starting point, not changes or prevented loops
         self._route_changes = 0
@@ -302,6 +317,7 @@ class Engine:
         # dead links hold exactly the (new) ceiling: the update reads mins without a live mask
         q[np.broadcast_to((self._present & ~self.live)[:, None, :], q.shape)] = settings.ceiling_s
         self.Q = np.ascontiguousarray(q)
+        self._variant = _variants.make(self, self._variant)
         self._dirty[:] = True
 
     # ---- observations ---------------------------------------------------------------
@@ -345,7 +361,8 @@ class Engine:
         code[~inr] = _R["unknown_node"]
         return code, slot
 
-    def observe(self, batch: HopBatch, now: float | None = None) -> ObserveResult:
+    def observe(self, batch: HopBatch, now: float | None = None,
+                confidence: np.ndarray | None = None) -> ObserveResult:
         """Apply a batch of hop observations, in order.  Bad rows are rejected, not fatal.
 
         Small batches (< SCALAR_BATCH rows) take a per-row path; larger ones the
@@ -354,6 +371,8 @@ class Engine:
         """
         if now is not None:
             self.now = float(now)
+        if self._variant is not None:  # rows one by one, the variant's rule (routerd.variants)
+            return self._variant.observe(self, batch, confidence, ObserveResult, REJECT_REASONS)
         m = len(batch)
         if m < SCALAR_BATCH:
             return self._observe_rows(batch.src.tolist(), batch.via.tolist(), batch.dst.tolist(),
@@ -390,6 +409,8 @@ class Engine:
         if now is not None:
             self.now = float(now)
         e = math.nan if estimate is None else float(estimate)
+        if self._variant is not None:
+            return self.observe(HopBatch.of([src], [via], [dst], [latency], [e]))
         return self._observe_rows([int(src)], [int(via)], [int(dst)], [float(latency)], [e])
 
     def _account(self, m: int, td_abs_mean: float, td_abs_max: float) -> None:
@@ -631,6 +652,8 @@ class Engine:
             self.N[src, :, j] = 0
         else:
             self.Q[src, :, j] = ceil
+        if self._variant is not None:
+            self._variant.on_link(self, src, j, up)
         self._live_spt = None
         self._dirty[:] = True
         return True
@@ -702,6 +725,8 @@ class Engine:
         """Recompute tables for every destination touched since the last call."""
         if now is not None:
             self.now = float(now)
+        # the values compared: Q, or a variant's (predictive marks moving destinations dirty)
+        self._qdec = self.Q if self._variant is None else self._variant.decision_values(self)
         ds = np.flatnonzero(self._dirty)
         self._dirty[:] = False
         self._decisions += 1
@@ -811,7 +836,7 @@ class Engine:
         step = max(1, (1 << 19) // max(1, m * K))   # about 4 MB of Q per block
         for x0 in range(0, n, step):
             x1 = min(n, x0 + step)
-            qb = self.Q[x0:x1, sel, :]
+            qb = self._qdec[x0:x1, sel, :]
             bb, bv = best[x0:x1], bestv[x0:x1]
             for c in range(K):
                 col = qb[:, :, c]
@@ -830,7 +855,7 @@ class Engine:
         n, K = self.n, self.k
         xs = np.arange(n)[:, None]
         sl = np.maximum(slot, 0)
-        v = _flat(self.Q).take((xs * n + ds[None, :]) * K + sl)
+        v = _flat(self._qdec).take((xs * n + ds[None, :]) * K + sl)
         ok = (slot >= 0) & _flat(self.live).take(xs * K + sl)
         return np.where(ok, v, np.inf)
 
@@ -865,6 +890,8 @@ class Engine:
         out.update({k: getattr(self, k) for k in self._SCALARS})
         out["rejected"] = dict(self._rejected)
         out["topology"] = self.topo.digest
+        if self._variant is not None:
+            out["variant"] = self._variant.export()
         return out
 
     @classmethod
@@ -884,6 +911,8 @@ class Engine:
             setattr(eng, k, type(getattr(eng, k))(state[k]))
         eng._rejected = {r: int(state["rejected"].get(r, 0)) for r in REJECT_REASONS}
         eng._live_spt = None
+        if eng._variant is not None and "variant" in state:
+            eng._variant.restore(state["variant"])
         # saved under another ceiling: restore the invariants the update relies on
         # (present slots within [0, ceiling], dead ones exactly at it, absent ones inf)
         ceil = settings.ceiling_s
@@ -897,7 +926,9 @@ class Engine:
     def same_state(self, other: Engine) -> bool:
         """Bit-for-bit equality of learned state (for restart and replay checks)."""
         return all(np.array_equal(getattr(self, k), getattr(other, k), equal_nan=True)
-                   for k in ("Q", "N", "td", "greedy", "eps", "alt", "live"))
+                   for k in ("Q", "N", "td", "greedy", "eps", "alt", "live")) and (
+            self._variant is None and other._variant is None
+            or self._variant is not None and self._variant.same(other._variant))
 
 
 def _flat(a: np.ndarray) -> np.ndarray:

@@ -884,7 +884,8 @@ def _run(args: argparse.Namespace, topo: Any, topo_path: str, events: list[Event
             return 2
         cfg = _config.from_mapping(doc, "lab config")
         lab = Lab(topo, doc, run_dir=run_dir, packet_bytes=args.packet_bytes)
-        lab.log(f"building {topo.n} namespaces and {len(lab.pairs)} veth pairs (prefix {PREFIX}{lab.pid}-)")
+        lab.log(f"building {topo.n} namespaces and {len(lab.pairs)} veth pairs (prefix "
+                f"{PREFIX}{lab.pid}-, run directory {run_dir})")
         lab.build()
         lab.start_service()
         lab.start_agents()

@@ -11,6 +11,7 @@ import argparse
 import csv
 import json
 import os
+import re
 import shutil
 import signal
 import subprocess
@@ -48,8 +49,8 @@ REASON = _lab_unavailable()
 needs_lab = pytest.mark.skipif(REASON is not None, reason=f"lab tests skipped: {REASON}")
 
 
-def lab_processes() -> list[str]:
-    """Command lines of live processes that belong to some lab run (its run dir is in them)."""
+def lab_processes(run_dir: str) -> list[str]:
+    """Command lines of live processes of the lab run with this run directory."""
     out = []
     for pid in os.listdir("/proc"):
         if not pid.isdigit():
@@ -59,15 +60,25 @@ def lab_processes() -> list[str]:
                 cmd = fh.read().replace(b"\0", b" ").decode(errors="replace")
         except OSError:
             continue
-        if f"/tmp/{L.PREFIX}-" in cmd and "routerd" in cmd:
+        if run_dir in cmd and "routerd" in cmd:
             out.append(f"{pid}: {cmd}")
     return out
 
 
-def assert_nothing_left(pid: int) -> None:
+def run_dir_of(stderr: str) -> str:
+    m = re.search(r"run directory (/tmp/\S+?)\)", stderr)
+    assert m, stderr
+    return m.group(1)
+
+
+def assert_nothing_left(pid: int, stderr: str) -> None:
+    """No namespace of this lab (named by its pid) and no process of this lab (its run dir
+    is on their command lines) is left; other labs running meanwhile are not looked at."""
     ns = [n for n in L.list_namespaces() if n.startswith(f"{L.PREFIX}{pid}-")]
     assert ns == [], f"namespaces left behind: {ns}"
-    assert lab_processes() == []
+    rd = run_dir_of(stderr)
+    assert lab_processes(rd) == []
+    assert not os.path.exists(rd)
 
 
 def run_lab(out: str, *extra: str, duration: float = 4.0, rate: float = 150.0,
@@ -174,7 +185,7 @@ def test_lab_delivers_end_to_end_with_the_simulators_keys(outdir: str) -> None:
     # real sockets across namespaces: every agent forwarded or delivered, over veth
     assert all(a["counts"]["delivered"] > 0 for a in x["agents"].values())
     assert sum(t["packets"] for t in x["tc"]) >= s["lab_forwarded"]
-    assert_nothing_left(pid)
+    assert_nothing_left(pid, r.stderr)
 
 
 @pytest.mark.slow
@@ -196,7 +207,7 @@ def test_capacity_cut_moves_routes_and_delivery_recovers(outdir: str) -> None:
     post = [dict(map(tuple, tb["a1"]["b1"])).get("m", 0.0) for t, tb in samples if t > 4.0]
     assert min(post) < 0.5, post
     assert s["dropped_buffer"] >= 0 and x["tc"]
-    assert_nothing_left(pid)
+    assert_nothing_left(pid, r.stderr)
 
 
 @pytest.mark.slow
@@ -219,7 +230,7 @@ def test_agents_forward_through_a_service_kill_and_resynchronise(outdir: str) ->
         assert a["counts"]["resyncs"] >= 1, name
         assert a["table"]["epoch"] == e2, name           # on the new service's tables
         assert not a["nonstop"], name
-    assert_nothing_left(pid)
+    assert_nothing_left(pid, r.stderr)
 
 
 @pytest.mark.slow
@@ -251,7 +262,7 @@ def test_ctrl_c_tears_everything_down(outdir: str) -> None:
     assert p.returncode == 130, err
     assert "interrupted" in err
     assert not os.path.exists(os.path.join(outdir, "summary.json"))
-    assert_nothing_left(p.pid)
+    assert_nothing_left(p.pid, "".join(seen) + err)
 
 
 @pytest.mark.slow
@@ -285,4 +296,4 @@ def test_scenario_link_failure_and_side_by_side_with_the_simulator(outdir: str) 
     early = sum(1 for rw in rows if 8.5 <= float(rw["inject_s"]) < 10.0)
     late = sum(1 for rw in rows if 10.0 <= float(rw["inject_s"]) < 11.5)
     assert late > 1.2 * early
-    assert_nothing_left(pid)
+    assert_nothing_left(pid, r.stderr)
