@@ -264,6 +264,7 @@ class Engine:
         self._slots = topology.slots.astype(np.int64)
         self._present = self._slots >= 0
         self._slot_of = topology.slot_of
+        self._slot_flat = np.ascontiguousarray(topology.slot_of).reshape(-1)
         self._link_delay = np.where(self._present, topology.delay_s[np.maximum(topology.slot_link, 0)], 0.0)
         self.live = self._present.copy()
         self._static_dist = topology.shortest_delays()
@@ -336,6 +337,20 @@ class Engine:
         n = self.n
         s, v, d = b.src, b.via, b.dst
         lat, est = b.latency, b.estimate
+        if len(s) and s.dtype == v.dtype == d.dtype == np.int64:
+            # the all-good case by reductions alone (no per-row masks): negatives wrap to
+            # huge as uint64; NaN fails the latency compares; fmin/fmax skip absent (NaN)
+            # estimates; any doubt falls through to the per-row pass below
+            u = np.uint64
+            if (int(s.view(u).max()) < n and int(v.view(u).max()) < n
+                    and int(d.view(u).max()) < n):
+                slot = self._slot_flat.take(s * n + v).astype(np.int64)
+                if (int(slot.min()) >= 0 and not (s == d).any()
+                        and float(lat.min()) >= 0.0 and float(lat.max()) < math.inf
+                        and not float(np.fmin.reduce(est)) < 0.0
+                        and float(np.fmax.reduce(est)) != math.inf
+                        and (self.live.all() or self._live_flat_take(s * self.k + slot))):
+                    return None, slot
         if s.dtype == v.dtype == d.dtype == np.int64:  # negatives wrap to huge: one compare each
             inr = (s.view(np.uint64) < n) & (v.view(np.uint64) < n) & (d.view(np.uint64) < n)
         else:
@@ -360,6 +375,10 @@ class Engine:
         code[~nb] = _R["not_neighbour"]
         code[~inr] = _R["unknown_node"]
         return code, slot
+
+    def _live_flat_take(self, idx: np.ndarray) -> bool:
+        """Whether every flat (node * K + slot) index in idx is a live slot."""
+        return bool(_flat(self.live).take(idx).all())
 
     def observe(self, batch: HopBatch, now: float | None = None,
                 confidence: np.ndarray | None = None) -> ObserveResult:
@@ -400,7 +419,7 @@ class Engine:
             self._apply_rounds(good.src, good.via, good.dst, slot, good.latency, good.estimate, tde)
         self._dirty[good.dst] = True
         a = np.abs(tde)
-        self._account(m, float(a.mean()), float(a.max()))
+        self._account(m, float(a.sum()) / m, float(a.max()))   # sum / m: np.mean's own value
         return ObserveResult(m, rejected, tde)
 
     def observe_one(self, src: int, via: int, dst: int, latency: float,
@@ -550,10 +569,11 @@ class Engine:
         at_d = v == d
         nan = np.isnan(est)
         need = nan & ~at_d
-        rkey = np.where(need, v * n + d, sentinel)
+        rrow = v * n + d                            # the (y, d) row read (valid even if unused)
+        rkey = np.where(need, rrow, sentinel)
         kflat = wkey * K + slot
         tail0 = np.where(nan | at_d, 0.0, est)      # y == d: nothing left to go
-        cols = (kflat, wkey, rkey, need, tail0, lat)
+        cols = (kflat, wkey, rkey, rrow, need, tail0, lat)
         rem = np.arange(len(f))
         first = True
         while rem.size:
@@ -604,16 +624,16 @@ class Engine:
         Qf, Nf, tdf = _flat(self.Q), _flat(self.N), _flat(self.td)
         s = self.settings
         if rows is None:
-            k, w, r, need, tail, la = cols
+            k, w, _, rr, need, tail, la = cols
         else:
-            k, w, r, need, tail, la = (c[rows] for c in cols)
+            k, w, _, rr, need, tail, la = (c[rows] for c in cols)
         # min over y's slots: absent slots hold inf and dead ones exactly the ceiling,
-        # so no live mask is needed (an all-dead node reads the ceiling, as it should)
+        # so no live mask is needed (an all-dead node reads the ceiling, as it should).
+        # Rows that read nothing get a min too (of a valid row) and drop it: no masking
         if need.all():
-            tail = _row_min(self.Q.reshape(n * n, K).take(r, axis=0))
+            tail = _row_min(self.Q.reshape(n * n, K).take(rr, axis=0))
         elif need.any():
-            tail = tail.copy()
-            tail[need] = _row_min(self.Q.reshape(n * n, K).take(r[need], axis=0))
+            tail = np.where(need, _row_min(self.Q.reshape(n * n, K).take(rr, axis=0)), tail)
         target = la + tail
         old = Qf.take(k)
         nn = Nf.take(k)
@@ -623,7 +643,8 @@ class Engine:
         alpha = self._alpha_table(int(nn.max())).take(nn)
         new = alpha * delta
         new += old
-        np.clip(new, 0.0, s.ceiling_s, out=new)
+        np.minimum(new, s.ceiling_s, out=new)       # = np.clip(new, 0, ceiling): new is finite
+        np.maximum(new, 0.0, out=new)
         Qf[k] = new
         sm = s.td_smoothing
         tdf[w] = (1.0 - sm) * tdf.take(w) + sm * np.abs(delta)
