@@ -62,6 +62,16 @@ SCHEMA: dict[str, Field] = {
     "engine.explore.td_ref": F(float, 0.2, "relative TD error (|delta| / estimate) at which the share reaches max_rate", lo=0, lo_open=True, tunable=True),
     "engine.explore.td_smoothing": F(float, 0.1, "weight of a new |TD error| in its moving average", lo=0, hi=1, lo_open=True, tunable=True),
     "engine.explore.visits_half": F(float, 50.0, "visits at which the share is halfway down to min_rate", lo=0, lo_open=True, tunable=True),
+    # -- engine: published refinements (routerd/variants.py) ---------------------------
+    "engine.variant": F(str, "plain", "learning rule: plain Q-routing, full_echo (all neighbours' estimates), predictive (recovery-rate prediction), dual (backward rows carried by packets), confidence (confidence-weighted steps)", choices=("plain", "full_echo", "predictive", "dual", "confidence")),
+    "engine.full_echo.damping": F(float, 0.5, "full_echo: step multiplier of the echo updates of the hops not taken (1 = the published rule)", lo=0, hi=1, lo_open=True, tunable=True),
+    "engine.full_echo.latency_smoothing": F(float, 0.2, "full_echo: weight of a new hop latency in a link's expected latency", lo=0, hi=1, lo_open=True, tunable=True),
+    "engine.predictive.beta": F(float, 0.7, "predictive: learning rate of the recovery rate R", lo=0, hi=1, lo_open=True, tunable=True),
+    "engine.predictive.gamma": F(float, 0.9, "predictive: decay of R when an estimate grows", lo=0, hi=1, tunable=True),
+    "engine.confidence.decay": F(float, 0.9, "confidence: lambda, the factor an unused entry's confidence keeps per decay interval", lo=0, hi=1, lo_open=True, tunable=True),
+    "engine.confidence.decay_interval_s": F(float, 1.0, "confidence: seconds per decay step", lo=0, lo_open=True, tunable=True),
+    "engine.confidence.initial": F(float, 0.0, "confidence: the confidence of a starting estimate", lo=0, hi=1, tunable=True),
+    "engine.confidence.min_step": F(float, 0.05, "confidence: floor of the step size max(C_new, 1 - C_old) (0 = the published rule)", lo=0, hi=1, tunable=True),
     # -- service -----------------------------------------------------------------------
     "service.ingest": F(str, "tcp://127.0.0.1:7301", "ingest endpoint (ROUTER)"),
     "service.pull": F(str, None, "fire-and-forget ingest endpoint (PULL)", nullable=True),

@@ -58,6 +58,7 @@ from . import journal as J
 from . import topology as _topology
 from . import wire
 from .engine import Decision, Engine, EngineSettings
+from . import variants as _variants
 from .errors import InputError, Problem
 
 #: config key → EngineSettings field (the inverse of EngineSettings.from_config; a test
@@ -71,6 +72,7 @@ ENGINE_KEYS: dict[str, str] = {
     "engine.explore.max_rate": "explore_max", "engine.explore.cap": "explore_cap",
     "engine.explore.td_ref": "td_ref", "engine.explore.td_smoothing": "td_smoothing",
     "engine.explore.visits_half": "visits_half",
+    **{key: f for f, (key, _) in _variants.FIELDS.items()},
 }
 _KEY_OF = {f: k for k, f in ENGINE_KEYS.items()}
 RECORDED = "recorded"

@@ -123,6 +123,7 @@ def run_core(
         table = [[-2] * n for _ in range(n)]
     next_hop = policy.next_hop
     on_hop = policy.on_hop if type(policy).on_hop is not Policy.on_hop else None
+    hop_flow = bool(getattr(policy, "hop_flow", False))  # on_hop(..., flow) as well
     tick_iv = policy.tick_interval_s
 
     # packet state, parallel lists indexed by packet id
@@ -201,7 +202,10 @@ def run_core(
                 continue
             y = p_node[c]
             if on_hop is not None:
-                on_hop(p_prev[c], y, d, t - p_enq[c], t)
+                if hop_flow:
+                    on_hop(p_prev[c], y, d, t - p_enq[c], t, p_flow[c])  # type: ignore[call-arg]
+                else:
+                    on_hop(p_prev[c], y, d, t - p_enq[c], t)
             if y == d:
                 t0 = p_t0[c]
                 if t0 >= warm:

@@ -134,6 +134,12 @@ class QRouting(Policy):
         self.rows_rejected = 0
         self.ticks = 0
         self.estimate_mode = settings["sim.estimate"] if settings is not None else "published"
+        # dual (routerd.variants): a packet also carries its sender's estimate back towards
+        # its source; the source is the flow id's pair, (src * n + dst) * flows_per_pair + r
+        self.hop_flow = es.variant == "dual"
+        self._flows_per_src = n * (int(settings["sim.flows_per_pair"]) if settings is not None else 8)
+        self._nbrs = [set(nb) for nb in topology.neighbours]
+        self.backward_rows = 0
         self._refresh(range(n))
         self._V = self._estimates()
 
@@ -205,9 +211,14 @@ class QRouting(Policy):
         return hops[-1]
 
     # -- learning ------------------------------------------------------------------
-    def on_hop(self, x: int, y: int, d: int, latency_s: float, now: float) -> None:
+    def on_hop(self, x: int, y: int, d: int, latency_s: float, now: float, flow: int = -1) -> None:
         if x >= 0:
             self._rows.append((now + self._prop[x][y], x, y, d, latency_s, self._V[y][d]))
+            if flow >= 0:  # dual: the backward row, at y about x towards the packet's source
+                s = flow // self._flows_per_src
+                if s != y and x in self._nbrs[y]:
+                    self._rows.append((now, y, x, s, latency_s, self._V[x][s]))
+                    self.backward_rows += 1
 
     def tick(self, now: float) -> None:
         rows = self._rows
