@@ -104,9 +104,9 @@ def one_input(data: bytes) -> None:
         code = str(rep["error"]).split(":", 1)[0]
         if code not in CODES:
             raise AssertionError(f"error code outside the fixed set: {rep}")
-    elif isinstance(out, wire.Ingest) and SVC.counters.batches["duplicate"] == dups:
-        if rep["accepted"] + len(rep["rejected"]) != out.rows_total:
-            raise AssertionError(f"rows do not add up: {rep} for {out.rows_total} rows")
+    elif (isinstance(out, wire.Ingest) and SVC.counters.batches["duplicate"] == dups
+          and rep["accepted"] + len(rep["rejected"]) != out.rows_total):
+        raise AssertionError(f"rows do not add up: {rep} for {out.rows_total} rows")
     SVC._commit()
 
 

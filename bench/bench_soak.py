@@ -30,8 +30,8 @@ import zmq
 HERE = os.path.dirname(os.path.abspath(__file__))
 sys.path.insert(0, os.path.join(HERE, ".."))
 
-from routerd import config, wire  # noqa: E402
-from routerd.service import load_topology  # noqa: E402
+from routerd import config, wire
+from routerd.service import load_topology
 
 RATE_BATCHES_S = 200
 ROWS = 100
