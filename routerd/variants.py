@@ -135,8 +135,8 @@ def from_config(cfg: Any) -> dict[str, Any]:
 
 def predict(Q: np.ndarray, B: np.ndarray, R: np.ndarray, U: np.ndarray, now: float) -> np.ndarray:
     """Predictive Q-routing's decision value ``max(Q + (now - U) R, B)`` (Choi & Yeung 1996)."""
-    with np.errstate(invalid="ignore"):
-        p = np.maximum(Q + (now - U) * R, B)
+    with np.errstate(invalid="ignore"):   # B <= Q by the update; min() keeps it so after a clip
+        p = np.maximum(Q + (now - U) * R, np.minimum(B, Q))
     return np.where(np.isfinite(Q), p, Q)   # absent slots stay inf
 
 
