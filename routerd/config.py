@@ -141,6 +141,13 @@ SCHEMA: dict[str, Field] = {
     "security.allow": F(str, None, "allow file (YAML): reporter name -> public_key (Z85 or a .key file) and nodes it may speak for", nullable=True),
     "security.control_readonly": F(str, None, "a second control endpoint without CURVE serving read-only ops only (tables, estimates, health, nodes)", nullable=True),
     "service.storage_retry_s": F(float, 1.0, "after a journal write failed (disk full, unwritable), how often the service tries to resume", lo=0.01),
+    # -- sharding by destination (routerd/shard.py: serve --shards N, --shard K/N) ---------
+    "shard.map": F(str, None, "YAML map node -> shard index (nodes it does not name: crc32 of the name mod N); the front and every worker need the same one", nullable=True),
+    "shard.timeout_s": F(float, 30.0, "front: a batch whose pieces are not all acknowledged by then is answered unavailable (the reporter sends it again)", lo=0, lo_open=True),
+    "shard.hello_interval_s": F(float, 1.0, "worker: how often it announces itself to the front (--upstream); 3 missed announcements count as down", lo=0.01),
+    "shard.start_timeout_s": F(float, 60.0, "front: how long to wait for every worker's first announcement at start-up", lo=0, lo_open=True),
+    "shard.restart_delay_s": F(float, 1.0, "front with local workers: a worker that exits is started again after this delay", lo=0),
+    "shard.control_timeout_s": F(float, 5.0, "front: how long a control request (or a metrics scrape) waits for each worker", lo=0, lo_open=True),
 }
 
 

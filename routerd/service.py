@@ -121,6 +121,9 @@ def configure(p: argparse.ArgumentParser) -> None:
                    "and the nodes it may report for; needs --server-key")
     p.add_argument("--control-readonly", metavar="EP", help="a second control endpoint without "
                    "CURVE for read-only ops (tables, estimates, health, nodes); default: off")
+    from . import shard as _shard
+
+    _shard.configure(p)   # --shards N, --shard K/N, --upstream, --shard-listen
 
 
 def load_config(args: argparse.Namespace) -> _config.Config:
@@ -159,6 +162,10 @@ def load_topology(cfg: _config.Config) -> _topology.Topology:
 
 
 def run(args: argparse.Namespace) -> int:
+    if getattr(args, "shards", None) is not None or getattr(args, "shard", None) is not None:
+        from . import shard as _shard   # the front or one worker (routerd/shard.py)
+
+        return _shard.run(args)
     try:
         cfg = load_config(args)
         topo = load_topology(cfg)
@@ -808,6 +815,7 @@ class Service:
                 env, body = parts[:1], parts[1:]
             if body and body[0] == b"" and len(body) > 1:
                 env, body = env + [b""], body[1:]
+            env, body = self._envelope(env, body)
             bno: int | None = None
             if len(body) != 1:
                 self.counters.refuse("extra_frames")
@@ -910,6 +918,15 @@ class Service:
             self._touched = True
         self.dedup.put(ing.reporter, ing.batch, accepted, rejected)
         return wire.encode_ack(ing.batch, accepted, rejected)
+
+    def _envelope(self, env: list[bytes], body: list[bytes]) -> tuple[list[bytes], list[bytes]]:
+        """Hook (routerd.shard's worker): move leading body frames into the reply envelope."""
+        return env, body
+
+    def _routes(self, x: int) -> dict[str, list[list[Any]]]:
+        """Hook (routerd.shard's worker): the table of node x as published."""
+        assert self.engine is not None
+        return wire.routes_by_name(self.engine, x)
 
     def _send_ack(self, zmq: Any, sock: Any, parts: list[Any]) -> None:
         try:
@@ -1109,7 +1126,7 @@ class Service:
         n = 0
         for x in nodes:
             self.seq[x] += 1
-            frames = wire.table_message(names[x], self.seq[x], self.epoch, wire.routes_by_name(eng, x))
+            frames = wire.table_message(names[x], self.seq[x], self.epoch, self._routes(x))
             try:
                 pub.send_multipart(frames, zmq.NOBLOCK)
             except zmq.Again:  # PUB drops rather than blocks; subscribers see the seq gap

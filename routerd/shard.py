@@ -1,0 +1,1250 @@
+"""Scale-out by destination: the destination map, the shard worker, and the front.
+
+Owns: which shard owns which destination (:class:`ShardMap`: a stable hash of the node
+name, or a configured map), the worker (:class:`ShardWorker`, a :class:`Service` that
+publishes and answers only for its own destinations and announces itself upstream), the
+front (:class:`Front`: the one ingest, tables, control and metrics endpoint in front of N
+workers), the supervisor that runs N local workers (``routerd serve --shards N``), the
+merge of per-shard tables (live and from the shards' journals), and a reporter that splits
+by destination itself (:class:`ShardReporter`).  Must not import: the simulator.  Every
+message shape is :mod:`routerd.wire`'s; every journal access is :mod:`routerd.journal`'s.
+
+Theory of operation
+-------------------
+Exactness.  Q-routing's update for destination d reads and writes only d's estimates
+(``Q[:, d, :]``, ``N[:, d, :]``, ``td[:, d]``), and :meth:`Engine.decide` decides each
+destination from its own column (greedy, hysteresis, loop fallback, exploration); the
+only shared state is the link state, and every link row goes to every worker.  So a worker
+that receives exactly the hop rows whose destination it owns, in the same order, plus all
+link rows, holds for its destinations the very values one process would hold — bit for
+bit — as long as ``decide`` runs at the same places in each destination's stream (it
+does when a reporter waits for each acknowledgement, and ``service.debounce_s`` is 0).
+Each worker still computes ``decide`` for other destinations after a link change (every
+destination is marked due then); that work is wasted but harmless: those values are never
+published or answered.
+
+Ingest path.  The front decodes each frame once (:func:`wire.decode_ingest`, the same
+checks as one process: frame errors and decode-time row rejections are answered by the
+front), applies the per-reporter rate limits, and splits the decoded rows by the owner of
+their destination.  Each non-empty piece is a columnar batch with the *original* reporter
+name and batch number (so each worker's duplicate window works as one process's does),
+sent to its worker behind a token frame ``[token, b"", payload]`` that the worker echoes
+(:meth:`ShardWorker._envelope`) — so a reply is matched to its piece even after a worker
+restart lost some.  The front acknowledges a batch when every piece is acknowledged (=
+journaled by its worker), with one ack in the original row numbering: decode-time
+rejections, each piece's rejections mapped back (piece row r < h_w is hop row
+``rows_w[r]``, a later one is link row ``link_rows[r - h_w]``), ``accepted`` = every
+piece's accepted hop rows plus the accepted link rows once.  The split depends only on the
+batch's bytes, so a re-sent batch is split the same way and each worker re-acknowledges
+its piece from its duplicate window: the combined ack is the same.  An error from any
+piece (a worker whose journal cannot be written) or no answer within
+``shard.timeout_s`` answers the batch with ``unavailable`` (nothing is acknowledged; the
+pieces that did get journaled are duplicates when the reporter sends the batch again).
+A piece for a worker that is down waits in the front's queue (up to ``service.hwm_msgs``
+per worker) and is delivered when the worker is back.
+
+Guards.  The row guards (floor, ceiling, jump) run in each worker on its rows: the floor
+and the ceiling look at one row, so they decide as one process does; the jump guard keeps
+a reference per link from the rows each worker sees (off by default; with it on, a
+sharded service holds rows back per shard).  Rate limits are per reporter and run in the
+front (workers run with them off).
+
+Tables.  Each worker publishes, per node, the routes for its own destinations, with its
+own seq.  The front keeps the latest part per (node, worker) and publishes, per node, one
+message with all destinations and its own ``seq`` (+1 per node per publication, one
+epoch per front run): the protocol of one process.  While a worker is down its last part
+stays in the merged tables and the other workers' changes keep going out.
+
+Control.  ``nodes`` is answered by the front; ``tables``, ``estimates``, ``snapshot``,
+``link`` and ``reload`` go to every worker and their answers are merged (``link`` and
+``reload``: every worker applies them); ``health`` adds each worker's health under
+``shards``.  Metrics: the front's page carries every worker's series with a ``shard``
+label (``"0"`` .. ``"N-1"``), and the front's own with ``shard="front"``.
+
+Workers and hosts.  ``routerd serve --shard K/N`` runs worker K of N with its state in
+``STATE/shard-K-of-N``.  ``--upstream EP`` is the front's *shard endpoint* (a PULL the
+front binds, ``--shard-listen``): the worker announces itself there every
+``shard.hello_interval_s`` with its endpoints, topology and epoch, and the front connects
+to the endpoints it announces.  ``routerd serve --shards N`` starts the front and N local
+workers on ipc:// endpoints (restarting one that dies); with ``--external-workers`` it
+starts none and waits for N workers to announce themselves (other hosts).
+"""
+from __future__ import annotations
+
+import argparse
+import contextlib
+import os
+import re
+import signal
+import struct
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+import zlib
+from collections import OrderedDict
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from . import __version__, wire
+from . import config as _config
+from . import topology as _topology
+from .errors import InputError
+
+#: Leading bytes of the token frame the front puts before each piece (echoed back).
+TOKEN_PREFIX = b"rdshard:"
+_TOKEN = struct.Struct("<Q")
+_SHARD_RE = re.compile(r"^(\d+)/(\d+)$")
+#: Frame reasons the front adds (whole-batch refusals).
+FRONT_FRAME_ERRORS = ("unavailable", "rate_limited")
+
+
+# ---- the destination map ---------------------------------------------------------------
+def stable_hash(name: str) -> int:
+    """CRC-32 of the UTF-8 name: the same on every host and Python run (unlike hash())."""
+    return zlib.crc32(name.encode("utf-8"))
+
+
+@dataclass(frozen=True)
+class ShardMap:
+    """Owner shard of every destination: ``owner[d]`` for node index d."""
+
+    n_shards: int
+    owner: np.ndarray
+    source: str = "hash"
+
+    @classmethod
+    def build(cls, topo: _topology.Topology, n_shards: int, map_file: str | None = None) -> ShardMap:
+        """By :func:`stable_hash` modulo N, or from a YAML map file ``{node: shard}`` (nodes
+        it does not name fall back to the hash).  Raises InputError naming the entry."""
+        if n_shards < 1:
+            raise InputError(f"shards: {n_shards} is below 1")
+        owner = np.array([stable_hash(x) % n_shards for x in topo.nodes], dtype=np.int64)
+        src = f"crc32(name) mod {n_shards}"
+        if map_file:
+            import yaml
+
+            try:
+                with open(map_file, encoding="utf-8") as fh:
+                    m = yaml.safe_load(fh) or {}
+            except OSError as e:
+                raise InputError(f"{map_file}: {e.strerror}") from None
+            except yaml.YAMLError as e:
+                raise InputError(f"{map_file}: not YAML: {e}") from None
+            if not isinstance(m, dict):
+                raise InputError(f"{map_file}: expected a map node -> shard, got a {type(m).__name__}")
+            for k, v in m.items():
+                if k not in topo.index:
+                    raise InputError(f"{map_file}: {k!r} is not a node of topology {topo.name!r}")
+                if not isinstance(v, int) or isinstance(v, bool) or not 0 <= v < n_shards:
+                    raise InputError(f"{map_file}: {k}: {v!r} is not a shard in 0..{n_shards - 1}")
+                owner[topo.index[k]] = v
+            src = f"{map_file} (else crc32 mod {n_shards})"
+        return cls(n_shards, owner, src)
+
+    def owned(self, k: int) -> np.ndarray:
+        """Node indices (destinations) shard k owns, ascending."""
+        return np.flatnonzero(self.owner == k)
+
+    def counts(self) -> list[int]:
+        return np.bincount(self.owner, minlength=self.n_shards).tolist()
+
+
+def parse_shard(spec: str) -> tuple[int, int]:
+    """``"K/N"`` → (K, N) with 0 <= K < N; ValueError naming the rule."""
+    m = _SHARD_RE.match(spec or "")
+    if not m or not 0 <= int(m.group(1)) < int(m.group(2)):
+        raise ValueError(f"--shard {spec!r} is not K/N with 0 <= K < N (e.g. 0/2)")
+    return int(m.group(1)), int(m.group(2))
+
+
+def shard_dir(state_root: str, k: int, n: int) -> str:
+    return os.path.join(state_root, f"shard-{k}-of-{n}")
+
+
+def owned_routes(engine: Any, x: int, dsts: np.ndarray) -> dict[str, list[list[Any]]]:
+    """:func:`wire.routes_by_name` restricted to the destinations ``dsts``."""
+    names = engine.topo.nodes
+    out: dict[str, list[list[Any]]] = {}
+    for d in dsts.tolist():
+        if d != x:
+            ws = engine.weights(x, d)
+            if ws:
+                out[names[d]] = [[names[y], float(w)] for y, w in ws]
+    return out
+
+
+def merge_tables(parts: Iterable[Mapping[str, Mapping[str, Any]]]) -> dict[str, dict[str, Any]]:
+    """Per-shard ``{node: {dst: weights}}`` maps → one (destinations are disjoint)."""
+    out: dict[str, dict[str, Any]] = {}
+    for p in parts:
+        for node, routes in p.items():
+            out.setdefault(node, {}).update(routes)
+    return out
+
+
+def replay_shards(state_root: str, topo: _topology.Topology, n_shards: int,
+                  settings: Any = None, map_file: str | None = None) -> dict[str, dict[str, Any]]:
+    """Every shard's snapshot + journal (the offline path, :func:`journal.restore`) → the
+    merged tables, as the control ``tables`` reply of the front would give them."""
+    from . import journal as _journal
+    from .engine import EngineSettings
+
+    smap = ShardMap.build(topo, n_shards, map_file)
+    parts = []
+    for k in range(n_shards):
+        r = _journal.restore(shard_dir(state_root, k, n_shards), topo, settings or EngineSettings())
+        own = smap.owned(k)
+        parts.append({topo.nodes[x]: owned_routes(r.engine, x, own) for x in range(topo.n)})
+    return merge_tables(parts)
+
+
+# ---- command line -------------------------------------------------------------------------
+def configure(p: argparse.ArgumentParser) -> None:
+    """The sharding flags of ``routerd serve`` (called by :func:`service.configure`)."""
+    g = p.add_argument_group("sharding (split the destinations over several workers)")
+    g.add_argument("--shards", metavar="N", type=int, help="run a front and N workers: each "
+                   "worker owns the destinations whose name hashes to it (or shard.map); the "
+                   "front keeps the ingest, tables, control and metrics endpoints")
+    g.add_argument("--shard", metavar="K/N", help="run worker K of N only (state in "
+                   "STATE/shard-K-of-N); give --upstream to announce it to a front")
+    g.add_argument("--upstream", metavar="EP", help="worker: the front's shard endpoint "
+                   "(its --shard-listen); the worker announces its endpoints there")
+    g.add_argument("--shard-listen", metavar="EP", help="front: where workers announce "
+                   "themselves (default: ipc:// in the state dir; tcp://HOST:PORT for "
+                   "workers on other hosts)")
+    g.add_argument("--external-workers", action="store_true", help="front: start no "
+                   "workers; wait for N to announce themselves on --shard-listen")
+
+
+def run(args: argparse.Namespace) -> int:
+    from . import service as _service
+
+    try:
+        cfg = _service.load_config(args)
+        topo = _service.load_topology(cfg)
+        if args.shard is not None:
+            if args.shards is not None:
+                raise InputError("give --shards N (front and workers) or --shard K/N (one "
+                                 "worker), not both")
+            k, n = parse_shard(args.shard)
+            smap = ShardMap.build(topo, n, cfg["shard.map"])
+        else:
+            if args.shards < 1:
+                raise InputError(f"--shards {args.shards} is below 1")
+            if args.upstream:
+                raise InputError("--upstream belongs to a worker (--shard K/N)")
+            smap = ShardMap.build(topo, args.shards, cfg["shard.map"])
+        if cfg["security.server_key"] or cfg["security.allow"]:
+            raise InputError("sharding does not carry CURVE yet: run a sharded service "
+                             "without --server-key/--allow (on one host its internal "
+                             "endpoints are ipc:// files in the state dir)")
+    except (InputError, ValueError) as e:
+        print(f"routerd serve: cannot start:\n{e}", file=sys.stderr)
+        return 2
+    if args.shard is not None:
+        return _run_worker(args, cfg, topo, smap, k)
+    front = Front(cfg, topo, smap, args)
+    try:
+        front.start()
+    except _service.StartError as e:
+        print(f"routerd serve: cannot start: {e}", file=sys.stderr)
+        front.close()
+        return 2
+    except BaseException:
+        front.close()
+        raise
+    return front.serve()
+
+
+# ---- the worker --------------------------------------------------------------------------
+def _run_worker(args: argparse.Namespace, cfg: _config.Config, topo: _topology.Topology,
+                smap: ShardMap, k: int) -> int:
+    from . import service as _service
+
+    n = smap.n_shards
+    over = {"service.state_dir": shard_dir(cfg["service.state_dir"], k, n),
+            # rate limits are the front's (per reporter, whole batches)
+            "guards.rate.batches_per_s": 0.0, "guards.rate.rows_per_s": 0.0}
+    wcfg = cfg.with_overrides(over, where=f"shard {k}/{n}")
+    svc = _worker_class()(wcfg, topo, smap, k, args.upstream, reload_args=args)
+    try:
+        svc.start()
+    except _service.StartError as e:
+        print(f"routerd serve: cannot start: {e}", file=sys.stderr)
+        svc.close()
+        return 2
+    return svc.serve()
+
+
+def _worker_class() -> type:
+    from .service import Service
+
+    class _ShardWorker(Service):
+        """A :class:`Service` owning the destinations of shard k of n."""
+
+        def __init__(self, cfg: _config.Config, topo: _topology.Topology, smap: ShardMap,
+                     k: int, upstream: str | None, **kw: Any):
+            super().__init__(cfg, topo, **kw)
+            self.smap = smap
+            self.shard = k
+            self.own = smap.owned(k)
+            self._own_names = frozenset(topo.nodes[d] for d in self.own.tolist())
+            self.upstream = upstream
+            self._hello: Any = None
+            self._next_hello = 0.0
+
+        # -- what the worker publishes and answers: its own destinations --------------
+        def _routes(self, x: int) -> dict[str, list[list[Any]]]:
+            return owned_routes(self.engine, x, self.own)
+
+        def _control(self, op: str, req: Mapping[str, Any]) -> dict[str, Any]:
+            eng = self.engine
+            if op == "tables":
+                return {"tables": {self.topo.nodes[x]: owned_routes(eng, x, self.own)
+                                   for x in range(self.topo.n)}}
+            if op == "estimates":
+                est = wire.estimates_by_name(eng, self.topo.index[req["node"]])
+                return {"estimates": {d: v for d, v in est.items() if d in self._own_names}}
+            out = super()._control(op, req)
+            if op == "health":
+                out["shard"] = self._shard_info()
+            return out
+
+        def health(self) -> dict[str, Any]:
+            out = super().health()
+            out["shard"] = self._shard_info()
+            return out
+
+        def _shard_info(self) -> dict[str, Any]:
+            return {"index": self.shard, "of": self.smap.n_shards, "destinations": int(self.own.size)}
+
+        def info(self) -> Mapping[str, str]:
+            return {**super().info(), "shard": f"{self.shard}/{self.smap.n_shards}"}
+
+        def _envelope(self, env: list[bytes], body: list[bytes]) -> tuple[list[bytes], list[bytes]]:
+            # [token, b"", payload] from the front: the token goes back with the answer
+            if len(body) == 3 and body[0].startswith(TOKEN_PREFIX) and body[1] == b"":
+                return env + body[:2], body[2:]
+            return env, body
+
+        # -- announcing itself upstream -------------------------------------------------
+        def start(self) -> None:
+            super().start()
+            if self.upstream:
+                import zmq
+
+                s = self.ctx.socket(zmq.PUSH)
+                s.linger = 0
+                s.sndhwm = 4
+                s.connect(self.upstream)
+                self._hello = s
+                self._send_hello()
+
+        def _banner(self) -> None:
+            with contextlib.suppress(OSError, ValueError):
+                print(f"routerd shard {self.shard}/{self.smap.n_shards}: owns {self.own.size} of "
+                      f"{self.topo.n} destinations ({self.smap.source}); upstream "
+                      f"{self.upstream or '- (none)'}", file=self.out, flush=True)
+            super()._banner()
+
+        def _send_hello(self) -> None:
+            import zmq
+
+            msg = {"v": wire.VERSION, "hello": "shard", "shard": self.shard,
+                   "of": self.smap.n_shards, "topology": self.topo.digest, "epoch": self.epoch,
+                   "pid": os.getpid(), "ingest": self.endpoints["ingest"],
+                   "publish": self.endpoints["publish"], "control": self.endpoints["control"],
+                   "metrics": self.endpoints.get("metrics"),
+                   "owned_digest": zlib.crc32(self.own.astype("<i8").tobytes())}
+            with contextlib.suppress(zmq.ZMQError):
+                self._hello.send(wire.encode_request(msg), zmq.NOBLOCK)
+            self._next_hello = time.monotonic() + self.cfg["shard.hello_interval_s"]
+
+        def _housekeeping(self) -> None:
+            super()._housekeeping()
+            if self._hello is not None and time.monotonic() >= self._next_hello:
+                self._send_hello()
+
+        def _timeout_ms(self) -> int:
+            t = super()._timeout_ms()
+            if self._hello is not None:
+                t = min(t, max(0, int((self._next_hello - time.monotonic()) * 1000) + 1))
+            return t
+
+        def close(self) -> None:
+            if self._hello is not None:
+                self._hello.close(0)
+                self._hello = None
+            super().close()
+
+    return _ShardWorker
+
+
+def __getattr__(name: str) -> Any:   # ShardWorker is built lazily (service imports zmq users)
+    if name == "ShardWorker":
+        cls = _worker_class()
+        globals()["ShardWorker"] = cls
+        return cls
+    raise AttributeError(name)
+
+
+# ---- the front ------------------------------------------------------------------------------
+@dataclass
+class _Pending:
+    """One batch in flight: where its answer goes and what is still missing."""
+
+    env: list[bytes] | None           # None: came by PULL, nobody to answer
+    reporter: str
+    batch: int
+    deadline: float
+    decode_rejected: list[list[Any]]
+    n_links: int
+    pieces: dict[int, tuple[np.ndarray, tuple[int, ...]]]   # shard -> (hop rows, link rows)
+    acks: dict[int, dict[str, Any]] = field(default_factory=dict)
+    error: str | None = None
+
+
+@dataclass
+class _Worker:
+    k: int
+    hello: dict[str, Any] | None = None
+    last_hello: float = -1e18
+    dealer: Any = None
+    sub: Any = None
+    tokens: int = 0
+    proc: subprocess.Popen[str] | None = None
+    restart_at: float | None = None
+    restarts: int = 0
+    parts: dict[str, dict[str, Any]] = field(default_factory=dict)     # node -> routes
+    seen: dict[str, tuple[Any, int]] = field(default_factory=dict)     # node -> (epoch, seq)
+
+
+class Front:
+    """The ingest, tables, control and metrics endpoint in front of N shard workers."""
+
+    def __init__(self, cfg: _config.Config, topo: _topology.Topology, smap: ShardMap,
+                 args: argparse.Namespace | None = None, out: Any = None):
+        from . import guards as _guards
+        from .service import Dedup, Log
+
+        self.cfg = cfg
+        self.topo = topo
+        self.smap = smap
+        self.args = args
+        self.out = out or sys.stdout
+        self.log = Log(cfg["service.log_format"])
+        self.guards = _guards.Guards(topo, _guards.GuardSettings.from_config(cfg))
+        # the combined acks, so a re-sent batch is answered before any split (as one
+        # process does); after a front restart each worker's durable window answers
+        self.dedup = Dedup(cfg["service.dedup_batches"], cfg["service.dedup_reporters"])
+        self.external = bool(getattr(args, "external_workers", False))
+        self.workers = [_Worker(k) for k in range(smap.n_shards)]
+        self.pending: dict[bytes, _Pending] = {}
+        self.expiry: OrderedDict[bytes, float] = OrderedDict()
+        self.ctx: Any = None
+        self.sockets: dict[str, Any] = {}
+        self.endpoints: dict[str, str] = {}
+        self.epoch = time.time_ns()
+        self.seq = [0] * topo.n
+        self._due: OrderedDict[int, str] = OrderedDict()
+        self._stop = False
+        self._next_token = 1
+        self.started = time.monotonic()
+        self.state_root = os.path.abspath(cfg["service.state_dir"])
+        self._ipc_dir: str | None = None
+        self.metrics_server: Any = None
+        self.counts: dict[str, int] = {k: 0 for k in (
+            "batches_accepted", "batches_duplicate", "batches_refused", "batches_unavailable", "pieces_sent",
+            "pieces_acked", "pieces_late", "publications", "parts_received", "acks_undeliverable")}
+        self.lock = threading.RLock()
+
+    # -- start-up ---------------------------------------------------------------------
+    def start(self) -> None:
+        import zmq
+
+        from . import metrics as _metrics
+        from .service import StartError
+
+        cfg = self.cfg
+        try:
+            _metrics.parse_address(cfg["service.metrics"])
+            os.makedirs(self.state_root, exist_ok=True)
+        except ValueError as e:
+            raise StartError(str(e)) from None
+        except OSError as e:
+            raise StartError(f"state dir {self.state_root}: {e.strerror}") from None
+        self.ctx = zmq.Context()
+        listen = getattr(self.args, "shard_listen", None) or f"ipc://{self._ipc('front-shards')}"
+        hwm = cfg["service.hwm_msgs"]
+        maxmsg = cfg["service.max_message_bytes"] + (1 << 20)
+
+        def mk(kind: int, name: str, ep: str) -> Any:
+            s = self.ctx.socket(kind)
+            s.linger = int(cfg["service.linger_s"] * 1000)
+            s.sndhwm = s.rcvhwm = hwm
+            if kind != zmq.PUB:
+                s.setsockopt(zmq.MAXMSGSIZE, maxmsg)
+            if kind == zmq.ROUTER:
+                s.setsockopt(zmq.ROUTER_MANDATORY, 1)
+            try:
+                s.bind(ep)
+            except zmq.ZMQError as e:
+                s.close(0)
+                raise StartError(f"{name} endpoint {ep}: {e.strerror}") from None
+            self.sockets[name] = s
+            self.endpoints[name] = s.last_endpoint.decode()
+            return s
+
+        mk(zmq.ROUTER, "ingest", cfg["service.ingest"])
+        if cfg["service.pull"]:
+            mk(zmq.PULL, "pull", cfg["service.pull"])
+        mk(zmq.PUB, "publish", cfg["service.publish"])
+        mk(zmq.REP, "control", cfg["service.control"])
+        mk(zmq.PULL, "shards", listen)
+        self._start_metrics()
+        self._install_signals()
+        if not self.external:
+            for w in self.workers:
+                self._spawn(w)
+        self._await_workers()
+        self._banner()
+
+    def _ipc(self, name: str) -> str:
+        """An ipc path for ``name``: in the state dir when short enough (ipc paths are
+        limited to about 100 bytes), else in a private tmp dir."""
+        p = os.path.join(self.state_root, name)
+        if len(p) < 90:
+            return p
+        if self._ipc_dir is None:
+            self._ipc_dir = tempfile.mkdtemp(prefix="rd-shards-")
+        return os.path.join(self._ipc_dir, name)
+
+    def _worker_argv(self, w: _Worker) -> list[str]:
+        n = self.smap.n_shards
+        a = self.args
+        base = self._ipc(f"s{w.k}of{n}")
+        argv = [sys.executable, "-m", "routerd", "serve", "--shard", f"{w.k}/{n}",
+                "--upstream", self.endpoints["shards"],
+                "--ingest", f"ipc://{base}-in", "--publish", f"ipc://{base}-pub",
+                "--control", f"ipc://{base}-ctl", "--metrics", "127.0.0.1:0",
+                "--state-dir", self.state_root]
+        if a is not None and getattr(a, "config", None):
+            argv += ["--config", os.path.abspath(a.config)]
+        if self.cfg["topology.file"]:
+            argv += ["--topology", self.cfg["topology.file"]]
+        return argv
+
+    def _spawn(self, w: _Worker) -> None:
+        def child_setup() -> None:   # the worker stops when the front dies (Linux)
+            with contextlib.suppress(Exception):
+                import ctypes
+
+                ctypes.CDLL("libc.so.6", use_errno=True).prctl(1, signal.SIGTERM)  # PR_SET_PDEATHSIG
+
+        w.proc = subprocess.Popen(self._worker_argv(w), stdout=subprocess.PIPE,
+                                  stderr=subprocess.STDOUT, text=True, preexec_fn=child_setup)
+        w.restart_at = None
+        t = threading.Thread(target=self._pipe_log, args=(w.k, w.proc), daemon=True)
+        t.start()
+
+    def _pipe_log(self, k: int, proc: subprocess.Popen[str]) -> None:
+        assert proc.stdout is not None
+        for line in proc.stdout:
+            with contextlib.suppress(OSError, ValueError):
+                print(f"[shard {k}] {line.rstrip()}", file=sys.stderr, flush=True)
+
+    def _await_workers(self) -> None:
+        from .service import StartError
+
+        limit = self.cfg["shard.start_timeout_s"]
+        deadline = time.monotonic() + limit
+        while time.monotonic() < deadline:
+            self._take_hellos(timeout_ms=100)
+            if all(w.hello is not None for w in self.workers):
+                return
+            for w in self.workers:
+                if w.proc is not None and w.proc.poll() is not None:
+                    raise StartError(f"shard {w.k} exited with status {w.proc.returncode} "
+                                     "while starting (its log lines are above)")
+        missing = [w.k for w in self.workers if w.hello is None]
+        raise StartError(f"shards {missing} did not announce themselves on "
+                         f"{self.endpoints['shards']} within {limit:g} s")
+
+    def _start_metrics(self) -> None:
+        from prometheus_client import start_http_server
+        from prometheus_client.registry import CollectorRegistry
+
+        from . import metrics as _metrics
+        from .service import StartError
+
+        host, port = _metrics.parse_address(self.cfg["service.metrics"])
+        reg = CollectorRegistry(auto_describe=False)
+        reg.register(_FrontCollector(self))
+        try:
+            self.metrics_server, _t = start_http_server(port, addr=host, registry=reg)
+        except OSError as e:
+            raise StartError(f"metrics address {self.cfg['service.metrics']}: {e.strerror or e}") from None
+        shown = f"[{host}]" if ":" in host else host
+        self.endpoints["metrics"] = f"http://{shown}:{self.metrics_server.server_address[1]}/metrics"
+
+    def _install_signals(self) -> None:
+        if threading.current_thread() is not threading.main_thread():
+            return
+
+        def on_signal(signum: int, _f: Any) -> None:
+            if signum == signal.SIGHUP:
+                self._reload_all = True
+            else:
+                self._stop = True
+
+        self._reload_all = False
+        for s in (signal.SIGTERM, signal.SIGINT, signal.SIGHUP):
+            signal.signal(s, on_signal)
+
+    def request_stop(self) -> None:
+        self._stop = True
+
+    def _banner(self) -> None:
+        t = self.topo
+        n = self.smap.n_shards
+        lines = [
+            (f"routerd {__version__}: serving topology {t.name!r} — {t.n} nodes, {t.n_links} "
+             f"directed links (topology id {t.digest}), sharded by destination over {n} workers"),
+            f"  ingest   {self.endpoints['ingest']}   ROUTER: batches, split by destination; each "
+            "acknowledged once every piece is journaled",
+            f"  pull     {self.endpoints.get('pull', '- (off)')}   PULL: the same batches, fire-and-forget",
+            f"  publish  {self.endpoints['publish']}   PUB: tables/<node>, merged from every worker",
+            f"  control  {self.endpoints['control']}   REP: tables, estimates, health, nodes; "
+            "snapshot, link, reload (answered for the whole network)",
+            f"  metrics  {self.endpoints['metrics']}   (every worker's series, label shard)",
+            f"  shards   {self.endpoints['shards']}   PULL: workers announce themselves here "
+            f"(map: {self.smap.source}; destinations per shard {self.smap.counts()})",
+        ]
+        for w in self.workers:
+            h = w.hello or {}
+            lines.append(f"  shard {w.k}/{n}  pid {h.get('pid')}  ingest {h.get('ingest')}  "
+                         f"state {shard_dir(self.state_root, w.k, n)}")
+        lines.append(f"routerd: ready (pid {os.getpid()}, epoch {self.epoch})")
+        with contextlib.suppress(OSError, ValueError):
+            print("\n".join(lines), file=self.out, flush=True)
+        self.log.info("started", workers=n, nodes=t.n, **self.endpoints)
+
+    # -- workers announcing themselves -----------------------------------------------------
+    def _take_hellos(self, timeout_ms: int = 0) -> None:
+        import zmq
+
+        s = self.sockets["shards"]
+        if not s.poll(timeout_ms):
+            return
+        while True:
+            try:
+                data = s.recv(zmq.NOBLOCK)
+            except zmq.Again:
+                return
+            self._hello(data)
+
+    def _hello(self, data: bytes) -> None:
+        try:
+            h = wire.decode_reply(data)
+        except wire.BadReply as e:
+            self.log.warning("shard endpoint: unreadable announcement", reason=str(e))
+            return
+        k, n = h.get("shard"), h.get("of")
+        if h.get("hello") != "shard" or not isinstance(k, int) or n != self.smap.n_shards \
+                or not 0 <= k < self.smap.n_shards:
+            self.log.warning("shard endpoint: announcement refused", shard=k, of=n,
+                             reason=f"this front runs {self.smap.n_shards} shards")
+            return
+        if h.get("topology") != self.topo.digest:
+            self.log.warning("shard endpoint: announcement refused", shard=k,
+                             reason=f"topology {h.get('topology')} is not {self.topo.digest}")
+            return
+        want = zlib.crc32(self.smap.owned(k).astype("<i8").tobytes())
+        if h.get("owned_digest") != want:
+            self.log.warning("shard endpoint: announcement refused", shard=k,
+                             reason="the worker's destination map differs from the front's "
+                             "(same shard.map on both?)")
+            return
+        w = self.workers[k]
+        old = w.hello
+        w.hello = h
+        w.last_hello = time.monotonic()
+        if old is None or any(old.get(x) != h.get(x) for x in ("ingest", "publish")):
+            self._connect(w)
+        if old is not None and old.get("epoch") != h.get("epoch"):
+            self.log.info("shard restarted", shard=k, pid=h.get("pid"), epoch=h.get("epoch"))
+
+    def _connect(self, w: _Worker) -> None:
+        import zmq
+
+        assert w.hello is not None
+        for s in (w.dealer, w.sub):
+            if s is not None:
+                s.close(0)
+        d = self.ctx.socket(zmq.DEALER)
+        d.linger = 0
+        d.sndhwm = d.rcvhwm = self.cfg["service.hwm_msgs"]
+        d.setsockopt(zmq.RECONNECT_IVL, 50)
+        d.setsockopt(zmq.RECONNECT_IVL_MAX, 1000)
+        d.connect(w.hello["ingest"])
+        sub = self.ctx.socket(zmq.SUB)
+        sub.linger = 0
+        sub.rcvhwm = 100_000
+        sub.setsockopt(zmq.RECONNECT_IVL, 50)
+        sub.setsockopt(zmq.SUBSCRIBE, wire.TABLE_TOPIC)
+        sub.connect(w.hello["publish"])
+        w.dealer, w.sub = d, sub
+        self._rebuild_poller = True
+
+    def _up(self, w: _Worker) -> bool:
+        alive = w.proc is None or w.proc.poll() is None
+        return alive and w.hello is not None and \
+            time.monotonic() - w.last_hello < 3 * self.cfg["shard.hello_interval_s"]
+
+    # -- the loop ----------------------------------------------------------------------------
+    def serve(self) -> int:
+        import zmq
+
+        self._rebuild_poller = True
+        poller: Any = None
+        try:
+            while not self._stop:
+                if self._rebuild_poller:
+                    poller = zmq.Poller()
+                    for s in self.sockets.values():
+                        if s.type in (zmq.ROUTER, zmq.PULL, zmq.REP):
+                            poller.register(s, zmq.POLLIN)
+                    for w in self.workers:
+                        for s in (w.dealer, w.sub):
+                            if s is not None:
+                                poller.register(s, zmq.POLLIN)
+                    self._rebuild_poller = False
+                ev = dict(poller.poll(0 if self._due else 100))
+                if getattr(self, "_reload_all", False):
+                    self._reload_all = False
+                    self._fan_out({"op": "reload"})
+                if self.sockets["shards"] in ev:
+                    self._take_hellos()
+                for w in self.workers:
+                    if w.sub is not None and w.sub in ev:
+                        self._take_parts(w)
+                    if w.dealer is not None and w.dealer in ev:
+                        self._take_acks(w)
+                if self.sockets["ingest"] in ev:
+                    self._drain(self.sockets["ingest"], routed=True)
+                if "pull" in self.sockets and self.sockets["pull"] in ev:
+                    self._drain(self.sockets["pull"], routed=False)
+                if self.sockets["control"] in ev:
+                    self._control_one()
+                self._expire()
+                self._supervise()
+                self._publish_due(self.cfg["service.publish_budget_s"])
+        except Exception as e:  # noqa: BLE001 - a bug of ours: say so, stop the workers
+            import traceback
+
+            self.log.error("front: internal error; stopping", error=f"{type(e).__name__}: {e}",
+                           traceback=traceback.format_exc().replace("\n", " | "))
+            self._stop_workers()
+            self.close()
+            return 1
+        return self._shutdown()
+
+    # -- ingest ----------------------------------------------------------------------------------
+    def _drain(self, sock: Any, routed: bool) -> None:
+        import zmq
+
+        for _ in range(self.cfg["service.max_drain"]):
+            try:
+                parts = sock.recv_multipart(zmq.NOBLOCK)
+            except zmq.Again:
+                return
+            env: list[bytes] = []
+            body = parts
+            if routed:
+                env, body = parts[:1], parts[1:]
+            if body and body[0] == b"" and len(body) > 1:
+                env, body = env + [b""], body[1:]
+            if len(body) != 1:
+                self.counts["batches_refused"] += 1
+                self._answer(env if routed else None, wire.encode_error(
+                    f"extra_frames: expected one payload frame (after an optional empty "
+                    f"delimiter), got {len(body)}"))
+                continue
+            self._ingest_one(env if routed else None, body[0])
+
+    def _answer(self, env: list[bytes] | None, out: bytes) -> None:
+        import zmq
+
+        if env is None:
+            return
+        try:
+            self.sockets["ingest"].send_multipart(env + [out], zmq.NOBLOCK)
+        except zmq.ZMQError:
+            self.counts["acks_undeliverable"] += 1
+
+    def _ingest_one(self, env: list[bytes] | None, payload: bytes) -> None:
+        import zmq
+
+        cfg = self.cfg
+        ing = wire.decode_ingest(payload, self.topo, max_rows=cfg["service.max_rows"],
+                                 max_bytes=cfg["service.max_message_bytes"])
+        if isinstance(ing, wire.WireError):
+            self.counts["batches_refused"] += 1
+            self._answer(env, wire.encode_error(ing))
+            return
+        seen = self.dedup.get(ing.reporter, ing.batch)
+        if seen is not None:
+            self.counts["batches_duplicate"] += 1
+            self._answer(env, wire.encode_ack(ing.batch, seen[0], seen[1]))
+            return
+        if not self.guards.admit(ing.reporter, ing.rows_total, time.monotonic()):
+            self.counts["batches_refused"] += 1
+            g = self.guards.settings
+            self._answer(env, wire.encode_error(
+                f"rate_limited: reporter {wire._show(ing.reporter)} is over its rate "
+                f"({g.rate_batches_per_s:g} batches/s, {g.rate_rows_per_s:g} rows/s; 0 = "
+                "unlimited); nothing was applied, send it again later", ing.batch))
+            return
+        hops = ing.hops
+        names = self.topo.nodes
+        links = [[names[a], names[b], "up" if u else "down"] for a, b, u in ing.links]
+        owner = self.smap.owner[hops.dst] if len(hops) else np.empty(0, np.int64)
+        pieces: dict[int, tuple[np.ndarray, tuple[int, ...]]] = {}
+        frames: dict[int, bytes] = {}
+        for k in range(self.smap.n_shards):
+            idx = np.flatnonzero(owner == k)
+            if not idx.size and not links:
+                continue
+            frames[k] = wire.encode_ingest_cols(
+                ing.reporter, ing.batch, self.topo.digest, hops.src[idx], hops.via[idx],
+                hops.dst[idx], hops.latency[idx], hops.estimate[idx], links=links)
+            pieces[k] = (ing.hop_rows[idx], ing.link_rows)
+        decode_rej = [[int(r), s] for r, s in ing.rejected]
+        if not pieces:
+            # nothing reached any engine: the decode-time answer is the whole answer
+            self.counts["batches_accepted"] += 1
+            self.dedup.put(ing.reporter, ing.batch, 0, sorted(decode_rej))
+            self._answer(env, wire.encode_ack(ing.batch, 0, sorted(decode_rej)))
+            return
+        missing = [k for k in pieces if self.workers[k].dealer is None]
+        if missing:
+            self.counts["batches_unavailable"] += 1
+            self._answer(env, wire.encode_error(
+                f"unavailable: shards {missing} have not announced themselves; nothing of "
+                "this batch was stored, send it again later", ing.batch))
+            return
+        token = TOKEN_PREFIX + _TOKEN.pack(self._next_token)
+        self._next_token += 1
+        p = _Pending(env, ing.reporter, ing.batch, time.monotonic() + cfg["shard.timeout_s"], decode_rej,
+                     len(links), pieces)
+        for k, fr in frames.items():
+            try:
+                self.workers[k].dealer.send_multipart([token, b"", fr], zmq.NOBLOCK)
+            except zmq.Again:
+                p.error = (f"unavailable: shard {k} has {cfg['service.hwm_msgs']} pieces "
+                           "queued and takes no more now; send it again later")
+                break
+            self.counts["pieces_sent"] += 1
+        if p.error is not None:
+            self.counts["batches_unavailable"] += 1
+            self._answer(env, wire.encode_error(p.error, ing.batch))
+            return
+        self.pending[token] = p
+        self.expiry[token] = p.deadline
+
+    def _take_acks(self, w: _Worker) -> None:
+        import zmq
+
+        for _ in range(10_000):
+            try:
+                parts = w.dealer.recv_multipart(zmq.NOBLOCK)
+            except zmq.Again:
+                return
+            token = parts[0] if parts else b""
+            p = self.pending.get(token)
+            if p is None or w.k not in p.pieces or w.k in p.acks:
+                self.counts["pieces_late"] += 1
+                continue
+            try:
+                rep = wire.decode_reply(parts[-1])
+            except wire.BadReply as e:
+                rep = {"error": f"unavailable: shard {w.k} answered badly ({e})"}
+            self.counts["pieces_acked"] += 1
+            if "error" in rep:
+                p.error = str(rep["error"])
+                self._finish(token, p)
+                continue
+            p.acks[w.k] = rep
+            if len(p.acks) == len(p.pieces):
+                self._finish(token, p)
+
+    def _finish(self, token: bytes, p: _Pending) -> None:
+        self.pending.pop(token, None)
+        self.expiry.pop(token, None)
+        if p.error is not None:
+            self.counts["batches_unavailable"] += 1
+            self._answer(p.env, wire.encode_error(p.error, p.batch))
+            return
+        rejected, accepted = combine_acks(p.decode_rejected, p.n_links, p.pieces, p.acks)
+        self.counts["batches_accepted"] += 1
+        self.dedup.put(p.reporter, p.batch, accepted, rejected)
+        self._answer(p.env, wire.encode_ack(p.batch, accepted, rejected))
+
+    def _expire(self) -> None:
+        now = time.monotonic()
+        while self.expiry:
+            token, t = next(iter(self.expiry.items()))
+            if t > now:
+                return
+            p = self.pending[token]
+            late = sorted(set(p.pieces) - set(p.acks))
+            p.error = (f"unavailable: shards {late} did not acknowledge within "
+                       f"{self.cfg['shard.timeout_s']:g} s; the batch is not acknowledged, "
+                       "send it again (what was stored is not applied twice)")
+            self._finish(token, p)
+
+    # -- tables ------------------------------------------------------------------------------------
+    def _take_parts(self, w: _Worker) -> None:
+        import zmq
+
+        for _ in range(100_000):
+            try:
+                frames = w.sub.recv_multipart(zmq.NOBLOCK)
+            except zmq.Again:
+                return
+            try:
+                msg = wire.decode_table(frames)
+            except wire.BadReply:
+                continue
+            node = msg["node"]
+            x = self.topo.index.get(node)
+            if x is None:
+                continue
+            ep, seq = msg.get("epoch"), msg["seq"]
+            prev = w.seen.get(node)
+            if prev is not None and prev[0] == ep and seq <= prev[1]:
+                continue
+            w.seen[node] = (ep, seq)
+            w.parts[node] = msg["routes"]
+            self.counts["parts_received"] += 1
+            if x not in self._due:
+                self._due[x] = "part"
+
+    def merged(self, x: int) -> dict[str, Any]:
+        node = self.topo.nodes[x]
+        out: dict[str, Any] = {}
+        for w in self.workers:
+            out.update(w.parts.get(node, {}))
+        return out
+
+    def _publish_due(self, budget_s: float) -> None:
+        import zmq
+
+        end = time.perf_counter() + budget_s
+        pub = self.sockets["publish"]
+        names = self.topo.nodes
+        while self._due:
+            x, _ = self._due.popitem(last=False)
+            self.seq[x] += 1
+            frames = wire.table_message(names[x], self.seq[x], self.epoch, self.merged(x))
+            with contextlib.suppress(zmq.Again):
+                pub.send_multipart(frames, zmq.NOBLOCK)
+            self.counts["publications"] += 1
+            if time.perf_counter() >= end:
+                break
+
+    # -- control -------------------------------------------------------------------------------------
+    def _ask(self, w: _Worker, req: Mapping[str, Any]) -> dict[str, Any]:
+        from . import client
+
+        if w.hello is None:
+            return {"error": f"unavailable: shard {w.k} has not announced itself"}
+        try:
+            return client.control(w.hello["control"], req, self.cfg["shard.control_timeout_s"],
+                                  context=self.ctx)
+        except (TimeoutError, wire.BadReply) as e:
+            return {"error": f"unavailable: shard {w.k}: {e}"}
+
+    def _fan_out(self, req: Mapping[str, Any]) -> list[dict[str, Any]]:
+        return [self._ask(w, req) for w in self.workers]
+
+    def _control_one(self) -> None:
+        import zmq
+
+        sock = self.sockets["control"]
+        try:
+            parts = sock.recv_multipart(zmq.NOBLOCK)
+        except zmq.Again:
+            return
+        if len(parts) != 1:
+            out = wire.encode_error(f"extra_frames: a control request is one frame, got {len(parts)}")
+        else:
+            req = wire.decode_control(parts[0], self.topo)
+            out = wire.encode_error(req.reason) if isinstance(req, wire.WireError) \
+                else wire.encode_reply(self.control(req))
+        sock.send(out)
+
+    def control(self, req: Mapping[str, Any]) -> dict[str, Any]:
+        """One checked control request → the reply map for the whole network."""
+        op = req["op"]
+        if op == "nodes":
+            out = wire.nodes_reply(self.topo)
+            out.pop("v", None)
+            return out
+        if op == "health":
+            return self.health()
+        fwd = {k: v for k, v in req.items() if k != "v"}
+        reps = self._fan_out(fwd)
+        errs = [r["error"] for r in reps if "error" in r]
+        if errs and op in ("tables", "estimates"):
+            return {"error": errs[0]}
+        if op == "tables":
+            return {"tables": merge_tables(r["tables"] for r in reps)}
+        if op == "estimates":
+            est: dict[str, Any] = {}
+            for r in reps:
+                est.update(r["estimates"])
+            return {"estimates": est}
+        out: dict[str, Any] = {op: [r.get(op, r) for r in reps]}
+        if errs:
+            out["error"] = f"{len(errs)} of {len(reps)} shards failed: {errs[0]}"
+        if op == "link" and not errs:
+            first = dict(reps[0]["link"])
+            first["changed"] = any(r["link"]["changed"] for r in reps)
+            out = {"link": first}
+        return out
+
+    def health(self) -> dict[str, Any]:
+        shards = []
+        for w in self.workers:
+            h = self._ask(w, {"op": "health"}) if self._up(w) else {"error": "down"}
+            shards.append({"shard": w.k, "up": "error" not in h, "restarts": w.restarts,
+                           "pid": (w.hello or {}).get("pid"), "health": h})
+        up = sum(s["up"] for s in shards)
+        return {"status": "stopping" if self._stop else ("ok" if up == len(shards) else "degraded"),
+                "uptime_s": time.monotonic() - self.started, "epoch": self.epoch,
+                "version": __version__,
+                "topology": {"name": self.topo.name, "id": self.topo.digest,
+                             "nodes": self.topo.n, "links": self.topo.n_links},
+                "front": {"in_flight": len(self.pending), **self.counts},
+                "shards_up": up, "shards": shards}
+
+    # -- supervision and shutdown -------------------------------------------------------------------
+    def _supervise(self) -> None:
+        if self.external:
+            return
+        now = time.monotonic()
+        for w in self.workers:
+            if w.proc is None:
+                continue
+            if w.restart_at is None and w.proc.poll() is not None:
+                w.restart_at = now + self.cfg["shard.restart_delay_s"]
+                self.log.warning("shard exited; restarting it", shard=w.k,
+                                 status=w.proc.returncode,
+                                 delay_s=self.cfg["shard.restart_delay_s"])
+            elif w.restart_at is not None and now >= w.restart_at:
+                w.restarts += 1
+                self._spawn(w)
+
+    def _stop_workers(self) -> None:
+        for w in self.workers:
+            if w.proc is not None and w.proc.poll() is None:
+                with contextlib.suppress(OSError):
+                    w.proc.send_signal(signal.SIGTERM)
+
+    def _shutdown(self) -> int:
+        self.log.info("stopping", shards=self.smap.n_shards)
+        for token, p in list(self.pending.items()):
+            p.error = "unavailable: the service is stopping; send it again later"
+            self._finish(token, p)
+        if not self.external:
+            self._stop_workers()
+            deadline = time.monotonic() + self.cfg["service.shutdown_timeout_s"]
+            while time.monotonic() < deadline and any(
+                    w.proc is not None and w.proc.poll() is None for w in self.workers):
+                self._drain_parts(0.05)
+            for w in self.workers:
+                if w.proc is not None and w.proc.poll() is None:
+                    w.proc.kill()
+                    w.proc.wait(5)
+            self._drain_parts(0.1)
+        self._due = OrderedDict((x, "final") for x in range(self.topo.n))
+        self._publish_due(3600.0)
+        self.close()
+        self.log.info("stopped")
+        return 0
+
+    def _drain_parts(self, wait_s: float) -> None:
+        end = time.monotonic() + wait_s
+        while True:
+            for w in self.workers:
+                if w.sub is not None:
+                    self._take_parts(w)
+            if time.monotonic() >= end:
+                return
+            time.sleep(0.01)
+
+    def close(self) -> None:
+        """Release everything (idempotent); local workers still running are stopped."""
+        if not self.external:
+            self._stop_workers()
+            for w in self.workers:
+                if w.proc is not None and w.proc.poll() is None:
+                    try:
+                        w.proc.wait(self.cfg["service.shutdown_timeout_s"])
+                    except subprocess.TimeoutExpired:
+                        w.proc.kill()
+                        w.proc.wait(5)
+        if self.metrics_server is not None:
+            self.metrics_server.shutdown()
+            self.metrics_server.server_close()
+            self.metrics_server = None
+        for w in self.workers:
+            for s in (w.dealer, w.sub):
+                if s is not None:
+                    s.close(0)
+            w.dealer = w.sub = None
+        for s in self.sockets.values():
+            s.close()
+        self.sockets = {}
+        if self.ctx is not None:
+            self.ctx.term()
+            self.ctx = None
+        if self._ipc_dir is not None:
+            import shutil
+
+            shutil.rmtree(self._ipc_dir, ignore_errors=True)
+            self._ipc_dir = None
+
+
+def combine_acks(decode_rejected: Sequence[Sequence[Any]], n_links: int,
+                 pieces: Mapping[int, tuple[np.ndarray, tuple[int, ...]]],
+                 acks: Mapping[int, Mapping[str, Any]]) -> tuple[list[list[Any]], int]:
+    """Every piece's ack → (rejections in the batch's row numbering, sorted; accepted).
+
+    Piece row r of shard k is hop row ``rows_k[r]`` while r < h_k (its hop count), else
+    link row ``link_rows[r - h_k]``.  Every piece carries every link row, so each link
+    row's fate is taken once (from the first piece); ``accepted`` counts hop rows of every
+    piece and link rows once.
+    """
+    rej: dict[int, str] = {int(r): str(s) for r, s in decode_rejected}
+    accepted = 0
+    links_done = False
+    for k in sorted(pieces):
+        rows, link_rows = pieces[k]
+        a = acks[k]
+        h = len(rows)
+        link_rej = 0
+        for r, s in a.get("rejected", ()):
+            r = int(r)
+            if r < h:
+                rej[int(rows[r])] = str(s)
+            else:
+                link_rej += 1
+                if not links_done:
+                    rej[int(link_rows[r - h])] = str(s)
+        accepted += int(a.get("accepted", 0)) - (n_links - link_rej)
+        if not links_done and n_links:
+            accepted += n_links - link_rej
+            links_done = True
+    return [[r, s] for r, s in sorted(rej.items())], accepted
+
+
+class _FrontCollector:
+    """The front's metrics page: each worker's page with a ``shard`` label, and the
+    front's own counters with ``shard="front"``."""
+
+    def __init__(self, front: Front):
+        self.front = front
+
+    def describe(self) -> list[Any]:
+        return []
+
+    def collect(self) -> Iterable[Any]:
+        import urllib.request
+
+        from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
+        from prometheus_client.parser import text_string_to_metric_families
+
+        f = self.front
+        fam: dict[str, Any] = {}
+        for w in f.workers:
+            url = (w.hello or {}).get("metrics")
+            if not url or not f._up(w):
+                continue
+            try:
+                with urllib.request.urlopen(url, timeout=f.cfg["shard.control_timeout_s"]) as r:
+                    text = r.read().decode()
+            except OSError:
+                continue
+            for m in text_string_to_metric_families(text):
+                out = fam.get(m.name)
+                if out is None:
+                    out = fam[m.name] = Metric(m.name, m.documentation, m.type)
+                for s in m.samples:
+                    out.add_sample(s.name, {**s.labels, "shard": str(w.k)}, s.value)
+        yield from fam.values()
+        c = CounterMetricFamily("routerd_shard_front_batches", "Batches at the front, by result",
+                                labels=["shard", "result"])
+        for k in ("accepted", "duplicate", "refused", "unavailable"):
+            c.add_metric(["front", k], float(f.counts[f"batches_{k}"]))
+        yield c
+        p = CounterMetricFamily("routerd_shard_front_pieces", "Pieces sent to workers and "
+                                "acknowledged by them", labels=["shard", "result"])
+        for k in ("sent", "acked", "late"):
+            p.add_metric(["front", k], float(f.counts[f"pieces_{k}"]))
+        yield p
+        pub = CounterMetricFamily("routerd_shard_front_publications", "Merged table "
+                                  "publications", labels=["shard"])
+        pub.add_metric(["front"], float(f.counts["publications"]))
+        yield pub
+        g = GaugeMetricFamily("routerd_shard_front_in_flight", "Batches waiting for "
+                              "their pieces' acknowledgements", labels=["shard"])
+        g.add_metric(["front"], float(len(f.pending)))
+        yield g
+        up = GaugeMetricFamily("routerd_shard_up", "1 when the worker has announced itself "
+                               "recently", labels=["shard"])
+        for w in f.workers:
+            up.add_metric([str(w.k)], 1.0 if f._up(w) else 0.0)
+        yield up
+
+
+# ---- a reporter that splits by destination itself --------------------------------------------
+class ShardReporter:
+    """One :class:`routerd.client.Reporter` per worker, rows routed by the owner of their
+    destination (the front's map), link rows to every worker: a client that sends to the
+    workers directly (no front on the ingest path).  ``workers``: each worker's ingest
+    endpoint in shard order (the front's control ``health`` lists them)."""
+
+    def __init__(self, workers: Sequence[str], reporter_name: str, topo: _topology.Topology,
+                 smap: ShardMap | None = None, **kw: Any):
+        from .client import Reporter
+
+        self.smap = smap or ShardMap.build(topo, len(workers))
+        if self.smap.n_shards != len(workers):
+            raise ValueError(f"{len(workers)} worker endpoints for {self.smap.n_shards} shards")
+        self.topo = topo
+        self.reporters = [Reporter(ep, reporter_name, topology_nodes=topo, **kw) for ep in workers]
+
+    def add_hop(self, frm: str, via: str, dst: str, latency_s: float,
+                estimate_s: float | None = None) -> None:
+        k = int(self.smap.owner[self.topo.index[dst]])
+        self.reporters[k].add_hop(frm, via, dst, latency_s, estimate_s)
+
+    def add_link(self, frm: str, to: str, state: str) -> None:
+        for r in self.reporters:
+            r.add_link(frm, to, state)
+
+    def flush(self) -> None:
+        for r in self.reporters:
+            r.flush()
+
+    def close(self, flush: bool = True) -> None:
+        for r in self.reporters:
+            r.close(flush)
+
