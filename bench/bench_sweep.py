@@ -8,7 +8,7 @@ now), so a machine shared with other work does not pass for a slow sweep.  The g
 is the demo lab at a busy and a light rate, ``shortest`` and ``qrouting``, four seeds:
 16 runs of unequal length, so the figure includes the pool's start-up and its tail
 (the last runs finishing while the other worker idles).  Repeated and the best of each
-kept (not quick), since other processes share the machine.
+kept (3 interleaved rounds, not quick), since other processes share the machine.
 """
 from __future__ import annotations
 
@@ -61,7 +61,7 @@ def timed(specs: list[dict[str, Any]], jobs: int) -> float:
 
 def run(quick: bool) -> dict[str, dict[str, Any]]:
     specs = grid(4.0 if quick else 12.0)
-    repeats = 1 if quick else 2
+    repeats = 1 if quick else 3
     one, two, b1, b2 = [], [], [], []
     for _ in range(repeats):
         one.append(timed(specs, 1))
