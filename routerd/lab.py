@@ -846,6 +846,12 @@ def run(args: argparse.Namespace) -> int:
         for name, v, lo in (("--duration", args.duration, 0.0), ("--rate", args.rate, 0.0)):
             if not (math.isfinite(v) and v > lo):
                 raise InputError(Problem(name, v, "must be a number above 0"))
+        if getattr(args, "compare_sim", None):
+            from sim import policies as _policies
+
+            if args.compare_sim.partition(":")[0] not in _policies.NAMES:
+                raise InputError(Problem("--compare-sim", args.compare_sim,
+                                         f"is not a policy ({', '.join(_policies.NAMES)})"))
         if not ov.HEADER_BYTES <= args.packet_bytes <= 1400:
             raise InputError(Problem("--packet-bytes", args.packet_bytes,
                                      f"must be in [{ov.HEADER_BYTES}, 1400] (one veth frame)"))
