@@ -1,0 +1,488 @@
+"""Measured comparison of the engine variants (routerd/variants.py) against ``mindelay``
+(the flow-deviation optimum) and ``shortest``: one report with tables and plots.
+
+Usage: ``python bench/compare_variants.py [--out DIR] [--quick] [--jobs N] [--seeds N]``
+(default ``bench/reports/variants``).  Writes ``DIR/report.md``, ``DIR/steady.csv``,
+``DIR/scenarios.csv``, ``DIR/report.json`` and PNGs (matplotlib, Agg).
+
+What is measured (every figure from :func:`sim.run.run`, the simulator the policies share):
+
+* steady state — topohub's SNDlib ``abilene`` and ``geant`` with their own demand
+  matrices (``demands=True``), every link at ``CAPACITY_BPS`` (the files carry no
+  capacity; 2 Mb/s with 1000-byte packets makes ``shortest`` saturate at a few hundred
+  to a few thousand packets/s).  The load axis is a multiple of ``shortest``'s
+  saturation rate, computed analytically (the demand routed on the delay-shortest
+  paths; the busiest link at capacity).  Mean delivery time of packets delivered after
+  the warm-up, delivery ratio, and the exploration overhead: the share of forwarded
+  packets sent to a next hop other than the greedy one (counted in the adapter);
+* learning from a cold start (``engine.initial.mode=constant``: every estimate the same,
+  so the start tables are the loop fallback's shortest paths): time until the 2-s
+  rolling mean delivery time is within 10% of its steady value (mean of the last third
+  of the run) and stays there for 3 s;
+* a congestion spike (load x2 for 10 s) and its end: time after the spike until the
+  rolling mean is within 5% of the pre-spike mean and stays there for 3 s;
+* a link failure (the busiest link under ``shortest``, both directions) and its repair:
+  after the failure, time to settle within 10% of the level at the end of the outage;
+  after the repair, time to return within 5% of the pre-failure mean.
+
+A time that never comes is reported as the rest of the run, marked ``>``.
+Must not import: zmq, prometheus.  matplotlib only inside the plotting function.
+"""
+from __future__ import annotations
+
+import argparse
+import csv
+import json
+import math
+import multiprocessing as mp
+import os
+import sys
+import time
+from concurrent.futures import ProcessPoolExecutor
+from typing import Any
+
+import numpy as np
+
+sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+
+from routerd import topology as T
+from sim import analytic as A
+from sim import mindelay as M
+from sim.policies import QRouting
+from sim.run import run as run_sim
+
+CAPACITY_BPS = 2.0e6
+PACKET_BYTES = 1000.0
+BUFFER_PKTS = 64
+TOPOLOGIES = ("topohub:sndlib/abilene", "topohub:sndlib/geant")
+VARIANTS = ("plain", "full_echo", "predictive", "dual", "confidence")
+LOADS = (0.3, 0.6, 0.85, 1.0, 1.1, 1.2)
+BIN_S = 0.5
+
+
+class CountingQRouting(QRouting):
+    """The qrouting adapter, counting packets sent off the greedy next hop."""
+
+    def attach(self, topology: Any, rng: Any, settings: Any) -> None:
+        super().attach(topology, rng, settings)
+        self.off_greedy = 0
+
+    def next_hop(self, x: int, d: int, flow: int, now: float) -> int:
+        h = super().next_hop(x, d, flow, now)
+        if h != self._greedy_hop[x][d]:
+            self.off_greedy += 1
+        return h
+
+    def stats(self) -> dict[str, float]:
+        s = super().stats()
+        s["off_greedy_packets"] = float(self.off_greedy)
+        return s
+
+
+def load_topology(key: str) -> T.Topology:
+    return T.load(key, T.LinkDefaults(CAPACITY_BPS, BUFFER_PKTS))
+
+
+def shortest_saturation_pps(topo: T.Topology) -> tuple[float, int]:
+    """(total rate at which shortest's busiest link reaches capacity, that link)."""
+    frac = A.single_path_fractions(topo, topo.spt_next_hops())
+    n, src, dst = A.link_arrays(topo)
+    df, _ = A.flows_from_fractions(n, src, dst, frac, M.offered_demand(topo, 1.0, use_demands=True))
+    f = df.sum(axis=0)
+    cap = topo.capacity_bps / (8.0 * PACKET_BYTES)
+    with np.errstate(divide="ignore"):
+        r = np.where(f > 0, cap / f, np.inf)
+    k = int(np.argmin(r))
+    return float(r[k]), k
+
+
+def mindelay_limit(topo: T.Topology, sat: float) -> float:
+    """The largest load factor (x shortest's saturation) mindelay routes within capacity."""
+    lo, hi = 1.0, 3.0
+    if not M.for_topology(topo, M.offered_demand(topo, sat * lo, use_demands=True), PACKET_BYTES).feasible:
+        return lo
+    for _ in range(8):
+        mid = 0.5 * (lo + hi)
+        ok = M.for_topology(topo, M.offered_demand(topo, sat * mid, use_demands=True), PACKET_BYTES).feasible
+        lo, hi = (mid, hi) if ok else (lo, mid)
+    return lo
+
+
+def one(job: dict[str, Any]) -> dict[str, Any]:
+    """One simulation; the policy label is ``shortest``, ``mindelay`` or a variant name."""
+    label = job["label"]
+    spec = dict(job["spec"])
+    pol = None
+    if label in VARIANTS:
+        spec["policy"] = "qrouting"
+        spec["overrides"] = list(spec.get("overrides", ())) + [f"engine.variant={label}"]
+        pol = CountingQRouting()
+    else:
+        spec["policy"] = label
+    t0 = time.perf_counter()
+    try:
+        res = run_sim(spec, policy=pol)
+    except Exception as e:  # recorded, the report goes on
+        return {**job, "error": f"{type(e).__name__}: {e}"}
+    s = res["summary"]
+    carried = sum(lk["packets"] for lk in res["links"])
+    off = s.get("policy_off_greedy_packets", 0.0)
+    out = {**job, "summary": s, "wall_s": time.perf_counter() - t0,
+           "off_greedy_share": off / carried if carried else 0.0}
+    if spec.get("series"):
+        sr = res["series"]
+        out["series"] = {"t_s": sr["t_s"], "mean_delivery_s": sr["mean_delivery_s"],
+                         "delivered": sr["delivered"]}
+    return out
+
+
+def run_jobs(jobs: list[dict[str, Any]], n_jobs: int) -> list[dict[str, Any]]:
+    if n_jobs <= 1:
+        return [one(j) for j in jobs]
+    with ProcessPoolExecutor(max_workers=n_jobs, mp_context=mp.get_context("fork")) as pool:
+        return list(pool.map(one, jobs))
+
+
+# ---- reading the time series ---------------------------------------------------------------
+
+def rolling(series: dict[str, Any], window_s: float = 2.0) -> tuple[np.ndarray, np.ndarray]:
+    """(bin end times, delivery-weighted rolling mean delivery time over window_s)."""
+    t = np.asarray(series["t_s"], dtype=float)
+    m = np.asarray(series["mean_delivery_s"], dtype=float)
+    c = np.asarray(series["delivered"], dtype=float)
+    s = np.where(c > 0, np.nan_to_num(m) * c, 0.0)
+    w = max(1, int(round(window_s / BIN_S)))
+    cs = np.concatenate([[0.0], np.cumsum(s)])
+    cc = np.concatenate([[0.0], np.cumsum(c)])
+    idx = np.arange(len(t))
+    lo = np.maximum(0, idx + 1 - w)
+    num, den = cs[idx + 1] - cs[lo], cc[idx + 1] - cc[lo]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return t, np.where(den > 0, num / den, np.nan)
+
+
+def level(series: dict[str, Any], t0: float, t1: float) -> float:
+    """Delivery-weighted mean delivery time of the bins ending in (t0, t1]."""
+    t = np.asarray(series["t_s"], dtype=float)
+    m = np.nan_to_num(np.asarray(series["mean_delivery_s"], dtype=float))
+    c = np.asarray(series["delivered"], dtype=float)
+    sel = (t > t0) & (t <= t1)
+    return float((m[sel] * c[sel]).sum() / c[sel].sum()) if c[sel].sum() > 0 else math.nan
+
+
+def settle_time(series: dict[str, Any], start: float, ref: float, tol: float, end: float,
+                hold_s: float = 3.0) -> tuple[float, bool]:
+    """Seconds after ``start`` until the rolling mean is within tol of ref and stays so
+    for hold_s (before ``end``); (time, reached)."""
+    t, r = rolling(series)
+    ok = np.abs(r - ref) <= tol * ref
+    hold = max(1, int(round(hold_s / BIN_S)))
+    cand = np.flatnonzero(t > start)
+    for i in cand.tolist():
+        if t[i] + hold_s > end + 1e-9:
+            break
+        if ok[i:i + hold].all() and len(ok[i:i + hold]) == hold:
+            # the window ending at t[i] started at t[i] - 2 s: count from the bin itself
+            return float(max(0.0, t[i] - start)), True
+    return float(end - start), False
+
+
+# ---- the experiments --------------------------------------------------------------------------
+
+def steady_jobs(topos: dict[str, dict[str, Any]], loads: tuple[float, ...], duration: float,
+                seeds: int) -> list[dict[str, Any]]:
+    jobs = []
+    for key, info in topos.items():
+        for lf in loads:
+            for label in ("shortest", "mindelay") + VARIANTS:
+                if label == "mindelay" and lf > info["mindelay_limit"]:
+                    continue
+                for seed in range(1, seeds + 1):
+                    jobs.append({"exp": "steady", "topology": key, "load": lf, "label": label,
+                                 "seed": seed,
+                                 "spec": {"topology": info["topo"], "rate_pps": lf * info["sat_pps"],
+                                          "duration_s": duration, "warmup_s": duration / 3,
+                                          "seed": seed, "demands": True, "series": False,
+                                          "packet_bytes": PACKET_BYTES}})
+    return jobs
+
+
+def scenario_jobs(key: str, info: dict[str, Any], seeds: int, scale: float) -> list[dict[str, Any]]:
+    topo = info["topo"]
+    k = info["busiest_link"]
+    a, b = topo.nodes[int(topo.src[k])], topo.nodes[int(topo.dst[k])]
+    sc = {
+        "cold": ({"scenario": {"name": "cold-start"}}, 1.0, 40.0 * scale,
+                 ["engine.initial.mode=constant", "engine.initial.value_s=0.05"]),
+        "spike": ({"scenario": {"name": "spike", "load": [{"step": 2.0, "at_s": 10 * scale},
+                                                         {"step": 1.0, "at_s": 20 * scale}]}},
+                  0.55, 40.0 * scale, []),
+        "failure": ({"scenario": {"name": "failure", "links": [
+            {"at_s": 10 * scale, "between": [a, b], "down": True},
+            {"at_s": 25 * scale, "between": [a, b], "up": True}]}}, 0.8, 45.0 * scale, []),
+    }
+    jobs = []
+    for name, (scen, lf, dur, ov) in sc.items():
+        for label in ("shortest",) + VARIANTS:
+            for seed in range(1, seeds + 1):
+                jobs.append({"exp": name, "topology": key, "load": lf, "label": label, "seed": seed,
+                             "spec": {"topology": topo, "rate_pps": lf * info["sat_pps"],
+                                      "duration_s": dur, "warmup_s": 0.0, "seed": seed,
+                                      "demands": True, "series": True, "scenario": scen,
+                                      "packet_bytes": PACKET_BYTES, "overrides": ov}})
+    return jobs
+
+
+def scenario_figures(r: dict[str, Any], scale: float) -> dict[str, Any]:
+    s, exp = r["series"], r["exp"]
+    dur = r["spec"]["duration_s"]
+    if exp == "cold":
+        steady = level(s, dur * 2 / 3, dur)
+        tt, ok = settle_time(s, 0.0, steady, 0.10, dur)
+        return {"learn_s": tt, "learn_reached": ok, "steady_s": steady}
+    if exp == "spike":
+        pre = level(s, 5 * scale, 10 * scale)
+        tt, ok = settle_time(s, 20 * scale, pre, 0.05, dur)
+        return {"spike_recovery_s": tt, "spike_reached": ok, "pre_s": pre,
+                "peak_s": level(s, 10 * scale, 20 * scale)}
+    pre = level(s, 5 * scale, 10 * scale)
+    during = level(s, 20 * scale, 25 * scale)
+    t1, ok1 = settle_time(s, 10 * scale, during, 0.10, 25 * scale)
+    t2, ok2 = settle_time(s, 25 * scale, pre, 0.05, dur)
+    return {"failure_settle_s": t1, "failure_reached": ok1, "repair_recovery_s": t2,
+            "repair_reached": ok2, "pre_s": pre, "during_s": during}
+
+
+def _mean(xs: list[float]) -> float:
+    xs = [x for x in xs if isinstance(x, (int, float)) and math.isfinite(x)]
+    return sum(xs) / len(xs) if xs else math.nan
+
+
+def summarise(steady: list[dict[str, Any]], scen: list[dict[str, Any]], topos: dict[str, Any],
+              scale: float) -> dict[str, Any]:
+    pts: dict[tuple[str, float, str], dict[str, float]] = {}
+    for r in steady:
+        if "error" in r:
+            continue
+        key = (r["topology"], r["load"], r["label"])
+        pts.setdefault(key, {"mean": [], "ratio": [], "off": []})  # type: ignore[dict-item]
+        pts[key]["mean"].append(r["summary"]["mean_delivery_s"])  # type: ignore[attr-defined]
+        pts[key]["ratio"].append(r["summary"]["delivery_ratio"])  # type: ignore[attr-defined]
+        pts[key]["off"].append(r["off_greedy_share"])  # type: ignore[attr-defined]
+    steady_rows = [{"topology": k[0], "load": k[1], "policy": k[2],
+                    "mean_delivery_ms": 1e3 * _mean(v["mean"]),  # type: ignore[arg-type]
+                    "delivery_ratio": _mean(v["ratio"]),  # type: ignore[arg-type]
+                    "off_greedy_share": _mean(v["off"])}  # type: ignore[arg-type]
+                   for k, v in sorted(pts.items())]
+    sc_rows: dict[tuple[str, str, str], dict[str, list[Any]]] = {}
+    for r in scen:
+        if "error" in r:
+            continue
+        f = scenario_figures(r, scale)
+        d = sc_rows.setdefault((r["topology"], r["exp"], r["label"]), {})
+        for k, v in f.items():
+            d.setdefault(k, []).append(v)
+    scen_out = []
+    for (topo, exp, label), d in sorted(sc_rows.items()):
+        row: dict[str, Any] = {"topology": topo, "scenario": exp, "policy": label}
+        for k, v in d.items():
+            row[k] = all(v) if isinstance(v[0], bool) else _mean(v)
+        scen_out.append(row)
+    # headline: at loads >= 1 (shortest saturated) where mindelay exists
+    head: dict[str, Any] = {}
+    for topo in topos:
+        best = []
+        for lf in sorted({k[1] for k in pts if k[0] == topo}):
+            if lf < 1.0 or (topo, lf, "mindelay") not in pts:
+                continue
+            md = _mean(pts[(topo, lf, "mindelay")]["mean"])  # type: ignore[arg-type]
+            per = {v: _mean(pts[(topo, lf, v)]["mean"]) / md  # type: ignore[arg-type]
+                   for v in VARIANTS if (topo, lf, v) in pts}
+            sh = _mean(pts[(topo, lf, "shortest")]["mean"]) / md  # type: ignore[arg-type]
+            bv = min(per, key=lambda v: per[v])
+            best.append({"load": lf, "best": bv, "best_over_mindelay": per[bv],
+                         "shortest_over_mindelay": sh, "per_variant": per})
+        head[topo] = best
+    rec: dict[str, dict[str, float]] = {}
+    for row in scen_out:
+        for k in ("learn_s", "spike_recovery_s", "failure_settle_s", "repair_recovery_s"):
+            if k in row:
+                rec.setdefault(f"{row['topology']}|{k}", {})[row["policy"]] = row[k]
+    speedups = {}
+    for k, d in rec.items():
+        if "plain" in d:
+            speedups[k] = {v: (d["plain"] / d[v] if d[v] > 0 else math.inf) for v in VARIANTS if v in d}
+    return {"steady": steady_rows, "scenarios": scen_out, "headline": head, "times": rec,
+            "speedup_vs_plain": speedups}
+
+
+# ---- output ----------------------------------------------------------------------------------
+
+def write_csv(path: str, rows: list[dict[str, Any]]) -> None:
+    keys: list[str] = []
+    for r in rows:
+        keys += [k for k in r if k not in keys]
+    with open(path, "w", newline="") as fh:
+        w = csv.DictWriter(fh, fieldnames=keys)
+        w.writeheader()
+        w.writerows(rows)
+
+
+def plots(out: str, summ: dict[str, Any], scen: list[dict[str, Any]]) -> list[str]:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    files = []
+    topos = sorted({r["topology"] for r in summ["steady"]})
+    fig, axes = plt.subplots(1, len(topos), figsize=(6 * len(topos), 4.2), squeeze=False)
+    for ax, topo in zip(axes[0], topos):
+        for pol in ("shortest", "mindelay") + VARIANTS:
+            rows = [r for r in summ["steady"] if r["topology"] == topo and r["policy"] == pol]
+            if rows:
+                ax.plot([r["load"] for r in rows], [r["mean_delivery_ms"] for r in rows],
+                        marker="o", lw=2.2 if pol in ("shortest", "mindelay") else 1.4,
+                        ls="--" if pol in ("shortest", "mindelay") else "-", label=pol)
+        ax.axvline(1.0, color="grey", lw=0.8, ls=":")
+        ax.set_yscale("log")
+        ax.set_xlabel("offered load (x shortest's saturation rate)")
+        ax.set_ylabel("mean delivery time (ms, log)")
+        ax.set_title(topo.split("/")[-1])
+        ax.grid(alpha=0.3)
+        ax.legend(fontsize=7)
+    fig.tight_layout()
+    p = os.path.join(out, "steady.png")
+    fig.savefig(p, dpi=80)
+    plt.close(fig)
+    files.append(p)
+    for exp, title in (("cold", "cold start"), ("spike", "congestion spike (load x2)"),
+                       ("failure", "link failure and repair")):
+        rs = [r for r in scen if r["exp"] == exp and r["seed"] == 1 and "series" in r]
+        if not rs:
+            continue
+        fig, ax = plt.subplots(figsize=(8, 4))
+        for r in rs:
+            t, m = rolling(r["series"])
+            ax.plot(t, 1e3 * m, label=r["label"], lw=2.0 if r["label"] == "shortest" else 1.2,
+                    ls="--" if r["label"] == "shortest" else "-")
+        ax.set_yscale("log")
+        ax.set_xlabel("time (s)")
+        ax.set_ylabel("mean delivery time, 2-s rolling (ms, log)")
+        ax.set_title(f"{rs[0]['topology'].split('/')[-1]}: {title} (seed 1)")
+        ax.grid(alpha=0.3)
+        ax.legend(fontsize=7)
+        fig.tight_layout()
+        p = os.path.join(out, f"{exp}.png")
+        fig.savefig(p, dpi=80)
+        plt.close(fig)
+        files.append(p)
+    return files
+
+
+def _fmt_t(v: float, reached: bool) -> str:
+    return f"{v:.1f}" if reached else f"> {v:.1f}"
+
+
+def report_md(out: str, summ: dict[str, Any], meta: dict[str, Any]) -> str:
+    L = ["# Engine variants against mindelay and shortest", "",
+         f"Generated by `bench/compare_variants.py` ({meta['mode']}; {meta['wall_s']:.0f} s wall, "
+         f"{meta['runs']} simulations, seeds 1..{meta['seeds']}).  Every link at "
+         f"{CAPACITY_BPS / 1e6:g} Mb/s (`capacity_bps`; the topohub files give none), "
+         f"{BUFFER_PKTS}-packet buffers (the files give none either), {PACKET_BYTES:g}-byte packets, the topologies' own demand matrices.", ""]
+    L += ["| topology | shortest saturates at (packets/s) | busiest link | mindelay feasible up to (x) |",
+          "|---|---|---|---|"]
+    for k, i in meta["topologies"].items():
+        L.append(f"| {k} | {i['sat_pps']:.0f} | {i['busiest']} | {i['mindelay_limit']:.2f} |")
+    L += ["", "## Headline: at loads where shortest saturates (load >= 1)", "",
+          "| topology | load | best variant | best / mindelay | shortest / mindelay | all variants / mindelay |",
+          "|---|---|---|---|---|---|"]
+    for topo, rows in summ["headline"].items():
+        for r in rows:
+            per = ", ".join(f"{v} {x:.2f}" for v, x in r["per_variant"].items())
+            L.append(f"| {topo} | {r['load']:.2f} | {r['best']} | {r['best_over_mindelay']:.3f} | "
+                     f"{r['shortest_over_mindelay']:.2f} | {per} |")
+    L += ["", "Aim: best variant within 15% of mindelay (ratio <= 1.15).", "",
+          "## Steady state (mean delivery ms / delivery ratio / share sent off the greedy hop)", ""]
+    topos = sorted({r["topology"] for r in summ["steady"]})
+    pols = ("shortest", "mindelay") + VARIANTS
+    for topo in topos:
+        L += [f"### {topo}", "", "| load | " + " | ".join(pols) + " |", "|---" * (len(pols) + 1) + "|"]
+        for lf in sorted({r["load"] for r in summ["steady"] if r["topology"] == topo}):
+            cells = []
+            for p in pols:
+                r = next((r for r in summ["steady"] if r["topology"] == topo and r["load"] == lf
+                          and r["policy"] == p), None)
+                if r is None:
+                    cells.append("infeasible" if p == "mindelay" else "-")
+                else:
+                    off = f" / {100 * r['off_greedy_share']:.1f}%" if p in VARIANTS else ""
+                    cells.append(f"{r['mean_delivery_ms']:.1f} / {r['delivery_ratio']:.3f}{off}")
+            L.append(f"| {lf:.2f} | " + " | ".join(cells) + " |")
+        L.append("")
+    L += ["![steady](steady.png)", "", "## Scenarios (seconds; `>` = not reached before the end)", ""]
+    L += ["| topology | scenario | policy | figure | time (s) | speed-up vs plain |", "|---|---|---|---|---|---|"]
+    for row in summ["scenarios"]:
+        for k, rk in (("learn_s", "learn_reached"), ("spike_recovery_s", "spike_reached"),
+                      ("failure_settle_s", "failure_reached"), ("repair_recovery_s", "repair_reached")):
+            if k in row:
+                sp = summ["speedup_vs_plain"].get(f"{row['topology']}|{k}", {}).get(row["policy"])
+                sps = "" if sp is None else (f"{sp:.2f}x" if math.isfinite(sp) else "inf")
+                L.append(f"| {row['topology']} | {row['scenario']} | {row['policy']} | {k} | "
+                         f"{_fmt_t(row[k], bool(row[rk]))} | {sps} |")
+    L += ["", "![cold](cold.png)", "", "![spike](spike.png)", "", "![failure](failure.png)", "",
+          "Definitions: see the module docstring of `bench/compare_variants.py`.  Times are "
+          "means over seeds; a run that never settles counts as the rest of its run.", ""]
+    p = os.path.join(out, "report.md")
+    with open(p, "w") as fh:
+        fh.write("\n".join(L))
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(prog="compare_variants", description=__doc__.split("\n")[0])
+    ap.add_argument("--out", default=os.path.join(os.path.dirname(os.path.abspath(__file__)),
+                                                  "reports", "variants"))
+    ap.add_argument("--quick", action="store_true", help="abilene only, short runs, 3 loads")
+    ap.add_argument("--jobs", type=int, default=2)
+    ap.add_argument("--seeds", type=int, default=2)
+    a = ap.parse_args(argv)
+    if a.jobs < 1 or a.seeds < 1:
+        ap.error("--jobs and --seeds must be at least 1")
+    t0 = time.perf_counter()
+    os.makedirs(a.out, exist_ok=True)
+    keys = TOPOLOGIES[:1] if a.quick else TOPOLOGIES
+    topos: dict[str, dict[str, Any]] = {}
+    for k in keys:
+        topo = load_topology(k)
+        sat, link = shortest_saturation_pps(topo)
+        topos[k] = {"topo": topo, "sat_pps": sat, "busiest_link": link,
+                    "mindelay_limit": mindelay_limit(topo, sat),
+                    "busiest": f"{topo.nodes[int(topo.src[link])]} -> {topo.nodes[int(topo.dst[link])]}"}
+        print(f"{k}: shortest saturates at {sat:.0f} packets/s; mindelay feasible to "
+              f"x{topos[k]['mindelay_limit']:.2f}", file=sys.stderr)
+    loads = (0.5, 1.0, 1.1) if a.quick else LOADS
+    scale = 0.5 if a.quick else 1.0
+    steady = run_jobs(steady_jobs(topos, loads, 12.0 if a.quick else 30.0, 1 if a.quick else a.seeds), a.jobs)
+    print(f"steady state done ({time.perf_counter() - t0:.0f} s)", file=sys.stderr)
+    scen = run_jobs(scenario_jobs(keys[0], topos[keys[0]], 1 if a.quick else a.seeds, scale), a.jobs)
+    errors = [r for r in steady + scen if "error" in r]
+    summ = summarise(steady, scen, topos, scale)
+    meta = {"mode": "quick" if a.quick else "full", "wall_s": time.perf_counter() - t0,
+            "runs": len(steady) + len(scen), "seeds": 1 if a.quick else a.seeds,
+            "topologies": {k: {kk: v for kk, v in i.items() if kk != "topo"} for k, i in topos.items()},
+            "errors": [{"label": r["label"], "exp": r["exp"], "error": r["error"]} for r in errors]}
+    write_csv(os.path.join(a.out, "steady.csv"), summ["steady"])
+    write_csv(os.path.join(a.out, "scenarios.csv"), summ["scenarios"])
+    with open(os.path.join(a.out, "report.json"), "w") as fh:
+        json.dump({"meta": meta, **summ}, fh, indent=1, default=float)
+    plots(a.out, summ, scen)
+    p = report_md(a.out, summ, meta)
+    print(p)
+    for e in errors:
+        print(f"error: {e['exp']} {e['label']}: {e['error']}", file=sys.stderr)
+    return 1 if errors else 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
