@@ -94,7 +94,8 @@ def plausible(draw: Any) -> dict[str, Any]:
         hops.insert(draw(st.integers(0, len(hops))), draw(hop_row))
     obj: dict[str, Any] = {"v": 1, "reporter": draw(st.sampled_from(["w1", "e3", "x"])),
                            "batch": draw(st.integers(0, 2**40))}
-    if draw(st.booleans()) and all(isinstance(h, list) and len(h) == 4 and h[0] in TOPO.index
+    if draw(st.booleans()) and all(isinstance(h, list) and len(h) == 4 and isinstance(h[3], float)
+                                   and all(isinstance(v, str) and v in TOPO.index for v in h[:3])
                                    for h in hops):
         ix = TOPO.index
         obj["topology"] = TOPO.digest
