@@ -38,7 +38,9 @@ clock sync) or t2 - t1 (``one_way``, for synchronised clocks such as the lab's
 namespaces on one host).  Probes queue behind data in the same socket and rate limiter,
 so they see its queueing.  Each sample becomes one hop row per destination
 (x, y, d, latency) — the hop is the same link for every destination — with y's remaining
-estimate for d when its echo carried one.
+estimate for d when its echo carried one (an agent's echoes carry the estimates given to
+:meth:`Agent.set_estimates` by an engine run beside it; none by default, and the service
+then uses its own estimate of y).
 
 Failure detection (after BFD, RFC 5880, asynchronous mode): a link whose neighbour has
 not echoed for ``detect_multiplier x probe_interval_s`` is down; the next echo brings it up.
@@ -318,6 +320,9 @@ class Agent:
         self.fallback_nh: list[int] = [-1] * topo.n
         self._fallback_excl: dict[int, list[int]] = {}
         self.flowlets: dict[tuple[int, int], list[Any]] = {}  # key → [nh, last_t, version]
+        # this node's own remaining-time estimates, (destination, seconds), sent in every
+        # echo; empty unless something running an engine beside the agent sets them
+        self.estimates: tuple[tuple[int, float], ...] = ()
         # reporting
         self.rows: deque[tuple[str, str, str, float, float | None]] = deque(maxlen=cfg["agent.report_buffer_rows"])
         self.link_reports: dict[int, str] = {}
@@ -639,6 +644,20 @@ class Agent:
             del self.flowlets[k]
         self.m.flowlets.set(len(self.flowlets))
 
+    def set_estimates(self, estimates: Mapping[str, float]) -> None:
+        """This node's own remaining-time estimates by destination name (seconds), for an
+        engine run beside the agent: its echoes carry them, and the neighbours' hop rows
+        then report them as ``estimate_s`` (the Q-routing estimate of the next hop)."""
+        idx = self.topo.index
+        out = []
+        for name, e in estimates.items():
+            if name not in idx or name == self.name:
+                raise ValueError(f"estimate for {name!r}: not another node of {self.topo.name!r}")
+            if not (isinstance(e, (int, float)) and 0.0 <= e < math.inf):
+                raise ValueError(f"estimate for {name!r} is {e!r}, expected seconds >= 0")
+            out.append((idx[name], float(e)))
+        self.estimates = tuple(out)
+
     # -- tables --------------------------------------------------------------------------
     def _take_tables(self) -> None:
         sub = self.sub
@@ -706,7 +725,7 @@ class Agent:
             self._malformed("unknown_node")
             return
         try:
-            ln.sock.send(ov.echo(h, self.me, t2, time.time_ns()))
+            ln.sock.send(ov.echo(h, self.me, t2, time.time_ns(), self.estimates))
             self.counts["probes_answered"] += 1
             self.m.probes.labels("answered").inc()
         except OSError:

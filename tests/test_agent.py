@@ -330,6 +330,24 @@ def test_probes_measure_emulated_delay_and_report_hop_rows(diamond: Callable[...
     fast = [h[3] for h in d.service.hops if h[:2] == ("s", "y")]
     assert min(fast) >= 0.001 and sorted(fast)[len(fast) // 2] < sorted(lat)[len(lat) // 2]
     assert all(math.isnan(r[4]) for r in rows)      # no estimates: the echoes carried none
+    # x's own estimates (as an engine beside it would set them) ride in its echoes and
+    # come back in s's rows as the next hop's remaining estimate
+    d.agents["x"].agent.set_estimates({"t": 0.25, "y": 0.5})
+    n0 = len(d.service.hops)
+    assert wait_until(lambda: any(h[:3] == ("s", "x", "t") and h[4] == 0.25
+                                  for h in d.service.hops[n0:]), 5)
+    first = next(i for i, h in enumerate(d.service.hops) if i >= n0 and h[4] == 0.25)
+
+    def later() -> list[tuple[str, str, str, float, float]]:
+        return [h for h in d.service.hops[first:] if h[:2] == ("s", "x")]
+
+    assert wait_until(lambda: sum(1 for h in later() if h[2] == "x") >= 2, 5)   # two more echoes
+    later_rows = later()
+    # every destination x gave an estimate for carries it; x itself (the hop's end) none
+    assert {h[2]: h[4] for h in later_rows if not math.isnan(h[4])} == {"t": 0.25, "y": 0.5}
+    assert all(math.isnan(h[4]) for h in later_rows if h[2] == "x")
+    with pytest.raises(ValueError, match="expected seconds"):
+        d.agents["x"].agent.set_estimates({"t": -1.0})
     s = d.agents["s"]
     echoes = s.metric("routerd_agent_probes_total", {"event": "echoed"})
     assert echoes >= len(rows) / 3                  # the s-x echoes, and those of s-y
