@@ -384,6 +384,28 @@ def may_control(rep: Reporter | None, op: str) -> bool:
     return rep is not None and rep.control
 
 
+def exposed(endpoint: str | None) -> bool:
+    """True when a ZeroMQ endpoint or a HOST:PORT address can be reached from other hosts
+    (TCP on anything but a loopback address; ipc:// and inproc:// never)."""
+    import ipaddress
+
+    if not endpoint:
+        return False
+    ep = endpoint
+    if "://" in ep:
+        scheme, ep = ep.split("://", 1)
+        if scheme not in ("tcp", "ws", "wss", "udp", "pgm", "epgm"):
+            return False
+    host = ep.rsplit(":", 1)[0] if ":" in ep else ep
+    host = host.strip("[]").split(";")[-1]
+    if host in ("localhost", "localhost.localdomain"):
+        return False
+    try:
+        return not ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return True   # an interface name, "*" or a host name: assume reachable
+
+
 def describe(allow: Allow) -> list[str]:
     """One line per allowed key, for the start-up banner."""
     return [f"{r.name}: nodes {', '.join(r.nodes) or '-'}" + ("; control" if r.control else "")

@@ -163,7 +163,7 @@ def load_topology(cfg: _config.Config) -> _topology.Topology:
 
 def run(args: argparse.Namespace) -> int:
     if getattr(args, "shards", None) is not None or getattr(args, "shard", None) is not None:
-        from . import shard as _shard   # the front or one worker (routerd/shard.py)
+        from . import shard as _shard  # the front or one worker (routerd/shard.py)
 
         return _shard.run(args)
     try:
@@ -353,6 +353,7 @@ class Service:
         except ValueError as e:
             raise StartError(str(e)) from None
         self._load_security()
+        self._warn_exposed()
         state_dir = cfg["service.state_dir"]
         try:
             os.makedirs(state_dir, exist_ok=True)
@@ -375,6 +376,22 @@ class Service:
             # as the process: keep the collector from walking it on every generation-2 pass
             gc.collect()
             gc.freeze()
+
+    def _warn_exposed(self) -> None:
+        """Endpoints other hosts can reach without CURVE: said at start-up (the defaults
+        bind to loopback only)."""
+        cfg = self.cfg
+        open_eps = [] if self.allow is not None else [
+            (k, cfg[f"service.{k}"]) for k in ("ingest", "pull", "publish", "control")]
+        open_eps.append(("control-readonly", cfg["security.control_readonly"]))
+        for name, ep in open_eps:
+            if _security.exposed(ep):
+                self.log.warning("endpoint reachable from other hosts without CURVE: anyone "
+                                 "there can use it (give --server-key and --allow, or bind "
+                                 "to 127.0.0.1)", endpoint=name, address=ep)
+        if _security.exposed("tcp://" + cfg["service.metrics"]):
+            self.log.warning("metrics page reachable from other hosts (it reads, never "
+                             "writes)", address=cfg["service.metrics"])
 
     def _load_security(self) -> None:
         """Key and allow file, checked before anything binds or is written."""

@@ -330,3 +330,26 @@ def test_service_config_resolves_key_paths_relative_to_the_config(tmp_path: Any)
     assert cfg["security.allow"] == str(tmp_path / "allow.yaml")
     cfg = service.load_config(p.parse_args(["--allow", "x.yaml"]))
     assert cfg["security.allow"] == os.path.abspath("x.yaml")
+
+
+def test_endpoints_other_hosts_can_reach_without_curve_are_warned_about() -> None:
+    import io
+
+    from routerd import config
+
+    for ep, reach in (("tcp://127.0.0.1:7301", False), ("tcp://[::1]:1", False),
+                      ("ipc:///tmp/x", False), ("tcp://0.0.0.0:7301", True), ("tcp://*:1", True),
+                      ("tcp://10.1.2.3:1", True), ("0.0.0.0:9307", True), ("127.0.0.1:9307", False)):
+        assert security.exposed(ep) is reach, ep
+    cfg = config.load(None).with_overrides({"service.control": "tcp://0.0.0.0:7303",
+                                            "service.metrics": "0.0.0.0:9307"})
+    svc = service.Service(cfg, _demo())
+    svc.log = service.Log(stream=(buf := io.StringIO()))
+    svc._warn_exposed()
+    out = buf.getvalue()
+    assert "endpoint=control address=tcp://0.0.0.0:7303" in out and "without CURVE" in out
+    assert "metrics page reachable" in out and "endpoint=ingest" not in out
+    svc = service.Service(config.load(None), _demo())       # the defaults: loopback only
+    svc.log = service.Log(stream=(buf := io.StringIO()))
+    svc._warn_exposed()
+    assert buf.getvalue() == ""
