@@ -465,3 +465,72 @@ def test_poisoning_outside_and_within_a_reporters_rights(base: str) -> None:
         assert moved_tab in ([], ["w1"])
     finally:
         cs.sp.kill()
+
+
+# ---- storage faults without root: fault injection in process -------------------------------
+def test_journal_write_and_fsync_failures_in_process(base: str, monkeypatch: Any) -> None:
+    """The same rules as the tmpfs test, where mounting is not allowed: journal writes and
+    fsyncs made to fail with ENOSPC / EIO by patching the journal's I/O."""
+    import errno
+
+    from routerd.service import Service
+
+    cfg = config.load(None).with_overrides({"service.state_dir": os.path.join(base, "st"),
+                                            "service.storage_retry_s": 0.01})
+    import io
+
+    from routerd.service import Log
+
+    svc = Service(cfg, DEMO)
+    svc.log = Log(stream=(logbuf := io.StringIO()))
+    svc._restore(cfg["service.state_dir"])
+    rng = np.random.default_rng(1)
+    try:
+        def ingest(b: int) -> dict[str, Any]:
+            out, _ = svc._ingest_one(_frame(rng, "inj", b, 50))
+            return wire.decode_reply(out)
+
+        assert "error" not in ingest(0)
+        svc._commit()
+
+        def no_space(fd: int, data: bytes) -> None:
+            raise OSError(errno.ENOSPC, "No space left on device")
+
+        monkeypatch.setattr(journal, "_write_all", no_space)
+        r = ingest(1)
+        assert r["error"].startswith("unavailable:") and "ENOSPC" in r["error"]
+        assert svc.health()["storage"]["ok"] is False
+        assert "storage failed" in logbuf.getvalue() and "ENOSPC" in logbuf.getvalue()
+        assert "error" in ingest(2) and "error" in ingest(0)     # even a re-ack waits
+        # the engine was put back to what is stored: batch 1 is not in it
+        ref = journal.restore(cfg["service.state_dir"], DEMO, EngineSettings()).engine
+        assert ref.same_state(svc.engine)
+        monkeypatch.undo()
+        svc._next_resume = 0.0
+        svc._try_resume()
+        assert svc.health()["storage"]["ok"] is True
+        assert "error" not in ingest(1) and "error" not in ingest(2)
+        svc._commit()
+
+        # an fsync that fails: the batch is in the file, its ack must not go out
+        real = os.fdatasync
+        monkeypatch.setattr(os, "fdatasync", lambda fd: (_ for _ in ()).throw(
+            OSError(errno.EIO, "Input/output error")))
+        r = ingest(3)
+        assert "error" not in r                       # appended; the ack waits for the commit
+        with pytest.raises(Exception, match="fsync"):
+            svc._commit()
+        assert svc._turn_failed
+        answer = svc._unacknowledge(wire.encode_ack(3, r["accepted"], r["rejected"]), 3)
+        assert wire.decode_reply(answer)["error"].startswith("unavailable:")
+        monkeypatch.setattr(os, "fdatasync", real)
+        svc._next_resume = 0.0
+        svc._try_resume()
+        assert svc.health()["storage"]["ok"] is True
+        # re-sent: it was in the file, so it is acknowledged as the duplicate it is
+        dup = ingest(3)
+        assert dup == r and svc.counters.batches["duplicate"] >= 1
+        ref = journal.restore(cfg["service.state_dir"], DEMO, EngineSettings()).engine
+        assert ref.same_state(svc.engine)
+    finally:
+        svc.close()
