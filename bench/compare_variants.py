@@ -212,7 +212,7 @@ def scenario_jobs(key: str, info: dict[str, Any], seeds: int, scale: float) -> l
     k = info["busiest_link"]
     a, b = topo.nodes[int(topo.src[k])], topo.nodes[int(topo.dst[k])]
     sc = {
-        "cold": ({"scenario": {"name": "cold-start"}}, 1.0, 40.0 * scale,
+        "cold": ({"scenario": {"name": "cold-start"}}, 1.2, 40.0 * scale,
                  ["engine.initial.mode=constant", "engine.initial.value_s=0.05"]),
         "spike": ({"scenario": {"name": "spike", "load": [{"step": 2.0, "at_s": 10 * scale},
                                                          {"step": 1.0, "at_s": 20 * scale}]}},

@@ -63,7 +63,8 @@ a confidence C in [0, 1]; the destination's own estimate (y == d) has C = 1.  On
     Q[x,d,j] += eta (target - Q);  C[x,d,j] = C_old + eta (C_new - C_old);  U = now
 
 ``C_new`` is 1 when y == d, else the row's confidence when the shell gives one, else
-the decayed confidence of y's lowest slot for d (the service holds y's table).  An entry
+the decayed confidence of the entry y publishes for d (its greedy slot from the last
+decision; its lowest slot if it has none) — the service holds y's table.  An entry
 not updated decays: after k decay intervals (``conf_interval_s``) its confidence is
 ``C_0 * lambda^k`` (k = (now - U) / interval, continuous), so a stale estimate is
 overwritten quickly by the next news about it.  ``conf_min_step`` floors eta
@@ -399,6 +400,7 @@ class Confidence(VariantState):
         Qf = engine.Q.reshape(-1)
         Cf, Uf = self.C.reshape(-1), self.U.reshape(-1)
         ceil, lam, iv, floor = s.ceiling_s, s.conf_decay, s.conf_interval_s, s.conf_min_step
+        greedy = engine.greedy
         tde: list[float] = []
         for x, y, d, j, lat, e, c in zip(rows.xs, rows.ys, rows.ds, rows.js, rows.lats,
                                          rows.ests, rows.confs):
@@ -410,9 +412,11 @@ class Confidence(VariantState):
                 c_new = 1.0
             elif c == c:   # given by the shell
                 c_new = min(1.0, max(0.0, c))
-            else:          # y's lowest slot for d (first on ties, like argmin)
+            else:          # the entry y publishes for d (its greedy slot), else its lowest
                 rb = (y * n + d) * K
-                zb = int(np.argmin(Qf[rb:rb + K]))
+                zb = int(greedy[y, d])
+                if zb < 0:
+                    zb = int(np.argmin(Qf[rb:rb + K]))
                 c_new = float(decayed(float(Cf[rb + zb]), now - float(Uf[rb + zb]), lam, iv))
             eta = max(c_new, 1.0 - c_old, floor)
             Nf = engine.N.reshape(-1)

@@ -29,6 +29,7 @@ from routerd import topology as T
 from routerd import variants as V
 from routerd.errors import ConfigError
 from routerd.engine import Engine, EngineSettings, HopBatch, settings_with
+from sim.policies import QRouting
 from sim.run import run
 
 VARIANTS = ("full_echo", "predictive", "dual", "confidence")
@@ -207,7 +208,6 @@ def test_full_echo_damping_one_is_the_published_rule() -> None:
 # ---- dual (Kumar & Miikkulainen 1997): the simulator adapter's backward rows --------------
 
 def test_dual_adapter_emits_the_backward_row() -> None:
-    from sim.policies import QRouting
     cfg = config.load(None).with_overrides({"engine.variant": "dual", "sim.flows_per_pair": 4})
     t = line("s", "x", "y", "d")
     p = QRouting()
@@ -334,3 +334,102 @@ def test_every_variant_routes_the_demo_lab_past_shortest(variant: str) -> None:
     assert sh["delivery_ratio"] < 0.9
     assert s["delivery_ratio"] > 0.99, s
     assert s["mean_delivery_s"] < 0.5 * sh["mean_delivery_s"], (s["mean_delivery_s"], sh["mean_delivery_s"])
+
+
+# a scenario of our own: s reaches d by a short thin way (via a, 2 Mb/s) or a long fat
+# one (via b, 4 Mb/s); traffic s -> d only.  A rush (300 packets/s > the thin way's
+# 250) pushes s onto b; at 10 s the load falls to a quarter and a is the better way again
+TWO_WAYS = {"topology": {
+    "name": "two-ways", "defaults": {"capacity_bps": 4.0e6, "buffer_pkts": 64},
+    "nodes": ["s", "a", "b", "d"],
+    "links": [{"between": ["s", "a"], "delay_s": 0.002, "capacity_bps": 2.0e6},
+              {"between": ["a", "d"], "delay_s": 0.002, "capacity_bps": 2.0e6},
+              {"between": ["s", "b"], "delay_s": 0.006},
+              {"between": ["b", "d"], "delay_s": 0.006}],
+    "demands": [{"from": "s", "to": "d", "rate": 1.0}]}}
+RUSH_THEN_CALM = {"scenario": {"name": "rush-then-calm",
+                               "load": [{"step": 1.0, "at_s": 0}, {"step": 0.25, "at_s": 10}]}}
+S, A_, B_, D = 0, 1, 2, 3
+
+
+def _two_ways(variant: str, seed: int, duration: float = 25.0) -> tuple[QRouting, list[tuple[float, int, dict]]]:
+    p = QRouting()
+    samples: list[tuple[float, int, dict]] = []
+
+    def obs(view: dict) -> None:
+        e = p.engine
+        samples.append((view["t_s"], int(e.next_hops()[S, D]),
+                        {"N": e.N.copy(), "Q": e.Q.copy()}))
+
+    run({"policy": "qrouting", "topology": TWO_WAYS, "rate_pps": 300.0, "duration_s": duration,
+         "seed": seed, "demands": True, "scenario": RUSH_THEN_CALM, "series": True,
+         "warmup_s": 0.0, "overrides": [f"engine.variant={variant}", "sim.series_interval_s=0.25"]},
+        policy=p, observer=obs)
+    return p, samples
+
+
+@pytest.mark.slow
+def test_predictive_retries_the_abandoned_way_when_load_falls() -> None:
+    # Choi & Yeung (1996): plain Q-routing does not re-try a way abandoned under
+    # congestion (no news about it), predictive Q-routing does as its prediction recovers
+    calm = {}
+    for v in ("plain", "predictive"):
+        tot = 0
+        for seed in (1, 2, 3, 4):
+            _, smp = _two_ways(v, seed)
+            assert any(h == B_ for t, h, _ in smp if 5 < t <= 10), (v, seed)  # the rush moved s to b
+            back = [t for t, h, _ in smp if t > 10 and h == A_]
+            if v == "predictive":
+                assert back and back[0] - 10 <= 3.0, (seed, back[:1])
+            tot += sum(1 for t, h, _ in smp if t > 10 and h == A_)
+        calm[v] = tot
+    assert calm["predictive"] > calm["plain"], calm
+
+
+@pytest.mark.slow
+def test_confidence_of_unused_entries_decays_and_used_ones_stay_sure() -> None:
+    # Kumar & Miikkulainen (1998): entries without news lose confidence (C_0 lambda^k)
+    p, _ = _two_ways("confidence", 1, duration=15.0)
+    e = p.engine
+    st = e._variant
+    c = st.confidence_now(e)
+    age = e.now - st.U
+    lam, iv = e.settings.conf_decay, e.settings.conf_interval_s
+    present = np.isfinite(e.Q)
+    stale = present & (age > 5.0)
+    assert stale.any()
+    assert np.all(c[stale] <= lam ** 5 + 1e-12)
+    assert np.allclose(c[stale], st.C[stale] * lam ** (age[stale] / iv))
+    g = int(e.greedy[S, D])
+    assert age[S, D, g] < 1.0 and c[S, D, g] > 0.5, (age[S, D, g], c[S, D, g])
+
+
+@pytest.mark.slow
+def test_full_echo_keeps_the_way_not_taken_up_to_date() -> None:
+    # Boyan & Littman (1994): with full echo every hop also refreshes the estimates of
+    # the neighbours not taken; plain leaves them as they were
+    counts = {}
+    for v in ("plain", "full_echo"):
+        _, smp = _two_ways(v, 1, duration=15.0)
+        first = next(x for x in smp if x[0] > 10)
+        last = smp[-1]
+        j = 1 if last[1] == A_ else 0          # s's slots are (a, b): the one not taken
+        counts[v] = int(last[2]["N"][S, D, j] - first[2]["N"][S, D, j])
+    assert counts["full_echo"] > 100 and counts["full_echo"] > 10 * max(1, counts["plain"]), counts
+
+
+@pytest.mark.slow
+def test_dual_learns_the_way_back_without_traffic_back() -> None:
+    # Kumar & Miikkulainen (1997): backward rows carried by s -> d packets teach d about
+    # the way to s, though d itself sends nothing (plain leaves d's entries for s alone)
+    learned = {}
+    for v in ("plain", "dual"):
+        p, _ = _two_ways(v, 1, duration=8.0)
+        learned[v] = int(p.engine.N[D, S].sum())
+        if v == "dual":
+            assert p.backward_rows > 1000
+            # d's estimate for s: about the hop latencies back along the used ways
+            # (propagation 4 ms via a, 12 ms via b, plus transmission and queueing)
+            v_ds = p.engine.estimate(D, S)
+            assert 0.004 < v_ds < 0.1, v_ds
+    assert learned["plain"] == 0 and learned["dual"] > 1000, learned
