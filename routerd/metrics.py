@@ -267,6 +267,15 @@ class RouterdCollector(Collector):
                        "Ingest peer disconnections (including peers cut off for an oversized frame)",
                        c.ingest_disconnects)
         yield _counter("routerd_journal_fsyncs", "Journal group commits made durable", c.fsyncs)
+        trust = getattr(src, "trust_state", None)   # storage and guard state (routerd.service)
+        if trust is not None:
+            t = trust()
+            yield _gauge("routerd_storage_writable", "1 while the journal can be written; 0: "
+                         "batches are answered 'unavailable' until it can", t["writable"])
+            yield _counter("routerd_storage_failures", "Journal writes or fsyncs that failed "
+                           "(disk full, I/O error)", t["failures"])
+            yield _counter("routerd_guard_clipped_rows", "Hop rows whose latency the jump "
+                           "guard clipped to its band (accepted, not rejected)", t["clipped"])
         yield _gauge("routerd_uptime_seconds", "Seconds since the service started", src.uptime_s())
         info = GaugeMetricFamily("routerd_build_info", "Constant 1, labelled with version and topology digest",
                                  labels=sorted(src.info()))

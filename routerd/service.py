@@ -335,6 +335,11 @@ class Service:
         # wall clock: the newest snapshot may come from before this start (its file time)
         return None if self.last_snapshot_at is None else max(0.0, time.time() - self.last_snapshot_at)
 
+    def trust_state(self) -> dict[str, float]:
+        """Storage and guard figures for the metrics page."""
+        return {"writable": 1.0 if self._down is None else 0.0,
+                "failures": float(self.storage_failures), "clipped": float(self.guards.stats.clipped)}
+
     def uptime_s(self) -> float:
         return time.monotonic() - self.started
 

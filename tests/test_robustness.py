@@ -315,6 +315,8 @@ def test_disk_full_stops_acknowledging_says_why_and_resumes(base: str, small_dis
         assert h["storage"]["ok"] is False and "ENOSPC" in h["storage"]["reason"]
         assert h["counts"]["frames_refused"]["unavailable"] == len(refused)
         assert any("storage failed" in ln and "ENOSPC" in ln for ln in sp.stderr_lines)
+        page = sp.metrics_text()
+        assert "routerd_storage_writable 0.0" in page and "routerd_storage_failures_total" in page
         tables = sp.control({"op": "tables"})["tables"]          # reads still served
         assert set(tables) == set(DEMO.nodes)
         os.unlink(os.path.join(small_disk, "filler"))
@@ -327,6 +329,7 @@ def test_disk_full_stops_acknowledging_says_why_and_resumes(base: str, small_dis
             assert "error" not in r, r
             acked[b] = r
         assert any("storage back" in ln for ln in sp.stderr_lines)
+        assert "routerd_storage_writable 1.0" in sp.metrics_text()
         got = _estimates(sp.endpoints["control"])
         d.close(0)
         sp.proc.send_signal(signal.SIGKILL)
