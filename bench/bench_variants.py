@@ -22,7 +22,7 @@ from typing import Any
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
-import compare_variants as C  # noqa: E402
+import compare_variants as C
 
 
 def run(quick: bool) -> dict[str, dict[str, Any]]:

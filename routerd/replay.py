@@ -56,9 +56,9 @@ import numpy as np
 from . import config as _config
 from . import journal as J
 from . import topology as _topology
+from . import variants as _variants
 from . import wire
 from .engine import Decision, Engine, EngineSettings
-from . import variants as _variants
 from .errors import InputError, Problem
 
 #: config key → EngineSettings field (the inverse of EngineSettings.from_config; a test

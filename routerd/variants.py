@@ -244,7 +244,7 @@ class VariantState:
     def _tail(engine: Any, y: int, d: int, e: float) -> float:
         if y == d:
             return 0.0
-        if e == e:  # not NaN: the neighbour's own estimate
+        if not math.isnan(e):  # the neighbour's own estimate
             return e
         n, K = engine.n, engine.k
         rb = (y * n + d) * K   # absent slots hold inf, dead ones exactly the ceiling
@@ -270,7 +270,7 @@ class VariantState:
 
 
 def _clip(v: float, ceil: float) -> float:
-    return ceil if v > ceil else (0.0 if v < 0.0 else v)
+    return ceil if v > ceil else (max(v, 0.0))
 
 
 class FullEcho(VariantState):
@@ -350,12 +350,11 @@ class Predictive(VariantState):
             delta = lat + self._tail(engine, y, d, e) - old
             q = _clip(old + a * delta, ceil)
             Qf[k] = q
-            if q < Bf[k]:
-                Bf[k] = q
+            Bf[k] = min(Bf[k], q)
             u = float(Uf[k])
             if delta < 0.0 and now > u:
                 r = float(Rf[k]) + beta * delta / (now - u)
-                Rf[k] = r if r < 0.0 else 0.0
+                Rf[k] = min(0.0, r)
             elif delta > 0.0:
                 Rf[k] = gamma * float(Rf[k])
             Uf[k] = now
@@ -410,7 +409,7 @@ class Confidence(VariantState):
             c_old = float(decayed(float(Cf[k]), now - float(Uf[k]), lam, iv))
             if y == d:
                 c_new = 1.0
-            elif c == c:   # given by the shell
+            elif not math.isnan(c):   # given by the shell
                 c_new = min(1.0, max(0.0, c))
             else:          # the entry y publishes for d (its greedy slot), else its lowest
                 rb = (y * n + d) * K

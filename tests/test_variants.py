@@ -27,8 +27,8 @@ from test_engine import HYP, _forwarding_graphs, _random_q, line, row_lists, slo
 from routerd import config, loops
 from routerd import topology as T
 from routerd import variants as V
-from routerd.errors import ConfigError
 from routerd.engine import Engine, EngineSettings, HopBatch, settings_with
+from routerd.errors import ConfigError
 from sim.policies import QRouting
 from sim.run import run
 
@@ -37,9 +37,9 @@ VARIANTS = ("full_echo", "predictive", "dual", "confidence")
 
 def cs(variant: str, **kw: object) -> EngineSettings:
     """Constant step, constant start values, no hysteresis: hand arithmetic stays simple."""
-    base: dict[str, object] = dict(step_mode="constant", alpha=0.5, initial_mode="constant",
-                                   initial_value_s=10.0, ceiling_s=100.0, margin=0.0,
-                                   variant=variant)
+    base: dict[str, object] = {"step_mode": "constant", "alpha": 0.5, "initial_mode": "constant",
+                                   "initial_value_s": 10.0, "ceiling_s": 100.0, "margin": 0.0,
+                                   "variant": variant}
     base.update(kw)
     return EngineSettings(**base)  # type: ignore[arg-type]
 
@@ -200,7 +200,7 @@ def test_full_echo_updates_every_live_neighbour_by_hand() -> None:
 def test_full_echo_damping_one_is_the_published_rule() -> None:
     t = diamond()
     e = Engine(t, cs("full_echo", echo_damping=1.0))
-    x, y, z, d = (t.index[k] for k in "xyzd")
+    x, y, _z, d = (t.index[k] for k in "xyzd")
     e.observe(HopBatch.of([x], [y], [d], [0.002], [4.0]), now=1.0)
     assert e.Q[x, d, slot(t, "x", "z")] == pytest.approx(10 + 0.5 * 0.003)
 
@@ -318,8 +318,8 @@ def test_state_round_trip_and_reload_keep_variant_state(variant: str) -> None:
 # ---- in the simulator: what each paper claims, on a scenario of our own ----------------------
 
 def _run(variant: str, **kw: object) -> dict:
-    spec = dict(policy="qrouting", rate_pps=1800, duration_s=10, seed=3, series=True,
-                overrides=[f"engine.variant={variant}"])
+    spec = {"policy": "qrouting", "rate_pps": 1800, "duration_s": 10, "seed": 3, "series": True,
+                "overrides": [f"engine.variant={variant}"]}
     spec.update(kw)
     return run(spec)
 
@@ -329,7 +329,7 @@ def _run(variant: str, **kw: object) -> dict:
 def test_every_variant_routes_the_demo_lab_past_shortest(variant: str) -> None:
     # the demo lab at 1800 packets/s: the static shortest paths saturate the trunk
     # (delivery ratio < 0.9); a learner spreads the load and delivers nearly everything
-    sh = run(dict(policy="shortest", rate_pps=1800, duration_s=10, seed=3, series=False))["summary"]
+    sh = run({"policy": "shortest", "rate_pps": 1800, "duration_s": 10, "seed": 3, "series": False})["summary"]
     s = _run(variant)["summary"]
     assert sh["delivery_ratio"] < 0.9
     assert s["delivery_ratio"] > 0.99, s
