@@ -99,6 +99,8 @@ from .errors import InputError
 TOKEN_PREFIX = b"rdshard:"
 _TOKEN = struct.Struct("<Q")
 _SHARD_RE = re.compile(r"^(\d+)/(\d+)$")
+#: Set by the front for the workers it starts (they stop when it dies).
+FRONT_PID_ENV = "ROUTERD_SHARD_FRONT_PID"
 #: Frame reasons the front adds (whole-batch refusals).
 FRONT_FRAME_ERRORS = ("unavailable", "rate_limited")
 
@@ -266,6 +268,7 @@ def _run_worker(args: argparse.Namespace, cfg: _config.Config, topo: _topology.T
                 smap: ShardMap, k: int) -> int:
     from . import service as _service
 
+    _follow_front()
     n = smap.n_shards
     over = {"service.state_dir": shard_dir(cfg["service.state_dir"], k, n),
             # rate limits are the front's (per reporter, whole batches)
@@ -279,6 +282,19 @@ def _run_worker(args: argparse.Namespace, cfg: _config.Config, topo: _topology.T
         svc.close()
         return 2
     return svc.serve()
+
+
+def _follow_front() -> None:
+    """A worker the front started stops when the front dies (Linux PR_SET_PDEATHSIG)."""
+    pid = os.environ.get(FRONT_PID_ENV)
+    if not pid:
+        return
+    with contextlib.suppress(Exception):
+        import ctypes
+
+        ctypes.CDLL(None, use_errno=True).prctl(1, signal.SIGTERM)   # 1 = PR_SET_PDEATHSIG
+    if str(os.getppid()) != pid:   # the front died before the call above
+        raise SystemExit(1)
 
 
 def _worker_class() -> type:
@@ -420,8 +436,8 @@ class _Worker:
     proc: subprocess.Popen[str] | None = None
     restart_at: float | None = None
     restarts: int = 0
-    parts: dict[str, dict[str, Any]] = field(default_factory=dict)     # node -> routes
-    seen: dict[str, tuple[Any, int]] = field(default_factory=dict)     # node -> (epoch, seq)
+    raw: dict[int, bytes] = field(default_factory=dict)              # node -> newest part
+    parts: dict[int, tuple[int, bytes]] = field(default_factory=dict)  # node -> route entries
 
 
 class Front:
@@ -451,7 +467,7 @@ class Front:
         self.endpoints: dict[str, str] = {}
         self.epoch = time.time_ns()
         self.seq = [0] * topo.n
-        self._due: OrderedDict[int, str] = OrderedDict()
+        self._due: OrderedDict[int, float] = OrderedDict()   # node -> not before (monotonic)
         self._stop = False
         self._next_token = 1
         self.started = time.monotonic()
@@ -540,14 +556,9 @@ class Front:
         return argv
 
     def _spawn(self, w: _Worker) -> None:
-        def child_setup() -> None:   # the worker stops when the front dies (Linux)
-            with contextlib.suppress(Exception):
-                import ctypes
-
-                ctypes.CDLL("libc.so.6", use_errno=True).prctl(1, signal.SIGTERM)  # PR_SET_PDEATHSIG
-
+        env = {**os.environ, FRONT_PID_ENV: str(os.getpid())}
         w.proc = subprocess.Popen(self._worker_argv(w), stdout=subprocess.PIPE,
-                                  stderr=subprocess.STDOUT, text=True, preexec_fn=child_setup)
+                                  stderr=subprocess.STDOUT, text=True, env=env)
         w.restart_at = None
         t = threading.Thread(target=self._pipe_log, args=(w.k, w.proc), daemon=True)
         t.start()
@@ -615,15 +626,15 @@ class Front:
         lines = [
             (f"routerd {__version__}: serving topology {t.name!r} — {t.n} nodes, {t.n_links} "
              f"directed links (topology id {t.digest}), sharded by destination over {n} workers"),
-            f"  ingest   {self.endpoints['ingest']}   ROUTER: batches, split by destination; each "
-            "acknowledged once every piece is journaled",
+            (f"  ingest   {self.endpoints['ingest']}   ROUTER: batches, split by destination; "
+             "each acknowledged once every piece is journaled"),
             f"  pull     {self.endpoints.get('pull', '- (off)')}   PULL: the same batches, fire-and-forget",
             f"  publish  {self.endpoints['publish']}   PUB: tables/<node>, merged from every worker",
-            f"  control  {self.endpoints['control']}   REP: tables, estimates, health, nodes; "
-            "snapshot, link, reload (answered for the whole network)",
+            (f"  control  {self.endpoints['control']}   REP: tables, estimates, health, nodes; "
+             "snapshot, link, reload (answered for the whole network)"),
             f"  metrics  {self.endpoints['metrics']}   (every worker's series, label shard)",
-            f"  shards   {self.endpoints['shards']}   PULL: workers announce themselves here "
-            f"(map: {self.smap.source}; destinations per shard {self.smap.counts()})",
+            (f"  shards   {self.endpoints['shards']}   PULL: workers announce themselves here "
+             f"(map: {self.smap.source}; destinations per shard {self.smap.counts()})"),
         ]
         for w in self.workers:
             h = w.hello or {}
@@ -724,7 +735,7 @@ class Front:
                             if s is not None:
                                 poller.register(s, zmq.POLLIN)
                     self._rebuild_poller = False
-                ev = dict(poller.poll(0 if self._due else 100))
+                ev = dict(poller.poll(self._poll_ms()))
                 if getattr(self, "_reload_all", False):
                     self._reload_all = False
                     self._fan_out({"op": "reload"})
@@ -910,53 +921,78 @@ class Front:
 
     # -- tables ------------------------------------------------------------------------------------
     def _take_parts(self, w: _Worker) -> None:
+        """Keep each worker's newest table part per node as it came (decoded only when
+        the merged table goes out: parts arriving faster than publications cost a copy,
+        not a decode).  Order needs no check: one PUB connection delivers in order."""
         import zmq
 
-        for _ in range(100_000):
+        topic = len(wire.TABLE_TOPIC)
+        not_before = time.monotonic() + self.cfg["service.debounce_s"]
+        for _ in range(10_000):
             try:
                 frames = w.sub.recv_multipart(zmq.NOBLOCK)
             except zmq.Again:
                 return
-            try:
-                msg = wire.decode_table(frames)
-            except wire.BadReply:
+            if len(frames) != 2:
                 continue
-            node = msg["node"]
-            x = self.topo.index.get(node)
+            x = self.topo.index.get(bytes(frames[0][topic:]).decode("utf-8", "replace"))
             if x is None:
                 continue
-            ep, seq = msg.get("epoch"), msg["seq"]
-            prev = w.seen.get(node)
-            if prev is not None and prev[0] == ep and seq <= prev[1]:
-                continue
-            w.seen[node] = (ep, seq)
-            w.parts[node] = msg["routes"]
+            w.raw[x] = frames[1]
+            w.parts.pop(x, None)
             self.counts["parts_received"] += 1
             if x not in self._due:
-                self._due[x] = "part"
+                # parts of one decision round from several workers go out as one table
+                self._due[x] = not_before
+
+    def _part(self, w: _Worker, x: int) -> tuple[int, bytes]:
+        got = w.parts.get(x)
+        if got is None:
+            raw = w.raw.get(x)
+            got = (0, b"")
+            if raw is not None:
+                try:
+                    got = routes_entries(raw)
+                except ValueError as e:
+                    self.log.warning("shard: unreadable table part", shard=w.k, reason=str(e))
+            w.parts[x] = got
+        return got
 
     def merged(self, x: int) -> dict[str, Any]:
-        node = self.topo.nodes[x]
-        out: dict[str, Any] = {}
-        for w in self.workers:
-            out.update(w.parts.get(node, {}))
-        return out
+        """Node x's table: every worker's part (their destinations are disjoint)."""
+        return wire.decode_table(self._message(x, 0))["routes"]
 
-    def _publish_due(self, budget_s: float) -> None:
+    def _message(self, x: int, seq: int) -> list[bytes]:
+        """The publication of node x: the workers' route entries spliced under one map
+        header (no decode, no re-encode: the same bytes each worker encoded)."""
+        return splice_table(self.topo.nodes[x], seq, self.epoch,
+                            [self._part(w, x) for w in self.workers])
+
+    def _publish_due(self, budget_s: float, final: bool = False) -> None:
         import zmq
 
+        now = time.monotonic()
         end = time.perf_counter() + budget_s
         pub = self.sockets["publish"]
         names = self.topo.nodes
         while self._due:
-            x, _ = self._due.popitem(last=False)
+            x, t = next(iter(self._due.items()))
+            if t > now and not final:
+                return      # queued in time order: the rest are later still
+            del self._due[x]
             self.seq[x] += 1
-            frames = wire.table_message(names[x], self.seq[x], self.epoch, self.merged(x))
+            frames = self._message(x, self.seq[x])
             with contextlib.suppress(zmq.Again):
                 pub.send_multipart(frames, zmq.NOBLOCK)
             self.counts["publications"] += 1
             if time.perf_counter() >= end:
                 break
+
+    def _poll_ms(self) -> int:
+        if not self._due:
+            return 100
+        t = next(iter(self._due.values()))
+        return max(0, min(100, int((t - time.monotonic()) * 1000) + 1))
 
     # -- control -------------------------------------------------------------------------------------
     def _ask(self, w: _Worker, req: Mapping[str, Any]) -> dict[str, Any]:
@@ -993,9 +1029,9 @@ class Front:
         """One checked control request → the reply map for the whole network."""
         op = req["op"]
         if op == "nodes":
-            out = wire.nodes_reply(self.topo)
-            out.pop("v", None)
-            return out
+            nodes = wire.nodes_reply(self.topo)
+            nodes.pop("v", None)
+            return nodes
         if op == "health":
             return self.health()
         fwd = {k: v for k, v in req.items() if k != "v"}
@@ -1020,12 +1056,12 @@ class Front:
         return out
 
     def health(self) -> dict[str, Any]:
-        shards = []
+        shards: list[dict[str, Any]] = []
         for w in self.workers:
             h = self._ask(w, {"op": "health"}) if self._up(w) else {"error": "down"}
             shards.append({"shard": w.k, "up": "error" not in h, "restarts": w.restarts,
                            "pid": (w.hello or {}).get("pid"), "health": h})
-        up = sum(s["up"] for s in shards)
+        up = sum(1 for s in shards if s["up"])
         return {"status": "stopping" if self._stop else ("ok" if up == len(shards) else "degraded"),
                 "uptime_s": time.monotonic() - self.started, "epoch": self.epoch,
                 "version": __version__,
@@ -1073,8 +1109,8 @@ class Front:
                     w.proc.kill()
                     w.proc.wait(5)
             self._drain_parts(0.1)
-        self._due = OrderedDict((x, "final") for x in range(self.topo.n))
-        self._publish_due(3600.0)
+        self._due = OrderedDict((x, 0.0) for x in range(self.topo.n))
+        self._publish_due(3600.0, final=True)
         self.close()
         self.log.info("stopped")
         return 0
@@ -1120,6 +1156,42 @@ class Front:
 
             shutil.rmtree(self._ipc_dir, ignore_errors=True)
             self._ipc_dir = None
+
+
+def routes_entries(body: bytes) -> tuple[int, bytes]:
+    """A table publication's body → (number of destinations, the bytes of its ``routes``
+    map entries).  ValueError if it is not a v1 table body."""
+    import msgpack
+
+    u = msgpack.Unpacker(raw=False, strict_map_key=False, max_ext_len=0)
+    u.feed(body)
+    try:
+        for _ in range(u.read_map_header()):
+            key = u.unpack()
+            if key != "routes":
+                u.skip()
+                continue
+            m = u.read_map_header()
+            start = u.tell()
+            for _ in range(2 * m):
+                u.skip()
+            return m, body[start:u.tell()]
+    except (msgpack.UnpackException, ValueError, TypeError) as e:
+        raise ValueError(f"table body does not parse: {e}") from None
+    raise ValueError("table body has no 'routes'")
+
+
+def splice_table(node: str, seq: int, epoch: Any, parts: Sequence[tuple[int, bytes]]) -> list[bytes]:
+    """The two frames of :func:`wire.table_message` for ``node`` whose routes are the
+    concatenated entries of ``parts`` (disjoint destinations, see :func:`routes_entries`)."""
+    import msgpack
+
+    pk = msgpack.Packer(use_bin_type=True)
+    head = wire.table_message(node, seq, epoch, {})[1]   # ... "routes": {} (an empty map, last)
+    assert head[-1] == 0x80
+    body = b"".join([head[:-1], pk.pack_map_header(sum(m for m, _ in parts)),
+                     *(b for _, b in parts)])
+    return [wire.TABLE_TOPIC + node.encode(), body]
 
 
 def combine_acks(decode_rejected: Sequence[Sequence[Any]], n_links: int,

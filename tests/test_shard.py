@@ -21,14 +21,13 @@ import msgpack
 import numpy as np
 import pytest
 import zmq
+from service_harness import ServiceProc, service_args
 
+from routerd import config as _config
 from routerd import journal as J
 from routerd import shard, wire
 from routerd.client import Reporter, TableSubscriber
 from routerd.service import load_topology
-from routerd import config as _config
-
-from service_harness import ServiceProc, service_args
 
 pytestmark = pytest.mark.slow
 
@@ -159,3 +158,78 @@ def test_same_tables_and_acks_with_1_2_and_4_shards(base: str) -> None:
         # the journals of every shard, replayed offline and merged, give the same tables
         got = shard.replay_shards(os.path.join(base, f"s{n}", "state"), _topo(), n)
         assert got == ref_tables, f"{n} shards: offline replay of the shard journals differs"
+
+
+def test_killed_worker_loses_no_acknowledged_batch(base: str) -> None:
+    with open(os.path.join(base, "conf.yaml"), "a") as fh:
+        fh.write("shard:\n  restart_delay_s: 1.5\n")
+    topo = _topo()
+    smap = shard.ShardMap.build(topo, 2)
+    rng = np.random.default_rng(11)
+    m = len(topo.src)
+    sent: dict[int, tuple[np.ndarray, ...]] = {}
+    acked: dict[int, Any] = {}
+    sp = _start(base, "kill", "--shards", "2")
+    seen: list[float] = []
+    done = threading.Event()
+
+    def listen() -> None:   # every publication of the front, with its arrival time
+        with TableSubscriber(sp.endpoints["publish"], context=sp._ctx) as sub:
+            while not done.is_set():
+                if sub.poll(0.05):
+                    seen.append(time.monotonic())
+
+    th = threading.Thread(target=listen, daemon=True)
+    th.start()
+    try:
+        rep = Reporter(sp.endpoints["ingest"], "rep-k", topology_nodes=topo, batch_rows=200,
+                       max_pending=8, timeout_s=1.0, retries=30, first_batch=1,
+                       on_ack=lambda a: acked.__setitem__(a.batch, a), context=sp._ctx)
+        killed_at = None
+        for b in range(1, 121):
+            li = rng.integers(m, size=200)
+            cols = (topo.src[li], topo.dst[li], rng.integers(topo.n, size=200),
+                    topo.delay_s[li] * (1.0 + rng.exponential(0.5, 200)))
+            cols = tuple(c[cols[0] != cols[2]] for c in cols)   # no from == dst rows
+            sent[b] = cols
+            names = topo.nodes
+            for s, v, d, lat in zip(*(c.tolist() for c in cols)):
+                rep.add_hop(names[s], names[v], names[d], lat)
+            rep.send_now()
+            if b == 40:
+                pid = sp.control({"op": "health"})["shards"][1]["pid"]
+                os.kill(pid, signal.SIGKILL)
+                killed_at = time.monotonic()
+        rep.flush()
+        rep.close()
+        h = sp.control({"op": "health"})
+        assert h["shards"][1]["restarts"] == 1 and h["shards_up"] == 2, h
+        assert any("shard exited" in ln for ln in sp.stderr_lines)
+        assert any("shard restarted" in ln for ln in sp.stderr_lines)
+        assert sorted(acked) == list(range(1, 121))
+        # the other worker kept the tables going out while shard 1 was down (restart
+        # delay 1.5 s): publications arrived in the second after the kill
+        assert killed_at is not None
+        assert any(killed_at + 0.3 < t < killed_at + 1.3 for t in seen), "no tables while down"
+        tables = sp.control({"op": "tables"})["tables"]
+    finally:
+        done.set()
+        th.join(5)
+        sp.kill()
+    # every acknowledged row is in its shard's journal exactly once, as sent
+    for k in range(2):
+        recs = [r for r in J.iter_records(J.journal_dir(shard.shard_dir(
+            os.path.join(base, "kill", "state"), k, 2))) if r.kind == "batch"]
+        nos = [r.body["batch"] for r in recs]
+        assert len(nos) == len(set(nos)), f"shard {k}: a batch journaled twice"
+        by = {r.body["batch"]: J.batch_hops(r.body) for r in recs}
+        for b, (s, v, d, lat) in sent.items():
+            own = smap.owner[d] == k
+            if not own.any():
+                assert b not in by
+                continue
+            hb = by[b]
+            assert np.array_equal(hb.src, s[own]) and np.array_equal(hb.dst, d[own])
+            assert np.array_equal(hb.latency, lat[own])
+    # and the shards' journals replayed offline give the tables the front served
+    assert shard.replay_shards(os.path.join(base, "kill", "state"), topo, 2) == tables

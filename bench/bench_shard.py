@@ -1,0 +1,216 @@
+"""Sharding benchmarks: ingest with 1 and 2 workers behind the front, and a 1,000-node engine split.
+
+Measured in one run on this machine (two cores shared by the client, the front and the
+workers), ipc:// endpoints in a tmp dir, ``service.journal.fsync: never`` (an fsync per
+group commit measures the disk, not the split), columnar batches of 1,024 rows on a
+ring-with-chords graph of our own (200 nodes, 400 links: enough engine work per row that
+the split has something to spread), 16 batches in flight (like ``routerd.client.Reporter``):
+
+* ``shard_ingest_w1_rows_per_s`` — the front with one worker, ratio to one plain process;
+* ``shard_ingest_w2_rows_per_s`` — the front with two workers, ratio to the front with one
+  (the scaling figure: on two cores the client, the front and the workers share them);
+* ``shard_front_rows_per_s`` — what the front's own work (decode, split, encode the
+  pieces, combine the acks) costs per row, in this process: its ceiling, ratio to the
+  plain process's measured ingest;
+* ``shard_engine_*_n1000`` — on a 1,000-node graph: engine state bytes per worker (each
+  worker holds the whole (n, n, K) arrays: ratio 1.0 to one process — the split saves CPU,
+  not memory), update rate (observe + the decide that follows) of one process against one
+  worker of two taking its half of the same rows.
+"""
+from __future__ import annotations
+
+import copy
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from typing import Any
+
+import numpy as np
+import yaml
+import zmq
+
+HERE = os.path.dirname(os.path.abspath(__file__))
+ROOT = os.path.dirname(HERE)
+for p in (ROOT, HERE):
+    if p not in sys.path:
+        sys.path.insert(0, p)
+
+from bench_engine import random_rows, ring_with_chords
+from bench_ingest import Frames, acked
+
+from routerd import shard, wire
+from routerd import topology as T
+from routerd.engine import Engine, EngineSettings
+
+ROWS = 1024
+CONF = {"service": {"journal": {"fsync": "never"}, "snapshot_interval_s": 3600,
+                    "publish_interval_s": 2.0}}
+
+
+def _fig(value: float, unit: str, ratio: float, against: str, **kw: Any) -> dict[str, Any]:
+    return {"value": float(value), "unit": unit, "ratio": float(ratio), "against": against, **kw}
+
+
+class _Proc:
+    def __init__(self, base: str, name: str, tfile: str, conf: str, *extra: str):
+        d = os.path.join(base, name)
+        os.makedirs(d)
+        self.ep = {"ingest": f"ipc://{d}/in", "control": f"ipc://{d}/ctl"}
+        cmd = [sys.executable, "-m", "routerd", "serve", "--topology", tfile, "--config", conf,
+               "--ingest", self.ep["ingest"], "--publish", f"ipc://{d}/pub",
+               "--control", self.ep["control"], "--metrics", "127.0.0.1:0",
+               "--state-dir", os.path.join(d, "state"), *extra]
+        self.name = name
+        self.proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL,
+                                     text=True, cwd=ROOT)
+
+    def ready(self) -> None:
+        assert self.proc.stdout is not None
+        for line in self.proc.stdout:
+            if line.startswith("routerd: ready"):
+                return
+        raise RuntimeError(f"{self.name} did not start (exit {self.proc.wait()})")
+
+    def stop(self) -> None:
+        if self.proc.poll() is None:
+            self.proc.terminate()
+        if self.proc.poll() is None:
+            try:
+                self.proc.wait(30)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait(5)
+        if self.proc.stdout is not None:
+            self.proc.stdout.close()
+
+
+def _ingest(ctx: zmq.Context, p: _Proc, frames: Frames, dt: float, first: int) -> float:
+    def ok(a: dict[str, Any]) -> None:
+        if a.get("accepted") != frames.rows:
+            raise RuntimeError(f"a benchmark batch was not accepted: {a}")
+
+    acked(ctx, p.ep["ingest"], frames, 0.15, first, ok)           # warm-up
+    rate, _ = acked(ctx, p.ep["ingest"], frames, dt, first + 100_000)
+    return rate
+
+
+def _front_ceiling(topo: T.Topology, frames: Frames, smap: shard.ShardMap, budget: float) -> float:
+    """Rows/s of the front's per-batch work, in this process: decode, split, encode the
+    pieces, combine their acks (the acks are made up: every row accepted)."""
+    n = 0
+    t0 = time.perf_counter()
+    while time.perf_counter() - t0 < budget:
+        ing = wire.decode_ingest(frames.frame(n), topo)
+        assert not isinstance(ing, wire.WireError)
+        h = ing.hops
+        owner = smap.owner[h.dst]
+        pieces, acks = {}, {}
+        for k in range(smap.n_shards):
+            idx = np.flatnonzero(owner == k)
+            wire.encode_ingest_cols(ing.reporter, ing.batch, topo.digest, h.src[idx], h.via[idx],
+                                    h.dst[idx], h.latency[idx], h.estimate[idx])
+            pieces[k] = (ing.hop_rows[idx], ing.link_rows)
+            acks[k] = {"accepted": int(idx.size), "rejected": []}
+        shard.combine_acks([], 0, pieces, acks)
+        n += 1
+    return n * frames.rows / (time.perf_counter() - t0)
+
+
+def _engine_split(quick: bool) -> dict[str, dict[str, Any]]:
+    t = ring_with_chords(1000, 1000, seed=1000)
+    rng = np.random.default_rng(5)
+    smap = shard.ShardMap.build(t, 2)
+    own0 = smap.owner == 0
+    eng_one = Engine(t, EngineSettings())
+    eng_w0 = copy.deepcopy(eng_one)   # the same start, built once
+    state = sum(v.nbytes for v in eng_one.export_state().values() if isinstance(v, np.ndarray))
+    batches = [random_rows(t, 4096, rng) for _ in range(1 if quick else 8)]
+    rows_one = rows_w0 = 0
+    t_one = t_w0 = 0.0
+    for i, b in enumerate(batches):
+        t0 = time.perf_counter()
+        eng_one.observe(b, now=float(i))
+        eng_one.decide(float(i))
+        t_one += time.perf_counter() - t0
+        rows_one += len(b)
+        mine = b.take(np.flatnonzero(own0[b.dst]))
+        t0 = time.perf_counter()
+        eng_w0.observe(mine, now=float(i))
+        eng_w0.decide(float(i))
+        t_w0 += time.perf_counter() - t0
+        rows_w0 += len(mine)
+    r_one, r_w0 = rows_one / t_one, rows_w0 / t_w0
+    return {
+        "shard_engine_state_bytes_n1000": _fig(
+            state, "bytes", 1.0, "one process's engine: each worker holds the same (n, n, K) "
+            "arrays (no owned-destination mask in the engine yet)", nodes=t.n, slots=eng_one.k),
+        "shard_engine_rows_per_s_n1000_one": _fig(
+            r_one, "rows/s", 1.0, "itself: observe 4,096 rows for every destination + decide",
+            nodes=t.n),
+        "shard_engine_rows_per_s_n1000_w0of2": _fig(
+            r_w0, "rows/s", r_w0 / r_one, "one process on the whole batch: worker 0 of 2 "
+            "takes its half (observe + decide of its destinations)", nodes=t.n,
+            destinations=int(own0.sum())),
+        "shard_engine_batch_s_n1000_w0of2": _fig(
+            t_w0 / len(batches), "s", t_w0 / t_one, "one process's time for the whole batch "
+            "(2 workers on 2 cores: the batch takes the larger half)", nodes=t.n),
+    }
+
+
+def run(quick: bool) -> dict[str, dict[str, Any]]:
+    dt = 0.8 if quick else 4.0
+    base = tempfile.mkdtemp(prefix="rd-bsh-", dir="/tmp")
+    ctx = zmq.Context()
+    procs: list[_Proc] = []
+    figs: dict[str, dict[str, Any]] = {}
+    try:
+        topo = ring_with_chords(200, 200, seed=200)
+        tfile = os.path.join(base, "ring200.yaml")
+        with open(tfile, "w") as fh:
+            yaml.safe_dump(T.to_mapping(topo), fh)
+        topo = T.load(tfile)
+        conf = os.path.join(base, "conf.yaml")
+        with open(conf, "w") as fh:
+            yaml.safe_dump(CONF, fh)
+        frames = Frames("cols", ROWS, topo, np.random.default_rng(3))
+        rates: dict[str, float] = {}
+        for name, extra in (("one", ()), ("w1", ("--shards", "1")), ("w2", ("--shards", "2"))):
+            procs.append(_Proc(base, name, tfile, conf, *extra))
+        for p in procs:       # started together, waited for together
+            p.ready()
+        # interleaved rounds, best of each: the machine is shared, load comes and goes
+        for r in range(1 if quick else 3):
+            for i, (name, p) in enumerate(zip(("one", "w1", "w2"), procs)):
+                rate = _ingest(ctx, p, frames, dt, (r * 3 + i) * 1_000_000)
+                rates[name] = max(rates.get(name, 0.0), rate)
+        for p in procs:
+            p.proc.terminate()
+        front = _front_ceiling(topo, frames, shard.ShardMap.build(topo, 2), 0.5 if quick else 2.0)
+        figs["shard_ingest_one_rows_per_s"] = _fig(
+            rates["one"], "rows/s", 1.0, "itself: one routerd serve process", nodes=topo.n)
+        figs["shard_ingest_w1_rows_per_s"] = _fig(
+            rates["w1"], "rows/s", rates["w1"] / rates["one"], "one plain process (the "
+            "front's cost: one more hop and its decode/split)", nodes=topo.n)
+        figs["shard_ingest_w2_rows_per_s"] = _fig(
+            rates["w2"], "rows/s", rates["w2"] / rates["w1"], "the front with one worker "
+            f"(this machine: {os.cpu_count()} cores for client, front and workers)", nodes=topo.n)
+        figs["shard_front_rows_per_s"] = _fig(
+            front, "rows/s", front / rates["one"], "one plain process's ingest: the front's "
+            "own work per row (decode, split into 2, encode, combine) is its ceiling",
+            batch=ROWS)
+        figs.update(_engine_split(quick))
+    finally:
+        for p in procs:
+            p.stop()
+        ctx.destroy(0)
+        shutil.rmtree(base, ignore_errors=True)
+    return figs
+
+
+if __name__ == "__main__":
+    import json
+
+    print(json.dumps(run("--full" not in sys.argv), indent=1))
