@@ -9,7 +9,10 @@ Figures (every ratio between runs of this same call, same machine, same seeds):
 * ``variants_cold_start_speedup`` — plain's time to settle within 10% of its steady
   delivery time from a cold start, divided by the fastest variant's (aim >= 2);
 * ``variants_spike_recovery_speedup`` — the same for the return within 5% of the
-  pre-spike delivery time after a x2 congestion spike ends.
+  pre-spike delivery time after a x2 congestion spike ends;
+* ``variants_<name>_rows_per_s`` — ``Engine.observe`` throughput of each variant with its
+  own rule (rows one by one in Python) on abilene, against the plain core's vectorised
+  path on the same rows (best of 3 trials each, interleaved).
 
 Definitions and the report: ``bench/compare_variants.py``.  Quick: plain, predictive
 and confidence only, short runs (< 20 s on 2 cores); otherwise every variant.
@@ -22,7 +25,34 @@ from typing import Any
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
+import time
+
 import compare_variants as C
+import numpy as np
+
+from routerd.engine import Engine, EngineSettings, HopBatch
+from routerd.topology import Topology
+
+
+def observe_rates(t: Topology, rows: int) -> dict[str, float]:
+    """Rows/s of Engine.observe per variant on the same random batches (best of 3)."""
+    rng = np.random.default_rng(5)
+    ks = rng.integers(0, t.n_links, rows)
+    xs, ys = t.src[ks], t.dst[ks]
+    ds = rng.integers(0, t.n, rows)
+    ok = xs != ds
+    b = HopBatch.of(xs[ok], ys[ok], ds[ok], rng.uniform(1e-3, 2e-2, int(ok.sum())))
+    chunks = [b.take(np.arange(i, min(len(b), i + 512))) for i in range(0, len(b), 512)]
+    best: dict[str, float] = {}
+    for _ in range(3):
+        for v in ("plain", "full_echo", "predictive", "confidence"):
+            e = Engine(t, EngineSettings(variant=v))
+            t0 = time.perf_counter()
+            for i, c in enumerate(chunks):
+                e.observe(c, now=0.01 * i)
+            el = time.perf_counter() - t0
+            best[v] = max(best.get(v, 0.0), len(b) / el)
+    return best
 
 
 def run(quick: bool) -> dict[str, dict[str, Any]]:
@@ -61,6 +91,11 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
         note = "" if reached["plain"] else " (plain never settled: the ratio is a lower bound)"
         out[name] = {"value": others[fast], "unit": "s", "ratio": ts["plain"] / tb,
                      "against": f"plain Q-routing {ts['plain']:.1f} s, same run (fastest: {fast}){note}"}
+    rates = observe_rates(topo, 20_000 if quick else 100_000)
+    for v in ("full_echo", "predictive", "confidence"):
+        out[f"variants_{v}_rows_per_s"] = {
+            "value": rates[v], "unit": "rows/s", "ratio": rates[v] / rates["plain"],
+            "against": f"plain core {rates['plain']:.0f} rows/s on the same batches of 512 ({key})"}
     return out
 
 
