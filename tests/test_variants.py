@@ -433,3 +433,24 @@ def test_dual_learns_the_way_back_without_traffic_back() -> None:
             v_ds = p.engine.estimate(D, S)
             assert 0.004 < v_ds < 0.1, v_ds
     assert learned["plain"] == 0 and learned["dual"] > 1000, learned
+
+
+@pytest.mark.parametrize("variant", VARIANTS)
+def test_journal_snapshot_and_settings_restore_the_variant(variant: str) -> None:
+    # what the service writes (routerd.journal: settings as a dict, state packed as
+    # msgpack) brings the same variant and its arrays back, and the next rows agree
+    from routerd import journal as J
+    t = diamond()
+    e = Engine(t, cs(variant))
+    x, y, d = t.index["x"], t.index["y"], t.index["d"]
+    e.observe(HopBatch.of([x, x, y], [y, y, d], [d, d, d], [0.002, 0.001, 0.003]), now=2.0)
+    e.decide(2.5)
+    st = J.unpack(J.pack(J.engine_state(e)))
+    s2 = J.settings_from_dict(st["settings"])
+    assert s2 == e.settings and s2.variant == variant
+    back = Engine.from_state(t, s2, st["engine"])
+    assert back.same_state(e)
+    for eng in (e, back):
+        eng.observe(HopBatch.of([x], [y], [d], [0.004]), now=6.0)
+        eng.decide(6.5)
+    assert back.same_state(e)
