@@ -275,6 +275,11 @@ class Engine:
         self.eps = np.zeros((n, n), dtype=np.float64)
         self.alt = np.zeros((n, n, k), dtype=bool)          # exploration candidates
         self._dirty = np.ones(n, dtype=bool)
+        # the key-level fast lane of decide(): (x, d) keys the core observe path wrote,
+        # their destinations, and keys whose published choice is a loop fallback
+        self._kdirty = np.zeros(n * n, dtype=bool)
+        self._kcols = np.zeros(n, dtype=bool)
+        self._forced = np.ones((n, n), dtype=bool)
         self._alphas: np.ndarray | None = None
         self._alphas_list: list[float] = []
         self._live_spt: np.ndarray | None = None
@@ -417,7 +422,8 @@ class Engine:
                                good.latency, good.estimate, tde)
         else:
             self._apply_rounds(good.src, good.via, good.dst, slot, good.latency, good.estimate, tde)
-        self._dirty[good.dst] = True
+        self._kdirty[good.src * self.n + good.dst] = True
+        self._kcols[good.dst] = True
         a = np.abs(tde)
         self._account(m, float(a.sum()) / m, float(a.max()))   # sum / m: np.mean's own value
         return ObserveResult(m, rejected, tde)
@@ -447,7 +453,7 @@ class Engine:
         """
         n, K = self.n, self.k
         Qf, Nf, tdf = _flat(self.Q), _flat(self.N), _flat(self.td)
-        slot_of, live, dirty = self._slot_of, self.live, self._dirty
+        slot_of, live, kdirty, kcols = self._slot_of, self.live, self._kdirty, self._kcols
         s = self.settings
         ceil, sm = s.ceiling_s, s.td_smoothing
         keep = 1.0 - sm
@@ -492,7 +498,8 @@ class Engine:
                     new = old + tab[nn] * delta
                     Qf[k] = ceil if new > ceil else (0.0 if new < 0.0 else new)
                     tdf[w] = keep * tdf.item(w) + sm * abs(delta)
-                    dirty[d] = True
+                    kdirty[w] = True
+                    kcols[d] = True
                     tde.append(delta)
                     continue
             rejected.append((i, reason))
@@ -748,11 +755,19 @@ class Engine:
             self.now = float(now)
         # the values compared: Q, or a variant's (predictive marks moving destinations dirty)
         self._qdec = self.Q if self._variant is None else self._variant.decision_values(self)
+        extra: frozenset[int] = frozenset()
+        if self._kcols.any():
+            if self._variant is None:
+                extra = self._decide_keys()
+            else:
+                self._dirty |= self._kcols
+            self._kdirty[:] = False
+            self._kcols[:] = False
         ds = np.flatnonzero(self._dirty)
         self._dirty[:] = False
         self._decisions += 1
         if ds.size == 0:
-            return Decision(frozenset(), 0, 0)
+            return Decision(extra, 0, 0)
         s = self.settings
         n, K = self.n, self.k
         m = ds.size
@@ -766,6 +781,7 @@ class Engine:
         choice = np.where(keep, inc, best)
         choice = np.where(np.isfinite(bestv), choice, -1)
         choice[ds, np.arange(m)] = -1                               # x == d
+        hyst = choice                                               # before loop prevention
         # loop freedom, per destination table (rows = destinations)
         slots_f = self._slots.reshape(-1)
         base = (xs * K)[:, None]
@@ -841,8 +857,73 @@ class Engine:
         self.greedy[:, sel] = choice
         self.alt[:, sel, :] = alt
         self.eps[:, sel] = eps
+        self._forced[:, sel] = choice != hyst
         nodes = frozenset(np.flatnonzero(changed_w.any(axis=1)).tolist())
-        return Decision(nodes, int(changed_g.sum()), prevented)
+        return Decision(nodes | extra, int(changed_g.sum()), prevented)
+
+    def _decide_keys(self) -> frozenset[int]:
+        """The key-level lane of :meth:`decide`, exact: the same tables as the full pass.
+
+        For a destination d the core observe path touched (and nothing else marked
+        dirty), only keys (x, d) it wrote, or whose published choice is a loop fallback,
+        can get another hysteresis choice: every other key's Q row, liveness, incumbent
+        and margin are those its published choice was computed from, and that choice
+        is a fixed point of the hysteresis rule.  Where one of those keys changes its
+        choice, d is left to the full pass (loop check, depths, candidates).  Where none
+        does, d's greedy graph is the published, loop-free one, so loop prevention does
+        nothing and the candidates stay; only the written keys' exploration shares can
+        move (their TD error, visits and Q-values changed), computed here with the full
+        pass's formula.  Returns the nodes whose weights changed.
+        """
+        n, K = self.n, self.k
+        s = self.settings
+        cols = self._kcols & ~self._dirty
+        kd = self._kdirty.reshape(n, n) & cols[None, :]
+        wk = np.flatnonzero(kd | (self._forced & cols[None, :]))
+        if wk.size == 0:
+            return frozenset()
+        xk = wk // n
+        dk = wk - xk * n
+        Q2 = self.Q.reshape(n * n, K)
+        r = np.arange(wk.size)
+        q = Q2.take(wk, axis=0)
+        lv = self.live.take(xk, axis=0)
+        qm = np.where(lv, q, np.inf)
+        best = qm.argmin(axis=1)                     # first slot on ties, like _best_live
+        bestv = qm[r, best]
+        inc = _flat(self.greedy).take(wk)
+        si = np.maximum(inc, 0)
+        incv = np.where((inc >= 0) & lv[r, si], q[r, si], np.inf)
+        keep = np.isfinite(incv) & ~(bestv < incv * (1.0 - s.margin))
+        ch = np.where(keep, inc, best)
+        ch = np.where(np.isfinite(bestv), ch, -1)
+        ch[xk == dk] = -1
+        moved = ch != inc
+        full = np.zeros(n, dtype=bool)
+        full[dk[moved]] = True
+        self._dirty |= full
+        # written keys of destinations that keep their greedy graph: shares only
+        obs = kd.reshape(-1).take(wk) & ~full.take(dk)
+        if not obs.any():
+            return frozenset()
+        wo, xo, ro, g = wk[obs], xk[obs], r[obs], inc[obs]
+        any_alt = self.alt.reshape(n * n, K).take(wo, axis=0).any(axis=1)
+        if s.explore_basis == "td":
+            vx = np.where(g >= 0, incv[ro], np.inf)   # the incumbent's value (live or inf)
+            rel = _flat(self.td).take(wo) / np.maximum(np.where(np.isfinite(vx), vx, s.ceiling_s), 1e-12)
+            frac = np.minimum(1.0, rel / s.td_ref)
+        else:
+            Nd = self.N.reshape(n * n, K).take(wo, axis=0)
+            visits = Nd[:, 0].copy()
+            for c in range(1, K):
+                visits += Nd[:, c]
+            frac = s.visits_half / (s.visits_half + visits)
+        eps = np.minimum(s.explore_min + (s.explore_max - s.explore_min) * frac, s.eps_max)
+        eps = np.where(any_alt, eps, 0.0)
+        ef = _flat(self.eps)
+        changed = np.abs(ef.take(wo) - eps) > 1e-9
+        ef[wo] = eps
+        return frozenset(np.unique(xo[changed]).tolist())
 
     def _best_live(self, sel: Any, m: int) -> tuple[np.ndarray, np.ndarray]:
         """(slot, value) of the lowest live estimate per (node, destination in sel).
@@ -898,7 +979,7 @@ class Engine:
             loops_prevented=self._loops_prevented,
             decisions=self._decisions,
             links_down=int((self._present & ~self.live).sum()),
-            pending_destinations=int(self._dirty.sum()),
+            pending_destinations=int((self._dirty | self._kcols).sum()),
         )
 
     _ARRAYS = ("Q", "N", "td", "greedy", "eps", "alt", "live", "_dirty")
@@ -909,6 +990,7 @@ class Engine:
         """Everything needed to restore this engine exactly: arrays (copies) and scalars."""
         out: dict[str, Any] = {k: getattr(self, k).copy() for k in self._ARRAYS}
         out.update({k: getattr(self, k) for k in self._SCALARS})
+        out["_dirty"] = self._dirty | self._kcols   # the key lane's destinations are due too
         out["rejected"] = dict(self._rejected)
         out["topology"] = self.topo.digest
         if self._variant is not None:
@@ -932,6 +1014,7 @@ class Engine:
             setattr(eng, k, type(getattr(eng, k))(state[k]))
         eng._rejected = {r: int(state["rejected"].get(r, 0)) for r in REJECT_REASONS}
         eng._live_spt = None
+        eng._forced[:] = True      # not saved: every key of a due destination is re-checked
         if eng._variant is not None and "variant" in state:
             eng._variant.restore(state["variant"])
         # saved under another ceiling: restore the invariants the update relies on

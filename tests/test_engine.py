@@ -686,3 +686,42 @@ def test_restore_under_a_higher_ceiling_keeps_dead_links_out_of_reads() -> None:
     assert f.estimate(y, d) == 5.0
     f.observe_one(x, y, d, 0.0)  # reads y's live minimum (5.0), not the dead link (20.0)
     assert float(f.Q[x, d, slot(t, "x", "y")]) == 5.0  # first update of the entry: alpha 1
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_key_lane_of_decide_equals_the_full_pass(make_ring, seed: int) -> None:  # type: ignore[no-untyped-def]
+    """decide()'s key-level lane (destinations the core observe path touched) publishes
+    exactly what the full per-destination pass publishes: same tables, candidates,
+    shares, counters and changed nodes, through link flaps and state round trips."""
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(5, 25))
+    t = make_ring(n, n // 2, seed)
+    s = EngineSettings(explore_basis="visits" if seed % 3 == 0 else "td",
+                       margin=(0.0, 0.05, 0.3)[seed % 3], explore_min=0.01 * (seed % 2))
+    a, b = Engine(t, s), Engine(t, s)
+    prevented = 0
+    for it in range(15):
+        if rng.random() < 0.15:
+            k = int(rng.integers(0, t.n_links))
+            up = bool(rng.random() < 0.5)
+            for e in (a, b):
+                e.set_link(int(t.src[k]), int(t.dst[k]), up)
+        m = int(rng.integers(1, 200))
+        link = rng.integers(0, t.n_links, m)
+        x, y = t.src[link].astype(np.int64), t.dst[link].astype(np.int64)
+        d = rng.integers(0, n, m)
+        d = np.where(d == x, (d + 1) % n, d)
+        lat = rng.uniform(0, 0.05, m) * rng.choice([1, 1, 10], m)
+        est = np.where(rng.random(m) < 0.3, rng.uniform(0, 0.2, m), np.nan)
+        hb = HopBatch.of(x, y, d, lat, est)
+        a.observe(hb, now=it)
+        b.observe(hb, now=it)
+        if rng.random() < 0.3:
+            a = Engine.from_state(t, s, a.export_state())
+        b._dirty[b._kcols] = True          # b: every touched destination takes the full pass
+        assert a.statistics().pending_destinations == b.statistics().pending_destinations
+        da, db = a.decide(it), b.decide(it)
+        assert da == db
+        assert a.same_state(b)
+        assert a.statistics() == b.statistics()
+        prevented += da.loops_prevented
