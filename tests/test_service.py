@@ -477,7 +477,9 @@ def test_serve_flags_are_exactly_the_documented_ones() -> None:
     assert flags == {"--config", "--topology", "--ingest", "--pull", "--publish", "--control",
                      "--metrics", "--state-dir",
                      # issue 7: CURVE and the read-only control endpoint
-                     "--server-key", "--allow", "--control-readonly"}
+                     "--server-key", "--allow", "--control-readonly",
+                     # sharding (routerd/shard.py adds them to serve)
+                     "--shards", "--shard", "--upstream", "--shard-listen", "--external-workers"}
     # with neither a config nor flags: the built-in demo lab on loopback
     c = load_config(p.parse_args([]))
     assert load_topology(c).name == "demo-lab"
