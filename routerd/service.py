@@ -1039,7 +1039,7 @@ class Service:
         c = self.counters
         st = self.engine.statistics() if self.engine is not None else None
         return {
-            "status": "stopping" if self._stop else "ok",
+            "status": "stopping" if self._stop else "degraded" if self._down is not None else "ok",
             "uptime_s": self.uptime_s(),
             "epoch": self.epoch,
             "version": __version__,

@@ -313,6 +313,7 @@ def test_disk_full_stops_acknowledging_says_why_and_resumes(base: str, small_dis
         assert len(refused) >= 30, "the full disk was not noticed"
         h = sp.control({"op": "health"})
         assert h["storage"]["ok"] is False and "ENOSPC" in h["storage"]["reason"]
+        assert h["status"] == "degraded"
         assert h["counts"]["frames_refused"]["unavailable"] == len(refused)
         assert any("storage failed" in ln and "ENOSPC" in ln for ln in sp.stderr_lines)
         page = sp.metrics_text()
