@@ -13,9 +13,12 @@ PAIR the signal handlers write to).  The poll timeout is the time to the next de
 iteration:
 
 1. drain up to ``service.max_drain`` frames from the ingest sockets; for each, decode
-   (:func:`wire.decode_ingest`), skip a duplicate (same reporter and batch number, kept
-   in a bounded per-reporter window), else apply its link rows and hop rows to the
-   engine and append them to the journal;
+   (:func:`wire.decode_ingest`); with CURVE on, hold it to the key's reporter
+   (:mod:`routerd.security`: the name must match, rows outside its nodes are rejected
+   ``not_authorised``); skip a duplicate (same reporter and batch number, kept in a
+   bounded per-reporter window); refuse it whole when the reporter is over its token
+   bucket (``rate_limited``); pass its hop rows through the plausibility guards
+   (:mod:`routerd.guards`); apply what is left to the engine and append it to the journal;
 2. group commit: one :meth:`Journal.flush_sync` (one fsync) for everything appended,
    *then* send every acknowledgement — an ack always means "durably journaled";
 3. answer at most one control request (REP) — state-changing ones after step 2's commit;
@@ -33,6 +36,13 @@ Start-up restores the newest readable snapshot, then replays the journal after i
 :func:`journal.replay_into` — the same code path an offline replay uses — so the state
 after a restart equals the state before it.  The snapshot carries the engine settings in
 force when it was taken and the duplicate windows, so neither is lost.
+
+Storage faults.  A journal write or fsync that fails (disk full, I/O error) puts the
+service *down*: the turn's answers become ``unavailable`` errors, the engine and the
+duplicate windows are rebuilt read-only from the state directory (so they hold exactly
+what is stored), nothing is decided, journaled or snapshotted, tables keep going out,
+and every ``service.storage_retry_s`` the journal is reopened the way start-up opens it.
+An acknowledgement therefore never covers a batch that is not in the journal.
 
 Shutdown (SIGTERM, SIGINT): stop taking frames, answer the ones in hand, decide, write
 the final snapshot, publish every table, close with a bounded linger, exit 0.  A watchdog
