@@ -35,7 +35,9 @@ TOPO = T.load(os.path.join(HERE, "..", "routerd", "data", "demo-lab.yaml"))
 NAMES = list(TOPO.nodes)
 LINKS = [(int(a), int(b), float(d)) for a, b, d in zip(TOPO.src, TOPO.dst, TOPO.delay_s)]
 CODES = set(wire.FRAME_ERRORS) | set(SERVICE_FRAME_ERRORS)
-STATE = tempfile.mkdtemp(prefix="rd-fuzz-")
+# libFuzzer ends the process without Python's clean-up: .ci/run gives a directory it removes
+STATE = os.environ.get("ROUTERD_FUZZ_STATE") or tempfile.mkdtemp(prefix="rd-fuzz-")
+os.makedirs(STATE, exist_ok=True)
 CFG = config.load(None).with_overrides({
     "service.state_dir": STATE, "service.journal.fsync": "never", "service.max_rows": 256,
     "service.max_message_bytes": 65536, "guards.jump.factor": 8.0,
