@@ -109,8 +109,13 @@ def configure(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    from . import shard as _shard
+
     try:
-        res = replay_command(args)
+        if _shard.sharded_state(args.source):   # a sharded service's state dir: merge
+            res = _shard.replay_command(args)
+        else:
+            res = replay_command(args)
     except InputError as e:
         print(f"routerd replay: {len(e.problems)} problem(s)", file=sys.stderr)
         for pr in e.problems:

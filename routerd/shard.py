@@ -205,6 +205,49 @@ def replay_shards(state_root: str, topo: _topology.Topology, n_shards: int,
     return merge_tables(parts)
 
 
+_SHARD_DIR_RE = re.compile(r"^shard-(\d+)-of-(\d+)$")
+
+
+def sharded_state(path: str) -> int | None:
+    """N when ``path`` is a sharded service's state dir (``shard-K-of-N`` subdirs, no
+    journal of its own), else None."""
+    if not os.path.isdir(path) or os.path.isdir(os.path.join(path, "journal")):
+        return None
+    ns = {int(m.group(2)) for x in os.listdir(path) if (m := _SHARD_DIR_RE.match(x))}
+    return max(ns) if ns else None
+
+
+def replay_command(args: argparse.Namespace) -> dict[str, Any]:
+    """``routerd replay STATE --out DIR`` on a sharded state dir: every shard replayed from
+    its own snapshot and journal (the service's restore path), the tables merged into
+    ``DIR/tables.json`` — the tables the front served.  What-if variants work per shard
+    (``routerd replay STATE/shard-K-of-N``; its tables are valid for its destinations)."""
+    from . import replay as _replay
+    from .errors import Problem
+
+    n = sharded_state(args.source)
+    assert n is not None
+    if args.overrides or args.compare or args.export_link_trace:
+        raise InputError(Problem(args.source, f"{n} shards", "--set, --compare and "
+                                 "--export-link-trace work on one shard's dir "
+                                 f"({args.source}/shard-K-of-{n})"))
+    missing = [k for k in range(n) if not os.path.isdir(shard_dir(args.source, k, n))]
+    if missing:
+        raise InputError(Problem(args.source, f"shard-{missing[0]}-of-{n}", "is missing: a "
+                                 "merged replay needs every shard's state dir"))
+    cfg, topo = _replay._load_config_and_topology(args)
+    t0 = time.perf_counter()
+    try:
+        tables = replay_shards(args.source, topo, n, map_file=cfg["shard.map"] if cfg else None)
+    except Exception as e:   # noqa: BLE001 - a journal or snapshot of another topology, unreadable
+        raise InputError(Problem(args.source, "journal", f"cannot be replayed: {e}")) from None
+    os.makedirs(args.out, exist_ok=True)
+    path = _replay._dump(os.path.join(args.out, "tables.json"), {"v": wire.VERSION, "tables": tables})
+    dt = time.perf_counter() - t0
+    line = f"replayed {n} shards of {args.source} in {dt:.2f} s; merged tables of {topo.n} nodes -> {path}"
+    return {"printed": [line], "tables": path}
+
+
 # ---- command line -------------------------------------------------------------------------
 def configure(p: argparse.ArgumentParser) -> None:
     """The sharding flags of ``routerd serve`` (called by :func:`service.configure`)."""
@@ -974,7 +1017,6 @@ class Front:
         now = time.monotonic()
         end = time.perf_counter() + budget_s
         pub = self.sockets["publish"]
-        names = self.topo.nodes
         while self._due:
             x, t = next(iter(self._due.items()))
             if t > now and not final:

@@ -29,8 +29,6 @@ from routerd import shard, wire
 from routerd.client import Reporter, TableSubscriber
 from routerd.service import load_topology
 
-pytestmark = pytest.mark.slow
-
 CONF = """\
 service:
   debounce_s: 0
@@ -121,6 +119,7 @@ def _start(b: str, name: str, *extra: str) -> ServiceProc:
     return ServiceProc(d, service_args(d, "--config", os.path.join(b, "conf.yaml"), *extra))
 
 
+@pytest.mark.slow
 def test_same_tables_and_acks_with_1_2_and_4_shards(base: str) -> None:
     frames = _stream(7, 60, 40)
     frames += [frames[5], wire.encode_ingest_rows("rep-a", 1005, [])]  # re-sent, then reused
@@ -158,8 +157,21 @@ def test_same_tables_and_acks_with_1_2_and_4_shards(base: str) -> None:
         # the journals of every shard, replayed offline and merged, give the same tables
         got = shard.replay_shards(os.path.join(base, f"s{n}", "state"), _topo(), n)
         assert got == ref_tables, f"{n} shards: offline replay of the shard journals differs"
+        if n == 2:   # the same through the command: routerd replay STATE --out DIR
+            import json
+            import subprocess
+            import sys
+
+            out = os.path.join(base, "replay2")
+            r = subprocess.run([sys.executable, "-m", "routerd", "replay",
+                                os.path.join(base, "s2", "state"), "--out", out],
+                               capture_output=True, text=True, timeout=120, check=False)
+            assert r.returncode == 0, r.stderr
+            with open(os.path.join(out, "tables.json")) as fh:
+                assert json.load(fh)["tables"] == ref_tables
 
 
+@pytest.mark.slow
 def test_killed_worker_loses_no_acknowledged_batch(base: str) -> None:
     with open(os.path.join(base, "conf.yaml"), "a") as fh:
         fh.write("shard:\n  restart_delay_s: 1.5\n")
@@ -233,3 +245,113 @@ def test_killed_worker_loses_no_acknowledged_batch(base: str) -> None:
             assert np.array_equal(hb.latency, lat[own])
     # and the shards' journals replayed offline give the tables the front served
     assert shard.replay_shards(os.path.join(base, "kill", "state"), topo, 2) == tables
+
+
+@pytest.mark.slow
+def test_workers_on_their_own_behind_an_external_front(base: str) -> None:
+    """The multi-host shape on one host: workers started separately (``--shard K/N
+    --upstream``), a front that starts none (``--external-workers``), and a client that
+    splits by destination itself (:class:`shard.ShardReporter`) next to one that goes
+    through the front."""
+    conf = os.path.join(base, "conf.yaml")
+    fd = os.path.join(base, "front")
+    os.makedirs(fd)
+    listen = f"ipc://{fd}/shards"
+    ws = []
+    try:
+        for k in range(2):
+            d = os.path.join(base, f"w{k}")
+            os.makedirs(d)
+            args = service_args(d, "--config", conf, "--shard", f"{k}/2", "--upstream", listen)
+            args[args.index("--state-dir") + 1] = os.path.join(base, "state")   # one root
+            ws.append(ServiceProc(d, args))
+        front = ServiceProc(fd, service_args(fd, "--config", conf, "--shards", "2",
+                                             "--external-workers", "--shard-listen", listen))
+        try:
+            topo = _topo()
+            h = front.control({"op": "health"})
+            assert h["shards_up"] == 2
+            eps = [s["health"]["shard"]["index"] for s in h["shards"]]
+            assert eps == [0, 1]
+            direct = shard.ShardReporter([w.endpoints["ingest"] for w in ws], "direct", topo,
+                                         batch_rows=64, context=front._ctx)
+            via = Reporter(front.endpoints["ingest"], "via-front", topology_nodes=topo,
+                           batch_rows=64, context=front._ctx)
+            rng = np.random.default_rng(3)
+            names = topo.nodes
+            for _ in range(400):
+                li = int(rng.integers(len(topo.src)))
+                a, b = names[int(topo.src[li])], names[int(topo.dst[li])]
+                d = names[int(rng.integers(topo.n))]
+                if d == a:
+                    continue
+                lat = float(topo.delay_s[li]) * (1 + float(rng.exponential(0.3)))
+                direct.add_hop(a, b, d, lat)
+                via.add_hop(a, b, d, lat)
+            direct.add_link(names[0], names[1], "down")
+            via.add_link(names[0], names[1], "down")
+            direct.close()
+            via.close()
+            tables = front.control({"op": "tables"})["tables"]
+            assert len(tables) == topo.n
+            # each worker's journal holds only its destinations' rows, from both reporters
+            smap = shard.ShardMap.build(topo, 2)
+            for k in range(2):
+                recs = [r for r in J.iter_records(J.journal_dir(shard.shard_dir(
+                    os.path.join(base, "state"), k, 2))) if r.kind == "batch"]
+                assert {r.body["reporter"] for r in recs} == {"direct", "via-front"}
+                for r in recs:
+                    assert (smap.owner[J.batch_hops(r.body).dst] == k).all()
+            stop_front = front.proc
+            stop_front.send_signal(signal.SIGTERM)
+            assert front.wait() == 0
+            assert all(w.proc.poll() is None for w in ws), "a front stops no external worker"
+        finally:
+            front.kill()
+        assert shard.replay_shards(os.path.join(base, "state"), topo, 2) == tables
+    finally:
+        for w in ws:
+            w.kill()
+
+
+@pytest.mark.slow
+def test_map_file_and_command_line_refusals(base: str, tmp_path: Any) -> None:
+    import subprocess
+    import sys
+
+    topo = _topo()
+    # CRC-32 as zlib computes it (ISO-HDLC / IEEE 802.3 polynomial): the standard check
+    # value of "123456789" is 0xCBF43926 (the CRC catalogue's "check" entry)
+    assert shard.stable_hash("123456789") == 0xCBF43926
+    m = shard.ShardMap.build(topo, 3)
+    assert m.counts() == np.bincount([shard.stable_hash(x) % 3 for x in topo.nodes],
+                                     minlength=3).tolist()
+    f = tmp_path / "map.yaml"
+    f.write_text(f"{topo.nodes[0]}: 2\n{topo.nodes[1]}: 0\n")
+    m2 = shard.ShardMap.build(topo, 3, str(f))
+    assert m2.owner[0] == 2 and m2.owner[1] == 0 and (m2.owner[2:] == m.owner[2:]).all()
+    f.write_text(f"{topo.nodes[0]}: 3\n")
+    with pytest.raises(shard.InputError, match=r"3 is not a shard in 0\.\.2"):
+        shard.ShardMap.build(topo, 3, str(f))
+    f.write_text("nowhere: 0\n")
+    with pytest.raises(shard.InputError, match="'nowhere' is not a node"):
+        shard.ShardMap.build(topo, 3, str(f))
+    for bad, msg in ((["--shard", "2/2"], "is not K/N with 0 <= K < N"),
+                     (["--shards", "2", "--shard", "0/2"], "not both"),
+                     (["--shards", "0"], "below 1"),
+                     (["--shards", "2", "--upstream", "ipc:///x"], "belongs to a worker")):
+        r = subprocess.run([sys.executable, "-m", "routerd", "serve", *bad, "--state-dir",
+                            str(tmp_path / "st")], capture_output=True, text=True, timeout=60, check=False)
+        assert r.returncode == 2 and msg in r.stderr, (bad, r.stderr)
+
+
+def test_combine_acks_maps_piece_rows_back() -> None:
+    # batch: hop rows 0..5 (row 2 refused at decode), link rows 6, 7; shard 0 got hop
+    # rows [0, 3], shard 1 rows [1, 4, 5]; both got both links (piece rows h, h + 1); an
+    # ack's accepted counts its piece's hop and link rows, as one process's would
+    pieces = {0: (np.array([0, 3]), (6, 7)), 1: (np.array([1, 4, 5]), (6, 7))}
+    acks = {0: {"accepted": 2, "rejected": [[1, "link_down"], [3, "not_neighbour"]]},
+            1: {"accepted": 3, "rejected": [[0, "bad_latency"], [4, "not_neighbour"]]}}
+    rej, acc = shard.combine_acks([[2, "unknown_node"]], 2, pieces, acks)
+    assert rej == [[1, "bad_latency"], [2, "unknown_node"], [3, "link_down"], [7, "not_neighbour"]]
+    assert acc == 1 + 2 + 1       # hop rows 0, 4, 5 and link row 6
