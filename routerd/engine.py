@@ -52,6 +52,12 @@ call:
    order: the weighted forwarding graph is acyclic, exploration included.  The greedy hop
    keeps 1 - eps >= 1 - max_rate; with no alternate it keeps 1.
 
+Estimates.  :meth:`Engine.estimate` is x's min over live slots (the rule the update uses
+for a row without a reported estimate); :meth:`Engine.published_estimate` is the Q-value of
+x's published greedy next hop (0 at the destination, the ceiling without a route), what a
+node reports for the route it actually uses: hysteresis and loop prevention can keep x off
+its argmin, and the min would then report optimistic entries x never forwards on.
+
 Link state.  A link marked down leaves every decision at once (its slot is not live), and
 its estimates are set to the ceiling, so no count-to-infinity can build on them.  Marked
 up, it is re-admitted with a fresh estimate: the link's delay plus the neighbour's current
@@ -713,6 +719,34 @@ class Engine:
             return 0.0
         qy = self.Q[x, d][self.live[x]]
         return float(qy.min()) if qy.size else self.settings.ceiling_s
+
+    def published_estimate(self, x: int, d: int) -> float:
+        """The Q-value of x's published greedy next hop for d (0 when x == d, the ceiling
+        when x has no route): what x reports as its remaining estimate for the route it
+        actually uses.  :meth:`estimate` is the min over live slots instead, the rule the
+        update applies when a row carries no estimate."""
+        if x == d:
+            return 0.0
+        g = int(self.greedy[x, d])
+        return float(self.Q[x, d, g]) if g >= 0 else self.settings.ceiling_s
+
+    def published_estimates(self, xs: Any = None, ds: Any = None) -> np.ndarray:
+        """:meth:`published_estimate` vectorised: for node and destination index arrays of
+        one shape, that shape; with ``ds`` None, the (len(xs), n) rows of nodes ``xs``
+        (every node when ``xs`` is None too)."""
+        n, K = self.n, self.k
+        if ds is None:
+            rows = np.arange(n) if xs is None else np.asarray(xs, dtype=np.int64)
+            x = np.repeat(rows, n).reshape(len(rows), n)
+            d = np.broadcast_to(np.arange(n), x.shape)
+        else:
+            x, d = np.asarray(xs, dtype=np.int64), np.asarray(ds, dtype=np.int64)
+        w = x * n + d
+        g = _flat(self.greedy).take(w)
+        q = _flat(self.Q).take(w * K + np.maximum(g, 0))
+        out = np.where(g >= 0, q, self.settings.ceiling_s)
+        out[x == d] = 0.0
+        return out
 
     def next_hops(self) -> np.ndarray:
         """(n, n) greedy next-hop node per (node, destination), -1 for none."""

@@ -16,7 +16,8 @@ are buffered; every ``sim.decision_interval_s`` the due rows are applied with on
 recomputes the tables.  Between ticks the engine's Q-values do not change, so the
 estimates are read from a cached copy of ``Engine.values()`` refreshed after each batch.
 Which estimate y reports is ``sim.estimate``: ``published`` (default) is the Q-value of
-the next hop y actually publishes (its greedy slot); ``min`` is ``engine.estimate(y, d)``,
+the next hop y actually publishes (its greedy slot, ``Engine.published_estimate``), updated
+after each tick only where a row was applied or a greedy hop moved; ``min`` is ``engine.estimate(y, d)``,
 the minimum over y's live slots.  They differ because hysteresis and loop prevention
 keep y off its argmin: with ``min``, never-corrected optimistic entries for next hops
 that loop prevention forbids (e.g. back towards the sender) are reported as y's
@@ -30,6 +31,7 @@ from __future__ import annotations
 
 import importlib
 import math
+from itertools import chain
 from typing import Any
 
 import numpy as np
@@ -134,6 +136,8 @@ class QRouting(Policy):
         self.rows_rejected = 0
         self.ticks = 0
         self.estimate_mode = settings["sim.estimate"] if settings is not None else "published"
+        self._gh = np.full((n, n), -1, dtype=np.int64)   # greedy next hop per entry, as refreshed
+        self._moved: list[np.ndarray] = []               # keys x * n + d whose greedy hop moved
         # dual (routerd.variants): a packet also carries its sender's estimate back towards
         # its source; the source is the flow id's pair, (src * n + dst) * flows_per_pair + r
         self.hop_flow = es.variant == "dual"
@@ -160,6 +164,9 @@ class QRouting(Policy):
         row_vals = np.where(explore, -2, nh).tolist()
         greedy_rows = nh.tolist()
         eps_rows = eng.eps[xs].tolist()
+        moved = np.nonzero(self._gh[xs] != nh)                        # greedy hops that moved
+        self._moved.append(xs[moved[0]] * self.engine.n + moved[1])
+        self._gh[xs] = nh
         table = self.table
         assert table is not None
         for i, x in enumerate(xs.tolist()):
@@ -231,31 +238,48 @@ class QRouting(Policy):
                 self._rows = [r for r in rows if r[0] > now]
             if due:
                 due.sort(key=lambda r: r[0])  # stable: ties keep arrival order
-                a = np.array(due, dtype=np.float64)
+                # one flat pass over the tuples: much cheaper than np.array(list of tuples)
+                a = np.fromiter(chain.from_iterable(due), dtype=np.float64,
+                                count=6 * len(due)).reshape(-1, 6)
                 res = self.engine.observe(
                     HopBatch.of(a[:, 1].astype(np.int64), a[:, 2].astype(np.int64),
                                 a[:, 3].astype(np.int64), a[:, 4], a[:, 5]), now)
                 self.rows_applied += res.accepted
                 self.rows_rejected += len(res.rejected)
-        self._decide(now)
+                self._decide(now, (a[:, 1] * self.engine.n + a[:, 3]).astype(np.int64))
+                return
+        self._decide(now, np.empty(0, dtype=np.int64))
 
-    def _decide(self, now: float) -> None:
+    def _decide(self, now: float, written: np.ndarray | None = None) -> None:
+        """Decide, refresh the changed table rows and the estimates.  ``written``: the
+        keys x * n + d of the rows just observed (None: refresh every estimate).  With
+        the plain engine only those keys' Q-values changed, so a published estimate
+        moves only there or where a greedy hop moved; anything else refreshes all."""
         dec = self.engine.decide(now)
         self.ticks += 1
+        self._moved = []
         if dec.changed_nodes:
             self._refresh(sorted(dec.changed_nodes))
-        self._V = self._estimates()
+        if (written is None or self.estimate_mode != "published"
+                or self.engine.settings.variant != "plain"):
+            self._V = self._estimates()
+            return
+        keys = np.unique(np.concatenate([written, *self._moved]))
+        if keys.size == 0:
+            return
+        n = self.engine.n
+        xk, dk = np.divmod(keys, n)
+        V = self._V
+        for x, d, v in zip(xk.tolist(), dk.tolist(),
+                           self.engine.published_estimates(xk, dk).tolist()):
+            V[x][d] = v
 
     def _estimates(self) -> list[list[float]]:
         """Each node's remaining estimate per destination, as it would report it."""
         eng = self.engine
         if self.estimate_mode == "min":
             return eng.values().tolist()
-        g = eng.greedy
-        q = np.take_along_axis(eng.Q, np.maximum(g, 0)[..., None], axis=2)[..., 0]
-        q = np.where(g >= 0, q, eng.settings.ceiling_s)
-        np.fill_diagonal(q, 0.0)
-        return q.tolist()
+        return eng.published_estimates().tolist()
 
     def on_link(self, x: int, y: int, up: bool, now: float) -> None:
         self.engine.set_link(x, y, up, now)

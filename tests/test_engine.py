@@ -725,3 +725,23 @@ def test_key_lane_of_decide_equals_the_full_pass(make_ring, seed: int) -> None: 
         assert a.same_state(b)
         assert a.statistics() == b.statistics()
         prevented += da.loops_prevented
+
+
+def test_published_estimate_is_the_greedy_entry(make_ring) -> None:  # type: ignore[no-untyped-def]
+    """published_estimate = Q at the published greedy slot (0 at d, the ceiling without a
+    route); estimate stays the min over live slots (the update's rule)."""
+    t = make_ring(9, 4, 3)
+    e = Engine(t)
+    rng = np.random.default_rng(3)
+    _random_q(e, rng)
+    e.decide(1.0)
+    pub = e.published_estimates()
+    for x in range(e.n):
+        for d in range(e.n):
+            g = int(e.greedy[x, d])
+            want = 0.0 if x == d else (float(e.Q[x, d, g]) if g >= 0 else e.settings.ceiling_s)
+            assert e.published_estimate(x, d) == want == pub[x, d]
+            assert e.estimate(x, d) <= want
+    xs, ds = np.array([0, 3, 5]), np.array([2, 3, 8])
+    assert e.published_estimates(xs, ds).tolist() == [e.published_estimate(int(a), int(b))
+                                                      for a, b in zip(xs, ds)]
