@@ -66,6 +66,8 @@ REASONS: tuple[str, ...] = ("below_floor", "above_ceiling", "jump_held")
 #: Whole-batch refusal code of the rate limiter.
 RATE_LIMITED = "rate_limited"
 JUMP_ACTIONS: tuple[str, ...] = ("clip", "hold")
+#: Relative slack of the propagation floor: rounding, not physics.
+FLOOR_SLACK = 1e-9
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -248,12 +250,15 @@ class Guards:
         code[engine_bad] = -2
         with np.errstate(invalid="ignore"):
             if s.floor_fraction > 0:
+                # FLOOR_SLACK: an estimate the engine built from values at the floor may
+                # round a few ulps below it (a convex combination in floating point)
+                f_eff = s.floor_fraction * (1.0 - FLOOR_SLACK)
                 floor_l = np.zeros(m)
-                floor_l[known] = s.floor_fraction * self._delay[link[known]]
+                floor_l[known] = f_eff * self._delay[link[known]]
                 low = known & (lat < floor_l)
                 has_e = known & ~np.isnan(est) & (via != dst)
                 floor_e = np.zeros(m)
-                floor_e[has_e] = s.floor_fraction * self._dist[via[has_e], dst[has_e]]
+                floor_e[has_e] = f_eff * self._dist[via[has_e], dst[has_e]]
                 low |= has_e & (est < floor_e)
                 mark(low, 0)
             mark((lat > s.ceiling_s) | (est > s.ceiling_s), 1)

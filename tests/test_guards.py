@@ -226,3 +226,24 @@ def test_pending_count_restarts_after_an_in_band_batch() -> None:
     # the in-band batch in between: this one is the first of a new count, held again
     assert g.check(*_cols(t, [("a", "b", "d", 0.05)])).rejected == ((0, "jump_held"),)
     assert g.check(*_cols(t, [("a", "b", "d", 0.05)])).rejected == ()
+
+
+def test_estimates_the_engine_builds_at_the_floor_pass_it() -> None:
+    # an engine fed only floor-level hops: its estimates are convex combinations of values
+    # at the floor, which can round a few ulps below it; reported back as estimate_s (the
+    # agent echoes them) they must still pass
+    from conftest import ring_with_chords
+
+    t = ring_with_chords(10, 8, seed=3)        # random delays: sums that do round
+    eng = Engine(t, EngineSettings(step_mode="constant", alpha=0.3))
+    g = Guards(t)
+    rng = np.random.default_rng(4)
+    for _ in range(50):
+        k = rng.integers(0, t.n_links, 20)
+        d = rng.integers(0, t.n, 20)
+        ok = d != t.src[k]
+        s_, v, d = t.src[k][ok], t.dst[k][ok], d[ok]
+        est = np.array([eng.estimate(int(y), int(z)) for y, z in zip(v, d)])
+        r = g.check(s_, v, d, t.delay_s[k][ok], est)
+        assert r.rejected == ()
+        eng.observe(HopBatch.of(s_, v, d, t.delay_s[k][ok], est), now=1.0)
