@@ -47,7 +47,7 @@ from __future__ import annotations
 import argparse
 import os
 import sys
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -206,7 +206,7 @@ def _lines(path: str, text: str) -> dict[tuple[str, ...], int]:
             for k, v in node.value:
                 key = (*at, str(k.value))
                 if key in out:
-                    out[("__dup__", *key)] = k.start_mark.line + 1
+                    out[("__dup__",) + key] = k.start_mark.line + 1
                 else:
                     out[key] = k.start_mark.line + 1
                 walk(v, key)
@@ -240,7 +240,7 @@ def load_allow(path: str, topo: Topology) -> Allow:
         raise InputError(f"{path}:1: the allow file must map reporter names to entries, "
                          f"got a {type(doc).__name__}")
     lines = _lines(path, text)
-    problems: list[Problem | str] = []
+    problems: list[Problem] = []
     for k, ln in lines.items():
         if k[0] == "__dup__" and len(k) == 2:
             problems.append(Problem(f"{path}:{ln}: {k[1]}", k[1], "is listed twice"))
@@ -412,7 +412,7 @@ def describe(allow: Allow) -> list[str]:
             for r in allow.reporters]
 
 
-def check_pair(cfg: Mapping[str, Any]) -> tuple[str | None, str | None]:
+def check_pair(cfg: Any) -> tuple[str | None, str | None]:
     """(server_key, allow) from a config, both or neither (else InputError)."""
     sk, al = cfg["security.server_key"], cfg["security.allow"]
     if bool(sk) != bool(al):

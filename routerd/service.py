@@ -777,7 +777,7 @@ class Service:
                     self._send_ack(zmq, sock, parts)
                 if reply is not None:
                     control.send(reply)
-                if reply_ro is not None:
+                if reply_ro is not None and control_ro is not None:
                     control_ro.send(reply_ro)
                 self._housekeeping()
         except Exception as e:  # noqa: BLE001 - a bug of ours: say so loudly, keep the journal consistent
