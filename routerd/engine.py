@@ -770,6 +770,37 @@ class Engine:
         """x's whole table: destination → weights."""
         return {d: w for d in range(self.n) if d != x and (w := self.weights(x, d))}
 
+    def routes_many(self, xs: Any = None) -> list[dict[int, list[tuple[int, float]]]]:
+        """:meth:`routes` of each node in ``xs`` (every node by default), from whole-table
+        arrays instead of one :meth:`weights` call per destination; the same tables, the
+        same floats (greedy 1 - eps, each alternate eps / count, in slot order)."""
+        rows = np.arange(self.n) if xs is None else np.asarray(xs, dtype=np.int64).reshape(-1)
+        g = self.greedy[rows]
+        sl = self._slots[rows]
+        nh = np.take_along_axis(sl, np.maximum(g, 0), axis=1)
+        alt = self.alt[rows]
+        cnt = alt.sum(axis=2)
+        e = self.eps[rows]
+        has = cnt > 0
+        gw = np.where(has, 1.0 - e, 1.0)
+        share = np.where(has, e / np.maximum(cnt, 1), 0.0)
+        out: list[dict[int, list[tuple[int, float]]]] = []
+        for i, x in enumerate(rows.tolist()):
+            nhi, gwi, shi, hasi = (a.tolist() for a in (nh[i], gw[i], share[i], has[i]))
+            sli = sl[i].tolist()
+            alti = alt[i].tolist() if any(hasi) else None
+            table: dict[int, list[tuple[int, float]]] = {}
+            for d in np.flatnonzero(g[i] >= 0).tolist():
+                if d == x:
+                    continue
+                if hasi[d] and alti is not None:
+                    s_ = shi[d]
+                    table[d] = [(nhi[d], gwi[d])] + [(sli[j], s_) for j, on in enumerate(alti[d]) if on]
+                else:
+                    table[d] = [(nhi[d], gwi[d])]
+            out.append(table)
+        return out
+
     # ---- decisions ------------------------------------------------------------------
     def _spt_live(self) -> np.ndarray:
         if self._live_spt is None:

@@ -593,13 +593,21 @@ def decode_table(frames: Sequence[bytes]) -> dict[str, Any]:
 
 def routes_by_name(engine: Any, x: int) -> dict[str, list[list[Any]]]:
     """Engine.routes(x) with node names: ``{dst: [[next_hop, weight], ...]}``."""
-    names = engine.topo.nodes
-    return {names[d]: [[names[y], float(w)] for y, w in ws] for d, ws in engine.routes(x).items()}
+    many = getattr(engine, "routes_many", None)     # whole-table arrays when the engine has them
+    return _named(engine.topo.nodes, many([x])[0] if many is not None else engine.routes(x))
+
+
+def _named(names: Any, routes: dict[int, list[tuple[int, float]]]) -> dict[str, list[list[Any]]]:
+    return {names[d]: [[names[y], float(w)] for y, w in ws] for d, ws in routes.items()}
 
 
 def tables_by_name(engine: Any) -> dict[str, dict[str, list[list[Any]]]]:
     """Every node's table (the control ``tables`` reply's ``"tables"`` value)."""
-    return {engine.topo.nodes[x]: routes_by_name(engine, x) for x in range(engine.n)}
+    names = engine.topo.nodes
+    many = getattr(engine, "routes_many", None)
+    if many is None:
+        return {names[x]: routes_by_name(engine, x) for x in range(engine.n)}
+    return {names[x]: _named(names, r) for x, r in enumerate(many())}
 
 
 def estimates_by_name(engine: Any, x: int) -> dict[str, dict[str, float]]:

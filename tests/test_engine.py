@@ -745,3 +745,15 @@ def test_published_estimate_is_the_greedy_entry(make_ring) -> None:  # type: ign
     xs, ds = np.array([0, 3, 5]), np.array([2, 3, 8])
     assert e.published_estimates(xs, ds).tolist() == [e.published_estimate(int(a), int(b))
                                                       for a, b in zip(xs, ds)]
+
+
+def test_routes_many_equals_routes(make_ring) -> None:  # type: ignore[no-untyped-def]
+    """The whole-table path gives exactly routes(x) (same next hops, weights, order)."""
+    t = make_ring(12, 6, 5)
+    e = Engine(t, EngineSettings(explore_min=0.02))
+    _random_q(e, np.random.default_rng(5))
+    e.set_link(int(t.src[0]), int(t.dst[0]), False)
+    e.decide(1.0)
+    assert e.routes_many() == [e.routes(x) for x in range(e.n)]
+    assert e.routes_many([3, 1]) == [e.routes(3), e.routes(1)]
+    assert any(len(w) > 1 for r in e.routes_many() for w in r.values())   # splits are covered
