@@ -152,6 +152,12 @@ def test_same_tables_and_acks_with_1_2_and_4_shards(base: str) -> None:
                 text = sp.metrics_text()
                 assert 'routerd_observations_total{result="accepted",shard="1"}' in text
                 assert 'shard="0"' in text and 'shard="front"' in text
+                # the page parses (prometheus_client's own parser) and every sample is
+                # labelled with its shard
+                from prometheus_client.parser import text_string_to_metric_families
+
+                fams = list(text_string_to_metric_families(text))
+                assert all("shard" in smp.labels for f in fams for smp in f.samples)
         finally:
             sp.kill()
         # the journals of every shard, replayed offline and merged, give the same tables
