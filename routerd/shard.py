@@ -168,11 +168,18 @@ def shard_dir(state_root: str, k: int, n: int) -> str:
     return os.path.join(state_root, f"shard-{k}-of-{n}")
 
 
-def owned_routes(engine: Any, x: int, dsts: np.ndarray) -> dict[str, list[list[Any]]]:
-    """:func:`wire.routes_by_name` restricted to the destinations ``dsts``."""
+def owned_routes(engine: Any, x: int, mask: np.ndarray) -> dict[str, list[list[Any]]]:
+    """:func:`wire.routes_by_name` restricted to the destinations where ``mask`` (bool, one
+    per node) is set; the same weights, from the engine's whole-table path when it has one."""
     names = engine.topo.nodes
+    many = getattr(engine, "routes_many", None)
+    if many is not None:
+        table = many([x])[0]
+        own = mask.tolist()
+        return {names[d]: [[names[y], float(w)] for y, w in ws]
+                for d, ws in table.items() if own[d]}
     out: dict[str, list[list[Any]]] = {}
-    for d in dsts.tolist():
+    for d in np.flatnonzero(mask).tolist():
         if d != x:
             ws = engine.weights(x, d)
             if ws:
@@ -200,7 +207,7 @@ def replay_shards(state_root: str, topo: _topology.Topology, n_shards: int,
     parts = []
     for k in range(n_shards):
         r = _journal.restore(shard_dir(state_root, k, n_shards), topo, settings or EngineSettings())
-        own = smap.owned(k)
+        own = smap.owner == k
         parts.append({topo.nodes[x]: owned_routes(r.engine, x, own) for x in range(topo.n)})
     return merge_tables(parts)
 
@@ -352,6 +359,7 @@ def _worker_class() -> type:
             self.smap = smap
             self.shard = k
             self.own = smap.owned(k)
+            self.own_mask = smap.owner == k
             self._own_names = frozenset(topo.nodes[d] for d in self.own.tolist())
             self.upstream = upstream
             self._hello: Any = None
@@ -359,12 +367,12 @@ def _worker_class() -> type:
 
         # -- what the worker publishes and answers: its own destinations --------------
         def _routes(self, x: int) -> dict[str, list[list[Any]]]:
-            return owned_routes(self.engine, x, self.own)
+            return owned_routes(self.engine, x, self.own_mask)
 
         def _control(self, op: str, req: Mapping[str, Any]) -> dict[str, Any]:
             eng = self.engine
             if op == "tables":
-                return {"tables": {self.topo.nodes[x]: owned_routes(eng, x, self.own)
+                return {"tables": {self.topo.nodes[x]: owned_routes(eng, x, self.own_mask)
                                    for x in range(self.topo.n)}}
             if op == "estimates":
                 est = wire.estimates_by_name(eng, self.topo.index[req["node"]])
