@@ -101,8 +101,9 @@ _TOKEN = struct.Struct("<Q")
 _SHARD_RE = re.compile(r"^(\d+)/(\d+)$")
 #: Set by the front for the workers it starts (they stop when it dies).
 FRONT_PID_ENV = "ROUTERD_SHARD_FRONT_PID"
-#: Frame reasons the front adds (whole-batch refusals).
-FRONT_FRAME_ERRORS = ("unavailable", "rate_limited")
+#: Keys a worker runs with whatever its config says: rate limits are the front's (per
+#: reporter, whole batches).
+WORKER_OVERRIDES: dict[str, Any] = {"guards.rate.batches_per_s": 0.0, "guards.rate.rows_per_s": 0.0}
 
 
 # ---- the destination map ---------------------------------------------------------------
@@ -320,11 +321,11 @@ def _run_worker(args: argparse.Namespace, cfg: _config.Config, topo: _topology.T
 
     _follow_front()
     n = smap.n_shards
-    over = {"service.state_dir": shard_dir(cfg["service.state_dir"], k, n),
-            # rate limits are the front's (per reporter, whole batches)
-            "guards.rate.batches_per_s": 0.0, "guards.rate.rows_per_s": 0.0}
+    over = {"service.state_dir": shard_dir(cfg["service.state_dir"], k, n), **WORKER_OVERRIDES}
     wcfg = cfg.with_overrides(over, where=f"shard {k}/{n}")
-    svc = _worker_class()(wcfg, topo, smap, k, args.upstream, reload_args=args)
+    rargs = argparse.Namespace(**vars(args))
+    rargs.state_dir = over["service.state_dir"]     # a reload re-reads the same state dir
+    svc = _worker_class()(wcfg, topo, smap, k, args.upstream, reload_args=rargs)
     try:
         svc.start()
     except _service.StartError as e:
@@ -389,6 +390,15 @@ def _worker_class() -> type:
 
         def _shard_info(self) -> dict[str, Any]:
             return {"index": self.shard, "of": self.smap.n_shards, "destinations": int(self.own.size)}
+
+        def _do_reload(self) -> dict[str, Any]:
+            out = super()._do_reload()
+            if out.get("applied"):   # rate limits stay the front's
+                from . import guards as _guards
+
+                self.cfg = self.cfg.with_overrides(WORKER_OVERRIDES, where="shard worker")
+                self.guards.reconfigure(_guards.GuardSettings.from_config(self.cfg))
+            return out
 
         def info(self) -> Mapping[str, str]:
             return {**super().info(), "shard": f"{self.shard}/{self.smap.n_shards}"}

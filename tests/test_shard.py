@@ -149,6 +149,9 @@ def test_same_tables_and_acks_with_1_2_and_4_shards(base: str) -> None:
             h = sp.control({"op": "health"})
             assert h["status"] == "ok" and h["shards_up"] == n
             if n == 2:
+                rl = sp.control({"op": "reload"})["reload"]   # every worker re-reads its config
+                assert [r["applied"] for r in rl] == [True, True], rl
+                assert all(r["needs_restart"] == [] for r in rl), rl
                 text = sp.metrics_text()
                 assert 'routerd_observations_total{result="accepted",shard="1"}' in text
                 assert 'shard="0"' in text and 'shard="front"' in text
