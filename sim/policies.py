@@ -137,6 +137,8 @@ class QRouting(Policy):
         self.ticks = 0
         self.estimate_mode = settings["sim.estimate"] if settings is not None else "published"
         self._gh = np.full((n, n), -1, dtype=np.int64)   # greedy next hop per entry, as refreshed
+        self._eps_np = np.full((n, n), np.nan)           # its share and candidates, as refreshed
+        self._alt_np = np.zeros((n, n, topology.slots.shape[1]), dtype=bool)
         self._moved: list[np.ndarray] = []               # keys x * n + d whose greedy hop moved
         # dual (routerd.variants): a packet also carries its sender's estimate back towards
         # its source; the source is the flow id's pair, (src * n + dst) * flows_per_pair + r
@@ -149,7 +151,8 @@ class QRouting(Policy):
 
     # -- forwarding ----------------------------------------------------------------
     def _refresh(self, nodes: Any) -> None:
-        """Rebuild the fast-path rows of ``nodes`` from the engine's published tables.
+        """Bring the fast-path rows of ``nodes`` up to the engine's published tables
+        (only entries whose greedy hop, share or candidates changed are rewritten).
 
         Entries that split traffic become -2; their weights are read from
         ``Engine.weights`` on first use after each change (a tick touches far fewer
@@ -160,20 +163,28 @@ class QRouting(Policy):
         eng = self.engine
         g = eng.greedy[xs]                                             # (m, n) slot
         nh = np.where(g >= 0, np.take_along_axis(self._slots[xs], np.maximum(g, 0), axis=1), -1)
-        explore = (g >= 0) & eng.alt[xs].any(axis=2) & (eng.eps[xs] > 0)  # zero share: greedy only
-        row_vals = np.where(explore, -2, nh).tolist()
-        greedy_rows = nh.tolist()
-        eps_rows = eng.eps[xs].tolist()
+        e = eng.eps[xs]
+        alt = eng.alt[xs]
+        explore = (g >= 0) & alt.any(axis=2) & (e > 0)                # zero share: greedy only
+        vals = np.where(explore, -2, nh)
         moved = np.nonzero(self._gh[xs] != nh)                        # greedy hops that moved
         self._moved.append(xs[moved[0]] * self.engine.n + moved[1])
+        # only entries whose inputs (greedy hop, share, candidates) changed are rewritten;
+        # the others, and their cached splits, are what a rebuild would give again
+        ii, dd = np.nonzero((self._gh[xs] != nh) | (self._eps_np[xs] != e)
+                            | (self._alt_np[xs] != alt).any(axis=2))
         self._gh[xs] = nh
+        self._eps_np[xs] = e
+        self._alt_np[xs] = alt
         table = self.table
         assert table is not None
-        for i, x in enumerate(xs.tolist()):
-            table[x][:] = row_vals[i]
-            self._greedy_hop[x] = greedy_rows[i]
-            self._eps_row[x] = eps_rows[i]
-            self._split[x] = {}
+        gh, er, sp = self._greedy_hop, self._eps_row, self._split
+        for x, d, v, h, ev in zip(xs[ii].tolist(), dd.tolist(), vals[ii, dd].tolist(),
+                                  nh[ii, dd].tolist(), e[ii, dd].tolist()):
+            table[x][d] = v
+            gh[x][d] = h
+            er[x][d] = ev
+            sp[x].pop(d, None)
 
     def split(self, x: int, d: int) -> tuple[tuple[int, ...], tuple[float, ...]]:
         """(next hops, cumulative weights) of x for d, cached until x's table changes.
