@@ -988,7 +988,7 @@ class Engine:
         ef = _flat(self.eps)
         changed = np.abs(ef.take(wo) - eps) > 1e-9
         ef[wo] = eps
-        return frozenset(np.unique(xo[changed]).tolist())
+        return frozenset(xo[changed].tolist())
 
     def _best_live(self, sel: Any, m: int) -> tuple[np.ndarray, np.ndarray]:
         """(slot, value) of the lowest live estimate per (node, destination in sel).
