@@ -172,31 +172,41 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
         with open(tfile, "w") as fh:
             yaml.safe_dump(T.to_mapping(topo), fh)
         topo = T.load(tfile)
-        conf = os.path.join(base, "conf.yaml")
-        with open(conf, "w") as fh:
-            yaml.safe_dump(CONF, fh)
         frames = Frames("cols", ROWS, topo, np.random.default_rng(3))
+        # debounce 0.5 s: few table rounds, so the figure is about ingest; the default
+        # 0.05 s (full runs only) adds a table round per worker every 50 ms
+        settings = [("", 0.5)] + ([] if quick else [("_debounce005", 0.05)])
         rates: dict[str, float] = {}
-        for name, extra in (("one", ()), ("w1", ("--shards", "1")), ("w2", ("--shards", "2"))):
-            procs.append(_Proc(base, name, tfile, conf, *extra))
-        for p in procs:       # started together, waited for together
-            p.ready()
-        # interleaved rounds, best of each: the machine is shared, load comes and goes
-        for r in range(1 if quick else 3):
-            for i, (name, p) in enumerate(zip(("one", "w1", "w2"), procs)):
-                rate = _ingest(ctx, p, frames, dt, (r * 3 + i) * 1_000_000)
-                rates[name] = max(rates.get(name, 0.0), rate)
-        for p in procs:
-            p.proc.terminate()
+        for tag, deb in settings:
+            conf = os.path.join(base, f"conf{tag}.yaml")
+            with open(conf, "w") as fh:
+                yaml.safe_dump({"service": {**CONF["service"], "debounce_s": deb}}, fh)
+            names = [f"one{tag}", f"w1{tag}", f"w2{tag}"]
+            group = [_Proc(base, nm, tfile, conf, *extra) for nm, extra in
+                     zip(names, ((), ("--shards", "1"), ("--shards", "2")))]
+            procs += group
+            for p in group:       # started together, waited for together
+                p.ready()
+            # interleaved rounds, best of each: the machine is shared, load comes and goes
+            for r in range(1 if quick else 3):
+                for i, (name, p) in enumerate(zip(names, group)):
+                    rate = _ingest(ctx, p, frames, dt, (r * 3 + i) * 1_000_000)
+                    rates[name] = max(rates.get(name, 0.0), rate)
+            for p in group:
+                p.proc.terminate()
         front = _front_ceiling(topo, frames, shard.ShardMap.build(topo, 2), 0.5 if quick else 2.0)
-        figs["shard_ingest_one_rows_per_s"] = _fig(
-            rates["one"], "rows/s", 1.0, "itself: one routerd serve process", nodes=topo.n)
-        figs["shard_ingest_w1_rows_per_s"] = _fig(
-            rates["w1"], "rows/s", rates["w1"] / rates["one"], "one plain process (the "
-            "front's cost: one more hop and its decode/split)", nodes=topo.n)
-        figs["shard_ingest_w2_rows_per_s"] = _fig(
-            rates["w2"], "rows/s", rates["w2"] / rates["w1"], "the front with one worker "
-            f"(this machine: {os.cpu_count()} cores for client, front and workers)", nodes=topo.n)
+        for tag, deb in settings:
+            one, w1, w2 = rates[f"one{tag}"], rates[f"w1{tag}"], rates[f"w2{tag}"]
+            figs[f"shard_ingest_one{tag}_rows_per_s"] = _fig(
+                one, "rows/s", 1.0, "itself: one routerd serve process", nodes=topo.n,
+                debounce_s=deb)
+            figs[f"shard_ingest_w1{tag}_rows_per_s"] = _fig(
+                w1, "rows/s", w1 / one, "one plain process (the front's cost: one more hop "
+                "and its decode/split)", nodes=topo.n, debounce_s=deb)
+            figs[f"shard_ingest_w2{tag}_rows_per_s"] = _fig(
+                w2, "rows/s", w2 / w1, "the front with one worker (this machine: "
+                f"{os.cpu_count()} cores for client, front and workers)", nodes=topo.n,
+                debounce_s=deb)
         figs["shard_front_rows_per_s"] = _fig(
             front, "rows/s", front / rates["one"], "one plain process's ingest: the front's "
             "own work per row (decode, split into 2, encode, combine) is its ceiling",
