@@ -14,8 +14,9 @@ Figures (every ratio between runs of this same call, same machine, same seeds):
   own rule (rows one by one in Python) on abilene, against the plain core's vectorised
   path on the same rows (best of 3 trials each, interleaved).
 
-Definitions and the report: ``bench/compare_variants.py``.  Quick: plain, predictive
-and confidence only, short runs (< 20 s on 2 cores); otherwise every variant.
+Definitions and the report: ``bench/compare_variants.py``.  Quick: every variant but
+full_echo, runs at half length (< 20 s on 2 cores; the spike and cold-start times are
+then often "never settled", reported as lower bounds); otherwise every variant.
 """
 from __future__ import annotations
 
@@ -60,7 +61,7 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
     topo = C.load_topology(key)
     sat, link = C.shortest_saturation_pps(topo)
     info = {"topo": topo, "sat_pps": sat, "busiest_link": link, "mindelay_limit": 1.0}
-    variants = ("plain", "predictive", "confidence") if quick else C.VARIANTS
+    variants = ("plain", "predictive", "dual", "confidence") if quick else C.VARIANTS
     dur, scale = (8.0, 0.5) if quick else (30.0, 1.0)
     steady = [j for j in C.steady_jobs({key: info}, (1.0,), dur, 1)
               if j["label"] in variants + ("mindelay",)]
