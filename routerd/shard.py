@@ -43,6 +43,11 @@ pieces that did get journaled are duplicates when the reporter sends the batch a
 A piece for a worker that is down waits in the front's queue (up to ``service.hwm_msgs``
 per worker) and is delivered when the worker is back.
 
+Variants.  ``engine.variant: full_echo`` keeps a per-link latency average fed by every
+row; under sharding each worker learns it from its own rows, so its tables are close to,
+not equal to, one process's (the front says so at start-up).  The other variants keep
+per-entry state.
+
 Guards.  The row guards (floor, ceiling, jump) run in each worker on its rows: the floor
 and the ceiling look at one row, so they decide as one process does; the jump guard keeps
 a reference per link from the rows each worker sees (off by default; with it on, a
@@ -101,6 +106,10 @@ _TOKEN = struct.Struct("<Q")
 _SHARD_RE = re.compile(r"^(\d+)/(\d+)$")
 #: Set by the front for the workers it starts (they stop when it dies).
 FRONT_PID_ENV = "ROUTERD_SHARD_FRONT_PID"
+#: Engine variants with state shared across destinations (routerd.variants): under
+#: sharding each worker keeps its own copy from its own rows.
+INEXACT_VARIANTS: dict[str, str] = {
+    "full_echo": "its per-link expected latency is learnt by each worker from its own rows"}
 #: Keys a worker runs with whatever its config says: rate limits are the front's (per
 #: reporter, whole batches).
 WORKER_OVERRIDES: dict[str, Any] = {"guards.rate.batches_per_s": 0.0, "guards.rate.rows_per_s": 0.0}
@@ -700,6 +709,10 @@ class Front:
             (f"  shards   {self.endpoints['shards']}   PULL: workers announce themselves here "
              f"(map: {self.smap.source}; destinations per shard {self.smap.counts()})"),
         ]
+        v = self.cfg["engine.variant"]
+        if v in INEXACT_VARIANTS:
+            lines.append(f"  caution  engine.variant {v}: {INEXACT_VARIANTS[v]}; the shards' "
+                         "tables are not exactly one process's")
         for w in self.workers:
             h = w.hello or {}
             lines.append(f"  shard {w.k}/{n}  pid {h.get('pid')}  ingest {h.get('ingest')}  "
