@@ -795,7 +795,8 @@ class Engine:
                     continue
                 if hasi[d] and alti is not None:
                     s_ = shi[d]
-                    table[d] = [(nhi[d], gwi[d])] + [(sli[j], s_) for j, on in enumerate(alti[d]) if on]
+                    table[d] = [(nhi[d], gwi[d])] + [(sli[j], s_) for j, on in enumerate(alti[d])
+                                                     if on]
                 else:
                     table[d] = [(nhi[d], gwi[d])]
             out.append(table)
@@ -975,7 +976,8 @@ class Engine:
         any_alt = self.alt.reshape(n * n, K).take(wo, axis=0).any(axis=1)
         if s.explore_basis == "td":
             vx = np.where(g >= 0, incv[ro], np.inf)   # the incumbent's value (live or inf)
-            rel = _flat(self.td).take(wo) / np.maximum(np.where(np.isfinite(vx), vx, s.ceiling_s), 1e-12)
+            vxc = np.where(np.isfinite(vx), vx, s.ceiling_s)
+            rel = _flat(self.td).take(wo) / np.maximum(vxc, 1e-12)
             frac = np.minimum(1.0, rel / s.td_ref)
         else:
             Nd = self.N.reshape(n * n, K).take(wo, axis=0)
