@@ -2,11 +2,13 @@
 
 Owns: the split between *input* errors (a file, a config or a peer gave us something
 wrong: reported to the user, never fatal to a running service) and everything else
-(our own bugs, which should fail loudly). Imports nothing of the project.
+(our own bugs, which should fail loudly); and `read_yaml`, the one reader of a YAML input
+file with those errors. Imports nothing of the project (PyYAML only inside `read_yaml`).
 """
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 
 @dataclass(frozen=True, slots=True)
@@ -37,3 +39,17 @@ class TopologyError(InputError):
 
 class ConfigError(InputError):
     """A config file or override breaks the config schema."""
+
+
+def read_yaml(path: str, error: type[InputError] = InputError) -> Any:
+    """The document of the YAML file at `path` (safe loader), or `error` naming the file:
+    it does not exist, or it is not valid YAML (with the parser's own position)."""
+    import yaml
+
+    try:
+        with open(path, encoding="utf-8") as fh:
+            return yaml.safe_load(fh)
+    except FileNotFoundError:
+        raise error(Problem(path, path, "does not exist")) from None
+    except yaml.YAMLError as e:
+        raise error(Problem(path, "", f"is not valid YAML: {e}")) from None

@@ -42,7 +42,7 @@ from typing import Any
 
 import numpy as np
 
-from .errors import Problem, TopologyError
+from .errors import Problem, TopologyError, read_yaml
 
 #: Propagation in fibre, seconds per km (ITU-T G.114 planning figure, 5 µs/km).
 FIBRE_S_PER_KM = 5e-6
@@ -466,14 +466,7 @@ def load(spec: str, defaults: LinkDefaults = LinkDefaults()) -> Topology:
         raise TopologyError(Problem(spec, spec, "does not exist"))
     ext = os.path.splitext(spec)[1].lower()
     if ext in (".yaml", ".yml"):
-        import yaml  # only the loader needs it
-
-        try:
-            with open(spec, encoding="utf-8") as fh:
-                doc = yaml.safe_load(fh)
-        except yaml.YAMLError as e:
-            raise TopologyError(Problem(spec, "", f"is not valid YAML: {e}")) from None
-        return from_mapping(doc, source=spec, defaults=defaults)
+        return from_mapping(read_yaml(spec, TopologyError), source=spec, defaults=defaults)
     if ext == ".graphml":
         return load_graphml(spec, defaults)
     if ext == ".json":

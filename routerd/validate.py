@@ -17,7 +17,7 @@ from typing import Any
 
 from . import config as _config
 from . import topology as _topology
-from .errors import InputError, Problem
+from .errors import InputError, read_yaml
 
 
 def configure(p: argparse.ArgumentParser) -> None:
@@ -37,15 +37,7 @@ def kind_of(path: str) -> tuple[str, Any]:
     ext = os.path.splitext(path)[1].lower()
     if ext in (".graphml", ".json"):
         return "topology", None
-    import yaml
-
-    try:
-        with open(path, encoding="utf-8") as fh:
-            doc = yaml.safe_load(fh)
-    except FileNotFoundError:
-        raise InputError(Problem(path, path, "does not exist")) from None
-    except yaml.YAMLError as e:
-        raise InputError(Problem(path, "", f"is not valid YAML: {e}")) from None
+    doc = read_yaml(path)
     if isinstance(doc, dict) and isinstance(doc.get("topology"), dict) and "nodes" in doc["topology"]:
         return "topology", doc
     if isinstance(doc, dict) and "scenario" in doc:

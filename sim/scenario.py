@@ -34,7 +34,7 @@ from typing import Any
 
 import numpy as np
 
-from routerd.errors import InputError, Problem
+from routerd.errors import InputError, Problem, read_yaml
 from routerd.topology import Topology
 
 from .core import LinkEvent
@@ -279,13 +279,4 @@ def from_mapping(doc: Any, source: str = "<scenario>") -> Scenario:
 
 def load(path: str) -> Scenario:
     """Read and check a scenario YAML file."""
-    import yaml
-
-    try:
-        with open(path, encoding="utf-8") as fh:
-            doc = yaml.safe_load(fh)
-    except FileNotFoundError:
-        raise InputError(Problem(path, path, "does not exist")) from None
-    except yaml.YAMLError as e:
-        raise InputError(Problem(path, "", f"is not valid YAML: {e}")) from None
-    return from_mapping(doc, source=path)
+    return from_mapping(read_yaml(path), source=path)
