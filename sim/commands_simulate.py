@@ -21,10 +21,34 @@ from .run import SimSpec
 from .run import run as run_sim
 
 
-def configure(p: argparse.ArgumentParser) -> None:
+def add_topology_option(p: argparse.ArgumentParser) -> None:
+    """--topology, as simulate and sweep take it."""
     p.add_argument("--topology", metavar="FILE", default=None,
                    help="topology file (.yaml, .graphml, .json) or topohub:GROUP/NAME; "
                         "default: the config's topology.file, else the built-in demo lab")
+
+
+def add_packet_options(p: argparse.ArgumentParser) -> None:
+    """--packet-bytes and --size-dist, as simulate and sweep take them."""
+    p.add_argument("--packet-bytes", metavar="B", type=float, default=1000.0,
+                   help="packet size in bytes (the mean with --size-dist exp; default 1000)")
+    p.add_argument("--size-dist", choices=("fixed", "exp"), default="fixed",
+                   help="packet sizes fixed or exponentially distributed (default fixed)")
+
+
+def add_config_options(p: argparse.ArgumentParser, set_help: str) -> None:
+    """--config, --set, --capacity-bps and --buffer-pkts, as simulate and sweep take them."""
+    p.add_argument("--config", metavar="FILE", default=None, help="routerd config file")
+    p.add_argument("--set", metavar="KEY=VALUE", action="append", default=[], dest="overrides",
+                   help=set_help)
+    p.add_argument("--capacity-bps", type=float, default=None,
+                   help="capacity for links whose topology gives none (topohub files)")
+    p.add_argument("--buffer-pkts", type=int, default=None,
+                   help="buffer for links whose topology gives none (topohub files)")
+
+
+def configure(p: argparse.ArgumentParser) -> None:
+    add_topology_option(p)
     p.add_argument("--policy", required=True, metavar="NAME",
                    help=f"routing policy: {', '.join(_policies.NAMES)}; service[:ENDPOINTS] drives a "
                         "live routerd serve (started for the run, or the one at "
@@ -36,10 +60,7 @@ def configure(p: argparse.ArgumentParser) -> None:
                         "the trace's span + 1 s)")
     p.add_argument("--seed", metavar="N", type=int, required=True,
                    help="random seed: same inputs and seed give the same summary")
-    p.add_argument("--packet-bytes", metavar="B", type=float, default=1000.0,
-                   help="packet size in bytes (the mean with --size-dist exp; default 1000)")
-    p.add_argument("--size-dist", choices=("fixed", "exp"), default="fixed",
-                   help="packet sizes fixed or exponentially distributed (default fixed)")
+    add_packet_options(p)
     p.add_argument("--warmup", metavar="S", type=float, default=None,
                    help="statistics cover packets injected after this (default: a tenth of --duration)")
     p.add_argument("--scenario", metavar="FILE", default=None,
@@ -49,13 +70,8 @@ def configure(p: argparse.ArgumentParser) -> None:
                         "(default: uniform over distinct pairs)")
     p.add_argument("--plot", action="store_true", help="also draw PNGs (needs matplotlib)")
     p.add_argument("--out", metavar="DIR", required=True, help="output directory (created)")
-    p.add_argument("--config", metavar="FILE", default=None, help="routerd config file")
-    p.add_argument("--set", metavar="KEY=VALUE", action="append", default=[], dest="overrides",
-                   help="override one config setting, e.g. --set sim.feedback=instant (repeatable)")
-    p.add_argument("--capacity-bps", type=float, default=None,
-                   help="capacity for links whose topology gives none (topohub files)")
-    p.add_argument("--buffer-pkts", type=int, default=None,
-                   help="buffer for links whose topology gives none (topohub files)")
+    add_config_options(p, "override one config setting, e.g. --set sim.feedback=instant "
+                          "(repeatable)")
     p.add_argument("--quiet", action="store_true", help="no progress on stderr")
     p.add_argument("--speed", metavar="X", type=float, default=None,
                    help="with --traffic: replay the trace X times faster (its timestamps and "

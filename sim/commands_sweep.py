@@ -33,7 +33,7 @@ from typing import IO, Any
 from routerd.errors import InputError, Problem
 
 from . import policies as _policies
-from .commands_simulate import _clean
+from .commands_simulate import _clean, add_config_options, add_packet_options, add_topology_option
 from .run import SimSpec, load_inputs
 from .run import run as run_sim
 
@@ -59,9 +59,7 @@ def t975(df: int) -> float:
 # ---- options ------------------------------------------------------------------------
 
 def configure(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--topology", metavar="FILE", default=None,
-                   help="topology file (.yaml, .graphml, .json) or topohub:GROUP/NAME; "
-                        "default: the config's topology.file, else the built-in demo lab")
+    add_topology_option(p)
     p.add_argument("--policies", metavar="LIST", default=DEFAULT_POLICIES,
                    help=f"comma-separated policies, from {', '.join(_policies.NAMES)} "
                         f"(default {DEFAULT_POLICIES})")
@@ -77,10 +75,7 @@ def configure(p: argparse.ArgumentParser) -> None:
                    help="virtual seconds per run (default 20)")
     p.add_argument("--warmup", metavar="S", type=float, default=None,
                    help="statistics cover packets injected after this (default: a tenth of --duration)")
-    p.add_argument("--packet-bytes", metavar="B", type=float, default=1000.0,
-                   help="packet size in bytes (the mean with --size-dist exp; default 1000)")
-    p.add_argument("--size-dist", choices=("fixed", "exp"), default="fixed",
-                   help="packet sizes fixed or exponentially distributed (default fixed)")
+    add_packet_options(p)
     p.add_argument("--demands", action="store_true",
                    help="pick pairs in proportion to the topology's demand matrix (default uniform)")
     p.add_argument("--scenario", metavar="FILE", default=None,
@@ -88,13 +83,7 @@ def configure(p: argparse.ArgumentParser) -> None:
     p.add_argument("--jobs", metavar="N", type=int, default=None,
                    help="worker processes (default: one per CPU, at most one per run; 1 = no pool)")
     p.add_argument("--out", metavar="DIR", required=True, help="output directory (created)")
-    p.add_argument("--config", metavar="FILE", default=None, help="routerd config file")
-    p.add_argument("--set", metavar="KEY=VALUE", action="append", default=[], dest="overrides",
-                   help="override one config setting for every run (repeatable)")
-    p.add_argument("--capacity-bps", type=float, default=None,
-                   help="capacity for links whose topology gives none (topohub files)")
-    p.add_argument("--buffer-pkts", type=int, default=None,
-                   help="buffer for links whose topology gives none (topohub files)")
+    add_config_options(p, "override one config setting for every run (repeatable)")
     p.add_argument("--log-y", action="store_true", help="logarithmic delivery-time axis")
     p.add_argument("--no-plot", action="store_true", help="write the table only (no matplotlib)")
     p.add_argument("--quiet", action="store_true", help="no progress bar on stderr")
