@@ -65,7 +65,10 @@ def plot_delivery(result: dict[str, Any], path: str) -> str:
     if summ.get("warmup_s", 0) > 0:
         ax.axvline(summ["warmup_s"], color="grey", ls=":", lw=1)
         ax.text(summ["warmup_s"], ax.get_ylim()[1], " warm-up", va="top", fontsize=8, color="grey")
+    end_s = float(summ.get("duration_s", np.inf))
     for ev in result.get("link_events", []):
+        if ev["t_s"] > end_s:   # scheduled after the run ended: it never happened
+            continue
         ax.axvline(ev["t_s"], color="tab:green" if ev["action"] == "up" else "tab:purple",
                    ls="--", lw=1)
         label = ev["links"][0].replace("->", "-") if ev["links"] else ""
