@@ -428,6 +428,7 @@ def plot(points: Sequence[Mapping[str, Any]], meta: Mapping[str, Any], out: str,
     ax.legend(fontsize=8)
     ax2.set_xlabel("offered load (packets/s)")
     ax2.set_ylabel("lost (%)")
+    ax2.set_ylim(bottom=0)   # a loss share is never negative (matplotlib centres an all-zero line on 0)
     ax2.grid(True, alpha=0.3)
     fig.tight_layout()
     path = os.path.join(out, "sweep.png")
