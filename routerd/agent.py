@@ -59,6 +59,13 @@ reports (bounded, oldest dropped and counted), and resynchronises when the servi
 back: a new epoch's table replaces the old one, pending batches are resent with their
 numbers (the service applies each once), and links it sees down are reported again.
 
+CURVE: with ``agent.client_key`` and ``agent.server_key`` set, the agent's ingest and
+table sockets are CURVE clients (:class:`routerd.security.ClientKeys`) of a service
+started with ``--server-key``/``--allow``; its batches carry the reporter name
+``agent.reporter`` (default ``agent/NODE``), which must be its allow-file entry, and that
+entry must list the node.  A rate_limited or unavailable refusal keeps the batch and
+sends it again after a backoff (:mod:`routerd.client`); other refusals are counted.
+
 Propagation: netem is not always available, so with ``agent.propagation: emulate`` a
 packet received on a link is held for that link's ``delay_s`` before it is handled —
 after the sender's queue and rate limiter, as on a real wire.
@@ -279,10 +286,14 @@ class Agent:
         if node not in topo.index:
             raise InputError(Problem("--node", node, f"is not a node of topology {topo.name!r} "
                                      f"({', '.join(topo.nodes)})"))
+        from . import security
+
         self.cfg = cfg
         self.topo = topo
         self.name = node
         self.me = topo.index[node]
+        self.curve = security.client_keys(cfg["agent.client_key"], cfg["agent.server_key"], "agent")
+        self.reporter_name = cfg["agent.reporter"] or f"agent/{node}"
         self.tag = ov.topology_tag(topo.digest)
         self.m = AgentMetrics(registry)
         if underlay is None:
@@ -373,10 +384,12 @@ class Agent:
             self.close()
             raise InputError(f"agent {self.name}: cannot bind its sockets: {e}") from None
         self._recompute_fallback()
-        self.sub = TableSubscriber(self.cfg["service.publish"], [self.name], context=ctx)
-        self.reporter = Reporter(self.cfg["service.ingest"], f"agent/{self.name}",
+        self.sub = TableSubscriber(self.cfg["service.publish"], [self.name], context=ctx,
+                                   curve=self.curve)
+        self.reporter = Reporter(self.cfg["service.ingest"], self.reporter_name,
                                  topology_nodes=self.topo, batch_rows=self.cfg["agent.report_batch_rows"],
-                                 timeout_s=2.0, retries=3, context=ctx, on_ack=self._on_ack)
+                                 timeout_s=2.0, retries=3, context=ctx, on_ack=self._on_ack,
+                                 curve=self.curve)
         self.poller = zmq.Poller()
         for ln in self.links.values():
             self.poller.register(ln.sock.fileno(), zmq.POLLIN)
@@ -847,7 +860,11 @@ class Agent:
             "nonstop": self.nonstop, "service_reachable": self.service_reachable(now),
             "report": {"buffered_rows": len(self.rows),
                        "pending_batches": self.reporter.pending if self.reporter else 0,
-                       "accepted": self.reporter.accepted if self.reporter else 0},
+                       "accepted": self.reporter.accepted if self.reporter else 0,
+                       "deferred": dict(self.reporter.deferred) if self.reporter else {},
+                       "refused": dict(self.reporter.refused) if self.reporter else {},
+                       "last_error": self.reporter.last_error if self.reporter else None,
+                       "curve": self.curve is not None},
             "flowlets": len(self.flowlets),
         }
 
@@ -904,10 +921,14 @@ def load(args: argparse.Namespace) -> tuple[Any, Any]:
 
     ns = argparse.Namespace(config=args.config, topology=None)
     cfg = _service.load_config(ns)
-    ul = cfg["agent.underlay"]
-    if ul and not os.path.isabs(ul):
-        cfg = cfg.with_overrides({"agent.underlay": os.path.normpath(os.path.join(
-            os.path.dirname(os.path.abspath(args.config)), ul))}, where=f"{args.config}")
+    from .security import is_key_text
+
+    here = os.path.dirname(os.path.abspath(args.config)) if args.config else os.getcwd()
+    rel = {k: os.path.normpath(os.path.join(here, v))
+           for k in ("agent.underlay", "agent.client_key", "agent.server_key")
+           if (v := cfg[k]) and not os.path.isabs(v) and not is_key_text(v)}
+    if rel:
+        cfg = cfg.with_overrides(rel, where=f"{args.config}")
     if getattr(args, "metrics", None):
         cfg = cfg.with_overrides({"agent.metrics": args.metrics}, where="--metrics")
     return cfg, _service.load_topology(cfg)

@@ -17,10 +17,29 @@ bounded: at most ``max_pending`` unacknowledged batches of at most ``batch_rows`
 full, adding rows **blocks** until an acknowledgement frees a place, and raises
 :class:`DeliveryError` if none comes within the retry budget.  LINGER is 0 on every socket:
 delivery is certain once acknowledged, never because something was queued at exit.
+
+Refusals.  A batch refused whole with a code of :data:`DEFER_CODES` (``rate_limited``: the
+reporter is over its token bucket; ``unavailable``: the service cannot store it now) was
+not applied and is kept: the reporter holds back every transmission for a backoff
+(``backoff_s`` doubling per refusal of that batch, at most ``backoff_max_s``, with ±25 %
+jitter from a per-reporter generator), then resends it with the *same* number.  A batch
+refused so more than ``max_deferrals`` times raises :class:`DeliveryError` and stays
+pending, as after the retry budget.  Any other whole-batch refusal is final: the batch is
+dropped, counted in ``refused`` by code (``refused_rows``, ``refused_batches`` keep the
+numbers, ``last_error`` the text) and :class:`ServiceError` is raised.  Deferred batches
+count towards ``max_pending`` like any other, so the memory bound is unchanged; a
+deferred batch may be applied after later ones (as after a lost acknowledgement).
+
+CURVE.  ``curve=`` (:class:`routerd.security.ClientKeys`: our key pair and the service's
+public key) on :class:`Reporter`, :class:`TableSubscriber` and :func:`control` makes every
+socket a CURVE client before it connects.  A key the service does not allow, or the wrong
+service key, cannot be told apart from an absent service: the handshake fails and nothing
+is answered, so those calls time out (the messages say so).
 """
 from __future__ import annotations
 
 import math
+import random
 import time
 from collections import Counter, deque
 from collections.abc import Callable, Mapping, Sequence
@@ -30,16 +49,21 @@ from typing import Any
 import numpy as np
 import zmq
 
-from . import wire
+from . import security, wire
+
+#: Whole-batch refusal codes after which the batch is kept and sent again later.
+DEFER_CODES: tuple[str, ...] = ("rate_limited", "unavailable")
 
 
 class DeliveryError(Exception):
-    """Batches were not acknowledged within the retry budget (the service is unreachable
-    or too slow).  ``batches`` lists their numbers; they stay pending."""
+    """Batches were not acknowledged within the retry budget (the service is unreachable,
+    too slow, or kept refusing them as rate_limited / unavailable).  ``batches`` lists their
+    numbers; they stay pending.  ``last_error``: the service's last refusal, if any."""
 
-    def __init__(self, msg: str, batches: Sequence[int] = ()):
+    def __init__(self, msg: str, batches: Sequence[int] = (), last_error: str | None = None):
         super().__init__(msg)
         self.batches = list(batches)
+        self.last_error = last_error
 
 
 class ServiceError(Exception):
@@ -64,22 +88,30 @@ class Ack:
     rejected: tuple[tuple[int, str], ...]
 
 
-def _socket(ctx: zmq.Context, kind: int) -> zmq.Socket:
+def _socket(ctx: zmq.Context, kind: int, curve: security.ClientKeys | None = None) -> zmq.Socket:
     s = ctx.socket(kind)
     s.linger = 0                       # never block close/term on what is still queued
     s.setsockopt(zmq.RECONNECT_IVL, 100)
     s.setsockopt(zmq.RECONNECT_IVL_MAX, 2000)
     s.setsockopt(zmq.MAXMSGSIZE, 64 * 1024 * 1024)
+    if curve is not None:
+        curve.apply(s)                 # before connect: the handshake starts there
     return s
 
 
+def _curve_hint(curve: security.ClientKeys | None) -> str:
+    return ("" if curve is None else " (CURVE on: a key the service does not allow, or the "
+            "wrong service key, looks the same as no service)")
+
+
 def control(endpoint: str, request: Mapping[str, Any], timeout_s: float = 2.0, *,
-            context: zmq.Context | None = None) -> dict[str, Any]:
+            context: zmq.Context | None = None,
+            curve: security.ClientKeys | None = None) -> dict[str, Any]:
     """One control request → its reply map (which may hold ``"error"``).  A fresh REQ
     socket with LINGER 0 each time, so a dead service costs ``timeout_s`` and never hangs.
     Raises TimeoutError when no reply arrives in time, wire.BadReply on a malformed one."""
     ctx = context or zmq.Context.instance()
-    s = _socket(ctx, zmq.REQ)
+    s = _socket(ctx, zmq.REQ, curve)
     try:
         s.connect(endpoint)
         try:
@@ -87,11 +119,11 @@ def control(endpoint: str, request: Mapping[str, Any], timeout_s: float = 2.0, *
         except zmq.Again:
             if not s.poll(int(timeout_s * 1000), zmq.POLLOUT):
                 raise TimeoutError(f"could not send op {request.get('op')!r} to {endpoint} "
-                                   f"within {timeout_s} s") from None
+                                   f"within {timeout_s} s{_curve_hint(curve)}") from None
             s.send(wire.encode_request(request))
         if not s.poll(int(timeout_s * 1000), zmq.POLLIN):
             raise TimeoutError(f"no reply from {endpoint} to op {request.get('op')!r} "
-                               f"within {timeout_s} s")
+                               f"within {timeout_s} s{_curve_hint(curve)}")
         return wire.decode_reply(s.recv())
     finally:
         s.close()
@@ -106,6 +138,8 @@ class _Pending:
     cols: tuple[np.ndarray, ...] | None      # columnar: (src, via, dst, lat, est) indices
     links: list[list[Any]]
     nodes: tuple[str, ...] | None
+    deferrals: int = 0                       # rate_limited / unavailable replies so far
+    deferred: bool = False                   # refused for now: resend after the backoff
 
 
 class Reporter:
@@ -114,6 +148,8 @@ class Reporter:
     ``endpoint``: the service's ingest endpoint.  Columnar (default) needs the node list:
     ``topology_nodes`` (a Topology, or names with ``topology_id``, else the id is computed
     from the names) or ``control`` (the control endpoint, asked ``{"op": "nodes"}``).
+    ``curve``: client CURVE keys for both endpoints.  ``backoff_s``, ``backoff_max_s``,
+    ``max_deferrals``: the handling of rate_limited / unavailable refusals (module docstring).
     """
 
     def __init__(self, endpoint: str, reporter_name: str, *,
@@ -121,11 +157,21 @@ class Reporter:
                  control: str | None = None, columnar: bool = True, batch_rows: int = 1024,
                  max_pending: int = 16, timeout_s: float = 2.0, retries: int = 5,
                  first_batch: int | None = None, context: zmq.Context | None = None,
-                 on_ack: Callable[[Ack], None] | None = None):
+                 on_ack: Callable[[Ack], None] | None = None,
+                 curve: security.ClientKeys | None = None, backoff_s: float = 0.05,
+                 backoff_max_s: float = 2.0, max_deferrals: int = 30):
         if not reporter_name or len(reporter_name) > wire.MAX_REPORTER_LEN:
             raise ValueError(f"reporter name {reporter_name!r} must be 1..{wire.MAX_REPORTER_LEN} characters")
         if batch_rows < 1 or max_pending < 1 or timeout_s <= 0 or retries < 0:
             raise ValueError("batch_rows and max_pending must be >= 1, timeout_s > 0, retries >= 0")
+        if not 0 < backoff_s <= backoff_max_s or max_deferrals < 0:
+            raise ValueError("need 0 < backoff_s <= backoff_max_s and max_deferrals >= 0")
+        self.curve = curve
+        self.backoff_s = float(backoff_s)
+        self.backoff_max_s = float(backoff_max_s)
+        self.max_deferrals = int(max_deferrals)
+        self._hold_until = 0.0                # monotonic: no transmissions before this
+        self._last_reply = -math.inf
         self.endpoint = endpoint
         self.name = reporter_name
         self.columnar = columnar
@@ -152,7 +198,14 @@ class Reporter:
         self.rejected: Counter[str] = Counter()
         self.late_acks = 0
         self.last_ack: Ack | None = None
-        self._sock = _socket(self._ctx, zmq.DEALER)
+        self.deferred: Counter[str] = Counter()     # rate_limited / unavailable replies
+        self.refused: Counter[str] = Counter()      # final whole-batch refusals, by code
+        self.refused_rows = 0
+        self.refused_batches: deque[tuple[int | None, str, int]] = deque(maxlen=64)
+        self.last_error: str | None = None          # the latest refusal's full text
+        # jitter of the backoff: a generator of our own (no global random state)
+        self._rng = random.Random(f"{reporter_name}/{self._next_batch}")
+        self._sock = _socket(self._ctx, zmq.DEALER, curve)
         self._sock.sndhwm = max(2 * max_pending, 16)
         self._sock.rcvhwm = max(2 * max_pending, 16)
         self._sock.connect(endpoint)
@@ -164,7 +217,8 @@ class Reporter:
                 raise ValueError("the columnar format needs the service's node list: pass "
                                  "control=<control endpoint> or topology_nodes=..., "
                                  "or use columnar=False")
-            rep = control(self.control_endpoint, {"op": "nodes"}, self.timeout_s, context=self._ctx)
+            rep = control(self.control_endpoint, {"op": "nodes"}, self.timeout_s,
+                          context=self._ctx, curve=self.curve)
             if "error" in rep or not isinstance(rep.get("nodes"), list):
                 raise ServiceError(f"op 'nodes' answered {rep!r}")
             nodes, tid = rep["nodes"], rep["topology"]
@@ -255,6 +309,8 @@ class Reporter:
         self._transmit(b, p)
 
     def _transmit(self, b: int, p: _Pending) -> None:
+        if time.monotonic() < self._hold_until:
+            return  # the service asked us to wait (rate_limited / unavailable): the pump sends it later
         try:
             self._sock.send_multipart([b"", p.frame], flags=zmq.NOBLOCK, copy=False)
         except zmq.Again:
@@ -265,25 +321,36 @@ class Reporter:
             self.batches_sent += 1
         p.sent_at = time.monotonic()
         p.attempts += 1
+        p.deferred = False
 
     def _wait_for_room(self) -> None:
         if len(self._pending) < self.max_pending:
             return
-        deadline = time.monotonic() + self.timeout_s * (self.retries + 1)
+        budget = self.timeout_s * (self.retries + 1)
+        start = time.monotonic()
+        full = (f"no room for another batch: {len(self._pending)} batches pending at "
+                f"{self.endpoint} (the limit is {self.max_pending})")
         while len(self._pending) >= self.max_pending:
-            left = deadline - time.monotonic()
+            # any reply (a refusal to be sent again later too) shows the service is there:
+            # the budget runs from the latest one; max_deferrals bounds endless refusals
+            left = max(start, self._last_reply) + budget - time.monotonic()
             if left <= 0:
-                raise DeliveryError(
-                    f"{len(self._pending)} batches pending at {self.endpoint} (the limit is "
-                    f"{self.max_pending}) and none acknowledged within "
-                    f"{self.timeout_s * (self.retries + 1):g} s", list(self._pending))
-            self.pump(min(left, self.timeout_s / 4))
+                raise DeliveryError(f"{full} and none acknowledged within {budget:g} s"
+                                    f"{_curve_hint(self.curve)}", list(self._pending),
+                                    self.last_error)
+            try:
+                self.pump(min(left, self.timeout_s / 4))
+            except DeliveryError as e:   # a pending batch ran out of its budget first
+                raise DeliveryError(f"{full}: {e}", e.batches, e.last_error) from None
 
     def pump(self, timeout_s: float = 0.0) -> int:
         """Take acknowledgements for up to ``timeout_s`` and resend overdue batches.
         Returns the number of replies handled."""
         handled = 0
         wait_ms = max(0, int(timeout_s * 1000))
+        hold = self._hold_until - time.monotonic()
+        if hold > 0 and any(p.deferred for p in self._pending.values()):
+            wait_ms = min(wait_ms, max(1, math.ceil(hold * 1000)))   # resend when the hold ends
         while self._sock.poll(wait_ms, zmq.POLLIN):
             frames = self._sock.recv_multipart()
             self._reply(frames[-1])
@@ -294,17 +361,12 @@ class Reporter:
 
     def _reply(self, data: bytes) -> None:
         rep = wire.decode_reply(data)
+        self._last_reply = time.monotonic()
         b = rep.get("batch")
         if "error" in rep:
-            reason = str(rep["error"])
-            bn = b if isinstance(b, int) else None
-            p = self._pending.get(bn) if bn is not None else None
-            if bn is not None and p is not None:
-                if reason.startswith("wrong_topology") and p.cols is not None:
-                    self._reencode_named(bn, p)
-                    return
-                self._drop(bn)
-            raise ServiceError(reason, bn)
+            self._refusal(str(rep["error"]), b if isinstance(b, int) and not isinstance(b, bool)
+                          else None)
+            return
         if not isinstance(b, int) or b not in self._pending:
             self.late_acks += 1
             return
@@ -316,6 +378,44 @@ class Reporter:
         self.last_ack = ack
         if self.on_ack is not None:
             self.on_ack(ack)
+
+    def _refusal(self, reason: str, bn: int | None) -> None:
+        """A whole-batch refusal: kept for later (:data:`DEFER_CODES`), resent by name
+        (``wrong_topology`` of a columnar batch), or final (dropped, counted, raised)."""
+        code = reason.split(":", 1)[0]
+        p = self._pending.get(bn) if bn is not None else None
+        if bn is not None and p is None:
+            self.late_acks += 1   # a copy of a batch already acknowledged
+            return
+        if bn is not None and p is not None:
+            if code in DEFER_CODES:
+                self._defer(bn, p, code, reason)
+                return
+            if code == "wrong_topology" and p.cols is not None:
+                self._reencode_named(bn, p)
+                return
+        self.refused[code] += 1
+        self.last_error = reason
+        if bn is not None and p is not None:
+            self.refused_rows += p.rows
+            self.refused_batches.append((bn, reason, p.rows))
+            self._drop(bn)
+        raise ServiceError(reason, bn)
+
+    def _defer(self, b: int, p: _Pending, code: str, reason: str) -> None:
+        """Keep batch ``b``; hold every transmission back for the backoff."""
+        self.deferred[code] += 1
+        self.last_error = reason
+        p.deferrals += 1
+        p.deferred = True
+        p.attempts = 0            # the service answered: the timeout budget starts afresh
+        delay = self.backoff_s * 2.0 ** min(p.deferrals - 1, 40) * (0.75 + 0.5 * self._rng.random())
+        self._hold_until = max(self._hold_until, time.monotonic() + min(delay, self.backoff_max_s))
+        if p.deferrals > self.max_deferrals:
+            n = p.deferrals
+            p.deferrals = 0       # a later flush() starts a fresh budget
+            raise DeliveryError(f"batch {b} refused {n} times by {self.endpoint} ({code}); it "
+                                f"stays pending.  Last reply: {reason}", [b], reason)
 
     def _drop(self, b: int) -> None:
         del self._pending[b]
@@ -347,7 +447,7 @@ class Reporter:
         failed = []
         for b in list(self._order):
             p = self._pending[b]
-            if p.sent_at is None:
+            if p.sent_at is None or p.deferred:
                 self._transmit(b, p)
             elif now - p.sent_at >= self.timeout_s:
                 if p.attempts > self.retries:
@@ -358,8 +458,8 @@ class Reporter:
             for b in failed:
                 self._pending[b].attempts = 0   # a later flush() starts a fresh budget
             raise DeliveryError(f"batches {failed[:5]}{'...' if len(failed) > 5 else ''} not "
-                                f"acknowledged by {self.endpoint} after {self.retries} resends",
-                                failed)
+                                f"acknowledged by {self.endpoint} after {self.retries} resends"
+                                f"{_curve_hint(self.curve)}", failed, self.last_error)
 
     # ---- finishing ----------------------------------------------------------------------------
     @property
@@ -406,13 +506,15 @@ class TableSubscriber:
     Gap detection: within one ``epoch`` (one service run) ``seq`` rises by one per node per
     publication; a jump of k counts k - 1 missed publications in ``gaps[node]``.  A new
     epoch resets the count base (``restarts``); a ``seq`` that does not rise is counted in
-    ``stale``.
+    ``stale``.  ``curve``: client CURVE keys (a subscriber the service does not allow
+    receives nothing).
     """
 
     def __init__(self, endpoint: str, nodes: Sequence[str] | None = None, *,
-                 context: zmq.Context | None = None, max_drain: int = 100_000):
+                 context: zmq.Context | None = None, max_drain: int = 100_000,
+                 curve: security.ClientKeys | None = None):
         self._ctx = context or zmq.Context.instance()
-        self._sock = _socket(self._ctx, zmq.SUB)
+        self._sock = _socket(self._ctx, zmq.SUB, curve)
         self._sock.rcvhwm = 100_000
         # topics match by prefix ("tables/w1" also matches "tables/w10"): keep the set to
         # drop what a prefix lets through

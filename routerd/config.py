@@ -108,6 +108,9 @@ SCHEMA: dict[str, Field] = {
     "sim.service.speed": F(float, 1.0, "closed loop: virtual seconds per wall-clock second (1 = real time)", lo=0.01, hi=1000),
     "sim.service.estimate_nodes": F(int, 0, "closed loop: nodes whose estimates are fetched from the service per decision interval, round robin (0 = all)", lo=0),
     "sim.service.timeout_s": F(float, 5.0, "closed loop: how long to wait for the service's acknowledgements and control replies", lo=0, lo_open=True),
+    "sim.service.client_key": F(str, None, "closed loop with a named CURVE service (--policy service:ENDPOINTS): the simulator's secret certificate NAME.key_secret; with sim.service.server_key", nullable=True),
+    "sim.service.server_key": F(str, None, "closed loop: the CURVE service's public key, its NAME.key file or the Z85 text", nullable=True),
+    "sim.service.reporter": F(str, None, "closed loop: reporter name in the batches; with CURVE its allow-file entry, which must list every node (default sim-PID-N)", nullable=True),
     # -- agent (routerd agent: one per overlay node) -------------------------------------
     "agent.underlay": F(str, None, "underlay map: the UDP address of each end of each overlay link (relative to the config file)", nullable=True),
     "agent.local": F(str, "127.0.0.1:7400", "UDP HOST:PORT where local applications hand the agent overlay packets"),
@@ -124,6 +127,9 @@ SCHEMA: dict[str, Field] = {
     "agent.table_stale_s": F(float, 6.0, "no table and no acknowledgement for this long: the service counts as unreachable (non-stop forwarding)", lo=0, lo_open=True),
     "agent.hold_max_pkts": F(int, 100000, "packets held at once for emulated propagation (beyond: dropped, counted)", lo=1),
     "agent.seed": F(int, 0, "seed of the weighted next-hop choice (mixed with the node index)", lo=0),
+    "agent.client_key": F(str, None, "the agent's CURVE secret certificate NAME.key_secret (relative to the config file); with agent.server_key: CURVE to a service started with --server-key", nullable=True),
+    "agent.server_key": F(str, None, "the service's CURVE public key: its NAME.key file (relative to the config file) or the Z85 text", nullable=True),
+    "agent.reporter": F(str, None, "reporter name in the agent's batches; with CURVE the agent's entry in the service's allow file (default agent/NODE)", nullable=True),
     # -- plausibility guards (routerd/guards.py), applied by the service before the engine --
     "guards.floor_fraction": F(float, 1.0, "a hop latency below this fraction of the link's propagation delay (or an estimate below it of the shortest propagation distance) is rejected as below_floor (0 = off)", lo=0, hi=1, tunable=True),
     "guards.ceiling_s": F(float, 60.0, "a hop latency or estimate above this is rejected as above_ceiling (0 = off)", lo=0, tunable=True),

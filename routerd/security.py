@@ -3,8 +3,9 @@
 Owns: CURVE key pairs (``routerd keys``, ZeroMQ's certificate format through
 ``zmq.auth.create_certificates``), the allow file (reporter name → public key and the
 nodes it may report for), the ZAP authenticator set-up (``zmq.auth.ThreadAuthenticator``
-with a credentials callback over the allow file), the server-side socket options, and
-the authorisation rules applied to a decoded batch.
+with a credentials callback over the allow file), the server- and client-side socket
+options (:class:`ClientKeys`: a client's keys, loaded once), and the authorisation rules
+applied to a decoded batch.
 
 Must not import: the engine's state, the simulator, the service, prometheus.  Imports
 zmq only inside the functions that need it (the rules themselves are pure).
@@ -311,6 +312,12 @@ def load_allow(path: str, topo: Topology) -> Allow:
     return Allow(path, out)
 
 
+def is_key_text(s: str) -> bool:
+    """True when ``s`` is a Z85 CURVE key itself (40 characters decoding to 32 bytes),
+    not the path of a key file."""
+    return len(s) == _Z85_KEY_LEN and _is_z85_key(s)
+
+
 def _is_z85_key(s: str) -> bool:
     from zmq.utils import z85
 
@@ -341,15 +348,55 @@ def make_server(sock: Any, public: bytes, secret: bytes) -> None:
     sock.setsockopt(zmq.CURVE_SERVER, 1)
 
 
+@dataclass(frozen=True, slots=True)
+class ClientKeys:
+    """Client side of CURVE, loaded once: our Z85 key pair and the service's Z85 public
+    key.  :meth:`apply` sets them on a socket before ``connect``; ``source`` names the
+    files for messages.  Build with :meth:`load` (or :func:`client_keys` from config)."""
+
+    public: bytes
+    secret: bytes
+    server_public: bytes
+    source: str = ""
+
+    @classmethod
+    def load(cls, secret_file: str, server_key: str | bytes) -> ClientKeys:
+        """From our ``NAME.key_secret`` file and the service's public key: its ``NAME.key``
+        file or the Z85 text itself.  Raises :class:`InputError` naming the file."""
+        pub, sec = read_secret(secret_file)
+        if isinstance(server_key, bytes):
+            server_key = server_key.decode("ascii", "replace")
+        if is_key_text(server_key):
+            spub, where = server_key.encode(), "Z85 text"
+        else:
+            spub, where = read_public(server_key), server_key
+        return cls(pub, sec, spub, f"{secret_file} -> service key {where}")
+
+    def apply(self, sock: Any) -> None:
+        """CURVE client options on ``sock`` — call before ``connect``."""
+        import zmq
+
+        sock.setsockopt(zmq.CURVE_SECRETKEY, self.secret)
+        sock.setsockopt(zmq.CURVE_PUBLICKEY, self.public)
+        sock.setsockopt(zmq.CURVE_SERVERKEY, self.server_public)
+
+
+def client_keys(client_key: str | None, server_key: str | None, where: str) -> ClientKeys | None:
+    """Client CURVE from a pair of config values (``where``: their common key prefix, e.g.
+    ``agent``): both set → :class:`ClientKeys`, neither → None, one → InputError."""
+    if not client_key and not server_key:
+        return None
+    if not client_key or not server_key:
+        have, need = ("client_key", "server_key") if client_key else ("server_key", "client_key")
+        raise InputError(f"{where}.{have} is set without {where}.{need}: client CURVE needs "
+                         f"both (our NAME.key_secret and the service's NAME.key or Z85 key)")
+    return ClientKeys.load(client_key, server_key)
+
+
 def make_client(sock: Any, secret_file: str, server_public: bytes) -> None:
     """CURVE client options on ``sock`` from a ``NAME.key_secret`` file and the service's
     Z85 public key — call before ``connect``."""
-    import zmq
-
-    pub, sec = read_secret(secret_file)
-    sock.setsockopt(zmq.CURVE_SECRETKEY, sec)
-    sock.setsockopt(zmq.CURVE_PUBLICKEY, pub)
-    sock.setsockopt(zmq.CURVE_SERVERKEY, server_public)
+    ClientKeys.load(secret_file, server_public).apply(sock)
 
 
 def user_id(frame: Any) -> str | None:

@@ -50,6 +50,12 @@ stretched by the speed factor in virtual time.  Under steady load this costs not
 measurable; around a link failure it shows as the packets that still go to the dead
 link until the new tables arrive.
 
+A CURVE-secured service (``routerd serve --server-key ... --allow ...``) is named with
+``--policy service:ENDPOINTS`` as any other, plus ``sim.service.client_key`` (our
+``NAME.key_secret``) and ``sim.service.server_key`` (its ``NAME.key`` or Z85 key): every
+socket of the policy is then a CURVE client.  The batches carry ``sim.service.reporter``,
+whose allow-file entry must list every node (the simulator reports for all of them).
+
 The service this module starts runs ``routerd serve`` as a child process on ipc://
 endpoints in a private temporary directory, with the run's topology (written out in our
 YAML format) and config.  It is stopped by :meth:`ServiceProcess.stop` (SIGTERM, then
@@ -316,10 +322,11 @@ class _Control:
     """Control requests over one DEALER socket: several in flight, answered in order by
     the service's REP socket (one per loop turn), without a round trip each."""
 
-    def __init__(self, ctx: Any, endpoint: str, timeout_s: float):
+    def __init__(self, ctx: Any, endpoint: str, timeout_s: float, curve: Any = None):
         self.ctx = ctx
         self.endpoint = endpoint
         self.timeout_s = timeout_s
+        self.curve = curve          # routerd.security.ClientKeys or None
         self.sock: Any = None
         self._open()
 
@@ -328,6 +335,8 @@ class _Control:
 
         self.sock = self.ctx.socket(zmq.DEALER)
         self.sock.linger = 0
+        if self.curve is not None:
+            self.curve.apply(self.sock)
         self.sock.connect(self.endpoint)
 
     def ask(self, reqs: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]]:
@@ -406,10 +415,18 @@ class ServicePolicy(Policy):
         super().attach(topology, rng, settings)
         import zmq
 
+        from routerd import security
         from routerd.client import Reporter, TableSubscriber
 
         cfg = settings if settings is not None else _config.load()
         self.cfg = cfg
+        curve = security.client_keys(cfg["sim.service.client_key"], cfg["sim.service.server_key"],
+                                     "sim.service")
+        if curve is not None and self.endpoints_given is None:
+            raise InputError(Problem("sim.service.client_key", cfg["sim.service.client_key"],
+                                     "is for a CURVE service named with --policy "
+                                     "service:ENDPOINTS; the service a run starts itself has "
+                                     "no CURVE"))
         self.tick_interval_s = self._tick = float(cfg["sim.decision_interval_s"])
         self.instant = cfg["sim.feedback"] == "instant"
         self.estimate_mode = cfg["sim.estimate"]
@@ -433,25 +450,29 @@ class ServicePolicy(Policy):
             eps = self.process.endpoints_spec()
         self.endpoints = eps
         self._ctx = zmq.Context()
-        self._ctl = _Control(self._ctx, eps.control, self.timeout_s)
+        self._ctl = _Control(self._ctx, eps.control, self.timeout_s, curve)
         where = f"--policy service:{eps.spec()}"
         try:
             nodes = self._ask([{"op": "nodes"}])[0]
         except TimeoutError:
             self.close()
+            hint = ("" if curve is None else " (CURVE on: or the service does not allow "
+                    "sim.service.client_key, or sim.service.server_key is not its key)")
             raise InputError(Problem(where, eps.control, f"no routerd serve answered there within "
-                                     f"{self.timeout_s:g} s")) from None
+                                     f"{self.timeout_s:g} s{hint}")) from None
         if nodes.get("topology") != topology.digest:
             self.close()
             raise InputError(Problem(where, nodes.get("topology"),
                                      f"is the topology id the service serves; this run simulates "
                                      f"{topology.name!r} (id {topology.digest}): start the service "
                                      f"with the same topology"))
-        self.subscriber = TableSubscriber(eps.publish, context=self._ctx)
-        self.reporter = Reporter(eps.ingest, f"sim-{os.getpid()}-{id(self) & 0xFFFF:x}",
+        self.subscriber = TableSubscriber(eps.publish, context=self._ctx, curve=curve)
+        self.reporter = Reporter(eps.ingest, cfg["sim.service.reporter"]
+                                 or f"sim-{os.getpid()}-{id(self) & 0xFFFF:x}",
                                  topology_nodes=topology, batch_rows=1 << 20, max_pending=4,
                                  # three tries in all within sim.service.timeout_s
-                                 timeout_s=self.timeout_s / 3, retries=2, context=self._ctx)
+                                 timeout_s=self.timeout_s / 3, retries=2, context=self._ctx,
+                                 curve=curve)
         # propagation delay of each link: when the row is due back at the sender
         self._prop: list[dict[int, float]] = [{} for _ in range(n)]
         for k, (a, b) in enumerate(zip(topology.src.tolist(), topology.dst.tolist())):

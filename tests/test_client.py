@@ -1,6 +1,7 @@
 """routerd.client against a small in-test fake service (ROUTER + REP threads on ipc://)
-that decodes with routerd.wire and acknowledges.  The real daemon's end-to-end tests
-live with the service."""
+that decodes with routerd.wire and acknowledges; and, marked slow, against a real
+``routerd serve`` for what only the daemon does: CURVE and its token-bucket rate limit.
+The daemon's own end-to-end tests live with the service."""
 from __future__ import annotations
 
 import shutil
@@ -13,8 +14,9 @@ from typing import Any
 import numpy as np
 import pytest
 import zmq
+from service_harness import ServiceProc, service_args, short_base
 
-from routerd import client, topology, wire
+from routerd import client, security, topology, wire
 
 DEMO = "routerd/data/demo-lab.yaml"
 
@@ -28,7 +30,11 @@ def topo() -> topology.Topology:
 def ctx() -> Iterator[zmq.Context]:
     c = zmq.Context()
     yield c
-    c.term()      # hangs if any socket was left open with linger: a test of its own
+    # every socket the client made must be closed by now (term would hang on an open one;
+    # destroy closes what a failed test left open, so a failure never hangs the suite)
+    left = [s for s in list(getattr(c, "_sockets", ())) if not s.closed]
+    c.destroy(linger=0)
+    assert not left, f"{len(left)} sockets left open"
 
 
 @pytest.fixture()
@@ -44,8 +50,14 @@ class FakeService:
 
     def __init__(self, ctx: zmq.Context, topo: topology.Topology, ingest: str, control: str,
                  *, drop_acks: int = 0, hold: bool = False, error: str | None = None,
-                 nodes_topo: topology.Topology | None = None):
+                 nodes_topo: topology.Topology | None = None, defer: str | None = None,
+                 defer_copies: int = 0):
+        """``defer``: a refusal the first ``defer_copies`` copies of each batch get (not
+        applied, as the service's rate_limited / unavailable); -1: every copy."""
         self.topo, self.drop_acks, self.hold, self.error = topo, drop_acks, hold, error
+        self.defer, self.defer_copies = defer, defer_copies
+        self.arrivals: dict[tuple[str, int], list[float]] = {}
+        self.deferred = 0
         self.nodes_topo = nodes_topo or topo
         self.router = ctx.socket(zmq.ROUTER)
         self.router.linger = 0
@@ -93,6 +105,11 @@ class FakeService:
             return wire.encode_error(self.error, ing.batch)
         key = (ing.reporter, ing.batch)
         self.copies[key] = self.copies.get(key, 0) + 1
+        self.arrivals.setdefault(key, []).append(time.monotonic())
+        if self.defer is not None and key not in self.applied and (
+                self.defer_copies < 0 or self.copies[key] <= self.defer_copies):
+            self.deferred += 1
+            return wire.encode_error(self.defer, ing.batch)
         if key not in self.applied:
             self.applied[key] = ing
             self.order.append(key)
@@ -268,15 +285,88 @@ def test_wrong_topology_resent_by_name(ctx: zmq.Context, topo: topology.Topology
     assert [svc.applied[k].columnar for k in svc.order] == [False, True]
 
 
-def test_whole_batch_error_raises(ctx: zmq.Context, topo: topology.Topology,
-                                  eps: tuple[str, str, str], fake: Any) -> None:
-    fake(error="bad_reporter: field 'reporter' is 'p', which this service does not accept")
+def test_whole_batch_error_is_final_counted_and_kept(ctx: zmq.Context, topo: topology.Topology,
+                                                     eps: tuple[str, str, str], fake: Any) -> None:
+    text = "bad_reporter: field 'reporter' is 'p', which this service does not accept"
+    svc = fake(error=text)
     rep = client.Reporter(eps[0], "p", topology_nodes=topo, context=ctx, timeout_s=1.0)
     rep.add_hop("w1", "w2", "w3", 0.001)
+    rep.add_hop("w1", "w2", "e3", 0.001)
     with pytest.raises(client.ServiceError) as ei:
         rep.flush()
-    assert ei.value.reason.startswith("bad_reporter") and ei.value.batch is not None
-    assert rep.pending == 0
+    assert ei.value.reason == text and ei.value.batch is not None
+    assert rep.pending == 0 and rep.resends == 0                 # final: never sent again
+    assert rep.refused == {"bad_reporter": 1} and rep.refused_rows == 2
+    assert list(rep.refused_batches) == [(ei.value.batch, text, 2)]
+    assert rep.last_error == text and not rep.deferred
+    rep.close()
+    assert not svc.applied
+
+
+# ---- refusals to be retried: rate_limited, unavailable ----------------------------------------
+@pytest.mark.parametrize("code", client.DEFER_CODES)
+def test_deferred_batches_kept_and_resent_with_same_number(ctx: zmq.Context, topo: topology.Topology,
+                                                           eps: tuple[str, str, str], fake: Any,
+                                                           code: str) -> None:
+    """The service refuses each batch twice (nothing applied), then takes it: every row is
+    applied once, in batches with their first numbers, after a backoff between copies."""
+    svc = fake(defer=f"{code}: try again later", defer_copies=2)
+    hops = _hops(topo, 300, seed=5)
+    backoff = 0.02
+    with client.Reporter(eps[0], "p", topology_nodes=topo, batch_rows=100, max_pending=2,
+                         timeout_s=1.0, retries=1, backoff_s=backoff, backoff_max_s=0.2,
+                         context=ctx) as rep:
+        for h in hops:
+            rep.add_hop(*h)
+            assert rep.pending <= 2                      # the memory bound holds throughout
+        rep.flush()
+        assert rep.pending == 0 and rep.accepted == 300 and not rep.refused
+        assert rep.deferred == {code: 6} and rep.batches_sent == 3 and rep.resends == 6
+        assert rep.last_error == f"{code}: try again later"
+    assert svc.rows() == hops                            # each row applied once, in order
+    batches = [b for _, b in svc.order]
+    assert batches == list(range(batches[0], batches[0] + 3))
+    assert all(c == 3 for c in svc.copies.values())
+    for times in svc.arrivals.values():
+        # the backoff doubles per refusal of a batch, jitter at most -25 %: lower bounds only
+        gaps = np.diff(times)
+        assert gaps[0] >= 0.75 * backoff and gaps[1] >= 0.75 * 2 * backoff, gaps
+
+
+def test_endless_deferral_raises_keeps_the_batch_and_resumes(ctx: zmq.Context,
+                                                             topo: topology.Topology,
+                                                             eps: tuple[str, str, str],
+                                                             fake: Any) -> None:
+    svc = fake(defer="rate_limited: reporter 'p' is over its rate", defer_copies=-1)
+    rep = client.Reporter(eps[0], "p", topology_nodes=topo, timeout_s=1.0, backoff_s=0.005,
+                          backoff_max_s=0.02, max_deferrals=3, context=ctx)
+    rep.add_hop("w1", "w2", "w3", 0.001)
+    t0 = time.monotonic()
+    with pytest.raises(client.DeliveryError, match=r"refused 4 times .*rate_limited") as ei:
+        rep.flush()
+    assert time.monotonic() - t0 < 5
+    assert ei.value.last_error.startswith("rate_limited") and len(ei.value.batches) == 1
+    assert rep.pending == 1 and rep.deferred == {"rate_limited": 4} and not rep.refused
+    svc.defer = None                                     # the bucket refills
+    rep.flush()                                          # a fresh budget, the same number
+    assert rep.pending == 0 and svc.order == [("p", ei.value.batches[0])]
+    rep.close()
+
+
+def test_late_refusal_of_an_acknowledged_batch_is_ignored(ctx: zmq.Context,
+                                                          topo: topology.Topology,
+                                                          eps: tuple[str, str, str],
+                                                          fake: Any) -> None:
+    """An ack lost, the batch resent, the copy refused after the first copy's ack came:
+    the refusal belongs to nothing pending and changes nothing."""
+    fake()
+    rep = client.Reporter(eps[0], "p", topology_nodes=topo, timeout_s=1.0, context=ctx)
+    rep.add_hop("w1", "w2", "w3", 0.001)
+    rep.flush()
+    done = rep.last_ack.batch
+    rep._reply(wire.encode_error("unavailable: the journal cannot be written", done))
+    rep._reply(wire.encode_error("bad_reporter: no", done))
+    assert rep.late_acks == 2 and not rep.deferred and not rep.refused and rep.pending == 0
     rep.close()
 
 
