@@ -1,7 +1,10 @@
-"""Shared fixtures for the learning-core tests (topology, engine, loops, config, validate)."""
+"""Shared fixtures: the learning-core tests' topologies (topology, engine, loops, config,
+validate) and `base`, the short temp dir of the tests that run a real service."""
 from __future__ import annotations
 
-from collections.abc import Callable
+import shutil
+import tempfile
+from collections.abc import Callable, Iterator
 
 import numpy as np
 import pytest
@@ -24,6 +27,18 @@ def ring_with_chords(n: int, chords: int, seed: int = 0, *, zero_delay: bool = F
         specs.append(T.LinkSpec(names[a], names[b], delay, 1e9, 100, f"ring[{a}-{b}]"))
         specs.append(T.LinkSpec(names[b], names[a], delay, 1e9, 100, f"ring[{b}-{a}]"))
     return T.build(f"ring-{n}", names, specs)
+
+
+@pytest.fixture
+def base() -> Iterator[str]:
+    """A fresh directory under /tmp, removed afterwards, for the tests that start a real
+    service: ipc:// paths are limited to about 100 bytes (sun_path), so it is kept short
+    rather than pytest's long tmp_path (test_shard.py has its own, with a config in it)."""
+    d = tempfile.mkdtemp(prefix="rd-", dir="/tmp")
+    try:
+        yield d
+    finally:
+        shutil.rmtree(d, ignore_errors=True)
 
 
 @pytest.fixture(scope="session")

@@ -10,8 +10,7 @@ from __future__ import annotations
 import math
 import shutil
 import subprocess
-import tempfile
-from collections.abc import Iterator, Mapping
+from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
@@ -176,14 +175,6 @@ def promtool_check(text: str) -> None:
 def test_promtool_accepts_the_page() -> None:
     promtool_check(page(FakeSource()))
 
-
-@pytest.fixture
-def base() -> Iterator[str]:
-    d = tempfile.mkdtemp(prefix="rd-", dir="/tmp")
-    try:
-        yield d
-    finally:
-        shutil.rmtree(d, ignore_errors=True)
 
 
 @pytest.mark.slow

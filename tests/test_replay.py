@@ -13,11 +13,8 @@ import csv
 import json
 import math
 import os
-import shutil
 import signal
-import tempfile
 import time
-from collections.abc import Iterator
 from typing import Any
 
 import numpy as np
@@ -94,14 +91,6 @@ class Writer:
         self.eng.reconfigure(s)
         self.j.append("config", {"settings": J.settings_to_dict(s)})
 
-
-@pytest.fixture
-def base() -> Iterator[str]:
-    d = tempfile.mkdtemp(prefix="rd-", dir="/tmp")   # ipc:// paths must stay short
-    try:
-        yield d
-    finally:
-        shutil.rmtree(d, ignore_errors=True)
 
 
 def synthetic(d: str, settings: E.EngineSettings | None = None) -> Writer:

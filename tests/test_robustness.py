@@ -29,14 +29,6 @@ from routerd.service import load_topology
 DEMO = load_topology(config.load(None))
 
 
-@pytest.fixture
-def base() -> Iterator[str]:
-    d = tempfile.mkdtemp(prefix="rd-", dir="/tmp")
-    try:
-        yield d
-    finally:
-        shutil.rmtree(d, ignore_errors=True)
-
 
 def _conf(base: str, text: str) -> str:
     p = os.path.join(base, "conf.yaml")

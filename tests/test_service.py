@@ -9,11 +9,8 @@ from __future__ import annotations
 import argparse
 import math
 import os
-import shutil
 import signal
-import tempfile
 import time
-from collections.abc import Iterator
 
 import msgpack
 import networkx as nx
@@ -27,15 +24,6 @@ from routerd.service import Dedup, load_config, load_topology
 
 DEMO = load_topology(config.load(None))
 
-
-@pytest.fixture
-def base() -> Iterator[str]:
-    # ipc:// paths are limited to ~100 bytes: keep the directory short
-    d = tempfile.mkdtemp(prefix="rd-", dir="/tmp")
-    try:
-        yield d
-    finally:
-        shutil.rmtree(d, ignore_errors=True)
 
 
 def write(path: str, text: str) -> str:

@@ -12,7 +12,6 @@ import shutil
 import signal
 import tempfile
 import time
-from collections.abc import Iterator
 
 import msgpack
 import numpy as np
@@ -26,14 +25,6 @@ from routerd.service import load_topology
 
 DEMO = load_topology(config.load(None))
 
-
-@pytest.fixture
-def base() -> Iterator[str]:
-    d = tempfile.mkdtemp(prefix="rd-", dir="/tmp")
-    try:
-        yield d
-    finally:
-        shutil.rmtree(d, ignore_errors=True)
 
 
 def stream_until_killed(sp: ServiceProc, reporter: str, first: int, rng: np.random.Generator,
