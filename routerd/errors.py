@@ -20,6 +20,8 @@ class Problem:
     rule: str
 
     def __str__(self) -> str:
+        if self.value is None:   # nothing was given (a missing key, a YAML null): say only the rule
+            return f"{self.where}: {self.rule}"
         return f"{self.where}: {self.value!r} {self.rule}"
 
 

@@ -69,7 +69,7 @@ def test_load_a_file_with_units_in_names_and_coercion(tmp_path) -> None:  # type
     ({"sim": {"ttl": 2.5}}, "sim.ttl: 2.5 must be a whole number"),
     ({"sim": {"ttl": 300}}, "sim.ttl: 300 is above 255"),
     ({"engine": {"ceiling_s": float("nan")}}, "engine.ceiling_s: nan must be a finite number"),
-    ({"engine": {"ceiling_s": None}}, "engine.ceiling_s: None must be set"),
+    ({"engine": {"ceiling_s": None}}, "engine.ceiling_s: must be set"),
     ({"engine": {"stepp": {"alpha": 0.2}}}, "engine.stepp.alpha: 0.2 is not a known setting (did you mean engine.step.alpha?)"),
     ({"alpha": 0.2}, "alpha: 0.2 is not a known setting (did you mean engine.step.alpha?)"),
     ({"engine": {"explore": {"min_rate": 0.15, "max_rate": 0.1}}},

@@ -59,7 +59,7 @@ def test_every_problem_is_listed_with_its_key_path() -> None:
         "bad.yaml: scenario.load[0].step: -1 must be >= 0",
         "bad.yaml: scenario.load[1].to_s: 4 must be after from_s (5)",
         "bad.yaml: scenario.load[2].on_s: 0 must be > 0",
-        "bad.yaml: scenario.load[3].at_s: None is missing",
+        "bad.yaml: scenario.load[3].at_s: is missing",
         "bad.yaml: scenario.load[4]: {'pulse': 3} must have exactly one of step, ramp, burst",
         "bad.yaml: scenario.links[0].between: ['a'] must be a list of two node names",
         "bad.yaml: scenario.links[1].at_s: 'soon' must be a number",

@@ -161,7 +161,7 @@ def test_command_line_defaults_fill_only_missing_values(tmp_path) -> None:  # ty
     with pytest.raises(TopologyError) as ei:
         T.load(_yaml(tmp_path, doc))
     msgs = [str(p) for p in ei.value.problems]
-    assert any("topology.links[0].capacity_bps: None is missing and no default was given" in m
+    assert any("topology.links[0].capacity_bps: is missing and no default was given" in m
                for m in msgs), msgs
     t = T.load(_yaml(tmp_path, doc), T.LinkDefaults(capacity_bps=5e6, buffer_pkts=7))
     assert t.capacity_bps[t.link("a", "b")] == 5e6 and t.capacity_bps[t.link("b", "c")] == 2e6
@@ -251,7 +251,7 @@ RING = [{"between": ["a", "b"], "delay_s": 0.001}, {"between": ["b", "c"], "dela
     (RING + [{"between": ["a", "c"], "delay_s": "fast"}], None,
      "topology.links[2].delay_s: 'fast' is not a number"),
     (RING, ["a", "b", "c", "a"], "nodes[3]: 'a' is a duplicate node name"),
-    (RING + [{"between": ["a", "c"]}], None, "topology.links[2].delay_s: None is missing"),
+    (RING + [{"between": ["a", "c"]}], None, "topology.links[2].delay_s: is missing"),
 ])
 def test_bad_topology_messages(tmp_path, links, nodes, expect) -> None:  # type: ignore[no-untyped-def]
     topo = dict(BASE, links=links)
@@ -263,8 +263,8 @@ def test_bad_topology_messages(tmp_path, links, nodes, expect) -> None:  # type:
 
 def test_missing_capacity_with_no_default(tmp_path) -> None:  # type: ignore[no-untyped-def]
     msgs = _problems(tmp_path, {"nodes": ["a", "b"], "links": [{"between": ["a", "b"], "delay_s": 0.001}]})
-    assert any("topology.links[0].capacity_bps: None is missing and no default was given" in m for m in msgs)
-    assert any("topology.links[0].buffer_pkts: None is missing" in m for m in msgs)
+    assert any("topology.links[0].capacity_bps: is missing and no default was given" in m for m in msgs)
+    assert any("topology.links[0].buffer_pkts: is missing" in m for m in msgs)
 
 
 def test_every_problem_is_reported_not_just_the_first(tmp_path) -> None:  # type: ignore[no-untyped-def]
