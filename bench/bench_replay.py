@@ -28,6 +28,7 @@ import time
 from typing import Any
 
 import numpy as np
+from bench_engine import ring_with_chords
 
 from routerd import journal as J
 from routerd import replay as R
@@ -36,19 +37,8 @@ from routerd.engine import Engine, EngineSettings, HopBatch
 
 
 def ring(n: int, seed: int = 0) -> T.Topology:
-    rng = np.random.default_rng(seed)
-    names = [f"h{i}" for i in range(n)]
-    pairs = {tuple(sorted((i, (i + 1) % n))) for i in range(n)}
-    while len(pairs) < 2 * n:
-        a, b = (int(v) for v in rng.integers(0, n, 2))
-        if a != b:
-            pairs.add((min(a, b), max(a, b)))
-    specs = []
-    for a, b in sorted(pairs):
-        dl = float(rng.uniform(1e-4, 5e-3))
-        specs += [T.LinkSpec(names[a], names[b], dl, 1e9, 100, "bench"),
-                  T.LinkSpec(names[b], names[a], dl, 1e9, 100, "bench")]
-    return T.build(f"ring-{n}", names, specs)
+    """A ring of n nodes with n chords (bench_engine's synthetic graph, the same one)."""
+    return ring_with_chords(n, n, seed)
 
 
 def batches(topo: T.Topology, count: int, m: int, seed: int = 1) -> list[HopBatch]:
