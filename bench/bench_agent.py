@@ -62,16 +62,7 @@ def _cpu_s(pid: int) -> float:
 
 
 def _unavailable() -> str | None:
-    try:
-        L.check_host()
-    except L.LabError as e:
-        return str(e)
-    name = f"rdbenchprobe{os.getpid()}"
-    r = subprocess.run(["ip", "netns", "add", name], capture_output=True, text=True, check=False)
-    if r.returncode != 0:
-        return f"ip netns add failed: {r.stderr.strip()}"
-    subprocess.run(["ip", "netns", "del", name], capture_output=True, check=False)
-    return None
+    return L.unavailable("rdbenchprobe")
 
 
 def _measure(proc: subprocess.Popen[Any], tx: socket.socket, rx: socket.socket, pkt: bytes,

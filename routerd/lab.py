@@ -79,6 +79,21 @@ def check_host() -> None:
             raise LabError(f"the lab needs the {tool!r} command (iproute2); it is not on PATH")
 
 
+def unavailable(tag: str = "rdprobe") -> str | None:
+    """Why a lab cannot run on this host, or None: `check_host`, then one namespace named
+    `tag` + this pid created and removed (a container may forbid it even to root)."""
+    try:
+        check_host()
+    except LabError as e:
+        return str(e)
+    name = f"{tag}{os.getpid()}"
+    r = subprocess.run(["ip", "netns", "add", name], capture_output=True, text=True, check=False)
+    if r.returncode != 0:
+        return f"ip netns add failed here: {r.stderr.strip()}"
+    subprocess.run(["ip", "netns", "del", name], capture_output=True, check=False)
+    return None
+
+
 def sh(*cmd: str, check: bool = True) -> subprocess.CompletedProcess[str]:
     r = subprocess.run(list(cmd), capture_output=True, text=True, timeout=30, check=False)
     if check and r.returncode != 0:

@@ -12,7 +12,6 @@ import csv
 import json
 import os
 import re
-import shutil
 import signal
 import subprocess
 import sys
@@ -31,18 +30,7 @@ TOPO = os.path.join(ROOT, "configs", "lab-small.yaml")
 
 
 def _lab_unavailable() -> str | None:
-    if not sys.platform.startswith("linux"):
-        return "the lab needs Linux"
-    if os.geteuid() != 0:
-        return "the lab needs root (network namespaces, veth, tc)"
-    if shutil.which("ip") is None or shutil.which("tc") is None:
-        return "the lab needs iproute2 (ip, tc)"
-    name = f"rdtest{os.getpid()}"
-    r = subprocess.run(["ip", "netns", "add", name], capture_output=True, text=True, check=False)
-    if r.returncode != 0:
-        return f"ip netns add failed here: {r.stderr.strip()}"
-    subprocess.run(["ip", "netns", "del", name], capture_output=True, check=False)
-    return None
+    return L.unavailable("rdtest")
 
 
 REASON = _lab_unavailable()
