@@ -17,7 +17,7 @@ from typing import Any
 
 from . import config as _config
 from . import topology as _topology
-from .errors import InputError, read_yaml
+from .errors import InputError, Problem, read_yaml
 
 
 def configure(p: argparse.ArgumentParser) -> None:
@@ -42,6 +42,12 @@ def kind_of(path: str) -> tuple[str, Any]:
         return "topology", doc
     if isinstance(doc, dict) and "scenario" in doc:
         return "scenario", doc
+    if isinstance(doc, dict) and "topology" not in doc and ("nodes" in doc or "links" in doc):
+        # a topology written without its top-level `topology:` key: say that, rather than
+        # calling every key an unknown config setting
+        raise InputError(Problem(path, sorted(k for k in ("nodes", "links") if k in doc),
+                                 "are topology keys at the top level: a topology file puts "
+                                 "name, nodes, links and defaults under 'topology:'"))
     return "config", doc
 
 

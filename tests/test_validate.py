@@ -82,6 +82,14 @@ def test_missing_and_unreadable_files(tmp_path, capsys) -> None:  # type: ignore
     assert any(ln.startswith(f"  {junk}: '' is not valid YAML") for ln in lines)
 
 
+def test_topology_without_its_top_level_key_is_named_as_such(tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    flat = _w(tmp_path, "flat.yaml", GOOD_TOPO["topology"])
+    rc, lines = _run(capsys, flat)
+    assert rc == 1
+    assert any(ln.startswith(f"  {flat}: ['links', 'nodes'] are topology keys at the top level")
+               and "under 'topology:'" in ln for ln in lines), lines
+
+
 def test_config_naming_a_bad_topology_fails(tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
     cfg = _w(tmp_path, "c.yaml", {"topology": {"file": "absent.yaml"}})
     rc, lines = _run(capsys, cfg)
