@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import os
 import sys
 from collections.abc import Sequence
 
@@ -68,3 +69,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # output piped into `head` and the reader went away: not an error of ours
+        try:
+            sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - silence the flush at exit
+        except OSError:
+            pass
+        return 0

@@ -115,7 +115,7 @@ class StorageDown(Exception):
 # ---- command line ------------------------------------------------------------------------
 def configure(p: argparse.ArgumentParser) -> None:
     p.add_argument("--config", metavar="FILE", help="YAML config (sections topology, engine, "
-                   "service); every key: routerd validate --schema")
+                   "service, guards, security, shard, ...); every key: routerd validate --schema")
     p.add_argument("--topology", metavar="FILE", help="topology file or topohub:GROUP/NAME "
                    "(default: the config's topology.file, else the built-in demo lab)")
     p.add_argument("--ingest", metavar="EP", help="ingest endpoint, ROUTER (default tcp://127.0.0.1:7301)")

@@ -216,7 +216,9 @@ def _unpack(frame: Any, max_bytes: int | None) -> Any:
     except msgpack.ExtraData:
         return WireError("not_msgpack: the frame holds more than one msgpack object")
     except Exception as e:  # noqa: BLE001 -  # every parse failure of peer bytes is the peer's fault
-        return WireError(f"not_msgpack: {type(e).__name__}: {_show(str(e), 80)}")
+        first = bytes(buf.cast("B")[:1]).hex() if buf.contiguous else "?"
+        detail = str(e) or f"no msgpack object starts with byte 0x{first}"
+        return WireError(f"not_msgpack: {type(e).__name__}: {_show(detail, 80)} ({n} bytes)")
 
 
 def _header(obj: Any) -> tuple[str, int] | WireError:
