@@ -140,6 +140,7 @@ class _Pending:
     nodes: tuple[str, ...] | None
     deferrals: int = 0                       # rate_limited / unavailable replies so far
     deferred: bool = False                   # refused for now: resend after the backoff
+    sent_once: bool = False                  # queued for sending at least once
 
 
 class Reporter:
@@ -197,6 +198,7 @@ class Reporter:
         self.accepted = 0
         self.rejected: Counter[str] = Counter()
         self.late_acks = 0
+        self.blocked_sends = 0
         self.last_ack: Ack | None = None
         self.deferred: Counter[str] = Counter()     # rate_limited / unavailable replies
         self.refused: Counter[str] = Counter()      # final whole-batch refusals, by code
@@ -309,19 +311,25 @@ class Reporter:
         self._transmit(b, p)
 
     def _transmit(self, b: int, p: _Pending) -> None:
-        if time.monotonic() < self._hold_until:
+        now = time.monotonic()
+        if now < self._hold_until:
             return  # the service asked us to wait (rate_limited / unavailable): the pump sends it later
+        # a try, answered or not, starts the timeout and takes one of the retry budget
+        p.sent_at = now
+        p.attempts += 1
+        p.deferred = False
         try:
             self._sock.send_multipart([b"", p.frame], flags=zmq.NOBLOCK, copy=False)
         except zmq.Again:
-            return  # queue full or no peer yet: the pump retries it
-        if p.sent_at is not None:
+            # nowhere to queue it (no peer: e.g. after a failed CURVE handshake; or the
+            # queue full): counted like a send whose answer never comes
+            self.blocked_sends += 1
+            return
+        if p.sent_once:
             self.resends += 1
         else:
             self.batches_sent += 1
-        p.sent_at = time.monotonic()
-        p.attempts += 1
-        p.deferred = False
+            p.sent_once = True
 
     def _wait_for_room(self) -> None:
         if len(self._pending) < self.max_pending:

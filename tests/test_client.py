@@ -4,6 +4,7 @@ that decodes with routerd.wire and acknowledges; and, marked slow, against a rea
 The daemon's own end-to-end tests live with the service."""
 from __future__ import annotations
 
+import os
 import shutil
 import tempfile
 import threading
@@ -438,3 +439,226 @@ def test_subscriber_node_filter_is_exact(ctx: zmq.Context, eps: tuple[str, str, 
     finally:
         sub.close()
         pub.close()
+
+
+# ---- against a real routerd serve (slow) ------------------------------------------------------
+def _floor_hops(topo: topology.Topology, frm: str, m: int) -> list[tuple[str, str, str, float]]:
+    """Hops leaving ``frm`` at twice their link's propagation delay (above the guards' floor)."""
+    x = topo.index[frm]
+    out = []
+    for i in range(m):
+        y = int(topo.neighbours[x][i % len(topo.neighbours[x])])
+        d = topo.nodes[(x + 1 + i % (topo.n - 1)) % topo.n]      # never frm itself
+        k = topo.link_index[(x, y)]
+        out.append((frm, topo.nodes[y], d, 2.0 * float(topo.delay_s[k])))
+    return out
+
+
+class CurveService:
+    """``routerd serve --server-key --allow`` on ipc:// in a short /tmp dir, with keys for
+    probe-w1 (node w1), watcher (no nodes), ops (control), sim-curve (every node),
+    agent/w1 (node w1) and a stranger the allow file does not list."""
+
+    def __init__(self, topo: topology.Topology):
+        self.base = short_base(None)
+        self.keys = os.path.join(self.base, "keys")
+        _, sec = security.create_keys(self.keys, "svc")
+        self.server_pub = os.path.join(self.keys, "svc.key")
+        for n in ("probe-w1", "watcher", "ops", "sim-curve", "agent-w1", "stranger"):
+            security.create_keys(self.keys, n)
+        allow = os.path.join(self.base, "allow.yaml")
+        with open(allow, "w") as fh:
+            fh.write("probe-w1: {public_key: keys/probe-w1.key, nodes: [w1]}\n"
+                     "watcher: {public_key: keys/watcher.key, nodes: []}\n"
+                     "ops: {public_key: keys/ops.key, nodes: [], control: true}\n"
+                     f"sim-curve: {{public_key: keys/sim-curve.key, nodes: [{', '.join(topo.nodes)}]}}\n"
+                     "agent/w1: {public_key: keys/agent-w1.key, nodes: [w1]}\n")
+        cfg = os.path.join(self.base, "svc.yaml")
+        with open(cfg, "w") as fh:
+            fh.write("service:\n  publish_interval_s: 0.3\n")
+        try:
+            self.sp = ServiceProc(self.base, service_args(self.base, "--server-key", sec,
+                                                          "--allow", allow, "--config", cfg))
+        except BaseException:
+            shutil.rmtree(self.base, ignore_errors=True)
+            raise
+        self.ep = self.sp.endpoints
+
+    def secret(self, who: str) -> str:
+        return os.path.join(self.keys, f"{who}.key_secret")
+
+    def client_keys(self, who: str) -> security.ClientKeys:
+        return security.ClientKeys.load(self.secret(who), self.server_pub)
+
+    def close(self) -> None:
+        self.sp.kill()
+        shutil.rmtree(self.base, ignore_errors=True)
+
+
+@pytest.fixture(scope="module")
+def curve_svc(topo: topology.Topology) -> Iterator[CurveService]:
+    c = CurveService(topo)
+    try:
+        yield c
+    finally:
+        c.close()
+
+
+def _health(svc: CurveService, ctx: zmq.Context) -> dict[str, Any]:
+    return client.control(svc.ep["control"], {"op": "health"}, 5.0, context=ctx,
+                          curve=svc.client_keys("ops"))
+
+
+@pytest.mark.slow
+def test_curve_reporter_subscriber_and_control_with_allowed_keys(
+        ctx: zmq.Context, topo: topology.Topology, curve_svc: CurveService) -> None:
+    ep = curve_svc.ep
+    hops = _floor_hops(topo, "w1", 40)
+    acks: list[client.Ack] = []
+    # columnar: the node list comes over control, itself CURVE with the reporter's key
+    with client.Reporter(ep["ingest"], "probe-w1", control=ep["control"], batch_rows=20,
+                         timeout_s=2.0, curve=curve_svc.client_keys("probe-w1"), context=ctx,
+                         on_ack=acks.append) as rep:
+        assert rep.topology_id == topo.digest
+        for h in hops:
+            rep.add_hop(*h)
+        rep.add_hop("w2", "w1", "e1", 0.05)              # not w1's hop: refused by the key's rights
+        rep.flush()
+        assert rep.accepted == 40 and rep.rejected == {"not_authorised": 1}, rep.rejected
+        assert [a.accepted for a in acks] == [20, 20, 0] and not rep.refused
+    with client.TableSubscriber(ep["publish"], context=ctx,
+                                curve=curve_svc.client_keys("watcher")) as sub:
+        assert sub.wait_for(lambda s: set(s.tables) == set(topo.nodes), 10), sub.tables.keys()
+    snap = client.control(ep["control"], {"op": "snapshot"}, 5.0, context=ctx,
+                          curve=curve_svc.client_keys("ops"))
+    assert snap["snapshot"]["record"] >= 1, snap
+    no = client.control(ep["control"], {"op": "snapshot"}, 5.0, context=ctx,
+                        curve=curve_svc.client_keys("watcher"))
+    assert no["error"].startswith("not_authorised")          # allowed, but not for control
+
+
+@pytest.mark.slow
+def test_curve_without_an_allowed_key_nothing_gets_through(
+        ctx: zmq.Context, topo: topology.Topology, curve_svc: CurveService) -> None:
+    ep = curve_svc.ep
+    before = _health(curve_svc, ctx)["counts"]["batches"].get("accepted", 0)
+    for curve in (None, curve_svc.client_keys("stranger")):
+        rep = client.Reporter(ep["ingest"], "probe-w1", topology_nodes=topo, timeout_s=0.2,
+                              retries=1, curve=curve, context=ctx)
+        rep.add_hop(*_floor_hops(topo, "w1", 1)[0])
+        t0 = time.monotonic()
+        with pytest.raises(client.DeliveryError) as ei:
+            rep.flush()
+        assert time.monotonic() - t0 < 5 and rep.pending == 1
+        assert ("CURVE on" in str(ei.value)) == (curve is not None)
+        rep.close(flush=False)
+        with pytest.raises(TimeoutError, match="no reply"):
+            client.control(ep["control"], {"op": "health"}, 0.3, context=ctx, curve=curve)
+        with client.TableSubscriber(ep["publish"], context=ctx, curve=curve) as sub:
+            assert sub.poll(1.0) == 0 and not sub.tables     # tables go out every 0.3 s
+    assert _health(curve_svc, ctx)["counts"]["batches"].get("accepted", 0) == before
+
+
+@pytest.mark.slow
+def test_closed_loop_runs_against_a_curve_service(curve_svc: CurveService) -> None:
+    from routerd.errors import InputError
+    from sim.run import run
+
+    ep = curve_svc.ep
+    eps = f"ingest={ep['ingest']},publish={ep['publish']},control={ep['control']}"
+    keys = (f"sim.service.server_key={curve_svc.server_pub}", "sim.service.speed=4",
+            "sim.service.timeout_s=1")
+    spec = {"policy": "service:" + eps, "rate_pps": 40, "duration_s": 2, "seed": 1,
+            "series": False}
+    out = run({**spec, "overrides": keys + (f"sim.service.client_key={curve_svc.secret('sim-curve')}",
+                                            "sim.service.reporter=sim-curve")})
+    s = out["summary"]
+    assert s["policy_service_rows_accepted"] > 0 and s["policy_service_batches"] > 0
+    assert "policy_service_rows_rejected_not_authorised" not in s
+    with pytest.raises(InputError, match="CURVE on"):
+        run({**spec, "overrides": keys + (f"sim.service.client_key={curve_svc.secret('stranger')}",)})
+    with pytest.raises(InputError, match="without sim.service.server_key"):
+        run({**spec, "overrides": (f"sim.service.client_key={curve_svc.secret('sim-curve')}",)})
+
+
+@pytest.mark.slow
+def test_agent_reports_and_takes_tables_over_curve(topo: topology.Topology,
+                                                   curve_svc: CurveService) -> None:
+    """``routerd agent`` for w1 with key paths relative to its config file (run from /): its
+    neighbours' agents are not running, so it detects its three links down, reports them
+    (w1's own link rows, within its rights) and takes w1's table — all through CURVE."""
+    import json
+    import socket
+    import subprocess
+    import sys
+
+    import yaml
+
+    def port() -> int:
+        with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as s:
+            s.bind(("127.0.0.1", 0))
+            return int(s.getsockname()[1])
+
+    base = curve_svc.base
+    x = topo.index["w1"]
+    links = [{"between": ["w1", topo.nodes[y]], "addresses": [f"127.0.0.1:{port()}",
+                                                             f"127.0.0.1:{port()}"]}
+             for y in topo.neighbours[x]]
+    with open(os.path.join(base, "underlay.yaml"), "w") as fh:
+        yaml.safe_dump({"underlay": {"links": links}}, fh)
+    cfg = {"service": {"ingest": curve_svc.ep["ingest"], "publish": curve_svc.ep["publish"]},
+           "agent": {"underlay": "underlay.yaml", "client_key": "keys/agent-w1.key_secret",
+                     "server_key": "keys/svc.key", "reporter": "agent/w1",
+                     "local": f"127.0.0.1:{port()}", "deliver": f"127.0.0.1:{port()}",
+                     "metrics": "127.0.0.1:0", "probe_interval_s": 0.05,
+                     "report_interval_s": 0.05}}
+    path = os.path.join(base, "agent.yaml")
+    with open(path, "w") as fh:
+        yaml.safe_dump(cfg, fh)
+    status = os.path.join(base, "agent-status.json")
+    r = subprocess.run([sys.executable, "-m", "routerd", "agent", "--config", path, "--node", "w1",
+                        "--duration", "2.5", "--status-file", status],
+                       capture_output=True, text=True, timeout=60, cwd="/", check=False)
+    assert r.returncode == 0, r.stderr
+    with open(status, encoding="utf-8") as fh:
+        st = json.load(fh)
+    assert st["report"]["curve"] is True and st["report"]["refused"] == {}, st["report"]
+    assert st["report"]["accepted"] >= 3 and st["report"]["pending_batches"] == 0, st["report"]
+    assert {ln["state"] for ln in st["links"].values()} == {"down"}
+    # w1's own table, published again and again; empty once the service applied the three
+    # link-down rows (w1 has no way out left)
+    assert st["table"]["seq"] > 1 and st["table"]["routes"] == {}, st["table"]
+    assert st["counts"]["delivery_errors"] == 0
+
+
+@pytest.mark.slow
+def test_rate_limited_batches_are_delivered_by_a_real_service(ctx: zmq.Context,
+                                                              topo: topology.Topology) -> None:
+    """guards.rate: 5 batches/s, a burst of 2.  Twelve batches sent at once: the service
+    refuses the excess as rate_limited, the reporter keeps and resends them, and every
+    batch is applied exactly once."""
+    base = short_base(None)
+    try:
+        cfg = os.path.join(base, "svc.yaml")
+        with open(cfg, "w") as fh:
+            fh.write("guards:\n  rate:\n    batches_per_s: 5\n    burst_batches: 2\n")
+        sp = ServiceProc(base, service_args(base, "--config", cfg))
+        try:
+            hops = _floor_hops(topo, "w3", 60)
+            with client.Reporter(sp.endpoints["ingest"], "burst", topology_nodes=topo,
+                                 batch_rows=5, max_pending=16, timeout_s=2.0, backoff_s=0.05,
+                                 backoff_max_s=0.5, context=ctx) as rep:
+                for h in hops:
+                    rep.add_hop(*h)                 # 12 full batches, all sent at once
+                rep.flush()
+                assert rep.accepted == 60 and not rep.rejected and not rep.refused
+                assert rep.deferred["rate_limited"] >= 5 and rep.batches_sent == 12
+                deferred = rep.deferred["rate_limited"]
+            h = client.control(sp.endpoints["control"], {"op": "health"}, 5.0, context=ctx)
+            c = h["counts"]
+            assert c["batches"]["accepted"] == 12 and c["batches"].get("duplicate", 0) == 0
+            assert c["frames_refused"]["rate_limited"] == deferred
+        finally:
+            sp.kill()
+    finally:
+        shutil.rmtree(base, ignore_errors=True)
