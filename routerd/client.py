@@ -11,9 +11,10 @@ the wall clock in microseconds, so a restarted reporter with the same name never
 number the service may still remember), sends each over a DEALER socket as soon as it is
 full, and keeps it until the service acknowledges it.  A batch without an acknowledgement
 after ``timeout_s`` is sent again with the *same* number (the service applies a batch
-once and acknowledges repeats again); after ``retries`` resends :class:`DeliveryError` is
-raised and the batch stays pending (the next :meth:`Reporter.flush` tries again).  Memory is
-bounded: at most ``max_pending`` unacknowledged batches of at most ``batch_rows`` rows; when
+once and acknowledges repeats again; a send that cannot even be queued — no peer, e.g.
+after a failed CURVE handshake — counts as one whose answer never came, ``blocked_sends``);
+after ``retries`` resends :class:`DeliveryError` is raised and the batch stays pending
+(the next :meth:`Reporter.flush` tries again).  Memory is bounded: at most ``max_pending`` unacknowledged batches of at most ``batch_rows`` rows; when
 full, adding rows **blocks** until an acknowledgement frees a place, and raises
 :class:`DeliveryError` if none comes within the retry budget.  LINGER is 0 on every socket:
 delivery is certain once acknowledged, never because something was queued at exit.

@@ -353,3 +353,28 @@ def test_endpoints_other_hosts_can_reach_without_curve_are_warned_about() -> Non
     svc.log = service.Log(stream=(buf := io.StringIO()))
     svc._warn_exposed()
     assert buf.getvalue() == ""
+
+
+def test_client_keys_from_files_or_z85_text_and_config_pairs(tmp_path: Any) -> None:
+    _, me = security.create_keys(str(tmp_path), "me")
+    svc_pub, _ = security.create_keys(str(tmp_path), "svc")
+    z85 = security.read_public(svc_pub)
+    k = security.ClientKeys.load(me, svc_pub)
+    # pyzmq's own certificate reader is the reference for what the files hold
+    assert (k.public, k.secret) == zmq.auth.load_certificate(me) and k.server_public == z85
+    assert security.ClientKeys.load(me, z85.decode()) == security.ClientKeys(
+        k.public, k.secret, z85, f"{me} -> service key Z85 text")
+    with pytest.raises(InputError, match="holds no secret key"):
+        security.ClientKeys.load(svc_pub, svc_pub)          # a public file is not our key pair
+    with pytest.raises(InputError, match="no such key file"):
+        security.ClientKeys.load(me, "keys/elsewhere.key")
+    assert security.client_keys(None, None, "agent") is None
+    with pytest.raises(InputError, match="agent.server_key is set without agent.client_key"):
+        security.client_keys(None, svc_pub, "agent")
+    s = zmq.Context.instance().socket(zmq.DEALER)
+    try:
+        assert s.getsockopt(zmq.MECHANISM) == zmq.NULL
+        k.apply(s)
+        assert s.getsockopt(zmq.MECHANISM) == zmq.CURVE and not s.getsockopt(zmq.CURVE_SERVER)
+    finally:
+        s.close(0)
