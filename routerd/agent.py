@@ -89,7 +89,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from . import overlay as ov
-from .errors import InputError, Problem
+from .errors import InputError, Problem, read_yaml
 
 #: Why a packet is dropped by the agent (a fixed set: a metrics label uses it).
 DROP_REASONS = ("no_route", "send_error", "hold_full", "not_data")
@@ -132,15 +132,9 @@ def load_underlay(path: str, topo: Any) -> dict[tuple[int, int], tuple[tuple[str
             - {between: [a, b], addresses: ["10.254.0.1:7400", "10.254.0.2:7400"]}
 
     Every entry must name a link of the topology (in at least one direction)."""
-    import yaml
-
     if not os.path.exists(path):
         raise InputError(Problem(path, path, "does not exist (agent.underlay)"))
-    try:
-        with open(path, encoding="utf-8") as fh:
-            doc = yaml.safe_load(fh)
-    except yaml.YAMLError as e:
-        raise InputError(Problem(path, "", f"is not valid YAML: {e}")) from None
+    doc = read_yaml(path)
     links = (doc or {}).get("underlay", {}).get("links") if isinstance(doc, dict) else None
     if not isinstance(links, list):
         raise InputError(Problem(f"{path}: underlay.links", links, "must be a list of links"))

@@ -15,12 +15,11 @@ from __future__ import annotations
 
 import copy
 import math
-import os
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
-from .errors import ConfigError, Problem
+from .errors import ConfigError, Problem, read_yaml
 
 
 @dataclass(frozen=True, slots=True)
@@ -318,16 +317,7 @@ def load(path: str | None = None, overrides: Iterable[str] = ()) -> Config:
     """Load a YAML config file (or the defaults) and apply ``KEY=VALUE`` overrides."""
     cfg = Config({k: f.default for k, f in SCHEMA.items()})
     if path is not None:
-        import yaml
-
-        if not os.path.exists(path):
-            raise ConfigError(Problem(path, path, "does not exist"))
-        try:
-            with open(path, encoding="utf-8") as fh:
-                doc = yaml.safe_load(fh)
-        except yaml.YAMLError as e:
-            raise ConfigError(Problem(path, "", f"is not valid YAML: {e}")) from None
-        cfg = from_mapping(doc, path)
+        cfg = from_mapping(read_yaml(path, ConfigError), path)
     ov: dict[str, Any] = {}
     problems: list[Problem] = []
     for item in overrides:
