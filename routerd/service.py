@@ -825,19 +825,22 @@ class Service:
             if ev.get("event") == zmq.EVENT_DISCONNECTED:
                 self.counters.ingest_disconnects += 1
 
+    def _recv(self, zmq: Any, sock: Any, curve: bool) -> tuple[list[bytes], _security.Reporter | None]:
+        """One waiting message (raises zmq.Again if none) and, under CURVE, the allowed
+        reporter its ZAP User-Id belongs to (None for a key not in the allow file)."""
+        if not curve:
+            return sock.recv_multipart(zmq.NOBLOCK), None
+        frames = sock.recv_multipart(zmq.NOBLOCK, copy=False)
+        assert self.allow is not None
+        peer = self.allow.for_user_id(_security.user_id(frames[-1]))
+        return [f.bytes for f in frames], peer
+
     def _drain(self, zmq: Any, sock: Any, name: str, acks: list[Any] | None) -> None:
         routed = acks is not None
         curve = self.allow is not None
-        peer: _security.Reporter | None = None
         for _ in range(self.cfg["service.max_drain"]):
             try:
-                if curve:
-                    frames = sock.recv_multipart(zmq.NOBLOCK, copy=False)
-                    assert self.allow is not None
-                    peer = self.allow.for_user_id(_security.user_id(frames[-1]))
-                    parts = [f.bytes for f in frames]
-                else:
-                    parts = sock.recv_multipart(zmq.NOBLOCK)
+                parts, peer = self._recv(zmq, sock, curve)
             except zmq.Again:
                 return
             self.counters.batches_by_socket[name] += 1
@@ -968,16 +971,9 @@ class Service:
 
     # -- control --------------------------------------------------------------------------
     def _control_one(self, zmq: Any, sock: Any, readonly: bool = False) -> bytes | None:
-        peer: _security.Reporter | None = None
         curve = self.allow is not None and not readonly
         try:
-            if curve:
-                frames = sock.recv_multipart(zmq.NOBLOCK, copy=False)
-                assert self.allow is not None
-                peer = self.allow.for_user_id(_security.user_id(frames[-1]))
-                parts = [f.bytes for f in frames]
-            else:
-                parts = sock.recv_multipart(zmq.NOBLOCK)
+            parts, peer = self._recv(zmq, sock, curve)
         except zmq.Again:
             return None
         if len(parts) != 1:
