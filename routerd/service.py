@@ -361,6 +361,7 @@ class Service:
         import zmq
 
         from . import metrics as _metrics
+        from .fsmode import private_dir
 
         cfg = self.cfg
         try:
@@ -371,7 +372,7 @@ class Service:
         self._warn_exposed()
         state_dir = cfg["service.state_dir"]
         try:
-            os.makedirs(state_dir, exist_ok=True)
+            private_dir(state_dir)        # 0700 when created here (routerd.fsmode)
         except OSError as e:
             raise StartError(f"state dir {state_dir}: {e.strerror}") from None
         self._restore(state_dir)
@@ -418,6 +419,9 @@ class Service:
             self.allow = _security.load_allow(al, self.topo)
         except InputError as e:
             raise StartError(f"security:\n{e}") from None
+        exposure = _security.key_file_exposure(sk)
+        if exposure:
+            self.log.warning(exposure)   # once, at start-up
 
     def _restore(self, state_dir: str) -> None:
         """Open the journal (recovery cuts a torn or corrupt tail), then the newest good

@@ -557,12 +557,13 @@ class Front:
         import zmq
 
         from . import metrics as _metrics
+        from .fsmode import private_dir
         from .service import StartError
 
         cfg = self.cfg
         try:
             _metrics.parse_address(cfg["service.metrics"])
-            os.makedirs(self.state_root, exist_ok=True)
+            private_dir(self.state_root)
         except ValueError as e:
             raise StartError(str(e)) from None
         except OSError as e:

@@ -307,6 +307,34 @@ def test_a_reporter_cannot_mark_down_a_link_that_enters_its_node(curve: Curve) -
 
 
 @pytest.mark.slow
+def test_a_server_key_others_can_read_is_warned_about_once(tmp_path: Any) -> None:
+    base = short_base(tmp_path)
+    try:
+        kd = os.path.join(base, "keys")
+        _, sec = security.create_keys(kd, "svc")
+        security.create_keys(kd, "w1")
+        allow = os.path.join(base, "allow.yaml")
+        with open(allow, "w") as fh:
+            fh.write("w1: {public_key: keys/w1.key, nodes: [w1]}\n")
+        assert stat.S_IMODE(os.stat(sec).st_mode) == 0o600
+        assert security.key_file_exposure(sec) is None
+        for mode, who in ((0o600, None), (0o640, "its group"), (0o604, "other users")):
+            os.chmod(sec, mode)
+            sp = ServiceProc(base, service_args(base, "--server-key", sec, "--allow", allow))
+            sp.kill()                         # joins the log readers: stderr is complete
+            warned = [ln for ln in sp.stderr_lines if "secret key file" in ln]
+            if who is None:
+                assert warned == [], warned
+                continue
+            assert len(warned) == 1, sp.log()
+            w = warned[0]
+            assert "WARN" in w and sec in w and f"mode {mode:04o}" in w and who in w, w
+            assert f"chmod 600 {sec}" in w, w
+    finally:
+        shutil.rmtree(base, ignore_errors=True)
+
+
+@pytest.mark.slow
 def test_unknown_keys_and_plain_peers_get_nothing(curve: Curve) -> None:
     for who in ("stranger", None):
         with pytest.raises(zmq.Again):
