@@ -14,6 +14,12 @@ a lab only ever touches its own; leftovers of labs whose process is gone are rem
 start.  Teardown runs on success, on failure and on SIGINT/SIGTERM/SIGHUP (a handler
 turns them into an exception, a ``finally`` tears down): children are stopped (SIGTERM,
 then SIGKILL by pid), every namespace of the prefix is deleted (which deletes its veths).
+A ``kill -9`` of the lab runs no teardown: its agents stay in its namespaces (removed as
+above) and its service, in the host's namespace and its own session, stays too.  So each
+run directory holds a marker (:data:`MARKER`: the lab's pid and start time, the service's
+pid, start time and command line, ``--keep``); the next lab stops a dead lab's service only
+after ``/proc/PID`` shows the same start time and exactly that command line (which names
+the dead lab's own config file), then removes the run directory unless it was kept.
 The service listens on ipc:// endpoints in the lab's run directory and on loopback for
 metrics: nothing is bound to a veth address except the agents' overlay sockets.
 
@@ -26,6 +32,7 @@ import argparse
 import contextlib
 import csv
 import ctypes
+import glob
 import json
 import math
 import os
@@ -56,6 +63,9 @@ UNDERLAY_NET = (10, 254)   # 10.254.0.0/16, /30 per link, only inside the lab's 
 #: bytes a packet carries on the veth beyond its UDP payload (UDP 8 + IPv4 20 + Ethernet 14)
 WIRE_OVERHEAD = 42
 READY_TIMEOUT_S = 30.0
+#: In each run directory: who owns it and which service it started (see the docstring).
+MARKER = "lab-run.json"
+RUN_BASE = "/tmp"
 
 
 class LabError(Exception):
@@ -139,6 +149,122 @@ def remove_leftovers(only_pid: int | None = None) -> list[str]:
         sh("ip", "netns", "del", ns, check=False)
         gone.append(ns)
     return gone
+
+
+def start_time(pid: int) -> int | None:
+    """The process's start time (clock ticks since boot, /proc/PID/stat field 22), or None
+    if there is no such process or it has exited (a zombie not yet reaped).  With the pid
+    it names one process: pids are reused."""
+    try:
+        with open(f"/proc/{pid}/stat", "rb") as fh:
+            stat = fh.read()
+    except OSError:
+        return None
+    try:
+        # the command name (field 2) is in parentheses and may hold spaces or ')'
+        fields = stat[stat.rindex(b")") + 2:].split()
+        if fields[0] in (b"Z", b"X"):
+            return None
+        return int(fields[19])
+    except (ValueError, IndexError):
+        return None
+
+
+def cmdline(pid: int) -> list[str] | None:
+    try:
+        with open(f"/proc/{pid}/cmdline", "rb") as fh:
+            raw = fh.read()
+    except OSError:
+        return None
+    return [a.decode(errors="surrogateescape") for a in raw.split(b"\0")[:-1]]
+
+
+def service_command(config_path: str) -> list[str]:
+    """How a lab starts its service (and how a later lab recognises it)."""
+    return [sys.executable, "-m", "routerd", "serve", "--config", config_path]
+
+
+def write_marker(run_dir: str, *, keep: bool, service: subprocess.Popen[Any] | None = None) -> None:
+    """Record this lab and (once started) its service in the run directory, atomically."""
+    doc: dict[str, Any] = {"lab_pid": os.getpid(), "lab_start": start_time(os.getpid()),
+                           "keep": bool(keep), "service_pid": None, "service_start": None,
+                           "service_cmdline": None}
+    if service is not None:
+        doc.update(service_pid=service.pid, service_start=start_time(service.pid),
+                   service_cmdline=[str(a) for a in service.args])   # type: ignore[union-attr]
+    tmp = os.path.join(run_dir, f".{MARKER}.tmp")
+    with open(tmp, "w", encoding="utf-8") as fh:
+        json.dump(doc, fh)
+    os.replace(tmp, os.path.join(run_dir, MARKER))
+
+
+def _read_marker(run_dir: str) -> dict[str, Any] | None:
+    """The marker of a run directory this user made (0700, owned by us), else None: a
+    directory or file planted by someone else in /tmp is never acted on."""
+    try:
+        st = os.lstat(run_dir)
+        if not (os.path.isdir(run_dir) and not os.path.islink(run_dir)
+                and st.st_uid == os.geteuid() and st.st_mode & 0o022 == 0):
+            return None
+        mp = os.path.join(run_dir, MARKER)
+        mst = os.lstat(mp)
+        if not (os.path.isfile(mp) and not os.path.islink(mp) and mst.st_uid == os.geteuid()):
+            return None
+        with open(mp, encoding="utf-8") as fh:
+            doc = json.load(fh)
+    except (OSError, ValueError):
+        return None
+    return doc if isinstance(doc, dict) else None
+
+
+def _wait_gone(pid: int, start: int, timeout_s: float) -> bool:
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline:
+        if start_time(pid) != start:
+            return True
+        time.sleep(0.05)
+    return start_time(pid) != start
+
+
+def remove_orphans(base: str = RUN_BASE, log: Any = None) -> list[str]:
+    """Stop the services of dead labs and remove their run directories (unless kept).
+
+    A run directory is looked at only when its marker is ours (see :func:`_read_marker`)
+    and its lab is gone (no process with that pid *and* start time).  Its service is sent
+    SIGTERM (so it writes its final snapshot), SIGKILL after 5 s, and only while
+    ``/proc/PID`` shows the recorded start time and exactly the command a lab uses for that
+    run directory's config.  Returns one line per thing done."""
+    say = log or (lambda msg: None)
+    done: list[str] = []
+    for run_dir in sorted(glob.glob(os.path.join(base, f"{PREFIX}-*"))):
+        doc = _read_marker(run_dir)
+        if doc is None:
+            continue
+        lab_pid, lab_start = doc.get("lab_pid"), doc.get("lab_start")
+        if isinstance(lab_pid, int) and lab_start is not None and start_time(lab_pid) == lab_start:
+            continue                                     # that lab is still running
+        pid, start = doc.get("service_pid"), doc.get("service_start")
+        want = doc.get("service_cmdline")
+        mine = os.path.join(run_dir, "lab-config.yaml")
+        if (isinstance(pid, int) and isinstance(start, int) and pid > 1
+                and isinstance(want, list) and want[-2:] == ["--config", mine]
+                and want[1:5] == ["-m", "routerd", "serve", "--config"]
+                and start_time(pid) == start and cmdline(pid) == want):
+            with contextlib.suppress(ProcessLookupError):
+                os.kill(pid, signal.SIGTERM)
+            if not _wait_gone(pid, start, 5.0) and cmdline(pid) == want:
+                with contextlib.suppress(ProcessLookupError):
+                    os.kill(pid, signal.SIGKILL)
+                _wait_gone(pid, start, 5.0)
+            msg = f"stopped the service (pid {pid}) left by lab {lab_pid} ({run_dir})"
+            say(msg)
+            done.append(msg)
+        if not doc.get("keep"):
+            shutil.rmtree(run_dir, ignore_errors=True)
+            msg = f"removed the run directory {run_dir} of lab {lab_pid}"
+            say(msg)
+            done.append(msg)
+    return done
 
 
 _libc: Any = None
@@ -256,8 +382,9 @@ class Lab:
     """One lab run: ``build``, ``start_service``, ``start_agents``, ... and always ``teardown``."""
 
     def __init__(self, topo: Any, cfg_doc: dict[str, Any], *, run_dir: str,
-                 packet_bytes: float = 400.0, log: Any = None):
+                 packet_bytes: float = 400.0, log: Any = None, keep: bool = False):
         self.topo = topo
+        self.keep = keep
         self.cfg_doc = cfg_doc
         self.run_dir = run_dir
         self.packet_bytes = packet_bytes
@@ -279,6 +406,7 @@ class Lab:
     # -- build -------------------------------------------------------------------------
     def build(self) -> None:
         t = self.topo
+        write_marker(self.run_dir, keep=self.keep)
         for ns in self.ns:
             r = sh("ip", "netns", "add", ns, check=False)
             if r.returncode != 0:
@@ -338,11 +466,12 @@ class Lab:
 
     # -- processes ------------------------------------------------------------------------
     def start_service(self) -> None:
-        cmd = [sys.executable, "-m", "routerd", "serve", "--config", self.config_path]
+        cmd = service_command(self.config_path)
         p = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
                              start_new_session=True)
         self.service = p
         self.children.append(p)
+        write_marker(self.run_dir, keep=self.keep, service=p)   # before anything can fail
         deadline = time.monotonic() + READY_TIMEOUT_S
         assert p.stdout is not None
         while time.monotonic() < deadline:
@@ -884,10 +1013,11 @@ def _run(args: argparse.Namespace, topo: Any, topo_path: str, events: list[Event
 
     from . import config as _config
 
+    remove_orphans(log=lambda msg: print(f"routerd lab: {msg}", file=sys.stderr))
     removed = remove_leftovers()
     if removed:
         print(f"routerd lab: removed {len(removed)} namespaces left by earlier labs", file=sys.stderr)
-    run_dir = tempfile.mkdtemp(prefix=f"{PREFIX}-", dir="/tmp")
+    run_dir = tempfile.mkdtemp(prefix=f"{PREFIX}-", dir=RUN_BASE)
     warm = args.duration / 10.0 if args.warmup is None else float(args.warmup)
 
     def on_signal(signum: int, _f: Any) -> None:
@@ -904,7 +1034,8 @@ def _run(args: argparse.Namespace, topo: Any, topo_path: str, events: list[Event
             print(f"routerd lab: {e}", file=sys.stderr)
             return 2
         cfg = _config.from_mapping(doc, "lab config")
-        lab = Lab(topo, doc, run_dir=run_dir, packet_bytes=args.packet_bytes)
+        lab = Lab(topo, doc, run_dir=run_dir, packet_bytes=args.packet_bytes,
+                  keep=bool(getattr(args, "keep", False)))
         lab.log(f"building {topo.n} namespaces and {len(lab.pairs)} veth pairs (prefix "
                 f"{PREFIX}{lab.pid}-, run directory {run_dir})")
         lab.build()
