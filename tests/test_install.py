@@ -7,10 +7,16 @@ package is built the way ``deploy/Containerfile`` builds it (the same files copi
 ``pip``), installed from the wheel with its dependencies from the package index (pip's
 cache makes it quick after the first time), and every command of ``routerd.cli.COMMANDS``
 is started from the installed entry point, so a new command is covered without editing
-this file.  Slow: a venv and a dependency install, about 20-30 s.
+this file.  Slow: a venv and a dependency install, 20-60 s here (pip cache warm; most
+of it is installing numpy and pyzmq).
+
+The quick test at the end finds the same kind of mistake without installing anything: a
+submodule used as an attribute (``importlib.util.find_spec``) after a bare import of its
+package, where a fresh interpreter without any start-up hooks does not provide it.
 """
 from __future__ import annotations
 
+import ast
 import os
 import re
 import shutil
@@ -23,6 +29,9 @@ import zipfile
 from collections.abc import Iterator
 from dataclasses import dataclass
 
+import importlib.util
+import sysconfig
+
 import pytest
 
 from routerd import cli
@@ -32,7 +41,6 @@ CONTAINERFILE = os.path.join(ROOT, "deploy", "Containerfile")
 PIP_TIMEOUT_S = 540.0
 RUN_TIMEOUT_S = 120.0
 
-pytestmark = pytest.mark.slow
 
 
 @dataclass(frozen=True)
@@ -111,6 +119,7 @@ def installed(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Installed]:
     yield Installed(venv, str(work), str(wheels[0]), _clean_env(venv))
 
 
+@pytest.mark.slow
 def test_wheel_holds_every_module_and_data_file(installed: Installed) -> None:
     """Every module of the packages and every packaged data file is in the wheel (a new
     subpackage missing from pyproject's package list would be caught here)."""
@@ -126,6 +135,7 @@ def test_wheel_holds_every_module_and_data_file(installed: Installed) -> None:
     assert "routerd/data/demo-lab.yaml" in names and "routerd/data/demo-scenario.yaml" in names
 
 
+@pytest.mark.slow
 def test_imports_come_from_the_install(installed: Installed) -> None:
     r = installed.run(installed.exe("python"), "-c",
                       "import routerd, sim, sys; print(routerd.__file__); print(sim.__file__); "
@@ -137,6 +147,7 @@ def test_imports_come_from_the_install(installed: Installed) -> None:
         assert not os.path.realpath(line).startswith(os.path.realpath(ROOT) + os.sep)
 
 
+@pytest.mark.slow
 def test_version_from_the_entry_point_and_as_a_module(installed: Installed) -> None:
     from routerd import __version__
 
@@ -147,6 +158,7 @@ def test_version_from_the_entry_point_and_as_a_module(installed: Installed) -> N
         assert r.stdout.strip() == f"routerd {__version__}"
 
 
+@pytest.mark.slow
 def test_top_level_help_lists_every_command(installed: Installed) -> None:
     """A command whose module did not install would be left out of the parser silently."""
     r = installed.run(installed.exe("routerd"), "--help")
@@ -155,6 +167,7 @@ def test_top_level_help_lists_every_command(installed: Installed) -> None:
     assert listed == list(cli.COMMANDS), r.stdout
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("command", list(cli.COMMANDS))
 def test_every_command_starts(installed: Installed, command: str) -> None:
     r = installed.run(installed.exe("routerd"), command, "--help")
@@ -162,6 +175,7 @@ def test_every_command_starts(installed: Installed, command: str) -> None:
     assert r.stdout.startswith(f"usage: routerd {command}"), r.stdout[:300]
 
 
+@pytest.mark.slow
 def test_validate_the_packaged_files(installed: Installed) -> None:
     r = installed.run(installed.exe("python"), "-c",
                       "import importlib.resources as r; d = r.files('routerd') / 'data'; "
@@ -175,6 +189,7 @@ def test_validate_the_packaged_files(installed: Installed) -> None:
     assert r.stdout.count("OK") == 2, r.stdout
 
 
+@pytest.mark.slow
 def test_simulate_on_the_built_in_demo_lab(installed: Installed) -> None:
     """No --topology: the simulator reads the demo lab shipped inside the package."""
     out = os.path.join(installed.work, "sim-out")
@@ -184,6 +199,7 @@ def test_simulate_on_the_built_in_demo_lab(installed: Installed) -> None:
     assert os.path.exists(os.path.join(out, "summary.json")), os.listdir(out)
 
 
+@pytest.mark.slow
 def test_serve_starts_on_the_built_in_demo_lab_and_stops(installed: Installed) -> None:
     """What deploy/Containerfile runs: `routerd serve`, ready, then SIGTERM → exit 0."""
     ipc = tempfile.mkdtemp(prefix="rdinst-", dir="/tmp")   # ipc paths must stay short
@@ -215,3 +231,80 @@ def test_serve_starts_on_the_built_in_demo_lab_and_stops(installed: Installed) -
                 p.wait(10)
     finally:
         shutil.rmtree(ipc, ignore_errors=True)
+
+
+@pytest.mark.slow
+def test_every_module_imports_from_the_plain_install(installed: Installed) -> None:
+    """The plain install has no test extra (networkx, topohub, hypothesis, matplotlib):
+    no module may need one at import time."""
+    names = sorted(n[:-3].replace("/", ".").removesuffix(".__init__")
+                   for n in zipfile.ZipFile(installed.wheel).namelist()
+                   if n.endswith(".py") and n.split("/")[0] in ("routerd", "sim")
+                   and not n.endswith("__main__.py"))
+    code = ("import importlib, sys\nbad = []\nfor n in sys.argv[1:]:\n    try:\n"
+            "        importlib.import_module(n)\n    except Exception as e:\n"
+            "        bad.append(f'{n}: {type(e).__name__}: {e}')\nprint('\\n'.join(bad))")
+    r = installed.run(installed.exe("python"), "-c", code, *names)
+    _check(r, "import every module")
+    assert len(names) > 30 and r.stdout.strip() == "", r.stdout
+
+
+def _bare_submodule_uses() -> dict[str, set[str]]:
+    """``X.Y`` attribute uses, by file, where ``X`` is bound by a bare ``import X`` and the
+    module never imports ``X.Y`` itself (``import X.Y``, ``from X.Y import``, ``from X
+    import Y``)."""
+    out: dict[str, set[str]] = {}
+    for pkg in ("routerd", "sim"):
+        for d, subdirs, files in os.walk(os.path.join(ROOT, pkg)):
+            subdirs[:] = [x for x in subdirs if x != "__pycache__"]
+            for f in files:
+                if not f.endswith(".py"):
+                    continue
+                path = os.path.join(d, f)
+                with open(path, encoding="utf-8") as fh:
+                    tree = ast.parse(fh.read(), path)
+                bound: dict[str, str] = {}
+                explicit: set[str] = set()
+                for n in ast.walk(tree):
+                    if isinstance(n, ast.Import):
+                        for a in n.names:
+                            parts = a.name.split(".")
+                            explicit.update(".".join(parts[:i]) for i in range(2, len(parts) + 1))
+                            if "." not in a.name or a.asname is None:
+                                bound[a.asname or parts[0]] = a.name if a.asname else parts[0]
+                    elif isinstance(n, ast.ImportFrom) and n.module and n.level == 0:
+                        parts = n.module.split(".")
+                        explicit.update(".".join(parts[:i]) for i in range(2, len(parts) + 1))
+                        explicit.update(f"{n.module}.{a.name}" for a in n.names)
+                for n in ast.walk(tree):
+                    if isinstance(n, ast.Attribute) and isinstance(n.value, ast.Name) \
+                            and n.value.id in bound:
+                        full = f"{bound[n.value.id]}.{n.attr}"
+                        if full not in explicit:
+                            out.setdefault(full, set()).add(os.path.relpath(path, ROOT))
+    return out
+
+
+def _is_submodule(name: str) -> bool:
+    try:
+        return importlib.util.find_spec(name) is not None
+    except (ImportError, ValueError):
+        return False
+
+
+def test_no_submodule_is_used_without_being_imported() -> None:
+    """Each ``X.Y`` used after a bare ``import X`` where ``X.Y`` is a submodule must be
+    there after ``import X`` in an interpreter started with ``-S`` (no site start-up, so no
+    editable-install hook or other ``.pth`` import), with this environment's packages on
+    the path: numpy and dpkt import their submodules, importlib does not import ``util``."""
+    subs = {k: v for k, v in _bare_submodule_uses().items() if _is_submodule(k)}
+    assert "os.path" in subs                     # the scan sees what it should
+    paths = sorted({sysconfig.get_paths()["purelib"], sysconfig.get_paths()["platlib"]})
+    code = ("import importlib, sys\nsys.path += sys.argv[1].split(':')\n"
+            "for n in sys.argv[2:]:\n    top, sub = n.split('.', 1)\n"
+            "    if not hasattr(importlib.import_module(top), sub):\n        print(n)")
+    r = subprocess.run([sys.executable, "-S", "-c", code, ":".join(paths), *sorted(subs)],
+                       capture_output=True, text=True, timeout=60, check=False, cwd="/")
+    assert r.returncode == 0, r.stderr
+    missing = {n: sorted(subs[n]) for n in r.stdout.split()}
+    assert missing == {}, f"import these submodules by name where they are used: {missing}"
