@@ -191,7 +191,7 @@ def write_marker(run_dir: str, *, keep: bool, service: subprocess.Popen[Any] | N
                            "service_cmdline": None}
     if service is not None:
         doc.update(service_pid=service.pid, service_start=start_time(service.pid),
-                   service_cmdline=[str(a) for a in service.args])   # type: ignore[union-attr]
+                   service_cmdline=[str(a) for a in service.args])
     tmp = os.path.join(run_dir, f".{MARKER}.tmp")
     with open(tmp, "w", encoding="utf-8") as fh:
         json.dump(doc, fh)
