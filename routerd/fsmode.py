@@ -50,12 +50,3 @@ def open_private(path: str, flags: int) -> int:
             os.close(fd)
             raise
     return fd
-
-
-def loose_bits(path: str) -> int | None:
-    """The group/other permission bits of ``path`` (0 when owner-only), or None if it
-    cannot be read (missing file: the caller's own checks say so)."""
-    try:
-        return stat.S_IMODE(os.stat(path).st_mode) & 0o077
-    except OSError:
-        return None

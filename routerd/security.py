@@ -467,12 +467,13 @@ def key_file_exposure(path: str) -> str | None:
     """Why the secret key file ``path`` is open to more than its owner (group or other
     permission bits set), with the fix; None when it is owner-only (or unreadable: loading
     it says so).  Whoever can read it can act as the service."""
-    from .fsmode import loose_bits
-
-    bits = loose_bits(path)
+    try:
+        mode = stat.S_IMODE(os.stat(path).st_mode)
+    except OSError:
+        return None
+    bits = mode & 0o077
     if not bits:
         return None
-    mode = stat.S_IMODE(os.stat(path).st_mode)
     who = " and ".join(w for w, m in (("its group", 0o070), ("other users", 0o007)) if bits & m)
     return (f"secret key file {path} has mode {mode:04o}: {who} can read or change it, and "
             f"whoever reads it can act as this service; fix: chmod 600 {path}")

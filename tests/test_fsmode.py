@@ -97,10 +97,6 @@ def test_open_private_narrows_an_existing_file_it_creates_into(tmp_path: os.Path
     assert _mode(p) == 0o644
 
 
-def test_loose_bits() -> None:
-    assert fsmode.loose_bits("/nonexistent/routerd/key") is None
-
-
 @pytest.mark.parametrize("mask", [0o000, 0o022])
 def test_journal_and_snapshots_are_private(tmp_path: os.PathLike[str], mask: int) -> None:
     """Segments (new and rolled over), the bytes kept aside by recovery, snapshots and

@@ -318,6 +318,7 @@ def test_a_server_key_others_can_read_is_warned_about_once(tmp_path: Any) -> Non
             fh.write("w1: {public_key: keys/w1.key, nodes: [w1]}\n")
         assert stat.S_IMODE(os.stat(sec).st_mode) == 0o600
         assert security.key_file_exposure(sec) is None
+        assert security.key_file_exposure(os.path.join(kd, "missing.key_secret")) is None
         for mode, who in ((0o600, None), (0o640, "its group"), (0o604, "other users")):
             os.chmod(sec, mode)
             sp = ServiceProc(base, service_args(base, "--server-key", sec, "--allow", allow))
