@@ -44,6 +44,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from . import overlay as ov
+from .clock import SYSTEM, Clock
 from .errors import InputError, Problem
 
 PREFIX = "rdlab"
@@ -488,9 +489,10 @@ class TableSampler:
     """Fetches every table from the service every ``interval_s`` in a thread of its own (so a
     dead service never holds the traffic loop up): ``samples`` = [(t_s, tables or None)]."""
 
-    def __init__(self, lab: Lab, t0: float, interval_s: float = 0.5):
+    def __init__(self, lab: Lab, t0: float, interval_s: float = 0.5, clock: Clock = SYSTEM):
         self.lab = lab
         self.t0 = t0
+        self.clock = clock
         self.interval_s = interval_s
         self.samples: list[tuple[float, Any]] = []
         self._stop = threading.Event()
@@ -499,7 +501,7 @@ class TableSampler:
 
     def _loop(self) -> None:
         while not self._stop.wait(self.interval_s):
-            self.samples.append((time.monotonic() - self.t0, self.lab.tables(timeout_s=0.4)))
+            self.samples.append((self.clock.monotonic() - self.t0, self.lab.tables(timeout_s=0.4)))
 
     def stop(self) -> None:
         self._stop.set()
@@ -508,12 +510,14 @@ class TableSampler:
 
 def offer(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, int, float, int]],
           duration_s: float, drain_s: float, events: Sequence[Event], ttl: int,
-          progress: bool = False) -> dict[str, Any]:
-    """Send the packets at their times (wall clock), take deliveries, run the events."""
-    t0 = time.monotonic()
-    sampler = TableSampler(lab, t0)
+          progress: bool = False, clock: Clock = SYSTEM) -> dict[str, Any]:
+    """Send the packets at their times (``clock``: the real one by default), take
+    deliveries, run the events."""
+    t0 = clock.monotonic()
+    sampler = TableSampler(lab, t0, clock=clock)
     try:
-        out = _offer_loop(lab, traffic, packets, duration_s, drain_s, events, ttl, progress, t0)
+        out = _offer_loop(lab, traffic, packets, duration_s, drain_s, events, ttl, progress, t0,
+                          clock)
     finally:
         sampler.stop()
     out["table_samples"] = sampler.samples
@@ -522,7 +526,7 @@ def offer(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, int, f
 
 def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, int, float, int]],
                 duration_s: float, drain_s: float, events: Sequence[Event], ttl: int,
-                progress: bool, t0: float) -> dict[str, Any]:
+                progress: bool, t0: float, clock: Clock) -> dict[str, Any]:
     topo = lab.topo
     tag = ov.topology_tag(topo.digest)
     size = int(lab.packet_bytes)
@@ -540,14 +544,14 @@ def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, 
     last_show = 0.0
     seq = 0
     while True:
-        now = time.monotonic() - t0
+        now = clock.monotonic() - t0
         while nxt is not None and nxt[0] <= now:
             t, s, d, _bits, flow = nxt
             if t > duration_s:
                 nxt = None
                 break
             pkt = ov.data_packet(tag, s, d, flow & 0xFFFFFFFF, seq & 0xFFFFFFFF,
-                                 time.time_ns(), ttl, size)
+                                 clock.wall_ns(), ttl, size)
             try:
                 traffic.send[s].sendto(pkt, local)
             except OSError:
@@ -576,7 +580,7 @@ def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, 
                 elif ev.kind == "restart_service":
                     lab.start_service()
                     lab.log(f"t={now:.1f} s: service restarted (epoch {lab.service_epochs[-1]})")
-                ev.info["t_done_s"] = time.monotonic() - t0
+                ev.info["t_done_s"] = clock.monotonic() - t0
         if now >= end:
             break
         wait = 0.01
@@ -589,7 +593,7 @@ def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, 
                     data = r.recv(65535)  # type: ignore[union-attr]
                 except (BlockingIOError, InterruptedError):
                     break
-                tr = time.time_ns()
+                tr = clock.wall_ns()
                 h = ov.decode(data, nodes=topo.n, topo=tag)
                 if isinstance(h, ov.Malformed):
                     continue
@@ -597,7 +601,7 @@ def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, 
                 if hd.seq in dlv or hd.seq >= seq:
                     dup += 1
                     continue
-                dlv[hd.seq] = (time.monotonic() - t0, (tr - hd.origin_ns) / 1e9, ttl - hd.ttl)
+                dlv[hd.seq] = (clock.monotonic() - t0, (tr - hd.origin_ns) / 1e9, ttl - hd.ttl)
         if progress and now - last_show >= 1.0:
             last_show = now
             print(f"\rlab: t={now:5.1f}/{duration_s:g} s  sent {seq}  delivered {len(dlv)}",
@@ -605,7 +609,7 @@ def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, 
     if progress and last_show > 0:
         print(file=sys.stderr)
     return {"inj_t": inj_t, "inj_s": inj_s, "inj_d": inj_d, "dlv": dlv,
-            "send_errors": send_err, "duplicates": dup, "elapsed_s": time.monotonic() - t0}
+            "send_errors": send_err, "duplicates": dup, "elapsed_s": clock.monotonic() - t0}
 
 
 # ---- summary ------------------------------------------------------------------------------

@@ -30,6 +30,7 @@ from routerd import config as C
 from routerd import overlay as ov
 from routerd import topology as T
 from routerd import wire
+from routerd.clock import SYSTEM, FakeClock
 
 NODES = ["s", "x", "y", "t"]
 TOPO_DOC = {"topology": {"name": "diamond", "defaults": {"capacity_bps": 1e7, "buffer_pkts": 50},
@@ -195,12 +196,15 @@ class Diamond:
         self.tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
         self.tag = ov.topology_tag(self.topo.digest)
 
-    def start(self, name: str) -> AgentThread:
+    def make(self, name: str, clock: Any = SYSTEM) -> tuple[A.Agent, CollectorRegistry]:
         reg = CollectorRegistry()
         ag = A.Agent(self.cfg, self.topo, name, registry=reg, underlay=self.underlay,
                      local=f"127.0.0.1:{self.ports[name]['local']}",
-                     deliver=f"127.0.0.1:{self.ports[name]['deliver']}")
-        self.agents[name] = AgentThread(ag, reg)
+                     deliver=f"127.0.0.1:{self.ports[name]['deliver']}", clock=clock)
+        return ag, reg
+
+    def start(self, name: str) -> AgentThread:
+        self.agents[name] = AgentThread(*self.make(name))
         return self.agents[name]
 
     def start_all(self) -> None:
@@ -239,6 +243,57 @@ class Diamond:
         self.service.close()
         for s in list(self.sink.values()) + [self.tx]:
             s.close()
+
+
+class Turns:
+    """Agents of a diamond driven turn by turn on one FakeClock, in the test's own thread:
+    each step moves virtual time by ``step_s`` and gives every agent one turn that does
+    not wait.  Loopback UDP queues a datagram at the receiver before ``send`` returns, so
+    what one agent sends in a step is read by the others in that step or the next: the
+    agents' timing (probes, detection, held packets, reports) depends on the fake clock
+    only, never on how fast the machine is."""
+
+    def __init__(self, d: Diamond, step_s: float = 0.01):
+        self.d = d
+        self.clock = FakeClock(start=1000.0)
+        self.step_s = step_s
+        self.agents: dict[str, A.Agent] = {}
+        self.registries: dict[str, CollectorRegistry] = {}
+
+    def add(self, name: str) -> A.Agent:
+        ag, reg = self.d.make(name, self.clock)
+        ag.open()
+        self.agents[name], self.registries[name] = ag, reg
+        return ag
+
+    def remove(self, name: str) -> None:
+        self.agents.pop(name).close()
+
+    def step(self, n: int = 1) -> None:
+        for _ in range(n):
+            self.clock.advance(self.step_s)
+            for ag in self.agents.values():
+                ag.turn(0.0)
+
+    def step_until(self, pred: Callable[[], bool], max_steps: int) -> int:
+        """Steps taken until ``pred()`` holds (fails the test after ``max_steps``)."""
+        for i in range(max_steps + 1):
+            if pred():
+                return i
+            self.step()
+        raise AssertionError(f"not reached within {max_steps} steps of {self.step_s} s")
+
+    def metric(self, name: str, sample: str, labels: dict[str, str] | None = None) -> float:
+        text = generate_latest(self.registries[name]).decode()
+        for fam in text_string_to_metric_families(text):
+            for smp in fam.samples:
+                if smp.name == sample and (labels is None or all(smp.labels.get(k) == v for k, v in labels.items())):
+                    return smp.value
+        raise KeyError(sample)
+
+    def close(self) -> None:
+        for name in list(self.agents):
+            self.remove(name)
 
 
 @pytest.fixture
@@ -355,19 +410,45 @@ def test_probes_measure_emulated_delay_and_report_hop_rows(diamond: Callable[...
 
 
 def test_failure_detection_reports_down_then_up(diamond: Callable[..., Diamond]) -> None:
+    # on a fake clock, stepped 10 ms at a time: probe interval 50 ms, multiplier 3
     d = diamond()
-    d.start_all()
-    assert wait_until(lambda: ("s", "x", "up") in d.service.links, 5)
-    d.agents["x"].stop()
-    assert wait_until(lambda: ("s", "x", "down") in d.service.links, 5)
-    det = [e for e in d.agents["s"].agent.detections if e["neighbour"] == "x"]
-    # BFD detection time (RFC 5880 section 6.8.4): multiplier x interval = 3 x 50 ms without
-    # an echo; it cannot fire earlier than that
-    assert det and det[-1]["after_s"] >= 3 * 0.05
-    assert d.agents["s"].metric("routerd_agent_links_down") == 1
-    d.start("x")
-    assert wait_until(lambda: d.service.links.count(("s", "x", "up")) >= 2, 5)
-    assert d.agents["s"].metric("routerd_agent_link_state_changes_total", {"state": "up"}) >= 2
+    turns = Turns(d)
+    try:
+        for n in NODES:
+            turns.add(n)
+        s = turns.agents["s"]
+        # propagation is emulated (held delay_s <= 4 ms: one step): a probe goes out in
+        # step 1, is answered in step 2, and the echo is taken in step 4
+        assert turns.step_until(lambda: all(ln.state == "up" for a in turns.agents.values()
+                                            for ln in a.links.values()), 10) == 4
+        turns.step(5)                         # a report interval: the up rows are sent
+        assert wait_until(lambda: ("s", "x", "up") in d.service.links, 5)
+        turns.remove("x")
+        last = s.links[1].last_echo
+        # BFD detection time (RFC 5880 section 6.8.4): multiplier x interval = 3 x 50 ms
+        # without an echo.  It cannot fire earlier; it fires at the first probe tick after.
+        while s.links[1].state != "down":
+            assert turns.clock.monotonic() - last <= 3 * 0.05 + 0.05 + 1e-9, "detected too late"
+            turns.step()
+        det = [e for e in s.detections if e["neighbour"] == "x"]
+        assert len(det) == 1 and det[0]["from"] == "up"
+        assert 3 * 0.05 < det[0]["after_s"] <= 3 * 0.05 + 0.05 + 1e-9
+        assert det[0]["after_s"] == pytest.approx(turns.clock.monotonic() - last)
+        assert det[0]["at"] == pytest.approx(turns.clock.wall())      # the clock's wall time
+        assert turns.metric("s", "routerd_agent_links_down") == 1
+        assert s.links[2].state == "up"       # y kept echoing throughout
+        turns.step(5)
+        assert wait_until(lambda: ("s", "x", "down") in d.service.links, 5)
+        turns.add("x")
+        turns.step_until(lambda: s.links[1].state == "up", 10)
+        assert turns.metric("s", "routerd_agent_links_down") == 0
+        turns.step(5)
+        assert wait_until(lambda: d.service.links.count(("s", "x", "up")) >= 2, 5)
+        # s-x and s-y came up at start, s-x once more
+        assert turns.metric("s", "routerd_agent_link_state_changes_total", {"state": "up"}) == 3
+        assert turns.metric("s", "routerd_agent_link_state_changes_total", {"state": "down"}) == 1
+    finally:
+        turns.close()
 
 
 def test_ttl_expiry_and_malformed_packets_are_counted(diamond: Callable[..., Diamond]) -> None:
