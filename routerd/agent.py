@@ -46,13 +46,18 @@ then uses its own estimate of y).
 
 Failure detection (after BFD, RFC 5880, asynchronous mode): a link whose neighbour has
 not echoed for ``detect_multiplier x probe_interval_s`` is down; the next echo brings it up.
-States, as a table::
-
-    state  event                         next   report
-    init   echo                          up     up
-    init   detection time without echo   down   down
-    up     detection time without echo   down   down
-    down   echo                          up     up
+The rules are the table :data:`LINK_TRANSITIONS`, (state, event) → (next state, actions),
+and :meth:`Agent._link_event` is the only code that changes a link's state.  A link starts
+in ``init``: the agent has heard nothing yet, so it neither claims the link works nor
+reports it failed; the detection time runs from start-up, as if an echo had just come.
+The first echo or the first expiry of the detection time (``silence``) settles it, and
+the change is reported.  After that only a *change* is reported: an echo on an up link
+and silence on a down one do nothing, so a flapping neighbour costs one row per flap,
+never one per probe.  ``resync`` (a new service epoch: the service lost what it knew)
+reports a down link again and nothing else, because the service re-admits a link as up
+on its own.  Actions: ``report`` queues a link row to the service, ``count`` updates the
+link metrics and recomputes the static fallback (the set of usable links changed), and
+``record`` keeps a detection entry for the status file.
 
 Non-stop forwarding (in the spirit of RFC 3623's graceful restart): when the service
 publishes nothing and acknowledges nothing for ``agent.table_stale_s`` the agent keeps
@@ -87,6 +92,7 @@ import threading
 from collections import deque
 from collections.abc import Mapping
 from dataclasses import dataclass
+from types import MappingProxyType
 from typing import Any
 
 from . import overlay as ov
@@ -98,6 +104,27 @@ DROP_REASONS = ("no_route", "send_error", "hold_full", "not_data")
 #: Why a flowlet was (re-)pinned.
 REPIN_CAUSES = ("new", "idle", "table", "link", "return")
 LINK_STATES = ("init", "up", "down")
+#: States in which a link may carry traffic (init: nothing heard yet, not known failed).
+USABLE_STATES = frozenset({"init", "up"})
+#: What can happen to a link: an echo arrives; the detection time passes without one
+#: (checked at each probe); the service starts a new epoch.
+LINK_EVENTS = ("echo", "silence", "resync")
+#: What a transition does (module docstring): report a link row, count the change (metrics,
+#: static fallback), record a detection.
+LINK_ACTIONS = ("report", "count", "record")
+#: The link state machine: (state, event) -> (next state, actions).  Total over
+#: LINK_STATES x LINK_EVENTS; the theory of operation is in the module docstring.
+LINK_TRANSITIONS: Mapping[tuple[str, str], tuple[str, tuple[str, ...]]] = MappingProxyType({
+    ("init", "echo"): ("up", ("report", "count")),
+    ("init", "silence"): ("down", ("report", "count", "record")),
+    ("init", "resync"): ("init", ()),
+    ("up", "echo"): ("up", ()),
+    ("up", "silence"): ("down", ("report", "count", "record")),
+    ("up", "resync"): ("up", ()),
+    ("down", "echo"): ("up", ("report", "count")),
+    ("down", "silence"): ("down", ()),
+    ("down", "resync"): ("down", ("report",)),
+})
 #: Hop latency histogram buckets, seconds (sub-millisecond veth hops up to congested ones).
 LATENCY_BUCKETS_S = (1e-4, 2.5e-4, 5e-4, 1e-3, 2.5e-3, 5e-3, 0.01, 0.025, 0.05, 0.1, 0.25,
                      0.5, 1.0, 2.5)
@@ -570,7 +597,7 @@ class Agent:
 
     def _usable(self, y: int) -> bool:
         ln = self.links.get(y)
-        return ln is not None and ln.state != "down"
+        return ln is not None and ln.state in USABLE_STATES
 
     def _next_hop(self, dst: int, flow: int, now: float, came: int = -1) -> int:
         key = (dst, flow)
@@ -649,7 +676,7 @@ class Agent:
         t = self.topo
         w = t.delay_s.astype(float).copy()
         for y, ln in self.links.items():
-            if ln.state == "down" or y == exclude:
+            if ln.state not in USABLE_STATES or y == exclude:
                 w[t.link_index[(self.me, y)]] = np.inf
         _, nh = t.shortest_paths(w)
         return [int(v) for v in nh[self.me].tolist()]
@@ -713,9 +740,8 @@ class Agent:
             self.counts["resyncs"] += 1
             self.m.resyncs.inc()
             # the service restarted: tell it again what we see down (idempotent)
-            for y, ln in self.links.items():
-                if ln.state == "down":
-                    self.link_reports[y] = "down"
+            for ln in self.links.values():
+                self._link_event(ln, "resync", self.clock.monotonic())
         if self.nonstop:
             self._set_nonstop(False)
 
@@ -733,8 +759,8 @@ class Agent:
                 self.m.probes.labels("sent").inc()
             except OSError:
                 pass
-            if ln.state != "down" and now - ln.last_echo > ln.detect_s:
-                self._link_state(ln, "down", now)
+            if now - ln.last_echo > ln.detect_s:
+                self._link_event(ln, "silence", now)
 
     def _answer(self, ln: _Link, h: ov.Header, t2: int) -> None:
         if h.dst != self.me or h.src != ln.end.neighbour:
@@ -762,11 +788,10 @@ class Agent:
         self.counts["echoes"] += 1
         self.m.probes.labels("echoed").inc()
         self.m.latency.observe(lat)
-        ln.last_echo = now
         ln.lat_sum += lat
         ln.lat_n += 1
-        if ln.state != "up":
-            self._link_state(ln, "up", now)
+        self._link_event(ln, "echo", now)
+        ln.last_echo = now
         est = dict(e.estimates)
         names = self.topo.nodes
         me, y = names[self.me], names[ln.end.neighbour]
@@ -778,19 +803,24 @@ class Agent:
                     self.m.report_rows.labels("dropped").inc()
                 self.rows.append((me, y, names[d], lat, est.get(d)))
 
-    def _link_state(self, ln: _Link, state: str, now: float) -> None:
+    def _link_event(self, ln: _Link, event: str, now: float) -> None:
+        """Apply ``event`` to link ``ln`` by :data:`LINK_TRANSITIONS`."""
         old = ln.state
-        ln.state = state
-        ln.since = now
+        state, actions = LINK_TRANSITIONS[(old, event)]
+        if state != old:
+            ln.state = state
+            ln.since = now
         y = ln.end.neighbour
-        if state == "down":
+        if "record" in actions:
             self.detections.append({"neighbour": self.topo.nodes[y], "from": old,
                                     "after_s": now - ln.last_echo,
                                     "at": self.clock.wall()})
-        self.link_reports[y] = state
-        self.m.link_changes.labels(state).inc()
-        self.m.links_down.set(sum(1 for v in self.links.values() if v.state == "down"))
-        self._recompute_fallback()
+        if "report" in actions:
+            self.link_reports[y] = state
+        if "count" in actions:
+            self.m.link_changes.labels(state).inc()
+            self.m.links_down.set(sum(1 for v in self.links.values() if v.state == "down"))
+            self._recompute_fallback()
 
     # -- reporting -------------------------------------------------------------------------
     def _report(self, now: float) -> None:

@@ -569,3 +569,97 @@ def test_never_straight_back_while_another_way_exists(diamond: Callable[..., Dia
     x = d.agents["x"]
     assert x.metric("routerd_agent_returns_avoided_total") == 10
     assert d.agents["s"].agent.counts["ttl_expired"] == 0
+
+
+# ---- the link state machine, as data -------------------------------------------------------
+def test_link_transition_table_is_total_and_closed() -> None:
+    assert set(A.LINK_TRANSITIONS) == {(s, e) for s in A.LINK_STATES for e in A.LINK_EVENTS}
+    for (_s, _e), (nxt, actions) in A.LINK_TRANSITIONS.items():
+        assert nxt in A.LINK_STATES and set(actions) <= set(A.LINK_ACTIONS)
+    assert A.USABLE_STATES < set(A.LINK_STATES) and "down" not in A.USABLE_STATES
+    # RFC 5880's rule in our terms: a change is reported, a non-change is not (except resync)
+    for (s, e), (nxt, actions) in A.LINK_TRANSITIONS.items():
+        if e != "resync":
+            assert ("report" in actions) == (nxt != s), (s, e)
+            assert ("count" in actions) == (nxt != s), (s, e)
+        else:
+            assert nxt == s and "count" not in actions
+
+
+def _bare_agent(tmp_path: Any, clock: FakeClock) -> tuple[A.Agent, CollectorRegistry]:
+    """An agent of node s (not opened: no sockets) with its two links in hand."""
+    tp = tmp_path / "topo.yaml"
+    tp.write_text(yaml.safe_dump(TOPO_DOC))
+    topo = T.load(str(tp))
+    cfg = C.from_mapping_flat({"topology.file": str(tp), "agent.probe_interval_s": 0.05,
+                               "agent.detect_multiplier": 3}, "test", base=None)
+    ul = {(0, 1): (("127.0.0.1", 1), ("127.0.0.1", 2)), (1, 0): (("127.0.0.1", 2), ("127.0.0.1", 1)),
+          (0, 2): (("127.0.0.1", 3), ("127.0.0.1", 4)), (2, 0): (("127.0.0.1", 4), ("127.0.0.1", 3))}
+    reg = CollectorRegistry()
+    ag = A.Agent(cfg, topo, "s", registry=reg, underlay=ul, local="127.0.0.1:0",
+                 deliver="127.0.0.1:0", clock=clock)
+    for e in ag.ends:
+        ag.links[e.neighbour] = A._Link(e, None, 0.0, clock.monotonic(), ag.detect_s)  # type: ignore[arg-type]
+    ag._recompute_fallback()
+    return ag, reg
+
+
+@pytest.mark.parametrize("key", sorted(A.LINK_TRANSITIONS), ids="-".join)
+def test_each_link_transition_does_what_the_table_says(tmp_path: Any, key: tuple[str, str]) -> None:
+    state, event = key
+    nxt, actions = A.LINK_TRANSITIONS[key]
+    clock = FakeClock(start=10.0)
+    ag, reg = _bare_agent(tmp_path, clock)
+    try:
+        ln = ag.links[2]                     # s-y: the delay-shortest way to y and t
+        ln.state = state
+        ln.last_echo = 9.5
+        ag._recompute_fallback()
+        before = {st: reg.get_sample_value("routerd_agent_link_state_changes_total", {"state": st})
+                  for st in ("up", "down")}
+        fb = list(ag.fallback_nh)
+        clock.advance(1.0)
+        ag._link_event(ln, event, clock.monotonic())
+        assert ln.state == nxt
+        assert ag.link_reports == ({2: nxt} if "report" in actions else {})
+        changes = {st: reg.get_sample_value("routerd_agent_link_state_changes_total", {"state": st})
+                   for st in ("up", "down")}
+        assert changes == ({**before, nxt: before[nxt] + 1} if "count" in actions else before)
+        if "count" in actions:
+            assert reg.get_sample_value("routerd_agent_links_down") == (1 if nxt == "down" else 0)
+        det = list(ag.detections)
+        if "record" in actions:
+            assert det == [{"neighbour": "y", "from": state, "after_s": pytest.approx(1.5),
+                            "at": pytest.approx(clock.wall())}]
+        else:
+            assert det == []
+        # the static fallback follows the usable links: every node by way of y (s-y-t-x,
+        # 3 ms, beats s-x, 4 ms) unless s-y is down, then by way of x
+        want = [-1, 1, 1, 1] if nxt not in A.USABLE_STATES else [-1, 2, 2, 2]
+        assert ag.fallback_nh == want
+        assert (ag.fallback_nh != fb) == ("count" in actions and (state in A.USABLE_STATES)
+                                          != (nxt in A.USABLE_STATES))
+    finally:
+        ag.links = {}                        # no sockets of their own to close
+        ag.close()
+
+
+def test_link_walk_from_start_up(tmp_path: Any) -> None:
+    """A walk through the table as an agent meets it: silence at start-up, an echo, a flap,
+    a service restart while down."""
+    clock = FakeClock()
+    ag, _reg = _bare_agent(tmp_path, clock)
+    try:
+        ln = ag.links[1]
+        walk = [("silence", "down", {1: "down"}), ("silence", "down", {}), ("resync", "down", {1: "down"}),
+                ("echo", "up", {1: "up"}), ("echo", "up", {}), ("resync", "up", {}),
+                ("silence", "down", {1: "down"}), ("echo", "up", {1: "up"})]
+        for event, want, reports in walk:
+            clock.advance(0.2)
+            ag._link_event(ln, event, clock.monotonic())
+            assert (ln.state, ag.link_reports) == (want, reports), event
+            ag.link_reports.clear()
+        assert [d["from"] for d in ag.detections] == ["init", "up"]
+    finally:
+        ag.links = {}                        # no sockets of their own to close
+        ag.close()
