@@ -678,8 +678,8 @@ class Agent:
         for y, ln in self.links.items():
             if ln.state not in USABLE_STATES or y == exclude:
                 w[t.link_index[(self.me, y)]] = np.inf
-        _, nh = t.shortest_paths(w)
-        return [int(v) for v in nh[self.me].tolist()]
+        _, first = t.shortest_from(self.me, w)    # one source, not all pairs
+        return [int(v) for v in first.tolist()]
 
     def _prune(self, now: float) -> None:
         old = [k for k, p in self.flowlets.items() if now - p[1] > max(self.gap, 1.0)]
