@@ -135,13 +135,12 @@ class Progress:
 
     def line(self, view: Mapping[str, Any], route_changes: int | None, explore: float,
              trunk_util: float | None, events: str) -> str:
-        from sim.core import percentile
+        from .stats import delivery_stats
 
         dl = view["deliveries"]
-        recent = sorted(dl[self.prev:])
+        recent = delivery_stats(dl[self.prev:], ci=False)
         self.prev = len(dl)
-        mean = sum(recent) / len(recent) if recent else math.nan
-        p99 = percentile(recent, 0.99)
+        mean, p99 = recent.mean, recent.p99
         lost = view["dropped"] + view["ttl_expired"]
         rc = "-" if route_changes is None else f"{route_changes}"
         tu = "" if trunk_util is None else f" | trunk {trunk_util * 100:3.0f}%"
@@ -443,12 +442,11 @@ class Demo:
 
     def _write_partial(self) -> None:
         """What an interrupted demo still knows: the live run up to its last sample."""
-        from sim.core import percentile
+        from .stats import delivery_stats
 
         v = self.view
         if v is not None and "service" not in self.results:
-            dl = v["deliveries"]
-            srt = sorted(dl)
+            ds = delivery_stats(v["deliveries"], ci=False)
             se = v["series"]
             m = len(se["t_s"])
             summary = {
@@ -456,8 +454,7 @@ class Demo:
                 "duration_s": self.duration, "seed": self.seed, "rate_pps": BASE_RATE_PPS,
                 "delivered": v["delivered"], "dropped": v["dropped"],
                 "ttl_expired": v["ttl_expired"], "in_network": v["in_network"],
-                "mean_delivery_s": sum(dl) / len(dl) if dl else math.nan,
-                "p50_delivery_s": percentile(srt, 0.5), "p99_delivery_s": percentile(srt, 0.99),
+                "mean_delivery_s": ds.mean, "p50_delivery_s": ds.p50, "p99_delivery_s": ds.p99,
             }
             series = {
                 "t_s": list(se["t_s"][:m]), "delivered": list(se["delivered"][:m]),

@@ -617,8 +617,7 @@ def summarise(lab: Lab, res: dict[str, Any], *, rate: float, duration: float, wa
               seed: int, demands: bool, tc: list[dict[str, Any]], statuses: list[dict[str, Any] | None],
               wall_s: float) -> dict[str, Any]:
     """The simulator's summary keys (sim.run.reduce), from lab measurements."""
-    from sim.core import percentile
-    from sim.run import BATCHES, T975_19
+    from .stats import delivery_stats
 
     topo = lab.topo
     inj_t = res["inj_t"]
@@ -627,15 +626,8 @@ def summarise(lab: Lab, res: dict[str, Any], *, rate: float, duration: float, wa
     offered = len(measured)
     dl = [dlv[i][1] for i in measured if i in dlv]
     hops = [dlv[i][2] for i in measured if i in dlv]
-    srt = sorted(dl)
-    m = len(dl)
-    mean = sum(dl) / m if m else math.nan
-    ci = math.nan
-    if m >= BATCHES * 10:   # batch means, as sim.run.reduce (Law & Kelton, ch. 9)
-        bs = m // BATCHES
-        means = [sum(dl[i * bs:(i + 1) * bs]) / bs for i in range(BATCHES)]
-        mu = sum(means) / BATCHES
-        ci = T975_19 * math.sqrt(sum((x - mu) ** 2 for x in means) / (BATCHES - 1) / BATCHES)
+    ds = delivery_stats(dl)                  # the simulator's figures (routerd.stats)
+    m, mean = ds.count, ds.mean
     win = max(duration - warm, 1e-9)
 
     def total(key: str, sub: str = "counts") -> int:
@@ -664,9 +656,7 @@ def summarise(lab: Lab, res: dict[str, Any], *, rate: float, duration: float, wa
         "ttl_expired": total("ttl_expired"),
         "in_flight_at_end": 0,
         "delivery_ratio": m / offered if offered else math.nan,
-        "mean_delivery_s": mean, "mean_delivery_ci95_s": ci,
-        "p50_delivery_s": percentile(srt, 0.50), "p95_delivery_s": percentile(srt, 0.95),
-        "p99_delivery_s": percentile(srt, 0.99), "max_delivery_s": srt[-1] if srt else math.nan,
+        **ds.summary_keys(),
         "mean_hops": sum(hops) / m if m else math.nan,
         "throughput_pps": m / win,
         "link_util_max": max(util) if util else math.nan,

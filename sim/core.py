@@ -473,15 +473,3 @@ def run_core(
         end_s=t_end,
         busy_window_s=[busy[k] - busy_warm[k] for k in range(nl)],
     )
-
-
-def percentile(sorted_vals: Sequence[float], q: float) -> float:
-    """The q-quantile (0..1) of sorted values by linear interpolation (NaN when empty)."""
-    m = len(sorted_vals)
-    if m == 0:
-        return math.nan
-    pos = q * (m - 1)
-    lo = int(math.floor(pos))
-    hi = min(lo + 1, m - 1)
-    w = pos - lo
-    return float(sorted_vals[lo] * (1 - w) + sorted_vals[hi] * w)

@@ -23,18 +23,14 @@ import numpy as np
 from routerd import config as _config
 from routerd import topology as _topology
 from routerd.errors import InputError, Problem
+from routerd.stats import delivery_stats
 
 from . import policies as _policies
 from . import scenario as _scenario
-from .core import CoreResult, percentile, run_core
+from .core import CoreResult, run_core
 from .traffic import PoissonTraffic
 
 DEMO_TOPOLOGY = os.path.join(os.path.dirname(_topology.__file__), "data", "demo-lab.yaml")
-
-#: Student's t 0.975 quantile for 19 degrees of freedom (standard t tables), used for the
-#: 95% confidence interval from 20 batch means.
-T975_19 = 2.093
-BATCHES = 20
 
 
 @dataclass
@@ -199,19 +195,8 @@ def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
 def reduce(raw: CoreResult, sp: SimSpec, topo: _topology.Topology, policy: str,
            warm: float, pstats: Mapping[str, float]) -> dict[str, Any]:
     """Raw counts from :func:`run_core` → the summary, the series and per-link figures."""
-    dl = raw.deliveries
-    srt = sorted(dl)
-    m = len(dl)
-    mean = float(sum(dl) / m) if m else math.nan
-    # batch means (Law & Kelton, Simulation Modeling and Analysis, ch. 9): 20 batches of
-    # consecutive deliveries, a t-based 95% half-width
-    ci = math.nan
-    if m >= BATCHES * 10:
-        bs = m // BATCHES
-        means = [sum(dl[i * bs:(i + 1) * bs]) / bs for i in range(BATCHES)]
-        mu = sum(means) / BATCHES
-        var = sum((x - mu) ** 2 for x in means) / (BATCHES - 1)
-        ci = T975_19 * math.sqrt(var / BATCHES)
+    ds = delivery_stats(raw.deliveries)      # batch-means interval: routerd.stats
+    m = ds.count
     win = raw.window_s
     util = [b / win if win > 0 else math.nan for b in raw.busy_window_s]
     L = raw.little_area / win if win > 0 else math.nan
@@ -238,12 +223,7 @@ def reduce(raw: CoreResult, sp: SimSpec, topo: _topology.Topology, policy: str,
         "ttl_expired": raw.ttl_expired,
         "in_flight_at_end": raw.offered - raw.delivered - raw.dropped - raw.ttl_expired,
         "delivery_ratio": raw.delivered / raw.offered if raw.offered else math.nan,
-        "mean_delivery_s": mean,
-        "mean_delivery_ci95_s": ci,
-        "p50_delivery_s": percentile(srt, 0.50),
-        "p95_delivery_s": percentile(srt, 0.95),
-        "p99_delivery_s": percentile(srt, 0.99),
-        "max_delivery_s": float(srt[-1]) if srt else math.nan,
+        **ds.summary_keys(),
         "mean_hops": raw.hops_sum / m if m else math.nan,
         "throughput_pps": m / win if win > 0 else math.nan,
         "link_util_max": max(util) if util else math.nan,
