@@ -44,6 +44,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from . import overlay as ov
+from .childproc import parse_ready
 from .clock import SYSTEM, Clock
 from .errors import InputError, Problem
 
@@ -353,9 +354,9 @@ class Lab:
                 raise LabError("the service exited before it was ready:\n"
                                + "\n".join(self.service_lines[-20:]))
             self.service_lines.append(line.rstrip("\n"))
-            m = re.match(r"^routerd: ready \(pid (\d+), epoch (\d+)\)", line)
-            if m:
-                self.service_epochs.append(int(m.group(2)))
+            ready = parse_ready(line)
+            if ready:
+                self.service_epochs.append(ready[1])
                 threading.Thread(target=self._drain_service, args=(p,), daemon=True).start()
                 return
         raise LabError("the service was not ready in time")
