@@ -126,12 +126,12 @@ class Progress:
     """One line per simulated second: rewritten in place on a terminal, plain lines otherwise."""
 
     def __init__(self, duration_s: float, stream: Any = None):
+        from .progress import StatusLine
+
         self.duration = duration_s
-        self.stream = stream or sys.stdout
-        self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
+        self.status = StatusLine(stream or sys.stdout)
+        self.tty = self.status.tty
         self.prev = 0
-        self.last_line = ""
-        self.shown = False
 
     def line(self, view: Mapping[str, Any], route_changes: int | None, explore: float,
              trunk_util: float | None, events: str) -> str:
@@ -149,25 +149,15 @@ class Progress:
                 f"route changes {rc:>5} | exploring {explore * 100:4.1f}%{tu}"
                 + (f" | {events}" if events else ""))
 
+    @property
+    def last_line(self) -> str:
+        return self.status.last_text
+
     def show(self, text: str) -> None:
-        self.last_line = text
-        self.shown = True
-        try:
-            if self.tty:
-                self.stream.write("\r\033[K" + text)
-            else:
-                self.stream.write(text + "\n")
-            self.stream.flush()
-        except (OSError, ValueError):
-            pass
+        self.status.show(text, force=True)
 
     def done(self) -> None:
-        if self.tty and self.shown:
-            try:
-                self.stream.write("\n")
-                self.stream.flush()
-            except (OSError, ValueError):
-                pass
+        self.status.done()
 
 
 def _ms(v: float) -> str:

@@ -46,6 +46,7 @@ from typing import Any
 from . import overlay as ov
 from .childproc import parse_ready
 from .clock import SYSTEM, Clock
+from .progress import StatusLine
 from .errors import InputError, Problem
 
 PREFIX = "rdlab"
@@ -542,7 +543,7 @@ def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, 
     it = iter(packets)
     nxt = next(it, None)
     end = duration_s + drain_s
-    last_show = 0.0
+    status = StatusLine(every_s=1.0, plain_every_s=5.0, clock=clock) if progress else None
     seq = 0
     while True:
         now = clock.monotonic() - t0
@@ -603,12 +604,10 @@ def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, 
                     dup += 1
                     continue
                 dlv[hd.seq] = (clock.monotonic() - t0, (tr - hd.origin_ns) / 1e9, ttl - hd.ttl)
-        if progress and now - last_show >= 1.0:
-            last_show = now
-            print(f"\rlab: t={now:5.1f}/{duration_s:g} s  sent {seq}  delivered {len(dlv)}",
-                  end="", file=sys.stderr, flush=True)
-    if progress and last_show > 0:
-        print(file=sys.stderr)
+        if status is not None and now >= 1.0 and status.due():
+            status.show(f"lab: t={now:5.1f}/{duration_s:g} s  sent {seq}  delivered {len(dlv)}")
+    if status is not None:
+        status.done()
     return {"inj_t": inj_t, "inj_s": inj_s, "inj_d": inj_d, "dlv": dlv,
             "send_errors": send_err, "duplicates": dup, "elapsed_s": clock.monotonic() - t0}
 

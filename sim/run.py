@@ -257,25 +257,27 @@ def reduce(raw: CoreResult, sp: SimSpec, topo: _topology.Topology, policy: str,
     return {"summary": summary, "series": series, "links": links}
 
 
-def _progress_printer(duration: float) -> Any:
+def _progress_printer(duration: float, stream: Any = None) -> Any:
+    """Progress of a long run on stderr, from its third second on: redrawn twice a second
+    on a terminal, a plain line every 10 s elsewhere (:class:`routerd.progress.StatusLine`)."""
+    from routerd.progress import StatusLine
+
     t0 = time.perf_counter()
-    state = {"last": 0.0, "shown": False}
+    line = StatusLine(stream if stream is not None else sys.stderr, every_s=0.5, plain_every_s=10.0)
 
     def show(t: float, events: int, final: bool = False) -> None:
         now = time.perf_counter()
         if final:
-            if state["shown"]:
-                print(f"\rsimulated {duration:g} s: {events} events in {now - t0:.1f} s" + " " * 10,
-                      file=sys.stderr, flush=True)
+            if line.shown:
+                line.show(f"simulated {duration:g} s: {events} events in {now - t0:.1f} s", force=True)
+                line.done()
             return
-        if now - t0 < 2.0 or now - state["last"] < 0.5:
+        if now - t0 < 2.0 or not line.due():
             return
-        state["last"] = now
-        state["shown"] = True
         frac = min(t / duration, 1.0)
         eta = (now - t0) * (1 - frac) / frac if frac > 0 else math.nan
         bar = "#" * int(frac * 30)
-        print(f"\r[{bar:<30}] {frac * 100:5.1f}%  t={t:.2f}/{duration:g} s  {events} events  "
-              f"eta {eta:.0f} s", end="", file=sys.stderr, flush=True)
+        line.show(f"[{bar:<30}] {frac * 100:5.1f}%  t={t:.2f}/{duration:g} s  {events} events  "
+                  f"eta {eta:.0f} s")
 
     return show
