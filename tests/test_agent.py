@@ -283,6 +283,18 @@ class Turns:
             self.step()
         raise AssertionError(f"not reached within {max_steps} steps of {self.step_s} s")
 
+    def wait(self, pred: Callable[[], bool], timeout: float = 5.0) -> bool:
+        """Turns without moving virtual time until ``pred()`` holds: for what arrives over
+        zmq from the stand-in service's thread (tables, acknowledgements) in real time.
+        Each turn waits for input up to 5 ms; nothing that depends on the clock fires."""
+        end = time.monotonic() + timeout
+        while not pred():
+            if time.monotonic() > end:
+                return False
+            for ag in self.agents.values():
+                ag.turn(0.005)
+        return True
+
     def metric(self, name: str, sample: str, labels: dict[str, str] | None = None) -> float:
         text = generate_latest(self.registries[name]).decode()
         for fam in text_string_to_metric_families(text):
@@ -490,28 +502,42 @@ def test_ttl_expiry_and_malformed_packets_are_counted(diamond: Callable[..., Dia
 
 
 def test_nonstop_forwarding_and_resync(diamond: Callable[..., Diamond]) -> None:
+    # on a fake clock: table_stale_s 0.6 s, steps of 10 ms
     d = diamond()
     d.service.set_table("s", {"t": [["x", 1.0]]})
-    d.start_all()
-    s = d.agents["s"]
-    assert wait_until(lambda: s.agent.routes != {}, 5)
-    assert s.metric("routerd_agent_nonstop_forwarding") == 0
-    base = d.base
-    d.service.close()                                   # the service is gone
-    assert wait_until(lambda: s.metric("routerd_agent_nonstop_forwarding") == 1, 5)
-    for i in range(20):
-        d.send("s", "t", flow=i, seq=i)
-    assert len(d.received("t")) == 20                   # still forwarding, on the last table
-    assert d.forwarded("x") == 20                       # ... and by it, not by the fallback
-    d.agents["y"].stop()                                # a link fails while the service is away
-    assert wait_until(lambda: s.agent.links[2].state == "down", 5)
-    d.service = FakeService(base, d.topo, epoch=2)       # it comes back: a new epoch
-    d.service.set_table("s", {"t": [["x", 1.0]]})
-    assert wait_until(lambda: s.metric("routerd_agent_nonstop_forwarding") == 0, 5)
-    assert s.metric("routerd_agent_service_restarts_seen_total") == 1
-    assert s.metric("routerd_agent_nonstop_periods_total") == 1
-    # what it saw down while the service was away reaches the new service
-    assert wait_until(lambda: ("s", "y", "down") in d.service.links, 5)
+    turns = Turns(d)
+    try:
+        for n in NODES:
+            turns.add(n)
+        s = turns.agents["s"]
+        turns.step_until(lambda: all(ln.state == "up" for ln in s.links.values()), 10)
+        assert turns.wait(lambda: s.routes != {})
+        assert turns.metric("s", "routerd_agent_nonstop_forwarding") == 0
+        base = d.base
+        d.service.close()                                   # the service is gone
+        quiet_since = max(t for t in (s.table_at, s.last_ack_at) if t is not None)
+        turns.step_until(lambda: turns.metric("s", "routerd_agent_nonstop_forwarding") == 1, 80)
+        # declared at the first report tick (every 50 ms) after 0.6 s without a table or ack
+        assert 0.6 <= turns.clock.monotonic() - quiet_since <= 0.6 + 0.05 + 1e-9
+        for i in range(20):
+            d.send("s", "t", flow=i, seq=i)
+        turns.step(3)                                       # through s and x (held 4 ms, 1 ms)
+        assert len(d.received("t")) == 20                   # still forwarding, on the last table
+        assert turns.agents["x"].counts["forwarded"] == 20  # ... and by it, not the fallback
+        turns.remove("y")                                   # a link fails while the service is away
+        turns.step_until(lambda: s.links[2].state == "down", 25)
+        d.service = FakeService(base, d.topo, epoch=2)       # it comes back: a new epoch
+        d.service.set_table("s", {"t": [["x", 1.0]]})
+        assert turns.wait(lambda: turns.metric("s", "routerd_agent_nonstop_forwarding") == 0)
+        assert turns.metric("s", "routerd_agent_service_restarts_seen_total") == 1
+        assert turns.metric("s", "routerd_agent_nonstop_periods_total") == 1
+        # what it saw down while the service was away reaches the new service: behind the
+        # batches that piled up meanwhile, which go again after their timeout (2 s virtual)
+        turns.step_until(lambda: turns.wait(lambda: ("s", "y", "down") in d.service.links, 0.01),
+                         400)
+        assert s.counts["delivery_errors"] == 0
+    finally:
+        turns.close()
 
 
 def test_underlay_and_node_errors(tmp_path: Any) -> None:
