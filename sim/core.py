@@ -94,7 +94,7 @@ class CoreSeries:
 class CoreResult:
     """What :func:`run_core` measured: plain values, picklable.  Counts without ``_all``
     cover packets injected at or after the warm-up; ``_all`` counts cover every packet.
-    ``dataclasses.asdict`` gives the dict the loop used to return (same keys)."""
+    ``dataclasses.asdict`` gives it as a plain dict of the same names."""
 
     offered: int
     delivered: int
