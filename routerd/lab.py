@@ -51,6 +51,9 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from . import overlay as ov
+from .childproc import parse_ready
+from .clock import SYSTEM, Clock
+from .progress import StatusLine
 from .errors import InputError, Problem
 
 PREFIX = "rdlab"
@@ -481,9 +484,9 @@ class Lab:
                 raise LabError("the service exited before it was ready:\n"
                                + "\n".join(self.service_lines[-20:]))
             self.service_lines.append(line.rstrip("\n"))
-            m = re.match(r"^routerd: ready \(pid (\d+), epoch (\d+)\)", line)
-            if m:
-                self.service_epochs.append(int(m.group(2)))
+            ready = parse_ready(line)
+            if ready:
+                self.service_epochs.append(ready[1])
                 threading.Thread(target=self._drain_service, args=(p,), daemon=True).start()
                 return
         raise LabError("the service was not ready in time")
@@ -617,9 +620,10 @@ class TableSampler:
     """Fetches every table from the service every ``interval_s`` in a thread of its own (so a
     dead service never holds the traffic loop up): ``samples`` = [(t_s, tables or None)]."""
 
-    def __init__(self, lab: Lab, t0: float, interval_s: float = 0.5):
+    def __init__(self, lab: Lab, t0: float, interval_s: float = 0.5, clock: Clock = SYSTEM):
         self.lab = lab
         self.t0 = t0
+        self.clock = clock
         self.interval_s = interval_s
         self.samples: list[tuple[float, Any]] = []
         self._stop = threading.Event()
@@ -628,7 +632,7 @@ class TableSampler:
 
     def _loop(self) -> None:
         while not self._stop.wait(self.interval_s):
-            self.samples.append((time.monotonic() - self.t0, self.lab.tables(timeout_s=0.4)))
+            self.samples.append((self.clock.monotonic() - self.t0, self.lab.tables(timeout_s=0.4)))
 
     def stop(self) -> None:
         self._stop.set()
@@ -637,12 +641,14 @@ class TableSampler:
 
 def offer(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, int, float, int]],
           duration_s: float, drain_s: float, events: Sequence[Event], ttl: int,
-          progress: bool = False) -> dict[str, Any]:
-    """Send the packets at their times (wall clock), take deliveries, run the events."""
-    t0 = time.monotonic()
-    sampler = TableSampler(lab, t0)
+          progress: bool = False, clock: Clock = SYSTEM) -> dict[str, Any]:
+    """Send the packets at their times (``clock``: the real one by default), take
+    deliveries, run the events."""
+    t0 = clock.monotonic()
+    sampler = TableSampler(lab, t0, clock=clock)
     try:
-        out = _offer_loop(lab, traffic, packets, duration_s, drain_s, events, ttl, progress, t0)
+        out = _offer_loop(lab, traffic, packets, duration_s, drain_s, events, ttl, progress, t0,
+                          clock)
     finally:
         sampler.stop()
     out["table_samples"] = sampler.samples
@@ -651,7 +657,7 @@ def offer(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, int, f
 
 def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, int, float, int]],
                 duration_s: float, drain_s: float, events: Sequence[Event], ttl: int,
-                progress: bool, t0: float) -> dict[str, Any]:
+                progress: bool, t0: float, clock: Clock) -> dict[str, Any]:
     topo = lab.topo
     tag = ov.topology_tag(topo.digest)
     size = int(lab.packet_bytes)
@@ -666,17 +672,17 @@ def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, 
     it = iter(packets)
     nxt = next(it, None)
     end = duration_s + drain_s
-    last_show = 0.0
+    status = StatusLine(every_s=1.0, plain_every_s=5.0, clock=clock) if progress else None
     seq = 0
     while True:
-        now = time.monotonic() - t0
+        now = clock.monotonic() - t0
         while nxt is not None and nxt[0] <= now:
             t, s, d, _bits, flow = nxt
             if t > duration_s:
                 nxt = None
                 break
             pkt = ov.data_packet(tag, s, d, flow & 0xFFFFFFFF, seq & 0xFFFFFFFF,
-                                 time.time_ns(), ttl, size)
+                                 clock.wall_ns(), ttl, size)
             try:
                 traffic.send[s].sendto(pkt, local)
             except OSError:
@@ -705,7 +711,7 @@ def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, 
                 elif ev.kind == "restart_service":
                     lab.start_service()
                     lab.log(f"t={now:.1f} s: service restarted (epoch {lab.service_epochs[-1]})")
-                ev.info["t_done_s"] = time.monotonic() - t0
+                ev.info["t_done_s"] = clock.monotonic() - t0
         if now >= end:
             break
         wait = 0.01
@@ -718,7 +724,7 @@ def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, 
                     data = r.recv(65535)  # type: ignore[union-attr]
                 except (BlockingIOError, InterruptedError):
                     break
-                tr = time.time_ns()
+                tr = clock.wall_ns()
                 h = ov.decode(data, nodes=topo.n, topo=tag)
                 if isinstance(h, ov.Malformed):
                     continue
@@ -726,15 +732,13 @@ def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, 
                 if hd.seq in dlv or hd.seq >= seq:
                     dup += 1
                     continue
-                dlv[hd.seq] = (time.monotonic() - t0, (tr - hd.origin_ns) / 1e9, ttl - hd.ttl)
-        if progress and now - last_show >= 1.0:
-            last_show = now
-            print(f"\rlab: t={now:5.1f}/{duration_s:g} s  sent {seq}  delivered {len(dlv)}",
-                  end="", file=sys.stderr, flush=True)
-    if progress and last_show > 0:
-        print(file=sys.stderr)
+                dlv[hd.seq] = (clock.monotonic() - t0, (tr - hd.origin_ns) / 1e9, ttl - hd.ttl)
+        if status is not None and now >= 1.0 and status.due():
+            status.show(f"lab: t={now:5.1f}/{duration_s:g} s  sent {seq}  delivered {len(dlv)}")
+    if status is not None:
+        status.done()
     return {"inj_t": inj_t, "inj_s": inj_s, "inj_d": inj_d, "dlv": dlv,
-            "send_errors": send_err, "duplicates": dup, "elapsed_s": time.monotonic() - t0}
+            "send_errors": send_err, "duplicates": dup, "elapsed_s": clock.monotonic() - t0}
 
 
 # ---- summary ------------------------------------------------------------------------------
@@ -742,8 +746,7 @@ def summarise(lab: Lab, res: dict[str, Any], *, rate: float, duration: float, wa
               seed: int, demands: bool, tc: list[dict[str, Any]], statuses: list[dict[str, Any] | None],
               wall_s: float) -> dict[str, Any]:
     """The simulator's summary keys (sim.run.reduce), from lab measurements."""
-    from sim.core import percentile
-    from sim.run import BATCHES, T975_19
+    from .stats import delivery_stats
 
     topo = lab.topo
     inj_t = res["inj_t"]
@@ -752,15 +755,8 @@ def summarise(lab: Lab, res: dict[str, Any], *, rate: float, duration: float, wa
     offered = len(measured)
     dl = [dlv[i][1] for i in measured if i in dlv]
     hops = [dlv[i][2] for i in measured if i in dlv]
-    srt = sorted(dl)
-    m = len(dl)
-    mean = sum(dl) / m if m else math.nan
-    ci = math.nan
-    if m >= BATCHES * 10:   # batch means, as sim.run.reduce (Law & Kelton, ch. 9)
-        bs = m // BATCHES
-        means = [sum(dl[i * bs:(i + 1) * bs]) / bs for i in range(BATCHES)]
-        mu = sum(means) / BATCHES
-        ci = T975_19 * math.sqrt(sum((x - mu) ** 2 for x in means) / (BATCHES - 1) / BATCHES)
+    ds = delivery_stats(dl)                  # the simulator's figures (routerd.stats)
+    m, mean = ds.count, ds.mean
     win = max(duration - warm, 1e-9)
 
     def total(key: str, sub: str = "counts") -> int:
@@ -789,9 +785,7 @@ def summarise(lab: Lab, res: dict[str, Any], *, rate: float, duration: float, wa
         "ttl_expired": total("ttl_expired"),
         "in_flight_at_end": 0,
         "delivery_ratio": m / offered if offered else math.nan,
-        "mean_delivery_s": mean, "mean_delivery_ci95_s": ci,
-        "p50_delivery_s": percentile(srt, 0.50), "p95_delivery_s": percentile(srt, 0.95),
-        "p99_delivery_s": percentile(srt, 0.99), "max_delivery_s": srt[-1] if srt else math.nan,
+        **ds.summary_keys(),
         "mean_hops": sum(hops) / m if m else math.nan,
         "throughput_pps": m / win,
         "link_util_max": max(util) if util else math.nan,
