@@ -185,6 +185,15 @@ def test_choice_recorded_explicit_and_never_a_silent_demo_lab(tmp_path: Any) -> 
         fh.write("topology:\n  nodes: [a, b]\n  links:\n    - {between: [a, b], delay_s: 0.001, "
                  "capacity_bps: 1.0e6, buffer_pkts: 10}\n")
     assert choose(d, ns(topology=other), ring.digest).topo.nodes == ("a", "b")
+    # the same nodes with another delay: taken, and the difference said
+    import yaml
+
+    slower = str(tmp_path / "slower.yaml")
+    with open(slower, "w") as fh:
+        yaml.safe_dump(T.to_mapping(T._replace(ring, delay_s=ring.delay_s * 2)), fh)
+    ch = choose(d, ns(topology=slower), ring.digest)
+    assert ch.topo.digest == ring.digest and any("differs from the recorded" in s for s in ch.said)
+    assert not any("differs" in s for s in choose(d, ns(), ring.digest).said)
 
 
 def test_replay_uses_the_recorded_topology_and_refuses_another(tmp_path: Any,
