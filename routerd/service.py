@@ -1240,6 +1240,11 @@ class Service:
             self._journal_config()
             self._touched = True
 
+    def _effective(self, cfg: _config.Config) -> _config.Config:
+        """The config this process runs with, given the one a reload read (a hook: a shard
+        worker keeps the rate limits off); what the reload records."""
+        return cfg
+
     def _do_reload(self) -> dict[str, Any]:
         """Re-read the config (SIGHUP, control ``reload``); what changed, or why not."""
         args = self.reload_args
@@ -1249,7 +1254,7 @@ class Service:
                 raise InputError("the service was started without a command line to re-read")
             new = load_config(args, self.inputs.base if self.inputs is not None else None)
             tun, restart = self.cfg.tunable_diff(new)
-            merged = self.cfg.with_overrides(tun, where=f"{src or 'defaults'} (reload)")
+            merged = self._effective(self.cfg.with_overrides(tun, where=f"{src or 'defaults'} (reload)"))
             settings = EngineSettings.from_config(merged)
         except (InputError, ValueError) as e:
             self.counters.reloads["rejected"] += 1
@@ -1260,12 +1265,12 @@ class Service:
         state_dir = self.cfg["service.state_dir"]
         prev = self.documents
         try:
-            docs = _statedir.store(state_dir, None, merged)
+            new_id = _statedir.store(state_dir, None, merged).config
         except OSError as e:
-            docs = prev
+            new_id = None   # the config record then names none: never the previous one
             self.log.error("reload: cannot record the new config document; the journal "
-                           "keeps the settings", reason=_os_reason(e))
-        docs = _statedir.DocRefs(prev.topology, docs.config, prev.topology_id)
+                           "keeps the engine settings", reason=_os_reason(e))
+        docs = _statedir.DocRefs(prev.topology, new_id, prev.topology_id)
         if settings != self.engine.settings or docs != prev:
             # a new effective config is a config record naming its document, even when
             # the engine settings are unchanged (replay makes the same reconfigure call)

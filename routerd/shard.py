@@ -430,14 +430,9 @@ def _worker_class() -> type:
         def _shard_info(self) -> dict[str, Any]:
             return {"index": self.shard, "of": self.smap.n_shards, "destinations": int(self.own.size)}
 
-        def _do_reload(self) -> dict[str, Any]:
-            out = super()._do_reload()
-            if out.get("applied"):   # rate limits stay the front's
-                from . import guards as _guards
-
-                self.cfg = self.cfg.with_overrides(WORKER_OVERRIDES, where="shard worker")
-                self.guards.reconfigure(_guards.GuardSettings.from_config(self.cfg))
-            return out
+        def _effective(self, cfg: _config.Config) -> _config.Config:
+            # a reload keeps the rate limits the front's (and records the config as run)
+            return cfg.with_overrides(WORKER_OVERRIDES, where="shard worker")
 
         def info(self) -> Mapping[str, str]:
             return {**super().info(), "shard": f"{self.shard}/{self.smap.n_shards}"}

@@ -346,14 +346,30 @@ def test_sharded_state_dir_replays_and_restarts_alone(base: str, tmp_path: Any) 
 
     with open(net, "w") as fh:
         yaml.safe_dump(T.to_mapping(ring), fh)
+    conf = os.path.join(base, "c.yaml")
+    with open(conf, "w") as fh:
+        fh.write("guards:\n  rate: {batches_per_s: 1000.0}\n" + SERVICE_CFG.format(margin=0.05))
     rng = np.random.default_rng(3)
     extra = ("--shards", "2")
-    sp = ServiceProc(base, service_args(base, "--topology", net, *extra))
+    sp = ServiceProc(base, service_args(base, "--topology", net, "--config", conf, *extra))
     try:
-        _feed(sp, ring, rng, 12)
+        _feed(sp, ring, rng, 8)
+        # a reload through the front: every worker records its new config, as it runs it
+        # (rate limits stay the front's); a reload that changes nothing records nothing
+        with open(conf, "w") as fh:
+            fh.write("guards:\n  rate: {batches_per_s: 1000.0}\n" + SERVICE_CFG.format(margin=0.2))
+        assert sp.control({"op": "reload"})["reload"]
+        assert sp.control({"op": "reload"})["reload"]
+        for k in range(2):
+            wd = shard.shard_dir(sp.state_dir, k, 2)
+            c = statedir.load_config(wd, statedir.current(wd).config)
+            assert c["engine.hysteresis.margin"] == 0.2 and c["guards.rate.batches_per_s"] == 0.0
+            assert sum(r.kind == "config" for r in J.iter_records(J.journal_dir(wd))) == 1
+        _feed(sp, ring, rng, 4)
         time.sleep(0.3)
         live = sp.control({"op": "tables"})
         os.unlink(net)
+        os.unlink(conf)
         sp.signal(signal.SIGTERM)
         assert sp.wait(30) == 0
     finally:
