@@ -191,7 +191,11 @@ def choose_inputs(args: argparse.Namespace, docs_dir: str | None = None,
     def written_for() -> str | None:
         return next((w for d in dirs if (w := _journal.written_for(_journal.journal_dir(d)))), None)
 
-    return _statedir.choose(args, where, refs if refs is not None else _statedir.current(where),
+    if refs is None:
+        # the pointer; a directory without one (it could not be written) from its records
+        refs = _statedir.current(where) or _statedir.refs_in(
+            _journal.iter_records(_journal.journal_dir(where), 0))
+    return _statedir.choose(args, where, refs,
                             state_root=root, written_for=written_for,
                             load_config_fn=load_config, load_topology_fn=load_topology)
 
@@ -508,11 +512,15 @@ class Service:
             if r.engine.settings != want:
                 self._reconfigure_engine(want)
             self._commit()
-            _statedir.set_current(state_dir, self.documents)
         except StorageDown as e:
             raise StartError(f"state dir {state_dir}: {e}") from None
+        try:
+            _statedir.set_current(state_dir, self.documents)
         except OSError as e:
-            raise StartError(f"state dir {state_dir}: {_statedir.CURRENT}: {_os_reason(e)}") from None
+            # the start record names the documents; without the pointer a start from the
+            # directory alone reads them from the journal instead
+            self.log.warning("cannot update the pointer to the recorded documents",
+                             file=_statedir.CURRENT, reason=_os_reason(e))
 
     def _bind_all(self, zmq: Any) -> None:
         cfg = self.cfg

@@ -390,3 +390,19 @@ def test_sharded_state_dir_replays_and_restarts_alone(base: str, tmp_path: Any) 
         assert sp.wait(30) == 0
     finally:
         sp.kill()
+
+
+def test_serve_reads_the_records_when_the_pointer_is_gone(tmp_path: Any) -> None:
+    from routerd.service import choose_inputs
+
+    ring = ring_with_chords(12, 6, seed=2)
+    d = str(tmp_path / "state")
+    refs = statedir.store(d, ring, config.load(None).with_overrides({"engine.ceiling_s": 7.0}))
+    j = J.Journal(J.journal_dir(d))
+    j.append("start", {"topology": ring.digest, "nodes": list(ring.nodes), "epoch": 1,
+                       "documents": refs.body()})
+    j.close()
+    assert statedir.current(d) is None
+    ch = choose_inputs(ns(state_dir=d))
+    same_topology(ch.topo, ring)
+    assert ch.cfg["engine.ceiling_s"] == 7.0 and ch.cfg["service.state_dir"] == d
