@@ -235,7 +235,7 @@ def recorded_refs(journal_dir: str, state_dir: str | None) -> _statedir.DocRefs 
     if cur is None:
         return rec
     return _statedir.DocRefs(rec.topology or cur.topology, rec.config or cur.config,
-                             rec.topology_id or cur.topology_id)
+                             rec.topology_id or cur.topology_id, rec.shard_map or cur.shard_map)
 
 
 @dataclass

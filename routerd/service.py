@@ -1278,7 +1278,7 @@ class Service:
             new_id = None   # the config record then names none: never the previous one
             self.log.error("reload: cannot record the new config document; the journal "
                            "keeps the engine settings", reason=_os_reason(e))
-        docs = _statedir.DocRefs(prev.topology, new_id, prev.topology_id)
+        docs = dataclasses.replace(prev, config=new_id)
         if settings != self.engine.settings or docs != prev:
             # a new effective config is a config record naming its document, even when
             # the engine settings are unchanged (replay makes the same reconfigure call)

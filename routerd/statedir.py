@@ -55,7 +55,9 @@ from .topology import Topology
 # Theory of operation.  Every ``start`` record names, under ``documents``, the content ids
 # of the topology and of the effective config the service ran with; every ``config``
 # record names the effective config after the reload.  The documents themselves live in
-# ``S/documents/`` as ``topology-<id>.yaml`` and ``config-<id>.yaml``: the id is the first
+# ``S/documents/`` as ``topology-<id>.yaml`` and ``config-<id>.yaml`` (and a copy of the
+# config's ``shard.map`` file as ``shardmap-<id>.yaml``, named by ``start`` records and
+# used in place of the original when the recorded config is): the id is the first
 # 16 hex digits of the SHA-256 of the file's bytes, so a file never changes once written
 # and a damaged one is detected on reading.  Both are our own formats (a topology file
 # with every link directed and every value explicit; a full config file with every key),
@@ -67,9 +69,10 @@ from .topology import Topology
 #   3. ``current.yaml``, the pointer to the documents of the newest committed record
 #      (same atomic write).
 # A crash between 2 and 3 leaves the pointer at the previous documents, which the journal
-# also ran with (same node list: a service refuses another topology); replay reads the
-# records' own references first, the pointer only where no record names any (segments
-# retired behind snapshots, or a sharded front, which has no journal).  Written under the
+# also ran with (same node list: a service refuses another topology).  ``serve`` reads the
+# pointer (the journal's references when there is none); replay reads the records' own
+# references first, the pointer only where no record names any (segments retired behind
+# snapshots, or a sharded front, which has no journal).  Written under the
 # directory's lock (the caller holds it: the service for its whole life).
 
 DOCUMENTS = "documents"
@@ -77,7 +80,6 @@ CURRENT = "current.yaml"
 #: modes for what we create in the state dir (routerd/fsmode.py will own these)
 FILE_MODE = 0o600
 DIR_MODE = 0o700
-_DOC_RE = re.compile(r"^(topology|config)-([0-9a-f]{16})\.yaml$")
 
 
 class DocumentError(InputError):
@@ -92,10 +94,12 @@ class DocRefs:
     topology: str | None = None
     config: str | None = None
     topology_id: str | None = None
+    shard_map: str | None = None     # a copy of the config's shard.map file
 
     def body(self) -> dict[str, str]:
         """What a ``start`` / ``config`` record carries under ``documents``."""
-        return {k: v for k, v in (("topology", self.topology), ("config", self.config)) if v}
+        return {k: v for k, v in (("topology", self.topology), ("config", self.config),
+                                  ("shard_map", self.shard_map)) if v}
 
 
 def documents_dir(state_dir: str) -> str:
@@ -166,17 +170,27 @@ def _store(state_dir: str, kind: str, data: bytes) -> str:
 
 
 def store(state_dir: str, topo: Topology | None, cfg: Config | None) -> DocRefs:
-    """Write the documents a record is about to refer to (step 1); their ids."""
+    """Write the documents a record is about to refer to (step 1); their ids.  A config
+    naming a ``shard.map`` file gets a byte-for-byte copy of it recorded too (a missing one
+    is not: a service that is not sharded never reads it)."""
+    smap = None
+    if cfg is not None and cfg["shard.map"]:
+        try:
+            with open(cfg["shard.map"], "rb") as fh:
+                smap = _store(state_dir, "shardmap", fh.read())
+        except FileNotFoundError:
+            pass
     return DocRefs(_store(state_dir, "topology", topology_bytes(topo)) if topo is not None else None,
                    _store(state_dir, "config", config_bytes(cfg)) if cfg is not None else None,
-                   topo.digest if topo is not None else None)
+                   topo.digest if topo is not None else None, smap)
 
 
 def set_current(state_dir: str, refs: DocRefs) -> None:
     """Point ``current.yaml`` at the documents of the newest committed record (step 3)."""
     import yaml
 
-    doc = {"topology": refs.topology, "config": refs.config, "topology_id": refs.topology_id}
+    doc = {"topology": refs.topology, "config": refs.config, "topology_id": refs.topology_id,
+           "shard_map": refs.shard_map}
     os.makedirs(documents_dir(state_dir), mode=DIR_MODE, exist_ok=True)
     _write_atomic(os.path.join(documents_dir(state_dir), CURRENT),
                   yaml.safe_dump(doc, sort_keys=True).encode("utf-8"))
@@ -190,18 +204,20 @@ def current(state_dir: str) -> DocRefs | None:
     doc = read_yaml(path, DocumentError)
     ok = isinstance(doc, dict) and all(
         doc.get(k) is None or (isinstance(doc.get(k), str) and re.fullmatch(r"[0-9a-f]{16}", doc[k]))
-        for k in ("topology", "config", "topology_id"))
+        for k in ("topology", "config", "topology_id", "shard_map"))
     if not ok:
         raise DocumentError(Problem(path, doc, "is not a pointer to recorded documents "
-                                    "(topology, config, topology_id: 16 hex digits each)"))
-    return DocRefs(doc.get("topology"), doc.get("config"), doc.get("topology_id"))
+                                    "(topology, config, topology_id, shard_map: 16 hex "
+                                    "digits each)"))
+    return DocRefs(doc.get("topology"), doc.get("config"), doc.get("topology_id"),
+                   doc.get("shard_map"))
 
 
 def refs_in(records: Iterable[Any]) -> DocRefs:
     """The documents the newest records refer to: the last ``start`` record's topology (and
     the wire id it was written for), the last ``start`` or ``config`` record's config.
     ``records``: journal records (objects with ``kind`` and ``body``), in order."""
-    topo = cfg = tid = None
+    topo = cfg = tid = smap = None
     for r in records:
         if r.kind not in ("start", "config"):
             continue
@@ -209,8 +225,9 @@ def refs_in(records: Iterable[Any]) -> DocRefs:
         if r.kind == "start":
             tid = r.body.get("topology", tid)
             topo = docs.get("topology")
+            smap = docs.get("shard_map")     # shard.map needs a restart: only start records
         cfg = docs.get("config")      # a record without one: that config is not known
-    return DocRefs(topo, cfg, tid)
+    return DocRefs(topo, cfg, tid, smap)
 
 
 def _read_doc(state_dir: str, kind: str, cid: str) -> tuple[str, bytes]:
@@ -280,8 +297,13 @@ def choose(args: argparse.Namespace, state_dir: str, refs: DocRefs | None, *,
     explicit_cfg = bool(getattr(args, "config", None))
     base = None
     if not explicit_cfg and refs is not None and refs.config:
-        base = load_config(state_dir, refs.config).with_overrides(
-            {"service.state_dir": state_root}, where=f"recorded config {refs.config}")
+        base = load_config(state_dir, refs.config)
+        over: dict[str, Any] = {"service.state_dir": state_root}
+        if base["shard.map"] and refs.shard_map:
+            # the recorded copy, not the file it was copied from (which may be gone)
+            over["shard.map"] = os.path.abspath(_doc_path(state_dir, "shardmap", refs.shard_map))
+            _read_doc(state_dir, "shardmap", refs.shard_map)
+        base = base.with_overrides(over, where=f"recorded config {refs.config}")
         said.append(f"config   recorded in {os.path.abspath(_doc_path(state_dir, 'config', refs.config))} "
                     "(no --config given)")
     cfg = load_config_fn(args, base)

@@ -347,8 +347,12 @@ def test_sharded_state_dir_replays_and_restarts_alone(base: str, tmp_path: Any) 
     with open(net, "w") as fh:
         yaml.safe_dump(T.to_mapping(ring), fh)
     conf = os.path.join(base, "c.yaml")
+    smap = os.path.join(base, "map.yaml")
+    with open(smap, "w") as fh:
+        fh.write("h0: 1\nh1: 1\nh2: 1\nh3: 0\n")
+    head = f"guards:\n  rate: {{batches_per_s: 1000.0}}\nshard:\n  map: {smap}\n"
     with open(conf, "w") as fh:
-        fh.write("guards:\n  rate: {batches_per_s: 1000.0}\n" + SERVICE_CFG.format(margin=0.05))
+        fh.write(head + SERVICE_CFG.format(margin=0.05))
     rng = np.random.default_rng(3)
     extra = ("--shards", "2")
     sp = ServiceProc(base, service_args(base, "--topology", net, "--config", conf, *extra))
@@ -357,7 +361,7 @@ def test_sharded_state_dir_replays_and_restarts_alone(base: str, tmp_path: Any) 
         # a reload through the front: every worker records its new config, as it runs it
         # (rate limits stay the front's); a reload that changes nothing records nothing
         with open(conf, "w") as fh:
-            fh.write("guards:\n  rate: {batches_per_s: 1000.0}\n" + SERVICE_CFG.format(margin=0.2))
+            fh.write(head + SERVICE_CFG.format(margin=0.2))
         assert sp.control({"op": "reload"})["reload"]
         assert sp.control({"op": "reload"})["reload"]
         for k in range(2):
@@ -370,6 +374,7 @@ def test_sharded_state_dir_replays_and_restarts_alone(base: str, tmp_path: Any) 
         live = sp.control({"op": "tables"})
         os.unlink(net)
         os.unlink(conf)
+        os.unlink(smap)                       # the recorded copy takes its place
         sp.signal(signal.SIGTERM)
         assert sp.wait(30) == 0
     finally:
@@ -378,6 +383,7 @@ def test_sharded_state_dir_replays_and_restarts_alone(base: str, tmp_path: Any) 
     for k in range(2):
         assert statedir.current(shard.shard_dir(sd, k, 2)).topology_id == ring.digest
     assert statedir.current(sd).topology_id == ring.digest          # the front's own
+    assert statedir.current(sd).shard_map is not None
     out = str(tmp_path / "r")
     assert main(["replay", sd, "--out", out]) == 0
     with open(os.path.join(out, "tables.json")) as fh:
