@@ -32,6 +32,11 @@ routed with the recorded tables: a variant is judged on the recorded traffic, no
 traffic its own tables would have drawn (for that, the simulator with ``--traffic`` and
 ``--link-trace``).
 
+Topology.  The one the state dir recorded (:mod:`routerd.statedir`: the newest ``start``
+record's document, else the directory's pointer), so the directory alone is enough;
+``--topology`` / ``--config`` may name the same network (same id) and are refused
+otherwise; the built-in demo lab only for a journal written for it.
+
 Start.  A journal still holding record 1 is replayed from scratch.  One whose early
 segments were retired behind snapshots starts from the oldest intact snapshot it
 continues from, so every variant starts from the same learned state.

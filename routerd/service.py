@@ -32,9 +32,11 @@ iteration:
 5. every ``service.snapshot_interval_s`` write a snapshot and retire the journal
    segments it covers.
 
-Start-up restores the newest readable snapshot, then replays the journal after it with
-:func:`journal.replay_into` — the same code path an offline replay uses — so the state
-after a restart equals the state before it.  The snapshot carries the engine settings in
+Start-up takes the config and topology the flags give, else the ones the state dir
+recorded (:func:`statedir.choose`), restores the newest readable snapshot, then replays
+the journal after it with :func:`journal.replay_into` — the same code path an offline
+replay uses — so the state after a restart equals the state before it.  It records the
+topology and config documents before the ``start`` record that names them.  The snapshot carries the engine settings in
 force when it was taken and the duplicate windows, so neither is lost.
 
 Storage faults.  A journal write or fsync that fails (disk full, I/O error) puts the
