@@ -314,6 +314,13 @@ def choose(args: argparse.Namespace, state_dir: str, refs: DocRefs | None, *,
     if getattr(args, "topology", None) or (explicit_cfg and cfg["topology.file"]):
         topo = load_topology_fn(cfg)
         said.append(f"topology {topo.source}")
+        if refs is not None and refs.topology_id and refs.topology_id != topo.digest:
+            # also where no start record is left to say so (retired behind snapshots)
+            raise DocumentError(Problem(state_dir, refs.topology_id, (
+                f"is the topology id the state dir was written for; {topo.name!r} from "
+                f"{topo.source} has id {topo.digest}: another topology needs another "
+                "state dir; " + ("give no --topology (the state dir keeps its own)"
+                                 if refs.topology else "give the service's --topology or --config"))))
         if (refs is not None and refs.topology and refs.topology_id == topo.digest
                 and content_id(topology_bytes(topo)) != refs.topology):
             # same nodes (same id), other links or values: allowed, but never unnoticed

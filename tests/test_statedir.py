@@ -179,12 +179,16 @@ def test_choice_recorded_explicit_and_never_a_silent_demo_lab(tmp_path: Any) -> 
     assert ch.recorded_topology and ch.cfg["engine.hysteresis.margin"] == 0.3
     assert ch.cfg["service.ingest"] == "ipc:///tmp/z" and ch.cfg["service.state_dir"] == d
     assert any("recorded in" in s for s in ch.said)
-    # an explicit topology is taken as given (its fit to the journal is the caller's check)
+    # an explicit topology of another network: refused naming both ids, even with no
+    # journal record left to say so
     other = str(tmp_path / "other.yaml")
     with open(other, "w") as fh:
         fh.write("topology:\n  nodes: [a, b]\n  links:\n    - {between: [a, b], delay_s: 0.001, "
                  "capacity_bps: 1.0e6, buffer_pkts: 10}\n")
-    assert choose(d, ns(topology=other), ring.digest).topo.nodes == ("a", "b")
+    with pytest.raises(statedir.DocumentError) as e:
+        choose(d, ns(topology=other), None)
+    assert ring.digest in str(e.value) and T.load(other).digest in str(e.value)
+    assert "another topology" in str(e.value)
     # the same nodes with another delay: taken, and the difference said
     import yaml
 
