@@ -285,13 +285,18 @@ def choose(args: argparse.Namespace, state_dir: str, refs: DocRefs | None, *,
       written for another network: :class:`DocumentError` asks for ``--topology`` /
       ``--config`` (a directory from before documents were kept).
 
+    An explicit topology whose id is not the recorded one is refused here, naming both
+    ids; one with the recorded id but other links or values is taken and said so.  The
+    journal's own records are checked again by the callers (serve: the start-up restore;
+    replay: its ``_check_topology``), which also covers directories without documents.
+
     ``state_dir``: where the documents are (a shard worker's own dir); ``state_root``: the
     ``service.state_dir`` the command runs with (put into a recorded config, whose own
-    value may name where the directory used to be); ``refs``: the documents to use (the records' references or :func:`current`);
-    ``written_for``: the wire id of the journal's first ``start`` record, or None (called
-    only when needed); the two loaders are the shells' (flags on top of a config, and the
-    config's topology file or the demo lab).  Whether an explicit topology fits the
-    journal is the caller's check (serve: the start-up restore; replay: its own).
+    value may name where the directory used to be); ``refs``: the documents to use (the
+    records' references or :func:`current`); ``written_for``: the wire id of the
+    journal's first ``start`` record, or None (called only when needed); the two loaders
+    are the shells' (flags on top of a config, and the config's topology file or the
+    demo lab).
     """
     said: list[str] = []
     explicit_cfg = bool(getattr(args, "config", None))
