@@ -451,6 +451,9 @@ def _load_config_and_topology(args: argparse.Namespace, src: Source, *, recorded
     ch = _statedir.choose(ns, where, refs,
                           state_root=where, written_for=lambda: J.written_for(src.journal_dir),
                           load_config_fn=load_config, load_topology_fn=load_topology)
+    if not (args.config or recorded_config):
+        # replay takes its settings from the records: a config line would only mislead
+        ch.said = [x for x in ch.said if not x.startswith("config")]
     return (ch.cfg if args.config else None), ch.topo, ch
 
 

@@ -236,11 +236,14 @@ def _read_doc(state_dir: str, kind: str, cid: str) -> tuple[str, bytes]:
         with open(path, "rb") as fh:
             data = fh.read()
     except FileNotFoundError:
+        flag = {"topology": "--topology", "config": "--config"}.get(kind, "--config")
         raise DocumentError(Problem(path, cid, f"is the recorded {kind} document and it is "
-                                    "missing from the state dir")) from None
+                                    f"missing from the state dir: give {flag} FILE")) from None
     if content_id(data) != cid:
+        flag = {"topology": "--topology", "config": "--config"}.get(kind, "--config")
         raise DocumentError(Problem(path, content_id(data), f"is the content id of this file, "
-                                    f"not {cid}: the recorded {kind} document is damaged"))
+                                    f"not {cid}: the recorded {kind} document is damaged; "
+                                    f"give {flag} FILE"))
     return path, data
 
 
