@@ -749,6 +749,13 @@ def snapshot_dir(state_dir: str) -> str:
     return os.path.join(state_dir, "snapshots")
 
 
+def written_for(directory: str) -> str | None:
+    """The topology id the first ``start`` record of the journal in ``directory`` names
+    (None: no such record)."""
+    return next((r.body.get("topology") for r in iter_records(directory, 0)
+                 if r.kind == "start"), None)
+
+
 def engine_state(engine: Engine, **extra: Any) -> dict[str, Any]:
     """A snapshot state: the engine's arrays and scalars, its settings, and anything else
     the caller keeps (e.g. the service's dedup table) as plain values."""

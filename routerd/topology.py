@@ -751,8 +751,11 @@ def topohub_doc(key: str) -> dict[str, Any]:
 
 
 def to_mapping(t: Topology) -> dict[str, Any]:
-    """Our YAML format for a topology (directed links, explicit values)."""
-    return {
+    """Our YAML format for a topology (directed links in index order, explicit values,
+    demands when present): :func:`from_mapping` gives back the same nodes, links, values
+    and demand matrix, bit for bit (a state dir keeps its topology this way).  Not kept:
+    ``source`` and ``meta`` (a topohub file's published figures)."""
+    doc = {
         "topology": {
             "name": t.name,
             "nodes": list(t.nodes),
@@ -764,3 +767,9 @@ def to_mapping(t: Topology) -> dict[str, Any]:
             ],
         }
     }
+    if t.demands is not None:
+        a, b = np.nonzero(t.demands)
+        doc["topology"]["demands"] = [{"from": t.nodes[i], "to": t.nodes[j],
+                                       "rate": float(t.demands[i, j])}
+                                      for i, j in zip(a.tolist(), b.tolist())]
+    return doc
