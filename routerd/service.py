@@ -77,6 +77,7 @@ from . import __version__, wire
 from . import config as _config
 from . import guards as _guards
 from . import journal as _journal
+from . import listeners as _listeners
 from . import security as _security
 from . import topology as _topology
 from .cautions import CAUTIONS
@@ -329,7 +330,8 @@ class Service:
         self._last_record = 0
         self._unsynced = False
         self._unsynced_since = 0.0
-        self._monitor: Any = None
+        self.listeners: _listeners.Listeners | None = None
+        self._next_gate_tick = 0.0
 
     # -- metrics source -------------------------------------------------------------------
     def engine_statistics(self) -> Any:
@@ -375,12 +377,17 @@ class Service:
         except OSError as e:
             raise StartError(f"state dir {state_dir}: {e.strerror}") from None
         self._restore(state_dir)
+        before, soft, hard = _listeners.raise_nofile()
+        if soft != before:
+            self.log.info("raised the descriptor limit to the hard limit", before=before,
+                          now=soft, hard=hard)
         self.ctx = zmq.Context()
         if self.allow is not None:
             # the ZAP handler must run before the first CURVE socket binds
             self.auth = _security.start_authenticator(self.ctx, self.allow)
         self._bind_all(zmq)
         self._start_metrics()
+        self._cap_connections()
         self._install_signals()
         now = time.monotonic()
         self._next_publish_all = now            # a fresh subscriber gets tables at once
@@ -497,6 +504,9 @@ class Service:
                 # an ack for a peer that is gone (or whose queue is full) raises instead of
                 # vanishing, so it is counted
                 s.setsockopt(zmq.ROUTER_MANDATORY, 1)
+            # the kernel queues at most this many connects: libzmq's burst of accepts
+            # before the loop reads the monitor is bounded by it (routerd.listeners)
+            s.setsockopt(zmq.BACKLOG, _listeners.BURST)
             if self.server_keys is not None and name != "control_ro":
                 _security.make_server(s, *self.server_keys)    # before bind
             try:
@@ -515,7 +525,6 @@ class Service:
         mk(zmq.REP, "control", cfg["service.control"])
         if cfg["security.control_readonly"]:
             mk(zmq.REP, "control_ro", cfg["security.control_readonly"])
-        self._monitor = self.sockets["ingest"].get_monitor_socket(zmq.EVENT_DISCONNECTED)
         pipe = f"inproc://routerd-stop-{id(self)}"
         self._sig_rx = self.ctx.socket(zmq.PAIR)
         self._sig_rx.linger = 0
@@ -524,6 +533,32 @@ class Service:
         self._sig_tx.linger = 0
         self._sig_tx.sndhwm = 16
         self._sig_tx.connect(pipe)
+
+    def _cap_connections(self) -> None:
+        """The connection cap from the descriptor limit, and a monitor on every listening
+        socket (:mod:`routerd.listeners`)."""
+        import resource
+
+        names = list(self.sockets)
+        soft = resource.getrlimit(resource.RLIMIT_NOFILE)[0]
+        # each monitor adds two sockets (ours and libzmq's end of the pair)
+        in_use = _listeners.open_fds() + 2 * len(names)
+        try:
+            budget = _listeners.fd_budget(soft, in_use, len(names), self.cfg["service.max_connections"])
+        except ValueError as e:
+            raise StartError(str(e)) from None
+        if 0 < self.cfg["service.max_connections"] != budget.cap:
+            self.log.warning("service.max_connections is more than the descriptor limit "
+                             "allows; using the derived cap", configured=self.cfg[
+                                 "service.max_connections"], cap=budget.cap)
+        self.listeners = _listeners.Listeners(self.sockets, self.endpoints, names, budget, self.log)
+        self.log.info("connection cap", detail=budget.describe())
+        self.connection_budget = budget
+
+    def connection_state(self) -> dict[str, Any]:
+        """Connection figures for the metrics page and health."""
+        lst = self.listeners
+        return {} if lst is None else lst.figures()
 
     def _start_metrics(self) -> None:
         from . import metrics as _metrics
@@ -737,7 +772,8 @@ class Service:
         pull = self.sockets.get("pull")
         control = self.sockets["control"]
         control_ro = self.sockets.get("control_ro")
-        for s in (ingest, pull, control, control_ro, self._monitor, self._sig_rx):
+        monitors = self.listeners.monitors() if self.listeners is not None else []
+        for s in (ingest, pull, control, control_ro, self._sig_rx, *monitors):
             if s is not None:
                 poller.register(s, zmq.POLLIN)
         try:
@@ -745,8 +781,8 @@ class Service:
                 events = dict(poller.poll(self._timeout_ms()))
                 if self._sig_rx in events:
                     self._read_signals(zmq)
-                if self._monitor in events:
-                    self._read_monitor(zmq)
+                if any(m in events for m in monitors):
+                    self._read_monitor()
                 if self._reload:
                     self._reload = False
                     self._do_reload()
@@ -795,6 +831,8 @@ class Service:
         if self._pub_queue:
             return 0          # tables still due: take what arrived, then publish more
         t = min(self._next_publish_all, self._next_snapshot)
+        if self.listeners is not None and self.listeners.gate.paused():
+            t = min(t, self._next_gate_tick)
         if self._touched:
             t = min(t, self._last_decide + self.cfg["service.debounce_s"])
         if self._unsynced:
@@ -814,16 +852,12 @@ class Service:
                     self.log.info("stopping", signal=signal.Signals(signum).name)
                     self._stop = True
 
-    def _read_monitor(self, zmq: Any) -> None:
-        from zmq.utils.monitor import recv_monitor_message
-
-        while True:
-            try:
-                ev = recv_monitor_message(self._monitor, zmq.NOBLOCK)
-            except zmq.Again:
-                return
-            if ev.get("event") == zmq.EVENT_DISCONNECTED:
-                self.counters.ingest_disconnects += 1
+    def _read_monitor(self) -> None:
+        """Connection events: the cap's accounting (pause, resume, cut off), and the
+        ingest disconnect count."""
+        assert self.listeners is not None
+        self.listeners.read()
+        self.counters.ingest_disconnects = self.listeners.disconnects["ingest"]
 
     def _recv(self, zmq: Any, sock: Any, curve: bool) -> tuple[list[bytes], _security.Reporter | None]:
         """One waiting message (raises zmq.Again if none) and, under CURVE, the allowed
@@ -1076,6 +1110,7 @@ class Service:
                        "clipped": self.guards.stats.clipped,
                        "rate_limited_batches": self.guards.stats.rate_limited_batches,
                        "reporters_tracked": self.guards.reporters_tracked},
+            "connections": self.connection_state(),
             "security": {"curve": self.allow is not None,
                          "reporters": [] if self.allow is None else
                          [r.name for r in self.allow.reporters]},
@@ -1085,6 +1120,9 @@ class Service:
     def _housekeeping(self) -> None:
         now = time.monotonic()
         cfg = self.cfg
+        if self.listeners is not None and now >= self._next_gate_tick:
+            self.listeners.tick()
+            self._next_gate_tick = now + 1.0
         if self._down is not None:
             # no decisions (they would be journaled) and no snapshots; tables keep going out
             self._try_resume()
@@ -1261,13 +1299,9 @@ class Service:
             self.metrics_server.shutdown()
             self.metrics_server.server_close()
             self.metrics_server = None
-        if getattr(self, "_monitor", None) is not None:
-            import zmq
-
-            with contextlib.suppress(zmq.ZMQError):
-                self.sockets["ingest"].disable_monitor()
-            self._monitor.close(0)
-            self._monitor = None
+        if getattr(self, "listeners", None) is not None:
+            self.listeners.close()
+            self.listeners = None
         for s in self.sockets.values():
             s.close()
         self.sockets = {}

@@ -1,0 +1,189 @@
+"""routerd.listeners: the connection cap's rules (pure Gate, the descriptor budget) and a
+real ``routerd serve`` under a low descriptor limit flooded with connections (slow)."""
+from __future__ import annotations
+
+import os
+import resource
+import signal
+import time
+from typing import Any
+
+import msgpack
+import pytest
+import zmq
+
+from routerd import listeners as L
+from service_harness import ServiceProc, service_args
+
+
+# ---- the Gate, without sockets -------------------------------------------------------------
+def test_transition_table_is_total_and_every_state_reachable() -> None:
+    for st in L.STATES:
+        for lv in L.LEVELS:
+            assert L.TRANSITIONS.get((st, lv)) in L.STATES, (st, lv)
+    assert set(L.TRANSITIONS.values()) == set(L.STATES)
+    assert len(L.TRANSITIONS) == len(L.STATES) * len(L.LEVELS)
+    # a level never holds fewer listeners than a lower one would (monotone)
+    order = {s: i for i, s in enumerate(L.STATES)}
+    for st in L.STATES:
+        got = [order[L.TRANSITIONS[(st, lv)]] for lv in L.LEVELS]
+        assert got == sorted(got), st
+
+
+def test_gate_holds_work_sockets_at_the_limit_keeps_a_share_for_control_and_releases_at_low_water() -> None:
+    g = L.Gate(40, ("ingest", "publish", "control"))
+    assert g.work_limit == 40 - L.CONTROL_SHARE and g.low_water == int(32 * L.LOW_WATER)
+    acts: list[Any] = []
+    for fd in range(100, 131):
+        acts += g.accepted("ingest", fd)
+    assert acts == [] and g.state == "open"
+    acts = g.accepted("publish", 131)           # the 32nd: the work limit
+    assert acts == [("pause", ("ingest", "publish"))] and g.pauses == 1
+    # one more on a work socket (queued before the hold): cut off and counted
+    assert g.accepted("ingest", 132) == [("drop", 132)]
+    assert g.refused["ingest"] == 1
+    assert g.disconnected("ingest", 132) == []   # its disconnect takes it off the count
+    # control still takes connections, up to the cap
+    for fd in range(200, 207):
+        assert g.accepted("control", fd) == []
+    assert g.accepted("control", 207) == [("pause", ("control",))]
+    assert g.state == "paused" and g.total == 40 and g.pauses == 1
+    # an over-cap control connection is cut off too
+    assert g.accepted("control", 208) == [("drop", 208)]
+    g.disconnected("control", 208)
+    # control is released when the control share's upper half is free again
+    out = []
+    for fd in range(200, 208):
+        out += g.disconnected("control", fd)
+    assert ("resume", ("control",)) in out and g.state == "work_paused"
+    # work sockets wait for low water (no flapping at the limit)
+    fds = list(range(100, 132))
+    while g.total > g.low_water + 1:
+        assert g.disconnected("ingest" if fds[-1] != 131 else "publish", fds.pop()) == []
+    assert g.disconnected("ingest", fds.pop()) == [("resume", ("ingest", "publish"))]
+    assert g.state == "open" and g.pauses == 1
+
+
+def test_gate_ignores_unknown_disconnects_and_resets_on_accept_failure() -> None:
+    g = L.Gate(20, ("ingest", "control"))
+    assert g.disconnected("ingest", 5) == []
+    g.accepted("ingest", 5)
+    assert g.accept_failed("ingest") == [("reset", "ingest")]
+    assert g.accept_failures["ingest"] == 1
+    assert g.forget("ingest") == [] and g.total == 0
+
+
+def test_fd_budget_derives_a_cap_and_refuses_a_limit_without_room() -> None:
+    b = L.fd_budget(1024, 40, 3, 0)
+    assert b.cap == b.derived == 1024 - 40 - L.RESERVE - 3 * L.BURST
+    assert L.fd_budget(1024, 40, 3, 100).cap == 100
+    assert L.fd_budget(1024, 40, 3, 10**6).cap == b.derived     # never above the limit
+    with pytest.raises(ValueError, match="RLIMIT_NOFILE 64"):
+        L.fd_budget(64, 40, 3, 0)
+
+
+# ---- a real service under a low descriptor limit ---------------------------------------------
+NOFILE = 256
+FLOOD = 400       # connections opened: more than the whole descriptor limit
+
+
+def _cpu_s(pid: int) -> float:
+    """utime + stime of a process from /proc/PID/stat (proc(5): fields 14 and 15)."""
+    with open(f"/proc/{pid}/stat") as f:
+        fields = f.read().rsplit(")", 1)[1].split()
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
+def _low_nofile() -> None:
+    resource.setrlimit(resource.RLIMIT_NOFILE, (NOFILE, NOFILE))
+
+
+def _ack(sock: Any, batch: int) -> dict[str, Any]:
+    body = {"v": 1, "reporter": "steady", "batch": batch,
+            "hops": [["w1", "w2", "e3", 0.002, 0.003]]}
+    sock.send_multipart([b"", msgpack.packb(body, use_bin_type=True)])
+    if not sock.poll(10000):
+        raise AssertionError(f"no acknowledgement for batch {batch}")
+    return msgpack.unpackb(sock.recv_multipart()[-1], raw=False)
+
+
+def _health(sp: ServiceProc) -> dict[str, Any]:
+    return sp.control({"op": "health"})
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("transport", ["ipc", "tcp"])
+def test_more_connections_than_descriptors_neither_abort_nor_spin(base: str, transport: str) -> None:
+    soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
+    need = 3 * FLOOD + 200          # our side: a mailbox and a connection per socket
+    if hard != resource.RLIM_INFINITY and hard < need:
+        pytest.skip(f"this test's own process needs {need} descriptors (hard limit {hard})")
+    resource.setrlimit(resource.RLIMIT_NOFILE, (max(soft, need), hard))
+    args = service_args(base)
+    if transport == "tcp":
+        for flag in ("--ingest", "--publish"):
+            args[args.index(flag) + 1] = "tcp://127.0.0.1:*"    # loopback, any free port
+    sp = ServiceProc(base, args, preexec_fn=_low_nofile)
+    ctx = zmq.Context()
+    ctx.max_sockets = FLOOD + 100
+    flood: list[Any] = []
+    try:
+        steady = ctx.socket(zmq.DEALER)
+        steady.linger = 0
+        steady.connect(sp.endpoints["ingest"])
+        assert _ack(steady, 1)["accepted"] == 1
+        c0 = _cpu_s(sp.proc.pid)
+        for i in range(FLOOD):
+            s = ctx.socket(zmq.SUB if i % 4 == 3 else zmq.DEALER)   # a quarter subscribe
+            s.linger = 0
+            s.connect(sp.endpoints["publish" if i % 4 == 3 else "ingest"])
+            flood.append(s)
+        deadline = time.monotonic() + 20
+        conn: dict[str, Any] = {}
+        while time.monotonic() < deadline:
+            assert sp.proc.poll() is None, f"service died ({sp.proc.returncode}):\n{sp.log()}"
+            conn = _health(sp).get("connections", {})   # control keeps its share of the cap
+            if "ingest" in conn.get("paused", ()):
+                break
+            time.sleep(0.2)
+        time.sleep(1.0)                              # let reconnect attempts settle
+        c1 = _cpu_s(sp.proc.pid)
+        time.sleep(3.0)
+        c2 = _cpu_s(sp.proc.pid)
+        assert sp.proc.poll() is None, sp.log()
+        # idle with the endpoints held: no spinning I/O thread (a spin burns ~3 s here)
+        assert c2 - c1 < 0.5, f"{c2 - c1:.2f} s of CPU in 3 s while idle"
+        # the reporter connected before the flood is still served
+        assert _ack(steady, 2)["accepted"] == 1
+        assert "ingest" in conn["paused"], conn
+        conn = _health(sp)["connections"]
+        assert sum(conn["open"].values()) <= conn["cap"] < NOFILE
+        assert conn["pauses"] >= 1
+        text = sp.metrics_text()
+        assert 'routerd_ingest_connections{socket="ingest"}' in text
+        assert "routerd_ingest_connection_pauses_total 1.0" in text or conn["pauses"] > 1
+        print(f"{transport}: opened {FLOOD + 1}, open {sum(conn['open'].values())} of cap "
+              f"{conn['cap']}, refused {conn['refused']}, pauses {conn['pauses']}, "
+              f"CPU {c1 - c0:.2f} s during the flood, {c2 - c1:.2f} s in 3 s idle")
+        assert sp.log().count("connection cap reached") <= 2 * conn["pauses"] + 2   # once per hold
+        # the flood goes away: the endpoints take connections again
+        for s in flood:
+            s.close(0)
+        flood = []
+        deadline = time.monotonic() + 20
+        while time.monotonic() < deadline and _health(sp)["connections"]["paused"]:
+            time.sleep(0.2)
+        assert _health(sp)["connections"]["paused"] == [], sp.log()
+        late = ctx.socket(zmq.DEALER)
+        late.linger = 0
+        late.connect(sp.endpoints["ingest"])
+        assert _ack(late, 3)["accepted"] == 1
+        late.close(0)
+        steady.close(0)
+        sp.signal(signal.SIGTERM)
+        assert sp.wait(30) == 0
+    finally:
+        for s in flood:
+            s.close(0)
+        ctx.destroy(0)
+        sp.kill()
