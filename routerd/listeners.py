@@ -135,6 +135,20 @@ def claim_ipc(endpoint: str, timeout_s: float = 0.5) -> str | None:
     return f"removed a stale socket file (nobody listened on it): {path}"
 
 
+def release_ipc(endpoints: Iterable[str]) -> None:
+    """After our sockets are closed: remove the socket files of our ipc:// endpoints
+    (libzmq 4.3 leaves them behind, and the next start would call them stale)."""
+    import stat
+
+    for ep in endpoints:
+        if not ep.startswith("ipc://"):
+            continue
+        path = ep[len("ipc://"):]
+        with contextlib.suppress(OSError):
+            if stat.S_ISSOCK(os.lstat(path).st_mode):
+                os.unlink(path)
+
+
 # ---- the descriptor budget -------------------------------------------------------------
 def raise_nofile() -> tuple[int, int, int]:
     """Raise the soft RLIMIT_NOFILE to the hard limit: (soft before, soft now, hard)."""

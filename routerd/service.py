@@ -371,6 +371,7 @@ class Service:
             raise StartError(str(e)) from None
         self._load_security()
         self._warn_exposed()
+        self._claim_endpoints()    # before anything is written: a second service stops here
         state_dir = cfg["service.state_dir"]
         try:
             os.makedirs(state_dir, exist_ok=True)
@@ -482,6 +483,30 @@ class Service:
         except StorageDown as e:
             raise StartError(f"state dir {state_dir}: {e}") from None
 
+    def _claim_endpoints(self) -> None:
+        """Every ipc:// endpoint we will bind: refused when another process listens on its
+        socket file (libzmq's bind would silently take the file over), a stale file from
+        a crash removed (logged); one endpoint named twice is refused too."""
+        cfg = self.cfg
+        seen: dict[str, str] = {}
+        for name in ("ingest", "pull", "publish", "control"):
+            ep = cfg[f"service.{name}"]
+            if ep:
+                self._claim(name, ep, seen)
+        if cfg["security.control_readonly"]:
+            self._claim("control-readonly", cfg["security.control_readonly"], seen)
+
+    def _claim(self, name: str, ep: str, seen: dict[str, str]) -> None:
+        if ep in seen and "*" not in ep:
+            raise StartError(f"{name} endpoint {ep}: also given as the {seen[ep]} endpoint")
+        seen[ep] = name
+        try:
+            note = _listeners.claim_ipc(ep)
+        except _listeners.EndpointInUse as e:
+            raise StartError(f"{name} endpoint {e}") from None
+        if note:
+            self.log.warning(note, endpoint=name)
+
     def _bind_all(self, zmq: Any) -> None:
         cfg = self.cfg
         hwm = cfg["service.hwm_msgs"]
@@ -510,10 +535,14 @@ class Service:
             if self.server_keys is not None and name != "control_ro":
                 _security.make_server(s, *self.server_keys)    # before bind
             try:
+                self._claim(name, ep, {})    # again: the file may have appeared since start-up
                 s.bind(ep)
             except zmq.ZMQError as e:
                 s.close(0)
                 raise StartError(f"{name} endpoint {ep}: {e.strerror}") from None
+            except StartError:
+                s.close(0)
+                raise
             self.sockets[name] = s
             self.endpoints[name] = s.last_endpoint.decode()
             return s
@@ -1315,6 +1344,7 @@ class Service:
         if self.ctx is not None:
             self.ctx.term()
             self.ctx = None
+            _listeners.release_ipc(self.endpoints.values())   # bound by us (claimed first)
         if self.journal is not None:
             with contextlib.suppress(StorageDown):
                 self._commit()

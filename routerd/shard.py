@@ -97,6 +97,7 @@ import numpy as np
 
 from . import __version__, wire
 from . import config as _config
+from . import listeners as _listeners
 from . import topology as _topology
 from .errors import InputError
 
@@ -581,10 +582,16 @@ class Front:
             if kind == zmq.ROUTER:
                 s.setsockopt(zmq.ROUTER_MANDATORY, 1)
             try:
+                note = _listeners.claim_ipc(ep)   # not another front's socket file
                 s.bind(ep)
             except zmq.ZMQError as e:
                 s.close(0)
                 raise StartError(f"{name} endpoint {ep}: {e.strerror}") from None
+            except _listeners.EndpointInUse as e:
+                s.close(0)
+                raise StartError(f"{name} endpoint {e}") from None
+            if note:
+                self.log.warning(note, endpoint=name)
             self.sockets[name] = s
             self.endpoints[name] = s.last_endpoint.decode()
             return s
@@ -1227,6 +1234,7 @@ class Front:
         if self.ctx is not None:
             self.ctx.term()
             self.ctx = None
+            _listeners.release_ipc(self.endpoints.values())   # bound by us (claimed first)
         if self._ipc_dir is not None:
             import shutil
 

@@ -187,3 +187,89 @@ def test_more_connections_than_descriptors_neither_abort_nor_spin(base: str, tra
             s.close(0)
         ctx.destroy(0)
         sp.kill()
+
+
+# ---- ipc:// endpoints already in use -------------------------------------------------------
+def test_claim_ipc_refuses_a_live_listener_and_clears_a_stale_file(base: str) -> None:
+    import socket
+
+    path = os.path.join(base, "sock")
+    assert L.claim_ipc(f"ipc://{path}") is None              # no file: nothing to say
+    live = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+    live.bind(path)
+    live.listen(1)
+    with pytest.raises(L.EndpointInUse, match=f"ipc://{path}: in use by another process"):
+        L.claim_ipc(f"ipc://{path}")
+    assert os.path.exists(path)
+    live.close()                                              # the file stays: a stale one
+    assert os.path.exists(path)
+    note = L.claim_ipc(f"ipc://{path}")
+    assert note is not None and "stale" in note and path in note
+    assert not os.path.exists(path)
+    with open(path, "w") as f:                                # not a socket: never removed
+        f.write("x")
+    with pytest.raises(L.EndpointInUse, match="is not a socket file"):
+        L.claim_ipc(f"ipc://{path}")
+    assert os.path.exists(path)
+    assert L.claim_ipc("tcp://127.0.0.1:7301") is None
+    assert L.claim_ipc("ipc://*") is None
+
+
+@pytest.mark.slow
+def test_a_second_service_on_the_same_ipc_endpoints_exits_2_and_the_first_keeps_serving(base: str) -> None:
+    import socket
+    import subprocess
+    import sys
+
+    first = ServiceProc(base, service_args(base))
+    ctx = zmq.Context()
+    try:
+        rep = ctx.socket(zmq.DEALER)
+        rep.linger = 0
+        rep.connect(first.endpoints["ingest"])
+        assert _ack(rep, 1)["accepted"] == 1
+        files = [first.endpoints[k][len("ipc://"):] for k in ("ingest", "publish", "control")]
+        other_state = os.path.join(base, "state2")
+        args = service_args(base)
+        args[args.index("--state-dir") + 1] = other_state
+        r = subprocess.run([sys.executable, "-m", "routerd", "serve", *args], capture_output=True,
+                           text=True, timeout=60)
+        assert r.returncode == 2, r.stdout + r.stderr
+        assert f"ingest endpoint {first.endpoints['ingest']}: in use by another process" in r.stderr
+        assert not os.path.exists(other_state)          # refused before anything was written
+        # a sharded front on the same endpoint stops the same way, before starting workers
+        r = subprocess.run([sys.executable, "-m", "routerd", "serve", "--shards", "1", *args],
+                           capture_output=True, text=True, timeout=60)
+        assert r.returncode == 2, r.stdout + r.stderr
+        assert "in use by another process" in r.stderr
+        # the first one's socket files are intact: its reporter and a new one get acks
+        assert all(os.path.exists(f) for f in files)
+        assert _ack(rep, 2)["accepted"] == 1
+        fresh = ctx.socket(zmq.DEALER)
+        fresh.linger = 0
+        fresh.connect(first.endpoints["ingest"])
+        assert _ack(fresh, 3)["accepted"] == 1
+        fresh.close(0)
+        rep.close(0)
+        first.signal(signal.SIGTERM)
+        assert first.wait(30) == 0
+        assert not any(os.path.exists(f) for f in files)   # a clean stop removes its files
+        # a socket file left by a process that died: removed, said so, served
+        stale = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+        stale.bind(files[0])
+        stale.close()
+        assert os.path.exists(files[0])
+        second = ServiceProc(base, args)
+        try:
+            assert any("removed a stale socket file" in line and files[0] in line
+                       for line in second.stderr_lines), second.log()
+            s = ctx.socket(zmq.DEALER)
+            s.linger = 0
+            s.connect(second.endpoints["ingest"])
+            assert _ack(s, 4)["accepted"] == 1
+            s.close(0)
+        finally:
+            second.kill()
+    finally:
+        ctx.destroy(0)
+        first.kill()
