@@ -1,6 +1,8 @@
 """The service's listening endpoints: file-descriptor budget, connection cap, ipc claims.
 
-Owns: how many peer connections the listening ZeroMQ sockets of a service may hold at
+Owns: how a listening ZeroMQ socket is made (:class:`SocketOptions`, :func:`bind_socket`:
+the one place the service and the shard front set HWM, linger, MAXMSGSIZE, heartbeats,
+ROUTER_MANDATORY, backlog and CURVE before binding), how many peer connections the listening ZeroMQ sockets of a service may hold at
 once (:func:`fd_budget`), the pure accounting that decides when to stop and restart
 taking new ones (:class:`Gate`), the shell that applies it to real sockets
 (:class:`Listeners`: one monitor per listening socket, holding a listener without closing
@@ -133,6 +135,63 @@ def claim_ipc(endpoint: str, timeout_s: float = 0.5) -> str | None:
     except OSError as e:
         raise EndpointInUse(f"{endpoint}: stale socket file, cannot remove it ({e.strerror})") from None
     return f"removed a stale socket file (nobody listened on it): {path}"
+
+
+@dataclass(frozen=True)
+class SocketOptions:
+    """Options every listening socket of a process gets, set before ``bind``."""
+
+    hwm: int                        # send and receive high-water marks, messages
+    linger_ms: int
+    max_message_bytes: int          # MAXMSGSIZE on every kind but PUB (it only sends)
+    heartbeat_ms: int = 0           # ZMTP heartbeats (timeout and TTL 3x); 0 = off
+    backlog: int | None = None      # ZMQ_BACKLOG; None = libzmq's default
+
+    @classmethod
+    def from_config(cls, cfg: Any, *, slack: int, heartbeats: bool = True,
+                    backlog: int | None = BURST) -> SocketOptions:
+        return cls(hwm=cfg["service.hwm_msgs"], linger_ms=int(cfg["service.linger_s"] * 1000),
+                   max_message_bytes=cfg["service.max_message_bytes"] + slack,
+                   heartbeat_ms=int(cfg["service.heartbeat_s"] * 1000) if heartbeats else 0,
+                   backlog=backlog)
+
+
+def bind_socket(ctx: Any, kind: int, endpoint: str, opts: SocketOptions, *,
+                curve: tuple[bytes, bytes] | None = None) -> tuple[Any, str | None]:
+    """A socket of ``kind`` with ``opts`` (and CURVE server keys ``(public, secret)``),
+    bound to ``endpoint`` after :func:`claim_ipc`: (socket, the stale-file note or None).
+    Raises :class:`EndpointInUse` or ``zmq.ZMQError`` with the socket already closed."""
+    import zmq
+
+    s = ctx.socket(kind)
+    try:
+        s.sndhwm = opts.hwm
+        s.rcvhwm = opts.hwm
+        s.linger = opts.linger_ms
+        if kind != zmq.PUB:
+            s.setsockopt(zmq.MAXMSGSIZE, opts.max_message_bytes)
+        if opts.heartbeat_ms > 0:
+            s.setsockopt(zmq.HEARTBEAT_IVL, opts.heartbeat_ms)
+            s.setsockopt(zmq.HEARTBEAT_TIMEOUT, 3 * opts.heartbeat_ms)
+            s.setsockopt(zmq.HEARTBEAT_TTL, 3 * opts.heartbeat_ms)
+        if kind == zmq.ROUTER:
+            # an answer for a peer that is gone (or whose queue is full) raises instead of
+            # vanishing, so it is counted
+            s.setsockopt(zmq.ROUTER_MANDATORY, 1)
+        if opts.backlog is not None:
+            # the kernel queues at most this many connects: libzmq's burst of accepts
+            # before the loop reads the monitor is bounded by it
+            s.setsockopt(zmq.BACKLOG, opts.backlog)
+        if curve is not None:
+            from . import security as _security
+
+            _security.make_server(s, *curve)
+        note = claim_ipc(endpoint)
+        s.bind(endpoint)
+    except BaseException:
+        s.close(0)
+        raise
+    return s, note
 
 
 def release_ipc(endpoints: Iterable[str]) -> None:

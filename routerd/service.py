@@ -509,40 +509,19 @@ class Service:
 
     def _bind_all(self, zmq: Any) -> None:
         cfg = self.cfg
-        hwm = cfg["service.hwm_msgs"]
-        linger_ms = int(cfg["service.linger_s"] * 1000)
-        hb_ms = int(cfg["service.heartbeat_s"] * 1000)
-        maxmsg = cfg["service.max_message_bytes"] + OVERSIZE_ANSWER_SLACK
+        opts = _listeners.SocketOptions.from_config(cfg, slack=OVERSIZE_ANSWER_SLACK)
 
-        def mk(kind: int, name: str, ep: str, *, maxsize: int | None = maxmsg) -> Any:
-            s = self.ctx.socket(kind)
-            s.sndhwm = hwm
-            s.rcvhwm = hwm
-            s.linger = linger_ms
-            if maxsize is not None:
-                s.setsockopt(zmq.MAXMSGSIZE, maxsize)
-            if hb_ms > 0:
-                s.setsockopt(zmq.HEARTBEAT_IVL, hb_ms)
-                s.setsockopt(zmq.HEARTBEAT_TIMEOUT, 3 * hb_ms)
-                s.setsockopt(zmq.HEARTBEAT_TTL, 3 * hb_ms)
-            if kind == zmq.ROUTER:
-                # an ack for a peer that is gone (or whose queue is full) raises instead of
-                # vanishing, so it is counted
-                s.setsockopt(zmq.ROUTER_MANDATORY, 1)
-            # the kernel queues at most this many connects: libzmq's burst of accepts
-            # before the loop reads the monitor is bounded by it (routerd.listeners)
-            s.setsockopt(zmq.BACKLOG, _listeners.BURST)
-            if self.server_keys is not None and name != "control_ro":
-                _security.make_server(s, *self.server_keys)    # before bind
+        def mk(kind: int, name: str, ep: str) -> Any:
             try:
-                self._claim(name, ep, {})    # again: the file may have appeared since start-up
-                s.bind(ep)
+                s, note = _listeners.bind_socket(
+                    self.ctx, kind, ep, opts,
+                    curve=self.server_keys if name != "control_ro" else None)
             except zmq.ZMQError as e:
-                s.close(0)
                 raise StartError(f"{name} endpoint {ep}: {e.strerror}") from None
-            except StartError:
-                s.close(0)
-                raise
+            except _listeners.EndpointInUse as e:   # the file appeared since start-up
+                raise StartError(f"{name} endpoint {e}") from None
+            if note:
+                self.log.warning(note, endpoint=name)
             self.sockets[name] = s
             self.endpoints[name] = s.last_endpoint.decode()
             return s
@@ -550,7 +529,7 @@ class Service:
         mk(zmq.ROUTER, "ingest", cfg["service.ingest"])
         if cfg["service.pull"]:
             mk(zmq.PULL, "pull", cfg["service.pull"])
-        mk(zmq.PUB, "publish", cfg["service.publish"], maxsize=None)
+        mk(zmq.PUB, "publish", cfg["service.publish"])
         mk(zmq.REP, "control", cfg["service.control"])
         if cfg["security.control_readonly"]:
             mk(zmq.REP, "control_ro", cfg["security.control_readonly"])

@@ -558,7 +558,7 @@ class Front:
         import zmq
 
         from . import metrics as _metrics
-        from .service import StartError
+        from .service import OVERSIZE_ANSWER_SLACK, StartError
 
         cfg = self.cfg
         try:
@@ -570,25 +570,17 @@ class Front:
             raise StartError(f"state dir {self.state_root}: {e.strerror}") from None
         self.ctx = zmq.Context()
         listen = getattr(self.args, "shard_listen", None) or f"ipc://{self._ipc('front-shards')}"
-        hwm = cfg["service.hwm_msgs"]
-        maxmsg = cfg["service.max_message_bytes"] + (1 << 20)
+        # the service's socket options (routerd.listeners), as the front always ran them:
+        # no heartbeats, libzmq's backlog; sharding refuses CURVE (run())
+        opts = _listeners.SocketOptions.from_config(cfg, slack=OVERSIZE_ANSWER_SLACK,
+                                                    heartbeats=False, backlog=None)
 
         def mk(kind: int, name: str, ep: str) -> Any:
-            s = self.ctx.socket(kind)
-            s.linger = int(cfg["service.linger_s"] * 1000)
-            s.sndhwm = s.rcvhwm = hwm
-            if kind != zmq.PUB:
-                s.setsockopt(zmq.MAXMSGSIZE, maxmsg)
-            if kind == zmq.ROUTER:
-                s.setsockopt(zmq.ROUTER_MANDATORY, 1)
             try:
-                note = _listeners.claim_ipc(ep)   # not another front's socket file
-                s.bind(ep)
+                s, note = _listeners.bind_socket(self.ctx, kind, ep, opts)
             except zmq.ZMQError as e:
-                s.close(0)
                 raise StartError(f"{name} endpoint {ep}: {e.strerror}") from None
-            except _listeners.EndpointInUse as e:
-                s.close(0)
+            except _listeners.EndpointInUse as e:     # not another front's socket file
                 raise StartError(f"{name} endpoint {e}") from None
             if note:
                 self.log.warning(note, endpoint=name)
