@@ -67,8 +67,9 @@ BURST = 32
 CONTROL_SHARE = 8
 #: Accepting starts again when open connections fall to this share of the cap.
 LOW_WATER = 0.8
-#: Sockets that are control sockets (the rest are work sockets).
-CONTROL_SOCKETS = ("control", "control_ro")
+#: Sockets that are control sockets (the rest are work sockets); ``shards`` is the shard
+#: front's endpoint where workers announce themselves.
+CONTROL_SOCKETS = ("control", "control_ro", "shards")
 
 #: The Gate's states and what moves it, as data (test_listeners walks it):
 #: (state, level) -> state.  "open": every listener takes connections; "work_paused":

@@ -53,7 +53,7 @@ RELOAD_RESULTS = ("applied", "rejected")
 #: Ingest sockets.
 INGEST_SOCKETS = ("router", "pull")
 #: Listening sockets whose connections are counted against the connection cap.
-LISTEN_SOCKETS = ("ingest", "pull", "publish", "control", "control_ro")
+LISTEN_SOCKETS = ("ingest", "pull", "publish", "control", "control_ro", "shards")
 
 
 class Histo:
@@ -280,7 +280,7 @@ class RouterdCollector(Collector):
                            "guard clipped to its band (accepted, not rejected)", t["clipped"])
         conn = getattr(src, "connection_state", None)   # the connection cap (routerd.listeners)
         if conn is not None:
-            yield from _connection_families(conn())
+            yield from connection_families(conn())
         yield _gauge("routerd_uptime_seconds", "Seconds since the service started", src.uptime_s())
         info = GaugeMetricFamily("routerd_build_info", "Constant 1, labelled with version and topology digest",
                                  labels=sorted(src.info()))
@@ -288,7 +288,7 @@ class RouterdCollector(Collector):
         yield info
 
 
-def _connection_families(st: Mapping[str, Any]) -> Iterator[Metric]:
+def connection_families(st: Mapping[str, Any]) -> Iterator[Metric]:
     """Open connections, refusals and holds per listening socket (every socket of
     :data:`LISTEN_SOCKETS` has a series; one the service does not run stays 0)."""
     if not st:

@@ -548,6 +548,8 @@ class Front:
         self.state_root = os.path.abspath(cfg["service.state_dir"])
         self._ipc_dir: str | None = None
         self.metrics_server: Any = None
+        self.listeners: _listeners.Listeners | None = None
+        self._next_gate_tick = 0.0
         self.counts: dict[str, int] = {k: 0 for k in (
             "batches_accepted", "batches_duplicate", "batches_refused", "batches_unavailable", "pieces_sent",
             "pieces_acked", "pieces_late", "publications", "parts_received", "acks_undeliverable")}
@@ -570,10 +572,8 @@ class Front:
             raise StartError(f"state dir {self.state_root}: {e.strerror}") from None
         self.ctx = zmq.Context()
         listen = getattr(self.args, "shard_listen", None) or f"ipc://{self._ipc('front-shards')}"
-        # the service's socket options (routerd.listeners), as the front always ran them:
-        # no heartbeats, libzmq's backlog; sharding refuses CURVE (run())
-        opts = _listeners.SocketOptions.from_config(cfg, slack=OVERSIZE_ANSWER_SLACK,
-                                                    heartbeats=False, backlog=None)
+        # the service's socket options (routerd.listeners); sharding refuses CURVE (run())
+        opts = _listeners.SocketOptions.from_config(cfg, slack=OVERSIZE_ANSWER_SLACK)
 
         def mk(kind: int, name: str, ep: str) -> Any:
             try:
@@ -600,7 +600,29 @@ class Front:
             for w in self.workers:
                 self._spawn(w)
         self._await_workers()
+        self._cap_connections()
         self._banner()
+
+    def _cap_connections(self) -> None:
+        """The connection cap over the front's listening sockets (as the service's, see
+        :mod:`routerd.listeners`), counted once the workers' pipes and connections exist."""
+        import resource
+
+        from .service import StartError
+
+        before, soft, hard = _listeners.raise_nofile()
+        if soft != before:
+            self.log.info("raised the descriptor limit to the hard limit", before=before,
+                          now=soft, hard=hard)
+        names = list(self.sockets)
+        soft = resource.getrlimit(resource.RLIMIT_NOFILE)[0]
+        try:
+            budget = _listeners.fd_budget(soft, _listeners.open_fds() + 2 * len(names),
+                                          len(names), self.cfg["service.max_connections"])
+        except ValueError as e:
+            raise StartError(str(e)) from None
+        self.listeners = _listeners.Listeners(self.sockets, self.endpoints, names, budget, self.log)
+        self.log.info("connection cap", detail=budget.describe())
 
     def _ipc(self, name: str) -> str:
         """An ipc path for ``name``: in the state dir when short enough (ipc paths are
@@ -806,6 +828,9 @@ class Front:
                     for s in self.sockets.values():
                         if s.type in (zmq.ROUTER, zmq.PULL, zmq.REP):
                             poller.register(s, zmq.POLLIN)
+                    monitors = self.listeners.monitors() if self.listeners is not None else []
+                    for m in monitors:
+                        poller.register(m, zmq.POLLIN)
                     for w in self.workers:
                         for s in (w.dealer, w.sub):
                             if s is not None:
@@ -815,6 +840,12 @@ class Front:
                 if getattr(self, "_reload_all", False):
                     self._reload_all = False
                     self._fan_out({"op": "reload"})
+                if self.listeners is not None:
+                    if any(m in ev for m in monitors):
+                        self.listeners.read()
+                    if time.monotonic() >= self._next_gate_tick:
+                        self.listeners.tick()
+                        self._next_gate_tick = time.monotonic() + 1.0
                 if self.sockets["shards"] in ev:
                     self._take_hellos()
                 for w in self.workers:
@@ -1143,6 +1174,7 @@ class Front:
                 "topology": {"name": self.topo.name, "id": self.topo.digest,
                              "nodes": self.topo.n, "links": self.topo.n_links},
                 "front": {"in_flight": len(self.pending), **self.counts},
+                "connections": self.listeners.figures() if self.listeners is not None else {},
                 "shards_up": up, "shards": shards}
 
     # -- supervision and shutdown -------------------------------------------------------------------
@@ -1220,6 +1252,9 @@ class Front:
                 if s is not None:
                     s.close(0)
             w.dealer = w.sub = None
+        if self.listeners is not None:
+            self.listeners.close()
+            self.listeners = None
         for s in self.sockets.values():
             s.close()
         self.sockets = {}
@@ -1336,6 +1371,16 @@ class _FrontCollector:
                     out = fam[m.name] = Metric(m.name, m.documentation, m.type)
                 for s in m.samples:
                     out.add_sample(s.name, {**s.labels, "shard": str(w.k)}, s.value)
+        lst = f.listeners
+        if lst is not None:   # the front's own connection figures, in the same families
+            from .metrics import connection_families
+
+            for m in connection_families(lst.figures()):
+                out = fam.get(m.name)
+                if out is None:
+                    out = fam[m.name] = Metric(m.name, m.documentation, m.type)
+                for s in m.samples:
+                    out.add_sample(s.name, {**s.labels, "shard": "front"}, s.value)
         yield from fam.values()
         c = CounterMetricFamily("routerd_shard_front_batches", "Batches at the front, by result",
                                 labels=["shard", "result"])

@@ -220,7 +220,7 @@ def test_connection_families_cover_every_listening_socket() -> None:
         "accept_failures": {}, "pauses": 1, "paused": ["ingest", "publish"], "fd_limit": 256}
     fams = families(page(src))
     open_ = {s.labels["socket"]: s.value for s in fams["routerd_ingest_connections"].samples}
-    assert open_ == {"ingest": 100, "pull": 0, "publish": 0, "control": 2, "control_ro": 0}
+    assert open_ == {"ingest": 100, "pull": 0, "publish": 0, "control": 2, "control_ro": 0, "shards": 0}
     refused = {s.labels["socket"]: s.value for s in fams["routerd_ingest_connections_refused"].samples}
     assert refused["ingest"] == 3 and set(refused) == set(metrics.LISTEN_SOCKETS)
     assert all(s.name.endswith("_total") for s in fams["routerd_ingest_connections_refused"].samples)
