@@ -466,6 +466,10 @@ class Listeners:
                     continue
                 self._apply(acts)
 
+    def waiting(self) -> bool:
+        """True while a hold or a closed listener waits for :meth:`tick`."""
+        return bool(self.gate.paused() or self._closed)
+
     def tick(self) -> None:
         """About once a second: listen again after an accept failure closed a listener."""
         self._apply(self.gate.tick())

@@ -7,8 +7,9 @@ metric names (:mod:`routerd.metrics`).  Must not import: the simulator.
 Theory of operation
 -------------------
 One thread runs one ``zmq.Poller`` over the work sockets (ingest ROUTER, optional PULL,
-control REP), the ingest socket's monitor (disconnections) and a stop pipe (an inproc
-PAIR the signal handlers write to).  The poll timeout is the time to the next deadline
+control REP), a monitor per listening socket (connections accepted and closed: the
+connection cap of :mod:`routerd.listeners`) and a stop pipe (an inproc PAIR the signal
+handlers write to).  The poll timeout is the time to the next deadline
 (debounced decision, periodic publication, snapshot), so there are no sleeps.  One loop
 iteration:
 
@@ -839,7 +840,7 @@ class Service:
         if self._pub_queue:
             return 0          # tables still due: take what arrived, then publish more
         t = min(self._next_publish_all, self._next_snapshot)
-        if self.listeners is not None and self.listeners.gate.paused():
+        if self.listeners is not None and self.listeners.waiting():
             t = min(t, self._next_gate_tick)
         if self._touched:
             t = min(t, self._last_decide + self.cfg["service.debounce_s"])
