@@ -534,29 +534,39 @@ class Listeners:
         except (OSError, LookupError) as e:
             self.log.error("cannot " + ("pause" if hold else "resume") + " a listening endpoint",
                            socket=name, endpoint=ep, reason=str(e))
+            if not hold and ep.startswith("ipc://") and name not in self._closed:
+                # the file moved aside is gone, or another process took the path: without
+                # a socket file nobody can connect again, so start this listener afresh
+                self._held.discard(name)
+                self._reset(name, "cannot put the ipc socket file back")
             return
         if hold:
             self._held.add(name)
         else:
             self._held.discard(name)
 
-    def _reset(self, name: str) -> None:
-        """Out of descriptors in libzmq's accept: close the listener (the only thing that
-        stops the tcp spin; its connections go with it) and listen again on a later tick."""
+    def _reset(self, name: str, why: str = "out of file descriptors accepting a "
+               "connection") -> None:
+        """Close the listener and listen again on a later tick: after an accept failure
+        (the only thing that stops the tcp spin), or when a held ipc socket file cannot
+        be put back.  Its connections go with it (libzmq closes them with the listener)."""
         import zmq
 
         ep = self.endpoints[name]
         if name in self._closed:
             return
-        if name in self._held:
-            self._hold(name, False)
+        if name in self._held:     # the listener goes anyway: no need to release it
+            self._held.discard(name)
+            with contextlib.suppress(OSError):
+                if ep.startswith("ipc://"):
+                    os.unlink(_aside(ep[len("ipc://"):]))
         with contextlib.suppress(zmq.ZMQError):
             self.sockets[name].unbind(ep)
         self._listen_fd.pop(name, None)
         self._closed.add(name)
-        self.log.error("out of file descriptors accepting a connection: stopped listening "
-                       "(its connections closed); listening again in a second",
-                       socket=name, endpoint=ep, open=self.gate.total, cap=self.gate.cap)
+        self.log.error(f"{why}: stopped listening (its connections closed); listening "
+                       "again in a second", socket=name, endpoint=ep, open=self.gate.total,
+                       cap=self.gate.cap)
         self._apply(self.gate.forget(name))
 
     def _reopen(self) -> None:
@@ -589,7 +599,10 @@ class Listeners:
             return
         try:
             local = s.getsockname()
-            if self._ours(s.family, local):
+            # never a listener (shutting one down would make libzmq's accept fail with
+            # EINVAL, which it does not survive): the number may have been reused
+            if not s.getsockopt(_socket.SOL_SOCKET, _socket.SO_ACCEPTCONN) and \
+                    self._ours(s.family, local):
                 s.shutdown(_socket.SHUT_RDWR)
         except OSError:
             pass

@@ -358,3 +358,29 @@ def test_hold_keeps_established_connections_stops_new_ones_and_reset_rebinds(bas
         router.close(0)
     finally:
         ctx.destroy(0)
+
+
+@pytest.mark.slow
+def test_a_held_ipc_file_that_vanished_is_bound_afresh(base: str) -> None:
+    ctx = zmq.Context()
+    try:
+        opts = L.SocketOptions(hwm=100, linger_ms=0, max_message_bytes=1 << 20)
+        ep = f"ipc://{base}/v"
+        router, _ = L.bind_socket(ctx, zmq.ROUTER, ep, opts)
+        log = _Log()
+        lst = L.Listeners({"ingest": router}, {"ingest": ep}, ["ingest"],
+                          L.fd_budget(10_000, 50, 1, 0), log)
+        lst._apply([("pause", ("ingest",))])
+        os.unlink(L._aside(f"{base}/v"))                 # someone cleans up /tmp
+        lst._apply([("resume", ("ingest",))])
+        assert any("cannot put the ipc socket file back" in x for x in log.lines), log.lines
+        lst.tick()
+        d = ctx.socket(zmq.DEALER)
+        d.linger = 0
+        d.connect(ep)
+        assert _exchange(router, d, b"back", 5000)
+        d.close(0)
+        lst.close()
+        router.close(0)
+    finally:
+        ctx.destroy(0)
