@@ -210,8 +210,17 @@ def release_ipc(endpoints: Iterable[str]) -> None:
 
 
 # ---- the descriptor budget -------------------------------------------------------------
-def raise_nofile() -> tuple[int, int, int]:
-    """Raise the soft RLIMIT_NOFILE to the hard limit: (soft before, soft now, hard)."""
+def raise_nofile(log: Any = None) -> tuple[int, int, int]:
+    """Raise the soft RLIMIT_NOFILE to the hard limit: (soft before, soft now, hard);
+    said on ``log`` when it changed."""
+    before, now, hard = _raise_nofile()
+    if log is not None and now != before:
+        log.info("raised the descriptor limit to the hard limit", before=before, now=now,
+                 hard=hard)
+    return before, now, hard
+
+
+def _raise_nofile() -> tuple[int, int, int]:
     import resource
 
     soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
@@ -440,6 +449,25 @@ class Listeners:
         self._held: set[str] = set()          # paused by a moved file / a socket filter
         self._closed: set[str] = set()        # unbound after an accept failure
         self._listen_fd: dict[str, int] = {}
+
+    @classmethod
+    def start(cls, sockets: Mapping[str, Any], endpoints: Mapping[str, str],
+              configured: int, log: Any) -> Listeners:
+        """After binding: the cap from the descriptor limit now in force and what is open
+        (``configured``: ``service.max_connections``), a monitor on every socket of
+        ``sockets``; logged.  ValueError when the limit leaves no room."""
+        import resource
+
+        names = list(sockets)
+        soft = resource.getrlimit(resource.RLIMIT_NOFILE)[0]
+        # each monitor adds two sockets (ours and libzmq's end of the pair)
+        budget = fd_budget(soft, open_fds() + 2 * len(names), len(names), configured)
+        if 0 < configured != budget.cap:
+            log.warning("service.max_connections is more than the descriptor limit allows; "
+                        "using the derived cap", configured=configured, cap=budget.cap)
+        out = cls(sockets, endpoints, names, budget, log)
+        log.info("connection cap", detail=budget.describe())
+        return out
 
     def monitors(self) -> list[Any]:
         return list(self._mon)

@@ -379,10 +379,7 @@ class Service:
         except OSError as e:
             raise StartError(f"state dir {state_dir}: {e.strerror}") from None
         self._restore(state_dir)
-        before, soft, hard = _listeners.raise_nofile()
-        if soft != before:
-            self.log.info("raised the descriptor limit to the hard limit", before=before,
-                          now=soft, hard=hard)
+        _listeners.raise_nofile(self.log)
         self.ctx = zmq.Context()
         if self.allow is not None:
             # the ZAP handler must run before the first CURVE socket binds
@@ -544,25 +541,12 @@ class Service:
         self._sig_tx.connect(pipe)
 
     def _cap_connections(self) -> None:
-        """The connection cap from the descriptor limit, and a monitor on every listening
-        socket (:mod:`routerd.listeners`)."""
-        import resource
-
-        names = list(self.sockets)
-        soft = resource.getrlimit(resource.RLIMIT_NOFILE)[0]
-        # each monitor adds two sockets (ours and libzmq's end of the pair)
-        in_use = _listeners.open_fds() + 2 * len(names)
+        """The connection cap and a monitor on every listening socket (routerd.listeners)."""
         try:
-            budget = _listeners.fd_budget(soft, in_use, len(names), self.cfg["service.max_connections"])
+            self.listeners = _listeners.Listeners.start(
+                self.sockets, self.endpoints, self.cfg["service.max_connections"], self.log)
         except ValueError as e:
             raise StartError(str(e)) from None
-        if 0 < self.cfg["service.max_connections"] != budget.cap:
-            self.log.warning("service.max_connections is more than the descriptor limit "
-                             "allows; using the derived cap", configured=self.cfg[
-                                 "service.max_connections"], cap=budget.cap)
-        self.listeners = _listeners.Listeners(self.sockets, self.endpoints, names, budget, self.log)
-        self.log.info("connection cap", detail=budget.describe())
-        self.connection_budget = budget
 
     def connection_state(self) -> dict[str, Any]:
         """Connection figures for the metrics page and health."""

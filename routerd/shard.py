@@ -606,23 +606,14 @@ class Front:
     def _cap_connections(self) -> None:
         """The connection cap over the front's listening sockets (as the service's, see
         :mod:`routerd.listeners`), counted once the workers' pipes and connections exist."""
-        import resource
-
         from .service import StartError
 
-        before, soft, hard = _listeners.raise_nofile()
-        if soft != before:
-            self.log.info("raised the descriptor limit to the hard limit", before=before,
-                          now=soft, hard=hard)
-        names = list(self.sockets)
-        soft = resource.getrlimit(resource.RLIMIT_NOFILE)[0]
+        _listeners.raise_nofile(self.log)
         try:
-            budget = _listeners.fd_budget(soft, _listeners.open_fds() + 2 * len(names),
-                                          len(names), self.cfg["service.max_connections"])
+            self.listeners = _listeners.Listeners.start(
+                self.sockets, self.endpoints, self.cfg["service.max_connections"], self.log)
         except ValueError as e:
             raise StartError(str(e)) from None
-        self.listeners = _listeners.Listeners(self.sockets, self.endpoints, names, budget, self.log)
-        self.log.info("connection cap", detail=budget.describe())
 
     def _ipc(self, name: str) -> str:
         """An ipc path for ``name``: in the state dir when short enough (ipc paths are

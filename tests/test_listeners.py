@@ -203,6 +203,28 @@ def test_more_connections_than_descriptors_neither_abort_nor_spin(base: str, tra
         sp.kill()
 
 
+@pytest.mark.slow
+def test_start_up_raises_the_soft_descriptor_limit_to_the_hard_one_and_says_so(base: str) -> None:
+    hard = resource.getrlimit(resource.RLIMIT_NOFILE)[1]
+    if hard != resource.RLIM_INFINITY and hard < 2048:
+        pytest.skip(f"needs a hard descriptor limit of 2048 (it is {hard})")
+
+    def soft_256() -> None:
+        resource.setrlimit(resource.RLIMIT_NOFILE, (256, 2048))
+
+    sp = ServiceProc(base, service_args(base), preexec_fn=soft_256)
+    try:
+        with open(f"/proc/{sp.proc.pid}/limits") as f:
+            line = next(x for x in f if x.startswith("Max open files"))
+        assert line.split()[3:5] == ["2048", "2048"], line
+        assert any("raised the descriptor limit" in x and "before=256" in x and "now=2048" in x
+                   for x in sp.stderr_lines), sp.log()
+        conn = _health(sp)["connections"]
+        assert conn["fd_limit"] == 2048 and 1800 < conn["cap"] < 2048
+    finally:
+        sp.kill()
+
+
 # ---- ipc:// endpoints already in use -------------------------------------------------------
 def test_claim_ipc_refuses_a_live_listener_and_clears_a_stale_file(base: str) -> None:
     import socket
