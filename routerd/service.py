@@ -198,6 +198,26 @@ class StartError(Exception):
     """The service cannot start (an endpoint in use, a state dir for another topology...)."""
 
 
+def bind_endpoint(owner: Any, kind: int, name: str, ep: str, opts: _listeners.SocketOptions,
+                  curve: tuple[bytes, bytes] | None = None) -> Any:
+    """Bind one named endpoint of ``owner`` (a Service or the shard front: ``ctx``,
+    ``log``, ``sockets``, ``endpoints``) with :func:`listeners.bind_socket`; a failure is
+    a StartError naming the endpoint, a stale ipc file removed is logged."""
+    import zmq
+
+    try:
+        s, note = _listeners.bind_socket(owner.ctx, kind, ep, opts, curve=curve)
+    except zmq.ZMQError as e:
+        raise StartError(f"{name} endpoint {ep}: {e.strerror}") from None
+    except _listeners.EndpointInUse as e:
+        raise StartError(f"{name} endpoint {e}") from None
+    if note:
+        owner.log.warning(note, endpoint=name)
+    owner.sockets[name] = s
+    owner.endpoints[name] = s.last_endpoint.decode()
+    return s
+
+
 # ---- logging -----------------------------------------------------------------------------
 class Log:
     """Plain text or JSON lines on stderr; one line per event, fields as key=value."""
@@ -510,19 +530,8 @@ class Service:
         opts = _listeners.SocketOptions.from_config(cfg, slack=OVERSIZE_ANSWER_SLACK)
 
         def mk(kind: int, name: str, ep: str) -> Any:
-            try:
-                s, note = _listeners.bind_socket(
-                    self.ctx, kind, ep, opts,
-                    curve=self.server_keys if name != "control_ro" else None)
-            except zmq.ZMQError as e:
-                raise StartError(f"{name} endpoint {ep}: {e.strerror}") from None
-            except _listeners.EndpointInUse as e:   # the file appeared since start-up
-                raise StartError(f"{name} endpoint {e}") from None
-            if note:
-                self.log.warning(note, endpoint=name)
-            self.sockets[name] = s
-            self.endpoints[name] = s.last_endpoint.decode()
-            return s
+            return bind_endpoint(self, kind, name, ep, opts,
+                                 curve=self.server_keys if name != "control_ro" else None)
 
         mk(zmq.ROUTER, "ingest", cfg["service.ingest"])
         if cfg["service.pull"]:

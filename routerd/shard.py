@@ -560,7 +560,7 @@ class Front:
         import zmq
 
         from . import metrics as _metrics
-        from .service import OVERSIZE_ANSWER_SLACK, StartError
+        from .service import OVERSIZE_ANSWER_SLACK, StartError, bind_endpoint
 
         cfg = self.cfg
         try:
@@ -576,17 +576,7 @@ class Front:
         opts = _listeners.SocketOptions.from_config(cfg, slack=OVERSIZE_ANSWER_SLACK)
 
         def mk(kind: int, name: str, ep: str) -> Any:
-            try:
-                s, note = _listeners.bind_socket(self.ctx, kind, ep, opts)
-            except zmq.ZMQError as e:
-                raise StartError(f"{name} endpoint {ep}: {e.strerror}") from None
-            except _listeners.EndpointInUse as e:     # not another front's socket file
-                raise StartError(f"{name} endpoint {e}") from None
-            if note:
-                self.log.warning(note, endpoint=name)
-            self.sockets[name] = s
-            self.endpoints[name] = s.last_endpoint.decode()
-            return s
+            return bind_endpoint(self, kind, name, ep, opts)   # claims ipc files first
 
         mk(zmq.ROUTER, "ingest", cfg["service.ingest"])
         if cfg["service.pull"]:
