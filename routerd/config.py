@@ -95,6 +95,7 @@ SCHEMA: dict[str, Field] = {
     "service.dedup_batches": F(int, 1024, "batch numbers remembered per reporter to re-acknowledge a re-sent batch without applying it twice", lo=1),
     "service.dedup_reporters": F(int, 4096, "reporters remembered for duplicate detection (the least recently seen is forgotten first)", lo=1),
     "service.shutdown_timeout_s": F(float, 10.0, "hard bound on a graceful shutdown (SIGTERM/SIGINT)", lo=0, lo_open=True),
+    "service.max_connections": F(int, 0, "peer connections held at once over every listening endpoint (ingest, pull, publish, control); at the cap the endpoints stop listening until some close (connects are refused); 0 = derive from the descriptor limit (RLIMIT_NOFILE, raised to its hard limit at start-up)", lo=0),
     "service.gc_freeze": F(bool, True, "move every object alive after start-up out of the garbage collector's reach (gc.freeze)"),
     # -- simulator ---------------------------------------------------------------------
     "sim.decision_interval_s": F(float, 0.05, "virtual time between table recomputations (like the service's debounce)", lo=0, lo_open=True),

@@ -52,6 +52,8 @@ SNAPSHOT_CAUSES = ("interval", "request", "shutdown")
 RELOAD_RESULTS = ("applied", "rejected")
 #: Ingest sockets.
 INGEST_SOCKETS = ("router", "pull")
+#: Listening sockets whose connections are counted against the connection cap.
+LISTEN_SOCKETS = ("ingest", "pull", "publish", "control", "control_ro", "shards")
 
 
 class Histo:
@@ -276,11 +278,43 @@ class RouterdCollector(Collector):
                            "(disk full, I/O error)", t["failures"])
             yield _counter("routerd_guard_clipped_rows", "Hop rows whose latency the jump "
                            "guard clipped to its band (accepted, not rejected)", t["clipped"])
+        conn = getattr(src, "connection_state", None)   # the connection cap (routerd.listeners)
+        if conn is not None:
+            yield from connection_families(conn())
         yield _gauge("routerd_uptime_seconds", "Seconds since the service started", src.uptime_s())
         info = GaugeMetricFamily("routerd_build_info", "Constant 1, labelled with version and topology digest",
                                  labels=sorted(src.info()))
         info.add_metric([src.info()[k] for k in sorted(src.info())], 1.0)
         yield info
+
+
+def connection_families(st: Mapping[str, Any]) -> Iterator[Metric]:
+    """Open connections, refusals and holds per listening socket (every socket of
+    :data:`LISTEN_SOCKETS` has a series; one the service does not run stays 0)."""
+    if not st:
+        return
+    g = GaugeMetricFamily("routerd_ingest_connections", "Peer connections open now, by "
+                          "listening socket", labels=["socket"])
+    r = CounterMetricFamily("routerd_ingest_connections_refused", "Connections accepted over "
+                            "the connection cap and cut off at once, by listening socket",
+                            labels=["socket"])
+    f = CounterMetricFamily("routerd_ingest_accept_failures", "Connections libzmq could not "
+                            "accept for want of file descriptors, by listening socket",
+                            labels=["socket"])
+    for name in LISTEN_SOCKETS:
+        g.add_metric([name], float(st["open"].get(name, 0)))
+        r.add_metric([name], float(st["refused"].get(name, 0)))
+        f.add_metric([name], float(st["accept_failures"].get(name, 0)))
+    yield g
+    yield r
+    yield f
+    yield _counter("routerd_ingest_connection_pauses", "Times the listening endpoints stopped "
+                   "taking new connections at the connection cap", st["pauses"])
+    yield _gauge("routerd_ingest_connection_cap", "Connections the listening endpoints may "
+                 "hold at once (service.max_connections or derived from the descriptor limit)",
+                 st["cap"])
+    yield _gauge("routerd_ingest_paused", "1 while the ingest endpoint takes no new "
+                 "connections (connection cap reached)", 1.0 if "ingest" in st["paused"] else 0.0)
 
 
 def _counter(name: str, doc: str, value: float) -> CounterMetricFamily:

@@ -7,8 +7,9 @@ metric names (:mod:`routerd.metrics`).  Must not import: the simulator.
 Theory of operation
 -------------------
 One thread runs one ``zmq.Poller`` over the work sockets (ingest ROUTER, optional PULL,
-control REP), the ingest socket's monitor (disconnections) and a stop pipe (an inproc
-PAIR the signal handlers write to).  The poll timeout is the time to the next deadline
+control REP), a monitor per listening socket (connections accepted and closed: the
+connection cap of :mod:`routerd.listeners`) and a stop pipe (an inproc PAIR the signal
+handlers write to).  The poll timeout is the time to the next deadline
 (debounced decision, periodic publication, snapshot), so there are no sleeps.  One loop
 iteration:
 
@@ -79,6 +80,7 @@ from . import __version__, wire
 from . import config as _config
 from . import guards as _guards
 from . import journal as _journal
+from . import listeners as _listeners
 from . import security as _security
 from . import statedir as _statedir
 from . import topology as _topology
@@ -226,6 +228,26 @@ class StartError(Exception):
     """The service cannot start (an endpoint in use, a state dir for another topology...)."""
 
 
+def bind_endpoint(owner: Any, kind: int, name: str, ep: str, opts: _listeners.SocketOptions,
+                  curve: tuple[bytes, bytes] | None = None) -> Any:
+    """Bind one named endpoint of ``owner`` (a Service or the shard front: ``ctx``,
+    ``log``, ``sockets``, ``endpoints``) with :func:`listeners.bind_socket`; a failure is
+    a StartError naming the endpoint, a stale ipc file removed is logged."""
+    import zmq
+
+    try:
+        s, note = _listeners.bind_socket(owner.ctx, kind, ep, opts, curve=curve)
+    except zmq.ZMQError as e:
+        raise StartError(f"{name} endpoint {ep}: {e.strerror}") from None
+    except _listeners.EndpointInUse as e:
+        raise StartError(f"{name} endpoint {e}") from None
+    if note:
+        owner.log.warning(note, endpoint=name)
+    owner.sockets[name] = s
+    owner.endpoints[name] = s.last_endpoint.decode()
+    return s
+
+
 # ---- logging -----------------------------------------------------------------------------
 class Log:
     """Plain text or JSON lines on stderr; one line per event, fields as key=value."""
@@ -364,7 +386,8 @@ class Service:
         self._last_record = 0
         self._unsynced = False
         self._unsynced_since = 0.0
-        self._monitor: Any = None
+        self.listeners: _listeners.Listeners | None = None
+        self._next_gate_tick = 0.0
 
     # -- metrics source -------------------------------------------------------------------
     def engine_statistics(self) -> Any:
@@ -405,18 +428,21 @@ class Service:
             raise StartError(str(e)) from None
         self._load_security()
         self._warn_exposed()
+        self._claim_endpoints()    # before anything is written: a second service stops here
         state_dir = cfg["service.state_dir"]
         try:
             private_dir(state_dir)        # 0700 when created here (routerd.fsmode)
         except OSError as e:
             raise StartError(f"state dir {state_dir}: {e.strerror}") from None
         self._restore(state_dir)
+        _listeners.raise_nofile(self.log)
         self.ctx = zmq.Context()
         if self.allow is not None:
             # the ZAP handler must run before the first CURVE socket binds
             self.auth = _security.start_authenticator(self.ctx, self.allow)
         self._bind_all(zmq)
         self._start_metrics()
+        self._cap_connections()
         self._install_signals()
         now = time.monotonic()
         self._next_publish_all = now            # a fresh subscriber gets tables at once
@@ -528,47 +554,45 @@ class Service:
             self.log.warning("cannot update the pointer to the recorded documents",
                              file=_statedir.CURRENT, reason=_os_reason(e))
 
+    def _claim_endpoints(self) -> None:
+        """Every ipc:// endpoint we will bind: refused when another process listens on its
+        socket file (libzmq's bind would silently take the file over), a stale file from
+        a crash removed (logged); one endpoint named twice is refused too."""
+        cfg = self.cfg
+        seen: dict[str, str] = {}
+        for name in ("ingest", "pull", "publish", "control"):
+            ep = cfg[f"service.{name}"]
+            if ep:
+                self._claim(name, ep, seen)
+        if cfg["security.control_readonly"]:
+            self._claim("control-readonly", cfg["security.control_readonly"], seen)
+
+    def _claim(self, name: str, ep: str, seen: dict[str, str]) -> None:
+        if ep in seen and "*" not in ep:
+            raise StartError(f"{name} endpoint {ep}: also given as the {seen[ep]} endpoint")
+        seen[ep] = name
+        try:
+            note = _listeners.claim_ipc(ep)
+        except _listeners.EndpointInUse as e:
+            raise StartError(f"{name} endpoint {e}") from None
+        if note:
+            self.log.warning(note, endpoint=name)
+
     def _bind_all(self, zmq: Any) -> None:
         cfg = self.cfg
-        hwm = cfg["service.hwm_msgs"]
-        linger_ms = int(cfg["service.linger_s"] * 1000)
-        hb_ms = int(cfg["service.heartbeat_s"] * 1000)
-        maxmsg = cfg["service.max_message_bytes"] + OVERSIZE_ANSWER_SLACK
+        opts = _listeners.SocketOptions.from_config(cfg, slack=OVERSIZE_ANSWER_SLACK)
 
-        def mk(kind: int, name: str, ep: str, *, maxsize: int | None = maxmsg) -> Any:
-            s = self.ctx.socket(kind)
-            s.sndhwm = hwm
-            s.rcvhwm = hwm
-            s.linger = linger_ms
-            if maxsize is not None:
-                s.setsockopt(zmq.MAXMSGSIZE, maxsize)
-            if hb_ms > 0:
-                s.setsockopt(zmq.HEARTBEAT_IVL, hb_ms)
-                s.setsockopt(zmq.HEARTBEAT_TIMEOUT, 3 * hb_ms)
-                s.setsockopt(zmq.HEARTBEAT_TTL, 3 * hb_ms)
-            if kind == zmq.ROUTER:
-                # an ack for a peer that is gone (or whose queue is full) raises instead of
-                # vanishing, so it is counted
-                s.setsockopt(zmq.ROUTER_MANDATORY, 1)
-            if self.server_keys is not None and name != "control_ro":
-                _security.make_server(s, *self.server_keys)    # before bind
-            try:
-                s.bind(ep)
-            except zmq.ZMQError as e:
-                s.close(0)
-                raise StartError(f"{name} endpoint {ep}: {e.strerror}") from None
-            self.sockets[name] = s
-            self.endpoints[name] = s.last_endpoint.decode()
-            return s
+        def mk(kind: int, name: str, ep: str) -> Any:
+            return bind_endpoint(self, kind, name, ep, opts,
+                                 curve=self.server_keys if name != "control_ro" else None)
 
         mk(zmq.ROUTER, "ingest", cfg["service.ingest"])
         if cfg["service.pull"]:
             mk(zmq.PULL, "pull", cfg["service.pull"])
-        mk(zmq.PUB, "publish", cfg["service.publish"], maxsize=None)
+        mk(zmq.PUB, "publish", cfg["service.publish"])
         mk(zmq.REP, "control", cfg["service.control"])
         if cfg["security.control_readonly"]:
             mk(zmq.REP, "control_ro", cfg["security.control_readonly"])
-        self._monitor = self.sockets["ingest"].get_monitor_socket(zmq.EVENT_DISCONNECTED)
         pipe = f"inproc://routerd-stop-{id(self)}"
         self._sig_rx = self.ctx.socket(zmq.PAIR)
         self._sig_rx.linger = 0
@@ -577,6 +601,19 @@ class Service:
         self._sig_tx.linger = 0
         self._sig_tx.sndhwm = 16
         self._sig_tx.connect(pipe)
+
+    def _cap_connections(self) -> None:
+        """The connection cap and a monitor on every listening socket (routerd.listeners)."""
+        try:
+            self.listeners = _listeners.Listeners.start(
+                self.sockets, self.endpoints, self.cfg["service.max_connections"], self.log)
+        except ValueError as e:
+            raise StartError(str(e)) from None
+
+    def connection_state(self) -> dict[str, Any]:
+        """Connection figures for the metrics page and health."""
+        lst = self.listeners
+        return {} if lst is None else lst.figures()
 
     def _start_metrics(self) -> None:
         from . import metrics as _metrics
@@ -792,7 +829,8 @@ class Service:
         pull = self.sockets.get("pull")
         control = self.sockets["control"]
         control_ro = self.sockets.get("control_ro")
-        for s in (ingest, pull, control, control_ro, self._monitor, self._sig_rx):
+        monitors = self.listeners.monitors() if self.listeners is not None else []
+        for s in (ingest, pull, control, control_ro, self._sig_rx, *monitors):
             if s is not None:
                 poller.register(s, zmq.POLLIN)
         try:
@@ -800,8 +838,8 @@ class Service:
                 events = dict(poller.poll(self._timeout_ms()))
                 if self._sig_rx in events:
                     self._read_signals(zmq)
-                if self._monitor in events:
-                    self._read_monitor(zmq)
+                if any(m in events for m in monitors):
+                    self._read_monitor()
                 if self._reload:
                     self._reload = False
                     self._do_reload()
@@ -850,6 +888,8 @@ class Service:
         if self._pub_queue:
             return 0          # tables still due: take what arrived, then publish more
         t = min(self._next_publish_all, self._next_snapshot)
+        if self.listeners is not None and self.listeners.waiting():
+            t = min(t, self._next_gate_tick)
         if self._touched:
             t = min(t, self._last_decide + self.cfg["service.debounce_s"])
         if self._unsynced:
@@ -869,16 +909,12 @@ class Service:
                     self.log.info("stopping", signal=signal.Signals(signum).name)
                     self._stop = True
 
-    def _read_monitor(self, zmq: Any) -> None:
-        from zmq.utils.monitor import recv_monitor_message
-
-        while True:
-            try:
-                ev = recv_monitor_message(self._monitor, zmq.NOBLOCK)
-            except zmq.Again:
-                return
-            if ev.get("event") == zmq.EVENT_DISCONNECTED:
-                self.counters.ingest_disconnects += 1
+    def _read_monitor(self) -> None:
+        """Connection events: the cap's accounting (pause, resume, cut off), and the
+        ingest disconnect count."""
+        assert self.listeners is not None
+        self.listeners.read()
+        self.counters.ingest_disconnects = self.listeners.disconnects["ingest"]
 
     def _recv(self, zmq: Any, sock: Any, curve: bool) -> tuple[list[bytes], _security.Reporter | None]:
         """One waiting message (raises zmq.Again if none) and, under CURVE, the allowed
@@ -1131,6 +1167,7 @@ class Service:
                        "clipped": self.guards.stats.clipped,
                        "rate_limited_batches": self.guards.stats.rate_limited_batches,
                        "reporters_tracked": self.guards.reporters_tracked},
+            "connections": self.connection_state(),
             "security": {"curve": self.allow is not None,
                          "reporters": [] if self.allow is None else
                          [r.name for r in self.allow.reporters]},
@@ -1140,6 +1177,9 @@ class Service:
     def _housekeeping(self) -> None:
         now = time.monotonic()
         cfg = self.cfg
+        if self.listeners is not None and now >= self._next_gate_tick:
+            self.listeners.tick()
+            self._next_gate_tick = now + 1.0
         if self._down is not None:
             # no decisions (they would be journaled) and no snapshots; tables keep going out
             self._try_resume()
@@ -1336,13 +1376,9 @@ class Service:
             self.metrics_server.shutdown()
             self.metrics_server.server_close()
             self.metrics_server = None
-        if getattr(self, "_monitor", None) is not None:
-            import zmq
-
-            with contextlib.suppress(zmq.ZMQError):
-                self.sockets["ingest"].disable_monitor()
-            self._monitor.close(0)
-            self._monitor = None
+        if getattr(self, "listeners", None) is not None:
+            self.listeners.close()
+            self.listeners = None
         for s in self.sockets.values():
             s.close()
         self.sockets = {}
@@ -1356,6 +1392,7 @@ class Service:
         if self.ctx is not None:
             self.ctx.term()
             self.ctx = None
+            _listeners.release_ipc(self.endpoints.values())   # bound by us (claimed first)
         if self.journal is not None:
             with contextlib.suppress(StorageDown):
                 self._commit()

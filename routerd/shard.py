@@ -97,6 +97,7 @@ import numpy as np
 
 from . import __version__, wire
 from . import config as _config
+from . import listeners as _listeners
 from . import topology as _topology
 from .errors import InputError
 
@@ -570,6 +571,8 @@ class Front:
         self.state_root = os.path.abspath(cfg["service.state_dir"])
         self._ipc_dir: str | None = None
         self.metrics_server: Any = None
+        self.listeners: _listeners.Listeners | None = None
+        self._next_gate_tick = 0.0
         self.counts: dict[str, int] = {k: 0 for k in (
             "batches_accepted", "batches_duplicate", "batches_refused", "batches_unavailable", "pieces_sent",
             "pieces_acked", "pieces_late", "publications", "parts_received", "acks_undeliverable")}
@@ -581,7 +584,7 @@ class Front:
 
         from . import metrics as _metrics
         from .fsmode import private_dir
-        from .service import StartError
+        from .service import OVERSIZE_ANSWER_SLACK, StartError, bind_endpoint
 
         cfg = self.cfg
         try:
@@ -593,25 +596,11 @@ class Front:
             raise StartError(f"state dir {self.state_root}: {e.strerror}") from None
         self.ctx = zmq.Context()
         listen = getattr(self.args, "shard_listen", None) or f"ipc://{self._ipc('front-shards')}"
-        hwm = cfg["service.hwm_msgs"]
-        maxmsg = cfg["service.max_message_bytes"] + (1 << 20)
+        # the service's socket options (routerd.listeners); sharding refuses CURVE (run())
+        opts = _listeners.SocketOptions.from_config(cfg, slack=OVERSIZE_ANSWER_SLACK)
 
         def mk(kind: int, name: str, ep: str) -> Any:
-            s = self.ctx.socket(kind)
-            s.linger = int(cfg["service.linger_s"] * 1000)
-            s.sndhwm = s.rcvhwm = hwm
-            if kind != zmq.PUB:
-                s.setsockopt(zmq.MAXMSGSIZE, maxmsg)
-            if kind == zmq.ROUTER:
-                s.setsockopt(zmq.ROUTER_MANDATORY, 1)
-            try:
-                s.bind(ep)
-            except zmq.ZMQError as e:
-                s.close(0)
-                raise StartError(f"{name} endpoint {ep}: {e.strerror}") from None
-            self.sockets[name] = s
-            self.endpoints[name] = s.last_endpoint.decode()
-            return s
+            return bind_endpoint(self, kind, name, ep, opts)   # claims ipc files first
 
         mk(zmq.ROUTER, "ingest", cfg["service.ingest"])
         if cfg["service.pull"]:
@@ -635,7 +624,20 @@ class Front:
         except OSError as e:
             raise StartError(f"state dir {self.state_root}: recording the topology and "
                              f"config: {e.strerror or e}") from None
+        self._cap_connections()
         self._banner()
+
+    def _cap_connections(self) -> None:
+        """The connection cap over the front's listening sockets (as the service's, see
+        :mod:`routerd.listeners`), counted once the workers' pipes and connections exist."""
+        from .service import StartError
+
+        _listeners.raise_nofile(self.log)
+        try:
+            self.listeners = _listeners.Listeners.start(
+                self.sockets, self.endpoints, self.cfg["service.max_connections"], self.log)
+        except ValueError as e:
+            raise StartError(str(e)) from None
 
     def _ipc(self, name: str) -> str:
         """An ipc path for ``name``: in the state dir when short enough (ipc paths are
@@ -844,6 +846,9 @@ class Front:
                     for s in self.sockets.values():
                         if s.type in (zmq.ROUTER, zmq.PULL, zmq.REP):
                             poller.register(s, zmq.POLLIN)
+                    monitors = self.listeners.monitors() if self.listeners is not None else []
+                    for m in monitors:
+                        poller.register(m, zmq.POLLIN)
                     for w in self.workers:
                         for s in (w.dealer, w.sub):
                             if s is not None:
@@ -853,6 +858,12 @@ class Front:
                 if getattr(self, "_reload_all", False):
                     self._reload_all = False
                     self._fan_out({"op": "reload"})
+                if self.listeners is not None:
+                    if any(m in ev for m in monitors):
+                        self.listeners.read()
+                    if time.monotonic() >= self._next_gate_tick:
+                        self.listeners.tick()
+                        self._next_gate_tick = time.monotonic() + 1.0
                 if self.sockets["shards"] in ev:
                     self._take_hellos()
                 for w in self.workers:
@@ -1181,6 +1192,7 @@ class Front:
                 "topology": {"name": self.topo.name, "id": self.topo.digest,
                              "nodes": self.topo.n, "links": self.topo.n_links},
                 "front": {"in_flight": len(self.pending), **self.counts},
+                "connections": self.listeners.figures() if self.listeners is not None else {},
                 "shards_up": up, "shards": shards}
 
     # -- supervision and shutdown -------------------------------------------------------------------
@@ -1258,12 +1270,16 @@ class Front:
                 if s is not None:
                     s.close(0)
             w.dealer = w.sub = None
+        if self.listeners is not None:
+            self.listeners.close()
+            self.listeners = None
         for s in self.sockets.values():
             s.close()
         self.sockets = {}
         if self.ctx is not None:
             self.ctx.term()
             self.ctx = None
+            _listeners.release_ipc(self.endpoints.values())   # bound by us (claimed first)
         if self._ipc_dir is not None:
             import shutil
 
@@ -1373,6 +1389,16 @@ class _FrontCollector:
                     out = fam[m.name] = Metric(m.name, m.documentation, m.type)
                 for s in m.samples:
                     out.add_sample(s.name, {**s.labels, "shard": str(w.k)}, s.value)
+        lst = f.listeners
+        if lst is not None:   # the front's own connection figures, in the same families
+            from .metrics import connection_families
+
+            for m in connection_families(lst.figures()):
+                out = fam.get(m.name)
+                if out is None:
+                    out = fam[m.name] = Metric(m.name, m.documentation, m.type)
+                for s in m.samples:
+                    out.add_sample(s.name, {**s.labels, "shard": "front"}, s.value)
         yield from fam.values()
         c = CounterMetricFamily("routerd_shard_front_batches", "Batches at the front, by result",
                                 labels=["shard", "result"])

@@ -29,7 +29,8 @@ START_TIMEOUT_S = 30.0
 class ServiceProc:
     """One service process and the endpoints it printed at start-up."""
 
-    def __init__(self, base: str, args: Sequence[str], env: dict[str, str] | None = None):
+    def __init__(self, base: str, args: Sequence[str], env: dict[str, str] | None = None,
+                 preexec_fn: Any = None):
         self.base = base
         self.state_dir = os.path.join(base, "state")
         self.args = list(args)
@@ -39,7 +40,8 @@ class ServiceProc:
         self.epoch: int | None = None
         cmd = [sys.executable, "-m", "routerd", "serve", *self.args]
         self.proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                                     text=True, env={**os.environ, **(env or {})})
+                                     text=True, env={**os.environ, **(env or {})},
+                                     preexec_fn=preexec_fn)
         self._threads = [threading.Thread(target=self._read_err, daemon=True)]
         self._threads[0].start()
         self._ctx = zmq.Context()

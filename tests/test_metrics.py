@@ -211,3 +211,19 @@ def test_histogram_small_and_vector_paths_agree() -> None:
     many.observe_many(vals)                          # one call: numpy path
     assert one.counts.tolist() == many.counts.tolist()
     assert one.sum == pytest.approx(many.sum)
+
+
+def test_connection_families_cover_every_listening_socket() -> None:
+    src = FakeSource()
+    src.connection_state = lambda: {  # type: ignore[attr-defined]
+        "cap": 112, "open": {"ingest": 100, "control": 2}, "refused": {"ingest": 3},
+        "accept_failures": {}, "pauses": 1, "paused": ["ingest", "publish"], "fd_limit": 256}
+    fams = families(page(src))
+    open_ = {s.labels["socket"]: s.value for s in fams["routerd_ingest_connections"].samples}
+    assert open_ == {"ingest": 100, "pull": 0, "publish": 0, "control": 2, "control_ro": 0, "shards": 0}
+    refused = {s.labels["socket"]: s.value for s in fams["routerd_ingest_connections_refused"].samples}
+    assert refused["ingest"] == 3 and set(refused) == set(metrics.LISTEN_SOCKETS)
+    assert all(s.name.endswith("_total") for s in fams["routerd_ingest_connections_refused"].samples)
+    assert fams["routerd_ingest_connection_pauses"].samples[0].value == 1
+    assert fams["routerd_ingest_connection_cap"].samples[0].value == 112
+    assert fams["routerd_ingest_paused"].samples[0].value == 1
