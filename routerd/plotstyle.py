@@ -71,7 +71,7 @@ def log_limits(values: Iterable[float], floor: float = 0.1) -> tuple[float, floa
     if not vs:
         return floor, floor * 10
     lo, hi = min(vs), max(vs)
-    return max(floor, lo / 1.6), hi * 1.8
+    return max(floor, lo / 1.6), hi * 2.5   # room at the top for event labels
 
 
 def zero_visible(ax: Any, top: float) -> None:
@@ -81,7 +81,8 @@ def zero_visible(ax: Any, top: float) -> None:
 
     top = top if math.isfinite(top) and top > 0 else 1.0
     ax.set_ylim(-0.05 * top, top)
-    ax.yaxis.set_major_locator(nonnegative_locator(MaxNLocator(nbins=4, min_n_ticks=2)))
+    ax.yaxis.set_major_locator(nonnegative_locator(
+        MaxNLocator(nbins=4, steps=[1, 2, 2.5, 5, 10], min_n_ticks=2)))
 
 
 def nonnegative_locator(inner: Any) -> Any:
