@@ -121,7 +121,8 @@ def mark_link_spans(axes: Sequence[Any], spans: Iterable[tuple[float, float, str
 def link_spans(events: Iterable[tuple[float, str, str]], end_s: float
                ) -> tuple[list[tuple[float, float, str]], list[tuple[float, str, str]]]:
     """Link events ``(t, action, link name)`` → failure spans ``(down, up or end, name)``
-    and the other events (capacity and delay changes, an ``up`` without a ``down``)."""
+    and the other events (capacity and delay changes).  A ``down`` of a link already down
+    and an ``up`` of one already up change nothing and are not marked."""
     spans: list[tuple[float, float, str]] = []
     other: list[tuple[float, str, str]] = []
     open_: dict[str, float] = {}
@@ -130,8 +131,9 @@ def link_spans(events: Iterable[tuple[float, str, str]], end_s: float
             continue
         if action == "down":
             open_.setdefault(name, t)
-        elif action == "up" and name in open_:
-            spans.append((open_.pop(name), t, name))
+        elif action == "up":
+            if name in open_:
+                spans.append((open_.pop(name), t, name))
         else:
             other.append((t, action, name))
     spans += [(t, end_s, name) for name, t in open_.items()]
