@@ -239,10 +239,13 @@ def utilisation_figure(result: dict[str, Any], topo: Topology) -> Any:
     order = np.argsort(-np.nan_to_num(util, nan=-1.0))[:8]
     lines = [f"busiest links: mean / peak {iv:g} s (%)" if math.isfinite(iv)
              else "busiest links: mean (%)"]
+    names = {k: f"{topo.nodes[topo.src[k]]} → {topo.nodes[topo.dst[k]]}" for k in order.tolist()}
+    wide = max((len(v) for v in names.values()), default=0)
     for k in order.tolist():
         pk = f" / {peak[k] * 100:3.0f}" if math.isfinite(peak[k]) else ""
-        lines.append(f"{topo.nodes[topo.src[k]]} → {topo.nodes[topo.dst[k]]}  "
-                     f"{util[k] * 100:3.0f}{pk}")
+        lines.append(f"{names[k].ljust(wide)}  {util[k] * 100:3.0f}{pk}")
+    if big:
+        lines.append(f"({topo.n} nodes: names not drawn)")
     fig.text(0.73, 0.62, "\n".join(lines), fontsize=8, va="top", ha="left", family="monospace")
     fig.text(0.73, 0.12, "arrows: direction of travel,\neach drawn on its right-hand side",
              fontsize=8, va="bottom", ha="left", color="#444444")
