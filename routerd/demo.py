@@ -750,6 +750,7 @@ class Demo:
         fig, (ax, axp, ax2) = ps.time_figure(plt, 3, 8.5, (2.4, 2.0, 1.3))
         values: list[float] = []
         lost_top = 1.0
+        ringed = False
         for pol in POLICIES:
             if pol not in self.results:
                 continue
@@ -764,6 +765,7 @@ class Demo:
             self._policy_line(ax2, pol, t, share, label=False)
             hit = np.isfinite(share) & (share > LOSS_MARK * 100) & np.isfinite(md)
             if hit.any():
+                ringed = True
                 ax.plot(t[hit], md[hit], ls="none", marker="o", ms=9, mfc="none",
                         mec=ps.DOWN_COLOUR, mew=1.2, zorder=1)
             values += md.tolist() + p99.tolist()
@@ -780,9 +782,11 @@ class Demo:
         from matplotlib.lines import Line2D
 
         handles, labels = ax.get_legend_handles_labels()
-        handles.append(Line2D([], [], ls="none", marker="o", ms=9, mfc="none", mec=ps.DOWN_COLOUR))
-        labels.append(f"a second with > {LOSS_MARK:.0%} lost:\nits times cover the\n"
-                      "delivered packets only")
+        if ringed:
+            handles.append(Line2D([], [], ls="none", marker="o", ms=9, mfc="none",
+                                  mec=ps.DOWN_COLOUR))
+            labels.append(f"a second with > {LOSS_MARK:.0%} lost:\nits times cover the\n"
+                          "delivered packets only")
         ps.legend_outside(ax, handles, labels)
         interrupted = ("service" in self.results
                        and self.results["service"]["summary"].get("interrupted"))

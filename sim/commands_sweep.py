@@ -425,7 +425,7 @@ def figure(points: Sequence[Mapping[str, Any]], meta: Mapping[str, Any],
                                   gridspec_kw={"height_ratios": [3, 1.2]})
     fig.subplots_adjust(left=0.10, right=0.72, top=0.90, bottom=0.09, hspace=0.10)
     pols = list(dict.fromkeys(p["policy"] for p in points))
-    cut = False
+    cut = ringed = False
     ys: list[float] = []
     lost_top = 1.0
     for i, pol in enumerate(pols):
@@ -447,6 +447,7 @@ def figure(points: Sequence[Mapping[str, Any]], meta: Mapping[str, Any],
             lossy = [(p["rate_pps"], p["mean_delivery_s"] * 1e3) for p in pts
                      if _finite(p.get("lost_fraction")) and p["lost_fraction"] >= LOSS_MARK]
             if lossy:
+                ringed = True
                 ax.plot(*zip(*lossy), ls="none", marker="o", ms=10, mfc="none",
                         mec=ps.DOWN_COLOUR, mew=1.3, zorder=1)
         mod = [p for p in allp if _finite(p.get("model_delay_s"))]
@@ -468,9 +469,11 @@ def figure(points: Sequence[Mapping[str, Any]], meta: Mapping[str, Any],
                  f"{meta.get('duration_s'):g} s per point\nband: {band}", fontsize=9)
     ax.grid(True, alpha=0.3)
     handles, labels = ax.get_legend_handles_labels()
-    handles.append(Line2D([], [], ls="none", marker="o", ms=10, mfc="none", mec=ps.DOWN_COLOUR))
-    labels.append(f"point losing ≥ {LOSS_MARK:.1%}\nof its packets: its mean\n"
-                  "covers delivered ones only")
+    if ringed:
+        handles.append(Line2D([], [], ls="none", marker="o", ms=10, mfc="none",
+                              mec=ps.DOWN_COLOUR))
+        labels.append(f"point losing ≥ {LOSS_MARK:.1%}\nof its packets: its mean\n"
+                      "covers delivered ones only")
     ps.legend_outside(ax, handles, labels)
     if cut:
         ax.text(0.01, 0.98, "band cut at " + ("a tenth of the mean" if log_y else "0") +

@@ -233,6 +233,10 @@ def test_sweep_figure_band_never_below_zero_and_says_what_it_is() -> None:
     # a narrow band is not cut and carries no note
     fig2 = sw.figure(_pts(0.002), META)
     assert not any("band cut" in t.get_text() for t in fig2.axes[0].texts)
+    # no lossy point: no ring, and no legend entry for one
+    fig3 = sw.figure([{**p, "lost_fraction": 0.0} for p in _pts(0.002)], META)
+    assert not any("delivered ones only" in t.get_text()
+                   for t in fig3.axes[0].get_legend().get_texts())
 
 
 def test_sweep_figure_log_axis_ticks_are_plain_milliseconds() -> None:
