@@ -209,7 +209,7 @@ def test_saturated_link_is_never_more_than_fully_busy() -> None:
     # offered 1.5 x capacity into a 20-packet buffer: the link is busy all the time and
     # every interval's utilisation is at most 1 (to float rounding).  M/M/1/K: busy a
     # fraction 1 - P_0 of the time, P_0 = (1 - rho) / (1 - rho^(K+1)) (Kleinrock, Queueing
-    # Systems Vol. 1, 1975, eq. 3.44), which is 0.9999 here
+    # Systems Vol. 1, 1975, the M/M/1/K section of ch. 3; section from memory), 0.9999 here
     K, lam = 20, 1500.0
     rho = lam / MU
     p0 = (1 - rho) / (1 - rho ** (K + 1))
@@ -230,8 +230,9 @@ def test_saturated_link_is_never_more_than_fully_busy() -> None:
 
 
 def test_long_run_utilisation_is_rho() -> None:
-    # M/M/1: the server is busy a fraction rho = lambda / mu of the time (Kleinrock,
-    # Queueing Systems Vol. 1, 1975, eq. 3.2 ff., the utilisation of a single server);
+    # M/M/1: the server is busy a fraction rho = lambda / mu = 1 - P_0 of the time
+    # (Kleinrock, Queueing Systems Vol. 1, 1975, the M/M/1 results of ch. 3; chapter from
+    # memory);
     # the tolerance is the per-interval series' own 95% interval (20 batch means)
     lam = 800.0
     r = run({"policy": "shortest", "rate_pps": lam, "duration_s": 300.0, "seed": 5,
