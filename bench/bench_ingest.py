@@ -56,6 +56,7 @@ if ROOT not in sys.path:
     sys.path.insert(0, ROOT)
 
 from routerd import config, wire
+from routerd.childproc import parse_ready
 from routerd.service import load_topology
 
 SIZES = (1, 64, 1024)
@@ -241,7 +242,7 @@ class Service:
                                      text=True, cwd=ROOT)
         assert self.proc.stdout is not None
         for line in self.proc.stdout:
-            if line.startswith("routerd: ready"):
+            if parse_ready(line):
                 break
         else:
             raise RuntimeError(f"service {name} did not start (exit {self.proc.wait()})")

@@ -43,6 +43,7 @@ from bench_ingest import Frames, acked
 
 from routerd import shard, wire
 from routerd import topology as T
+from routerd.childproc import parse_ready
 from routerd.engine import Engine, EngineSettings
 
 ROWS = 1024
@@ -70,7 +71,7 @@ class _Proc:
     def ready(self) -> None:
         assert self.proc.stdout is not None
         for line in self.proc.stdout:
-            if line.startswith("routerd: ready"):
+            if parse_ready(line):
                 return
         raise RuntimeError(f"{self.name} did not start (exit {self.proc.wait()})")
 

@@ -27,7 +27,7 @@ sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
 from routerd import config, topology
 from sim import policies
-from sim.core import run_core
+from sim.core import CoreResult, run_core
 from sim.run import DEMO_TOPOLOGY
 from sim.traffic import PoissonTraffic
 
@@ -172,7 +172,7 @@ def _timed(obj: Any, name: str, acc: list[float]) -> None:
 
 
 def sim_once(topo: topology.Topology, name: str, pkts: list[tuple],
-             end: float) -> tuple[int, float, dict, float]:
+             end: float) -> tuple[int, float, CoreResult, float]:
     cfg = config.load(None)
     pol = policies.make(name)
     pol.attach(topo, np.random.default_rng(2), cfg)
@@ -185,7 +185,7 @@ def sim_once(topo: topology.Topology, name: str, pkts: list[tuple],
     t0 = time.process_time()
     raw = run_core(topo, pol, iter(pkts), duration_s=end, series_interval_s=end / 10)
     wall = time.process_time() - t0
-    return sum(raw["carried"]), wall, raw, in_engine[0]
+    return sum(raw.carried), wall, raw, in_engine[0]
 
 
 def measure(topo: topology.Topology, rate: float, duration: float, policy: str,
@@ -198,7 +198,7 @@ def measure(topo: topology.Topology, rate: float, duration: float, policy: str,
     bw = sw = float("inf")
     bh = sh = 0
     eng_s = 0.0
-    raw: dict = {}
+    raw: CoreResult | None = None
     cw = float("inf")
     ch = 0
     for _ in range(repeats):
@@ -212,8 +212,9 @@ def measure(topo: topology.Topology, rate: float, duration: float, policy: str,
         sh, w, raw, e = sim_once(topo, policy, pkts, duration)
         if w < sw:
             sw, eng_s = w, e
+    assert raw is not None, "repeats must be >= 1"
     return {"sim_hops_per_s": sh / sw, "bare_hops_per_s": bh / bw, "sim_hops": sh,
-            "bare_hops": bh, "events": raw["events"], "dropped": raw["dropped_all"],
+            "bare_hops": bh, "events": raw.events, "dropped": raw.dropped_all,
             "engine_share": eng_s / sw, "classic_hops_per_s": ch / cw}
 
 
@@ -235,7 +236,7 @@ def memory_per_packet(quick: bool) -> tuple[float, float]:
         raw = run_core(topo, pol, iter(pkts), duration_s=0.4, series_interval_s=0.1)
         _, peak = tracemalloc.get_traced_memory()
         tracemalloc.stop()
-        out.append((peak, max(raw["series"]["in_network"] or [0]) or raw["in_flight_end"]))
+        out.append((peak, max(raw.series.in_network or [0]) or raw.in_flight_end))
     (m1, n1), (m2, n2) = out
     sim_b = (m2 - m1) / max(n2 - n1, 1)
     # the bare loop keeps one heap tuple (2 slots + a float) and two list slots per packet

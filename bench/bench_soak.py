@@ -31,6 +31,7 @@ HERE = os.path.dirname(os.path.abspath(__file__))
 sys.path.insert(0, os.path.join(HERE, ".."))
 
 from routerd import config, wire
+from routerd.childproc import parse_ready
 from routerd.service import load_topology
 
 RATE_BATCHES_S = 200
@@ -63,7 +64,7 @@ def _start(base: str) -> tuple[subprocess.Popen[str], dict[str, str]]:
                          stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
     assert p.stdout is not None
     for line in p.stdout:
-        if line.startswith("routerd: ready"):
+        if parse_ready(line):
             break
     else:
         raise RuntimeError("routerd serve did not start")

@@ -13,7 +13,9 @@ Theory of operation
 One thread, one ``zmq.Poller`` over the link sockets, the local socket (applications
 hand overlay packets in there), the table subscription and a stop pipe.  The poll timeout
 is the time to the next deadline (a probe, a held packet's release, a report, a status
-write), at most 50 ms.
+write), at most 50 ms.  Each pass is one :meth:`Agent.turn`: poll, handle, then the
+timers due by the agent's clock (:mod:`routerd.clock`), so a test on a fake clock drives
+the agent turn by turn and moves time itself.
 
 Forwarding.  A data packet for another node goes to a next hop chosen from the table the
 service published for this node: ``routes[dst] = [[next_hop, weight], ...]``; the greedy
@@ -44,13 +46,18 @@ then uses its own estimate of y).
 
 Failure detection (after BFD, RFC 5880, asynchronous mode): a link whose neighbour has
 not echoed for ``detect_multiplier x probe_interval_s`` is down; the next echo brings it up.
-States, as a table::
-
-    state  event                         next   report
-    init   echo                          up     up
-    init   detection time without echo   down   down
-    up     detection time without echo   down   down
-    down   echo                          up     up
+The rules are the table :data:`LINK_TRANSITIONS`, (state, event) → (next state, actions),
+and :meth:`Agent._link_event` is the only code that changes a link's state.  A link starts
+in ``init``: the agent has heard nothing yet, so it neither claims the link works nor
+reports it failed; the detection time runs from start-up, as if an echo had just come.
+The first echo or the first expiry of the detection time (``silence``) settles it, and
+the change is reported.  After that only a *change* is reported: an echo on an up link
+and silence on a down one do nothing, so a flapping neighbour costs one row per flap,
+never one per probe.  ``resync`` (a new service epoch: the service lost what it knew)
+reports a down link again and nothing else, because the service re-admits a link as up
+on its own.  Actions: ``report`` queues a link row to the service, ``count`` updates the
+link metrics and recomputes the static fallback (the set of usable links changed), and
+``record`` keeps a detection entry for the status file.
 
 Non-stop forwarding (in the spirit of RFC 3623's graceful restart): when the service
 publishes nothing and acknowledges nothing for ``agent.table_stale_s`` the agent keeps
@@ -82,13 +89,14 @@ import signal
 import socket
 import sys
 import threading
-import time
 from collections import deque
 from collections.abc import Mapping
 from dataclasses import dataclass
+from types import MappingProxyType
 from typing import Any
 
 from . import overlay as ov
+from .clock import SYSTEM, Clock
 from .errors import InputError, Problem, read_yaml
 
 #: Why a packet is dropped by the agent (a fixed set: a metrics label uses it).
@@ -96,6 +104,27 @@ DROP_REASONS = ("no_route", "send_error", "hold_full", "not_data")
 #: Why a flowlet was (re-)pinned.
 REPIN_CAUSES = ("new", "idle", "table", "link", "return")
 LINK_STATES = ("init", "up", "down")
+#: States in which a link may carry traffic (init: nothing heard yet, not known failed).
+USABLE_STATES = frozenset({"init", "up"})
+#: What can happen to a link: an echo arrives; the detection time passes without one
+#: (checked at each probe); the service starts a new epoch.
+LINK_EVENTS = ("echo", "silence", "resync")
+#: What a transition does (module docstring): report a link row, count the change (metrics,
+#: static fallback), record a detection.
+LINK_ACTIONS = ("report", "count", "record")
+#: The link state machine: (state, event) -> (next state, actions).  Total over
+#: LINK_STATES x LINK_EVENTS; the theory of operation is in the module docstring.
+LINK_TRANSITIONS: Mapping[tuple[str, str], tuple[str, tuple[str, ...]]] = MappingProxyType({
+    ("init", "echo"): ("up", ("report", "count")),
+    ("init", "silence"): ("down", ("report", "count", "record")),
+    ("init", "resync"): ("init", ()),
+    ("up", "echo"): ("up", ()),
+    ("up", "silence"): ("down", ("report", "count", "record")),
+    ("up", "resync"): ("up", ()),
+    ("down", "echo"): ("up", ("report", "count")),
+    ("down", "silence"): ("down", ()),
+    ("down", "resync"): ("down", ("report",)),
+})
 #: Hop latency histogram buckets, seconds (sub-millisecond veth hops up to congested ones).
 LATENCY_BUCKETS_S = (1e-4, 2.5e-4, 5e-4, 1e-3, 2.5e-3, 5e-3, 0.01, 0.025, 0.05, 0.1, 0.25,
                      0.5, 1.0, 2.5)
@@ -270,19 +299,24 @@ class _Link:
 
 class Agent:
     """One node's agent.  ``open()`` binds, ``run()`` loops until stopped (or ``duration_s``),
-    ``request_stop()`` works from any thread or a signal handler, ``close()`` releases."""
+    ``request_stop()`` works from any thread or a signal handler, ``close()`` releases.
+
+    ``clock`` (:mod:`routerd.clock`) is the only source of time: deadlines and detection
+    on ``monotonic()``, wire timestamps on ``wall_ns()``; it is handed on to the reporter
+    and the table subscriber."""
 
     def __init__(self, cfg: Any, topo: Any, node: str, *, registry: Any,
                  underlay: Mapping[tuple[int, int], Any] | None = None,
                  local: str | None = None, deliver: str | None = None,
                  status_file: str | None = None, status_interval_s: float = 1.0,
-                 underlay_where: str = "agent.underlay"):
+                 underlay_where: str = "agent.underlay", clock: Clock = SYSTEM):
         if node not in topo.index:
             raise InputError(Problem("--node", node, f"is not a node of topology {topo.name!r} "
                                      f"({', '.join(topo.nodes)})"))
         from . import security
 
         self.cfg = cfg
+        self.clock = clock
         self.topo = topo
         self.name = node
         self.me = topo.index[node]
@@ -345,7 +379,7 @@ class Agent:
         self._hold_n = 0
         self._hold_seq = 0
         self.hold_max = cfg["agent.hold_max_pkts"]
-        self.started = time.monotonic()
+        self.started = self.clock.monotonic()
         self._next_probe = 0.0
         self._next_report = 0.0
         self._next_status = 0.0
@@ -357,7 +391,7 @@ class Agent:
 
         from .client import Reporter, TableSubscriber
 
-        now = time.monotonic()
+        now = self.clock.monotonic()
         ctx: zmq.Context[Any] = zmq.Context.instance()
         try:
             for e in self.ends:
@@ -379,11 +413,11 @@ class Agent:
             raise InputError(f"agent {self.name}: cannot bind its sockets: {e}") from None
         self._recompute_fallback()
         self.sub = TableSubscriber(self.cfg["service.publish"], [self.name], context=ctx,
-                                   curve=self.curve)
+                                   curve=self.curve, clock=self.clock)
         self.reporter = Reporter(self.cfg["service.ingest"], self.reporter_name,
                                  topology_nodes=self.topo, batch_rows=self.cfg["agent.report_batch_rows"],
                                  timeout_s=2.0, retries=3, context=ctx, on_ack=self._on_ack,
-                                 curve=self.curve)
+                                 curve=self.curve, clock=self.clock)
         self.poller = zmq.Poller()
         for ln in self.links.values():
             self.poller.register(ln.sock.fileno(), zmq.POLLIN)
@@ -392,7 +426,7 @@ class Agent:
         self.poller.register(self._stop_r, zmq.POLLIN)
 
     def _on_ack(self, ack: Any) -> None:
-        self.last_ack_at = time.monotonic()
+        self.last_ack_at = self.clock.monotonic()
 
     def request_stop(self) -> None:
         self._stop = True
@@ -403,33 +437,35 @@ class Agent:
 
     # -- the loop ----------------------------------------------------------------------------
     def run(self, duration_s: float | None = None) -> int:
-        import zmq
-
         assert self.poller is not None, "open() first"
-        end = math.inf if duration_s is None else time.monotonic() + duration_s
-        sub_sock = self.sub._sock
-        local_fd = self.local_sock.fileno() if self.local_sock else -1
+        end = math.inf if duration_s is None else self.clock.monotonic() + duration_s
         while not self._stop:
-            now = time.monotonic()
+            now = self.clock.monotonic()
             if now >= end:
                 break
-            wait = min(_MAX_WAIT_S, self._next_deadline(now) - now, end - now)
-            events = self.poller.poll(max(0, math.ceil(wait * 1000)))
-            for what, _ev in events:
-                if what is sub_sock:
-                    self._take_tables()
-                elif what == local_fd:
-                    self._drain_local()
-                elif what == self._stop_r:
-                    self._stop = True
-                else:
-                    ln = self.by_fd.get(what)
-                    if ln is not None:
-                        self._drain_link(ln)
-            self._timers(time.monotonic())
-        _ = zmq
+            self.turn(min(_MAX_WAIT_S, self._next_deadline(now) - now, end - now))
         self.write_status()
         return 0
+
+    def turn(self, wait_s: float = 0.0) -> None:
+        """One pass of the loop: wait up to ``wait_s`` of real time for input, handle what
+        came, then run the timers due by the clock.  :meth:`run` is a loop of these; a
+        test on a :class:`~routerd.clock.FakeClock` calls it itself between advances."""
+        assert self.poller is not None, "open() first"
+        sub_sock = self.sub._sock
+        local_fd = self.local_sock.fileno() if self.local_sock else -1
+        for what, _ev in self.poller.poll(max(0, math.ceil(wait_s * 1000))):
+            if what is sub_sock:
+                self._take_tables()
+            elif what == local_fd:
+                self._drain_local()
+            elif what == self._stop_r:
+                self._stop = True
+            else:
+                ln = self.by_fd.get(what)
+                if ln is not None:
+                    self._drain_link(ln)
+        self._timers(self.clock.monotonic())
 
     def _next_deadline(self, now: float) -> float:
         t = min(self._next_probe, self._next_report, self._next_status)
@@ -477,7 +513,7 @@ class Agent:
                 continue
             self.counts["injected"] += 1
             self.m.injected.inc()
-            self._handle_data(data, h, time.monotonic())
+            self._handle_data(data, h, self.clock.monotonic())
 
     def _drain_link(self, ln: _Link) -> None:
         s = ln.sock
@@ -488,7 +524,7 @@ class Agent:
                 return
             except OSError:   # ECONNREFUSED from an earlier send to a peer not yet up
                 continue
-            t2 = time.time_ns()
+            t2 = self.clock.wall_ns()
             if self.emulate and ln.delay_s > 0:
                 if self._hold_n >= self.hold_max:
                     self.drops["hold_full"] += 1
@@ -496,7 +532,7 @@ class Agent:
                     continue
                 self._hold_n += 1
                 self._hold_seq += 1
-                heapq.heappush(self.hold, (time.monotonic() + ln.delay_s, self._hold_seq,
+                heapq.heappush(self.hold, (self.clock.monotonic() + ln.delay_s, self._hold_seq,
                                            ln.end.neighbour, data))
                 continue
             self._from_link(ln, data, t2)
@@ -508,7 +544,7 @@ class Agent:
             self._hold_n -= 1
             ln = self.links.get(y)
             if ln is not None:
-                self._from_link(ln, data, time.time_ns())
+                self._from_link(ln, data, self.clock.wall_ns())
 
     def _from_link(self, ln: _Link, data: bytes, t2: int) -> None:
         d = ov.decode(data, nodes=self.topo.n, topo=self.tag)
@@ -517,11 +553,11 @@ class Agent:
             return
         h, payload = d
         if h.kind == ov.KIND_DATA:
-            self._handle_data(data, h, time.monotonic(), ln.end.neighbour)
+            self._handle_data(data, h, self.clock.monotonic(), ln.end.neighbour)
         elif h.kind == ov.KIND_PROBE:
             self._answer(ln, h, t2)
         else:
-            self._take_echo(ln, h, payload, time.time_ns())
+            self._take_echo(ln, h, payload, self.clock.wall_ns())
 
     def _malformed(self, reason: str) -> None:
         self.malformed[reason] += 1
@@ -533,7 +569,7 @@ class Agent:
         if h.dst == self.me:
             self.counts["delivered"] += 1
             self.m.delivered.inc()
-            self.m.delivery.observe(max(0.0, (time.time_ns() - h.origin_ns) / 1e9))
+            self.m.delivery.observe(max(0.0, (self.clock.wall_ns() - h.origin_ns) / 1e9))
             try:
                 assert self.local_sock is not None
                 self.local_sock.sendto(data, self.deliver_addr)
@@ -561,7 +597,7 @@ class Agent:
 
     def _usable(self, y: int) -> bool:
         ln = self.links.get(y)
-        return ln is not None and ln.state != "down"
+        return ln is not None and ln.state in USABLE_STATES
 
     def _next_hop(self, dst: int, flow: int, now: float, came: int = -1) -> int:
         key = (dst, flow)
@@ -640,10 +676,10 @@ class Agent:
         t = self.topo
         w = t.delay_s.astype(float).copy()
         for y, ln in self.links.items():
-            if ln.state == "down" or y == exclude:
+            if ln.state not in USABLE_STATES or y == exclude:
                 w[t.link_index[(self.me, y)]] = np.inf
-        _, nh = t.shortest_paths(w)
-        return [int(v) for v in nh[self.me].tolist()]
+        _, first = t.shortest_from(self.me, w)    # one source, not all pairs
+        return [int(v) for v in first.tolist()]
 
     def _prune(self, now: float) -> None:
         old = [k for k, p in self.flowlets.items() if now - p[1] > max(self.gap, 1.0)]
@@ -697,16 +733,15 @@ class Agent:
         self.routes = new
         resync = self.table_epoch is not None and ep != self.table_epoch
         self.table_seq, self.table_epoch = seq, ep
-        self.table_at = time.monotonic()
+        self.table_at = self.clock.monotonic()
         self.counts["tables"] += 1
         self.m.tables.inc()
         if resync or sub.restarts > restarts:
             self.counts["resyncs"] += 1
             self.m.resyncs.inc()
             # the service restarted: tell it again what we see down (idempotent)
-            for y, ln in self.links.items():
-                if ln.state == "down":
-                    self.link_reports[y] = "down"
+            for ln in self.links.values():
+                self._link_event(ln, "resync", self.clock.monotonic())
         if self.nonstop:
             self._set_nonstop(False)
 
@@ -714,7 +749,7 @@ class Agent:
     def _probe_all(self, now: float) -> None:
         for y, ln in self.links.items():
             ln.seq = (ln.seq + 1) & 0xFFFFFFFF
-            t1 = time.time_ns()
+            t1 = self.clock.wall_ns()
             ln.outstanding[ln.seq] = t1
             if len(ln.outstanding) > 4 * self.cfg["agent.detect_multiplier"] + 4:
                 ln.outstanding.pop(next(iter(ln.outstanding)))
@@ -724,15 +759,15 @@ class Agent:
                 self.m.probes.labels("sent").inc()
             except OSError:
                 pass
-            if ln.state != "down" and now - ln.last_echo > ln.detect_s:
-                self._link_state(ln, "down", now)
+            if now - ln.last_echo > ln.detect_s:
+                self._link_event(ln, "silence", now)
 
     def _answer(self, ln: _Link, h: ov.Header, t2: int) -> None:
         if h.dst != self.me or h.src != ln.end.neighbour:
             self._malformed("unknown_node")
             return
         try:
-            ln.sock.send(ov.echo(h, self.me, t2, time.time_ns(), self.estimates))
+            ln.sock.send(ov.echo(h, self.me, t2, self.clock.wall_ns(), self.estimates))
             self.counts["probes_answered"] += 1
             self.m.probes.labels("answered").inc()
         except OSError:
@@ -748,16 +783,15 @@ class Agent:
             self.counts["echoes_late"] += 1
             self.m.probes.labels("late").inc()
             return
-        now = time.monotonic()
+        now = self.clock.monotonic()
         lat = ov.one_way_delay_s(t1, e.t2_ns) if self.one_way else ov.two_way_delay_s(t1, e.t2_ns, e.t3_ns, t4)
         self.counts["echoes"] += 1
         self.m.probes.labels("echoed").inc()
         self.m.latency.observe(lat)
-        ln.last_echo = now
         ln.lat_sum += lat
         ln.lat_n += 1
-        if ln.state != "up":
-            self._link_state(ln, "up", now)
+        self._link_event(ln, "echo", now)
+        ln.last_echo = now
         est = dict(e.estimates)
         names = self.topo.nodes
         me, y = names[self.me], names[ln.end.neighbour]
@@ -769,19 +803,24 @@ class Agent:
                     self.m.report_rows.labels("dropped").inc()
                 self.rows.append((me, y, names[d], lat, est.get(d)))
 
-    def _link_state(self, ln: _Link, state: str, now: float) -> None:
+    def _link_event(self, ln: _Link, event: str, now: float) -> None:
+        """Apply ``event`` to link ``ln`` by :data:`LINK_TRANSITIONS`."""
         old = ln.state
-        ln.state = state
-        ln.since = now
+        state, actions = LINK_TRANSITIONS[(old, event)]
+        if state != old:
+            ln.state = state
+            ln.since = now
         y = ln.end.neighbour
-        if state == "down":
+        if "record" in actions:
             self.detections.append({"neighbour": self.topo.nodes[y], "from": old,
                                     "after_s": now - ln.last_echo,
-                                    "at": time.time()})
-        self.link_reports[y] = state
-        self.m.link_changes.labels(state).inc()
-        self.m.links_down.set(sum(1 for v in self.links.values() if v.state == "down"))
-        self._recompute_fallback()
+                                    "at": self.clock.wall()})
+        if "report" in actions:
+            self.link_reports[y] = state
+        if "count" in actions:
+            self.m.link_changes.labels(state).inc()
+            self.m.links_down.set(sum(1 for v in self.links.values() if v.state == "down"))
+            self._recompute_fallback()
 
     # -- reporting -------------------------------------------------------------------------
     def _report(self, now: float) -> None:
@@ -840,7 +879,7 @@ class Agent:
 
     # -- status ----------------------------------------------------------------------------
     def status(self) -> dict[str, Any]:
-        now = time.monotonic()
+        now = self.clock.monotonic()
         names = self.topo.nodes
         return {
             "node": self.name, "pid": os.getpid(), "uptime_s": now - self.started,

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import importlib.util
 import os
 import sys
 from collections.abc import Sequence
@@ -30,13 +31,15 @@ COMMANDS: dict[str, tuple[str, str]] = {
 
 
 def _available() -> dict[str, tuple[str, str]]:
+    # ``importlib.util`` is a submodule: it must be imported by name (above).  An editable
+    # install's import hook happens to import it first, which hid this from the tests once.
     out = {}
     for name, (mod, helptext) in COMMANDS.items():
         try:
-            importlib.util.find_spec(mod)  # type: ignore[attr-defined]
-        except ModuleNotFoundError:
+            spec = importlib.util.find_spec(mod)
+        except ModuleNotFoundError:   # its parent package is not installed
             continue
-        if importlib.util.find_spec(mod) is not None:  # type: ignore[attr-defined]
+        if spec is not None:
             out[name] = (mod, helptext)
     return out
 

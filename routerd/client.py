@@ -41,7 +41,6 @@ from __future__ import annotations
 
 import math
 import random
-import time
 from collections import Counter, deque
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
@@ -51,6 +50,7 @@ import numpy as np
 import zmq
 
 from . import security, wire
+from .clock import SYSTEM, Clock
 
 #: Whole-batch refusal codes after which the batch is kept and sent again later.
 DEFER_CODES: tuple[str, ...] = ("rate_limited", "unavailable")
@@ -152,6 +152,11 @@ class Reporter:
     from the names) or ``control`` (the control endpoint, asked ``{"op": "nodes"}``).
     ``curve``: client CURVE keys for both endpoints.  ``backoff_s``, ``backoff_max_s``,
     ``max_deferrals``: the handling of rate_limited / unavailable refusals (module docstring).
+    ``clock``: where timeouts, backoffs and the first batch number read time
+    (:mod:`routerd.clock`).  Under a :class:`~routerd.clock.FakeClock` only the calls that
+    do not wait (``pump(0)``, adding rows and ``send_now`` while fewer than ``max_pending``
+    batches are pending) make progress by themselves: ``flush`` and a full reporter wait
+    for virtual time that only the test moves.
     """
 
     def __init__(self, endpoint: str, reporter_name: str, *,
@@ -161,7 +166,7 @@ class Reporter:
                  first_batch: int | None = None, context: zmq.Context | None = None,
                  on_ack: Callable[[Ack], None] | None = None,
                  curve: security.ClientKeys | None = None, backoff_s: float = 0.05,
-                 backoff_max_s: float = 2.0, max_deferrals: int = 30):
+                 backoff_max_s: float = 2.0, max_deferrals: int = 30, clock: Clock = SYSTEM):
         if not reporter_name or len(reporter_name) > wire.MAX_REPORTER_LEN:
             raise ValueError(f"reporter name {reporter_name!r} must be 1..{wire.MAX_REPORTER_LEN} characters")
         if batch_rows < 1 or max_pending < 1 or timeout_s <= 0 or retries < 0:
@@ -169,6 +174,7 @@ class Reporter:
         if not 0 < backoff_s <= backoff_max_s or max_deferrals < 0:
             raise ValueError("need 0 < backoff_s <= backoff_max_s and max_deferrals >= 0")
         self.curve = curve
+        self.clock = clock
         self.backoff_s = float(backoff_s)
         self.backoff_max_s = float(backoff_max_s)
         self.max_deferrals = int(max_deferrals)
@@ -189,7 +195,7 @@ class Reporter:
         self._index: dict[str, int] = {}
         if columnar:
             self._set_nodes(topology_nodes, topology_id)
-        self._next_batch = time.time_ns() // 1000 if first_batch is None else int(first_batch)
+        self._next_batch = clock.wall_ns() // 1000 if first_batch is None else int(first_batch)
         self._pending: dict[int, _Pending] = {}
         self._order: deque[int] = deque()
         self._clear_buffer()
@@ -312,7 +318,7 @@ class Reporter:
         self._transmit(b, p)
 
     def _transmit(self, b: int, p: _Pending) -> None:
-        now = time.monotonic()
+        now = self.clock.monotonic()
         if now < self._hold_until:
             return  # the service asked us to wait (rate_limited / unavailable): the pump sends it later
         # a try, answered or not, starts the timeout and takes one of the retry budget
@@ -336,13 +342,13 @@ class Reporter:
         if len(self._pending) < self.max_pending:
             return
         budget = self.timeout_s * (self.retries + 1)
-        start = time.monotonic()
+        start = self.clock.monotonic()
         full = (f"no room for another batch: {len(self._pending)} batches pending at "
                 f"{self.endpoint} (the limit is {self.max_pending})")
         while len(self._pending) >= self.max_pending:
             # any reply (a refusal to be sent again later too) shows the service is there:
             # the budget runs from the latest one; max_deferrals bounds endless refusals
-            left = max(start, self._last_reply) + budget - time.monotonic()
+            left = max(start, self._last_reply) + budget - self.clock.monotonic()
             if left <= 0:
                 raise DeliveryError(f"{full} and none acknowledged within {budget:g} s"
                                     f"{_curve_hint(self.curve)}", list(self._pending),
@@ -357,7 +363,7 @@ class Reporter:
         Returns the number of replies handled."""
         handled = 0
         wait_ms = max(0, int(timeout_s * 1000))
-        hold = self._hold_until - time.monotonic()
+        hold = self._hold_until - self.clock.monotonic()
         if hold > 0 and any(p.deferred for p in self._pending.values()):
             wait_ms = min(wait_ms, max(1, math.ceil(hold * 1000)))   # resend when the hold ends
         while self._sock.poll(wait_ms, zmq.POLLIN):
@@ -370,7 +376,7 @@ class Reporter:
 
     def _reply(self, data: bytes) -> None:
         rep = wire.decode_reply(data)
-        self._last_reply = time.monotonic()
+        self._last_reply = self.clock.monotonic()
         b = rep.get("batch")
         if "error" in rep:
             self._refusal(str(rep["error"]), b if isinstance(b, int) and not isinstance(b, bool)
@@ -419,7 +425,7 @@ class Reporter:
         p.deferred = True
         p.attempts = 0            # the service answered: the timeout budget starts afresh
         delay = self.backoff_s * 2.0 ** min(p.deferrals - 1, 40) * (0.75 + 0.5 * self._rng.random())
-        self._hold_until = max(self._hold_until, time.monotonic() + min(delay, self.backoff_max_s))
+        self._hold_until = max(self._hold_until, self.clock.monotonic() + min(delay, self.backoff_max_s))
         if p.deferrals > self.max_deferrals:
             n = p.deferrals
             p.deferrals = 0       # a later flush() starts a fresh budget
@@ -452,7 +458,7 @@ class Reporter:
         self._transmit(b, p)
 
     def _resend_overdue(self) -> None:
-        now = time.monotonic()
+        now = self.clock.monotonic()
         failed = []
         for b in list(self._order):
             p = self._pending[b]
@@ -516,12 +522,13 @@ class TableSubscriber:
     publication; a jump of k counts k - 1 missed publications in ``gaps[node]``.  A new
     epoch resets the count base (``restarts``); a ``seq`` that does not rise is counted in
     ``stale``.  ``curve``: client CURVE keys (a subscriber the service does not allow
-    receives nothing).
+    receives nothing).  ``clock``: what :meth:`wait_for`'s timeout is measured on.
     """
 
     def __init__(self, endpoint: str, nodes: Sequence[str] | None = None, *,
                  context: zmq.Context | None = None, max_drain: int = 100_000,
-                 curve: security.ClientKeys | None = None):
+                 curve: security.ClientKeys | None = None, clock: Clock = SYSTEM):
+        self.clock = clock
         self._ctx = context or zmq.Context.instance()
         self._sock = _socket(self._ctx, zmq.SUB, curve)
         self._sock.rcvhwm = 100_000
@@ -582,9 +589,9 @@ class TableSubscriber:
 
     def wait_for(self, predicate: Callable[[TableSubscriber], bool], timeout_s: float) -> bool:
         """Poll until ``predicate(self)`` holds or ``timeout_s`` passes."""
-        deadline = time.monotonic() + timeout_s
+        deadline = self.clock.monotonic() + timeout_s
         while not predicate(self):
-            left = deadline - time.monotonic()
+            left = deadline - self.clock.monotonic()
             if left <= 0:
                 return False
             self.poll(min(left, 0.1))

@@ -143,22 +143,21 @@ class Progress:
     """One line per simulated second: rewritten in place on a terminal, plain lines otherwise."""
 
     def __init__(self, duration_s: float, stream: Any = None):
+        from .progress import StatusLine
+
         self.duration = duration_s
-        self.stream = stream or sys.stdout
-        self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
+        self.status = StatusLine(stream or sys.stdout)
+        self.tty = self.status.tty
         self.prev = 0
-        self.last_line = ""
-        self.shown = False
 
     def line(self, view: Mapping[str, Any], route_changes: int | None, explore: float,
              trunk_util: float | None, events: str) -> str:
-        from sim.core import percentile
+        from .stats import delivery_stats
 
         dl = view["deliveries"]
-        recent = sorted(dl[self.prev:])
+        recent = delivery_stats(dl[self.prev:], ci=False)
         self.prev = len(dl)
-        mean = sum(recent) / len(recent) if recent else math.nan
-        p99 = percentile(recent, 0.99)
+        mean, p99 = recent.mean, recent.p99
         lost = view["dropped"] + view["ttl_expired"]
         rc = "-" if route_changes is None else f"{route_changes}"
         tu = "" if trunk_util is None else f" | trunk {trunk_util * 100:3.0f}%"
@@ -167,25 +166,15 @@ class Progress:
                 f"route changes {rc:>5} | exploring {explore * 100:4.1f}%{tu}"
                 + (f" | {events}" if events else ""))
 
+    @property
+    def last_line(self) -> str:
+        return self.status.last_text
+
     def show(self, text: str) -> None:
-        self.last_line = text
-        self.shown = True
-        try:
-            if self.tty:
-                self.stream.write("\r\033[K" + text)
-            else:
-                self.stream.write(text + "\n")
-            self.stream.flush()
-        except (OSError, ValueError):
-            pass
+        self.status.show(text, force=True)
 
     def done(self) -> None:
-        if self.tty and self.shown:
-            try:
-                self.stream.write("\n")
-                self.stream.flush()
-            except (OSError, ValueError):
-                pass
+        self.status.done()
 
 
 def _ms(v: float) -> str:
@@ -493,12 +482,11 @@ class Demo:
 
     def _write_partial(self) -> None:
         """What an interrupted demo still knows: the live run up to its last sample."""
-        from sim.core import percentile
+        from .stats import delivery_stats
 
         v = self.view
         if v is not None and "service" not in self.results:
-            dl = v["deliveries"]
-            srt = sorted(dl)
+            ds = delivery_stats(v["deliveries"], ci=False)
             se = v["series"]
             m = len(se["t_s"])
             summary = {
@@ -506,8 +494,7 @@ class Demo:
                 "duration_s": self.duration, "seed": self.seed, "rate_pps": BASE_RATE_PPS,
                 "delivered": v["delivered"], "dropped": v["dropped"],
                 "ttl_expired": v["ttl_expired"], "in_network": v["in_network"],
-                "mean_delivery_s": sum(dl) / len(dl) if dl else math.nan,
-                "p50_delivery_s": percentile(srt, 0.5), "p99_delivery_s": percentile(srt, 0.99),
+                "mean_delivery_s": ds.mean, "p50_delivery_s": ds.p50, "p99_delivery_s": ds.p99,
             }
             series = {
                 "t_s": list(se["t_s"][:m]), "delivered": list(se["delivered"][:m]),

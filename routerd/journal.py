@@ -66,6 +66,7 @@ import msgpack
 import numpy as np
 
 from .engine import Decision, Engine, EngineSettings, HopBatch, ObserveResult
+from .fsmode import open_private, private_dir
 from .topology import Topology
 
 KINDS: tuple[str, ...] = ("start", "batch", "link", "tick", "config")
@@ -290,7 +291,7 @@ def recover(directory: str) -> RecoveryReport:
             cut = len(buf) - w.end
             if not torn:
                 kept = f"{path}.tail-{w.end}.bad"
-                with open(kept, "wb") as fh:
+                with os.fdopen(open_private(kept, os.O_WRONLY | os.O_CREAT | os.O_TRUNC), "wb") as fh:
                     fh.write(buf[w.end:])
                     fh.flush()
                     os.fsync(fh.fileno())
@@ -381,7 +382,7 @@ class Journal:
         self.fsync = fsync
         self.fsync_interval_s = float(fsync_interval_s)
         self.segment_bytes = int(segment_bytes)
-        os.makedirs(directory, exist_ok=True)
+        private_dir(directory)
         self.recovery = recover(directory)
         self._next = max(self.recovery.next_record, start_after + 1)
         segs = _segments(directory)
@@ -406,7 +407,7 @@ class Journal:
     # ---- writing ----------------------------------------------------------------------
     def _open_new(self) -> None:
         path = _seg_name(self.dir, self._next)
-        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_APPEND, 0o644)
+        fd = open_private(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_APPEND)
         try:
             _write_all(fd, SEG_HEADER.pack(SEG_MAGIC, self._next))
             if self.fsync != "never":
@@ -563,7 +564,7 @@ class SnapshotStore:
         self.dir = directory
         self.keep = keep
         self.problems: list[str] = []
-        os.makedirs(directory, exist_ok=True)
+        private_dir(directory)
         for tmp in glob.glob(os.path.join(directory, ".snap-*.tmp*")):
             os.unlink(tmp)   # a write cut short by a crash; never renamed, never valid
 
@@ -579,7 +580,7 @@ class SnapshotStore:
         head = SNAP_HEADER.pack(SNAP_MAGIC, int(record_no), len(body), zlib.crc32(body))
         final = os.path.join(self.dir, f"snap-{int(record_no):020d}.rs")
         tmp = os.path.join(self.dir, f".snap-{int(record_no):020d}.tmp{os.getpid()}")
-        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o644)
+        fd = open_private(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC)
         try:
             _write_all(fd, head + body)
             os.fsync(fd)
@@ -746,6 +747,13 @@ def journal_dir(state_dir: str) -> str:
 
 def snapshot_dir(state_dir: str) -> str:
     return os.path.join(state_dir, "snapshots")
+
+
+def written_for(directory: str) -> str | None:
+    """The topology id the first ``start`` record of the journal in ``directory`` names
+    (None: no such record)."""
+    return next((r.body.get("topology") for r in iter_records(directory, 0)
+                 if r.kind == "start"), None)
 
 
 def engine_state(engine: Engine, **extra: Any) -> dict[str, Any]:

@@ -14,6 +14,12 @@ a lab only ever touches its own; leftovers of labs whose process is gone are rem
 start.  Teardown runs on success, on failure and on SIGINT/SIGTERM/SIGHUP (a handler
 turns them into an exception, a ``finally`` tears down): children are stopped (SIGTERM,
 then SIGKILL by pid), every namespace of the prefix is deleted (which deletes its veths).
+A ``kill -9`` of the lab runs no teardown: its agents stay in its namespaces (removed as
+above) and its service, in the host's namespace and its own session, stays too.  So each
+run directory holds a marker (:data:`MARKER`: the lab's pid and start time, the service's
+pid, start time and command line, ``--keep``); the next lab stops a dead lab's service only
+after ``/proc/PID`` shows the same start time and exactly that command line (which names
+the dead lab's own config file), then removes the run directory unless it was kept.
 The service listens on ipc:// endpoints in the lab's run directory and on loopback for
 metrics: nothing is bound to a veth address except the agents' overlay sockets.
 
@@ -26,6 +32,7 @@ import argparse
 import contextlib
 import csv
 import ctypes
+import glob
 import json
 import math
 import os
@@ -44,6 +51,9 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from . import overlay as ov
+from .childproc import parse_ready
+from .clock import SYSTEM, Clock
+from .progress import StatusLine
 from .errors import InputError, Problem
 
 PREFIX = "rdlab"
@@ -56,6 +66,9 @@ UNDERLAY_NET = (10, 254)   # 10.254.0.0/16, /30 per link, only inside the lab's 
 #: bytes a packet carries on the veth beyond its UDP payload (UDP 8 + IPv4 20 + Ethernet 14)
 WIRE_OVERHEAD = 42
 READY_TIMEOUT_S = 30.0
+#: In each run directory: who owns it and which service it started (see the docstring).
+MARKER = "lab-run.json"
+RUN_BASE = "/tmp"
 
 
 class LabError(Exception):
@@ -139,6 +152,122 @@ def remove_leftovers(only_pid: int | None = None) -> list[str]:
         sh("ip", "netns", "del", ns, check=False)
         gone.append(ns)
     return gone
+
+
+def start_time(pid: int) -> int | None:
+    """The process's start time (clock ticks since boot, /proc/PID/stat field 22), or None
+    if there is no such process or it has exited (a zombie not yet reaped).  With the pid
+    it names one process: pids are reused."""
+    try:
+        with open(f"/proc/{pid}/stat", "rb") as fh:
+            stat = fh.read()
+    except OSError:
+        return None
+    try:
+        # the command name (field 2) is in parentheses and may hold spaces or ')'
+        fields = stat[stat.rindex(b")") + 2:].split()
+        if fields[0] in (b"Z", b"X"):
+            return None
+        return int(fields[19])
+    except (ValueError, IndexError):
+        return None
+
+
+def cmdline(pid: int) -> list[str] | None:
+    try:
+        with open(f"/proc/{pid}/cmdline", "rb") as fh:
+            raw = fh.read()
+    except OSError:
+        return None
+    return [a.decode(errors="surrogateescape") for a in raw.split(b"\0")[:-1]]
+
+
+def service_command(config_path: str) -> list[str]:
+    """How a lab starts its service (and how a later lab recognises it)."""
+    return [sys.executable, "-m", "routerd", "serve", "--config", config_path]
+
+
+def write_marker(run_dir: str, *, keep: bool, service: subprocess.Popen[Any] | None = None) -> None:
+    """Record this lab and (once started) its service in the run directory, atomically."""
+    doc: dict[str, Any] = {"lab_pid": os.getpid(), "lab_start": start_time(os.getpid()),
+                           "keep": bool(keep), "service_pid": None, "service_start": None,
+                           "service_cmdline": None}
+    if service is not None:
+        doc.update(service_pid=service.pid, service_start=start_time(service.pid),
+                   service_cmdline=[str(a) for a in service.args])
+    tmp = os.path.join(run_dir, f".{MARKER}.tmp")
+    with open(tmp, "w", encoding="utf-8") as fh:
+        json.dump(doc, fh)
+    os.replace(tmp, os.path.join(run_dir, MARKER))
+
+
+def _read_marker(run_dir: str) -> dict[str, Any] | None:
+    """The marker of a run directory this user made (0700, owned by us), else None: a
+    directory or file planted by someone else in /tmp is never acted on."""
+    try:
+        st = os.lstat(run_dir)
+        if not (os.path.isdir(run_dir) and not os.path.islink(run_dir)
+                and st.st_uid == os.geteuid() and st.st_mode & 0o022 == 0):
+            return None
+        mp = os.path.join(run_dir, MARKER)
+        mst = os.lstat(mp)
+        if not (os.path.isfile(mp) and not os.path.islink(mp) and mst.st_uid == os.geteuid()):
+            return None
+        with open(mp, encoding="utf-8") as fh:
+            doc = json.load(fh)
+    except (OSError, ValueError):
+        return None
+    return doc if isinstance(doc, dict) else None
+
+
+def _wait_gone(pid: int, start: int, timeout_s: float) -> bool:
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline:
+        if start_time(pid) != start:
+            return True
+        time.sleep(0.05)
+    return start_time(pid) != start
+
+
+def remove_orphans(base: str = RUN_BASE, log: Any = None) -> list[str]:
+    """Stop the services of dead labs and remove their run directories (unless kept).
+
+    A run directory is looked at only when its marker is ours (see :func:`_read_marker`)
+    and its lab is gone (no process with that pid *and* start time).  Its service is sent
+    SIGTERM (so it writes its final snapshot), SIGKILL after 5 s, and only while
+    ``/proc/PID`` shows the recorded start time and exactly the command a lab uses for that
+    run directory's config.  Returns one line per thing done."""
+    say = log or (lambda msg: None)
+    done: list[str] = []
+    for run_dir in sorted(glob.glob(os.path.join(base, f"{PREFIX}-*"))):
+        doc = _read_marker(run_dir)
+        if doc is None:
+            continue
+        lab_pid, lab_start = doc.get("lab_pid"), doc.get("lab_start")
+        if isinstance(lab_pid, int) and lab_start is not None and start_time(lab_pid) == lab_start:
+            continue                                     # that lab is still running
+        pid, start = doc.get("service_pid"), doc.get("service_start")
+        want = doc.get("service_cmdline")
+        mine = os.path.join(run_dir, "lab-config.yaml")
+        if (isinstance(pid, int) and isinstance(start, int) and pid > 1
+                and isinstance(want, list) and want[-2:] == ["--config", mine]
+                and want[1:5] == ["-m", "routerd", "serve", "--config"]
+                and start_time(pid) == start and cmdline(pid) == want):
+            with contextlib.suppress(ProcessLookupError):
+                os.kill(pid, signal.SIGTERM)
+            if not _wait_gone(pid, start, 5.0) and cmdline(pid) == want:
+                with contextlib.suppress(ProcessLookupError):
+                    os.kill(pid, signal.SIGKILL)
+                _wait_gone(pid, start, 5.0)
+            msg = f"stopped the service (pid {pid}) left by lab {lab_pid} ({run_dir})"
+            say(msg)
+            done.append(msg)
+        if not doc.get("keep"):
+            shutil.rmtree(run_dir, ignore_errors=True)
+            msg = f"removed the run directory {run_dir} of lab {lab_pid}"
+            say(msg)
+            done.append(msg)
+    return done
 
 
 _libc: Any = None
@@ -256,8 +385,9 @@ class Lab:
     """One lab run: ``build``, ``start_service``, ``start_agents``, ... and always ``teardown``."""
 
     def __init__(self, topo: Any, cfg_doc: dict[str, Any], *, run_dir: str,
-                 packet_bytes: float = 400.0, log: Any = None):
+                 packet_bytes: float = 400.0, log: Any = None, keep: bool = False):
         self.topo = topo
+        self.keep = keep
         self.cfg_doc = cfg_doc
         self.run_dir = run_dir
         self.packet_bytes = packet_bytes
@@ -279,6 +409,7 @@ class Lab:
     # -- build -------------------------------------------------------------------------
     def build(self) -> None:
         t = self.topo
+        write_marker(self.run_dir, keep=self.keep)
         for ns in self.ns:
             r = sh("ip", "netns", "add", ns, check=False)
             if r.returncode != 0:
@@ -338,11 +469,12 @@ class Lab:
 
     # -- processes ------------------------------------------------------------------------
     def start_service(self) -> None:
-        cmd = [sys.executable, "-m", "routerd", "serve", "--config", self.config_path]
+        cmd = service_command(self.config_path)
         p = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
                              start_new_session=True)
         self.service = p
         self.children.append(p)
+        write_marker(self.run_dir, keep=self.keep, service=p)   # before anything can fail
         deadline = time.monotonic() + READY_TIMEOUT_S
         assert p.stdout is not None
         while time.monotonic() < deadline:
@@ -352,9 +484,9 @@ class Lab:
                 raise LabError("the service exited before it was ready:\n"
                                + "\n".join(self.service_lines[-20:]))
             self.service_lines.append(line.rstrip("\n"))
-            m = re.match(r"^routerd: ready \(pid (\d+), epoch (\d+)\)", line)
-            if m:
-                self.service_epochs.append(int(m.group(2)))
+            ready = parse_ready(line)
+            if ready:
+                self.service_epochs.append(ready[1])
                 threading.Thread(target=self._drain_service, args=(p,), daemon=True).start()
                 return
         raise LabError("the service was not ready in time")
@@ -488,9 +620,10 @@ class TableSampler:
     """Fetches every table from the service every ``interval_s`` in a thread of its own (so a
     dead service never holds the traffic loop up): ``samples`` = [(t_s, tables or None)]."""
 
-    def __init__(self, lab: Lab, t0: float, interval_s: float = 0.5):
+    def __init__(self, lab: Lab, t0: float, interval_s: float = 0.5, clock: Clock = SYSTEM):
         self.lab = lab
         self.t0 = t0
+        self.clock = clock
         self.interval_s = interval_s
         self.samples: list[tuple[float, Any]] = []
         self._stop = threading.Event()
@@ -499,7 +632,7 @@ class TableSampler:
 
     def _loop(self) -> None:
         while not self._stop.wait(self.interval_s):
-            self.samples.append((time.monotonic() - self.t0, self.lab.tables(timeout_s=0.4)))
+            self.samples.append((self.clock.monotonic() - self.t0, self.lab.tables(timeout_s=0.4)))
 
     def stop(self) -> None:
         self._stop.set()
@@ -508,12 +641,14 @@ class TableSampler:
 
 def offer(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, int, float, int]],
           duration_s: float, drain_s: float, events: Sequence[Event], ttl: int,
-          progress: bool = False) -> dict[str, Any]:
-    """Send the packets at their times (wall clock), take deliveries, run the events."""
-    t0 = time.monotonic()
-    sampler = TableSampler(lab, t0)
+          progress: bool = False, clock: Clock = SYSTEM) -> dict[str, Any]:
+    """Send the packets at their times (``clock``: the real one by default), take
+    deliveries, run the events."""
+    t0 = clock.monotonic()
+    sampler = TableSampler(lab, t0, clock=clock)
     try:
-        out = _offer_loop(lab, traffic, packets, duration_s, drain_s, events, ttl, progress, t0)
+        out = _offer_loop(lab, traffic, packets, duration_s, drain_s, events, ttl, progress, t0,
+                          clock)
     finally:
         sampler.stop()
     out["table_samples"] = sampler.samples
@@ -522,7 +657,7 @@ def offer(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, int, f
 
 def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, int, float, int]],
                 duration_s: float, drain_s: float, events: Sequence[Event], ttl: int,
-                progress: bool, t0: float) -> dict[str, Any]:
+                progress: bool, t0: float, clock: Clock) -> dict[str, Any]:
     topo = lab.topo
     tag = ov.topology_tag(topo.digest)
     size = int(lab.packet_bytes)
@@ -537,17 +672,17 @@ def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, 
     it = iter(packets)
     nxt = next(it, None)
     end = duration_s + drain_s
-    last_show = 0.0
+    status = StatusLine(every_s=1.0, plain_every_s=5.0, clock=clock) if progress else None
     seq = 0
     while True:
-        now = time.monotonic() - t0
+        now = clock.monotonic() - t0
         while nxt is not None and nxt[0] <= now:
             t, s, d, _bits, flow = nxt
             if t > duration_s:
                 nxt = None
                 break
             pkt = ov.data_packet(tag, s, d, flow & 0xFFFFFFFF, seq & 0xFFFFFFFF,
-                                 time.time_ns(), ttl, size)
+                                 clock.wall_ns(), ttl, size)
             try:
                 traffic.send[s].sendto(pkt, local)
             except OSError:
@@ -576,7 +711,7 @@ def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, 
                 elif ev.kind == "restart_service":
                     lab.start_service()
                     lab.log(f"t={now:.1f} s: service restarted (epoch {lab.service_epochs[-1]})")
-                ev.info["t_done_s"] = time.monotonic() - t0
+                ev.info["t_done_s"] = clock.monotonic() - t0
         if now >= end:
             break
         wait = 0.01
@@ -589,7 +724,7 @@ def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, 
                     data = r.recv(65535)  # type: ignore[union-attr]
                 except (BlockingIOError, InterruptedError):
                     break
-                tr = time.time_ns()
+                tr = clock.wall_ns()
                 h = ov.decode(data, nodes=topo.n, topo=tag)
                 if isinstance(h, ov.Malformed):
                     continue
@@ -597,15 +732,13 @@ def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, 
                 if hd.seq in dlv or hd.seq >= seq:
                     dup += 1
                     continue
-                dlv[hd.seq] = (time.monotonic() - t0, (tr - hd.origin_ns) / 1e9, ttl - hd.ttl)
-        if progress and now - last_show >= 1.0:
-            last_show = now
-            print(f"\rlab: t={now:5.1f}/{duration_s:g} s  sent {seq}  delivered {len(dlv)}",
-                  end="", file=sys.stderr, flush=True)
-    if progress and last_show > 0:
-        print(file=sys.stderr)
+                dlv[hd.seq] = (clock.monotonic() - t0, (tr - hd.origin_ns) / 1e9, ttl - hd.ttl)
+        if status is not None and now >= 1.0 and status.due():
+            status.show(f"lab: t={now:5.1f}/{duration_s:g} s  sent {seq}  delivered {len(dlv)}")
+    if status is not None:
+        status.done()
     return {"inj_t": inj_t, "inj_s": inj_s, "inj_d": inj_d, "dlv": dlv,
-            "send_errors": send_err, "duplicates": dup, "elapsed_s": time.monotonic() - t0}
+            "send_errors": send_err, "duplicates": dup, "elapsed_s": clock.monotonic() - t0}
 
 
 # ---- summary ------------------------------------------------------------------------------
@@ -613,8 +746,7 @@ def summarise(lab: Lab, res: dict[str, Any], *, rate: float, duration: float, wa
               seed: int, demands: bool, tc: list[dict[str, Any]], statuses: list[dict[str, Any] | None],
               wall_s: float) -> dict[str, Any]:
     """The simulator's summary keys (sim.run.reduce), from lab measurements."""
-    from sim.core import percentile
-    from sim.run import BATCHES, T975_19
+    from .stats import delivery_stats
 
     topo = lab.topo
     inj_t = res["inj_t"]
@@ -623,15 +755,8 @@ def summarise(lab: Lab, res: dict[str, Any], *, rate: float, duration: float, wa
     offered = len(measured)
     dl = [dlv[i][1] for i in measured if i in dlv]
     hops = [dlv[i][2] for i in measured if i in dlv]
-    srt = sorted(dl)
-    m = len(dl)
-    mean = sum(dl) / m if m else math.nan
-    ci = math.nan
-    if m >= BATCHES * 10:   # batch means, as sim.run.reduce (Law & Kelton, ch. 9)
-        bs = m // BATCHES
-        means = [sum(dl[i * bs:(i + 1) * bs]) / bs for i in range(BATCHES)]
-        mu = sum(means) / BATCHES
-        ci = T975_19 * math.sqrt(sum((x - mu) ** 2 for x in means) / (BATCHES - 1) / BATCHES)
+    ds = delivery_stats(dl)                  # the simulator's figures (routerd.stats)
+    m, mean = ds.count, ds.mean
     win = max(duration - warm, 1e-9)
 
     def total(key: str, sub: str = "counts") -> int:
@@ -660,9 +785,7 @@ def summarise(lab: Lab, res: dict[str, Any], *, rate: float, duration: float, wa
         "ttl_expired": total("ttl_expired"),
         "in_flight_at_end": 0,
         "delivery_ratio": m / offered if offered else math.nan,
-        "mean_delivery_s": mean, "mean_delivery_ci95_s": ci,
-        "p50_delivery_s": percentile(srt, 0.50), "p95_delivery_s": percentile(srt, 0.95),
-        "p99_delivery_s": percentile(srt, 0.99), "max_delivery_s": srt[-1] if srt else math.nan,
+        **ds.summary_keys(),
         "mean_hops": sum(hops) / m if m else math.nan,
         "throughput_pps": m / win,
         "link_util_max": max(util) if util else math.nan,
@@ -884,10 +1007,11 @@ def _run(args: argparse.Namespace, topo: Any, topo_path: str, events: list[Event
 
     from . import config as _config
 
+    remove_orphans(log=lambda msg: print(f"routerd lab: {msg}", file=sys.stderr))
     removed = remove_leftovers()
     if removed:
         print(f"routerd lab: removed {len(removed)} namespaces left by earlier labs", file=sys.stderr)
-    run_dir = tempfile.mkdtemp(prefix=f"{PREFIX}-", dir="/tmp")
+    run_dir = tempfile.mkdtemp(prefix=f"{PREFIX}-", dir=RUN_BASE)
     warm = args.duration / 10.0 if args.warmup is None else float(args.warmup)
 
     def on_signal(signum: int, _f: Any) -> None:
@@ -904,7 +1028,8 @@ def _run(args: argparse.Namespace, topo: Any, topo_path: str, events: list[Event
             print(f"routerd lab: {e}", file=sys.stderr)
             return 2
         cfg = _config.from_mapping(doc, "lab config")
-        lab = Lab(topo, doc, run_dir=run_dir, packet_bytes=args.packet_bytes)
+        lab = Lab(topo, doc, run_dir=run_dir, packet_bytes=args.packet_bytes,
+                  keep=bool(getattr(args, "keep", False)))
         lab.log(f"building {topo.n} namespaces and {len(lab.pairs)} veth pairs (prefix "
                 f"{PREFIX}{lab.pid}-, run directory {run_dir})")
         lab.build()

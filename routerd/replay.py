@@ -32,6 +32,11 @@ routed with the recorded tables: a variant is judged on the recorded traffic, no
 traffic its own tables would have drawn (for that, the simulator with ``--traffic`` and
 ``--link-trace``).
 
+Topology.  The one the state dir recorded (:mod:`routerd.statedir`: the newest ``start``
+record's document, else the directory's pointer), so the directory alone is enough;
+``--topology`` / ``--config`` may name the same network (same id) and are refused
+otherwise; the built-in demo lab only for a journal written for it.
+
 Start.  A journal still holding record 1 is replayed from scratch.  One whose early
 segments were retired behind snapshots starts from the oldest intact snapshot it
 continues from, so every variant starts from the same learned state.
@@ -55,6 +60,7 @@ import numpy as np
 
 from . import config as _config
 from . import journal as J
+from . import statedir as _statedir
 from . import topology as _topology
 from . import variants as _variants
 from . import wire
@@ -194,6 +200,7 @@ class Source:
     journal_dir: str
     snapshot_dir: str | None
     cleanup: str | None = None
+    state_dir: str | None = None     # where recorded documents may be (None: no state dir)
 
 
 def locate(path: str) -> Source:
@@ -206,15 +213,34 @@ def locate(path: str) -> Source:
             raise ReplayError(Problem(path, base, "is not a journal segment (seg-<20 digits>.rj)"))
         tmp = tempfile.mkdtemp(prefix="routerd-replay-")
         os.symlink(os.path.abspath(path), os.path.join(tmp, base))
-        return Source(tmp, None, cleanup=tmp)
+        return Source(tmp, None, cleanup=tmp, state_dir=_around(os.path.dirname(os.path.abspath(path))))
     jd = J.journal_dir(path)
     if os.path.isdir(jd):
         sd = J.snapshot_dir(path)
-        return Source(jd, sd if os.path.isdir(sd) else None)
+        return Source(jd, sd if os.path.isdir(sd) else None, state_dir=path)
     if J._segments(path):
-        return Source(path, None)
+        return Source(path, None, state_dir=_around(os.path.abspath(path)))
     raise ReplayError(f"{path}: holds neither journal/ nor journal segments (seg-*.rj): give the "
                       "service's state dir (service.state_dir) or its journal/ dir")
+
+
+def _around(journal_dir: str) -> str | None:
+    """The state dir a journal dir sits in (``S/journal``), if it is one."""
+    parent = os.path.dirname(journal_dir.rstrip(os.sep))
+    ok = (os.path.basename(journal_dir.rstrip(os.sep)) == "journal"
+          and os.path.isdir(_statedir.documents_dir(parent)))
+    return parent if ok else None
+
+
+def recorded_refs(journal_dir: str, state_dir: str | None) -> _statedir.DocRefs | None:
+    """The documents the journal's newest records name; where no record names one (old
+    segments retired behind snapshots), the state dir's ``current.yaml`` pointer."""
+    rec = _statedir.refs_in(J.iter_records(journal_dir, 0))
+    cur = _statedir.current(state_dir) if state_dir is not None else None
+    if cur is None:
+        return rec
+    return _statedir.DocRefs(rec.topology or cur.topology, rec.config or cur.config,
+                             rec.topology_id or cur.topology_id, rec.shard_map or cur.shard_map)
 
 
 @dataclass
@@ -411,12 +437,27 @@ def replay(src: Source, topo: _topology.Topology, variants: Sequence[Variant], *
 
 
 # ---- the command ---------------------------------------------------------------------------
-def _load_config_and_topology(args: argparse.Namespace) -> tuple[_config.Config | None, _topology.Topology]:
+def _load_config_and_topology(args: argparse.Namespace, src: Source, *, recorded_config: bool = False
+                              ) -> tuple[_config.Config | None, _topology.Topology, _statedir.Chosen]:
+    """The topology to replay with: ``--topology`` or ``--config``'s, else the one the
+    state dir recorded (:func:`statedir.choose`); the config only when ``--config`` was
+    given (a what-if), and the whole choice (with ``recorded_config``, the recorded config
+    is read too: a sharded dir's ``shard.map``; replay itself takes the engine settings
+    from the records)."""
     from .service import load_config, load_topology  # the service's own rules for both
 
     ns = argparse.Namespace(config=args.config, topology=args.topology)
-    cfg = load_config(ns)
-    return (cfg if args.config else None), load_topology(cfg)
+    where = src.state_dir or src.journal_dir
+    refs = recorded_refs(src.journal_dir, src.state_dir)
+    if refs is not None and not recorded_config:
+        refs = replace(refs, config=None)
+    ch = _statedir.choose(ns, where, refs,
+                          state_root=where, written_for=lambda: J.written_for(src.journal_dir),
+                          load_config_fn=load_config, load_topology_fn=load_topology)
+    if not (args.config or recorded_config):
+        # replay takes its settings from the records: a config line would only mislead
+        ch.said = [x for x in ch.said if not x.startswith("config")]
+    return (ch.cfg if args.config else None), ch.topo, ch
 
 
 def _check_topology(src: Source, topo: _topology.Topology) -> None:
@@ -430,7 +471,9 @@ def _check_topology(src: Source, topo: _topology.Topology) -> None:
                                           f"is the topology id the journal was written for "
                                           f"(nodes {shown}); {topo.name!r} from "
                                           f"{topo.source or 'the built-in demo lab'} has id "
-                                          f"{topo.digest}: give the service's --topology or --config"))
+                                          f"{topo.digest}: give the service's --topology or --config"
+                                          + (" (or neither: the state dir keeps the topology it "
+                                             "was written for)" if src.state_dir else "")))
             return
 
 
@@ -439,7 +482,7 @@ def replay_command(args: argparse.Namespace) -> dict[str, Any]:
         raise ReplayError(Problem("--link-trace-interval", args.link_trace_interval, "must be above 0"))
     src = locate(args.source)
     try:
-        cfg, topo = _load_config_and_topology(args)
+        cfg, topo, chosen = _load_config_and_topology(args, src)
         _check_topology(src, topo)
         start = find_start(src, EngineSettings())
         start_settings = start.settings
@@ -467,6 +510,7 @@ def replay_command(args: argparse.Namespace) -> dict[str, Any]:
             v.settings(start_settings)     # refuse bad combinations before the long part
         lt = LinkTrace(topo, args.link_trace_interval) if args.export_link_trace else None
         res = replay(src, topo, variants, fallback=start_settings, link_trace=lt)
+        res["inputs"] = chosen.said
     except (J.JournalError, ValueError) as e:
         # a later start record for another topology, a snapshot or settings that do not fit
         raise ReplayError(f"{args.source}: cannot be replayed: {e}") from None
@@ -539,6 +583,7 @@ def write_outputs(args: argparse.Namespace, topo: _topology.Topology, res: dict[
     obs_s = counts["hops"] / res["wall_s"] if res["wall_s"] > 0 else math.inf
     info: dict[str, Any] = {
         "source": os.path.abspath(args.source), "topology": topo.name, "topology_id": topo.digest,
+        "inputs": list(res.get("inputs", ())),
         "started_from": start.what, "snapshot_problems": start.problems,
         "records": res["report"].records, "last_record": res["report"].last_record,
         **counts, "rows_refused_on_replay": res["refused"],
@@ -601,6 +646,7 @@ def _printed(info: Mapping[str, Any], summaries: Sequence[Mapping[str, Any]], co
              quiet: bool, written: Sequence[str], notes: Sequence[str], read: J.ReadReport) -> list[str]:
     out: list[str] = []
     if not quiet:
+        out.extend(f"{line}" for line in info.get("inputs", ()))
         out.append(f"replayed {info['records']} records from {info['started_from']}: "
                    f"{info['batches']} batches, {info['hops']} observations, {info['ticks']} "
                    f"decisions, {info['configs']} reloads over {info['span_s']:.3f} s of service "

@@ -20,9 +20,10 @@ frame it sends then carries the ``User-Id`` property — the Z85 text of that ke
 * its ``reporter`` field must be the authenticated name (else the frame is refused,
   ``not_authorised``) — one key cannot write into another reporter's duplicate window;
 * a hop row ``(from, via, dst, …)`` is taken only when ``from`` is one of the reporter's
-  nodes (a node measures the hops that leave it), a link row only when one of its two
-  ends is; other rows are rejected ``not_authorised`` one by one, the rest of the batch
-  is kept;
+  nodes (a node measures the hops that leave it), a link row ``(from, to, state)`` only
+  when ``from`` is (a node watches the links that leave it; marking ``m → a`` down would
+  move m's routes, so a key for ``a`` may not); other rows are rejected
+  ``not_authorised`` one by one, the rest of the batch is kept;
 * control operations that change state (:data:`STATE_OPS`) need an entry with
   ``control: true``; read-only ones (:data:`READ_OPS`) need any allowed key, or can be
   served without CURVE on a separate read-only endpoint.
@@ -47,6 +48,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import stat
 import sys
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
@@ -419,9 +421,11 @@ def hop_rights(rep: Reporter, src: np.ndarray) -> np.ndarray:
 
 
 def link_rights(rep: Reporter, links: Iterable[Sequence[Any]]) -> list[bool]:
-    """For each ``(src, dst, up)`` link row: does it touch one of the reporter's nodes?"""
+    """For each ``(src, dst, up)`` link row: does the link leave one of the reporter's
+    nodes?  Only ``src`` counts: a link's state changes the routes of its source alone."""
     m = rep.mask
-    return [bool(m[int(a)] or m[int(b)]) for a, b, *_ in links]
+    n = m.shape[0]
+    return [0 <= int(a) < n and bool(m[int(a)]) for a, *_ in links]
 
 
 def may_control(rep: Reporter | None, op: str) -> bool:
@@ -457,6 +461,22 @@ def describe(allow: Allow) -> list[str]:
     """One line per allowed key, for the start-up banner."""
     return [f"{r.name}: nodes {', '.join(r.nodes) or '-'}" + ("; control" if r.control else "")
             for r in allow.reporters]
+
+
+def key_file_exposure(path: str) -> str | None:
+    """Why the secret key file ``path`` is open to more than its owner (group or other
+    permission bits set), with the fix; None when it is owner-only (or unreadable: loading
+    it says so).  Whoever can read it can act as the service."""
+    try:
+        mode = stat.S_IMODE(os.stat(path).st_mode)
+    except OSError:
+        return None
+    bits = mode & 0o077
+    if not bits:
+        return None
+    who = " and ".join(w for w, m in (("its group", 0o070), ("other users", 0o007)) if bits & m)
+    return (f"secret key file {path} has mode {mode:04o}: {who} can read or change it, and "
+            f"whoever reads it can act as this service; fix: chmod 600 {path}")
 
 
 def check_pair(cfg: Any) -> tuple[str | None, str | None]:

@@ -32,9 +32,11 @@ iteration:
 5. every ``service.snapshot_interval_s`` write a snapshot and retire the journal
    segments it covers.
 
-Start-up restores the newest readable snapshot, then replays the journal after it with
-:func:`journal.replay_into` — the same code path an offline replay uses — so the state
-after a restart equals the state before it.  The snapshot carries the engine settings in
+Start-up takes the config and topology the flags give, else the ones the state dir
+recorded (:func:`statedir.choose`), restores the newest readable snapshot, then replays
+the journal after it with :func:`journal.replay_into` — the same code path an offline
+replay uses — so the state after a restart equals the state before it.  It records the
+topology and config documents before the ``start`` record that names them.  The snapshot carries the engine settings in
 force when it was taken and the duplicate windows, so neither is lost.
 
 Storage faults.  A journal write or fsync that fails (disk full, I/O error) puts the
@@ -78,6 +80,7 @@ from . import config as _config
 from . import guards as _guards
 from . import journal as _journal
 from . import security as _security
+from . import statedir as _statedir
 from . import topology as _topology
 from .cautions import CAUTIONS
 from .engine import Engine, EngineSettings, HopBatch
@@ -136,9 +139,13 @@ def configure(p: argparse.ArgumentParser) -> None:
     _shard.configure(p)   # --shards N, --shard K/N, --upstream, --shard-listen
 
 
-def load_config(args: argparse.Namespace) -> _config.Config:
-    """The config file (or defaults) with the command-line flags on top."""
-    cfg = _config.load(getattr(args, "config", None))
+def load_config(args: argparse.Namespace, base: _config.Config | None = None) -> _config.Config:
+    """The config file (or ``base``, a state dir's recorded config, or the defaults) with
+    the command-line flags on top."""
+    if base is not None and not getattr(args, "config", None):
+        cfg = base
+    else:
+        cfg = _config.load(getattr(args, "config", None))
     ov: dict[str, Any] = {}
     for attr, key in _FLAG_KEYS.items():
         v = getattr(args, attr, None)
@@ -171,18 +178,41 @@ def load_topology(cfg: _config.Config) -> _topology.Topology:
         return _topology.load(str(path), d)
 
 
+def choose_inputs(args: argparse.Namespace, docs_dir: str | None = None,
+                  refs: _statedir.DocRefs | None = None,
+                  journals: Iterable[str] | None = None) -> _statedir.Chosen:
+    """Config and topology for ``serve`` on the state dir the flags name: the flags and
+    files given, else what the state dir recorded (:func:`statedir.choose`).  ``docs_dir``:
+    where the recorded documents are when not in the state dir itself (a shard's);
+    ``refs``: which of them (default: its ``current.yaml``); ``journals``: the state dirs
+    whose journals say which network the directory was written for (default: ``docs_dir``)."""
+    root = load_config(args)["service.state_dir"]
+    where = docs_dir or root
+    dirs = list(journals) if journals is not None else [where]
+
+    def written_for() -> str | None:
+        return next((w for d in dirs if (w := _journal.written_for(_journal.journal_dir(d)))), None)
+
+    if refs is None:
+        # the pointer; a directory without one (it could not be written) from its records
+        refs = _statedir.current(where) or _statedir.refs_in(
+            _journal.iter_records(_journal.journal_dir(where), 0))
+    return _statedir.choose(args, where, refs,
+                            state_root=root, written_for=written_for,
+                            load_config_fn=load_config, load_topology_fn=load_topology)
+
+
 def run(args: argparse.Namespace) -> int:
     if getattr(args, "shards", None) is not None or getattr(args, "shard", None) is not None:
         from . import shard as _shard  # the front or one worker (routerd/shard.py)
 
         return _shard.run(args)
     try:
-        cfg = load_config(args)
-        topo = load_topology(cfg)
+        chosen = choose_inputs(args)
     except InputError as e:
         print(f"routerd serve: cannot start:\n{e}", file=sys.stderr)
         return 2
-    svc = Service(cfg, topo, reload_args=args)
+    svc = Service(chosen.cfg, chosen.topo, reload_args=args, inputs=chosen)
     try:
         svc.start()
     except StartError as e:
@@ -280,12 +310,17 @@ class Service:
     stop signal and returns the exit status; ``request_stop()`` works from any thread."""
 
     def __init__(self, cfg: _config.Config, topo: _topology.Topology, *,
-                 reload_args: argparse.Namespace | None = None, out: Any = None):
+                 reload_args: argparse.Namespace | None = None, out: Any = None,
+                 inputs: _statedir.Chosen | None = None):
         from . import metrics as _metrics
 
         self.cfg = cfg
         self.topo = topo
         self.reload_args = reload_args
+        # where cfg and topo came from (banner), and the recorded config a reload re-reads
+        # the flags on top of when no --config was given
+        self.inputs = inputs
+        self.documents = _statedir.DocRefs()   # what the newest start/config record names
         self.out = out or sys.stdout
         self.log = Log(cfg["service.log_format"])
         self.counters = _metrics.Counters(row_reasons=wire.REASONS + SERVICE_REASONS,
@@ -361,6 +396,7 @@ class Service:
         import zmq
 
         from . import metrics as _metrics
+        from .fsmode import private_dir
 
         cfg = self.cfg
         try:
@@ -371,7 +407,7 @@ class Service:
         self._warn_exposed()
         state_dir = cfg["service.state_dir"]
         try:
-            os.makedirs(state_dir, exist_ok=True)
+            private_dir(state_dir)        # 0700 when created here (routerd.fsmode)
         except OSError as e:
             raise StartError(f"state dir {state_dir}: {e.strerror}") from None
         self._restore(state_dir)
@@ -418,6 +454,9 @@ class Service:
             self.allow = _security.load_allow(al, self.topo)
         except InputError as e:
             raise StartError(f"security:\n{e}") from None
+        exposure = _security.key_file_exposure(sk)
+        if exposure:
+            self.log.warning(exposure)   # once, at start-up
 
     def _restore(self, state_dir: str) -> None:
         """Open the journal (recovery cuts a torn or corrupt tail), then the newest good
@@ -467,13 +506,27 @@ class Service:
         self.engine = r.engine
         self._last_record = self.journal.last_record
         try:
+            # the documents first, so the start record never names a missing one
+            self.documents = _statedir.store(state_dir, self.topo, self.cfg)
+        except OSError as e:
+            raise StartError(f"state dir {state_dir}: recording the topology and config: "
+                             f"{_os_reason(e)}") from None
+        try:
             self._append("start", {"topology": self.topo.digest, "nodes": list(self.topo.nodes),
-                                   "settings": asdict(r.engine.settings), "epoch": self.epoch})
+                                   "settings": asdict(r.engine.settings), "epoch": self.epoch,
+                                   "documents": self.documents.body()})
             if r.engine.settings != want:
                 self._reconfigure_engine(want)
             self._commit()
         except StorageDown as e:
             raise StartError(f"state dir {state_dir}: {e}") from None
+        try:
+            _statedir.set_current(state_dir, self.documents)
+        except OSError as e:
+            # the start record names the documents; without the pointer a start from the
+            # directory alone reads them from the journal instead
+            self.log.warning("cannot update the pointer to the recorded documents",
+                             file=_statedir.CURRENT, reason=_os_reason(e))
 
     def _bind_all(self, zmq: Any) -> None:
         cfg = self.cfg
@@ -584,6 +637,7 @@ class Service:
             + (f"restored snapshot at record {self.restored['snapshot_record']}, "
                if "snapshot_record" in self.restored else "no snapshot, ")
             + f"{self.restored.get('replayed', 0)} journal records replayed)",
+            *(f"  input    {line}" for line in (self.inputs.said if self.inputs else ())),
             CAUTIONS,
             f"routerd: ready (pid {os.getpid()}, epoch {self.epoch})",
         ]
@@ -616,7 +670,8 @@ class Service:
 
     def _journal_config(self) -> None:
         assert self.engine is not None
-        self._append("config", {"settings": asdict(self.engine.settings)})
+        self._append("config", {"settings": asdict(self.engine.settings),
+                                "documents": {"config": self.documents.config} if self.documents.config else {}})
 
     def _remember_record(self, rec: Any) -> None:
         """Rebuild the duplicate windows from replayed batch records."""
@@ -1199,6 +1254,11 @@ class Service:
             self._journal_config()
             self._touched = True
 
+    def _effective(self, cfg: _config.Config) -> _config.Config:
+        """The config this process runs with, given the one a reload read (a hook: a shard
+        worker keeps the rate limits off); what the reload records."""
+        return cfg
+
     def _do_reload(self) -> dict[str, Any]:
         """Re-read the config (SIGHUP, control ``reload``); what changed, or why not."""
         args = self.reload_args
@@ -1206,9 +1266,9 @@ class Service:
         try:
             if args is None:
                 raise InputError("the service was started without a command line to re-read")
-            new = load_config(args)
+            new = load_config(args, self.inputs.base if self.inputs is not None else None)
             tun, restart = self.cfg.tunable_diff(new)
-            merged = self.cfg.with_overrides(tun, where=f"{src or 'defaults'} (reload)")
+            merged = self._effective(self.cfg.with_overrides(tun, where=f"{src or 'defaults'} (reload)"))
             settings = EngineSettings.from_config(merged)
         except (InputError, ValueError) as e:
             self.counters.reloads["rejected"] += 1
@@ -1216,14 +1276,29 @@ class Service:
                            reason=str(e).replace("\n", "; "))
             return {"applied": False, "reason": str(e)}
         assert self.engine is not None
-        if settings != self.engine.settings:
+        state_dir = self.cfg["service.state_dir"]
+        prev = self.documents
+        try:
+            new_id = _statedir.store(state_dir, None, merged).config
+        except OSError as e:
+            new_id = None   # the config record then names none: never the previous one
+            self.log.error("reload: cannot record the new config document; the journal "
+                           "keeps the engine settings", reason=_os_reason(e))
+        docs = dataclasses.replace(prev, config=new_id)
+        if settings != self.engine.settings or docs != prev:
+            # a new effective config is a config record naming its document, even when
+            # the engine settings are unchanged (replay makes the same reconfigure call)
             try:
+                self.documents = docs
                 self._reconfigure_engine(settings)
                 self._commit()
             except StorageDown as e:
+                self.documents = prev
                 self.counters.reloads["rejected"] += 1
                 self.log.error("reload not applied: the journal cannot be written", reason=str(e))
                 return {"applied": False, "reason": f"unavailable: {e}"}
+            with contextlib.suppress(OSError):   # the record names it; the pointer is a shortcut
+                _statedir.set_current(state_dir, docs)
         self.cfg = merged
         self.guards.reconfigure(_guards.GuardSettings.from_config(merged))
         self.counters.reloads["applied"] += 1

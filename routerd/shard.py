@@ -255,17 +255,22 @@ def replay_command(args: argparse.Namespace) -> dict[str, Any]:
     if missing:
         raise InputError(Problem(args.source, f"shard-{missing[0]}-of-{n}", "is missing: a "
                                  "merged replay needs every shard's state dir"))
-    cfg, topo = _replay._load_config_and_topology(args)
+    # every shard keeps its own copy of the documents; shard 0's say what the front ran with
+    # (a worker's recorded config is the front's config with the worker's endpoints)
+    src0 = _replay.locate(shard_dir(args.source, 0, n))
+    cfg, topo, chosen = _replay._load_config_and_topology(args, src0, recorded_config=True)
+    for k in range(n):
+        _replay._check_topology(_replay.locate(shard_dir(args.source, k, n)), topo)
     t0 = time.perf_counter()
     try:
-        tables = replay_shards(args.source, topo, n, map_file=cfg["shard.map"] if cfg else None)
+        tables = replay_shards(args.source, topo, n, map_file=chosen.cfg["shard.map"])
     except Exception as e:   # noqa: BLE001 - a journal or snapshot of another topology, unreadable
         raise InputError(Problem(args.source, "journal", f"cannot be replayed: {e}")) from None
     os.makedirs(args.out, exist_ok=True)
     path = _replay._dump(os.path.join(args.out, "tables.json"), {"v": wire.VERSION, "tables": tables})
     dt = time.perf_counter() - t0
     line = f"replayed {n} shards of {args.source} in {dt:.2f} s; merged tables of {topo.n} nodes -> {path}"
-    return {"printed": [line], "tables": path}
+    return {"printed": [*chosen.said, line], "tables": path}
 
 
 # ---- command line -------------------------------------------------------------------------
@@ -290,19 +295,23 @@ def run(args: argparse.Namespace) -> int:
     from . import service as _service
 
     try:
-        cfg = _service.load_config(args)
-        topo = _service.load_topology(cfg)
+        root = _service.load_config(args)["service.state_dir"]
         if args.shard is not None:
             if args.shards is not None:
                 raise InputError("give --shards N (front and workers) or --shard K/N (one "
                                  "worker), not both")
             k, n = parse_shard(args.shard)
+            # a worker's documents are in its own dir, the front's in the root
+            chosen = _service.choose_inputs(args, shard_dir(root, k, n))
+            cfg, topo = chosen.cfg, chosen.topo
             smap = ShardMap.build(topo, n, cfg["shard.map"])
         else:
             if args.shards < 1:
                 raise InputError(f"--shards {args.shards} is below 1")
             if args.upstream:
                 raise InputError("--upstream belongs to a worker (--shard K/N)")
+            chosen = _front_inputs(args, root, args.shards)
+            cfg, topo = chosen.cfg, chosen.topo
             smap = ShardMap.build(topo, args.shards, cfg["shard.map"])
         if cfg["security.server_key"] or cfg["security.allow"]:
             raise InputError("sharding does not carry CURVE yet: run a sharded service "
@@ -312,8 +321,8 @@ def run(args: argparse.Namespace) -> int:
         print(f"routerd serve: cannot start:\n{e}", file=sys.stderr)
         return 2
     if args.shard is not None:
-        return _run_worker(args, cfg, topo, smap, k)
-    front = Front(cfg, topo, smap, args)
+        return _run_worker(args, cfg, topo, smap, k, chosen)
+    front = Front(cfg, topo, smap, args, inputs=chosen)
     try:
         front.start()
     except _service.StartError as e:
@@ -327,8 +336,26 @@ def run(args: argparse.Namespace) -> int:
 
 
 # ---- the worker --------------------------------------------------------------------------
+def _front_inputs(args: argparse.Namespace, root: str, n: int) -> Any:
+    """A front's config and topology: what the flags give, else its own recorded documents
+    (in the root); a root without them whose workers recorded theirs (workers started on
+    their own) takes the topology of the first such shard, never its config (a worker's
+    endpoints).  Which network the directory was written for: the shards' journals."""
+    from . import service as _service
+    from . import statedir as _statedir
+
+    shards = [shard_dir(root, k, n) for k in range(n)]
+    if _statedir.current(root) is None:
+        for d in shards:
+            cur = _statedir.current(d)
+            if cur is not None and cur.topology:
+                return _service.choose_inputs(args, d, _statedir.DocRefs(
+                    cur.topology, None, cur.topology_id), journals=shards)
+    return _service.choose_inputs(args, root, journals=shards)
+
+
 def _run_worker(args: argparse.Namespace, cfg: _config.Config, topo: _topology.Topology,
-                smap: ShardMap, k: int) -> int:
+                smap: ShardMap, k: int, chosen: Any = None) -> int:
     from . import service as _service
 
     _follow_front()
@@ -337,7 +364,7 @@ def _run_worker(args: argparse.Namespace, cfg: _config.Config, topo: _topology.T
     wcfg = cfg.with_overrides(over, where=f"shard {k}/{n}")
     rargs = argparse.Namespace(**vars(args))
     rargs.state_dir = over["service.state_dir"]     # a reload re-reads the same state dir
-    svc = _worker_class()(wcfg, topo, smap, k, args.upstream, reload_args=rargs)
+    svc = _worker_class()(wcfg, topo, smap, k, args.upstream, reload_args=rargs, inputs=chosen)
     try:
         svc.start()
     except _service.StartError as e:
@@ -403,14 +430,9 @@ def _worker_class() -> type:
         def _shard_info(self) -> dict[str, Any]:
             return {"index": self.shard, "of": self.smap.n_shards, "destinations": int(self.own.size)}
 
-        def _do_reload(self) -> dict[str, Any]:
-            out = super()._do_reload()
-            if out.get("applied"):   # rate limits stay the front's
-                from . import guards as _guards
-
-                self.cfg = self.cfg.with_overrides(WORKER_OVERRIDES, where="shard worker")
-                self.guards.reconfigure(_guards.GuardSettings.from_config(self.cfg))
-            return out
+        def _effective(self, cfg: _config.Config) -> _config.Config:
+            # a reload keeps the rate limits the front's (and records the config as run)
+            return cfg.with_overrides(WORKER_OVERRIDES, where="shard worker")
 
         def info(self) -> Mapping[str, str]:
             return {**super().info(), "shard": f"{self.shard}/{self.smap.n_shards}"}
@@ -517,10 +539,11 @@ class Front:
     """The ingest, tables, control and metrics endpoint in front of N shard workers."""
 
     def __init__(self, cfg: _config.Config, topo: _topology.Topology, smap: ShardMap,
-                 args: argparse.Namespace | None = None, out: Any = None):
+                 args: argparse.Namespace | None = None, out: Any = None, inputs: Any = None):
         from . import guards as _guards
         from .service import Dedup, Log
 
+        self.inputs = inputs     # statedir.Chosen: where cfg and topo came from
         self.cfg = cfg
         self.topo = topo
         self.smap = smap
@@ -557,12 +580,13 @@ class Front:
         import zmq
 
         from . import metrics as _metrics
+        from .fsmode import private_dir
         from .service import StartError
 
         cfg = self.cfg
         try:
             _metrics.parse_address(cfg["service.metrics"])
-            os.makedirs(self.state_root, exist_ok=True)
+            private_dir(self.state_root)
         except ValueError as e:
             raise StartError(str(e)) from None
         except OSError as e:
@@ -601,6 +625,16 @@ class Front:
             for w in self.workers:
                 self._spawn(w)
         self._await_workers()
+        try:
+            # the front has no journal: its documents and the pointer to them are its
+            # record, written once every worker has taken the topology (they check it
+            # against their journals)
+            from . import statedir as _statedir
+
+            _statedir.set_current(self.state_root, _statedir.store(self.state_root, self.topo, self.cfg))
+        except OSError as e:
+            raise StartError(f"state dir {self.state_root}: recording the topology and "
+                             f"config: {e.strerror or e}") from None
         self._banner()
 
     def _ipc(self, name: str) -> str:
@@ -624,7 +658,9 @@ class Front:
                 "--state-dir", self.state_root]
         if a is not None and getattr(a, "config", None):
             argv += ["--config", os.path.abspath(a.config)]
-        if self.cfg["topology.file"]:
+        if self.inputs is not None and self.inputs.recorded_topology:
+            argv += ["--topology", os.path.abspath(self.topo.source)]   # the recorded document
+        elif self.cfg["topology.file"]:
             argv += ["--topology", self.cfg["topology.file"]]
         return argv
 
@@ -717,6 +753,7 @@ class Front:
             h = w.hello or {}
             lines.append(f"  shard {w.k}/{n}  pid {h.get('pid')}  ingest {h.get('ingest')}  "
                          f"state {shard_dir(self.state_root, w.k, n)}")
+        lines.extend(f"  input    {x}" for x in (self.inputs.said if self.inputs else ()))
         lines.append(f"routerd: ready (pid {os.getpid()}, epoch {self.epoch})")
         with contextlib.suppress(OSError, ValueError):
             print("\n".join(lines), file=self.out, flush=True)

@@ -181,6 +181,19 @@ class Topology:
             return self._paths
         return _all_pairs(self.n, self.src, self.dst, np.asarray(weights, dtype=float))
 
+    def shortest_from(self, source: int,
+                      weights: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """(dist, first): one Dijkstra from ``source`` over the links (weights as
+        :meth:`shortest_paths`, default delay_s; inf = unusable).
+
+        ``dist[d]`` is the least weight from ``source`` to d, ``first[d]`` the neighbour of
+        ``source`` that starts such a path (-1 for ``source`` itself and where d is
+        unreachable).  For one node's own next hops this is an n-th of the all-pairs work;
+        among tied paths the first one found wins (deterministic for a given topology).
+        """
+        w = self.delay_s if weights is None else np.asarray(weights, dtype=float)
+        return _single_source(self.n, self.src, self.dst, w, int(source))
+
     @cached_property
     def _paths(self) -> tuple[np.ndarray, np.ndarray]:
         D, NH = _all_pairs(self.n, self.src, self.dst, self.delay_s)
@@ -302,6 +315,32 @@ def _all_pairs(n: int, src: np.ndarray, dst: np.ndarray,
         D[:, d] = dist
         NH[:, d] = via
     return D, NH
+
+
+def _single_source(n: int, src: np.ndarray, dst: np.ndarray, w: np.ndarray,
+                   s: int) -> tuple[np.ndarray, np.ndarray]:
+    """Least weights from ``s`` (n,) and the first hop of a shortest path (n,) int32."""
+    out: list[list[tuple[int, float]]] = [[] for _ in range(n)]
+    for a, b, c in zip(src.tolist(), dst.tolist(), w.tolist()):
+        if c < math.inf:
+            out[a].append((b, c))
+    dist = [math.inf] * n
+    first = [-1] * n
+    dist[s] = 0.0
+    heap = [(0.0, s)]
+    pop, push = heapq.heappop, heapq.heappush
+    while heap:
+        du, u = pop(heap)
+        if du > dist[u]:
+            continue
+        fu = first[u]
+        for v, c in out[u]:
+            nd = du + c
+            if nd < dist[v]:
+                dist[v] = nd
+                first[v] = v if u == s else fu
+                push(heap, (nd, v))
+    return np.array(dist, dtype=float), np.array(first, dtype=np.int32)
 
 
 def _tree_hops(nh: np.ndarray) -> np.ndarray:
@@ -712,8 +751,11 @@ def topohub_doc(key: str) -> dict[str, Any]:
 
 
 def to_mapping(t: Topology) -> dict[str, Any]:
-    """Our YAML format for a topology (directed links, explicit values)."""
-    return {
+    """Our YAML format for a topology (directed links in index order, explicit values,
+    demands when present): :func:`from_mapping` gives back the same nodes, links, values
+    and demand matrix, bit for bit (a state dir keeps its topology this way).  Not kept:
+    ``source`` and ``meta`` (a topohub file's published figures)."""
+    doc = {
         "topology": {
             "name": t.name,
             "nodes": list(t.nodes),
@@ -725,3 +767,9 @@ def to_mapping(t: Topology) -> dict[str, Any]:
             ],
         }
     }
+    if t.demands is not None:
+        a, b = np.nonzero(t.demands)
+        doc["topology"]["demands"] = [{"from": t.nodes[i], "to": t.nodes[j],
+                                       "rate": float(t.demands[i, j])}
+                                      for i, j in zip(a.tolist(), b.tolist())]
+    return doc

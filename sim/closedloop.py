@@ -83,6 +83,7 @@ import numpy as np
 
 from routerd import config as _config
 from routerd import topology as _topology
+from routerd.childproc import parse_ready
 from routerd.errors import InputError, Problem
 
 from .policy import Policy
@@ -90,7 +91,6 @@ from .policy import Policy
 #: the keys of the ENDPOINTS syntax: ``ingest=EP,publish=EP,control=EP[,metrics=URL]``
 ENDPOINT_KEYS = ("ingest", "publish", "control", "metrics")
 _REQUIRED = ("ingest", "publish", "control")
-_READY = re.compile(r"^routerd: ready \(pid (\d+), epoch (\d+)\)")
 _EP_LINE = re.compile(r"^  (ingest|pull|publish|control|metrics|state)\s+(\S+)")
 START_TIMEOUT_S = 30.0
 
@@ -153,11 +153,8 @@ def parse_endpoints(text: str, where: str = "--policy service") -> Endpoints:
 _CHILD = r"""
 import os, sys
 ppid = int(sys.argv[1])
-try:
-    import ctypes, signal
-    ctypes.CDLL(None, use_errno=True).prctl(1, int(signal.SIGTERM), 0, 0, 0)  # PR_SET_PDEATHSIG
-except Exception:
-    pass
+from routerd.childproc import die_with_parent
+die_with_parent()
 if os.getppid() != ppid:
     sys.exit(3)
 os.execv(sys.executable, [sys.executable, "-m", "routerd", "serve", *sys.argv[2:]])
@@ -232,7 +229,7 @@ class ServiceProcess:
         deadline = time.monotonic() + timeout_s
         while True:
             lines = self._read_out()
-            if any(_READY.match(ln) for ln in lines):
+            if any(parse_ready(ln) for ln in lines):
                 break
             rc = self.proc.poll()
             if rc is not None:
@@ -250,9 +247,9 @@ class ServiceProcess:
             m = _EP_LINE.match(ln)
             if m and m.group(2) != "-":
                 self.endpoints[m.group(1)] = m.group(2)
-            r = _READY.match(ln)
+            r = parse_ready(ln)
             if r:
-                self.epoch = int(r.group(2))
+                self.epoch = r[1]
         return dict(self.endpoints)
 
     def _read_out(self) -> list[str]:

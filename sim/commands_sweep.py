@@ -34,6 +34,7 @@ from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wai
 from typing import IO, Any
 
 from routerd.errors import InputError, Problem
+from routerd.progress import StatusLine
 
 from . import policies as _policies
 from .commands_simulate import _clean, add_config_options, add_packet_options, add_topology_option
@@ -250,7 +251,8 @@ class ProgressBar:
         self.stream = stream if stream is not None else sys.stderr
         self.after_s = after_s
         self.enabled = enabled
-        self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
+        self.line = StatusLine(self.stream)
+        self.tty = self.line.tty
         self.t0 = time.perf_counter()
         self.shown = False
         self._last = 0.0
@@ -282,18 +284,14 @@ class ProgressBar:
         eta = el * (1 - frac) / frac if frac > 0 else math.nan
         text = f"{done}/{self.total} {self.label}  {_dur(el)} elapsed  eta {_dur(eta)}"
         if self.tty:
-            bar = "#" * int(frac * 30)
-            self.stream.write(f"\r[{bar:<30}] {text}   ")
+            self.line.show(f"[{'#' * int(frac * 30):<30}] {text}", force=True)
         else:
-            self.stream.write(f"{int(frac * 100)}%  {text}\n")
-        self.stream.flush()
+            self.line.show(f"{int(frac * 100)}%  {text}", force=True)
 
     def close(self) -> None:
         if self.shown:
             self.update(self.total)
-            if self.tty:
-                self.stream.write("\n")
-            self.stream.flush()
+            self.line.done()
 
 
 def _dur(s: float) -> str:

@@ -87,6 +87,53 @@ class LinkEvent:
     delay_s: float | None = None  # "delay": the propagation delay of packets sent from t on
 
 
+@dataclass(frozen=True, slots=True, kw_only=True)
+class CoreSeries:
+    """Per series interval (all packets, by the interval they left the network in)."""
+
+    t_s: list[float]                 # end of each interval
+    delivered: list[int]
+    delivery_sum_s: list[float]      # sum of the delivery times of those delivered
+    dropped: list[int]
+    ttl_expired: list[int]
+    in_network: list[int]            # packets in the network at the sample
+    link_util: list[list[float]]     # per interval, per link: busy fraction
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class CoreResult:
+    """What :func:`run_core` measured: plain values, picklable.  Counts without ``_all``
+    cover packets injected at or after the warm-up; ``_all`` counts cover every packet.
+    ``dataclasses.asdict`` gives it as a plain dict of the same names."""
+
+    offered: int
+    delivered: int
+    dropped: int                     # dropped_buffer + dropped_link_down + dropped_no_route
+    dropped_buffer: int
+    dropped_link_down: int
+    dropped_no_route: int
+    ttl_expired: int
+    in_flight_end: int               # every packet still in the network at the end
+    offered_all: int
+    delivered_all: int
+    dropped_all: int
+    ttl_expired_all: int
+    deliveries: list[float]          # delivery times of measured packets, in delivery order
+    hops_sum: int                    # hops of the measured delivered packets
+    events: int                      # events handled
+    wall_s: float                    # wall-clock time of the loop (the one impure figure)
+    window_s: float                  # measured window: end - warm-up
+    little_area: float               # packets in the network integrated over the window
+    left: int                        # measured packets that left the network (any way)
+    sys_sum: float                   # their total time in the network
+    busy_s: list[float]              # per link: seconds transmitting, all time
+    carried: list[int]               # per link: packets entered, all time
+    series: CoreSeries
+    series_interval_s: float
+    end_s: float
+    busy_window_s: list[float]       # per link: seconds transmitting within the window
+
+
 def run_core(
     topo: Topology,
     policy: Policy,
@@ -99,12 +146,12 @@ def run_core(
     link_events: Sequence[LinkEvent] = (),
     progress: Callable[[float, int], None] | None = None,
     observer: Callable[[dict[str, Any]], None] | None = None,
-) -> dict[str, Any]:
+) -> CoreResult:
     """Simulate until ``duration_s`` of virtual time; return raw counts, samples and series.
 
     ``policy`` must already be attached.  ``packets`` yields :data:`PacketTuple` in
     non-decreasing time order.  ``progress(t, events)`` is called at every
-    series sample.  The result is a dict of plain Python values.
+    series sample.  The result is a :class:`CoreResult` of plain Python values.
     ``observer(view)`` (live displays, partial results after an interrupt) is called at
     every series sample with ``t_s``, all-packet totals (``delivered``, ``dropped``,
     ``ttl_expired``, ``in_network``) and live references to the measured ``deliveries``
@@ -414,46 +461,32 @@ def run_core(
         area += in_net * (t_end - last_t)
     window = max(t_end - warm, 0.0)
     wall = time.perf_counter() - wall0
-    return {
-        "offered": offered,
-        "delivered": delivered,
-        "dropped": drop_buf + drop_down + drop_noroute,
-        "dropped_buffer": drop_buf,
-        "dropped_link_down": drop_down,
-        "dropped_no_route": drop_noroute,
-        "ttl_expired": ttl_expired,
-        "in_flight_end": in_net,
-        "offered_all": offered_all,
-        "delivered_all": delivered_all,
-        "dropped_all": dropped_all,
-        "ttl_expired_all": ttl_all,
-        "deliveries": deliveries,
-        "hops_sum": hops_sum,
-        "events": events,
-        "wall_s": wall,
-        "window_s": window,
-        "little_area": area,
-        "left": left,
-        "sys_sum": sys_sum,
-        "busy_s": busy,
-        "carried": carried,
-        "series": {
-            "t_s": s_t, "delivered": s_deliv, "delivery_sum_s": s_dsum, "dropped": s_drop,
-            "ttl_expired": s_ttl, "in_network": s_in_net, "link_util": s_busy,
-        },
-        "series_interval_s": ivl,
-        "end_s": t_end,
-        "busy_window_s": [busy[k] - busy_warm[k] for k in range(nl)],
-    }
-
-
-def percentile(sorted_vals: Sequence[float], q: float) -> float:
-    """The q-quantile (0..1) of sorted values by linear interpolation (NaN when empty)."""
-    m = len(sorted_vals)
-    if m == 0:
-        return math.nan
-    pos = q * (m - 1)
-    lo = int(math.floor(pos))
-    hi = min(lo + 1, m - 1)
-    w = pos - lo
-    return float(sorted_vals[lo] * (1 - w) + sorted_vals[hi] * w)
+    return CoreResult(
+        offered=offered,
+        delivered=delivered,
+        dropped=drop_buf + drop_down + drop_noroute,
+        dropped_buffer=drop_buf,
+        dropped_link_down=drop_down,
+        dropped_no_route=drop_noroute,
+        ttl_expired=ttl_expired,
+        in_flight_end=in_net,
+        offered_all=offered_all,
+        delivered_all=delivered_all,
+        dropped_all=dropped_all,
+        ttl_expired_all=ttl_all,
+        deliveries=deliveries,
+        hops_sum=hops_sum,
+        events=events,
+        wall_s=wall,
+        window_s=window,
+        little_area=area,
+        left=left,
+        sys_sum=sys_sum,
+        busy_s=busy,
+        carried=carried,
+        series=CoreSeries(t_s=s_t, delivered=s_deliv, delivery_sum_s=s_dsum, dropped=s_drop,
+                          ttl_expired=s_ttl, in_network=s_in_net, link_util=s_busy),
+        series_interval_s=ivl,
+        end_s=t_end,
+        busy_window_s=[busy[k] - busy_warm[k] for k in range(nl)],
+    )

@@ -23,18 +23,14 @@ import numpy as np
 from routerd import config as _config
 from routerd import topology as _topology
 from routerd.errors import InputError, Problem
+from routerd.stats import delivery_stats
 
 from . import policies as _policies
 from . import scenario as _scenario
-from .core import percentile, run_core
+from .core import CoreResult, run_core
 from .traffic import PoissonTraffic
 
 DEMO_TOPOLOGY = os.path.join(os.path.dirname(_topology.__file__), "data", "demo-lab.yaml")
-
-#: Student's t 0.975 quantile for 19 degrees of freedom (standard t tables), used for the
-#: 95% confidence interval from 20 batch means.
-T975_19 = 2.093
-BATCHES = 20
 
 
 @dataclass
@@ -182,7 +178,7 @@ def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
                        ttl=cfg["sim.ttl"], series_interval_s=cfg["sim.series_interval_s"],
                        link_events=link_events, progress=progress, observer=observer)
         if progress is not None:
-            progress(sp.duration_s, raw["events"], final=True)
+            progress(sp.duration_s, raw.events, final=True)
         result = reduce(raw, sp, topo, policy.name, warm, policy.stats())
         # the scenario's link events, for plots and readers of the result
         result["link_events"] = [
@@ -196,27 +192,16 @@ def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
             close()
 
 
-def reduce(raw: dict[str, Any], sp: SimSpec, topo: _topology.Topology, policy: str,
+def reduce(raw: CoreResult, sp: SimSpec, topo: _topology.Topology, policy: str,
            warm: float, pstats: Mapping[str, float]) -> dict[str, Any]:
     """Raw counts from :func:`run_core` → the summary, the series and per-link figures."""
-    dl = raw["deliveries"]
-    srt = sorted(dl)
-    m = len(dl)
-    mean = float(sum(dl) / m) if m else math.nan
-    # batch means (Law & Kelton, Simulation Modeling and Analysis, ch. 9): 20 batches of
-    # consecutive deliveries, a t-based 95% half-width
-    ci = math.nan
-    if m >= BATCHES * 10:
-        bs = m // BATCHES
-        means = [sum(dl[i * bs:(i + 1) * bs]) / bs for i in range(BATCHES)]
-        mu = sum(means) / BATCHES
-        var = sum((x - mu) ** 2 for x in means) / (BATCHES - 1)
-        ci = T975_19 * math.sqrt(var / BATCHES)
-    win = raw["window_s"]
-    util = [b / win if win > 0 else math.nan for b in raw["busy_window_s"]]
-    L = raw["little_area"] / win if win > 0 else math.nan
-    lam = raw["left"] / win if win > 0 else math.nan
-    W = raw["sys_sum"] / raw["left"] if raw["left"] else math.nan
+    ds = delivery_stats(raw.deliveries)      # batch-means interval: routerd.stats
+    m = ds.count
+    win = raw.window_s
+    util = [b / win if win > 0 else math.nan for b in raw.busy_window_s]
+    L = raw.little_area / win if win > 0 else math.nan
+    lam = raw.left / win if win > 0 else math.nan
+    W = raw.sys_sum / raw.left if raw.left else math.nan
     summary: dict[str, Any] = {
         "policy": policy,
         "topology": topo.name,
@@ -229,73 +214,70 @@ def reduce(raw: dict[str, Any], sp: SimSpec, topo: _topology.Topology, policy: s
         "packet_bytes": float(sp.packet_bytes),
         "size_dist": sp.size_dist,
         "demands": bool(sp.demands),
-        "offered": raw["offered"],
-        "delivered": raw["delivered"],
-        "dropped": raw["dropped"],
-        "dropped_buffer": raw["dropped_buffer"],
-        "dropped_link_down": raw["dropped_link_down"],
-        "dropped_no_route": raw["dropped_no_route"],
-        "ttl_expired": raw["ttl_expired"],
-        "in_flight_at_end": raw["offered"] - raw["delivered"] - raw["dropped"] - raw["ttl_expired"],
-        "delivery_ratio": raw["delivered"] / raw["offered"] if raw["offered"] else math.nan,
-        "mean_delivery_s": mean,
-        "mean_delivery_ci95_s": ci,
-        "p50_delivery_s": percentile(srt, 0.50),
-        "p95_delivery_s": percentile(srt, 0.95),
-        "p99_delivery_s": percentile(srt, 0.99),
-        "max_delivery_s": float(srt[-1]) if srt else math.nan,
-        "mean_hops": raw["hops_sum"] / m if m else math.nan,
+        "offered": raw.offered,
+        "delivered": raw.delivered,
+        "dropped": raw.dropped,
+        "dropped_buffer": raw.dropped_buffer,
+        "dropped_link_down": raw.dropped_link_down,
+        "dropped_no_route": raw.dropped_no_route,
+        "ttl_expired": raw.ttl_expired,
+        "in_flight_at_end": raw.offered - raw.delivered - raw.dropped - raw.ttl_expired,
+        "delivery_ratio": raw.delivered / raw.offered if raw.offered else math.nan,
+        **ds.summary_keys(),
+        "mean_hops": raw.hops_sum / m if m else math.nan,
         "throughput_pps": m / win if win > 0 else math.nan,
         "link_util_max": max(util) if util else math.nan,
         "link_util_mean": sum(util) / len(util) if util else math.nan,
         "little_L": L,
-        "little_lambda_W": lam * W if raw["left"] else math.nan,
-        "events": raw["events"],
-        "wall_s": raw["wall_s"],
+        "little_lambda_W": lam * W if raw.left else math.nan,
+        "events": raw.events,
+        "wall_s": raw.wall_s,
     }
     for k, v in pstats.items():
         summary[f"policy_{k}"] = v
     links = [
         {"link": k, "from": topo.nodes[a], "to": topo.nodes[b], "capacity_bps": float(c),
-         "delay_s": float(dly), "utilisation": util[k], "packets": raw["carried"][k]}
+         "delay_s": float(dly), "utilisation": util[k], "packets": raw.carried[k]}
         for k, (a, b, c, dly) in enumerate(zip(topo.src.tolist(), topo.dst.tolist(),
                                                topo.capacity_bps.tolist(), topo.delay_s.tolist()))
     ]
     series: dict[str, Any] = {}
     if sp.series:
-        s = raw["series"]
+        s = raw.series
         series = {
-            "t_s": s["t_s"],
-            "delivered": s["delivered"],
-            "mean_delivery_s": [ds / c if c else math.nan for ds, c in zip(s["delivery_sum_s"], s["delivered"])],
-            "dropped": s["dropped"],
-            "ttl_expired": s["ttl_expired"],
-            "in_network": s["in_network"],
-            "link_util": s["link_util"],
-            "interval_s": raw["series_interval_s"],
+            "t_s": s.t_s,
+            "delivered": s.delivered,
+            "mean_delivery_s": [ds / c if c else math.nan for ds, c in zip(s.delivery_sum_s, s.delivered)],
+            "dropped": s.dropped,
+            "ttl_expired": s.ttl_expired,
+            "in_network": s.in_network,
+            "link_util": s.link_util,
+            "interval_s": raw.series_interval_s,
         }
     return {"summary": summary, "series": series, "links": links}
 
 
-def _progress_printer(duration: float) -> Any:
+def _progress_printer(duration: float, stream: Any = None) -> Any:
+    """Progress of a long run on stderr, from its third second on: redrawn twice a second
+    on a terminal, a plain line every 10 s elsewhere (:class:`routerd.progress.StatusLine`)."""
+    from routerd.progress import StatusLine
+
     t0 = time.perf_counter()
-    state = {"last": 0.0, "shown": False}
+    line = StatusLine(stream if stream is not None else sys.stderr, every_s=0.5, plain_every_s=10.0)
 
     def show(t: float, events: int, final: bool = False) -> None:
         now = time.perf_counter()
         if final:
-            if state["shown"]:
-                print(f"\rsimulated {duration:g} s: {events} events in {now - t0:.1f} s" + " " * 10,
-                      file=sys.stderr, flush=True)
+            if line.shown:
+                line.show(f"simulated {duration:g} s: {events} events in {now - t0:.1f} s", force=True)
+                line.done()
             return
-        if now - t0 < 2.0 or now - state["last"] < 0.5:
+        if now - t0 < 2.0 or not line.due():
             return
-        state["last"] = now
-        state["shown"] = True
         frac = min(t / duration, 1.0)
         eta = (now - t0) * (1 - frac) / frac if frac > 0 else math.nan
         bar = "#" * int(frac * 30)
-        print(f"\r[{bar:<30}] {frac * 100:5.1f}%  t={t:.2f}/{duration:g} s  {events} events  "
-              f"eta {eta:.0f} s", end="", file=sys.stderr, flush=True)
+        line.show(f"[{bar:<30}] {frac * 100:5.1f}%  t={t:.2f}/{duration:g} s  {events} events  "
+                  f"eta {eta:.0f} s")
 
     return show

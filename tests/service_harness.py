@@ -20,7 +20,8 @@ from typing import Any
 import msgpack
 import zmq
 
-READY = re.compile(r"^routerd: ready \(pid (\d+), epoch (\d+)\)")
+from routerd.childproc import parse_ready
+
 EP = re.compile(r"^  (ingest|pull|publish|control|metrics)\s+(\S+)")
 START_TIMEOUT_S = 30.0
 
@@ -67,9 +68,9 @@ class ServiceProc:
             m = EP.match(line)
             if m and m.group(2) != "-":
                 self.endpoints[m.group(1)] = m.group(2)
-            r = READY.match(line)
+            r = parse_ready(line)
             if r:
-                self.epoch = int(r.group(2))
+                self.epoch = r[1]
                 t = threading.Thread(target=self._drain_out, daemon=True)
                 t.start()
                 self._threads.append(t)

@@ -3,6 +3,8 @@ from __future__ import annotations
 
 from typing import Any
 
+from sim.core import CoreResult
+
 
 def assert_little(s: dict[str, Any], rel: float = 0.03) -> None:
     """Little's law L = lambda W (Little, Operations Research 9, 1961): the time-average
@@ -12,9 +14,9 @@ def assert_little(s: dict[str, Any], rel: float = 0.03) -> None:
     assert abs(L - lw) <= rel * max(L, 1e-9) + 1e-3, (L, lw)
 
 
-def assert_little_raw(raw: dict[str, Any], rel: float = 0.03) -> None:
+def assert_little_raw(raw: CoreResult, rel: float = 0.03) -> None:
     """The same check on :func:`sim.core.run_core`'s raw result."""
-    win = raw["window_s"]
-    L = raw["little_area"] / win
-    lw = raw["left"] / win * (raw["sys_sum"] / raw["left"]) if raw["left"] else 0.0
+    win = raw.window_s
+    L = raw.little_area / win
+    lw = raw.left / win * (raw.sys_sum / raw.left) if raw.left else 0.0
     assert abs(L - lw) <= rel * max(L, 1e-9) + 1e-3, (L, lw)

@@ -30,6 +30,7 @@ from routerd import config as C
 from routerd import overlay as ov
 from routerd import topology as T
 from routerd import wire
+from routerd.clock import SYSTEM, FakeClock
 
 NODES = ["s", "x", "y", "t"]
 TOPO_DOC = {"topology": {"name": "diamond", "defaults": {"capacity_bps": 1e7, "buffer_pkts": 50},
@@ -195,12 +196,15 @@ class Diamond:
         self.tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
         self.tag = ov.topology_tag(self.topo.digest)
 
-    def start(self, name: str) -> AgentThread:
+    def make(self, name: str, clock: Any = SYSTEM) -> tuple[A.Agent, CollectorRegistry]:
         reg = CollectorRegistry()
         ag = A.Agent(self.cfg, self.topo, name, registry=reg, underlay=self.underlay,
                      local=f"127.0.0.1:{self.ports[name]['local']}",
-                     deliver=f"127.0.0.1:{self.ports[name]['deliver']}")
-        self.agents[name] = AgentThread(ag, reg)
+                     deliver=f"127.0.0.1:{self.ports[name]['deliver']}", clock=clock)
+        return ag, reg
+
+    def start(self, name: str) -> AgentThread:
+        self.agents[name] = AgentThread(*self.make(name))
         return self.agents[name]
 
     def start_all(self) -> None:
@@ -239,6 +243,69 @@ class Diamond:
         self.service.close()
         for s in list(self.sink.values()) + [self.tx]:
             s.close()
+
+
+class Turns:
+    """Agents of a diamond driven turn by turn on one FakeClock, in the test's own thread:
+    each step moves virtual time by ``step_s`` and gives every agent one turn that does
+    not wait.  Loopback UDP queues a datagram at the receiver before ``send`` returns, so
+    what one agent sends in a step is read by the others in that step or the next: the
+    agents' timing (probes, detection, held packets, reports) depends on the fake clock
+    only, never on how fast the machine is."""
+
+    def __init__(self, d: Diamond, step_s: float = 0.01):
+        self.d = d
+        self.clock = FakeClock(start=1000.0)
+        self.step_s = step_s
+        self.agents: dict[str, A.Agent] = {}
+        self.registries: dict[str, CollectorRegistry] = {}
+
+    def add(self, name: str) -> A.Agent:
+        ag, reg = self.d.make(name, self.clock)
+        ag.open()
+        self.agents[name], self.registries[name] = ag, reg
+        return ag
+
+    def remove(self, name: str) -> None:
+        self.agents.pop(name).close()
+
+    def step(self, n: int = 1) -> None:
+        for _ in range(n):
+            self.clock.advance(self.step_s)
+            for ag in self.agents.values():
+                ag.turn(0.0)
+
+    def step_until(self, pred: Callable[[], bool], max_steps: int) -> int:
+        """Steps taken until ``pred()`` holds (fails the test after ``max_steps``)."""
+        for i in range(max_steps + 1):
+            if pred():
+                return i
+            self.step()
+        raise AssertionError(f"not reached within {max_steps} steps of {self.step_s} s")
+
+    def wait(self, pred: Callable[[], bool], timeout: float = 5.0) -> bool:
+        """Turns without moving virtual time until ``pred()`` holds: for what arrives over
+        zmq from the stand-in service's thread (tables, acknowledgements) in real time.
+        Each turn waits for input up to 5 ms; nothing that depends on the clock fires."""
+        end = time.monotonic() + timeout
+        while not pred():
+            if time.monotonic() > end:
+                return False
+            for ag in self.agents.values():
+                ag.turn(0.005)
+        return True
+
+    def metric(self, name: str, sample: str, labels: dict[str, str] | None = None) -> float:
+        text = generate_latest(self.registries[name]).decode()
+        for fam in text_string_to_metric_families(text):
+            for smp in fam.samples:
+                if smp.name == sample and (labels is None or all(smp.labels.get(k) == v for k, v in labels.items())):
+                    return smp.value
+        raise KeyError(sample)
+
+    def close(self) -> None:
+        for name in list(self.agents):
+            self.remove(name)
 
 
 @pytest.fixture
@@ -355,19 +422,45 @@ def test_probes_measure_emulated_delay_and_report_hop_rows(diamond: Callable[...
 
 
 def test_failure_detection_reports_down_then_up(diamond: Callable[..., Diamond]) -> None:
+    # on a fake clock, stepped 10 ms at a time: probe interval 50 ms, multiplier 3
     d = diamond()
-    d.start_all()
-    assert wait_until(lambda: ("s", "x", "up") in d.service.links, 5)
-    d.agents["x"].stop()
-    assert wait_until(lambda: ("s", "x", "down") in d.service.links, 5)
-    det = [e for e in d.agents["s"].agent.detections if e["neighbour"] == "x"]
-    # BFD detection time (RFC 5880 section 6.8.4): multiplier x interval = 3 x 50 ms without
-    # an echo; it cannot fire earlier than that
-    assert det and det[-1]["after_s"] >= 3 * 0.05
-    assert d.agents["s"].metric("routerd_agent_links_down") == 1
-    d.start("x")
-    assert wait_until(lambda: d.service.links.count(("s", "x", "up")) >= 2, 5)
-    assert d.agents["s"].metric("routerd_agent_link_state_changes_total", {"state": "up"}) >= 2
+    turns = Turns(d)
+    try:
+        for n in NODES:
+            turns.add(n)
+        s = turns.agents["s"]
+        # propagation is emulated (held delay_s <= 4 ms: one step): a probe goes out in
+        # step 1, is answered in step 2, and the echo is taken in step 4
+        assert turns.step_until(lambda: all(ln.state == "up" for a in turns.agents.values()
+                                            for ln in a.links.values()), 10) == 4
+        turns.step(5)                         # a report interval: the up rows are sent
+        assert wait_until(lambda: ("s", "x", "up") in d.service.links, 5)
+        turns.remove("x")
+        last = s.links[1].last_echo
+        # BFD detection time (RFC 5880 section 6.8.4): multiplier x interval = 3 x 50 ms
+        # without an echo.  It cannot fire earlier; it fires at the first probe tick after.
+        while s.links[1].state != "down":
+            assert turns.clock.monotonic() - last <= 3 * 0.05 + 0.05 + 1e-9, "detected too late"
+            turns.step()
+        det = [e for e in s.detections if e["neighbour"] == "x"]
+        assert len(det) == 1 and det[0]["from"] == "up"
+        assert 3 * 0.05 < det[0]["after_s"] <= 3 * 0.05 + 0.05 + 1e-9
+        assert det[0]["after_s"] == pytest.approx(turns.clock.monotonic() - last)
+        assert det[0]["at"] == pytest.approx(turns.clock.wall())      # the clock's wall time
+        assert turns.metric("s", "routerd_agent_links_down") == 1
+        assert s.links[2].state == "up"       # y kept echoing throughout
+        turns.step(5)
+        assert wait_until(lambda: ("s", "x", "down") in d.service.links, 5)
+        turns.add("x")
+        turns.step_until(lambda: s.links[1].state == "up", 10)
+        assert turns.metric("s", "routerd_agent_links_down") == 0
+        turns.step(5)
+        assert wait_until(lambda: d.service.links.count(("s", "x", "up")) >= 2, 5)
+        # s-x and s-y came up at start, s-x once more
+        assert turns.metric("s", "routerd_agent_link_state_changes_total", {"state": "up"}) == 3
+        assert turns.metric("s", "routerd_agent_link_state_changes_total", {"state": "down"}) == 1
+    finally:
+        turns.close()
 
 
 def test_ttl_expiry_and_malformed_packets_are_counted(diamond: Callable[..., Diamond]) -> None:
@@ -409,28 +502,42 @@ def test_ttl_expiry_and_malformed_packets_are_counted(diamond: Callable[..., Dia
 
 
 def test_nonstop_forwarding_and_resync(diamond: Callable[..., Diamond]) -> None:
+    # on a fake clock: table_stale_s 0.6 s, steps of 10 ms
     d = diamond()
     d.service.set_table("s", {"t": [["x", 1.0]]})
-    d.start_all()
-    s = d.agents["s"]
-    assert wait_until(lambda: s.agent.routes != {}, 5)
-    assert s.metric("routerd_agent_nonstop_forwarding") == 0
-    base = d.base
-    d.service.close()                                   # the service is gone
-    assert wait_until(lambda: s.metric("routerd_agent_nonstop_forwarding") == 1, 5)
-    for i in range(20):
-        d.send("s", "t", flow=i, seq=i)
-    assert len(d.received("t")) == 20                   # still forwarding, on the last table
-    assert d.forwarded("x") == 20                       # ... and by it, not by the fallback
-    d.agents["y"].stop()                                # a link fails while the service is away
-    assert wait_until(lambda: s.agent.links[2].state == "down", 5)
-    d.service = FakeService(base, d.topo, epoch=2)       # it comes back: a new epoch
-    d.service.set_table("s", {"t": [["x", 1.0]]})
-    assert wait_until(lambda: s.metric("routerd_agent_nonstop_forwarding") == 0, 5)
-    assert s.metric("routerd_agent_service_restarts_seen_total") == 1
-    assert s.metric("routerd_agent_nonstop_periods_total") == 1
-    # what it saw down while the service was away reaches the new service
-    assert wait_until(lambda: ("s", "y", "down") in d.service.links, 5)
+    turns = Turns(d)
+    try:
+        for n in NODES:
+            turns.add(n)
+        s = turns.agents["s"]
+        turns.step_until(lambda: all(ln.state == "up" for ln in s.links.values()), 10)
+        assert turns.wait(lambda: s.routes != {})
+        assert turns.metric("s", "routerd_agent_nonstop_forwarding") == 0
+        base = d.base
+        d.service.close()                                   # the service is gone
+        quiet_since = max(t for t in (s.table_at, s.last_ack_at) if t is not None)
+        turns.step_until(lambda: turns.metric("s", "routerd_agent_nonstop_forwarding") == 1, 80)
+        # declared at the first report tick (every 50 ms) after 0.6 s without a table or ack
+        assert 0.6 <= turns.clock.monotonic() - quiet_since <= 0.6 + 0.05 + 1e-9
+        for i in range(20):
+            d.send("s", "t", flow=i, seq=i)
+        turns.step(3)                                       # through s and x (held 4 ms, 1 ms)
+        assert len(d.received("t")) == 20                   # still forwarding, on the last table
+        assert turns.agents["x"].counts["forwarded"] == 20  # ... and by it, not the fallback
+        turns.remove("y")                                   # a link fails while the service is away
+        turns.step_until(lambda: s.links[2].state == "down", 25)
+        d.service = FakeService(base, d.topo, epoch=2)       # it comes back: a new epoch
+        d.service.set_table("s", {"t": [["x", 1.0]]})
+        assert turns.wait(lambda: turns.metric("s", "routerd_agent_nonstop_forwarding") == 0)
+        assert turns.metric("s", "routerd_agent_service_restarts_seen_total") == 1
+        assert turns.metric("s", "routerd_agent_nonstop_periods_total") == 1
+        # what it saw down while the service was away reaches the new service: behind the
+        # batches that piled up meanwhile, which go again after their timeout (2 s virtual)
+        turns.step_until(lambda: turns.wait(lambda: ("s", "y", "down") in d.service.links, 0.01),
+                         400)
+        assert s.counts["delivery_errors"] == 0
+    finally:
+        turns.close()
 
 
 def test_underlay_and_node_errors(tmp_path: Any) -> None:
@@ -488,3 +595,97 @@ def test_never_straight_back_while_another_way_exists(diamond: Callable[..., Dia
     x = d.agents["x"]
     assert x.metric("routerd_agent_returns_avoided_total") == 10
     assert d.agents["s"].agent.counts["ttl_expired"] == 0
+
+
+# ---- the link state machine, as data -------------------------------------------------------
+def test_link_transition_table_is_total_and_closed() -> None:
+    assert set(A.LINK_TRANSITIONS) == {(s, e) for s in A.LINK_STATES for e in A.LINK_EVENTS}
+    for (_s, _e), (nxt, actions) in A.LINK_TRANSITIONS.items():
+        assert nxt in A.LINK_STATES and set(actions) <= set(A.LINK_ACTIONS)
+    assert A.USABLE_STATES < set(A.LINK_STATES) and "down" not in A.USABLE_STATES
+    # RFC 5880's rule in our terms: a change is reported, a non-change is not (except resync)
+    for (s, e), (nxt, actions) in A.LINK_TRANSITIONS.items():
+        if e != "resync":
+            assert ("report" in actions) == (nxt != s), (s, e)
+            assert ("count" in actions) == (nxt != s), (s, e)
+        else:
+            assert nxt == s and "count" not in actions
+
+
+def _bare_agent(tmp_path: Any, clock: FakeClock) -> tuple[A.Agent, CollectorRegistry]:
+    """An agent of node s (not opened: no sockets) with its two links in hand."""
+    tp = tmp_path / "topo.yaml"
+    tp.write_text(yaml.safe_dump(TOPO_DOC))
+    topo = T.load(str(tp))
+    cfg = C.from_mapping_flat({"topology.file": str(tp), "agent.probe_interval_s": 0.05,
+                               "agent.detect_multiplier": 3}, "test", base=None)
+    ul = {(0, 1): (("127.0.0.1", 1), ("127.0.0.1", 2)), (1, 0): (("127.0.0.1", 2), ("127.0.0.1", 1)),
+          (0, 2): (("127.0.0.1", 3), ("127.0.0.1", 4)), (2, 0): (("127.0.0.1", 4), ("127.0.0.1", 3))}
+    reg = CollectorRegistry()
+    ag = A.Agent(cfg, topo, "s", registry=reg, underlay=ul, local="127.0.0.1:0",
+                 deliver="127.0.0.1:0", clock=clock)
+    for e in ag.ends:
+        ag.links[e.neighbour] = A._Link(e, None, 0.0, clock.monotonic(), ag.detect_s)  # type: ignore[arg-type]
+    ag._recompute_fallback()
+    return ag, reg
+
+
+@pytest.mark.parametrize("key", sorted(A.LINK_TRANSITIONS), ids="-".join)
+def test_each_link_transition_does_what_the_table_says(tmp_path: Any, key: tuple[str, str]) -> None:
+    state, event = key
+    nxt, actions = A.LINK_TRANSITIONS[key]
+    clock = FakeClock(start=10.0)
+    ag, reg = _bare_agent(tmp_path, clock)
+    try:
+        ln = ag.links[2]                     # s-y: the delay-shortest way to y and t
+        ln.state = state
+        ln.last_echo = 9.5
+        ag._recompute_fallback()
+        before = {st: reg.get_sample_value("routerd_agent_link_state_changes_total", {"state": st})
+                  for st in ("up", "down")}
+        fb = list(ag.fallback_nh)
+        clock.advance(1.0)
+        ag._link_event(ln, event, clock.monotonic())
+        assert ln.state == nxt
+        assert ag.link_reports == ({2: nxt} if "report" in actions else {})
+        changes = {st: reg.get_sample_value("routerd_agent_link_state_changes_total", {"state": st})
+                   for st in ("up", "down")}
+        assert changes == ({**before, nxt: before[nxt] + 1} if "count" in actions else before)
+        if "count" in actions:
+            assert reg.get_sample_value("routerd_agent_links_down") == (1 if nxt == "down" else 0)
+        det = list(ag.detections)
+        if "record" in actions:
+            assert det == [{"neighbour": "y", "from": state, "after_s": pytest.approx(1.5),
+                            "at": pytest.approx(clock.wall())}]
+        else:
+            assert det == []
+        # the static fallback follows the usable links: every node by way of y (s-y-t-x,
+        # 3 ms, beats s-x, 4 ms) unless s-y is down, then by way of x
+        want = [-1, 1, 1, 1] if nxt not in A.USABLE_STATES else [-1, 2, 2, 2]
+        assert ag.fallback_nh == want
+        assert (ag.fallback_nh != fb) == ("count" in actions and (state in A.USABLE_STATES)
+                                          != (nxt in A.USABLE_STATES))
+    finally:
+        ag.links = {}                        # no sockets of their own to close
+        ag.close()
+
+
+def test_link_walk_from_start_up(tmp_path: Any) -> None:
+    """A walk through the table as an agent meets it: silence at start-up, an echo, a flap,
+    a service restart while down."""
+    clock = FakeClock()
+    ag, _reg = _bare_agent(tmp_path, clock)
+    try:
+        ln = ag.links[1]
+        walk = [("silence", "down", {1: "down"}), ("silence", "down", {}), ("resync", "down", {1: "down"}),
+                ("echo", "up", {1: "up"}), ("echo", "up", {}), ("resync", "up", {}),
+                ("silence", "down", {1: "down"}), ("echo", "up", {1: "up"})]
+        for event, want, reports in walk:
+            clock.advance(0.2)
+            ag._link_event(ln, event, clock.monotonic())
+            assert (ln.state, ag.link_reports) == (want, reports), event
+            ag.link_reports.clear()
+        assert [d["from"] for d in ag.detections] == ["init", "up"]
+    finally:
+        ag.links = {}                        # no sockets of their own to close
+        ag.close()

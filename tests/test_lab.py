@@ -265,6 +265,165 @@ def test_ctrl_c_tears_everything_down(outdir: str) -> None:
     assert_nothing_left(p.pid, "".join(seen) + err)
 
 
+def _dead_pid() -> int:
+    p = subprocess.Popen(["true"])
+    p.wait()
+    return p.pid
+
+
+def _orphan_dir(base: str, *, lab_pid: int, keep: bool = False,
+                service: subprocess.Popen[Any] | None = None, d: str | None = None) -> str:
+    """A run directory as a lab leaves it (``d`` or a new one under ``base``), its marker
+    naming ``lab_pid`` as the lab."""
+    import tempfile
+
+    d = d or tempfile.mkdtemp(prefix=f"{L.PREFIX}-", dir=base)
+    L.write_marker(d, keep=keep, service=service)
+    mp = os.path.join(d, L.MARKER)
+    with open(mp) as fh:
+        doc = json.load(fh)
+    doc["lab_pid"] = lab_pid
+    if lab_pid != os.getpid():
+        doc["lab_start"] = 1                     # whatever ran under that pid, it is gone
+    with open(mp, "w") as fh:
+        json.dump(doc, fh)
+    return d
+
+
+@pytest.mark.slow
+def test_orphan_removal_acts_only_on_a_dead_labs_own_service(tmp_path: Any) -> None:
+    """No root needed: the rules that keep remove_orphans from touching anything else."""
+    import shutil
+    import tempfile
+
+    import yaml
+    from service_harness import READY
+
+    base = tempfile.mkdtemp(prefix="rdo-", dir="/tmp")     # ipc paths must stay short
+    procs: list[subprocess.Popen[Any]] = []
+    try:
+        # 1. a live lab's directory (this process, its real start time): untouched
+        live = _orphan_dir(base, lab_pid=os.getpid())
+        # 2. a dead lab whose marker names an unrelated process as its service: that
+        #    process is left alone (its command line is not the lab's serve); the dir goes
+        other = subprocess.Popen(["sleep", "60"])
+        procs.append(other)
+        unrelated = _orphan_dir(base, lab_pid=_dead_pid(), service=other)
+        #    ... even when the marker claims it is that lab's serve (a reused pid, an edit)
+        lying = _orphan_dir(base, lab_pid=_dead_pid(), service=other)
+        with open(os.path.join(lying, L.MARKER)) as fh:
+            doc = json.load(fh)
+        doc["service_cmdline"] = L.service_command(os.path.join(lying, "lab-config.yaml"))
+        with open(os.path.join(lying, L.MARKER), "w") as fh:
+            json.dump(doc, fh)
+        # 3. a dead lab's directory made by someone else's rules (group-writable): ignored
+        foreign = _orphan_dir(base, lab_pid=_dead_pid())
+        os.chmod(foreign, 0o777)
+        # 4. a dead lab with its real service still running, and 5. the same with --keep
+        served = []
+        for keep in (False, True):
+            d = tempfile.mkdtemp(prefix=f"{L.PREFIX}-", dir=base)
+            doc = L.lab_config(None, TOPO, d)
+            with open(os.path.join(d, "lab-config.yaml"), "w") as fh:
+                yaml.safe_dump(doc, fh)
+            sp = subprocess.Popen(L.service_command(os.path.join(d, "lab-config.yaml")),
+                                  stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True,
+                                  start_new_session=True)
+            procs.append(sp)
+            assert sp.stdout is not None
+            for line in sp.stdout:
+                if READY.match(line):
+                    break
+            assert sp.poll() is None
+            _orphan_dir(base, lab_pid=_dead_pid(), keep=keep, service=sp, d=d)
+            served.append((d, sp, keep))
+        lines = L.remove_orphans(base)
+        assert os.path.isdir(live) and os.path.isdir(foreign)
+        assert other.poll() is None and not os.path.exists(unrelated) and not os.path.exists(lying)
+        for d, sp, keep in served:
+            assert sp.wait(15) == 0          # SIGTERM first: the service stopped in order
+            assert any(f"stopped the service (pid {sp.pid})" in ln and d in ln for ln in lines), lines
+            assert os.path.isdir(d) == keep
+        assert len(lines) == 2 + 3, lines    # 2 services stopped, 3 directories removed
+        assert L.remove_orphans(base) == []  # nothing left to do (the kept dir: no service)
+    finally:
+        for p in procs:
+            if p.poll() is None:
+                p.kill()
+                p.wait()
+            if p.stdout is not None:
+                p.stdout.close()
+        shutil.rmtree(base, ignore_errors=True)
+
+
+def _cmdline(pid: int) -> str | None:
+    try:
+        with open(f"/proc/{pid}/cmdline", "rb") as fh:
+            return fh.read().replace(b"\0", b" ").decode(errors="replace")
+    except OSError:
+        return None
+
+
+@pytest.mark.slow
+@needs_lab
+def test_the_next_run_removes_what_a_kill_9_of_the_lab_left(outdir: str) -> None:
+    """kill -9 of `routerd lab` runs no teardown: its agents (in its namespaces) and its
+    service (in the host's, its own session) stay.  The next lab stops that service,
+    deletes those namespaces and the dead lab's run directory, and nothing else."""
+    p = subprocess.Popen([sys.executable, "-m", "routerd", "lab", "--topology", TOPO,
+                          "--duration", "60", "--rate", "50", "--out", outdir, "--quiet"],
+                         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    serve: list[int] = []
+    run_dir = ""
+    try:
+        assert p.stderr is not None
+        deadline = time.monotonic() + 60
+        seen = []
+        while time.monotonic() < deadline:
+            line = p.stderr.readline()
+            if not line:
+                break
+            seen.append(line)
+            if "agents up" in line:
+                break
+        assert any("agents up" in ln for ln in seen), "".join(seen)
+        run_dir = run_dir_of("".join(seen))
+        serve = [int(x.split(":")[0]) for x in lab_processes(run_dir) if " serve " in x]
+        assert len(serve) == 1, lab_processes(run_dir)
+        p.kill()                                   # SIGKILL: no handler, no teardown
+        p.wait(10)
+        if p.stderr is not None:
+            p.stderr.close()
+        if p.stdout is not None:
+            p.stdout.close()
+        time.sleep(0.5)
+        # what the dead lab left: this is what the next run must clear
+        assert " serve " in (_cmdline(serve[0]) or ""), "the service died with the lab"
+        assert [n for n in L.list_namespaces() if n.startswith(f"{L.PREFIX}{p.pid}-")]
+        assert os.path.isdir(run_dir)
+        r, pid2 = run_lab(outdir + "-2", duration=2.0, rate=50.0)
+        assert r.returncode == 0, r.stderr
+        assert f"stopped the service (pid {serve[0]})" in r.stderr, r.stderr
+        assert lab_processes(run_dir) == [], lab_processes(run_dir)
+        assert [n for n in L.list_namespaces() if n.startswith(f"{L.PREFIX}{p.pid}-")] == []
+        assert not os.path.exists(run_dir)
+        assert_nothing_left(pid2, r.stderr)
+    finally:
+        if p.poll() is None:
+            p.kill()
+            p.wait()
+        # never leave the orphan behind, even when the lab did not remove it (checked by
+        # its command line, which names the dead lab's run directory)
+        for pid in serve:
+            if run_dir and run_dir in (_cmdline(pid) or ""):
+                os.kill(pid, signal.SIGKILL)
+        L.remove_leftovers(only_pid=p.pid)
+        if run_dir:
+            import shutil
+
+            shutil.rmtree(run_dir, ignore_errors=True)
+
+
 @pytest.mark.slow
 @needs_lab
 def test_scenario_link_failure_and_side_by_side_with_the_simulator(outdir: str) -> None:

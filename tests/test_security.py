@@ -7,6 +7,7 @@ import stat
 import subprocess
 import sys
 import textwrap
+import time
 from collections.abc import Iterator
 from typing import Any
 
@@ -153,8 +154,9 @@ def test_rights_follow_the_nodes() -> None:
     w1, w2, w3 = (t.index[x] for x in ("w1", "w2", "w3"))
     assert security.hop_rights(rep, np.array([w1, w2, w1, 99, -1])).tolist() == \
         [True, False, True, False, False]
+    # a link is w1's to report only when it leaves w1: w2 -> w1 is w2's (it moves w2's routes)
     assert security.link_rights(rep, [(w1, w2, True), (w2, w1, False), (w2, w3, True)]) == \
-        [True, True, False]
+        [True, False, False]
     assert security.may_control(rep, "health") and not security.may_control(rep, "link")
     assert not security.may_control(None, "health")
     ops = security.Reporter("ops", b"o" * 40, (), mask, control=True)
@@ -261,17 +263,76 @@ def test_curve_service_binds_reporters_to_their_nodes(curve: Curve) -> None:
     ack = curve.send("w1", _batch("w1", 1, [["w1", "w2", "e1", 0.01], ["w2", "w1", "e1", 0.01],
                                             ["w1", "w6", "e6", 0.01]],
                                   [["w1", "w2", "down"], ["w3", "e3", "down"], ["w2", "w1", "up"]]))
-    # rows 0-2 hops, 3-5 links: w2's hop and the w3-e3 link are not w1's to report
-    assert ack["accepted"] == 4, ack
-    assert ack["rejected"] == [[1, "not_authorised"], [4, "not_authorised"]]
+    # rows 0-2 hops, 3-5 links: w2's hop, the w3-e3 link and w2 -> w1 (it leaves w2, not w1)
+    # are not w1's to report
+    assert ack["accepted"] == 3, ack
+    assert ack["rejected"] == [[1, "not_authorised"], [4, "not_authorised"], [5, "not_authorised"]]
     # a batch that names another reporter is refused whole
     err = curve.send("w1", _batch("e3", 2, [["e3", "w3", "w1", 0.01]]))
     assert err["error"].startswith("not_authorised:") and "'w1'" in err["error"] and err["batch"] == 2
     h = curve.control("w1", {"op": "health"})
-    assert h["counts"]["observations_rejected"]["not_authorised"] == 2
+    assert h["counts"]["observations_rejected"]["not_authorised"] == 3
     assert h["counts"]["frames_refused"]["not_authorised"] == 1
     assert h["security"] == {"curve": True, "reporters": ["w1", "e3", "ops"]}
     assert 'reason="not_authorised"' in curve.sp.metrics_text()
+
+
+@pytest.mark.slow
+def test_a_reporter_cannot_mark_down_a_link_that_enters_its_node(curve: Curve) -> None:
+    """The key for e3 may cut e3 -> w3 (e3's own link) but not w3 -> e3: that link is w3's,
+    and marking it down would move w3's routes (all of the west hall's way east)."""
+    def tables() -> dict[str, Any]:
+        return curve.control("e3", {"op": "tables"})["tables"]
+
+    def neighbours(node: str) -> set[str]:
+        est = curve.control("e3", {"op": "estimates", "node": node})["estimates"]
+        return set().union(*(set(v) for v in est.values()))
+
+    before = tables()
+    assert before["w3"]["e3"] == [["e3", 1.0]] and before["e3"]["w3"] == [["w3", 1.0]], before
+    ack = curve.send("e3", _batch("e3", 1, [], [["w3", "e3", "down"]]))
+    assert ack["accepted"] == 0 and ack["rejected"] == [[0, "not_authorised"]], ack
+    assert "e3" in neighbours("w3")       # the engine still has w3 -> e3 up
+    ack = curve.send("e3", _batch("e3", 2, [], [["e3", "w3", "down"]]))
+    assert ack["accepted"] == 1 and ack["rejected"] == [], ack
+    assert "w3" not in neighbours("e3")
+    # the accepted cut reaches e3's table; by then any effect of the refused one would show
+    deadline = time.monotonic() + 10
+    while (after := tables())["e3"]["w3"] == before["e3"]["w3"] and time.monotonic() < deadline:
+        time.sleep(0.05)
+    assert after["e3"]["w3"] != before["e3"]["w3"], after["e3"]
+    assert after["w3"] == before["w3"]
+    h = curve.control("e3", {"op": "health"})
+    assert h["counts"]["observations_rejected"]["not_authorised"] == 1
+
+
+@pytest.mark.slow
+def test_a_server_key_others_can_read_is_warned_about_once(tmp_path: Any) -> None:
+    base = short_base(tmp_path)
+    try:
+        kd = os.path.join(base, "keys")
+        _, sec = security.create_keys(kd, "svc")
+        security.create_keys(kd, "w1")
+        allow = os.path.join(base, "allow.yaml")
+        with open(allow, "w") as fh:
+            fh.write("w1: {public_key: keys/w1.key, nodes: [w1]}\n")
+        assert stat.S_IMODE(os.stat(sec).st_mode) == 0o600
+        assert security.key_file_exposure(sec) is None
+        assert security.key_file_exposure(os.path.join(kd, "missing.key_secret")) is None
+        for mode, who in ((0o600, None), (0o640, "its group"), (0o604, "other users")):
+            os.chmod(sec, mode)
+            sp = ServiceProc(base, service_args(base, "--server-key", sec, "--allow", allow))
+            sp.kill()                         # joins the log readers: stderr is complete
+            warned = [ln for ln in sp.stderr_lines if "secret key file" in ln]
+            if who is None:
+                assert warned == [], warned
+                continue
+            assert len(warned) == 1, sp.log()
+            w = warned[0]
+            assert "WARN" in w and sec in w and f"mode {mode:04o}" in w and who in w, w
+            assert f"chmod 600 {sec}" in w, w
+    finally:
+        shutil.rmtree(base, ignore_errors=True)
 
 
 @pytest.mark.slow

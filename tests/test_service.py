@@ -417,7 +417,11 @@ def test_start_up_errors_are_clear(base: str) -> None:
         assert sp.wait(15) == 0
     finally:
         sp.kill()
-    r = serve(*service_args(base, "--state-dir", sd))
+    # (with no --topology it would start on the topology the state dir recorded)
+    other2 = write(os.path.join(base, "tiny2.yaml"), "topology:\n  name: tiny2\n  defaults: "
+                   "{capacity_bps: 1.0e6, buffer_pkts: 10}\n  nodes: [a, c]\n  links:\n"
+                   "    - {between: [a, c], delay_s: 0.001}\n")
+    r = serve(*service_args(base, "--state-dir", sd, "--topology", other2))
     assert r.returncode == 2 and "another topology" in r.stderr, r.stderr
 
 

@@ -5,6 +5,7 @@ independent replications for blocking), never a guessed percentage.
 """
 from __future__ import annotations
 
+import dataclasses
 import math
 
 import numpy as np
@@ -12,7 +13,7 @@ import pytest
 from sim_helpers import assert_little, assert_little_raw
 
 from routerd import config, topology
-from sim.core import LinkEvent, run_core
+from sim.core import CoreResult, CoreSeries, LinkEvent, run_core
 from sim.policies import Shortest
 from sim.policy import Policy
 from sim.run import run
@@ -116,11 +117,11 @@ def test_ttl_expiry_counts_a_loop() -> None:
     w[0, 2] = 1.0  # every packet a -> c: a and b bounce it until its TTL runs out
     tr = PoissonTraffic(3, 50.0, np.random.default_rng(1), pair_weights=w, duration_s=10.0)
     raw = run_core(topo, pol, tr.packets(), duration_s=10.0, ttl=16)
-    assert raw["offered"] > 300
-    assert raw["delivered"] == 0 and raw["dropped"] == 0
+    assert raw.offered > 300
+    assert raw.delivered == 0 and raw.dropped == 0
     # everything that left the network left by TTL expiry, after exactly 16 hops
-    assert raw["ttl_expired"] == raw["offered"] - raw["in_flight_end"]
-    assert raw["in_flight_end"] <= 3
+    assert raw.ttl_expired == raw.offered - raw.in_flight_end
+    assert raw.in_flight_end <= 3
     assert_little_raw(raw)
 
 
@@ -135,13 +136,26 @@ def test_link_down_drops_queued_packets_and_counts_them() -> None:
     k = topo.link("a", "b")
     ev = [LinkEvent(5.0, (k,), "down"), LinkEvent(7.0, (k,), "up")]
     raw = run_core(topo, pol, tr.packets(), duration_s=10.0, link_events=ev)
-    down = raw["dropped_link_down"]
+    assert isinstance(raw, CoreResult) and isinstance(raw.series, CoreSeries)
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        raw.offered = 0  # type: ignore[misc]
+    # the keys the loop's result has always had (what dataclasses.asdict gives)
+    d = dataclasses.asdict(raw)
+    assert set(d) == {
+        "offered", "delivered", "dropped", "dropped_buffer", "dropped_link_down",
+        "dropped_no_route", "ttl_expired", "in_flight_end", "offered_all", "delivered_all",
+        "dropped_all", "ttl_expired_all", "deliveries", "hops_sum", "events", "wall_s",
+        "window_s", "little_area", "left", "sys_sum", "busy_s", "carried", "series",
+        "series_interval_s", "end_s", "busy_window_s"}
+    assert set(d["series"]) == {"t_s", "delivered", "delivery_sum_s", "dropped", "ttl_expired",
+                                "in_network", "link_util"}
+    down = raw.dropped_link_down
     # at least a full queue was lost at the cut, and 2 s of arrivals after it (1500/s)
     assert down >= 100 + 2 * 1500 * 0.9
-    assert raw["dropped"] == raw["dropped_buffer"] + down + raw["dropped_no_route"]
-    assert raw["offered"] == raw["delivered"] + raw["dropped"] + raw["ttl_expired"] + raw["in_flight_end"]
+    assert raw.dropped == raw.dropped_buffer + down + raw.dropped_no_route
+    assert raw.offered == raw.delivered + raw.dropped + raw.ttl_expired + raw.in_flight_end
     # traffic flows again after the link comes back: the last series bins deliver
-    assert raw["series"]["delivered"][-1] > 1000
+    assert raw.series.delivered[-1] > 1000
     assert_little_raw(raw)
 
 

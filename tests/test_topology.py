@@ -332,3 +332,40 @@ def test_slots_and_shortest_path_tree(make_ring) -> None:  # type: ignore[no-unt
                                                T.LinkSpec("h1", "h0", 0, 1, 1, "l")] + [
         T.LinkSpec(f"h{i}", f"h{i + 1}", 0, 1, 1, "l") for i in range(1, 29)] + [
         T.LinkSpec(f"h{i + 1}", f"h{i}", 0, 1, 1, "l") for i in range(1, 29)]).digest
+
+
+# ---- single-source shortest paths (the agent's fallback) ------------------------------------
+@pytest.mark.parametrize("key", ["sndlib/abilene", "sndlib/geant"])
+def test_shortest_from_matches_networkx_single_source_dijkstra(key: str, topohub_raw) -> None:  # type: ignore[no-untyped-def]
+    """Reference: networkx.single_source_dijkstra on the same directed, weighted links,
+    with some links made unusable (weight inf) as the agent does for links it sees down."""
+    t = T.load(f"topohub:{key}", DEF)
+    rng = np.random.default_rng(7)
+    w = t.delay_s.astype(float).copy()
+    w[rng.choice(t.n_links, size=t.n_links // 8, replace=False)] = np.inf
+    G = nx.DiGraph()
+    G.add_nodes_from(range(t.n))
+    for k, (a, b) in enumerate(zip(t.src.tolist(), t.dst.tolist())):
+        if w[k] < math.inf:
+            G.add_edge(a, b, w=float(w[k]))
+    D_all, _ = t.shortest_paths(w)
+    for s in range(t.n):
+        dist, first = t.shortest_from(s, w)
+        ref = nx.single_source_dijkstra_path_length(G, s, weight="w")
+        for d in range(t.n):
+            if d not in ref:
+                assert dist[d] == math.inf and first[d] == -1
+                continue
+            assert dist[d] == pytest.approx(ref[d], rel=1e-12, abs=1e-15)
+            assert dist[d] == pytest.approx(D_all[s, d], rel=1e-12, abs=1e-15)
+            if d == s:
+                assert first[d] == -1
+                continue
+            # the first hop is a usable link out of s that starts a shortest path to d
+            y = int(first[d])
+            k = t.link_index[(s, y)]
+            assert w[k] < math.inf
+            tail = nx.single_source_dijkstra_path_length(G, y, weight="w").get(d, math.inf)
+            assert w[k] + tail == pytest.approx(ref[d], rel=1e-9, abs=1e-15)
+    dist0, _ = t.shortest_from(0)                 # default weights: the delays
+    assert np.allclose(dist0, t.shortest_delays()[0], rtol=1e-12, atol=0)
