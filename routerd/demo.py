@@ -191,7 +191,7 @@ class IntervalTail:
         self.p99: list[float] = []
 
     def __call__(self, view: Mapping[str, Any]) -> None:
-        from sim.core import percentile
+        from .stats import percentile
 
         dl = view["deliveries"]
         self.p99.append(percentile(sorted(dl[self.prev:]), 0.99))

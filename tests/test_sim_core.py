@@ -183,7 +183,7 @@ def slow_link() -> topology.Topology:
                    "buffer_pkts": 10}]}})
 
 
-def run_packets(packets: list, duration_s: float, warmup_s: float = 0.0) -> tuple[dict, int]:
+def run_packets(packets: list, duration_s: float, warmup_s: float = 0.0) -> tuple[CoreResult, int]:
     topo = slow_link()
     pol = Shortest()
     pol.attach(topo, np.random.default_rng(0), None)
@@ -196,9 +196,9 @@ def test_one_packet_spanning_an_interval_boundary_is_split_across_it() -> None:
     # worked by hand: injected at 0.7 s, sent over [0.7, 1.7]: 0.3 s of the first second,
     # 0.7 s of the second, nothing of the third
     raw, k = run_packets([(0.7, 0, 1, 1000.0, 0)], duration_s=3.0)
-    util = [row[k] for row in raw["series"]["link_util"]]
+    util = [row[k] for row in raw.series.link_util]
     assert util == pytest.approx([0.3, 0.7, 0.0], abs=1e-12)
-    assert raw["busy_s"][k] == pytest.approx(1.0, abs=1e-12)
+    assert raw.busy_s[k] == pytest.approx(1.0, abs=1e-12)
 
 
 def test_back_to_back_packets_fill_the_middle_second_and_no_more() -> None:
@@ -206,17 +206,17 @@ def test_back_to_back_packets_fill_the_middle_second_and_no_more() -> None:
     # Booked at enqueue (the old accounting) the first second read 2.0.
     raw, k = run_packets([(0.5, 0, 1, 1000.0, 0), (0.6, 0, 1, 1000.0, 0)], duration_s=3.0,
                          warmup_s=1.0)
-    util = [row[k] for row in raw["series"]["link_util"]]
+    util = [row[k] for row in raw.series.link_util]
     assert util == pytest.approx([0.5, 1.0, 0.5], abs=1e-12)
     # after the warm-up mark at 1 s: 0.5 s of the first transmission and all of the second
-    assert raw["busy_window_s"][k] == pytest.approx(1.5, abs=1e-12)
+    assert raw.busy_window_s[k] == pytest.approx(1.5, abs=1e-12)
 
 
 def test_transmission_cut_by_the_end_of_the_run_counts_up_to_the_end() -> None:
     raw, k = run_packets([(2.5, 0, 1, 1000.0, 0)], duration_s=3.0)
-    assert [row[k] for row in raw["series"]["link_util"]] == pytest.approx([0.0, 0.0, 0.5])
-    assert raw["busy_s"][k] == pytest.approx(0.5, abs=1e-12)
-    assert raw["busy_window_s"][k] == pytest.approx(0.5, abs=1e-12)
+    assert [row[k] for row in raw.series.link_util] == pytest.approx([0.0, 0.0, 0.5])
+    assert raw.busy_s[k] == pytest.approx(0.5, abs=1e-12)
+    assert raw.busy_window_s[k] == pytest.approx(0.5, abs=1e-12)
 
 
 def test_saturated_link_is_never_more_than_fully_busy() -> None:
