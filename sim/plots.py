@@ -133,8 +133,9 @@ def _bps(v: float) -> str:
     return f"{v:.3g} bit/s"
 
 
-def capacity_widths(cap: np.ndarray, thin: float = 1.2, wide: float = 5.0) -> np.ndarray:
-    """Line widths (points) growing with the log of the capacity; one width if all agree."""
+def capacity_widths(cap: np.ndarray, thin: float = 2.2, wide: float = 5.5) -> np.ndarray:
+    """Line widths (points) growing with the log of the capacity; one width if all agree.
+    The thinnest stays wide enough to show its colour: a thin link is often the bottleneck."""
     lo, hi = float(cap.min()), float(cap.max())
     if not hi > lo * 1.0001:
         return np.full(cap.shape, (thin + wide) / 2)
