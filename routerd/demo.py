@@ -16,6 +16,13 @@ stop it (it writes its final snapshot); (4) run ``shortest`` and ``qrouting`` in
 on the same scenario and seed; (5) write the table, the plots and a reading computed
 from the figures.  Ctrl-C (or SIGTERM) stops the run where it is: the service is stopped
 and the partial live results are written.
+
+Figures.  Delivery times count delivered packets only, so every table row and plot that
+gives one has the lost share beside it.  ``delivery.png``: mean and p99 delivery time per
+second (log axes in ms) and the share of packets lost per second, seconds that lost more
+than 1% circled on the mean; ``load.png``: offered and delivered packets/s and the
+trunk's utilisation over the same time axis (same limits, same place in the figure).
+Each policy keeps one colour, line style and marker in both.
 """
 from __future__ import annotations
 
@@ -46,7 +53,17 @@ DETOUR_ENTRIES = (("w6", "r1"), ("w5", "r3"), ("e6", "r2"), ("e5", "r4"))
 POLICIES = ("shortest", "qrouting", "service")
 LABELS = {"shortest": "shortest (static)", "qrouting": "qrouting (in process)",
           "service": "service (live, ZeroMQ)"}
-COLOURS = {"shortest": "tab:grey", "qrouting": "tab:blue", "service": "tab:orange"}
+#: how each policy is drawn in both figures: the live service's line lies close to the
+#: in-process learner's, so the two differ in colour, line style, width and marker (a
+#: hollow marker on a dashed line over a wide solid one: both stay visible)
+STYLES: dict[str, dict[str, Any]] = {
+    "shortest": {"color": "#5f5f5f", "ls": "-", "marker": "o", "ms": 3.5, "lw": 1.6},
+    "qrouting": {"color": "#1f5fa8", "ls": "-", "marker": "s", "ms": 4.0, "lw": 2.8,
+                 "alpha": 0.75},
+    "service": {"color": "#d9730d", "ls": (0, (4, 2)), "marker": "^", "ms": 5.5, "mfc": "none",
+                "mew": 1.2, "lw": 1.3},
+}
+COLOURS = {p: st["color"] for p, st in STYLES.items()}
 
 #: every file a completed demo writes (relative to --out); the tests hold it to this list
 FILES = (
@@ -164,6 +181,30 @@ def _ms(v: float) -> str:
     return "   n/a  " if not math.isfinite(v) else f"{v * 1e3:6.1f} ms"
 
 
+class IntervalTail:
+    """An observer of :func:`sim.core.run_core`: at every series sample, the p99 of the
+    delivery times of the packets delivered since the previous one (NaN if none), so the
+    plots can show the tail per second beside the mean."""
+
+    def __init__(self) -> None:
+        self.prev = 0
+        self.p99: list[float] = []
+
+    def __call__(self, view: Mapping[str, Any]) -> None:
+        from .stats import percentile
+
+        dl = view["deliveries"]
+        self.p99.append(percentile(sorted(dl[self.prev:]), 0.99))
+        self.prev = len(dl)
+
+    def attach(self, result: dict[str, Any]) -> dict[str, Any]:
+        """``result`` with ``series["p99_delivery_s"]`` (one value per series row)."""
+        se = result.get("series")
+        if se:
+            se["p99_delivery_s"] = self.p99[:len(se["t_s"])]
+        return result
+
+
 # ---- the demo -------------------------------------------------------------------------------
 class Demo:
     def __init__(self, out: str, duration_s: float, seed: int, speed: float):
@@ -180,6 +221,14 @@ class Demo:
         self.state_dir = os.path.join(out, "state")
         self.health: dict[str, Any] | None = None
         self.t0 = time.monotonic()
+        self.tails: dict[str, IntervalTail] = {}
+
+    def run_in_process(self, policy: str) -> dict[str, Any]:
+        """One in-process run of the demo's scenario, with its per-second p99."""
+        from sim.run import run as run_sim
+
+        tail = self.tails[policy] = IntervalTail()
+        return tail.attach(run_sim(self.spec(policy), observer=tail))
 
     def spec(self, policy: str) -> dict[str, Any]:
         return {"policy": policy, "rate_pps": BASE_RATE_PPS, "duration_s": self.duration,
@@ -221,10 +270,8 @@ class Demo:
             self._live()
             self._finish_service()
             print("in process, same scenario and seed: shortest, qrouting ...", flush=True)
-            from sim.run import run as run_sim
-
             for pol in ("shortest", "qrouting"):
-                self.results[pol] = run_sim(self.spec(pol))
+                self.results[pol] = self.run_in_process(pol)
         except (KeyboardInterrupt, _Stop):
             interrupted = True
             if self.progress_obj is not None:
@@ -281,8 +328,11 @@ class Demo:
         state: dict[str, int | None] = {"rc": None}
         self.policy = closedloop.ServicePolicy(process=self.proc)
 
+        tail = self.tails["service"] = IntervalTail()
+
         def observe(view: dict[str, Any]) -> None:
             self.view = view
+            tail(view)
             t = view["t_s"]
             try:
                 h = self.policy.health()
@@ -294,8 +344,8 @@ class Demo:
             prog.show(prog.line(view, state["rc"], self.policy.exploration_share(), tu,
                                 self._events_at(t)))
 
-        self.results["service"] = run_sim(self.spec("service"), policy=self.policy,
-                                          observer=observe)
+        self.results["service"] = tail.attach(run_sim(self.spec("service"), policy=self.policy,
+                                                      observer=observe))
         prog.done()
         s = self.results["service"]["summary"]
         print(f"live run done: {s['delivered']} of {s['offered']} packets delivered, mean "
@@ -454,6 +504,8 @@ class Demo:
                 "in_network": list(se["in_network"][:m]), "link_util": list(se["link_util"][:m]),
                 "interval_s": 1.0,
             }
+            if "service" in self.tails:
+                series["p99_delivery_s"] = self.tails["service"].p99[:m]
             self.results["service"] = {"summary": summary, "series": series}
             with open(self._path("runs/service/summary.json"), "w", encoding="utf-8") as fh:
                 json.dump(_clean(summary), fh, indent=2, sort_keys=True)
@@ -534,15 +586,20 @@ class Demo:
                 in_out |= (t > a) & (t <= b + 1.0)          # bins that saw the outage
             packets = [ln["packets"] for ln in links]
             cross = sum(packets[k] for k in trunk) + sum(packets[k] for k in detour) if packets else 0
+            lost_n = s["dropped"] + s["ttl_expired"]
+            # packets that left the network in the peak's bins, and the lost ones among them
+            peak_lost = float(lost[peak].sum()) if peak.any() else 0.0
+            peak_left = peak_lost + float(np.asarray(se["delivered"])[peak].sum()) if peak.any() else 0.0
             f = {
                 "mean_delivery_s": s["mean_delivery_s"],
                 "p99_delivery_s": s["p99_delivery_s"],
                 "delivered": s["delivered"], "offered": s["offered"],
-                "lost": s["dropped"] + s["ttl_expired"],
+                "lost": lost_n,
+                "lost_share": lost_n / s["offered"] if s["offered"] else math.nan,
                 "lost_during_failure": int(lost[in_out].sum()) if in_out.any() else 0,
                 "peak_mean_delivery_s": _nanmean_weighted(se, peak),
-                # transmissions are booked at enqueue: a saturated second can read above 1
-                "trunk_util_peak": (float(np.minimum(util[peak][:, trunk].max(axis=1), 1.0).mean())
+                "peak_lost_share": peak_lost / peak_left if peak_left else math.nan,
+                "trunk_util_peak": (float(util[peak][:, trunk].max(axis=1).mean())
                                     if peak.any() else math.nan),
                 "detour_share": (sum(packets[k] for k in detour) / cross) if cross else math.nan,
                 "route_changes": s.get("policy_engine_route_changes", 0.0),
@@ -562,10 +619,16 @@ class Demo:
         def pct(v: float) -> str:
             return "n/a" if not math.isfinite(v) else f"{v * 100:.1f}%"
 
+        def lost_pct(key: str) -> list[str]:
+            return [_pct_lost(figs[p].get(key, math.nan)) for p in POLICIES]
+
+        # delivery times cover delivered packets only: each one has its lost share beside it
         return [
             row("mean delivery (ms)", "mean_delivery_s", ms),
             row("p99 delivery (ms)", "p99_delivery_s", ms),
+            ("  lost (% of offered)", lost_pct("lost_share")),
             row("mean delivery at peak load (ms)", "peak_mean_delivery_s", ms),
+            ("  lost at peak load (% of packets leaving)", lost_pct("peak_lost_share")),
             ("delivered / offered", [f"{figs[p]['delivered']}/{figs[p]['offered']}" for p in POLICIES]),
             row("packets lost", "lost", str),
             row("  of them around the link failure", "lost_during_failure", str),
@@ -593,26 +656,29 @@ class Demo:
                             f"{sh['trunk_util_peak'] * 100:.0f}% busy") +
                          f": their mean delivery "
                          f"time was {_msv(sh['mean_delivery_s'])} (p99 {_msv(sh['p99_delivery_s'])})"
-                         f" and they lost {sh['lost']} packets")
+                         f" and they lost {sh['lost']} packets{_share(sh)}")
         else:
             parts.append(f"Static shortest paths kept the trunk {TRUNK[0]}-{TRUNK[1]} at "
                          f"{sh['trunk_util_peak'] * 100:.0f}% {peak}, a mean delivery time of "
-                         f"{_msv(sh['mean_delivery_s'])} and {sh['lost']} packets lost")
+                         f"{_msv(sh['mean_delivery_s'])} and {sh['lost']} packets lost{_share(sh)}")
         if fail is not None and sh["lost_during_failure"] > 0:
             parts[-1] += (f", {sh['lost_during_failure']} of them while {fail['link']} was down "
                           f"({fail['down_s']:g}-{fail['up_s']:g} s), since static routes do not move")
         parts[-1] += "."
+        if sh["lost"] > 0:
+            parts.append("Delivery times count only the packets that arrived, so losses make "
+                         "a mean look better, not worse.")
         if ratio > 1.05:
             parts.append(f"The learner, in process, sent {q['detour_share'] * 100:.0f}% of the "
                          f"packets leaving the halls over the detour instead of the trunk "
                          f"(static routes: {sh['detour_share'] * 100:.0f}%, the relays' own "
                          f"traffic) and delivered in "
                          f"{_msv(q['mean_delivery_s'])} on average (p99 {_msv(q['p99_delivery_s'])}), "
-                         f"{ratio:.1f} times faster, losing {q['lost']} packets.")
+                         f"{ratio:.1f} times faster, losing {_packets(q['lost'])}{_share(q)}.")
         else:
             parts.append(f"The learner, in process, did no better here: "
                          f"{_msv(q['mean_delivery_s'])} on average (p99 {_msv(q['p99_delivery_s'])}),"
-                         f" {q['lost']} packets lost.")
+                         f" {q['lost']} packets lost{_share(q)}.")
         rel = (sv["mean_delivery_s"] - q["mean_delivery_s"]) / q["mean_delivery_s"]
         close = abs(rel) <= 0.1
         parts.append(f"The live service, learning from the simulator's hop reports over ZeroMQ "
@@ -620,7 +686,8 @@ class Demo:
                      f"(p99 {_msv(sv['p99_delivery_s'])}), {abs(rel) * 100:.1f}% "
                      f"{'above' if rel > 0 else 'below'} the in-process learner"
                      + (" — the same behaviour" if close else " — a real difference") +
-                     f", with {int(sv['route_changes'])} route changes and "
+                     f", losing {_packets(sv['lost'])}{_share(sv)}, "
+                     f"with {int(sv['route_changes'])} route changes and "
                      f"{sv['exploration_share'] * 100:.1f}% of traffic exploring at the end.")
         if fail is not None:
             extra = sv["lost_during_failure"] - q["lost_during_failure"]
@@ -637,107 +704,129 @@ class Demo:
         return " ".join(parts)
 
     # -- plots ---------------------------------------------------------------------------------
-    def plot_delivery(self, path: str) -> str:
-        import matplotlib
+    # Both figures share one time axis: the same limits (0 to the run's duration), the same
+    # horizontal place in the figure (routerd.plotstyle) and bins drawn at their middles.
+    def _policy_line(self, ax: Any, pol: str, x: Any, y: Any, label: bool = True) -> None:
+        ax.plot(x, y, label=LABELS[pol] if label else None, **STYLES[pol])
 
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
+    def _time_axes(self, axes: Any) -> None:
+        from . import plotstyle as ps
+
+        spans = [(a, b, f"{e[0]}-{e[1]}") for a, b, e in self._downs()]
+        ps.mark_link_spans(axes, spans, label_ax=axes[0])
+        peak_from = max((c.end_s for c in self.scenario.load), default=0.0)
+        for ax in axes:
+            if peak_from > 0:
+                ax.axvline(peak_from, color="#777777", lw=1, ls=":")
+            ax.grid(alpha=0.3, which="major")
+        if peak_from > 0:   # a second row under the failure's labels
+            axes[0].text(peak_from, 0.90, " peak load from here", color="#555555", fontsize=8,
+                         va="top", transform=axes[0].get_xaxis_transform())
+        axes[-1].set_xlim(0, self.duration)
+        axes[-1].set_xlabel("time since the start of the run (s)")
+
+    def delivery_figure(self) -> Any:
+        """delivery.png: mean and p99 delivery time per second (log ms), lost share per second."""
         import numpy as np
 
-        fig, (ax, ax2) = plt.subplots(2, 1, figsize=(9, 6.5), dpi=100, sharex=True,
-                                      gridspec_kw={"height_ratios": [3, 1.3]})
-        top = 1e-3
+        from sim.plots import LOSS_MARK, lost_share
+
+        from . import plotstyle as ps
+
+        plt = ps.pyplot()
+        fig, (ax, axp, ax2) = ps.time_figure(plt, 3, 8.5, (2.4, 2.0, 1.3))
+        values: list[float] = []
         lost_top = 1.0
+        ringed = False
         for pol in POLICIES:
             if pol not in self.results:
                 continue
             se = self.results[pol]["series"]
-            t = np.asarray(se["t_s"], dtype=float)
-            md = np.asarray(se["mean_delivery_s"], dtype=float) * 1e3
-            lost = np.asarray(se["dropped"], dtype=float) + np.asarray(se["ttl_expired"], dtype=float)
             iv = float(se.get("interval_s", 1.0))
-            ls = "--" if pol == "service" else "-"      # it lies on top of qrouting's line
-            ax.plot(t - iv / 2, md, marker=".", ls=ls, color=COLOURS[pol], label=LABELS[pol])
-            ax2.step(t - iv / 2, lost, where="mid", ls=ls, color=COLOURS[pol], label=LABELS[pol])
-            if np.isfinite(md).any():
-                top = max(top, float(np.nanmax(md)))
-            if lost.size:
-                lost_top = max(lost_top, float(lost.max()))
-        ax.set_yscale("log")
-        ax.set_ylim(bottom=1.0, top=top * 2.0)
-        ax.set_ylabel("mean delivery time per second (ms, log)")
-        for a, b, ends in self._downs():
-            for axx in (ax, ax2):
-                axx.axvspan(a, b, color="tab:red", alpha=0.08)
-                axx.axvline(a, color="tab:red", lw=1, ls="--")
-                axx.axvline(b, color="tab:green", lw=1, ls="--")
-            ax.text(a, top * 1.6, f" {ends[0]}-{ends[1]} fails", color="tab:red", fontsize=8, va="top")
-            ax.text(b, top * 1.6, " recovers", color="tab:green", fontsize=8, va="top")
-        peak_from = max((c.end_s for c in self.scenario.load), default=0.0)
-        if peak_from > 0:
-            ax.axvline(peak_from, color="grey", lw=1, ls=":")
-            ax.text(peak_from, 1.1, " peak load", color="grey", fontsize=8)
-        ax.legend(loc="upper left", fontsize=8)
-        ax.grid(alpha=0.3, which="both")
-        ax2.set_ylabel("packets lost\nper second")
-        ax2.set_xlabel("time (s)")
-        ax2.set_ylim(0, lost_top * 1.1)
-        ax2.set_xlim(0, self.duration)
-        ax2.grid(alpha=0.3)
-        ax.set_title(f"routerd demo: delivery time on {self.topo.name}, scenario "
+            t = np.asarray(se["t_s"], dtype=float) - iv / 2
+            md = np.asarray(se["mean_delivery_s"], dtype=float) * 1e3
+            p99 = np.asarray(se.get("p99_delivery_s", [math.nan] * len(t)), dtype=float) * 1e3
+            share = lost_share(se) * 100
+            self._policy_line(ax, pol, t, md)
+            self._policy_line(axp, pol, t, p99, label=False)
+            self._policy_line(ax2, pol, t, share, label=False)
+            hit = np.isfinite(share) & (share > LOSS_MARK * 100) & np.isfinite(md)
+            if hit.any():
+                ringed = True
+                ax.plot(t[hit], md[hit], ls="none", marker="o", ms=9, mfc="none",
+                        mec=ps.DOWN_COLOUR, mew=1.2, zorder=1)
+            values += md.tolist() + p99.tolist()
+            if np.isfinite(share).any():
+                lost_top = max(lost_top, float(np.nanmax(share)))
+        lo, hi = ps.log_limits(values, floor=0.5)
+        ps.ms_log_axis(ax, lo, hi)
+        ps.ms_log_axis(axp, lo, hi)
+        ax.set_ylabel("mean delivery time\nper second (ms)")
+        axp.set_ylabel("p99 delivery time\nper second (ms)")
+        ax2.set_ylabel("lost (% of packets\nleaving per second)")
+        ps.zero_visible(ax2, lost_top * 1.15)
+        self._time_axes([ax, axp, ax2])
+        from matplotlib.lines import Line2D
+
+        handles, labels = ax.get_legend_handles_labels()
+        if ringed:
+            handles.append(Line2D([], [], ls="none", marker="o", ms=9, mfc="none",
+                                  mec=ps.DOWN_COLOUR))
+            labels.append(f"a second with > {LOSS_MARK:.0%} lost:\nits times cover the\n"
+                          "delivered packets only")
+        ps.legend_outside(ax, handles, labels)
+        interrupted = ("service" in self.results
+                       and self.results["service"]["summary"].get("interrupted"))
+        ax.set_title(f"routerd demo: delivery time and losses on {self.topo.name}, scenario "
                      f"{self.scenario.name}, seed {self.seed}"
-                     + (" (interrupted)" if "service" in self.results
-                        and self.results["service"]["summary"].get("interrupted") else ""),
-                     fontsize=10)
-        fig.tight_layout()
+                     + (" (interrupted)" if interrupted else ""), fontsize=10)
+        return fig
+
+    def plot_delivery(self, path: str) -> str:
+        from . import plotstyle as ps
+
+        fig = self.delivery_figure()
         fig.savefig(path)
-        plt.close(fig)
+        ps.pyplot().close(fig)
         return path
 
-    def plot_load(self, path: str) -> str:
-        import matplotlib
-
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
+    def load_figure(self) -> Any:
+        """load.png: offered and delivered packets/s over time, and the trunk's utilisation."""
         import numpy as np
 
+        from . import plotstyle as ps
+
+        plt = ps.pyplot()
         topo = self.topo
         trunk = [topo.link(*TRUNK), topo.link(TRUNK[1], TRUNK[0])]
-        fig, (ax, ax2) = plt.subplots(2, 1, figsize=(9, 6.5), dpi=100, sharex=True)
+        fig, (ax, ax2) = ps.time_figure(plt, 2, 6.5)
         tt = np.linspace(0.0, self.duration, 600)
-        ax.plot(tt, BASE_RATE_PPS * self.scenario.factor(tt), color="black", lw=2,
-                label="offered load (scenario)")
+        ax.plot(tt, BASE_RATE_PPS * self.scenario.factor(tt), color="black", lw=2.2,
+                label="offered (scenario)", zorder=1)
         for pol in POLICIES:
             se = self.results[pol]["series"]
-            t = np.asarray(se["t_s"], dtype=float)
             iv = float(se.get("interval_s", 1.0))
-            ls = "--" if pol == "service" else "-"      # it lies on top of qrouting's line
-            ax.plot(t - iv / 2, np.asarray(se["delivered"], dtype=float) / iv, color=COLOURS[pol],
-                    marker=".", lw=1, ls=ls, label=f"delivered: {LABELS[pol]}")
+            t = np.asarray(se["t_s"], dtype=float) - iv / 2
+            self._policy_line(ax, pol, t, np.asarray(se["delivered"], dtype=float) / iv)
             util = np.asarray(se["link_util"], dtype=float)
-            # the simulator books a packet's transmission when it enters the queue, so a
-            # saturated link's "busy" share of a second can exceed 1: shown as 100%
-            ax2.plot(t - iv / 2, np.minimum(util[:, trunk].max(axis=1), 1.0) * 100,
-                     color=COLOURS[pol], marker=".", ls=ls, label=LABELS[pol])
-        ax.set_ylabel("packets/s")
-        ax.set_ylim(bottom=0)
-        ax.legend(loc="lower right", fontsize=8)
-        ax.grid(alpha=0.3)
-        ax.set_title(f"load curve: offered and delivered packets/s; trunk {TRUNK[0]}-{TRUNK[1]} "
-                     f"utilisation", fontsize=10)
+            self._policy_line(ax2, pol, t, util[:, trunk].max(axis=1) * 100, label=False)
+        ax.set_ylabel("packets/s: offered, and\ndelivered per second")
+        ax.set_ylim(0, ax.get_ylim()[1] * 1.25)    # room for the event labels at the top
+        ps.legend_outside(ax)
+        ax.set_title(f"routerd demo: offered and delivered load over time, and the trunk "
+                     f"{TRUNK[0]}-{TRUNK[1]}'s utilisation, on {topo.name}", fontsize=10)
         ax2.axhline(100, color="black", lw=0.8, ls=":")
-        ax2.set_ylabel(f"trunk {TRUNK[0]}-{TRUNK[1]} utilisation\n(busier direction, %; 100 = saturated)")
-        ax2.set_ylim(0, 110)
-        ax2.set_xlabel("time (s)")
-        for a, b, ends in self._downs():
-            for axx in (ax, ax2):
-                axx.axvspan(a, b, color="tab:red", alpha=0.08)
-            ax.text((a + b) / 2, 60, f"{ends[0]}-{ends[1]} down", color="tab:red", fontsize=8,
-                    ha="center")
-        ax2.grid(alpha=0.3)
-        fig.tight_layout()
+        ax2.set_ylabel(f"trunk {TRUNK[0]}-{TRUNK[1]} utilisation\n(busier direction, %)")
+        ax2.set_ylim(0, 105)
+        self._time_axes([ax, ax2])
+        return fig
+
+    def plot_load(self, path: str) -> str:
+        from . import plotstyle as ps
+
+        fig = self.load_figure()
         fig.savefig(path)
-        plt.close(fig)
+        ps.pyplot().close(fig)
         return path
 
 
@@ -753,6 +842,27 @@ def _nanmean_weighted(se: Mapping[str, Any], mask: Any) -> float:
     md = np.asarray(se["mean_delivery_s"], dtype=float)
     ok = mask & (c > 0) & np.isfinite(md)
     return float((md[ok] * c[ok]).sum() / c[ok].sum()) if ok.any() else math.nan
+
+
+def _pct_lost(v: float) -> str:
+    """A lost share in percent that never rounds a loss to zero: 0%, 0.003%, 5.6%."""
+    if not (isinstance(v, (int, float)) and math.isfinite(v)):
+        return "n/a"
+    if v == 0:
+        return "0%"
+    return f"{v * 100:.2g}%" if v < 0.001 else f"{v * 100:.1f}%"
+
+
+def _share(f: Mapping[str, Any]) -> str:
+    """" (2.5% of those offered)" beside a count of lost packets; nothing when none."""
+    v = f.get("lost_share", math.nan)
+    if f.get("lost", 0) == 0 or not (isinstance(v, float) and math.isfinite(v)):
+        return ""
+    return f" ({_pct_lost(v)} of those offered)"
+
+
+def _packets(n: int) -> str:
+    return "1 packet" if n == 1 else f"{n} packets"
 
 
 def _msv(v: float) -> str:

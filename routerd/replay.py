@@ -379,6 +379,7 @@ def replay(src: Source, topo: _topology.Topology, variants: Sequence[Variant], *
     t_first: list[float] = []
     t_last = [math.nan]
     read = J.ReadReport()
+    marks = LinkMarks()
     counts = {"batches": 0, "hops": 0, "links": 0, "ticks": 0, "configs": 0, "starts": 0}
 
     def on_record(rec: J.Record) -> None:
@@ -390,6 +391,7 @@ def replay(src: Source, topo: _topology.Topology, variants: Sequence[Variant], *
             t_last[0] = t
         for o in others:
             J.replay_into(o.engine, [o.variant.record(rec)], on_tick=o.on_tick)
+        marks.add(rec)
         if rec.kind == "batch" and link_trace is not None and raw_t is not None:
             h = J.batch_hops(rec.body)
             link_trace.add(t - t_first[0], h.src, h.via, h.latency)
@@ -430,7 +432,8 @@ def replay(src: Source, topo: _topology.Topology, variants: Sequence[Variant], *
     refused = sum(base.engine.statistics().rejected.values()) - rejected0
     return {"start": start, "base": base, "others": others, "report": rep, "read": read,
             "counts": counts, "wall_s": wall, "tick_t": tick_t,
-            "t0": t_first[0] if t_first else math.nan, "t_end": end_t, "refused": refused}
+            "t0": t_first[0] if t_first else math.nan, "t_end": end_t, "refused": refused,
+            "link_events": marks.events}
 
 
 # ---- the command ---------------------------------------------------------------------------
@@ -631,7 +634,8 @@ def write_outputs(args: argparse.Namespace, topo: _topology.Topology, res: dict[
     notes: list[str] = []
     if not args.no_plot and tick_t:
         try:
-            written.append(plot(runs, tick_t, t0, os.path.join(out, "replay.png"), topo))
+            written.append(plot(runs, tick_t, t0, os.path.join(out, "replay.png"), topo,
+                                res.get("link_events", ()), res["t_end"]))
         except ImportError as e:
             notes.append(f"no PNG: matplotlib is not installed ({e}); pip install 'routerd[plot]'")
     printed = _printed(info, summaries, bool(others), args.quiet, written, notes, read)
@@ -678,41 +682,107 @@ def _printed(info: Mapping[str, Any], summaries: Sequence[Mapping[str, Any]], co
     return out
 
 
+class LinkMarks:
+    """The link changes a journal records (control overrides and the link rows of
+    batches), for the plot: ``events`` holds ``(t, a, b, up)`` whenever a directed link's
+    state differs from the last one recorded for it (every link starts up)."""
+
+    def __init__(self) -> None:
+        self.state: dict[tuple[int, int], bool] = {}
+        self.events: list[tuple[float, int, int, bool]] = []
+
+    def _one(self, t: float, a: int, b: int, up: bool) -> None:
+        if self.state.get((a, b), True) != up:
+            self.events.append((t, a, b, up))
+        self.state[(a, b)] = up
+
+    def add(self, rec: J.Record) -> None:
+        b = rec.body
+        if rec.kind == "link":
+            self._one(float(b["t"]), int(b["from"]), int(b["to"]), bool(b["up"]))
+        elif rec.kind == "batch":
+            for a, z, up in b.get("links", ()):
+                self._one(float(b["t"]), int(a), int(z), bool(up))
+
+
+#: the variants' line styles in replay.png (the recorded run: wide, grey, underneath)
+VARIANT_STYLES = (("#1f5fa8", "-"), ("#d9730d", (0, (5, 2))), ("#2f8f4e", (0, (3, 1, 1, 1))),
+                  ("#8a3fa0", (0, (1, 1))))
+
+
 def plot(runs: Sequence[Run], tick_t: Sequence[float], t0: float, path: str,
-         topo: _topology.Topology) -> str:
-    import matplotlib
+         topo: _topology.Topology, link_events: Sequence[tuple[float, int, int, bool]] = (),
+         t_end: float = math.nan) -> str:
+    """Draw ``replay.png`` (see :func:`figure`)."""
+    from . import plotstyle as ps
 
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    fig = figure(runs, tick_t, t0, topo, link_events, t_end)
+    fig.savefig(path)
+    ps.pyplot().close(fig)
+    return path
 
+
+def figure(runs: Sequence[Run], tick_t: Sequence[float], t0: float,
+           topo: _topology.Topology, link_events: Sequence[tuple[float, int, int, bool]] = (),
+           t_end: float = math.nan) -> Any:
+    """Route changes, exploration share (%) and pairs routed differently over service
+    time, link failures shaded, the legend beside the axes (routerd.plotstyle's look)."""
+    from . import plotstyle as ps
+
+    plt = ps.pyplot()
     t = np.asarray(tick_t) - t0
-    fig, axes = plt.subplots(3, 1, figsize=(9, 8), dpi=100, sharex=True)
+    end = (t_end - t0) if math.isfinite(t_end) else (float(t[-1]) if t.size else 1.0)
+    fig, axes = ps.time_figure(plt, 3, 8.0)
+    tops = [1.0, 0.1, 1.0]
     for i, r in enumerate(runs):
         rec = r.variant.label == RECORDED
-        # the recorded run: thick, black, underneath, so a variant that matches it shows
-        st = {"lw": 3.0, "color": "black", "alpha": 0.45, "zorder": 1} if rec else \
-            {"lw": 1.4, "color": f"C{i - 1}", "zorder": 2}
-        axes[0].step(t, np.cumsum(r.route_changes), where="post", label=r.variant.label, **st)
-        axes[1].plot(t, r.exploration, label=r.variant.label, **st)
+        # the recorded run: wide, grey, underneath, so a variant that matches it shows
+        if rec:
+            st: dict[str, Any] = {"lw": 4.0, "color": "#9a9a9a", "zorder": 1}
+        else:
+            colour, ls = VARIANT_STYLES[(i - 1) % len(VARIANT_STYLES)]
+            st = {"lw": 1.5, "color": colour, "ls": ls, "zorder": 2}
+        rc = np.cumsum(r.route_changes)
+        ex = np.asarray(r.exploration, dtype=float) * 100
+        axes[0].step(t, rc, where="post", label=r.variant.label, **st)
+        axes[1].plot(t, ex, **st)
+        tops[0] = max(tops[0], float(rc[-1]) if rc.size else 0.0)
+        tops[1] = max(tops[1], float(ex.max()) if ex.size else 0.0)
         if not rec:
-            axes[2].step(t, r.differing, where="post", label=r.variant.label, **st)
+            axes[2].step(t, r.differing, where="post", **st)
+            tops[2] = max(tops[2], float(max(r.differing, default=0)))
+    for ax, top in zip(axes, tops):
+        ps.zero_visible(ax, top * 1.15)
+        ax.grid(alpha=0.3)
     axes[0].set_ylabel("route changes\n(cumulative)")
-    axes[1].set_ylabel("exploration share\n(mean over pairs)")
-    axes[2].set_ylabel("pairs routed\ndifferently")
+    axes[1].set_ylabel("exploration share\n(%, mean over pairs)")
+    axes[2].set_ylabel("pairs routed differently\nfrom the recorded run")
     axes[2].set_xlabel("service time since the first replayed record (s)")
+    axes[2].set_xlim(0, max(end, 1e-9))
     if len(runs) == 1:
         axes[2].text(0.5, 0.5, "no variant: pass --set or --compare", ha="center", va="center",
                      transform=axes[2].transAxes, color="grey")
-    for ax in axes:
-        ax.grid(alpha=0.3)
-        ax.set_ylim(bottom=0)
-    axes[0].legend(fontsize=8, loc="upper left")
+    # link changes per undirected link: down while either direction is down
+    named: list[tuple[float, str, str]] = []
+    down: dict[str, set[tuple[int, int]]] = {}
+    for te, a, b, up in link_events:
+        x, y = sorted((topo.nodes[a], topo.nodes[b]))
+        name = f"{x}-{y}"
+        d = down.setdefault(name, set())
+        was = bool(d)
+        if up:
+            d.discard((a, b))
+        else:
+            d.add((a, b))
+        if bool(d) != was:
+            named.append((te - t0, "down" if d else "up", name))
+    spans, other = ps.link_spans(named, end)
+    ps.mark_link_spans(axes, spans, label_ax=axes[0])
+    ps.mark_other_events(axes, other, label_ax=axes[0])
+    ps.legend_outside(axes[0])
     axes[0].set_title(f"replay on {topo.name}: {len(tick_t)} decisions, "
-                      f"{topo.n * (topo.n - 1)} (node, destination) pairs")
-    fig.tight_layout()
-    fig.savefig(path)
-    plt.close(fig)
-    return path
+                      f"{topo.n * (topo.n - 1)} (node, destination) pairs", fontsize=10)
+    return fig
 
 
 def iter_journal(path: str) -> Iterator[J.Record]:

@@ -189,13 +189,30 @@ def run(args: argparse.Namespace) -> int:
     s = result["summary"]
     print(f"{s['policy']} on {s['topology']}: offered {s['offered']}, delivered {s['delivered']}, "
           f"dropped {s['dropped']}, ttl expired {s['ttl_expired']}; mean delivery "
-          f"{_ms(s['mean_delivery_s'])} (p99 {_ms(s['p99_delivery_s'])}), {s['events']} events "
-          f"in {s['wall_s']:.2f} s")
+          f"{_ms(s['mean_delivery_s'])} (p99 {_ms(s['p99_delivery_s'])}), "
+          f"{lost_text(s)}; {s['events']} events in {s['wall_s']:.2f} s")
     for line in result.get("trace_lines", ()):   # sim.trace: what the trace could not inject
         print(line)
     for p in written:
         print(f"wrote {p}")
     return 0
+
+
+def lost_share(summary: dict[str, Any]) -> float:
+    """Dropped and TTL-expired packets over offered ones (after the warm-up; NaN when
+    nothing was offered)."""
+    off = summary.get("offered") or 0
+    return (summary["dropped"] + summary["ttl_expired"]) / off if off else math.nan
+
+
+def lost_text(summary: dict[str, Any]) -> str:
+    """"lost 2.5%", and when packets were lost, that delivery times leave them out."""
+    ls = lost_share(summary)
+    if not math.isfinite(ls):
+        return "lost n/a"
+    if ls == 0:
+        return "lost 0%"
+    return f"lost {ls * 100:.{1 if ls >= 0.001 else 3}f}% (delivery times cover delivered packets only)"
 
 
 def _ms(v: float) -> str:

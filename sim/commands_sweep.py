@@ -7,7 +7,10 @@ aggregation over seeds, its outputs and the progress bar:
 * ``DIR/sweep.json`` — the same rows under ``runs``, the per-(policy, rate) points under
   ``points`` and the sweep's inputs under ``sweep``;
 * ``DIR/sweep.png`` — mean delivery time against offered load, one line per policy with
-  its 95% confidence band, and the share of packets lost (dropped or TTL expired).
+  its 95% confidence band (cut at zero, with a note, where it would reach below), points
+  that lost packets ringed, and below it the share of packets lost (dropped or TTL
+  expired): a mean over delivered packets falls as losses rise, so the two go together,
+  as in the printed table (mean ± half-width, then the lost share, per policy).
 
 Each run is :func:`sim.run.run` on a plain dict spec, a pure function of its spec, so
 the grid maps onto worker processes as it is and the table does not depend on
@@ -46,7 +49,8 @@ T975 = (12.706, 4.303, 3.182, 2.776, 2.571, 2.447, 2.365, 2.306, 2.262, 2.228,
 
 #: the table's leading columns; every other summary key follows in sorted order
 LEAD = ("policy", "rate_pps", "seed", "offered", "delivered", "dropped", "ttl_expired",
-        "delivery_ratio", "mean_delivery_s", "mean_delivery_ci95_s", "p50_delivery_s",
+        "delivery_ratio", "mean_delivery_s", "mean_delivery_ci95_s", "lost_fraction",
+        "p50_delivery_s",
         "p95_delivery_s", "p99_delivery_s", "mean_hops", "throughput_pps", "link_util_max",
         "events", "wall_s")
 
@@ -190,7 +194,11 @@ def _cost(spec: Mapping[str, Any]) -> float:
 def run_one(spec: Mapping[str, Any]) -> dict[str, Any]:
     """One run's summary, or ``{"error": ...}`` with the spec's keys if it failed."""
     try:
-        return dict(run_sim(dict(spec))["summary"])
+        row = dict(run_sim(dict(spec))["summary"])
+        # beside the mean: it covers delivered packets only
+        row["lost_fraction"] = ((row["dropped"] + row["ttl_expired"]) / row["offered"]
+                                if row["offered"] else math.nan)
+        return row
     except Exception as e:  # noqa: BLE001 -- one failed run must not lose the others
         return {"policy": spec["policy"], "rate_pps": float(spec["rate_pps"]),
                 "seed": int(spec["seed"]), "error": f"{type(e).__name__}: {e}"}
@@ -388,17 +396,36 @@ def _fmt(v: Any) -> str:
 COLOURS = {"shortest": "#d62728", "ecmp": "#ff7f0e", "qrouting": "#1f77b4", "mindelay": "#2ca02c"}
 
 
-def plot(points: Sequence[Mapping[str, Any]], meta: Mapping[str, Any], out: str,
-         log_y: bool = False) -> str:
-    """Draw ``DIR/sweep.png``: delivery time against load with bands, and the lost share."""
-    import matplotlib
+#: a point losing at least this share of its packets is ringed on the delivery-time line
+LOSS_MARK = 0.001
 
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
 
-    fig, (ax, ax2) = plt.subplots(2, 1, figsize=(7.5, 7.0), sharex=True,
+def _band_text(points: Sequence[Mapping[str, Any]], meta: Mapping[str, Any]) -> str:
+    """What the band and "±" are, from how the points' intervals were made."""
+    bases = {p.get("ci_basis") for p in points}
+    if bases <= {"seeds", "none"}:
+        return (f"95% confidence interval of the mean over {meta.get('seeds')} seeds "
+                f"(Student's t)")
+    if bases <= {"batch_means", "none"}:
+        return "95% confidence interval of the run's mean (20 batch means)"
+    return "95% confidence interval of the mean (over seeds, or batch means for one seed)"
+
+
+def figure(points: Sequence[Mapping[str, Any]], meta: Mapping[str, Any],
+           log_y: bool = False) -> Any:
+    """The figure ``sweep.png`` shows: delivery time against load with bands, the lost share."""
+    from matplotlib.lines import Line2D
+
+    from routerd import plotstyle as ps
+
+    plt = ps.pyplot()
+    fig, (ax, ax2) = plt.subplots(2, 1, figsize=(9.5, 7.0), dpi=110, sharex=True,
                                   gridspec_kw={"height_ratios": [3, 1.2]})
+    fig.subplots_adjust(left=0.10, right=0.72, top=0.90, bottom=0.09, hspace=0.10)
     pols = list(dict.fromkeys(p["policy"] for p in points))
+    cut = ringed = False
+    ys: list[float] = []
+    lost_top = 1.0
     for i, pol in enumerate(pols):
         pts = [p for p in points if p["policy"] == pol and _finite(p["mean_delivery_s"])]
         colour = COLOURS.get(pol, f"C{4 + i}")
@@ -408,51 +435,98 @@ def plot(points: Sequence[Mapping[str, Any]], meta: Mapping[str, Any], out: str,
             y = [p["mean_delivery_s"] * 1e3 for p in pts]
             h = [p["ci95_s"] * 1e3 if _finite(p["ci95_s"]) else 0.0 for p in pts]
             ax.plot(x, y, "-o", color=colour, label=pol, markersize=4)
-            lo = [max(a - b, 1e-9) if log_y else a - b for a, b in zip(y, h)]
+            # a delivery time is never negative: the band stops at zero (log: at a tenth of
+            # the mean), and the figure says so
+            floor = [a / 10 if log_y else 0.0 for a in y]
+            lo = [max(a - b, f) for a, b, f in zip(y, h, floor)]
+            cut = cut or any(a - b < f for a, b, f in zip(y, h, floor))
             ax.fill_between(x, lo, [a + b for a, b in zip(y, h)], color=colour, alpha=0.2, linewidth=0)
+            ys += lo + [a + b for a, b in zip(y, h)]
+            lossy = [(p["rate_pps"], p["mean_delivery_s"] * 1e3) for p in pts
+                     if _finite(p.get("lost_fraction")) and p["lost_fraction"] >= LOSS_MARK]
+            if lossy:
+                ringed = True
+                ax.plot(*zip(*lossy), ls="none", marker="o", ms=10, mfc="none",
+                        mec=ps.DOWN_COLOUR, mew=1.3, zorder=1)
         mod = [p for p in allp if _finite(p.get("model_delay_s"))]
         if mod:
             ax.plot([p["rate_pps"] for p in mod], [p["model_delay_s"] * 1e3 for p in mod], "--",
                     color=colour, linewidth=1, label=f"{pol} (M/M/1 model)")
-        ax2.plot([p["rate_pps"] for p in allp], [100 * p["lost_fraction"] for p in allp], "-o",
-                 color=colour, markersize=3)
+            ys += [p["model_delay_s"] * 1e3 for p in mod]
+        share = [100 * p["lost_fraction"] for p in allp]
+        ax2.plot([p["rate_pps"] for p in allp], share, "-o", color=colour, markersize=3)
+        if any(_finite(v) for v in share):
+            lost_top = max(lost_top, max(v for v in share if _finite(v)))
     if log_y:
-        ax.set_yscale("log")
-    ax.set_ylabel("mean delivery time (ms)")
-    band = "95% CI over seeds" if meta.get("seeds", 1) > 1 else "95% CI (batch means)"
+        ps.ms_log_axis(ax, *ps.log_limits(ys, floor=0.01))
+    else:
+        ax.set_ylim(bottom=0)
+    ax.set_ylabel("mean delivery time (ms)\n(delivered packets only)")
+    band = _band_text(points, meta)
     ax.set_title(f"{meta.get('topology_name', 'topology')}: {meta.get('seeds')} seed(s) × "
-                 f"{meta.get('duration_s'):g} s per point, band: {band}", fontsize=10)
+                 f"{meta.get('duration_s'):g} s per point\nband: {band}", fontsize=9)
     ax.grid(True, alpha=0.3)
-    ax.legend(fontsize=8)
+    handles, labels = ax.get_legend_handles_labels()
+    if ringed:
+        handles.append(Line2D([], [], ls="none", marker="o", ms=10, mfc="none",
+                              mec=ps.DOWN_COLOUR))
+        labels.append(f"point losing ≥ {LOSS_MARK:.1%}\nof its packets: its mean\n"
+                      "covers delivered ones only")
+    ps.legend_outside(ax, handles, labels)
+    if cut:
+        ax.text(0.01, 0.98, "band cut at " + ("a tenth of the mean" if log_y else "0") +
+                ": the interval reaches below it\n(few seeds, widely spread)",
+                transform=ax.transAxes, fontsize=7, va="top", color="#444444")
     ax2.set_xlabel("offered load (packets/s)")
-    ax2.set_ylabel("lost (%)")
-    ax2.set_ylim(bottom=0)   # a loss share is never negative (matplotlib centres an all-zero line on 0)
+    ax2.set_ylabel("lost (% of offered)")
+    ps.zero_visible(ax2, lost_top * 1.15)
     ax2.grid(True, alpha=0.3)
-    fig.tight_layout()
+    return fig
+
+
+def plot(points: Sequence[Mapping[str, Any]], meta: Mapping[str, Any], out: str,
+         log_y: bool = False) -> str:
+    """Draw ``DIR/sweep.png`` (see :func:`figure`)."""
+    from routerd import plotstyle as ps
+
+    fig = figure(points, meta, log_y)
     path = os.path.join(out, "sweep.png")
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    fig.savefig(path)
+    ps.pyplot().close(fig)
     return path
 
 
 def text_table(points: Sequence[Mapping[str, Any]]) -> str:
-    """Mean delivery time (ms) ± half-width per rate and policy, and the share lost."""
+    """Per rate and policy: mean delivery time (ms) ± the 95% half-width, then the share
+    of offered packets lost, and a footnote saying what ± is."""
     pols = list(dict.fromkeys(p["policy"] for p in points))
     rates = sorted({p["rate_pps"] for p in points})
     by = {(p["policy"], p["rate_pps"]): p for p in points}
-    cells: dict[tuple[str, float], str] = {}
+    means: dict[tuple[str, float], str] = {}
+    losts: dict[tuple[str, float], str] = {}
     for (pol, r), p in by.items():
+        lost = p.get("lost_fraction", math.nan)
+        losts[(pol, r)] = "n/a" if not _finite(lost) else (
+            "0%" if lost == 0 else f"{lost * 100:.2g}%" if lost < 0.001 else f"{lost * 100:.1f}%")
         if not _finite(p["mean_delivery_s"]):
-            cells[(pol, r)] = "n/a"
+            means[(pol, r)] = "n/a"
             continue
         ci = f"±{p['ci95_s'] * 1e3:.2f}" if _finite(p["ci95_s"]) else ""
-        lost = p["lost_fraction"]
-        tail = f" ({lost * 100:.1f}% lost)" if _finite(lost) and lost >= 0.0005 else ""
-        cells[(pol, r)] = f"{p['mean_delivery_s'] * 1e3:.2f}{ci} ms{tail}"
-    w = max([len(c) for c in cells.values()] + [len(p) for p in pols] + [8]) + 3
-    lines = ["rate pkt/s".ljust(12) + "".join(p.rjust(w) for p in pols)]
+        means[(pol, r)] = f"{p['mean_delivery_s'] * 1e3:.2f}{ci} ms"
+    wm = max([len(c) for c in means.values()] + [len("mean ± 95%")]) + 3
+    wl = max([len(c) for c in losts.values()] + [len("lost")]) + 2
+    lines = ["".ljust(12) + "".join(p.rjust(wm + wl) for p in pols),
+             "rate pkt/s".ljust(12) + ("mean ± 95%".rjust(wm) + "lost".rjust(wl)) * len(pols)]
     for r in rates:
-        lines.append(f"{r:<12g}" + "".join(cells.get((pol, r), "n/a").rjust(w) for pol in pols))
+        lines.append(f"{r:<12g}" + "".join(means.get((pol, r), "n/a").rjust(wm)
+                                           + losts.get((pol, r), "n/a").rjust(wl) for pol in pols))
+    bases = {p.get("ci_basis") for p in points}
+    how = ("over seeds (Student's t)" if bases <= {"seeds", "none"} else
+           "from the run's batch means" if bases <= {"batch_means", "none"} else
+           "over seeds, or from batch means for one seed")
+    lines.append(f"± = half-width of the mean's 95% confidence interval, {how};")
+    lines.append("mean delivery time counts delivered packets only; lost = dropped or TTL "
+                 "expired, % of offered")
     return "\n".join(lines)
 
 

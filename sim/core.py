@@ -35,6 +35,16 @@ unique in the heap and ties break deterministically.
 TTL.  A packet starts with ``ttl`` hops; each forwarding uses one; a packet at a node
 other than its destination with none left is counted in ``ttl_expired`` (a loop).
 
+Busy time.  A transmission is booked when its packet enters the queue, but it happens
+over ``[start, dep]``, and a link's utilisation in a series interval is the part of its
+transmissions that falls inside the interval (a transmission spanning a boundary is split
+across it), so it never exceeds 1.  ``busy[k]`` sums every transmission booked so far;
+the part still ahead of time t is exactly ``free_at[k] - t`` when positive, because a
+transmission starts later than ``now`` only when it queues behind the previous one:
+what is booked beyond t is one unbroken stretch ending at ``free_at[k]``.  So busy time
+up to t is ``busy[k] - max(free_at[k] - t, 0)``, read at every sample, at the warm-up
+mark and at the end.
+
 Accounting.  ``offered``, ``delivered``, ``dropped`` and ``ttl_expired`` and every delivery
 statistic count packets *injected* at or after the warm-up; the time series counts every
 packet, by the interval it left the network in.  The number of packets in the
@@ -307,8 +317,11 @@ def run_core(
         elif c == _SAMPLE:
             s_t.append(t); s_deliv.append(b_deliv); s_dsum.append(b_dsum)
             s_drop.append(b_drop); s_ttl.append(b_ttl); s_in_net.append(in_net)
-            s_busy.append([(busy[k] - last_busy[k]) / ivl for k in range(nl)])
-            last_busy = busy[:]
+            # busy time counts where the transmission happens: what is booked beyond t
+            # (one contiguous stretch up to free_at, see "Busy time") belongs to later bins
+            done = [busy[k] - (free_at[k] - t if free_at[k] > t else 0.0) for k in range(nl)]
+            s_busy.append([(done[k] - last_busy[k]) / ivl for k in range(nl)])
+            last_busy = done
             b_deliv = 0; b_dsum = 0.0; b_drop = 0; b_ttl = 0
             heappush(heap, (t + ivl, _SAMPLE))
             ctrl_pushed += 1
@@ -326,7 +339,7 @@ def run_core(
             measuring = True
             last_t = t
             area = 0.0
-            busy_warm = busy[:]
+            busy_warm = [busy[k] - (free_at[k] - t if free_at[k] > t else 0.0) for k in range(nl)]
             continue
         elif c == end_code:
             t = end
@@ -438,6 +451,10 @@ def run_core(
         free_ids.append(c)
 
     t_end = end
+    # transmissions booked beyond the end happen after it: not part of the run's busy time
+    for k in range(nl):
+        if free_at[k] > end:
+            busy[k] -= free_at[k] - end
     # every pop was an event; the end marker and what is still queued were not
     events = sum(carried) + inj_pushed + ctrl_pushed - len(heap) - 1
     if measuring:

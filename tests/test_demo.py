@@ -85,13 +85,13 @@ def test_bad_options_are_refused(capsys: Any) -> None:
 
 
 def _figures(sh_mean: float, q_mean: float, sv_mean: float, sv_lost_fail: int) -> dict[str, Any]:
-    base = {"p99_delivery_s": 0.02, "delivered": 100, "offered": 100, "lost": 0,
+    base = {"p99_delivery_s": 0.02, "delivered": 100, "offered": 100, "lost": 0, "lost_share": 0.0,
             "lost_during_failure": 0, "peak_mean_delivery_s": 0.01, "trunk_util_peak": 0.5,
             "detour_share": 0.6, "route_changes": 10.0, "exploration_share": 0.01}
     return {"peak_from_s": 10.0, "peak_rate_pps": 1300.0, "hall_pairs_static_on_trunk": 1.0,
             "failures": [{"link": "w3-w4", "down_s": 15.0, "up_s": 21.0}],
             "shortest": {**base, "mean_delivery_s": sh_mean, "trunk_util_peak": 1.0, "lost": 50,
-                         "lost_during_failure": 40},
+                         "lost_share": 0.5, "lost_during_failure": 40},
             "qrouting": {**base, "mean_delivery_s": q_mean},
             "service": {**base, "mean_delivery_s": sv_mean, "lost_during_failure": sv_lost_fail}}
 
@@ -103,6 +103,7 @@ def test_reading_follows_the_figures() -> None:
     assert "every hall-to-hall packet over the trunk" in good
     assert "1.6% above the in-process learner — the same behaviour" in good
     assert "40 of them while w3-w4 was down" in good
+    assert "lost 50 packets (50.0% of those offered)" in good
     bad = d.reading(_figures(0.0060, 0.0063, 0.0090, 12))
     assert "did no better here" in bad and "a real difference" in bad
     assert "lost 12 packets against 0 in process" in bad
@@ -122,6 +123,125 @@ def test_progress_plain_lines_when_not_a_terminal() -> None:
     assert "t   3.0/30 s" in out and "delivered     120" in out and "lost     3" in out
     assert "mean    6.0 ms" in out and "route changes    17" in out and "exploring  2.5%" in out
     assert "trunk  50%" in out and "w3-w4 DOWN" in out
+
+
+# ---- the figures and the table, from in-process runs (no service) -----------------------------
+@pytest.fixture(scope="module")
+def offline(tmp_path_factory: Any) -> demo.Demo:
+    """A Demo whose three results are in-process runs (the 'service' one: qrouting with
+    another seed, so its line differs a little from the in-process learner's)."""
+    from routerd import topology
+    from sim import scenario
+    from sim.run import DEMO_TOPOLOGY
+
+    dur = 8.0
+    d = demo.Demo(str(tmp_path_factory.mktemp("demo")), dur, 1, 1.0)
+    d.scenario_doc = demo.stretched_scenario(dur)
+    d.scenario = scenario.from_mapping(d.scenario_doc)
+    d.topo = topology.load(DEMO_TOPOLOGY)
+    d.link_events = [(c.at_s, c.action, c.ends[0]) for c in d.scenario.links]
+    for pol in ("shortest", "qrouting"):
+        d.results[pol] = d.run_in_process(pol)
+    d.seed = 2
+    d.results["service"] = d.run_in_process("qrouting")
+    d.seed = 1
+    return d
+
+
+def _style(line: Any) -> tuple[Any, ...]:
+    return (line.get_color(), str(line.get_linestyle()), line.get_marker(),
+            line.get_linewidth(), line.get_markerfacecolor())
+
+
+def test_delivery_figure_mean_p99_and_losses_with_distinct_lines(offline: demo.Demo) -> None:
+    import matplotlib.figure
+
+    fig = offline.delivery_figure()
+    assert isinstance(fig, matplotlib.figure.Figure)
+    ax, axp, ax2 = fig.axes
+    assert "mean" in ax.get_ylabel() and "p99" in axp.get_ylabel() and "lost" in ax2.get_ylabel()
+    # every policy has a line on each panel, and no two look alike
+    for a in (ax, axp, ax2):
+        styles = [_style(ln) for ln in a.get_lines() if ln.get_xydata().shape[0] > 2]
+        assert len(styles) >= 3 and len(set(styles)) == len(styles)
+    # per-second p99 from the runs themselves
+    se = offline.results["qrouting"]["series"]
+    assert len(se["p99_delivery_s"]) == len(se["t_s"])
+    p99 = np.asarray(se["p99_delivery_s"], dtype=float)
+    md = np.asarray(se["mean_delivery_s"], dtype=float)
+    ok = np.isfinite(p99) & np.isfinite(md)
+    assert ok.sum() >= 6 and (p99[ok] >= md[ok]).all()
+    # log axes in ms whose ticks read as plain numbers (1, 2, 5, 10 ...), not powers of ten
+    fig.canvas.draw()
+    for a in (ax, axp):
+        assert a.get_yscale() == "log"
+        labels = [t.get_text() for t in a.get_yticklabels() if t.get_text()]
+        assert len(labels) >= 3
+        for lb in labels:
+            assert "$" not in lb and "^" not in lb, lb
+            float(lb)
+        assert {"5", "10", "20"} <= set(labels)
+    # the loss panel holds zero lines above its axis line and has no negative tick
+    assert ax2.get_ylim()[0] < 0 and min(ax2.get_yticks()) >= 0
+    # the time axis: 0 to the run's length; the legend off the data
+    assert ax2.get_xlim() == (0.0, offline.duration)
+    leg = ax.get_legend()
+    assert leg.get_window_extent().x0 >= ax.get_window_extent().x1
+    assert any("delivered packets only" in t.get_text() for t in leg.get_texts())
+
+
+def test_load_figure_agrees_with_delivery_on_time_and_shows_unclipped_utilisation(
+        offline: demo.Demo) -> None:
+    dfig, lfig = offline.delivery_figure(), offline.load_figure()
+    ax, ax2 = lfig.axes
+    # the two figures' time axes: the same limits and the same horizontal place
+    assert ax2.get_xlim() == dfig.axes[-1].get_xlim() == (0.0, offline.duration)
+    for a in lfig.axes:
+        for b in dfig.axes:
+            assert a.get_position().x0 == pytest.approx(b.get_position().x0)
+            assert a.get_position().x1 == pytest.approx(b.get_position().x1)
+    assert lfig.get_figwidth() == dfig.get_figwidth()
+    # a time series is titled as one
+    title = ax.get_title()
+    assert "load curve" not in title and "over time" in title
+    # trunk utilisation is drawn as measured (never clipped; at most 100% by construction)
+    topo = offline.topo
+    trunk = [topo.link(*demo.TRUNK), topo.link(demo.TRUNK[1], demo.TRUNK[0])]
+    lines = [ln for ln in ax2.get_lines() if ln.get_xydata().shape[0] > 2]
+    for pol, ln in zip(demo.POLICIES, lines):
+        u = np.asarray(offline.results[pol]["series"]["link_util"], dtype=float)
+        assert np.array_equal(ln.get_ydata(), u[:, trunk].max(axis=1) * 100)
+        assert ln.get_ydata().max() <= 100.0 + 1e-9
+    styles = [_style(ln) for ln in lines]
+    assert len(set(styles)) == 3
+    assert ax.get_ylim()[0] == 0 and ax2.get_ylim() == (0.0, 105.0)
+    lfig.canvas.draw()
+    leg = ax.get_legend()
+    assert leg.get_window_extent().x0 >= ax.get_window_extent().x1
+
+
+def test_table_puts_the_lost_share_beside_the_means(offline: demo.Demo) -> None:
+    figs = offline.figures()
+    rows = offline.table(figs)
+    names = [n for n, _ in rows]
+    i = names.index("mean delivery (ms)")
+    assert names[i + 2].strip() == "lost (% of offered)"
+    j = names.index("mean delivery at peak load (ms)")
+    assert "lost at peak load" in names[j + 1]
+    sh = figs["shortest"]
+    assert sh["lost_share"] == pytest.approx(sh["lost"] / sh["offered"])
+    assert 0 <= figs["qrouting"]["trunk_util_peak"] <= 1.0 + 1e-9
+    assert 0 <= sh["trunk_util_peak"] <= 1.0 + 1e-9
+    reading = offline.reading(figs)
+    if sh["lost"]:
+        assert "of those offered" in reading and "count only the packets that arrived" in reading
+
+
+def test_lost_share_is_never_rounded_to_zero() -> None:
+    assert demo._pct_lost(0.0) == "0%"
+    assert demo._pct_lost(1 / 33522) == "0.003%"
+    assert demo._pct_lost(0.056) == "5.6%"
+    assert demo._pct_lost(math.nan) == "n/a"
 
 
 # ---- slow: the whole command --------------------------------------------------------------

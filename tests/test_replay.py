@@ -247,6 +247,53 @@ def test_printed_table_and_png(tmp_path: Any, capsys: pytest.CaptureFixture[str]
         assert fh.read(8) == b"\x89PNG\r\n\x1a\n"
 
 
+def test_link_marks_keep_only_changes_from_control_records_and_batches() -> None:
+    m = R.LinkMarks()
+    w6, r1 = DEMO.index["w6"], DEMO.index["r1"]
+    m.add(J.Record(1, "link", {"from": w6, "to": r1, "up": True, "t": 1.0}))     # already up
+    m.add(J.Record(2, "batch", {"t": 2.0, "links": [[w6, r1, False], [r1, w6, False]]}))
+    m.add(J.Record(3, "batch", {"t": 2.5, "links": [[w6, r1, False]]}))          # still down
+    m.add(J.Record(4, "link", {"from": w6, "to": r1, "up": True, "t": 3.0}))
+    m.add(J.Record(5, "tick", {"t": 3.5}))
+    assert m.events == [(2.0, w6, r1, False), (2.0, r1, w6, False), (3.0, w6, r1, True)]
+
+
+def test_replay_figure_marks_link_events_in_percent_with_the_legend_aside(tmp_path: Any) -> None:
+    d = str(tmp_path / "state")
+    synthetic(d)
+    src = R.locate(d)
+    res = R.replay(src, DEMO, [R.Variant("engine.hysteresis.margin=0.3", {"margin": 0.3}),
+                               R.Variant("engine.explore.max_rate=0.02", {"explore_max": 0.02})])
+    # the synthetic journal takes w6->r1 down at its 71st batch and up at its 91st
+    assert [(e[1], e[2], e[3]) for e in res["link_events"]] == [
+        (DEMO.index["w6"], DEMO.index["r1"], False), (DEMO.index["w6"], DEMO.index["r1"], True)]
+    fig = R.figure([res["base"], *res["others"]], res["tick_t"], res["t0"], DEMO,
+                   res["link_events"], res["t_end"])
+    ax0, ax1, _ = fig.axes
+    down, up = (e[0] - res["t0"] for e in res["link_events"])
+    # the failure: a shaded span from its down to its up on every panel, named once
+    for ax in fig.axes:
+        spans = [(round(p.get_x(), 9), round(p.get_x() + p.get_width(), 9)) for p in ax.patches]
+        assert (round(down, 9), round(up, 9)) in spans
+    assert [t.get_text() for t in ax0.texts if "down" in t.get_text()] == [" r1-w6 down"]
+    # exploration in percent, as the demo shows it
+    assert "%" in ax1.get_ylabel()
+    base_ex = np.asarray(res["base"].exploration) * 100
+    assert np.allclose(ax1.get_lines()[0].get_ydata(), base_ex)
+    # the legend beside the data, not on it; every variant its own style
+    fig.canvas.draw()
+    leg = ax0.get_legend()
+    assert leg.get_window_extent().x0 >= ax0.get_window_extent().x1
+    assert [t.get_text() for t in leg.get_texts()] == [
+        "recorded", "engine.hysteresis.margin=0.3", "engine.explore.max_rate=0.02"]
+    styles = {(ln.get_color(), str(ln.get_linestyle()), ln.get_linewidth()) for ln in ax1.get_lines()
+              if len(ln.get_xdata()) > 2}
+    assert len(styles) == 3
+    # zero lines stay above the axis line; no negative tick
+    for ax in fig.axes:
+        assert ax.get_ylim()[0] < 0 and min(ax.get_yticks()) >= 0
+
+
 def test_link_trace_export_is_the_least_latency_per_bin(tmp_path: Any) -> None:
     d = str(tmp_path / "state")
     synthetic(d)

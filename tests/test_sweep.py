@@ -178,6 +178,78 @@ def test_terminal_table_shows_losses() -> None:
            {"policy": "qrouting", "rate_pps": 900.0, "mean_delivery_s": math.nan, "ci95_s": math.nan,
             "lost_fraction": 1.0}]
     text = sw.text_table(pts)
-    assert "5.40±0.20 ms (23.9% lost)" in text
-    assert "6.90±0.10 ms" in text and "6.90±0.10 ms (" not in text
-    assert text.splitlines()[2].split()[:3] == ["900", "n/a", "n/a"]
+    lines = text.splitlines()
+    # a lost column beside each policy's mean
+    assert lines[0].split() == ["shortest", "qrouting"]
+    assert lines[1].split() == ["rate", "pkt/s", "mean", "±", "95%", "lost", "mean", "±", "95%", "lost"]
+    assert lines[2].split() == ["300", "5.40±0.20", "ms", "23.9%", "6.90±0.10", "ms", "0%"]
+    assert lines[3].split() == ["900", "n/a", "n/a", "n/a", "100.0%"]
+    # and it says what ± is
+    assert lines[-2].startswith("± = half-width of the mean's 95% confidence interval")
+    assert "delivered packets only" in lines[-1]
+
+
+def _pts(spread: float) -> list[dict]:
+    # made-up points: qrouting's interval at 900/s reaches below zero; shortest loses
+    # packets at 900/s
+    return [
+        {"policy": "shortest", "rate_pps": 300.0, "mean_delivery_s": 0.005, "ci95_s": 0.001,
+         "lost_fraction": 0.0, "ci_basis": "seeds"},
+        {"policy": "shortest", "rate_pps": 900.0, "mean_delivery_s": 0.040, "ci95_s": 0.004,
+         "lost_fraction": 0.12, "ci_basis": "seeds"},
+        {"policy": "qrouting", "rate_pps": 300.0, "mean_delivery_s": 0.006, "ci95_s": 0.001,
+         "lost_fraction": 0.0, "ci_basis": "seeds"},
+        {"policy": "qrouting", "rate_pps": 900.0, "mean_delivery_s": 0.010, "ci95_s": spread,
+         "lost_fraction": 0.0, "ci_basis": "seeds"}]
+
+
+META = {"topology_name": "demo-lab", "seeds": 2, "duration_s": 3.0}
+
+
+def test_sweep_figure_band_never_below_zero_and_says_what_it_is() -> None:
+    from matplotlib.collections import PolyCollection
+
+    fig = sw.figure(_pts(0.025), META)
+    ax, ax2 = fig.axes
+    bands = [c for c in ax.collections if isinstance(c, PolyCollection)]
+    assert len(bands) == 2
+    for b in bands:
+        ys = np.concatenate([p.vertices[:, 1] for p in b.get_paths()])
+        assert ys.min() >= 0.0
+    assert ax.get_ylim()[0] >= 0
+    # the cut is said, and so is what the band (and the table's ±) is
+    assert any("band cut at 0" in t.get_text() for t in ax.texts)
+    assert "95% confidence interval of the mean over 2 seeds" in ax.get_title()
+    assert "delivered packets only" in ax.get_ylabel()
+    # shortest's lossy point is ringed, and the legend says what a ring means
+    rings = [ln for ln in ax.get_lines() if ln.get_marker() == "o" and ln.get_linestyle() == "None"]
+    assert len(rings) == 1 and list(rings[0].get_xdata()) == [900.0]
+    fig.canvas.draw()
+    leg = ax.get_legend()
+    assert any("delivered ones only" in t.get_text() for t in leg.get_texts())
+    assert leg.get_window_extent().x0 >= ax.get_window_extent().x1
+    # the loss panel: zero lines above the axis line, no negative tick
+    assert ax2.get_ylim()[0] < 0 and min(ax2.get_yticks()) >= 0
+    # a narrow band is not cut and carries no note
+    fig2 = sw.figure(_pts(0.002), META)
+    assert not any("band cut" in t.get_text() for t in fig2.axes[0].texts)
+    # no lossy point: no ring, and no legend entry for one
+    fig3 = sw.figure([{**p, "lost_fraction": 0.0} for p in _pts(0.002)], META)
+    assert not any("delivered ones only" in t.get_text()
+                   for t in fig3.axes[0].get_legend().get_texts())
+
+
+def test_sweep_figure_log_axis_ticks_are_plain_milliseconds() -> None:
+    from matplotlib.collections import PolyCollection
+
+    fig = sw.figure(_pts(0.025), META, log_y=True)
+    ax = fig.axes[0]
+    assert ax.get_yscale() == "log"
+    for b in (c for c in ax.collections if isinstance(c, PolyCollection)):
+        ys = np.concatenate([p.vertices[:, 1] for p in b.get_paths()])
+        assert ys.min() > 0
+    fig.canvas.draw()
+    labels = [t.get_text() for t in ax.get_yticklabels() if t.get_text()]
+    assert labels and all("$" not in lb and "^" not in lb for lb in labels)
+    assert "10" in labels
+    assert any("a tenth of the mean" in t.get_text() for t in ax.texts)
