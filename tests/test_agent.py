@@ -418,7 +418,10 @@ def test_probes_measure_emulated_delay_and_report_hop_rows(diamond: Callable[...
     s = d.agents["s"]
     echoes = s.metric("routerd_agent_probes_total", {"event": "echoed"})
     assert echoes >= len(rows) / 3                  # the s-x echoes, and those of s-y
-    assert s.metric("routerd_agent_hop_latency_seconds_count") == echoes
+    # every echo is one latency observation; the agent keeps probing while we read the two
+    # counters one after the other, so wait for a moment when neither is mid-update
+    assert wait_until(lambda: s.metric("routerd_agent_hop_latency_seconds_count")
+                      == s.metric("routerd_agent_probes_total", {"event": "echoed"}), 5)
 
 
 def test_failure_detection_reports_down_then_up(diamond: Callable[..., Diamond]) -> None:
