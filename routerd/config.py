@@ -94,6 +94,8 @@ SCHEMA: dict[str, Field] = {
     "service.max_drain": F(int, 256, "ingest frames taken per loop iteration: one journal group commit (one fsync) covers them all", lo=1),
     "service.dedup_batches": F(int, 1024, "batch numbers remembered per reporter to re-acknowledge a re-sent batch without applying it twice", lo=1),
     "service.dedup_reporters": F(int, 4096, "reporters remembered for duplicate detection (the least recently seen is forgotten first)", lo=1),
+    "service.dedup_budget_bytes": F(int, 4 * 1024 * 1024, "bytes the duplicate window may hold (estimated; over it the least recently seen reporter's window goes first, counted in routerd_dedup_evictions_total); a batch that left the window is refused as stale_batch if re-sent, never applied twice", lo=4096),
+    "service.dedup_marks_budget_bytes": F(int, 8 * 1024 * 1024, "bytes for the per-reporter high-water marks (one per reporter name ever seen, ~120 bytes + the name; never forgotten); when full, batches from new reporter names are refused as reporters_full", lo=4096),
     "service.shutdown_timeout_s": F(float, 10.0, "hard bound on a graceful shutdown (SIGTERM/SIGINT)", lo=0, lo_open=True),
     "service.gc_freeze": F(bool, True, "move every object alive after start-up out of the garbage collector's reach (gc.freeze)"),
     # -- simulator ---------------------------------------------------------------------

@@ -276,6 +276,23 @@ class RouterdCollector(Collector):
                            "(disk full, I/O error)", t["failures"])
             yield _counter("routerd_guard_clipped_rows", "Hop rows whose latency the jump "
                            "guard clipped to its band (accepted, not rejected)", t["clipped"])
+        dd = getattr(src, "dedup_state", None)   # the duplicate window (routerd.dedup)
+        if dd is not None:
+            d = dd()
+            ev = CounterMetricFamily("routerd_dedup_evictions", "Batches that left the duplicate "
+                                     "window, by cause (window: service.dedup_batches per reporter; "
+                                     "budget: service.dedup_budget_bytes or dedup_reporters)",
+                                     labels=["cause"])
+            ev.add_metric(["window"], float(d["evicted_window"]))
+            ev.add_metric(["budget"], float(d["evicted_budget"]))
+            yield ev
+            yield _gauge("routerd_dedup_bytes", "Estimated bytes held by the duplicate window",
+                         d["bytes"])
+            yield _gauge("routerd_dedup_entries", "Batches held by the duplicate window", d["entries"])
+            yield _gauge("routerd_dedup_marks", "Reporter names with a high-water mark (never "
+                         "forgotten)", d["marks"])
+            yield _gauge("routerd_dedup_marks_bytes", "Estimated bytes of the high-water marks",
+                         d["marks_bytes"])
         yield _gauge("routerd_uptime_seconds", "Seconds since the service started", src.uptime_s())
         info = GaugeMetricFamily("routerd_build_info", "Constant 1, labelled with version and topology digest",
                                  labels=sorted(src.info()))

@@ -79,7 +79,9 @@ from . import guards as _guards
 from . import journal as _journal
 from . import security as _security
 from . import topology as _topology
+from . import dedup as _dedup
 from .cautions import CAUTIONS
+from .dedup import Dedup
 from .engine import Engine, EngineSettings, HopBatch
 from .errors import InputError
 from .journal import accepted_part as _accepted_part
@@ -92,8 +94,11 @@ from .journal import engine_state as _engine_state
 SERVICE_REASONS = ("duplicate", _security.NOT_AUTHORISED) + _guards.REASONS
 #: Service-side whole-frame refusals (added to :data:`wire.FRAME_ERRORS`): a batch whose
 #: key is not the named reporter's, a reporter over its rate, a journal that cannot be
-#: written (nothing of the batch was stored: send it again later).
-SERVICE_FRAME_ERRORS = (_security.NOT_AUTHORISED, _guards.RATE_LIMITED, "unavailable")
+#: written (nothing of the batch was stored: send it again later), a re-sent batch at or
+#: below its reporter's high-water mark whose answer is no longer kept (routerd.dedup), a
+#: new reporter name when the table of marks is full.
+SERVICE_FRAME_ERRORS = (_security.NOT_AUTHORISED, _guards.RATE_LIMITED, "unavailable",
+                        "stale_batch", "reporters_full")
 #: Frames up to this much above ``service.max_message_bytes`` are still read so they can
 #: be answered ``oversized``; beyond it libzmq's MAXMSGSIZE cuts the peer off unanswered
 #: (counted as a disconnect), so a hostile peer cannot make us buffer arbitrarily much.
@@ -227,51 +232,26 @@ class Log:
 
 
 # ---- duplicate detection -----------------------------------------------------------------
-class Dedup:
-    """Recent batch numbers per reporter, with the acknowledgement each got.
+def make_dedup(cfg: _config.Config) -> Dedup:
+    """The duplicate window with the config's bounds (service, shard workers and front)."""
+    return Dedup(wire.REASONS + SERVICE_REASONS, per_reporter=cfg["service.dedup_batches"],
+                 reporters=cfg["service.dedup_reporters"],
+                 budget_bytes=cfg["service.dedup_budget_bytes"],
+                 marks_budget_bytes=cfg["service.dedup_marks_budget_bytes"])
 
-    Bounded: ``per_reporter`` batches per reporter (oldest forgotten first) and
-    ``reporters`` reporters (least recently seen forgotten first); at most
-    :data:`DEDUP_REJECTIONS` rejections are kept per batch.
-    """
 
-    def __init__(self, per_reporter: int, reporters: int):
-        self.per_reporter = per_reporter
-        self.reporters = reporters
-        self._by: OrderedDict[str, OrderedDict[int, tuple[int, tuple[tuple[int, str], ...]]]] = OrderedDict()
-
-    def get(self, reporter: str, batch: int) -> tuple[int, tuple[tuple[int, str], ...]] | None:
-        w = self._by.get(reporter)
-        return None if w is None else w.get(batch)
-
-    def put(self, reporter: str, batch: int, accepted: int, rejected: Iterable[Any]) -> None:
-        w = self._by.get(reporter)
-        if w is None:
-            w = self._by[reporter] = OrderedDict()
-            while len(self._by) > self.reporters:
-                self._by.popitem(last=False)
-        else:
-            self._by.move_to_end(reporter)
-        rej: list[tuple[int, str]] = []
-        for r, s in rejected:
-            if len(rej) >= DEDUP_REJECTIONS:
-                break
-            rej.append((int(r), str(s)))
-        w[batch] = (int(accepted), tuple(rej))
-        while len(w) > self.per_reporter:
-            w.popitem(last=False)
-
-    def export(self) -> list[Any]:
-        return [[rep, [[b, a, [list(x) for x in rj]] for b, (a, rj) in w.items()]]
-                for rep, w in self._by.items()]
-
-    def restore(self, data: Iterable[Any]) -> None:
-        for rep, entries in data:
-            for b, a, rj in entries:
-                self.put(str(rep), int(b), int(a), [tuple(x) for x in rj])
-
-    def __len__(self) -> int:
-        return sum(len(w) for w in self._by.values())
+def dedup_refusal(seen: _dedup.Seen, reporter: str, batch: int, dd: Dedup) -> str:
+    """The error text for a batch the duplicate window refuses (STALE or FULL)."""
+    if seen.kind == _dedup.STALE:
+        return (f"stale_batch: batch {batch} of reporter {wire._show(reporter)} is at or below "
+                f"its high-water mark {seen.mark} and its acknowledgement is no longer kept "
+                "(service.dedup_budget_bytes, service.dedup_batches): it may have been applied "
+                "already, so it is not applied again; batch numbers must rise")
+    st = dd.statistics()
+    return (f"reporters_full: reporter {wire._show(reporter)} is new and the service already keeps "
+            f"high-water marks for {st['marks']} reporter names (service.dedup_marks_budget_bytes "
+            f"= {st['marks_budget_bytes']} is full; marks are never forgotten, so a re-sent batch "
+            "cannot apply twice); known reporters are served; nothing was applied")
 
 
 # ---- the service -------------------------------------------------------------------------
@@ -303,7 +283,7 @@ class Service:
         # under the loop's hold of it
         self.lock = threading.RLock()
         self.engine: Engine | None = None
-        self.dedup = Dedup(cfg["service.dedup_batches"], cfg["service.dedup_reporters"])
+        self.dedup = make_dedup(cfg)
         self.journal: Any = None
         self.snapshots: Any = None
         self.ctx: Any = None
@@ -349,6 +329,10 @@ class Service:
         """Storage and guard figures for the metrics page."""
         return {"writable": 1.0 if self._down is None else 0.0,
                 "failures": float(self.storage_failures), "clipped": float(self.guards.stats.clipped)}
+
+    def dedup_state(self) -> dict[str, int]:
+        """The duplicate window's size, bounds and evictions for the metrics page."""
+        return self.dedup.statistics()
 
     def uptime_s(self) -> float:
         return time.monotonic() - self.started
@@ -424,7 +408,7 @@ class Service:
         snapshot plus the journal after it — :func:`journal.restore`, the offline path."""
         cfg = self.cfg
         want = EngineSettings.from_config(cfg)
-        self.dedup = Dedup(cfg["service.dedup_batches"], cfg["service.dedup_reporters"])
+        self.dedup = make_dedup(cfg)
         try:
             snaps = _journal.SnapshotStore(_journal.snapshot_dir(state_dir))
         except OSError as e:
@@ -454,7 +438,7 @@ class Service:
             # the snapshot's windows first, then the tail's batches on top (on_record ran
             # before we got here, so put the tail back after the restore)
             tail = self.dedup
-            self.dedup = Dedup(cfg["service.dedup_batches"], cfg["service.dedup_reporters"])
+            self.dedup = make_dedup(cfg)
             self.dedup.restore(r.state.get("dedup", ()))
             self.dedup.restore(tail.export())
             self.restored["snapshot_record"] = r.snapshot_record
@@ -672,7 +656,7 @@ class Service:
     def _rebuild_from_disk(self) -> None:
         """Engine and duplicate windows from the state directory, read-only."""
         cfg = self.cfg
-        fresh = Dedup(cfg["service.dedup_batches"], cfg["service.dedup_reporters"])
+        fresh = make_dedup(cfg)
         old, self.dedup = self.dedup, fresh
         try:
             r = _journal.restore(cfg["service.state_dir"], self.topo, EngineSettings.from_config(cfg),
@@ -684,7 +668,7 @@ class Service:
             return
         if r.snapshot_record:
             tail = self.dedup
-            self.dedup = Dedup(cfg["service.dedup_batches"], cfg["service.dedup_reporters"])
+            self.dedup = make_dedup(cfg)
             self.dedup.restore(r.state.get("dedup", ()))
             self.dedup.restore(tail.export())
         with self.lock:
@@ -879,11 +863,9 @@ class Service:
                                      ing.batch), ing.batch
         if self._down is not None:
             return self._unavailable(ing.batch), ing.batch
-        seen = self.dedup.get(ing.reporter, ing.batch)
-        if seen is not None:
-            c.batches["duplicate"] += 1
-            c.reject("duplicate", ing.rows_total)
-            return wire.encode_ack(ing.batch, seen[0], seen[1]), ing.batch
+        refusal = self._dedup_answer(ing)
+        if refusal is not None:
+            return refusal, ing.batch
         if not self.guards.admit(ing.reporter, ing.rows_total, time.monotonic()):
             c.refuse(_guards.RATE_LIMITED)
             g = self.guards.settings
@@ -895,6 +877,21 @@ class Service:
             return self._apply_ingest(self._screen(ing, peer)), ing.batch
         except StorageDown:
             return self._unavailable(ing.batch), ing.batch
+
+    def _dedup_answer(self, ing: wire.Ingest) -> bytes | None:
+        """The answer to a batch the duplicate window knows (a repeat, a stale number, a
+        new name with no room for its mark), or None: apply it."""
+        c = self.counters
+        seen = self.dedup.check(ing.reporter, ing.batch)
+        if seen.kind == _dedup.FRESH:
+            return None
+        if seen.kind == _dedup.REPEAT:
+            c.batches["duplicate"] += 1
+            c.reject("duplicate", ing.rows_total)
+            return wire.encode_ack(ing.batch, seen.accepted, seen.rejected)
+        code = "stale_batch" if seen.kind == _dedup.STALE else "reporters_full"
+        c.refuse(code)
+        return wire.encode_error(dedup_refusal(seen, ing.reporter, ing.batch, self.dedup), ing.batch)
 
     def _screen(self, ing: wire.Ingest, peer: _security.Reporter | None) -> wire.Ingest:
         """Authorisation (CURVE on) and the plausibility guards: the rows that may reach
@@ -1065,6 +1062,7 @@ class Service:
                 "acks_undeliverable": c.acks_undeliverable,
                 "dedup_entries": len(self.dedup),
             },
+            "dedup": self.dedup.statistics(),
             "journal": {"bytes": self.journal_bytes(), "last_record": self._last_record,
                         "fsync": self.cfg["service.journal.fsync"]},
             "last_snapshot": None if self.last_snapshot_at is None else {
