@@ -81,6 +81,7 @@ SCHEMA: dict[str, Field] = {
     "service.publish_interval_s": F(float, 2.0, "every node's table is published at this interval", lo=0, lo_open=True, tunable=True),
     "service.debounce_s": F(float, 0.05, "changed tables are published at most this often", lo=0, tunable=True),
     "service.snapshot_interval_s": F(float, 60.0, "engine snapshot interval", lo=0, lo_open=True, tunable=True),
+    "service.snapshot_background": F(bool, True, "write interval snapshots from a forked child (copy-on-write memory) while the loop goes on; false: written in the loop (it stalls for the write)"),
     "service.max_message_bytes": F(int, 16 * 1024 * 1024, "frames larger than this are refused", lo=1024),
     "service.log_format": F(str, "text", "log lines as plain text or JSON lines", choices=("text", "json")),
     "service.journal.fsync": F(str, "batch", "fsync the journal after each batch, every interval, or never", choices=("batch", "interval", "never")),

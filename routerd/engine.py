@@ -1108,9 +1108,12 @@ class Engine:
     _SCALARS = ("now", "_updates", "_td_mean", "_td_max", "_route_changes",
                 "_loops_prevented", "_decisions")
 
-    def export_state(self) -> dict[str, Any]:
-        """Everything needed to restore this engine exactly: arrays (copies) and scalars."""
-        out: dict[str, Any] = {k: getattr(self, k).copy() for k in self._ARRAYS}
+    def export_state(self, copy: bool = True) -> dict[str, Any]:
+        """Everything needed to restore this engine exactly: arrays and scalars.  Arrays
+        are copies unless ``copy=False`` (views for a snapshot written before the engine
+        changes again, e.g. from a forked child's copy-on-write memory)."""
+        out: dict[str, Any] = {k: getattr(self, k).copy() if copy else getattr(self, k)
+                               for k in self._ARRAYS}
         out.update({k: getattr(self, k) for k in self._SCALARS})
         out["_dirty"] = self._dirty | self._kcols   # the key lane's destinations are due too
         out["rejected"] = dict(self._rejected)

@@ -39,6 +39,10 @@ TD_BUCKETS_S = (1e-6, 1e-5, 1e-4, 2.5e-4, 5e-4, 1e-3, 2.5e-3, 5e-3, 0.01, 0.025,
 UPDATE_BUCKETS_S = (1e-5, 2.5e-5, 5e-5, 1e-4, 2.5e-4, 5e-4, 1e-3, 2.5e-3, 5e-3, 0.01,
                     0.025, 0.05, 0.1, 0.25, 0.5, 1.0)
 
+#: How long a snapshot holds the event loop, seconds (a fork, or a write in the loop).
+SNAPSHOT_PAUSE_BUCKETS_S = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0,
+                            2.5, 5.0, 10.0)
+
 #: Batch outcomes (a fixed set).
 BATCH_RESULTS = ("accepted", "duplicate", "refused")
 #: Why table publications happen.
@@ -141,6 +145,7 @@ class Counters:
     group_commits: int = 0
     td_error: Histo = field(default_factory=lambda: Histo(TD_BUCKETS_S))
     update_duration: Histo = field(default_factory=lambda: Histo(UPDATE_BUCKETS_S))
+    snapshot_pause: Histo = field(default_factory=lambda: Histo(SNAPSHOT_PAUSE_BUCKETS_S))
 
     def __post_init__(self) -> None:
         for rs in (self.row_reasons, self.frame_reasons):
@@ -246,6 +251,9 @@ class RouterdCollector(Collector):
         yield _gauge("routerd_snapshot_age_seconds",
                      "Seconds since the last snapshot was written (NaN: none yet in this run)",
                      float("nan") if age is None else age)
+        yield _histogram("routerd_snapshot_pause_seconds", "Time a snapshot held the event loop "
+                         "(the fork of a background snapshot, or a whole write in the loop)",
+                         c.snapshot_pause)
         sn = CounterMetricFamily("routerd_snapshots", "Snapshots written, by cause", labels=["cause"])
         for k, v in c.snapshots.items():
             sn.add_metric([k], float(v))

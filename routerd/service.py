@@ -29,8 +29,22 @@ iteration:
    for at most ``service.publish_budget_s`` per turn (a node queued twice goes out once,
    with its latest table), so a round of changes on a large network never holds ingest
    up for long;
-5. every ``service.snapshot_interval_s`` write a snapshot and retire the journal
-   segments it covers.
+5. every ``service.snapshot_interval_s`` take a snapshot and, once it is durable, retire
+   the journal segments it covers.
+
+Snapshots.  An interval snapshot is written by a forked child (``service.
+snapshot_background``): the loop commits the journal, notes the record number, and
+forks — the child's copy-on-write memory *is* the engine at that record, so the loop only
+waits for the fork (a few ms at 1,000 nodes) and goes on.  The child writes the temporary
+file (:meth:`journal.SnapshotStore.write_file`, streamed from the arrays, fsynced) and
+``os._exit``s; it touches no zmq object, logger or lock, runs no garbage collection and
+has the default signal actions.  The loop polls for its end: exit 0 → rename into place,
+fsync the directory, drop old snapshots, and only then retire journal segments; any other
+end → the file is removed and the failure logged (the journal still has everything).  One
+child at a time; one overdue for :data:`SNAPSHOT_CHILD_LIMIT_S` is killed.  The cost moves
+to copy-on-write: pages the loop writes while the child runs are copied (at most the
+engine's size, only under heavy ingest).  Control ``snapshot``, shutdown, and hosts where
+fork is off or fails write in the loop (streamed, no full copy; the loop waits for it).
 
 Start-up restores the newest readable snapshot, then replays the journal after it with
 :func:`journal.replay_into` — the same code path an offline replay uses — so the state
@@ -65,6 +79,7 @@ import signal
 import sys
 import threading
 import time
+import warnings
 from collections import OrderedDict
 from collections.abc import Iterable, Mapping
 from dataclasses import asdict
@@ -104,7 +119,13 @@ SERVICE_FRAME_ERRORS = (_security.NOT_AUTHORISED, _guards.RATE_LIMITED, "unavail
 #: (counted as a disconnect), so a hostile peer cannot make us buffer arbitrarily much.
 OVERSIZE_ANSWER_SLACK = 1 << 20
 #: Rejections remembered per deduplicated batch (a re-ack repeats at most this many).
-DEDUP_REJECTIONS = 256
+DEDUP_REJECTIONS = _dedup.REJECTIONS_KEPT
+
+#: A snapshot child still running after this long is killed (and its file removed).
+SNAPSHOT_CHILD_LIMIT_S = 600.0
+#: Exit statuses of the snapshot child.
+SNAPSHOT_CHILD_EXITS = {1: "the child could not write the file (I/O error, disk full)",
+                        2: "the child failed unexpectedly", -9: "killed (overdue)"}
 
 _FLAG_KEYS = {"ingest": "service.ingest", "pull": "service.pull", "publish": "service.publish",
               "control": "service.control", "metrics": "service.metrics",
@@ -310,6 +331,7 @@ class Service:
         self._unsynced = False
         self._unsynced_since = 0.0
         self._monitor: Any = None
+        self._snap_child: tuple[int, str, int, float] | None = None   # pid, tmp, record, start
 
     # -- metrics source -------------------------------------------------------------------
     def engine_statistics(self) -> Any:
@@ -779,6 +801,8 @@ class Service:
         if self._pub_queue:
             return 0          # tables still due: take what arrived, then publish more
         t = min(self._next_publish_all, self._next_snapshot)
+        if self._snap_child is not None:
+            t = min(t, now + 0.05)      # look for the snapshot child's end
         if self._touched:
             t = min(t, self._last_decide + self.cfg["service.debounce_s"])
         if self._unsynced:
@@ -1102,10 +1126,13 @@ class Service:
             self._next_publish_all = now + cfg["service.publish_interval_s"]
         if self._pub_queue:
             self._publish_due(cfg["service.publish_budget_s"])
+        if self._snap_child is not None:
+            self._reap_snapshot()
         if now >= self._next_snapshot and self._down is None:
             if self._last_record != self.last_snapshot_record:
                 with contextlib.suppress(StartError, StorageDown):   # logged, retried next interval
-                    self._snapshot("interval")
+                    if not self._snapshot_background():
+                        self._snapshot("interval")
             self._next_snapshot = now + cfg["service.snapshot_interval_s"]
 
     def _decide_and_publish(self, now_mono: float) -> None:
@@ -1160,31 +1187,108 @@ class Service:
             n += 1
         self.counters.publications[cause] += n
 
-    def _snapshot(self, cause: str) -> int:
+    def _snapshot_state(self) -> tuple[dict[str, Any], int]:
+        """Commit, then the state to snapshot (the engine's own arrays, no copies) and the
+        journal record it covers.  Consistent only until the loop changes the engine."""
         eng = self.engine
         assert eng is not None
+        self._commit()
+        return _engine_state(eng, copy=False, dedup=self.dedup.export()), self._last_record
+
+    def _snapshot_background(self) -> bool:
+        """Start an interval snapshot in a forked child (see the module docstring); False
+        when one cannot be started that way (then the caller writes it in the loop)."""
+        if self._snap_child is not None:
+            return True               # one at a time: the running one covers this interval
+        if not (self.cfg["service.snapshot_background"] and hasattr(os, "fork")):
+            return False
         if self._down is not None or self.journal is None:
             raise StorageDown(self._down or "the journal is closed")
         with self.lock:
-            self._commit()
-            state = _engine_state(eng, dedup=self.dedup.export())
-            rec = self._last_record
+            state, rec = self._snapshot_state()
+            tmp = self.snapshots.prepare(rec)
+            t0 = time.perf_counter()
+            try:
+                with warnings.catch_warnings():   # 3.12+: fork with threads; the child
+                    warnings.simplefilter("ignore", DeprecationWarning)   # is safe, see below
+                    pid = os.fork()
+            except OSError as e:
+                self.log.warning("snapshot: fork failed; writing it in the loop", reason=_os_reason(e))
+                return False
+            if pid == 0:   # pragma: no cover - the child (coverage does not follow os._exit)
+                _snapshot_child(self.snapshots, tmp, state, rec)
+            self.counters.snapshot_pause.observe(time.perf_counter() - t0)
+        self._snap_child = (pid, tmp, rec, time.monotonic())
+        return True
+
+    def _reap_snapshot(self, wait: bool = False) -> None:
+        """A finished snapshot child: install its file and only then retire the journal
+        segments it covers; a failed one is logged and its file removed (nothing lost)."""
+        if self._snap_child is None:
+            return
+        pid, tmp, rec, started = self._snap_child
+        done, status = os.waitpid(pid, 0 if wait else os.WNOHANG)
+        if done == 0:
+            if time.monotonic() - started > SNAPSHOT_CHILD_LIMIT_S:
+                os.kill(pid, signal.SIGKILL)
+                os.waitpid(pid, 0)
+                status = -1
+                self.log.error("snapshot child overdue: killed", pid=pid,
+                               limit_s=SNAPSHOT_CHILD_LIMIT_S)
+            else:
+                return
+        self._snap_child = None
+        code = os.waitstatus_to_exitcode(status) if status != -1 else -9
+        if code != 0 or self._down is not None or self.journal is None:
+            with contextlib.suppress(OSError):
+                os.unlink(tmp)
+            if code != 0:
+                self.log.error("snapshot failed; the journal keeps every record", cause="interval",
+                               reason=SNAPSHOT_CHILD_EXITS.get(code, f"child exit status {code}"))
+            return
         try:
-            self.snapshots.write(state, rec)
+            self.snapshots.install(tmp, rec)
         except OSError as e:
-            # the journal still holds everything: a failed snapshot loses nothing
-            for tmp in glob.glob(os.path.join(self.snapshots.dir, f".snap-*.tmp{os.getpid()}")):
-                with contextlib.suppress(OSError):
-                    os.unlink(tmp)
-            self.log.error("snapshot failed; the journal keeps every record", cause=cause,
+            with contextlib.suppress(OSError):
+                os.unlink(tmp)
+            self.log.error("snapshot failed; the journal keeps every record", cause="interval",
                            reason=_os_reason(e))
-            raise StartError(f"snapshot failed: {_os_reason(e)}") from None
+            return
+        self._snapshot_done("interval", rec)
+
+    def _snapshot_done(self, cause: str, rec: int) -> None:
         # retire only what every kept snapshot covers: a corrupt newest one has a fallback
-        self.journal.retire_before(self.snapshots.retire_point())
+        if self.journal is not None:
+            self.journal.retire_before(self.snapshots.retire_point())
         self.last_snapshot_at = time.time()
         self.last_snapshot_record = rec
         self.counters.snapshots[cause] += 1
         self.log.info("snapshot", cause=cause, record=rec, journal_bytes=self.journal_bytes())
+
+    def _snapshot(self, cause: str) -> int:
+        """A snapshot written in the loop (control ``snapshot``, shutdown, or when no child
+        can be forked): streamed from the engine's arrays, durable when this returns."""
+        eng = self.engine
+        assert eng is not None
+        if self._down is not None or self.journal is None:
+            raise StorageDown(self._down or "the journal is closed")
+        self._reap_snapshot(wait=True)     # a child still writing: let it finish first
+        with self.lock:
+            state, rec = self._snapshot_state()
+            t0 = time.perf_counter()
+            try:
+                self.snapshots.write(state, rec)
+            except OSError as e:
+                # the journal still holds everything: a failed snapshot loses nothing
+                for tmp in glob.glob(os.path.join(self.snapshots.dir, f".snap-*.tmp{os.getpid()}")):
+                    with contextlib.suppress(OSError):
+                        os.unlink(tmp)
+                self.log.error("snapshot failed; the journal keeps every record", cause=cause,
+                               reason=_os_reason(e))
+                raise StartError(f"snapshot failed: {_os_reason(e)}") from None
+            finally:
+                self.counters.snapshot_pause.observe(time.perf_counter() - t0)
+        self._snapshot_done(cause, rec)
         return rec
 
     # -- reload ---------------------------------------------------------------------------
@@ -1255,6 +1359,14 @@ class Service:
 
     def close(self) -> None:
         """Release everything (idempotent); queued replies get ``service.linger_s``."""
+        if self._snap_child is not None:     # an unfinished snapshot: never installed
+            pid, tmp, _, _ = self._snap_child
+            self._snap_child = None
+            with contextlib.suppress(OSError):
+                os.kill(pid, signal.SIGKILL)
+                os.waitpid(pid, 0)
+            with contextlib.suppress(OSError):
+                os.unlink(tmp)
         if self.metrics_server is not None:
             self.metrics_server.shutdown()
             self.metrics_server.server_close()
@@ -1286,6 +1398,27 @@ class Service:
             if j is not None:
                 with contextlib.suppress(OSError):
                     j.close()
+
+
+def _snapshot_child(store: Any, tmp: str, state: Any, rec: int) -> None:
+    """The forked snapshot child: write and fsync ``tmp`` from copy-on-write memory, then
+    ``os._exit`` — never return into the service.  Only this thread exists here: it touches
+    no zmq socket or context, no logger, no lock another thread may have held at the fork
+    (the parent's threads are gone), and never runs the garbage collector (a collected
+    zmq object would close a socket the parent still uses)."""
+    code = 2
+    try:
+        gc.disable()
+        for sig in (signal.SIGTERM, signal.SIGINT, signal.SIGHUP):
+            signal.signal(sig, signal.SIG_DFL)   # not the parent's handlers (they write to zmq)
+        store.write_file(tmp, state, rec)
+        code = 0
+    except OSError:
+        code = 1
+    except BaseException:  # noqa: BLE001 - anything at all: report by status, never return
+        code = 2
+    finally:
+        os._exit(code)
 
 
 def _os_reason(e: BaseException) -> str:
