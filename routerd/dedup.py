@@ -257,6 +257,10 @@ class Dedup:
                 self.put(str(rep), int(b), int(a),
                          [(int(x[0]), str(x[1])) for x in rj if str(x[1]) in self._code])
 
+    def knows(self, reason: str) -> bool:
+        """Whether ``reason`` is one this window can store."""
+        return reason in self._code
+
     def statistics(self) -> dict[str, int]:
         return {"entries": self._entries, "reporters": len(self._by), "bytes": self.bytes,
                 "budget_bytes": self.budget_bytes, "marks": len(self.marks),

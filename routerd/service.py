@@ -628,7 +628,9 @@ class Service:
         """Rebuild the duplicate windows from replayed batch records."""
         if rec.kind == "batch" and "ack" in rec.body:
             b, ack = rec.body, rec.body["ack"]
-            self.dedup.put(b["reporter"], b["batch"], ack.get("accepted", 0), ack.get("rejected", ()))
+            # a stored reason this version no longer has is dropped, not fatal at start-up
+            self.dedup.put(b["reporter"], b["batch"], ack.get("accepted", 0),
+                           [x for x in ack.get("rejected", ()) if self.dedup.knows(str(x[1]))])
 
     def _commit(self) -> None:
         """Make this turn's appends durable as the fsync policy promises (group commit):
