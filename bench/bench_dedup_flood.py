@@ -2,7 +2,7 @@
 
 ``python bench/bench_dedup_flood.py [--quick] [--batches N] [--names K] [--rows R]``
 starts ``python -m routerd serve`` (the demo lab, ipc:// endpoints and its state dir in a
-temp dir under /tmp, ``fsync: never``, snapshots every 5 s) and sends it N batches from
+temp dir under /tmp, ``fsync: never``, snapshots every 20 s) and sends it N batches from
 one DEALER socket, cycling over K reporter names, each batch with R named hop rows that
 all name an unknown destination — so every batch is acknowledged with R rejections, the
 most the duplicate window keeps per batch (256) — 64 batches in flight.  It samples the
@@ -43,7 +43,7 @@ def run(quick: bool = False, batches: int | None = None, names: int = 4096, rows
     base = tempfile.mkdtemp(prefix="rdflood", dir="/tmp")
     cfg = os.path.join(base, "c.yaml")
     with open(cfg, "w") as fh:
-        fh.write("service:\n  journal:\n    fsync: never\n  snapshot_interval_s: 5\n"
+        fh.write("service:\n  journal:\n    fsync: never\n  snapshot_interval_s: 20\n"
                  "  max_rows: 1000\n  metrics: 127.0.0.1:0\n")
     eps = {k: f"ipc://{base}/{k}" for k in ("ingest", "publish", "control")}
     cmd = [sys.executable, "-m", "routerd", "serve", "--config", cfg, "--state-dir",

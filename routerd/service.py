@@ -43,8 +43,10 @@ fsync the directory, drop old snapshots, and only then retire journal segments; 
 end → the file is removed and the failure logged (the journal still has everything).  One
 child at a time; one overdue for :data:`SNAPSHOT_CHILD_LIMIT_S` is killed.  The cost moves
 to copy-on-write: pages the loop writes while the child runs are copied (at most the
-engine's size, only under heavy ingest).  Control ``snapshot``, shutdown, and hosts where
-fork is off or fails write in the loop (streamed, no full copy; the loop waits for it).
+engine's size, only under heavy ingest).  A control ``snapshot`` forks the same way; its
+REP answer is held back (the socket takes no other request meanwhile) and sent when the
+child's file is installed.  Shutdown, a request while a child is already running, and
+hosts where fork is off or fails write in the loop (streamed, no full copy; the loop waits).
 
 Start-up restores the newest readable snapshot, then replays the journal after it with
 :func:`journal.replay_into` — the same code path an offline replay uses — so the state
@@ -132,6 +134,10 @@ _FLAG_KEYS = {"ingest": "service.ingest", "pull": "service.pull", "publish": "se
               "state_dir": "service.state_dir", "server_key": "security.server_key",
               "allow": "security.allow", "control_readonly": "security.control_readonly"}
 _PATH_KEYS = ("security.server_key", "security.allow")
+
+
+class _Deferred(Exception):
+    """A control request answered later (a snapshot being written by a child)."""
 
 
 class StorageDown(Exception):
@@ -332,6 +338,8 @@ class Service:
         self._unsynced_since = 0.0
         self._monitor: Any = None
         self._snap_child: tuple[int, str, int, float] | None = None   # pid, tmp, record, start
+        self._snap_cause = "interval"
+        self._snap_reply: Any = None     # the control socket owed the answer to a "snapshot"
 
     # -- metrics source -------------------------------------------------------------------
     def engine_statistics(self) -> Any:
@@ -1019,6 +1027,9 @@ class Service:
                                      "the allow file)")
         try:
             out = self._control(op, req)
+        except _Deferred:
+            self._snap_reply = sock
+            return None
         except StorageDown as e:
             self.counters.control_request(op, False)
             return wire.encode_error(f"unavailable: the journal cannot be written ({e})")
@@ -1043,6 +1054,8 @@ class Service:
         if op == "health":
             return self.health()
         if op == "snapshot":
+            if self._snap_child is None and self._snapshot_background("request"):
+                raise _Deferred()     # answered when the child is done (_answer_snapshot)
             rec = self._snapshot("request")
             return {"snapshot": {"record": rec}}
         if op == "reload":
@@ -1197,11 +1210,12 @@ class Service:
         self._commit()
         return _engine_state(eng, copy=False, dedup=self.dedup.export()), self._last_record
 
-    def _snapshot_background(self) -> bool:
-        """Start an interval snapshot in a forked child (see the module docstring); False
-        when one cannot be started that way (then the caller writes it in the loop)."""
+    def _snapshot_background(self, cause: str = "interval") -> bool:
+        """Start a snapshot in a forked child (see the module docstring); False when one
+        cannot be started that way (then the caller writes it in the loop)."""
         if self._snap_child is not None:
-            return True               # one at a time: the running one covers this interval
+            # one at a time: the running one covers this interval; a request wants a newer one
+            return cause == "interval"
         if not (self.cfg["service.snapshot_background"] and hasattr(os, "fork")):
             return False
         if self._down is not None or self.journal is None:
@@ -1221,6 +1235,7 @@ class Service:
                 _snapshot_child(self.snapshots, tmp, state, rec)
             self.counters.snapshot_pause.observe(time.perf_counter() - t0)
         self._snap_child = (pid, tmp, rec, time.monotonic())
+        self._snap_cause = cause
         return True
 
     def _reap_snapshot(self, wait: bool = False) -> None:
@@ -1240,23 +1255,38 @@ class Service:
             else:
                 return
         self._snap_child = None
+        cause = self._snap_cause
         code = os.waitstatus_to_exitcode(status) if status != -1 else -9
-        if code != 0 or self._down is not None or self.journal is None:
+        why: str | None = None
+        if code != 0:
+            why = SNAPSHOT_CHILD_EXITS.get(code, f"child exit status {code}")
+        elif self._down is not None or self.journal is None:
+            why = f"the journal cannot be written ({self._down})"
+        else:
+            try:
+                self.snapshots.install(tmp, rec)
+            except OSError as e:
+                why = _os_reason(e)
+        if why is not None:
             with contextlib.suppress(OSError):
                 os.unlink(tmp)
-            if code != 0:
-                self.log.error("snapshot failed; the journal keeps every record", cause="interval",
-                               reason=SNAPSHOT_CHILD_EXITS.get(code, f"child exit status {code}"))
+            self.log.error("snapshot failed; the journal keeps every record", cause=cause,
+                           reason=why)
+            self._answer_snapshot(wire.encode_error(f"bad_request: snapshot failed: {why}"), False)
             return
-        try:
-            self.snapshots.install(tmp, rec)
-        except OSError as e:
-            with contextlib.suppress(OSError):
-                os.unlink(tmp)
-            self.log.error("snapshot failed; the journal keeps every record", cause="interval",
-                           reason=_os_reason(e))
+        self._snapshot_done(cause, rec)
+        self._answer_snapshot(wire.encode_reply({"snapshot": {"record": rec}}), True)
+
+    def _answer_snapshot(self, reply: bytes, ok: bool) -> None:
+        """Send the answer a control ``snapshot`` request waited for (if one did)."""
+        sock, self._snap_reply = self._snap_reply, None
+        if sock is None:
             return
-        self._snapshot_done("interval", rec)
+        import zmq
+
+        self.counters.control_request("snapshot", ok)
+        with contextlib.suppress(zmq.ZMQError):
+            sock.send(reply, zmq.NOBLOCK)
 
     def _snapshot_done(self, cause: str, rec: int) -> None:
         # retire only what every kept snapshot covers: a corrupt newest one has a fallback

@@ -106,3 +106,42 @@ def test_background_off_writes_in_the_loop(tmp_path: Any) -> None:
         assert journal.SnapshotStore(journal.snapshot_dir(d)).latest()[1] == s._last_record
     finally:
         s.close()
+
+
+class _FakeRep:
+    """Stands in for the control REP socket: one request in, answers collected."""
+
+    def __init__(self, request: bytes):
+        self.request: bytes | None = request
+        self.sent: list[bytes] = []
+
+    def recv_multipart(self, flags: int = 0) -> list[bytes]:
+        import zmq
+
+        if self.request is None:
+            raise zmq.Again()
+        r, self.request = self.request, None
+        return [r]
+
+    def send(self, data: bytes, flags: int = 0) -> None:
+        self.sent.append(data)
+
+
+def test_control_snapshot_is_answered_once_the_child_has_written_it(tmp_path: Any) -> None:
+    import zmq
+
+    d = str(tmp_path / "state")
+    s = _start(d)
+    try:
+        _feed(s, "a", 1, 5, seed=5)
+        sock = _FakeRep(wire.encode_request({"op": "snapshot"}))
+        assert s._control_one(zmq, sock) is None          # no answer yet: a child writes it
+        assert s._snap_child is not None and not sock.sent
+        rec = s._snap_child[2]
+        s._reap_snapshot(wait=True)
+        assert wire.decode_reply(sock.sent[0]) == {"v": 1, "snapshot": {"record": rec}}
+        assert journal.SnapshotStore(journal.snapshot_dir(d)).latest()[1] == rec
+        assert s.counters.snapshots["request"] == 1
+        assert s.counters.control[("snapshot", "ok")] == 1
+    finally:
+        s.close()
