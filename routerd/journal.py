@@ -14,6 +14,18 @@ Layout (``STATE_DIR``)::
     journal/seg-<first record number, 20 digits>.rj     append-only segments
     snapshots/snap-<record number, 20 digits>.rs        engine state covering records <= n
 
+Snapshot file, format 2 (written since the streaming change; format 1 is still read): the
+8-byte magic ``b"RDSNAPS2"`` and the record number (u64 LE), then chunks, each a 16-byte
+head (``b"SC"``, kind u8: 0 meta / 1 data / 2 end, flags u8 = 0, CRC32 u32 of the payload,
+payload length u64) and its payload.  The meta chunk holds two msgpack maps: the arrays'
+``[dtype, shape]`` list, then ``{"record_no", "written_at", "state"}`` with each numpy
+array replaced by a reference (msgpack ext 2 holding its index).  The arrays' raw C-order
+bytes follow in data chunks of at most 8 MiB (:data:`SNAP_CHUNK`), in index order; the end
+chunk (``{"arrays": n, "chunks": count}``) proves the file complete.  Written straight from
+the arrays (:func:`write_stream`), read straight into new arrays: no second in-memory copy
+on either side.  Format 1: a 28-byte header (``b"RDSNAPS1"``, record number, body length,
+CRC32) and one msgpack body with arrays as ext 1.
+
 Segment file: a 16-byte header ``b"RDJOURN1"`` + first record number (u64 LE), then
 records.  Record: a 20-byte header — magic ``b"RJ"``, flags u16 (0), body length u32,
 record number u64, CRC32 u32 of the first 16 header bytes and the body — then the body,
@@ -51,6 +63,7 @@ before :meth:`SnapshotStore.retire_point`, the oldest kept snapshot).
 """
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import glob
 import os
@@ -555,6 +568,149 @@ def _write_all(fd: int, data: bytes) -> None:
 
 
 # ---- snapshots ----------------------------------------------------------------------------
+# Format 2 (streamed): ``b"RDSNAPS2"`` + record number (u64 LE), then chunks.  A chunk is a
+# 16-byte head — ``b"SC"``, kind u8 (0 meta, 1 data, 2 end), flags u8 (0), CRC32 u32 of the
+# payload, payload length u64 — then the payload.  The meta chunk is msgpack: ``record_no``,
+# ``written_at``, ``arrays`` ([dtype, shape] each) and ``state`` with every numpy array
+# replaced by a reference (msgpack ext 2: its index).  Then each array's raw C-order bytes
+# in data chunks of at most SNAP_CHUNK bytes, arrays in index order; then the end chunk
+# (msgpack ``{"arrays": n, "chunks": count}``).  Written straight from the arrays' memory,
+# read straight into freshly allocated arrays: neither side holds a second copy.
+SNAP2_MAGIC = b"RDSNAPS2"
+SNAP2_HEADER = struct.Struct("<8sQ")
+CHUNK_HEAD = struct.Struct("<2sBBIQ")
+CHUNK_MAGIC = b"SC"
+CHUNK_META, CHUNK_DATA, CHUNK_END = 0, 1, 2
+SNAP_CHUNK = 8 << 20
+_REF_EXT = 2
+
+
+def _chunk(fd: int, kind: int, payload: Any) -> None:
+    mv = memoryview(payload).cast("B")
+    _write_all(fd, CHUNK_HEAD.pack(CHUNK_MAGIC, kind, 0, zlib.crc32(mv), mv.nbytes))
+    _write_all(fd, mv)
+
+
+def write_stream(fd: int, state: Mapping[str, Any], record_no: int) -> None:
+    """Write a format-2 snapshot of ``state`` to an open file descriptor."""
+    arrays: list[np.ndarray] = []
+
+    def ref(o: Any) -> Any:
+        if isinstance(o, np.ndarray):
+            if o.dtype.kind not in _ND_KINDS or o.dtype.hasobject:
+                raise TypeError(f"cannot store a numpy array of dtype {o.dtype}")
+            arrays.append(np.ascontiguousarray(o))   # no copy for C-contiguous arrays
+            return msgpack.ExtType(_REF_EXT, msgpack.packb(len(arrays) - 1))
+        return _default(o)
+
+    meta = msgpack.packb({"record_no": int(record_no), "written_at": time.time(),
+                          "state": dict(state)}, use_bin_type=True, default=ref)
+    # the array list is known only after packing the state: a second small map carries it
+    head = msgpack.packb({"arrays": [[a.dtype.str, list(a.shape)] for a in arrays]},
+                         use_bin_type=True)
+    _write_all(fd, SNAP2_HEADER.pack(SNAP2_MAGIC, int(record_no)))
+    _chunk(fd, CHUNK_META, head + meta)
+    chunks = 0
+    for a in arrays:
+        raw = memoryview(a.reshape(-1).view(np.uint8)) if a.size else memoryview(b"")
+        for off in range(0, raw.nbytes, SNAP_CHUNK):
+            _chunk(fd, CHUNK_DATA, raw[off: off + SNAP_CHUNK])
+            chunks += 1
+    _chunk(fd, CHUNK_END, msgpack.packb({"arrays": len(arrays), "chunks": chunks}))
+
+
+class _Ref:
+    __slots__ = ("i",)
+
+    def __init__(self, i: int):
+        self.i = i
+
+
+def _read_stream(path: str, fh: Any) -> tuple[dict[str, Any], int]:
+    """The rest of a format-2 file after its magic (see :func:`write_stream`)."""
+    def fail(why: str) -> ValueError:
+        return ValueError(f"{path}: {why}")
+
+    def head(want: int) -> tuple[int, int]:
+        h = fh.read(CHUNK_HEAD.size)
+        if len(h) != CHUNK_HEAD.size:
+            raise fail(f"cut inside a chunk head at byte {fh.tell() - len(h)}")
+        magic, kind, flags, crc, length = CHUNK_HEAD.unpack(h)
+        if magic != CHUNK_MAGIC or kind != want or flags != 0:
+            raise fail(f"bad chunk head at byte {fh.tell() - CHUNK_HEAD.size} (magic "
+                       f"{magic!r}, kind {kind}, expected {want})")
+        return crc, length
+
+    def small(kind: int) -> bytes:
+        crc, length = head(kind)
+        if length > MAX_RECORD:
+            raise fail(f"chunk of {length} bytes is above the limit {MAX_RECORD}")
+        data = fh.read(length)
+        if len(data) != length or zlib.crc32(data) != crc:
+            raise fail("CRC mismatch or cut in a meta/end chunk")
+        return data
+
+    rest = fh.read(SNAP2_HEADER.size - 8)
+    if len(rest) != SNAP2_HEADER.size - 8:
+        raise fail("shorter than the header")
+    (no,) = struct.unpack("<Q", rest)
+    try:
+        up = msgpack.Unpacker(raw=False, strict_map_key=False, max_buffer_size=MAX_RECORD,
+                              ext_hook=lambda c, d: _Ref(msgpack.unpackb(d)) if c == _REF_EXT
+                              else _ext_hook(c, d))
+        up.feed(small(CHUNK_META))
+        descr = next(up)["arrays"]
+        obj = next(up)
+        arrays = []
+        for dt, shape in descr:
+            dtype = np.dtype(dt)
+            if dtype.kind not in _ND_KINDS or dtype.hasobject:
+                raise fail(f"refusing array dtype {dt!r}")
+            arrays.append(np.empty(tuple(shape), dtype=dtype))
+    except ValueError:
+        raise
+    except Exception as e:  # noqa: BLE001 - any decode failure means a bad file
+        raise fail(f"meta chunk does not decode: {e}") from None
+    chunks = 0
+    for a in arrays:
+        raw = memoryview(a.reshape(-1).view(np.uint8)) if a.size else memoryview(bytearray())
+        off = 0
+        while off < raw.nbytes:
+            crc, length = head(CHUNK_DATA)
+            if length > raw.nbytes - off:
+                raise fail(f"data chunk of {length} bytes overruns its array")
+            got = fh.readinto(raw[off: off + length])
+            if got != length:
+                raise fail("cut inside a data chunk")
+            if zlib.crc32(raw[off: off + length]) != crc:
+                raise fail(f"CRC mismatch in data chunk {chunks}")
+            off += length
+            chunks += 1
+    try:
+        end = msgpack.unpackb(small(CHUNK_END))
+    except ValueError:
+        raise
+    except Exception as e:  # noqa: BLE001
+        raise fail(f"end chunk does not decode: {e}") from None
+    if end != {"arrays": len(arrays), "chunks": chunks} or fh.read(1):
+        raise fail("end chunk does not match the file (or bytes after it)")
+
+    def fill(o: Any) -> Any:
+        if isinstance(o, _Ref):
+            if not 0 <= o.i < len(arrays):
+                raise fail(f"array reference {o.i} out of range")
+            return arrays[o.i]
+        if isinstance(o, dict):
+            return {k: fill(v) for k, v in o.items()}
+        if isinstance(o, list):
+            return [fill(v) for v in o]
+        return o
+
+    if not isinstance(obj, dict) or obj.get("record_no") != no or not isinstance(obj.get("state"), dict):
+        raise fail("not a snapshot body")
+    return fill(obj["state"]), no
+
+
 class SnapshotStore:
     """Engine snapshots in one directory, written atomically; the last ``keep`` are kept."""
 
@@ -575,17 +731,36 @@ class SnapshotStore:
         return out
 
     def write(self, state: Mapping[str, Any], record_no: int) -> str:
-        """Write a snapshot covering journal records up to ``record_no``; returns its path."""
-        body = pack({"record_no": int(record_no), "written_at": time.time(), "state": dict(state)})
-        head = SNAP_HEADER.pack(SNAP_MAGIC, int(record_no), len(body), zlib.crc32(body))
-        final = os.path.join(self.dir, f"snap-{int(record_no):020d}.rs")
-        tmp = os.path.join(self.dir, f".snap-{int(record_no):020d}.tmp{os.getpid()}")
+        """Write a snapshot covering journal records up to ``record_no``; returns its path.
+        Streaming (format 2): no second copy of the state is built in memory."""
+        tmp = self.prepare(record_no)
+        try:
+            self.write_file(tmp, state, record_no)
+        except BaseException:
+            with contextlib.suppress(OSError):
+                os.unlink(tmp)
+            raise
+        return self.install(tmp, record_no)
+
+    def prepare(self, record_no: int) -> str:
+        """The temporary file name a snapshot for ``record_no`` is written to first."""
+        return os.path.join(self.dir, f".snap-{int(record_no):020d}.tmp{os.getpid()}")
+
+    @staticmethod
+    def write_file(tmp: str, state: Mapping[str, Any], record_no: int) -> None:
+        """Write and fsync the temporary file (safe to call in a forked child: files and
+        numpy only).  :meth:`install` then makes it the snapshot."""
         fd = open_private(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC)
         try:
-            _write_all(fd, head + body)
+            write_stream(fd, state, record_no)
             os.fsync(fd)
         finally:
             os.close(fd)
+
+    def install(self, tmp: str, record_no: int) -> str:
+        """Rename a written temporary file into place, fsync the directory, drop the
+        snapshots beyond ``keep``.  Only after this may journal segments be retired."""
+        final = os.path.join(self.dir, f"snap-{int(record_no):020d}.rs")
         os.replace(tmp, final)
         _fsync_dir(self.dir)
         for _, old in self.list()[: -self.keep]:
@@ -594,9 +769,13 @@ class SnapshotStore:
 
     @staticmethod
     def read(path: str) -> tuple[dict[str, Any], int]:
-        """One snapshot file → (state, record number).  Raises ValueError if it is bad."""
+        """One snapshot file (format 1 or 2) → (state, record number).  Raises ValueError
+        if it is bad."""
         with open(path, "rb") as fh:
-            data = fh.read()
+            magic = fh.read(8)
+            if magic == SNAP2_MAGIC:
+                return _read_stream(path, fh)
+            data = magic + fh.read()
         if len(data) < SNAP_HEADER.size:
             raise ValueError(f"{path}: {len(data)} bytes, shorter than the header")
         magic, no, length, crc = SNAP_HEADER.unpack_from(data, 0)
@@ -756,10 +935,12 @@ def written_for(directory: str) -> str | None:
                  if r.kind == "start"), None)
 
 
-def engine_state(engine: Engine, **extra: Any) -> dict[str, Any]:
+def engine_state(engine: Engine, *, copy: bool = True, **extra: Any) -> dict[str, Any]:
     """A snapshot state: the engine's arrays and scalars, its settings, and anything else
-    the caller keeps (e.g. the service's dedup table) as plain values."""
-    return {"engine": engine.export_state(), "settings": settings_to_dict(engine.settings), **extra}
+    the caller keeps (e.g. the service's dedup table) as plain values.  ``copy=False``:
+    the engine's own arrays, for a snapshot written before the engine changes again."""
+    return {"engine": engine.export_state(copy=copy), "settings": settings_to_dict(engine.settings),
+            **extra}
 
 
 @dataclass

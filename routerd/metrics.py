@@ -39,6 +39,10 @@ TD_BUCKETS_S = (1e-6, 1e-5, 1e-4, 2.5e-4, 5e-4, 1e-3, 2.5e-3, 5e-3, 0.01, 0.025,
 UPDATE_BUCKETS_S = (1e-5, 2.5e-5, 5e-5, 1e-4, 2.5e-4, 5e-4, 1e-3, 2.5e-3, 5e-3, 0.01,
                     0.025, 0.05, 0.1, 0.25, 0.5, 1.0)
 
+#: How long a snapshot holds the event loop, seconds (a fork, or a write in the loop).
+SNAPSHOT_PAUSE_BUCKETS_S = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0,
+                            2.5, 5.0, 10.0)
+
 #: Batch outcomes (a fixed set).
 BATCH_RESULTS = ("accepted", "duplicate", "refused")
 #: Why table publications happen.
@@ -143,6 +147,7 @@ class Counters:
     group_commits: int = 0
     td_error: Histo = field(default_factory=lambda: Histo(TD_BUCKETS_S))
     update_duration: Histo = field(default_factory=lambda: Histo(UPDATE_BUCKETS_S))
+    snapshot_pause: Histo = field(default_factory=lambda: Histo(SNAPSHOT_PAUSE_BUCKETS_S))
 
     def __post_init__(self) -> None:
         for rs in (self.row_reasons, self.frame_reasons):
@@ -248,6 +253,9 @@ class RouterdCollector(Collector):
         yield _gauge("routerd_snapshot_age_seconds",
                      "Seconds since the last snapshot was written (NaN: none yet in this run)",
                      float("nan") if age is None else age)
+        yield _histogram("routerd_snapshot_pause_seconds", "Time a snapshot held the event loop "
+                         "(the fork of a background snapshot, or a whole write in the loop)",
+                         c.snapshot_pause)
         sn = CounterMetricFamily("routerd_snapshots", "Snapshots written, by cause", labels=["cause"])
         for k, v in c.snapshots.items():
             sn.add_metric([k], float(v))
@@ -281,6 +289,23 @@ class RouterdCollector(Collector):
         conn = getattr(src, "connection_state", None)   # the connection cap (routerd.listeners)
         if conn is not None:
             yield from connection_families(conn())
+        dd = getattr(src, "dedup_state", None)   # the duplicate window (routerd.dedup)
+        if dd is not None:
+            d = dd()
+            ev = CounterMetricFamily("routerd_dedup_evictions", "Batches that left the duplicate "
+                                     "window, by cause (window: service.dedup_batches per reporter; "
+                                     "budget: service.dedup_budget_bytes or dedup_reporters)",
+                                     labels=["cause"])
+            ev.add_metric(["window"], float(d["evicted_window"]))
+            ev.add_metric(["budget"], float(d["evicted_budget"]))
+            yield ev
+            yield _gauge("routerd_dedup_bytes", "Estimated bytes held by the duplicate window",
+                         d["bytes"])
+            yield _gauge("routerd_dedup_entries", "Batches held by the duplicate window", d["entries"])
+            yield _gauge("routerd_dedup_marks", "Reporter names with a high-water mark (never "
+                         "forgotten)", d["marks"])
+            yield _gauge("routerd_dedup_marks_bytes", "Estimated bytes of the high-water marks",
+                         d["marks_bytes"])
         yield _gauge("routerd_uptime_seconds", "Seconds since the service started", src.uptime_s())
         info = GaugeMetricFamily("routerd_build_info", "Constant 1, labelled with version and topology digest",
                                  labels=sorted(src.info()))

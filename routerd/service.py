@@ -30,8 +30,24 @@ iteration:
    for at most ``service.publish_budget_s`` per turn (a node queued twice goes out once,
    with its latest table), so a round of changes on a large network never holds ingest
    up for long;
-5. every ``service.snapshot_interval_s`` write a snapshot and retire the journal
-   segments it covers.
+5. every ``service.snapshot_interval_s`` take a snapshot and, once it is durable, retire
+   the journal segments it covers.
+
+Snapshots.  An interval snapshot is written by a forked child (``service.
+snapshot_background``): the loop commits the journal, notes the record number, and
+forks — the child's copy-on-write memory *is* the engine at that record, so the loop only
+waits for the fork (a few ms at 1,000 nodes) and goes on.  The child writes the temporary
+file (:meth:`journal.SnapshotStore.write_file`, streamed from the arrays, fsynced) and
+``os._exit``s; it touches no zmq object, logger or lock, runs no garbage collection and
+has the default signal actions.  The loop polls for its end: exit 0 → rename into place,
+fsync the directory, drop old snapshots, and only then retire journal segments; any other
+end → the file is removed and the failure logged (the journal still has everything).  One
+child at a time; one overdue for :data:`SNAPSHOT_CHILD_LIMIT_S` is killed.  The cost moves
+to copy-on-write: pages the loop writes while the child runs are copied (at most the
+engine's size, only under heavy ingest).  A control ``snapshot`` forks the same way; its
+REP answer is held back (the socket takes no other request meanwhile) and sent when the
+child's file is installed.  Shutdown, a request while a child is already running, and
+hosts where fork is off or fails write in the loop (streamed, no full copy; the loop waits).
 
 Start-up takes the config and topology the flags give, else the ones the state dir
 recorded (:func:`statedir.choose`), restores the newest readable snapshot, then replays
@@ -68,6 +84,7 @@ import signal
 import sys
 import threading
 import time
+import warnings
 from collections import OrderedDict
 from collections.abc import Iterable, Mapping
 from dataclasses import asdict
@@ -84,7 +101,9 @@ from . import listeners as _listeners
 from . import security as _security
 from . import statedir as _statedir
 from . import topology as _topology
+from . import dedup as _dedup
 from .cautions import CAUTIONS
+from .dedup import Dedup
 from .engine import Engine, EngineSettings, HopBatch
 from .errors import InputError
 from .journal import accepted_part as _accepted_part
@@ -97,20 +116,33 @@ from .journal import engine_state as _engine_state
 SERVICE_REASONS = ("duplicate", _security.NOT_AUTHORISED) + _guards.REASONS
 #: Service-side whole-frame refusals (added to :data:`wire.FRAME_ERRORS`): a batch whose
 #: key is not the named reporter's, a reporter over its rate, a journal that cannot be
-#: written (nothing of the batch was stored: send it again later).
-SERVICE_FRAME_ERRORS = (_security.NOT_AUTHORISED, _guards.RATE_LIMITED, "unavailable")
+#: written (nothing of the batch was stored: send it again later), a re-sent batch at or
+#: below its reporter's high-water mark whose answer is no longer kept (routerd.dedup), a
+#: new reporter name when the table of marks is full.
+SERVICE_FRAME_ERRORS = (_security.NOT_AUTHORISED, _guards.RATE_LIMITED, "unavailable",
+                        "stale_batch", "reporters_full")
 #: Frames up to this much above ``service.max_message_bytes`` are still read so they can
 #: be answered ``oversized``; beyond it libzmq's MAXMSGSIZE cuts the peer off unanswered
 #: (counted as a disconnect), so a hostile peer cannot make us buffer arbitrarily much.
 OVERSIZE_ANSWER_SLACK = 1 << 20
 #: Rejections remembered per deduplicated batch (a re-ack repeats at most this many).
-DEDUP_REJECTIONS = 256
+DEDUP_REJECTIONS = _dedup.REJECTIONS_KEPT
+
+#: A snapshot child still running after this long is killed (and its file removed).
+SNAPSHOT_CHILD_LIMIT_S = 600.0
+#: Exit statuses of the snapshot child.
+SNAPSHOT_CHILD_EXITS = {1: "the child could not write the file (I/O error, disk full)",
+                        2: "the child failed unexpectedly", -9: "killed (overdue)"}
 
 _FLAG_KEYS = {"ingest": "service.ingest", "pull": "service.pull", "publish": "service.publish",
               "control": "service.control", "metrics": "service.metrics",
               "state_dir": "service.state_dir", "server_key": "security.server_key",
               "allow": "security.allow", "control_readonly": "security.control_readonly"}
 _PATH_KEYS = ("security.server_key", "security.allow")
+
+
+class _Deferred(Exception):
+    """A control request answered later (a snapshot being written by a child)."""
 
 
 class StorageDown(Exception):
@@ -279,51 +311,26 @@ class Log:
 
 
 # ---- duplicate detection -----------------------------------------------------------------
-class Dedup:
-    """Recent batch numbers per reporter, with the acknowledgement each got.
+def make_dedup(cfg: _config.Config) -> Dedup:
+    """The duplicate window with the config's bounds (service, shard workers and front)."""
+    return Dedup(wire.REASONS + SERVICE_REASONS, per_reporter=cfg["service.dedup_batches"],
+                 reporters=cfg["service.dedup_reporters"],
+                 budget_bytes=cfg["service.dedup_budget_bytes"],
+                 marks_budget_bytes=cfg["service.dedup_marks_budget_bytes"])
 
-    Bounded: ``per_reporter`` batches per reporter (oldest forgotten first) and
-    ``reporters`` reporters (least recently seen forgotten first); at most
-    :data:`DEDUP_REJECTIONS` rejections are kept per batch.
-    """
 
-    def __init__(self, per_reporter: int, reporters: int):
-        self.per_reporter = per_reporter
-        self.reporters = reporters
-        self._by: OrderedDict[str, OrderedDict[int, tuple[int, tuple[tuple[int, str], ...]]]] = OrderedDict()
-
-    def get(self, reporter: str, batch: int) -> tuple[int, tuple[tuple[int, str], ...]] | None:
-        w = self._by.get(reporter)
-        return None if w is None else w.get(batch)
-
-    def put(self, reporter: str, batch: int, accepted: int, rejected: Iterable[Any]) -> None:
-        w = self._by.get(reporter)
-        if w is None:
-            w = self._by[reporter] = OrderedDict()
-            while len(self._by) > self.reporters:
-                self._by.popitem(last=False)
-        else:
-            self._by.move_to_end(reporter)
-        rej: list[tuple[int, str]] = []
-        for r, s in rejected:
-            if len(rej) >= DEDUP_REJECTIONS:
-                break
-            rej.append((int(r), str(s)))
-        w[batch] = (int(accepted), tuple(rej))
-        while len(w) > self.per_reporter:
-            w.popitem(last=False)
-
-    def export(self) -> list[Any]:
-        return [[rep, [[b, a, [list(x) for x in rj]] for b, (a, rj) in w.items()]]
-                for rep, w in self._by.items()]
-
-    def restore(self, data: Iterable[Any]) -> None:
-        for rep, entries in data:
-            for b, a, rj in entries:
-                self.put(str(rep), int(b), int(a), [tuple(x) for x in rj])
-
-    def __len__(self) -> int:
-        return sum(len(w) for w in self._by.values())
+def dedup_refusal(seen: _dedup.Seen, reporter: str, batch: int, dd: Dedup) -> str:
+    """The error text for a batch the duplicate window refuses (STALE or FULL)."""
+    if seen.kind == _dedup.STALE:
+        return (f"stale_batch: batch {batch} of reporter {wire._show(reporter)} is at or below "
+                f"its high-water mark {seen.mark} and its acknowledgement is no longer kept "
+                "(service.dedup_budget_bytes, service.dedup_batches): it may have been applied "
+                "already, so it is not applied again; batch numbers must rise")
+    st = dd.statistics()
+    return (f"reporters_full: reporter {wire._show(reporter)} is new and the service already keeps "
+            f"high-water marks for {st['marks']} reporter names (service.dedup_marks_budget_bytes "
+            f"= {st['marks_budget_bytes']} is full; marks are never forgotten, so a re-sent batch "
+            "cannot apply twice); known reporters are served; nothing was applied")
 
 
 # ---- the service -------------------------------------------------------------------------
@@ -360,7 +367,7 @@ class Service:
         # under the loop's hold of it
         self.lock = threading.RLock()
         self.engine: Engine | None = None
-        self.dedup = Dedup(cfg["service.dedup_batches"], cfg["service.dedup_reporters"])
+        self.dedup = make_dedup(cfg)
         self.journal: Any = None
         self.snapshots: Any = None
         self.ctx: Any = None
@@ -388,6 +395,9 @@ class Service:
         self._unsynced_since = 0.0
         self.listeners: _listeners.Listeners | None = None
         self._next_gate_tick = 0.0
+        self._snap_child: tuple[int, str, int, float] | None = None   # pid, tmp, record, start
+        self._snap_cause = "interval"
+        self._snap_reply: Any = None     # the control socket owed the answer to a "snapshot"
 
     # -- metrics source -------------------------------------------------------------------
     def engine_statistics(self) -> Any:
@@ -407,6 +417,10 @@ class Service:
         """Storage and guard figures for the metrics page."""
         return {"writable": 1.0 if self._down is None else 0.0,
                 "failures": float(self.storage_failures), "clipped": float(self.guards.stats.clipped)}
+
+    def dedup_state(self) -> dict[str, int]:
+        """The duplicate window's size, bounds and evictions for the metrics page."""
+        return self.dedup.statistics()
 
     def uptime_s(self) -> float:
         return time.monotonic() - self.started
@@ -489,7 +503,7 @@ class Service:
         snapshot plus the journal after it — :func:`journal.restore`, the offline path."""
         cfg = self.cfg
         want = EngineSettings.from_config(cfg)
-        self.dedup = Dedup(cfg["service.dedup_batches"], cfg["service.dedup_reporters"])
+        self.dedup = make_dedup(cfg)
         try:
             snaps = _journal.SnapshotStore(_journal.snapshot_dir(state_dir))
         except OSError as e:
@@ -519,7 +533,7 @@ class Service:
             # the snapshot's windows first, then the tail's batches on top (on_record ran
             # before we got here, so put the tail back after the restore)
             tail = self.dedup
-            self.dedup = Dedup(cfg["service.dedup_batches"], cfg["service.dedup_reporters"])
+            self.dedup = make_dedup(cfg)
             self.dedup.restore(r.state.get("dedup", ()))
             self.dedup.restore(tail.export())
             self.restored["snapshot_record"] = r.snapshot_record
@@ -714,7 +728,9 @@ class Service:
         """Rebuild the duplicate windows from replayed batch records."""
         if rec.kind == "batch" and "ack" in rec.body:
             b, ack = rec.body, rec.body["ack"]
-            self.dedup.put(b["reporter"], b["batch"], ack.get("accepted", 0), ack.get("rejected", ()))
+            # a stored reason this version no longer has is dropped, not fatal at start-up
+            self.dedup.put(b["reporter"], b["batch"], ack.get("accepted", 0),
+                           [x for x in ack.get("rejected", ()) if self.dedup.knows(str(x[1]))])
 
     def _commit(self) -> None:
         """Make this turn's appends durable as the fsync policy promises (group commit):
@@ -764,7 +780,7 @@ class Service:
     def _rebuild_from_disk(self) -> None:
         """Engine and duplicate windows from the state directory, read-only."""
         cfg = self.cfg
-        fresh = Dedup(cfg["service.dedup_batches"], cfg["service.dedup_reporters"])
+        fresh = make_dedup(cfg)
         old, self.dedup = self.dedup, fresh
         try:
             r = _journal.restore(cfg["service.state_dir"], self.topo, EngineSettings.from_config(cfg),
@@ -776,7 +792,7 @@ class Service:
             return
         if r.snapshot_record:
             tail = self.dedup
-            self.dedup = Dedup(cfg["service.dedup_batches"], cfg["service.dedup_reporters"])
+            self.dedup = make_dedup(cfg)
             self.dedup.restore(r.state.get("dedup", ()))
             self.dedup.restore(tail.export())
         with self.lock:
@@ -890,6 +906,8 @@ class Service:
         t = min(self._next_publish_all, self._next_snapshot)
         if self.listeners is not None and self.listeners.waiting():
             t = min(t, self._next_gate_tick)
+        if self._snap_child is not None:
+            t = min(t, now + 0.05)      # look for the snapshot child's end
         if self._touched:
             t = min(t, self._last_decide + self.cfg["service.debounce_s"])
         if self._unsynced:
@@ -970,11 +988,9 @@ class Service:
                                      ing.batch), ing.batch
         if self._down is not None:
             return self._unavailable(ing.batch), ing.batch
-        seen = self.dedup.get(ing.reporter, ing.batch)
-        if seen is not None:
-            c.batches["duplicate"] += 1
-            c.reject("duplicate", ing.rows_total)
-            return wire.encode_ack(ing.batch, seen[0], seen[1]), ing.batch
+        refusal = self._dedup_answer(ing)
+        if refusal is not None:
+            return refusal, ing.batch
         if not self.guards.admit(ing.reporter, ing.rows_total, time.monotonic()):
             c.refuse(_guards.RATE_LIMITED)
             g = self.guards.settings
@@ -986,6 +1002,21 @@ class Service:
             return self._apply_ingest(self._screen(ing, peer)), ing.batch
         except StorageDown:
             return self._unavailable(ing.batch), ing.batch
+
+    def _dedup_answer(self, ing: wire.Ingest) -> bytes | None:
+        """The answer to a batch the duplicate window knows (a repeat, a stale number, a
+        new name with no room for its mark), or None: apply it."""
+        c = self.counters
+        seen = self.dedup.check(ing.reporter, ing.batch)
+        if seen.kind == _dedup.FRESH:
+            return None
+        if seen.kind == _dedup.REPEAT:
+            c.batches["duplicate"] += 1
+            c.reject("duplicate", ing.rows_total)
+            return wire.encode_ack(ing.batch, seen.accepted, seen.rejected)
+        code = "stale_batch" if seen.kind == _dedup.STALE else "reporters_full"
+        c.refuse(code)
+        return wire.encode_error(dedup_refusal(seen, ing.reporter, ing.batch, self.dedup), ing.batch)
 
     def _screen(self, ing: wire.Ingest, peer: _security.Reporter | None) -> wire.Ingest:
         """Authorisation (CURVE on) and the plausibility guards: the rows that may reach
@@ -1087,6 +1118,9 @@ class Service:
                                      "the allow file)")
         try:
             out = self._control(op, req)
+        except _Deferred:
+            self._snap_reply = sock
+            return None
         except StorageDown as e:
             self.counters.control_request(op, False)
             return wire.encode_error(f"unavailable: the journal cannot be written ({e})")
@@ -1111,6 +1145,8 @@ class Service:
         if op == "health":
             return self.health()
         if op == "snapshot":
+            if self._snap_child is None and self._snapshot_background("request"):
+                raise _Deferred()     # answered when the child is done (_answer_snapshot)
             rec = self._snapshot("request")
             return {"snapshot": {"record": rec}}
         if op == "reload":
@@ -1156,6 +1192,7 @@ class Service:
                 "acks_undeliverable": c.acks_undeliverable,
                 "dedup_entries": len(self.dedup),
             },
+            "dedup": self.dedup.statistics(),
             "journal": {"bytes": self.journal_bytes(), "last_record": self._last_record,
                         "fsync": self.cfg["service.journal.fsync"]},
             "last_snapshot": None if self.last_snapshot_at is None else {
@@ -1199,10 +1236,13 @@ class Service:
             self._next_publish_all = now + cfg["service.publish_interval_s"]
         if self._pub_queue:
             self._publish_due(cfg["service.publish_budget_s"])
+        if self._snap_child is not None:
+            self._reap_snapshot()
         if now >= self._next_snapshot and self._down is None:
             if self._last_record != self.last_snapshot_record:
                 with contextlib.suppress(StartError, StorageDown):   # logged, retried next interval
-                    self._snapshot("interval")
+                    if not self._snapshot_background():
+                        self._snapshot("interval")
             self._next_snapshot = now + cfg["service.snapshot_interval_s"]
 
     def _decide_and_publish(self, now_mono: float) -> None:
@@ -1257,31 +1297,125 @@ class Service:
             n += 1
         self.counters.publications[cause] += n
 
-    def _snapshot(self, cause: str) -> int:
+    def _snapshot_state(self) -> tuple[dict[str, Any], int]:
+        """Commit, then the state to snapshot (the engine's own arrays, no copies) and the
+        journal record it covers.  Consistent only until the loop changes the engine."""
         eng = self.engine
         assert eng is not None
+        self._commit()
+        return _engine_state(eng, copy=False, dedup=self.dedup.export()), self._last_record
+
+    def _snapshot_background(self, cause: str = "interval") -> bool:
+        """Start a snapshot in a forked child (see the module docstring); False when one
+        cannot be started that way (then the caller writes it in the loop)."""
+        if self._snap_child is not None:
+            # one at a time: the running one covers this interval; a request wants a newer one
+            return cause == "interval"
+        if not (self.cfg["service.snapshot_background"] and hasattr(os, "fork")):
+            return False
         if self._down is not None or self.journal is None:
             raise StorageDown(self._down or "the journal is closed")
         with self.lock:
-            self._commit()
-            state = _engine_state(eng, dedup=self.dedup.export())
-            rec = self._last_record
-        try:
-            self.snapshots.write(state, rec)
-        except OSError as e:
-            # the journal still holds everything: a failed snapshot loses nothing
-            for tmp in glob.glob(os.path.join(self.snapshots.dir, f".snap-*.tmp{os.getpid()}")):
-                with contextlib.suppress(OSError):
-                    os.unlink(tmp)
+            state, rec = self._snapshot_state()
+            tmp = self.snapshots.prepare(rec)
+            t0 = time.perf_counter()
+            try:
+                with warnings.catch_warnings():   # 3.12+: fork with threads; the child
+                    warnings.simplefilter("ignore", DeprecationWarning)   # is safe, see below
+                    pid = os.fork()
+            except OSError as e:
+                self.log.warning("snapshot: fork failed; writing it in the loop", reason=_os_reason(e))
+                return False
+            if pid == 0:   # pragma: no cover - the child (coverage does not follow os._exit)
+                _snapshot_child(self.snapshots, tmp, state, rec)
+            self.counters.snapshot_pause.observe(time.perf_counter() - t0)
+        self._snap_child = (pid, tmp, rec, time.monotonic())
+        self._snap_cause = cause
+        return True
+
+    def _reap_snapshot(self, wait: bool = False) -> None:
+        """A finished snapshot child: install its file and only then retire the journal
+        segments it covers; a failed one is logged and its file removed (nothing lost)."""
+        if self._snap_child is None:
+            return
+        pid, tmp, rec, started = self._snap_child
+        done, status = os.waitpid(pid, 0 if wait else os.WNOHANG)
+        if done == 0:
+            if time.monotonic() - started > SNAPSHOT_CHILD_LIMIT_S:
+                os.kill(pid, signal.SIGKILL)
+                os.waitpid(pid, 0)
+                status = -1
+                self.log.error("snapshot child overdue: killed", pid=pid,
+                               limit_s=SNAPSHOT_CHILD_LIMIT_S)
+            else:
+                return
+        self._snap_child = None
+        cause = self._snap_cause
+        code = os.waitstatus_to_exitcode(status) if status != -1 else -9
+        why: str | None = None
+        if code != 0:
+            why = SNAPSHOT_CHILD_EXITS.get(code, f"child exit status {code}")
+        elif self._down is not None or self.journal is None:
+            why = f"the journal cannot be written ({self._down})"
+        else:
+            try:
+                self.snapshots.install(tmp, rec)
+            except OSError as e:
+                why = _os_reason(e)
+        if why is not None:
+            with contextlib.suppress(OSError):
+                os.unlink(tmp)
             self.log.error("snapshot failed; the journal keeps every record", cause=cause,
-                           reason=_os_reason(e))
-            raise StartError(f"snapshot failed: {_os_reason(e)}") from None
+                           reason=why)
+            self._answer_snapshot(wire.encode_error(f"bad_request: snapshot failed: {why}"), False)
+            return
+        self._snapshot_done(cause, rec)
+        self._answer_snapshot(wire.encode_reply({"snapshot": {"record": rec}}), True)
+
+    def _answer_snapshot(self, reply: bytes, ok: bool) -> None:
+        """Send the answer a control ``snapshot`` request waited for (if one did)."""
+        sock, self._snap_reply = self._snap_reply, None
+        if sock is None:
+            return
+        import zmq
+
+        self.counters.control_request("snapshot", ok)
+        with contextlib.suppress(zmq.ZMQError):
+            sock.send(reply, zmq.NOBLOCK)
+
+    def _snapshot_done(self, cause: str, rec: int) -> None:
         # retire only what every kept snapshot covers: a corrupt newest one has a fallback
-        self.journal.retire_before(self.snapshots.retire_point())
+        if self.journal is not None:
+            self.journal.retire_before(self.snapshots.retire_point())
         self.last_snapshot_at = time.time()
         self.last_snapshot_record = rec
         self.counters.snapshots[cause] += 1
         self.log.info("snapshot", cause=cause, record=rec, journal_bytes=self.journal_bytes())
+
+    def _snapshot(self, cause: str) -> int:
+        """A snapshot written in the loop (control ``snapshot``, shutdown, or when no child
+        can be forked): streamed from the engine's arrays, durable when this returns."""
+        eng = self.engine
+        assert eng is not None
+        if self._down is not None or self.journal is None:
+            raise StorageDown(self._down or "the journal is closed")
+        self._reap_snapshot(wait=True)     # a child still writing: let it finish first
+        with self.lock:
+            state, rec = self._snapshot_state()
+            t0 = time.perf_counter()
+            try:
+                self.snapshots.write(state, rec)
+            except OSError as e:
+                # the journal still holds everything: a failed snapshot loses nothing
+                for tmp in glob.glob(os.path.join(self.snapshots.dir, f".snap-*.tmp{os.getpid()}")):
+                    with contextlib.suppress(OSError):
+                        os.unlink(tmp)
+                self.log.error("snapshot failed; the journal keeps every record", cause=cause,
+                               reason=_os_reason(e))
+                raise StartError(f"snapshot failed: {_os_reason(e)}") from None
+            finally:
+                self.counters.snapshot_pause.observe(time.perf_counter() - t0)
+        self._snapshot_done(cause, rec)
         return rec
 
     # -- reload ---------------------------------------------------------------------------
@@ -1372,6 +1506,14 @@ class Service:
 
     def close(self) -> None:
         """Release everything (idempotent); queued replies get ``service.linger_s``."""
+        if self._snap_child is not None:     # an unfinished snapshot: never installed
+            pid, tmp, _, _ = self._snap_child
+            self._snap_child = None
+            with contextlib.suppress(OSError):
+                os.kill(pid, signal.SIGKILL)
+                os.waitpid(pid, 0)
+            with contextlib.suppress(OSError):
+                os.unlink(tmp)
         if self.metrics_server is not None:
             self.metrics_server.shutdown()
             self.metrics_server.server_close()
@@ -1400,6 +1542,27 @@ class Service:
             if j is not None:
                 with contextlib.suppress(OSError):
                     j.close()
+
+
+def _snapshot_child(store: Any, tmp: str, state: Any, rec: int) -> None:
+    """The forked snapshot child: write and fsync ``tmp`` from copy-on-write memory, then
+    ``os._exit`` — never return into the service.  Only this thread exists here: it touches
+    no zmq socket or context, no logger, no lock another thread may have held at the fork
+    (the parent's threads are gone), and never runs the garbage collector (a collected
+    zmq object would close a socket the parent still uses)."""
+    code = 2
+    try:
+        gc.disable()
+        for sig in (signal.SIGTERM, signal.SIGINT, signal.SIGHUP):
+            signal.signal(sig, signal.SIG_DFL)   # not the parent's handlers (they write to zmq)
+        store.write_file(tmp, state, rec)
+        code = 0
+    except OSError:
+        code = 1
+    except BaseException:  # noqa: BLE001 - anything at all: report by status, never return
+        code = 2
+    finally:
+        os._exit(code)
 
 
 def _os_reason(e: BaseException) -> str:

@@ -542,7 +542,7 @@ class Front:
     def __init__(self, cfg: _config.Config, topo: _topology.Topology, smap: ShardMap,
                  args: argparse.Namespace | None = None, out: Any = None, inputs: Any = None):
         from . import guards as _guards
-        from .service import Dedup, Log
+        from .service import Log, make_dedup
 
         self.inputs = inputs     # statedir.Chosen: where cfg and topo came from
         self.cfg = cfg
@@ -554,7 +554,7 @@ class Front:
         self.guards = _guards.Guards(topo, _guards.GuardSettings.from_config(cfg))
         # the combined acks, so a re-sent batch is answered before any split (as one
         # process does); after a front restart each worker's durable window answers
-        self.dedup = Dedup(cfg["service.dedup_batches"], cfg["service.dedup_reporters"])
+        self.dedup = make_dedup(cfg)
         self.external = bool(getattr(args, "external_workers", False))
         self.workers = [_Worker(k) for k in range(smap.n_shards)]
         self.pending: dict[bytes, _Pending] = {}
@@ -933,10 +933,18 @@ class Front:
             self.counts["batches_refused"] += 1
             self._answer(env, wire.encode_error(ing))
             return
-        seen = self.dedup.get(ing.reporter, ing.batch)
-        if seen is not None:
+        from . import dedup as _dedup
+        from .service import dedup_refusal
+
+        seen = self.dedup.check(ing.reporter, ing.batch)
+        if seen.kind == _dedup.REPEAT:
             self.counts["batches_duplicate"] += 1
-            self._answer(env, wire.encode_ack(ing.batch, seen[0], seen[1]))
+            self._answer(env, wire.encode_ack(ing.batch, seen.accepted, seen.rejected))
+            return
+        if seen.kind != _dedup.FRESH:   # stale number or no room for a new name's mark
+            self.counts["batches_refused"] += 1
+            self._answer(env, wire.encode_error(dedup_refusal(seen, ing.reporter, ing.batch,
+                                                              self.dedup), ing.batch))
             return
         if not self.guards.admit(ing.reporter, ing.rows_total, time.monotonic()):
             self.counts["batches_refused"] += 1

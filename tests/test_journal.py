@@ -473,3 +473,68 @@ def test_batch_body_round_trip(topo: topology.Topology) -> None:
     assert body["links"] == [[0, 1, True]] and body["t"] == 1.5
     res = E.ObserveResult(1, ((0, "bad_latency"),), np.empty(1))
     assert J.accepted_part(hb, res.rejected).src.tolist() == [1]
+
+
+def _write_format1(path: str, state: dict, no: int) -> None:
+    """A snapshot as the first format wrote it (one msgpack body after a 28-byte header)."""
+    body = J.pack({"record_no": no, "written_at": 1.0, "state": state})
+    _write(path, J.SNAP_HEADER.pack(J.SNAP_MAGIC, no, len(body), zlib.crc32(body)) + body)
+
+
+def test_snapshot_first_format_still_reads(tmp_path: pytest.TempPathFactory) -> None:
+    d = str(tmp_path)
+    st = _state()
+    _write_format1(os.path.join(d, "snap-00000000000000000007.rs"), st, 7)
+    got, no = J.SnapshotStore(d).latest()
+    assert no == 7 and _eq(got, st)
+    J.SnapshotStore(d).write(st, 9)                      # the new format next to it
+    assert _read(os.path.join(d, "snap-00000000000000000009.rs"))[:8] == J.SNAP2_MAGIC
+    assert [n for n, _ in J.SnapshotStore(d).list()] == [7, 9]
+
+
+def test_snapshot_stream_checks_every_byte(tmp_path: pytest.TempPathFactory) -> None:
+    d = str(tmp_path)
+    st = _state()
+    st["big"] = np.arange(3 * J.SNAP_CHUNK // 8 + 5, dtype=np.float64)   # four data chunks
+    path = J.SnapshotStore(d).write(st, 5)
+    got, _ = J.SnapshotStore.read(path)
+    assert _eq(got, st)
+    data = _read(path)
+    rng = np.random.default_rng(1)
+    for pos in [8, 16, 20, 40, len(data) // 2, len(data) - 30, len(data) - 1,
+                *rng.integers(0, len(data), 20).tolist()]:
+        bad = bytearray(data)
+        bad[pos] ^= 0x01
+        _write(path, bad)
+        with pytest.raises(ValueError):
+            J.SnapshotStore.read(path)
+    for cut in [0, 9, 17, 30, len(data) // 3, len(data) - 1]:
+        _write(path, data[:cut])
+        with pytest.raises(ValueError):
+            J.SnapshotStore.read(path)
+    _write(path, data + b"\0")
+    with pytest.raises(ValueError, match="bytes after it"):
+        J.SnapshotStore.read(path)
+
+
+def test_snapshot_write_holds_no_second_copy(tmp_path: pytest.TempPathFactory) -> None:
+    # issue 13: a snapshot packed the whole state into one body (+565 MB at 1,000 nodes);
+    # streamed, the writer allocates next to nothing beyond the arrays it is given
+    import tracemalloc
+
+    st = {"engine": {"Q": np.random.default_rng(0).random((64, 64, 64)),      # 2 MiB each
+                     "N": np.ones((64, 64, 64), dtype=np.int64)}, "x": [1, 2]}
+    nbytes = st["engine"]["Q"].nbytes * 2
+    s = J.SnapshotStore(str(tmp_path))
+    tracemalloc.start()
+    try:
+        base = tracemalloc.get_traced_memory()[0]
+        tracemalloc.reset_peak()
+        s.write(st, 3)
+        peak = tracemalloc.get_traced_memory()[1] - base
+    finally:
+        tracemalloc.stop()
+    # (msgpack's packer allocates a fixed 0.5 MiB buffer; the old writer peaked at 2 x nbytes)
+    assert peak < nbytes / 4, (peak, nbytes)
+    got, _ = s.latest()
+    assert _eq(got, st)

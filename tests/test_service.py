@@ -20,7 +20,7 @@ import zmq
 from service_harness import ServiceProc, running, service_args
 
 from routerd import client, config, journal, wire
-from routerd.service import Dedup, load_config, load_topology
+from routerd.service import load_config, load_topology
 
 DEMO = load_topology(config.load(None))
 
@@ -332,7 +332,7 @@ def test_sigterm_final_snapshot_final_tables_and_restart_restores(base: str) -> 
         state, rec = store.latest()
         last = max(r.no for r in journal.iter_records(journal.journal_dir(sp.state_dir)))
         assert rec == last
-        dedup = {r: [b for b, _, _ in w] for r, w in state["dedup"]}
+        dedup = {r: list(bs) for r, bs, _, _ in state["dedup"]["windows"]}
         assert len(dedup["term"]) == 20
     finally:
         sp.kill()
@@ -426,22 +426,6 @@ def test_start_up_errors_are_clear(base: str) -> None:
 
 
 # ---- units ------------------------------------------------------------------------------
-def test_dedup_is_bounded_per_reporter_and_in_reporters() -> None:
-    d = Dedup(per_reporter=3, reporters=2)
-    for b in range(5):
-        d.put("a", b, 1, [])
-    assert [d.get("a", b) is not None for b in range(5)] == [False, False, True, True, True]
-    d.put("b", 0, 2, [(0, "bad_row")] * 1000)
-    assert len(d.get("b", 0)[1]) == 256              # rejections kept per batch are capped
-    d.get("a", 4)
-    d.put("a", 5, 1, [])                             # "a" seen last: "b" is the oldest
-    d.put("c", 0, 1, [])
-    assert d.get("b", 0) is None and d.get("a", 5) is not None and d.get("c", 0) is not None
-    e = Dedup(3, 2)
-    e.restore(d.export())
-    assert e.export() == d.export() and len(e) == len(d) == 4
-
-
 def test_flags_override_the_config_and_topology_paths_are_relative_to_it(tmp_path) -> None:
     sub = tmp_path / "etc"
     sub.mkdir()
