@@ -55,6 +55,7 @@ import numpy as np
 
 from . import config as _config
 from . import journal as J
+from . import statedir as _statedir
 from . import topology as _topology
 from . import variants as _variants
 from . import wire
@@ -111,7 +112,16 @@ def configure(p: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     from . import shard as _shard
 
+    lock: _statedir.StateLock | None = None
     try:
+        into = _statedir.enclosing_state_dir(args.out)
+        if into is not None:
+            # writing into a state dir: only while no service (or other replay) uses it
+            try:
+                lock = _statedir.StateLock(into, "routerd replay --out").acquire()
+            except (_statedir.StateDirBusy, OSError) as e:
+                raise ReplayError(Problem("--out", args.out, f"is inside a state dir that cannot be "
+                                          f"locked: {e}")) from None
         if _shard.sharded_state(args.source):   # a sharded service's state dir: merge
             res = _shard.replay_command(args)
         else:
@@ -121,6 +131,9 @@ def run(args: argparse.Namespace) -> int:
         for pr in e.problems:
             print(f"  {pr}", file=sys.stderr)
         return 2
+    finally:
+        if lock is not None:
+            lock.release()
     for line in res["printed"]:
         print(line)
     return 0

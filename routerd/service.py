@@ -78,6 +78,7 @@ from . import config as _config
 from . import guards as _guards
 from . import journal as _journal
 from . import security as _security
+from . import statedir as _statedir
 from . import topology as _topology
 from .cautions import CAUTIONS
 from .engine import Engine, EngineSettings, HopBatch
@@ -330,6 +331,7 @@ class Service:
         self._unsynced = False
         self._unsynced_since = 0.0
         self._monitor: Any = None
+        self.state_lock: _statedir.StateLock | None = None
 
     # -- metrics source -------------------------------------------------------------------
     def engine_statistics(self) -> Any:
@@ -372,6 +374,10 @@ class Service:
         state_dir = cfg["service.state_dir"]
         try:
             os.makedirs(state_dir, exist_ok=True)
+            # one writer per state dir, before anything in it is read or written
+            self.state_lock = _statedir.StateLock(state_dir, self._lock_what()).acquire()
+        except _statedir.StateDirBusy as e:
+            raise StartError(str(e)) from None
         except OSError as e:
             raise StartError(f"state dir {state_dir}: {e.strerror}") from None
         self._restore(state_dir)
@@ -391,6 +397,10 @@ class Service:
             # as the process: keep the collector from walking it on every generation-2 pass
             gc.collect()
             gc.freeze()
+
+    def _lock_what(self) -> str:
+        """What the lock file says holds the directory (shown to a second process)."""
+        return "routerd serve"
 
     def _warn_exposed(self) -> None:
         """Endpoints other hosts can reach without CURVE: said at start-up (the defaults
@@ -1288,6 +1298,9 @@ class Service:
             if j is not None:
                 with contextlib.suppress(OSError):
                     j.close()
+        if self.state_lock is not None:
+            self.state_lock.release()
+            self.state_lock = None
 
 
 def _os_reason(e: BaseException) -> str:
