@@ -1,9 +1,11 @@
 """Durable state: the append-only journal, engine snapshots, and the one replay path.
 
-Owns the on-disk formats under a state directory, start-up recovery (torn tails, corrupt
-records, corrupt snapshots), and :func:`replay_into` — the single function that applies
-journal records to an :class:`~routerd.engine.Engine`, used by the service's start-up
-recovery and by offline replay alike, so both reach the same state bit for bit.
+Owns the on-disk formats under a state directory, start-up recovery
+(:func:`recover_state`: torn tails, corrupt records, gaps, corrupt or missing snapshots —
+one procedure the service's start-up and offline replay both call), and
+:func:`replay_into` — the single function that applies journal records to an
+:class:`~routerd.engine.Engine`, used by the service's start-up recovery and by offline
+replay alike, so both reach the same state bit for bit.
 
 Must not import: zmq, prometheus, the simulator, the service.  Reads the clock only for
 the ``interval`` fsync policy and the snapshot's informational ``written_at``.  Never
@@ -32,22 +34,39 @@ Record kinds (bodies are maps):
 * ``tick``   — the service called ``Engine.decide(t)``: ``t``.
 * ``config`` — a reload: ``settings`` (every :class:`EngineSettings` field).
 
-Recovery rules (theory of operation).  Records are read in order; the first record that
-does not check out ends the journal:
+* ``snapshot`` — a note written right after a snapshot: ``record`` (what it covers) and
+  ``kept`` (the snapshot records present after writing it); recovery reads the last note to
+  tell a snapshot that went missing.  The engine ignores it.
 
-* *torn* — the file ends inside a header or inside the body a valid header announces
-  (a write cut short by a crash): the segment is truncated at that record's offset.
-* *corrupt* — bad magic, bad CRC, a length beyond the limit or a record number out of
-  sequence with bytes after it: the segment is truncated at that offset, the cut bytes are
-  kept beside it as ``<segment>.tail-<offset>.bad``, and every later segment is renamed
-  ``<segment>.bad``.  Nothing later can be applied without the missing record, so nothing
-  later is applied; nothing is deleted either.
+Recovery (theory of operation; :func:`recover_state`, steps in :data:`RECOVERY_STEPS`).  A
+snapshot holds the engine state covering records ``<= b``, so a restart needs only the
+records after the newest snapshot that reads back intact.  Snapshots are read newest
+first; one that fails its CRC or does not decode is reported and the next older one is
+tried (b = 0 without one).  Then every journal record is read in order.  After damage the
+reader resynchronises on the next record with a good CRC, which tells which record
+numbers the damage lost.  Each finding is classified by whether everything it loses is
+``<= b`` (*before*: the snapshot holds it) or not (*after*), and :data:`RECOVERY_RULES`
+gives the action:
 
-Both are reported (:class:`RecoveryReport`), never fatal.  A gap in numbering *between*
-segments (records lost under ``fsync: never`` below a snapshot) is reported, not fatal.
-Snapshots are read newest first; one that fails its CRC or does not decode is reported and
-the previous one is used (with the journal from its record on — retire segments only
-before :meth:`SnapshotStore.retire_point`, the oldest kept snapshot).
+* *torn* — the file ends inside a header or inside the body a valid header announces, and
+  nothing valid follows (a write cut short by a crash; never acknowledged, since acks wait
+  for the fsync): the segment is truncated there (*cut*).
+* *corrupt* — bad magic, bad CRC, a length beyond the limit, a bad segment header: before
+  b it is reported and read past (*skip*: nothing lost, nothing changed); after b the
+  journal *stops* there.
+* *gap* — record numbers jump (a deleted segment, records lost under ``fsync: never``):
+  before b *skip*, after b *stop*.  A journal that starts above b + 1 has a gap too.
+
+A *stop* keeps the segment's bytes from the offset as ``<segment>.tail-<offset>.bad`` (the
+whole segment as ``<segment>.bad`` when nothing before the offset is kept) and renames
+every later segment ``<segment>.bad`` (a ``-2``, ``-3``... suffix instead of overwriting
+an earlier one): nothing later can be applied without the missing records, so nothing
+later is applied, loudly; nothing is deleted either.  All of it is reported
+(:class:`RecoveryReport`), never fatal.  With ``apply=False`` (replay, read-only restores)
+nothing is changed and the report is the same.  Retirement keeps the journal back to the
+second-newest intact snapshot (:meth:`SnapshotStore.retire_point`; from record 1 while
+fewer than two exist), so a newest snapshot found bad or deleted later falls back with
+every record it needs.
 """
 from __future__ import annotations
 

@@ -32,9 +32,13 @@ routed with the recorded tables: a variant is judged on the recorded traffic, no
 traffic its own tables would have drawn (for that, the simulator with ``--traffic`` and
 ``--link-trace``).
 
-Start.  A journal still holding record 1 is replayed from scratch.  One whose early
-segments were retired behind snapshots starts from the oldest intact snapshot it
-continues from, so every variant starts from the same learned state.
+Start and end.  The records are the ones the service's own start-up recovery keeps
+(:func:`routerd.journal.recover_state`, run read-only: the same report, shown in
+``replay.json`` ``recovery`` and printed as ``recovery ...`` lines word for word as the
+service's banner and ``health`` give them); the replay ends where they end.  It starts as
+early as they allow: record 1 when the journal holds it undamaged up to the recovery's
+snapshot, else the oldest intact snapshot from which it does, else that snapshot; every
+variant starts from the same learned state, and the recorded run reaches the service's.
 """
 from __future__ import annotations
 
