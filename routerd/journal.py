@@ -363,7 +363,7 @@ class _Damage:
     """Damage :func:`_scan` found: where, why, and where reading resumes (None: nowhere
     further in this segment)."""
 
-    __slots__ = ("offset", "detail", "torn", "resume", "resume_no")
+    __slots__ = ("detail", "offset", "resume", "resume_no", "torn")
 
     def __init__(self, offset: int, detail: str, torn: bool, resume: int | None, resume_no: int | None):
         self.offset, self.detail, self.torn, self.resume, self.resume_no = offset, detail, torn, resume, resume_no
@@ -415,17 +415,17 @@ RECOVERY_RULES: dict[tuple[str, str], str] = {
 
 #: The recovery procedure, step by step (:func:`recover_state` follows it; the docs quote it).
 RECOVERY_STEPS: tuple[tuple[str, str], ...] = (
-    ("snapshots", "list the snapshots newest first; the first that reads back intact is the base "
-                  "(its record b; b = 0 without one); each one that does not is reported"),
-    ("walk", "read every journal record in order, resynchronising after damage on the next record "
-             "with a good CRC"),
-    ("classify", "a torn tail, a corrupt stretch or a gap in record numbers is 'before' when every "
-                 "record it loses is <= b, else 'after'; RECOVERY_RULES gives the action"),
-    ("stop", "at the first 'stop': keep the segment's bytes from there as <segment>.tail-<offset>.bad "
-             "(or the whole segment as <segment>.bad) and every later segment as <segment>.bad; "
-             "nothing is deleted"),
-    ("missing", "the last snapshot note read names the snapshots that should exist; one absent "
-                "(and not older than every snapshot present) is reported missing"),
+    ("snapshots", ("list the snapshots newest first; the first that reads back intact is the "
+                   "base (its record b; b = 0 without one); each one that does not is reported")),
+    ("walk", ("read every journal record in order, resynchronising after damage on the next "
+              "record with a good CRC")),
+    ("classify", ("a torn tail, a corrupt stretch or a gap in record numbers is 'before' when "
+                  "every record it loses is <= b, else 'after'; RECOVERY_RULES gives the action")),
+    ("stop", ("at the first 'stop': keep the segment's bytes from there as "
+              "<segment>.tail-<offset>.bad (or the whole segment as <segment>.bad) and every "
+              "later segment as <segment>.bad; nothing is deleted")),
+    ("missing", ("the last snapshot note read names the snapshots that should exist; one "
+                 "absent (and not older than every snapshot present) is reported missing")),
     ("replay", "the engine is the base plus records b+1 .. the last record kept"),
 )
 
@@ -584,7 +584,7 @@ def recover(directory: str, *, base: int | None = None, apply: bool = True,
     path = rd.segs[i][1]
     size = os.path.getsize(path)
     stop = rep.findings[-1]
-    changed: list[tuple[str, Any]] = []
+    changed: list[tuple[Any, ...]] = []   # (op, path, ...): planned, done only with apply
     if torn:
         if kept_here == 0 and off <= SEG_HEADER.size and (off == 0 or size < SEG_HEADER.size):
             rep.removed_empty.append(os.path.basename(path))

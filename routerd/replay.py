@@ -269,8 +269,8 @@ def find_start(src: Source, fallback: EngineSettings, recovery: J.Recovery | Non
             why = "holds no journal records" if stop is None else (
                 "is the first journal record left and no intact snapshot covers the records "
                 f"before it ({stop.line(0)})")
-            first = stop.lost[1] + 1 if stop is not None and stop.lost else ""
-            raise ReplayError(Problem(src.journal_dir, first, why
+            at = stop.lost[1] + 1 if stop is not None and stop.lost else ""
+            raise ReplayError(Problem(src.journal_dir, at, why
                                       + (f" ({'; '.join(problems)})" if problems else "")))
         if rep.first_record != 1:
             raise ReplayError(Problem(src.journal_dir, rep.first_record,

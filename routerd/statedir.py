@@ -17,7 +17,6 @@ import errno
 import fcntl
 import os
 
-
 # ---- lock ---------------------------------------------------------------------------------
 # (one writer per state directory: service, replay into a directory, shard workers)
 #

@@ -48,7 +48,7 @@ def settled_bytes(state_dir: str) -> dict[str, bytes]:
 
 def run_cli(*argv: str, timeout: float = 60) -> subprocess.CompletedProcess[str]:
     return subprocess.run([sys.executable, "-m", "routerd", *argv], capture_output=True,
-                          text=True, timeout=timeout)
+                          text=True, timeout=timeout, check=False)
 
 
 def send_some(sp: ServiceProc, reporter: str, first: int, n: int, rng: np.random.Generator) -> None:

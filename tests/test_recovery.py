@@ -147,7 +147,7 @@ def test_a_single_snapshot_corrupt_or_deleted_loses_nothing(tmp_path: pytest.Tem
         d = str(tmp_path / damage)
         w = Writer(d)
         w.run(100, snapshot_at=(60,))
-        (no, snap), = J.SnapshotStore(J.snapshot_dir(d)).list()
+        ((_, snap),) = J.SnapshotStore(J.snapshot_dir(d)).list()
         # fewer than two snapshots: the journal is kept from record 1
         assert J._segments(J.journal_dir(d))[0][0] == 1
         if damage == "corrupt":
@@ -284,7 +284,7 @@ def test_replay_and_start_up_agree(tmp_path: pytest.TempPathFactory, damage: str
             fh.seek(40)
             fh.write(b"\x00\x01\x02")
     else:
-        os.unlink([p for f, p in segs if f > snaps[-1][0] + 1][0])
+        os.unlink(next(p for f, p in segs if f > snaps[-1][0] + 1))
     res = _replay(d, str(tmp_path / "out"))
     svc = start_up(d)
     try:
