@@ -267,3 +267,63 @@ def test_crash_and_corrupt_loop(base: str) -> None:
           f"before the kills, {stats['resent']} re-sent ({stats['duplicates']} already journaled), "
           f"{stats['rows']} rows, corruptions {sorted(seen_kinds)}, {took:.1f} s")
     assert stats["rounds"] == 20 and seen_kinds == set(CORRUPTIONS)
+
+
+@pytest.mark.slow
+def test_banner_health_and_replay_report_recovery_alike(base: str) -> None:
+    """One damaged directory: the start-up banner's ``recovery`` lines, ``health``'s
+    ``recovery`` and ``routerd replay``'s printed lines and ``replay.json`` say the same."""
+    import json
+    import time
+
+    from routerd import client
+
+    cfg = os.path.join(base, "c.yaml")
+    with open(cfg, "w", encoding="utf-8") as fh:
+        fh.write("service:\n  snapshot_interval_s: 1000\n  journal:\n    segment_bytes: 4096\n")
+    args = [*service_args(base), "--config", cfg]
+    sp = ServiceProc(base, args)
+    rng = np.random.default_rng(3)
+    try:
+        for i in range(3):
+            send_some(sp, "r", 40 * i, 40, rng)
+            client.control(sp.endpoints["control"], {"op": "snapshot"}, timeout_s=10)
+        send_some(sp, "r", 120, 30, rng)
+        time.sleep(0.3)
+        sp.proc.send_signal(signal.SIGKILL)
+        sp.proc.wait(10)
+    finally:
+        sp.kill()
+    snaps = journal.SnapshotStore(journal.snapshot_dir(sp.state_dir)).list()
+    assert len(snaps) == 3
+    # three kinds at once: the newest snapshot deleted (recovery falls back to the one
+    # before), a record that one covers flipped (reported, costs nothing), a torn tail (cut)
+    os.unlink(snaps[-1][1])
+    spans = [s for s in record_spans(sp.state_dir) if s[1] <= snaps[-2][0]]
+    assert spans, "the journal is kept back to the second-newest snapshot"
+    seg, no, off, length = spans[-1]
+    with open(seg, "r+b") as fh:
+        fh.seek(off + length // 2)
+        fh.write(b"\xee")
+    last = journal._segments(journal.journal_dir(sp.state_dir))[-1][1]
+    with open(last, "ab") as fh:
+        fh.write(b"RJ\x00")
+    out = os.path.join(base, "replay")
+    r = run_cli("replay", sp.state_dir, "--out", out, "--no-plot")
+    assert r.returncode == 0, r.stderr
+    replay_lines = [ln[len("recovery "):] for ln in r.stdout.splitlines() if ln.startswith("recovery ")]
+    with open(os.path.join(out, "replay.json"), encoding="utf-8") as fh:
+        replay_rec = json.load(fh)["recovery"]
+    sp = ServiceProc(base, args)
+    try:
+        banner = [ln[len("  recovery "):] for ln in sp.stdout_lines if ln.startswith("  recovery ")]
+        health = client.control(sp.endpoints["control"], {"op": "health"})["recovery"]
+    finally:
+        sp.kill()
+    assert replay_lines == banner == health["lines"] and len(banner) >= 3, (replay_lines, banner)
+    assert replay_rec == health
+    assert health["snapshots_missing"] == [os.path.basename(snaps[-1][1])]
+    kinds = [(f["kind"], f["where"], f["action"]) for f in health["findings"]]
+    assert kinds == [("corrupt", "before", "skip"), ("torn", "after", "cut")], kinds
+    assert health["findings"][0]["lost"] == [no, no] and not health["set_aside"]
+    assert health["snapshot"]["record"] == snaps[-2][0]
