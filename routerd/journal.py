@@ -166,6 +166,9 @@ class Cut:
     kept_as: str | None = None   # where the cut bytes were kept (corruption only)
 
 
+_FINDING_LABEL = {"torn": "torn tail", "corrupt": "corrupt data", "gap": "gap in record numbers"}
+
+
 @dataclass(frozen=True, slots=True)
 class Finding:
     """One thing recovery found in the journal, and what it did about it.
@@ -188,13 +191,16 @@ class Finding:
     def line(self, base: int) -> str:
         rng = "" if self.lost is None else (
             f"record {self.lost[0]}" if self.lost[0] == self.lost[1] else f"records {self.lost[0]}..{self.lost[1]}")
+        what = _FINDING_LABEL[self.kind]
+        if rng:
+            rng += " missing" if self.kind == "gap" else " unreadable"
         at = f"in {self.segment} at byte {self.offset}: {self.detail}"
         if self.action == "skip":
-            return (f"{self.kind} {at}; {rng or 'the damaged records'} covered by the snapshot at "
-                    f"record {base}: nothing lost, nothing cut")
+            return (f"{what} {at}; {rng or 'no record lost'}, covered by the snapshot at "
+                    f"record {base}: nothing lost, nothing changed")
         if self.action == "cut":
-            return f"torn tail {at}; cut {self.bytes_cut} bytes (an unfinished write, never acknowledged)"
-        return (f"{self.kind} {at}; the journal stops here" + (f" ({rng} missing)" if rng else "")
+            return f"{what} {at}; cut {self.bytes_cut} bytes (an unfinished write, never acknowledged)"
+        return (f"{what} {at}; the journal stops here" + (f" ({rng})" if rng else "")
                 + (f"; {self.bytes_cut} bytes kept as {self.kept_as}" if self.kept_as else "")
                 + "; nothing after it is applied")
 
