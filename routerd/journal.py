@@ -64,9 +64,9 @@ an earlier one): nothing later can be applied without the missing records, so no
 later is applied, loudly; nothing is deleted either.  All of it is reported
 (:class:`RecoveryReport`), never fatal.  With ``apply=False`` (replay, read-only restores)
 nothing is changed and the report is the same.  Retirement keeps the journal back to the
-second-newest intact snapshot (:meth:`SnapshotStore.retire_point`; from record 1 while
-fewer than two exist), so a newest snapshot found bad or deleted later falls back with
-every record it needs.
+oldest kept intact snapshot (:meth:`SnapshotStore.retire_point`; from record 1 while
+fewer than two are intact; never past the second-newest intact one), so a newest snapshot
+found bad or deleted later falls back with every record it needs.
 """
 from __future__ import annotations
 
@@ -999,16 +999,12 @@ class SnapshotStore:
 
     def retire_point(self) -> int:
         """Journal records below this number may be retired (pass it to
-        :meth:`Journal.retire_before`): the second-newest snapshot that reads back intact,
-        0 while fewer than two do — so a newest one found bad or deleted later still has a
-        fallback with the whole journal after it."""
-        good = 0
-        for no, path in reversed(self.list()):
-            if self._intact(path):
-                good += 1
-                if good == 2:
-                    return no
-        return 0
+        :meth:`Journal.retire_before`): the oldest kept snapshot that reads back intact,
+        provided at least two do (so never later than the second-newest intact one); 0
+        while fewer than two do.  A newest snapshot found bad or deleted later therefore
+        still has a fallback with every journal record after it."""
+        intact = [no for no, path in self.list() if self._intact(path)]
+        return intact[0] if len(intact) >= 2 else 0
 
     def trust(self, path: str) -> None:
         """Note that ``path`` was just written and synced by us: :meth:`retire_point` need

@@ -1204,7 +1204,7 @@ class Service:
             self._append("snapshot", {"record": rec, "kept": [n for n, _ in self.snapshots.list()]})
             self._commit()
             self._snapshot_mark = self._last_record
-        # retire only before the second-newest intact snapshot: a newest one found bad
+        # retire only before the oldest intact kept snapshot (two at least): a newest one found bad
         # or deleted later still has a fallback with the journal after it
         if self.journal is not None:
             self.journal.retire_before(self.snapshots.retire_point())

@@ -300,7 +300,7 @@ def test_banner_health_and_replay_report_recovery_alike(base: str) -> None:
     # before), a record that one covers flipped (reported, costs nothing), a torn tail (cut)
     os.unlink(snaps[-1][1])
     spans = [s for s in record_spans(sp.state_dir) if s[1] <= snaps[-2][0]]
-    assert spans, "the journal is kept back to the second-newest snapshot"
+    assert spans, "the journal is kept back to the oldest kept snapshot"
     seg, no, off, length = spans[-1]
     with open(seg, "r+b") as fh:
         fh.seek(off + length // 2)

@@ -328,8 +328,8 @@ def test_snapshot_round_trip_keep_and_fallback(tmp_path: pytest.TempPathFactory)
     for no in (20, 30, 40):
         st["engine"]["now"] = float(no)
         path = s.write(st, no)
-    # the second-newest intact snapshot: a bad newest one still has the journal after 30
-    assert [n for n, _ in s.list()] == [20, 30, 40] and s.retire_point() == 30
+    # the oldest intact one kept: a bad newest one (or two) still has the journal after it
+    assert [n for n, _ in s.list()] == [20, 30, 40] and s.retire_point() == 20
     got, no = s.latest()
     assert no == 40 and _eq(got, st) and got["engine"]["Q"].flags.writeable
     # corrupt the newest: one flipped byte → CRC mismatch → the previous one
@@ -339,12 +339,13 @@ def test_snapshot_round_trip_keep_and_fallback(tmp_path: pytest.TempPathFactory)
     got, no = s.latest()
     assert no == 30 and got["engine"]["now"] == 30.0
     assert any("CRC mismatch" in p for p in s.problems)
-    assert s.retire_point() == 20       # 40 is no longer counted: 30 and 20 are the good two
+    assert s.retire_point() == 20       # 30 and 20 are still two intact ones
     # truncate the next one too
     p30 = s.list()[1][1]
     _write(p30, _read(p30)[:20])
     s2 = J.SnapshotStore(d)
     assert s2.latest()[1] == 20 and len(s2.problems) == 2
+    assert s2.retire_point() == 0     # one intact snapshot left: retire nothing
     _write(s.list()[0][1], b"")
     assert J.SnapshotStore(d).latest() is None
 

@@ -112,8 +112,8 @@ def test_interval_snapshots_retire_segments_and_kill_9_restores_the_state_before
         segs = [f for f in os.listdir(journal.journal_dir(sp.state_dir)) if f.endswith(".rj")]
         assert len(snaps) == 3                                  # the last three are kept
         first_seg = min(int(f[4:24]) for f in segs)
-        assert first_seg > 1, "segments before the second-newest snapshot are retired"
-        assert first_seg <= snaps[-2][0] + 1        # ... and none it needs (the newest's fallback)
+        assert first_seg > 1, "segments covered by every kept snapshot are retired"
+        assert first_seg <= snaps[0][0] + 1                     # ... and none the oldest needs
         assert h["journal"]["bytes"] < n * 20 * 40              # far less than all batches
         sp.proc.send_signal(signal.SIGKILL)
         sp.proc.wait(10)
