@@ -16,6 +16,7 @@ from __future__ import annotations
 import errno
 import fcntl
 import os
+import re
 
 # ---- lock ---------------------------------------------------------------------------------
 # (one writer per state directory: service, replay into a directory, shard workers)
@@ -28,6 +29,7 @@ import os
 # for network file systems that do not carry flock.
 
 LOCK_NAME = "lock"
+_SHARD_DIR = re.compile(r"^shard-\d+-of-\d+$")
 
 
 class StateDirBusy(Exception):
@@ -109,13 +111,28 @@ class StateLock:
         self.release()
 
 
+def _is_state_dir(p: str) -> bool:
+    # a service's dir has journal/; a sharded front's root has its lock file beside the
+    # shards' dirs.  A stray file named "lock" alone does not make a state dir: it is
+    # never opened (taking the lock would overwrite it).
+    if os.path.isdir(os.path.join(p, "journal")):
+        return True
+    if not os.path.isfile(os.path.join(p, LOCK_NAME)):
+        return False
+    try:
+        return any(_SHARD_DIR.match(n) for n in os.listdir(p))
+    except OSError:
+        return False
+
+
 def enclosing_state_dir(path: str) -> str | None:
-    """The state directory ``path`` lies in (itself or its nearest ancestor holding a
-    ``journal/`` dir or a lock file), else None: where ``routerd replay --out`` writes
-    into a service's directory, it takes that directory's lock."""
+    """The state directory ``path`` lies in (itself or its nearest ancestor that is one: it
+    holds ``journal/``, or a lock file beside ``shard-K-of-N`` dirs), else None: where
+    ``routerd replay --out`` writes into a service's directory, it takes that directory's
+    lock."""
     p = os.path.abspath(path)
     while True:
-        if os.path.isdir(os.path.join(p, "journal")) or os.path.isfile(os.path.join(p, LOCK_NAME)):
+        if _is_state_dir(p):
             return p
         up = os.path.dirname(p)
         if up == p:

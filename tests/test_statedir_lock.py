@@ -85,5 +85,12 @@ def test_enclosing_state_dir(tmp_path: pytest.TempPathFactory) -> None:
     other = tmp_path / "elsewhere"
     assert S.enclosing_state_dir(str(other)) is None
     sharded = tmp_path / "front"
+    (sharded / "shard-0-of-2").mkdir(parents=True)
     with S.StateLock(str(sharded)):              # a front's root: a lock file, no journal/
         assert S.enclosing_state_dir(str(sharded / "o")) == str(sharded)
+    # a stray file called "lock" does not make a state dir (and is never touched)
+    stray = tmp_path / "home"
+    stray.mkdir()
+    (stray / "lock").write_text("mine\n")
+    assert S.enclosing_state_dir(str(stray / "out")) is None
+    assert (stray / "lock").read_text() == "mine\n"
