@@ -355,12 +355,13 @@ def _resync(buf: bytes, off: int, above: int) -> int | None:
     ``above``, else None.  (A false match needs a valid CRC-32 over a forged header and
     body: not by chance.)"""
     n = len(buf)
+    mv = memoryview(buf)
     pos = off
     while True:
         pos = buf.find(REC_MAGIC, pos + 1)
         if pos < 0:
             return None
-        no, _end, problem, _torn = _record_at(buf, pos, n)
+        no, _end, problem, _torn = _record_at(mv, pos, n)
         if problem is None and no > above:
             return pos
 
@@ -381,6 +382,7 @@ def _scan(buf: bytes, first: int, above: int) -> Iterator[tuple[int, int, int] |
     good record number before this segment).  ``torn`` damage is an unfinished write: the
     file ends inside it and nothing valid follows."""
     n = len(buf)
+    mv = memoryview(buf)       # CRCs over slices of it copy nothing
     if n < SEG_HEADER.size:
         yield _Damage(0, f"segment header is {n} of {SEG_HEADER.size} bytes", True, None, None)
         return
@@ -390,19 +392,19 @@ def _scan(buf: bytes, first: int, above: int) -> Iterator[tuple[int, int, int] |
         r = _resync(buf, -1, above)
         yield _Damage(0, f"bad segment header (magic {bytes(magic)!r}, first record {hfirst}, "
                          f"file name says {first})", False, r,
-                      None if r is None else _record_at(buf, r, n)[0])
+                      None if r is None else _record_at(mv, r, n)[0])
         if r is None:
             return
         off = r
     while off < n:
-        no, end, problem, torn = _record_at(buf, off, n)
+        no, end, problem, torn = _record_at(mv, off, n)
         if problem is None:
             yield no, off, end
             above = max(above, no)
             off = end
             continue
         r = _resync(buf, off, above)
-        yield _Damage(off, problem, torn and r is None, r, None if r is None else _record_at(buf, r, n)[0])
+        yield _Damage(off, problem, torn and r is None, r, None if r is None else _record_at(mv, r, n)[0])
         if r is None:
             return
         off = r
@@ -436,6 +438,7 @@ RECOVERY_STEPS: tuple[tuple[str, str], ...] = (
 )
 
 _NOTE_PREFIX = b"\x82" + msgpack.packb("kind") + msgpack.packb("snapshot")
+_NOTE_LEN = len(_NOTE_PREFIX)
 
 
 class _Reader:
@@ -539,7 +542,7 @@ class _Reader:
                 self.records += 1
                 kept_here += 1
                 body = mv[off + REC_HEADER_LEN: end]
-                if self.notes and bytes(body[:len(_NOTE_PREFIX)]) == _NOTE_PREFIX:
+                if self.notes and body[:_NOTE_LEN] == _NOTE_PREFIX:
                     obj = unpack(body)
                     if isinstance(obj.get("body"), dict):
                         self.note = obj["body"]
