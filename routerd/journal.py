@@ -550,6 +550,28 @@ class _Reader:
             self.next_floor = max(self.next_floor, first)
 
 
+def _last_note(segs: Sequence[tuple[int, str]], offset: int, above: int) -> dict[str, Any] | None:
+    """The last readable snapshot note in ``segs`` (the first one read from ``offset``)."""
+    note: dict[str, Any] | None = None
+    for k, (first, path) in enumerate(segs):
+        with open(path, "rb") as fh:
+            buf = fh.read()
+        mv = memoryview(buf)
+        for ev in _scan(buf, first, above):
+            if isinstance(ev, _Damage):
+                continue
+            no, off, end = ev
+            if k == 0 and off < offset:
+                continue
+            body = mv[off + REC_HEADER_LEN: end]
+            if body[:_NOTE_LEN] == _NOTE_PREFIX:
+                with contextlib.suppress(Exception):
+                    obj = unpack(body)
+                    if isinstance(obj.get("body"), dict):
+                        note = obj["body"]
+    return note
+
+
 def _aside_name(path: str, suffix: str) -> str:
     """``path + suffix``, or with ``-2``, ``-3``... when an earlier recovery kept one there:
     nothing set aside is ever overwritten."""
@@ -585,7 +607,12 @@ def recover(directory: str, *, base: int | None = None, apply: bool = True,
                           rd.next_floor if rd.stop is None else 1)
     rep.findings = list(rd.findings)
     rep.gaps = [(f.lost[0], f.lost[1] + 1) for f in rd.findings if f.kind == "gap" and f.lost]
-    kept = rd.note.get("kept") if rd.note is not None else None
+    note = rd.note
+    if rd.stop is not None:
+        # nothing after the stop is applied, but its snapshot notes still tell which
+        # snapshots should exist (a deleted newest one behind the damage is reported)
+        note = _last_note(rd.segs[rd.stop[0]:], rd.stop[1], rd.last or 0) or note
+    kept = note.get("kept") if note is not None else None
     rep.noted_snapshots = [int(x) for x in kept] if isinstance(kept, list) else None
     if rd.stop is None:
         return rep

@@ -203,6 +203,24 @@ def test_a_deleted_middle_segment_stops_the_journal_there(tmp_path: pytest.TempP
         stop(svc)
 
 
+def test_a_deleted_snapshot_behind_a_stop_is_still_reported(tmp_path: pytest.TempPathFactory) -> None:
+    """Two faults: the newest snapshot deleted, and the journal after the one before it
+    damaged.  The journal stops at the damage; the notes after it still name the snapshot."""
+    d = str(tmp_path / "s")
+    w = Writer(d)
+    w.run(90, snapshot_at=(30, 60))
+    snaps = J.SnapshotStore(J.snapshot_dir(d)).list()
+    os.unlink(snaps[-1][1])
+    flip(d, w.batch_records[45])                   # after the snapshot at 30: a stop
+    svc = start_up(d)
+    try:
+        rec = svc.health()["recovery"]
+        assert [f["action"] for f in rec["findings"]] == ["stop"]
+        assert rec["snapshots_missing"] == [os.path.basename(snaps[-1][1])]
+    finally:
+        stop(svc)
+
+
 # ---- the rules table, walked ----------------------------------------------------------------
 def _bare(tmp: str, name: str, n: int = 40) -> str:
     d = os.path.join(tmp, name)
@@ -296,6 +314,8 @@ def test_replay_and_start_up_agree(tmp_path: pytest.TempPathFactory, damage: str
         assert printed == health["lines"] and printed
         with open(tmp_path / "out" / "tables.json") as fh:
             assert json.load(fh)["tables"] == wire.tables_by_name(svc.engine)
+        if damage == "snapshot_deleted":
+            assert health["snapshots_missing"] == [os.path.basename(snaps[-1][1])]
         stopped = health["findings"] and health["findings"][-1]["action"] != "skip"
         assert (res["info"]["journal_stopped"] is not None) == bool(stopped)
         if damage in ("flip_covered", "snapshot_deleted", "snapshot_corrupt", "torn"):
