@@ -560,7 +560,7 @@ def _last_note(segs: Sequence[tuple[int, str]], offset: int, above: int) -> dict
         for ev in _scan(buf, first, above):
             if isinstance(ev, _Damage):
                 continue
-            no, off, end = ev
+            _, off, end = ev
             if k == 0 and off < offset:
                 continue
             body = mv[off + REC_HEADER_LEN: end]
