@@ -432,8 +432,9 @@ RECOVERY_STEPS: tuple[tuple[str, str], ...] = (
     ("stop", ("at the first 'stop': keep the segment's bytes from there as "
               "<segment>.tail-<offset>.bad (or the whole segment as <segment>.bad) and every "
               "later segment as <segment>.bad; nothing is deleted")),
-    ("missing", ("the last snapshot note read names the snapshots that should exist; one "
-                 "absent (and not older than every snapshot present) is reported missing")),
+    ("missing", ("the last readable snapshot note (past a stop too) names the snapshots that "
+                 "should exist; one absent (and not older than every snapshot present) is "
+                 "reported missing")),
     ("replay", "the engine is the base plus records b+1 .. the last record kept"),
 )
 
