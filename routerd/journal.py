@@ -1,9 +1,11 @@
 """Durable state: the append-only journal, engine snapshots, and the one replay path.
 
-Owns the on-disk formats under a state directory, start-up recovery (torn tails, corrupt
-records, corrupt snapshots), and :func:`replay_into` — the single function that applies
-journal records to an :class:`~routerd.engine.Engine`, used by the service's start-up
-recovery and by offline replay alike, so both reach the same state bit for bit.
+Owns the on-disk formats under a state directory, start-up recovery
+(:func:`recover_state`: torn tails, corrupt records, gaps, corrupt or missing snapshots —
+one procedure the service's start-up and offline replay both call), and
+:func:`replay_into` — the single function that applies journal records to an
+:class:`~routerd.engine.Engine`, used by the service's start-up recovery and by offline
+replay alike, so both reach the same state bit for bit.
 
 Must not import: zmq, prometheus, the simulator, the service.  Reads the clock only for
 the ``interval`` fsync policy and the snapshot's informational ``written_at``.  Never
@@ -44,22 +46,39 @@ Record kinds (bodies are maps):
 * ``tick``   — the service called ``Engine.decide(t)``: ``t``.
 * ``config`` — a reload: ``settings`` (every :class:`EngineSettings` field).
 
-Recovery rules (theory of operation).  Records are read in order; the first record that
-does not check out ends the journal:
+* ``snapshot`` — a note written right after a snapshot: ``record`` (what it covers) and
+  ``kept`` (the snapshot records present after writing it); recovery reads the last note to
+  tell a snapshot that went missing.  The engine ignores it.
 
-* *torn* — the file ends inside a header or inside the body a valid header announces
-  (a write cut short by a crash): the segment is truncated at that record's offset.
-* *corrupt* — bad magic, bad CRC, a length beyond the limit or a record number out of
-  sequence with bytes after it: the segment is truncated at that offset, the cut bytes are
-  kept beside it as ``<segment>.tail-<offset>.bad``, and every later segment is renamed
-  ``<segment>.bad``.  Nothing later can be applied without the missing record, so nothing
-  later is applied; nothing is deleted either.
+Recovery (theory of operation; :func:`recover_state`, steps in :data:`RECOVERY_STEPS`).  A
+snapshot holds the engine state covering records ``<= b``, so a restart needs only the
+records after the newest snapshot that reads back intact.  Snapshots are read newest
+first; one that fails its CRC or does not decode is reported and the next older one is
+tried (b = 0 without one).  Then every journal record is read in order.  After damage the
+reader resynchronises on the next record with a good CRC, which tells which record
+numbers the damage lost.  Each finding is classified by whether everything it loses is
+``<= b`` (*before*: the snapshot holds it) or not (*after*), and :data:`RECOVERY_RULES`
+gives the action:
 
-Both are reported (:class:`RecoveryReport`), never fatal.  A gap in numbering *between*
-segments (records lost under ``fsync: never`` below a snapshot) is reported, not fatal.
-Snapshots are read newest first; one that fails its CRC or does not decode is reported and
-the previous one is used (with the journal from its record on — retire segments only
-before :meth:`SnapshotStore.retire_point`, the oldest kept snapshot).
+* *torn* — the file ends inside a header or inside the body a valid header announces, and
+  nothing valid follows (a write cut short by a crash; never acknowledged, since acks wait
+  for the fsync): the segment is truncated there (*cut*).
+* *corrupt* — bad magic, bad CRC, a length beyond the limit, a bad segment header: before
+  b it is reported and read past (*skip*: nothing lost, nothing changed); after b the
+  journal *stops* there.
+* *gap* — record numbers jump (a deleted segment, records lost under ``fsync: never``):
+  before b *skip*, after b *stop*.  A journal that starts above b + 1 has a gap too.
+
+A *stop* keeps the segment's bytes from the offset as ``<segment>.tail-<offset>.bad`` (the
+whole segment as ``<segment>.bad`` when nothing before the offset is kept) and renames
+every later segment ``<segment>.bad`` (a ``-2``, ``-3``... suffix instead of overwriting
+an earlier one): nothing later can be applied without the missing records, so nothing
+later is applied, loudly; nothing is deleted either.  All of it is reported
+(:class:`RecoveryReport`), never fatal.  With ``apply=False`` (replay, read-only restores)
+nothing is changed and the report is the same.  Retirement keeps the journal back to the
+oldest kept intact snapshot (:meth:`SnapshotStore.retire_point`; from record 1 while
+fewer than two are intact; never past the second-newest intact one), so a newest snapshot
+found bad or deleted later falls back with every record it needs.
 """
 from __future__ import annotations
 
@@ -82,7 +101,7 @@ from .engine import Decision, Engine, EngineSettings, HopBatch, ObserveResult
 from .fsmode import open_private, private_dir
 from .topology import Topology
 
-KINDS: tuple[str, ...] = ("start", "batch", "link", "tick", "config")
+KINDS: tuple[str, ...] = ("start", "batch", "link", "tick", "config", "snapshot")
 FSYNC_POLICIES: tuple[str, ...] = ("batch", "interval", "never")
 
 SEG_MAGIC = b"RDJOURN1"
@@ -160,39 +179,112 @@ class Cut:
     kept_as: str | None = None   # where the cut bytes were kept (corruption only)
 
 
+_FINDING_LABEL = {"torn": "torn tail", "corrupt": "corrupt data", "gap": "gap in record numbers"}
+
+
+@dataclass(frozen=True, slots=True)
+class Finding:
+    """One thing recovery found in the journal, and what it did about it.
+
+    ``kind`` is ``torn``, ``corrupt`` or ``gap``; ``where`` says whether every record it
+    loses is covered by the chosen snapshot (``before``) or not (``after``); ``action`` is
+    :data:`RECOVERY_RULES` ``[(kind, where)]``.  ``lost`` is the range of record numbers
+    that cannot be read there (None: not known, e.g. an unfinished write at the end)."""
+
+    kind: str
+    where: str
+    action: str
+    segment: str
+    offset: int
+    detail: str
+    lost: tuple[int, int] | None = None
+    bytes_cut: int = 0
+    kept_as: str | None = None
+
+    def line(self, base: int) -> str:
+        rng = "" if self.lost is None else (
+            f"record {self.lost[0]}" if self.lost[0] == self.lost[1] else f"records {self.lost[0]}..{self.lost[1]}")
+        what = _FINDING_LABEL[self.kind]
+        if rng:
+            rng += " missing" if self.kind == "gap" else " unreadable"
+        at = f"in {self.segment} at byte {self.offset}: {self.detail}"
+        if self.action == "skip":
+            return (f"{what} {at}; {rng or 'no record lost'}, covered by the snapshot at "
+                    f"record {base}: nothing lost, nothing changed")
+        if self.action == "cut":
+            return f"{what} {at}; cut {self.bytes_cut} bytes (an unfinished write, never acknowledged)"
+        return (f"{what} {at}; the journal stops here" + (f" ({rng})" if rng else "")
+                + (f"; {self.bytes_cut} bytes kept as {self.kept_as}" if self.kept_as else "")
+                + "; nothing after it is applied")
+
+
 @dataclass
 class RecoveryReport:
-    """What :func:`recover` found and did."""
+    """What recovery (:func:`recover_state`, or :func:`recover` for a bare journal) found
+    and did.  Plain data: the service's ``health`` and start-up banner and the replay
+    report all show :meth:`as_dict` / :meth:`lines` of the same report."""
 
     directory: str
     segments: int = 0
     records: int = 0
     first_record: int | None = None
-    last_record: int = 0            # 0: no records
+    last_record: int = 0            # the last record kept (0: none)
     next_record: int = 1
     cuts: list[Cut] = field(default_factory=list)
     quarantined: list[str] = field(default_factory=list)
     gaps: list[tuple[int, int]] = field(default_factory=list)   # (expected, found)
     removed_empty: list[str] = field(default_factory=list)
+    findings: list[Finding] = field(default_factory=list)
+    base: int = 0                   # the chosen snapshot's record (0: from the journal's start)
+    snapshot_file: str | None = None
+    snapshots_skipped: list[str] = field(default_factory=list)
+    snapshots_missing: list[str] = field(default_factory=list)
+    contiguous_from: int | None = None   # first record of the undamaged run reaching the end
+    noted_snapshots: list[int] | None = None   # the last snapshot note's list (None: no note)
 
     @property
     def clean(self) -> bool:
-        return not (self.cuts or self.quarantined or self.gaps)
+        return not (self.findings or self.cuts or self.quarantined or self.gaps
+                    or self.snapshots_skipped or self.snapshots_missing)
+
+    @property
+    def stopped(self) -> Finding | None:
+        """The finding the journal stops at (a cut or a stop), if any."""
+        return next((f for f in self.findings if f.action != "skip"), None)
 
     def lines(self) -> list[str]:
-        out = [f"journal {self.directory}: {self.segments} segments, {self.records} records"
-               + (f" ({self.first_record}..{self.last_record})" if self.records else "")]
-        for c in self.cuts:
-            what = "torn tail" if c.torn else "corrupt record"
-            out.append(f"{what} in {c.segment} at byte {c.offset}: {c.detail}; cut {c.bytes_cut} bytes"
-                       + (f", kept as {c.kept_as}" if c.kept_as else ""))
-        for q in self.quarantined:
-            out.append(f"set aside (after a corrupt record): {q}")
-        for e, f in self.gaps:
-            out.append(f"gap in record numbers: expected {e}, next segment starts at {f}")
-        for r in self.removed_empty:
-            out.append(f"removed a segment with a torn header and no records: {r}")
+        """A summary line, then one line per finding (the lines every shell prints)."""
+        src = (f"snapshot {self.snapshot_file} (records up to {self.base})" if self.snapshot_file
+               else "the journal's first record")
+        out = [f"state {self.directory}: from {src}; journal {self.segments} segments, "
+               f"{self.records} records" + (f" ({self.first_record}..{self.last_record})" if self.records else "")]
+        out += [f"snapshot skipped: {p}" for p in self.snapshots_skipped]
+        out += [f"snapshot missing: {m} (the journal's last snapshot note lists it)"
+                for m in self.snapshots_missing]
+        out += [f.line(self.base) for f in self.findings]
+        out += [f"set aside (after the journal's stop): {q}" for q in self.quarantined]
+        out += [f"removed a segment with a torn header and no records: {r}" for r in self.removed_empty]
         return out
+
+    def as_dict(self) -> dict[str, Any]:
+        """Plain values (lists, not tuples): the same after a msgpack or JSON round trip."""
+        return {
+            "clean": self.clean,
+            "snapshot": None if self.snapshot_file is None else {"file": self.snapshot_file,
+                                                                 "record": self.base},
+            "snapshots_skipped": list(self.snapshots_skipped),
+            "snapshots_missing": list(self.snapshots_missing),
+            "journal": {"segments": self.segments, "records": self.records,
+                        "first_record": self.first_record, "last_record": self.last_record,
+                        "next_record": self.next_record},
+            "findings": [{"kind": f.kind, "where": f.where, "action": f.action, "segment": f.segment,
+                          "offset": f.offset, "detail": f.detail,
+                          "lost": None if f.lost is None else list(f.lost),
+                          "bytes_cut": f.bytes_cut, "kept_as": f.kept_as} for f in self.findings],
+            "set_aside": list(self.quarantined),
+            "removed_empty": list(self.removed_empty),
+            "lines": self.lines()[1:],
+        }
 
 
 def _segments(d: str) -> list[tuple[int, str]]:
@@ -210,8 +302,9 @@ def _seg_name(d: str, first: int) -> str:
 
 
 class _Walk:
-    """Iterate the records of one segment buffer; afterwards ``end`` is the offset after
-    the last good record and ``problem``/``torn`` say why it stopped early (if it did)."""
+    """Iterate the records of one segment buffer, strictly (no resynchronisation; used to
+    count a segment's records before appending to it); afterwards ``end`` is the offset
+    after the last good record and ``problem``/``torn`` say why it stopped early."""
 
     def __init__(self, buf: bytes, first: int):
         self.buf = buf
@@ -236,34 +329,270 @@ class _Walk:
         self.end = off
         expect = self.first
         while off < n:
-            if n - off < REC_HEADER_LEN:
-                self.problem, self.torn = f"record header is {n - off} of {REC_HEADER_LEN} bytes", True
-                return
-            magic, _flags, length, no = REC_HEAD.unpack_from(buf, off)
-            (crc,) = REC_CRC.unpack_from(buf, off + REC_HEAD.size)
-            if magic != REC_MAGIC:
-                self.problem = f"bad record magic {bytes(magic)!r}"
-                return
-            if length > MAX_RECORD:
-                self.problem = f"record length {length} is above the limit {MAX_RECORD}"
-                return
-            body_at = off + REC_HEADER_LEN
-            if body_at + length > n:
-                self.problem = f"record body is {n - body_at} of {length} bytes"
-                self.torn = True
-                return
-            body = buf[body_at: body_at + length]
-            if zlib.crc32(body, zlib.crc32(buf[off: off + REC_HEAD.size])) != crc:
-                self.problem = f"CRC mismatch in record {no}"
+            no, end, problem, torn = _record_at(buf, off, n)
+            if problem is not None:
+                self.problem, self.torn = problem, torn
                 return
             if no != expect:
                 self.problem = f"record number {no}, expected {expect}"
                 return
-            off = body_at + length
-            self.end = off
+            body = buf[off + REC_HEADER_LEN: end]
+            off = self.end = end
             self.last = no
             expect += 1
             yield no, body
+
+
+def _record_at(buf: memoryview | bytes, off: int, n: int) -> tuple[int, int, str | None, bool]:
+    """(record number, end offset, problem, torn) for the record starting at ``off``:
+    problem None when a whole record with a good CRC is there; torn when the file ends
+    inside it."""
+    if n - off < REC_HEADER_LEN:
+        return 0, off, f"record header is {n - off} of {REC_HEADER_LEN} bytes", True
+    magic, _flags, length, no = REC_HEAD.unpack_from(buf, off)
+    (crc,) = REC_CRC.unpack_from(buf, off + REC_HEAD.size)
+    if magic != REC_MAGIC:
+        return no, off, f"bad record magic {bytes(magic)!r}", False
+    if length > MAX_RECORD:
+        return no, off, f"record length {length} is above the limit {MAX_RECORD}", False
+    body_at = off + REC_HEADER_LEN
+    if body_at + length > n:
+        return no, off, f"record body is {n - body_at} of {length} bytes", True
+    if zlib.crc32(buf[body_at: body_at + length], zlib.crc32(buf[off: off + REC_HEAD.size])) != crc:
+        return no, off, f"CRC mismatch in record {no}", False
+    return no, body_at + length, None, False
+
+
+def _resync(buf: bytes, off: int, above: int) -> int | None:
+    """Offset of the next whole record with a good CRC after ``off`` numbered above
+    ``above``, else None.  (A false match needs a valid CRC-32 over a forged header and
+    body: not by chance.)"""
+    n = len(buf)
+    mv = memoryview(buf)
+    pos = off
+    while True:
+        pos = buf.find(REC_MAGIC, pos + 1)
+        if pos < 0:
+            return None
+        no, _end, problem, _torn = _record_at(mv, pos, n)
+        if problem is None and no > above:
+            return pos
+
+
+class _Damage:
+    """Damage :func:`_scan` found: where, why, and where reading resumes (None: nowhere
+    further in this segment)."""
+
+    __slots__ = ("detail", "offset", "resume", "resume_no", "torn")
+
+    def __init__(self, offset: int, detail: str, torn: bool, resume: int | None, resume_no: int | None):
+        self.offset, self.detail, self.torn, self.resume, self.resume_no = offset, detail, torn, resume, resume_no
+
+
+def _scan(buf: bytes, first: int, above: int) -> Iterator[tuple[int, int, int] | _Damage]:
+    """The records ``(number, offset, end)`` of one segment and the damage between them,
+    resynchronising after damage on the next record with a good CRC (``above``: the last
+    good record number before this segment).  ``torn`` damage is an unfinished write: the
+    file ends inside it and nothing valid follows."""
+    n = len(buf)
+    mv = memoryview(buf)       # CRCs over slices of it copy nothing
+    if n < SEG_HEADER.size:
+        yield _Damage(0, f"segment header is {n} of {SEG_HEADER.size} bytes", True, None, None)
+        return
+    magic, hfirst = SEG_HEADER.unpack_from(buf, 0)
+    off = SEG_HEADER.size
+    if magic != SEG_MAGIC or hfirst != first:
+        r = _resync(buf, -1, above)
+        yield _Damage(0, f"bad segment header (magic {bytes(magic)!r}, first record {hfirst}, "
+                         f"file name says {first})", False, r,
+                      None if r is None else _record_at(mv, r, n)[0])
+        if r is None:
+            return
+        off = r
+    while off < n:
+        no, end, problem, torn = _record_at(mv, off, n)
+        if problem is None:
+            yield no, off, end
+            above = max(above, no)
+            off = end
+            continue
+        r = _resync(buf, off, above)
+        yield _Damage(off, problem, torn and r is None, r, None if r is None else _record_at(mv, r, n)[0])
+        if r is None:
+            return
+        off = r
+
+
+#: What recovery does with each finding, by whether every record it loses is covered by the
+#: chosen snapshot ("before") or not ("after").  A test walks this table.
+RECOVERY_RULES: dict[tuple[str, str], str] = {
+    ("torn", "before"): "cut",     # an unfinished write at the end: truncate (never acknowledged)
+    ("torn", "after"): "cut",
+    ("corrupt", "before"): "skip",  # the snapshot holds those records: report, read on
+    ("corrupt", "after"): "stop",   # nothing later can be applied without it: stop, set aside
+    ("gap", "before"): "skip",
+    ("gap", "after"): "stop",
+}
+
+#: The recovery procedure, step by step (:func:`recover_state` follows it; the docs quote it).
+RECOVERY_STEPS: tuple[tuple[str, str], ...] = (
+    ("snapshots", ("list the snapshots newest first; the first that reads back intact is the "
+                   "base (its record b; b = 0 without one); each one that does not is reported")),
+    ("walk", ("read every journal record in order, resynchronising after damage on the next "
+              "record with a good CRC")),
+    ("classify", ("a torn tail, a corrupt stretch or a gap in record numbers is 'before' when "
+                  "every record it loses is <= b, else 'after'; RECOVERY_RULES gives the action")),
+    ("stop", ("at the first 'stop': keep the segment's bytes from there as "
+              "<segment>.tail-<offset>.bad (or the whole segment as <segment>.bad) and every "
+              "later segment as <segment>.bad; nothing is deleted")),
+    ("missing", ("the last readable snapshot note (past a stop too) names the snapshots that "
+                 "should exist; one absent (and not older than every snapshot present) is "
+                 "reported missing")),
+    ("replay", "the engine is the base plus records b+1 .. the last record kept"),
+)
+
+_NOTE_PREFIX = b"\x82" + msgpack.packb("kind") + msgpack.packb("snapshot")
+_NOTE_LEN = len(_NOTE_PREFIX)
+
+
+class _Reader:
+    """Walks a journal directory under :data:`RECOVERY_RULES` relative to ``base``; yields
+    the records it keeps, fills ``findings`` and stops where the rules say.  ``leading_ok``:
+    a journal whose first record is above ``base + 1`` starts there (a bare journal, whose
+    early segments were retired) instead of having a gap."""
+
+    def __init__(self, directory: str, base: int, *, leading_ok: bool, skip_to: int = 0,
+                 notes: bool = False):
+        self.dir = directory
+        self.base = base
+        self.leading_ok = leading_ok
+        self.skip_to = skip_to
+        self.notes = notes
+        self.segs = _segments(directory)
+        self.findings: list[Finding] = []
+        self.stop: tuple[int, int, bool, int] | None = None  # (segment index, offset, torn, kept records in it)
+        self.last: int | None = None
+        self.first_record: int | None = None
+        self.records = 0
+        self.segments_read = 0
+        self.run_start: int | None = None
+        self.note: dict[str, Any] | None = None
+        self.next_floor = 1                  # numbering continues at least here
+
+    def _where(self, hi: int | None) -> str:
+        return "before" if hi is not None and hi <= self.base else "after"
+
+    def _finding(self, kind: str, where: str, seg: str, off: int, detail: str,
+                 lost: tuple[int, int] | None) -> str:
+        action = RECOVERY_RULES[(kind, where)]
+        self.findings.append(Finding(kind, where, action, os.path.basename(seg), off, detail, lost))
+        return action
+
+    def __iter__(self) -> Iterator[tuple[int, memoryview]]:
+        segs = self.segs
+        for i, (first, path) in enumerate(segs):
+            if i + 1 < len(segs) and segs[i + 1][0] - 1 <= self.skip_to:
+                continue        # every record in it is at or below skip_to: not needed
+            with open(path, "rb") as fh:
+                buf = fh.read()
+            mv = memoryview(buf)
+            self.segments_read += 1
+            last_seg = i == len(segs) - 1
+            kept_here = 0
+            for ev in _scan(buf, first, self.last or 0):
+                if isinstance(ev, _Damage):
+                    nxt = ev.resume_no
+                    if nxt is None and not last_seg:
+                        nxt = segs[i + 1][0]
+                    if self.last is not None:
+                        lo = self.last + 1
+                    else:
+                        lo = first if self.leading_ok else self.base + 1
+                    kind = "torn" if ev.torn and last_seg else "corrupt"
+                    lost: tuple[int, int] | None = None
+                    if kind == "torn":
+                        where = "before" if (self.last or 0) < self.base else "after"
+                    elif nxt is None:
+                        where = "after"         # nothing readable follows: not known what is lost
+                    elif nxt - 1 < lo:
+                        where = "before"        # stray bytes between records: nothing lost
+                    else:
+                        lost = (lo, nxt - 1)
+                        where = self._where(nxt - 1)
+                    if self._finding(kind, where, path, ev.offset, ev.detail, lost) != "skip":
+                        self.stop = (i, ev.offset, kind == "torn", kept_here)
+                        return
+                    self.run_start = None
+                    if nxt is not None:
+                        self.last = max(self.last or 0, nxt - 1)
+                    continue
+                no, off, end = ev
+                if self.last is not None and no != self.last + 1:
+                    if no <= self.last:
+                        detail = f"record number {no}, expected {self.last + 1}"
+                        where = self._where(self.last)
+                        if self._finding("corrupt", where, path, off, detail, None) != "skip":
+                            self.stop = (i, off, False, kept_here)
+                            return
+                        continue
+                    detail = (f"record number {no}, expected {self.last + 1}" if off > SEG_HEADER.size
+                              else f"expected record {self.last + 1}, the segment starts at {no}")
+                    if self._finding("gap", self._where(no - 1), path, off, detail,
+                                     (self.last + 1, no - 1)) != "skip":
+                        self.stop = (i, off, False, kept_here)
+                        return
+                    self.run_start = None
+                elif self.last is None and not self.leading_ok and no > self.base + 1:
+                    self._finding("gap", "after", path, off,
+                                  f"expected record {self.base + 1}, the journal starts at {no}",
+                                  (self.base + 1, no - 1))
+                    self.stop = (i, off, False, kept_here)
+                    return
+                self.last = no
+                if self.run_start is None:
+                    self.run_start = no
+                if self.first_record is None:
+                    self.first_record = no
+                self.records += 1
+                kept_here += 1
+                body = mv[off + REC_HEADER_LEN: end]
+                if self.notes and body[:_NOTE_LEN] == _NOTE_PREFIX:
+                    obj = unpack(body)
+                    if isinstance(obj.get("body"), dict):
+                        self.note = obj["body"]
+                yield no, body
+            self.next_floor = max(self.next_floor, first)
+
+
+def _last_note(segs: Sequence[tuple[int, str]], offset: int, above: int) -> dict[str, Any] | None:
+    """The last readable snapshot note in ``segs`` (the first one read from ``offset``)."""
+    note: dict[str, Any] | None = None
+    for k, (first, path) in enumerate(segs):
+        with open(path, "rb") as fh:
+            buf = fh.read()
+        mv = memoryview(buf)
+        for ev in _scan(buf, first, above):
+            if isinstance(ev, _Damage):
+                continue
+            _, off, end = ev
+            if k == 0 and off < offset:
+                continue
+            body = mv[off + REC_HEADER_LEN: end]
+            if body[:_NOTE_LEN] == _NOTE_PREFIX:
+                with contextlib.suppress(Exception):
+                    obj = unpack(body)
+                    if isinstance(obj.get("body"), dict):
+                        note = obj["body"]
+    return note
+
+
+def _aside_name(path: str, suffix: str) -> str:
+    """``path + suffix``, or with ``-2``, ``-3``... when an earlier recovery kept one there:
+    nothing set aside is ever overwritten."""
+    cand, k = path + suffix, 2
+    while os.path.exists(cand):
+        cand, k = f"{path}{suffix}-{k}", k + 1
+    return cand
 
 
 def _fsync_dir(d: str) -> None:
@@ -274,104 +603,174 @@ def _fsync_dir(d: str) -> None:
         os.close(fd)
 
 
-def recover(directory: str) -> RecoveryReport:
-    """Check every segment; cut a torn or corrupt tail (see the module docstring)."""
-    rep = RecoveryReport(directory)
-    segs = _segments(directory)
-    changed = False
-    expect: int | None = None
-    for i, (first, path) in enumerate(segs):
-        with open(path, "rb") as fh:
-            buf = fh.read()
-        w = _Walk(buf, first)
-        count = sum(1 for _ in w)
-        if expect is not None and first != expect:
-            rep.gaps.append((expect, first))
-        if w.problem is None:
-            rep.segments += 1
-        elif w.end == 0 and w.torn and i == len(segs) - 1:
-            # created but its header never made it: holds nothing
-            os.unlink(path)
+def recover(directory: str, *, base: int | None = None, apply: bool = True,
+            report: RecoveryReport | None = None) -> RecoveryReport:
+    """Check a journal directory under :data:`RECOVERY_RULES` and (``apply``) cut a torn
+    tail and set aside what follows a stop.  ``base``: the record the chosen snapshot
+    covers (None: a bare journal, no snapshot; it starts at its first record).  With
+    ``apply=False`` nothing is changed and the report is the same."""
+    rep = report if report is not None else RecoveryReport(os.path.abspath(directory))
+    rd = _Reader(directory, base if base is not None else 0, leading_ok=base is None, notes=True)
+    for _ in rd:
+        pass
+    rep.records, rep.first_record = rd.records, rd.first_record
+    rep.last_record = rd.last or 0
+    rep.segments = len(rd.segs)
+    rep.contiguous_from = rd.run_start
+    rep.next_record = max(rep.last_record + 1, (base or 0) + 1,
+                          rd.next_floor if rd.stop is None else 1)
+    rep.findings = list(rd.findings)
+    rep.gaps = [(f.lost[0], f.lost[1] + 1) for f in rd.findings if f.kind == "gap" and f.lost]
+    note = rd.note
+    if rd.stop is not None:
+        # nothing after the stop is applied, but its snapshot notes still tell which
+        # snapshots should exist (a deleted newest one behind the damage is reported)
+        note = _last_note(rd.segs[rd.stop[0]:], rd.stop[1], rd.last or 0) or note
+    kept = note.get("kept") if note is not None else None
+    rep.noted_snapshots = [int(x) for x in kept] if isinstance(kept, list) else None
+    if rd.stop is None:
+        return rep
+    i, off, torn, kept_here = rd.stop
+    path = rd.segs[i][1]
+    size = os.path.getsize(path)
+    stop = rep.findings[-1]
+    changed: list[tuple[Any, ...]] = []   # (op, path, ...): planned, done only with apply
+    if torn:
+        if kept_here == 0 and off <= SEG_HEADER.size and (off == 0 or size < SEG_HEADER.size):
             rep.removed_empty.append(os.path.basename(path))
-            changed = True
-            rep.next_record = max(rep.next_record, first)
-            expect = first
-            continue
+            changed.append(("unlink", path))
+            # numbering continues where this empty segment would have started
+            rep.next_record = max(rep.next_record, rd.segs[i][0])
         else:
-            last_seg = i == len(segs) - 1
-            torn = w.torn and last_seg
-            kept: str | None = None
-            cut = len(buf) - w.end
-            if not torn:
-                kept = f"{path}.tail-{w.end}.bad"
-                with os.fdopen(open_private(kept, os.O_WRONLY | os.O_CREAT | os.O_TRUNC), "wb") as fh:
-                    fh.write(buf[w.end:])
+            changed.append(("truncate", path, off))
+        cut = size - off
+        rep.findings[-1] = dataclasses.replace(stop, bytes_cut=cut)
+        rep.cuts.append(Cut(os.path.basename(path), off, True, stop.detail, cut))
+    else:
+        if kept_here == 0:
+            kept = _aside_name(path, ".bad")
+            changed.append(("rename", path, kept))
+            later_from = i + 1
+            rep.quarantined.append(os.path.basename(kept))
+        else:
+            kept = _aside_name(path, f".tail-{off}.bad")
+            changed.append(("keep_tail", path, off, kept))
+            later_from = i + 1
+        rep.findings[-1] = dataclasses.replace(stop, bytes_cut=size - off, kept_as=os.path.basename(kept))
+        rep.cuts.append(Cut(os.path.basename(path), off, False, stop.detail, size - off,
+                            os.path.basename(kept)))
+        for _, later in rd.segs[later_from:]:
+            dest = _aside_name(later, ".bad")
+            changed.append(("rename", later, dest))
+            rep.quarantined.append(os.path.basename(dest))
+    if apply:
+        for op in changed:
+            if op[0] == "unlink":
+                os.unlink(op[1])
+            elif op[0] == "truncate":
+                with open(op[1], "r+b") as fh:
+                    fh.truncate(op[2])
                     fh.flush()
                     os.fsync(fh.fileno())
-            end = w.end
-            if end == 0:
-                # the header itself is bad: keep an empty, valid segment in its place
-                with open(path, "wb") as fh:
-                    fh.write(SEG_HEADER.pack(SEG_MAGIC, first))
+            elif op[0] == "keep_tail":
+                _, p, o, kept = op
+                with open(p, "rb") as fh:
+                    fh.seek(o)
+                    tail = fh.read()
+                with os.fdopen(open_private(kept, os.O_WRONLY | os.O_CREAT | os.O_TRUNC), "wb") as fh:
+                    fh.write(tail)
+                    fh.flush()
+                    os.fsync(fh.fileno())
+                with open(p, "r+b") as fh:
+                    fh.truncate(o)
                     fh.flush()
                     os.fsync(fh.fileno())
             else:
-                with open(path, "r+b") as fh:
-                    fh.truncate(end)
-                    fh.flush()
-                    os.fsync(fh.fileno())
-            rep.cuts.append(Cut(os.path.basename(path), end, torn, w.problem, cut,
-                                os.path.basename(kept) if kept else None))
-            rep.segments += 1
-            changed = True
-            if not last_seg:
-                for _, later in segs[i + 1:]:
-                    os.replace(later, later + ".bad")
-                    rep.quarantined.append(os.path.basename(later) + ".bad")
-        if count:
-            rep.records += count
-            rep.first_record = first if rep.first_record is None else rep.first_record
-            rep.last_record = w.last
-        rep.next_record = max(rep.next_record, w.last + 1, first)
-        expect = w.last + 1
-        if w.problem is not None:
-            break
-    if changed:
+                os.replace(op[1], op[2])
         _fsync_dir(directory)
     return rep
 
 
 @dataclass
+class Recovery:
+    """:func:`recover_state`'s result: the report, and the chosen snapshot's state (None:
+    the engine starts from the journal's first record)."""
+
+    report: RecoveryReport
+    state: dict[str, Any] | None
+    state_dir: str
+
+
+def _snapshot_files(d: str) -> list[tuple[int, str]]:
+    try:
+        names = os.listdir(d)
+    except FileNotFoundError:
+        return []
+    return sorted((int(m.group(1)), os.path.join(d, n)) for n in names if (m := _SNAP_RE.match(n)))
+
+
+def recover_state(state_dir: str, *, apply: bool) -> Recovery:
+    """The recovery procedure of a state directory (:data:`RECOVERY_STEPS`): choose the
+    newest snapshot that reads back intact, check the journal against it
+    (:data:`RECOVERY_RULES`), report what is missing.  The service's start-up calls it with
+    ``apply=True`` (holding the directory's lock: cuts and set-asides happen), replay and
+    read-only restores with ``apply=False``; the report is the same either way."""
+    rep = RecoveryReport(os.path.abspath(state_dir))
+    snaps = _snapshot_files(snapshot_dir(state_dir))
+    state: dict[str, Any] | None = None
+    for no, path in reversed(snaps):
+        try:
+            state, got = SnapshotStore.read(path)
+        except (OSError, ValueError) as e:
+            rep.snapshots_skipped.append(f"{os.path.basename(path)}: "
+                                         + str(e).replace(path + ": ", "").replace(path, os.path.basename(path)))
+            continue
+        rep.base, rep.snapshot_file = got, os.path.basename(path)
+        break
+    recover(journal_dir(state_dir), base=rep.base, apply=apply, report=rep)
+    if rep.noted_snapshots is not None:
+        present = {no for no, _ in snaps}
+        oldest = min(present) if present else None
+        rep.snapshots_missing = [
+            f"snap-{no:020d}.rs" for no in sorted(rep.noted_snapshots)
+            # older than every one present: retention may have removed it after the note
+            if no not in present and (oldest is None or no > oldest)]
+    return Recovery(rep, state, os.path.abspath(state_dir))
+
+
+@dataclass
 class ReadReport:
-    """Filled by :func:`iter_records`: where reading stopped early, if it did."""
+    """Filled by :func:`iter_records`: where reading stopped early, if it did, and the
+    damage it read past (all at or below ``after``)."""
 
     records: int = 0
     stopped: Cut | None = None
+    skipped: list[Finding] = field(default_factory=list)
 
 
-def iter_records(directory: str, after: int = 0, report: ReadReport | None = None
-                 ) -> Iterator[Record]:
-    """Records numbered above ``after``, in order, from a journal directory, read-only
-    (offline replay).  Stops at the first bad record and notes it in ``report``."""
-    segs = _segments(directory)
-    for i, (first, path) in enumerate(segs):
-        if i + 1 < len(segs) and segs[i + 1][0] - 1 <= after:
+def iter_records(directory: str, after: int = 0, report: ReadReport | None = None, *,
+                 until: int | None = None) -> Iterator[Record]:
+    """Records numbered above ``after`` (and at most ``until``), in order, from a journal
+    directory, read-only.  The recovery rules with ``after`` as the base: damage losing
+    only records at or below ``after`` is read past; the first torn, corrupt or missing
+    record above it stops the reading (noted in ``report``)."""
+    rd = _Reader(directory, after, leading_ok=True, skip_to=after)
+    for no, body in rd:
+        if no <= after:
             continue
-        with open(path, "rb") as fh:
-            buf = fh.read()
-        w = _Walk(buf, first)
-        for no, body in w:
-            if no <= after:
-                continue
-            obj = unpack(body)
-            if report is not None:
-                report.records += 1
-            yield Record(no, obj["kind"], obj["body"])
-        if w.problem is not None:
-            if report is not None:
-                report.stopped = Cut(os.path.basename(path), w.end, w.torn, w.problem,
-                                     len(buf) - w.end)
-            return
+        if until is not None and no > until:
+            break
+        obj = unpack(body)
+        if report is not None:
+            report.records += 1
+        yield Record(no, obj["kind"], obj["body"])
+    if report is not None:
+        report.skipped = [f for f in rd.findings if f.action == "skip"]
+        if rd.stop is not None and (until is None or (rd.last or 0) < until):
+            f = rd.findings[-1]
+            path = rd.segs[rd.stop[0]][1]
+            report.stopped = Cut(f.segment, f.offset, rd.stop[2], f.detail,
+                                 os.path.getsize(path) - f.offset)
 
 
 class Journal:
@@ -386,7 +785,8 @@ class Journal:
     """
 
     def __init__(self, directory: str, fsync: str = "batch", fsync_interval_s: float = 0.05,
-                 segment_bytes: int = 64 * 1024 * 1024, *, start_after: int = 0):
+                 segment_bytes: int = 64 * 1024 * 1024, *, start_after: int = 0,
+                 recovery: RecoveryReport | None = None):
         if fsync not in FSYNC_POLICIES:
             raise ValueError(f"fsync policy {fsync!r} is not one of {', '.join(FSYNC_POLICIES)}")
         if segment_bytes < 1024:
@@ -396,7 +796,9 @@ class Journal:
         self.fsync_interval_s = float(fsync_interval_s)
         self.segment_bytes = int(segment_bytes)
         private_dir(directory)
-        self.recovery = recover(directory)
+        # a state directory's recovery (recover_state) has already been applied; a bare
+        # journal is checked here on its own
+        self.recovery = recovery if recovery is not None else recover(directory)
         self._next = max(self.recovery.next_record, start_after + 1)
         segs = _segments(directory)
         self._sizes = {p: os.path.getsize(p) for _, p in segs}
@@ -720,6 +1122,7 @@ class SnapshotStore:
         self.dir = directory
         self.keep = keep
         self.problems: list[str] = []
+        self._verified: dict[str, tuple[int, int, int]] = {}   # path -> (inode, size, mtime_ns) read back intact
         private_dir(directory)
         for tmp in glob.glob(os.path.join(directory, ".snap-*.tmp*")):
             os.unlink(tmp)   # a write cut short by a crash; never renamed, never valid
@@ -805,10 +1208,36 @@ class SnapshotStore:
         return None
 
     def retire_point(self) -> int:
-        """Journal records below this number are covered by every kept snapshot: pass it
-        to :meth:`Journal.retire_before`.  0 while no snapshot exists."""
-        snaps = self.list()
-        return snaps[0][0] if snaps else 0
+        """Journal records below this number may be retired (pass it to
+        :meth:`Journal.retire_before`): the oldest kept snapshot that reads back intact,
+        provided at least two do (so never later than the second-newest intact one); 0
+        while fewer than two do.  A newest snapshot found bad or deleted later therefore
+        still has a fallback with every journal record after it."""
+        intact = [no for no, path in self.list() if self._intact(path)]
+        return intact[0] if len(intact) >= 2 else 0
+
+    def trust(self, path: str) -> None:
+        """Note that ``path`` was just written and synced by us: :meth:`retire_point` need
+        not read it back (until the file changes)."""
+        with contextlib.suppress(OSError):
+            st = os.stat(path)
+            self._verified[path] = (st.st_ino, st.st_size, st.st_mtime_ns)
+
+    def _intact(self, path: str) -> bool:
+        try:
+            st = os.stat(path)
+        except OSError:
+            return False
+        key = (st.st_ino, st.st_size, st.st_mtime_ns)
+        if self._verified.get(path) == key:
+            return True
+        try:
+            self.read(path)
+        except (OSError, ValueError) as e:
+            self.problems.append(f"snapshot not counted for retirement: {e}")
+            return False
+        self._verified[path] = key
+        return True
 
 
 # ---- applying records ---------------------------------------------------------------------
@@ -877,6 +1306,7 @@ class ReplayReport:
     ticks: int = 0
     configs: int = 0
     starts: int = 0
+    snapshots: int = 0
     last_record: int = 0
 
 
@@ -905,6 +1335,8 @@ def replay_into(engine: Engine, journal_records: Iterable[Record], *,
         elif r.kind == "config":
             engine.reconfigure(settings_from_dict(b["settings"]))
             rep.configs += 1
+        elif r.kind == "snapshot":
+            rep.snapshots += 1          # a note for recovery; the engine is not touched
         elif r.kind == "start":
             if b.get("topology") not in (None, engine.topo.digest):
                 raise JournalError(f"record {r.no}: the journal was written for topology "
@@ -951,28 +1383,32 @@ class Restored:
     replay: ReplayReport
     read: ReadReport
     snapshot_problems: list[str]
+    recovery: RecoveryReport
 
 
 def restore(state_dir: str, topo: Topology, settings: EngineSettings, *,
             on_tick: Callable[[Record, Decision], None] | None = None,
-            on_record: Callable[[Record], None] | None = None) -> Restored:
-    """Latest good snapshot + the journal after it → an engine, read-only (the caller opens
-    the :class:`Journal` first when it wants recovery's cuts).  Without a snapshot the
-    engine starts from the first ``start`` record's settings (else ``settings``)."""
-    store = SnapshotStore(snapshot_dir(state_dir))
-    snap = store.latest()
+            on_record: Callable[[Record], None] | None = None,
+            recovery: Recovery | None = None) -> Restored:
+    """The recovery's base (its snapshot, or the first ``start`` record's settings, else
+    ``settings``) plus the journal records it keeps → an engine.  ``recovery``: what
+    :func:`recover_state` returned (the service passes the one it applied); None: run it
+    read-only here."""
+    rec = recovery if recovery is not None else recover_state(state_dir, apply=False)
+    rep = rec.report
     jdir = journal_dir(state_dir)
     read = ReadReport()
-    if snap is not None:
-        state, after = snap
+    if rec.state is not None:
+        state, after = rec.state, rep.base
         s_snap = settings_from_dict(state["settings"]) if "settings" in state else settings
         eng = Engine.from_state(topo, s_snap, state["engine"])
     else:
         state, after = {}, 0
-        first = next(iter_records(jdir, 0), None)
+        first = next(iter_records(jdir, 0, until=rep.last_record), None) if rep.last_record else None
         s0 = settings
         if first is not None and first.kind == "start" and "settings" in first.body:
             s0 = settings_from_dict(first.body["settings"])
         eng = Engine(topo, s0)
-    rep = replay_into(eng, iter_records(jdir, after, read), on_tick=on_tick, on_record=on_record)
-    return Restored(eng, after, state, rep, read, list(store.problems))
+    records = iter_records(jdir, after, read, until=rep.last_record) if rep.last_record > after else iter(())
+    res = replay_into(eng, records, on_tick=on_tick, on_record=on_record)
+    return Restored(eng, after, state, res, read, list(rep.snapshots_skipped), rep)

@@ -37,9 +37,14 @@ record's document, else the directory's pointer), so the directory alone is enou
 ``--topology`` / ``--config`` may name the same network (same id) and are refused
 otherwise; the built-in demo lab only for a journal written for it.
 
-Start.  A journal still holding record 1 is replayed from scratch.  One whose early
-segments were retired behind snapshots starts from the oldest intact snapshot it
-continues from, so every variant starts from the same learned state.
+
+Start and end.  The records are the ones the service's own start-up recovery keeps
+(:func:`routerd.journal.recover_state`, run read-only: the same report, shown in
+``replay.json`` ``recovery`` and printed as ``recovery ...`` lines word for word as the
+service's banner and ``health`` give them); the replay ends where they end.  It starts as
+early as they allow: record 1 when the journal holds it undamaged up to the recovery's
+snapshot, else the oldest intact snapshot from which it does, else that snapshot; every
+variant starts from the same learned state, and the recorded run reaches the service's.
 """
 from __future__ import annotations
 
@@ -117,7 +122,16 @@ def configure(p: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     from . import shard as _shard
 
+    lock: _statedir.StateLock | None = None
     try:
+        into = _statedir.enclosing_state_dir(args.out)
+        if into is not None:
+            # writing into a state dir: only while no service (or other replay) uses it
+            try:
+                lock = _statedir.StateLock(into, "routerd replay --out").acquire()
+            except (_statedir.StateDirBusy, OSError) as e:
+                raise ReplayError(Problem("--out", args.out, f"is inside a state dir that cannot be "
+                                          f"locked: {e}")) from None
         if _shard.sharded_state(args.source):   # a sharded service's state dir: merge
             res = _shard.replay_command(args)
         else:
@@ -127,6 +141,9 @@ def run(args: argparse.Namespace) -> int:
         for pr in e.problems:
             print(f"  {pr}", file=sys.stderr)
         return 2
+    finally:
+        if lock is not None:
+            lock.release()
     for line in res["printed"]:
         print(line)
     return 0
@@ -200,7 +217,7 @@ class Source:
     journal_dir: str
     snapshot_dir: str | None
     cleanup: str | None = None
-    state_dir: str | None = None     # where recorded documents may be (None: no state dir)
+    state_dir: str | None = None     # a service's state dir (journal/, snapshots/, documents/)
 
 
 def locate(path: str) -> Source:
@@ -243,6 +260,15 @@ def recorded_refs(journal_dir: str, state_dir: str | None) -> _statedir.DocRefs 
                              rec.topology_id or cur.topology_id, rec.shard_map or cur.shard_map)
 
 
+def recovery_of(src: Source) -> J.Recovery:
+    """The service's own recovery procedure, read-only: the same report its start-up gives
+    (``health`` ``recovery``, the banner) for the same directory."""
+    if src.state_dir is not None:
+        return J.recover_state(src.state_dir, apply=False)
+    rep = J.recover(src.journal_dir, apply=False)      # a bare journal: no snapshot covers it
+    return J.Recovery(rep, None, os.path.abspath(src.journal_dir))
+
+
 @dataclass
 class Start:
     after: int                       # records numbered above this are replayed
@@ -250,41 +276,65 @@ class Start:
     state: dict[str, Any] | None     # snapshot engine state, None from scratch
     what: str
     problems: list[str] = field(default_factory=list)
+    until: int = 0                   # the last record recovery keeps
 
 
-def find_start(src: Source, fallback: EngineSettings) -> Start:
-    first = next(J.iter_records(src.journal_dir, 0), None)
-    if first is None:
-        raise ReplayError(Problem(src.journal_dir, "", "holds no journal records"))
-    if first.no == 1:
+def find_start(src: Source, fallback: EngineSettings, recovery: J.Recovery | None = None) -> Start:
+    """Where the replay starts.  The records are the ones the service's recovery keeps
+    (:func:`recovery_of`); it ends where they end.  It starts as early as those records
+    allow — record 1, else the oldest intact snapshot from which the journal runs
+    undamaged to the recovery's snapshot — so a what-if covers as much history as there
+    is, and the recorded run still reaches the service's state exactly."""
+    rec = recovery if recovery is not None else recovery_of(src)
+    rep = rec.report
+    problems = list(rep.snapshots_skipped)
+    if rep.base == 0:
+        if not rep.records:
+            stop = rep.stopped
+            why = "holds no journal records" if stop is None else (
+                "is the first journal record left and no intact snapshot covers the records "
+                f"before it ({stop.line(0)})")
+            at = stop.lost[1] + 1 if stop is not None and stop.lost else ""
+            raise ReplayError(Problem(src.journal_dir, at, why
+                                      + (f" ({'; '.join(problems)})" if problems else "")))
+        if rep.first_record != 1:
+            raise ReplayError(Problem(src.journal_dir, rep.first_record,
+                                      "is the first journal record left and no intact snapshot covers "
+                                      "the records before it" + (f" ({'; '.join(problems)})" if problems else "")))
+        first = next(J.iter_records(src.journal_dir, 0, until=rep.last_record), None)
         s = fallback
-        if first.kind == "start" and "settings" in first.body:
+        if first is not None and first.kind == "start" and "settings" in first.body:
             s = J.settings_from_dict(first.body["settings"])
-        return Start(0, s, None, "the first journal record (from scratch)")
-    problems: list[str] = []
-    if src.snapshot_dir is not None:
+        return Start(0, s, None, "the first journal record (from scratch)", problems, rep.last_record)
+    assert rec.state is not None
+    c = rep.contiguous_from
+    if c is not None and rep.last_record >= rep.base:
+        if c == 1:
+            first = next(J.iter_records(src.journal_dir, 0, until=rep.last_record), None)
+            s = fallback
+            if first is not None and first.kind == "start" and "settings" in first.body:
+                s = J.settings_from_dict(first.body["settings"])
+            return Start(0, s, None, "the first journal record (from scratch)", problems, rep.last_record)
         # read-only: a SnapshotStore would tidy the directory of a service that may be running
-        snaps = sorted((int(m.group(1)), os.path.join(src.snapshot_dir, nm))
-                       for nm in os.listdir(src.snapshot_dir) if (m := J._SNAP_RE.match(nm)))
-        for no, path in snaps:
-            if no < first.no - 1:
+        for no, path in J._snapshot_files(src.snapshot_dir or ""):
+            if not c - 1 <= no < rep.base:
                 continue
             try:
-                state, rec = J.SnapshotStore.read(path)
-            except (OSError, ValueError) as e:
-                problems.append(f"snapshot skipped: {e}")
-                continue
-            return Start(rec, J.settings_from_dict(state["settings"]), state["engine"],
-                         f"snapshot {os.path.basename(path)} (records up to {rec})", problems)
-    raise ReplayError(Problem(src.journal_dir, first.no,
-                              "is the first journal record left and no intact snapshot covers "
-                              "the records before it" + (f" ({'; '.join(problems)})" if problems else "")))
+                state, got = J.SnapshotStore.read(path)
+            except (OSError, ValueError):
+                continue            # recovery did not need it; an older start is only a bonus
+            return Start(got, J.settings_from_dict(state["settings"]), state["engine"],
+                         f"snapshot {os.path.basename(path)} (records up to {got})", problems,
+                         rep.last_record)
+    state = rec.state
+    return Start(rep.base, J.settings_from_dict(state["settings"]), state["engine"],
+                 f"snapshot {rep.snapshot_file} (records up to {rep.base})", problems, rep.last_record)
 
 
 def last_settings(src: Source, start: Start) -> EngineSettings:
     """The recorded settings in force after the journal's last record."""
     s = start.settings
-    for r in J.iter_records(src.journal_dir, start.after):
+    for r in J.iter_records(src.journal_dir, start.after, until=start.until):
         if r.kind in ("start", "config") and "settings" in r.body:
             s = J.settings_from_dict(r.body["settings"])
     return s
@@ -368,10 +418,11 @@ class LinkTrace:
 
 
 def replay(src: Source, topo: _topology.Topology, variants: Sequence[Variant], *,
-           fallback: EngineSettings | None = None, link_trace: LinkTrace | None = None
-           ) -> dict[str, Any]:
+           fallback: EngineSettings | None = None, link_trace: LinkTrace | None = None,
+           recovery: J.Recovery | None = None) -> dict[str, Any]:
     """Replay the journal once for the recorded run and every variant (in lockstep)."""
-    start = find_start(src, fallback or EngineSettings())
+    recovery = recovery if recovery is not None else recovery_of(src)
+    start = find_start(src, fallback or EngineSettings(), recovery)
     base = Run(Variant(RECORDED), make_engine(topo, start, Variant(RECORDED)))
     others = [Run(v, make_engine(topo, start, v)) for v in variants]
     rejected0 = sum(base.engine.statistics().rejected.values())
@@ -420,7 +471,8 @@ def replay(src: Source, topo: _topology.Topology, variants: Sequence[Variant], *
             run_.prev_diff = diff
 
     t0 = time.perf_counter()
-    rep = J.replay_into(base.engine, J.iter_records(src.journal_dir, start.after, read),
+    rep = J.replay_into(base.engine, J.iter_records(src.journal_dir, start.after, read,
+                                                    until=start.until),
                         on_tick=base.on_tick, on_record=on_record)
     wall = time.perf_counter() - t0
     end_t = t_last[0]
@@ -431,6 +483,7 @@ def replay(src: Source, topo: _topology.Topology, variants: Sequence[Variant], *
                   configs=rep.configs, starts=rep.starts)
     refused = sum(base.engine.statistics().rejected.values()) - rejected0
     return {"start": start, "base": base, "others": others, "report": rep, "read": read,
+            "recovery": recovery.report,
             "counts": counts, "wall_s": wall, "tick_t": tick_t,
             "t0": t_first[0] if t_first else math.nan, "t_end": end_t, "refused": refused,
             "link_events": marks.events}
@@ -484,7 +537,8 @@ def replay_command(args: argparse.Namespace) -> dict[str, Any]:
     try:
         cfg, topo, chosen = _load_config_and_topology(args, src)
         _check_topology(src, topo)
-        start = find_start(src, EngineSettings())
+        recovery = recovery_of(src)
+        start = find_start(src, EngineSettings(), recovery)
         start_settings = start.settings
         primary_changes: dict[str, Any] = {}
         if cfg is not None:
@@ -509,7 +563,7 @@ def replay_command(args: argparse.Namespace) -> dict[str, Any]:
         for v in variants:
             v.settings(start_settings)     # refuse bad combinations before the long part
         lt = LinkTrace(topo, args.link_trace_interval) if args.export_link_trace else None
-        res = replay(src, topo, variants, fallback=start_settings, link_trace=lt)
+        res = replay(src, topo, variants, fallback=start_settings, link_trace=lt, recovery=recovery)
         res["inputs"] = chosen.said
     except (J.JournalError, ValueError) as e:
         # a later start record for another topology, a snapshot or settings that do not fit
@@ -579,6 +633,8 @@ def write_outputs(args: argparse.Namespace, topo: _topology.Topology, res: dict[
     summaries = [summarise(r, topo, total) for r in runs]
     start: Start = res["start"]
     read: J.ReadReport = res["read"]
+    recovery: J.RecoveryReport = res["recovery"]
+    stopped = recovery.stopped or read.stopped    # the recovery's stop is where reading ended
     counts = res["counts"]
     obs_s = counts["hops"] / res["wall_s"] if res["wall_s"] > 0 else math.inf
     info: dict[str, Any] = {
@@ -587,9 +643,9 @@ def write_outputs(args: argparse.Namespace, topo: _topology.Topology, res: dict[
         "started_from": start.what, "snapshot_problems": start.problems,
         "records": res["report"].records, "last_record": res["report"].last_record,
         **counts, "rows_refused_on_replay": res["refused"],
-        "journal_stopped": None if read.stopped is None else {
-            "segment": read.stopped.segment, "offset": read.stopped.offset,
-            "detail": read.stopped.detail},
+        "journal_stopped": None if stopped is None else {
+            "segment": stopped.segment, "offset": stopped.offset, "detail": stopped.detail},
+        "recovery": recovery.as_dict(),
         "span_s": total, "wall_s": res["wall_s"],
         "observations_per_s": obs_s if math.isfinite(obs_s) else None,
         "tables": "tables.json" + (f" ({prim.variant.label})" if prim is not base else " (recorded)"),
@@ -638,12 +694,14 @@ def write_outputs(args: argparse.Namespace, topo: _topology.Topology, res: dict[
                                 res.get("link_events", ()), res["t_end"]))
         except ImportError as e:
             notes.append(f"no PNG: matplotlib is not installed ({e}); pip install 'routerd[plot]'")
-    printed = _printed(info, summaries, bool(others), args.quiet, written, notes, read)
+    printed = _printed(info, summaries, bool(others), args.quiet, written, notes, stopped,
+                       recovery.lines()[1:])
     return {"info": info, "written": written, "printed": printed}
 
 
 def _printed(info: Mapping[str, Any], summaries: Sequence[Mapping[str, Any]], compare: bool,
-             quiet: bool, written: Sequence[str], notes: Sequence[str], read: J.ReadReport) -> list[str]:
+             quiet: bool, written: Sequence[str], notes: Sequence[str],
+             stopped: J.Finding | J.Cut | None, recovery_lines: Sequence[str]) -> list[str]:
     out: list[str] = []
     if not quiet:
         out.extend(f"{line}" for line in info.get("inputs", ()))
@@ -653,10 +711,10 @@ def _printed(info: Mapping[str, Any], summaries: Sequence[Mapping[str, Any]], co
                    f"time in {info['wall_s']:.3f} s"
                    + (f" ({info['observations_per_s']:.0f} observations/s)"
                       if info["observations_per_s"] else ""))
-    for pr in info["snapshot_problems"]:
-        out.append(f"warning: {pr}")
-    if read.stopped is not None:
-        c = read.stopped
+    # the recovery's lines, word for word as the service's banner and health give them
+    out.extend(f"recovery {ln}" for ln in recovery_lines)
+    if stopped is not None:
+        c = stopped
         out.append(f"warning: the journal ends early in {c.segment} at byte {c.offset}: {c.detail}; "
                    "later records were not replayed")
     if info["rows_refused_on_replay"]:

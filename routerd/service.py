@@ -398,6 +398,9 @@ class Service:
         self._snap_child: tuple[int, str, int, float] | None = None   # pid, tmp, record, start
         self._snap_cause = "interval"
         self._snap_reply: Any = None     # the control socket owed the answer to a "snapshot"
+        self.state_lock: _statedir.StateLock | None = None
+        self.recovery: _journal.RecoveryReport | None = None   # what start-up recovery found
+        self._snapshot_mark: int | None = None    # the last record when the last snapshot was noted
 
     # -- metrics source -------------------------------------------------------------------
     def engine_statistics(self) -> Any:
@@ -446,6 +449,10 @@ class Service:
         state_dir = cfg["service.state_dir"]
         try:
             private_dir(state_dir)        # 0700 when created here (routerd.fsmode)
+            # one writer per state dir, before anything in it is read or written
+            self.state_lock = _statedir.StateLock(state_dir, self._lock_what()).acquire()
+        except _statedir.StateDirBusy as e:
+            raise StartError(str(e)) from None
         except OSError as e:
             raise StartError(f"state dir {state_dir}: {e.strerror}") from None
         self._restore(state_dir)
@@ -467,6 +474,10 @@ class Service:
             # as the process: keep the collector from walking it on every generation-2 pass
             gc.collect()
             gc.freeze()
+
+    def _lock_what(self) -> str:
+        """What the lock file says holds the directory (shown to a second process)."""
+        return "routerd serve"
 
     def _warn_exposed(self) -> None:
         """Endpoints other hosts can reach without CURVE: said at start-up (the defaults
@@ -499,36 +510,36 @@ class Service:
             self.log.warning(exposure)   # once, at start-up
 
     def _restore(self, state_dir: str) -> None:
-        """Open the journal (recovery cuts a torn or corrupt tail), then the newest good
-        snapshot plus the journal after it — :func:`journal.restore`, the offline path."""
+        """Recover the state dir (:func:`journal.recover_state`: the newest intact snapshot,
+        the journal checked against it, cuts applied), open the journal, then the snapshot
+        plus the records recovery kept — :func:`journal.restore`, the offline path."""
         cfg = self.cfg
         want = EngineSettings.from_config(cfg)
         self.dedup = make_dedup(cfg)
         try:
             snaps = _journal.SnapshotStore(_journal.snapshot_dir(state_dir))
+            # the one recovery procedure (replay runs the same one, read-only): the newest
+            # intact snapshot, the journal checked against it, cuts and set-asides applied
+            rec = _journal.recover_state(state_dir, apply=True)
         except OSError as e:
-            raise StartError(f"snapshots in {state_dir}: {e}") from None
-        newest = max((no for no, _ in snaps.list()), default=0)
+            raise StartError(f"state dir {state_dir}: {_os_reason(e)}") from None
         try:
             self.journal = _journal.Journal(
                 _journal.journal_dir(state_dir), fsync=cfg["service.journal.fsync"],
                 fsync_interval_s=cfg["service.journal.fsync_interval_s"],
-                segment_bytes=cfg["service.journal.segment_bytes"], start_after=newest)
+                segment_bytes=cfg["service.journal.segment_bytes"], start_after=rec.report.base,
+                recovery=rec.report)
         except OSError as e:
             raise StartError(f"journal in {state_dir}: {e}") from None
-        for line in self.journal.recovery.lines()[1:]:
-            self.log.warning("journal recovery", detail=line)
+        self.recovery = rec.report
+        for line in rec.report.lines()[1:]:
+            self.log.warning("recovery", detail=line)
         try:
-            r = _journal.restore(state_dir, self.topo, want, on_record=self._remember_record)
+            r = _journal.restore(state_dir, self.topo, want, on_record=self._remember_record,
+                                 recovery=rec)
         except (ValueError, _journal.JournalError) as e:
             raise StartError(f"state dir {state_dir}: {e} (another topology needs another "
                              "--state-dir)") from None
-        for p in r.snapshot_problems:
-            self.log.warning("snapshot fallback", detail=p)
-        if r.read.stopped is not None:
-            c = r.read.stopped
-            self.log.warning("journal read stopped early", segment=c.segment, offset=c.offset,
-                          detail=c.detail)
         if r.snapshot_record:
             # the snapshot's windows first, then the tail's batches on top (on_record ran
             # before we got here, so put the tail back after the restore)
@@ -538,9 +549,9 @@ class Service:
             self.dedup.restore(tail.export())
             self.restored["snapshot_record"] = r.snapshot_record
             self.last_snapshot_record = r.snapshot_record
-            kept = snaps.list()
-            if kept:
-                self.last_snapshot_at = os.path.getmtime(kept[-1][1])
+            with contextlib.suppress(OSError, TypeError):
+                self.last_snapshot_at = os.path.getmtime(os.path.join(
+                    snaps.dir, rec.report.snapshot_file))   # type: ignore[arg-type]
         self.restored["replayed"] = r.replay.records
         self.snapshots = snaps
         self.engine = r.engine
@@ -689,6 +700,7 @@ class Service:
                if "snapshot_record" in self.restored else "no snapshot, ")
             + f"{self.restored.get('replayed', 0)} journal records replayed)",
             *(f"  input    {line}" for line in (self.inputs.said if self.inputs else ())),
+            *(f"  recovery {ln}" for ln in (self.recovery.lines()[1:] if self.recovery else [])),
             CAUTIONS,
             f"routerd: ready (pid {os.getpid()}, epoch {self.epoch})",
         ]
@@ -1198,6 +1210,7 @@ class Service:
             "last_snapshot": None if self.last_snapshot_at is None else {
                 "record": self.last_snapshot_record, "age_s": self.snapshot_age_s()},
             "restored": dict(self.restored),
+            "recovery": None if self.recovery is None else self.recovery.as_dict(),
             "storage": {"ok": self._down is None, "reason": self._down,
                         "failures": self.storage_failures, "resumed": self.storage_resumed},
             "guards": {"rejected": dict(self.guards.stats.rejected),
@@ -1239,7 +1252,7 @@ class Service:
         if self._snap_child is not None:
             self._reap_snapshot()
         if now >= self._next_snapshot and self._down is None:
-            if self._last_record != self.last_snapshot_record:
+            if self._last_record != self._snapshot_mark:
                 with contextlib.suppress(StartError, StorageDown):   # logged, retried next interval
                     if not self._snapshot_background():
                         self._snapshot("interval")
@@ -1359,7 +1372,7 @@ class Service:
             why = f"the journal cannot be written ({self._down})"
         else:
             try:
-                self.snapshots.install(tmp, rec)
+                self.snapshots.trust(self.snapshots.install(tmp, rec))
             except OSError as e:
                 why = _os_reason(e)
         if why is not None:
@@ -1384,11 +1397,18 @@ class Service:
             sock.send(reply, zmq.NOBLOCK)
 
     def _snapshot_done(self, cause: str, rec: int) -> None:
-        # retire only what every kept snapshot covers: a corrupt newest one has a fallback
-        if self.journal is not None:
-            self.journal.retire_before(self.snapshots.retire_point())
         self.last_snapshot_at = time.time()
         self.last_snapshot_record = rec
+        # a note in the journal: the snapshots that exist now, so recovery can tell one
+        # that goes missing later (a failure here is a storage failure, handled as one)
+        with self.lock:
+            self._append("snapshot", {"record": rec, "kept": [n for n, _ in self.snapshots.list()]})
+            self._commit()
+            self._snapshot_mark = self._last_record
+        # retire only before the oldest intact kept snapshot (two at least): a newest one found bad
+        # or deleted later still has a fallback with the journal after it
+        if self.journal is not None:
+            self.journal.retire_before(self.snapshots.retire_point())
         self.counters.snapshots[cause] += 1
         self.log.info("snapshot", cause=cause, record=rec, journal_bytes=self.journal_bytes())
 
@@ -1404,7 +1424,7 @@ class Service:
             state, rec = self._snapshot_state()
             t0 = time.perf_counter()
             try:
-                self.snapshots.write(state, rec)
+                self.snapshots.trust(self.snapshots.write(state, rec))
             except OSError as e:
                 # the journal still holds everything: a failed snapshot loses nothing
                 for tmp in glob.glob(os.path.join(self.snapshots.dir, f".snap-*.tmp{os.getpid()}")):
@@ -1542,6 +1562,9 @@ class Service:
             if j is not None:
                 with contextlib.suppress(OSError):
                     j.close()
+        if self.state_lock is not None:
+            self.state_lock.release()
+            self.state_lock = None
 
 
 def _snapshot_child(store: Any, tmp: str, state: Any, rec: int) -> None:

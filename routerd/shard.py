@@ -98,6 +98,7 @@ import numpy as np
 from . import __version__, wire
 from . import config as _config
 from . import listeners as _listeners
+from . import statedir as _statedir
 from . import topology as _topology
 from .errors import InputError
 
@@ -438,6 +439,9 @@ def _worker_class() -> type:
         def info(self) -> Mapping[str, str]:
             return {**super().info(), "shard": f"{self.shard}/{self.smap.n_shards}"}
 
+        def _lock_what(self) -> str:
+            return f"routerd serve --shard {self.shard}/{self.smap.n_shards}"
+
         def _envelope(self, env: list[bytes], body: list[bytes]) -> tuple[list[bytes], list[bytes]]:
             # [token, b"", payload] from the front: the token goes back with the answer
             if len(body) == 3 and body[0].startswith(TOKEN_PREFIX) and body[1] == b"":
@@ -577,6 +581,7 @@ class Front:
             "batches_accepted", "batches_duplicate", "batches_refused", "batches_unavailable", "pieces_sent",
             "pieces_acked", "pieces_late", "publications", "parts_received", "acks_undeliverable")}
         self.lock = threading.RLock()
+        self.state_lock: _statedir.StateLock | None = None
 
     # -- start-up ---------------------------------------------------------------------
     def start(self) -> None:
@@ -590,7 +595,12 @@ class Front:
         try:
             _metrics.parse_address(cfg["service.metrics"])
             private_dir(self.state_root)
+            # the root holds the front's ipc files and the shards' dirs: one front per root
+            self.state_lock = _statedir.StateLock(self.state_root, "routerd serve --shards "
+                                                  f"{self.smap.n_shards} (front)").acquire()
         except ValueError as e:
+            raise StartError(str(e)) from None
+        except _statedir.StateDirBusy as e:
             raise StartError(str(e)) from None
         except OSError as e:
             raise StartError(f"state dir {self.state_root}: {e.strerror}") from None
@@ -1293,6 +1303,9 @@ class Front:
 
             shutil.rmtree(self._ipc_dir, ignore_errors=True)
             self._ipc_dir = None
+        if self.state_lock is not None:   # last: the workers are gone by now
+            self.state_lock.release()
+            self.state_lock = None
 
 
 def routes_entries(body: bytes) -> tuple[int, bytes]:

@@ -13,17 +13,21 @@ import subprocess
 import sys
 import threading
 import time
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from typing import Any
 
 import msgpack
+import numpy as np
 import zmq
 
+from routerd import config, wire
 from routerd.childproc import parse_ready
+from routerd.service import load_topology
 
 EP = re.compile(r"^  (ingest|pull|publish|control|metrics)\s+(\S+)")
 START_TIMEOUT_S = 30.0
+DEMO = load_topology(config.load(None))   # the built-in demo lab a plain `routerd serve` serves
 
 
 class ServiceProc:
@@ -156,6 +160,55 @@ def running(base: str, *extra: str, pull: bool = False, config: str | None = Non
         yield sp
     finally:
         sp.kill()
+
+
+def stream_until_killed(sp: ServiceProc, reporter: str, first: int, rng: np.random.Generator,
+                        acks_before_kill: int, sent: dict[int, bytes] | None = None,
+                        before_kill: Callable[[], None] | None = None) -> dict[int, dict]:
+    """Send batches of random demo-lab rows (up to 16 in flight) and SIGKILL the service
+    while they are flowing.  Returns the acknowledgements received, by batch number;
+    ``sent`` (if given) gets every frame sent, by batch number; ``before_kill`` runs
+    just before the kill, with batches still in flight."""
+    d = sp.socket(zmq.DEALER, "ingest", rcvtimeo_ms=100, sndhwm=64)
+    acked: dict[int, dict] = {}
+    n_sent = 0
+    inflight = 0
+    killed = False
+    deadline = time.monotonic() + 60
+    try:
+        while time.monotonic() < deadline:
+            while inflight < 16 and not killed:
+                m = int(rng.integers(1, 300))
+                link = rng.integers(0, DEMO.n_links, m)
+                x, y = DEMO.src[link], DEMO.dst[link]
+                dd = rng.integers(0, DEMO.n - 1, m)
+                dd = np.where(dd >= x, dd + 1, dd)
+                lat = DEMO.delay_s[link] * rng.uniform(1.0, 4.0, m)
+                frame = wire.encode_ingest_cols(reporter, first + n_sent, DEMO.digest, x, y, dd, lat)
+                d.send_multipart([b"", frame])
+                if sent is not None:
+                    sent[first + n_sent] = frame
+                n_sent += 1
+                inflight += 1
+            try:
+                rep = msgpack.unpackb(d.recv_multipart()[-1], raw=False)
+            except zmq.Again:
+                if killed:
+                    break
+                continue
+            assert "error" not in rep, rep
+            acked[rep["batch"]] = rep
+            inflight -= 1
+            if not killed and len(acked) >= acks_before_kill:
+                if before_kill is not None:
+                    before_kill()
+                sp.proc.send_signal(signal.SIGKILL)   # mid-stream: 16 batches in flight
+                killed = True
+                sp.proc.wait(10)
+    finally:
+        d.close(0)
+    assert killed, "the stream never reached the kill point"
+    return acked
 
 
 def short_base(tmp_path: Any) -> str:

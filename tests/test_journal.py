@@ -231,8 +231,18 @@ def test_start_after_skips_numbers_a_snapshot_covers(tmp_path: pytest.TempPathFa
     j = J.Journal(d, start_after=50)      # the journal lost records a snapshot holds
     assert j.append("tick", {"t": 1.0}) == 51
     j.close()
-    assert [r.no for r in J.iter_records(d)] == [42, 51]
-    assert J.recover(d).gaps == [(43, 51)]
+    # covered by a snapshot at record 50: reported, read past
+    rep = J.recover(d, base=50, apply=False)
+    assert rep.gaps == [(43, 51)] and [f.action for f in rep.findings] == ["skip"]
+    assert rep.next_record == 52 and [r.no for r in J.iter_records(d, 50)] == [51]
+    # no snapshot covers it: the gap stops the journal, loudly, and what follows is kept aside
+    rr = J.ReadReport()
+    assert [r.no for r in J.iter_records(d, 0, rr)] == [42]
+    assert rr.stopped is not None and "expected record 43" in rr.stopped.detail
+    rep = J.recover(d)
+    (f,) = rep.findings
+    assert (f.kind, f.where, f.action, f.lost) == ("gap", "after", "stop", (43, 50))
+    assert rep.quarantined == ["seg-00000000000000000051.rj.bad"] and rep.next_record == 43
 
 
 def test_fsync_policies(tmp_path: pytest.TempPathFactory, monkeypatch: pytest.MonkeyPatch) -> None:
@@ -313,9 +323,12 @@ def test_snapshot_round_trip_keep_and_fallback(tmp_path: pytest.TempPathFactory)
     s = J.SnapshotStore(d, keep=3)
     assert s.latest() is None and s.retire_point() == 0
     st = _state()
-    for no in (10, 20, 30, 40):
+    s.write(st, 10)
+    assert s.retire_point() == 0        # one snapshot: the journal before it stays (no fallback yet)
+    for no in (20, 30, 40):
         st["engine"]["now"] = float(no)
         path = s.write(st, no)
+    # the oldest intact one kept: a bad newest one (or two) still has the journal after it
     assert [n for n, _ in s.list()] == [20, 30, 40] and s.retire_point() == 20
     got, no = s.latest()
     assert no == 40 and _eq(got, st) and got["engine"]["Q"].flags.writeable
@@ -326,11 +339,13 @@ def test_snapshot_round_trip_keep_and_fallback(tmp_path: pytest.TempPathFactory)
     got, no = s.latest()
     assert no == 30 and got["engine"]["now"] == 30.0
     assert any("CRC mismatch" in p for p in s.problems)
+    assert s.retire_point() == 20       # 30 and 20 are still two intact ones
     # truncate the next one too
     p30 = s.list()[1][1]
     _write(p30, _read(p30)[:20])
     s2 = J.SnapshotStore(d)
     assert s2.latest()[1] == 20 and len(s2.problems) == 2
+    assert s2.retire_point() == 0     # one intact snapshot left: retire nothing
     _write(s.list()[0][1], b"")
     assert J.SnapshotStore(d).latest() is None
 

@@ -17,7 +17,7 @@ import msgpack
 import numpy as np
 import pytest
 import zmq
-from service_harness import ServiceProc, service_args
+from service_harness import ServiceProc, service_args, stream_until_killed
 
 from routerd import client, config, journal, wire
 from routerd.engine import Engine, EngineSettings
@@ -25,48 +25,6 @@ from routerd.service import load_topology
 
 DEMO = load_topology(config.load(None))
 
-
-
-def stream_until_killed(sp: ServiceProc, reporter: str, first: int, rng: np.random.Generator,
-                        acks_before_kill: int) -> dict[int, dict]:
-    """Send batches (up to 16 in flight) and SIGKILL the service while they are flowing.
-    Returns the acknowledgements received, by batch number."""
-    d = sp.socket(zmq.DEALER, "ingest", rcvtimeo_ms=100, sndhwm=64)
-    acked: dict[int, dict] = {}
-    sent = 0
-    inflight = 0
-    killed = False
-    deadline = time.monotonic() + 60
-    try:
-        while time.monotonic() < deadline:
-            while inflight < 16 and not killed:
-                m = int(rng.integers(1, 300))
-                link = rng.integers(0, DEMO.n_links, m)
-                x, y = DEMO.src[link], DEMO.dst[link]
-                dd = rng.integers(0, DEMO.n - 1, m)
-                dd = np.where(dd >= x, dd + 1, dd)
-                lat = DEMO.delay_s[link] * rng.uniform(1.0, 4.0, m)
-                d.send_multipart([b"", wire.encode_ingest_cols(reporter, first + sent, DEMO.digest,
-                                                               x, y, dd, lat)])
-                sent += 1
-                inflight += 1
-            try:
-                rep = msgpack.unpackb(d.recv_multipart()[-1], raw=False)
-            except zmq.Again:
-                if killed:
-                    break
-                continue
-            assert "error" not in rep, rep
-            acked[rep["batch"]] = rep
-            inflight -= 1
-            if not killed and len(acked) >= acks_before_kill:
-                sp.proc.send_signal(signal.SIGKILL)   # mid-stream: 16 batches in flight
-                killed = True
-                sp.proc.wait(10)
-    finally:
-        d.close(0)
-    assert killed, "the stream never reached the kill point"
-    return acked
 
 
 @pytest.mark.slow
