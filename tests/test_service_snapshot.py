@@ -64,8 +64,17 @@ def test_background_snapshot_is_the_state_at_the_fork_and_retires_after_install(
         got = Engine.from_state(TOPO, EngineSettings(), state["engine"])
         assert got.same_state(want)                       # the state at the fork, bit for bit
         assert state["dedup"]["marks"] == [["a", -1]]
-        assert journal._segments(jdir)[0][0] > segs[0][0]   # retired once durable
+        # one intact snapshot retires nothing (a bad one later must still have the journal)
+        assert journal._segments(jdir)[0] == segs[0]
         assert s.counters.snapshots["interval"] == 1 and s.counters.snapshot_pause.count == 1
+        # a second one, once installed, lets the journal before the first go
+        _feed(s, "a", 91, 30, seed=5)
+        assert s._snapshot_background()
+        rec = s._snap_child[2]
+        assert journal._segments(jdir)[0] == segs[0]       # nothing retired before install
+        s._reap_snapshot(wait=True)
+        assert journal._segments(jdir)[0][0] > segs[0][0]   # retired once durable
+        assert s.counters.snapshots["interval"] == 2
     finally:
         s.close()
     # a restart from it plus the journal tail equals the live engine
@@ -102,8 +111,11 @@ def test_background_off_writes_in_the_loop(tmp_path: Any) -> None:
     try:
         _feed(s, "a", 1, 5, seed=4)
         assert not s._snapshot_background()
-        assert s._snapshot("interval") == s._last_record
-        assert journal.SnapshotStore(journal.snapshot_dir(d)).latest()[1] == s._last_record
+        last = s._last_record
+        assert s._snapshot("interval") == last
+        assert journal.SnapshotStore(journal.snapshot_dir(d)).latest()[1] == last
+        # then a note of the snapshots kept, for recovery to tell one that goes missing
+        assert s._last_record == last + 1
     finally:
         s.close()
 
