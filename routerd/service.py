@@ -445,8 +445,13 @@ class Service:
             raise StartError(str(e)) from None
         self._load_security()
         self._warn_exposed()
-        self._claim_endpoints()    # before anything is written: a second service stops here
         state_dir = cfg["service.state_dir"]
+        try:
+            self._claim_endpoints()    # before anything is written: a second service stops here
+        except StartError as e:
+            # the same endpoints and the same state dir: name the process that holds both
+            held = _statedir.busy(state_dir)
+            raise StartError(f"{e}; {held}" if held else str(e)) from None
         try:
             private_dir(state_dir)        # 0700 when created here (routerd.fsmode)
             # one writer per state dir, before anything in it is read or written

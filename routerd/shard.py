@@ -628,8 +628,6 @@ class Front:
             # the front has no journal: its documents and the pointer to them are its
             # record, written once every worker has taken the topology (they check it
             # against their journals)
-            from . import statedir as _statedir
-
             _statedir.set_current(self.state_root, _statedir.store(self.state_root, self.topo, self.cfg))
         except OSError as e:
             raise StartError(f"state dir {self.state_root}: recording the topology and "

@@ -124,6 +124,28 @@ class StateLock:
         self.release()
 
 
+def busy(directory: str) -> StateDirBusy | None:
+    """Who holds ``directory``'s lock, when a live process does (None: nobody, or no lock
+    file).  Looks without creating anything; used to explain another refusal (an endpoint
+    in use) by the process that holds the directory."""
+    try:
+        fd = os.open(os.path.join(os.path.abspath(directory), LOCK_NAME), os.O_RDONLY | os.O_CLOEXEC)
+    except OSError:
+        return None
+    try:
+        try:
+            # a shared lock, dropped at once: it fails only while a holder has it exclusively
+            fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
+        except OSError as e:
+            if e.errno not in (errno.EWOULDBLOCK, errno.EAGAIN, errno.EACCES):
+                return None
+            pid, what = _holder(fd)
+            return StateDirBusy(os.path.abspath(directory), pid, what)
+        return None
+    finally:
+        os.close(fd)
+
+
 def _is_state_dir(p: str) -> bool:
     # a service's dir has journal/; a sharded front's root has its lock file beside the
     # shards' dirs.  A stray file named "lock" alone does not make a state dir: it is
