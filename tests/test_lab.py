@@ -297,7 +297,7 @@ def test_orphan_removal_acts_only_on_a_dead_labs_own_service(tmp_path: Any) -> N
     import tempfile
 
     import yaml
-    from service_harness import READY
+    from routerd.childproc import READY_RE as READY
 
     base = tempfile.mkdtemp(prefix="rdo-", dir="/tmp")     # ipc paths must stay short
     procs: list[subprocess.Popen[Any]] = []
