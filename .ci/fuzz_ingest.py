@@ -1,6 +1,6 @@
 """Coverage-guided fuzzing of the ingest path with atheris, bounded in time (CI).
 
-Feeds libFuzzer's inputs to :func:`routerd.wire.decode_ingest` and to the service's whole
+Feeds libFuzzer's inputs to :func:`routerd.io.wire.decode_ingest` and to the service's whole
 per-frame path (``Service._ingest_one``: CURVE binding, guards, rate limits, engine,
 journal) in process, with no sockets.  A crash is any exception escaping, an answer that
 is not a v1 reply, a reply whose code is outside the fixed set, or an acknowledgement
@@ -25,10 +25,10 @@ with atheris.instrument_imports():
     import msgpack
     import numpy as np
 
-    from routerd import config, journal, security, wire
-    from routerd import topology as T
-    from routerd.engine import EngineSettings
-    from routerd.service import SERVICE_FRAME_ERRORS, Log, Service
+    from routerd.io import config, journal, security, wire
+    from routerd.core import topology as T
+    from routerd.core.engine import EngineSettings
+    from routerd.service.daemon import SERVICE_FRAME_ERRORS, Log, Service
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 TOPO = T.load(os.path.join(HERE, "..", "routerd", "data", "demo-lab.yaml"))

@@ -34,9 +34,9 @@ from typing import Any
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 sys.path.insert(0, ROOT)
 
-from routerd import lab as L
-from routerd import overlay as ov
-from routerd import topology as T
+from routerd.tools import lab as L
+from routerd.agent import overlay as ov
+from routerd.core import topology as T
 
 PORT = 7400
 BARE = r"""

@@ -27,8 +27,8 @@ from typing import Any
 
 import numpy as np
 
-from routerd import topology as T
-from routerd.engine import Engine, EngineSettings, HopBatch
+from routerd.core import topology as T
+from routerd.core.engine import Engine, EngineSettings, HopBatch
 
 SIZES = (100, 1000)
 BATCHES = (1, 64, 1024, 4096)

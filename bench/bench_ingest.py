@@ -11,7 +11,7 @@ the server in another (this machine has two cores):
 Both get byte-identical frames: hop rows for random (link, destination) pairs of the demo
 lab, in the named-row format (``hops``: lists of names) and the columnar one (``cols``:
 int32/float64 little-endian bytes), 1, 64 and 1,024 rows per batch; acknowledged (a DEALER
-keeping 16 batches in flight, like :class:`routerd.client.Reporter`) and fire-and-forget
+keeping 16 batches in flight, like :class:`routerd.agent.client.Reporter`) and fire-and-forget
 (PUSH → PULL; the time runs until the server has counted every frame).
 
 **fsync.** The throughput-ceiling comparison runs the service with
@@ -55,9 +55,9 @@ ROOT = os.path.dirname(HERE)
 if ROOT not in sys.path:
     sys.path.insert(0, ROOT)
 
-from routerd import config, wire
-from routerd.childproc import parse_ready
-from routerd.service import load_topology
+from routerd.io import config, wire
+from routerd.io.childproc import parse_ready
+from routerd.service.daemon import load_topology
 
 SIZES = (1, 64, 1024)
 WINDOW = 16
@@ -324,7 +324,7 @@ def throughput_topology(base: str) -> tuple[Any, str]:
     sys.path.insert(0, HERE)
     from bench_engine import ring_with_chords
 
-    from routerd import topology as T
+    from routerd.core import topology as T
 
     t = ring_with_chords(100, 100)
     path = os.path.join(base, "ring100.yaml")
@@ -335,7 +335,7 @@ def throughput_topology(base: str) -> tuple[Any, str]:
 
 def engine_only(topo: Any, frames: Frames, duration: float) -> float:
     """rows/s of decode + Engine.observe alone, in this process, on the same frames."""
-    from routerd.engine import Engine
+    from routerd.core.engine import Engine
 
     eng = Engine(topo)
     n = 0

@@ -28,8 +28,8 @@ def _rss_mb() -> float:
 
 
 def _hammer(updates: int) -> tuple[float, float]:
-    from routerd.engine import Engine, HopBatch
-    from routerd.topology import from_mapping
+    from routerd.core.engine import Engine, HopBatch
+    from routerd.core.topology import from_mapping
 
     topo = from_mapping({"topology": {"name": "three", "nodes": ["a", "b", "c"], "defaults": {"capacity_bps": 1e7, "buffer_pkts": 50}, "links": [
         {"between": ["a", "b"], "delay_s": 0.001}, {"between": ["b", "c"], "delay_s": 0.001}]}})

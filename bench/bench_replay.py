@@ -2,14 +2,14 @@
 
 Every figure's ratio is to a baseline measured in the same run:
 
-* ``replay_obs_per_s`` — ``routerd replay``'s core (:func:`routerd.replay.replay`: read the
+* ``replay_obs_per_s`` — ``routerd replay``'s core (:func:`routerd.tools.replay.replay`: read the
   journal segments, check CRCs, decode msgpack bodies, apply them with
   ``journal.replay_into``, compare at every tick) in observations/s; ratio to the engine's
   own rate on the same batches held in memory (``Engine.observe`` + ``Engine.decide`` at
   the same points) — the ceiling replay approaches when reading costs nothing.
 * ``replay_compare3_obs_per_s`` — the same journal with three ``--compare`` variants (four
   engines in lockstep), observations/s of journal; ratio to the single replay.
-* ``trace_import_pkts_per_s`` — :func:`sim.trace.load_capture` on a pcap (walk, decode
+* ``trace_import_pkts_per_s`` — :func:`routerd.sim.trace.load_capture` on a pcap (walk, decode
   every Ethernet/IPv4/UDP packet with dpkt, map both addresses, build the arrays) in
   packets/s; ratio to dpkt's bare iteration over the same file (``for ts, buf in
   dpkt.pcap.Reader(f)``), the floor any dpkt-based reader pays.
@@ -30,10 +30,10 @@ from typing import Any
 import numpy as np
 from bench_engine import ring_with_chords
 
-from routerd import journal as J
-from routerd import replay as R
-from routerd import topology as T
-from routerd.engine import Engine, EngineSettings, HopBatch
+from routerd.io import journal as J
+from routerd.tools import replay as R
+from routerd.core import topology as T
+from routerd.core.engine import Engine, EngineSettings, HopBatch
 
 
 def ring(n: int, seed: int = 0) -> T.Topology:
@@ -112,7 +112,7 @@ def write_capture(path: str, topo: T.Topology, count: int) -> str:
 
 
 def run(quick: bool) -> dict[str, dict[str, Any]]:
-    from sim import trace as TR
+    from routerd.sim import trace as TR
 
     topo = ring(60)
     nb = 200 if quick else 600

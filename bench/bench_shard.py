@@ -4,7 +4,7 @@ Measured in one run on this machine (two cores shared by the client, the front a
 workers), ipc:// endpoints in a tmp dir, ``service.journal.fsync: never`` (an fsync per
 group commit measures the disk, not the split), columnar batches of 1,024 rows on a
 ring-with-chords graph of our own (200 nodes, 400 links: enough engine work per row that
-the split has something to spread), 16 batches in flight (like ``routerd.client.Reporter``):
+the split has something to spread), 16 batches in flight (like ``routerd.agent.client.Reporter``):
 
 * ``shard_ingest_w1_rows_per_s`` — the front with one worker, ratio to one plain process;
 * ``shard_ingest_w2_rows_per_s`` — the front with two workers, ratio to the front with one
@@ -41,10 +41,11 @@ for p in (ROOT, HERE):
 from bench_engine import random_rows, ring_with_chords
 from bench_ingest import Frames, acked
 
-from routerd import shard, wire
-from routerd import topology as T
-from routerd.childproc import parse_ready
-from routerd.engine import Engine, EngineSettings
+from routerd.service import shard
+from routerd.io import wire
+from routerd.core import topology as T
+from routerd.io.childproc import parse_ready
+from routerd.core.engine import Engine, EngineSettings
 
 ROWS = 1024
 CONF = {"service": {"journal": {"fsync": "never"}, "snapshot_interval_s": 3600,

@@ -25,11 +25,12 @@ import numpy as np
 
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
-from routerd import config, topology
-from sim import policies
-from sim.core import CoreResult, run_core
-from sim.run import DEMO_TOPOLOGY
-from sim.traffic import PoissonTraffic
+from routerd.io import config
+from routerd.core import topology
+from routerd.sim import policies
+from routerd.sim.core import CoreResult, run_core
+from routerd.sim.run import DEMO_TOPOLOGY
+from routerd.sim.traffic import PoissonTraffic
 
 
 def random_mesh(n: int, seed: int = 1) -> topology.Topology:
@@ -274,7 +275,7 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
             if pol == "qrouting":
                 figs[f"sim_qrouting_engine_share_{n}"] = {
                     "value": m["engine_share"], "unit": "fraction", "ratio": m["engine_share"],
-                    "against": "the qrouting run's wall time (share spent inside routerd.engine)",
+                    "against": "the qrouting run's wall time (share spent inside routerd.core.engine)",
                 }
     sim_b, bare_b = memory_per_packet(quick)
     figs["sim_bytes_per_inflight_packet"] = {

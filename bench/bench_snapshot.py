@@ -76,9 +76,9 @@ def _worker(way: str, n: int) -> dict[str, Any]:
     sys.path.insert(0, HERE)
     from bench_engine import ring_with_chords
 
-    from routerd import config
-    from routerd.engine import HopBatch
-    from routerd.service import Service
+    from routerd.io import config
+    from routerd.core.engine import HopBatch
+    from routerd.service.daemon import Service
 
     topo = ring_with_chords(n, n, seed=1)
     tmp = tempfile.mkdtemp(prefix="rdsnap", dir="/tmp")
@@ -140,7 +140,7 @@ def _worker(way: str, n: int) -> dict[str, Any]:
 
 
 def _ways() -> list[str]:
-    from routerd.service import Service
+    from routerd.service.daemon import Service
 
     return ["inloop", "background"] if hasattr(Service, "_snapshot_background") else ["inloop"]
 

@@ -30,9 +30,9 @@ import zmq
 HERE = os.path.dirname(os.path.abspath(__file__))
 sys.path.insert(0, os.path.join(HERE, ".."))
 
-from routerd import config, wire
-from routerd.childproc import parse_ready
-from routerd.service import load_topology
+from routerd.io import config, wire
+from routerd.io.childproc import parse_ready
+from routerd.service.daemon import load_topology
 
 RATE_BATCHES_S = 200
 ROWS = 100

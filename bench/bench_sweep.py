@@ -19,7 +19,7 @@ from typing import Any
 
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
-from sim.commands_sweep import run_grid
+from routerd.sim.commands_sweep import run_grid
 
 
 def _burn(n: int) -> int:

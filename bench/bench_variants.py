@@ -31,8 +31,8 @@ import time
 import compare_variants as C
 import numpy as np
 
-from routerd.engine import Engine, EngineSettings, HopBatch
-from routerd.topology import Topology
+from routerd.core.engine import Engine, EngineSettings, HopBatch
+from routerd.core.topology import Topology
 
 
 def observe_rates(t: Topology, rows: int) -> dict[str, float]:

@@ -1,11 +1,11 @@
-"""Measured comparison of the engine variants (routerd/variants.py) against ``mindelay``
+"""Measured comparison of the engine variants (routerd/core/variants.py) against ``mindelay``
 (the flow-deviation optimum) and ``shortest``: one report with tables and plots.
 
 Usage: ``python bench/compare_variants.py [--out DIR] [--quick] [--jobs N] [--seeds N]``
 (default ``bench/reports/variants``).  Writes ``DIR/report.md``, ``DIR/steady.csv``,
 ``DIR/scenarios.csv``, ``DIR/report.json`` and PNGs (matplotlib, Agg).
 
-What is measured (every figure from :func:`sim.run.run`, the simulator the policies share):
+What is measured (every figure from :func:`routerd.sim.run.run`, the simulator the policies share):
 
 * steady state — topohub's SNDlib ``abilene`` and ``geant`` with their own demand
   matrices (``demands=True``), every link at ``CAPACITY_BPS`` (the files carry no
@@ -45,11 +45,11 @@ import numpy as np
 
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
-from routerd import topology as T
-from sim import analytic as A
-from sim import mindelay as M
-from sim.policies import QRouting
-from sim.run import run as run_sim
+from routerd.core import topology as T
+from routerd.sim import analytic as A
+from routerd.sim import mindelay as M
+from routerd.sim.policies import QRouting
+from routerd.sim.run import run as run_sim
 
 CAPACITY_BPS = 2.0e6
 PACKET_BYTES = 1000.0

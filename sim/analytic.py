@@ -1,7 +1,7 @@
 """Analytic link loads: what a static split routing puts on each link, no simulation.
 
 Owns the array form of a routing used by the model-based parts of the simulator
-(:mod:`sim.mindelay`, and the ECMP check against topohub's figures):
+(:mod:`routerd.sim.mindelay`, and the ECMP check against topohub's figures):
 
 * ``frac[d, k]`` — the share of the traffic for destination ``d`` that is at node
   ``src[k]`` and leaves it on link ``k``.  For every (x, d) with x != d the shares of
@@ -23,8 +23,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from routerd import loops as _loops
-from routerd.topology import Topology
+from routerd.core import loops as _loops
+from routerd.core.topology import Topology
 
 
 def by_source(n: int, src: np.ndarray) -> np.ndarray:
@@ -222,7 +222,7 @@ def tree_flows(n: int, src: np.ndarray, dst: np.ndarray, best_link: np.ndarray,
 
     ``best_link[d, x]`` is a link index, or -1 for x == d.  The links must form an
     in-tree towards each d (no loops).  Accumulates from the leaves level by level, all
-    destinations at once (depths by pointer doubling, :func:`routerd.loops.depths`).
+    destinations at once (depths by pointer doubling, :func:`routerd.core.loops.depths`).
     """
     dst = np.asarray(dst, dtype=np.int64)
     r = np.array(demand, dtype=float)

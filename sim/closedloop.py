@@ -1,6 +1,6 @@
 """The closed loop: the simulator plays the overlay around a live ``routerd serve``.
 
-Owns: the ``service`` policy (:class:`ServicePolicy`, a :class:`sim.policy.Policy`
+Owns: the ``service`` policy (:class:`ServicePolicy`, a :class:`routerd.sim.policy.Policy`
 adapter), the ``ENDPOINTS`` syntax of ``--policy service:ENDPOINTS``
 (:func:`parse_endpoints`), the service subprocess the policy starts when no endpoints
 are named (:class:`ServiceProcess`), and the pacing of virtual time against the wall
@@ -14,7 +14,7 @@ service is the routing brain: it learns from the hop rows the simulator reports 
 publishes tables; the simulator forwards by the tables it last received.  Nothing is
 learned on the simulator's side.
 
-Rows.  Exactly as the in-process ``qrouting`` adapter (:class:`sim.policies.QRouting`):
+Rows.  Exactly as the in-process ``qrouting`` adapter (:class:`routerd.sim.policies.QRouting`):
 when x hands a packet for d to y and it reaches y, the row
 ``(x, y, d, hop latency, y's remaining estimate)`` becomes due at x after the link's
 propagation delay (or at once with ``sim.feedback = instant``).  y's estimate is what y
@@ -29,11 +29,11 @@ adapter's decision cadence) the policy's ``tick(now)``:
 1. paces: waits until the wall clock reaches ``start + now / speed``
    (``sim.service.speed``: 1 = real time), taking table publications while it waits;
    a simulation that falls behind does not wait, and the lag is counted;
-2. sends the rows due by ``now`` as one batch through :class:`routerd.client.Reporter`
+2. sends the rows due by ``now`` as one batch through :class:`routerd.agent.client.Reporter`
    and waits for the acknowledgement (an ack means "journaled and applied");
 3. refreshes the estimates of up to ``sim.service.estimate_nodes`` nodes (round
    robin; 0 = all) with pipelined control requests;
-4. takes every table received through :class:`routerd.client.TableSubscriber` into
+4. takes every table received through :class:`routerd.agent.client.TableSubscriber` into
    the forwarding table: single next hops go into the simulator's fast-path table,
    splits (exploration weights included) are sampled with the run's generator exactly
    as the in-process adapter samples them.
@@ -81,10 +81,10 @@ from typing import Any
 
 import numpy as np
 
-from routerd import config as _config
-from routerd import topology as _topology
-from routerd.childproc import parse_ready
-from routerd.errors import InputError, Problem
+from routerd.io import config as _config
+from routerd.core import topology as _topology
+from routerd.io.childproc import parse_ready
+from routerd.core.errors import InputError, Problem
 
 from .policy import Policy
 
@@ -153,7 +153,7 @@ def parse_endpoints(text: str, where: str = "--policy service") -> Endpoints:
 _CHILD = r"""
 import os, sys
 ppid = int(sys.argv[1])
-from routerd.childproc import die_with_parent
+from routerd.io.childproc import die_with_parent
 die_with_parent()
 if os.getppid() != ppid:
     sys.exit(3)
@@ -323,7 +323,7 @@ class _Control:
         self.ctx = ctx
         self.endpoint = endpoint
         self.timeout_s = timeout_s
-        self.curve = curve          # routerd.security.ClientKeys or None
+        self.curve = curve          # routerd.io.security.ClientKeys or None
         self.sock: Any = None
         self._open()
 
@@ -339,7 +339,7 @@ class _Control:
     def ask(self, reqs: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]]:
         import zmq
 
-        from routerd import wire
+        from routerd.io import wire
 
         for r in reqs:
             self.sock.send_multipart([b"", wire.encode_request(r)])
@@ -412,8 +412,8 @@ class ServicePolicy(Policy):
         super().attach(topology, rng, settings)
         import zmq
 
-        from routerd import security
-        from routerd.client import Reporter, TableSubscriber
+        from routerd.io import security
+        from routerd.agent.client import Reporter, TableSubscriber
 
         cfg = settings if settings is not None else _config.load()
         self.cfg = cfg
@@ -659,7 +659,7 @@ class ServicePolicy(Policy):
         self._flush()
 
     def _flush(self) -> None:
-        from routerd.client import DeliveryError, ServiceError
+        from routerd.agent.client import DeliveryError, ServiceError
 
         try:
             self.reporter.flush()
@@ -752,7 +752,7 @@ class ServicePolicy(Policy):
         if self._ctl is not None and self.final_tables is None and not dead:
             import zmq
 
-            from routerd import wire
+            from routerd.io import wire
 
             try:
                 self.final_tables = self._ctl.ask([{"op": "tables"}])[0].get("tables")

@@ -14,7 +14,7 @@ import os
 import sys
 from typing import Any
 
-from routerd.errors import InputError
+from routerd.core.errors import InputError
 
 from . import policies as _policies
 from .run import SimSpec
@@ -165,7 +165,7 @@ def report_problems(e: InputError) -> None:
 
 def run(args: argparse.Namespace) -> int:
     if getattr(args, "traffic", None) is not None and (args.rate is not None or args.demands):
-        # sim.trace: the trace decides what is sent when; a rate would be silently ignored
+        # routerd.sim.trace: the trace decides what is sent when; a rate would be silently ignored
         print("routerd simulate: --rate and --demands do not apply with --traffic (the trace "
               "sets the packets; --speed scales its timing)", file=sys.stderr)
         return 2
@@ -191,7 +191,7 @@ def run(args: argparse.Namespace) -> int:
           f"dropped {s['dropped']}, ttl expired {s['ttl_expired']}; mean delivery "
           f"{_ms(s['mean_delivery_s'])} (p99 {_ms(s['p99_delivery_s'])}), "
           f"{lost_text(s)}; {s['events']} events in {s['wall_s']:.2f} s")
-    for line in result.get("trace_lines", ()):   # sim.trace: what the trace could not inject
+    for line in result.get("trace_lines", ()):   # routerd.sim.trace: what the trace could not inject
         print(line)
     for p in written:
         print(f"wrote {p}")

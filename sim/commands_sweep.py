@@ -12,7 +12,7 @@ aggregation over seeds, its outputs and the progress bar:
   expired): a mean over delivered packets falls as losses rise, so the two go together,
   as in the printed table (mean ± half-width, then the lost share, per policy).
 
-Each run is :func:`sim.run.run` on a plain dict spec, a pure function of its spec, so
+Each run is :func:`routerd.sim.run.run` on a plain dict spec, a pure function of its spec, so
 the grid maps onto worker processes as it is and the table does not depend on
 ``--jobs``.  The confidence band comes from independent replications (one run per seed;
 Law & Kelton, Simulation Modeling and Analysis, ch. 9): mean ± t(0.975, seeds − 1) ·
@@ -33,8 +33,8 @@ from collections.abc import Callable, Iterable, Mapping, Sequence
 from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
 from typing import IO, Any
 
-from routerd.errors import InputError, Problem
-from routerd.progress import StatusLine
+from routerd.core.errors import InputError, Problem
+from routerd.io.progress import StatusLine
 
 from . import policies as _policies
 from .commands_simulate import _clean, add_config_options, add_packet_options, add_topology_option
@@ -416,7 +416,7 @@ def figure(points: Sequence[Mapping[str, Any]], meta: Mapping[str, Any],
     """The figure ``sweep.png`` shows: delivery time against load with bands, the lost share."""
     from matplotlib.lines import Line2D
 
-    from routerd import plotstyle as ps
+    from . import plotstyle as ps
 
     plt = ps.pyplot()
     fig, (ax, ax2) = plt.subplots(2, 1, figsize=(9.5, 7.0), dpi=110, sharex=True,
@@ -487,7 +487,7 @@ def figure(points: Sequence[Mapping[str, Any]], meta: Mapping[str, Any],
 def plot(points: Sequence[Mapping[str, Any]], meta: Mapping[str, Any], out: str,
          log_y: bool = False) -> str:
     """Draw ``DIR/sweep.png`` (see :func:`figure`)."""
-    from routerd import plotstyle as ps
+    from . import plotstyle as ps
 
     fig = figure(points, meta, log_y)
     path = os.path.join(out, "sweep.png")

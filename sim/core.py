@@ -61,7 +61,7 @@ from dataclasses import dataclass
 from heapq import heappop, heappush
 from typing import Any
 
-from routerd.topology import Topology
+from routerd.core.topology import Topology
 
 from .policy import Policy
 
@@ -350,7 +350,7 @@ def run_core(
                 if ev.action == "capacity":
                     inv_cap[k] = 1.0 / float(ev.capacity_bps)  # type: ignore[arg-type]
                     continue
-                if ev.action == "delay":  # a link trace (sim.linktrace)
+                if ev.action == "delay":  # a link trace (routerd.sim.linktrace)
                     delay[k] = float(ev.delay_s)  # type: ignore[arg-type]
                     continue
                 going_up = ev.action == "up"

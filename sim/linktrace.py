@@ -29,8 +29,8 @@ import io
 import math
 from dataclasses import dataclass
 
-from routerd.errors import InputError, Problem
-from routerd.topology import Topology
+from routerd.core.errors import InputError, Problem
+from routerd.core.topology import Topology
 
 from .core import LinkEvent
 

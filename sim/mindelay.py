@@ -77,7 +77,7 @@ from typing import Any
 
 import numpy as np
 
-from routerd.topology import Topology
+from routerd.core.topology import Topology
 
 from . import analytic
 from .policy import Policy
@@ -88,7 +88,7 @@ RHO_LEVELS = (0.99, 0.999, 0.9999, 0.99999, 0.999999)
 
 @dataclass(frozen=True, eq=False)
 class MinDelayResult:
-    """The outcome of :func:`flow_deviation`.  Arrays follow :mod:`sim.analytic`'s layout."""
+    """The outcome of :func:`flow_deviation`.  Arrays follow :mod:`routerd.sim.analytic`'s layout."""
 
     flows: np.ndarray  # (L,) total flow per link, packets/s
     dest_flows: np.ndarray  # (n, L) flow per link bound for each destination

@@ -1,9 +1,9 @@
 """PNG plots of one simulation: delivery time and losses over time, link utilisation
 over the graph.
 
-Owns: drawing one ``sim.run.run`` result (matplotlib, Agg backend, imported inside the
+Owns: drawing one ``routerd.sim.run.run`` result (matplotlib, Agg backend, imported inside the
 functions only) and a deterministic graph layout.  The shared look (ms axes, loss axes,
-link event marks, legends) is :mod:`routerd.plotstyle`'s.
+link event marks, legends) is :mod:`routerd.sim.plotstyle`'s.
 Must not import: zmq, prometheus, the engine.
 
 ``delivery.png``: the mean delivery time per series interval (its length is stated),
@@ -22,8 +22,8 @@ from typing import Any
 
 import numpy as np
 
-from routerd import plotstyle as ps
-from routerd.topology import Topology
+from . import plotstyle as ps
+from routerd.core.topology import Topology
 
 #: an interval whose lost share exceeds this is marked on the delivery-time line
 LOSS_MARK = 0.01

@@ -1,10 +1,10 @@
-"""The simulator's routing policies (thin adapters over :class:`sim.policy.Policy`) and
+"""The simulator's routing policies (thin adapters over :class:`routerd.sim.policy.Policy`) and
 the registry that names them.
 
 Owns: ``shortest`` (static delay-shortest paths), ``ecmp`` (equal-cost multipath by a
-hash of the flow id), ``qrouting`` (drives :class:`routerd.engine.Engine` with the hop
+hash of the flow id), ``qrouting`` (drives :class:`routerd.core.engine.Engine` with the hop
 observations a real network would give) and :func:`get` / :data:`NAMES`.  ``mindelay``
-lives in :mod:`sim.mindelay` and is imported only when asked for.
+lives in :mod:`routerd.sim.mindelay` and is imported only when asked for.
 Must not import: zmq, prometheus, matplotlib.
 
 qrouting, theory of operation.  When x hands a packet for d to y and it reaches y, y's
@@ -36,9 +36,9 @@ from typing import Any
 
 import numpy as np
 
-from routerd.engine import Engine, EngineSettings, HopBatch
-from routerd.errors import InputError, Problem
-from routerd.topology import Topology
+from routerd.core.engine import Engine, EngineSettings, HopBatch
+from routerd.core.errors import InputError, Problem
+from routerd.core.topology import Topology
 
 from .policy import Policy
 
@@ -140,7 +140,7 @@ class QRouting(Policy):
         self._eps_np = np.full((n, n), np.nan)           # its share and candidates, as refreshed
         self._alt_np = np.zeros((n, n, topology.slots.shape[1]), dtype=bool)
         self._moved: list[np.ndarray] = []               # keys x * n + d whose greedy hop moved
-        # dual (routerd.variants): a packet also carries its sender's estimate back towards
+        # dual (routerd.core.variants): a packet also carries its sender's estimate back towards
         # its source; the source is the flow id's pair, (src * n + dst) * flows_per_pair + r
         self.hop_flow = es.variant == "dual"
         self._flows_per_src = n * (int(settings["sim.flows_per_pair"]) if settings is not None else 8)
@@ -312,12 +312,12 @@ class QRouting(Policy):
 #: name -> "module:Class"; imported on first use, so a policy module that does not exist
 #: yet (or needs an optional dependency) breaks only its own name.
 REGISTRY: dict[str, str] = {
-    "shortest": "sim.policies:Shortest",
-    "ecmp": "sim.policies:Ecmp",
-    "qrouting": "sim.policies:QRouting",
-    "mindelay": "sim.mindelay:MinDelay",
+    "shortest": "routerd.sim.policies:Shortest",
+    "ecmp": "routerd.sim.policies:Ecmp",
+    "qrouting": "routerd.sim.policies:QRouting",
+    "mindelay": "routerd.sim.mindelay:MinDelay",
     # the closed loop: a live `routerd serve` routes; `service:ENDPOINTS` names a running one
-    "service": "sim.closedloop:ServicePolicy",
+    "service": "routerd.sim.closedloop:ServicePolicy",
 }
 NAMES: tuple[str, ...] = tuple(REGISTRY)
 

@@ -7,7 +7,7 @@ indices into ``topology.nodes``.  Randomness comes only from the Generator hande
 
 Call order per run::
 
-    attach(topology, rng, settings)  once; settings is the run's routerd.config.Config
+    attach(topology, rng, settings)  once; settings is the run's routerd.io.config.Config
     offered(demand_pps, mean_bits)   once, before the first packet: the expected offered
                                      load, packets/s per (source, destination), time-averaged
     next_hop(x, d, flow, now)        whenever a packet for d is at x (x != d)
@@ -30,7 +30,7 @@ from typing import Any
 
 import numpy as np
 
-from routerd.topology import Topology
+from routerd.core.topology import Topology
 
 
 class Policy:

@@ -1,12 +1,12 @@
 """Run one simulation from a plain spec and return plain results.
 
 Owns: turning a :class:`SimSpec` (or a dict of its fields) into a topology, config,
-scenario, traffic source and policy; running :func:`sim.core.run_core`; and reducing the
+scenario, traffic source and policy; running :func:`routerd.sim.core.run_core`; and reducing the
 raw counts to the summary (the keys of ``summary.json``) and the time series.
 :func:`run` is a pure function of its spec (the wall-clock time is the one exception,
 reported as ``wall_s``), takes and returns only picklable plain values, and so can be
 mapped over a process pool as it is.
-Must not import: zmq, prometheus, matplotlib (plots live in :mod:`sim.plots`).
+Must not import: zmq, prometheus, matplotlib (plots live in :mod:`routerd.sim.plots`).
 """
 from __future__ import annotations
 
@@ -20,17 +20,17 @@ from typing import Any
 
 import numpy as np
 
-from routerd import config as _config
-from routerd import topology as _topology
-from routerd.errors import InputError, Problem
-from routerd.stats import delivery_stats
+from routerd.io import config as _config
+from routerd.core import topology as _topology
+from routerd.core.errors import InputError, Problem
+from .stats import delivery_stats
 
 from . import policies as _policies
-from . import scenario as _scenario
+from routerd.io import scenario as _scenario
 from .core import CoreResult, run_core
 from .traffic import PoissonTraffic
 
-DEMO_TOPOLOGY = os.path.join(os.path.dirname(_topology.__file__), "data", "demo-lab.yaml")
+DEMO_TOPOLOGY = os.path.join(os.path.dirname(os.path.dirname(_topology.__file__)), "data", "demo-lab.yaml")
 
 
 @dataclass
@@ -59,8 +59,8 @@ class SimSpec:
     buffer_pkts: int | None = None
     series: bool = True
     progress: bool = False
-    # trace-driven runs (sim.trace, sim.linktrace): a capture or flow log replaces the
-    # Poisson source (duration None: the trace's span plus sim.trace.DRAIN_S)
+    # trace-driven runs (routerd.sim.trace, routerd.sim.linktrace): a capture or flow log replaces the
+    # Poisson source (duration None: the trace's span plus routerd.sim.trace.DRAIN_S)
     traffic: str | None = None
     address_map: str | None = None
     trace_speed: float = 1.0
@@ -144,10 +144,10 @@ def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
     """Run one simulation.  Returns ``{"summary": {...}, "series": {...}, "links": [...],
     "link_events": [...]}`` (the scenario's link events: ``t_s``, ``action``, ``links``).
 
-    Raises :class:`routerd.errors.InputError` for bad inputs (before anything runs).
-    ``policy``: an unattached :class:`sim.policy.Policy` instance to use instead of
+    Raises :class:`routerd.core.errors.InputError` for bad inputs (before anything runs).
+    ``policy``: an unattached :class:`routerd.sim.policy.Policy` instance to use instead of
     ``spec.policy`` (the caller keeps a reference, e.g. to read its final tables).
-    ``observer``: passed to :func:`sim.core.run_core` (live views at every sample).
+    ``observer``: passed to :func:`routerd.sim.core.run_core` (live views at every sample).
     A policy with a ``close()`` method (one that holds processes or sockets) is closed
     at the end, also when the run is interrupted.
     """
@@ -195,7 +195,7 @@ def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
 def reduce(raw: CoreResult, sp: SimSpec, topo: _topology.Topology, policy: str,
            warm: float, pstats: Mapping[str, float]) -> dict[str, Any]:
     """Raw counts from :func:`run_core` → the summary, the series and per-link figures."""
-    ds = delivery_stats(raw.deliveries)      # batch-means interval: routerd.stats
+    ds = delivery_stats(raw.deliveries)      # batch-means interval: routerd.sim.stats
     m = ds.count
     win = raw.window_s
     util = [b / win if win > 0 else math.nan for b in raw.busy_window_s]
@@ -259,8 +259,8 @@ def reduce(raw: CoreResult, sp: SimSpec, topo: _topology.Topology, policy: str,
 
 def _progress_printer(duration: float, stream: Any = None) -> Any:
     """Progress of a long run on stderr, from its third second on: redrawn twice a second
-    on a terminal, a plain line every 10 s elsewhere (:class:`routerd.progress.StatusLine`)."""
-    from routerd.progress import StatusLine
+    on a terminal, a plain line every 10 s elsewhere (:class:`routerd.io.progress.StatusLine`)."""
+    from routerd.io.progress import StatusLine
 
     t0 = time.perf_counter()
     line = StatusLine(stream if stream is not None else sys.stderr, every_s=0.5, plain_every_s=10.0)

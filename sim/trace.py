@@ -3,7 +3,7 @@
 Owns: reading pcap and pcapng captures (record and block structures decoded by dpkt),
 CSV and JSON-lines flow logs, the address map (YAML: node name → addresses or CIDR
 prefixes, checked with :mod:`ipaddress`), the import report (every packet that could not
-be used, counted by reason), and :class:`TraceTraffic`, a :class:`sim.traffic.TrafficSource`.
+be used, counted by reason), and :class:`TraceTraffic`, a :class:`routerd.sim.traffic.TrafficSource`.
 Must not import: the engine, zmq, prometheus, matplotlib.
 
 Theory of operation
@@ -56,8 +56,8 @@ from typing import Any, Literal
 
 import numpy as np
 
-from routerd.errors import InputError, Problem
-from routerd.topology import Topology
+from routerd.core.errors import InputError, Problem
+from routerd.core.topology import Topology
 
 from .core import PacketTuple
 
@@ -483,7 +483,7 @@ def _ip_text(packed: bytes) -> str:
 
 # ---- building the source -----------------------------------------------------------------
 class TraceTraffic:
-    """Packets of a trace as a :class:`sim.traffic.TrafficSource` (arrays, time order)."""
+    """Packets of a trace as a :class:`routerd.sim.traffic.TrafficSource` (arrays, time order)."""
 
     def __init__(self, n: int, t_s: np.ndarray, src: np.ndarray, dst: np.ndarray,
                  bits: np.ndarray, flow: np.ndarray, report: TraceReport):
@@ -776,7 +776,7 @@ def load_traffic(path: str, topo: Topology, address_map: str | None = None, *,
     return load_flow_log(path, topo, amap, speed=speed, flows_per_pair=flows_per_pair)
 
 
-# ---- the simulator's hooks (sim.run calls these) -----------------------------------------
+# ---- the simulator's hooks (routerd.sim.run calls these) -----------------------------------------
 #: seconds simulated after a trace's last packet when no duration is given (for the
 #: packets still in flight to arrive)
 DRAIN_S = 1.0

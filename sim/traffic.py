@@ -18,7 +18,7 @@ from typing import Protocol
 import numpy as np
 
 from .core import PacketTuple
-from .scenario import Scenario
+from routerd.io.scenario import Scenario
 
 #: packets drawn per numpy block
 _BLOCK = 8192

@@ -9,7 +9,7 @@ from collections.abc import Callable, Iterator
 import numpy as np
 import pytest
 
-from routerd import topology as T
+from routerd.core import topology as T
 
 
 def ring_with_chords(n: int, chords: int, seed: int = 0, *, zero_delay: bool = False) -> T.Topology:

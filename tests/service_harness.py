@@ -21,9 +21,9 @@ import msgpack
 import numpy as np
 import zmq
 
-from routerd import config, wire
-from routerd.childproc import parse_ready
-from routerd.service import load_topology
+from routerd.io import config, wire
+from routerd.io.childproc import parse_ready
+from routerd.service.daemon import load_topology
 
 EP = re.compile(r"^  (ingest|pull|publish|control|metrics)\s+(\S+)")
 START_TIMEOUT_S = 30.0

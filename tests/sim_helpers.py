@@ -3,7 +3,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from sim.core import CoreResult
+from routerd.sim.core import CoreResult
 
 
 def assert_little(s: dict[str, Any], rel: float = 0.03) -> None:
@@ -15,7 +15,7 @@ def assert_little(s: dict[str, Any], rel: float = 0.03) -> None:
 
 
 def assert_little_raw(raw: CoreResult, rel: float = 0.03) -> None:
-    """The same check on :func:`sim.core.run_core`'s raw result."""
+    """The same check on :func:`routerd.sim.core.run_core`'s raw result."""
     win = raw.window_s
     L = raw.little_area / win
     lw = raw.left / win * (raw.sys_sum / raw.left) if raw.left else 0.0

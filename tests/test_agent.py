@@ -1,9 +1,9 @@
-"""routerd.agent on loopback: weights, flowlets, probes, failure detection, TTL, malformed
+"""routerd.agent.forwarder on loopback: weights, flowlets, probes, failure detection, TTL, malformed
 packets, reports and non-stop forwarding — real UDP sockets and real zmq, no root needed.
 
 A diamond of our own: s reaches t through x (slow: 4 ms to x) or y (fast).  The agents run
 in threads of this process; a stand-in service (PUB for tables, ROUTER that decodes with
-routerd.wire and acknowledges) lets the tests choose the tables and read every row sent.
+routerd.io.wire and acknowledges) lets the tests choose the tables and read every row sent.
 """
 from __future__ import annotations
 
@@ -25,12 +25,12 @@ import zmq
 from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.parser import text_string_to_metric_families
 
-from routerd import agent as A
-from routerd import config as C
-from routerd import overlay as ov
-from routerd import topology as T
-from routerd import wire
-from routerd.clock import SYSTEM, FakeClock
+from routerd.agent import forwarder as A
+from routerd.io import config as C
+from routerd.agent import overlay as ov
+from routerd.core import topology as T
+from routerd.io import wire
+from routerd.io.clock import SYSTEM, FakeClock
 
 NODES = ["s", "x", "y", "t"]
 TOPO_DOC = {"topology": {"name": "diamond", "defaults": {"capacity_bps": 1e7, "buffer_pkts": 50},
@@ -59,7 +59,7 @@ def wait_until(pred: Callable[[], bool], timeout: float = 10.0) -> bool:
 
 
 class FakeService:
-    """PUB tables/<node> and a ROUTER that acknowledges every batch (decoded by routerd.wire)."""
+    """PUB tables/<node> and a ROUTER that acknowledges every batch (decoded by routerd.io.wire)."""
 
     def __init__(self, base: str, topo: T.Topology, epoch: int = 1):
         self.topo = topo

@@ -1,4 +1,4 @@
-"""routerd.childproc: the readiness line and the parent-death signal."""
+"""routerd.io.childproc: the readiness line and the parent-death signal."""
 from __future__ import annotations
 
 import os
@@ -9,7 +9,7 @@ import time
 
 import pytest
 
-from routerd.childproc import READY_RE, die_with_parent, parse_ready, ready_line
+from routerd.io.childproc import READY_RE, die_with_parent, parse_ready, ready_line
 
 
 def test_ready_line_round_trip() -> None:
@@ -35,7 +35,7 @@ def test_child_gets_sigterm_when_its_parent_dies(tmp_path: object) -> None:
     mark = os.path.join(str(tmp_path), "got")
     child = textwrap.dedent(f"""
         import signal, sys, time
-        from routerd.childproc import die_with_parent
+        from routerd.io.childproc import die_with_parent
         def on_term(_s, _f):
             open({mark!r}, "w").write("SIGTERM")
             sys.exit(0)

@@ -1,5 +1,5 @@
-"""routerd.client against a small in-test fake service (ROUTER + REP threads on ipc://)
-that decodes with routerd.wire and acknowledges; and, marked slow, against a real
+"""routerd.agent.client against a small in-test fake service (ROUTER + REP threads on ipc://)
+that decodes with routerd.io.wire and acknowledges; and, marked slow, against a real
 ``routerd serve`` for what only the daemon does: CURVE and its token-bucket rate limit.
 The daemon's own end-to-end tests live with the service."""
 from __future__ import annotations
@@ -17,7 +17,9 @@ import pytest
 import zmq
 from service_harness import ServiceProc, service_args, short_base
 
-from routerd import client, security, topology, wire
+from routerd.agent import client
+from routerd.io import security, wire
+from routerd.core import topology
 
 DEMO = "routerd/data/demo-lab.yaml"
 
@@ -561,8 +563,8 @@ def test_curve_without_an_allowed_key_nothing_gets_through(
 
 @pytest.mark.slow
 def test_closed_loop_runs_against_a_curve_service(curve_svc: CurveService) -> None:
-    from routerd.errors import InputError
-    from sim.run import run
+    from routerd.core.errors import InputError
+    from routerd.sim.run import run
 
     ep = curve_svc.ep
     eps = f"ingest={ep['ingest']},publish={ep['publish']},control={ep['control']}"

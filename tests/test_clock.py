@@ -1,4 +1,4 @@
-"""routerd.clock: the real clock, the fake one, and the client's timeouts on a fake clock."""
+"""routerd.io.clock: the real clock, the fake one, and the client's timeouts on a fake clock."""
 from __future__ import annotations
 
 import shutil
@@ -10,8 +10,9 @@ from collections.abc import Iterator
 import pytest
 import zmq
 
-from routerd import client, topology
-from routerd.clock import SYSTEM, Clock, FakeClock, SystemClock
+from routerd.agent import client
+from routerd.core import topology
+from routerd.io.clock import SYSTEM, Clock, FakeClock, SystemClock
 
 
 def test_both_clocks_satisfy_the_interface() -> None:

@@ -18,12 +18,12 @@ import networkx as nx
 import numpy as np
 import pytest
 
-from routerd import config as C
-from routerd import topology as T
-from routerd.errors import InputError
-from sim import closedloop, policies
-from sim.policies import QRouting
-from sim.run import run
+from routerd.io import config as C
+from routerd.core import topology as T
+from routerd.core.errors import InputError
+from routerd.sim import closedloop, policies
+from routerd.sim.policies import QRouting
+from routerd.sim.run import run
 
 MS = 1e-3
 # A ring of six of our own with one short but thin chord a-d: every pair's best next hop

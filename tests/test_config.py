@@ -1,4 +1,4 @@
-"""The config module (routerd/config.py): schema, loading, overrides and its messages.
+"""The config module (routerd/io/config.py): schema, loading, overrides and its messages.
 
 Every error names the file, the key path, the value and the rule (house style, GUIDE §5:
 ``configs/lab.yaml: explore.max_rate: 1.4 is above 1.0``).
@@ -10,9 +10,9 @@ import dataclasses
 import pytest
 import yaml
 
-from routerd import config
-from routerd.engine import EngineSettings
-from routerd.errors import ConfigError
+from routerd.io import config
+from routerd.core.engine import EngineSettings
+from routerd.core.errors import ConfigError
 
 
 def _write(tmp_path, doc, name: str = "lab.yaml") -> str:  # type: ignore[no-untyped-def]

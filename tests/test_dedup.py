@@ -1,4 +1,4 @@
-"""routerd.dedup: the byte-bounded duplicate window and the per-reporter high-water marks,
+"""routerd.service.dedup: the byte-bounded duplicate window and the per-reporter high-water marks,
 alone and inside the service's ingest path (in process, no sockets)."""
 from __future__ import annotations
 
@@ -9,10 +9,10 @@ from typing import Any
 
 import pytest
 
-from routerd import config, journal, wire
-from routerd import dedup as D
-from routerd import topology as T
-from routerd.service import SERVICE_REASONS, Service
+from routerd.io import config, journal, wire
+from routerd.service import dedup as D
+from routerd.core import topology as T
+from routerd.service.daemon import SERVICE_REASONS, Service
 
 REASONS = wire.REASONS + SERVICE_REASONS
 DEMO = os.path.join(os.path.dirname(__file__), "..", "routerd", "data", "demo-lab.yaml")

@@ -1,4 +1,4 @@
-"""`routerd demo` (routerd/demo.py): completes in its time bound, writes every file it
+"""`routerd demo` (routerd/tools/demo.py): completes in its time bound, writes every file it
 promises, draws real plots, and leaves nothing behind when interrupted."""
 from __future__ import annotations
 
@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from routerd import demo
+from routerd.tools import demo
 
 #: the issue's bound for the whole command, on this class of machine (2 cores)
 TIME_BOUND_S = 60.0
@@ -72,7 +72,7 @@ def test_scenario_is_stretched_to_the_duration() -> None:
     links = sc["links"]
     assert [e["at_s"] for e in links] == [30.0, 42.0]     # 15 s and 21 s of the 30 s script
     assert sc["load"][1]["from_s"] == 8.0 and sc["load"][1]["to_s"] == 20.0
-    from sim import scenario
+    from routerd.io import scenario
 
     s = scenario.from_mapping(doc)
     assert s.max_factor() == 1.0 and float(s.factor(0.0)) == 0.4
@@ -130,9 +130,9 @@ def test_progress_plain_lines_when_not_a_terminal() -> None:
 def offline(tmp_path_factory: Any) -> demo.Demo:
     """A Demo whose three results are in-process runs (the 'service' one: qrouting with
     another seed, so its line differs a little from the in-process learner's)."""
-    from routerd import topology
-    from sim import scenario
-    from sim.run import DEMO_TOPOLOGY
+    from routerd.core import topology
+    from routerd.io import scenario
+    from routerd.sim.run import DEMO_TOPOLOGY
 
     dur = 8.0
     d = demo.Demo(str(tmp_path_factory.mktemp("demo")), dur, 1, 1.0)
@@ -352,7 +352,7 @@ def test_demo_sigint_leaves_no_process_and_writes_partial_results(tmp_path: Path
 
 
 def test_out_dir_earlier_demo_replaced_other_content_refused(tmp_path: Path) -> None:
-    from routerd.errors import InputError
+    from routerd.core.errors import InputError
 
     old = tmp_path / "old"
     (old / "state" / "journal").mkdir(parents=True)

@@ -17,11 +17,12 @@ import yaml
 from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.parser import text_string_to_metric_families
 
-from routerd import agent as A
-from routerd import cli, wire
-from routerd import metrics as M
-from routerd import topology as T
-from routerd.engine import Engine
+from routerd.agent import forwarder as A
+from routerd.tools import cli
+from routerd.io import wire
+from routerd.service import metrics as M
+from routerd.core import topology as T
+from routerd.core.engine import Engine
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 DEPLOY = os.path.join(ROOT, "deploy")

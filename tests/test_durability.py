@@ -17,7 +17,7 @@ import pytest
 import zmq
 from service_harness import DEMO, ServiceProc, service_args, stream_until_killed
 
-from routerd import journal, wire
+from routerd.io import journal, wire
 
 
 def journal_bytes(state_dir: str) -> dict[str, bytes]:
@@ -162,7 +162,7 @@ def engine_counts(sp: ServiceProc) -> np.ndarray:
     """The service's per-entry update counts N, read from a snapshot it writes on request."""
     import time
 
-    from routerd import client
+    from routerd.agent import client
 
     rec = client.control(sp.endpoints["control"], {"op": "snapshot"}, timeout_s=10)["snapshot"]["record"]
     path = os.path.join(journal.snapshot_dir(sp.state_dir), f"snap-{rec:020d}.rs")
@@ -181,8 +181,8 @@ def test_crash_and_corrupt_loop(base: str) -> None:
     zero acknowledged rows lost, zero applied twice."""
     import time
 
-    from routerd import client
-    from routerd.engine import Engine, EngineSettings
+    from routerd.agent import client
+    from routerd.core.engine import Engine, EngineSettings
 
     cfg = os.path.join(base, "loop.yaml")
     with open(cfg, "w", encoding="utf-8") as fh:
@@ -276,7 +276,7 @@ def test_banner_health_and_replay_report_recovery_alike(base: str) -> None:
     import json
     import time
 
-    from routerd import client
+    from routerd.agent import client
 
     cfg = os.path.join(base, "c.yaml")
     with open(cfg, "w", encoding="utf-8") as fh:

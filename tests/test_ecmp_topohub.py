@@ -9,7 +9,7 @@ rounded to two decimals in its JSON files.
 
 The simulator's ``ecmp`` picks among delay-shortest next hops by a hash of the flow id.
 With every link given the same delay, delay-shortest is hop-shortest, and the expected
-share of each equal-cost next hop is the even split: :func:`sim.analytic.ecmp_link_loads`
+share of each equal-cost next hop is the even split: :func:`routerd.sim.analytic.ecmp_link_loads`
 computes exactly that, and a simulated run must carry it.
 """
 from __future__ import annotations
@@ -22,9 +22,9 @@ from typing import Any
 import numpy as np
 import pytest
 
-from routerd import topology
-from sim import analytic, policies
-from sim.run import run
+from routerd.core import topology
+from routerd.sim import analytic, policies
+from routerd.sim.run import run
 
 KEYS = ["sndlib/abilene", "sndlib/polska", "gabriel/25/0"]
 ROUNDING = 0.005 + 1e-9  # topohub writes two decimals
@@ -106,7 +106,7 @@ def hashed_loads(t: topology.Topology, flows_per_pair: int, rate: float) -> np.n
             if s == d:
                 continue
             for r in range(flows_per_pair):
-                flow = (s * t.n + d) * flows_per_pair + r  # sim.traffic's flow id layout
+                flow = (s * t.n + d) * flows_per_pair + r  # routerd.sim.traffic's flow id layout
                 x = s
                 while x != d:
                     y = p.next_hop(x, d, flow, 0.0)

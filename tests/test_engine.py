@@ -1,4 +1,4 @@
-"""The learning engine (routerd/engine.py) against published rules and outside references.
+"""The learning engine (routerd/core/engine.py) against published rules and outside references.
 
 * The update rule: Boyan & Littman, "Packet routing in dynamically changing networks: a
   reinforcement learning approach", NIPS 6 (1994): Q_x(d, y) += alpha * (q + s + t - Q_x(d, y)),
@@ -21,10 +21,11 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from routerd import config, loops
-from routerd import engine as E
-from routerd import topology as T
-from routerd.engine import Engine, EngineSettings, HopBatch
+from routerd.io import config
+from routerd.core import loops
+from routerd.core import engine as E
+from routerd.core import topology as T
+from routerd.core.engine import Engine, EngineSettings, HopBatch
 
 FIBRE = 5e-6  # s/km, ITU-T G.114 planning figure (the topohub import's rule)
 HYP = settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow,

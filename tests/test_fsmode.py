@@ -1,4 +1,4 @@
-"""routerd.fsmode: state folders 0700 and files 0600 whatever the umask; the journal and
+"""routerd.io.fsmode: state folders 0700 and files 0600 whatever the umask; the journal and
 snapshots created through it; a real service's whole state directory."""
 from __future__ import annotations
 
@@ -12,8 +12,8 @@ import numpy as np
 import pytest
 from service_harness import running, short_base, stop_gracefully
 
-from routerd import fsmode
-from routerd import journal as J
+from routerd.io import fsmode
+from routerd.io import journal as J
 
 
 def _mode(path: str) -> int:

@@ -16,10 +16,10 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from routerd import config, journal, security, wire
-from routerd import topology as T
-from routerd.engine import EngineSettings
-from routerd.service import SERVICE_FRAME_ERRORS, Service
+from routerd.io import config, journal, security, wire
+from routerd.core import topology as T
+from routerd.core.engine import EngineSettings
+from routerd.service.daemon import SERVICE_FRAME_ERRORS, Service
 
 DEMO = os.path.join(os.path.dirname(__file__), "..", "routerd", "data", "demo-lab.yaml")
 TOPO = T.load(DEMO)

@@ -1,4 +1,4 @@
-"""routerd.guards: propagation floor, ceiling, jump hold/clip, per-reporter token buckets."""
+"""routerd.core.guards: propagation floor, ceiling, jump hold/clip, per-reporter token buckets."""
 from __future__ import annotations
 
 import math
@@ -9,9 +9,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from routerd import topology as T
-from routerd.engine import Engine, EngineSettings, HopBatch
-from routerd.guards import REASONS, Guards, GuardSettings
+from routerd.core import topology as T
+from routerd.core.engine import Engine, EngineSettings, HopBatch
+from routerd.core.guards import REASONS, Guards, GuardSettings
 
 
 def _line() -> T.Topology:
@@ -209,7 +209,7 @@ def test_settings_are_checked() -> None:
 
 
 def test_config_keys_build_the_settings() -> None:
-    from routerd import config
+    from routerd.io import config
 
     cfg = config.load(None).with_overrides({"guards.jump.factor": 3.0, "guards.ceiling_s": 0.0})
     s = GuardSettings.from_config(cfg)

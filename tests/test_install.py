@@ -5,7 +5,7 @@ An editable install puts the source tree on the path and imports its own hook mo
 start-up, which hid a missing ``import importlib.util`` from every other test.  Here the
 package is built the way ``deploy/Containerfile`` builds it (the same files copied, then
 ``pip``), installed from the wheel with its dependencies from the package index (pip's
-cache makes it quick after the first time), and every command of ``routerd.cli.COMMANDS``
+cache makes it quick after the first time), and every command of ``routerd.tools.cli.COMMANDS``
 is started from the installed entry point, so a new command is covered without editing
 this file.  Slow: a venv and a dependency install, 20-60 s here (pip cache warm; most
 of it is installing numpy and pyzmq).
@@ -34,7 +34,7 @@ import sysconfig
 
 import pytest
 
-from routerd import cli
+from routerd.tools import cli
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 CONTAINERFILE = os.path.join(ROOT, "deploy", "Containerfile")
@@ -125,21 +125,25 @@ def test_wheel_holds_every_module_and_data_file(installed: Installed) -> None:
     subpackage missing from pyproject's package list would be caught here)."""
     names = set(zipfile.ZipFile(installed.wheel).namelist())
     want = []
-    for pkg in ("routerd", "sim"):
+    # the repository's sim/ folder installs as routerd/sim/ (pyproject's package-dir)
+    for pkg, dest in (("routerd", "routerd"), ("sim", "routerd/sim")):
         for d, subdirs, files in os.walk(os.path.join(ROOT, pkg)):
             subdirs[:] = [s for s in subdirs if s != "__pycache__"]
-            rel = os.path.relpath(d, ROOT)
+            rel = os.path.relpath(d, os.path.join(ROOT, pkg))
+            rel = dest if rel == "." else f"{dest}/{rel}"
             want += [f"{rel}/{f}".replace(os.sep, "/") for f in files
                      if f.endswith(".py") or os.path.basename(d) == "data"]
     assert want and [w for w in want if w not in names] == []
+    # nothing named sim at the top level of site-packages
+    assert not [n for n in names if n.split("/")[0] == "sim"]
     assert "routerd/data/demo-lab.yaml" in names and "routerd/data/demo-scenario.yaml" in names
 
 
 @pytest.mark.slow
 def test_imports_come_from_the_install(installed: Installed) -> None:
     r = installed.run(installed.exe("python"), "-c",
-                      "import routerd, sim, sys; print(routerd.__file__); print(sim.__file__); "
-                      "print(sys.flags.no_user_site)")
+                      "import routerd, routerd.sim, sys; print(routerd.__file__); "
+                      "print(routerd.sim.__file__); print(sys.flags.no_user_site)")
     _check(r, "import")
     site = os.path.realpath(installed.venv)
     for line in r.stdout.split()[:2]:
@@ -239,7 +243,7 @@ def test_every_module_imports_from_the_plain_install(installed: Installed) -> No
     no module may need one at import time."""
     names = sorted(n[:-3].replace("/", ".").removesuffix(".__init__")
                    for n in zipfile.ZipFile(installed.wheel).namelist()
-                   if n.endswith(".py") and n.split("/")[0] in ("routerd", "sim")
+                   if n.endswith(".py") and n.split("/")[0] == "routerd"
                    and not n.endswith("__main__.py"))
     code = ("import importlib, sys\nbad = []\nfor n in sys.argv[1:]:\n    try:\n"
             "        importlib.import_module(n)\n    except Exception as e:\n"

@@ -1,4 +1,4 @@
-"""Durable state (routerd/journal.py): record format, recovery of torn and corrupt tails,
+"""Durable state (routerd/io/journal.py): record format, recovery of torn and corrupt tails,
 segments and retirement, snapshots with fallback, and exact engine state after replay."""
 from __future__ import annotations
 
@@ -11,9 +11,10 @@ import zlib
 import numpy as np
 import pytest
 
-from routerd import engine as E
-from routerd import journal as J
-from routerd import topology, wire
+from routerd.core import engine as E
+from routerd.io import journal as J
+from routerd.core import topology
+from routerd.io import wire
 
 DEMO = "routerd/data/demo-lab.yaml"
 

@@ -22,8 +22,8 @@ from typing import Any
 import networkx as nx
 import pytest
 
-from routerd import lab as L
-from routerd import topology as T
+from routerd.tools import lab as L
+from routerd.core import topology as T
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 TOPO = os.path.join(ROOT, "configs", "lab-small.yaml")
@@ -157,8 +157,8 @@ def test_lab_delivers_end_to_end_with_the_simulators_keys(outdir: str) -> None:
     r, pid = run_lab(outdir, duration=4.0, rate=150.0)
     assert r.returncode == 0, r.stderr
     s, x, rows, _ = read_out(outdir)
-    # the simulator's summary keys, all of them (sim.run.reduce is the reference)
-    from sim.run import run as sim_run
+    # the simulator's summary keys, all of them (routerd.sim.run.reduce is the reference)
+    from routerd.sim.run import run as sim_run
 
     ref = sim_run({"policy": "shortest", "rate_pps": 50.0, "duration_s": 0.5, "topology": TOPO,
                    "series": False})["summary"]
@@ -297,7 +297,7 @@ def test_orphan_removal_acts_only_on_a_dead_labs_own_service(tmp_path: Any) -> N
     import tempfile
 
     import yaml
-    from routerd.childproc import READY_RE as READY
+    from routerd.io.childproc import READY_RE as READY
 
     base = tempfile.mkdtemp(prefix="rdo-", dir="/tmp")     # ipc paths must stay short
     procs: list[subprocess.Popen[Any]] = []

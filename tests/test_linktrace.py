@@ -1,4 +1,4 @@
-"""sim.linktrace: link delays over time from a CSV, applied by the simulator.
+"""routerd.sim.linktrace: link delays over time from a CSV, applied by the simulator.
 
 The worked example is store-and-forward arithmetic (common practice; e.g. Kurose & Ross,
 Computer Networking, §1.4 "nodal delay", from memory): a lone packet of L bits crossing
@@ -11,11 +11,11 @@ from typing import Any
 
 import pytest
 
-from routerd import config
-from routerd.errors import InputError
-from routerd.service import load_topology
-from sim import linktrace as LT
-from sim.run import run as run_sim
+from routerd.io import config
+from routerd.core.errors import InputError
+from routerd.service.daemon import load_topology
+from routerd.sim import linktrace as LT
+from routerd.sim.run import run as run_sim
 
 DEMO = load_topology(config.load(None))
 

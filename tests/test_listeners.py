@@ -1,4 +1,4 @@
-"""routerd.listeners: the connection cap's rules (pure Gate, the descriptor budget) and a
+"""routerd.service.listeners: the connection cap's rules (pure Gate, the descriptor budget) and a
 real ``routerd serve`` under a low descriptor limit flooded with connections (slow)."""
 from __future__ import annotations
 
@@ -12,7 +12,7 @@ import msgpack
 import pytest
 import zmq
 
-from routerd import listeners as L
+from routerd.service import listeners as L
 from service_harness import ServiceProc, service_args
 
 

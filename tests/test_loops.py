@@ -1,4 +1,4 @@
-"""Forwarding-loop analysis (routerd/loops.py) against networkx as the reference.
+"""Forwarding-loop analysis (routerd/core/loops.py) against networkx as the reference.
 
 Tables are functional graphs (each node has at most one next hop), so their loops are
 exactly the simple cycles networkx finds (``networkx.simple_cycles``); depths are checked
@@ -11,7 +11,7 @@ import numpy as np
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from routerd import loops
+from routerd.core import loops
 
 SET = settings(max_examples=80, deadline=None)
 

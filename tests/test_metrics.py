@@ -1,4 +1,4 @@
-"""routerd.metrics: the collector's page, read back with prometheus_client's own parser and
+"""routerd.service.metrics: the collector's page, read back with prometheus_client's own parser and
 checked with ``promtool check metrics`` (Debian package ``prometheus``) when it is installed.
 
 References: the Prometheus text exposition format (prometheus.io, "Exposition formats":
@@ -19,9 +19,10 @@ from prometheus_client import generate_latest
 from prometheus_client.parser import text_string_to_metric_families
 from prometheus_client.registry import CollectorRegistry
 
-from routerd import config, metrics, wire
-from routerd.engine import Engine, HopBatch
-from routerd.service import SERVICE_REASONS, load_topology
+from routerd.io import config, wire
+from routerd.service import metrics
+from routerd.core.engine import Engine, HopBatch
+from routerd.service.daemon import SERVICE_REASONS, load_topology
 
 DEMO = load_topology(config.load(None))
 
@@ -181,7 +182,7 @@ def test_promtool_accepts_the_page() -> None:
 def test_live_service_page_over_http(base: str) -> None:
     from service_harness import running
 
-    from routerd import client
+    from routerd.agent import client
 
     with running(base) as sp:
         with client.Reporter(sp.endpoints["ingest"], "m", control=sp.endpoints["control"],

@@ -12,10 +12,10 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from routerd import topology
-from sim import analytic
-from sim import mindelay as md
-from sim.run import run
+from routerd.core import topology
+from routerd.sim import analytic
+from routerd.sim import mindelay as md
+from routerd.sim.run import run
 
 SQRT2 = math.sqrt(2.0)
 

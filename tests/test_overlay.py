@@ -1,4 +1,4 @@
-"""routerd.overlay: the encapsulation header, probes/echoes, delay arithmetic, malformed packets."""
+"""routerd.agent.overlay: the encapsulation header, probes/echoes, delay arithmetic, malformed packets."""
 from __future__ import annotations
 
 import struct
@@ -7,7 +7,7 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from routerd import overlay as ov
+from routerd.agent import overlay as ov
 
 TAG = 0x1234ABCD
 N = 7

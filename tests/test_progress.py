@@ -1,4 +1,4 @@
-"""routerd.progress: in place on a terminal, plain lines (never a carriage return) elsewhere;
+"""routerd.io.progress: in place on a terminal, plain lines (never a carriage return) elsewhere;
 and the three commands' progress through it."""
 from __future__ import annotations
 
@@ -6,8 +6,8 @@ import io
 
 import pytest
 
-from routerd.clock import FakeClock
-from routerd.progress import StatusLine
+from routerd.io.clock import FakeClock
+from routerd.io.progress import StatusLine
 
 
 class _Stream(io.StringIO):
@@ -55,7 +55,7 @@ def test_write_errors_are_ignored() -> None:
 
 
 def test_simulate_progress_plain_when_not_a_terminal(monkeypatch: pytest.MonkeyPatch) -> None:
-    import sim.run as sr
+    import routerd.sim.run as sr
 
     s = _Stream(tty=False)
     t = iter([0.0, 2.5, 3.0, 13.0, 14.0, 14.5, 15.0, 15.5])

@@ -1,4 +1,4 @@
-"""Start-up recovery of a state directory (routerd/journal.py ``recover_state``): it starts
+"""Start-up recovery of a state directory (routerd/io/journal.py ``recover_state``): it starts
 from the newest intact snapshot, needs only the records after it, reports damage before it
 at no cost, stops loudly at damage after it, and replay reads the directory the same way.
 
@@ -17,11 +17,11 @@ import struct
 import numpy as np
 import pytest
 
-from routerd import config, wire
-from routerd import engine as E
-from routerd import journal as J
-from routerd import replay as R
-from routerd.service import Service, load_topology
+from routerd.io import config, wire
+from routerd.core import engine as E
+from routerd.io import journal as J
+from routerd.tools import replay as R
+from routerd.service.daemon import Service, load_topology
 
 DEMO = load_topology(config.load(None))
 
@@ -274,7 +274,7 @@ def test_every_rule_of_the_recovery_table(tmp_path: pytest.TempPathFactory) -> N
 
 # ---- replay reads the directory the same way -------------------------------------------------
 def _replay(src: str, out: str) -> dict:
-    from routerd import cli
+    from routerd.tools import cli
 
     args: argparse.Namespace = cli.build_parser().parse_args(["replay", src, "--out", out, "--no-plot"])
     return R.replay_command(args)

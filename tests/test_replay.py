@@ -21,19 +21,20 @@ import numpy as np
 import pytest
 from service_harness import ServiceProc, service_args
 
-from routerd import client, config, wire
-from routerd import engine as E
-from routerd import journal as J
-from routerd import replay as R
-from routerd.cli import main
-from routerd.service import load_topology
+from routerd.agent import client
+from routerd.io import config, wire
+from routerd.core import engine as E
+from routerd.io import journal as J
+from routerd.tools import replay as R
+from routerd.tools.cli import main
+from routerd.service.daemon import load_topology
 
 DEMO = load_topology(config.load(None))
 
 
 # ---- helpers ----------------------------------------------------------------------------
 def args_for(source: str, out: str, *extra: str) -> argparse.Namespace:
-    from routerd import cli
+    from routerd.tools import cli
 
     p = cli.build_parser()
     return p.parse_args(["replay", source, "--out", out, "--no-plot", *extra])
@@ -315,7 +316,7 @@ def test_link_trace_export_is_the_least_latency_per_bin(tmp_path: Any) -> None:
     with open(lt) as fh:
         got = {(float(r["t_s"]), r["from"], r["to"]): float(r["delay_s"]) for r in csv.DictReader(fh)}
     assert got == want
-    from sim import linktrace
+    from routerd.sim import linktrace
 
     tr = linktrace.load(lt, DEMO)
     assert len(tr.changes) == len(want)

@@ -22,9 +22,10 @@ import pytest
 import zmq
 from service_harness import ServiceProc, service_args
 
-from routerd import client, config, journal, security, wire
-from routerd.engine import EngineSettings
-from routerd.service import load_topology
+from routerd.agent import client
+from routerd.io import config, journal, security, wire
+from routerd.core.engine import EngineSettings
+from routerd.service.daemon import load_topology
 
 DEMO = load_topology(config.load(None))
 
@@ -469,16 +470,16 @@ def test_journal_write_and_fsync_failures_in_process(base: str, monkeypatch: Any
     fsyncs made to fail with ENOSPC / EIO by patching the journal's I/O."""
     import errno
 
-    from routerd.service import Service
+    from routerd.service.daemon import Service
 
     cfg = config.load(None).with_overrides({"service.state_dir": os.path.join(base, "st"),
                                             "service.storage_retry_s": 0.01})
     import io
 
-    from routerd.service import Log
+    from routerd.io.logs import EventLog
 
     svc = Service(cfg, DEMO)
-    svc.log = Log(stream=(logbuf := io.StringIO()))
+    svc.log = EventLog(stream=(logbuf := io.StringIO()))
     svc._restore(cfg["service.state_dir"])
     rng = np.random.default_rng(1)
     try:

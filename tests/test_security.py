@@ -1,4 +1,4 @@
-"""routerd.security: key pairs, the allow file, CURVE on every endpoint, reporters bound to their nodes."""
+"""routerd.io.security: key pairs, the allow file, CURVE on every endpoint, reporters bound to their nodes."""
 from __future__ import annotations
 
 import os
@@ -17,9 +17,11 @@ import zmq
 import zmq.auth
 from service_harness import ServiceProc, service_args, short_base
 
-from routerd import security, service
-from routerd import topology as T
-from routerd.errors import InputError
+from routerd.io import security
+from routerd.io.logs import EventLog
+from routerd.service import daemon as service
+from routerd.core import topology as T
+from routerd.core.errors import InputError
 
 DEMO = os.path.join(os.path.dirname(__file__), "..", "routerd", "data", "demo-lab.yaml")
 
@@ -396,7 +398,7 @@ def test_service_config_resolves_key_paths_relative_to_the_config(tmp_path: Any)
 def test_endpoints_other_hosts_can_reach_without_curve_are_warned_about() -> None:
     import io
 
-    from routerd import config
+    from routerd.io import config
 
     for ep, reach in (("tcp://127.0.0.1:7301", False), ("tcp://[::1]:1", False),
                       ("ipc:///tmp/x", False), ("tcp://0.0.0.0:7301", True), ("tcp://*:1", True),
@@ -405,13 +407,13 @@ def test_endpoints_other_hosts_can_reach_without_curve_are_warned_about() -> Non
     cfg = config.load(None).with_overrides({"service.control": "tcp://0.0.0.0:7303",
                                             "service.metrics": "0.0.0.0:9307"})
     svc = service.Service(cfg, _demo())
-    svc.log = service.Log(stream=(buf := io.StringIO()))
+    svc.log = EventLog(stream=(buf := io.StringIO()))
     svc._warn_exposed()
     out = buf.getvalue()
     assert "endpoint=control address=tcp://0.0.0.0:7303" in out and "without CURVE" in out
     assert "metrics page reachable" in out and "endpoint=ingest" not in out
     svc = service.Service(config.load(None), _demo())       # the defaults: loopback only
-    svc.log = service.Log(stream=(buf := io.StringIO()))
+    svc.log = EventLog(stream=(buf := io.StringIO()))
     svc._warn_exposed()
     assert buf.getvalue() == ""
 

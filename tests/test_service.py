@@ -19,8 +19,9 @@ import pytest
 import zmq
 from service_harness import ServiceProc, running, service_args
 
-from routerd import client, config, journal, wire
-from routerd.service import load_config, load_topology
+from routerd.agent import client
+from routerd.io import config, journal, wire
+from routerd.service.daemon import load_config, load_topology
 
 DEMO = load_topology(config.load(None))
 
@@ -446,7 +447,7 @@ def test_flags_override_the_config_and_topology_paths_are_relative_to_it(tmp_pat
 
 
 def test_serve_flags_are_exactly_the_documented_ones() -> None:
-    from routerd.service import configure
+    from routerd.service.daemon import configure
 
     p = argparse.ArgumentParser()
     configure(p)
@@ -455,7 +456,7 @@ def test_serve_flags_are_exactly_the_documented_ones() -> None:
                      "--metrics", "--state-dir",
                      # issue 7: CURVE and the read-only control endpoint
                      "--server-key", "--allow", "--control-readonly",
-                     # sharding (routerd/shard.py adds them to serve)
+                     # sharding (routerd/service/shard.py adds them to serve)
                      "--shards", "--shard", "--upstream", "--shard-listen", "--external-workers"}
     # with neither a config nor flags: the built-in demo lab on loopback
     c = load_config(p.parse_args([]))

@@ -2,7 +2,7 @@
 
 Every acknowledged batch must be in the journal (and be recognised as a duplicate when
 re-sent after the restart), and the restarted service's estimates must equal an offline
-replay of the journal (:func:`routerd.journal.restore`, read-only, on a copy taken right
+replay of the journal (:func:`routerd.io.journal.restore`, read-only, on a copy taken right
 after the kill) bit for bit (:meth:`Engine.same_state`).
 """
 from __future__ import annotations
@@ -19,9 +19,10 @@ import pytest
 import zmq
 from service_harness import ServiceProc, service_args, stream_until_killed
 
-from routerd import client, config, journal, wire
-from routerd.engine import Engine, EngineSettings
-from routerd.service import load_topology
+from routerd.agent import client
+from routerd.io import config, journal, wire
+from routerd.core.engine import Engine, EngineSettings
+from routerd.service.daemon import load_topology
 
 DEMO = load_topology(config.load(None))
 

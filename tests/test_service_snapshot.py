@@ -8,10 +8,10 @@ from typing import Any
 
 import numpy as np
 
-from routerd import config, journal, wire
-from routerd import topology as T
-from routerd.engine import Engine, EngineSettings
-from routerd.service import Service
+from routerd.io import config, journal, wire
+from routerd.core import topology as T
+from routerd.core.engine import Engine, EngineSettings
+from routerd.service.daemon import Service
 
 DEMO = os.path.join(os.path.dirname(__file__), "..", "routerd", "data", "demo-lab.yaml")
 TOPO = T.load(DEMO)

@@ -1,4 +1,4 @@
-"""Sharding by destination (routerd/shard.py): real processes on ipc:// in tmp dirs.
+"""Sharding by destination (routerd/service/shard.py): real processes on ipc:// in tmp dirs.
 
 The reference is one ``routerd serve`` process fed the same observation stream: the
 sharded service must give the same acknowledgements (row numbers and reasons) and the same
@@ -23,11 +23,12 @@ import pytest
 import zmq
 from service_harness import ServiceProc, service_args
 
-from routerd import config as _config
-from routerd import journal as J
-from routerd import shard, wire
-from routerd.client import Reporter, TableSubscriber
-from routerd.service import load_topology
+from routerd.io import config as _config
+from routerd.io import journal as J
+from routerd.service import shard
+from routerd.io import wire
+from routerd.agent.client import Reporter, TableSubscriber
+from routerd.service.daemon import load_topology
 
 CONF = """\
 service:

@@ -6,7 +6,7 @@ import json
 import subprocess
 import sys
 
-from routerd.cli import main
+from routerd.tools.cli import main
 
 REQUIRED = ("policy", "offered", "delivered", "dropped", "ttl_expired", "mean_delivery_s",
             "p50_delivery_s", "p95_delivery_s", "p99_delivery_s", "mean_hops", "events", "wall_s")

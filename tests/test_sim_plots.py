@@ -7,9 +7,9 @@ import itertools
 import numpy as np
 import pytest
 
-from routerd import topology
-from sim import plots
-from sim.run import DEMO_TOPOLOGY, run
+from routerd.core import topology
+from routerd.sim import plots
+from routerd.sim.run import DEMO_TOPOLOGY, run
 
 ABILENE = "topohub:sndlib/abilene"   # the topohub package's copy of SNDlib's abilene
 

@@ -7,10 +7,11 @@ import numpy as np
 import pytest
 from sim_helpers import assert_little
 
-from routerd import config, topology
-from routerd.errors import InputError
-from sim import policies
-from sim.run import DEMO_TOPOLOGY, run
+from routerd.io import config
+from routerd.core import topology
+from routerd.core.errors import InputError
+from routerd.sim import policies
+from routerd.sim.run import DEMO_TOPOLOGY, run
 
 
 def mesh() -> dict:

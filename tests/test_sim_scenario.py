@@ -5,11 +5,11 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from routerd import topology
-from routerd.errors import InputError
-from routerd.validate import check_file
-from sim import scenario
-from sim.run import DEMO_TOPOLOGY
+from routerd.core import topology
+from routerd.core.errors import InputError
+from routerd.tools.validate import check_file
+from routerd.io import scenario
+from routerd.sim.run import DEMO_TOPOLOGY
 
 
 def sc(**body: object) -> scenario.Scenario:

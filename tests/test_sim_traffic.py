@@ -6,8 +6,8 @@ import math
 import numpy as np
 import pytest
 
-from sim import scenario
-from sim.traffic import PoissonTraffic
+from routerd.io import scenario
+from routerd.sim.traffic import PoissonTraffic
 
 
 def draw(tr: PoissonTraffic, until: float) -> list[tuple]:

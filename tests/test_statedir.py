@@ -1,4 +1,4 @@
-"""The state directory's recorded documents (routerd/statedir.py), and the commands that
+"""The state directory's recorded documents (routerd/io/statedir.py), and the commands that
 rely on them: a state dir alone is enough to replay and to restart (issue 18).
 
 Units: the canonical topology document reads back as the same Topology bit for bit (our
@@ -27,12 +27,14 @@ from conftest import ring_with_chords
 from service_harness import ServiceProc, service_args
 from test_replay import SERVICE_CFG, Writer, rows
 
-from routerd import client, config, shard, statedir, wire
-from routerd import engine as E
-from routerd import journal as J
-from routerd import topology as T
-from routerd.cli import main
-from routerd.service import load_config, load_topology
+from routerd.agent import client
+from routerd.io import config, statedir, wire
+from routerd.service import shard
+from routerd.core import engine as E
+from routerd.io import journal as J
+from routerd.core import topology as T
+from routerd.tools.cli import main
+from routerd.service.daemon import load_config, load_topology
 
 DEMO = load_topology(config.load(None))
 
@@ -403,7 +405,7 @@ def test_sharded_state_dir_replays_and_restarts_alone(base: str, tmp_path: Any) 
 
 
 def test_serve_reads_the_records_when_the_pointer_is_gone(tmp_path: Any) -> None:
-    from routerd.service import choose_inputs
+    from routerd.service.daemon import choose_inputs
 
     ring = ring_with_chords(12, 6, seed=2)
     d = str(tmp_path / "state")

@@ -1,4 +1,4 @@
-"""The state directory's lock (routerd/statedir.py, "lock" section): one writer per
+"""The state directory's lock (routerd/io/statedir.py, "lock" section): one writer per
 directory, a second one told who holds it, a lock file left by a dead process locks nothing."""
 from __future__ import annotations
 
@@ -9,7 +9,7 @@ import textwrap
 
 import pytest
 
-from routerd import statedir as S
+from routerd.io import statedir as S
 
 
 def test_second_lock_on_the_same_dir_is_refused_naming_the_holder(tmp_path: pytest.TempPathFactory) -> None:
@@ -38,7 +38,7 @@ def test_a_lock_file_left_by_a_dead_process_is_not_a_lock(tmp_path: pytest.TempP
     # a process that takes the lock and dies without releasing it (kill -9 in effect)
     code = textwrap.dedent(f"""
         import os
-        from routerd import statedir
+        from routerd.io import statedir
         statedir.StateLock({d!r}, "doomed").acquire()
         print(os.getpid(), flush=True)
         os._exit(0)
@@ -57,7 +57,7 @@ def test_a_live_holder_in_another_process_is_named(tmp_path: pytest.TempPathFact
     d = str(tmp_path)
     code = textwrap.dedent(f"""
         import sys
-        from routerd import statedir
+        from routerd.io import statedir
         statedir.StateLock({d!r}, "holder").acquire()
         print("held", flush=True)
         sys.stdin.read()

@@ -1,4 +1,4 @@
-"""routerd.stats: the one implementation of the delivery figures (simulator, lab, demo)."""
+"""routerd.sim.stats: the one implementation of the delivery figures (simulator, lab, demo)."""
 from __future__ import annotations
 
 import math
@@ -6,7 +6,7 @@ import math
 import numpy as np
 import pytest
 
-from routerd.stats import BATCHES, T975_19, batch_means_ci95, delivery_stats, percentile
+from routerd.sim.stats import BATCHES, T975_19, batch_means_ci95, delivery_stats, percentile
 
 
 def test_percentile_matches_numpy_linear() -> None:

@@ -11,8 +11,8 @@ import os
 import numpy as np
 import pytest
 
-from routerd import cli
-from sim import commands_sweep as sw
+from routerd.tools import cli
+from routerd.sim import commands_sweep as sw
 
 ARGS = ["sweep", "--rates", "300,1500", "--policies", "shortest,mindelay", "--seeds", "2",
         "--duration", "3", "--jobs", "2", "--quiet"]

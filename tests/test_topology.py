@@ -1,4 +1,4 @@
-"""The topology model (routerd/topology.py): loaders against their references, checks.
+"""The topology model (routerd/core/topology.py): loaders against their references, checks.
 
 References: the topohub package's own per-topology ``graph['stats']`` (its definitions
 are in ``topohub/graph.py``: ``topo_stats`` and ``path_stats``), networkx for GraphML
@@ -18,8 +18,8 @@ import pytest
 import topohub
 import yaml
 
-from routerd import topology as T
-from routerd.errors import TopologyError
+from routerd.core import topology as T
+from routerd.core.errors import TopologyError
 
 DEF = T.LinkDefaults(1e9, 100)
 NAMED = ["sndlib/abilene", "sndlib/geant", "gabriel/50/0"]

@@ -1,4 +1,4 @@
-"""sim.trace: captures (pcap, pcapng) and flow logs as traffic, the address map, cut files.
+"""routerd.sim.trace: captures (pcap, pcapng) and flow logs as traffic, the address map, cut files.
 
 Reference writers: dpkt's pcap and pcapng writers; libpcap's writer through Debian's
 tcpdump (``tcpdump -r IN -w OUT``) and Wireshark's text2pcap (pcapng from a hex dump)
@@ -23,10 +23,10 @@ import yaml
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from routerd import config
-from routerd.service import load_topology
-from sim import trace as TR
-from sim.run import run as run_sim
+from routerd.io import config
+from routerd.service.daemon import load_topology
+from routerd.sim import trace as TR
+from routerd.sim.run import run as run_sim
 
 dpkt = pytest.importorskip("dpkt")
 DEMO = load_topology(config.load(None))
@@ -397,7 +397,7 @@ def test_simulated_run_injects_exactly_the_trace(tmp_path: Any, amap: str) -> No
 
 
 def test_simulate_command_with_a_trace(tmp_path: Any, amap: str, capsys: pytest.CaptureFixture[str]) -> None:
-    from routerd.cli import main
+    from routerd.tools.cli import main
 
     p = str(tmp_path / "c.pcapng")
     write_pcapng(p, frames())

@@ -1,4 +1,4 @@
-"""``routerd validate FILE...`` (routerd/validate.py): exit codes and what it prints.
+"""``routerd validate FILE...`` (routerd/tools/validate.py): exit codes and what it prints.
 
 Contract (issue 2): ``OK`` and a one-line summary per good file, or every error found,
 each naming the file, the element or key path, the bad value and the rule; exit 1.
@@ -13,7 +13,8 @@ import networkx as nx
 import pytest
 import yaml
 
-from routerd import cli, config
+from routerd.tools import cli
+from routerd.io import config
 
 GOOD_TOPO = {"topology": {
     "name": "bench-lab", "defaults": {"capacity_bps": 1.0e7, "buffer_pkts": 20},

@@ -1,4 +1,4 @@
-"""Engine variants (routerd/variants.py) against their papers' rules.
+"""Engine variants (routerd/core/variants.py) against their papers' rules.
 
 * Full echo: Boyan & Littman, "Packet routing in dynamically changing networks: a
   reinforcement learning approach", NIPS 6 (1994) — every neighbour's estimate updates its
@@ -24,13 +24,14 @@ from hypothesis import given
 from hypothesis import strategies as st
 from test_engine import HYP, _forwarding_graphs, _random_q, line, row_lists, slot
 
-from routerd import config, loops
-from routerd import topology as T
-from routerd import variants as V
-from routerd.engine import Engine, EngineSettings, HopBatch, settings_with
-from routerd.errors import ConfigError
-from sim.policies import QRouting
-from sim.run import run
+from routerd.io import config
+from routerd.core import loops
+from routerd.core import topology as T
+from routerd.core import variants as V
+from routerd.core.engine import Engine, EngineSettings, HopBatch, settings_with
+from routerd.core.errors import ConfigError
+from routerd.sim.policies import QRouting
+from routerd.sim.run import run
 
 VARIANTS = ("full_echo", "predictive", "dual", "confidence")
 
@@ -437,9 +438,9 @@ def test_dual_learns_the_way_back_without_traffic_back() -> None:
 
 @pytest.mark.parametrize("variant", VARIANTS)
 def test_journal_snapshot_and_settings_restore_the_variant(variant: str) -> None:
-    # what the service writes (routerd.journal: settings as a dict, state packed as
+    # what the service writes (routerd.io.journal: settings as a dict, state packed as
     # msgpack) brings the same variant and its arrays back, and the next rows agree
-    from routerd import journal as J
+    from routerd.io import journal as J
     t = diamond()
     e = Engine(t, cs(variant))
     x, y, d = t.index["x"], t.index["y"], t.index["d"]

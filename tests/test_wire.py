@@ -1,4 +1,4 @@
-"""Wire protocol v1 (routerd/wire.py): decoding never crashes, reasons are exact, shapes
+"""Wire protocol v1 (routerd/io/wire.py): decoding never crashes, reasons are exact, shapes
 follow the documented contract, and the byte layouts match independent references."""
 from __future__ import annotations
 
@@ -12,8 +12,9 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from routerd import engine as E
-from routerd import topology, wire
+from routerd.core import engine as E
+from routerd.core import topology
+from routerd.io import wire
 
 DEMO = "routerd/data/demo-lab.yaml"
 

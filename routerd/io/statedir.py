@@ -3,8 +3,8 @@ replay or inspect it without any other file.
 
 Layout (names relative to the state directory ``S``)::
 
-    S/journal/      journal segments (:mod:`routerd.journal`)
-    S/snapshots/    engine snapshots (:class:`routerd.journal.SnapshotStore`)
+    S/journal/      journal segments (:mod:`routerd.io.journal`)
+    S/snapshots/    engine snapshots (:class:`routerd.io.journal.SnapshotStore`)
     S/lock          the exclusive lock file (see "Lock" below)
     S/documents/    the topology and effective config documents the journal's
                     ``start`` / ``config`` records refer to, by content id
@@ -24,11 +24,11 @@ from dataclasses import dataclass
 from typing import Any
 
 from . import config as _config
-from . import topology as _topology
+from routerd.core import topology as _topology
 from .config import Config
-from .errors import InputError, Problem, read_yaml
+from routerd.core.errors import InputError, Problem, read_yaml
 from .fsmode import open_private, private_dir
-from .topology import Topology
+from routerd.core.topology import Topology
 
 
 # ---- lock ---------------------------------------------------------------------------------
@@ -234,7 +234,7 @@ def content_id(data: bytes) -> str:
 
 
 def topology_bytes(topo: Topology) -> bytes:
-    """The canonical document of a topology: reads back (:func:`routerd.topology.load`) as
+    """The canonical document of a topology: reads back (:func:`routerd.core.topology.load`) as
     the same nodes, links in the same order, the same values bit for bit and the same id."""
     return _yaml_bytes(_topology.to_mapping(topo), sort_keys=False)
 

@@ -184,7 +184,7 @@ def bind_socket(ctx: Any, kind: int, endpoint: str, opts: SocketOptions, *,
             # before the loop reads the monitor is bounded by it
             s.setsockopt(zmq.BACKLOG, opts.backlog)
         if curve is not None:
-            from . import security as _security
+            from routerd.io import security as _security
 
             _security.make_server(s, *curve)
         note = claim_ipc(endpoint)
@@ -427,7 +427,7 @@ class Listeners:
     """The listening sockets of one process, their monitors and the :class:`Gate`.
 
     ``sockets``/``endpoints``: name -> bound zmq socket / its resolved endpoint (the
-    caller's dicts, read when pausing and resuming).  ``log``: the service's Log.
+    caller's dicts, read when pausing and resuming).  ``log``: the service's :class:`routerd.io.logs.EventLog`.
     Call :meth:`read` when any of :meth:`monitors` is readable (it never blocks)."""
 
     def __init__(self, sockets: Mapping[str, Any], endpoints: Mapping[str, str],

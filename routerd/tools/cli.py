@@ -14,19 +14,19 @@ import os
 import sys
 from collections.abc import Sequence
 
-from . import __version__
+from routerd import __version__
 
 # name → (module, one-line help).  Order is the order of `routerd --help`.
 COMMANDS: dict[str, tuple[str, str]] = {
-    "validate": ("routerd.validate", "check config, topology or scenario files and report every error"),
-    "simulate": ("sim.commands_simulate", "run the packet-level simulator on a topology with one policy"),
-    "sweep": ("sim.commands_sweep", "simulate rates x policies x seeds and draw delivery time against load"),
-    "serve": ("routerd.service", "run the routing policy service (observations in, tables out, metrics)"),
-    "keys": ("routerd.security", "write a CURVE key pair (NAME.key, NAME.key_secret) for the service or a reporter"),
-    "demo": ("routerd.demo", "see routerd work in under a minute: a live service driven by the simulator, compared with static routes"),
-    "replay": ("routerd.replay", "re-run a service journal offline: reproduce its tables or compare other settings"),
-    "agent": ("routerd.agent", "run the forwarding agent of one overlay node (UDP, tables from the service, probes)"),
-    "lab": ("routerd.lab", "build an emulated lab on this host (namespaces, veth, tbf), run service and agents, offer traffic"),
+    "validate": ("routerd.tools.validate", "check config, topology or scenario files and report every error"),
+    "simulate": ("routerd.sim.commands_simulate", "run the packet-level simulator on a topology with one policy"),
+    "sweep": ("routerd.sim.commands_sweep", "simulate rates x policies x seeds and draw delivery time against load"),
+    "serve": ("routerd.service.daemon", "run the routing policy service (observations in, tables out, metrics)"),
+    "keys": ("routerd.io.security", "write a CURVE key pair (NAME.key, NAME.key_secret) for the service or a reporter"),
+    "demo": ("routerd.tools.demo", "see routerd work in under a minute: a live service driven by the simulator, compared with static routes"),
+    "replay": ("routerd.tools.replay", "re-run a service journal offline: reproduce its tables or compare other settings"),
+    "agent": ("routerd.agent.forwarder", "run the forwarding agent of one overlay node (UDP, tables from the service, probes)"),
+    "lab": ("routerd.tools.lab", "build an emulated lab on this host (namespaces, veth, tbf), run service and agents, offer traffic"),
 }
 
 

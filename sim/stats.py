@@ -2,8 +2,8 @@
 
 Owns: the quantile rule, the batch-means confidence interval and the set of delivery
 figures a summary carries (``mean_delivery_s``, ``mean_delivery_ci95_s``, ``p50/p95/p99``,
-``max_delivery_s``), so the simulator (:func:`sim.run.reduce`), the lab
-(:func:`routerd.lab.summarise`) and the demo (its live line and partial results) cannot
+``max_delivery_s``), so the simulator (:func:`routerd.sim.run.reduce`), the lab
+(:func:`routerd.tools.lab.summarise`) and the demo (its live line and partial results) cannot
 drift apart.
 
 Must not import: anything but the standard library (pure; no numpy needed for this).

@@ -42,7 +42,7 @@ Error reasons start with a fixed code (:data:`FRAME_ERRORS`) followed by ``": "`
 description naming the field and the value, e.g. ``"bad_version: field 'v' is 2, expected 1"``.
 
 Envelope.  Clients send one payload frame, which may be preceded by one empty delimiter
-frame (REQ adds it; :mod:`routerd.client`'s DEALER adds it too, so the service can answer
+frame (REQ adds it; :mod:`routerd.agent.client`'s DEALER adds it too, so the service can answer
 both the same way).  Anything else is ``extra_frames``.
 
 Tables (PUB), multipart::
@@ -59,7 +59,7 @@ Row rejection reasons (:data:`REASONS`, a fixed set: metrics label on it): decod
 adds ``bad_row`` (not a list of 4 or 5 / 3 items, a name that is not a string),
 ``unknown_node``, ``bad_latency`` / ``bad_estimate`` (not a number),
 ``bad_link_state`` (not "down" or "up"), ``not_neighbour`` (a link that does not exist);
-the engine adds its own at observe time (:data:`routerd.engine.REJECT_REASONS`: values
+the engine adds its own at observe time (:data:`routerd.core.engine.REJECT_REASONS`: values
 that are NaN, infinite or negative, a ``via`` that is not a neighbour, ``from == dst``,
 a hop over a link marked down).
 """
@@ -76,9 +76,9 @@ from typing import Any
 import msgpack
 import numpy as np
 
-from .engine import REJECT_REASONS as _ENGINE_REASONS
-from .engine import HopBatch
-from .topology import Topology
+from routerd.core.engine import REJECT_REASONS as _ENGINE_REASONS
+from routerd.core.engine import HopBatch
+from routerd.core.topology import Topology
 
 VERSION = 1
 

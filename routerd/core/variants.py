@@ -4,10 +4,10 @@ Owns: the variant names (:data:`VARIANTS`), the checks of their settings, and th
 per-row update and decision-value rules of ``full_echo``, ``predictive`` and
 ``confidence`` (``dual`` changes which rows exist, not how a row is applied).
 Pure: numpy and the standard library only — no sockets, files, clocks, YAML or metrics;
-time comes in through the engine's ``now``.  Must not import routerd.engine (the engine
+time comes in through the engine's ``now``.  Must not import routerd.core.engine (the engine
 imports this module and hands itself in; only its arrays and step-size table are used).
 
-Decisions stay in :meth:`routerd.engine.Engine.decide`: greedy choice, hysteresis, loop
+Decisions stay in :meth:`routerd.core.engine.Engine.decide`: greedy choice, hysteresis, loop
 freedom and bounded exploration are the core's, for every variant.  A variant changes the
 values (its own update of a hop row) and, for ``predictive``, the value decisions read.
 
@@ -87,7 +87,7 @@ import numpy as np
 
 VARIANTS = ("plain", "full_echo", "predictive", "dual", "confidence")
 
-#: EngineSettings field → (config key, default); routerd.config and routerd.replay use it
+#: EngineSettings field → (config key, default); routerd.io.config and routerd.tools.replay use it
 FIELDS: dict[str, tuple[str, Any]] = {
     "variant": ("engine.variant", "plain"),
     "echo_damping": ("engine.full_echo.damping", 0.5),

@@ -3,8 +3,8 @@
 Owns the data plane of one node: UDP sockets per overlay link, next-hop choice from the
 latest published table, flowlet pinning, probes and echoes (hop latency, failure
 detection), emulated propagation delay, hop and link reports to the service, and the
-agent's own metrics and status file.  Message shapes come from :mod:`routerd.overlay`
-(packets) and :mod:`routerd.wire` via :mod:`routerd.client` (service).
+agent's own metrics and status file.  Message shapes come from :mod:`routerd.agent.overlay`
+(packets) and :mod:`routerd.io.wire` via :mod:`routerd.agent.client` (service).
 
 Must not import: the engine, the journal, the simulator.
 
@@ -14,7 +14,7 @@ One thread, one ``zmq.Poller`` over the link sockets, the local socket (applicat
 hand overlay packets in there), the table subscription and a stop pipe.  The poll timeout
 is the time to the next deadline (a probe, a held packet's release, a report, a status
 write), at most 50 ms.  Each pass is one :meth:`Agent.turn`: poll, handle, then the
-timers due by the agent's clock (:mod:`routerd.clock`), so a test on a fake clock drives
+timers due by the agent's clock (:mod:`routerd.io.clock`), so a test on a fake clock drives
 the agent turn by turn and moves time itself.
 
 Forwarding.  A data packet for another node goes to a next hop chosen from the table the
@@ -67,11 +67,11 @@ back: a new epoch's table replaces the old one, pending batches are resent with 
 numbers (the service applies each once), and links it sees down are reported again.
 
 CURVE: with ``agent.client_key`` and ``agent.server_key`` set, the agent's ingest and
-table sockets are CURVE clients (:class:`routerd.security.ClientKeys`) of a service
+table sockets are CURVE clients (:class:`routerd.io.security.ClientKeys`) of a service
 started with ``--server-key``/``--allow``; its batches carry the reporter name
 ``agent.reporter`` (default ``agent/NODE``), which must be its allow-file entry, and that
 entry must list the node.  A rate_limited or unavailable refusal keeps the batch and
-sends it again after a backoff (:mod:`routerd.client`); other refusals are counted.
+sends it again after a backoff (:mod:`routerd.agent.client`); other refusals are counted.
 
 Propagation: netem is not always available, so with ``agent.propagation: emulate`` a
 packet received on a link is held for that link's ``delay_s`` before it is handled —
@@ -96,8 +96,8 @@ from types import MappingProxyType
 from typing import Any
 
 from . import overlay as ov
-from .clock import SYSTEM, Clock
-from .errors import InputError, Problem, read_yaml
+from routerd.io.clock import SYSTEM, Clock
+from routerd.core.errors import InputError, Problem, read_yaml
 
 #: Why a packet is dropped by the agent (a fixed set: a metrics label uses it).
 DROP_REASONS = ("no_route", "send_error", "hold_full", "not_data")
@@ -301,7 +301,7 @@ class Agent:
     """One node's agent.  ``open()`` binds, ``run()`` loops until stopped (or ``duration_s``),
     ``request_stop()`` works from any thread or a signal handler, ``close()`` releases.
 
-    ``clock`` (:mod:`routerd.clock`) is the only source of time: deadlines and detection
+    ``clock`` (:mod:`routerd.io.clock`) is the only source of time: deadlines and detection
     on ``monotonic()``, wire timestamps on ``wall_ns()``; it is handed on to the reporter
     and the table subscriber."""
 
@@ -313,7 +313,7 @@ class Agent:
         if node not in topo.index:
             raise InputError(Problem("--node", node, f"is not a node of topology {topo.name!r} "
                                      f"({', '.join(topo.nodes)})"))
-        from . import security
+        from routerd.io import security
 
         self.cfg = cfg
         self.clock = clock
@@ -450,7 +450,7 @@ class Agent:
     def turn(self, wait_s: float = 0.0) -> None:
         """One pass of the loop: wait up to ``wait_s`` of real time for input, handle what
         came, then run the timers due by the clock.  :meth:`run` is a loop of these; a
-        test on a :class:`~routerd.clock.FakeClock` calls it itself between advances."""
+        test on a :class:`~routerd.io.clock.FakeClock` calls it itself between advances."""
         assert self.poller is not None, "open() first"
         sub_sock = self.sub._sock
         local_fd = self.local_sock.fileno() if self.local_sock else -1
@@ -950,11 +950,11 @@ def configure(p: argparse.ArgumentParser) -> None:
 
 def load(args: argparse.Namespace) -> tuple[Any, Any]:
     """Config (with agent.underlay made relative to the config file) and topology."""
-    from . import service as _service
+    from routerd.service import daemon as _service
 
     ns = argparse.Namespace(config=args.config, topology=None)
     cfg = _service.load_config(ns)
-    from .security import is_key_text
+    from routerd.io.security import is_key_text
 
     here = os.path.dirname(os.path.abspath(args.config)) if args.config else os.getcwd()
     rel = {k: os.path.normpath(os.path.join(here, v))
@@ -970,8 +970,8 @@ def load(args: argparse.Namespace) -> tuple[Any, Any]:
 def run(args: argparse.Namespace) -> int:
     from prometheus_client import CollectorRegistry, start_http_server
 
-    from . import metrics as _metrics
-    from .cautions import CAUTIONS
+    from routerd.service import metrics as _metrics
+    from routerd.io.cautions import CAUTIONS
 
     try:
         cfg, topo = load(args)

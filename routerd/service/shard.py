@@ -7,7 +7,7 @@ front (:class:`Front`: the one ingest, tables, control and metrics endpoint in f
 workers), the supervisor that runs N local workers (``routerd serve --shards N``), the
 merge of per-shard tables (live and from the shards' journals), and a reporter that splits
 by destination itself (:class:`ShardReporter`).  Must not import: the simulator.  Every
-message shape is :mod:`routerd.wire`'s; every journal access is :mod:`routerd.journal`'s.
+message shape is :mod:`routerd.io.wire`'s; every journal access is :mod:`routerd.io.journal`'s.
 
 Theory of operation
 -------------------
@@ -95,12 +95,13 @@ from typing import Any
 
 import numpy as np
 
-from . import __version__, wire
-from . import config as _config
+from routerd import __version__
+from routerd.io import wire
+from routerd.io import config as _config
 from . import listeners as _listeners
-from . import statedir as _statedir
-from . import topology as _topology
-from .errors import InputError
+from routerd.io import statedir as _statedir
+from routerd.core import topology as _topology
+from routerd.core.errors import InputError
 
 #: Leading bytes of the token frame the front puts before each piece (echoed back).
 TOKEN_PREFIX = b"rdshard:"
@@ -108,7 +109,7 @@ _TOKEN = struct.Struct("<Q")
 _SHARD_RE = re.compile(r"^(\d+)/(\d+)$")
 #: Set by the front for the workers it starts (they stop when it dies).
 FRONT_PID_ENV = "ROUTERD_SHARD_FRONT_PID"
-#: Engine variants with state shared across destinations (routerd.variants): under
+#: Engine variants with state shared across destinations (routerd.core.variants): under
 #: sharding each worker keeps its own copy from its own rows.
 INEXACT_VARIANTS: dict[str, str] = {
     "full_echo": "its per-link expected latency is learnt by each worker from its own rows"}
@@ -215,8 +216,8 @@ def replay_shards(state_root: str, topo: _topology.Topology, n_shards: int,
                   settings: Any = None, map_file: str | None = None) -> dict[str, dict[str, Any]]:
     """Every shard's snapshot + journal (the offline path, :func:`journal.restore`) → the
     merged tables, as the control ``tables`` reply of the front would give them."""
-    from . import journal as _journal
-    from .engine import EngineSettings
+    from routerd.io import journal as _journal
+    from routerd.core.engine import EngineSettings
 
     smap = ShardMap.build(topo, n_shards, map_file)
     parts = []
@@ -244,8 +245,8 @@ def replay_command(args: argparse.Namespace) -> dict[str, Any]:
     its own snapshot and journal (the service's restore path), the tables merged into
     ``DIR/tables.json`` — the tables the front served.  What-if variants work per shard
     (``routerd replay STATE/shard-K-of-N``; its tables are valid for its destinations)."""
-    from . import replay as _replay
-    from .errors import Problem
+    from routerd.tools import replay as _replay
+    from routerd.core.errors import Problem
 
     n = sharded_state(args.source)
     assert n is not None
@@ -294,7 +295,7 @@ def configure(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from . import service as _service
+    from . import daemon as _service
 
     try:
         root = _service.load_config(args)["service.state_dir"]
@@ -343,8 +344,8 @@ def _front_inputs(args: argparse.Namespace, root: str, n: int) -> Any:
     (in the root); a root without them whose workers recorded theirs (workers started on
     their own) takes the topology of the first such shard, never its config (a worker's
     endpoints).  Which network the directory was written for: the shards' journals."""
-    from . import service as _service
-    from . import statedir as _statedir
+    from . import daemon as _service
+    from routerd.io import statedir as _statedir
 
     shards = [shard_dir(root, k, n) for k in range(n)]
     if _statedir.current(root) is None:
@@ -358,7 +359,7 @@ def _front_inputs(args: argparse.Namespace, root: str, n: int) -> Any:
 
 def _run_worker(args: argparse.Namespace, cfg: _config.Config, topo: _topology.Topology,
                 smap: ShardMap, k: int, chosen: Any = None) -> int:
-    from . import service as _service
+    from . import daemon as _service
 
     _follow_front()
     n = smap.n_shards
@@ -390,7 +391,7 @@ def _follow_front() -> None:
 
 
 def _worker_class() -> type:
-    from .service import Service
+    from .daemon import Service
 
     class _ShardWorker(Service):
         """A :class:`Service` owning the destinations of shard k of n."""
@@ -545,8 +546,10 @@ class Front:
 
     def __init__(self, cfg: _config.Config, topo: _topology.Topology, smap: ShardMap,
                  args: argparse.Namespace | None = None, out: Any = None, inputs: Any = None):
-        from . import guards as _guards
-        from .service import Log, make_dedup
+        from routerd.core import guards as _guards
+        from routerd.io.logs import EventLog
+
+        from .daemon import make_dedup
 
         self.inputs = inputs     # statedir.Chosen: where cfg and topo came from
         self.cfg = cfg
@@ -554,7 +557,7 @@ class Front:
         self.smap = smap
         self.args = args
         self.out = out or sys.stdout
-        self.log = Log(cfg["service.log_format"])
+        self.log = EventLog(cfg["service.log_format"], name="routerd.front")
         self.guards = _guards.Guards(topo, _guards.GuardSettings.from_config(cfg))
         # the combined acks, so a re-sent batch is answered before any split (as one
         # process does); after a front restart each worker's durable window answers
@@ -588,8 +591,8 @@ class Front:
         import zmq
 
         from . import metrics as _metrics
-        from .fsmode import private_dir
-        from .service import OVERSIZE_ANSWER_SLACK, StartError, bind_endpoint
+        from routerd.io.fsmode import private_dir
+        from .daemon import OVERSIZE_ANSWER_SLACK, StartError, bind_endpoint
 
         cfg = self.cfg
         try:
@@ -606,7 +609,7 @@ class Front:
             raise StartError(f"state dir {self.state_root}: {e.strerror}") from None
         self.ctx = zmq.Context()
         listen = getattr(self.args, "shard_listen", None) or f"ipc://{self._ipc('front-shards')}"
-        # the service's socket options (routerd.listeners); sharding refuses CURVE (run())
+        # the service's socket options (routerd.service.listeners); sharding refuses CURVE (run())
         opts = _listeners.SocketOptions.from_config(cfg, slack=OVERSIZE_ANSWER_SLACK)
 
         def mk(kind: int, name: str, ep: str) -> Any:
@@ -637,8 +640,8 @@ class Front:
 
     def _cap_connections(self) -> None:
         """The connection cap over the front's listening sockets (as the service's, see
-        :mod:`routerd.listeners`), counted once the workers' pipes and connections exist."""
-        from .service import StartError
+        :mod:`routerd.service.listeners`), counted once the workers' pipes and connections exist."""
+        from .daemon import StartError
 
         _listeners.raise_nofile(self.log)
         try:
@@ -689,7 +692,7 @@ class Front:
                 print(f"[shard {k}] {line.rstrip()}", file=sys.stderr, flush=True)
 
     def _await_workers(self) -> None:
-        from .service import StartError
+        from .daemon import StartError
 
         limit = self.cfg["shard.start_timeout_s"]
         deadline = time.monotonic() + limit
@@ -710,7 +713,7 @@ class Front:
         from prometheus_client.registry import CollectorRegistry
 
         from . import metrics as _metrics
-        from .service import StartError
+        from .daemon import StartError
 
         host, port = _metrics.parse_address(self.cfg["service.metrics"])
         reg = CollectorRegistry(auto_describe=False)
@@ -942,7 +945,7 @@ class Front:
             self._answer(env, wire.encode_error(ing))
             return
         from . import dedup as _dedup
-        from .service import dedup_refusal
+        from .daemon import dedup_refusal
 
         seen = self.dedup.check(ing.reporter, ing.batch)
         if seen.kind == _dedup.REPEAT:
@@ -1136,7 +1139,7 @@ class Front:
 
     # -- control -------------------------------------------------------------------------------------
     def _ask(self, w: _Worker, req: Mapping[str, Any]) -> dict[str, Any]:
-        from . import client
+        from routerd.agent import client
 
         if w.hello is None:
             return {"error": f"unavailable: shard {w.k} has not announced itself"}
@@ -1446,14 +1449,14 @@ class _FrontCollector:
 
 # ---- a reporter that splits by destination itself --------------------------------------------
 class ShardReporter:
-    """One :class:`routerd.client.Reporter` per worker, rows routed by the owner of their
+    """One :class:`routerd.agent.client.Reporter` per worker, rows routed by the owner of their
     destination (the front's map), link rows to every worker: a client that sends to the
     workers directly (no front on the ingest path).  ``workers``: each worker's ingest
     endpoint in shard order (the front's control ``health`` lists them)."""
 
     def __init__(self, workers: Sequence[str], reporter_name: str, topo: _topology.Topology,
                  smap: ShardMap | None = None, **kw: Any):
-        from .client import Reporter
+        from routerd.agent.client import Reporter
 
         self.smap = smap or ShardMap.build(topo, len(workers))
         if self.smap.n_shards != len(workers):

@@ -1,7 +1,7 @@
 """Scenario files: time-varying load and link events for one simulation.
 
 Owns: the scenario format, its checking (every problem with file, key path, value and
-rule, as :class:`routerd.errors.InputError`), the load factor as a function of time and
+rule, as :class:`routerd.core.errors.InputError`), the load factor as a function of time and
 the binding of link names to a topology's link indices.
 Must not import: the engine, zmq, prometheus, matplotlib.
 
@@ -34,10 +34,10 @@ from typing import Any
 
 import numpy as np
 
-from routerd.errors import InputError, Problem, read_yaml
-from routerd.topology import Topology
+from routerd.core.errors import InputError, Problem, read_yaml
+from routerd.core.topology import Topology
 
-from .core import LinkEvent
+from routerd.sim.core import LinkEvent
 
 
 @dataclass(frozen=True, slots=True)

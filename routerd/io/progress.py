@@ -7,7 +7,7 @@ line ending in ``\\n`` and never contains ``\\r``, at a rate the caller chooses 
 lower), so logs stay readable.  What the line says and when it is worth showing is the
 caller's business.
 
-Must not import: anything of routerd but :mod:`routerd.clock`.
+Must not import: anything of routerd but :mod:`routerd.io.clock`.
 """
 from __future__ import annotations
 

@@ -56,8 +56,8 @@ from typing import Any
 
 import numpy as np
 
-from .errors import InputError, Problem
-from .topology import Topology
+from routerd.core.errors import InputError, Problem
+from routerd.core.topology import Topology
 
 #: Control operations that change state: need a key with ``control: true``.
 STATE_OPS: tuple[str, ...] = ("link", "snapshot", "reload")

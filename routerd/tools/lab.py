@@ -50,11 +50,11 @@ from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
-from . import overlay as ov
-from .childproc import parse_ready
-from .clock import SYSTEM, Clock
-from .progress import StatusLine
-from .errors import InputError, Problem
+from routerd.agent import overlay as ov
+from routerd.io.childproc import parse_ready
+from routerd.io.clock import SYSTEM, Clock
+from routerd.io.progress import StatusLine
+from routerd.core.errors import InputError, Problem
 
 PREFIX = "rdlab"
 _NS_RE = re.compile(rf"^{PREFIX}(\d+)-(\d+)$")
@@ -358,7 +358,7 @@ def parse_capacity_change(text: str, topo: Any) -> Event:
 
 
 def scenario_events(scen: Any, topo: Any) -> list[Event]:
-    """A simulator scenario's link events (sim.scenario) as lab events, one per directed link."""
+    """A simulator scenario's link events (routerd.io.scenario) as lab events, one per directed link."""
     out = []
     for ev in scen.link_events(topo):
         for k in ev.links:
@@ -580,7 +580,7 @@ class Lab:
         return out
 
     def tables(self, timeout_s: float = 3.0) -> dict[str, Any] | None:
-        from .client import control
+        from routerd.agent.client import control
 
         try:
             rep = control(self.endpoints["control"], {"op": "tables"}, timeout_s)
@@ -745,8 +745,8 @@ def _offer_loop(lab: Lab, traffic: Traffic, packets: Iterator[tuple[float, int, 
 def summarise(lab: Lab, res: dict[str, Any], *, rate: float, duration: float, warm: float,
               seed: int, demands: bool, tc: list[dict[str, Any]], statuses: list[dict[str, Any] | None],
               wall_s: float) -> dict[str, Any]:
-    """The simulator's summary keys (sim.run.reduce), from lab measurements."""
-    from .stats import delivery_stats
+    """The simulator's summary keys (routerd.sim.run.reduce), from lab measurements."""
+    from routerd.sim.stats import delivery_stats
 
     topo = lab.topo
     inj_t = res["inj_t"]
@@ -755,7 +755,7 @@ def summarise(lab: Lab, res: dict[str, Any], *, rate: float, duration: float, wa
     offered = len(measured)
     dl = [dlv[i][1] for i in measured if i in dlv]
     hops = [dlv[i][2] for i in measured if i in dlv]
-    ds = delivery_stats(dl)                  # the simulator's figures (routerd.stats)
+    ds = delivery_stats(dl)                  # the simulator's figures (routerd.sim.stats)
     m, mean = ds.count, ds.mean
     win = max(duration - warm, 1e-9)
 
@@ -815,7 +815,7 @@ def summarise(lab: Lab, res: dict[str, Any], *, rate: float, duration: float, wa
 
 def write_outputs(out: str, summary: dict[str, Any], lab: Lab, res: dict[str, Any],
                   extra: dict[str, Any], series_dt: float = 0.5) -> list[str]:
-    from sim.commands_simulate import _clean
+    from routerd.sim.commands_simulate import _clean
 
     os.makedirs(out, exist_ok=True)
     paths = []
@@ -903,8 +903,8 @@ def compare_with_sim(args: argparse.Namespace, lab_summary: dict[str, Any], topo
                      events: Sequence[Event]) -> dict[str, Any]:
     """Simulate the same run (packets carry the veth's per-packet overhead there too) and
     print the two summaries side by side; writes DIR/sim/ and DIR/compare.txt."""
-    from sim.commands_simulate import write_outputs as sim_write
-    from sim.run import run as sim_run
+    from routerd.sim.commands_simulate import write_outputs as sim_write
+    from routerd.sim.run import run as sim_run
 
     spec = {"policy": args.compare_sim, "rate_pps": args.rate, "duration_s": args.duration,
             "seed": args.seed, "topology": topo_path, "packet_bytes": args.packet_bytes + WIRE_OVERHEAD,
@@ -939,7 +939,7 @@ def compare_with_sim(args: argparse.Namespace, lab_summary: dict[str, Any], topo
 
 def lab_config(base: str | None, topo_path: str, run_dir: str) -> dict[str, Any]:
     """The config the lab's service and agents read: the user's, plus the lab's own keys."""
-    from . import config as _config
+    from routerd.io import config as _config
 
     cfg = _config.load(base)
     flat = cfg.flat()
@@ -961,7 +961,7 @@ def lab_config(base: str | None, topo_path: str, run_dir: str) -> dict[str, Any]
 
 
 def run(args: argparse.Namespace) -> int:
-    from . import topology as _topology
+    from routerd.core import topology as _topology
 
     try:
         check_host()
@@ -973,7 +973,7 @@ def run(args: argparse.Namespace) -> int:
         topo = _topology.load(topo_path)
         if topo.n > 250:
             raise InputError(Problem("--topology", topo.n, "nodes are too many for a one-host lab (250 at most)"))
-        from sim import scenario as _scenario
+        from routerd.io import scenario as _scenario
 
         scen = _scenario.load(args.scenario) if getattr(args, "scenario", None) else None
         events: list[Event] = [parse_capacity_change(c, topo) for c in args.capacity_change]
@@ -985,7 +985,7 @@ def run(args: argparse.Namespace) -> int:
             if not (math.isfinite(v) and v > lo):
                 raise InputError(Problem(name, v, "must be a number above 0"))
         if getattr(args, "compare_sim", None):
-            from sim import policies as _policies
+            from routerd.sim import policies as _policies
 
             if args.compare_sim.partition(":")[0] not in _policies.NAMES:
                 raise InputError(Problem("--compare-sim", args.compare_sim,
@@ -1003,9 +1003,9 @@ def _run(args: argparse.Namespace, topo: Any, topo_path: str, events: list[Event
          scen: Any = None) -> int:
     import numpy as np
 
-    from sim.traffic import PoissonTraffic
+    from routerd.sim.traffic import PoissonTraffic
 
-    from . import config as _config
+    from routerd.io import config as _config
 
     remove_orphans(log=lambda msg: print(f"routerd lab: {msg}", file=sys.stderr))
     removed = remove_leftovers()

@@ -19,7 +19,7 @@ from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
-from .errors import ConfigError, Problem, read_yaml
+from routerd.core.errors import ConfigError, Problem, read_yaml
 
 
 @dataclass(frozen=True, slots=True)
@@ -61,7 +61,7 @@ SCHEMA: dict[str, Field] = {
     "engine.explore.td_ref": F(float, 0.2, "relative TD error (|delta| / estimate) at which the share reaches max_rate", lo=0, lo_open=True, tunable=True),
     "engine.explore.td_smoothing": F(float, 0.1, "weight of a new |TD error| in its moving average", lo=0, hi=1, lo_open=True, tunable=True),
     "engine.explore.visits_half": F(float, 50.0, "visits at which the share is halfway down to min_rate", lo=0, lo_open=True, tunable=True),
-    # -- engine: published refinements (routerd/variants.py) ---------------------------
+    # -- engine: published refinements (routerd/core/variants.py) ---------------------------
     "engine.variant": F(str, "plain", "learning rule: plain Q-routing, full_echo (all neighbours' estimates), predictive (recovery-rate prediction), dual (backward rows carried by packets), confidence (confidence-weighted steps)", choices=("plain", "full_echo", "predictive", "dual", "confidence")),
     "engine.full_echo.damping": F(float, 0.5, "full_echo: step multiplier of the echo updates of the hops not taken (1 = the published rule)", lo=0, hi=1, lo_open=True, tunable=True),
     "engine.full_echo.latency_smoothing": F(float, 0.2, "full_echo: weight of a new hop latency in a link's expected latency", lo=0, hi=1, lo_open=True, tunable=True),
@@ -133,7 +133,7 @@ SCHEMA: dict[str, Field] = {
     "agent.client_key": F(str, None, "the agent's CURVE secret certificate NAME.key_secret (relative to the config file); with agent.server_key: CURVE to a service started with --server-key", nullable=True),
     "agent.server_key": F(str, None, "the service's CURVE public key: its NAME.key file (relative to the config file) or the Z85 text", nullable=True),
     "agent.reporter": F(str, None, "reporter name in the agent's batches; with CURVE the agent's entry in the service's allow file (default agent/NODE)", nullable=True),
-    # -- plausibility guards (routerd/guards.py), applied by the service before the engine --
+    # -- plausibility guards (routerd/core/guards.py), applied by the service before the engine --
     "guards.floor_fraction": F(float, 1.0, "a hop latency below this fraction of the link's propagation delay (or an estimate below it of the shortest propagation distance) is rejected as below_floor (0 = off)", lo=0, hi=1, tunable=True),
     "guards.ceiling_s": F(float, 60.0, "a hop latency or estimate above this is rejected as above_ceiling (0 = off)", lo=0, tunable=True),
     "guards.jump.factor": F(float, 0.0, "a latency outside [ref/f, ref*f] of the link's reference is clipped or held (0 = off; else > 1)", lo=0, tunable=True),
@@ -145,12 +145,12 @@ SCHEMA: dict[str, Field] = {
     "guards.rate.rows_per_s": F(float, 0.0, "per-reporter token bucket: rows per second (0 = unlimited)", lo=0, tunable=True),
     "guards.rate.burst_rows": F(float, 1.0e6, "per-reporter token bucket: row burst", lo=1, tunable=True),
     "guards.rate.max_reporters": F(int, 4096, "reporters with a token bucket (the least recently seen is forgotten first)", lo=1, tunable=True),
-    # -- security (routerd/security.py): CURVE and reporter authorisation ------------------
+    # -- security (routerd/io/security.py): CURVE and reporter authorisation ------------------
     "security.server_key": F(str, None, "the service's CURVE secret certificate (NAME.key_secret from routerd keys); with security.allow: CURVE on every ZeroMQ endpoint", nullable=True),
     "security.allow": F(str, None, "allow file (YAML): reporter name -> public_key (Z85 or a .key file) and nodes it may speak for", nullable=True),
     "security.control_readonly": F(str, None, "a second control endpoint without CURVE serving read-only ops only (tables, estimates, health, nodes)", nullable=True),
     "service.storage_retry_s": F(float, 1.0, "after a journal write failed (disk full, unwritable), how often the service tries to resume", lo=0.01),
-    # -- sharding by destination (routerd/shard.py: serve --shards N, --shard K/N) ---------
+    # -- sharding by destination (routerd/service/shard.py: serve --shards N, --shard K/N) ---------
     "shard.map": F(str, None, "YAML map node -> shard index (nodes it does not name: crc32 of the name mod N); the front and every worker need the same one", nullable=True),
     "shard.timeout_s": F(float, 30.0, "front: a batch whose pieces are not all acknowledged by then is answered unavailable (the reporter sends it again)", lo=0, lo_open=True),
     "shard.hello_interval_s": F(float, 1.0, "worker: how often it announces itself to the front (--upstream); 3 missed announcements count as down", lo=0.01),

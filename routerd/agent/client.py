@@ -2,7 +2,7 @@
 
 Owns the reporter's delivery rules (batch numbers, acknowledgements, retries, memory bound),
 the subscriber's gap detection, and the one-shot control request.  Every message shape
-comes from :mod:`routerd.wire`; nothing is encoded here by hand.
+comes from :mod:`routerd.io.wire`; nothing is encoded here by hand.
 
 Must not import: the engine, the journal, the service, prometheus.
 
@@ -31,7 +31,7 @@ numbers, ``last_error`` the text) and :class:`ServiceError` is raised.  Deferred
 count towards ``max_pending`` like any other, so the memory bound is unchanged; a
 deferred batch may be applied after later ones (as after a lost acknowledgement).
 
-CURVE.  ``curve=`` (:class:`routerd.security.ClientKeys`: our key pair and the service's
+CURVE.  ``curve=`` (:class:`routerd.io.security.ClientKeys`: our key pair and the service's
 public key) on :class:`Reporter`, :class:`TableSubscriber` and :func:`control` makes every
 socket a CURVE client before it connects.  A key the service does not allow, or the wrong
 service key, cannot be told apart from an absent service: the handshake fails and nothing
@@ -49,8 +49,8 @@ from typing import Any
 import numpy as np
 import zmq
 
-from . import security, wire
-from .clock import SYSTEM, Clock
+from routerd.io import security, wire
+from routerd.io.clock import SYSTEM, Clock
 
 #: Whole-batch refusal codes after which the batch is kept and sent again later.
 DEFER_CODES: tuple[str, ...] = ("rate_limited", "unavailable")
@@ -153,7 +153,7 @@ class Reporter:
     ``curve``: client CURVE keys for both endpoints.  ``backoff_s``, ``backoff_max_s``,
     ``max_deferrals``: the handling of rate_limited / unavailable refusals (module docstring).
     ``clock``: where timeouts, backoffs and the first batch number read time
-    (:mod:`routerd.clock`).  Under a :class:`~routerd.clock.FakeClock` only the calls that
+    (:mod:`routerd.io.clock`).  Under a :class:`~routerd.io.clock.FakeClock` only the calls that
     do not wait (``pump(0)``, adding rows and ``send_now`` while fewer than ``max_pending``
     batches are pending) make progress by themselves: ``flush`` and a full reporter wait
     for virtual time that only the test moves.

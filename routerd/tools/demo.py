@@ -4,7 +4,7 @@ Owns: the demo's flow, its live progress line, its side-by-side table, its two p
 its reading of the result.  The lab and the scenario are packaged data of our own
 invention (``routerd/data/demo-lab.yaml``, ``routerd/data/demo-scenario.yaml``); the
 service, the closed loop and the simulator are the real ones (``routerd serve`` as a
-child process, :mod:`sim.closedloop`, :func:`sim.run.run`).
+child process, :mod:`routerd.sim.closedloop`, :func:`routerd.sim.run.run`).
 Must not import at module level: matplotlib, zmq.
 
 Flow.  (1) Start ``routerd serve`` on loopback TCP (ports picked by the system) with the
@@ -38,8 +38,8 @@ from collections.abc import Mapping, Sequence
 from importlib import resources
 from typing import Any
 
-from .cautions import CAUTIONS
-from .errors import InputError
+from routerd.io.cautions import CAUTIONS
+from routerd.core.errors import InputError
 
 #: the demo's base rate: the scenario's load factors multiply it (1000-byte packets)
 BASE_RATE_PPS = 1300.0
@@ -143,7 +143,7 @@ class Progress:
     """One line per simulated second: rewritten in place on a terminal, plain lines otherwise."""
 
     def __init__(self, duration_s: float, stream: Any = None):
-        from .progress import StatusLine
+        from routerd.io.progress import StatusLine
 
         self.duration = duration_s
         self.status = StatusLine(stream or sys.stdout)
@@ -152,7 +152,7 @@ class Progress:
 
     def line(self, view: Mapping[str, Any], route_changes: int | None, explore: float,
              trunk_util: float | None, events: str) -> str:
-        from .stats import delivery_stats
+        from routerd.sim.stats import delivery_stats
 
         dl = view["deliveries"]
         recent = delivery_stats(dl[self.prev:], ci=False)
@@ -182,7 +182,7 @@ def _ms(v: float) -> str:
 
 
 class IntervalTail:
-    """An observer of :func:`sim.core.run_core`: at every series sample, the p99 of the
+    """An observer of :func:`routerd.sim.core.run_core`: at every series sample, the p99 of the
     delivery times of the packets delivered since the previous one (NaN if none), so the
     plots can show the tail per second beside the mean."""
 
@@ -191,7 +191,7 @@ class IntervalTail:
         self.p99: list[float] = []
 
     def __call__(self, view: Mapping[str, Any]) -> None:
-        from .stats import percentile
+        from routerd.sim.stats import percentile
 
         dl = view["deliveries"]
         self.p99.append(percentile(sorted(dl[self.prev:]), 0.99))
@@ -225,7 +225,7 @@ class Demo:
 
     def run_in_process(self, policy: str) -> dict[str, Any]:
         """One in-process run of the demo's scenario, with its per-second p99."""
-        from sim.run import run as run_sim
+        from routerd.sim.run import run as run_sim
 
         tail = self.tails[policy] = IntervalTail()
         return tail.attach(run_sim(self.spec(policy), observer=tail))
@@ -236,10 +236,10 @@ class Demo:
                 "overrides": (f"sim.service.speed={self.speed:g}",), "series": True}
 
     def main(self) -> int:
-        from routerd import config as _config
-        from routerd import topology as _topology
-        from sim import closedloop
-        from sim import scenario as _scenario
+        from routerd.io import config as _config
+        from routerd.core import topology as _topology
+        from routerd.sim import closedloop
+        from routerd.io import scenario as _scenario
 
         self._prepare_out()
         self.scenario_doc = stretched_scenario(self.duration)
@@ -320,8 +320,8 @@ class Demo:
 
     # -- the live run -----------------------------------------------------------------------
     def _live(self) -> None:
-        from sim import closedloop
-        from sim.run import run as run_sim
+        from routerd.sim import closedloop
+        from routerd.sim.run import run as run_sim
 
         prog = self.progress_obj = Progress(self.duration)
         trunk = [self.topo.link(*TRUNK), self.topo.link(TRUNK[1], TRUNK[0])]
@@ -411,7 +411,7 @@ class Demo:
         return head + yaml.safe_dump(self.scenario_doc, sort_keys=False)
 
     def _write_all(self) -> None:
-        from sim.commands_simulate import write_outputs
+        from routerd.sim.commands_simulate import write_outputs
 
         for pol in POLICIES:
             d = os.path.join(self.out, "runs", pol)
@@ -482,7 +482,7 @@ class Demo:
 
     def _write_partial(self) -> None:
         """What an interrupted demo still knows: the live run up to its last sample."""
-        from .stats import delivery_stats
+        from routerd.sim.stats import delivery_stats
 
         v = self.view
         if v is not None and "service" not in self.results:
@@ -705,12 +705,12 @@ class Demo:
 
     # -- plots ---------------------------------------------------------------------------------
     # Both figures share one time axis: the same limits (0 to the run's duration), the same
-    # horizontal place in the figure (routerd.plotstyle) and bins drawn at their middles.
+    # horizontal place in the figure (routerd.sim.plotstyle) and bins drawn at their middles.
     def _policy_line(self, ax: Any, pol: str, x: Any, y: Any, label: bool = True) -> None:
         ax.plot(x, y, label=LABELS[pol] if label else None, **STYLES[pol])
 
     def _time_axes(self, axes: Any) -> None:
-        from . import plotstyle as ps
+        from routerd.sim import plotstyle as ps
 
         spans = [(a, b, f"{e[0]}-{e[1]}") for a, b, e in self._downs()]
         ps.mark_link_spans(axes, spans, label_ax=axes[0])
@@ -729,9 +729,9 @@ class Demo:
         """delivery.png: mean and p99 delivery time per second (log ms), lost share per second."""
         import numpy as np
 
-        from sim.plots import LOSS_MARK, lost_share
+        from routerd.sim.plots import LOSS_MARK, lost_share
 
-        from . import plotstyle as ps
+        from routerd.sim import plotstyle as ps
 
         plt = ps.pyplot()
         fig, (ax, axp, ax2) = ps.time_figure(plt, 3, 8.5, (2.4, 2.0, 1.3))
@@ -783,7 +783,7 @@ class Demo:
         return fig
 
     def plot_delivery(self, path: str) -> str:
-        from . import plotstyle as ps
+        from routerd.sim import plotstyle as ps
 
         fig = self.delivery_figure()
         fig.savefig(path)
@@ -794,7 +794,7 @@ class Demo:
         """load.png: offered and delivered packets/s over time, and the trunk's utilisation."""
         import numpy as np
 
-        from . import plotstyle as ps
+        from routerd.sim import plotstyle as ps
 
         plt = ps.pyplot()
         topo = self.topo
@@ -822,7 +822,7 @@ class Demo:
         return fig
 
     def plot_load(self, path: str) -> str:
-        from . import plotstyle as ps
+        from routerd.sim import plotstyle as ps
 
         fig = self.load_figure()
         fig.savefig(path)

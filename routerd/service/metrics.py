@@ -179,7 +179,7 @@ class MetricsSource(Protocol):
 
     counters: Counters
 
-    def engine_statistics(self) -> Any: ...   # routerd.engine.EngineStats, taken under a lock
+    def engine_statistics(self) -> Any: ...   # routerd.core.engine.EngineStats, taken under a lock
     def journal_bytes(self) -> int: ...
     def snapshot_age_s(self) -> float | None: ...
     def uptime_s(self) -> float: ...
@@ -286,10 +286,10 @@ class RouterdCollector(Collector):
                            "(disk full, I/O error)", t["failures"])
             yield _counter("routerd_guard_clipped_rows", "Hop rows whose latency the jump "
                            "guard clipped to its band (accepted, not rejected)", t["clipped"])
-        conn = getattr(src, "connection_state", None)   # the connection cap (routerd.listeners)
+        conn = getattr(src, "connection_state", None)   # the connection cap (routerd.service.listeners)
         if conn is not None:
             yield from connection_families(conn())
-        dd = getattr(src, "dedup_state", None)   # the duplicate window (routerd.dedup)
+        dd = getattr(src, "dedup_state", None)   # the duplicate window (routerd.service.dedup)
         if dd is not None:
             d = dd()
             ev = CounterMetricFamily("routerd_dedup_evictions", "Batches that left the duplicate "

@@ -4,7 +4,7 @@ Owns: the command's options and outputs (``tables.json``, ``replay.json``, the w
 comparison's CSV/JSON/PNG and printed table, ``--export-link-trace``), choosing where a
 replay starts (the journal's first record, or the oldest snapshot it continues from),
 and setting variants (recorded settings with overrides).  Records are applied with
-:func:`routerd.journal.replay_into` only — the function the service's start-up
+:func:`routerd.io.journal.replay_into` only — the function the service's start-up
 recovery uses — so the same records give the same tables.
 Must not import: zmq, prometheus, the simulator; matplotlib only inside the plot step.
 
@@ -32,14 +32,14 @@ routed with the recorded tables: a variant is judged on the recorded traffic, no
 traffic its own tables would have drawn (for that, the simulator with ``--traffic`` and
 ``--link-trace``).
 
-Topology.  The one the state dir recorded (:mod:`routerd.statedir`: the newest ``start``
+Topology.  The one the state dir recorded (:mod:`routerd.io.statedir`: the newest ``start``
 record's document, else the directory's pointer), so the directory alone is enough;
 ``--topology`` / ``--config`` may name the same network (same id) and are refused
 otherwise; the built-in demo lab only for a journal written for it.
 
 
 Start and end.  The records are the ones the service's own start-up recovery keeps
-(:func:`routerd.journal.recover_state`, run read-only: the same report, shown in
+(:func:`routerd.io.journal.recover_state`, run read-only: the same report, shown in
 ``replay.json`` ``recovery`` and printed as ``recovery ...`` lines word for word as the
 service's banner and ``health`` give them); the replay ends where they end.  It starts as
 early as they allow: record 1 when the journal holds it undamaged up to the recovery's
@@ -63,14 +63,14 @@ from typing import Any
 
 import numpy as np
 
-from . import config as _config
-from . import journal as J
-from . import statedir as _statedir
-from . import topology as _topology
-from . import variants as _variants
-from . import wire
-from .engine import Decision, Engine, EngineSettings
-from .errors import InputError, Problem
+from routerd.io import config as _config
+from routerd.io import journal as J
+from routerd.io import statedir as _statedir
+from routerd.core import topology as _topology
+from routerd.core import variants as _variants
+from routerd.io import wire
+from routerd.core.engine import Decision, Engine, EngineSettings
+from routerd.core.errors import InputError, Problem
 
 #: config key → EngineSettings field (the inverse of EngineSettings.from_config; a test
 #: checks the two agree)
@@ -120,7 +120,7 @@ def configure(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from . import shard as _shard
+    from routerd.service import shard as _shard
 
     lock: _statedir.StateLock | None = None
     try:
@@ -497,7 +497,7 @@ def _load_config_and_topology(args: argparse.Namespace, src: Source, *, recorded
     given (a what-if), and the whole choice (with ``recorded_config``, the recorded config
     is read too: a sharded dir's ``shard.map``; replay itself takes the engine settings
     from the records)."""
-    from .service import load_config, load_topology  # the service's own rules for both
+    from routerd.service.daemon import load_config, load_topology  # the service's own rules for both
 
     ns = argparse.Namespace(config=args.config, topology=args.topology)
     where = src.state_dir or src.journal_dir
@@ -772,7 +772,7 @@ def plot(runs: Sequence[Run], tick_t: Sequence[float], t0: float, path: str,
          topo: _topology.Topology, link_events: Sequence[tuple[float, int, int, bool]] = (),
          t_end: float = math.nan) -> str:
     """Draw ``replay.png`` (see :func:`figure`)."""
-    from . import plotstyle as ps
+    from routerd.sim import plotstyle as ps
 
     fig = figure(runs, tick_t, t0, topo, link_events, t_end)
     fig.savefig(path)
@@ -784,8 +784,8 @@ def figure(runs: Sequence[Run], tick_t: Sequence[float], t0: float,
            topo: _topology.Topology, link_events: Sequence[tuple[float, int, int, bool]] = (),
            t_end: float = math.nan) -> Any:
     """Route changes, exploration share (%) and pairs routed differently over service
-    time, link failures shaded, the legend beside the axes (routerd.plotstyle's look)."""
-    from . import plotstyle as ps
+    time, link failures shaded, the legend beside the axes (routerd.sim.plotstyle's look)."""
+    from routerd.sim import plotstyle as ps
 
     plt = ps.pyplot()
     t = np.asarray(tick_t) - t0

@@ -4,7 +4,7 @@ Owns the on-disk formats under a state directory, start-up recovery
 (:func:`recover_state`: torn tails, corrupt records, gaps, corrupt or missing snapshots —
 one procedure the service's start-up and offline replay both call), and
 :func:`replay_into` — the single function that applies journal records to an
-:class:`~routerd.engine.Engine`, used by the service's start-up recovery and by offline
+:class:`~routerd.core.engine.Engine`, used by the service's start-up recovery and by offline
 replay alike, so both reach the same state bit for bit.
 
 Must not import: zmq, prometheus, the simulator, the service.  Reads the clock only for
@@ -97,9 +97,9 @@ from typing import Any
 import msgpack
 import numpy as np
 
-from .engine import Decision, Engine, EngineSettings, HopBatch, ObserveResult
+from routerd.core.engine import Decision, Engine, EngineSettings, HopBatch, ObserveResult
 from .fsmode import open_private, private_dir
-from .topology import Topology
+from routerd.core.topology import Topology
 
 KINDS: tuple[str, ...] = ("start", "batch", "link", "tick", "config", "snapshot")
 FSYNC_POLICIES: tuple[str, ...] = ("batch", "interval", "never")

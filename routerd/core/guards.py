@@ -1,7 +1,7 @@
 """Plausibility guards: which decoded hop rows may reach the engine, and how fast a reporter may send.
 
 Owns the physical and statistical checks applied to a decoded batch *before*
-:meth:`routerd.engine.Engine.observe` (the service applies them; the simulator and replay
+:meth:`routerd.core.engine.Engine.observe` (the service applies them; the simulator and replay
 can apply the same object to the same rows), the per-reporter token buckets, and the
 fixed set of reasons they count under.
 
@@ -73,7 +73,7 @@ FLOOR_SLACK = 1e-9
 @dataclass(frozen=True, slots=True, kw_only=True)
 class GuardSettings:
     """Every guard tunable; 0 switches a limit off where the field says so.  Misuse raises
-    ValueError (user-facing checks are :mod:`routerd.config`'s)."""
+    ValueError (user-facing checks are :mod:`routerd.io.config`'s)."""
 
     floor_fraction: float = 1.0          # 0: no propagation floor
     ceiling_s: float = 60.0              # inf: no ceiling
@@ -111,7 +111,7 @@ class GuardSettings:
 
     @classmethod
     def from_config(cls, cfg: Any) -> GuardSettings:
-        """From a :class:`routerd.config.Config` (the ``guards.*`` keys)."""
+        """From a :class:`routerd.io.config.Config` (the ``guards.*`` keys)."""
         ceil = cfg["guards.ceiling_s"]
         return cls(floor_fraction=cfg["guards.floor_fraction"],
                    ceiling_s=math.inf if ceil == 0 else ceil,

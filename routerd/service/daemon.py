@@ -1,25 +1,25 @@
 """``routerd serve``: the daemon shell — sockets, journal, snapshots, metrics, signals.
 
-Owns the event loop and nothing else: no learning logic (that is :mod:`routerd.engine`),
-no message shapes (:mod:`routerd.wire`), no file formats (:mod:`routerd.journal`), no
-metric names (:mod:`routerd.metrics`).  Must not import: the simulator.
+Owns the event loop and nothing else: no learning logic (that is :mod:`routerd.core.engine`),
+no message shapes (:mod:`routerd.io.wire`), no file formats (:mod:`routerd.io.journal`), no
+metric names (:mod:`routerd.service.metrics`).  Must not import: the simulator.
 
 Theory of operation
 -------------------
 One thread runs one ``zmq.Poller`` over the work sockets (ingest ROUTER, optional PULL,
 control REP), a monitor per listening socket (connections accepted and closed: the
-connection cap of :mod:`routerd.listeners`) and a stop pipe (an inproc PAIR the signal
+connection cap of :mod:`routerd.service.listeners`) and a stop pipe (an inproc PAIR the signal
 handlers write to).  The poll timeout is the time to the next deadline
 (debounced decision, periodic publication, snapshot), so there are no sleeps.  One loop
 iteration:
 
 1. drain up to ``service.max_drain`` frames from the ingest sockets; for each, decode
    (:func:`wire.decode_ingest`); with CURVE on, hold it to the key's reporter
-   (:mod:`routerd.security`: the name must match, rows outside its nodes are rejected
+   (:mod:`routerd.io.security`: the name must match, rows outside its nodes are rejected
    ``not_authorised``); skip a duplicate (same reporter and batch number, kept in a
    bounded per-reporter window); refuse it whole when the reporter is over its token
    bucket (``rate_limited``); pass its hop rows through the plausibility guards
-   (:mod:`routerd.guards`); apply what is left to the engine and append it to the journal;
+   (:mod:`routerd.core.guards`); apply what is left to the engine and append it to the journal;
 2. group commit: one :meth:`Journal.flush_sync` (one fsync) for everything appended,
    *then* send every acknowledgement — an ack always means "durably journaled";
 3. answer at most one control request (REP) — state-changing ones after step 2's commit;
@@ -93,23 +93,25 @@ from typing import Any
 
 import numpy as np
 
-from . import __version__, wire
-from . import config as _config
-from . import guards as _guards
-from . import journal as _journal
+from routerd import __version__
+from routerd.io import wire
+from routerd.io import config as _config
+from routerd.core import guards as _guards
+from routerd.io import journal as _journal
+from routerd.io.logs import EventLog
 from . import listeners as _listeners
-from . import security as _security
-from . import statedir as _statedir
-from . import topology as _topology
+from routerd.io import security as _security
+from routerd.io import statedir as _statedir
+from routerd.core import topology as _topology
 from . import dedup as _dedup
-from .cautions import CAUTIONS
+from routerd.io.cautions import CAUTIONS
 from .dedup import Dedup
-from .engine import Engine, EngineSettings, HopBatch
-from .errors import InputError
-from .journal import accepted_part as _accepted_part
-from .journal import apply_batch as _apply_batch
-from .journal import batch_body as _batch_body
-from .journal import engine_state as _engine_state
+from routerd.core.engine import Engine, EngineSettings, HopBatch
+from routerd.core.errors import InputError
+from routerd.io.journal import accepted_part as _accepted_part
+from routerd.io.journal import apply_batch as _apply_batch
+from routerd.io.journal import batch_body as _batch_body
+from routerd.io.journal import engine_state as _engine_state
 
 #: Service-side row rejection reasons (added to :data:`wire.REASONS` for the metrics):
 #: duplicates, rows outside the reporter's rights, and the plausibility guards' reasons.
@@ -117,7 +119,7 @@ SERVICE_REASONS = ("duplicate", _security.NOT_AUTHORISED) + _guards.REASONS
 #: Service-side whole-frame refusals (added to :data:`wire.FRAME_ERRORS`): a batch whose
 #: key is not the named reporter's, a reporter over its rate, a journal that cannot be
 #: written (nothing of the batch was stored: send it again later), a re-sent batch at or
-#: below its reporter's high-water mark whose answer is no longer kept (routerd.dedup), a
+#: below its reporter's high-water mark whose answer is no longer kept (routerd.service.dedup), a
 #: new reporter name when the table of marks is full.
 SERVICE_FRAME_ERRORS = (_security.NOT_AUTHORISED, _guards.RATE_LIMITED, "unavailable",
                         "stale_batch", "reporters_full")
@@ -281,35 +283,6 @@ def bind_endpoint(owner: Any, kind: int, name: str, ep: str, opts: _listeners.So
 
 
 # ---- logging -----------------------------------------------------------------------------
-class Log:
-    """Plain text or JSON lines on stderr; one line per event, fields as key=value."""
-
-    def __init__(self, fmt: str = "text", stream: Any = None):
-        self.fmt = fmt
-        self.stream = stream or sys.stderr
-
-    def _emit(self, level: str, msg: str, fields: Mapping[str, Any]) -> None:
-        ts = time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime()) + f".{int(time.time() * 1000) % 1000:03d}Z"
-        if self.fmt == "json":
-            line = json.dumps({"ts": ts, "level": level, "msg": msg, **fields}, default=str)
-        else:
-            extra = " ".join(f"{k}={v}" for k, v in fields.items())
-            line = f"{ts} {level:<5} {msg}" + (f" {extra}" if extra else "")
-        try:
-            print(line, file=self.stream, flush=True)
-        except (OSError, ValueError):  # a closed log pipe must not stop the service
-            pass
-
-    def info(self, msg: str, **f: Any) -> None:
-        self._emit("INFO", msg, f)
-
-    def warning(self, msg: str, **f: Any) -> None:
-        self._emit("WARN", msg, f)
-
-    def error(self, msg: str, **f: Any) -> None:
-        self._emit("ERROR", msg, f)
-
-
 # ---- duplicate detection -----------------------------------------------------------------
 def make_dedup(cfg: _config.Config) -> Dedup:
     """The duplicate window with the config's bounds (service, shard workers and front)."""
@@ -351,7 +324,7 @@ class Service:
         self.inputs = inputs
         self.documents = _statedir.DocRefs()   # what the newest start/config record names
         self.out = out or sys.stdout
-        self.log = Log(cfg["service.log_format"])
+        self.log = EventLog(cfg["service.log_format"], name="routerd.service")
         self.counters = _metrics.Counters(row_reasons=wire.REASONS + SERVICE_REASONS,
                                           frame_reasons=wire.FRAME_ERRORS + SERVICE_FRAME_ERRORS)
         self.guards = _guards.Guards(topo, _guards.GuardSettings.from_config(cfg))
@@ -436,7 +409,7 @@ class Service:
         import zmq
 
         from . import metrics as _metrics
-        from .fsmode import private_dir
+        from routerd.io.fsmode import private_dir
 
         cfg = self.cfg
         try:
@@ -453,7 +426,7 @@ class Service:
             held = _statedir.busy(state_dir)
             raise StartError(f"{e}; {held}" if held else str(e)) from None
         try:
-            private_dir(state_dir)        # 0700 when created here (routerd.fsmode)
+            private_dir(state_dir)        # 0700 when created here (routerd.io.fsmode)
             # one writer per state dir, before anything in it is read or written
             self.state_lock = _statedir.StateLock(state_dir, self._lock_what()).acquire()
         except _statedir.StateDirBusy as e:
@@ -633,7 +606,7 @@ class Service:
         self._sig_tx.connect(pipe)
 
     def _cap_connections(self) -> None:
-        """The connection cap and a monitor on every listening socket (routerd.listeners)."""
+        """The connection cap and a monitor on every listening socket (routerd.service.listeners)."""
         try:
             self.listeners = _listeners.Listeners.start(
                 self.sockets, self.endpoints, self.cfg["service.max_connections"], self.log)
@@ -1094,11 +1067,11 @@ class Service:
         return wire.encode_ack(ing.batch, accepted, rejected)
 
     def _envelope(self, env: list[bytes], body: list[bytes]) -> tuple[list[bytes], list[bytes]]:
-        """Hook (routerd.shard's worker): move leading body frames into the reply envelope."""
+        """Hook (routerd.service.shard's worker): move leading body frames into the reply envelope."""
         return env, body
 
     def _routes(self, x: int) -> dict[str, list[list[Any]]]:
-        """Hook (routerd.shard's worker): the table of node x as published."""
+        """Hook (routerd.service.shard's worker): the table of node x as published."""
         assert self.engine is not None
         return wire.routes_by_name(self.engine, x)
 

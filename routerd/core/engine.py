@@ -40,7 +40,7 @@ call:
 2. hysteresis: the incumbent stays unless the challenger beats it by the relative margin
    (``Q_new < Q_inc * (1 - margin)``), or the incumbent's link went down;
 3. loop freedom: the greedy graph per destination is checked for cycles (see
-   :mod:`routerd.loops`); every node on a cycle falls back, first to its previous
+   :mod:`routerd.core.loops`); every node on a cycle falls back, first to its previous
    choice, then to the delay-shortest path over live links, until no cycle remains.  The
    fallback ladder ends in a shortest-path tree, which cannot loop, so this terminates.
    Each node moved off a looping choice counts as one loop prevented;
@@ -98,7 +98,7 @@ STEP_TABLE_MAX = 1 << 16
 @dataclass(frozen=True, slots=True, kw_only=True)
 class EngineSettings:
     """Every engine tunable.  Checked here (API misuse raises ValueError); user-facing
-    checking with file and key path lives in :mod:`routerd.config`."""
+    checking with file and key path lives in :mod:`routerd.io.config`."""
 
     step_mode: str = "decaying"
     alpha: float = 0.5
@@ -116,7 +116,7 @@ class EngineSettings:
     td_ref: float = 0.2
     td_smoothing: float = 0.1
     visits_half: float = 50.0
-    # published refinements (routerd.variants): which one, and their parameters
+    # published refinements (routerd.core.variants): which one, and their parameters
     variant: str = "plain"
     echo_damping: float = 0.5
     echo_smoothing: float = 0.2
@@ -163,7 +163,7 @@ class EngineSettings:
 
     @classmethod
     def from_config(cls, cfg: Any) -> EngineSettings:
-        """From a :class:`routerd.config.Config` (or anything indexable by key path)."""
+        """From a :class:`routerd.io.config.Config` (or anything indexable by key path)."""
         return cls(
             step_mode=cfg["engine.step.mode"], alpha=cfg["engine.step.alpha"],
             c=cfg["engine.step.c"], kappa=cfg["engine.step.kappa"],
@@ -406,7 +406,7 @@ class Engine:
         """
         if now is not None:
             self.now = float(now)
-        if self._variant is not None:  # rows one by one, the variant's rule (routerd.variants)
+        if self._variant is not None:  # rows one by one, the variant's rule (routerd.core.variants)
             return self._variant.observe(self, batch, confidence, ObserveResult, REJECT_REASONS)
         m = len(batch)
         if m < SCALAR_BATCH:

@@ -15,9 +15,9 @@ import os
 import sys
 from typing import Any
 
-from . import config as _config
-from . import topology as _topology
-from .errors import InputError, Problem, read_yaml
+from routerd.io import config as _config
+from routerd.core import topology as _topology
+from routerd.core.errors import InputError, Problem, read_yaml
 
 
 def configure(p: argparse.ArgumentParser) -> None:
@@ -61,7 +61,7 @@ def check_file(path: str, defaults: _topology.LinkDefaults) -> str:
             t = _topology.load(path, defaults)
         return t.summary()
     if kind == "scenario":
-        from sim import scenario as _scenario  # the simulator owns the scenario format
+        from routerd.io import scenario as _scenario  # the simulator owns the scenario format
 
         sc = _scenario.from_mapping(doc, source=path)
         return sc.summary()
