@@ -90,6 +90,9 @@ _OK = -1
 
 # Below this many rows the scalar path is faster than the vectorised rounds.
 SCALAR_BATCH = 24
+# The step-size table never grows past this many counts (64 Ki: 0.5 MB as float64 plus its
+# list); a decaying step whose floor lies further out (or floor 0) is computed past it.
+STEP_TABLE_MAX = 1 << 16
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -286,8 +289,10 @@ class Engine:
         self._kdirty = np.zeros(n * n, dtype=bool)
         self._kcols = np.zeros(n, dtype=bool)
         self._forced = np.ones((n, n), dtype=bool)
-        self._alphas: np.ndarray | None = None
+        self._alphas: np.ndarray | None = None     # step sizes by count (_steps)
         self._alphas_list: list[float] = []
+        self._alpha_top = 0
+        self._alpha_clamped = True
         self._live_spt: np.ndarray | None = None
         # one slot per (node, destination) key plus a sentinel no row writes
         self._scratch = np.full(n * n + 1, np.iinfo(np.int64).max, dtype=np.int64)
@@ -463,8 +468,8 @@ class Engine:
         s = self.settings
         ceil, sm = s.ceiling_s, s.td_smoothing
         keep = 1.0 - sm
-        self._alpha_table(0)
-        tab = self._alphas_list
+        tab = self._steps()
+        lim = len(tab)
         inf = math.inf
         rejected: list[tuple[int, str]] = []
         tde: list[float] = []
@@ -497,11 +502,8 @@ class Engine:
                     old = Qf.item(k)
                     nn = Nf.item(k) + 1
                     Nf[k] = nn
-                    if nn >= len(tab):
-                        self._alpha_table(nn)
-                        tab = self._alphas_list
                     delta = target - old
-                    new = old + tab[nn] * delta
+                    new = old + (tab[nn] if nn < lim else self._step_beyond(nn)) * delta
                     Qf[k] = ceil if new > ceil else (0.0 if new < 0.0 else new)
                     tdf[w] = keep * tdf.item(w) + sm * abs(delta)
                     kdirty[w] = True
@@ -515,21 +517,77 @@ class Engine:
             self._account(len(tde), sum(a) / len(a), max(a))
         return ObserveResult(len(tde), tuple(rejected), np.array(tde, dtype=np.float64))
 
-    def _alpha_table(self, upto: int) -> np.ndarray:
-        """Step size by update count, tabulated so the scalar and vector paths agree to the bit."""
-        tab = self._alphas
-        if tab is None or tab.shape[0] <= upto:
-            size = max(1024, 1 << int(upto + 1).bit_length())
-            s = self.settings
+    def _steps(self) -> list[float]:
+        """The step-size table (built on first use and after a reconfigure), as a list.
+
+        ``tab[n]`` is the step for an entry's n-th update while ``n < len(tab)``; beyond
+        it :meth:`_step_beyond` answers.  Tabulated once so the scalar and vector paths
+        read the same float64 values to the bit.  Bounded: the table stops where the
+        decaying step reaches its floor (every later count has exactly the floor, so the
+        last entry stands for all of them), at most ``STEP_TABLE_MAX`` entries.
+        """
+        if self._alphas is None:
+            self._build_steps()
+        return self._alphas_list
+
+    def _build_steps(self) -> None:
+        s = self.settings
+        clamped = True
+        if s.step_mode == "constant":
+            tab = np.full(2, s.alpha)
+            top = 1
+        else:
+            size = STEP_TABLE_MAX
+            if s.floor > 0:
+                # where c / n^kappa first falls to the floor; a margin past the estimate,
+                # then the exact index is found in the table itself (the same np.power)
+                guess = (s.c / s.floor) ** (1.0 / s.kappa)
+                if guess < STEP_TABLE_MAX - 64:
+                    size = max(64, int(guess) + 64)
             nn = np.arange(size, dtype=np.float64)
             nn[0] = 1.0
-            if s.step_mode == "constant":
-                tab = np.full(size, s.alpha)
+            tab = np.maximum(s.floor, s.c / np.power(nn, s.kappa))
+            at_floor = np.flatnonzero(tab[1:] == s.floor)
+            # clamp only where every tabulated count from there on is at the floor (the
+            # step is non-increasing in n, so the rest of the counts are too)
+            if at_floor.size and bool((tab[at_floor[0] + 1:] == s.floor).all()):
+                top = int(at_floor[0]) + 1
+                tab = tab[:top + 1].copy()
             else:
-                tab = np.maximum(s.floor, s.c / np.power(nn, s.kappa))
-            self._alphas = tab
-            self._alphas_list = tab.tolist()
-        return tab
+                top = size - 1
+                clamped = False
+        self._alphas = tab
+        self._alphas_list = tab.tolist()
+        # counts above _alpha_top: the floor (clamped) or the formula (no floor reached)
+        self._alpha_top = top
+        self._alpha_clamped = clamped
+
+    def _step_beyond(self, nn: int) -> float:
+        """The step for a count past the table (scalar paths)."""
+        if self._alpha_clamped:
+            return self._alphas_list[self._alpha_top]
+        return float(self._step_formula(np.array([nn], dtype=np.int64))[0])
+
+    def _step_formula(self, nn: np.ndarray) -> np.ndarray:
+        s = self.settings
+        # the same expression, element for element, as the table's construction
+        return np.maximum(s.floor, s.c / np.power(nn.astype(np.float64), s.kappa))
+
+    def step_sizes(self, counts: np.ndarray) -> np.ndarray:
+        """The step size of each update count (>= 1) under the current settings."""
+        self._steps()
+        tab = self._alphas
+        assert tab is not None
+        nn = np.asarray(counts, dtype=np.int64)
+        top = self._alpha_top
+        if nn.size == 0 or int(nn.max()) <= top:
+            return tab.take(nn)
+        if self._alpha_clamped:
+            return tab.take(np.minimum(nn, top))
+        out = tab.take(np.minimum(nn, top))
+        big = nn > top
+        out[big] = self._step_formula(nn[big])
+        return out
 
     def _apply_scalar(self, rows: np.ndarray, f: np.ndarray, v: np.ndarray, d: np.ndarray,
                       slot: np.ndarray, lat: np.ndarray, est: np.ndarray, tde: np.ndarray) -> None:
@@ -539,8 +597,8 @@ class Engine:
         ceil = self.settings.ceiling_s
         sm = self.settings.td_smoothing
         keep = 1.0 - sm
-        self._alpha_table(0)
-        tab = self._alphas_list
+        tab = self._steps()
+        lim = len(tab)
         r = rows.tolist()
         for i, x, y, dd, j, la, e in zip(r, f[rows].tolist(), v[rows].tolist(), d[rows].tolist(),
                                          slot[rows].tolist(), lat[rows].tolist(),
@@ -558,11 +616,8 @@ class Engine:
             old = Qf.item(k)
             nn = Nf.item(k) + 1
             Nf[k] = nn
-            if nn >= len(tab):
-                self._alpha_table(nn)
-                tab = self._alphas_list
             delta = target - old
-            new = old + tab[nn] * delta
+            new = old + (tab[nn] if nn < lim else self._step_beyond(nn)) * delta
             Qf[k] = ceil if new > ceil else (0.0 if new < 0.0 else new)
             tdf[w] = keep * tdf.item(w) + sm * abs(delta)
             tde[i] = delta
@@ -653,7 +708,7 @@ class Engine:
         nn += 1
         Nf[k] = nn
         delta = target - old
-        alpha = self._alpha_table(int(nn.max())).take(nn)
+        alpha = self.step_sizes(nn)
         new = alpha * delta
         new += old
         np.minimum(new, s.ceiling_s, out=new)       # = np.clip(new, 0, ceiling): new is finite

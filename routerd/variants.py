@@ -256,11 +256,8 @@ class VariantState:
         Nf = engine.N.reshape(-1)
         nn = int(Nf[k]) + 1
         Nf[k] = nn
-        tab = engine._alphas_list
-        if nn >= len(tab):
-            engine._alpha_table(nn)
-            tab = engine._alphas_list
-        return float(tab[nn])
+        tab = engine._steps()
+        return float(tab[nn]) if nn < len(tab) else engine._step_beyond(nn)
 
     @staticmethod
     def _td(engine: Any, w: int, delta: float) -> None:
@@ -292,7 +289,7 @@ class FullEcho(VariantState):
         live = engine.live
         slots = engine._slots
         ceil, damp, ws = s.ceiling_s, s.echo_damping, s.echo_smoothing
-        engine._alpha_table(0)
+        engine._steps()
         tde: list[float] = []
         for x, y, d, j, lat, e in zip(rows.xs, rows.ys, rows.ds, rows.js, rows.lats, rows.ests):
             w = x * n + d
@@ -340,7 +337,7 @@ class Predictive(VariantState):
         Qf = engine.Q.reshape(-1)
         Bf, Rf, Uf = self.B.reshape(-1), self.R.reshape(-1), self.U.reshape(-1)
         ceil, beta, gamma = s.ceiling_s, s.pred_beta, s.pred_gamma
-        engine._alpha_table(0)
+        engine._steps()
         tde: list[float] = []
         for x, y, d, j, lat, e in zip(rows.xs, rows.ys, rows.ds, rows.js, rows.lats, rows.ests):
             w = x * n + d

@@ -312,7 +312,7 @@ def test_robbins_monro_conditions_without_floor(kappa: float) -> None:
     c = 1.0
     e = Engine(line("a", "b"), EngineSettings(step_mode="decaying", c=c, kappa=kappa, floor=0.0))
     N = 2 ** 20
-    a = e._alpha_table(N)[1:N + 1]
+    a = e.step_sizes(np.arange(1, N + 1))
     n = np.arange(1, N + 1, dtype=float)
     np.testing.assert_allclose(a, c / n ** kappa, rtol=1e-12)
     s1, s2 = np.cumsum(a), np.cumsum(a * a)
@@ -328,6 +328,59 @@ def test_robbins_monro_conditions_without_floor(kappa: float) -> None:
         tail = s2[-1] - s2[m]
         assert tail <= c * c * (m + 1) ** (1 - 2 * kappa) / (2 * kappa - 1)
     assert s2[-1] <= c * c * (1 + 1 / (2 * kappa - 1))  # 1 + integral from 1 to inf
+
+
+def _old_step_table(s: EngineSettings, upto: int) -> np.ndarray:
+    """The step-size table as the engine built it before it was bounded (a verbatim copy
+    of the old construction: a doubling array up to the highest count seen)."""
+    size = max(1024, 1 << int(upto + 1).bit_length())
+    nn = np.arange(size, dtype=np.float64)
+    nn[0] = 1.0
+    if s.step_mode == "constant":
+        return np.full(size, s.alpha)
+    return np.maximum(s.floor, s.c / np.power(nn, s.kappa))
+
+
+@pytest.mark.parametrize("kw", [
+    dict(c=1.0, kappa=0.6, floor=0.05),      # the defaults: floor at count 148
+    dict(c=0.7, kappa=0.75, floor=0.001),    # floor near count 6,000
+    dict(c=1.0, kappa=0.6, floor=1e-4),      # floor past the table's bound (~4.6 M)
+    dict(c=1.0, kappa=1.0, floor=0.0),       # never clamps (Robbins-Monro)
+    dict(step_mode="constant", alpha=0.3),
+])
+def test_step_sizes_bounded_and_identical_to_the_unbounded_table(kw: dict) -> None:
+    s = EngineSettings(**kw)
+    e = Engine(line("a", "b", "c"), s)
+    e._steps()
+    assert len(e._alphas_list) <= E.STEP_TABLE_MAX + 1
+    top = e._alpha_top
+    counts = np.unique(np.concatenate([
+        np.arange(1, 3000), np.arange(max(1, top - 50), top + 50),
+        np.array([E.STEP_TABLE_MAX - 1, E.STEP_TABLE_MAX, E.STEP_TABLE_MAX + 1,
+                  10 ** 6, 4_600_000, 10 ** 7 + 3])]))
+    old = _old_step_table(s, int(counts.max()))
+    new = e.step_sizes(counts)
+    np.testing.assert_array_equal(new, old[counts])   # bit for bit
+    # the scalar path (one observe_one per count) applies the same bits: preset N, step
+    x, y, d = 0, 1, 2
+    j = slot(e.topo, "a", "b")
+    for nn in [1, 2, max(1, top - 1), top, top + 1, top + 2, 10 ** 6, 10 ** 7 + 3]:
+        e.N[x, d, j] = nn - 1
+        e.Q[x, d, j] = 0.5
+        e.observe_one(x, y, d, 0.25, estimate=1.0)
+        assert e.Q[x, d, j] == 0.5 + old[nn] * (1.25 - 0.5), nn
+        assert len(e._alphas_list) <= E.STEP_TABLE_MAX + 1
+
+
+def test_step_table_stays_small_after_huge_counts() -> None:
+    # issue 13: the table grew with the busiest entry's count (441 MB at 4.5 M updates)
+    e = Engine(line("a", "b", "c"))
+    j = slot(e.topo, "a", "b")
+    e.N[0, 2, j] = 50_000_000
+    e.observe(HopBatch.of([0] * 30, [1] * 30, [2] * 30, [0.01] * 30))   # vector path
+    e.observe_one(0, 1, 2, 0.01)                                        # scalar path
+    assert e.N[0, 2, j] == 50_000_031
+    assert len(e._alphas_list) < 1024 and e._alphas is not None and e._alphas.size < 1024
 
 
 def test_constant_step() -> None:
