@@ -810,3 +810,62 @@ def test_routes_many_equals_routes(make_ring) -> None:  # type: ignore[no-untype
     assert e.routes_many() == [e.routes(x) for x in range(e.n)]
     assert e.routes_many([3, 1]) == [e.routes(3), e.routes(1)]
     assert any(len(w) > 1 for r in e.routes_many() for w in r.values())   # splits are covered
+
+
+def _held_loop() -> tuple[Engine, T.Topology]:
+    """A ring a-b-c-d-a where a and b each think the other is the way to c: the greedy
+    choice a -> b -> a loops, so one of them is held on a fallback."""
+    t = line("a", "b", "c", "d", extra=(("d", "a"),))
+    e = Engine(t, EngineSettings(margin=0.0, step_mode="constant", alpha=0.5))
+    a, b, c, d = (t.index[k] for k in "abcd")
+    e.Q[a, c, slot(t, "a", "b")] = 0.1
+    e.Q[a, c, slot(t, "a", "d")] = 1.0
+    e.Q[b, c, slot(t, "b", "a")] = 0.1
+    e.Q[b, c, slot(t, "b", "c")] = 1.0
+    e._dirty[:] = True
+    return e, t
+
+
+def test_a_persistent_loop_fallback_is_counted_once_and_keeps_the_key_lane() -> None:
+    """Issue 15: a key held on a loop fallback used to send its destination to the full
+    pass at every decide, which found the same loop again and counted it again."""
+    e, t = _held_loop()
+    a, b, c = (t.index[k] for k in "abc")
+    first = e.decide(1.0)
+    assert first.loops_prevented == 1 and e._forced[:, c].sum() == 1
+    assert loops.find_loops(e.next_hops().T) == []
+    tables = e.next_hops().copy()
+    full0 = e._full_pass_destinations
+    for i in range(40):
+        # reports that keep the loop attractive, on both keys of the loop and elsewhere
+        e.observe(HopBatch.of([a, b, a, t.index["d"]], [b, a, b, c], [c, c, c, c],
+                              [0.001, 0.001, 0.001, 0.002], [0.05, 0.05, 0.05, np.nan]),
+                  now=2.0 + i)
+        dec = e.decide(2.0 + i)
+        assert dec.loops_prevented == 0 and dec.route_changes == 0
+        assert np.array_equal(e.next_hops(), tables)
+    assert e.statistics().loops_prevented == 1
+    assert e._full_pass_destinations == full0           # never re-decided in full
+    # the same engine, every touched destination through the full pass: same result
+    e._dirty[c] = True
+    assert e.decide(50.0).loops_prevented == 0 and np.array_equal(e.next_hops(), tables)
+
+
+def test_a_new_fallback_counts_again() -> None:
+    """A loop that goes away and comes back is two prevented loops, not zero or forty."""
+    e, t = _held_loop()
+    a, b, c = (t.index[k] for k in "abc")
+    e.decide(1.0)
+    jab, jba = slot(t, "a", "b"), slot(t, "b", "a")
+    e.Q[b, c, jba] = 5.0                  # b now prefers c directly: no loop
+    e._dirty[c] = True
+    assert e.decide(2.0).loops_prevented == 0
+    assert not e._forced.any()
+    e.Q[b, c, jba] = 0.1                  # ... and back: the same loop again
+    e.Q[a, c, jab] = 0.1
+    e._dirty[c] = True
+    assert e.decide(3.0).loops_prevented == 1
+    for i in range(5):
+        e._dirty[c] = True                # even the full pass does not count it again
+        assert e.decide(4.0 + i).loops_prevented == 0
+    assert e.statistics().loops_prevented == 2
