@@ -75,6 +75,7 @@ from typing import Any
 
 import numpy as np
 
+from . import kernels as _kernels
 from . import loops as _loops
 from . import variants as _variants
 from .topology import Topology
@@ -129,9 +130,13 @@ class EngineSettings:
     conf_interval_s: float = 1.0
     conf_initial: float = 0.0
     conf_min_step: float = 0.05
+    # which implementation runs the hot paths (routerd.kernels): the same results either way
+    kernels: str = "auto"
 
     def __post_init__(self) -> None:
         bad: list[str] = []
+        if self.kernels not in ("auto", "compiled", "reference"):
+            bad.append(f"kernels {self.kernels!r} is not auto, compiled or reference")
         if self.step_mode not in ("constant", "decaying"):
             bad.append(f"step_mode {self.step_mode!r} is not constant or decaying")
         if not 0 < self.alpha <= 1:
@@ -177,6 +182,7 @@ class EngineSettings:
             explore_max=cfg["engine.explore.max_rate"], explore_cap=cfg["engine.explore.cap"],
             td_ref=cfg["engine.explore.td_ref"], td_smoothing=cfg["engine.explore.td_smoothing"],
             visits_half=cfg["engine.explore.visits_half"],
+            kernels=cfg["engine.kernels"],
             **_variants.from_config(cfg),
         )
 
@@ -277,6 +283,7 @@ class Engine:
         self._present = self._slots >= 0
         self._slot_of = topology.slot_of
         self._slot_flat = np.ascontiguousarray(topology.slot_of).reshape(-1)
+        self._slot_of_i64 = np.ascontiguousarray(topology.slot_of, dtype=np.int64)
         self._link_delay = np.where(self._present, topology.delay_s[np.maximum(topology.slot_link, 0)], 0.0)
         self.live = self._present.copy()
         self._static_dist = topology.shortest_delays()
@@ -296,6 +303,7 @@ class Engine:
         # destination whether its fallbacks are exactly reproduced by the next full pass
         self._hyst = np.full((n, n), -1, dtype=np.int64)
         self._stable = np.zeros(n, dtype=bool)
+        self._kern = _kernels.select(self.settings.kernels)   # None: the numpy reference
         self._alphas: np.ndarray | None = None     # step sizes by count (_steps)
         self._alphas_list: list[float] = []
         self._alpha_top = 0
@@ -338,6 +346,7 @@ class Engine:
         """Adopt new tunables (a reload), keeping all learned state."""
         self.settings = settings
         self._alphas = None
+        self._kern = _kernels.select(settings.kernels)
         q = np.where(self._present[:, None, :], np.minimum(self.Q, settings.ceiling_s), np.inf)
         # dead links hold exactly the (new) ceiling: the update reads mins without a live mask
         q[np.broadcast_to((self._present & ~self.live)[:, None, :], q.shape)] = settings.ceiling_s
@@ -416,6 +425,10 @@ class Engine:
             self.now = float(now)
         if self._variant is not None:  # rows one by one, the variant's rule (routerd.variants)
             return self._variant.observe(self, batch, confidence, ObserveResult, REJECT_REASONS)
+        if self._kern is not None:  # the compiled loop: checks and applies in order
+            res = _kernels.observe(self, batch, ObserveResult, REJECT_REASONS, SCALAR_BATCH)
+            if res is not None:
+                return res
         m = len(batch)
         if m < SCALAR_BATCH:
             return self._observe_rows(batch.src.tolist(), batch.via.tolist(), batch.dst.tolist(),
@@ -898,7 +911,10 @@ class Engine:
         if ds.size == 0:
             return Decision(extra, 0, 0)
         self._full_pass_destinations += int(ds.size)
-        nodes, changes, prevented = self._decide_full(ds)
+        if self._kern is not None and _kernels.decide_ok(self):
+            nodes, changes, prevented = _kernels.decide_full(self, ds)
+        else:
+            nodes, changes, prevented = self._decide_full(ds)
         self._route_changes += changes
         self._loops_prevented += prevented
         return Decision(nodes | extra, changes, prevented)

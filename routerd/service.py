@@ -77,6 +77,7 @@ from . import __version__, wire
 from . import config as _config
 from . import guards as _guards
 from . import journal as _journal
+from . import kernels as _kernels
 from . import security as _security
 from . import topology as _topology
 from .cautions import CAUTIONS
@@ -364,6 +365,8 @@ class Service:
         from .fsmode import private_dir
 
         cfg = self.cfg
+        if cfg["engine.kernels"] == "compiled" and not _kernels.available():
+            raise StartError(_kernels.describe("compiled"))
         try:
             _metrics.parse_address(cfg["service.metrics"])   # before anything is written
         except ValueError as e:
@@ -583,6 +586,7 @@ class Service:
              f"({'; '.join(_security.describe(self.allow))})" if self.allow is not None
              else "  security off: any local peer may report (give --server-key and --allow)"),
             f"  metrics  {self.endpoints['metrics']}",
+            f"  {_kernels.describe(self.cfg['engine.kernels'])}",
             f"  state    {os.path.abspath(self.cfg['service.state_dir'])}   (journal fsync: "
             f"{self.cfg['service.journal.fsync']}; "
             + (f"restored snapshot at record {self.restored['snapshot_record']}, "
@@ -596,6 +600,7 @@ class Service:
         except (OSError, ValueError):
             pass
         self.log.info("started", topology=t.name, nodes=t.n, links=t.n_links, epoch=self.epoch,
+                      kernels=_kernels.status(self.cfg["engine.kernels"])["path"],
                       **{k: v for k, v in self.endpoints.items()})
 
     # -- journal records (bodies are journal.py's; the service only fills them) ---------
@@ -1053,6 +1058,7 @@ class Service:
             "uptime_s": self.uptime_s(),
             "epoch": self.epoch,
             "version": __version__,
+            "kernels": _kernels.status(self.cfg["engine.kernels"]),
             "topology": {"name": self.topo.name, "id": self.topo.digest, "nodes": self.topo.n,
                          "links": self.topo.n_links},
             "counts": {

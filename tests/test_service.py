@@ -19,7 +19,7 @@ import pytest
 import zmq
 from service_harness import ServiceProc, running, service_args
 
-from routerd import client, config, journal, wire
+from routerd import client, config, journal, kernels, wire
 from routerd.service import Dedup, load_config, load_topology
 
 DEMO = load_topology(config.load(None))
@@ -262,6 +262,9 @@ def test_bad_input_is_answered_counted_and_good_rows_still_apply(base: str) -> N
 
         h = client.control(sp.endpoints["control"], {"op": "health"})
         assert h["status"] == "ok"
+        # which engine path runs, in health and once in the banner (routerd/kernels.py)
+        assert h["kernels"] == kernels.status("auto")
+        assert sum("engine kernels: " in ln for ln in sp.stdout_lines) == 1
         # bounded: reporter "bad" has 4 applied batches, "flood" keeps only its last 50
         assert h["counts"]["dedup_entries"] == 4 + 50
 

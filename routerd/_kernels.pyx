@@ -1,0 +1,309 @@
+# cython: language_level=3, boundscheck=False, wraparound=False, cdivision=True, initializedcheck=False
+"""Compiled hot paths of routerd.engine (Cython).  Use them through routerd.kernels.
+
+Each function is a transcription of the numpy reference in routerd/engine.py, operation
+for operation, so the results are the same to the bit (the build passes
+-ffp-contract=off: no fused multiply-add).  Typed memoryviews only: no numpy C API, so
+numpy is not a build dependency.  Pure: no I/O, no global state.
+"""
+from libc.math cimport INFINITY, fabs, isfinite
+from libc.stdint cimport int64_t, uint8_t, INT64_MAX
+from libc.stdlib cimport malloc, free
+
+# reason codes: indices into engine.REJECT_REASONS (tests/test_kernels.py checks the order)
+cdef enum:
+    UNKNOWN_NODE = 0
+    NOT_NEIGHBOUR = 1
+    AT_DESTINATION = 2
+    BAD_LATENCY = 3
+    BAD_ESTIMATE = 4
+    LINK_DOWN = 5
+
+
+def observe(double[:, :, ::1] Q, int64_t[:, :, ::1] N, double[:, ::1] td,
+            const uint8_t[:, ::1] live, const int64_t[:, ::1] slot_of,
+            const double[::1] steps, object beyond, double ceil, double sm,
+            const int64_t[::1] xs, const int64_t[::1] ys, const int64_t[::1] ds,
+            const double[::1] lats, const double[::1] ests,
+            int64_t[::1] code, double[::1] tde,
+            uint8_t[::1] kdirty, uint8_t[::1] kcols):
+    """Check and apply hop rows one by one, in order (Engine._observe_rows' rules).
+
+    code[i]: -1 accepted, else the reason index; tde[:accepted]: the accepted rows' TD
+    errors in order.  Returns the number accepted.  ``beyond(nn)`` is the step for a
+    count past the table (the engine's own code: rare, and exact by construction).
+    """
+    cdef Py_ssize_t n = Q.shape[0], K = Q.shape[2], m = xs.shape[0], lim = steps.shape[0]
+    cdef Py_ssize_t i, c, acc = 0
+    cdef int64_t x, y, d, j, nn
+    cdef double lat, e, tail, v, target, old, delta, a, new, keep = 1.0 - sm
+    for i in range(m):
+        x = xs[i]; y = ys[i]; d = ds[i]; lat = lats[i]; e = ests[i]
+        if not (0 <= x < n and 0 <= y < n and 0 <= d < n):
+            code[i] = UNKNOWN_NODE
+            continue
+        j = slot_of[x, y]
+        if j < 0:
+            code[i] = NOT_NEIGHBOUR
+        elif x == d:
+            code[i] = AT_DESTINATION
+        elif not (0.0 <= lat < INFINITY):
+            code[i] = BAD_LATENCY
+        elif e == e and not (0.0 <= e < INFINITY):
+            code[i] = BAD_ESTIMATE
+        elif not live[x, j]:
+            code[i] = LINK_DOWN
+        else:
+            code[i] = -1
+            if y == d:
+                tail = 0.0
+            elif e == e:        # not NaN: the neighbour's own estimate
+                tail = e
+            else:               # absent slots hold inf, dead ones exactly the ceiling
+                tail = Q[y, d, 0]
+                for c in range(1, K):
+                    v = Q[y, d, c]
+                    if v < tail:
+                        tail = v
+            target = lat + tail
+            old = Q[x, d, j]
+            nn = N[x, d, j] + 1
+            N[x, d, j] = nn
+            delta = target - old
+            if nn < lim:
+                a = steps[nn]
+            else:
+                a = beyond(nn)
+            new = old + a * delta
+            Q[x, d, j] = ceil if new > ceil else (0.0 if new < 0.0 else new)
+            td[x, d] = keep * td[x, d] + sm * fabs(delta)
+            kdirty[x * n + d] = 1
+            kcols[d] = 1
+            tde[acc] = delta
+            acc += 1
+    return acc
+
+
+cdef int _cycles(const int64_t* nh, uint8_t* cyc, uint8_t* col, int64_t* path,
+                 Py_ssize_t n) noexcept nogil:
+    """cyc[x] = x lies on a loop of the functional graph nh (-1: terminal).  Returns
+    whether any loop exists.  O(n): each node is walked once."""
+    cdef Py_ssize_t x, top, t
+    cdef int64_t y, z
+    cdef int found = 0
+    for x in range(n):
+        cyc[x] = 0
+        col[x] = 0
+    for x in range(n):
+        if col[x]:
+            continue
+        top = 0
+        y = x
+        while y >= 0 and col[y] == 0:
+            col[y] = 1
+            path[top] = y
+            top += 1
+            y = nh[y]
+        if y >= 0 and col[y] == 1:      # came back onto this walk: a loop through y
+            found = 1
+            z = y
+            while True:
+                cyc[z] = 1
+                z = nh[z]
+                if z == y:
+                    break
+        for t in range(top):
+            col[path[t]] = 2
+    return found
+
+
+cdef void _depths(const int64_t* nh, int64_t d, int64_t* dep, int64_t* path,
+                  Py_ssize_t n) noexcept nogil:
+    """Hops from each node to d along nh (loop-free), n + 1 where the path ends elsewhere
+    (routerd.loops.depths for one table)."""
+    cdef Py_ssize_t x, top, t
+    cdef int64_t y, base
+    for x in range(n):
+        dep[x] = -1
+    dep[d] = 0
+    for x in range(n):
+        if dep[x] >= 0:
+            continue
+        top = 0
+        y = x
+        while y >= 0 and dep[y] < 0 and top <= n:
+            path[top] = y
+            top += 1
+            y = nh[y]
+        if y >= 0 and dep[y] >= 0 and dep[y] <= n:
+            base = dep[y]
+        else:
+            base = -1                    # ends without reaching d
+        t = top - 1
+        while t >= 0:
+            if base < 0:
+                dep[path[t]] = n + 1
+            else:
+                base += 1
+                dep[path[t]] = base if base <= n else n + 1
+            t -= 1
+        # a path that ran into an unreached node inherits n + 1
+    for x in range(n):
+        if dep[x] > n:
+            dep[x] = n + 1
+
+
+def decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const int64_t[:, ::1] slots,
+           const int64_t[:, ::1] slot_of, const int64_t[:, ::1] spt, const int64_t[::1] ds,
+           int64_t[:, ::1] greedy, double[:, ::1] eps, uint8_t[:, :, ::1] alt,
+           uint8_t[:, ::1] forced, int64_t[:, ::1] hyst_st, uint8_t[::1] stable,
+           const double[:, ::1] td, const int64_t[:, :, ::1] N, bint visits,
+           double keepf, double ceil, double td_ref, double emin, double espan,
+           double eps_max, double visits_half,
+           int64_t[:, ::1] choice, int64_t[:, ::1] hy, double[:, ::1] vx,
+           int64_t[:, ::1] pot, uint8_t[::1] changed):
+    """Engine._decide_full for destinations ds.  Returns (route changes, loops newly
+    prevented); prevented is -1 if the fallback ladder failed to converge (a bug)."""
+    cdef Py_ssize_t n = q.shape[0], K = q.shape[2], m = ds.shape[0]
+    cdef Py_ssize_t x, i, c, it
+    cdef int64_t d, best, inc, ch, h, pv, bound, p, y, s_, tot
+    cdef double bv, v, incv, vv, fr, e, r
+    cdef const double* qr
+    cdef bint keep, anyalt, a, cg, cw, fnew, unstable
+    cdef int64_t changes = 0, prevented = 0
+    cdef int64_t big = (n + 1) * n
+    # phase 1, node-major (Q streams once): greedy with hysteresis, its value
+    for x in range(n):
+        for i in range(m):
+            d = ds[i]
+            qr = &q[x, d, 0]
+            best = 0
+            bv = qr[0] if live[x, 0] else INFINITY
+            for c in range(1, K):
+                v = qr[c] if live[x, c] else INFINITY
+                if v < bv:
+                    best = c
+                    bv = v
+            inc = greedy[x, d]
+            incv = qr[inc] if (inc >= 0 and live[x, inc]) else INFINITY
+            keep = isfinite(incv) and not (bv < incv * keepf)
+            ch = inc if keep else best
+            if not isfinite(bv) or x == d:
+                ch = -1
+            hy[x, i] = ch
+            choice[x, i] = ch
+            vx[x, i] = qr[ch] if (ch >= 0 and live[x, ch]) else INFINITY
+    # phase 2, per destination: the loop fallback ladder, depths, potentials
+    cdef int64_t* nh = <int64_t*> malloc(n * sizeof(int64_t))
+    cdef int64_t* prev = <int64_t*> malloc(n * sizeof(int64_t))
+    cdef int64_t* path = <int64_t*> malloc((n + 2) * sizeof(int64_t))
+    cdef int64_t* dep = <int64_t*> malloc(n * sizeof(int64_t))
+    cdef uint8_t* level = <uint8_t*> malloc(n)
+    cdef uint8_t* cyc = <uint8_t*> malloc(n)
+    cdef uint8_t* c1 = <uint8_t*> malloc(n)
+    cdef uint8_t* col = <uint8_t*> malloc(n)
+    if not (nh and prev and path and dep and level and cyc and c1 and col):
+        free(nh); free(prev); free(path); free(dep); free(level); free(cyc); free(c1); free(col)
+        raise MemoryError()
+    try:
+        for i in range(m):
+            d = ds[i]
+            for x in range(n):
+                ch = choice[x, i]
+                nh[x] = slots[x, ch] if ch >= 0 else -1
+                inc = greedy[x, d]
+                prev[x] = slots[x, inc] if inc >= 0 else -1
+                level[x] = 0
+                c1[x] = 0
+            for it in range(2 * n + 3):
+                if not _cycles(nh, cyc, col, path, n):
+                    break
+                if it == 0:
+                    for x in range(n):
+                        c1[x] = cyc[x]
+                for x in range(n):
+                    if not cyc[x]:
+                        continue
+                    if level[x] == 0:
+                        pv = prev[x]
+                        if pv >= 0 and live[x, slot_of[x, pv]]:
+                            nh[x] = pv
+                            level[x] = 1
+                        else:
+                            nh[x] = spt[x, d]
+                            level[x] = 2
+                    else:
+                        nh[x] = spt[x, d]
+                        level[x] = 2
+            else:
+                return 0, -1
+            _depths(nh, d, dep, path, n)
+            unstable = False
+            for x in range(n):
+                ch = slot_of[x, nh[x]] if nh[x] >= 0 else -1
+                choice[x, i] = ch
+                pot[x, i] = dep[x] * n + x
+                if ch != hy[x, i] and not c1[x]:
+                    unstable = True
+            pot[n, i] = INT64_MAX
+            stable[d] = not unstable
+    finally:
+        free(nh); free(prev); free(path); free(dep); free(level); free(cyc); free(c1); free(col)
+    # phase 3, node-major: candidates, shares, what changed, the writes
+    for x in range(n):
+        for i in range(m):
+            d = ds[i]
+            ch = choice[x, i]
+            h = hy[x, i]
+            if ch >= 0:
+                p = pot[x, i]
+                bound = p if p < big else big
+            else:
+                bound = -1
+            anyalt = False
+            cw = False
+            for c in range(K):
+                a = False
+                if live[x, c] and ch != c:
+                    y = slots[x, c]
+                    a = pot[y, i] < bound
+                if a:
+                    anyalt = True
+                if alt[x, d, c] != a:
+                    cw = True
+                alt[x, d, c] = a
+            if ch == h:
+                v = vx[x, i]
+            else:
+                v = q[x, d, ch] if (ch >= 0 and live[x, ch]) else INFINITY
+            if not visits:
+                vv = v if isfinite(v) else ceil
+                if not (vv >= 1e-12):
+                    vv = 1e-12
+                r = td[x, d] / vv / td_ref
+                fr = r if r < 1.0 else 1.0
+            else:
+                tot = N[x, d, 0]
+                for c in range(1, K):
+                    tot += N[x, d, c]
+                fr = visits_half / (visits_half + <double> tot)
+            e = emin + espan * fr
+            if not (e < eps_max):
+                e = eps_max
+            if not anyalt:
+                e = 0.0
+            cg = greedy[x, d] != ch
+            if cg or fabs(eps[x, d] - e) > 1e-9:
+                cw = True
+            fnew = ch != h
+            if fnew and not (forced[x, d] and not cg):
+                prevented += 1
+            if cg:
+                changes += 1
+            greedy[x, d] = ch
+            eps[x, d] = e
+            forced[x, d] = fnew
+            hyst_st[x, d] = h
+            if cw:
+                changed[x] = 1
+    return changes, prevented
