@@ -10,6 +10,20 @@ from libc.math cimport INFINITY, fabs, isfinite
 from libc.stdint cimport int64_t, uint8_t, INT64_MAX
 from libc.stdlib cimport malloc, free
 
+cdef extern from *:
+    """
+    #if defined(__GNUC__) || defined(__clang__)
+    #define RD_PREFETCH(p) __builtin_prefetch((const void *)(p), 1, 3)
+    #else
+    #define RD_PREFETCH(p) ((void)0)
+    #endif
+    """
+    void RD_PREFETCH(const void* p) noexcept nogil
+
+# rows ahead whose state is fetched into cache while a row is applied: the update is
+# bound by random reads of Q, N and td (a prefetch changes no value)
+DEF AHEAD = 12
+
 # reason codes: indices into engine.REJECT_REASONS (tests/test_kernels.py checks the order)
 cdef enum:
     UNKNOWN_NODE = 0
@@ -22,7 +36,7 @@ cdef enum:
 
 def observe(double[:, :, ::1] Q, int64_t[:, :, ::1] N, double[:, ::1] td,
             const uint8_t[:, ::1] live, const int64_t[:, ::1] slot_of,
-            const double[::1] steps, object beyond, double ceil, double sm,
+            const double[::1] steps, bint clamped, object beyond, double ceil, double sm,
             const int64_t[::1] xs, const int64_t[::1] ys, const int64_t[::1] ds,
             const double[::1] lats, const double[::1] ests,
             int64_t[::1] code, double[::1] tde,
@@ -30,14 +44,30 @@ def observe(double[:, :, ::1] Q, int64_t[:, :, ::1] N, double[:, ::1] td,
     """Check and apply hop rows one by one, in order (Engine._observe_rows' rules).
 
     code[i]: -1 accepted, else the reason index; tde[:accepted]: the accepted rows' TD
-    errors in order.  Returns the number accepted.  ``beyond(nn)`` is the step for a
-    count past the table (the engine's own code: rare, and exact by construction).
+    errors in order.  Returns the number accepted.  Past the step table: its last entry
+    when ``clamped`` (Engine._step_beyond's rule), else ``beyond(nn)``, the engine's own
+    code (counts past STEP_TABLE_MAX with a far or zero floor: rare, exact by construction).
     """
     cdef Py_ssize_t n = Q.shape[0], K = Q.shape[2], m = xs.shape[0], lim = steps.shape[0]
     cdef Py_ssize_t i, c, acc = 0
-    cdef int64_t x, y, d, j, nn
+    cdef int64_t x, y, d, j, nn, px, py, pd
     cdef double lat, e, tail, v, target, old, delta, a, new, keep = 1.0 - sm
+    for i in range(min(m, AHEAD)):
+        px = xs[i]; py = ys[i]
+        if 0 <= px < n and 0 <= py < n:
+            RD_PREFETCH(&slot_of[px, py])
     for i in range(m):
+        if i + AHEAD < m:
+            px = xs[i + AHEAD]; py = ys[i + AHEAD]; pd = ds[i + AHEAD]
+            if 0 <= px < n and 0 <= py < n and 0 <= pd < n:
+                RD_PREFETCH(&slot_of[px, py])
+                RD_PREFETCH(&Q[px, pd, 0])
+                RD_PREFETCH(&Q[px, pd, K - 1])
+                RD_PREFETCH(&N[px, pd, 0])
+                RD_PREFETCH(&N[px, pd, K - 1])
+                RD_PREFETCH(&td[px, pd])
+                RD_PREFETCH(&Q[py, pd, 0])
+                RD_PREFETCH(&Q[py, pd, K - 1])
         x = xs[i]; y = ys[i]; d = ds[i]; lat = lats[i]; e = ests[i]
         if not (0 <= x < n and 0 <= y < n and 0 <= d < n):
             code[i] = UNKNOWN_NODE
@@ -72,6 +102,8 @@ def observe(double[:, :, ::1] Q, int64_t[:, :, ::1] N, double[:, ::1] td,
             delta = target - old
             if nn < lim:
                 a = steps[nn]
+            elif clamped:       # every count past the table has the last step (the floor)
+                a = steps[lim - 1]
             else:
                 a = beyond(nn)
             new = old + a * delta

@@ -94,7 +94,8 @@ def observe(eng: Any, batch: Any, result_cls: Any, reasons: tuple[str, ...],
     eng._steps()                # builds the table (eng._alphas) when needed
     s = eng.settings
     acc = _compiled.observe(eng.Q, eng.N, eng.td, _u8(eng.live), eng._slot_of_i64,
-                            eng._alphas, eng._step_beyond, s.ceiling_s, s.td_smoothing,
+                            eng._alphas, eng._alpha_clamped, eng._step_beyond,
+                            s.ceiling_s, s.td_smoothing,
                             xs, ys, ds, lat, est, code, tde,
                             _u8(eng._kdirty), _u8(eng._kcols))
     rejected: tuple[tuple[int, str], ...] = ()
