@@ -193,149 +193,178 @@ def decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const int64_t[
            double keepf, double ceil, double td_ref, double emin, double espan,
            double eps_max, double visits_half,
            int64_t[:, ::1] choice, int64_t[:, ::1] hy, double[:, ::1] vx,
-           int64_t[:, ::1] pot, uint8_t[::1] changed):
+           int64_t[:, ::1] pot, int64_t[:, ::1] nhT, int64_t[:, ::1] prevT,
+           int64_t[:, ::1] potT, const int64_t[::1] deg, uint8_t[::1] changed):
     """Engine._decide_full for destinations ds.  Returns (route changes, loops newly
-    prevented); prevented is -1 if the fallback ladder failed to converge (a bug)."""
-    cdef Py_ssize_t n = q.shape[0], K = q.shape[2], m = ds.shape[0]
-    cdef Py_ssize_t x, i, c, it
-    cdef int64_t d, best, inc, ch, h, pv, bound, p, y, s_, tot
+    prevented); prevented is -1 if the fallback ladder failed to converge (a bug).
+
+    Destinations go in blocks of B (the scratch arrays' width, choice: (n, B)): per block
+    the three phases below run on scratch that stays in cache, so the state arrays are
+    each read and written once, in order, and only Q is a large read (as in values()).
+    Phase 2 works on per-destination rows (nhT, prevT, potT: (B, n)), written and read
+    back node-major by phases 1 and 3.  deg[x] is x's number of present slots: they are a
+    prefix of its slot row (topology.slots), and absent slots are never live, never
+    chosen and never candidates, so the slot loops stop there.
+    """
+    cdef Py_ssize_t n = q.shape[0], K = q.shape[2], m = ds.shape[0], B = choice.shape[1]
+    cdef Py_ssize_t x, i, ii, i0, nb, c, it
+    cdef int64_t d, best, inc, ch, h, pv, bound, p, y, tot
     cdef double bv, v, incv, vv, fr, e, r
     cdef const double* qr
-    cdef bint keep, anyalt, a, cg, cw, fnew, unstable
+    cdef bint keep, anyalt, a, cg, cw, fnew, unstable, failed = False
     cdef int64_t changes = 0, prevented = 0
     cdef int64_t big = (n + 1) * n
-    # phase 1, node-major (Q streams once): greedy with hysteresis, its value
-    for x in range(n):
-        for i in range(m):
-            d = ds[i]
-            qr = &q[x, d, 0]
-            best = 0
-            bv = qr[0] if live[x, 0] else INFINITY
-            for c in range(1, K):
-                v = qr[c] if live[x, c] else INFINITY
-                if v < bv:
-                    best = c
-                    bv = v
-            inc = greedy[x, d]
-            incv = qr[inc] if (inc >= 0 and live[x, inc]) else INFINITY
-            keep = isfinite(incv) and not (bv < incv * keepf)
-            ch = inc if keep else best
-            if not isfinite(bv) or x == d:
-                ch = -1
-            hy[x, i] = ch
-            choice[x, i] = ch
-            vx[x, i] = qr[ch] if (ch >= 0 and live[x, ch]) else INFINITY
-    # phase 2, per destination: the loop fallback ladder, depths, potentials
-    cdef int64_t* nh = <int64_t*> malloc(n * sizeof(int64_t))
-    cdef int64_t* prev = <int64_t*> malloc(n * sizeof(int64_t))
+    cdef int64_t* nh
+    cdef int64_t* prev
+    cdef int64_t* pt
+    cdef int64_t kx
+    cdef uint8_t au, cwu, anyu
     cdef int64_t* path = <int64_t*> malloc((n + 2) * sizeof(int64_t))
     cdef int64_t* dep = <int64_t*> malloc(n * sizeof(int64_t))
     cdef uint8_t* level = <uint8_t*> malloc(n)
     cdef uint8_t* cyc = <uint8_t*> malloc(n)
     cdef uint8_t* c1 = <uint8_t*> malloc(n)
     cdef uint8_t* col = <uint8_t*> malloc(n)
-    if not (nh and prev and path and dep and level and cyc and c1 and col):
-        free(nh); free(prev); free(path); free(dep); free(level); free(cyc); free(c1); free(col)
+    if not (path and dep and level and cyc and c1 and col):
+        free(path); free(dep); free(level); free(cyc); free(c1); free(col)
         raise MemoryError()
     try:
-        for i in range(m):
-            d = ds[i]
+        for i0 in range(0, m, B):
+            nb = min(B, m - i0)
+            # phase 1, node-major: greedy with hysteresis, and the chosen value
             for x in range(n):
-                ch = choice[x, i]
-                nh[x] = slots[x, ch] if ch >= 0 else -1
-                inc = greedy[x, d]
-                prev[x] = slots[x, inc] if inc >= 0 else -1
-                level[x] = 0
-                c1[x] = 0
-            for it in range(2 * n + 3):
-                if not _cycles(nh, cyc, col, path, n):
-                    break
-                if it == 0:
-                    for x in range(n):
-                        c1[x] = cyc[x]
+                kx = deg[x]
+                for ii in range(nb):
+                    d = ds[i0 + ii]
+                    qr = &q[x, d, 0]
+                    best = 0
+                    bv = qr[0] if live[x, 0] else INFINITY
+                    for c in range(1, kx):
+                        v = qr[c] if live[x, c] else INFINITY
+                        if v < bv:
+                            best = c
+                            bv = v
+                    inc = greedy[x, d]
+                    incv = qr[inc] if (inc >= 0 and live[x, inc]) else INFINITY
+                    keep = isfinite(incv) and not (bv < incv * keepf)
+                    ch = inc if keep else best
+                    if not isfinite(bv) or x == d:
+                        ch = -1
+                    hy[x, ii] = ch
+                    choice[x, ii] = ch
+                    vx[x, ii] = qr[ch] if (ch >= 0 and live[x, ch]) else INFINITY
+                    nhT[ii, x] = slots[x, ch] if ch >= 0 else -1
+                    prevT[ii, x] = slots[x, inc] if inc >= 0 else -1
+            # phase 2, per destination: the loop fallback ladder, depths, potentials
+            for ii in range(nb):
+                d = ds[i0 + ii]
+                nh = &nhT[ii, 0]
+                prev = &prevT[ii, 0]
                 for x in range(n):
-                    if not cyc[x]:
-                        continue
-                    if level[x] == 0:
-                        pv = prev[x]
-                        if pv >= 0 and live[x, slot_of[x, pv]]:
-                            nh[x] = pv
-                            level[x] = 1
+                    level[x] = 0
+                    c1[x] = 0
+                for it in range(2 * n + 3):
+                    if not _cycles(nh, cyc, col, path, n):
+                        break
+                    if it == 0:
+                        for x in range(n):
+                            c1[x] = cyc[x]
+                    for x in range(n):
+                        if not cyc[x]:
+                            continue
+                        if level[x] == 0:
+                            pv = prev[x]
+                            if pv >= 0 and live[x, slot_of[x, pv]]:
+                                nh[x] = pv
+                                level[x] = 1
+                            else:
+                                nh[x] = spt[x, d]
+                                level[x] = 2
                         else:
                             nh[x] = spt[x, d]
                             level[x] = 2
-                    else:
-                        nh[x] = spt[x, d]
-                        level[x] = 2
-            else:
-                return 0, -1
-            _depths(nh, d, dep, path, n)
-            unstable = False
+                else:
+                    failed = True
+                    break
+                _depths(nh, d, dep, path, n)
+                unstable = False
+                pt = &potT[ii, 0]
+                for x in range(n):
+                    if level[x]:        # moved by the ladder: its slot (unmoved: as chosen)
+                        choice[x, ii] = slot_of[x, nh[x]] if nh[x] >= 0 else -1
+                        if choice[x, ii] != hy[x, ii] and not c1[x]:
+                            unstable = True
+                    pt[x] = dep[x] * n + x
+                stable[d] = not unstable
+            if failed:
+                break
+            for x in range(n):          # potentials back to node-major for phase 3
+                for ii in range(nb):
+                    pot[x, ii] = potT[ii, x]
+            for ii in range(nb):
+                pot[n, ii] = INT64_MAX
+            # phase 3, node-major: candidates, shares, what changed, the writes
             for x in range(n):
-                ch = slot_of[x, nh[x]] if nh[x] >= 0 else -1
-                choice[x, i] = ch
-                pot[x, i] = dep[x] * n + x
-                if ch != hy[x, i] and not c1[x]:
-                    unstable = True
-            pot[n, i] = INT64_MAX
-            stable[d] = not unstable
+                kx = deg[x]
+                for ii in range(nb):
+                    d = ds[i0 + ii]
+                    ch = choice[x, ii]
+                    h = hy[x, ii]
+                    if ch >= 0:
+                        p = pot[x, ii]
+                        bound = p if p < big else big
+                    else:
+                        bound = -1
+                    anyu = 0
+                    cwu = 0
+                    for c in range(kx):         # branch-free: the outcomes are data
+                        au = live[x, c] & (ch != c) & (pot[slots[x, c], ii] < bound)
+                        anyu |= au
+                        if alt[x, d, c] != au:  # written only when it changes: no
+                            cwu = 1             # write-back of untouched lines
+                            alt[x, d, c] = au
+                    anyalt = anyu
+                    cw = cwu
+                    if ch == h:
+                        v = vx[x, ii]
+                    else:
+                        v = q[x, d, ch] if (ch >= 0 and live[x, ch]) else INFINITY
+                    if not visits:
+                        vv = v if isfinite(v) else ceil
+                        if not (vv >= 1e-12):
+                            vv = 1e-12
+                        r = td[x, d] / vv / td_ref
+                        fr = r if r < 1.0 else 1.0
+                    else:
+                        tot = N[x, d, 0]
+                        for c in range(1, K):
+                            tot += N[x, d, c]
+                        fr = visits_half / (visits_half + <double> tot)
+                    e = emin + espan * fr
+                    if not (e < eps_max):
+                        e = eps_max
+                    if not anyalt:
+                        e = 0.0
+                    cg = greedy[x, d] != ch
+                    if cg or fabs(eps[x, d] - e) > 1e-9:
+                        cw = True
+                    fnew = ch != h
+                    if fnew and not (forced[x, d] and not cg):
+                        prevented += 1
+                    if cg:
+                        changes += 1
+                    if cg:
+                        greedy[x, d] = ch
+                    if eps[x, d] != e:
+                        eps[x, d] = e
+                    if forced[x, d] != fnew:
+                        forced[x, d] = fnew
+                    if hyst_st[x, d] != h:
+                        hyst_st[x, d] = h
+                    if cw:
+                        changed[x] = 1
     finally:
-        free(nh); free(prev); free(path); free(dep); free(level); free(cyc); free(c1); free(col)
-    # phase 3, node-major: candidates, shares, what changed, the writes
-    for x in range(n):
-        for i in range(m):
-            d = ds[i]
-            ch = choice[x, i]
-            h = hy[x, i]
-            if ch >= 0:
-                p = pot[x, i]
-                bound = p if p < big else big
-            else:
-                bound = -1
-            anyalt = False
-            cw = False
-            for c in range(K):
-                a = False
-                if live[x, c] and ch != c:
-                    y = slots[x, c]
-                    a = pot[y, i] < bound
-                if a:
-                    anyalt = True
-                if alt[x, d, c] != a:
-                    cw = True
-                alt[x, d, c] = a
-            if ch == h:
-                v = vx[x, i]
-            else:
-                v = q[x, d, ch] if (ch >= 0 and live[x, ch]) else INFINITY
-            if not visits:
-                vv = v if isfinite(v) else ceil
-                if not (vv >= 1e-12):
-                    vv = 1e-12
-                r = td[x, d] / vv / td_ref
-                fr = r if r < 1.0 else 1.0
-            else:
-                tot = N[x, d, 0]
-                for c in range(1, K):
-                    tot += N[x, d, c]
-                fr = visits_half / (visits_half + <double> tot)
-            e = emin + espan * fr
-            if not (e < eps_max):
-                e = eps_max
-            if not anyalt:
-                e = 0.0
-            cg = greedy[x, d] != ch
-            if cg or fabs(eps[x, d] - e) > 1e-9:
-                cw = True
-            fnew = ch != h
-            if fnew and not (forced[x, d] and not cg):
-                prevented += 1
-            if cg:
-                changes += 1
-            greedy[x, d] = ch
-            eps[x, d] = e
-            forced[x, d] = fnew
-            hyst_st[x, d] = h
-            if cw:
-                changed[x] = 1
+        free(path); free(dep); free(level); free(cyc); free(c1); free(col)
+    if failed:
+        return changes, -1
     return changes, prevented

@@ -284,6 +284,11 @@ class Engine:
         self._slot_of = topology.slot_of
         self._slot_flat = np.ascontiguousarray(topology.slot_of).reshape(-1)
         self._slot_of_i64 = np.ascontiguousarray(topology.slot_of, dtype=np.int64)
+        # slots the compiled decide scans per node: the present ones when they are a prefix
+        # of the row (as topology builds them), else all (absent slots are never live)
+        deg = self._present.sum(axis=1).astype(np.int64)
+        prefix = bool((self._present == (np.arange(k)[None, :] < deg[:, None])).all())
+        self._slot_deg = deg if prefix else np.full(n, k, dtype=np.int64)
         self._link_delay = np.where(self._present, topology.delay_s[np.maximum(topology.slot_link, 0)], 0.0)
         self.live = self._present.copy()
         self._static_dist = topology.shortest_delays()

@@ -27,6 +27,8 @@ from typing import Any
 import numpy as np
 
 MODES = ("auto", "compiled", "reference")
+# destinations per block of the compiled decide (its scratch: about 32 * n * B bytes)
+DECIDE_BLOCK = 32
 
 try:  # the extension is optional: an install without a C compiler has only the reference
     from . import _kernels as _compiled
@@ -136,10 +138,13 @@ def decide_full(eng: Any, ds: np.ndarray) -> tuple[frozenset[int], int, int]:
     if spt.dtype != np.int64 or not spt.flags.c_contiguous:
         spt = np.ascontiguousarray(spt, dtype=np.int64)
     changed = np.zeros(n, dtype=np.uint8)
-    choice = np.empty((n, m), dtype=np.int64)
-    hyst = np.empty((n, m), dtype=np.int64)
-    vx = np.empty((n, m), dtype=np.float64)
-    pot = np.empty((n + 1, m), dtype=np.int64)
+    # scratch for a block of destinations, small enough to stay in cache (see _kernels)
+    b = max(1, min(m, DECIDE_BLOCK))
+    choice = np.empty((n, b), dtype=np.int64)
+    hyst = np.empty((n, b), dtype=np.int64)
+    vx = np.empty((n, b), dtype=np.float64)
+    pot = np.empty((n + 1, b), dtype=np.int64)
+    nhT, prevT, potT = (np.empty((b, n), dtype=np.int64) for _ in range(3))
     visits = s.explore_basis != "td"
     changes, prevented = _compiled.decide(
         eng._qdec, _u8(eng.live), eng._slots, eng._slot_of_i64, spt, ds,
@@ -147,7 +152,7 @@ def decide_full(eng: Any, ds: np.ndarray) -> tuple[frozenset[int], int, int]:
         eng.td, eng.N, bool(visits),
         1.0 - s.margin, s.ceiling_s, s.td_ref, s.explore_min, s.explore_max - s.explore_min,
         s.eps_max, s.visits_half,
-        choice, hyst, vx, pot, changed)
+        choice, hyst, vx, pot, nhT, prevT, potT, eng._slot_deg, changed)
     if prevented < 0:  # unreachable: the live shortest-path tree has no loop
         raise AssertionError("loop fallback did not converge")
     return frozenset(np.flatnonzero(changed).tolist()), int(changes), int(prevented)
