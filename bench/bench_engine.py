@@ -19,6 +19,10 @@ Every figure's ratio is to a floor or a baseline measured in the same run:
   ``floor_rows_per_s_…``, ``loop_rows_per_s_…`` (ratio to the floor).
 * ``decide_ms_n{N}`` — one :meth:`Engine.decide` with every destination touched; ratio to
   one full read of Q (``Engine.values()``), the least any decision pass must do.
+* ``decide_full_share_n{N}`` — over a stream of random 1,024-row batches, each followed by
+  a decide: the share of touched destinations that took the full pass instead of the key
+  lane (issue 15: on main 88-89 % were there only because a held loop fallback "moved");
+  ``loops_prevented_per_decide_n{N}`` — new loop fallbacks counted per decide in that run.
 * ``construct_s_n{N}`` — ``Engine(topology)`` including the delay-shortest initial values;
   ratio to allocating and filling the state arrays alone.
 * ``state_bytes_n{N}`` — bytes of engine state arrays; ratio to the Q array alone.
@@ -222,6 +226,28 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
                            f"decide with every destination due, {p_} path "
                            f"({dec[p_] * 1e3:.1f} ms)", "nodes": n,
             }
+        # the key lane on a stream: how many touched destinations still need the full pass
+        eng._kern = compiled
+        eng._dirty[:] = True
+        eng.decide(1.0)
+        full0, prev0 = eng._full_pass_destinations, eng.statistics().loops_prevented
+        touched = 0
+        rounds = 20 if quick else 60
+        for r_ in range(rounds):
+            eng.observe(random_rows(t, 1024, rng), now=2.0 + r_)
+            touched += int((eng._kcols | eng._dirty).sum())
+            eng.decide(2.0 + r_)
+        full = eng._full_pass_destinations - full0
+        figs[f"decide_full_share_n{n}"] = {
+            "value": full / max(touched, 1), "unit": "ratio", "ratio": full / max(touched, 1),
+            "against": f"destinations touched by {rounds} random 1,024-row batches "
+                       f"({touched}); {full} took the full pass", "nodes": n,
+        }
+        lp = (eng.statistics().loops_prevented - prev0) / rounds
+        figs[f"loops_prevented_per_decide_n{n}"] = {
+            "value": lp, "unit": "loops/decide", "ratio": lp / max(n, 1),
+            "against": "per node (new loop fallbacks counted once per change)", "nodes": n,
+        }
         if n == 1000:
             figs["decide_ms"] = dict(figs[f"decide_ms_n{n}"])
             figs["decide_ratio_n1000"] = {
