@@ -55,6 +55,11 @@ call:
    order: the weighted forwarding graph is acyclic, exploration included.  The greedy hop
    keeps 1 - eps >= 1 - max_rate; with no alternate it keeps 1.
 
+Two implementations.  The numpy code here is the reference; :mod:`routerd.kernels` runs
+``observe`` (plain rule) and the full pass of ``decide`` compiled when the extension is
+built (``EngineSettings.kernels``: auto, compiled, reference), with the same results to
+the bit (tests/test_kernels.py).  A change to a rule here needs the same change there.
+
 Estimates.  :meth:`Engine.estimate` is x's min over live slots (the rule the update uses
 for a row without a reported estimate); :meth:`Engine.published_estimate` is the Q-value of
 x's published greedy next hop (0 at the destination, the ceiling without a route), what a
