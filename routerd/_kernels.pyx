@@ -22,7 +22,8 @@ cdef extern from *:
 
 # rows ahead whose state is fetched into cache while a row is applied: the update is
 # bound by random reads of Q, N and td (a prefetch changes no value)
-DEF AHEAD = 12
+cdef enum:
+    AHEAD = 12
 
 # reason codes: indices into engine.REJECT_REASONS (tests/test_kernels.py checks the order)
 cdef enum:
@@ -207,11 +208,11 @@ def decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const int64_t[
     chosen and never candidates, so the slot loops stop there.
     """
     cdef Py_ssize_t n = q.shape[0], K = q.shape[2], m = ds.shape[0], B = choice.shape[1]
-    cdef Py_ssize_t x, i, ii, i0, nb, c, it
-    cdef int64_t d, best, inc, ch, h, pv, bound, p, y, tot
+    cdef Py_ssize_t x, ii, i0, nb, c, it
+    cdef int64_t d, best, inc, ch, h, pv, bound, p, tot
     cdef double bv, v, incv, vv, fr, e, r
     cdef const double* qr
-    cdef bint keep, anyalt, a, cg, cw, fnew, unstable, failed = False
+    cdef bint keep, anyalt, cg, cw, fnew, unstable, failed = False
     cdef int64_t changes = 0, prevented = 0
     cdef int64_t big = (n + 1) * n
     cdef int64_t* nh
