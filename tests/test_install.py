@@ -370,3 +370,22 @@ def test_no_submodule_is_used_without_being_imported() -> None:
     assert r.returncode == 0, r.stderr
     missing = {n: sorted(subs[n]) for n in r.stdout.split()}
     assert missing == {}, f"import these submodules by name where they are used: {missing}"
+
+
+@pytest.mark.slow
+def test_source_distribution_carries_the_kernel_source(tmp_path: Any) -> None:
+    """A wheel built from the sdist must be able to compile the kernels: the .pyx is in it
+    (MANIFEST.in), the generated C is not (it is rebuilt from the .pyx)."""
+    src = tmp_path / "src"
+    shutil.copytree(ROOT, src, ignore=shutil.ignore_patterns(
+        ".git", ".venv", "__pycache__", "*.pyc", "*.egg-info", "*.so", "_kernels.c", "build",
+        "dist", ".hypothesis", ".pytest_cache", "out"))
+    r = subprocess.run([sys.executable, "setup.py", "-q", "sdist", "-d", str(tmp_path / "sd")],
+                       cwd=str(src), env=_clean_env(None), capture_output=True, text=True,
+                       timeout=PIP_TIMEOUT_S, check=False)
+    _check(r, "setup.py sdist")
+    import tarfile
+    (sd,) = (tmp_path / "sd").glob("routerd-*.tar.gz")
+    names = [n.split("/", 1)[1] for n in tarfile.open(sd).getnames() if "/" in n]
+    assert "routerd/_kernels.pyx" in names and "setup.py" in names, names
+    assert "routerd/_kernels.c" not in names
