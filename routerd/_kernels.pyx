@@ -369,3 +369,36 @@ def decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const int64_t[
     if failed:
         return changes, -1
     return changes, prevented
+
+
+def routes(const int64_t[::1] rows, const int64_t[:, ::1] greedy, const int64_t[:, ::1] slots,
+           const uint8_t[:, :, ::1] alt, const double[:, ::1] eps, list out):
+    """Engine.routes_many for nodes ``rows``: appends to ``out`` one dict per node,
+    destination -> [(next_hop, weight), ...], greedy first, then alternates in slot order;
+    weights 1 - eps and eps / count (the reference's operations), 1.0 without alternates."""
+    cdef Py_ssize_t n = greedy.shape[1], K = slots.shape[1], r, c, d, cnt
+    cdef int64_t x, g
+    cdef double e, share
+    cdef dict table
+    cdef list ws
+    for r in range(rows.shape[0]):
+        x = rows[r]
+        table = {}
+        for d in range(n):
+            g = greedy[x, d]
+            if g < 0 or d == x:
+                continue
+            cnt = 0
+            for c in range(K):
+                cnt += alt[x, d, c]
+            if cnt:
+                e = eps[x, d]
+                share = e / <double> cnt
+                ws = [(slots[x, g], 1.0 - e)]
+                for c in range(K):
+                    if alt[x, d, c]:
+                        ws.append((slots[x, c], share))
+            else:
+                ws = [(slots[x, g], 1.0)]
+            table[d] = ws
+        out.append(table)

@@ -861,6 +861,8 @@ class Engine:
         arrays instead of one :meth:`weights` call per destination; the same tables, the
         same floats (greedy 1 - eps, each alternate eps / count, in slot order)."""
         rows = np.arange(self.n) if xs is None else np.asarray(xs, dtype=np.int64).reshape(-1)
+        if self._kern is not None:
+            return _kernels.routes(self, rows)
         g = self.greedy[rows]
         sl = self._slots[rows]
         nh = np.take_along_axis(sl, np.maximum(g, 0), axis=1)

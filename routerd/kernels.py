@@ -156,3 +156,14 @@ def decide_full(eng: Any, ds: np.ndarray) -> tuple[frozenset[int], int, int]:
     if prevented < 0:  # unreachable: the live shortest-path tree has no loop
         raise AssertionError("loop fallback did not converge")
     return frozenset(np.flatnonzero(changed).tolist()), int(changes), int(prevented)
+
+
+# ---- tables ------------------------------------------------------------------------------
+
+def routes(eng: Any, rows: np.ndarray) -> list[dict[int, list[tuple[int, float]]]]:
+    """:meth:`Engine.routes_many` on the compiled path: the same dicts, the same floats."""
+    out: list[dict[int, list[tuple[int, float]]]] = []
+    # numpy's indexing rules for the node list (negative from the end, IndexError beyond)
+    r = np.ascontiguousarray(np.arange(eng.n, dtype=np.int64)[rows])
+    _compiled.routes(r, eng.greedy, eng._slots, _u8(eng.alt), eng.eps, out)
+    return out

@@ -805,10 +805,10 @@ def test_published_estimate_is_the_greedy_entry(make_ring) -> None:  # type: ign
                                                       for a, b in zip(xs, ds)]
 
 
-def test_routes_many_equals_routes(make_ring) -> None:  # type: ignore[no-untyped-def]
+def test_routes_many_equals_routes(make_ring, kernel_path) -> None:  # type: ignore[no-untyped-def]
     """The whole-table path gives exactly routes(x) (same next hops, weights, order)."""
     t = make_ring(12, 6, 5)
-    e = Engine(t, EngineSettings(explore_min=0.02))
+    e = Engine(t, EngineSettings(explore_min=0.02, kernels=kernel_path))
     _random_q(e, np.random.default_rng(5))
     e.set_link(int(t.src[0]), int(t.dst[0]), False)
     e.decide(1.0)

@@ -92,6 +92,11 @@ def test_compiled_equals_reference_on_random_batches(make_ring, seed: int, n: in
             b._dirty[:] = True
         assert a.decide(it) == b.decide(it)
         _same(a, b)
+    ta, tb = a.routes_many(), b.routes_many()       # the published tables, bit for bit
+    assert ta == tb
+    assert [[(y, w.hex()) for ws in tab.values() for y, w in ws] for tab in ta] == \
+        [[(y, w.hex()) for ws in tab.values() for y, w in ws] for tab in tb]
+    assert b.routes_many([n - 1, 0]) == [tb[n - 1], tb[0]]
 
 
 @needs_compiled
