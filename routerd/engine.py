@@ -56,7 +56,7 @@ call:
    keeps 1 - eps >= 1 - max_rate; with no alternate it keeps 1.
 
 Two implementations.  The numpy code here is the reference; :mod:`routerd.kernels` runs
-``observe`` (plain rule) and the full pass of ``decide`` compiled when the extension is
+``observe`` (plain rule), the full pass of ``decide`` and ``routes_many`` compiled when the extension is
 built (``EngineSettings.kernels``: auto, compiled, reference), with the same results to
 the bit (tests/test_kernels.py).  A change to a rule here needs the same change there.
 

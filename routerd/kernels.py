@@ -16,6 +16,7 @@ Both paths give bit-for-bit the same state, tables and counters (tests:
   then free: no rounds are needed.
 * ``decide``'s full pass per destination: greedy with hysteresis, the loop fallback
   ladder, depths, candidates and shares, in the reference's order of operations.
+* ``routes_many``: the published tables as the same Python objects and floats.
 
 Pure like the engine: imports numpy and the compiled module only; never the engine at
 import time (the engine imports this module).
