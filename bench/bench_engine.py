@@ -127,7 +127,9 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
     ratios_big: list[float] = []
     # the two paths, measured side by side: the same engine with its kernel switched
     compiled = _kernels.select("auto")
-    paths = {"compiled": compiled, "reference": None} if compiled is not None else {"reference": None}
+    paths: dict[str, Any] = {"reference": None}
+    if compiled is not None:
+        paths = {"compiled": compiled, "reference": None}
     ratios_path: dict[str, list[float]] = {p: [] for p in paths}
     default = "compiled" if compiled is not None else "reference"
     rng = np.random.default_rng(20261201)

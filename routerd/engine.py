@@ -56,9 +56,9 @@ call:
    keeps 1 - eps >= 1 - max_rate; with no alternate it keeps 1.
 
 Two implementations.  The numpy code here is the reference; :mod:`routerd.kernels` runs
-``observe`` (plain rule), the full pass of ``decide`` and ``routes_many`` compiled when the extension is
-built (``EngineSettings.kernels``: auto, compiled, reference), with the same results to
-the bit (tests/test_kernels.py).  A change to a rule here needs the same change there.
+``observe`` (plain rule), the full pass of ``decide`` and ``routes_many`` compiled when the
+extension is built (``EngineSettings.kernels``: auto, compiled, reference), with the same
+results to the bit (tests/test_kernels.py).  A change to a rule here needs the same change there.
 
 Estimates.  :meth:`Engine.estimate` is x's min over live slots (the rule the update uses
 for a row without a reported estimate); :meth:`Engine.published_estimate` is the Q-value of
@@ -1204,7 +1204,8 @@ class Engine:
         if "_hyst" in state:
             h = np.asarray(state["_hyst"])
             if h.shape != eng.greedy.shape:
-                raise ValueError(f"state array _hyst has shape {h.shape}, expected {eng.greedy.shape}")
+                raise ValueError(f"state array _hyst has shape {h.shape}, "
+                                 f"expected {eng.greedy.shape}")
             eng._hyst = np.array(h, dtype=np.int64, order="C", copy=True)
         else:
             eng._hyst = eng.greedy.copy()

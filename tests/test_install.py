@@ -163,7 +163,8 @@ def test_without_a_compiler_the_install_runs_on_the_reference_path(
     the package runs on the numpy reference path and says so (banner line, status)."""
     base = tmp_path_factory.mktemp("nocc")
     wheel, built = _build_wheel(base, {"CC": "/bin/false", "LDSHARED": "/bin/false"})
-    assert "the compiled kernels (routerd._kernels) could not be built" in built.stdout + built.stderr
+    said = built.stdout + built.stderr
+    assert "the compiled kernels (routerd._kernels) could not be built" in said
     assert not [n for n in zipfile.ZipFile(wheel).namelist() if n.endswith(".so")]
     venv = _fresh_venv(base, wheel)
     work = base / "elsewhere"

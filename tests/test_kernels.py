@@ -181,7 +181,8 @@ from routerd.topology import from_mapping
 import json
 t = from_mapping({"topology": {"name": "three", "nodes": ["a", "b", "c"],
     "defaults": {"capacity_bps": 1e7, "buffer_pkts": 50},
-    "links": [{"between": ["a", "b"], "delay_s": 0.001}, {"between": ["b", "c"], "delay_s": 0.001}]}})
+    "links": [{"between": ["a", "b"], "delay_s": 0.001},
+              {"between": ["b", "c"], "delay_s": 0.001}]}})
 e = Engine(t)
 r = e.observe(HopBatch.of([0] * 30, [1] * 30, [2] * 30, [0.01] * 30))
 e.decide(1.0)
