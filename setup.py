@@ -35,13 +35,8 @@ class OptionalBuildExt(build_ext):
 
     @staticmethod
     def _warn(e: BaseException) -> None:
-        msg = WARNING.format(why=f"{type(e).__name__}: {e}")
-        print(f"WARNING: {msg}", file=sys.stderr)
-        try:
-            import warnings
-            warnings.warn(msg, stacklevel=1)
-        except Exception:  # noqa: BLE001
-            pass
+        # pip shows a build's output with -v, or in full when the build fails
+        print(f"WARNING: {WARNING.format(why=f'{type(e).__name__}: {e}')}", file=sys.stderr)
 
 
 def extensions() -> list[Extension]:

@@ -32,7 +32,7 @@ MODES = ("auto", "compiled", "reference")
 DECIDE_BLOCK = 32
 
 try:  # the extension is optional: an install without a C compiler has only the reference
-    from . import _kernels as _compiled
+    from . import _kernels as _compiled  # type: ignore[attr-defined]  # built by setup.py
     _WHY = "routerd._kernels is built"
 except ImportError as e:  # pragma: no cover - depends on the install
     _compiled = None
@@ -132,7 +132,7 @@ def decide_ok(eng: Any) -> bool:
 def decide_full(eng: Any, ds: np.ndarray) -> tuple[frozenset[int], int, int]:
     """:meth:`Engine._decide_full` on the compiled path: same tables, same counters."""
     s = eng.settings
-    n, K = eng.n, eng.k
+    n = eng.n
     m = ds.size
     ds = np.ascontiguousarray(ds, dtype=np.int64)
     spt = eng._spt_live()

@@ -387,6 +387,7 @@ def test_source_distribution_carries_the_kernel_source(tmp_path: Any) -> None:
     _check(r, "setup.py sdist")
     import tarfile
     (sd,) = (tmp_path / "sd").glob("routerd-*.tar.gz")
-    names = [n.split("/", 1)[1] for n in tarfile.open(sd).getnames() if "/" in n]
+    with tarfile.open(sd) as tf:
+        names = [n.split("/", 1)[1] for n in tf.getnames() if "/" in n]
     assert "routerd/_kernels.pyx" in names and "setup.py" in names, names
     assert "routerd/_kernels.c" not in names

@@ -115,8 +115,8 @@ def test_compiled_decide_equals_reference_under_a_variant(make_ring, variant: st
 
 
 @needs_compiled
-@pytest.mark.parametrize("kw", [dict(floor=0.0, kappa=1.0), dict(floor=0.05),
-                                dict(step_mode="constant", alpha=0.3)])
+@pytest.mark.parametrize("kw", [{"floor": 0.0, "kappa": 1.0}, {"floor": 0.05},
+                                {"step_mode": "constant", "alpha": 0.3}])
 def test_compiled_steps_past_the_table_are_the_reference_steps(kw: dict) -> None:
     """Counts past the step table (h4's bound: it stops at the floor, or at
     STEP_TABLE_MAX counts) take the reference's own _step_beyond: the same bits."""
