@@ -66,3 +66,14 @@ def topohub_json(key: str) -> dict:
 @pytest.fixture(scope="session")
 def topohub_raw() -> Callable[[str], dict]:
     return topohub_json
+
+
+@pytest.fixture(scope="session", params=["reference", "compiled"])
+def kernel_path(request: pytest.FixtureRequest) -> str:
+    """``engine.kernels`` for tests that must hold on both paths (routerd/core/kernels.py).
+    The compiled one is skipped, with the reason, where the extension is not built."""
+    from routerd.core import kernels
+
+    if request.param == "compiled" and not kernels.available():
+        pytest.skip(kernels.status("compiled")["reason"])
+    return str(request.param)

@@ -234,11 +234,13 @@ def _check_batched_equals_sequential(t: T.Topology, rows: list[tuple], s: Engine
 
 @HYP
 @given(data=st.data())
-def test_batched_equals_sequential(small_ring: T.Topology, data: st.DataObject) -> None:
+def test_batched_equals_sequential(small_ring: T.Topology, data: st.DataObject,
+                                   kernel_path: str) -> None:
     t = small_ring
     rows = data.draw(row_lists(t, 1, 90))
     mode = data.draw(st.sampled_from(["constant", "decaying"]))
-    s = EngineSettings(step_mode=mode, ceiling_s=data.draw(st.sampled_from([0.004, 10.0])))
+    s = EngineSettings(step_mode=mode, ceiling_s=data.draw(st.sampled_from([0.004, 10.0])),
+                       kernels=kernel_path)
     down = data.draw(st.lists(st.integers(0, t.n_links - 1), max_size=2, unique=True))
     _check_batched_equals_sequential(t, rows, s, down)
 
@@ -246,16 +248,18 @@ def test_batched_equals_sequential(small_ring: T.Topology, data: st.DataObject) 
 @HYP
 @given(data=st.data())
 def test_batched_equals_sequential_above_scalar_batch(small_ring: T.Topology,
-                                                      data: st.DataObject) -> None:
+                                                      data: st.DataObject,
+                                                      kernel_path: str) -> None:
     t = small_ring
     rows = data.draw(row_lists(t, E.SCALAR_BATCH, 400))
     assert len(rows) >= E.SCALAR_BATCH
-    s = EngineSettings(step_mode=data.draw(st.sampled_from(["constant", "decaying"])))
+    s = EngineSettings(step_mode=data.draw(st.sampled_from(["constant", "decaying"])),
+                       kernels=kernel_path)
     down = data.draw(st.lists(st.integers(0, t.n_links - 1), max_size=2, unique=True))
     _check_batched_equals_sequential(t, rows, s, down)
 
 
-def test_batched_equals_sequential_long_chain(small_ring: T.Topology) -> None:
+def test_batched_equals_sequential_long_chain(small_ring: T.Topology, kernel_path: str) -> None:
     # one row per hop along a path, every row reading what the previous one wrote,
     # then the same entry hammered: forces the rounds to defer almost everything
     t = small_ring
@@ -265,10 +269,10 @@ def test_batched_equals_sequential_long_chain(small_ring: T.Topology) -> None:
         k = int(rng.integers(0, t.n_links))
         rows.append((int(t.dst[k]), int(t.src[k]), 0, float(rng.uniform(0, 0.01)), math.nan))
     rows = [r for r in rows if r[0] != 0] + [(int(t.src[0]), int(t.dst[0]), 5, 0.001, math.nan)] * 60
-    _check_batched_equals_sequential(t, rows, EngineSettings(), [])
+    _check_batched_equals_sequential(t, rows, EngineSettings(kernels=kernel_path), [])
 
 
-def test_batched_equals_sequential_on_a_large_random_batch(make_ring) -> None:  # type: ignore[no-untyped-def]
+def test_batched_equals_sequential_on_a_large_random_batch(make_ring, kernel_path) -> None:  # type: ignore[no-untyped-def]
     t = make_ring(60, 60, seed=11)
     rng = np.random.default_rng(4)
     m = 5000
@@ -278,7 +282,7 @@ def test_batched_equals_sequential_on_a_large_random_batch(make_ring) -> None:  
     d = np.where(d == x, y, d)
     est = np.where(rng.random(m) < 0.2, rng.uniform(0, 0.05, m), np.nan)
     rows = list(zip(x.tolist(), y.tolist(), d.tolist(), rng.uniform(0, 0.01, m).tolist(), est.tolist()))
-    _check_batched_equals_sequential(t, rows, EngineSettings(), [3])
+    _check_batched_equals_sequential(t, rows, EngineSettings(kernels=kernel_path), [3])
 
 
 # ---- step sizes ----------------------------------------------------------------------------
@@ -429,11 +433,11 @@ def _forwarding_graphs(e: Engine) -> list[nx.DiGraph]:
        lo=st.floats(0, 0.1), hi=st.floats(0, 0.3), cap=st.floats(0, 0.3),
        basis=st.sampled_from(["td", "visits"]), margin=st.floats(0, 0.3), downs=st.integers(0, 3))
 def test_published_weights_respect_caps_and_never_loop(make_ring, seed, n, chords, lo, hi, cap,  # type: ignore[no-untyped-def]
-                                                       basis, margin, downs) -> None:
+                                                       basis, margin, downs, kernel_path) -> None:
     lo, hi, cap = sorted((lo, hi, cap))
     t = make_ring(n, chords, seed=seed % 1000)
     s = EngineSettings(explore_min=lo, explore_max=hi, explore_cap=cap, explore_basis=basis,
-                       margin=margin, td_ref=0.05)
+                       margin=margin, td_ref=0.05, kernels=kernel_path)
     e = Engine(t, s)
     rng = np.random.default_rng(seed)
     for k in rng.choice(t.n_links, size=min(downs, t.n_links), replace=False).tolist():
@@ -508,10 +512,10 @@ def test_noise_inside_the_margin_never_flaps() -> None:
     assert e.statistics().route_changes == before
 
 
-def test_loop_fallback_counts_prevented_loops() -> None:
+def test_loop_fallback_counts_prevented_loops(kernel_path: str) -> None:
     # a ring of 4: make a and b each think the other is the way to d
     t = line("a", "b", "c", "d", extra=(("d", "a"),))
-    e = Engine(t, EngineSettings(margin=0.0))
+    e = Engine(t, EngineSettings(margin=0.0, kernels=kernel_path))
     a, b, c, d = (t.index[k] for k in "abcd")
     e.Q[a, c, slot(t, "a", "b")] = 1.0
     e.Q[a, c, slot(t, "a", "d")] = 0.1
@@ -526,12 +530,12 @@ def test_loop_fallback_counts_prevented_loops() -> None:
     assert e.statistics().loops_prevented == dec.loops_prevented
 
 
-def test_zero_delay_ties_do_not_hang_the_loop_fallback(make_ring) -> None:  # type: ignore[no-untyped-def]
+def test_zero_delay_ties_do_not_hang_the_loop_fallback(make_ring, kernel_path) -> None:  # type: ignore[no-untyped-def]
     # zero-delay links make shortest paths tie; the fallback tree must still be loop-free
     rng = np.random.default_rng(2)
     for seed in range(5):
         t = make_ring(12, 10, seed=seed, zero_delay=True)
-        e = Engine(t, EngineSettings())
+        e = Engine(t, EngineSettings(kernels=kernel_path))
         for _ in range(3):
             _random_q(e, rng)
             e.decide(1.0)
@@ -743,7 +747,7 @@ def test_restore_under_a_higher_ceiling_keeps_dead_links_out_of_reads() -> None:
 
 
 @pytest.mark.parametrize("seed", range(6))
-def test_key_lane_of_decide_equals_the_full_pass(make_ring, seed: int) -> None:  # type: ignore[no-untyped-def]
+def test_key_lane_of_decide_equals_the_full_pass(make_ring, seed: int, kernel_path: str) -> None:  # type: ignore[no-untyped-def]
     """decide()'s key-level lane (destinations the core observe path touched) publishes
     exactly what the full per-destination pass publishes: same tables, candidates,
     shares, counters and changed nodes, through link flaps and state round trips."""
@@ -751,7 +755,8 @@ def test_key_lane_of_decide_equals_the_full_pass(make_ring, seed: int) -> None: 
     n = int(rng.integers(5, 25))
     t = make_ring(n, n // 2, seed)
     s = EngineSettings(explore_basis="visits" if seed % 3 == 0 else "td",
-                       margin=(0.0, 0.05, 0.3)[seed % 3], explore_min=0.01 * (seed % 2))
+                       margin=(0.0, 0.05, 0.3)[seed % 3], explore_min=0.01 * (seed % 2),
+                       kernels=kernel_path)
     a, b = Engine(t, s), Engine(t, s)
     prevented = 0
     for it in range(15):
@@ -801,13 +806,72 @@ def test_published_estimate_is_the_greedy_entry(make_ring) -> None:  # type: ign
                                                       for a, b in zip(xs, ds)]
 
 
-def test_routes_many_equals_routes(make_ring) -> None:  # type: ignore[no-untyped-def]
+def test_routes_many_equals_routes(make_ring, kernel_path) -> None:  # type: ignore[no-untyped-def]
     """The whole-table path gives exactly routes(x) (same next hops, weights, order)."""
     t = make_ring(12, 6, 5)
-    e = Engine(t, EngineSettings(explore_min=0.02))
+    e = Engine(t, EngineSettings(explore_min=0.02, kernels=kernel_path))
     _random_q(e, np.random.default_rng(5))
     e.set_link(int(t.src[0]), int(t.dst[0]), False)
     e.decide(1.0)
     assert e.routes_many() == [e.routes(x) for x in range(e.n)]
     assert e.routes_many([3, 1]) == [e.routes(3), e.routes(1)]
     assert any(len(w) > 1 for r in e.routes_many() for w in r.values())   # splits are covered
+
+
+def _held_loop(kernels: str) -> tuple[Engine, T.Topology]:
+    """A ring a-b-c-d-a where a and b each think the other is the way to c: the greedy
+    choice a -> b -> a loops, so one of them is held on a fallback."""
+    t = line("a", "b", "c", "d", extra=(("d", "a"),))
+    e = Engine(t, EngineSettings(margin=0.0, step_mode="constant", alpha=0.5, kernels=kernels))
+    a, b, c, d = (t.index[k] for k in "abcd")
+    e.Q[a, c, slot(t, "a", "b")] = 0.1
+    e.Q[a, c, slot(t, "a", "d")] = 1.0
+    e.Q[b, c, slot(t, "b", "a")] = 0.1
+    e.Q[b, c, slot(t, "b", "c")] = 1.0
+    e._dirty[:] = True
+    return e, t
+
+
+def test_a_persistent_loop_fallback_is_counted_once_and_keeps_the_key_lane(kernel_path: str) -> None:
+    """Issue 15: a key held on a loop fallback used to send its destination to the full
+    pass at every decide, which found the same loop again and counted it again."""
+    e, t = _held_loop(kernel_path)
+    a, b, c = (t.index[k] for k in "abc")
+    first = e.decide(1.0)
+    assert first.loops_prevented == 1 and e._forced[:, c].sum() == 1
+    assert loops.find_loops(e.next_hops().T) == []
+    tables = e.next_hops().copy()
+    full0 = e._full_pass_destinations
+    for i in range(40):
+        # reports that keep the loop attractive, on both keys of the loop and elsewhere
+        e.observe(HopBatch.of([a, b, a, t.index["d"]], [b, a, b, c], [c, c, c, c],
+                              [0.001, 0.001, 0.001, 0.002], [0.05, 0.05, 0.05, np.nan]),
+                  now=2.0 + i)
+        dec = e.decide(2.0 + i)
+        assert dec.loops_prevented == 0 and dec.route_changes == 0
+        assert np.array_equal(e.next_hops(), tables)
+    assert e.statistics().loops_prevented == 1
+    assert e._full_pass_destinations == full0           # never re-decided in full
+    # the same engine, every touched destination through the full pass: same result
+    e._dirty[c] = True
+    assert e.decide(50.0).loops_prevented == 0 and np.array_equal(e.next_hops(), tables)
+
+
+def test_a_new_fallback_counts_again(kernel_path: str) -> None:
+    """A loop that goes away and comes back is two prevented loops, not zero or forty."""
+    e, t = _held_loop(kernel_path)
+    a, b, c = (t.index[k] for k in "abc")
+    e.decide(1.0)
+    jab, jba = slot(t, "a", "b"), slot(t, "b", "a")
+    e.Q[b, c, jba] = 5.0                  # b now prefers c directly: no loop
+    e._dirty[c] = True
+    assert e.decide(2.0).loops_prevented == 0
+    assert not e._forced.any()
+    e.Q[b, c, jba] = 0.1                  # ... and back: the same loop again
+    e.Q[a, c, jab] = 0.1
+    e._dirty[c] = True
+    assert e.decide(3.0).loops_prevented == 1
+    for i in range(5):
+        e._dirty[c] = True                # even the full pass does not count it again
+        assert e.decide(4.0 + i).loops_prevented == 0
+    assert e.statistics().loops_prevented == 2

@@ -17,6 +17,7 @@ package, where a fresh interpreter without any start-up hooks does not provide i
 from __future__ import annotations
 
 import ast
+import json
 import os
 import re
 import shutil
@@ -28,6 +29,7 @@ import time
 import zipfile
 from collections.abc import Iterator
 from dataclasses import dataclass
+from typing import Any
 
 import importlib.util
 import sysconfig
@@ -81,42 +83,102 @@ def _check(r: subprocess.CompletedProcess[str], what: str) -> None:
                                f"\n--- stderr\n{r.stderr[-4000:]}")
 
 
-@pytest.fixture(scope="module")
-def installed(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Installed]:
-    base = tmp_path_factory.mktemp("install")
+def _build_wheel(base: Any, extra_env: dict[str, str] | None = None
+                 ) -> tuple[str, subprocess.CompletedProcess[str]]:
+    """A wheel built from the files deploy/Containerfile copies, as a clean clone has them
+    (no compiled kernels or generated C left by an editable install here)."""
     src = base / "src"
     src.mkdir()
     for rel in _build_context():
         a = os.path.join(ROOT, rel)
         if os.path.isdir(a):
             shutil.copytree(a, src / rel, ignore=shutil.ignore_patterns(
-                "__pycache__", "*.pyc", "*.egg-info"))
+                "__pycache__", "*.pyc", "*.egg-info", "*.so", "_kernels.c", "_kernels.html"))
         else:
             shutil.copy2(a, src / rel)
-    t0 = time.perf_counter()
     dist = base / "dist"
-    env = _clean_env(None)
-    r = subprocess.run([sys.executable, "-m", "pip", "wheel", "--no-deps", "-w", str(dist),
+    env = {**_clean_env(None), **(extra_env or {})}
+    r = subprocess.run([sys.executable, "-m", "pip", "wheel", "-v", "--no-deps", "-w", str(dist),
                         str(src)], cwd=str(base), env=env, capture_output=True, text=True,
                        timeout=PIP_TIMEOUT_S, check=False)
     _check(r, "pip wheel")
     wheels = sorted(dist.glob("routerd-*.whl"))
     assert len(wheels) == 1, os.listdir(dist)
-    t_wheel = time.perf_counter() - t0
+    return str(wheels[0]), r
+
+
+def _fresh_venv(base: Any, wheel: str) -> str:
     venv = str(base / "venv")
+    env = _clean_env(None)
     # a truly fresh environment: no system site-packages, nothing of the test's own venv
     r = subprocess.run([sys.executable, "-m", "venv", venv], cwd=str(base), env=env,
                        capture_output=True, text=True, timeout=PIP_TIMEOUT_S, check=False)
     _check(r, "python -m venv")
-    r = subprocess.run([os.path.join(venv, "bin", "python"), "-m", "pip", "install",
-                        str(wheels[0])], cwd=str(base), env=_clean_env(venv),
-                       capture_output=True, text=True, timeout=PIP_TIMEOUT_S, check=False)
+    r = subprocess.run([os.path.join(venv, "bin", "python"), "-m", "pip", "install", wheel],
+                       cwd=str(base), env=_clean_env(venv), capture_output=True, text=True,
+                       timeout=PIP_TIMEOUT_S, check=False)
     _check(r, "pip install WHEEL")
+    return venv
+
+
+@pytest.fixture(scope="module")
+def installed(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Installed]:
+    base = tmp_path_factory.mktemp("install")
+    t0 = time.perf_counter()
+    wheel, _ = _build_wheel(base)
+    t_wheel = time.perf_counter() - t0
+    venv = _fresh_venv(base, wheel)
     work = base / "elsewhere"
     work.mkdir()
     print(f"test_install: wheel built in {t_wheel:.1f} s, venv + install "
           f"{time.perf_counter() - t0 - t_wheel:.1f} s")
-    yield Installed(venv, str(work), str(wheels[0]), _clean_env(venv))
+    yield Installed(venv, str(work), wheel, _clean_env(venv))
+
+
+_STATUS = ("import json; from routerd.core import kernels; print(json.dumps(kernels.status())); "
+           "print(kernels.__file__)")
+
+
+@pytest.mark.slow
+def test_compiled_kernels_are_built_and_active(installed: Installed) -> None:
+    """With a C compiler (this machine has one), the wheel carries routerd.core._kernels, is
+    tagged for this platform, and the installed package runs on the compiled path."""
+    if shutil.which(sysconfig.get_config_var("CC").split()[0] or "cc") is None:
+        pytest.skip("no C compiler here: the wheel is built without the kernels")
+    names = zipfile.ZipFile(installed.wheel).namelist()
+    assert [n for n in names if re.fullmatch(r"routerd/core/_kernels\..*\.so", n)], names
+    assert not installed.wheel.endswith("-none-any.whl"), installed.wheel
+    r = installed.run(installed.exe("python"), "-c", _STATUS)
+    _check(r, "kernels.status()")
+    status = json.loads(r.stdout.splitlines()[0])
+    assert status["path"] == "compiled", status
+    assert os.path.realpath(r.stdout.splitlines()[1]).startswith(
+        os.path.realpath(installed.venv) + os.sep)
+
+
+@pytest.mark.slow
+def test_without_a_compiler_the_install_runs_on_the_reference_path(
+        tmp_path_factory: pytest.TempPathFactory) -> None:
+    """CC=/bin/false: the optional build fails with a warning, the install goes on, and
+    the package runs on the numpy reference path and says so (banner line, status)."""
+    base = tmp_path_factory.mktemp("nocc")
+    wheel, built = _build_wheel(base, {"CC": "/bin/false", "LDSHARED": "/bin/false"})
+    said = built.stdout + built.stderr
+    assert "the compiled kernels (routerd.core._kernels) could not be built" in said
+    assert not [n for n in zipfile.ZipFile(wheel).namelist() if n.endswith(".so")]
+    venv = _fresh_venv(base, wheel)
+    work = base / "elsewhere"
+    work.mkdir()
+    inst = Installed(venv, str(work), wheel, _clean_env(venv))
+    r = inst.run(inst.exe("python"), "-c", _STATUS)
+    _check(r, "kernels.status()")
+    status = json.loads(r.stdout.splitlines()[0])
+    assert status["path"] == "reference" and "without a working C compiler" in status["reason"]
+    out = os.path.join(inst.work, "sim-out")
+    r = inst.run(inst.exe("routerd"), "simulate", "--policy", "qrouting", "--seed", "1",
+                 "--rate", "200", "--duration", "2", "--quiet", "--out", out)
+    _check(r, "routerd simulate on the reference path")
+    assert os.path.exists(os.path.join(out, "summary.json"))
 
 
 @pytest.mark.slow
@@ -226,6 +288,7 @@ def test_serve_starts_on_the_built_in_demo_lab_and_stops(installed: Installed) -
                 if line.startswith("routerd: ready"):
                     break
             assert seen and seen[-1].startswith("routerd: ready"), "".join(seen)
+            assert [ln for ln in seen if ln.strip().startswith("engine kernels: ")], seen
             p.send_signal(signal.SIGTERM)
             so, se = p.communicate(timeout=30)
             assert p.returncode == 0, "".join(seen) + so + se
@@ -312,3 +375,23 @@ def test_no_submodule_is_used_without_being_imported() -> None:
     assert r.returncode == 0, r.stderr
     missing = {n: sorted(subs[n]) for n in r.stdout.split()}
     assert missing == {}, f"import these submodules by name where they are used: {missing}"
+
+
+@pytest.mark.slow
+def test_source_distribution_carries_the_kernel_source(tmp_path: Any) -> None:
+    """A wheel built from the sdist must be able to compile the kernels: the .pyx is in it
+    (MANIFEST.in), the generated C is not (it is rebuilt from the .pyx)."""
+    src = tmp_path / "src"
+    shutil.copytree(ROOT, src, ignore=shutil.ignore_patterns(
+        ".git", ".venv", "__pycache__", "*.pyc", "*.egg-info", "*.so", "_kernels.c", "build",
+        "dist", ".hypothesis", ".pytest_cache", "out"))
+    r = subprocess.run([sys.executable, "setup.py", "-q", "sdist", "-d", str(tmp_path / "sd")],
+                       cwd=str(src), env=_clean_env(None), capture_output=True, text=True,
+                       timeout=PIP_TIMEOUT_S, check=False)
+    _check(r, "setup.py sdist")
+    import tarfile
+    (sd,) = (tmp_path / "sd").glob("routerd-*.tar.gz")
+    with tarfile.open(sd) as tf:
+        names = [n.split("/", 1)[1] for n in tf.getnames() if "/" in n]
+    assert "routerd/core/_kernels.pyx" in names and "setup.py" in names, names
+    assert "routerd/core/_kernels.c" not in names

@@ -20,6 +20,7 @@ import zmq
 from service_harness import ServiceProc, running, service_args
 
 from routerd.agent import client
+from routerd.core import kernels
 from routerd.io import config, journal, wire
 from routerd.service.daemon import load_config, load_topology
 
@@ -263,6 +264,9 @@ def test_bad_input_is_answered_counted_and_good_rows_still_apply(base: str) -> N
 
         h = client.control(sp.endpoints["control"], {"op": "health"})
         assert h["status"] == "ok"
+        # which engine path runs, in health and once in the banner (routerd/core/kernels.py)
+        assert h["kernels"] == kernels.status("auto")
+        assert sum("engine kernels: " in ln for ln in sp.stdout_lines) == 1
         # bounded: reporter "bad" has 4 applied batches, "flood" keeps only its last 50
         assert h["counts"]["dedup_entries"] == 4 + 50
 

@@ -43,7 +43,10 @@ call:
    :mod:`routerd.core.loops`); every node on a cycle falls back, first to its previous
    choice, then to the delay-shortest path over live links, until no cycle remains.  The
    fallback ladder ends in a shortest-path tree, which cannot loop, so this terminates.
-   Each node moved off a looping choice counts as one loop prevented;
+   A (node, destination) counts as one loop prevented when it is newly held off its
+   hysteresis choice (or moved to another fallback), once, not again at every decision
+   that keeps it there; a persistent fallback also does not force the full pass (see
+   ``_decide_keys``);
 4. exploration: each (x, d) gets a share eps in [min_rate, max_rate] (never above the
    global cap) from how settled its estimates are — recent relative TD error, or visit
    counts.  The share is split evenly over *alternate* next hops y whose potential
@@ -51,6 +54,11 @@ call:
    edges lower the potential too, so every edge with a positive weight descends a strict
    order: the weighted forwarding graph is acyclic, exploration included.  The greedy hop
    keeps 1 - eps >= 1 - max_rate; with no alternate it keeps 1.
+
+Two implementations.  The numpy code here is the reference; :mod:`routerd.core.kernels` runs
+``observe`` (plain rule), the full pass of ``decide`` and ``routes_many`` compiled when the
+extension is built (``EngineSettings.kernels``: auto, compiled, reference), with the same
+results to the bit (tests/test_kernels.py).  A change to a rule here needs the same change there.
 
 Estimates.  :meth:`Engine.estimate` is x's min over live slots (the rule the update uses
 for a row without a reported estimate); :meth:`Engine.published_estimate` is the Q-value of
@@ -72,6 +80,7 @@ from typing import Any
 
 import numpy as np
 
+from . import kernels as _kernels
 from . import loops as _loops
 from . import variants as _variants
 from .topology import Topology
@@ -126,9 +135,13 @@ class EngineSettings:
     conf_interval_s: float = 1.0
     conf_initial: float = 0.0
     conf_min_step: float = 0.05
+    # which implementation runs the hot paths (routerd.core.kernels): the same results either way
+    kernels: str = "auto"
 
     def __post_init__(self) -> None:
         bad: list[str] = []
+        if self.kernels not in ("auto", "compiled", "reference"):
+            bad.append(f"kernels {self.kernels!r} is not auto, compiled or reference")
         if self.step_mode not in ("constant", "decaying"):
             bad.append(f"step_mode {self.step_mode!r} is not constant or decaying")
         if not 0 < self.alpha <= 1:
@@ -174,6 +187,7 @@ class EngineSettings:
             explore_max=cfg["engine.explore.max_rate"], explore_cap=cfg["engine.explore.cap"],
             td_ref=cfg["engine.explore.td_ref"], td_smoothing=cfg["engine.explore.td_smoothing"],
             visits_half=cfg["engine.explore.visits_half"],
+            kernels=cfg["engine.kernels"],
             **_variants.from_config(cfg),
         )
 
@@ -243,7 +257,7 @@ class Decision:
 
     changed_nodes: frozenset[int]   # nodes whose published table (next hops or weights) changed
     route_changes: int              # (node, destination) pairs whose greedy hop changed
-    loops_prevented: int            # nodes moved off a looping choice in this call
+    loops_prevented: int            # keys (node, destination) newly held off a looping choice
 
 
 @dataclass(frozen=True, slots=True)
@@ -274,6 +288,12 @@ class Engine:
         self._present = self._slots >= 0
         self._slot_of = topology.slot_of
         self._slot_flat = np.ascontiguousarray(topology.slot_of).reshape(-1)
+        self._slot_of_i64 = np.ascontiguousarray(topology.slot_of, dtype=np.int64)
+        # slots the compiled decide scans per node: the present ones when they are a prefix
+        # of the row (as topology builds them), else all (absent slots are never live)
+        deg = self._present.sum(axis=1).astype(np.int64)
+        prefix = bool((self._present == (np.arange(k)[None, :] < deg[:, None])).all())
+        self._slot_deg = deg if prefix else np.full(n, k, dtype=np.int64)
         self._link_delay = np.where(self._present, topology.delay_s[np.maximum(topology.slot_link, 0)], 0.0)
         self.live = self._present.copy()
         self._static_dist = topology.shortest_delays()
@@ -289,6 +309,11 @@ class Engine:
         self._kdirty = np.zeros(n * n, dtype=bool)
         self._kcols = np.zeros(n, dtype=bool)
         self._forced = np.ones((n, n), dtype=bool)
+        # the hysteresis choice behind each published one (differs where _forced), and per
+        # destination whether its fallbacks are exactly reproduced by the next full pass
+        self._hyst = np.full((n, n), -1, dtype=np.int64)
+        self._stable = np.zeros(n, dtype=bool)
+        self._kern = _kernels.select(self.settings.kernels)   # None: the numpy reference
         self._alphas: np.ndarray | None = None     # step sizes by count (_steps)
         self._alphas_list: list[float] = []
         self._alpha_top = 0
@@ -304,6 +329,7 @@ class Engine:
         self._route_changes = 0
         self._loops_prevented = 0
         self._decisions = 0
+        self._full_pass_destinations = 0   # destinations the full pass took (not state)
         self._variant = _variants.make(self)   # None: the plain core path
         self._qdec = self.Q                     # the values decide() compares
         self.decide(0.0)
@@ -330,6 +356,7 @@ class Engine:
         """Adopt new tunables (a reload), keeping all learned state."""
         self.settings = settings
         self._alphas = None
+        self._kern = _kernels.select(settings.kernels)
         q = np.where(self._present[:, None, :], np.minimum(self.Q, settings.ceiling_s), np.inf)
         # dead links hold exactly the (new) ceiling: the update reads mins without a live mask
         q[np.broadcast_to((self._present & ~self.live)[:, None, :], q.shape)] = settings.ceiling_s
@@ -408,6 +435,10 @@ class Engine:
             self.now = float(now)
         if self._variant is not None:  # rows one by one, the variant's rule (routerd.core.variants)
             return self._variant.observe(self, batch, confidence, ObserveResult, REJECT_REASONS)
+        if self._kern is not None:  # the compiled loop: checks and applies in order
+            res = _kernels.observe(self, batch, ObserveResult, REJECT_REASONS, SCALAR_BATCH)
+            if res is not None:
+                return res
         m = len(batch)
         if m < SCALAR_BATCH:
             return self._observe_rows(batch.src.tolist(), batch.via.tolist(), batch.dst.tolist(),
@@ -830,6 +861,8 @@ class Engine:
         arrays instead of one :meth:`weights` call per destination; the same tables, the
         same floats (greedy 1 - eps, each alternate eps / count, in slot order)."""
         rows = np.arange(self.n) if xs is None else np.asarray(xs, dtype=np.int64).reshape(-1)
+        if self._kern is not None:
+            return _kernels.routes(self, rows)
         g = self.greedy[rows]
         sl = self._slots[rows]
         nh = np.take_along_axis(sl, np.maximum(g, 0), axis=1)
@@ -889,6 +922,18 @@ class Engine:
         self._decisions += 1
         if ds.size == 0:
             return Decision(extra, 0, 0)
+        self._full_pass_destinations += int(ds.size)
+        if self._kern is not None and _kernels.decide_ok(self):
+            nodes, changes, prevented = _kernels.decide_full(self, ds)
+        else:
+            nodes, changes, prevented = self._decide_full(ds)
+        self._route_changes += changes
+        self._loops_prevented += prevented
+        return Decision(nodes | extra, changes, prevented)
+
+    def _decide_full(self, ds: np.ndarray) -> tuple[frozenset[int], int, int]:
+        """The full pass over destinations ``ds`` (the numpy reference): writes the
+        tables and returns (changed nodes, route changes, loops newly prevented)."""
         s = self.settings
         n, K = self.n, self.k
         m = ds.size
@@ -909,9 +954,9 @@ class Engine:
         nh = np.where(choice >= 0, slots_f[base + np.maximum(choice, 0)], -1).T.copy()
         prev_nh = np.where(inc >= 0, slots_f[base + np.maximum(inc, 0)], -1).T
         level = np.zeros(nh.shape, dtype=np.int8)
-        prevented = 0
+        c1 = np.zeros(nh.shape, dtype=bool)     # the loops of the hysteresis graph itself
         rows = np.arange(m)                     # tables that may still hold a loop
-        for _ in range(2 * n + 3):
+        for it in range(2 * n + 3):
             cyc_r = _loops.cycle_mask(nh[rows])
             hit = cyc_r.any(axis=1)
             if not hit.any():
@@ -919,7 +964,8 @@ class Engine:
             rows, cyc_r = rows[hit], cyc_r[hit]
             cyc = np.zeros(nh.shape, dtype=bool)
             cyc[rows] = cyc_r
-            prevented += int(cyc_r.sum())
+            if it == 0:
+                c1 = cyc
             up1 = cyc & (level == 0)
             up2 = cyc & (level >= 1)
             if up1.any():
@@ -973,14 +1019,21 @@ class Engine:
         changed_w = changed_g | (np.abs(self.eps[:, sel] - eps) > 1e-9)
         for c in range(K):
             changed_w |= old_alt[:, :, c] != alt[:, :, c]
-        self._route_changes += int(changed_g.sum())
-        self._loops_prevented += prevented
+        # a loop prevented counts once, when a key is first held on a fallback (or moved to
+        # another one), not again at every decision that keeps it there
+        forced = choice != hyst
+        prevented = int((forced & ~(self._forced[:, sel] & ~changed_g)).sum())
         self.greedy[:, sel] = choice
         self.alt[:, sel, :] = alt
         self.eps[:, sel] = eps
-        self._forced[:, sel] = choice != hyst
+        self._forced[:, sel] = forced
+        self._hyst[:, sel] = hyst
+        # the next full pass, with these choices as incumbents and the same hysteresis
+        # graph, lands on these choices again when every key held off its hysteresis
+        # choice was on a loop of the hysteresis graph itself (see _decide_keys)
+        self._stable[ds] = ~(forced & ~c1.T).any(axis=0)
         nodes = frozenset(np.flatnonzero(changed_w.any(axis=1)).tolist())
-        return Decision(nodes | extra, int(changed_g.sum()), prevented)
+        return nodes, int(changed_g.sum()), prevented
 
     def _decide_keys(self) -> frozenset[int]:
         """The key-level lane of :meth:`decide`, exact: the same tables as the full pass.
@@ -990,11 +1043,17 @@ class Engine:
         can get another hysteresis choice: every other key's Q row, liveness, incumbent
         and margin are those its published choice was computed from, and that choice
         is a fixed point of the hysteresis rule.  Where one of those keys changes its
-        choice, d is left to the full pass (loop check, depths, candidates).  Where none
-        does, d's greedy graph is the published, loop-free one, so loop prevention does
-        nothing and the candidates stay; only the written keys' exploration shares can
-        move (their TD error, visits and Q-values changed), computed here with the full
-        pass's formula.  Returns the nodes whose weights changed.
+        hysteresis choice (for a fallback key: from the one the last full pass held it
+        off, ``_hyst``), d is left to the full pass (loop check, depths, candidates).
+        Where none does, d's hysteresis graph is the one the last full pass saw.  If that
+        pass moved only nodes on the graph's own loops (``_stable[d]``), a full pass now
+        would move the same nodes to their previous choices, which are the published
+        ones, and find no loop after: the same tables, no loop newly prevented.  So a
+        persistent fallback does not force the full pass (it did on every call before,
+        and counted the same loop every time).  Otherwise d goes to the full pass.  With
+        the graph kept, the candidates stay; only the written keys' exploration shares
+        can move (their TD error, visits and Q-values changed), computed here with the
+        full pass's formula.  Returns the nodes whose weights changed.
         """
         n, K = self.n, self.k
         s = self.settings
@@ -1019,7 +1078,9 @@ class Engine:
         ch = np.where(keep, inc, best)
         ch = np.where(np.isfinite(bestv), ch, -1)
         ch[xk == dk] = -1
-        moved = ch != inc
+        fw = _flat(self._forced).take(wk)
+        moved = ch != np.where(fw, _flat(self._hyst).take(wk), inc)
+        moved |= fw & ~self._stable.take(dk)
         full = np.zeros(n, dtype=bool)
         full[dk[moved]] = True
         self._dirty |= full
@@ -1116,6 +1177,7 @@ class Engine:
                                for k in self._ARRAYS}
         out.update({k: getattr(self, k) for k in self._SCALARS})
         out["_dirty"] = self._dirty | self._kcols   # the key lane's destinations are due too
+        out["_hyst"] = self._hyst.copy()
         out["rejected"] = dict(self._rejected)
         out["topology"] = self.topo.digest
         if self._variant is not None:
@@ -1139,7 +1201,19 @@ class Engine:
             setattr(eng, k, type(getattr(eng, k))(state[k]))
         eng._rejected = {r: int(state["rejected"].get(r, 0)) for r in REJECT_REASONS}
         eng._live_spt = None
-        eng._forced[:] = True      # not saved: every key of a due destination is re-checked
+        # the hysteresis choices behind the published ones (older states lack them: taken
+        # as the published ones); which destinations are stable is not saved, so any
+        # fallback of a due destination sends it to the full pass once
+        if "_hyst" in state:
+            h = np.asarray(state["_hyst"])
+            if h.shape != eng.greedy.shape:
+                raise ValueError(f"state array _hyst has shape {h.shape}, "
+                                 f"expected {eng.greedy.shape}")
+            eng._hyst = np.array(h, dtype=np.int64, order="C", copy=True)
+        else:
+            eng._hyst = eng.greedy.copy()
+        eng._forced = eng.greedy != eng._hyst
+        eng._stable[:] = False
         if eng._variant is not None and "variant" in state:
             eng._variant.restore(state["variant"])
         # saved under another ceiling: restore the invariants the update relies on

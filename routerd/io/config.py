@@ -61,6 +61,8 @@ SCHEMA: dict[str, Field] = {
     "engine.explore.td_ref": F(float, 0.2, "relative TD error (|delta| / estimate) at which the share reaches max_rate", lo=0, lo_open=True, tunable=True),
     "engine.explore.td_smoothing": F(float, 0.1, "weight of a new |TD error| in its moving average", lo=0, hi=1, lo_open=True, tunable=True),
     "engine.explore.visits_half": F(float, 50.0, "visits at which the share is halfway down to min_rate", lo=0, lo_open=True, tunable=True),
+    # -- engine: implementation (routerd/core/kernels.py) -----------------------------------
+    "engine.kernels": F(str, "auto", "hot paths: compiled kernels when built (auto), insist on them (compiled), or the numpy reference; the same results either way", choices=("auto", "compiled", "reference")),
     # -- engine: published refinements (routerd/core/variants.py) ---------------------------
     "engine.variant": F(str, "plain", "learning rule: plain Q-routing, full_echo (all neighbours' estimates), predictive (recovery-rate prediction), dual (backward rows carried by packets), confidence (confidence-weighted steps)", choices=("plain", "full_echo", "predictive", "dual", "confidence")),
     "engine.full_echo.damping": F(float, 0.5, "full_echo: step multiplier of the echo updates of the hops not taken (1 = the published rule)", lo=0, hi=1, lo_open=True, tunable=True),

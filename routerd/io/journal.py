@@ -97,6 +97,7 @@ from typing import Any
 import msgpack
 import numpy as np
 
+from routerd.core import kernels as _kernels
 from routerd.core.engine import Decision, Engine, EngineSettings, HopBatch, ObserveResult
 from .fsmode import open_private, private_dir
 from routerd.core.topology import Topology
@@ -1250,7 +1251,12 @@ def settings_from_dict(d: Mapping[str, Any]) -> EngineSettings:
     unknown = set(d) - known
     if unknown:
         raise ValueError(f"unknown engine settings in the journal: {sorted(unknown)}")
-    return EngineSettings(**dict(d))
+    d = dict(d)
+    if d.get("kernels") == "compiled" and not _kernels.available():
+        # a journal written where the kernels were built, read where they are not: both
+        # paths give the same results, so the replay runs on the reference path
+        d["kernels"] = "auto"
+    return EngineSettings(**d)
 
 
 def accepted_part(hops: HopBatch, rejected: Sequence[tuple[int, str]]) -> HopBatch:

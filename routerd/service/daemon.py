@@ -97,6 +97,7 @@ from routerd import __version__
 from routerd.io import wire
 from routerd.io import config as _config
 from routerd.core import guards as _guards
+from routerd.core import kernels as _kernels
 from routerd.io import journal as _journal
 from routerd.io.logs import EventLog
 from . import listeners as _listeners
@@ -240,7 +241,7 @@ def choose_inputs(args: argparse.Namespace, docs_dir: str | None = None,
 
 def run(args: argparse.Namespace) -> int:
     if getattr(args, "shards", None) is not None or getattr(args, "shard", None) is not None:
-        from . import shard as _shard  # the front or one worker (routerd/shard.py)
+        from . import shard as _shard  # the front or one worker (routerd/service/shard.py)
 
         return _shard.run(args)
     try:
@@ -412,6 +413,8 @@ class Service:
         from routerd.io.fsmode import private_dir
 
         cfg = self.cfg
+        if cfg["engine.kernels"] == "compiled" and not _kernels.available():
+            raise StartError(_kernels.describe("compiled"))
         try:
             _metrics.parse_address(cfg["service.metrics"])   # before anything is written
         except ValueError as e:
@@ -672,6 +675,7 @@ class Service:
              f"({'; '.join(_security.describe(self.allow))})" if self.allow is not None
              else "  security off: any local peer may report (give --server-key and --allow)"),
             f"  metrics  {self.endpoints['metrics']}",
+            f"  {_kernels.describe(self.cfg['engine.kernels'])}",
             f"  state    {os.path.abspath(self.cfg['service.state_dir'])}   (journal fsync: "
             f"{self.cfg['service.journal.fsync']}; "
             + (f"restored snapshot at record {self.restored['snapshot_record']}, "
@@ -687,6 +691,7 @@ class Service:
         except (OSError, ValueError):
             pass
         self.log.info("started", topology=t.name, nodes=t.n, links=t.n_links, epoch=self.epoch,
+                      kernels=_kernels.status(self.cfg["engine.kernels"])["path"],
                       **{k: v for k, v in self.endpoints.items()})
 
     # -- journal records (bodies are journal.py's; the service only fills them) ---------
@@ -1166,6 +1171,7 @@ class Service:
             "uptime_s": self.uptime_s(),
             "epoch": self.epoch,
             "version": __version__,
+            "kernels": _kernels.status(self.cfg["engine.kernels"]),
             "topology": {"name": self.topo.name, "id": self.topo.digest, "nodes": self.topo.n,
                          "links": self.topo.n_links},
             "counts": {

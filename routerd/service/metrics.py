@@ -233,7 +233,7 @@ class RouterdCollector(Collector):
 
         yield _counter("routerd_route_changes", "(node, destination) pairs whose greedy next hop changed",
                        st.route_changes)
-        yield _counter("routerd_loops_prevented", "Nodes moved off a choice that would have formed a forwarding loop",
+        yield _counter("routerd_loops_prevented", "(node, destination) pairs newly held off a choice that would have formed a forwarding loop (once per change)",
                        st.loops_prevented)
         yield _counter("routerd_decisions", "Table recomputations (engine decide calls)", st.decisions)
         yield _counter("routerd_engine_updates", "Q-value updates applied by the engine", st.updates)

@@ -82,7 +82,7 @@ ENGINE_KEYS: dict[str, str] = {
     "engine.explore.basis": "explore_basis", "engine.explore.min_rate": "explore_min",
     "engine.explore.max_rate": "explore_max", "engine.explore.cap": "explore_cap",
     "engine.explore.td_ref": "td_ref", "engine.explore.td_smoothing": "td_smoothing",
-    "engine.explore.visits_half": "visits_half",
+    "engine.explore.visits_half": "visits_half", "engine.kernels": "kernels",
     **{key: f for f, (key, _) in _variants.FIELDS.items()},
 }
 _KEY_OF = {f: k for k, f in ENGINE_KEYS.items()}
