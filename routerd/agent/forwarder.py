@@ -393,6 +393,7 @@ class Agent:
 
         now = self.clock.monotonic()
         ctx: zmq.Context[Any] = zmq.Context.instance()
+        s: socket.socket | None = None    # the socket being set up (closed if that fails)
         try:
             for e in self.ends:
                 s = socket.socket(socket.AF_INET6 if ":" in e.local[0] else socket.AF_INET, socket.SOCK_DGRAM)
@@ -404,11 +405,14 @@ class Agent:
                 ln = _Link(e, s, delay, now, self.detect_s)
                 self.links[e.neighbour] = ln
                 self.by_fd[s.fileno()] = ln
-            ls = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
-            ls.setblocking(False)
-            ls.bind(self.local_addr)
-            self.local_sock = ls
+                s = None
+            s = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+            s.setblocking(False)
+            s.bind(self.local_addr)
+            self.local_sock, s = s, None
         except OSError as e:
+            if s is not None:       # not yet owned by a link: close() would not see it
+                s.close()
             self.close()
             raise InputError(f"agent {self.name}: cannot bind its sockets: {e}") from None
         self._recompute_fallback()
