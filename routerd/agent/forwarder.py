@@ -425,7 +425,7 @@ class Agent:
         self.poller = zmq.Poller()
         for ln in self.links.values():
             self.poller.register(ln.sock.fileno(), zmq.POLLIN)
-        self.poller.register(ls.fileno(), zmq.POLLIN)
+        self.poller.register(self.local_sock.fileno(), zmq.POLLIN)
         self.poller.register(self.sub._sock, zmq.POLLIN)
         self.poller.register(self._stop_r, zmq.POLLIN)
 
