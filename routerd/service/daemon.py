@@ -170,9 +170,6 @@ def configure(p: argparse.ArgumentParser) -> None:
                    "and the nodes it may report for; needs --server-key")
     p.add_argument("--control-readonly", metavar="EP", help="a second control endpoint without "
                    "CURVE for read-only ops (tables, estimates, health, nodes); default: off")
-    from . import shard as _shard
-
-    _shard.configure(p)   # --shards N, --shard K/N, --upstream, --shard-listen
 
 
 def load_config(args: argparse.Namespace, base: _config.Config | None = None) -> _config.Config:
@@ -239,10 +236,8 @@ def choose_inputs(args: argparse.Namespace, docs_dir: str | None = None,
 
 
 def run(args: argparse.Namespace) -> int:
-    if getattr(args, "shards", None) is not None or getattr(args, "shard", None) is not None:
-        from . import shard as _shard  # the front or one worker (routerd/shard.py)
-
-        return _shard.run(args)
+    """One process (``routerd serve`` without ``--shards``/``--shard``: those go to
+    :func:`routerd.service.shard.run`, chosen by :mod:`routerd.service.serve`)."""
     try:
         chosen = choose_inputs(args)
     except InputError as e:

@@ -21,7 +21,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "validate": ("routerd.tools.validate", "check config, topology or scenario files and report every error"),
     "simulate": ("routerd.sim.commands_simulate", "run the packet-level simulator on a topology with one policy"),
     "sweep": ("routerd.sim.commands_sweep", "simulate rates x policies x seeds and draw delivery time against load"),
-    "serve": ("routerd.service.daemon", "run the routing policy service (observations in, tables out, metrics)"),
+    "serve": ("routerd.service.serve", "run the routing policy service (observations in, tables out, metrics)"),
     "keys": ("routerd.io.security", "write a CURVE key pair (NAME.key, NAME.key_secret) for the service or a reporter"),
     "demo": ("routerd.tools.demo", "see routerd work in under a minute: a live service driven by the simulator, compared with static routes"),
     "replay": ("routerd.tools.replay", "re-run a service journal offline: reproduce its tables or compare other settings"),
