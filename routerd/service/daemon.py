@@ -99,6 +99,7 @@ from routerd.io import config as _config
 from routerd.core import guards as _guards
 from routerd.io import journal as _journal
 from routerd.io.logs import EventLog
+from routerd.io.metricsaddr import page_url
 from . import listeners as _listeners
 from routerd.io import security as _security
 from routerd.io import statedir as _statedir
@@ -621,9 +622,7 @@ class Service:
             self.metrics_server, self.metrics_port, _ = _metrics.serve(addr, self)
         except OSError as e:
             raise StartError(f"metrics address {addr}: {e.strerror or e}") from None
-        host = _metrics.parse_address(addr)[0]
-        shown = f"[{host}]" if ":" in host else host
-        self.endpoints["metrics"] = f"http://{shown}:{self.metrics_port}/metrics"
+        self.endpoints["metrics"] = page_url(_metrics.parse_address(addr)[0], self.metrics_port)
 
     def _install_signals(self) -> None:
         if threading.current_thread() is not threading.main_thread():

@@ -103,6 +103,7 @@ from routerd.io import statedir as _statedir
 from routerd.io import wire
 from routerd.io.childproc import die_with_parent, ready_line
 from routerd.io.clock import SYSTEM, Clock
+from routerd.io.metricsaddr import page_url, parse_address
 # the map, the shard dirs and the table merge live below this module (``routerd replay``
 # reads sharded state dirs with them too); re-exported here for the service's callers
 from routerd.io.shards import (  # noqa: F401 - re-exported
@@ -448,13 +449,12 @@ class Front:
     def start(self) -> None:
         import zmq
 
-        from . import metrics as _metrics
         from routerd.io.fsmode import private_dir
         from .daemon import OVERSIZE_ANSWER_SLACK, StartError, bind_endpoint
 
         cfg = self.cfg
         try:
-            _metrics.parse_address(cfg["service.metrics"])
+            parse_address(cfg["service.metrics"])
             private_dir(self.state_root)
             # the root holds the front's ipc files and the shards' dirs: one front per root
             self.state_lock = _statedir.StateLock(self.state_root, "routerd serve --shards "
@@ -570,18 +570,16 @@ class Front:
         from prometheus_client import start_http_server
         from prometheus_client.registry import CollectorRegistry
 
-        from . import metrics as _metrics
         from .daemon import StartError
 
-        host, port = _metrics.parse_address(self.cfg["service.metrics"])
+        host, port = parse_address(self.cfg["service.metrics"])
         reg = CollectorRegistry(auto_describe=False)
         reg.register(_FrontCollector(self))
         try:
             self.metrics_server, _t = start_http_server(port, addr=host, registry=reg)
         except OSError as e:
             raise StartError(f"metrics address {self.cfg['service.metrics']}: {e.strerror or e}") from None
-        shown = f"[{host}]" if ":" in host else host
-        self.endpoints["metrics"] = f"http://{shown}:{self.metrics_server.server_address[1]}/metrics"
+        self.endpoints["metrics"] = page_url(host, self.metrics_server.server_address[1])
 
     def _install_signals(self) -> None:
         if threading.current_thread() is not threading.main_thread():
