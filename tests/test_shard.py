@@ -403,6 +403,7 @@ def test_front_reads_time_from_its_clock(tmp_path: Any) -> None:
     f._drain_parts(0.5)
     assert clk.monotonic() - t0 >= 0.5
     # the readiness line is childproc's, with the clock's epoch
-    f.endpoints = {k: f"ipc:///tmp/x-{k}" for k in ("ingest", "publish", "control", "metrics", "shards")}
+    f.endpoints = {k: f"ipc:///tmp/x-{k}"
+                   for k in ("ingest", "publish", "control", "metrics", "shards")}
     f._banner()
     assert parse_ready(out.getvalue().splitlines()[-1]) == (os.getpid(), epoch0)

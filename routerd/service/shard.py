@@ -146,7 +146,7 @@ def parse_shard(spec: str) -> tuple[int, int]:
 
 # ---- command line -------------------------------------------------------------------------
 def configure(p: argparse.ArgumentParser) -> None:
-    """The sharding flags of ``routerd serve`` (added by :func:`routerd.service.serve.configure`)."""
+    """The sharding flags of ``routerd serve`` (:func:`routerd.service.serve.configure`)."""
     g = p.add_argument_group("sharding (split the destinations over several workers)")
     g.add_argument("--shards", metavar="N", type=int, help="run a front and N workers: each "
                    "worker owns the destinations whose name hashes to it (or shard.map); the "
