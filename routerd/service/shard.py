@@ -1,13 +1,17 @@
-"""Scale-out by destination: the destination map, the shard worker, and the front.
+"""Scale-out by destination: the shard worker and the front.
 
-Owns: which shard owns which destination (:class:`ShardMap`: a stable hash of the node
-name, or a configured map), the worker (:class:`ShardWorker`, a :class:`Service` that
-publishes and answers only for its own destinations and announces itself upstream), the
-front (:class:`Front`: the one ingest, tables, control and metrics endpoint in front of N
-workers), the supervisor that runs N local workers (``routerd serve --shards N``), the
-merge of per-shard tables (live and from the shards' journals), and a reporter that splits
-by destination itself (:class:`ShardReporter`).  Must not import: the simulator.  Every
-message shape is :mod:`routerd.io.wire`'s; every journal access is :mod:`routerd.io.journal`'s.
+Owns: the worker (:class:`ShardWorker`, a :class:`Service` that publishes and answers only
+for its own destinations and announces itself upstream), the front (:class:`Front`: the
+one ingest, tables, control and metrics endpoint in front of N workers), the supervisor
+that runs N local workers (``routerd serve --shards N``), the live merge of the workers'
+tables, and a reporter that splits by destination itself (:class:`ShardReporter`).  Which
+shard owns which destination (:class:`ShardMap`), the ``shard-K-of-N`` layout and the
+merge of tables replayed from the shards' journals are :mod:`routerd.io.shards`'s (``routerd
+replay`` uses them too); this module re-exports them.  It imports the daemon (the worker
+is a Service); the daemon never imports it (:mod:`routerd.service.serve` dispatches).
+Must not import: the simulator, ``routerd.tools``.  Every message shape is
+:mod:`routerd.io.wire`'s; every journal access is :mod:`routerd.io.journal`'s; time is
+read through a :mod:`routerd.io.clock` clock.
 
 Theory of operation
 -------------------

@@ -3,7 +3,9 @@
 Owns: the command's options and outputs (``tables.json``, ``replay.json``, the what-if
 comparison's CSV/JSON/PNG and printed table, ``--export-link-trace``), choosing where a
 replay starts (the journal's first record, or the oldest snapshot it continues from),
-and setting variants (recorded settings with overrides).  Records are applied with
+setting variants (recorded settings with overrides), and the merged replay of a sharded
+service's state dir (:func:`replay_sharded_command`, on
+:func:`routerd.io.shards.replay_shards`).  Records are applied with
 :func:`routerd.io.journal.replay_into` only — the function the service's start-up
 recovery uses — so the same records give the same tables.
 Must not import: zmq, prometheus, the simulator; matplotlib only inside the plot step.
