@@ -5,7 +5,8 @@ adapter), the ``ENDPOINTS`` syntax of ``--policy service:ENDPOINTS``
 (:func:`parse_endpoints`), the service subprocess the policy starts when no endpoints
 are named (:class:`ServiceProcess`), and the pacing of virtual time against the wall
 clock.  Must not import: the engine (the service holds the only one), matplotlib,
-prometheus.
+prometheus, zmq (it talks to the service through :mod:`routerd.agent.client` only:
+``Reporter``, ``TableSubscriber``, ``ControlPipe``).
 
 Theory of operation
 -------------------
@@ -32,7 +33,7 @@ adapter's decision cadence) the policy's ``tick(now)``:
 2. sends the rows due by ``now`` as one batch through :class:`routerd.agent.client.Reporter`
    and waits for the acknowledgement (an ack means "journaled and applied");
 3. refreshes the estimates of up to ``sim.service.estimate_nodes`` nodes (round
-   robin; 0 = all) with pipelined control requests;
+   robin; 0 = all) with pipelined control requests (:class:`routerd.agent.client.ControlPipe`);
 4. takes every table received through :class:`routerd.agent.client.TableSubscriber` into
    the forwarding table: single next hops go into the simulator's fast-path table,
    splits (exploration weights included) are sampled with the run's generator exactly
@@ -314,55 +315,6 @@ def _stop_all() -> None:  # a safety net: every normal path stops its service it
         sp.stop(timeout_s=5.0)
 
 
-# ---- control requests, pipelined ----------------------------------------------------------
-class _Control:
-    """Control requests over one DEALER socket: several in flight, answered in order by
-    the service's REP socket (one per loop turn), without a round trip each."""
-
-    def __init__(self, ctx: Any, endpoint: str, timeout_s: float, curve: Any = None):
-        self.ctx = ctx
-        self.endpoint = endpoint
-        self.timeout_s = timeout_s
-        self.curve = curve          # routerd.io.security.ClientKeys or None
-        self.sock: Any = None
-        self._open()
-
-    def _open(self) -> None:
-        import zmq
-
-        self.sock = self.ctx.socket(zmq.DEALER)
-        self.sock.linger = 0
-        if self.curve is not None:
-            self.curve.apply(self.sock)
-        self.sock.connect(self.endpoint)
-
-    def ask(self, reqs: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]]:
-        import zmq
-
-        from routerd.io import wire
-
-        for r in reqs:
-            self.sock.send_multipart([b"", wire.encode_request(r)])
-        out: list[dict[str, Any]] = []
-        deadline = time.monotonic() + self.timeout_s
-        while len(out) < len(reqs):
-            left = deadline - time.monotonic()
-            if left <= 0 or not self.sock.poll(max(1, int(left * 1000)), zmq.POLLIN):
-                # replies still owed would arrive out of step: start over on a new socket
-                self.sock.close(0)
-                self._open()
-                raise TimeoutError(f"no reply from {self.endpoint} to "
-                                   f"{len(reqs) - len(out)} of {len(reqs)} control requests "
-                                   f"within {self.timeout_s:g} s")
-            out.append(wire.decode_reply(self.sock.recv_multipart()[-1]))
-        return out
-
-    def close(self) -> None:
-        if self.sock is not None:
-            self.sock.close(0)
-            self.sock = None
-
-
 # ---- the policy ---------------------------------------------------------------------------
 class ServicePolicy(Policy):
     """Forward by a live service's tables; report every hop to it.  See the module docstring.
@@ -385,10 +337,9 @@ class ServicePolicy(Policy):
         self.process = process
         self.on_tick = on_tick
         self._own_process: ServiceProcess | None = None
-        self._ctx: Any = None
         self.reporter: Any = None
         self.subscriber: Any = None
-        self._ctl: _Control | None = None
+        self._ctl: Any = None            # routerd.agent.client.ControlPipe
         self.final_tables: dict[str, dict[str, list[list[Any]]]] | None = None
         self.final_health: dict[str, Any] | None = None
         self.close_problem: str | None = None
@@ -410,10 +361,8 @@ class ServicePolicy(Policy):
     # -- set-up -------------------------------------------------------------------------
     def attach(self, topology: _topology.Topology, rng: np.random.Generator, settings: Any) -> None:
         super().attach(topology, rng, settings)
-        import zmq
-
+        from routerd.agent.client import ControlPipe, Reporter, TableSubscriber
         from routerd.io import security
-        from routerd.agent.client import Reporter, TableSubscriber
 
         cfg = settings if settings is not None else _config.load()
         self.cfg = cfg
@@ -446,8 +395,7 @@ class ServicePolicy(Policy):
                 self.process = self._own_process
             eps = self.process.endpoints_spec()
         self.endpoints = eps
-        self._ctx = zmq.Context()
-        self._ctl = _Control(self._ctx, eps.control, self.timeout_s, curve)
+        self._ctl = ControlPipe(eps.control, self.timeout_s, curve=curve)
         where = f"--policy service:{eps.spec()}"
         try:
             nodes = self._ask([{"op": "nodes"}])[0]
@@ -463,13 +411,12 @@ class ServicePolicy(Policy):
                                      f"is the topology id the service serves; this run simulates "
                                      f"{topology.name!r} (id {topology.digest}): start the service "
                                      f"with the same topology"))
-        self.subscriber = TableSubscriber(eps.publish, context=self._ctx, curve=curve)
+        self.subscriber = TableSubscriber(eps.publish, curve=curve)
         self.reporter = Reporter(eps.ingest, cfg["sim.service.reporter"]
                                  or f"sim-{os.getpid()}-{id(self) & 0xFFFF:x}",
                                  topology_nodes=topology, batch_rows=1 << 20, max_pending=4,
                                  # three tries in all within sim.service.timeout_s
-                                 timeout_s=self.timeout_s / 3, retries=2, context=self._ctx,
-                                 curve=curve)
+                                 timeout_s=self.timeout_s / 3, retries=2, curve=curve)
         # propagation delay of each link: when the row is due back at the sender
         self._prop: list[dict[int, float]] = [{} for _ in range(n)]
         for k, (a, b) in enumerate(zip(topology.src.tolist(), topology.dst.tolist())):
@@ -750,13 +697,12 @@ class ServicePolicy(Policy):
         self.closed = True
         dead = self._own_process is not None and not self._own_process.running
         if self._ctl is not None and self.final_tables is None and not dead:
-            import zmq
-
+            from routerd.agent.client import TransportError
             from routerd.io import wire
 
             try:
                 self.final_tables = self._ctl.ask([{"op": "tables"}])[0].get("tables")
-            except (TimeoutError, wire.BadReply, zmq.ZMQError) as e:
+            except (TimeoutError, wire.BadReply, TransportError) as e:
                 self.close_problem = f"final tables not read: {e}"   # the service is gone
         if self.reporter is not None:
             self.reporter.close(flush=False)   # every tick waited for its acks already
@@ -764,9 +710,6 @@ class ServicePolicy(Policy):
             self.subscriber.close()
         if self._ctl is not None:
             self._ctl.close()
-        if self._ctx is not None:
-            self._ctx.term()
-            self._ctx = None
         if self._own_process is not None:
             self._own_process.stop()
 

@@ -397,6 +397,24 @@ def test_control_nodes_and_timeout(ctx: zmq.Context, topo: topology.Topology,
     assert time.monotonic() - t0 < 3
 
 
+def test_control_pipe_answers_in_order_and_recovers_after_a_timeout(
+        ctx: zmq.Context, topo: topology.Topology, eps: tuple[str, str, str], fake: Any) -> None:
+    nodes = {"v": 1, "nodes": list(topo.nodes), "topology": topo.digest}
+    with client.ControlPipe(eps[1], 0.3, context=ctx) as pipe:
+        # nobody bound yet: the request is owed; the pipe drops it with its socket
+        with pytest.raises(TimeoutError, match=r"no reply from .* to 1 of 1 control requests"):
+            pipe.ask([{"op": "nodes"}])
+        fake()
+        pipe.timeout_s = 2.0
+        reps = pipe.ask([{"op": "nodes"}, {"op": "fly"}, {"op": "nodes"}])   # three in flight
+        assert reps[0] == nodes and reps[2] == nodes
+        assert reps[1]["error"].startswith("unknown_op")
+        assert pipe.ask([]) == []
+    pipe.close()                                                             # idempotent
+    with pytest.raises(client.TransportError, match="is closed"):
+        pipe.ask([{"op": "nodes"}])
+
+
 # ---- tables -----------------------------------------------------------------------------------
 def test_subscriber_keeps_latest_and_counts_gaps(ctx: zmq.Context, eps: tuple[str, str, str]) -> None:
     pub = ctx.socket(zmq.PUB)

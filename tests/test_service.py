@@ -451,7 +451,7 @@ def test_flags_override_the_config_and_topology_paths_are_relative_to_it(tmp_pat
 
 
 def test_serve_flags_are_exactly_the_documented_ones() -> None:
-    from routerd.service.daemon import configure
+    from routerd.service.serve import configure   # the command: the service's flags + sharding
 
     p = argparse.ArgumentParser()
     configure(p)
@@ -460,7 +460,7 @@ def test_serve_flags_are_exactly_the_documented_ones() -> None:
                      "--metrics", "--state-dir",
                      # issue 7: CURVE and the read-only control endpoint
                      "--server-key", "--allow", "--control-readonly",
-                     # sharding (routerd/service/shard.py adds them to serve)
+                     # sharding (routerd/service/shard.py's; serve.py adds them)
                      "--shards", "--shard", "--upstream", "--shard-listen", "--external-workers"}
     # with neither a config nor flags: the built-in demo lab on loopback
     c = load_config(p.parse_args([]))

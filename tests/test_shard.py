@@ -365,3 +365,45 @@ def test_combine_acks_maps_piece_rows_back() -> None:
     rej, acc = shard.combine_acks([[2, "unknown_node"]], 2, pieces, acks)
     assert rej == [[1, "bad_latency"], [2, "unknown_node"], [3, "link_down"], [7, "not_neighbour"]]
     assert acc == 1 + 2 + 1       # hop rows 0, 4, 5 and link row 6
+
+
+def test_front_reads_time_from_its_clock(tmp_path: Any) -> None:
+    """The front's epoch, uptime, worker liveness, debounce and waits follow the clock it
+    is given (routerd.io.clock), so a FakeClock moves them without sleeping."""
+    import io as _io
+
+    from routerd.io.childproc import parse_ready
+    from routerd.io.clock import FakeClock
+
+    clk = FakeClock(start=100.0)
+    topo = _topo()
+    cfg = _config.load(None).with_overrides({"service.state_dir": str(tmp_path)}, where="test")
+    out = _io.StringIO()
+    f = shard.Front(cfg, topo, shard.ShardMap.build(topo, 2), out=out, clock=clk)
+    epoch0 = clk.wall_ns()
+    assert f.epoch == epoch0
+    assert not hasattr(f, "lock")                  # issue 17: nothing used it
+    clk.advance(5.0)
+    h = f.health()
+    assert h["uptime_s"] == 5.0 and h["shards_up"] == 0 and h["status"] == "degraded"
+    # a worker is up while its announcements are recent: 3 hello intervals on the clock
+    w = f.workers[0]
+    w.hello = {"pid": 1}
+    w.last_hello = clk.monotonic()
+    assert f._up(w)
+    clk.advance(3 * cfg["shard.hello_interval_s"])
+    assert not f._up(w)
+    # a table due later waits on the clock (the poll timeout is capped at 100 ms)
+    f._due[0] = clk.monotonic() + 0.05
+    assert 50 <= f._poll_ms() <= 51
+    clk.advance(0.05)
+    assert f._poll_ms() == 1
+    # the shutdown wait sleeps on the clock: virtual time moves, the test does not wait
+    t0 = clk.monotonic()
+    f._drain_parts(0.5)
+    assert clk.monotonic() - t0 >= 0.5
+    # the readiness line is childproc's, with the clock's epoch
+    f.endpoints = {k: f"ipc:///tmp/x-{k}"
+                   for k in ("ingest", "publish", "control", "metrics", "shards")}
+    f._banner()
+    assert parse_ready(out.getvalue().splitlines()[-1]) == (os.getpid(), epoch0)

@@ -1,7 +1,10 @@
 """Client side of wire protocol v1: a batching reporter, a table subscriber, control calls.
 
 Owns the reporter's delivery rules (batch numbers, acknowledgements, retries, memory bound),
-the subscriber's gap detection, and the one-shot control request.  Every message shape
+the subscriber's gap detection, the one-shot control request (:func:`control`) and
+pipelined control requests (:class:`ControlPipe`).  Programs that talk to a service (the
+agent, the closed-loop simulator, the shard front's fan-out) do so through these; none of
+them needs zmq itself.  Every message shape
 comes from :mod:`routerd.io.wire`; nothing is encoded here by hand.
 
 Must not import: the engine, the journal, the service, prometheus.
@@ -77,6 +80,11 @@ class ServiceError(Exception):
         self.batch = batch
 
 
+class TransportError(ConnectionError):
+    """The socket itself failed (a ZeroMQ error, e.g. its context was terminated): not a
+    timeout and not a refusal by the service."""
+
+
 class UnknownNode(ValueError):
     """A node name that is not in the service's node list (columnar format only: the named
     format sends it and the service counts it as ``unknown_node``)."""
@@ -128,6 +136,72 @@ def control(endpoint: str, request: Mapping[str, Any], timeout_s: float = 2.0, *
         return wire.decode_reply(s.recv())
     finally:
         s.close()
+
+
+class ControlPipe:
+    """Control requests over one DEALER socket: several in flight, answered in order by
+    the service's REP socket (one per turn of its loop), without a round trip each.
+
+    ``ask(requests)`` sends them all, then returns their reply maps in order (each may hold
+    ``"error"``).  ``TimeoutError`` when not every reply came within ``timeout_s`` (the
+    socket is then replaced, since the replies still owed would arrive out of step with
+    the next requests), ``wire.BadReply`` on a malformed reply, :class:`TransportError`
+    when the socket fails.  ``clock``: what ``timeout_s`` is measured on; the socket is
+    polled with real timeouts (under a :class:`~routerd.io.clock.FakeClock` the wait ends
+    only with the replies).  ``curve``: client CURVE keys, as for :func:`control`.
+    """
+
+    def __init__(self, endpoint: str, timeout_s: float = 2.0, *,
+                 context: zmq.Context | None = None,
+                 curve: security.ClientKeys | None = None, clock: Clock = SYSTEM):
+        self.endpoint = endpoint
+        self.timeout_s = timeout_s
+        self.curve = curve
+        self.clock = clock
+        self._ctx = context or zmq.Context.instance()
+        self._sock: zmq.Socket | None = None
+        self._open()
+
+    def _open(self) -> None:
+        try:
+            self._sock = _socket(self._ctx, zmq.DEALER, self.curve)
+            self._sock.connect(self.endpoint)
+        except zmq.ZMQError as e:
+            raise TransportError(f"control pipe to {self.endpoint}: {e}") from None
+
+    def ask(self, requests: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]]:
+        if self._sock is None:
+            raise TransportError(f"control pipe to {self.endpoint} is closed")
+        try:
+            for r in requests:
+                self._sock.send_multipart([b"", wire.encode_request(r)])
+            out: list[dict[str, Any]] = []
+            deadline = self.clock.monotonic() + self.timeout_s
+            while len(out) < len(requests):
+                left = deadline - self.clock.monotonic()
+                if left <= 0 or not self._sock.poll(max(1, int(left * 1000)), zmq.POLLIN):
+                    self._sock.close(0)
+                    self._open()
+                    raise TimeoutError(f"no reply from {self.endpoint} to "
+                                       f"{len(requests) - len(out)} of {len(requests)} control "
+                                       f"requests within {self.timeout_s:g} s"
+                                       f"{_curve_hint(self.curve)}")
+                out.append(wire.decode_reply(self._sock.recv_multipart()[-1]))
+            return out
+        except zmq.ZMQError as e:
+            raise TransportError(f"control pipe to {self.endpoint}: {e}") from None
+
+    def close(self) -> None:
+        """Idempotent."""
+        if self._sock is not None:
+            self._sock.close(0)
+            self._sock = None
+
+    def __enter__(self) -> ControlPipe:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
 
 
 @dataclass

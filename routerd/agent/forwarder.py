@@ -974,14 +974,14 @@ def load(args: argparse.Namespace) -> tuple[Any, Any]:
 def run(args: argparse.Namespace) -> int:
     from prometheus_client import CollectorRegistry, start_http_server
 
-    from routerd.service import metrics as _metrics
     from routerd.io.cautions import CAUTIONS
+    from routerd.io.metricsaddr import parse_address
 
     try:
         cfg, topo = load(args)
         agent = Agent(cfg, topo, args.node, registry=(reg := CollectorRegistry()),
                       local=args.local, deliver=args.deliver, status_file=args.status_file)
-        host, port = _metrics.parse_address(cfg["agent.metrics"])
+        host, port = parse_address(cfg["agent.metrics"])
     except (InputError, ValueError) as e:
         print(f"routerd agent: cannot start:\n{e}", file=sys.stderr)
         return 2

@@ -100,6 +100,7 @@ from routerd.core import guards as _guards
 from routerd.core import kernels as _kernels
 from routerd.io import journal as _journal
 from routerd.io.logs import EventLog
+from routerd.io.metricsaddr import page_url
 from . import listeners as _listeners
 from routerd.io import security as _security
 from routerd.io import statedir as _statedir
@@ -171,9 +172,6 @@ def configure(p: argparse.ArgumentParser) -> None:
                    "and the nodes it may report for; needs --server-key")
     p.add_argument("--control-readonly", metavar="EP", help="a second control endpoint without "
                    "CURVE for read-only ops (tables, estimates, health, nodes); default: off")
-    from . import shard as _shard
-
-    _shard.configure(p)   # --shards N, --shard K/N, --upstream, --shard-listen
 
 
 def load_config(args: argparse.Namespace, base: _config.Config | None = None) -> _config.Config:
@@ -240,10 +238,8 @@ def choose_inputs(args: argparse.Namespace, docs_dir: str | None = None,
 
 
 def run(args: argparse.Namespace) -> int:
-    if getattr(args, "shards", None) is not None or getattr(args, "shard", None) is not None:
-        from . import shard as _shard  # the front or one worker (routerd/service/shard.py)
-
-        return _shard.run(args)
+    """One process (``routerd serve`` without ``--shards``/``--shard``: those go to
+    :func:`routerd.service.shard.run`, chosen by :mod:`routerd.service.serve`)."""
     try:
         chosen = choose_inputs(args)
     except InputError as e:
@@ -629,9 +625,7 @@ class Service:
             self.metrics_server, self.metrics_port, _ = _metrics.serve(addr, self)
         except OSError as e:
             raise StartError(f"metrics address {addr}: {e.strerror or e}") from None
-        host = _metrics.parse_address(addr)[0]
-        shown = f"[{host}]" if ":" in host else host
-        self.endpoints["metrics"] = f"http://{shown}:{self.metrics_port}/metrics"
+        self.endpoints["metrics"] = page_url(_metrics.parse_address(addr)[0], self.metrics_port)
 
     def _install_signals(self) -> None:
         if threading.current_thread() is not threading.main_thread():

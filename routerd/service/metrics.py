@@ -31,6 +31,11 @@ from prometheus_client.core import (
 )
 from prometheus_client.registry import Collector, CollectorRegistry
 
+from routerd.io.metricsaddr import parse_address
+
+__all__ = ["Counters", "Histo", "MetricsSource", "RouterdCollector", "connection_families",
+           "parse_address", "serve"]
+
 #: |TD error| buckets, seconds (the demo lab's hop delays are 0.5–2 ms; estimates reach
 #: the ceiling of 10 s on dead links).
 TD_BUCKETS_S = (1e-6, 1e-5, 1e-4, 2.5e-4, 5e-4, 1e-3, 2.5e-3, 5e-3, 0.01, 0.025, 0.05,
@@ -357,14 +362,6 @@ def _histogram(name: str, doc: str, h: Histo) -> HistogramMetricFamily:
     f = HistogramMetricFamily(name, doc)
     f.add_metric([], buckets, s)
     return f
-
-
-def parse_address(addr: str) -> tuple[str, int]:
-    """``HOST:PORT`` (``[v6]:PORT`` too) → (host, port); ValueError naming the rule."""
-    host, sep, port = addr.rpartition(":")
-    if not sep or not host or not port.isdigit() or not 0 <= int(port) <= 65535:
-        raise ValueError(f"metrics address {addr!r} is not HOST:PORT (PORT 0-65535, 0 = any free port)")
-    return host.strip("[]"), int(port)
 
 
 def serve(addr: str, source: MetricsSource) -> tuple[Any, int, CollectorRegistry]:

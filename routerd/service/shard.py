@@ -1,13 +1,17 @@
-"""Scale-out by destination: the destination map, the shard worker, and the front.
+"""Scale-out by destination: the shard worker and the front.
 
-Owns: which shard owns which destination (:class:`ShardMap`: a stable hash of the node
-name, or a configured map), the worker (:class:`ShardWorker`, a :class:`Service` that
-publishes and answers only for its own destinations and announces itself upstream), the
-front (:class:`Front`: the one ingest, tables, control and metrics endpoint in front of N
-workers), the supervisor that runs N local workers (``routerd serve --shards N``), the
-merge of per-shard tables (live and from the shards' journals), and a reporter that splits
-by destination itself (:class:`ShardReporter`).  Must not import: the simulator.  Every
-message shape is :mod:`routerd.io.wire`'s; every journal access is :mod:`routerd.io.journal`'s.
+Owns: the worker (:class:`ShardWorker`, a :class:`Service` that publishes and answers only
+for its own destinations and announces itself upstream), the front (:class:`Front`: the
+one ingest, tables, control and metrics endpoint in front of N workers), the supervisor
+that runs N local workers (``routerd serve --shards N``), the live merge of the workers'
+tables, and a reporter that splits by destination itself (:class:`ShardReporter`).  Which
+shard owns which destination (:class:`ShardMap`), the ``shard-K-of-N`` layout and the
+merge of tables replayed from the shards' journals are :mod:`routerd.io.shards`'s (``routerd
+replay`` uses them too); this module re-exports them.  It imports the daemon (the worker
+is a Service); the daemon never imports it (:mod:`routerd.service.serve` dispatches).
+Must not import: the simulator, ``routerd.tools``.  Every message shape is
+:mod:`routerd.io.wire`'s; every journal access is :mod:`routerd.io.journal`'s; time is
+read through a :mod:`routerd.io.clock` clock.
 
 Theory of operation
 -------------------
@@ -96,12 +100,29 @@ from typing import Any
 import numpy as np
 
 from routerd import __version__
-from routerd.io import wire
-from routerd.io import config as _config
-from . import listeners as _listeners
-from routerd.io import statedir as _statedir
 from routerd.core import topology as _topology
 from routerd.core.errors import InputError
+from routerd.io import config as _config
+from routerd.io import statedir as _statedir
+from routerd.io import wire
+from routerd.io.childproc import die_with_parent, ready_line
+from routerd.io.clock import SYSTEM, Clock
+from routerd.io.metricsaddr import page_url, parse_address
+# the map, the shard dirs and the table merge live below this module (``routerd replay``
+# reads sharded state dirs with them too); re-exported here for the service's callers
+from routerd.io.shards import (  # noqa: F401 - re-exported
+    ShardMap,
+    merge_tables,
+    owned_routes,
+    replay_shards,
+    shard_dir,
+    sharded_state,
+    stable_hash,
+)
+
+from . import daemon as _service
+from . import listeners as _listeners
+from .daemon import Service
 
 #: Leading bytes of the token frame the front puts before each piece (echoed back).
 TOKEN_PREFIX = b"rdshard:"
@@ -118,57 +139,7 @@ INEXACT_VARIANTS: dict[str, str] = {
 WORKER_OVERRIDES: dict[str, Any] = {"guards.rate.batches_per_s": 0.0, "guards.rate.rows_per_s": 0.0}
 
 
-# ---- the destination map ---------------------------------------------------------------
-def stable_hash(name: str) -> int:
-    """CRC-32 of the UTF-8 name: the same on every host and Python run (unlike hash())."""
-    return zlib.crc32(name.encode("utf-8"))
-
-
-@dataclass(frozen=True)
-class ShardMap:
-    """Owner shard of every destination: ``owner[d]`` for node index d."""
-
-    n_shards: int
-    owner: np.ndarray
-    source: str = "hash"
-
-    @classmethod
-    def build(cls, topo: _topology.Topology, n_shards: int, map_file: str | None = None) -> ShardMap:
-        """By :func:`stable_hash` modulo N, or from a YAML map file ``{node: shard}`` (nodes
-        it does not name fall back to the hash).  Raises InputError naming the entry."""
-        if n_shards < 1:
-            raise InputError(f"shards: {n_shards} is below 1")
-        owner = np.array([stable_hash(x) % n_shards for x in topo.nodes], dtype=np.int64)
-        src = f"crc32(name) mod {n_shards}"
-        if map_file:
-            import yaml
-
-            try:
-                with open(map_file, encoding="utf-8") as fh:
-                    m = yaml.safe_load(fh) or {}
-            except OSError as e:
-                raise InputError(f"{map_file}: {e.strerror}") from None
-            except yaml.YAMLError as e:
-                raise InputError(f"{map_file}: not YAML: {e}") from None
-            if not isinstance(m, dict):
-                raise InputError(f"{map_file}: expected a map node -> shard, got a {type(m).__name__}")
-            for k, v in m.items():
-                if k not in topo.index:
-                    raise InputError(f"{map_file}: {k!r} is not a node of topology {topo.name!r}")
-                if not isinstance(v, int) or isinstance(v, bool) or not 0 <= v < n_shards:
-                    raise InputError(f"{map_file}: {k}: {v!r} is not a shard in 0..{n_shards - 1}")
-                owner[topo.index[k]] = v
-            src = f"{map_file} (else crc32 mod {n_shards})"
-        return cls(n_shards, owner, src)
-
-    def owned(self, k: int) -> np.ndarray:
-        """Node indices (destinations) shard k owns, ascending."""
-        return np.flatnonzero(self.owner == k)
-
-    def counts(self) -> list[int]:
-        return np.bincount(self.owner, minlength=self.n_shards).tolist()
-
-
+# ---- the worker's flag ------------------------------------------------------------------
 def parse_shard(spec: str) -> tuple[int, int]:
     """``"K/N"`` → (K, N) with 0 <= K < N; ValueError naming the rule."""
     m = _SHARD_RE.match(spec or "")
@@ -177,108 +148,9 @@ def parse_shard(spec: str) -> tuple[int, int]:
     return int(m.group(1)), int(m.group(2))
 
 
-def shard_dir(state_root: str, k: int, n: int) -> str:
-    return os.path.join(state_root, f"shard-{k}-of-{n}")
-
-
-def owned_routes(engine: Any, x: int, mask: np.ndarray) -> dict[str, list[list[Any]]]:
-    """:func:`wire.routes_by_name` restricted to the destinations where ``mask`` (bool, one
-    per node) is set; the same weights, from the engine's whole-table path when it has one."""
-    names = engine.topo.nodes
-    many = getattr(engine, "routes_many", None)
-    # the whole-table path costs a whole row whatever is owned; per destination is
-    # cheaper once a worker owns a quarter or less (200 nodes: 76 vs 97 ms at 1/4,
-    # 82 vs 36 ms at 1/8 for every node's table)
-    if many is not None and 4 * int(mask.sum()) > mask.size:
-        table = many([x])[0]
-        own = mask.tolist()
-        return {names[d]: [[names[y], float(w)] for y, w in ws]
-                for d, ws in table.items() if own[d]}
-    out: dict[str, list[list[Any]]] = {}
-    for d in np.flatnonzero(mask).tolist():
-        if d != x:
-            ws = engine.weights(x, d)
-            if ws:
-                out[names[d]] = [[names[y], float(w)] for y, w in ws]
-    return out
-
-
-def merge_tables(parts: Iterable[Mapping[str, Mapping[str, Any]]]) -> dict[str, dict[str, Any]]:
-    """Per-shard ``{node: {dst: weights}}`` maps → one (destinations are disjoint)."""
-    out: dict[str, dict[str, Any]] = {}
-    for p in parts:
-        for node, routes in p.items():
-            out.setdefault(node, {}).update(routes)
-    return out
-
-
-def replay_shards(state_root: str, topo: _topology.Topology, n_shards: int,
-                  settings: Any = None, map_file: str | None = None) -> dict[str, dict[str, Any]]:
-    """Every shard's snapshot + journal (the offline path, :func:`journal.restore`) → the
-    merged tables, as the control ``tables`` reply of the front would give them."""
-    from routerd.io import journal as _journal
-    from routerd.core.engine import EngineSettings
-
-    smap = ShardMap.build(topo, n_shards, map_file)
-    parts = []
-    for k in range(n_shards):
-        r = _journal.restore(shard_dir(state_root, k, n_shards), topo, settings or EngineSettings())
-        own = smap.owner == k
-        parts.append({topo.nodes[x]: owned_routes(r.engine, x, own) for x in range(topo.n)})
-    return merge_tables(parts)
-
-
-_SHARD_DIR_RE = re.compile(r"^shard-(\d+)-of-(\d+)$")
-
-
-def sharded_state(path: str) -> int | None:
-    """N when ``path`` is a sharded service's state dir (``shard-K-of-N`` subdirs, no
-    journal of its own), else None."""
-    if not os.path.isdir(path) or os.path.isdir(os.path.join(path, "journal")):
-        return None
-    ns = {int(m.group(2)) for x in os.listdir(path) if (m := _SHARD_DIR_RE.match(x))}
-    return max(ns) if ns else None
-
-
-def replay_command(args: argparse.Namespace) -> dict[str, Any]:
-    """``routerd replay STATE --out DIR`` on a sharded state dir: every shard replayed from
-    its own snapshot and journal (the service's restore path), the tables merged into
-    ``DIR/tables.json`` — the tables the front served.  What-if variants work per shard
-    (``routerd replay STATE/shard-K-of-N``; its tables are valid for its destinations)."""
-    from routerd.tools import replay as _replay
-    from routerd.core.errors import Problem
-
-    n = sharded_state(args.source)
-    assert n is not None
-    if args.overrides or args.compare or args.export_link_trace:
-        raise InputError(Problem(args.source, f"{n} shards", "--set, --compare and "
-                                 "--export-link-trace work on one shard's dir "
-                                 f"({args.source}/shard-K-of-{n})"))
-    missing = [k for k in range(n) if not os.path.isdir(shard_dir(args.source, k, n))]
-    if missing:
-        raise InputError(Problem(args.source, f"shard-{missing[0]}-of-{n}", "is missing: a "
-                                 "merged replay needs every shard's state dir"))
-    # every shard keeps its own copy of the documents; shard 0's say what the front ran with
-    # (a worker's recorded config is the front's config with the worker's endpoints)
-    src0 = _replay.locate(shard_dir(args.source, 0, n))
-    cfg, topo, chosen = _replay._load_config_and_topology(args, src0, recorded_config=True)
-    for k in range(n):
-        _replay._check_topology(_replay.locate(shard_dir(args.source, k, n)), topo)
-    t0 = time.perf_counter()
-    try:
-        tables = replay_shards(args.source, topo, n, map_file=chosen.cfg["shard.map"])
-    except Exception as e:   # noqa: BLE001 - a journal or snapshot of another topology, unreadable
-        raise InputError(Problem(args.source, "journal", f"cannot be replayed: {e}")) from None
-    os.makedirs(args.out, exist_ok=True)
-    path = _replay._dump(os.path.join(args.out, "tables.json"), {"v": wire.VERSION, "tables": tables})
-    dt = time.perf_counter() - t0
-    line = f"replayed {n} shards of {args.source} in {dt:.2f} s; merged tables of {topo.n} nodes -> {path}"
-    return {"printed": [*chosen.said, line], "tables": path}
-
-
 # ---- command line -------------------------------------------------------------------------
 def configure(p: argparse.ArgumentParser) -> None:
-    """The sharding flags of ``routerd serve`` (called by :func:`service.configure`)."""
+    """The sharding flags of ``routerd serve`` (:func:`routerd.service.serve.configure`)."""
     g = p.add_argument_group("sharding (split the destinations over several workers)")
     g.add_argument("--shards", metavar="N", type=int, help="run a front and N workers: each "
                    "worker owns the destinations whose name hashes to it (or shard.map); the "
@@ -295,8 +167,9 @@ def configure(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from . import daemon as _service
-
+    """``routerd serve --shards N`` (the front, and its workers unless external) or
+    ``routerd serve --shard K/N`` (one worker); :func:`routerd.service.serve.run` sends
+    those here."""
     try:
         root = _service.load_config(args)["service.state_dir"]
         if args.shard is not None:
@@ -344,9 +217,6 @@ def _front_inputs(args: argparse.Namespace, root: str, n: int) -> Any:
     (in the root); a root without them whose workers recorded theirs (workers started on
     their own) takes the topology of the first such shard, never its config (a worker's
     endpoints).  Which network the directory was written for: the shards' journals."""
-    from . import daemon as _service
-    from routerd.io import statedir as _statedir
-
     shards = [shard_dir(root, k, n) for k in range(n)]
     if _statedir.current(root) is None:
         for d in shards:
@@ -359,15 +229,13 @@ def _front_inputs(args: argparse.Namespace, root: str, n: int) -> Any:
 
 def _run_worker(args: argparse.Namespace, cfg: _config.Config, topo: _topology.Topology,
                 smap: ShardMap, k: int, chosen: Any = None) -> int:
-    from . import daemon as _service
-
     _follow_front()
     n = smap.n_shards
     over = {"service.state_dir": shard_dir(cfg["service.state_dir"], k, n), **WORKER_OVERRIDES}
     wcfg = cfg.with_overrides(over, where=f"shard {k}/{n}")
     rargs = argparse.Namespace(**vars(args))
     rargs.state_dir = over["service.state_dir"]     # a reload re-reads the same state dir
-    svc = _worker_class()(wcfg, topo, smap, k, args.upstream, reload_args=rargs, inputs=chosen)
+    svc = ShardWorker(wcfg, topo, smap, k, args.upstream, reload_args=rargs, inputs=chosen)
     try:
         svc.start()
     except _service.StartError as e:
@@ -382,132 +250,121 @@ def _follow_front() -> None:
     pid = os.environ.get(FRONT_PID_ENV)
     if not pid:
         return
-    with contextlib.suppress(Exception):
-        import ctypes
-
-        ctypes.CDLL(None, use_errno=True).prctl(1, signal.SIGTERM)   # 1 = PR_SET_PDEATHSIG
+    die_with_parent(signal.SIGTERM)
     if str(os.getppid()) != pid:   # the front died before the call above
         raise SystemExit(1)
 
 
-def _worker_class() -> type:
-    from .daemon import Service
+class ShardWorker(Service):
+    """A :class:`Service` owning the destinations of shard k of n: it publishes and answers
+    for those only, echoes the front's token frames, and announces itself on ``upstream``.
 
-    class _ShardWorker(Service):
-        """A :class:`Service` owning the destinations of shard k of n."""
+    ``clock``: what its announcements are scheduled on (:mod:`routerd.io.clock`); the
+    rest of its time is the :class:`Service`'s."""
 
-        def __init__(self, cfg: _config.Config, topo: _topology.Topology, smap: ShardMap,
-                     k: int, upstream: str | None, **kw: Any):
-            super().__init__(cfg, topo, **kw)
-            self.smap = smap
-            self.shard = k
-            self.own = smap.owned(k)
-            self.own_mask = smap.owner == k
-            self._own_names = frozenset(topo.nodes[d] for d in self.own.tolist())
-            self.upstream = upstream
-            self._hello: Any = None
-            self._next_hello = 0.0
+    def __init__(self, cfg: _config.Config, topo: _topology.Topology, smap: ShardMap,
+                 k: int, upstream: str | None, *, clock: Clock = SYSTEM, **kw: Any):
+        super().__init__(cfg, topo, **kw)
+        self.hello_clock = clock
+        self.smap = smap
+        self.shard = k
+        self.own = smap.owned(k)
+        self.own_mask = smap.owner == k
+        self._own_names = frozenset(topo.nodes[d] for d in self.own.tolist())
+        self.upstream = upstream
+        self._hello: Any = None
+        self._next_hello = 0.0
 
-        # -- what the worker publishes and answers: its own destinations --------------
-        def _routes(self, x: int) -> dict[str, list[list[Any]]]:
-            return owned_routes(self.engine, x, self.own_mask)
+    # -- what the worker publishes and answers: its own destinations --------------
+    def _routes(self, x: int) -> dict[str, list[list[Any]]]:
+        return owned_routes(self.engine, x, self.own_mask)
 
-        def _control(self, op: str, req: Mapping[str, Any]) -> dict[str, Any]:
-            eng = self.engine
-            if op == "tables":
-                return {"tables": {self.topo.nodes[x]: owned_routes(eng, x, self.own_mask)
-                                   for x in range(self.topo.n)}}
-            if op == "estimates":
-                est = wire.estimates_by_name(eng, self.topo.index[req["node"]])
-                return {"estimates": {d: v for d, v in est.items() if d in self._own_names}}
-            out = super()._control(op, req)
-            if op == "health":
-                out["shard"] = self._shard_info()
-            return out
-
-        def health(self) -> dict[str, Any]:
-            out = super().health()
+    def _control(self, op: str, req: Mapping[str, Any]) -> dict[str, Any]:
+        eng = self.engine
+        if op == "tables":
+            return {"tables": {self.topo.nodes[x]: owned_routes(eng, x, self.own_mask)
+                               for x in range(self.topo.n)}}
+        if op == "estimates":
+            est = wire.estimates_by_name(eng, self.topo.index[req["node"]])
+            return {"estimates": {d: v for d, v in est.items() if d in self._own_names}}
+        out = super()._control(op, req)
+        if op == "health":
             out["shard"] = self._shard_info()
-            return out
+        return out
 
-        def _shard_info(self) -> dict[str, Any]:
-            return {"index": self.shard, "of": self.smap.n_shards, "destinations": int(self.own.size)}
+    def health(self) -> dict[str, Any]:
+        out = super().health()
+        out["shard"] = self._shard_info()
+        return out
 
-        def _effective(self, cfg: _config.Config) -> _config.Config:
-            # a reload keeps the rate limits the front's (and records the config as run)
-            return cfg.with_overrides(WORKER_OVERRIDES, where="shard worker")
+    def _shard_info(self) -> dict[str, Any]:
+        return {"index": self.shard, "of": self.smap.n_shards, "destinations": int(self.own.size)}
 
-        def info(self) -> Mapping[str, str]:
-            return {**super().info(), "shard": f"{self.shard}/{self.smap.n_shards}"}
+    def _effective(self, cfg: _config.Config) -> _config.Config:
+        # a reload keeps the rate limits the front's (and records the config as run)
+        return cfg.with_overrides(WORKER_OVERRIDES, where="shard worker")
 
-        def _lock_what(self) -> str:
-            return f"routerd serve --shard {self.shard}/{self.smap.n_shards}"
+    def info(self) -> Mapping[str, str]:
+        return {**super().info(), "shard": f"{self.shard}/{self.smap.n_shards}"}
 
-        def _envelope(self, env: list[bytes], body: list[bytes]) -> tuple[list[bytes], list[bytes]]:
-            # [token, b"", payload] from the front: the token goes back with the answer
-            if len(body) == 3 and body[0].startswith(TOKEN_PREFIX) and body[1] == b"":
-                return env + body[:2], body[2:]
-            return env, body
+    def _lock_what(self) -> str:
+        return f"routerd serve --shard {self.shard}/{self.smap.n_shards}"
 
-        # -- announcing itself upstream -------------------------------------------------
-        def start(self) -> None:
-            super().start()
-            if self.upstream:
-                import zmq
+    def _envelope(self, env: list[bytes], body: list[bytes]) -> tuple[list[bytes], list[bytes]]:
+        # [token, b"", payload] from the front: the token goes back with the answer
+        if len(body) == 3 and body[0].startswith(TOKEN_PREFIX) and body[1] == b"":
+            return env + body[:2], body[2:]
+        return env, body
 
-                s = self.ctx.socket(zmq.PUSH)
-                s.linger = 0
-                s.sndhwm = 4
-                s.connect(self.upstream)
-                self._hello = s
-                self._send_hello()
-
-        def _banner(self) -> None:
-            with contextlib.suppress(OSError, ValueError):
-                print(f"routerd shard {self.shard}/{self.smap.n_shards}: owns {self.own.size} of "
-                      f"{self.topo.n} destinations ({self.smap.source}); upstream "
-                      f"{self.upstream or '- (none)'}", file=self.out, flush=True)
-            super()._banner()
-
-        def _send_hello(self) -> None:
+    # -- announcing itself upstream -------------------------------------------------
+    def start(self) -> None:
+        super().start()
+        if self.upstream:
             import zmq
 
-            msg = {"v": wire.VERSION, "hello": "shard", "shard": self.shard,
-                   "of": self.smap.n_shards, "topology": self.topo.digest, "epoch": self.epoch,
-                   "pid": os.getpid(), "ingest": self.endpoints["ingest"],
-                   "publish": self.endpoints["publish"], "control": self.endpoints["control"],
-                   "metrics": self.endpoints.get("metrics"),
-                   "owned_digest": zlib.crc32(self.own.astype("<i8").tobytes())}
-            with contextlib.suppress(zmq.ZMQError):
-                self._hello.send(wire.encode_request(msg), zmq.NOBLOCK)
-            self._next_hello = time.monotonic() + self.cfg["shard.hello_interval_s"]
+            s = self.ctx.socket(zmq.PUSH)
+            s.linger = 0
+            s.sndhwm = 4
+            s.connect(self.upstream)
+            self._hello = s
+            self._send_hello()
 
-        def _housekeeping(self) -> None:
-            super()._housekeeping()
-            if self._hello is not None and time.monotonic() >= self._next_hello:
-                self._send_hello()
+    def _banner(self) -> None:
+        with contextlib.suppress(OSError, ValueError):
+            print(f"routerd shard {self.shard}/{self.smap.n_shards}: owns {self.own.size} of "
+                  f"{self.topo.n} destinations ({self.smap.source}); upstream "
+                  f"{self.upstream or '- (none)'}", file=self.out, flush=True)
+        super()._banner()
 
-        def _timeout_ms(self) -> int:
-            t = super()._timeout_ms()
-            if self._hello is not None:
-                t = min(t, max(0, int((self._next_hello - time.monotonic()) * 1000) + 1))
-            return t
+    def _send_hello(self) -> None:
+        import zmq
 
-        def close(self) -> None:
-            if self._hello is not None:
-                self._hello.close(0)
-                self._hello = None
-            super().close()
+        msg = {"v": wire.VERSION, "hello": "shard", "shard": self.shard,
+               "of": self.smap.n_shards, "topology": self.topo.digest, "epoch": self.epoch,
+               "pid": os.getpid(), "ingest": self.endpoints["ingest"],
+               "publish": self.endpoints["publish"], "control": self.endpoints["control"],
+               "metrics": self.endpoints.get("metrics"),
+               "owned_digest": zlib.crc32(self.own.astype("<i8").tobytes())}
+        with contextlib.suppress(zmq.ZMQError):
+            self._hello.send(wire.encode_request(msg), zmq.NOBLOCK)
+        self._next_hello = self.hello_clock.monotonic() + self.cfg["shard.hello_interval_s"]
 
-    return _ShardWorker
+    def _housekeeping(self) -> None:
+        super()._housekeeping()
+        if self._hello is not None and self.hello_clock.monotonic() >= self._next_hello:
+            self._send_hello()
 
+    def _timeout_ms(self) -> int:
+        t = super()._timeout_ms()
+        if self._hello is not None:
+            t = min(t, max(0, int((self._next_hello - self.hello_clock.monotonic()) * 1000) + 1))
+        return t
 
-def __getattr__(name: str) -> Any:   # ShardWorker is built lazily (service imports zmq users)
-    if name == "ShardWorker":
-        cls = _worker_class()
-        globals()["ShardWorker"] = cls
-        return cls
-    raise AttributeError(name)
+    def close(self) -> None:
+        if self._hello is not None:
+            self._hello.close(0)
+            self._hello = None
+        super().close()
 
 
 # ---- the front ------------------------------------------------------------------------------
@@ -542,16 +399,23 @@ class _Worker:
 
 
 class Front:
-    """The ingest, tables, control and metrics endpoint in front of N shard workers."""
+    """The ingest, tables, control and metrics endpoint in front of N shard workers.
+
+    ``clock``: every time the front reads (:mod:`routerd.io.clock`): its epoch (wall),
+    deadlines, debounce, supervision and uptime (monotonic), its waits (sleep); sockets are
+    still polled with real timeouts.  CPU budgets (``service.publish_budget_s``) are
+    measured with :func:`time.perf_counter`, the time the process actually spends."""
 
     def __init__(self, cfg: _config.Config, topo: _topology.Topology, smap: ShardMap,
-                 args: argparse.Namespace | None = None, out: Any = None, inputs: Any = None):
+                 args: argparse.Namespace | None = None, out: Any = None, inputs: Any = None,
+                 *, clock: Clock = SYSTEM):
         from routerd.core import guards as _guards
         from routerd.io.logs import EventLog
 
         from .daemon import make_dedup
 
         self.inputs = inputs     # statedir.Chosen: where cfg and topo came from
+        self.clock = clock
         self.cfg = cfg
         self.topo = topo
         self.smap = smap
@@ -569,12 +433,12 @@ class Front:
         self.ctx: Any = None
         self.sockets: dict[str, Any] = {}
         self.endpoints: dict[str, str] = {}
-        self.epoch = time.time_ns()
+        self.epoch = clock.wall_ns()
         self.seq = [0] * topo.n
         self._due: OrderedDict[int, float] = OrderedDict()   # node -> not before (monotonic)
         self._stop = False
         self._next_token = 1
-        self.started = time.monotonic()
+        self.started = clock.monotonic()
         self.state_root = os.path.abspath(cfg["service.state_dir"])
         self._ipc_dir: str | None = None
         self.metrics_server: Any = None
@@ -583,20 +447,18 @@ class Front:
         self.counts: dict[str, int] = {k: 0 for k in (
             "batches_accepted", "batches_duplicate", "batches_refused", "batches_unavailable", "pieces_sent",
             "pieces_acked", "pieces_late", "publications", "parts_received", "acks_undeliverable")}
-        self.lock = threading.RLock()
         self.state_lock: _statedir.StateLock | None = None
 
     # -- start-up ---------------------------------------------------------------------
     def start(self) -> None:
         import zmq
 
-        from . import metrics as _metrics
         from routerd.io.fsmode import private_dir
         from .daemon import OVERSIZE_ANSWER_SLACK, StartError, bind_endpoint
 
         cfg = self.cfg
         try:
-            _metrics.parse_address(cfg["service.metrics"])
+            parse_address(cfg["service.metrics"])
             private_dir(self.state_root)
             # the root holds the front's ipc files and the shards' dirs: one front per root
             self.state_lock = _statedir.StateLock(self.state_root, "routerd serve --shards "
@@ -695,8 +557,8 @@ class Front:
         from .daemon import StartError
 
         limit = self.cfg["shard.start_timeout_s"]
-        deadline = time.monotonic() + limit
-        while time.monotonic() < deadline:
+        deadline = self.clock.monotonic() + limit
+        while self.clock.monotonic() < deadline:
             self._take_hellos(timeout_ms=100)
             if all(w.hello is not None for w in self.workers):
                 return
@@ -712,18 +574,16 @@ class Front:
         from prometheus_client import start_http_server
         from prometheus_client.registry import CollectorRegistry
 
-        from . import metrics as _metrics
         from .daemon import StartError
 
-        host, port = _metrics.parse_address(self.cfg["service.metrics"])
+        host, port = parse_address(self.cfg["service.metrics"])
         reg = CollectorRegistry(auto_describe=False)
         reg.register(_FrontCollector(self))
         try:
             self.metrics_server, _t = start_http_server(port, addr=host, registry=reg)
         except OSError as e:
             raise StartError(f"metrics address {self.cfg['service.metrics']}: {e.strerror or e}") from None
-        shown = f"[{host}]" if ":" in host else host
-        self.endpoints["metrics"] = f"http://{shown}:{self.metrics_server.server_address[1]}/metrics"
+        self.endpoints["metrics"] = page_url(host, self.metrics_server.server_address[1])
 
     def _install_signals(self) -> None:
         if threading.current_thread() is not threading.main_thread():
@@ -767,7 +627,7 @@ class Front:
             lines.append(f"  shard {w.k}/{n}  pid {h.get('pid')}  ingest {h.get('ingest')}  "
                          f"state {shard_dir(self.state_root, w.k, n)}")
         lines.extend(f"  input    {x}" for x in (self.inputs.said if self.inputs else ()))
-        lines.append(f"routerd: ready (pid {os.getpid()}, epoch {self.epoch})")
+        lines.append(ready_line(os.getpid(), self.epoch))
         with contextlib.suppress(OSError, ValueError):
             print("\n".join(lines), file=self.out, flush=True)
         self.log.info("started", workers=n, nodes=t.n, **self.endpoints)
@@ -811,7 +671,7 @@ class Front:
         w = self.workers[k]
         old = w.hello
         w.hello = h
-        w.last_hello = time.monotonic()
+        w.last_hello = self.clock.monotonic()
         if old is None or any(old.get(x) != h.get(x) for x in ("ingest", "publish")):
             self._connect(w)
         if old is not None and old.get("epoch") != h.get("epoch"):
@@ -842,7 +702,7 @@ class Front:
     def _up(self, w: _Worker) -> bool:
         alive = w.proc is None or w.proc.poll() is None
         return alive and w.hello is not None and \
-            time.monotonic() - w.last_hello < 3 * self.cfg["shard.hello_interval_s"]
+            self.clock.monotonic() - w.last_hello < 3 * self.cfg["shard.hello_interval_s"]
 
     # -- the loop ----------------------------------------------------------------------------
     def serve(self) -> int:
@@ -872,9 +732,9 @@ class Front:
                 if self.listeners is not None:
                     if any(m in ev for m in monitors):
                         self.listeners.read()
-                    if time.monotonic() >= self._next_gate_tick:
+                    if self.clock.monotonic() >= self._next_gate_tick:
                         self.listeners.tick()
-                        self._next_gate_tick = time.monotonic() + 1.0
+                        self._next_gate_tick = self.clock.monotonic() + 1.0
                 if self.sockets["shards"] in ev:
                     self._take_hellos()
                 for w in self.workers:
@@ -1051,7 +911,7 @@ class Front:
         self._answer(p.env, wire.encode_ack(p.batch, accepted, rejected))
 
     def _expire(self) -> None:
-        now = time.monotonic()
+        now = self.clock.monotonic()
         while self.expiry:
             token, t = next(iter(self.expiry.items()))
             if t > now:
@@ -1071,7 +931,7 @@ class Front:
         import zmq
 
         topic = len(wire.TABLE_TOPIC)
-        not_before = time.monotonic() + self.cfg["service.debounce_s"]
+        not_before = self.clock.monotonic() + self.cfg["service.debounce_s"]
         for _ in range(10_000):
             try:
                 frames = w.sub.recv_multipart(zmq.NOBLOCK)
@@ -1115,8 +975,8 @@ class Front:
     def _publish_due(self, budget_s: float, final: bool = False) -> None:
         import zmq
 
-        now = time.monotonic()
-        end = time.perf_counter() + budget_s
+        now = self.clock.monotonic()
+        end = time.perf_counter() + budget_s     # CPU spent publishing: not the clock's time
         pub = self.sockets["publish"]
         while self._due:
             x, t = next(iter(self._due.items()))
@@ -1135,7 +995,7 @@ class Front:
         if not self._due:
             return 100
         t = next(iter(self._due.values()))
-        return max(0, min(100, int((t - time.monotonic()) * 1000) + 1))
+        return max(0, min(100, int((t - self.clock.monotonic()) * 1000) + 1))
 
     # -- control -------------------------------------------------------------------------------------
     def _ask(self, w: _Worker, req: Mapping[str, Any]) -> dict[str, Any]:
@@ -1206,7 +1066,7 @@ class Front:
                            "pid": (w.hello or {}).get("pid"), "health": h})
         up = sum(1 for s in shards if s["up"])
         return {"status": "stopping" if self._stop else ("ok" if up == len(shards) else "degraded"),
-                "uptime_s": time.monotonic() - self.started, "epoch": self.epoch,
+                "uptime_s": self.clock.monotonic() - self.started, "epoch": self.epoch,
                 "version": __version__,
                 "topology": {"name": self.topo.name, "id": self.topo.digest,
                              "nodes": self.topo.n, "links": self.topo.n_links},
@@ -1218,7 +1078,7 @@ class Front:
     def _supervise(self) -> None:
         if self.external:
             return
-        now = time.monotonic()
+        now = self.clock.monotonic()
         for w in self.workers:
             if w.proc is None:
                 continue
@@ -1244,8 +1104,8 @@ class Front:
             self._finish(token, p)
         if not self.external:
             self._stop_workers()
-            deadline = time.monotonic() + self.cfg["service.shutdown_timeout_s"]
-            while time.monotonic() < deadline and any(
+            deadline = self.clock.monotonic() + self.cfg["service.shutdown_timeout_s"]
+            while self.clock.monotonic() < deadline and any(
                     w.proc is not None and w.proc.poll() is None for w in self.workers):
                 self._drain_parts(0.05)
             for w in self.workers:
@@ -1260,14 +1120,14 @@ class Front:
         return 0
 
     def _drain_parts(self, wait_s: float) -> None:
-        end = time.monotonic() + wait_s
+        end = self.clock.monotonic() + wait_s
         while True:
             for w in self.workers:
                 if w.sub is not None:
                     self._take_parts(w)
-            if time.monotonic() >= end:
+            if self.clock.monotonic() >= end:
                 return
-            time.sleep(0.01)
+            self.clock.sleep(0.01)
 
     def close(self) -> None:
         """Release everything (idempotent); local workers still running are stopped."""
@@ -1380,7 +1240,13 @@ def combine_acks(decode_rejected: Sequence[Sequence[Any]], n_links: int,
 
 class _FrontCollector:
     """The front's metrics page: each worker's page with a ``shard`` label, and the
-    front's own counters with ``shard="front"``."""
+    front's own counters with ``shard="front"``.
+
+    It runs in the HTTP server's thread and takes no lock: it reads only values the loop
+    replaces whole or counts in place (``counts``, a dict with fixed keys of ints; ``len``
+    of ``pending``; each worker's ``hello``, a dict swapped for a new one; ``listeners``
+    read once), so a scrape sees each figure at some moment of the loop, never a torn one.
+    The front holds no engine (nothing like :attr:`Service.lock` guards)."""
 
     def __init__(self, front: Front):
         self.front = front

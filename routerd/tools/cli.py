@@ -2,8 +2,13 @@
 
 Owns: argument parsing and dispatch only.  Each subcommand lives in the module that owns
 its job; this table names them.  A command module provides ``configure(parser)`` and
-``run(args) -> int`` (exit code).  Modules are imported only when their command is
-built, and heavy imports (matplotlib, zmq) stay inside ``run``.
+``run(args) -> int`` (exit code).  :func:`main` imports the module of the command chosen
+and no other: ``routerd --version`` and ``routerd --help`` (its list comes from
+:data:`COMMANDS`) load nothing of routerd beyond this module and its packages, and
+``routerd COMMAND [--help]`` loads that command's module.  Heavy imports (matplotlib,
+zmq) stay inside ``run``.
+
+Must not import: any command module at import time (only through :data:`COMMANDS`).
 """
 from __future__ import annotations
 
@@ -12,7 +17,7 @@ import importlib
 import importlib.util
 import os
 import sys
-from collections.abc import Sequence
+from collections.abc import Collection, Sequence
 
 from routerd import __version__
 
@@ -21,7 +26,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "validate": ("routerd.tools.validate", "check config, topology or scenario files and report every error"),
     "simulate": ("routerd.sim.commands_simulate", "run the packet-level simulator on a topology with one policy"),
     "sweep": ("routerd.sim.commands_sweep", "simulate rates x policies x seeds and draw delivery time against load"),
-    "serve": ("routerd.service.daemon", "run the routing policy service (observations in, tables out, metrics)"),
+    "serve": ("routerd.service.serve", "run the routing policy service (observations in, tables out, metrics)"),
     "keys": ("routerd.io.security", "write a CURVE key pair (NAME.key, NAME.key_secret) for the service or a reporter"),
     "demo": ("routerd.tools.demo", "see routerd work in under a minute: a live service driven by the simulator, compared with static routes"),
     "replay": ("routerd.tools.replay", "re-run a service journal offline: reproduce its tables or compare other settings"),
@@ -31,12 +36,14 @@ COMMANDS: dict[str, tuple[str, str]] = {
 
 
 def _available() -> dict[str, tuple[str, str]]:
+    """The commands whose subpackage is installed.  Only the subpackage is looked up (its
+    parent, ``routerd``, is loaded already), so listing the commands imports nothing."""
     # ``importlib.util`` is a submodule: it must be imported by name (above).  An editable
     # install's import hook happens to import it first, which hid this from the tests once.
     out = {}
     for name, (mod, helptext) in COMMANDS.items():
         try:
-            spec = importlib.util.find_spec(mod)
+            spec = importlib.util.find_spec(mod.rpartition(".")[0])
         except ModuleNotFoundError:   # its parent package is not installed
             continue
         if spec is not None:
@@ -44,7 +51,16 @@ def _available() -> dict[str, tuple[str, str]]:
     return out
 
 
-def build_parser() -> argparse.ArgumentParser:
+def chosen_command(argv: Sequence[str]) -> str | None:
+    """The command named on a command line, if any: the first word that is not an option
+    (the top level takes no option with a value)."""
+    return next((a for a in argv if not a.startswith("-")), None)
+
+
+def build_parser(configured: Collection[str] | None = None) -> argparse.ArgumentParser:
+    """The ``routerd`` parser.  ``configured``: the commands whose module is imported and
+    whose flags are added (default: every command, for tools and tests that inspect them);
+    the others are listed with their help line from :data:`COMMANDS` only."""
     p = argparse.ArgumentParser(
         prog="routerd",
         description="Adaptive next-hop tables for test-lab overlay networks, learned online from "
@@ -54,15 +70,18 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--version", action="version", version=f"routerd {__version__}")
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
     for name, (mod, helptext) in _available().items():
-        m = importlib.import_module(mod)
         sp = sub.add_parser(name, help=helptext, description=helptext)
-        m.configure(sp)
-        sp.set_defaults(_run=m.run)
+        if configured is None or name in configured:
+            m = importlib.import_module(mod)
+            m.configure(sp)
+            sp.set_defaults(_run=m.run)
     return p
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    parser = build_parser()
+    argv = list(sys.argv[1:] if argv is None else argv)
+    name = chosen_command(argv)
+    parser = build_parser(configured=() if name is None else (name,))
     args = parser.parse_args(argv)
     if not getattr(args, "_run", None):
         parser.print_help()

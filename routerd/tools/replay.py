@@ -3,7 +3,9 @@
 Owns: the command's options and outputs (``tables.json``, ``replay.json``, the what-if
 comparison's CSV/JSON/PNG and printed table, ``--export-link-trace``), choosing where a
 replay starts (the journal's first record, or the oldest snapshot it continues from),
-and setting variants (recorded settings with overrides).  Records are applied with
+setting variants (recorded settings with overrides), and the merged replay of a sharded
+service's state dir (:func:`replay_sharded_command`, on
+:func:`routerd.io.shards.replay_shards`).  Records are applied with
 :func:`routerd.io.journal.replay_into` only — the function the service's start-up
 recovery uses — so the same records give the same tables.
 Must not import: zmq, prometheus, the simulator; matplotlib only inside the plot step.
@@ -65,6 +67,7 @@ import numpy as np
 
 from routerd.io import config as _config
 from routerd.io import journal as J
+from routerd.io import shards as _shards
 from routerd.io import statedir as _statedir
 from routerd.core import topology as _topology
 from routerd.core import variants as _variants
@@ -120,8 +123,6 @@ def configure(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from routerd.service import shard as _shard
-
     lock: _statedir.StateLock | None = None
     try:
         into = _statedir.enclosing_state_dir(args.out)
@@ -132,8 +133,8 @@ def run(args: argparse.Namespace) -> int:
             except (_statedir.StateDirBusy, OSError) as e:
                 raise ReplayError(Problem("--out", args.out, f"is inside a state dir that cannot be "
                                           f"locked: {e}")) from None
-        if _shard.sharded_state(args.source):   # a sharded service's state dir: merge
-            res = _shard.replay_command(args)
+        if _shards.sharded_state(args.source):   # a sharded service's state dir: merge
+            res = replay_sharded_command(args)
         else:
             res = replay_command(args)
     except InputError as e:
@@ -572,6 +573,40 @@ def replay_command(args: argparse.Namespace) -> dict[str, Any]:
         if src.cleanup:
             shutil.rmtree(src.cleanup, ignore_errors=True)
     return write_outputs(args, topo, res, primary, lt)
+
+
+def replay_sharded_command(args: argparse.Namespace) -> dict[str, Any]:
+    """``routerd replay STATE --out DIR`` on a sharded state dir: every shard replayed from
+    its own snapshot and journal (the service's restore path, :func:`shards.replay_shards`),
+    the tables merged into ``DIR/tables.json`` — the tables the front served.  What-if
+    variants work per shard (``routerd replay STATE/shard-K-of-N``; its tables are valid
+    for its destinations)."""
+    n = _shards.sharded_state(args.source)
+    assert n is not None
+    if args.overrides or args.compare or args.export_link_trace:
+        raise InputError(Problem(args.source, f"{n} shards", "--set, --compare and "
+                                 "--export-link-trace work on one shard's dir "
+                                 f"({args.source}/shard-K-of-{n})"))
+    missing = [k for k in range(n) if not os.path.isdir(_shards.shard_dir(args.source, k, n))]
+    if missing:
+        raise InputError(Problem(args.source, f"shard-{missing[0]}-of-{n}", "is missing: a "
+                                 "merged replay needs every shard's state dir"))
+    # every shard keeps its own copy of the documents; shard 0's say what the front ran with
+    # (a worker's recorded config is the front's config with the worker's endpoints)
+    src0 = locate(_shards.shard_dir(args.source, 0, n))
+    cfg, topo, chosen = _load_config_and_topology(args, src0, recorded_config=True)
+    for k in range(n):
+        _check_topology(locate(_shards.shard_dir(args.source, k, n)), topo)
+    t0 = time.perf_counter()
+    try:
+        tables = _shards.replay_shards(args.source, topo, n, map_file=chosen.cfg["shard.map"])
+    except Exception as e:   # noqa: BLE001 - a journal or snapshot of another topology, unreadable
+        raise InputError(Problem(args.source, "journal", f"cannot be replayed: {e}")) from None
+    os.makedirs(args.out, exist_ok=True)
+    path = _dump(os.path.join(args.out, "tables.json"), {"v": wire.VERSION, "tables": tables})
+    dt = time.perf_counter() - t0
+    line = f"replayed {n} shards of {args.source} in {dt:.2f} s; merged tables of {topo.n} nodes -> {path}"
+    return {"printed": [*chosen.said, line], "tables": path}
 
 
 def _tables(eng: Engine) -> dict[str, Any]:

@@ -1,0 +1,28 @@
+"""The address of a Prometheus page: ``HOST:PORT`` as the config and flags give it, and
+the URL a bound page is shown at.
+
+Owns: the one rule for ``service.metrics`` and ``agent.metrics`` (:func:`parse_address`)
+and the page URL the service, the shard front and tests print (:func:`page_url`).  The
+service (:mod:`routerd.service.metrics`), the shard front and the agent
+(:mod:`routerd.agent.forwarder`) read it here, so the agent needs nothing of the service.
+Starting the page is prometheus_client's ``start_http_server`` in each of them.
+
+Must not import: anything of routerd, prometheus_client, sockets.
+"""
+from __future__ import annotations
+
+__all__ = ["page_url", "parse_address"]
+
+
+def parse_address(addr: str) -> tuple[str, int]:
+    """``HOST:PORT`` (``[v6]:PORT`` too) → (host, port); ValueError naming the rule."""
+    host, sep, port = addr.rpartition(":")
+    if not sep or not host or not port.isdigit() or not 0 <= int(port) <= 65535:
+        raise ValueError(f"metrics address {addr!r} is not HOST:PORT (PORT 0-65535, 0 = any free port)")
+    return host.strip("[]"), int(port)
+
+
+def page_url(host: str, port: int) -> str:
+    """``http://HOST:PORT/metrics``, an IPv6 host in brackets."""
+    shown = f"[{host}]" if ":" in host else host
+    return f"http://{shown}:{port}/metrics"
