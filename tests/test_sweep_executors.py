@@ -290,3 +290,59 @@ def test_ctrl_c_keeps_and_writes_the_finished_rows(tmp_path: os.PathLike[str], k
     assert doc["sweep"]["partial"] is True and doc["sweep"]["runs_finished"] == 1
     assert doc["sweep"]["runs"] == 2 and len(doc["points"]) == 1
     assert os.path.getsize(os.path.join(out, "sweep.png")) > 1000
+
+
+def _free_port() -> int:
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+@pytest.mark.slow
+def test_a_scheduler_and_a_worker_elsewhere_need_none_of_the_callers_files(
+        tmp_path: os.PathLike[str]) -> None:
+    # the README's two-host setup on loopback: `dask scheduler`, and `dask worker` started in
+    # an empty folder of its own; the inputs are files in a folder only the caller sees
+    dask_cli = os.path.join(os.path.dirname(sys.executable), "dask")
+    if not os.path.exists(dask_cli):
+        pytest.skip(f"no dask command beside {sys.executable}")
+    root = str(tmp_path)
+    inputs, away = os.path.join(root, "inputs"), os.path.join(root, "worker-cwd")
+    os.makedirs(inputs)
+    os.makedirs(away)
+    for name, text in (("ring.yaml", TOPO), ("step.yaml", SCEN)):
+        with open(os.path.join(inputs, name), "w") as fh:
+            fh.write(text)
+    addr = f"tcp://127.0.0.1:{_free_port()}"
+    procs = [subprocess.Popen([dask_cli, "scheduler", "--host", "127.0.0.1", "--port",
+                               addr.rsplit(":", 1)[1], "--dashboard-address", "127.0.0.1:0"],
+                              stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, cwd=away)]
+    try:
+        procs.append(subprocess.Popen([dask_cli, "worker", addr, "--nthreads", "1",
+                                       "--nworkers", "1", "--host", "127.0.0.1"],
+                                      stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                                      cwd=away))
+        args = ["sweep", "--topology", os.path.join(inputs, "ring.yaml"), "--scenario",
+                os.path.join(inputs, "step.yaml"), "--capacity-bps", "2e6", "--buffer-pkts",
+                "30", "--rates", "200,900", "--policies", "shortest,mindelay", "--seeds", "1",
+                "--duration", "3", "--no-plot", "--quiet"]
+        out_remote, out_local = os.path.join(root, "remote"), os.path.join(root, "local")
+        buf = io.StringIO()
+        with redirect_stdout(buf):
+            rc = cli.main(args + ["--executor", "dask", "--scheduler", addr, "--out", out_remote])
+        assert rc == 0, buf.getvalue()
+        assert f"on the Dask scheduler {addr}" in buf.getvalue()
+        assert cli.main(args + ["--jobs", "1", "--out", out_local]) == 0
+        assert _table(out_remote) == _table(out_local)
+        assert len(_table(out_remote)[1]) == 4
+    finally:
+        for p in reversed(procs):
+            p.terminate()
+        for p in reversed(procs):
+            try:
+                p.wait(timeout=30)
+            except subprocess.TimeoutExpired:
+                p.kill()
+                p.wait()
