@@ -145,6 +145,42 @@ def test_progress_bar_moves_within_runs() -> None:
     assert log.getvalue().splitlines()[0].startswith("25%") and "60%" in log.getvalue()
 
 
+def _spec(seed: int) -> dict[str, Any]:
+    return {"policy": "shortest", "rate_pps": 100.0, "seed": seed, "duration_s": 1.0,
+            "series": False}
+
+
+def test_ctrl_c_in_process_keeps_the_finished_rows(monkeypatch: pytest.MonkeyPatch) -> None:
+    real = sw.run_sim
+
+    def run_sim(spec: Any, **kw: Any) -> Any:
+        if spec["seed"] == 2:
+            raise KeyboardInterrupt
+        return real(spec, **kw)
+
+    monkeypatch.setattr(sw, "run_sim", run_sim)
+    with pytest.raises(sw.Interrupted) as e:
+        sw.run_grid([_spec(1), _spec(2), _spec(3)], jobs=1)
+    assert [r["seed"] for r in e.value.rows] == [1] and e.value.total == 3
+    assert "error" not in e.value.rows[0]
+
+
+def test_a_worker_lost_mid_run_is_an_error_row_not_a_crash(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    # the pool's workers fork after the patch: the one that gets seed 2 dies on the spot
+    real = sw.run_sim
+
+    def run_sim(spec: Any, **kw: Any) -> Any:
+        if spec["seed"] == 2:
+            os._exit(3)
+        return real(spec, **kw)
+
+    monkeypatch.setattr(sw, "run_sim", run_sim)
+    rows = sw.run_grid([_spec(1), _spec(2)], jobs=2)
+    assert [r["seed"] for r in rows] == [1, 2]
+    assert "error" in rows[1] and "BrokenProcessPool" in rows[1]["error"]
+
+
 def test_missing_dask_is_a_clear_exit_2(tmp_path: os.PathLike[str],
                                         monkeypatch: pytest.MonkeyPatch,
                                         capsys: pytest.CaptureFixture[str]) -> None:
