@@ -756,6 +756,10 @@ def run(args: argparse.Namespace) -> int:
                        interrupted, pool.where if pool is not None else "this process")
     finally:
         if pool is not None:
+            if interrupted is not None and pool.kind == "dask":
+                print("routerd sweep: closing the Dask client (a run in progress may take a few "
+                      "seconds to let go)",
+                      file=sys.stderr)
             pool.close(interrupted is not None)
 
 
