@@ -795,7 +795,7 @@ def _report(args: argparse.Namespace, specs: Sequence[Mapping[str, Any]],
     if interrupted is not None:
         print(f"interrupted: {len(rows)} of {n_runs} runs finished; the outputs below hold "
               f"those only (sweep.json: \"partial\": true)")
-    print(text_table(points))
+    print(text_table(points) if points else "no run finished with results: no table")
     for p in written:
         print(f"wrote {p}")
     for r in failed:

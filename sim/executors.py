@@ -32,7 +32,8 @@ EXECUTORS = ("local", "dask")
 #: workers of the LocalCluster that ``--executor dask`` starts with no ``--scheduler``
 LOCAL_CLUSTER_WORKERS = 2
 
-MISSING_DASK = ("--executor dask needs Dask's distributed scheduler, which is not installed "
+MISSING_DASK = ("--executor dask (or sim.executor: dask) needs Dask's distributed scheduler, "
+                "which is not installed "
                 "({err}); install the cluster extra: pip install 'routerd[cluster]'")
 
 #: the queue a local pool worker reports progress on (set by the pool's initializer)
