@@ -1,7 +1,8 @@
 """``routerd sweep``: simulate rates × policies × seeds and draw delivery time against load.
 
-Owns: the command's options, the run grid, running it on a process pool, the
-aggregation over seeds, its outputs and the progress bar:
+Owns: the command's options, the run grid and its specs, running it on an executor
+(:mod:`routerd.sim.executors`: a local process pool or Dask), the aggregation over seeds,
+its outputs and the progress bar:
 
 * ``DIR/sweep.csv`` — one row per run (rate, policy, seed and every summary figure);
 * ``DIR/sweep.json`` — the same rows under ``runs``, the per-(policy, rate) points under
@@ -14,7 +15,12 @@ aggregation over seeds, its outputs and the progress bar:
 
 Each run is :func:`routerd.sim.run.run` on a plain dict spec, a pure function of its spec, so
 the grid maps onto worker processes as it is and the table does not depend on
-``--jobs``.  The confidence band comes from independent replications (one run per seed;
+``--jobs`` or ``--executor``.  A spec carries its inputs inline (:func:`inline_specs`: the
+topology, scenario and config as documents, no file paths), so it runs on a host that has
+none of the caller's files; a row comes back as plain values (:func:`plain`).  Progress
+comes from within runs (each reports its simulated time), a failed run is a row with its
+``error``, and Ctrl-C keeps the finished rows: the table, JSON and plot are written from
+them, marked ``"partial": true``, and the command exits 130.  The confidence band comes from independent replications (one run per seed;
 Law & Kelton, Simulation Modeling and Analysis, ch. 9): mean ± t(0.975, seeds − 1) ·
 s/√seeds; a single seed falls back to the run's own batch-means interval.
 
@@ -30,12 +36,17 @@ import os
 import sys
 import time
 from collections.abc import Callable, Iterable, Mapping, Sequence
-from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
+from concurrent.futures import FIRST_COMPLETED, Future, wait
 from typing import IO, Any
 
-from routerd.core.errors import InputError, Problem
+import numpy as np
+
+from routerd import __version__
+from routerd.core import topology as _topology
+from routerd.core.errors import InputError, Problem, read_yaml
 from routerd.io.progress import StatusLine
 
+from . import executors as _executors
 from . import policies as _policies
 from .commands_simulate import _clean, add_config_options, add_packet_options, add_topology_option
 from .run import SimSpec, load_inputs
@@ -86,7 +97,15 @@ def configure(p: argparse.ArgumentParser) -> None:
     p.add_argument("--scenario", metavar="FILE", default=None,
                    help="scenario YAML applied to every run (load factors, link events)")
     p.add_argument("--jobs", metavar="N", type=int, default=None,
-                   help="worker processes (default: one per CPU, at most one per run; 1 = no pool)")
+                   help="worker processes: the local pool's (default: one per CPU, at most one "
+                        "per run; 1 = no pool) or the Dask LocalCluster's (default 2)")
+    p.add_argument("--executor", choices=_executors.EXECUTORS, default=None,
+                   help="where runs execute: local (a process pool) or dask (a Dask cluster; "
+                        "needs routerd[cluster]) (default: the config's sim.executor, local)")
+    p.add_argument("--scheduler", metavar="ADDRESS", default=None,
+                   help="with --executor dask: the scheduler to send runs to, e.g. "
+                        "tcp://HOST:8786 (default: the config's sim.scheduler, else a "
+                        "LocalCluster of --jobs worker processes on this host)")
     p.add_argument("--out", metavar="DIR", required=True, help="output directory (created)")
     add_config_options(p, "override one config setting for every run (repeatable)")
     p.add_argument("--log-y", action="store_true", help="logarithmic delivery-time axis")
@@ -172,6 +191,26 @@ def build_specs(args: argparse.Namespace) -> list[dict[str, Any]]:
             for p in pols for r in rates for i in range(args.seeds)]
 
 
+def inline_specs(specs: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]]:
+    """The grid with every input carried as a document instead of a path, so a run needs
+    nothing from the caller's folder (or host): the topology as its mapping (explicit
+    capacities and buffers, so the link defaults are applied already), the scenario as its
+    parsed document, the config as its nested dict with the overrides applied (and
+    ``topology.file`` cleared: the topology travels itself), and the routerd version the
+    worker must have.  Same inputs for every spec (one sweep), loaded once."""
+    if not specs:
+        return []
+    sp = SimSpec.of(specs[0])
+    cfg, topo, _ = load_inputs(sp)
+    topo_doc = _topology.to_mapping(topo)
+    scen = sp.scenario
+    scen_doc = read_yaml(str(scen)) if scen is not None and not isinstance(scen, Mapping) else scen
+    cfg_doc = cfg.with_overrides({"topology.file": None}).nested()
+    common = {"topology": topo_doc, "scenario": scen_doc, "config": cfg_doc, "overrides": (),
+              "capacity_bps": None, "buffer_pkts": None, "routerd_version": __version__}
+    return [{**dict(s), **common} for s in specs]
+
+
 def check_specs(specs: Sequence[Mapping[str, Any]]) -> None:
     """Load the inputs once per policy in this process, so a bad file or flag is reported
     before any worker starts (InputError listing every problem)."""
@@ -191,50 +230,162 @@ def _cost(spec: Mapping[str, Any]) -> float:
     return float(spec["rate_pps"]) * float(spec["duration_s"]) * weight
 
 
-def run_one(spec: Mapping[str, Any]) -> dict[str, Any]:
-    """One run's summary, or ``{"error": ...}`` with the spec's keys if it failed."""
+def plain(v: Any) -> Any:
+    """A result value as plain Python (numpy scalars and arrays to numbers and lists), so
+    a row pickles the same from any worker and reads the same anywhere."""
+    if isinstance(v, Mapping):
+        return {str(k): plain(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        return [plain(x) for x in v]
+    if isinstance(v, np.ndarray):
+        return plain(v.tolist())
+    if isinstance(v, np.generic):
+        return v.item()
+    return v
+
+
+#: least wall time between two progress reports of one run
+REPORT_EVERY_S = 0.5
+
+
+def run_one(spec: Mapping[str, Any], index: int = -1, sink: Any = None) -> dict[str, Any]:
+    """One run's summary as plain values, or ``{"error": ...}`` with the spec's keys if it
+    failed.  With ``index`` >= 0, reports ``(index, simulated fraction)`` on ``sink`` (or
+    on the local pool worker's queue) at most every :data:`REPORT_EVERY_S`."""
+    spec = dict(spec)
+    want = spec.pop("routerd_version", None)
+    if sink is None and index >= 0:
+        sink = _executors.worker_sink()
     try:
-        row = dict(run_sim(dict(spec))["summary"])
+        if want is not None and want != __version__:
+            raise RuntimeError(f"this worker has routerd {__version__}, the sweep was started "
+                               f"with {want}: install the same version on every worker")
+        progress = None
+        if sink is not None:
+            dur = float(spec.get("duration_s") or 1.0)
+            last = [-math.inf]
+
+            def progress(t: float, events: int) -> None:
+                now = time.monotonic()
+                if now - last[0] < REPORT_EVERY_S:
+                    return
+                last[0] = now
+                try:
+                    sink.put((index, min(t / dur, 1.0)))
+                except Exception:  # noqa: BLE001, S110 -- progress is never worth failing a run for
+                    pass
+
+        row = plain(run_sim(spec, progress=progress)["summary"])
         # beside the mean: it covers delivered packets only
         row["lost_fraction"] = ((row["dropped"] + row["ttl_expired"]) / row["offered"]
                                 if row["offered"] else math.nan)
         return row
     except Exception as e:  # noqa: BLE001 -- one failed run must not lose the others
-        return {"policy": spec["policy"], "rate_pps": float(spec["rate_pps"]),
-                "seed": int(spec["seed"]), "error": f"{type(e).__name__}: {e}"}
+        return error_row(spec, e)
+
+
+def error_row(spec: Mapping[str, Any], e: BaseException) -> dict[str, Any]:
+    return {"policy": str(spec["policy"]), "rate_pps": float(spec["rate_pps"]),
+            "seed": int(spec["seed"]), "error": f"{type(e).__name__}: {e}"}
+
+
+class Interrupted(KeyboardInterrupt):
+    """Ctrl-C during :func:`run_grid`: ``rows`` holds the runs that finished (in spec
+    order), ``total`` the number of runs asked for."""
+
+    def __init__(self, rows: list[dict[str, Any]], total: int):
+        super().__init__(f"{len(rows)} of {total} runs finished")
+        self.rows = rows
+        self.total = total
 
 
 def run_grid(specs: Sequence[Mapping[str, Any]], jobs: int | None = None,
-             on_done: Callable[[int, int], None] | None = None) -> list[dict[str, Any]]:
-    """Run every spec; rows in the order of ``specs``.  ``on_done(done, total)`` after each."""
+             on_done: Callable[..., None] | None = None, *,
+             pool: _executors.Pool | None = None) -> list[dict[str, Any]]:
+    """Run every spec; rows in the order of ``specs``.
+
+    ``pool``: where to run (default: a local pool of ``jobs`` processes; ``jobs`` 1 runs
+    here, without a pool).  ``on_done(done, total, partial)`` after each finished run and
+    as progress arrives, ``partial`` being the summed simulated fraction of the runs still
+    going.  Ctrl-C raises :class:`Interrupted` carrying the finished rows, after
+    cancelling the runs not started (and stopping the workers of a pool made here; a
+    caller's ``pool`` is the caller's to close, with ``interrupted=True``).  A run whose
+    future fails (a worker lost) is a row with its error.
+    """
     total = len(specs)
-    jobs = min(jobs or os.cpu_count() or 1, max(total, 1))
     rows: list[dict[str, Any] | None] = [None] * total
     order = sorted(range(total), key=lambda i: -_cost(specs[i]))
+    running: dict[int, float] = {}
     done = 0
-    if jobs <= 1:
-        for i in order:
-            rows[i] = run_one(specs[i])
-            done += 1
-            if on_done:
-                on_done(done, total)
+
+    def finished() -> list[dict[str, Any]]:
         return [r for r in rows if r is not None]
-    with ProcessPoolExecutor(max_workers=jobs) as pool:
-        pending: dict[Future[dict[str, Any]], int] = {
-            pool.submit(run_one, dict(specs[i])): i for i in order}
-        try:
-            while pending:
-                fin, _ = wait(pending, return_when=FIRST_COMPLETED)
-                for f in fin:
-                    rows[pending.pop(f)] = f.result()
+
+    def tell() -> None:
+        if on_done:
+            on_done(done, total, sum(running.values()))
+
+    own = pool is None
+    if own:
+        jobs = min(jobs or os.cpu_count() or 1, max(total, 1))
+        if jobs <= 1:
+            inline = _InlineSink(running)
+            try:
+                for i in order:
+                    inline.current = i
+                    rows[i] = run_one(specs[i], i, inline.with_tell(tell))
+                    running.pop(i, None)
                     done += 1
-                    if on_done:
-                        on_done(done, total)
-        except BaseException:
-            for f in pending:
-                f.cancel()
-            raise
-    return [r for r in rows if r is not None]
+                    tell()
+            except KeyboardInterrupt:
+                raise Interrupted(finished(), total) from None
+            return finished()
+        pool = _executors.open_pool("local", jobs)
+    assert pool is not None
+    interrupted = False
+    try:
+        pending: dict[Future[dict[str, Any]], int] = {
+            pool.executor.submit(run_one, dict(specs[i]), i, pool.sink): i for i in order}
+        while pending:
+            fin, _ = wait(pending, timeout=0.25, return_when=FIRST_COMPLETED)
+            for index, frac in pool.drain():
+                if rows[index] is None:
+                    running[index] = float(frac)
+            for f in fin:
+                i = pending.pop(f)
+                try:
+                    rows[i] = f.result()
+                except Exception as e:  # noqa: BLE001 -- a lost worker fails one row
+                    rows[i] = error_row(specs[i], e)
+                running.pop(i, None)
+                done += 1
+            tell()
+    except KeyboardInterrupt:
+        interrupted = True
+        for f in pending:        # nothing new starts while the caller writes what finished
+            f.cancel()
+        raise Interrupted(finished(), total) from None
+    finally:
+        if own:
+            pool.close(interrupted)
+    return finished()
+
+
+class _InlineSink:
+    """Progress of runs made in this process (``--jobs 1``)."""
+
+    def __init__(self, running: dict[int, float]):
+        self.running = running
+        self.current = -1
+        self._tell: Callable[[], None] = lambda: None
+
+    def with_tell(self, tell: Callable[[], None]) -> _InlineSink:
+        self._tell = tell
+        return self
+
+    def put(self, item: tuple[int, float]) -> None:
+        self.running[item[0]] = item[1]
+        self._tell()
 
 
 class ProgressBar:
@@ -259,17 +410,19 @@ class ProgressBar:
         self._drawn = -1
         self._tenth = -1
 
-    def __call__(self, done: int, total: int | None = None) -> None:
-        self.update(done)
+    def __call__(self, done: int, total: int | None = None, partial: float = 0.0) -> None:
+        self.update(done, partial)
 
-    def update(self, done: int) -> None:
-        if not self.enabled or done == self._drawn:
+    def update(self, done: int, partial: float = 0.0) -> None:
+        """``done`` runs finished, and ``partial`` runs' worth of simulated time in the
+        runs still going (their fractions summed): the bar moves within runs."""
+        if not self.enabled or (done == self._drawn and done == self.total):
             return
         now = time.perf_counter()
         el = now - self.t0
         if el < self.after_s:
             return
-        frac = done / self.total if self.total else 1.0
+        frac = min((done + partial) / self.total, 1.0) if self.total else 1.0
         if self.tty:
             if now - self._last < 0.2 and done < self.total:
                 return
@@ -288,10 +441,18 @@ class ProgressBar:
         else:
             self.line.show(f"{int(frac * 100)}%  {text}", force=True)
 
-    def close(self) -> None:
-        if self.shown:
+    def close(self, done: int | None = None) -> None:
+        """The last line, if any was shown: all done, or ``done`` runs when the sweep was
+        cut short (the bar then says so rather than claiming 100%)."""
+        if not self.shown:
+            return
+        if done is None or done >= self.total:
             self.update(self.total)
-            self.line.done()
+        else:
+            el = time.perf_counter() - self.t0
+            self.line.show(f"stopped: {done}/{self.total} {self.label} finished  "
+                           f"{_dur(el)} elapsed", force=True)
+        self.line.done()
 
 
 def _dur(s: float) -> str:
@@ -532,46 +693,116 @@ def text_table(points: Sequence[Mapping[str, Any]]) -> str:
 
 # ---- the command --------------------------------------------------------------------------
 
+def _executor_choice(args: argparse.Namespace, spec0: Mapping[str, Any]) -> tuple[str, str | None]:
+    """(executor, scheduler) from the flags, else the config's sim.executor / sim.scheduler;
+    InputError for combinations that cannot mean anything."""
+    cfg, _, _ = load_inputs(SimSpec.of(spec0))
+    kind = args.executor or cfg["sim.executor"]
+    sched = args.scheduler if args.scheduler is not None else cfg["sim.scheduler"]
+    problems = []
+    if args.scheduler is not None and kind != "dask":
+        problems.append(Problem("--scheduler", args.scheduler, "needs --executor dask"))
+    if kind == "dask" and sched is not None:
+        if args.jobs is not None:
+            problems.append(Problem("--jobs", args.jobs, "has no effect with a Dask scheduler "
+                                    "(its workers run the runs); leave it out"))
+        if not str(sched).strip():
+            problems.append(Problem("--scheduler", sched, "is empty"))
+    if problems:
+        raise InputError(problems)
+    return kind, (sched if kind == "dask" else None)
+
+
 def run(args: argparse.Namespace) -> int:
     try:
         specs = build_specs(args)
         check_specs(specs)
+        kind, sched = _executor_choice(args, specs[0])
         _, topo, _ = load_inputs(SimSpec.of(specs[0]))
+        specs = inline_specs(specs)
     except InputError as e:
         print(f"routerd sweep: {len(e.problems)} problem(s)", file=sys.stderr)
         for p in e.problems:
             print(f"  {p}", file=sys.stderr)
         return 2
     n_runs = len(specs)
-    jobs = min(args.jobs or os.cpu_count() or 1, n_runs)
-    bar = ProgressBar(n_runs, enabled=not args.quiet)
     t0 = time.perf_counter()
-    rows = run_grid(specs, jobs, bar)
-    bar.close()
+    pool: _executors.Pool | None = None
+    jobs = min(args.jobs or os.cpu_count() or 1, n_runs)
+    try:
+        if kind == "dask":
+            pool = _executors.open_pool("dask", args.jobs, sched)
+            jobs = pool.workers
+        elif jobs > 1:
+            pool = _executors.open_pool("local", jobs)
+    except _executors.MissingDask as e:
+        print(f"routerd sweep: {e}", file=sys.stderr)
+        return 2
+    except (OSError, TimeoutError) as e:
+        print(f"routerd sweep: --scheduler {sched}: cannot reach the Dask scheduler "
+              f"({type(e).__name__}: {e})", file=sys.stderr)
+        return 2
+    interrupted: Interrupted | None = None
+    try:
+        bar = ProgressBar(n_runs, enabled=not args.quiet)  # from here: eta without start-up
+        try:
+            rows = run_grid(specs, jobs, bar, pool=pool)
+        except Interrupted as e:
+            interrupted = e
+            rows = e.rows
+        # what finished is written before the workers are stopped (a Dask worker busy
+        # with a long run can take seconds to let go)
+        return _report(args, specs, rows, topo.name, kind, sched, jobs, t0, bar,
+                       interrupted, pool.where if pool is not None else "this process")
+    finally:
+        if pool is not None:
+            if interrupted is not None and pool.kind == "dask":
+                print("routerd sweep: closing the Dask client (a run in progress may take a few "
+                      "seconds to let go)",
+                      file=sys.stderr)
+            pool.close(interrupted is not None)
+
+
+def _report(args: argparse.Namespace, specs: Sequence[Mapping[str, Any]],
+            rows: list[dict[str, Any]], topo_name: str, kind: str, sched: str | None,
+            jobs: int, t0: float, bar: ProgressBar, interrupted: Interrupted | None,
+            where: str) -> int:
+    """Write and print the outputs of the rows that finished; the exit status."""
+    n_runs = len(specs)
+    bar.close(len(rows) if interrupted is not None else None)
     wall = time.perf_counter() - t0
     points = aggregate(rows)
     meta = {
-        "topology": args.topology, "topology_name": topo.name, "policies": args.policies,
+        "topology": args.topology, "topology_name": topo_name, "policies": args.policies,
         "rates_pps": sorted({float(s["rate_pps"]) for s in specs}), "seeds": args.seeds,
         "first_seed": args.first_seed, "duration_s": args.duration, "warmup_s": args.warmup,
         "packet_bytes": args.packet_bytes, "size_dist": args.size_dist, "demands": args.demands,
         "scenario": args.scenario, "config": args.config, "overrides": list(args.overrides),
-        "jobs": jobs, "runs": n_runs, "wall_s": wall,
+        "executor": kind, "scheduler": sched,
+        "jobs": jobs, "runs": n_runs, "runs_finished": len(rows),
+        "partial": interrupted is not None, "wall_s": wall,
     }
     written = write_table(rows, points, meta, args.out)
     failed = [r for r in rows if "error" in r]
-    if not args.no_plot:
+    if not args.no_plot and points:
         try:
             written.append(plot(points, meta, args.out, log_y=args.log_y))
         except ImportError as e:
             print(f"routerd sweep: the plot needs matplotlib ({e}); the table is written",
                   file=sys.stderr)
     print(f"{n_runs} runs ({len(specs) // max(args.seeds, 1)} points x {args.seeds} seeds) on "
-          f"{topo.name} in {wall:.1f} s with {jobs} worker(s)")
-    print(text_table(points))
+          f"{topo_name} in {wall:.1f} s on {where}")
+    if interrupted is not None:
+        print(f"interrupted: {len(rows)} of {n_runs} runs finished; the outputs below hold "
+              f"those only (sweep.json: \"partial\": true)")
+    print(text_table(points) if points else "no run finished with results: no table")
     for p in written:
         print(f"wrote {p}")
     for r in failed:
         print(f"routerd sweep: run {r['policy']} at {r['rate_pps']:g}/s seed {r['seed']} "
               f"failed: {r['error']}", file=sys.stderr)
+    if interrupted is not None:
+        print(f"routerd sweep: interrupted; kept {len(rows)} finished run(s) of {n_runs}",
+              file=sys.stderr)
+        return 130
     return 1 if failed else 0

@@ -40,7 +40,9 @@ class SimSpec:
     ``topology``: a file path, ``topohub:GROUP/NAME``, a mapping in our YAML format, or
     None (the config's ``topology.file``, else the built-in demo lab).  ``scenario``: a
     file path, a parsed mapping, or None.  ``warmup_s`` None means a tenth of the
-    duration.  ``config``/``overrides``: a config file and ``KEY=VALUE`` strings.
+    duration.  ``config``/``overrides``: a config file or its nested mapping (a spec that
+    travels to another host carries the document, not the path), and ``KEY=VALUE``
+    strings.
     """
 
     policy: str = "shortest"
@@ -53,7 +55,7 @@ class SimSpec:
     warmup_s: float | None = None
     scenario: Any = None
     demands: bool = False
-    config: str | None = None
+    config: str | Mapping[str, Any] | None = None
     overrides: Sequence[str] = field(default_factory=tuple)
     capacity_bps: float | None = None
     buffer_pkts: int | None = None
@@ -140,7 +142,7 @@ def load_inputs(spec: SimSpec) -> tuple[_config.Config, _topology.Topology, _sce
 
 
 def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
-        observer: Any = None) -> dict[str, Any]:
+        observer: Any = None, progress: Any = None) -> dict[str, Any]:
     """Run one simulation.  Returns ``{"summary": {...}, "series": {...}, "links": [...],
     "link_events": [...]}`` (the scenario's link events: ``t_s``, ``action``, ``links``).
 
@@ -148,6 +150,8 @@ def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
     ``policy``: an unattached :class:`routerd.sim.policy.Policy` instance to use instead of
     ``spec.policy`` (the caller keeps a reference, e.g. to read its final tables).
     ``observer``: passed to :func:`routerd.sim.core.run_core` (live views at every sample).
+    ``progress``: ``progress(t, events)`` at every sample, instead of the stderr line that
+    ``spec.progress`` asks for (a sweep worker reports to its caller this way).
     A policy with a ``close()`` method (one that holds processes or sockets) is closed
     at the end, also when the run is interrupted.
     """
@@ -173,12 +177,13 @@ def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
     try:
         policy.attach(topo, r_policy, cfg)
         policy.offered(traffic.demand_pps(), traffic.mean_bits())
-        progress = _progress_printer(sp.duration_s) if sp.progress else None
+        printer = _progress_printer(sp.duration_s) if sp.progress and progress is None else None
         raw = run_core(topo, policy, traffic.packets(), duration_s=sp.duration_s, warmup_s=warm,
                        ttl=cfg["sim.ttl"], series_interval_s=cfg["sim.series_interval_s"],
-                       link_events=link_events, progress=progress, observer=observer)
-        if progress is not None:
-            progress(sp.duration_s, raw.events, final=True)
+                       link_events=link_events, progress=printer or progress,
+                       observer=observer)
+        if printer is not None:
+            printer(sp.duration_s, raw.events, final=True)
         result = reduce(raw, sp, topo, policy.name, warm, policy.stats())
         # the scenario's link events, for plots and readers of the result
         result["link_events"] = [

@@ -104,6 +104,8 @@ SCHEMA: dict[str, Field] = {
     "service.gc_freeze": F(bool, True, "move every object alive after start-up out of the garbage collector's reach (gc.freeze)"),
     # -- simulator ---------------------------------------------------------------------
     "sim.decision_interval_s": F(float, 0.05, "virtual time between table recomputations (like the service's debounce)", lo=0, lo_open=True),
+    "sim.executor": F(str, "local", "routerd sweep: where runs execute: a local process pool, or Dask (the routerd[cluster] extra; --scheduler ADDRESS, else a LocalCluster on this host)", choices=("local", "dask")),
+    "sim.scheduler": F(str, None, "routerd sweep with the dask executor: the scheduler's address, e.g. tcp://HOST:8786 (none: start a LocalCluster)", nullable=True),
     "sim.ttl": F(int, 64, "packet TTL in hops", lo=1, hi=255),
     "sim.feedback": F(str, "delayed", "estimate returns after the link's propagation delay, or instantly", choices=("delayed", "instant")),
     "sim.series_interval_s": F(float, 1.0, "virtual time per row of the simulator's time series (CSV, plots)", lo=0, lo_open=True),
@@ -319,10 +321,15 @@ def from_mapping(doc: Any, where: str = "<mapping>", base: Config | None = None)
     return from_mapping_flat(flat, where, base)
 
 
-def load(path: str | None = None, overrides: Iterable[str] = ()) -> Config:
-    """Load a YAML config file (or the defaults) and apply ``KEY=VALUE`` overrides."""
+def load(path: str | Mapping[str, Any] | None = None, overrides: Iterable[str] = ()) -> Config:
+    """Load a YAML config file (or the defaults) and apply ``KEY=VALUE`` overrides.  A
+    mapping in place of the path is the file's parsed document (a sweep's spec carries its
+    config inline, so it runs on a host without the file)."""
     cfg = Config({k: f.default for k, f in SCHEMA.items()})
-    if path is not None:
+    if isinstance(path, Mapping):
+        cfg = from_mapping(path, "<inline config>")
+        path = "<inline config>"
+    elif path is not None:
         cfg = from_mapping(read_yaml(path, ConfigError), path)
     ov: dict[str, Any] = {}
     problems: list[Problem] = []
