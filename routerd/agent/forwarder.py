@@ -153,56 +153,77 @@ def parse_hostport(text: Any, where: str) -> tuple[str, int]:
     return host.strip("[]"), int(port)
 
 
-def load_underlay(path: str, topo: Any) -> dict[tuple[int, int], tuple[tuple[str, int], tuple[str, int]]]:
-    """The underlay map file → {(a, b): (a's address, b's address)} for both directions.
+UnderlayEntry = tuple[int, list[str], tuple[str, int], tuple[str, int]]
 
-    Format (YAML)::
 
-        underlay:
-          links:
-            - {between: [a, b], addresses: ["10.254.0.1:7400", "10.254.0.2:7400"]}
+def underlay_entries(path: str) -> list[UnderlayEntry]:
+    """The underlay map file's entries, checked for form alone (no topology needed):
+    ``(position, [a, b], a's address, b's address)``.  InputError lists every problem."""
+    out, problems = _underlay_form(path)
+    if problems:
+        raise InputError([p for _, p in problems])
+    return out
 
-    Every entry must name a link of the topology (in at least one direction)."""
+
+def _underlay_form(path: str) -> tuple[list[UnderlayEntry], list[tuple[int, Problem]]]:
     if not os.path.exists(path):
         raise InputError(Problem(path, path, "does not exist (agent.underlay)"))
     doc = read_yaml(path)
     links = (doc or {}).get("underlay", {}).get("links") if isinstance(doc, dict) else None
     if not isinstance(links, list):
         raise InputError(Problem(f"{path}: underlay.links", links, "must be a list of links"))
-    out: dict[tuple[int, int], tuple[tuple[str, int], tuple[str, int]]] = {}
-    problems: list[Problem] = []
+    out: list[UnderlayEntry] = []
+    problems: list[tuple[int, Problem]] = []
     for i, ent in enumerate(links):
         w = f"{path}: underlay.links[{i}]"
         if not isinstance(ent, dict) or set(ent) != {"between", "addresses"}:
-            problems.append(Problem(w, ent, "must have exactly the keys between and addresses"))
+            problems.append((i, Problem(w, ent, "must have exactly the keys between and addresses")))
             continue
         bt, ad = ent["between"], ent["addresses"]
         if not (isinstance(bt, list) and len(bt) == 2 and all(isinstance(x, str) for x in bt)):
-            problems.append(Problem(f"{w}.between", bt, "must be two node names"))
+            problems.append((i, Problem(f"{w}.between", bt, "must be two node names")))
             continue
         if not (isinstance(ad, list) and len(ad) == 2):
-            problems.append(Problem(f"{w}.addresses", ad, "must be two HOST:PORT strings"))
-            continue
-        unknown = [x for x in bt if x not in topo.index]
-        if unknown:
-            problems.append(Problem(f"{w}.between", unknown[0], f"is not a node of topology {topo.name!r}"))
-            continue
-        a, b = topo.index[bt[0]], topo.index[bt[1]]
-        if (a, b) not in topo.link_index and (b, a) not in topo.link_index:
-            problems.append(Problem(f"{w}.between", bt, f"is not a link of topology {topo.name!r}"))
+            problems.append((i, Problem(f"{w}.addresses", ad, "must be two HOST:PORT strings")))
             continue
         try:
             pa, pb = parse_hostport(ad[0], f"{w}.addresses[0]"), parse_hostport(ad[1], f"{w}.addresses[1]")
         except InputError as ie:
-            problems += [p for p in ie.problems if isinstance(p, Problem)]
+            problems += [(i, p) for p in ie.problems if isinstance(p, Problem)]
+            continue
+        out.append((i, bt, pa, pb))
+    return out, problems
+
+
+def load_underlay(path: str, topo: Any) -> dict[tuple[int, int], tuple[tuple[str, int], tuple[str, int]]]:
+    """The underlay map file → {(a, b): (a's address, b's address)} for both directions.
+
+    Format (YAML; ``configs/underlay.yaml`` is an example)::
+
+        underlay:
+          links:
+            - {between: [a, b], addresses: ["10.254.0.1:7400", "10.254.0.2:7400"]}
+
+    Every entry must name a link of the topology (in at least one direction)."""
+    out: dict[tuple[int, int], tuple[tuple[str, int], tuple[str, int]]] = {}
+    entries, problems = _underlay_form(path)
+    for i, bt, pa, pb in entries:
+        w = f"{path}: underlay.links[{i}]"
+        unknown = [x for x in bt if x not in topo.index]
+        if unknown:
+            problems.append((i, Problem(f"{w}.between", unknown[0], f"is not a node of topology {topo.name!r}")))
+            continue
+        a, b = topo.index[bt[0]], topo.index[bt[1]]
+        if (a, b) not in topo.link_index and (b, a) not in topo.link_index:
+            problems.append((i, Problem(f"{w}.between", bt, f"is not a link of topology {topo.name!r}")))
             continue
         if (a, b) in out:
-            problems.append(Problem(f"{w}.between", bt, "is listed twice"))
+            problems.append((i, Problem(f"{w}.between", bt, "is listed twice")))
             continue
         out[(a, b)] = (pa, pb)
         out[(b, a)] = (pb, pa)
     if problems:
-        raise InputError(problems)
+        raise InputError([p for _, p in sorted(problems, key=lambda ip: ip[0])])
     return out
 
 
