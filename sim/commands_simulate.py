@@ -1,7 +1,11 @@
 """``routerd simulate``: run the packet-level simulator once and write its results.
 
 Owns: the command's options and its output files (``summary.json``, ``series.csv``,
-``links.csv``, with ``--plot`` ``delivery.png`` and ``utilisation.png``).
+``links.csv``, with ``--plot`` ``delivery.png`` and ``utilisation.png``), and what Ctrl-C
+does: the first SIGINT ends the run between two events (:class:`routerd.sim.core.StopRequest`)
+and everything up to there is written as usual, marked partial (``interrupted: true`` and
+``reached_s`` in ``summary.json``, ``PARTIAL`` on stdout), exit 130; a second one, or one
+before the simulation is under way, interrupts at once (exit 130, nothing written).
 Must not import at module level: matplotlib (only ``--plot`` needs it).
 """
 from __future__ import annotations
@@ -11,14 +15,36 @@ import csv
 import json
 import math
 import os
+import signal
 import sys
+import threading
+from collections.abc import Iterator
+from contextlib import contextmanager
 from typing import Any
 
 from routerd.core.errors import InputError
 
 from . import policies as _policies
+from .core import StopRequest
 from .run import SimSpec
 from .run import run as run_sim
+
+#: the exit status of a run ended by Ctrl-C (128 + SIGINT, as a shell reports it)
+EXIT_INTERRUPTED = 130
+
+
+@contextmanager
+def ctrl_c_stops(stop: StopRequest) -> Iterator[None]:
+    """While inside: SIGINT asks ``stop`` to end the run (the main thread only; elsewhere
+    Ctrl-C keeps its default meaning)."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    old = signal.signal(signal.SIGINT, lambda signum, frame: stop.request())
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, old)
 
 
 def add_topology_option(p: argparse.ArgumentParser) -> None:
@@ -170,11 +196,15 @@ def run(args: argparse.Namespace) -> int:
               "sets the packets; --speed scales its timing)", file=sys.stderr)
         return 2
     spec = spec_from_args(args)
+    stop = StopRequest()
     try:
-        result = run_sim(spec)
+        with ctrl_c_stops(stop):
+            result = run_sim(spec, stop=stop)
     except InputError as e:
         report_problems(e)
         return 2
+    s = result["summary"]
+    partial = bool(s.get("interrupted"))
     written = write_outputs(result, args.out)
     if args.plot:
         try:
@@ -186,7 +216,11 @@ def run(args: argparse.Namespace) -> int:
 
         _, topo, _ = load_inputs(spec)
         written += plots.draw_all(result, topo, args.out)
-    s = result["summary"]
+    if partial:
+        print(f"PARTIAL: interrupted at t={s['reached_s']:.2f} of {s['duration_s']:g} s; the "
+              f"figures and files cover the run up to there"
+              + (f" (still in the {s['warmup_s']:g} s warm-up: no packet was measured)"
+                 if s["reached_s"] <= s["warmup_s"] else ""))
     print(f"{s['policy']} on {s['topology']}: offered {s['offered']}, delivered {s['delivered']}, "
           f"dropped {s['dropped']}, ttl expired {s['ttl_expired']}; mean delivery "
           f"{_ms(s['mean_delivery_s'])} (p99 {_ms(s['p99_delivery_s'])}), "
@@ -194,8 +228,8 @@ def run(args: argparse.Namespace) -> int:
     for line in result.get("trace_lines", ()):   # routerd.sim.trace: what the trace could not inject
         print(line)
     for p in written:
-        print(f"wrote {p}")
-    return 0
+        print(f"wrote {p}" + (" (partial)" if partial else ""))
+    return EXIT_INTERRUPTED if partial else 0
 
 
 def lost_share(summary: dict[str, Any]) -> float:

@@ -50,6 +50,15 @@ statistic count packets *injected* at or after the warm-up; the time series coun
 packet, by the interval it left the network in.  The number of packets in the
 network is integrated over time after the warm-up so Little's law L = lambda W can be
 checked on every run (Little, Operations Research 9, 1961).
+
+Stopping early.  A :class:`StopRequest` handed to :func:`run_core` ends the run between
+two events: ``request()`` (safe from a signal handler: it only pushes one entry onto the
+heap, and heap operations run no Python code in between) queues a stop marker that sorts
+before everything else, and the loop ends when it pops it.  Every event before it was
+handled whole, so the counts are those of a run that ended at the cut: the time of the
+next pending event (nothing happens between the last handled event and it), clamped to
+``duration_s``.  The result then has ``stopped = True`` and ``end_s`` = the cut; the
+series holds the intervals completed before it.
 """
 from __future__ import annotations
 
@@ -74,6 +83,23 @@ _LINK0 = -5  # link event i has code _LINK0 - i
 
 #: A packet from a traffic source: (inject time s, source node, destination node, bits, flow id).
 PacketTuple = tuple[float, int, int, float, int]
+
+
+class StopRequest:
+    """Ask a running :func:`run_core` to end early (see "Stopping early").  Before the run
+    is under way and after it, there is nothing to stop: :meth:`request` then raises
+    :class:`KeyboardInterrupt`, as Ctrl-C would without it; so does a second request
+    (someone who presses Ctrl-C twice wants out now)."""
+
+    def __init__(self) -> None:
+        self.requested = False
+        self._push: Callable[[], None] | None = None
+
+    def request(self) -> None:
+        if self._push is None or self.requested:
+            raise KeyboardInterrupt
+        self.requested = True
+        self._push()
 
 
 @dataclass(frozen=True, slots=True)
@@ -130,8 +156,9 @@ class CoreResult:
     carried: list[int]               # per link: packets entered, all time
     series: CoreSeries
     series_interval_s: float
-    end_s: float
+    end_s: float                     # duration_s, or the cut when stopped early
     busy_window_s: list[float]       # per link: seconds transmitting within the window
+    stopped: bool = False            # ended early by a StopRequest (at end_s)
 
 
 def run_core(
@@ -146,6 +173,7 @@ def run_core(
     link_events: Sequence[LinkEvent] = (),
     progress: Callable[[float, int], None] | None = None,
     observer: Callable[[dict[str, Any]], None] | None = None,
+    stop: StopRequest | None = None,
 ) -> CoreResult:
     """Simulate until ``duration_s`` of virtual time; return raw counts, samples and series.
 
@@ -155,7 +183,8 @@ def run_core(
     ``observer(view)`` (live displays, partial results after an interrupt) is called at
     every series sample with ``t_s``, all-packet totals (``delivered``, ``dropped``,
     ``ttl_expired``, ``in_network``) and live references to the measured ``deliveries``
-    list and the ``series`` lists so far; it must not modify them.
+    list and the ``series`` lists so far; it must not modify them.  ``stop``: see
+    "Stopping early" in the module docstring.
     """
     n = topo.n
     nl = topo.n_links
@@ -217,6 +246,7 @@ def run_core(
     end_code = _LINK0 - len(events_sorted)
     heappush(heap, (math.nextafter(end, math.inf), end_code))
     ctrl_pushed = len(heap) - (1 if pending is not None else 0)
+    stop_code = end_code - 1
 
     # counters for packets injected at/after warm-up (the "measured" packets)
     offered = delivered = ttl_expired = 0
@@ -248,6 +278,9 @@ def run_core(
     inj_pushed = 1 if pending is not None else 0
     t = 0.0
     wall0 = time.perf_counter()
+    stopped = False
+    if stop is not None:   # disarmed after the loop; an exception out of it leaves a harmless push
+        stop._push = lambda: heappush(heap, (-math.inf, stop_code))
 
     while True:
         t, c = heappop(heap)
@@ -343,6 +376,12 @@ def run_core(
             continue
         elif c == end_code:
             t = end
+            break
+        elif c == stop_code:
+            stopped = True
+            # handled: every event before the next pending one; nothing happens until it
+            t = min(heap[0][0], end) if heap else end
+            end = t
             break
         else:
             ev = events_sorted[_LINK0 - c]
@@ -450,13 +489,16 @@ def run_core(
         p_dst[c] = -1
         free_ids.append(c)
 
+    if stop is not None:
+        stop._push = None
     t_end = end
     # transmissions booked beyond the end happen after it: not part of the run's busy time
     for k in range(nl):
         if free_at[k] > end:
             busy[k] -= free_at[k] - end
-    # every pop was an event; the end marker and what is still queued were not
-    events = sum(carried) + inj_pushed + ctrl_pushed - len(heap) - 1
+    # every pop was an event; the end marker (or the stop marker, the end marker then
+    # still queued) and what is still queued were not
+    events = sum(carried) + inj_pushed + ctrl_pushed - len(heap) - (0 if stopped else 1)
     if measuring:
         area += in_net * (t_end - last_t)
     window = max(t_end - warm, 0.0)
@@ -489,4 +531,5 @@ def run_core(
         series_interval_s=ivl,
         end_s=t_end,
         busy_window_s=[busy[k] - busy_warm[k] for k in range(nl)],
+        stopped=stopped,
     )

@@ -27,7 +27,7 @@ from .stats import delivery_stats
 
 from . import policies as _policies
 from routerd.io import scenario as _scenario
-from .core import CoreResult, run_core
+from .core import CoreResult, StopRequest, run_core
 from .traffic import PoissonTraffic
 
 DEMO_TOPOLOGY = os.path.join(os.path.dirname(os.path.dirname(_topology.__file__)), "data", "demo-lab.yaml")
@@ -142,7 +142,8 @@ def load_inputs(spec: SimSpec) -> tuple[_config.Config, _topology.Topology, _sce
 
 
 def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
-        observer: Any = None, progress: Any = None) -> dict[str, Any]:
+        observer: Any = None, progress: Any = None,
+        stop: StopRequest | None = None) -> dict[str, Any]:
     """Run one simulation.  Returns ``{"summary": {...}, "series": {...}, "links": [...],
     "link_events": [...]}`` (the scenario's link events: ``t_s``, ``action``, ``links``).
 
@@ -154,6 +155,9 @@ def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
     ``spec.progress`` asks for (a sweep worker reports to its caller this way).
     A policy with a ``close()`` method (one that holds processes or sockets) is closed
     at the end, also when the run is interrupted.
+    ``stop``: a :class:`routerd.sim.core.StopRequest` that may end the run early (``routerd
+    simulate``'s Ctrl-C); the result then covers the run up to the cut, and its summary
+    says so: ``interrupted: true`` and ``reached_s`` (absent from a complete run's summary).
     """
     sp = SimSpec.of(spec)
     cfg, topo, scen = load_inputs(sp)
@@ -181,15 +185,15 @@ def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
         raw = run_core(topo, policy, traffic.packets(), duration_s=sp.duration_s, warmup_s=warm,
                        ttl=cfg["sim.ttl"], series_interval_s=cfg["sim.series_interval_s"],
                        link_events=link_events, progress=printer or progress,
-                       observer=observer)
+                       observer=observer, stop=stop)
         if printer is not None:
-            printer(sp.duration_s, raw.events, final=True)
+            printer(raw.end_s, raw.events, final=True, stopped=raw.stopped)
         result = reduce(raw, sp, topo, policy.name, warm, policy.stats())
         # the scenario's link events, for plots and readers of the result
         result["link_events"] = [
             {"t_s": ev.t, "action": ev.action,
              "links": [f"{topo.nodes[topo.src[k]]}->{topo.nodes[topo.dst[k]]}" for k in ev.links]}
-            for ev in scen_events]
+            for ev in scen_events if not raw.stopped or ev.t <= raw.end_s]
         return _trace.annotate(result, trace_src, ltrace)
     finally:
         close = getattr(policy, "close", None)
@@ -238,6 +242,9 @@ def reduce(raw: CoreResult, sp: SimSpec, topo: _topology.Topology, policy: str,
         "events": raw.events,
         "wall_s": raw.wall_s,
     }
+    if raw.stopped:   # only then: a complete run's keys stay what sweep and the lab expect
+        summary["interrupted"] = True
+        summary["reached_s"] = raw.end_s
     for k, v in pstats.items():
         summary[f"policy_{k}"] = v
     links = [
@@ -270,10 +277,14 @@ def _progress_printer(duration: float, stream: Any = None) -> Any:
     t0 = time.perf_counter()
     line = StatusLine(stream if stream is not None else sys.stderr, every_s=0.5, plain_every_s=10.0)
 
-    def show(t: float, events: int, final: bool = False) -> None:
+    def show(t: float, events: int, final: bool = False, stopped: bool = False) -> None:
         now = time.perf_counter()
         if final:
-            if line.shown:
+            if stopped:   # always said (on a terminal, ending the live line first)
+                line.show(f"interrupted at t={t:.2f} of {duration:g} s: {events} events in "
+                          f"{now - t0:.1f} s", force=True)
+                line.done()
+            elif line.shown:
                 line.show(f"simulated {duration:g} s: {events} events in {now - t0:.1f} s", force=True)
                 line.done()
             return

@@ -1,5 +1,5 @@
 """routerd.agent.forwarder on loopback: weights, flowlets, probes, failure detection, TTL, malformed
-packets, reports and non-stop forwarding — real UDP sockets and real zmq, no root needed.
+packets, reports and the table hold — real UDP sockets and real zmq, no root needed.
 
 A diamond of our own: s reaches t through x (slow: 4 ms to x) or y (fast).  The agents run
 in threads of this process; a stand-in service (PUB for tables, ROUTER that decodes with
@@ -504,7 +504,7 @@ def test_ttl_expiry_and_malformed_packets_are_counted(diamond: Callable[..., Dia
     assert wait_until(lambda: s.metric("routerd_agent_malformed_packets_total", {"reason": "bad_version"}) == 1, 3)
 
 
-def test_nonstop_forwarding_and_resync(diamond: Callable[..., Diamond]) -> None:
+def test_table_hold_and_resync(diamond: Callable[..., Diamond]) -> None:
     # on a fake clock: table_stale_s 0.6 s, steps of 10 ms
     d = diamond()
     d.service.set_table("s", {"t": [["x", 1.0]]})
@@ -515,11 +515,11 @@ def test_nonstop_forwarding_and_resync(diamond: Callable[..., Diamond]) -> None:
         s = turns.agents["s"]
         turns.step_until(lambda: all(ln.state == "up" for ln in s.links.values()), 10)
         assert turns.wait(lambda: s.routes != {})
-        assert turns.metric("s", "routerd_agent_nonstop_forwarding") == 0
+        assert turns.metric("s", "routerd_agent_table_hold") == 0
         base = d.base
         d.service.close()                                   # the service is gone
         quiet_since = max(t for t in (s.table_at, s.last_ack_at) if t is not None)
-        turns.step_until(lambda: turns.metric("s", "routerd_agent_nonstop_forwarding") == 1, 80)
+        turns.step_until(lambda: turns.metric("s", "routerd_agent_table_hold") == 1, 80)
         # declared at the first report tick (every 50 ms) after 0.6 s without a table or ack
         assert 0.6 <= turns.clock.monotonic() - quiet_since <= 0.6 + 0.05 + 1e-9
         for i in range(20):
@@ -531,9 +531,9 @@ def test_nonstop_forwarding_and_resync(diamond: Callable[..., Diamond]) -> None:
         turns.step_until(lambda: s.links[2].state == "down", 25)
         d.service = FakeService(base, d.topo, epoch=2)       # it comes back: a new epoch
         d.service.set_table("s", {"t": [["x", 1.0]]})
-        assert turns.wait(lambda: turns.metric("s", "routerd_agent_nonstop_forwarding") == 0)
+        assert turns.wait(lambda: turns.metric("s", "routerd_agent_table_hold") == 0)
         assert turns.metric("s", "routerd_agent_service_restarts_seen_total") == 1
-        assert turns.metric("s", "routerd_agent_nonstop_periods_total") == 1
+        assert turns.metric("s", "routerd_agent_table_holds_total") == 1
         # what it saw down while the service was away reaches the new service: behind the
         # batches that piled up meanwhile, which go again after their timeout (2 s virtual)
         turns.step_until(lambda: turns.wait(lambda: ("s", "y", "down") in d.service.links, 0.01),

@@ -356,7 +356,7 @@ def test_out_dir_earlier_demo_replaced_other_content_refused(tmp_path: Path) -> 
 
     old = tmp_path / "old"
     (old / "state" / "journal").mkdir(parents=True)
-    (old / "state" / "journal" / "seg-1.rj").write_bytes(b"x")
+    (old / "state" / "journal" / "from-000000000001.rdj").write_bytes(b"x")
     (old / "scenario.yaml").write_text("scenario: {}\n")
     (old / "delivery.png").write_bytes(b"png")
     (old / "notes.txt").write_text("mine")

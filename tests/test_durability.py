@@ -165,7 +165,7 @@ def engine_counts(sp: ServiceProc) -> np.ndarray:
     from routerd.agent import client
 
     rec = client.control(sp.endpoints["control"], {"op": "snapshot"}, timeout_s=10)["snapshot"]["record"]
-    path = os.path.join(journal.snapshot_dir(sp.state_dir), f"snap-{rec:020d}.rs")
+    path = os.path.join(journal.snapshot_dir(sp.state_dir), journal.snapshot_name(rec))
     for _ in range(50):       # written before the reply; the loop may have moved past it
         if os.path.exists(path):
             break

@@ -125,7 +125,7 @@ def test_journal_and_snapshots_are_private(tmp_path: os.PathLike[str], mask: int
         for no in (1, 2):
             snaps.write({"engine": {"Q": np.zeros(3)}}, no)
     names = tree_modes(state)
-    assert any(n.endswith(".bad") for n in names) and any(n.endswith(".rs") for n in names)
+    assert any(n.endswith(".bad") for n in names) and any(n.endswith(".rdsnap") for n in names)
     # the state dir itself was made by Journal's parent creation (umask), not by us: the
     # service creates it private (tests/test_service.py); here its sub-folders and files
     del names["."]

@@ -54,7 +54,7 @@ def test_segment_layout_parsed_independently(tmp_path: pytest.TempPathFactory) -
     j = _fill(d, 3)
     j.close()
     (path,) = [os.path.join(d, f) for f in os.listdir(d)]
-    assert os.path.basename(path) == "seg-00000000000000000001.rj"
+    assert os.path.basename(path) == "from-000000000001.rdj"
     data = _read(path)
     assert data[:8] == b"RDJOURN1" and struct.unpack_from("<Q", data, 8) == (1,)
     off, seen = 16, []
@@ -243,7 +243,7 @@ def test_start_after_skips_numbers_a_snapshot_covers(tmp_path: pytest.TempPathFa
     rep = J.recover(d)
     (f,) = rep.findings
     assert (f.kind, f.where, f.action, f.lost) == ("gap", "after", "stop", (43, 50))
-    assert rep.quarantined == ["seg-00000000000000000051.rj.bad"] and rep.next_record == 43
+    assert rep.quarantined == ["from-000000000051.rdj.bad"] and rep.next_record == 43
 
 
 def test_fsync_policies(tmp_path: pytest.TempPathFactory, monkeypatch: pytest.MonkeyPatch) -> None:
@@ -353,7 +353,7 @@ def test_snapshot_round_trip_keep_and_fallback(tmp_path: pytest.TempPathFactory)
 
 def test_snapshot_temp_leftovers_removed(tmp_path: pytest.TempPathFactory) -> None:
     d = str(tmp_path)
-    _write(os.path.join(d, ".snap-00000000000000000005.tmp123"), b"half")
+    _write(os.path.join(d, ".snap-000000000005.tmp123"), b"half")
     s = J.SnapshotStore(d)
     assert os.listdir(d) == [] and s.latest() is None
 
@@ -504,7 +504,7 @@ def test_snapshot_first_format_still_reads(tmp_path: pytest.TempPathFactory) -> 
     got, no = J.SnapshotStore(d).latest()
     assert no == 7 and _eq(got, st)
     J.SnapshotStore(d).write(st, 9)                      # the new format next to it
-    assert _read(os.path.join(d, "snap-00000000000000000009.rs"))[:8] == J.SNAP2_MAGIC
+    assert _read(os.path.join(d, "upto-000000000009.rdsnap"))[:8] == J.SNAP2_MAGIC
     assert [n for n, _ in J.SnapshotStore(d).list()] == [7, 9]
 
 

@@ -327,3 +327,76 @@ def test_replay_and_start_up_agree(tmp_path: pytest.TempPathFactory, damage: str
     with open(tmp_path / "out2" / "tables.json") as fh:
         assert json.load(fh)["tables"] == json.loads(json.dumps(wire.tables_by_name(svc.engine)))
     assert res2["info"]["records"] >= 1
+
+
+# ---- a state dir written under the names before the rename ---------------------------------
+def _to_old_names(d: str) -> tuple[list[str], list[str]]:
+    """Rename every segment and snapshot of ``d`` to the names routerd 0.1.0 wrote
+    (``journal/seg-<first record, 20 digits>.rj``, ``snapshots/snap-<record, 20 digits>.rs``)."""
+    segs, snaps = [], []
+    for first, path in J._segments(J.journal_dir(d)):
+        new = os.path.join(J.journal_dir(d), f"seg-{first:020d}.rj")
+        os.rename(path, new)
+        segs.append(os.path.basename(new))
+    for no, path in J.SnapshotStore(J.snapshot_dir(d)).list():
+        new = os.path.join(J.snapshot_dir(d), f"snap-{no:020d}.rs")
+        os.rename(path, new)
+        snaps.append(os.path.basename(new))
+    return segs, snaps
+
+
+def test_a_state_dir_with_the_old_file_names_recovers_replays_and_goes_on(
+        tmp_path: pytest.TempPathFactory) -> None:
+    d = str(tmp_path / "s")
+    w = Writer(d, seed=3)
+    w.run(110, snapshot_at=(30, 60, 90))
+    old_segs, old_snaps = _to_old_names(d)
+    assert len(old_segs) > 2 and len(old_snaps) == 3
+    assert files(d) == {os.path.join("journal", n) for n in old_segs} | {
+        os.path.join("snapshots", n) for n in old_snaps}
+
+    res = _replay(d, str(tmp_path / "out"))
+    assert res["info"]["recovery"]["clean"]
+    svc = start_up(d)
+    try:
+        rec = svc.health()["recovery"]
+        assert rec["clean"] and not rec["findings"] and not rec["snapshots_missing"]
+        assert rec["snapshot"]["record"] == w.snaps.list()[-1][0]     # the newest old-named one
+        assert svc.engine is not None and svc.engine.same_state(w.eng)
+        with open(tmp_path / "out" / "tables.json") as fh:
+            assert json.load(fh)["tables"] == json.loads(json.dumps(wire.tables_by_name(svc.engine)))
+    finally:
+        stop(svc)
+    # one old-named segment given on its own is still a segment to replay
+    assert R.locate(os.path.join(J.journal_dir(d), old_segs[-1])).journal_dir
+
+    # the new version goes on in the same directory: new files get the new names, the old
+    # ones are read, appended to and retired like any other
+    w.j = J.Journal(J.journal_dir(d), segment_bytes=2048)
+    w.snaps = J.SnapshotStore(J.snapshot_dir(d))
+    w.run(60, snapshot_at=(30,))
+    names = files(d)
+    assert any(n.startswith(os.path.join("snapshots", "upto-")) and n.endswith(".rdsnap") for n in names)
+    assert any(n.startswith(os.path.join("journal", "from-")) and n.endswith(".rdj") for n in names)
+    assert any(n.endswith(".rs") for n in names), "the older snapshots are kept as before"
+    res = _replay(d, str(tmp_path / "out2"))
+    svc = start_up(d)
+    try:
+        rec = svc.health()["recovery"]
+        assert rec["clean"] and rec["snapshot"]["record"] == w.snaps.list()[-1][0]
+        assert svc.engine is not None and svc.engine.same_state(w.eng)
+        with open(tmp_path / "out2" / "tables.json") as fh:
+            assert json.load(fh)["tables"] == json.loads(json.dumps(wire.tables_by_name(svc.engine)))
+    finally:
+        stop(svc)
+    # the newest snapshot lost: the fallback is an old-named one, and the note names the lost one
+    newest = w.snaps.list()[-1][1]
+    os.unlink(newest)
+    svc = start_up(d)
+    try:
+        rec = svc.health()["recovery"]
+        assert rec["snapshots_missing"] == [os.path.basename(newest)]
+        assert rec["snapshot"]["file"].endswith(".rs")
+        assert svc.engine is not None and svc.engine.same_state(w.eng)
+    finally:
+        stop(svc)

@@ -3,8 +3,11 @@ from __future__ import annotations
 
 import csv
 import json
+import signal
 import subprocess
 import sys
+
+import pytest
 
 from routerd.tools.cli import main
 
@@ -92,3 +95,43 @@ def test_many_problems_are_summarised_with_a_hint(tmp_path, capsys) -> None:
     assert sum(1 for ln in err if ln.startswith("  topohub:")) == 12
     assert any("more (routerd validate lists them all)" in ln for ln in err)
     assert err[-1].startswith("hint: --capacity-bps and --buffer-pkts")
+
+
+@pytest.mark.slow
+def test_ctrl_c_keeps_what_finished_marked_partial_exit_130(tmp_path) -> None:
+    out = tmp_path / "o"
+    sc = tmp_path / "cut.yaml"         # one link event early, one far beyond any cut
+    sc.write_text("scenario:\n  links:\n    - {at_s: 1, between: [w3, e3], down: true}\n"
+                  "    - {at_s: 90000, between: [w3, e3], up: true}\n")
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "routerd", "simulate", "--policy", "qrouting", "--rate", "1500",
+         "--duration", "100000", "--warmup", "0.5", "--seed", "3", "--scenario", str(sc), "--plot", "--out", str(out)],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        # off a terminal the first progress line comes after 2 s of simulating: under way
+        first = proc.stderr.readline()
+        assert first.startswith("["), (first, proc.stderr.read() if proc.poll() is not None else "")
+        proc.send_signal(signal.SIGINT)
+        stdout, rest = proc.communicate(timeout=120)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    stderr = first + rest
+    assert proc.returncode == 130, (stdout, stderr)
+    assert "\r" not in stderr and "interrupted at t=" in stderr
+    s = json.loads((out / "summary.json").read_text())
+    assert s["interrupted"] is True and s["duration_s"] == 100000
+    reached = s["reached_s"]
+    assert 1.0 < reached < 100000
+    assert s["offered"] == s["delivered"] + s["dropped"] + s["ttl_expired"] + s["in_flight_at_end"]
+    assert s["offered"] > 0 and s["delivered"] > 0
+    with open(out / "series.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    # every completed interval, none past the cut
+    assert rows and reached - 1.0 <= float(rows[-1]["t_s"]) <= reached
+    assert [float(r["t_s"]) for r in rows] == [float(i + 1) for i in range(len(rows))]
+    assert (out / "links.csv").exists() and (out / "delivery.png").exists()
+    lines = stdout.splitlines()
+    assert lines[0].startswith(f"PARTIAL: interrupted at t={reached:.2f} of 100000 s")
+    assert any(ln.startswith("wrote ") and ln.endswith("summary.json (partial)") for ln in lines)

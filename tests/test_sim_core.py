@@ -140,14 +140,16 @@ def test_link_down_drops_queued_packets_and_counts_them() -> None:
     assert isinstance(raw, CoreResult) and isinstance(raw.series, CoreSeries)
     with pytest.raises(dataclasses.FrozenInstanceError):
         raw.offered = 0  # type: ignore[misc]
-    # the keys the loop's result has always had (what dataclasses.asdict gives)
+    # the keys the loop's result has (what dataclasses.asdict gives; `stopped` came with
+    # partial runs on Ctrl-C)
     d = dataclasses.asdict(raw)
     assert set(d) == {
         "offered", "delivered", "dropped", "dropped_buffer", "dropped_link_down",
         "dropped_no_route", "ttl_expired", "in_flight_end", "offered_all", "delivered_all",
         "dropped_all", "ttl_expired_all", "deliveries", "hops_sum", "events", "wall_s",
         "window_s", "little_area", "left", "sys_sum", "busy_s", "carried", "series",
-        "series_interval_s", "end_s", "busy_window_s"}
+        "series_interval_s", "end_s", "busy_window_s", "stopped"}
+    assert raw.stopped is False and raw.end_s == 10.0
     assert set(d["series"]) == {"t_s", "delivered", "delivery_sum_s", "dropped", "ttl_expired",
                                 "in_network", "link_util"}
     down = raw.dropped_link_down
@@ -261,3 +263,42 @@ def test_long_run_utilisation_is_rho() -> None:
     half = 2.093 * b.std(ddof=1) / math.sqrt(20)   # Student's t, 19 d.o.f. (standard tables)
     assert_within_ci(float(util.mean()), half, lam / MU)
     assert r["links"][k]["utilisation"] == pytest.approx(util.mean(), rel=0.005)
+
+
+# ---- stopping early (routerd simulate's Ctrl-C) ----------------------------------------------
+def test_a_stopped_run_counts_exactly_what_happened_before_the_cut() -> None:
+    """A StopRequest made at the sample at t = 3 s ends the run there, between two events:
+    its counts equal those of a run of 3 s (the series, deliveries, drops, events), and it
+    says where it stopped."""
+    from routerd.sim.core import StopRequest
+
+    spec = {"policy": "shortest", "rate_pps": 1800.0, "duration_s": 20.0, "seed": 5,
+            "warmup_s": 0.5, "series": True}
+    stop = StopRequest()
+    cut_at = []
+
+    def observer(view: dict) -> None:
+        if view["t_s"] >= 3.0 and not cut_at:
+            cut_at.append(view["t_s"])
+            stop.request()
+
+    part = run(spec, observer=observer, stop=stop)
+    whole = run({**spec, "duration_s": 3.0})
+    p, w = part["summary"], whole["summary"]
+    assert cut_at == [3.0] and stop.requested
+    assert p["interrupted"] is True and 3.0 < p["reached_s"] < 3.01
+    assert "interrupted" not in w and "reached_s" not in w
+    for k in ("offered", "delivered", "dropped", "dropped_buffer", "ttl_expired",
+              "in_flight_at_end", "mean_delivery_s", "p99_delivery_s", "mean_hops", "events"):
+        assert p[k] == w[k], k
+    assert p["dropped"] > 0                     # the demo lab's trunk overflows at this rate
+    for k in ("t_s", "delivered", "mean_delivery_s", "dropped", "in_network"):
+        assert part["series"][k] == whole["series"][k], k
+    assert len(part["series"]["t_s"]) == 3
+    assert all(0 <= ln["utilisation"] <= 1 for ln in part["links"])
+    # the request is one-shot: a second one (Ctrl-C again) interrupts at once, and so does
+    # one made when no run is under way
+    with pytest.raises(KeyboardInterrupt):
+        stop.request()
+    with pytest.raises(KeyboardInterrupt):
+        StopRequest().request()

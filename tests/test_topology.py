@@ -11,6 +11,7 @@ import importlib.resources
 import json
 import math
 import os
+import sys
 
 import networkx as nx
 import numpy as np
@@ -369,3 +370,18 @@ def test_shortest_from_matches_networkx_single_source_dijkstra(key: str, topohub
             assert w[k] + tail == pytest.approx(ref[d], rel=1e-9, abs=1e-15)
     dist0, _ = t.shortest_from(0)                 # default weights: the delays
     assert np.allclose(dist0, t.shortest_delays()[0], rtol=1e-12, atol=0)
+
+
+def test_topohub_missing_names_the_extra(monkeypatch: pytest.MonkeyPatch, tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    """Without topohub a topohub: reference says which extra brings it, in the loader and on
+    the command line (exit 2, no traceback)."""
+    from routerd.tools.cli import main
+
+    monkeypatch.setitem(sys.modules, "topohub", None)     # `import topohub` raises ImportError
+    with pytest.raises(T.TopologyError) as e:
+        T.load("topohub:sndlib/abilene", DEF)
+    assert "pip install 'routerd[topohub]'" in str(e.value) and "topohub:sndlib/abilene" in str(e.value)
+    rc = main(["simulate", "--policy", "shortest", "--rate", "10", "--duration", "1", "--seed", "1",
+               "--topology", "topohub:sndlib/abilene", "--out", str(tmp_path / "o"), "--quiet"])
+    err = capsys.readouterr().err
+    assert rc == 2 and "routerd[topohub]" in err and "Traceback" not in err

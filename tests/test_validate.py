@@ -143,3 +143,48 @@ def test_as_a_subprocess(tmp_path) -> None:  # type: ignore[no-untyped-def]
 def test_shipped_files_validate(path: str, capsys) -> None:  # type: ignore[no-untyped-def]
     rc, lines = _run(capsys, path)
     assert rc == 0 and lines[0].startswith(f"OK {path}: topology 'demo-lab': 16 nodes")
+
+
+CONFIGS = os.path.join(os.path.dirname(os.path.dirname(os.path.abspath(__file__))), "configs")
+
+
+def test_every_file_in_configs_validates(capsys) -> None:  # type: ignore[no-untyped-def]
+    files = sorted(os.path.join(CONFIGS, n) for n in os.listdir(CONFIGS)
+                   if os.path.isfile(os.path.join(CONFIGS, n)))
+    assert {"lab.yaml", "agent.yaml", "underlay.yaml"} <= {os.path.basename(f) for f in files}
+    rc, lines = _run(capsys, *files)
+    assert rc == 0, lines
+    assert [ln.split(":")[0] for ln in lines] == [f"OK {f}" for f in files]
+    (agent_line,) = [ln for ln in lines if ln.startswith(f"OK {os.path.join(CONFIGS, 'agent.yaml')}")]
+    assert "topology 'lab-small'" in agent_line and "underlay map underlay.yaml: 8 link(s)" in agent_line
+
+
+def test_the_example_agent_config_starts_every_node(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    """What `routerd agent --node X --config configs/agent.yaml` reads before it binds
+    anything: config, topology and underlay map, and the link ends of every node."""
+    import argparse
+
+    from routerd.agent import forwarder as A
+
+    cfg, topo = A.load(argparse.Namespace(config=os.path.join(CONFIGS, "agent.yaml"), metrics=None))
+    assert topo.name == "lab-small" and cfg["agent.underlay"] == os.path.join(CONFIGS, "underlay.yaml")
+    ul = A.load_underlay(cfg["agent.underlay"], topo)
+    for x in range(topo.n):
+        ends = A.link_ends(x, topo, ul, cfg["agent.underlay"])
+        assert len({e.local for e in ends}) == len(ends)      # one socket per link end
+
+
+def test_underlay_maps_checked_alone_and_through_a_config(tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    _w(tmp_path, "t.yaml", GOOD_TOPO)
+    partial = _w(tmp_path, "u.yaml", {"underlay": {"links": [
+        {"between": ["a", "b"], "addresses": ["10.0.0.1:7410", "10.0.0.2:7410"]}]}})
+    rc, lines = _run(capsys, partial)
+    assert rc == 0 and lines[0].startswith(f"OK {partial}: underlay map: 1 link(s), 2 host")
+    cfg = _w(tmp_path, "c.yaml", {"topology": {"file": "t.yaml"}, "agent": {"underlay": "u.yaml"}})
+    rc, lines = _run(capsys, cfg)
+    assert rc == 1 and "gives no addresses for these links of topology 'bench-lab'" in lines[1]
+    assert "['a', 'c'], ['b', 'c']" in lines[1]
+    bad = _w(tmp_path, "bad.yaml", {"underlay": {"links": [
+        {"between": ["a", "b"], "addresses": ["10.0.0.1", "10.0.0.2:7410"]}]}})
+    rc, lines = _run(capsys, bad)
+    assert rc == 1 and f"{bad}: underlay.links[0].addresses[0]: '10.0.0.1' is not HOST:PORT" in lines[1]

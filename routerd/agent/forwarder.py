@@ -59,9 +59,11 @@ on its own.  Actions: ``report`` queues a link row to the service, ``count`` upd
 link metrics and recomputes the static fallback (the set of usable links changed), and
 ``record`` keeps a detection entry for the status file.
 
-Non-stop forwarding (in the spirit of RFC 3623's graceful restart): when the service
-publishes nothing and acknowledges nothing for ``agent.table_stale_s`` the agent keeps
-forwarding on its last table, says so in ``routerd_agent_nonstop_forwarding``, buffers its
+Table hold (the agent's side of a service outage; compare the helper role of RFC 3623's
+graceful restart): when the service publishes nothing and acknowledges nothing for
+``agent.table_stale_s`` the agent holds its last table and keeps forwarding on it, says so
+in ``routerd_agent_table_hold`` (and counts each hold in ``routerd_agent_table_holds_total``
+and the status file's ``table_hold``), buffers its
 reports (bounded, oldest dropped and counted), and resynchronises when the service is
 back: a new epoch's table replaces the old one, pending batches are resent with their
 numbers (the service applies each once), and links it sees down are reported again.
@@ -151,56 +153,77 @@ def parse_hostport(text: Any, where: str) -> tuple[str, int]:
     return host.strip("[]"), int(port)
 
 
-def load_underlay(path: str, topo: Any) -> dict[tuple[int, int], tuple[tuple[str, int], tuple[str, int]]]:
-    """The underlay map file → {(a, b): (a's address, b's address)} for both directions.
+UnderlayEntry = tuple[int, list[str], tuple[str, int], tuple[str, int]]
 
-    Format (YAML)::
 
-        underlay:
-          links:
-            - {between: [a, b], addresses: ["10.254.0.1:7400", "10.254.0.2:7400"]}
+def underlay_entries(path: str) -> list[UnderlayEntry]:
+    """The underlay map file's entries, checked for form alone (no topology needed):
+    ``(position, [a, b], a's address, b's address)``.  InputError lists every problem."""
+    out, problems = _underlay_form(path)
+    if problems:
+        raise InputError([p for _, p in problems])
+    return out
 
-    Every entry must name a link of the topology (in at least one direction)."""
+
+def _underlay_form(path: str) -> tuple[list[UnderlayEntry], list[tuple[int, Problem]]]:
     if not os.path.exists(path):
         raise InputError(Problem(path, path, "does not exist (agent.underlay)"))
     doc = read_yaml(path)
     links = (doc or {}).get("underlay", {}).get("links") if isinstance(doc, dict) else None
     if not isinstance(links, list):
         raise InputError(Problem(f"{path}: underlay.links", links, "must be a list of links"))
-    out: dict[tuple[int, int], tuple[tuple[str, int], tuple[str, int]]] = {}
-    problems: list[Problem] = []
+    out: list[UnderlayEntry] = []
+    problems: list[tuple[int, Problem]] = []
     for i, ent in enumerate(links):
         w = f"{path}: underlay.links[{i}]"
         if not isinstance(ent, dict) or set(ent) != {"between", "addresses"}:
-            problems.append(Problem(w, ent, "must have exactly the keys between and addresses"))
+            problems.append((i, Problem(w, ent, "must have exactly the keys between and addresses")))
             continue
         bt, ad = ent["between"], ent["addresses"]
         if not (isinstance(bt, list) and len(bt) == 2 and all(isinstance(x, str) for x in bt)):
-            problems.append(Problem(f"{w}.between", bt, "must be two node names"))
+            problems.append((i, Problem(f"{w}.between", bt, "must be two node names")))
             continue
         if not (isinstance(ad, list) and len(ad) == 2):
-            problems.append(Problem(f"{w}.addresses", ad, "must be two HOST:PORT strings"))
-            continue
-        unknown = [x for x in bt if x not in topo.index]
-        if unknown:
-            problems.append(Problem(f"{w}.between", unknown[0], f"is not a node of topology {topo.name!r}"))
-            continue
-        a, b = topo.index[bt[0]], topo.index[bt[1]]
-        if (a, b) not in topo.link_index and (b, a) not in topo.link_index:
-            problems.append(Problem(f"{w}.between", bt, f"is not a link of topology {topo.name!r}"))
+            problems.append((i, Problem(f"{w}.addresses", ad, "must be two HOST:PORT strings")))
             continue
         try:
             pa, pb = parse_hostport(ad[0], f"{w}.addresses[0]"), parse_hostport(ad[1], f"{w}.addresses[1]")
         except InputError as ie:
-            problems += [p for p in ie.problems if isinstance(p, Problem)]
+            problems += [(i, p) for p in ie.problems if isinstance(p, Problem)]
+            continue
+        out.append((i, bt, pa, pb))
+    return out, problems
+
+
+def load_underlay(path: str, topo: Any) -> dict[tuple[int, int], tuple[tuple[str, int], tuple[str, int]]]:
+    """The underlay map file → {(a, b): (a's address, b's address)} for both directions.
+
+    Format (YAML; ``configs/underlay.yaml`` is an example)::
+
+        underlay:
+          links:
+            - {between: [a, b], addresses: ["10.254.0.1:7400", "10.254.0.2:7400"]}
+
+    Every entry must name a link of the topology (in at least one direction)."""
+    out: dict[tuple[int, int], tuple[tuple[str, int], tuple[str, int]]] = {}
+    entries, problems = _underlay_form(path)
+    for i, bt, pa, pb in entries:
+        w = f"{path}: underlay.links[{i}]"
+        unknown = [x for x in bt if x not in topo.index]
+        if unknown:
+            problems.append((i, Problem(f"{w}.between", unknown[0], f"is not a node of topology {topo.name!r}")))
+            continue
+        a, b = topo.index[bt[0]], topo.index[bt[1]]
+        if (a, b) not in topo.link_index and (b, a) not in topo.link_index:
+            problems.append((i, Problem(f"{w}.between", bt, f"is not a link of topology {topo.name!r}")))
             continue
         if (a, b) in out:
-            problems.append(Problem(f"{w}.between", bt, "is listed twice"))
+            problems.append((i, Problem(f"{w}.between", bt, "is listed twice")))
             continue
         out[(a, b)] = (pa, pb)
         out[(b, a)] = (pb, pa)
     if problems:
-        raise InputError(problems)
+        raise InputError([p for _, p in sorted(problems, key=lambda ip: ip[0])])
     return out
 
 
@@ -244,8 +267,8 @@ class AgentMetrics:
         self.flowlets = Gauge("routerd_agent_flowlets", "Flowlets currently pinned", registry=r)
         self.tables = Counter("routerd_agent_tables_received", "Table publications taken for this node", registry=r)
         self.table_age = Gauge("routerd_agent_table_age_seconds", "Seconds since the table in use arrived (NaN: none yet)", registry=r)
-        self.nonstop = Gauge("routerd_agent_nonstop_forwarding", "1 while forwarding on the last good table with the service unreachable", registry=r)
-        self.nonstop_periods = Counter("routerd_agent_nonstop_periods", "Times the agent entered non-stop forwarding", registry=r)
+        self.table_hold = Gauge("routerd_agent_table_hold", "1 while holding the last good table (forwarding on it) with the service unreachable", registry=r)
+        self.table_holds = Counter("routerd_agent_table_holds", "Times the agent began holding its last table (service unreachable)", registry=r)
         self.resyncs = Counter("routerd_agent_service_restarts_seen", "New service epochs seen in the tables (resynchronisations)", registry=r)
         self.report_rows = Counter("routerd_agent_report_rows", "Hop and link rows, by result (sent to the service, dropped from a full buffer)", ["result"], registry=r)
         self.report_errors = Counter("routerd_agent_report_errors", "Reporting errors by kind", ["kind"], registry=r)
@@ -366,10 +389,10 @@ class Agent:
         self.rows: deque[tuple[str, str, str, float, float | None]] = deque(maxlen=cfg["agent.report_buffer_rows"])
         self.link_reports: dict[int, str] = {}
         self.last_ack_at: float | None = None
-        self.nonstop = False
+        self.table_hold = False
         self.counts: dict[str, int] = {k: 0 for k in (
             "forwarded", "injected", "delivered", "ttl_expired", "fallback", "probes_sent",
-            "probes_answered", "echoes", "echoes_late", "tables", "resyncs", "nonstop_periods",
+            "probes_answered", "echoes", "echoes_late", "tables", "resyncs", "table_holds",
             "rows_sent", "rows_dropped", "malformed", "delivery_errors", "refused",
             "returns_avoided")}
         self.drops: dict[str, int] = dict.fromkeys(DROP_REASONS, 0)
@@ -746,8 +769,8 @@ class Agent:
             # the service restarted: tell it again what we see down (idempotent)
             for ln in self.links.values():
                 self._link_event(ln, "resync", self.clock.monotonic())
-        if self.nonstop:
-            self._set_nonstop(False)
+        if self.table_hold:
+            self._set_table_hold(False)
 
     # -- probes --------------------------------------------------------------------------
     def _probe_all(self, now: float) -> None:
@@ -868,18 +891,18 @@ class Agent:
             return now - self.started < stale
         return now - max(recent) < stale
 
-    def _set_nonstop(self, on: bool) -> None:
-        if on and not self.nonstop:
-            self.counts["nonstop_periods"] += 1
-            self.m.nonstop_periods.inc()
-        self.nonstop = on
-        self.m.nonstop.set(1 if on else 0)
+    def _set_table_hold(self, on: bool) -> None:
+        if on and not self.table_hold:
+            self.counts["table_holds"] += 1
+            self.m.table_holds.inc()
+        self.table_hold = on
+        self.m.table_hold.set(1 if on else 0)
 
     def _update_gauges(self, now: float) -> None:
         if self.table_at is not None:
             self.m.table_age.set(now - self.table_at)
         if not self.service_reachable(now) and self.table_at is not None:
-            self._set_nonstop(True)
+            self._set_table_hold(True)
 
     # -- status ----------------------------------------------------------------------------
     def status(self) -> dict[str, Any]:
@@ -894,7 +917,7 @@ class Agent:
             "table": {"epoch": self.table_epoch, "seq": self.table_seq,
                       "age_s": None if self.table_at is None else now - self.table_at,
                       "routes": {names[d]: [[names[y], w] for y, w in zip(*e)] for d, e in self.routes.items()}},
-            "nonstop": self.nonstop, "service_reachable": self.service_reachable(now),
+            "table_hold": self.table_hold, "service_reachable": self.service_reachable(now),
             "report": {"buffered_rows": len(self.rows),
                        "pending_batches": self.reporter.pending if self.reporter else 0,
                        "accepted": self.reporter.accepted if self.reporter else 0,

@@ -131,7 +131,7 @@ SCHEMA: dict[str, Field] = {
     "agent.report_interval_s": F(float, 0.25, "hop rows are handed to the service at least this often", lo=0.001, hi=60),
     "agent.report_batch_rows": F(int, 512, "rows per ingest batch", lo=1),
     "agent.report_buffer_rows": F(int, 100000, "rows kept while the service is unreachable (the oldest are dropped, counted)", lo=1),
-    "agent.table_stale_s": F(float, 6.0, "no table and no acknowledgement for this long: the service counts as unreachable (non-stop forwarding)", lo=0, lo_open=True),
+    "agent.table_stale_s": F(float, 6.0, "no table and no acknowledgement for this long: the service counts as unreachable (the agent holds its last table)", lo=0, lo_open=True),
     "agent.hold_max_pkts": F(int, 100000, "packets held at once for emulated propagation (beyond: dropped, counted)", lo=1),
     "agent.seed": F(int, 0, "seed of the weighted next-hop choice (mixed with the node index)", lo=0),
     "agent.client_key": F(str, None, "the agent's CURVE secret certificate NAME.key_secret (relative to the config file); with agent.server_key: CURVE to a service started with --server-key", nullable=True),

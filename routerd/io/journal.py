@@ -13,8 +13,14 @@ pickles: bodies are msgpack, numpy arrays travel as a msgpack ext (dtype, shape,
 
 Layout (``STATE_DIR``)::
 
-    journal/seg-<first record number, 20 digits>.rj     append-only segments
-    snapshots/snap-<record number, 20 digits>.rs        engine state covering records <= n
+    journal/from-<first record number, 12 or more digits>.rdj    append-only segments
+    snapshots/upto-<record number, 12 or more digits>.rdsnap     engine state covering records <= n
+
+Names are written by :func:`segment_name` / :func:`snapshot_name` and parsed by
+:func:`segment_first` / :func:`snapshot_record`, which also accept the names routerd wrote
+up to 0.1.0 (``seg-<20 digits>.rj`` and ``snap-<20 digits>.rs``): a state directory
+written by an earlier version recovers, appends and replays as it is (nothing is renamed;
+new segments and snapshots get the new names, old ones retire as usual).
 
 Snapshot file, format 2 (written since the streaming change; format 1 is still read): the
 8-byte magic ``b"RDSNAPS2"`` and the record number (u64 LE), then chunks, each a 16-byte
@@ -116,8 +122,10 @@ MAX_RECORD = 1 << 30
 SNAP_MAGIC = b"RDSNAPS1"
 SNAP_HEADER = struct.Struct("<8sQQI")         # magic, record number, body length, CRC32(body)
 
-_SEG_RE = re.compile(r"^seg-(\d{20})\.rj$")
-_SNAP_RE = re.compile(r"^snap-(\d{20})\.rs$")
+# current names first; the alternatives after them are the names before the rename
+_SEG_RE = re.compile(r"^(?:from-(\d{12,})\.rdj|seg-(\d{20})\.rj)$")
+_SNAP_RE = re.compile(r"^(?:upto-(\d{12,})\.rdsnap|snap-(\d{20})\.rs)$")
+NAME_DIGITS = 12
 _ND_EXT = 1
 _ND_KINDS = frozenset("biufc")
 
@@ -288,18 +296,51 @@ class RecoveryReport:
         }
 
 
-def _segments(d: str) -> list[tuple[int, str]]:
+def _number(rx: re.Pattern[str], name: str) -> int | None:
+    m = rx.match(name)
+    if m is None:
+        return None
+    return int(next(g for g in m.groups() if g is not None))
+
+
+def segment_first(name: str) -> int | None:
+    """The first record number of a journal segment's file name (current or pre-rename
+    name), or None if ``name`` is not a segment's."""
+    return _number(_SEG_RE, name)
+
+
+def snapshot_record(name: str) -> int | None:
+    """The record number a snapshot file's name says it covers (current or pre-rename
+    name), or None if ``name`` is not a snapshot's."""
+    return _number(_SNAP_RE, name)
+
+
+def segment_name(first: int) -> str:
+    """The file name a new segment starting at record ``first`` gets."""
+    return f"from-{int(first):0{NAME_DIGITS}d}.rdj"
+
+
+def snapshot_name(record_no: int) -> str:
+    """The file name a snapshot covering records ``<= record_no`` gets."""
+    return f"upto-{int(record_no):0{NAME_DIGITS}d}.rdsnap"
+
+
+def _numbered(d: str, parse: Callable[[str], int | None]) -> list[tuple[int, str]]:
     try:
         names = os.listdir(d)
     except FileNotFoundError:
         return []
-    out = [(int(m.group(1)), os.path.join(d, n)) for n in names if (m := _SEG_RE.match(n))]
+    out = [(no, os.path.join(d, n)) for n in names if (no := parse(n)) is not None]
     out.sort()
     return out
 
 
+def _segments(d: str) -> list[tuple[int, str]]:
+    return _numbered(d, segment_first)
+
+
 def _seg_name(d: str, first: int) -> str:
-    return os.path.join(d, f"seg-{first:020d}.rj")
+    return os.path.join(d, segment_name(first))
 
 
 class _Walk:
@@ -703,11 +744,7 @@ class Recovery:
 
 
 def _snapshot_files(d: str) -> list[tuple[int, str]]:
-    try:
-        names = os.listdir(d)
-    except FileNotFoundError:
-        return []
-    return sorted((int(m.group(1)), os.path.join(d, n)) for n in names if (m := _SNAP_RE.match(n)))
+    return _numbered(d, snapshot_record)
 
 
 def recover_state(state_dir: str, *, apply: bool) -> Recovery:
@@ -733,7 +770,7 @@ def recover_state(state_dir: str, *, apply: bool) -> Recovery:
         present = {no for no, _ in snaps}
         oldest = min(present) if present else None
         rep.snapshots_missing = [
-            f"snap-{no:020d}.rs" for no in sorted(rep.noted_snapshots)
+            snapshot_name(no) for no in sorted(rep.noted_snapshots)
             # older than every one present: retention may have removed it after the note
             if no not in present and (oldest is None or no > oldest)]
     return Recovery(rep, state, os.path.abspath(state_dir))
@@ -1129,10 +1166,7 @@ class SnapshotStore:
             os.unlink(tmp)   # a write cut short by a crash; never renamed, never valid
 
     def list(self) -> list[tuple[int, str]]:
-        out = [(int(m.group(1)), os.path.join(self.dir, n))
-               for n in os.listdir(self.dir) if (m := _SNAP_RE.match(n))]
-        out.sort()
-        return out
+        return _numbered(self.dir, snapshot_record)
 
     def write(self, state: Mapping[str, Any], record_no: int) -> str:
         """Write a snapshot covering journal records up to ``record_no``; returns its path.
@@ -1148,7 +1182,7 @@ class SnapshotStore:
 
     def prepare(self, record_no: int) -> str:
         """The temporary file name a snapshot for ``record_no`` is written to first."""
-        return os.path.join(self.dir, f".snap-{int(record_no):020d}.tmp{os.getpid()}")
+        return os.path.join(self.dir, f".snap-{int(record_no):0{NAME_DIGITS}d}.tmp{os.getpid()}")
 
     @staticmethod
     def write_file(tmp: str, state: Mapping[str, Any], record_no: int) -> None:
@@ -1164,8 +1198,11 @@ class SnapshotStore:
     def install(self, tmp: str, record_no: int) -> str:
         """Rename a written temporary file into place, fsync the directory, drop the
         snapshots beyond ``keep``.  Only after this may journal segments be retired."""
-        final = os.path.join(self.dir, f"snap-{int(record_no):020d}.rs")
+        final = os.path.join(self.dir, snapshot_name(record_no))
         os.replace(tmp, final)
+        for no, same in self.list():
+            if no == int(record_no) and same != final:
+                os.unlink(same)   # the pre-rename file of the same record: the new one replaces it
         _fsync_dir(self.dir)
         for _, old in self.list()[: -self.keep]:
             os.unlink(old)

@@ -801,7 +801,7 @@ def summarise(lab: Lab, res: dict[str, Any], *, rate: float, duration: float, wa
         "lab_duplicates": res["duplicates"],
         "lab_probes_sent": total("probes_sent"),
         "lab_malformed": total("malformed"),
-        "lab_nonstop_periods": total("nonstop_periods"),
+        "lab_table_holds": total("table_holds"),
         "lab_resyncs": total("resyncs"),
         "lab_notes": ("dropped = measured packets never delivered (after the drain); "
                       "dropped_buffer = tbf drops of all packets incl. probes and warm-up; "

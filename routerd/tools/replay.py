@@ -227,8 +227,9 @@ def locate(path: str) -> Source:
         raise ReplayError(f"{path}: does not exist")
     if os.path.isfile(path):
         base = os.path.basename(path)
-        if not J._SEG_RE.match(base):
-            raise ReplayError(Problem(path, base, "is not a journal segment (seg-<20 digits>.rj)"))
+        if J.segment_first(base) is None:
+            raise ReplayError(Problem(path, base, "is not a journal segment (named like "
+                                                  f"{J.segment_name(1)})"))
         tmp = tempfile.mkdtemp(prefix="routerd-replay-")
         os.symlink(os.path.abspath(path), os.path.join(tmp, base))
         return Source(tmp, None, cleanup=tmp, state_dir=_around(os.path.dirname(os.path.abspath(path))))
@@ -238,7 +239,7 @@ def locate(path: str) -> Source:
         return Source(jd, sd if os.path.isdir(sd) else None, state_dir=path)
     if J._segments(path):
         return Source(path, None, state_dir=_around(os.path.abspath(path)))
-    raise ReplayError(f"{path}: holds neither journal/ nor journal segments (seg-*.rj): give the "
+    raise ReplayError(f"{path}: holds neither journal/ nor journal segments (from-*.rdj): give the "
                       "service's state dir (service.state_dir) or its journal/ dir")
 
 

@@ -4,9 +4,11 @@ Prints ``OK`` and a one-line summary per good file, or every problem found, each
 the file, the key path or element, the bad value and the rule.  Exit 1 if any file is bad.
 
 The file's kind is told from its content: a mapping with a ``topology`` mapping holding
-``nodes`` is a topology; one with a ``scenario`` key is a scenario; other mappings are
-configs.  GraphML and node-link JSON files are topologies.  A config that names a
-topology file has that file checked too.
+``nodes`` is a topology; one with a ``scenario`` key is a scenario; one with an
+``underlay`` key is an agent's underlay map (its form; node names are checked through a
+config that names it); other mappings are configs.  GraphML and node-link JSON files are
+topologies.  A config that names a topology file or an underlay map (``agent.underlay``,
+relative to the config file) has it checked too, the underlay map against the topology.
 """
 from __future__ import annotations
 
@@ -42,6 +44,8 @@ def kind_of(path: str) -> tuple[str, Any]:
         return "topology", doc
     if isinstance(doc, dict) and "scenario" in doc:
         return "scenario", doc
+    if isinstance(doc, dict) and "underlay" in doc:
+        return "underlay", doc
     if isinstance(doc, dict) and "topology" not in doc and ("nodes" in doc or "links" in doc):
         # a topology written without its top-level `topology:` key: say that, rather than
         # calling every key an unknown config setting
@@ -65,6 +69,13 @@ def check_file(path: str, defaults: _topology.LinkDefaults) -> str:
 
         sc = _scenario.from_mapping(doc, source=path)
         return sc.summary()
+    if kind == "underlay":
+        from routerd.agent.forwarder import underlay_entries  # the agent owns the format
+
+        ents = underlay_entries(path)
+        hosts = {addr[0] for _, _, pa, pb in ents for addr in (pa, pb)}
+        return (f"underlay map: {len(ents)} link(s), {len(hosts)} host address(es) "
+                "(node names are checked through a config naming it with its topology)")
     cfg = _config.from_mapping(doc, path)
     tfile = cfg["topology.file"]
     extra = ""
@@ -75,7 +86,27 @@ def check_file(path: str, defaults: _topology.LinkDefaults) -> str:
             cfg["topology.default_capacity_bps"] if cfg["topology.default_capacity_bps"] else defaults.capacity_bps,
             cfg["topology.default_buffer_pkts"] if cfg["topology.default_buffer_pkts"] else defaults.buffer_pkts,
         )
-        extra = "; " + _topology.load(tpath, d).summary()
+        topo = _topology.load(tpath, d)
+        extra = "; " + topo.summary()
+    else:
+        topo = None
+    if cfg["agent.underlay"]:
+        from routerd.agent.forwarder import load_underlay, underlay_entries
+
+        u = cfg["agent.underlay"]
+        upath = u if os.path.isabs(u) else os.path.join(os.path.dirname(path), u)
+        if topo is not None:
+            ul = load_underlay(upath, topo)
+            missing = sorted({tuple(sorted((topo.nodes[a], topo.nodes[b])))
+                              for a, b in zip(topo.src.tolist(), topo.dst.tolist()) if (a, b) not in ul})
+            if missing:   # an agent on either end would refuse to start
+                raise InputError(Problem(f"{upath}: underlay.links", [list(m) for m in missing],
+                                         f"gives no addresses for these links of topology "
+                                         f"{topo.name!r} (every link needs an entry)"))
+            n = len(ul) // 2
+        else:
+            n = len(underlay_entries(upath))
+        extra += f"; underlay map {u}: {n} link(s)"
     changed = sum(1 for k, f in _config.SCHEMA.items() if cfg[k] != f.default)
     return f"config: {changed} setting(s) differ from the defaults{extra}"
 
