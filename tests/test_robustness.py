@@ -480,15 +480,15 @@ def test_journal_write_and_fsync_failures_in_process(base: str, monkeypatch: Any
 
     svc = Service(cfg, DEMO)
     svc.log = EventLog(stream=(logbuf := io.StringIO()))
-    svc._restore(cfg["service.state_dir"])
+    svc.restore(cfg["service.state_dir"])
     rng = np.random.default_rng(1)
     try:
         def ingest(b: int) -> dict[str, Any]:
-            out, _ = svc._ingest_one(_frame(rng, "inj", b, 50))
+            out, _ = svc.ingest(_frame(rng, "inj", b, 50))
             return wire.decode_reply(out)
 
         assert "error" not in ingest(0)
-        svc._commit()
+        svc.commit()
 
         def no_space(fd: int, data: bytes) -> None:
             raise OSError(errno.ENOSPC, "No space left on device")
@@ -507,7 +507,7 @@ def test_journal_write_and_fsync_failures_in_process(base: str, monkeypatch: Any
         svc._try_resume()
         assert svc.health()["storage"]["ok"] is True
         assert "error" not in ingest(1) and "error" not in ingest(2)
-        svc._commit()
+        svc.commit()
 
         # an fsync that fails: the batch is in the file, its ack must not go out
         real = os.fdatasync
@@ -516,7 +516,7 @@ def test_journal_write_and_fsync_failures_in_process(base: str, monkeypatch: Any
         r = ingest(3)
         assert "error" not in r                       # appended; the ack waits for the commit
         with pytest.raises(Exception, match="fsync"):
-            svc._commit()
+            svc.commit()
         assert svc._turn_failed
         answer = svc._unacknowledge(wire.encode_ack(3, r["accepted"], r["rejected"]), 3)
         assert wire.decode_reply(answer)["error"].startswith("unavailable:")
