@@ -476,9 +476,11 @@ def test_journal_write_and_fsync_failures_in_process(base: str, monkeypatch: Any
                                             "service.storage_retry_s": 0.01})
     import io
 
+    from routerd.io.clock import FakeClock
     from routerd.io.logs import EventLog
 
-    svc = Service(cfg, DEMO)
+    clock = FakeClock()
+    svc = Service(cfg, DEMO, clock=clock)
     svc.log = EventLog(stream=(logbuf := io.StringIO()))
     svc.restore(cfg["service.state_dir"])
     rng = np.random.default_rng(1)
@@ -503,8 +505,10 @@ def test_journal_write_and_fsync_failures_in_process(base: str, monkeypatch: Any
         ref = journal.restore(cfg["service.state_dir"], DEMO, EngineSettings()).engine
         assert ref.same_state(svc.engine)
         monkeypatch.undo()
-        svc._next_resume = 0.0
-        svc._try_resume()
+        svc.try_resume()
+        assert svc.health()["storage"]["ok"] is False     # not before the retry interval
+        clock.advance(0.01)                           # service.storage_retry_s, no sleeping
+        svc.try_resume()
         assert svc.health()["storage"]["ok"] is True
         assert "error" not in ingest(1) and "error" not in ingest(2)
         svc.commit()
@@ -521,8 +525,8 @@ def test_journal_write_and_fsync_failures_in_process(base: str, monkeypatch: Any
         answer = svc._unacknowledge(wire.encode_ack(3, r["accepted"], r["rejected"]), 3)
         assert wire.decode_reply(answer)["error"].startswith("unavailable:")
         monkeypatch.setattr(os, "fdatasync", real)
-        svc._next_resume = 0.0
-        svc._try_resume()
+        clock.advance(0.01)                           # service.storage_retry_s, no sleeping
+        svc.try_resume()
         assert svc.health()["storage"]["ok"] is True
         # re-sent: it was in the file, so it is acknowledged as the duplicate it is
         dup = ingest(3)

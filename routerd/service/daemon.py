@@ -761,7 +761,7 @@ class Service:
     def _storage_failed(self, reason: str) -> None:
         """The journal could not be written: stop acknowledging, and put the engine back to
         what the journal holds (it may have applied a batch or a decision that is not
-        stored).  :meth:`_try_resume` reopens the journal every ``service.storage_retry_s``."""
+        stored).  :meth:`try_resume` reopens the journal every ``service.storage_retry_s``."""
         first = self._down is None
         self._down = reason
         self._turn_failed = True
@@ -802,7 +802,9 @@ class Service:
         with self.lock:
             self.engine = r.engine
 
-    def _try_resume(self) -> None:
+    def try_resume(self) -> None:
+        """While storage is down: once ``service.storage_retry_s`` has passed on the clock
+        since the failure (or the last try), reopen the journal the way start-up does."""
         if self._down is None or self.clock.monotonic() < self._next_resume:
             return
         reason, dedup = self._down, self.dedup
@@ -1138,7 +1140,7 @@ class Service:
             self._next_gate_tick = now + 1.0
         if self._down is not None:
             # no decisions (they would be journaled) and no snapshots; tables keep going out
-            self._try_resume()
+            self.try_resume()
         if self._down is not None:
             if now >= self._next_publish_all:
                 self._queue_publish(range(self.topo.n), "interval")
