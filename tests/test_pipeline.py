@@ -158,3 +158,15 @@ def test_the_service_drives_the_pipeline_on_its_clock(tmp_path: Any) -> None:
     finally:
         svc.close()
         svc.out.close()
+
+
+def test_the_readme_states_the_size_rule_the_sockets_use() -> None:
+    # the promise and the behaviour are one: answered `oversized` up to the slack, beyond it
+    # the connection is cut (tests/test_service.py drives both against a real service)
+    from routerd.service.daemon import OVERSIZE_ANSWER_SLACK
+
+    with open(os.path.join(os.path.dirname(__file__), "..", "README.md"), encoding="utf-8") as fh:
+        readme = " ".join(fh.read().split())
+    assert OVERSIZE_ANSWER_SLACK == 1 << 20
+    assert "answered `oversized` when it is at most 1 MiB over the limit" in readme
+    assert "A frame more than 1 MiB over it gets no answer" in readme

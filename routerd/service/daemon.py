@@ -1,8 +1,10 @@
 """``routerd serve``: the daemon shell — sockets, journal, snapshots, metrics, signals.
 
 Owns the event loop and nothing else: no learning logic (that is :mod:`routerd.core.engine`),
-no message shapes (:mod:`routerd.io.wire`), no file formats (:mod:`routerd.io.journal`), no
-metric names (:mod:`routerd.service.metrics`).  Must not import: the simulator.
+no ingest rules (:mod:`routerd.service.pipeline`), no message shapes (:mod:`routerd.io.wire`),
+no file formats (:mod:`routerd.io.journal`), no metric names (:mod:`routerd.service.metrics`).
+Time comes from the ``clock`` it is given (:mod:`routerd.io.clock`).  Must not import: the
+simulator.
 
 Theory of operation
 -------------------
@@ -13,13 +15,11 @@ handlers write to).  The poll timeout is the time to the next deadline
 (debounced decision, periodic publication, snapshot), so there are no sleeps.  One loop
 iteration:
 
-1. drain up to ``service.max_drain`` frames from the ingest sockets; for each, decode
-   (:func:`wire.decode_ingest`); with CURVE on, hold it to the key's reporter
-   (:mod:`routerd.io.security`: the name must match, rows outside its nodes are rejected
-   ``not_authorised``); skip a duplicate (same reporter and batch number, kept in a
-   bounded per-reporter window); refuse it whole when the reporter is over its token
-   bucket (``rate_limited``); pass its hop rows through the plausibility guards
-   (:mod:`routerd.core.guards`); apply what is left to the engine and append it to the journal;
+1. drain up to ``service.max_drain`` frames from the ingest sockets; hand each to the
+   ingest pipeline (:mod:`routerd.service.pipeline`: decode, CURVE binding, storage
+   state, duplicates, rate limits, rights, guards, engine — a pure object whose
+   docstring is the theory of operation) with the clock's time, append the journal
+   records it returns and take its counts;
 2. group commit: one :meth:`Journal.flush_sync` (one fsync) for everything appended,
    *then* send every acknowledgement — an ack always means "durably journaled";
 3. answer at most one control request (REP) — state-changing ones after step 2's commit;
