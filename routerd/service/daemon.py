@@ -77,7 +77,6 @@ import contextlib
 import dataclasses
 import gc
 import glob
-import json
 import math
 import os
 import signal
@@ -91,7 +90,6 @@ from dataclasses import asdict
 from importlib import resources
 from typing import Any
 
-import numpy as np
 
 from routerd import __version__
 from routerd.io import wire
