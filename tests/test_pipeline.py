@@ -170,3 +170,12 @@ def test_the_readme_states_the_size_rule_the_sockets_use() -> None:
     assert OVERSIZE_ANSWER_SLACK == 1 << 20
     assert "answered `oversized` when it is at most 1 MiB over the limit" in readme
     assert "A frame more than 1 MiB over it gets no answer" in readme
+
+
+def test_envelope_splits_routing_id_and_delimiter_from_the_payload() -> None:
+    assert P.envelope([b"id", b"", b"x"], routed=True) == ([b"id", b""], [b"x"])
+    assert P.envelope([b"id", b"x"], routed=True) == ([b"id"], [b"x"])
+    assert P.envelope([b"", b"x"], routed=False) == ([b""], [b"x"])
+    assert P.envelope([b""], routed=False) == ([], [b""])          # an empty payload is a payload
+    env, body = P.envelope([b"id", b"", b"x", b"y"], routed=True)
+    assert env == [b"id", b""] and _code(P.extra_frames(len(body))) == "extra_frames"

@@ -957,13 +957,7 @@ class Service:
             except zmq.Again:
                 return
             self.counters.batches_by_socket[name] += 1
-            env: list[bytes] = []
-            body = parts
-            if routed:
-                env, body = parts[:1], parts[1:]
-            if body and body[0] == b"" and len(body) > 1:
-                env, body = env + [b""], body[1:]
-            env, body = self._envelope(env, body)
+            env, body = self._envelope(*_pipeline.envelope(parts, routed))
             bno: int | None = None
             if len(body) != 1:
                 fed = _pipeline.extra_frames(len(body))

@@ -71,7 +71,7 @@ from routerd.io import wire
 from . import dedup as _dedup
 
 __all__ = ["SERVICE_FRAME_ERRORS", "SERVICE_REASONS", "STAGES", "Counts", "Fed", "Pipeline",
-           "dedup_refusal", "extra_frames", "make_dedup", "unavailable"]
+           "dedup_refusal", "envelope", "extra_frames", "make_dedup", "unavailable"]
 
 #: The stages in order (the table of the module docstring).
 STAGES = ("decode", "who", "storage", "duplicates", "rate", "rights", "guards", "engine")
@@ -134,6 +134,19 @@ class Fed:
 
 def _refused(code: str, answer: bytes, batch: int | None) -> Fed:
     return Fed(answer=answer, batch=batch, counts=Counts(result="refused", refused=code))
+
+
+def envelope(parts: list[bytes], routed: bool) -> tuple[list[bytes], list[bytes]]:
+    """A received message as (reply envelope, payload frames): a ROUTER's routing id
+    (``routed``) and an optional empty delimiter go back with the answer; the payload
+    should then be exactly one frame (else :func:`extra_frames`)."""
+    env: list[bytes] = []
+    body = parts
+    if routed:
+        env, body = parts[:1], parts[1:]
+    if body and body[0] == b"" and len(body) > 1:
+        env, body = env + [b""], body[1:]
+    return env, body
 
 
 def extra_frames(n: int) -> Fed:

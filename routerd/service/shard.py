@@ -102,7 +102,7 @@ from . import listeners as _listeners
 from routerd.io import statedir as _statedir
 from routerd.core import topology as _topology
 from routerd.core.errors import InputError
-from .pipeline import Fed, extra_frames
+from .pipeline import Fed, envelope, extra_frames
 
 #: Leading bytes of the token frame the front puts before each piece (echoed back).
 TOKEN_PREFIX = b"rdshard:"
@@ -911,12 +911,7 @@ class Front:
                 parts = sock.recv_multipart(zmq.NOBLOCK)
             except zmq.Again:
                 return
-            env: list[bytes] = []
-            body = parts
-            if routed:
-                env, body = parts[:1], parts[1:]
-            if body and body[0] == b"" and len(body) > 1:
-                env, body = env + [b""], body[1:]
+            env, body = envelope(parts, routed)
             if len(body) != 1:
                 self._answer(env if routed else None, self._count(extra_frames(len(body))))
                 continue
