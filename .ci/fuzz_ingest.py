@@ -1,8 +1,9 @@
 """Coverage-guided fuzzing of the ingest path with atheris, bounded in time (CI).
 
-Feeds libFuzzer's inputs to :func:`routerd.io.wire.decode_ingest` and to the service's whole
-per-frame path (``Service._ingest_one``: CURVE binding, guards, rate limits, engine,
-journal) in process, with no sockets.  A crash is any exception escaping, an answer that
+Feeds libFuzzer's inputs to :func:`routerd.io.wire.decode_ingest` and to the ingest
+pipeline the service and the shard front drive (:class:`routerd.service.pipeline.Pipeline`:
+CURVE binding, duplicates, rate limits, rights, guards, engine), appending its journal
+records to a journal as the service does — no sockets, no service.  A crash is any exception escaping, an answer that
 is not a v1 reply, a reply whose code is outside the fixed set, or an acknowledgement
 whose rows do not add up.  At the end the engine must equal an offline replay of the
 journal.
@@ -25,10 +26,11 @@ with atheris.instrument_imports():
     import msgpack
     import numpy as np
 
-    from routerd.io import config, journal, security, wire
     from routerd.core import topology as T
-    from routerd.core.engine import EngineSettings
-    from routerd.service.daemon import SERVICE_FRAME_ERRORS, Log, Service
+    from routerd.core.engine import Engine, EngineSettings
+    from routerd.io import config, journal, security, wire
+    from routerd.service.metrics import Counters
+    from routerd.service.pipeline import SERVICE_FRAME_ERRORS, SERVICE_REASONS, Pipeline
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 TOPO = T.load(os.path.join(HERE, "..", "routerd", "data", "demo-lab.yaml"))
@@ -42,9 +44,13 @@ CFG = config.load(None).with_overrides({
     "service.state_dir": STATE, "service.journal.fsync": "never", "service.max_rows": 256,
     "service.max_message_bytes": 65536, "guards.jump.factor": 8.0,
     "guards.rate.batches_per_s": 1000.0, "guards.rate.burst_batches": 100.0})
-SVC = Service(CFG, TOPO)
-SVC.log = Log(stream=open(os.devnull, "w"))   # noqa: SIM115 - lives as long as the process
-SVC._restore(STATE)
+SETTINGS = EngineSettings.from_config(CFG)
+PIPE = Pipeline(TOPO, CFG, engine=Engine(TOPO, SETTINGS))
+JOURNAL = journal.Journal(journal.journal_dir(STATE), fsync="never")
+SNAPS = journal.SnapshotStore(journal.snapshot_dir(STATE))
+COUNTERS = Counters(row_reasons=wire.REASONS + SERVICE_REASONS,
+                    frame_reasons=wire.FRAME_ERRORS + SERVICE_FRAME_ERRORS)
+CLOCK = [1_767_225_600.0, 0.0]    # wall, monotonic: moved 1 ms per input
 
 
 def _peer(name: str, nodes: list[str]) -> security.Reporter:
@@ -95,21 +101,24 @@ def one_input(data: bytes) -> None:
     if isinstance(out, wire.WireError) and "internal decoder error" in out.reason:
         raise AssertionError(out.reason)
     peer = PEERS[len(data) % 2] if curve else None
-    SVC.allow = ALLOW if curve else None
-    dups = SVC.counters.batches["duplicate"]
+    PIPE.allow = ALLOW if curve else None
+    CLOCK[0] += 0.001
+    CLOCK[1] += 0.001
     try:
-        answer, _ = SVC._ingest_one(frame, peer)
+        fed = PIPE.feed(frame, peer, CLOCK[0], CLOCK[1])
     finally:
-        SVC.allow = None
-    rep = wire.decode_reply(answer)
+        PIPE.allow = None
+    for kind, body in fed.records:
+        JOURNAL.append(kind, body, sync=False)
+    COUNTERS.add(fed.counts)      # a reason outside the fixed sets raises here
+    rep = wire.decode_reply(fed.answer)
     if "error" in rep:
         code = str(rep["error"]).split(":", 1)[0]
         if code not in CODES:
             raise AssertionError(f"error code outside the fixed set: {rep}")
-    elif (isinstance(out, wire.Ingest) and SVC.counters.batches["duplicate"] == dups
+    elif (isinstance(out, wire.Ingest) and fed.counts.result != "duplicate"
           and rep["accepted"] + len(rep["rejected"]) != out.rows_total):
         raise AssertionError(f"rows do not add up: {rep} for {out.rows_total} rows")
-    SVC._commit()
 
 
 CHECK_EVERY = 4000
@@ -118,14 +127,17 @@ CHECK_EVERY = 4000
 def _check() -> None:
     """The engine equals an offline replay of what was journaled (then a snapshot keeps
     the next replay short — restore then goes through the snapshot path too)."""
-    r = journal.restore(STATE, TOPO, EngineSettings.from_config(CFG))
-    assert SVC.engine is not None
-    if not r.engine.same_state(SVC.engine):
+    JOURNAL.flush_sync()
+    r = journal.restore(STATE, TOPO, SETTINGS)
+    assert PIPE.engine is not None
+    if not r.engine.same_state(PIPE.engine):
         raise AssertionError(f"after {RUNS[0]} inputs the engine differs from a replay of the journal")
-    c = SVC.counters
+    c = COUNTERS
     print(f"fuzz_ingest: {RUNS[0]} inputs, batches {dict(c.batches)}, rows applied "
           f"{c.observations_accepted}: engine equals a replay of the journal", flush=True)
-    SVC._snapshot("request")
+    rec = JOURNAL.last_record
+    SNAPS.trust(SNAPS.write(journal.engine_state(PIPE.engine, dedup=PIPE.dedup.export()), rec))
+    JOURNAL.retire_before(SNAPS.retire_point())
 
 
 def one_input_checked(data: bytes) -> None:

@@ -86,7 +86,7 @@ def _worker(way: str, n: int) -> dict[str, Any]:
         cfg = config.load(None).with_overrides({"service.state_dir": tmp,
                                                 "service.journal.fsync": "never"})
         s = Service(cfg, topo)
-        s._restore(tmp)
+        s.restore(tmp)
         eng = s.engine
         rng = np.random.default_rng(0)
         src = np.repeat(np.arange(n), topo.slots.shape[1])

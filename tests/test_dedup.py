@@ -93,7 +93,7 @@ def _cfg(state_dir: str, **kw: Any) -> config.Config:
 
 def _start(cfg: config.Config) -> Service:
     s = Service(cfg, TOPO)
-    s._restore(cfg["service.state_dir"])
+    s.restore(cfg["service.state_dir"])
     return s
 
 
@@ -102,8 +102,8 @@ def _frame(reporter: str, batch: int) -> bytes:
 
 
 def _send(s: Service, reporter: str, batch: int) -> dict[str, Any]:
-    out, _ = s._ingest_one(_frame(reporter, batch))
-    s._commit()
+    out, _ = s.ingest(_frame(reporter, batch))
+    s.commit()
     return wire.decode_reply(out)
 
 

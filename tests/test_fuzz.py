@@ -154,7 +154,7 @@ def svc(tmp_path_factory: Any) -> Iterator[Service]:
         "service.max_message_bytes": 4096, "guards.jump.factor": 8.0,
         "guards.rate.batches_per_s": 200.0, "guards.rate.burst_batches": 20.0})
     s = Service(cfg, TOPO)
-    s._restore(str(d))
+    s.restore(str(d))
     yield s
     s.close()
 
@@ -188,7 +188,7 @@ def test_whole_ingest_path_answers_everything(svc: Service, obj: Any, fresh: boo
     svc.allow = security.Allow("<fuzz>", list(by_name.values())) if curve else None
     dups = svc.counters.batches["duplicate"]
     try:
-        answer, _ = svc._ingest_one(frame, peer if curve else None)
+        answer, _ = svc.ingest(frame, peer if curve else None)
     finally:
         svc.allow = None
     rep = wire.decode_reply(answer)
@@ -205,7 +205,7 @@ def test_whole_ingest_path_answers_everything(svc: Service, obj: Any, fresh: boo
             assert rep["accepted"] + len(rows) == ing.rows_total
         reasons = {x for _, x in rep["rejected"]}
         assert reasons <= set(svc.counters.observations_rejected)
-    svc._commit()
+    svc.commit()
 
 
 def test_after_the_fuzzing_the_engine_equals_a_replay_of_the_journal(svc: Service) -> None:

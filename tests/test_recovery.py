@@ -76,7 +76,7 @@ class Writer:
 def start_up(d: str) -> Service:
     """What ``routerd serve`` does with the state dir before it binds anything."""
     svc = Service(config.load(None), DEMO, out=open(os.devnull, "w"))  # noqa: SIM115
-    svc._restore(d)
+    svc.restore(d)
     return svc
 
 

@@ -22,7 +22,7 @@ def _start(state_dir: str, **kw: Any) -> Service:
         "service.state_dir": state_dir, "service.journal.fsync": "never",
         "service.journal.segment_bytes": 4096, **kw})
     s = Service(cfg, TOPO)
-    s._restore(state_dir)
+    s.restore(state_dir)
     return s
 
 
@@ -36,9 +36,9 @@ def _feed(s: Service, reporter: str, first: int, count: int, seed: int) -> None:
             d = TOPO.nodes[int(rng.integers(0, TOPO.n))]
             if d != x:
                 rows.append([x, y, d, float(rng.uniform(0.0005, 0.01))])
-        out, _ = s._ingest_one(wire.encode_ingest_rows(reporter, b, rows))
+        out, _ = s.ingest(wire.encode_ingest_rows(reporter, b, rows))
         assert "accepted" in wire.decode_reply(out)
-    s._commit()
+    s.commit()
 
 
 def test_background_snapshot_is_the_state_at_the_fork_and_retires_after_install(tmp_path: Any) -> None:

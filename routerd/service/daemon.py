@@ -1,8 +1,10 @@
 """``routerd serve``: the daemon shell — sockets, journal, snapshots, metrics, signals.
 
 Owns the event loop and nothing else: no learning logic (that is :mod:`routerd.core.engine`),
-no message shapes (:mod:`routerd.io.wire`), no file formats (:mod:`routerd.io.journal`), no
-metric names (:mod:`routerd.service.metrics`).  Must not import: the simulator.
+no ingest rules (:mod:`routerd.service.pipeline`), no message shapes (:mod:`routerd.io.wire`),
+no file formats (:mod:`routerd.io.journal`), no metric names (:mod:`routerd.service.metrics`).
+Time comes from the ``clock`` it is given (:mod:`routerd.io.clock`).  Must not import: the
+simulator.
 
 Theory of operation
 -------------------
@@ -13,13 +15,11 @@ handlers write to).  The poll timeout is the time to the next deadline
 (debounced decision, periodic publication, snapshot), so there are no sleeps.  One loop
 iteration:
 
-1. drain up to ``service.max_drain`` frames from the ingest sockets; for each, decode
-   (:func:`wire.decode_ingest`); with CURVE on, hold it to the key's reporter
-   (:mod:`routerd.io.security`: the name must match, rows outside its nodes are rejected
-   ``not_authorised``); skip a duplicate (same reporter and batch number, kept in a
-   bounded per-reporter window); refuse it whole when the reporter is over its token
-   bucket (``rate_limited``); pass its hop rows through the plausibility guards
-   (:mod:`routerd.core.guards`); apply what is left to the engine and append it to the journal;
+1. drain up to ``service.max_drain`` frames from the ingest sockets; hand each to the
+   ingest pipeline (:mod:`routerd.service.pipeline`: decode, CURVE binding, storage
+   state, duplicates, rate limits, rights, guards, engine — a pure object whose
+   docstring is the theory of operation) with the clock's time, append the journal
+   records it returns and take its counts;
 2. group commit: one :meth:`Journal.flush_sync` (one fsync) for everything appended,
    *then* send every acknowledgement — an ack always means "durably journaled";
 3. answer at most one control request (REP) — state-changing ones after step 2's commit;
@@ -77,7 +77,6 @@ import contextlib
 import dataclasses
 import gc
 import glob
-import json
 import math
 import os
 import signal
@@ -91,7 +90,6 @@ from dataclasses import asdict
 from importlib import resources
 from typing import Any
 
-import numpy as np
 
 from routerd import __version__
 from routerd.io import wire
@@ -106,25 +104,19 @@ from routerd.io import security as _security
 from routerd.io import statedir as _statedir
 from routerd.core import topology as _topology
 from . import dedup as _dedup
+from . import pipeline as _pipeline
+from routerd.io import clock as _clock
 from routerd.io.cautions import CAUTIONS
 from .dedup import Dedup
-from routerd.core.engine import Engine, EngineSettings, HopBatch
+from routerd.core.engine import Engine, EngineSettings
 from routerd.core.errors import InputError
-from routerd.io.journal import accepted_part as _accepted_part
-from routerd.io.journal import apply_batch as _apply_batch
-from routerd.io.journal import batch_body as _batch_body
 from routerd.io.journal import engine_state as _engine_state
 
-#: Service-side row rejection reasons (added to :data:`wire.REASONS` for the metrics):
-#: duplicates, rows outside the reporter's rights, and the plausibility guards' reasons.
-SERVICE_REASONS = ("duplicate", _security.NOT_AUTHORISED) + _guards.REASONS
-#: Service-side whole-frame refusals (added to :data:`wire.FRAME_ERRORS`): a batch whose
-#: key is not the named reporter's, a reporter over its rate, a journal that cannot be
-#: written (nothing of the batch was stored: send it again later), a re-sent batch at or
-#: below its reporter's high-water mark whose answer is no longer kept (routerd.service.dedup), a
-#: new reporter name when the table of marks is full.
-SERVICE_FRAME_ERRORS = (_security.NOT_AUTHORISED, _guards.RATE_LIMITED, "unavailable",
-                        "stale_batch", "reporters_full")
+# the ingest pipeline's reason sets and helpers, where callers have always found them
+SERVICE_REASONS = _pipeline.SERVICE_REASONS
+SERVICE_FRAME_ERRORS = _pipeline.SERVICE_FRAME_ERRORS
+make_dedup = _pipeline.make_dedup
+dedup_refusal = _pipeline.dedup_refusal
 #: Frames up to this much above ``service.max_message_bytes`` are still read so they can
 #: be answered ``oversized``; beyond it libzmq's MAXMSGSIZE cuts the peer off unanswered
 #: (counted as a disconnect), so a hostile peer cannot make us buffer arbitrarily much.
@@ -280,29 +272,6 @@ def bind_endpoint(owner: Any, kind: int, name: str, ep: str, opts: _listeners.So
 
 
 # ---- logging -----------------------------------------------------------------------------
-# ---- duplicate detection -----------------------------------------------------------------
-def make_dedup(cfg: _config.Config) -> Dedup:
-    """The duplicate window with the config's bounds (service, shard workers and front)."""
-    return Dedup(wire.REASONS + SERVICE_REASONS, per_reporter=cfg["service.dedup_batches"],
-                 reporters=cfg["service.dedup_reporters"],
-                 budget_bytes=cfg["service.dedup_budget_bytes"],
-                 marks_budget_bytes=cfg["service.dedup_marks_budget_bytes"])
-
-
-def dedup_refusal(seen: _dedup.Seen, reporter: str, batch: int, dd: Dedup) -> str:
-    """The error text for a batch the duplicate window refuses (STALE or FULL)."""
-    if seen.kind == _dedup.STALE:
-        return (f"stale_batch: batch {batch} of reporter {wire._show(reporter)} is at or below "
-                f"its high-water mark {seen.mark} and its acknowledgement is no longer kept "
-                "(service.dedup_budget_bytes, service.dedup_batches): it may have been applied "
-                "already, so it is not applied again; batch numbers must rise")
-    st = dd.statistics()
-    return (f"reporters_full: reporter {wire._show(reporter)} is new and the service already keeps "
-            f"high-water marks for {st['marks']} reporter names (service.dedup_marks_budget_bytes "
-            f"= {st['marks_budget_bytes']} is full; marks are never forgotten, so a re-sent batch "
-            "cannot apply twice); known reporters are served; nothing was applied")
-
-
 # ---- the service -------------------------------------------------------------------------
 class Service:
     """One running daemon.  ``start()`` binds and restores, ``serve()`` loops until a
@@ -310,10 +279,16 @@ class Service:
 
     def __init__(self, cfg: _config.Config, topo: _topology.Topology, *,
                  reload_args: argparse.Namespace | None = None, out: Any = None,
-                 inputs: _statedir.Chosen | None = None):
+                 inputs: _statedir.Chosen | None = None, clock: _clock.Clock = _clock.SYSTEM):
         from . import metrics as _metrics
 
         self.cfg = cfg
+        #: every time the service reads (deadlines, the engine's and the journal's ``t``,
+        #: the epoch); measured CPU durations use time.perf_counter
+        self.clock = clock
+        # decode, who, storage, duplicates, rate, rights, guards, engine: the engine, the
+        # duplicate window, the guards, the allow list and the storage state live there
+        self.pipeline = _pipeline.Pipeline(topo, cfg, timer=time.perf_counter)
         self.topo = topo
         self.reload_args = reload_args
         # where cfg and topo came from (banner), and the recorded config a reload re-reads
@@ -324,11 +299,8 @@ class Service:
         self.log = EventLog(cfg["service.log_format"], name="routerd.service")
         self.counters = _metrics.Counters(row_reasons=wire.REASONS + SERVICE_REASONS,
                                           frame_reasons=wire.FRAME_ERRORS + SERVICE_FRAME_ERRORS)
-        self.guards = _guards.Guards(topo, _guards.GuardSettings.from_config(cfg))
-        self.allow: _security.Allow | None = None      # CURVE on when set
         self.server_keys: tuple[bytes, bytes] | None = None
         self.auth: Any = None
-        self._down: str | None = None      # why the journal cannot be written (None: it can)
         self._turn_failed = False
         self._next_resume = 0.0
         self.storage_failures = 0
@@ -336,8 +308,6 @@ class Service:
         # engine + counters vs. the metrics thread; re-entrant: a control "snapshot" runs
         # under the loop's hold of it
         self.lock = threading.RLock()
-        self.engine: Engine | None = None
-        self.dedup = make_dedup(cfg)
         self.journal: Any = None
         self.snapshots: Any = None
         self.ctx: Any = None
@@ -345,9 +315,9 @@ class Service:
         self.endpoints: dict[str, str] = {}
         self.metrics_server: Any = None
         self.metrics_port: int | None = None
-        self.epoch = time.time_ns()           # rises on every start: subscribers see a restart
+        self.epoch = clock.wall_ns()           # rises on every start: subscribers see a restart
         self.seq = [0] * topo.n
-        self.started = time.monotonic()
+        self.started = clock.monotonic()
         self.last_snapshot_at: float | None = None
         self.last_snapshot_record: int | None = None
         self.restored: dict[str, Any] = {}
@@ -372,6 +342,45 @@ class Service:
         self.recovery: _journal.RecoveryReport | None = None   # what start-up recovery found
         self._snapshot_mark: int | None = None    # the last record when the last snapshot was noted
 
+    # -- the pipeline's state, as the rest of the service has always named it ----------
+    @property
+    def engine(self) -> Engine | None:
+        return self.pipeline.engine
+
+    @engine.setter
+    def engine(self, engine: Engine | None) -> None:
+        self.pipeline.engine = engine
+
+    @property
+    def dedup(self) -> Dedup:
+        return self.pipeline.dedup
+
+    @dedup.setter
+    def dedup(self, dedup: Dedup) -> None:
+        self.pipeline.dedup = dedup
+
+    @property
+    def guards(self) -> _guards.Guards:
+        return self.pipeline.guards
+
+    @property
+    def allow(self) -> _security.Allow | None:
+        """The allowed reporters: CURVE is on when set."""
+        return self.pipeline.allow
+
+    @allow.setter
+    def allow(self, allow: _security.Allow | None) -> None:
+        self.pipeline.allow = allow
+
+    @property
+    def _down(self) -> str | None:
+        """Why the journal cannot be written (None: it can)."""
+        return self.pipeline.down
+
+    @_down.setter
+    def _down(self, reason: str | None) -> None:
+        self.pipeline.down = reason
+
     # -- metrics source -------------------------------------------------------------------
     def engine_statistics(self) -> Any:
         with self.lock:
@@ -384,7 +393,7 @@ class Service:
 
     def snapshot_age_s(self) -> float | None:
         # wall clock: the newest snapshot may come from before this start (its file time)
-        return None if self.last_snapshot_at is None else max(0.0, time.time() - self.last_snapshot_at)
+        return None if self.last_snapshot_at is None else max(0.0, self.clock.wall() - self.last_snapshot_at)
 
     def trust_state(self) -> dict[str, float]:
         """Storage and guard figures for the metrics page."""
@@ -396,7 +405,7 @@ class Service:
         return self.dedup.statistics()
 
     def uptime_s(self) -> float:
-        return time.monotonic() - self.started
+        return self.clock.monotonic() - self.started
 
     def info(self) -> Mapping[str, str]:
         return {"version": __version__, "topology": self.topo.digest}
@@ -432,7 +441,7 @@ class Service:
             raise StartError(str(e)) from None
         except OSError as e:
             raise StartError(f"state dir {state_dir}: {e.strerror}") from None
-        self._restore(state_dir)
+        self.restore(state_dir)
         _listeners.raise_nofile(self.log)
         self.ctx = zmq.Context()
         if self.allow is not None:
@@ -442,7 +451,7 @@ class Service:
         self._start_metrics()
         self._cap_connections()
         self._install_signals()
-        now = time.monotonic()
+        now = self.clock.monotonic()
         self._next_publish_all = now            # a fresh subscriber gets tables at once
         self._next_snapshot = now + cfg["service.snapshot_interval_s"]
         self._banner()
@@ -486,11 +495,14 @@ class Service:
         if exposure:
             self.log.warning(exposure)   # once, at start-up
 
-    def _restore(self, state_dir: str) -> None:
+    def restore(self, state_dir: str | None = None) -> None:
         """Recover the state dir (:func:`journal.recover_state`: the newest intact snapshot,
         the journal checked against it, cuts applied), open the journal, then the snapshot
-        plus the records recovery kept — :func:`journal.restore`, the offline path."""
+        plus the records recovery kept — :func:`journal.restore`, the offline path.  What
+        :meth:`start` does before it binds anything (``state_dir``: default the config's);
+        without sockets, :meth:`ingest` and :meth:`commit` then run the whole ingest path."""
         cfg = self.cfg
+        state_dir = state_dir or cfg["service.state_dir"]
         want = EngineSettings.from_config(cfg)
         self.dedup = make_dedup(cfg)
         try:
@@ -545,7 +557,7 @@ class Service:
                                    "documents": self.documents.body()})
             if r.engine.settings != want:
                 self._reconfigure_engine(want)
-            self._commit()
+            self.commit()
         except StorageDown as e:
             raise StartError(f"state dir {state_dir}: {e}") from None
         try:
@@ -700,7 +712,7 @@ class Service:
             raise StorageDown(self._down) from None
         if not self._unsynced:
             self._unsynced = True
-            self._unsynced_since = time.monotonic()
+            self._unsynced_since = self.clock.monotonic()
 
     def _journal_link(self, a: int, b: int, up: bool, t: float) -> None:
         self._append("link", {"from": a, "to": b, "up": up, "t": t})
@@ -721,7 +733,7 @@ class Service:
             self.dedup.put(b["reporter"], b["batch"], ack.get("accepted", 0),
                            [x for x in ack.get("rejected", ()) if self.dedup.knows(str(x[1]))])
 
-    def _commit(self) -> None:
+    def commit(self) -> None:
         """Make this turn's appends durable as the fsync policy promises (group commit):
         ``batch`` — one fsync now; ``interval`` — once ``fsync_interval_s`` has passed since
         the first unsynced append (the poll wakes for it); ``never`` — the OS decides."""
@@ -746,7 +758,7 @@ class Service:
     def _storage_failed(self, reason: str) -> None:
         """The journal could not be written: stop acknowledging, and put the engine back to
         what the journal holds (it may have applied a batch or a decision that is not
-        stored).  :meth:`_try_resume` reopens the journal every ``service.storage_retry_s``."""
+        stored).  :meth:`try_resume` reopens the journal every ``service.storage_retry_s``."""
         first = self._down is None
         self._down = reason
         self._turn_failed = True
@@ -764,7 +776,7 @@ class Service:
                 with contextlib.suppress(OSError):
                     os.close(j._fd)   # close without the sync that just failed
         self._rebuild_from_disk()
-        self._next_resume = time.monotonic() + self.cfg["service.storage_retry_s"]
+        self._next_resume = self.clock.monotonic() + self.cfg["service.storage_retry_s"]
 
     def _rebuild_from_disk(self) -> None:
         """Engine and duplicate windows from the state directory, read-only."""
@@ -787,13 +799,15 @@ class Service:
         with self.lock:
             self.engine = r.engine
 
-    def _try_resume(self) -> None:
-        if self._down is None or time.monotonic() < self._next_resume:
+    def try_resume(self) -> None:
+        """While storage is down: once ``service.storage_retry_s`` has passed on the clock
+        since the failure (or the last try), reopen the journal the way start-up does."""
+        if self._down is None or self.clock.monotonic() < self._next_resume:
             return
         reason, dedup = self._down, self.dedup
         self._down = None
         try:
-            self._restore(self.cfg["service.state_dir"])
+            self.restore(self.cfg["service.state_dir"])
         except StartError as e:
             if self.journal is not None:
                 with contextlib.suppress(OSError):
@@ -801,7 +815,7 @@ class Service:
                 self.journal = None
             if self._down is None:   # it failed before writing: the state in hand stands
                 self._down, self.dedup = reason, dedup
-            self._next_resume = time.monotonic() + self.cfg["service.storage_retry_s"]
+            self._next_resume = self.clock.monotonic() + self.cfg["service.storage_retry_s"]
             self.log.warning("storage still unavailable", detail=str(e).replace("\n", "; "))
             return
         self.storage_resumed += 1
@@ -821,9 +835,9 @@ class Service:
         return self._unavailable(batch)
 
     def _unavailable(self, batch: int | None = None) -> bytes:
-        self.counters.refuse("unavailable")
-        return wire.encode_error(f"unavailable: the journal cannot be written ({self._down}); "
-                                 "nothing of this batch was stored, send it again later", batch)
+        fed = _pipeline.unavailable(self._down, batch)
+        self.counters.add(fed.counts)
+        return fed.answer
 
     # -- the loop -------------------------------------------------------------------------
     def serve(self) -> int:
@@ -863,7 +877,7 @@ class Service:
                         reply_ro = self._control_one(zmq, control_ro, readonly=True)
                 # group commit: one fsync (policy "batch") covers every batch of this turn
                 with contextlib.suppress(StorageDown):
-                    self._commit()
+                    self.commit()
                 if self._turn_failed:
                     # something of this turn may not be stored: acknowledge none of it
                     acks = [(sk, parts[:-1] + [self._unacknowledge(parts[-1], b)], b)
@@ -889,7 +903,7 @@ class Service:
         return self._shutdown()
 
     def _timeout_ms(self) -> int:
-        now = time.monotonic()
+        now = self.clock.monotonic()
         if self._pub_queue:
             return 0          # tables still due: take what arrived, then publish more
         t = min(self._next_publish_all, self._next_snapshot)
@@ -942,128 +956,36 @@ class Service:
             except zmq.Again:
                 return
             self.counters.batches_by_socket[name] += 1
-            env: list[bytes] = []
-            body = parts
-            if routed:
-                env, body = parts[:1], parts[1:]
-            if body and body[0] == b"" and len(body) > 1:
-                env, body = env + [b""], body[1:]
-            env, body = self._envelope(env, body)
+            env, body = self._envelope(*_pipeline.envelope(parts, routed))
             bno: int | None = None
             if len(body) != 1:
-                self.counters.refuse("extra_frames")
-                out = wire.encode_error(f"extra_frames: expected one payload frame (after an "
-                                        f"optional empty delimiter), got {len(body)}")
+                fed = _pipeline.extra_frames(len(body))
+                self.counters.add(fed.counts)
+                out = fed.answer
             else:
-                out, bno = self._ingest_one(body[0], peer)
+                out, bno = self.ingest(body[0], peer)
             if acks is not None:
                 acks.append((sock, env + [out], bno))
 
-    def _ingest_one(self, payload: bytes, peer: _security.Reporter | None = None
-                    ) -> tuple[bytes, int | None]:
-        """One frame → its answer (and its batch number when it could be read)."""
-        cfg = self.cfg
-        c = self.counters
-        ing = wire.decode_ingest(payload, self.topo, max_rows=cfg["service.max_rows"],
-                                 max_bytes=cfg["service.max_message_bytes"])
-        if isinstance(ing, wire.WireError):
-            c.refuse(ing.code)
-            return wire.encode_error(ing), ing.batch
-        if self.allow is not None and (peer is None or peer.name != ing.reporter):
-            c.refuse(_security.NOT_AUTHORISED)
-            who = "no allowed key" if peer is None else f"the key of reporter {peer.name!r}"
-            return wire.encode_error(f"not_authorised: the batch names reporter "
-                                     f"{wire._show(ing.reporter)} but came with {who}",
-                                     ing.batch), ing.batch
-        if self._down is not None:
-            return self._unavailable(ing.batch), ing.batch
-        refusal = self._dedup_answer(ing)
-        if refusal is not None:
-            return refusal, ing.batch
-        if not self.guards.admit(ing.reporter, ing.rows_total, time.monotonic()):
-            c.refuse(_guards.RATE_LIMITED)
-            g = self.guards.settings
-            return wire.encode_error(
-                f"rate_limited: reporter {wire._show(ing.reporter)} is over its rate "
-                f"({g.rate_batches_per_s:g} batches/s, {g.rate_rows_per_s:g} rows/s; 0 = "
-                "unlimited); nothing was applied, send it again later", ing.batch), ing.batch
+    def ingest(self, payload: bytes, peer: _security.Reporter | None = None
+               ) -> tuple[bytes, int | None]:
+        """One ingest frame through the pipeline (:mod:`routerd.service.pipeline`) at the
+        clock's time, its records appended to the journal and its counts taken: its answer
+        and batch number (None when unreadable).  The answer may go out only after
+        :meth:`commit` (the loop's group commit); with no sockets, this is the whole ingest
+        path (tests, the fuzzer)."""
+        fed = self.pipeline.feed(payload, peer, self.clock.wall(), self.clock.monotonic())
         try:
-            return self._apply_ingest(self._screen(ing, peer)), ing.batch
+            for kind, body in fed.records:
+                # StorageDown here: the engine holds a batch the journal lacks — the
+                # failure handler has already put the engine back to what is stored
+                self._append(kind, body)
         except StorageDown:
-            return self._unavailable(ing.batch), ing.batch
-
-    def _dedup_answer(self, ing: wire.Ingest) -> bytes | None:
-        """The answer to a batch the duplicate window knows (a repeat, a stale number, a
-        new name with no room for its mark), or None: apply it."""
-        c = self.counters
-        seen = self.dedup.check(ing.reporter, ing.batch)
-        if seen.kind == _dedup.FRESH:
-            return None
-        if seen.kind == _dedup.REPEAT:
-            c.batches["duplicate"] += 1
-            c.reject("duplicate", ing.rows_total)
-            return wire.encode_ack(ing.batch, seen.accepted, seen.rejected)
-        code = "stale_batch" if seen.kind == _dedup.STALE else "reporters_full"
-        c.refuse(code)
-        return wire.encode_error(dedup_refusal(seen, ing.reporter, ing.batch, self.dedup), ing.batch)
-
-    def _screen(self, ing: wire.Ingest, peer: _security.Reporter | None) -> wire.Ingest:
-        """Authorisation (CURVE on) and the plausibility guards: the rows that may reach
-        the engine, the others added to the batch's rejections in wire numbering."""
-        hops = ing.hops
-        rows = ing.hop_rows
-        rej = list(ing.rejected)
-        links, link_rows = ing.links, ing.link_rows
-        if peer is not None:
-            ok = _security.hop_rights(peer, hops.src)
-            if not ok.all():
-                rej += [(int(rows[i]), _security.NOT_AUTHORISED) for i in np.flatnonzero(~ok)]
-                keep = np.flatnonzero(ok)
-                hops, rows = hops.take(keep), rows[keep]
-            lok = _security.link_rights(peer, links)
-            if not all(lok):
-                rej += [(r, _security.NOT_AUTHORISED) for r, k in zip(link_rows, lok) if not k]
-                links = tuple(x for x, k in zip(links, lok) if k)
-                link_rows = tuple(r for r, k in zip(link_rows, lok) if k)
-        chk = self.guards.check(hops.src, hops.via, hops.dst, hops.latency, hops.estimate)
-        if chk.rejected or chk.clipped:
-            k = chk.keep
-            rej += [(int(rows[i]), r) for i, r in chk.rejected]
-            hops = HopBatch(hops.src[k], hops.via[k], hops.dst[k], chk.latency, hops.estimate[k])
-            rows = rows[k]
-        if hops is ing.hops and links is ing.links:
-            return ing
-        return dataclasses.replace(ing, hops=hops, hop_rows=rows, links=links,
-                                   link_rows=link_rows, rejected=tuple(rej))
-
-    def _apply_ingest(self, ing: wire.Ingest) -> bytes:
-        eng = self.engine
-        assert eng is not None
-        c = self.counters
-        now = time.time()
-        t0 = time.perf_counter()
-        # hops first, then links: journal.apply_batch, the one order replay uses too
-        res, changed = _apply_batch(eng, ing.hops, ing.links, now)
-        dt = time.perf_counter() - t0
-        rejected = ing.rejections(res.rejected)
-        accepted = res.accepted + len(ing.links)
-        # StorageDown from here: the engine holds a batch the journal lacks — the failure
-        # handler has already put the engine back to what is stored
-        self._append("batch", _batch_body(ing.reporter, ing.batch, now,
-                                          _accepted_part(ing.hops, res.rejected), ing.links,
-                                          {"accepted": accepted, "rejected": rejected}))
-        c.batches["accepted"] += 1
-        c.observations_accepted += res.accepted
-        c.link_reports_accepted += len(ing.links)
-        for _, reason in rejected:
-            c.reject(reason)
-        if res.accepted:
-            c.td_error.observe_many(np.abs(res.td_errors))
-        c.update_duration.observe(dt)
-        if res.accepted or any(changed):
+            return self._unavailable(fed.batch), fed.batch
+        self.counters.add(fed.counts)
+        if fed.touched:
             self._touched = True
-        self.dedup.put(ing.reporter, ing.batch, accepted, rejected)
-        return wire.encode_ack(ing.batch, accepted, rejected)
+        return fed.answer, fed.batch
 
     def _envelope(self, env: list[bytes], body: list[bytes]) -> tuple[list[bytes], list[bytes]]:
         """Hook (routerd.service.shard's worker): move leading body frames into the reply envelope."""
@@ -1145,7 +1067,7 @@ class Service:
                 raise StorageDown(self._down)
             a, b = t.index[req["from"]], t.index[req["to"]]
             up = req["state"] == "up"
-            now = time.time()
+            now = self.clock.wall()
             changed = eng.set_link(a, b, up, now)
             if changed:
                 self._journal_link(a, b, up, now)
@@ -1203,14 +1125,14 @@ class Service:
 
     # -- decisions, tables, snapshots ----------------------------------------------------
     def _housekeeping(self) -> None:
-        now = time.monotonic()
+        now = self.clock.monotonic()
         cfg = self.cfg
         if self.listeners is not None and now >= self._next_gate_tick:
             self.listeners.tick()
             self._next_gate_tick = now + 1.0
         if self._down is not None:
             # no decisions (they would be journaled) and no snapshots; tables keep going out
-            self._try_resume()
+            self.try_resume()
         if self._down is not None:
             if now >= self._next_publish_all:
                 self._queue_publish(range(self.topo.n), "interval")
@@ -1240,7 +1162,7 @@ class Service:
         eng = self.engine
         assert eng is not None
         with self.lock:
-            t = time.time()
+            t = self.clock.wall()
             d = eng.decide(t)
             try:
                 self._journal_tick(t)
@@ -1293,7 +1215,7 @@ class Service:
         journal record it covers.  Consistent only until the loop changes the engine."""
         eng = self.engine
         assert eng is not None
-        self._commit()
+        self.commit()
         return _engine_state(eng, copy=False, dedup=self.dedup.export()), self._last_record
 
     def _snapshot_background(self, cause: str = "interval") -> bool:
@@ -1320,7 +1242,7 @@ class Service:
             if pid == 0:   # pragma: no cover - the child (coverage does not follow os._exit)
                 _snapshot_child(self.snapshots, tmp, state, rec)
             self.counters.snapshot_pause.observe(time.perf_counter() - t0)
-        self._snap_child = (pid, tmp, rec, time.monotonic())
+        self._snap_child = (pid, tmp, rec, self.clock.monotonic())
         self._snap_cause = cause
         return True
 
@@ -1332,7 +1254,7 @@ class Service:
         pid, tmp, rec, started = self._snap_child
         done, status = os.waitpid(pid, 0 if wait else os.WNOHANG)
         if done == 0:
-            if time.monotonic() - started > SNAPSHOT_CHILD_LIMIT_S:
+            if self.clock.monotonic() - started > SNAPSHOT_CHILD_LIMIT_S:
                 os.kill(pid, signal.SIGKILL)
                 os.waitpid(pid, 0)
                 status = -1
@@ -1375,13 +1297,13 @@ class Service:
             sock.send(reply, zmq.NOBLOCK)
 
     def _snapshot_done(self, cause: str, rec: int) -> None:
-        self.last_snapshot_at = time.time()
+        self.last_snapshot_at = self.clock.wall()
         self.last_snapshot_record = rec
         # a note in the journal: the snapshots that exist now, so recovery can tell one
         # that goes missing later (a failure here is a storage failure, handled as one)
         with self.lock:
             self._append("snapshot", {"record": rec, "kept": [n for n, _ in self.snapshots.list()]})
-            self._commit()
+            self.commit()
             self._snapshot_mark = self._last_record
         # retire only before the oldest intact kept snapshot (two at least): a newest one found bad
         # or deleted later still has a fallback with the journal after it
@@ -1463,7 +1385,7 @@ class Service:
             try:
                 self.documents = docs
                 self._reconfigure_engine(settings)
-                self._commit()
+                self.commit()
             except StorageDown as e:
                 self.documents = prev
                 self.counters.reloads["rejected"] += 1
@@ -1472,7 +1394,7 @@ class Service:
             with contextlib.suppress(OSError):   # the record names it; the pointer is a shortcut
                 _statedir.set_current(state_dir, docs)
         self.cfg = merged
-        self.guards.reconfigure(_guards.GuardSettings.from_config(merged))
+        self.pipeline.reconfigure(merged)
         self.counters.reloads["applied"] += 1
         self.log.info("reloaded", file=src, changed=",".join(sorted(tun)) or "-",
                       needs_restart=",".join(restart) or "-")
@@ -1491,7 +1413,7 @@ class Service:
                                  reason=self._down)
             else:
                 if self._touched:
-                    self._decide_and_publish(time.monotonic())
+                    self._decide_and_publish(self.clock.monotonic())
                 with contextlib.suppress(StartError, StorageDown):   # logged; the journal has it all
                     self._snapshot("shutdown")
             self._pub_queue.clear()
@@ -1535,7 +1457,7 @@ class Service:
             _listeners.release_ipc(self.endpoints.values())   # bound by us (claimed first)
         if self.journal is not None:
             with contextlib.suppress(StorageDown):
-                self._commit()
+                self.commit()
             j, self.journal = self.journal, None
             if j is not None:
                 with contextlib.suppress(OSError):

@@ -174,6 +174,21 @@ class Counters:
         self.refused[reason] += 1
         self.batches["refused"] += 1
 
+    def add(self, counts: Any) -> None:
+        """Count one ingest frame's outcome (a :class:`routerd.service.pipeline.Counts`)."""
+        if counts.refused is not None:
+            self.refuse(counts.refused)
+        else:
+            self.batches[counts.result] += 1
+        for reason, n in counts.rejected:
+            self.reject(reason, n)
+        self.observations_accepted += counts.observations
+        self.link_reports_accepted += counts.link_reports
+        if counts.td_errors is not None:
+            self.td_error.observe_many(counts.td_errors)
+        if counts.update_s is not None:
+            self.update_duration.observe(counts.update_s)
+
     def control_request(self, op: str, ok: bool) -> None:
         key = (op if op in CONTROL_OPS else "other", "ok" if ok else "error")
         self.control[key] += 1

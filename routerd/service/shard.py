@@ -123,6 +123,7 @@ from routerd.io.shards import (  # noqa: F401 - re-exported
 from . import daemon as _service
 from . import listeners as _listeners
 from .daemon import Service
+from .pipeline import Fed, envelope, extra_frames
 
 #: Leading bytes of the token frame the front puts before each piece (echoed back).
 TOKEN_PREFIX = b"rdshard:"
@@ -259,13 +260,12 @@ class ShardWorker(Service):
     """A :class:`Service` owning the destinations of shard k of n: it publishes and answers
     for those only, echoes the front's token frames, and announces itself on ``upstream``.
 
-    ``clock``: what its announcements are scheduled on (:mod:`routerd.io.clock`); the
-    rest of its time is the :class:`Service`'s."""
+    ``clock``: every time it reads, announcements included (:mod:`routerd.io.clock`), as
+    the :class:`Service`'s."""
 
     def __init__(self, cfg: _config.Config, topo: _topology.Topology, smap: ShardMap,
                  k: int, upstream: str | None, *, clock: Clock = SYSTEM, **kw: Any):
-        super().__init__(cfg, topo, **kw)
-        self.hello_clock = clock
+        super().__init__(cfg, topo, clock=clock, **kw)
         self.smap = smap
         self.shard = k
         self.own = smap.owned(k)
@@ -347,17 +347,17 @@ class ShardWorker(Service):
                "owned_digest": zlib.crc32(self.own.astype("<i8").tobytes())}
         with contextlib.suppress(zmq.ZMQError):
             self._hello.send(wire.encode_request(msg), zmq.NOBLOCK)
-        self._next_hello = self.hello_clock.monotonic() + self.cfg["shard.hello_interval_s"]
+        self._next_hello = self.clock.monotonic() + self.cfg["shard.hello_interval_s"]
 
     def _housekeeping(self) -> None:
         super()._housekeeping()
-        if self._hello is not None and self.hello_clock.monotonic() >= self._next_hello:
+        if self._hello is not None and self.clock.monotonic() >= self._next_hello:
             self._send_hello()
 
     def _timeout_ms(self) -> int:
         t = super()._timeout_ms()
         if self._hello is not None:
-            t = min(t, max(0, int((self._next_hello - self.hello_clock.monotonic()) * 1000) + 1))
+            t = min(t, max(0, int((self._next_hello - self.clock.monotonic()) * 1000) + 1))
         return t
 
     def close(self) -> None:
@@ -409,10 +409,9 @@ class Front:
     def __init__(self, cfg: _config.Config, topo: _topology.Topology, smap: ShardMap,
                  args: argparse.Namespace | None = None, out: Any = None, inputs: Any = None,
                  *, clock: Clock = SYSTEM):
-        from routerd.core import guards as _guards
         from routerd.io.logs import EventLog
 
-        from .daemon import make_dedup
+        from .pipeline import Pipeline
 
         self.inputs = inputs     # statedir.Chosen: where cfg and topo came from
         self.clock = clock
@@ -422,10 +421,11 @@ class Front:
         self.args = args
         self.out = out or sys.stdout
         self.log = EventLog(cfg["service.log_format"], name="routerd.front")
-        self.guards = _guards.Guards(topo, _guards.GuardSettings.from_config(cfg))
-        # the combined acks, so a re-sent batch is answered before any split (as one
-        # process does); after a front restart each worker's durable window answers
-        self.dedup = make_dedup(cfg)
+        # the ingest stages up to the split (routerd.service.pipeline: decode, duplicates,
+        # rate limits; no engine).  Its duplicate window holds the combined acks, so a
+        # re-sent batch is answered before any split (as one process does); after a front
+        # restart each worker's durable window answers
+        self.pipeline = Pipeline(topo, cfg)
         self.external = bool(getattr(args, "external_workers", False))
         self.workers = [_Worker(k) for k in range(smap.n_shards)]
         self.pending: dict[bytes, _Pending] = {}
@@ -770,19 +770,18 @@ class Front:
                 parts = sock.recv_multipart(zmq.NOBLOCK)
             except zmq.Again:
                 return
-            env: list[bytes] = []
-            body = parts
-            if routed:
-                env, body = parts[:1], parts[1:]
-            if body and body[0] == b"" and len(body) > 1:
-                env, body = env + [b""], body[1:]
+            env, body = envelope(parts, routed)
             if len(body) != 1:
-                self.counts["batches_refused"] += 1
-                self._answer(env if routed else None, wire.encode_error(
-                    f"extra_frames: expected one payload frame (after an optional empty "
-                    f"delimiter), got {len(body)}"))
+                self._answer(env if routed else None, self._count(extra_frames(len(body))))
                 continue
             self._ingest_one(env if routed else None, body[0])
+
+    def _count(self, fed: Fed) -> bytes:
+        """A pipeline outcome in the front's counts; its answer."""
+        key = "batches_unavailable" if fed.counts.refused == "unavailable" else \
+            f"batches_{fed.counts.result}"
+        self.counts[key] += 1
+        return fed.answer
 
     def _answer(self, env: list[bytes] | None, out: bytes) -> None:
         import zmq
@@ -798,32 +797,9 @@ class Front:
         import zmq
 
         cfg = self.cfg
-        ing = wire.decode_ingest(payload, self.topo, max_rows=cfg["service.max_rows"],
-                                 max_bytes=cfg["service.max_message_bytes"])
-        if isinstance(ing, wire.WireError):
-            self.counts["batches_refused"] += 1
-            self._answer(env, wire.encode_error(ing))
-            return
-        from . import dedup as _dedup
-        from .daemon import dedup_refusal
-
-        seen = self.dedup.check(ing.reporter, ing.batch)
-        if seen.kind == _dedup.REPEAT:
-            self.counts["batches_duplicate"] += 1
-            self._answer(env, wire.encode_ack(ing.batch, seen.accepted, seen.rejected))
-            return
-        if seen.kind != _dedup.FRESH:   # stale number or no room for a new name's mark
-            self.counts["batches_refused"] += 1
-            self._answer(env, wire.encode_error(dedup_refusal(seen, ing.reporter, ing.batch,
-                                                              self.dedup), ing.batch))
-            return
-        if not self.guards.admit(ing.reporter, ing.rows_total, time.monotonic()):
-            self.counts["batches_refused"] += 1
-            g = self.guards.settings
-            self._answer(env, wire.encode_error(
-                f"rate_limited: reporter {wire._show(ing.reporter)} is over its rate "
-                f"({g.rate_batches_per_s:g} batches/s, {g.rate_rows_per_s:g} rows/s; 0 = "
-                "unlimited); nothing was applied, send it again later", ing.batch))
+        ing = self.pipeline.admit(payload, None, time.monotonic())
+        if isinstance(ing, Fed):   # refused, or a duplicate answered from the window
+            self._answer(env, self._count(ing))
             return
         hops = ing.hops
         names = self.topo.nodes
@@ -842,9 +818,8 @@ class Front:
         decode_rej = [[int(r), s] for r, s in ing.rejected]
         if not pieces:
             # nothing reached any engine: the decode-time answer is the whole answer
-            self.counts["batches_accepted"] += 1
-            self.dedup.put(ing.reporter, ing.batch, 0, sorted(decode_rej))
-            self._answer(env, wire.encode_ack(ing.batch, 0, sorted(decode_rej)))
+            self._answer(env, self._count(self.pipeline.settle(
+                ing.reporter, ing.batch, 0, sorted(decode_rej))))
             return
         missing = [k for k in pieces if self.workers[k].dealer is None]
         if missing:
@@ -906,9 +881,7 @@ class Front:
             self._answer(p.env, wire.encode_error(p.error, p.batch))
             return
         rejected, accepted = combine_acks(p.decode_rejected, p.n_links, p.pieces, p.acks)
-        self.counts["batches_accepted"] += 1
-        self.dedup.put(p.reporter, p.batch, accepted, rejected)
-        self._answer(p.env, wire.encode_ack(p.batch, accepted, rejected))
+        self._answer(p.env, self._count(self.pipeline.settle(p.reporter, p.batch, accepted, rejected)))
 
     def _expire(self) -> None:
         now = self.clock.monotonic()
