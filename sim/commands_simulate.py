@@ -15,6 +15,7 @@ import sys
 from typing import Any
 
 from routerd.core.errors import InputError
+from routerd.io.files import output_dir
 
 from . import policies as _policies
 from .run import SimSpec
@@ -171,6 +172,7 @@ def run(args: argparse.Namespace) -> int:
         return 2
     spec = spec_from_args(args)
     try:
+        output_dir(args.out)          # before the run: an unusable --out must not lose it
         result = run_sim(spec)
     except InputError as e:
         report_problems(e)

@@ -34,6 +34,7 @@ from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wai
 from typing import IO, Any
 
 from routerd.core.errors import InputError, Problem
+from routerd.io.files import output_dir
 from routerd.io.progress import StatusLine
 
 from . import policies as _policies
@@ -537,6 +538,7 @@ def run(args: argparse.Namespace) -> int:
         specs = build_specs(args)
         check_specs(specs)
         _, topo, _ = load_inputs(SimSpec.of(specs[0]))
+        output_dir(args.out)          # before the runs: a bad --out costs nothing
     except InputError as e:
         print(f"routerd sweep: {len(e.problems)} problem(s)", file=sys.stderr)
         for p in e.problems:

@@ -62,6 +62,7 @@ from heapq import heappop, heappush
 from typing import Any
 
 from routerd.core.topology import Topology
+from routerd.io.scenario import LinkEvent  # defined with the scenario format; re-exported here
 
 from .policy import Policy
 
@@ -74,17 +75,6 @@ _LINK0 = -5  # link event i has code _LINK0 - i
 
 #: A packet from a traffic source: (inject time s, source node, destination node, bits, flow id).
 PacketTuple = tuple[float, int, int, float, int]
-
-
-@dataclass(frozen=True, slots=True)
-class LinkEvent:
-    """A scheduled change to one or more directed links (indices into the topology)."""
-
-    t: float
-    links: tuple[int, ...]
-    action: str  # "down" | "up" | "capacity" | "delay"
-    capacity_bps: float | None = None
-    delay_s: float | None = None  # "delay": the propagation delay of packets sent from t on
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)

@@ -21,7 +21,7 @@ from service_harness import ServiceProc, running, service_args
 
 from routerd.agent import client
 from routerd.io import config, journal, wire
-from routerd.service.daemon import load_config, load_topology
+from routerd.io.inputs import load_config, load_topology
 
 DEMO = load_topology(config.load(None))
 
@@ -456,6 +456,8 @@ def test_serve_flags_are_exactly_the_documented_ones() -> None:
                      "--metrics", "--state-dir",
                      # issue 7: CURVE and the read-only control endpoint
                      "--server-key", "--allow", "--control-readonly",
+                     # issue 16: --set on every command that takes a config
+                     "--set",
                      # sharding (routerd/service/shard.py adds them to serve)
                      "--shards", "--shard", "--upstream", "--shard-listen", "--external-workers"}
     # with neither a config nor flags: the built-in demo lab on loopback

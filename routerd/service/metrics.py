@@ -31,6 +31,8 @@ from prometheus_client.core import (
 )
 from prometheus_client.registry import Collector, CollectorRegistry
 
+from routerd.io import values as _values
+
 #: |TD error| buckets, seconds (the demo lab's hop delays are 0.5–2 ms; estimates reach
 #: the ceiling of 10 s on dead links).
 TD_BUCKETS_S = (1e-6, 1e-5, 1e-4, 2.5e-4, 5e-4, 1e-3, 2.5e-3, 5e-3, 0.01, 0.025, 0.05,
@@ -361,10 +363,10 @@ def _histogram(name: str, doc: str, h: Histo) -> HistogramMetricFamily:
 
 def parse_address(addr: str) -> tuple[str, int]:
     """``HOST:PORT`` (``[v6]:PORT`` too) → (host, port); ValueError naming the rule."""
-    host, sep, port = addr.rpartition(":")
-    if not sep or not host or not port.isdigit() or not 0 <= int(port) <= 65535:
-        raise ValueError(f"metrics address {addr!r} is not HOST:PORT (PORT 0-65535, 0 = any free port)")
-    return host.strip("[]"), int(port)
+    try:
+        return _values.parse_address(addr)       # the one HOST:PORT rule (routerd.io.values)
+    except ValueError as e:
+        raise ValueError(f"metrics {e}") from None
 
 
 def serve(addr: str, source: MetricsSource) -> tuple[Any, int, CollectorRegistry]:

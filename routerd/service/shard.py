@@ -295,10 +295,12 @@ def configure(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    from routerd.io import inputs as _inputs
+
     from . import daemon as _service
 
     try:
-        root = _service.load_config(args)["service.state_dir"]
+        root = _inputs.load_config(args)["service.state_dir"]
         if args.shard is not None:
             if args.shards is not None:
                 raise InputError("give --shards N (front and workers) or --shard K/N (one "

@@ -1,12 +1,22 @@
-"""``routerd validate FILE...``: check config, topology and scenario files.
+"""``routerd validate FILE...``: check config, topology and scenario files as the commands
+that read them would.
 
 Prints ``OK`` and a one-line summary per good file, or every problem found, each naming
-the file, the key path or element, the bad value and the rule.  Exit 1 if any file is bad.
+the file, the key path or element, the bad value and the rule.  Exit 1 if any file is bad;
+exit 2 for bad usage.
 
 The file's kind is told from its content: a mapping with a ``topology`` mapping holding
 ``nodes`` is a topology; one with a ``scenario`` key is a scenario; other mappings are
-configs.  GraphML and node-link JSON files are topologies.  A config that names a
-topology file has that file checked too.
+configs.  GraphML and node-link JSON files are topologies.  An empty file, a directory or
+a binary file is a problem, not a config of defaults.
+
+What a config gets (what ``serve``, ``agent``, ``simulate`` ... check before they start):
+the schema (values, ranges, endpoints and addresses), its paths by the one input rule
+(:mod:`routerd.io.inputs`: relative to the config's folder), the topology it names with
+its link defaults, the CURVE key and allow files (both or neither; the allow file's nodes
+against the topology), and the agent's underlay map against the topology.  Files given
+together are checked together: a scenario against every topology on the command line
+(or named by a config there) — its links must be links of it.
 """
 from __future__ import annotations
 
@@ -15,18 +25,24 @@ import os
 import sys
 from typing import Any
 
+from routerd.core.errors import InputError, Problem
+from routerd.core.topology import Topology, from_mapping
 from routerd.io import config as _config
-from routerd.core import topology as _topology
-from routerd.core.errors import InputError, Problem, read_yaml
+from routerd.io import inputs as _inputs
+from routerd.io import topofiles
+from routerd.io.files import read_yaml
 
 
 def configure(p: argparse.ArgumentParser) -> None:
     p.add_argument("files", nargs="*", metavar="FILE", help="config, topology or scenario files "
-                   "(topohub:GROUP/NAME references work too)")
+                   "(topohub:GROUP/NAME references work too); files given together are "
+                   "cross-checked (a scenario against the topologies)")
     p.add_argument("--capacity-bps", type=float, default=None,
-                   help="capacity for topology links that give none")
+                   help="capacity for topology links that give none (as topology.default_capacity_bps)")
     p.add_argument("--buffer-pkts", type=int, default=None,
-                   help="buffer for topology links that give none")
+                   help="buffer for topology links that give none (as topology.default_buffer_pkts)")
+    p.add_argument("--set", metavar="KEY=VALUE", action="append", default=[], dest="overrides",
+                   help="override one setting of every config checked (repeatable)")
     p.add_argument("--schema", action="store_true", help="print every config setting with its default and range")
 
 
@@ -38,6 +54,9 @@ def kind_of(path: str) -> tuple[str, Any]:
     if ext in (".graphml", ".json"):
         return "topology", None
     doc = read_yaml(path)
+    if doc is None:
+        raise InputError(Problem(path, None, "is empty: not a config, topology or scenario "
+                                 "(an empty --config would silently run on the defaults)"))
     if isinstance(doc, dict) and isinstance(doc.get("topology"), dict) and "nodes" in doc["topology"]:
         return "topology", doc
     if isinstance(doc, dict) and "scenario" in doc:
@@ -51,33 +70,103 @@ def kind_of(path: str) -> tuple[str, Any]:
     return "config", doc
 
 
-def check_file(path: str, defaults: _topology.LinkDefaults) -> str:
-    """Summary line for a good file; raises InputError listing every problem otherwise."""
+class Checked:
+    """What one file turned out to be (for the cross-checks)."""
+
+    def __init__(self, path: str, kind: str, summary: str, topo: Topology | None = None,
+                 scenario: Any = None):
+        self.path, self.kind, self.summary, self.topo, self.scenario = path, kind, summary, topo, scenario
+
+
+def _flags(args: argparse.Namespace) -> argparse.Namespace:
+    return argparse.Namespace(capacity_bps=getattr(args, "capacity_bps", None),
+                              buffer_pkts=getattr(args, "buffer_pkts", None),
+                              overrides=list(getattr(args, "overrides", None) or []))
+
+
+def check_file(path: str, args: argparse.Namespace | None = None) -> Checked:
+    """One file checked as the commands would read it; raises InputError listing every
+    problem otherwise.  ``args``: the command line's ``--capacity-bps``, ``--buffer-pkts``
+    and ``--set``."""
+    fl = _flags(args if args is not None else argparse.Namespace())
     kind, doc = kind_of(path)
     if kind == "topology":
-        if doc is not None:
-            t = _topology.from_mapping(doc, source=path, defaults=defaults)
-        else:
-            t = _topology.load(path, defaults)
-        return t.summary()
+        # link defaults by the one rule, from the command line (no config here)
+        d = _inputs.link_defaults(_inputs.load_config(argparse.Namespace(
+            capacity_bps=fl.capacity_bps, buffer_pkts=fl.buffer_pkts)))
+        t = from_mapping(doc, source=path, defaults=d) if doc is not None else topofiles.load(path, d)
+        return Checked(path, kind, t.summary(), topo=t)
     if kind == "scenario":
-        from routerd.io import scenario as _scenario  # the simulator owns the scenario format
+        from routerd.io import scenario as _scenario
 
         sc = _scenario.from_mapping(doc, source=path)
-        return sc.summary()
-    cfg = _config.from_mapping(doc, path)
-    tfile = cfg["topology.file"]
-    extra = ""
-    if tfile:
-        base = os.path.dirname(path)
-        tpath = tfile if tfile.startswith("topohub:") or os.path.isabs(tfile) else os.path.join(base, tfile)
-        d = _topology.LinkDefaults(
-            cfg["topology.default_capacity_bps"] if cfg["topology.default_capacity_bps"] else defaults.capacity_bps,
-            cfg["topology.default_buffer_pkts"] if cfg["topology.default_buffer_pkts"] else defaults.buffer_pkts,
-        )
-        extra = "; " + _topology.load(tpath, d).summary()
+        return Checked(path, kind, sc.summary(), scenario=sc)
+    _config.from_mapping(doc, path)          # the schema, with this file's name on each problem
+    cfg = _inputs.load_config(argparse.Namespace(config=path, **vars(fl)))
+    topo = _inputs.load_topology(cfg)
+    problems: list[Problem | str] = []
+    problems += _security_problems(cfg, topo)
+    problems += _agent_problems(cfg, topo)
+    if problems:
+        raise InputError(problems)  # type: ignore[arg-type]
     changed = sum(1 for k, f in _config.SCHEMA.items() if cfg[k] != f.default)
-    return f"config: {changed} setting(s) differ from the defaults{extra}"
+    extra = f"; {topo.summary()}" if cfg["topology.file"] else ""
+    return Checked(path, kind, f"config: {changed} setting(s) differ from the defaults{extra}",
+                   topo=topo if cfg["topology.file"] else None)
+
+
+def _security_problems(cfg: _config.Config, topo: Topology) -> list[Problem | str]:
+    """The service's CURVE files, as ``serve`` checks them before it binds."""
+    from routerd.io import security as _security
+
+    out: list[Problem | str] = []
+    try:
+        sk, al = _security.check_pair(cfg)
+        if sk is not None and al is not None:
+            for fn, arg in ((_security.load_server_key, (sk,)), (_security.load_allow, (al, topo))):
+                try:
+                    fn(*arg)   # type: ignore[operator]
+                except InputError as e:
+                    out += e.problems
+    except InputError as e:
+        out += e.problems
+    return out
+
+
+def _agent_problems(cfg: _config.Config, topo: Topology) -> list[Problem | str]:
+    """The agent's underlay map and CURVE files, as ``routerd agent`` reads them."""
+    from routerd.io import security as _security
+
+    out: list[Problem | str] = []
+    if cfg["agent.underlay"]:
+        from routerd.agent.forwarder import load_underlay
+
+        try:
+            load_underlay(cfg["agent.underlay"], topo)
+        except InputError as e:
+            out += e.problems
+    try:
+        _security.client_keys(cfg["agent.client_key"], cfg["agent.server_key"], "agent")
+    except InputError as e:
+        out += e.problems
+    return out
+
+
+def cross_check(done: list[Checked]) -> dict[str, list[Problem | str]]:
+    """Problems between files given together: every scenario's links against every
+    topology on the command line (a config's included)."""
+    topos = [c for c in done if c.topo is not None]
+    out: dict[str, list[Problem | str]] = {}
+    for c in done:
+        if c.scenario is None:
+            continue
+        for t in topos:
+            try:
+                c.scenario.link_events(t.topo)
+            except InputError as e:
+                out.setdefault(c.path, []).extend(
+                    f"{p} (with {t.path})" for p in e.problems)
+    return out
 
 
 def run(args: argparse.Namespace) -> int:
@@ -87,16 +176,23 @@ def run(args: argparse.Namespace) -> int:
     if not args.files:
         print("routerd validate: name at least one FILE (or --schema)", file=sys.stderr)
         return 2
-    defaults = _topology.LinkDefaults(args.capacity_bps, args.buffer_pkts)
     bad = 0
+    done: list[Checked] = []
+    failed: dict[str, list[Problem | str]] = {}
     for path in args.files:
         try:
-            summary = check_file(path, defaults)
+            done.append(check_file(path, args))
         except InputError as e:
+            failed[path] = list(e.problems)
+    for path, probs in cross_check(done).items():
+        failed.setdefault(path, []).extend(probs)
+    summaries = {c.path: c.summary for c in done}
+    for path in args.files:
+        if path in failed:
             bad += 1
-            print(f"{path}: {len(e.problems)} problem(s)")
-            for p in e.problems:
+            print(f"{path}: {len(failed[path])} problem(s)")
+            for p in failed[path]:
                 print(f"  {p}")
-            continue
-        print(f"OK {path}: {summary}")
+        else:
+            print(f"OK {path}: {summaries[path]}")
     return 1 if bad else 0
