@@ -33,6 +33,8 @@ def load(spec: str, defaults: LinkDefaults = LinkDefaults()) -> Topology:
         return load_topohub(spec[len("topohub:"):], defaults)
     if not os.path.exists(spec):
         raise TopologyError(Problem(spec, spec, "does not exist"))
+    if os.path.isdir(spec):
+        raise TopologyError(Problem(spec, spec, "is a directory, not a topology file"))
     ext = os.path.splitext(spec)[1].lower()
     if ext in (".yaml", ".yml"):
         return from_mapping(read_yaml(spec, TopologyError), source=spec, defaults=defaults)
