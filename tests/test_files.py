@@ -41,6 +41,9 @@ def test_not_numbers(text: str) -> None:
 def test_strings_that_look_like_numbers_round_trip() -> None:
     doc = {"nodes": ["1e3", "x"], "v": 1e-6}
     assert files.parse_yaml(files.dump_yaml(doc)) == doc
+    # only a whole scalar is a number: a content id starting "19e1..." stays a string
+    assert files.parse_yaml("id: 19e1f497c1589a9b\nx: 1e3x\n") == {"id": "19e1f497c1589a9b",
+                                                                   "x": "1e3x"}
 
 
 def test_readme_scenario_example_and_every_number_field(tmp_path: Path) -> None:

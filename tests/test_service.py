@@ -407,7 +407,9 @@ def test_start_up_errors_are_clear(base: str) -> None:
     r = serve(*service_args(base, "--topology", os.path.join(base, "missing.yaml")))
     assert r.returncode == 2 and "does not exist" in r.stderr
     r = serve(*service_args(base, "--ingest", "tcp://127.0.0.1:notaport"))
-    assert r.returncode == 2 and "ingest endpoint" in r.stderr
+    # refused when the config is read (routerd.io.values), before anything binds
+    assert r.returncode == 2 and "service.ingest: 'tcp://127.0.0.1:notaport' has no valid " \
+        "port" in r.stderr
     # a state dir written for another topology is refused, not reinterpreted
     other = write(os.path.join(base, "tiny.yaml"), "topology:\n  name: tiny\n  defaults: "
                   "{capacity_bps: 1.0e6, buffer_pkts: 10}\n  nodes: [a, b]\n  links:\n"

@@ -11,6 +11,7 @@ Must not import: anything of routerd but ``routerd.core.errors`` and ``routerd.i
 from __future__ import annotations
 
 import os
+import re
 import tempfile
 from typing import Any
 
@@ -30,8 +31,11 @@ class Dumper(getattr(yaml, "CSafeDumper", yaml.SafeDumper)):  # type: ignore[mis
     as numbers, so a document read back gives the same values."""
 
 
+# PyYAML tries a resolver with re.match: anchored at both ends, or a plain string that
+# merely starts like a number ("19e1f497...", a content id) would be read as one
+_ANCHORED = re.compile(f"^(?:{EXPONENT_RE.pattern})$")
 for _cls in (Loader, Dumper):
-    _cls.add_implicit_resolver("tag:yaml.org,2002:float", EXPONENT_RE, list("-+0123456789."))
+    _cls.add_implicit_resolver("tag:yaml.org,2002:float", _ANCHORED, list("-+0123456789."))
 
 
 def parse_yaml(text: str) -> Any:
