@@ -29,7 +29,7 @@ from collections.abc import Iterable, Mapping
 from importlib import resources
 from typing import Any
 
-from routerd.core.topology import LinkDefaults, Topology
+from routerd.core.topology import LinkDefaults, Topology, from_mapping
 
 from . import config as _config
 from . import topofiles
@@ -125,8 +125,6 @@ def load_topology(cfg: _config.Config, spec: Any = None) -> Topology:
     ``spec`` when given (a path, ``topohub:GROUP/NAME``, a parsed document in our format or
     a :class:`Topology`), else the built-in demo lab; links without capacity or buffer take
     :func:`link_defaults`."""
-    from routerd.core.topology import from_mapping
-
     d = link_defaults(cfg)
     if isinstance(spec, Topology):
         return spec
