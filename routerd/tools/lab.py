@@ -453,7 +453,8 @@ class Lab:
            check=not up)
 
     def _write_files(self) -> None:
-        import yaml
+        # files.dump_yaml: a node name the readers would take for a number stays a string
+        from routerd.io.files import dump_yaml
 
         links = [{"between": [self.topo.nodes[p.a], self.topo.nodes[p.b]],
                   "addresses": [f"{p.addr_a}:{AGENT_PORT}", f"{p.addr_b}:{AGENT_PORT}"]}
@@ -461,10 +462,10 @@ class Lab:
         ul = os.path.join(self.run_dir, "underlay.yaml")
         with open(ul, "w", encoding="utf-8") as fh:
             fh.write("# written by routerd lab: veth addresses inside the lab's namespaces only\n")
-            yaml.safe_dump({"underlay": {"links": links}}, fh, sort_keys=False)
+            fh.write(dump_yaml({"underlay": {"links": links}}, sort_keys=False))
         with open(self.config_path, "w", encoding="utf-8") as fh:
             fh.write("# written by routerd lab for its service and agents\n")
-            yaml.safe_dump(self.cfg_doc, fh, sort_keys=False)
+            fh.write(dump_yaml(self.cfg_doc, sort_keys=False))
         os.makedirs(os.path.join(self.run_dir, "agents"), exist_ok=True)
 
     # -- processes ------------------------------------------------------------------------
