@@ -186,3 +186,15 @@ def test_serve_refuses_a_malformed_endpoint_without_calling_it_exposed(
     assert rc == 2
     assert "service.ingest: 'not-an-endpoint' is not an endpoint" in err
     assert "reachable" not in err and not (tmp_path / "s").exists()
+
+
+def test_simulate_names_a_directory_given_as_a_file(tmp_path: Path,
+                                                    capsys: pytest.CaptureFixture[str]) -> None:
+    base = ["simulate", "--policy", "shortest", "--duration", "0.2", "--seed", "1", "--quiet",
+            "--out", str(tmp_path / "o")]
+    for extra in (["--traffic", str(tmp_path)], ["--rate", "1", "--scenario", str(tmp_path)],
+                  ["--rate", "1", "--config", str(tmp_path)],
+                  ["--rate", "1", "--topology", str(tmp_path)]):
+        assert cli.main([*base, *extra]) == 2, extra
+        err = capsys.readouterr().err
+        assert str(tmp_path) in err and "directory" in err.lower(), err
