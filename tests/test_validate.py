@@ -171,6 +171,12 @@ def test_validate_checks_what_the_commands_check(tmp_path, capsys) -> None:  # t
     cfg2 = _w(tmp_path, "c2.yaml", {"topology": {"file": "lab.yaml"}})
     rc, lines = _run(capsys, cfg2, scen)
     assert rc == 1 and any("is not a link of topology 'bench-lab'" in ln for ln in lines)
+    # several topologies (validate *.yaml): the scenario must fit one of them
+    big = dict(GOOD_TOPO["topology"], name="big", nodes=["a", "b", "c", "zz"])
+    big["links"] = GOOD_TOPO["topology"]["links"] + [{"between": ["a", "zz"], "delay_s": 0.001}]
+    topo2 = _w(tmp_path, "big.yaml", {"topology": big})
+    rc, lines = _run(capsys, topo, topo2, scen)
+    assert rc == 0, lines
     half = _w(tmp_path, "c3.yaml", {"security": {"allow": "allow.yaml"}})
     rc, lines = _run(capsys, half)
     assert rc == 1 and any("CURVE needs both --server-key and --allow" in ln for ln in lines)

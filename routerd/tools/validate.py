@@ -15,8 +15,9 @@ the schema (values, ranges, endpoints and addresses), its paths by the one input
 (:mod:`routerd.io.inputs`: relative to the config's folder), the topology it names with
 its link defaults, the CURVE key and allow files (both or neither; the allow file's nodes
 against the topology), and the agent's underlay map against the topology.  Files given
-together are checked together: a scenario against every topology on the command line
-(or named by a config there) — its links must be links of it.
+together are checked together: a scenario must fit a topology on the command line (or
+named by a config there) — its links must be links of it (of one of them, when several
+are given).
 """
 from __future__ import annotations
 
@@ -153,19 +154,23 @@ def _agent_problems(cfg: _config.Config, topo: Topology) -> list[Problem | str]:
 
 
 def cross_check(done: list[Checked]) -> dict[str, list[Problem | str]]:
-    """Problems between files given together: every scenario's links against every
-    topology on the command line (a config's included)."""
+    """Problems between files given together: a scenario must fit a topology on the
+    command line (a config's included) — one of them when several are given (``validate
+    configs/*.yaml``), else every problem against each is listed."""
     topos = [c for c in done if c.topo is not None]
     out: dict[str, list[Problem | str]] = {}
     for c in done:
-        if c.scenario is None:
+        if c.scenario is None or not topos:
             continue
+        misfits: list[Problem | str] = []
         for t in topos:
             try:
                 c.scenario.link_events(t.topo)
+                break                              # it fits this one
             except InputError as e:
-                out.setdefault(c.path, []).extend(
-                    f"{p} (with {t.path})" for p in e.problems)
+                misfits += [f"{p} (with {t.path})" for p in dict.fromkeys(e.problems)]
+        else:
+            out[c.path] = misfits
     return out
 
 
