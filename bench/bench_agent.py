@@ -37,6 +37,7 @@ sys.path.insert(0, ROOT)
 from routerd.tools import lab as L
 from routerd.agent import overlay as ov
 from routerd.core import topology as T
+from routerd.io import topofiles as TF
 
 PORT = 7400
 BARE = r"""
@@ -150,7 +151,7 @@ def run(quick: bool = False) -> dict[str, dict[str, Any]]:
                             "agent": {"underlay": "underlay.yaml", "metrics": "127.0.0.1:0",
                                       "probe_interval_s": 60.0, "detect_multiplier": 255,
                                       "flowlet_gap_s": 1.0, "report_interval_s": 60.0}}, fh)
-        topo = T.load(tp)
+        topo = TF.load(tp)
         pkt = ov.data_packet(ov.topology_tag(topo.digest), 0, 2, 1, 1, time.time_ns(), 64, 200)
         with L.in_netns(ns[0]):
             tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)

@@ -57,7 +57,7 @@ if ROOT not in sys.path:
 
 from routerd.io import config, wire
 from routerd.io.childproc import parse_ready
-from routerd.service.daemon import load_topology
+from routerd.io.inputs import load_topology
 
 SIZES = (1, 64, 1024)
 WINDOW = 16
@@ -325,12 +325,13 @@ def throughput_topology(base: str) -> tuple[Any, str]:
     from bench_engine import ring_with_chords
 
     from routerd.core import topology as T
+from routerd.io import topofiles as TF
 
     t = ring_with_chords(100, 100)
     path = os.path.join(base, "ring100.yaml")
     with open(path, "w", encoding="utf-8") as fh:
         yaml.safe_dump(T.to_mapping(t), fh)
-    return T.load(path), path
+    return TF.load(path), path
 
 
 def engine_only(topo: Any, frames: Frames, duration: float) -> float:

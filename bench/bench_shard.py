@@ -44,6 +44,7 @@ from bench_ingest import Frames, acked
 from routerd.service import shard
 from routerd.io import wire
 from routerd.core import topology as T
+from routerd.io import topofiles as TF
 from routerd.io.childproc import parse_ready
 from routerd.core.engine import Engine, EngineSettings
 
@@ -173,7 +174,7 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
         tfile = os.path.join(base, "ring200.yaml")
         with open(tfile, "w") as fh:
             yaml.safe_dump(T.to_mapping(topo), fh)
-        topo = T.load(tfile)
+        topo = TF.load(tfile)
         frames = Frames("cols", ROWS, topo, np.random.default_rng(3))
         # debounce 0.5 s: few table rounds, so the figure is about ingest; the default
         # 0.05 s (full runs only) adds a table round per worker every 50 ms

@@ -27,6 +27,7 @@ sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
 from routerd.io import config
 from routerd.core import topology
+from routerd.io import topofiles
 from routerd.sim import policies
 from routerd.sim.core import CoreResult, run_core
 from routerd.sim.run import DEMO_TOPOLOGY
@@ -247,7 +248,7 @@ def memory_per_packet(quick: bool) -> tuple[float, float]:
 
 def run(quick: bool) -> dict[str, dict[str, Any]]:
     figs: dict[str, dict[str, Any]] = {}
-    cases = [(16, topology.load(DEMO_TOPOLOGY), 600.0),
+    cases = [(16, topofiles.load(DEMO_TOPOLOGY), 600.0),
              (100, random_mesh(100), 4000.0),
              (500, random_mesh(500), 8000.0)]
     duration = {16: 20.0, 100: 5.0, 500: 3.0}

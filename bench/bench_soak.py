@@ -32,7 +32,7 @@ sys.path.insert(0, os.path.join(HERE, ".."))
 
 from routerd.io import config, wire
 from routerd.io.childproc import parse_ready
-from routerd.service.daemon import load_topology
+from routerd.io.inputs import load_topology
 
 RATE_BATCHES_S = 200
 ROWS = 100

@@ -46,6 +46,7 @@ import numpy as np
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
 from routerd.core import topology as T
+from routerd.io import topofiles as TF
 from routerd.sim import analytic as A
 from routerd.sim import mindelay as M
 from routerd.sim.policies import QRouting
@@ -83,7 +84,7 @@ class CountingQRouting(QRouting):
 
 
 def load_topology(key: str) -> T.Topology:
-    return T.load(key, T.LinkDefaults(CAPACITY_BPS, BUFFER_PKTS))
+    return TF.load(key, T.LinkDefaults(CAPACITY_BPS, BUFFER_PKTS))
 
 
 def shortest_saturation_pps(topo: T.Topology) -> tuple[float, int]:

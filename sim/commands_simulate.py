@@ -23,6 +23,7 @@ from contextlib import contextmanager
 from typing import Any
 
 from routerd.core.errors import InputError
+from routerd.io.files import output_dir
 
 from . import policies as _policies
 from .core import StopRequest
@@ -198,6 +199,7 @@ def run(args: argparse.Namespace) -> int:
     spec = spec_from_args(args)
     stop = StopRequest()
     try:
+        output_dir(args.out)          # before the run: an unusable --out must not lose it
         with ctrl_c_stops(stop):
             result = run_sim(spec, stop=stop)
     except InputError as e:

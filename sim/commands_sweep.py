@@ -43,7 +43,8 @@ import numpy as np
 
 from routerd import __version__
 from routerd.core import topology as _topology
-from routerd.core.errors import InputError, Problem, read_yaml
+from routerd.core.errors import InputError, Problem
+from routerd.io.files import output_dir, read_yaml
 from routerd.io.progress import StatusLine
 
 from . import executors as _executors
@@ -719,6 +720,7 @@ def run(args: argparse.Namespace) -> int:
         check_specs(specs)
         kind, sched = _executor_choice(args, specs[0])
         _, topo, _ = load_inputs(SimSpec.of(specs[0]))
+        output_dir(args.out)          # before the runs: a bad --out costs nothing
         specs = inline_specs(specs)
     except InputError as e:
         print(f"routerd sweep: {len(e.problems)} problem(s)", file=sys.stderr)

@@ -71,6 +71,7 @@ from heapq import heappop, heappush
 from typing import Any
 
 from routerd.core.topology import Topology
+from routerd.io.scenario import LinkEvent  # defined with the scenario format; re-exported here
 
 from .policy import Policy
 
@@ -100,17 +101,6 @@ class StopRequest:
             raise KeyboardInterrupt
         self.requested = True
         self._push()
-
-
-@dataclass(frozen=True, slots=True)
-class LinkEvent:
-    """A scheduled change to one or more directed links (indices into the topology)."""
-
-    t: float
-    links: tuple[int, ...]
-    action: str  # "down" | "up" | "capacity" | "delay"
-    capacity_bps: float | None = None
-    delay_s: float | None = None  # "delay": the propagation delay of packets sent from t on
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)

@@ -10,6 +10,7 @@ Must not import: zmq, prometheus, matplotlib (plots live in :mod:`routerd.sim.pl
 """
 from __future__ import annotations
 
+import argparse
 import math
 import os
 import sys
@@ -21,6 +22,7 @@ from typing import Any
 import numpy as np
 
 from routerd.io import config as _config
+from routerd.io import inputs as _inputs
 from routerd.core import topology as _topology
 from routerd.core.errors import InputError, Problem
 from .stats import delivery_stats
@@ -30,7 +32,7 @@ from routerd.io import scenario as _scenario
 from .core import CoreResult, StopRequest, run_core
 from .traffic import PoissonTraffic
 
-DEMO_TOPOLOGY = os.path.join(os.path.dirname(os.path.dirname(_topology.__file__)), "data", "demo-lab.yaml")
+DEMO_TOPOLOGY = os.path.join(os.path.dirname(os.path.dirname(_topology.__file__)), "data", _inputs.DEMO_LAB)
 
 
 @dataclass
@@ -113,19 +115,12 @@ def load_inputs(spec: SimSpec) -> tuple[_config.Config, _topology.Topology, _sce
     problems = _check(spec)
     if problems:
         raise InputError(problems)
-    cfg = _config.load(spec.config, spec.overrides)
-    cap = spec.capacity_bps if spec.capacity_bps is not None else cfg["topology.default_capacity_bps"]
-    bufp = spec.buffer_pkts if spec.buffer_pkts is not None else cfg["topology.default_buffer_pkts"]
-    defaults = _topology.LinkDefaults(cap, bufp)
-    t = spec.topology
-    if t is None:
-        t = cfg["topology.file"] or DEMO_TOPOLOGY
-    if isinstance(t, _topology.Topology):
-        topo = t
-    elif isinstance(t, Mapping):
-        topo = _topology.from_mapping(t, source="<spec>", defaults=defaults)
-    else:
-        topo = _topology.load(str(t), defaults)
+    # the one input rule (routerd.io.inputs): the config's paths relative to its folder,
+    # --capacity-bps / --buffer-pkts as overrides of its topology.default_* keys
+    cfg = _inputs.load_config(argparse.Namespace(
+        config=spec.config, overrides=list(spec.overrides), capacity_bps=spec.capacity_bps,
+        buffer_pkts=spec.buffer_pkts))
+    topo = _inputs.load_topology(cfg, spec.topology)
     sc = spec.scenario
     if sc is None:
         scen = _scenario.empty()

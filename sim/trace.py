@@ -768,8 +768,11 @@ def load_traffic(path: str, topo: Topology, address_map: str | None = None, *,
     amap = load_address_map(address_map, topo) if address_map else None
     if not os.path.exists(path):
         raise TraceError(f"{path}: does not exist")
-    with open(path, "rb") as fh:
-        head = fh.read(4)
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(4)
+    except OSError as e:       # a directory, no permission: named, never a traceback
+        raise TraceError(f"{path}: cannot be read: {e.strerror or e}") from None
     if capture_format(head) is not None:
         return load_capture(path, topo, amap, speed=speed, allow_truncated=allow_truncated,
                             flows_per_pair=flows_per_pair)

@@ -23,7 +23,7 @@ import zmq
 
 from routerd.io import config, wire
 from routerd.io.childproc import parse_ready
-from routerd.service.daemon import load_topology
+from routerd.io.inputs import load_topology
 
 EP = re.compile(r"^  (ingest|pull|publish|control|metrics)\s+(\S+)")
 START_TIMEOUT_S = 30.0

@@ -29,6 +29,7 @@ from routerd.agent import forwarder as A
 from routerd.io import config as C
 from routerd.agent import overlay as ov
 from routerd.core import topology as T
+from routerd.io import topofiles as TF
 from routerd.io import wire
 from routerd.io.clock import SYSTEM, FakeClock
 
@@ -164,7 +165,7 @@ class Diamond:
         tp = os.path.join(base, "topo.yaml")
         with open(tp, "w") as fh:
             yaml.safe_dump(TOPO_DOC, fh)
-        self.topo = T.load(tp)
+        self.topo = TF.load(tp)
         self.ports = {n: {"local": free_udp_port(), "deliver": free_udp_port()} for n in NODES}
         links = []
         for a, b in (("s", "x"), ("s", "y"), ("x", "t"), ("y", "t")):
@@ -619,7 +620,7 @@ def _bare_agent(tmp_path: Any, clock: FakeClock) -> tuple[A.Agent, CollectorRegi
     """An agent of node s (not opened: no sockets) with its two links in hand."""
     tp = tmp_path / "topo.yaml"
     tp.write_text(yaml.safe_dump(TOPO_DOC))
-    topo = T.load(str(tp))
+    topo = TF.load(str(tp))
     cfg = C.from_mapping_flat({"topology.file": str(tp), "agent.probe_interval_s": 0.05,
                                "agent.detect_multiplier": 3}, "test", base=None)
     ul = {(0, 1): (("127.0.0.1", 1), ("127.0.0.1", 2)), (1, 0): (("127.0.0.1", 2), ("127.0.0.1", 1)),

@@ -20,13 +20,14 @@ from service_harness import ServiceProc, service_args, short_base
 from routerd.agent import client
 from routerd.io import security, wire
 from routerd.core import topology
+from routerd.io import topofiles
 
 DEMO = "routerd/data/demo-lab.yaml"
 
 
 @pytest.fixture(scope="module")
 def topo() -> topology.Topology:
-    return topology.load(DEMO)
+    return topofiles.load(DEMO)
 
 
 @pytest.fixture()

@@ -12,6 +12,7 @@ import zmq
 
 from routerd.agent import client
 from routerd.core import topology
+from routerd.io import topofiles
 from routerd.io.clock import SYSTEM, Clock, FakeClock, SystemClock
 
 
@@ -82,7 +83,7 @@ def test_reporter_retry_budget_runs_on_its_clock(ingest: str) -> None:
     silent.linger = 0
     silent.bind(ingest)
     clock = FakeClock(wall_start_ns=1_700_000_000_000_000_000)
-    topo = topology.load("routerd/data/demo-lab.yaml")
+    topo = topofiles.load("routerd/data/demo-lab.yaml")
     rep = client.Reporter(ingest, "p", topology_nodes=topo, timeout_s=2.0, retries=2,
                           context=ctx, clock=clock)
     try:

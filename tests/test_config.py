@@ -56,7 +56,9 @@ def test_load_a_file_with_units_in_names_and_coercion(tmp_path) -> None:  # type
     assert cfg["sim.ttl"] == 32 and isinstance(cfg["sim.ttl"], int)
     assert cfg["engine.ceiling_s"] == 3.0
     assert cfg.source == path
-    assert config.load(_write(tmp_path, "", "empty.yaml")) == config.load()  # empty file: defaults
+    # an empty (or comments-only) file is refused: it would run on the defaults unnoticed
+    with pytest.raises(ConfigError, match="is empty"):
+        config.load(_write(tmp_path, "# nothing yet\n", "empty.yaml"))
 
 
 @pytest.mark.parametrize("doc,expect", [

@@ -12,11 +12,12 @@ import pytest
 from routerd.io import config, journal, wire
 from routerd.service import dedup as D
 from routerd.core import topology as T
+from routerd.io import topofiles as TF
 from routerd.service.daemon import SERVICE_REASONS, Service
 
 REASONS = wire.REASONS + SERVICE_REASONS
 DEMO = os.path.join(os.path.dirname(__file__), "..", "routerd", "data", "demo-lab.yaml")
-TOPO = T.load(DEMO)
+TOPO = TF.load(DEMO)
 
 
 def test_window_bounds_and_repeat_answers() -> None:

@@ -131,6 +131,7 @@ def offline(tmp_path_factory: Any) -> demo.Demo:
     """A Demo whose three results are in-process runs (the 'service' one: qrouting with
     another seed, so its line differs a little from the in-process learner's)."""
     from routerd.core import topology
+    from routerd.io import topofiles
     from routerd.io import scenario
     from routerd.sim.run import DEMO_TOPOLOGY
 
@@ -138,7 +139,7 @@ def offline(tmp_path_factory: Any) -> demo.Demo:
     d = demo.Demo(str(tmp_path_factory.mktemp("demo")), dur, 1, 1.0)
     d.scenario_doc = demo.stretched_scenario(dur)
     d.scenario = scenario.from_mapping(d.scenario_doc)
-    d.topo = topology.load(DEMO_TOPOLOGY)
+    d.topo = topofiles.load(DEMO_TOPOLOGY)
     d.link_events = [(c.at_s, c.action, c.ends[0]) for c in d.scenario.links]
     for pol in ("shortest", "qrouting"):
         d.results[pol] = d.run_in_process(pol)

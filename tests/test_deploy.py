@@ -22,6 +22,7 @@ from routerd.tools import cli
 from routerd.io import wire
 from routerd.service import metrics as M
 from routerd.core import topology as T
+from routerd.io import topofiles as TF
 from routerd.core.engine import Engine
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
@@ -60,7 +61,7 @@ def test_promtool_unit_tests_of_the_alerts() -> None:
 
 def exported_samples() -> dict[str, list[dict[str, str]]]:
     """Every sample name (with its label sets) the service's collector and an agent export."""
-    topo = T.load(os.path.join(ROOT, "configs", "lab-small.yaml"))
+    topo = TF.load(os.path.join(ROOT, "configs", "lab-small.yaml"))
     eng = Engine(topo)
     src = SimpleNamespace(
         counters=M.Counters(row_reasons=wire.REASONS + ("duplicate",), frame_reasons=wire.FRAME_ERRORS),

@@ -23,6 +23,8 @@ import numpy as np
 import pytest
 
 from routerd.core import topology
+
+from routerd.io import topofiles
 from routerd.sim import analytic, policies
 from routerd.sim.run import run
 
@@ -46,7 +48,7 @@ def equal_delay_topology(doc: dict[str, Any]) -> topology.Topology:
         nd.pop("name", None)
     for e in doc["edges"]:
         e["delay_s"] = 0.001
-    return topology.from_node_link(doc, source="topohub", defaults=topology.LinkDefaults(10e6, 100000))
+    return topofiles.from_node_link(doc, source="topohub", defaults=topology.LinkDefaults(10e6, 100000))
 
 
 def uniform(n: int) -> np.ndarray:

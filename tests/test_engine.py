@@ -25,6 +25,7 @@ from routerd.io import config
 from routerd.core import loops
 from routerd.core import engine as E
 from routerd.core import topology as T
+from routerd.io import topofiles as TF
 from routerd.core.engine import Engine, EngineSettings, HopBatch
 
 FIBRE = 5e-6  # s/km, ITU-T G.114 planning figure (the topohub import's rule)
@@ -113,7 +114,7 @@ def _all_rows(t: T.Topology) -> tuple[np.ndarray, ...]:
 @pytest.mark.parametrize("key", ["sndlib/abilene", "sndlib/geant", "gabriel/50/0"])
 def test_fixed_point_is_dijkstra_distance(key: str, topohub_raw) -> None:  # type: ignore[no-untyped-def]
     doc = topohub_raw(key)
-    t = T.load(f"topohub:{key}", T.LinkDefaults(1e9, 100))
+    t = TF.load(f"topohub:{key}", T.LinkDefaults(1e9, 100))
     assert t.n >= 12 and (key != "gabriel/50/0" or t.n >= 50)
     # reference: networkx's Dijkstra on topohub's own graph, dist (km) x 5 us/km
     G = nx.node_link_graph(doc, edges="edges")
@@ -148,7 +149,7 @@ def test_fixed_point_is_dijkstra_distance(key: str, topohub_raw) -> None:  # typ
 
 
 def test_shortest_initial_values_are_already_the_fixed_point() -> None:
-    t = T.load("topohub:sndlib/abilene", T.LinkDefaults(1e9, 100))
+    t = TF.load("topohub:sndlib/abilene", T.LinkDefaults(1e9, 100))
     eng = Engine(t, EngineSettings(initial_mode="shortest"))
     x, y, d, lat = _all_rows(t)
     D = t.shortest_delays()

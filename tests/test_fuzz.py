@@ -18,11 +18,12 @@ from hypothesis import strategies as st
 
 from routerd.io import config, journal, security, wire
 from routerd.core import topology as T
+from routerd.io import topofiles as TF
 from routerd.core.engine import EngineSettings
 from routerd.service.daemon import SERVICE_FRAME_ERRORS, Service
 
 DEMO = os.path.join(os.path.dirname(__file__), "..", "routerd", "data", "demo-lab.yaml")
-TOPO = T.load(DEMO)
+TOPO = TF.load(DEMO)
 NAMES = list(TOPO.nodes)
 
 # ---- strategies -------------------------------------------------------------------------------

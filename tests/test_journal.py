@@ -14,6 +14,7 @@ import pytest
 from routerd.core import engine as E
 from routerd.io import journal as J
 from routerd.core import topology
+from routerd.io import topofiles
 from routerd.io import wire
 
 DEMO = "routerd/data/demo-lab.yaml"
@@ -21,7 +22,7 @@ DEMO = "routerd/data/demo-lab.yaml"
 
 @pytest.fixture(scope="module")
 def topo() -> topology.Topology:
-    return topology.load(DEMO)
+    return topofiles.load(DEMO)
 
 
 def _read(path: str) -> bytes:

@@ -24,6 +24,7 @@ import pytest
 
 from routerd.tools import lab as L
 from routerd.core import topology as T
+from routerd.io import topofiles as TF
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 TOPO = os.path.join(ROOT, "configs", "lab-small.yaml")
@@ -124,7 +125,7 @@ def test_refuses_without_root(monkeypatch: pytest.MonkeyPatch, capsys: pytest.Ca
 
 
 def test_plan_addresses_are_private_slash30s() -> None:
-    topo = T.load(TOPO)
+    topo = TF.load(TOPO)
     pairs = L.plan_pairs(topo)
     assert len(pairs) == 8                      # 8 two-way links in lab-small
     import ipaddress
@@ -140,7 +141,7 @@ def test_plan_addresses_are_private_slash30s() -> None:
 
 
 def test_bad_event_options_are_refused() -> None:
-    topo = T.load(TOPO)
+    topo = TF.load(TOPO)
     with pytest.raises(L.InputError, match="is not a link"):
         L.parse_capacity_change("3:a1:b2:1e5", topo)
     with pytest.raises(L.InputError, match="T:FROM:TO:BPS"):
@@ -168,7 +169,7 @@ def test_lab_delivers_end_to_end_with_the_simulators_keys(outdir: str) -> None:
     # every delivered packet took at least its pair's shortest propagation delay (emulated
     # in user space), computed independently with networkx's Dijkstra
     g = nx.DiGraph()
-    topo = T.load(TOPO)
+    topo = TF.load(TOPO)
     for a, b, dly in zip(topo.src.tolist(), topo.dst.tolist(), topo.delay_s.tolist()):
         g.add_edge(topo.nodes[a], topo.nodes[b], w=dly)
     sp = dict(nx.all_pairs_dijkstra_path_length(g, weight="w"))

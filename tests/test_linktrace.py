@@ -13,7 +13,7 @@ import pytest
 
 from routerd.io import config
 from routerd.core.errors import InputError
-from routerd.service.daemon import load_topology
+from routerd.io.inputs import load_topology
 from routerd.sim import linktrace as LT
 from routerd.sim.run import run as run_sim
 

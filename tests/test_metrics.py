@@ -22,7 +22,8 @@ from prometheus_client.registry import CollectorRegistry
 from routerd.io import config, wire
 from routerd.service import metrics
 from routerd.core.engine import Engine, HopBatch
-from routerd.service.daemon import SERVICE_REASONS, load_topology
+from routerd.io.inputs import load_topology
+from routerd.service.daemon import SERVICE_REASONS
 
 DEMO = load_topology(config.load(None))
 

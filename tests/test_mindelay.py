@@ -13,6 +13,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from routerd.core import topology
+
+from routerd.io import topofiles
 from routerd.sim import analytic
 from routerd.sim import mindelay as md
 from routerd.sim.run import run
@@ -134,7 +136,7 @@ def load_topohub(key: str) -> topology.Topology:
     # ResourceWarning is topohub's, not ours
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ResourceWarning)
-        return topology.load(f"topohub:{key}", topology.LinkDefaults(10e6, 64))
+        return topofiles.load(f"topohub:{key}", topology.LinkDefaults(10e6, 64))
 
 
 def abilene(load: float) -> tuple[topology.Topology, np.ndarray, np.ndarray]:

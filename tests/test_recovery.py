@@ -21,7 +21,8 @@ from routerd.io import config, wire
 from routerd.core import engine as E
 from routerd.io import journal as J
 from routerd.tools import replay as R
-from routerd.service.daemon import Service, load_topology
+from routerd.io.inputs import load_topology
+from routerd.service.daemon import Service
 
 DEMO = load_topology(config.load(None))
 

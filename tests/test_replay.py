@@ -27,7 +27,7 @@ from routerd.core import engine as E
 from routerd.io import journal as J
 from routerd.tools import replay as R
 from routerd.tools.cli import main
-from routerd.service.daemon import load_topology
+from routerd.io.inputs import load_topology
 
 DEMO = load_topology(config.load(None))
 

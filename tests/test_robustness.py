@@ -25,7 +25,7 @@ from service_harness import ServiceProc, service_args
 from routerd.agent import client
 from routerd.io import config, journal, security, wire
 from routerd.core.engine import EngineSettings
-from routerd.service.daemon import load_topology
+from routerd.io.inputs import load_topology
 
 DEMO = load_topology(config.load(None))
 

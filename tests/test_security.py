@@ -18,16 +18,18 @@ import zmq.auth
 from service_harness import ServiceProc, service_args, short_base
 
 from routerd.io import security
+from routerd.io import inputs
 from routerd.io.logs import EventLog
 from routerd.service import daemon as service
 from routerd.core import topology as T
+from routerd.io import topofiles as TF
 from routerd.core.errors import InputError
 
 DEMO = os.path.join(os.path.dirname(__file__), "..", "routerd", "data", "demo-lab.yaml")
 
 
 def _demo() -> T.Topology:
-    return T.load(DEMO)
+    return TF.load(DEMO)
 
 
 def _routerd(*args: str) -> subprocess.CompletedProcess[str]:
@@ -388,10 +390,10 @@ def test_service_config_resolves_key_paths_relative_to_the_config(tmp_path: Any)
                                      "  allow: allow.yaml\n")
     p = argparse.ArgumentParser()
     service.configure(p)
-    cfg = service.load_config(p.parse_args(["--config", str(tmp_path / "c.yaml")]))
+    cfg = inputs.load_config(p.parse_args(["--config", str(tmp_path / "c.yaml")]))
     assert cfg["security.server_key"] == str(tmp_path / "keys" / "svc.key_secret")
     assert cfg["security.allow"] == str(tmp_path / "allow.yaml")
-    cfg = service.load_config(p.parse_args(["--allow", "x.yaml"]))
+    cfg = inputs.load_config(p.parse_args(["--allow", "x.yaml"]))
     assert cfg["security.allow"] == os.path.abspath("x.yaml")
 
 

@@ -22,7 +22,7 @@ from service_harness import ServiceProc, running, service_args
 from routerd.agent import client
 from routerd.core import kernels
 from routerd.io import config, journal, wire
-from routerd.service.daemon import load_config, load_topology
+from routerd.io.inputs import load_config, load_topology
 
 DEMO = load_topology(config.load(None))
 
@@ -411,7 +411,9 @@ def test_start_up_errors_are_clear(base: str) -> None:
     r = serve(*service_args(base, "--topology", os.path.join(base, "missing.yaml")))
     assert r.returncode == 2 and "does not exist" in r.stderr
     r = serve(*service_args(base, "--ingest", "tcp://127.0.0.1:notaport"))
-    assert r.returncode == 2 and "ingest endpoint" in r.stderr
+    # refused when the config is read (routerd.io.values), before anything binds
+    assert r.returncode == 2 and "service.ingest: 'tcp://127.0.0.1:notaport' has no valid " \
+        "port" in r.stderr
     # a state dir written for another topology is refused, not reinterpreted
     other = write(os.path.join(base, "tiny.yaml"), "topology:\n  name: tiny\n  defaults: "
                   "{capacity_bps: 1.0e6, buffer_pkts: 10}\n  nodes: [a, b]\n  links:\n"
@@ -460,6 +462,8 @@ def test_serve_flags_are_exactly_the_documented_ones() -> None:
                      "--metrics", "--state-dir",
                      # issue 7: CURVE and the read-only control endpoint
                      "--server-key", "--allow", "--control-readonly",
+                     # issue 16: --set on every command that takes a config
+                     "--set",
                      # sharding (routerd/service/shard.py's; serve.py adds them)
                      "--shards", "--shard", "--upstream", "--shard-listen", "--external-workers"}
     # with neither a config nor flags: the built-in demo lab on loopback

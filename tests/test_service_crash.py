@@ -22,7 +22,7 @@ from service_harness import ServiceProc, service_args, stream_until_killed
 from routerd.agent import client
 from routerd.io import config, journal, wire
 from routerd.core.engine import Engine, EngineSettings
-from routerd.service.daemon import load_topology
+from routerd.io.inputs import load_topology
 
 DEMO = load_topology(config.load(None))
 

@@ -10,11 +10,12 @@ import numpy as np
 
 from routerd.io import config, journal, wire
 from routerd.core import topology as T
+from routerd.io import topofiles as TF
 from routerd.core.engine import Engine, EngineSettings
 from routerd.service.daemon import Service
 
 DEMO = os.path.join(os.path.dirname(__file__), "..", "routerd", "data", "demo-lab.yaml")
-TOPO = T.load(DEMO)
+TOPO = TF.load(DEMO)
 
 
 def _start(state_dir: str, **kw: Any) -> Service:

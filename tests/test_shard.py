@@ -28,7 +28,7 @@ from routerd.io import journal as J
 from routerd.service import shard
 from routerd.io import wire
 from routerd.agent.client import Reporter, TableSubscriber
-from routerd.service.daemon import load_topology
+from routerd.io.inputs import load_topology
 
 CONF = """\
 service:

@@ -8,6 +8,8 @@ import numpy as np
 import pytest
 
 from routerd.core import topology
+
+from routerd.io import topofiles
 from routerd.sim import plots
 from routerd.sim.run import DEMO_TOPOLOGY, run
 
@@ -15,7 +17,7 @@ ABILENE = "topohub:sndlib/abilene"   # the topohub package's copy of SNDlib's ab
 
 
 def test_layout_is_deterministic_and_spread() -> None:
-    t = topology.load(DEMO_TOPOLOGY)
+    t = topofiles.load(DEMO_TOPOLOGY)
     a, b = plots.layout(t), plots.layout(t)
     assert np.array_equal(a, b)
     d = np.linalg.norm(a[:, None] - a[None], axis=2) + np.eye(t.n)
@@ -28,7 +30,7 @@ def test_layout_is_deterministic_and_spread() -> None:
 def test_draw_all(tmp_path) -> None:
     import matplotlib.image as mpimg
 
-    t = topology.load(DEMO_TOPOLOGY)
+    t = topofiles.load(DEMO_TOPOLOGY)
     r = run({"policy": "shortest", "rate_pps": 1500.0, "duration_s": 4.0, "seed": 1})
     paths = plots.draw_all(r, t, str(tmp_path))
     for p in paths:
@@ -110,7 +112,7 @@ def _luminance(rgba) -> float:
 def test_utilisation_figure_on_abilene_readable_directed_and_says_mean_and_peak() -> None:
     from matplotlib.patches import FancyArrowPatch
 
-    t = topology.load(ABILENE, topology.LinkDefaults(10e6, 64))
+    t = topofiles.load(ABILENE, topology.LinkDefaults(10e6, 64))
     r = run({"policy": "shortest", "rate_pps": 6000.0, "duration_s": 4.0, "seed": 1,
              "topology": ABILENE, "capacity_bps": 10e6, "buffer_pkts": 64})
     fig = plots.utilisation_figure(r, t)
@@ -146,7 +148,7 @@ def test_utilisation_figure_on_abilene_readable_directed_and_says_mean_and_peak(
 
 
 def test_utilisation_widths_follow_capacity() -> None:
-    t = topology.load(DEMO_TOPOLOGY)
+    t = topofiles.load(DEMO_TOPOLOGY)
     r = run({"policy": "shortest", "rate_pps": 800.0, "duration_s": 3.0, "seed": 1})
     fig = plots.utilisation_figure(r, t)
     from matplotlib.patches import FancyArrowPatch

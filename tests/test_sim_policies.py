@@ -9,6 +9,7 @@ from sim_helpers import assert_little
 
 from routerd.io import config
 from routerd.core import topology
+from routerd.io import topofiles
 from routerd.core.errors import InputError
 from routerd.sim import policies
 from routerd.sim.run import DEMO_TOPOLOGY, run
@@ -84,7 +85,7 @@ def test_ecmp_splits_over_equal_cost_hops_and_keeps_flows_together() -> None:
 
 
 def test_qrouting_tables_are_the_engines_published_weights() -> None:
-    topo = topology.load(DEMO_TOPOLOGY)
+    topo = topofiles.load(DEMO_TOPOLOGY)
     cfg = config.load(None, ["engine.explore.min_rate=0.05", "engine.explore.max_rate=0.1"])
     p = policies.QRouting()
     p.attach(topo, np.random.default_rng(0), cfg)

@@ -6,6 +6,8 @@ import numpy as np
 import pytest
 
 from routerd.core import topology
+
+from routerd.io import topofiles
 from routerd.core.errors import InputError
 from routerd.tools.validate import check_file
 from routerd.io import scenario
@@ -28,7 +30,7 @@ def test_steps_ramps_and_bursts() -> None:
 
 
 def test_link_events_bind_to_the_topology() -> None:
-    topo = topology.load(DEMO_TOPOLOGY)
+    topo = topofiles.load(DEMO_TOPOLOGY)
     s = sc(links=[{"at_s": 5, "between": ["w3", "e3"], "down": True},
                   {"at_s": 6, "from": "w3", "to": "e3", "up": True},
                   {"at_s": 7, "between": ["w3", "e3"], "capacity_bps": 1e6}])
@@ -80,8 +82,8 @@ def test_routerd_validate_checks_scenario_files(tmp_path) -> None:
     good = tmp_path / "cut.yaml"
     good.write_text("scenario:\n  name: trunk-cut\n  links:\n"
                     "    - {at_s: 5, between: [w3, e3], down: true}\n")
-    assert "scenario 'trunk-cut'" in check_file(str(good), topology.LinkDefaults())
+    assert "scenario 'trunk-cut'" in check_file(str(good)).summary
     bad = tmp_path / "bad.yaml"
     bad.write_text("scenario:\n  load:\n    - {step: x, at_s: 1}\n")
     with pytest.raises(InputError, match=r"bad.yaml: scenario.load\[0\].step: 'x' must be a number"):
-        check_file(str(bad), topology.LinkDefaults())
+        check_file(str(bad))

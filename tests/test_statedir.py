@@ -33,8 +33,9 @@ from routerd.service import shard
 from routerd.core import engine as E
 from routerd.io import journal as J
 from routerd.core import topology as T
+from routerd.io import topofiles as TF
 from routerd.tools.cli import main
-from routerd.service.daemon import load_config, load_topology
+from routerd.io.inputs import load_config, load_topology
 
 DEMO = load_topology(config.load(None))
 
@@ -89,9 +90,9 @@ def test_topology_document_reads_back_bit_for_bit(tmp_path: Any) -> None:
     gml = str(tmp_path / "ring.graphml")
     write_graphml(gml, ring)
     # topohub's abilene (package topohub): node-link JSON with km distances and demands
-    abilene = T.load("topohub:sndlib/abilene", T.LinkDefaults(1e9, 100))
+    abilene = TF.load("topohub:sndlib/abilene", T.LinkDefaults(1e9, 100))
     assert abilene.demands is not None and abilene.demands.any()
-    for i, topo in enumerate([ring, odd, T.load(gml), abilene, DEMO]):
+    for i, topo in enumerate([ring, odd, TF.load(gml), abilene, DEMO]):
         d = str(tmp_path / f"s{i}")
         refs = statedir.store(d, topo, None)
         back = statedir.load_topology(d, refs.topology)
@@ -189,7 +190,7 @@ def test_choice_recorded_explicit_and_never_a_silent_demo_lab(tmp_path: Any) -> 
                  "capacity_bps: 1.0e6, buffer_pkts: 10}\n")
     with pytest.raises(statedir.DocumentError) as e:
         choose(d, ns(topology=other), None)
-    assert ring.digest in str(e.value) and T.load(other).digest in str(e.value)
+    assert ring.digest in str(e.value) and TF.load(other).digest in str(e.value)
     assert "another topology" in str(e.value)
     # the same nodes with another delay: taken, and the difference said
     import yaml
@@ -230,7 +231,7 @@ def test_replay_uses_the_recorded_topology_and_refuses_another(tmp_path: Any,
                  "capacity_bps: 1.0e6, buffer_pkts: 10}\n")
     assert main(["replay", d, "--out", str(tmp_path / "o2"), "--topology", other]) == 2
     err = capsys.readouterr().err
-    other_id = T.load(other).digest
+    other_id = TF.load(other).digest
     assert ring.digest in err and other_id in err
 
 
@@ -329,7 +330,7 @@ def test_state_dir_alone_after_the_topology_is_deleted_and_a_kill_9(base: str, t
         fh.write("topology:\n  nodes: [a, b]\n  links:\n    - {between: [a, b], delay_s: 0.001, "
                  "capacity_bps: 1.0e6, buffer_pkts: 10}\n")
     r = _serve(*service_args(base, "--topology", other))
-    assert r.returncode == 2 and ring.digest in r.stderr and T.load(other).digest in r.stderr, r.stderr
+    assert r.returncode == 2 and ring.digest in r.stderr and TF.load(other).digest in r.stderr, r.stderr
 
 
 @pytest.mark.slow

@@ -20,6 +20,7 @@ import topohub
 import yaml
 
 from routerd.core import topology as T
+from routerd.io import topofiles as TF
 from routerd.core.errors import TopologyError
 
 DEF = T.LinkDefaults(1e9, 100)
@@ -38,7 +39,7 @@ def _nx(doc: dict) -> nx.Graph:
 def test_topohub_import_matches_dataset_stats(key: str, topohub_raw) -> None:  # type: ignore[no-untyped-def]
     doc = topohub_raw(key)
     st = doc["graph"]["stats"]
-    t = T.load(f"topohub:{key}", DEF)
+    t = TF.load(f"topohub:{key}", DEF)
     ours = t.stats()
     # topohub's topo_stats: 'nodes' = len(g), 'links' = undirected edge count,
     # 'diameter_hops' = networkx.diameter(g) (unweighted)
@@ -71,7 +72,7 @@ def test_topohub_import_matches_dataset_stats(key: str, topohub_raw) -> None:  #
 @pytest.mark.parametrize("key", SNDLIB)
 def test_every_sndlib_topology_loads_and_agrees(key: str, topohub_raw) -> None:  # type: ignore[no-untyped-def]
     st = topohub_raw(key)["graph"]["stats"]
-    s = T.load(f"topohub:{key}", DEF).stats()
+    s = TF.load(f"topohub:{key}", DEF).stats()
     assert (s["nodes"], s["links"], s["diameter_hops"]) == (st["nodes"], st["links"], st["diameter_hops"])
     # measured here: 28 of 30 sndlib/gabriel sets agree to the stored 2 decimals; giul39
     # and norway differ by < 0.01 where an edge-disjoint path found by topohub's max-flow
@@ -81,7 +82,7 @@ def test_every_sndlib_topology_loads_and_agrees(key: str, topohub_raw) -> None: 
 
 def test_topohub_delays_are_5us_per_km(topohub_raw) -> None:  # type: ignore[no-untyped-def]
     doc = topohub_raw("sndlib/abilene")
-    t = T.load("topohub:sndlib/abilene", DEF)
+    t = TF.load("topohub:sndlib/abilene", DEF)
     names = {nd["id"]: nd["name"] for nd in doc["nodes"]}
     for e in doc["edges"]:
         a, b = names[e["source"]], names[e["target"]]
@@ -99,11 +100,11 @@ def test_topohub_delays_are_5us_per_km(topohub_raw) -> None:  # type: ignore[no-
 
 def test_topohub_errors() -> None:
     with pytest.raises(TopologyError, match="is not in topohub"):
-        T.load("topohub:sndlib/no-such-net", DEF)
+        TF.load("topohub:sndlib/no-such-net", DEF)
     with pytest.raises(TopologyError, match="GROUP/NAME"):
-        T.load("topohub:../../etc/passwd", DEF)
+        TF.load("topohub:../../etc/passwd", DEF)
     with pytest.raises(TopologyError, match="capacity_bps.*no default"):
-        T.load("topohub:sndlib/abilene")  # topohub carries no capacities
+        TF.load("topohub:sndlib/abilene")  # topohub carries no capacities
 
 
 # ---- our YAML, GraphML, node-link JSON -----------------------------------------------------
@@ -126,14 +127,14 @@ def good_doc() -> dict:
 
 
 def test_yaml_loading(tmp_path) -> None:  # type: ignore[no-untyped-def]
-    t = T.load(_yaml(tmp_path, good_doc()))
+    t = TF.load(_yaml(tmp_path, good_doc()))
     assert t.nodes == ("a", "b", "c") and t.n_links == 6
     assert t.delay_s[t.link("a", "b")] == 0.002 and t.delay_s[t.link("b", "a")] == 0.002
     assert t.capacity_bps[t.link("b", "c")] == 2.0e6 and t.capacity_bps[t.link("a", "b")] == 1.0e7
     assert t.buffer_pkts[t.link("c", "a")] == 9 and t.buffer_pkts[t.link("a", "c")] == 50
     assert t.demands is not None and t.demands[0, 2] == 3.0 and t.demands.sum() == 3.0
     with pytest.raises(KeyError, match="no link c -> b"):
-        T.Topology.link(T.load(_yaml(tmp_path, {"topology": {
+        T.Topology.link(TF.load(_yaml(tmp_path, {"topology": {
             "nodes": ["a", "b", "c"], "defaults": {"capacity_bps": 1, "buffer_pkts": 1},
             "links": [{"from": "a", "to": "b", "delay_s": 0}, {"from": "b", "to": "c", "delay_s": 0},
                       {"from": "c", "to": "a", "delay_s": 0}]}}, "ring.yaml")), "c", "b")
@@ -152,7 +153,7 @@ def test_yaml_loading(tmp_path) -> None:  # type: ignore[no-untyped-def]
 
 
 def test_demo_lab_loads() -> None:
-    t = T.load("routerd/data/demo-lab.yaml")
+    t = TF.load("routerd/data/demo-lab.yaml")
     assert t.n == 16 and "demo-lab" in t.summary()
 
 
@@ -160,11 +161,11 @@ def test_command_line_defaults_fill_only_missing_values(tmp_path) -> None:  # ty
     doc = good_doc()
     del doc["topology"]["defaults"]
     with pytest.raises(TopologyError) as ei:
-        T.load(_yaml(tmp_path, doc))
+        TF.load(_yaml(tmp_path, doc))
     msgs = [str(p) for p in ei.value.problems]
     assert any("topology.links[0].capacity_bps: is missing and no default was given" in m
                for m in msgs), msgs
-    t = T.load(_yaml(tmp_path, doc), T.LinkDefaults(capacity_bps=5e6, buffer_pkts=7))
+    t = TF.load(_yaml(tmp_path, doc), T.LinkDefaults(capacity_bps=5e6, buffer_pkts=7))
     assert t.capacity_bps[t.link("a", "b")] == 5e6 and t.capacity_bps[t.link("b", "c")] == 2e6
     assert t.buffer_pkts[t.link("c", "a")] == 9 and t.buffer_pkts[t.link("a", "b")] == 7
 
@@ -177,7 +178,7 @@ def test_graphml_written_by_networkx(tmp_path, directed: bool) -> None:  # type:
         G.add_edge(a, b, delay_s=d, capacity_bps=c, buffer_pkts=bf)
     path = tmp_path / "net.graphml"
     nx.write_graphml(G, path)  # the reference writer
-    t = T.load(str(path))
+    t = TF.load(str(path))
     assert set(t.nodes) == {"p", "q", "r"}
     assert t.n_links == (3 if directed else 6)
     for a, b, d, c, bf in edges:
@@ -194,13 +195,13 @@ def test_graphml_errors_name_the_edge(tmp_path) -> None:  # type: ignore[no-unty
     path = tmp_path / "bad.graphml"
     nx.write_graphml(G, path)
     with pytest.raises(TopologyError) as ei:
-        T.load(str(path))
+        TF.load(str(path))
     msgs = [str(p) for p in ei.value.problems]
     assert any(str(path) in m and "edge[1] (q - r).delay_s" in m and "is missing" in m for m in msgs), msgs
     assert any("capacity_bps" in m and "no default" in m for m in msgs), msgs
     (tmp_path / "junk.graphml").write_text("<graphml><graph>")
     with pytest.raises(TopologyError, match="not valid GraphML"):
-        T.load(str(tmp_path / "junk.graphml"))
+        TF.load(str(tmp_path / "junk.graphml"))
 
 
 def test_node_link_json_written_by_networkx(tmp_path) -> None:  # type: ignore[no-untyped-def]
@@ -212,7 +213,7 @@ def test_node_link_json_written_by_networkx(tmp_path) -> None:  # type: ignore[n
         G.nodes[i]["name"] = nm
     p = tmp_path / "g.json"
     p.write_text(json.dumps(nx.node_link_data(G, edges="edges")))
-    t = T.load(str(p), DEF)
+    t = TF.load(str(p), DEF)
     assert t.nodes == ("oslo", "bergen", "tromso")
     assert t.delay_s[t.link("bergen", "tromso")] == pytest.approx(250 * 5e-6)  # ITU-T G.114
 
@@ -222,7 +223,7 @@ def test_node_link_json_written_by_networkx(tmp_path) -> None:  # type: ignore[n
 def _problems(tmp_path, topo: dict, defaults: T.LinkDefaults = T.LinkDefaults()) -> list[str]:  # type: ignore[no-untyped-def]
     path = _yaml(tmp_path, {"topology": topo}, "bad.yaml")
     with pytest.raises(TopologyError) as ei:
-        T.load(path, defaults)
+        TF.load(path, defaults)
     msgs = [str(p) for p in ei.value.problems]
     assert all(m.startswith(path) for m in msgs), msgs  # every message names the file
     return msgs
@@ -278,16 +279,16 @@ def test_every_problem_is_reported_not_just_the_first(tmp_path) -> None:  # type
 
 def test_other_file_errors(tmp_path) -> None:  # type: ignore[no-untyped-def]
     with pytest.raises(TopologyError, match="does not exist"):
-        T.load(str(tmp_path / "nope.yaml"))
+        TF.load(str(tmp_path / "nope.yaml"))
     (tmp_path / "x.txt").write_text("")
     with pytest.raises(TopologyError, match="not a known topology extension"):
-        T.load(str(tmp_path / "x.txt"))
+        TF.load(str(tmp_path / "x.txt"))
     (tmp_path / "y.yaml").write_text("topology: [1, 2\n")
     with pytest.raises(TopologyError, match="not valid YAML"):
-        T.load(str(tmp_path / "y.yaml"))
+        TF.load(str(tmp_path / "y.yaml"))
     (tmp_path / "z.yaml").write_text("- 1\n")
     with pytest.raises(TopologyError, match="'topology' mapping"):
-        T.load(str(tmp_path / "z.yaml"))
+        TF.load(str(tmp_path / "z.yaml"))
     with pytest.raises(TopologyError, match="needs at least 2"):
         T.build("one", ["a"], [])
 
@@ -340,7 +341,7 @@ def test_slots_and_shortest_path_tree(make_ring) -> None:  # type: ignore[no-unt
 def test_shortest_from_matches_networkx_single_source_dijkstra(key: str, topohub_raw) -> None:  # type: ignore[no-untyped-def]
     """Reference: networkx.single_source_dijkstra on the same directed, weighted links,
     with some links made unusable (weight inf) as the agent does for links it sees down."""
-    t = T.load(f"topohub:{key}", DEF)
+    t = TF.load(f"topohub:{key}", DEF)
     rng = np.random.default_rng(7)
     w = t.delay_s.astype(float).copy()
     w[rng.choice(t.n_links, size=t.n_links // 8, replace=False)] = np.inf

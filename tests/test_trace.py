@@ -24,7 +24,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from routerd.io import config
-from routerd.service.daemon import load_topology
+from routerd.io.inputs import load_topology
 from routerd.sim import trace as TR
 from routerd.sim.run import run as run_sim
 

@@ -188,3 +188,49 @@ def test_underlay_maps_checked_alone_and_through_a_config(tmp_path, capsys) -> N
         {"between": ["a", "b"], "addresses": ["10.0.0.1", "10.0.0.2:7410"]}]}})
     rc, lines = _run(capsys, bad)
     assert rc == 1 and f"{bad}: underlay.links[0].addresses[0]: '10.0.0.1' is not HOST:PORT" in lines[1]
+
+
+def test_validate_checks_what_the_commands_check(tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    # issue 16: endpoints serve would refuse, a scenario that does not fit the topology
+    # given with it, CURVE files one without the other
+    cfg = _w(tmp_path, "c.yaml", {"service": {"ingest": "not-an-endpoint",
+                                              "control": "tcp://127.0.0.1:99999"}})
+    rc, lines = _run(capsys, cfg)
+    assert rc == 1
+    assert f"  {cfg}: service.ingest: 'not-an-endpoint' is not an endpoint (tcp://HOST:PORT, " \
+           "ipc://PATH or inproc://NAME)" in lines
+    assert f"  {cfg}: service.control: 'tcp://127.0.0.1:99999' has no valid port (0-65535, " \
+           "or * for any free one)" in lines
+    topo = _w(tmp_path, "lab.yaml", GOOD_TOPO)
+    scen = _w(tmp_path, "s.yaml", {"scenario": {"links": [
+        {"at_s": 1, "between": ["a", "zz"], "down": True},
+        {"at_s": 2, "from": "a", "to": "b", "capacity_bps": "1.0e6"}]}})
+    rc, lines = _run(capsys, scen)
+    assert rc == 0                                   # alone: nothing to check it against
+    rc, lines = _run(capsys, topo, scen)
+    assert rc == 1
+    assert lines[0].startswith(f"OK {topo}")
+    assert (f"  {scen}: scenario.links[0]: 'a -> zz' is not a link of topology 'bench-lab' "
+            f"(with {topo})") in lines
+    # a config's topology counts as given with it
+    cfg2 = _w(tmp_path, "c2.yaml", {"topology": {"file": "lab.yaml"}})
+    rc, lines = _run(capsys, cfg2, scen)
+    assert rc == 1 and any("is not a link of topology 'bench-lab'" in ln for ln in lines)
+    # several topologies (validate *.yaml): the scenario must fit one of them
+    big = dict(GOOD_TOPO["topology"], name="big", nodes=["a", "b", "c", "zz"])
+    big["links"] = GOOD_TOPO["topology"]["links"] + [{"between": ["a", "zz"], "delay_s": 0.001}]
+    topo2 = _w(tmp_path, "big.yaml", {"topology": big})
+    rc, lines = _run(capsys, topo, topo2, scen)
+    assert rc == 0, lines
+    half = _w(tmp_path, "c3.yaml", {"security": {"allow": "allow.yaml"}})
+    rc, lines = _run(capsys, half)
+    assert rc == 1 and any("CURVE needs both --server-key and --allow" in ln for ln in lines)
+    under = _w(tmp_path, "c4.yaml", {"topology": {"file": "lab.yaml"},
+                                     "agent": {"underlay": "u.yaml"}})
+    _w(tmp_path, "u.yaml", {"underlay": {"links": [
+        {"between": ["a", "b"], "addresses": ["10.0.0.1:7400", "10.0.0.2:99999"]}]}})
+    rc, lines = _run(capsys, under)
+    assert rc == 1 and any("addresses[1]: '10.0.0.2:99999' is not HOST:PORT" in ln for ln in lines)
+    # --set and --capacity-bps follow the one rule: the command line beats the config
+    rc, lines = _run(capsys, cfg2, "--set", "engine.step.alpha=7")
+    assert rc == 1 and any("engine.step.alpha: 7 is above 1" in ln for ln in lines)

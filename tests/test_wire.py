@@ -14,6 +14,7 @@ from hypothesis import strategies as st
 
 from routerd.core import engine as E
 from routerd.core import topology
+from routerd.io import topofiles
 from routerd.io import wire
 
 DEMO = "routerd/data/demo-lab.yaml"
@@ -21,11 +22,11 @@ DEMO = "routerd/data/demo-lab.yaml"
 
 @pytest.fixture(scope="module")
 def topo() -> topology.Topology:
-    return topology.load(DEMO)
+    return topofiles.load(DEMO)
 
 
 def _topo() -> topology.Topology:
-    return topology.load(DEMO)
+    return topofiles.load(DEMO)
 
 
 TOPO = _topo()

@@ -99,7 +99,10 @@ from typing import Any
 
 from . import overlay as ov
 from routerd.io.clock import SYSTEM, Clock
-from routerd.core.errors import InputError, Problem, read_yaml
+from routerd.core.errors import InputError, Problem
+from routerd.io import inputs as _inputs
+from routerd.io.files import read_yaml
+from routerd.io.values import address_problem, parse_address
 
 #: Why a packet is dropped by the agent (a fixed set: a metrics label uses it).
 DROP_REASONS = ("no_route", "send_error", "hold_full", "not_data")
@@ -145,12 +148,11 @@ class LinkEnd:
 
 
 def parse_hostport(text: Any, where: str) -> tuple[str, int]:
-    if not isinstance(text, str):
-        raise InputError(Problem(where, text, "must be a string HOST:PORT"))
-    host, sep, port = text.rpartition(":")
-    if not sep or not host or not port.isdigit() or not 0 <= int(port) <= 65535:
-        raise InputError(Problem(where, text, "is not HOST:PORT (PORT 0-65535)"))
-    return host.strip("[]"), int(port)
+    """``HOST:PORT`` → (host, port), or InputError naming ``where`` (routerd.io.values)."""
+    why = address_problem(text)
+    if why is not None:
+        raise InputError(Problem(where, text, why))
+    return parse_address(text)
 
 
 UnderlayEntry = tuple[int, list[str], tuple[str, int], tuple[str, int]]
@@ -969,6 +971,9 @@ def configure(p: argparse.ArgumentParser) -> None:
     p.add_argument("--local", metavar="HOST:PORT", help="overrides agent.local")
     p.add_argument("--deliver", metavar="HOST:PORT", help="overrides agent.deliver")
     p.add_argument("--metrics", metavar="HOST:PORT", help="overrides agent.metrics")
+    p.add_argument("--set", metavar="KEY=VALUE", action="append", default=[], dest="overrides",
+                   help="override one config setting, e.g. --set agent.probe_interval_s=0.05 "
+                        "(repeatable)")
     p.add_argument("--status-file", metavar="FILE", help="write the agent's counters and state as "
                    "JSON to FILE every second and at exit")
     p.add_argument("--duration", metavar="S", type=float, default=None,
@@ -976,22 +981,13 @@ def configure(p: argparse.ArgumentParser) -> None:
 
 
 def load(args: argparse.Namespace) -> tuple[Any, Any]:
-    """Config (with agent.underlay made relative to the config file) and topology."""
-    from routerd.service import daemon as _service
-
-    ns = argparse.Namespace(config=args.config, topology=None)
-    cfg = _service.load_config(ns)
-    from routerd.io.security import is_key_text
-
-    here = os.path.dirname(os.path.abspath(args.config)) if args.config else os.getcwd()
-    rel = {k: os.path.normpath(os.path.join(here, v))
-           for k in ("agent.underlay", "agent.client_key", "agent.server_key")
-           if (v := cfg[k]) and not os.path.isabs(v) and not is_key_text(v)}
-    if rel:
-        cfg = cfg.with_overrides(rel, where=f"{args.config}")
+    """Config and topology by the one input rule (:mod:`routerd.io.inputs`: agent.underlay
+    and the key files relative to the config file), ``--metrics`` and ``--set`` on top."""
+    ns = argparse.Namespace(config=args.config, overrides=getattr(args, "overrides", None) or [])
+    cfg = _inputs.load_config(ns)
     if getattr(args, "metrics", None):
         cfg = cfg.with_overrides({"agent.metrics": args.metrics}, where="--metrics")
-    return cfg, _service.load_topology(cfg)
+    return cfg, _inputs.load_topology(cfg)
 
 
 def run(args: argparse.Namespace) -> int:

@@ -2,8 +2,9 @@
 
 Owns: the split between *input* errors (a file, a config or a peer gave us something
 wrong: reported to the user, never fatal to a running service) and everything else
-(our own bugs, which should fail loudly); and `read_yaml`, the one reader of a YAML input
-file with those errors. Imports nothing of the project (PyYAML only inside `read_yaml`).
+(our own bugs, which should fail loudly).  Pure values: reading files is
+:mod:`routerd.io.files`' job (``read_yaml``).
+Must not import: anything (the standard library's dataclasses only).
 """
 from __future__ import annotations
 
@@ -41,17 +42,3 @@ class TopologyError(InputError):
 
 class ConfigError(InputError):
     """A config file or override breaks the config schema."""
-
-
-def read_yaml(path: str, error: type[InputError] = InputError) -> Any:
-    """The document of the YAML file at `path` (safe loader), or `error` naming the file:
-    it does not exist, or it is not valid YAML (with the parser's own position)."""
-    import yaml
-
-    try:
-        with open(path, encoding="utf-8") as fh:
-            return yaml.safe_load(fh)
-    except FileNotFoundError:
-        raise error(Problem(path, path, "does not exist")) from None
-    except yaml.YAMLError as e:
-        raise error(Problem(path, "", f"is not valid YAML: {e}")) from None

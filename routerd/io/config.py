@@ -19,7 +19,10 @@ from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
-from routerd.core.errors import ConfigError, Problem, read_yaml
+from routerd.core.errors import ConfigError, Problem
+
+from .files import parse_yaml, read_yaml
+from .values import address_problem, as_number, endpoint_problem
 
 
 @dataclass(frozen=True, slots=True)
@@ -34,12 +37,16 @@ class Field:
     choices: tuple[Any, ...] | None = None
     tunable: bool = False
     nullable: bool = False
+    #: "path": a file or folder, relative to the config file that names it
+    #: (routerd.io.inputs); "key": the same, or a Z85 key's text itself; "endpoint": a
+    #: ZeroMQ endpoint; "address": HOST:PORT (routerd.io.values checks both)
+    form: str | None = None
 
 
 F = Field
 SCHEMA: dict[str, Field] = {
     # -- topology --------------------------------------------------------------------
-    "topology.file": F(str, None, "topology file or topohub:GROUP/NAME; none: the built-in demo lab", nullable=True),
+    "topology.file": F(str, None, "topology file or topohub:GROUP/NAME; none: the built-in demo lab", nullable=True, form="path"),
     "topology.default_capacity_bps": F(float, None, "capacity for links whose file gives none", lo=0, lo_open=True, nullable=True),
     "topology.default_buffer_pkts": F(int, None, "buffer for links whose file gives none", lo=1, nullable=True),
     # -- engine: step sizes --------------------------------------------------------------
@@ -74,12 +81,12 @@ SCHEMA: dict[str, Field] = {
     "engine.confidence.initial": F(float, 0.0, "confidence: the confidence of a starting estimate", lo=0, hi=1, tunable=True),
     "engine.confidence.min_step": F(float, 0.05, "confidence: floor of the step size max(C_new, 1 - C_old) (0 = the published rule)", lo=0, hi=1, tunable=True),
     # -- service -----------------------------------------------------------------------
-    "service.ingest": F(str, "tcp://127.0.0.1:7301", "ingest endpoint (ROUTER)"),
-    "service.pull": F(str, None, "fire-and-forget ingest endpoint (PULL)", nullable=True),
-    "service.publish": F(str, "tcp://127.0.0.1:7302", "tables endpoint (PUB)"),
-    "service.control": F(str, "tcp://127.0.0.1:7303", "control endpoint (REP)"),
-    "service.metrics": F(str, "127.0.0.1:9307", "metrics HTTP address HOST:PORT"),
-    "service.state_dir": F(str, "./routerd-state", "journal and snapshots directory"),
+    "service.ingest": F(str, "tcp://127.0.0.1:7301", "ingest endpoint (ROUTER)", form="endpoint"),
+    "service.pull": F(str, None, "fire-and-forget ingest endpoint (PULL)", nullable=True, form="endpoint"),
+    "service.publish": F(str, "tcp://127.0.0.1:7302", "tables endpoint (PUB)", form="endpoint"),
+    "service.control": F(str, "tcp://127.0.0.1:7303", "control endpoint (REP)", form="endpoint"),
+    "service.metrics": F(str, "127.0.0.1:9307", "metrics HTTP address HOST:PORT", form="address"),
+    "service.state_dir": F(str, "./routerd-state", "journal and snapshots directory", form="path"),
     "service.publish_interval_s": F(float, 2.0, "every node's table is published at this interval", lo=0, lo_open=True, tunable=True),
     "service.debounce_s": F(float, 0.05, "changed tables are published at most this often", lo=0, tunable=True),
     "service.snapshot_interval_s": F(float, 60.0, "engine snapshot interval", lo=0, lo_open=True, tunable=True),
@@ -115,14 +122,14 @@ SCHEMA: dict[str, Field] = {
     "sim.service.speed": F(float, 1.0, "closed loop: virtual seconds per wall-clock second (1 = real time)", lo=0.01, hi=1000),
     "sim.service.estimate_nodes": F(int, 0, "closed loop: nodes whose estimates are fetched from the service per decision interval, round robin (0 = all)", lo=0),
     "sim.service.timeout_s": F(float, 5.0, "closed loop: how long to wait for the service's acknowledgements and control replies", lo=0, lo_open=True),
-    "sim.service.client_key": F(str, None, "closed loop with a named CURVE service (--policy service:ENDPOINTS): the simulator's secret certificate NAME.key_secret; with sim.service.server_key", nullable=True),
-    "sim.service.server_key": F(str, None, "closed loop: the CURVE service's public key, its NAME.key file or the Z85 text", nullable=True),
+    "sim.service.client_key": F(str, None, "closed loop with a named CURVE service (--policy service:ENDPOINTS): the simulator's secret certificate NAME.key_secret; with sim.service.server_key", nullable=True, form="path"),
+    "sim.service.server_key": F(str, None, "closed loop: the CURVE service's public key, its NAME.key file or the Z85 text", nullable=True, form="key"),
     "sim.service.reporter": F(str, None, "closed loop: reporter name in the batches; with CURVE its allow-file entry, which must list every node (default sim-PID-N)", nullable=True),
     # -- agent (routerd agent: one per overlay node) -------------------------------------
-    "agent.underlay": F(str, None, "underlay map: the UDP address of each end of each overlay link (relative to the config file)", nullable=True),
-    "agent.local": F(str, "127.0.0.1:7400", "UDP HOST:PORT where local applications hand the agent overlay packets"),
-    "agent.deliver": F(str, "127.0.0.1:7401", "UDP HOST:PORT the agent hands packets for its own node to"),
-    "agent.metrics": F(str, "127.0.0.1:9308", "agent metrics HTTP address HOST:PORT (port 0: any free one)"),
+    "agent.underlay": F(str, None, "underlay map: the UDP address of each end of each overlay link (relative to the config file)", nullable=True, form="path"),
+    "agent.local": F(str, "127.0.0.1:7400", "UDP HOST:PORT where local applications hand the agent overlay packets", form="address"),
+    "agent.deliver": F(str, "127.0.0.1:7401", "UDP HOST:PORT the agent hands packets for its own node to", form="address"),
+    "agent.metrics": F(str, "127.0.0.1:9308", "agent metrics HTTP address HOST:PORT (port 0: any free one)", form="address"),
     "agent.probe_interval_s": F(float, 0.1, "probe interval per link (hop latency and failure detection)", lo=0.001, hi=60),
     "agent.detect_multiplier": F(int, 3, "probes missed before a link is down: detection time = multiplier x interval (as in BFD, RFC 5880)", lo=1, hi=255),
     "agent.flowlet_gap_s": F(float, 0.05, "a flow idle this long may move to another next hop (flowlet pinning)", lo=0),
@@ -134,8 +141,8 @@ SCHEMA: dict[str, Field] = {
     "agent.table_stale_s": F(float, 6.0, "no table and no acknowledgement for this long: the service counts as unreachable (the agent holds its last table)", lo=0, lo_open=True),
     "agent.hold_max_pkts": F(int, 100000, "packets held at once for emulated propagation (beyond: dropped, counted)", lo=1),
     "agent.seed": F(int, 0, "seed of the weighted next-hop choice (mixed with the node index)", lo=0),
-    "agent.client_key": F(str, None, "the agent's CURVE secret certificate NAME.key_secret (relative to the config file); with agent.server_key: CURVE to a service started with --server-key", nullable=True),
-    "agent.server_key": F(str, None, "the service's CURVE public key: its NAME.key file (relative to the config file) or the Z85 text", nullable=True),
+    "agent.client_key": F(str, None, "the agent's CURVE secret certificate NAME.key_secret (relative to the config file); with agent.server_key: CURVE to a service started with --server-key", nullable=True, form="path"),
+    "agent.server_key": F(str, None, "the service's CURVE public key: its NAME.key file (relative to the config file) or the Z85 text", nullable=True, form="key"),
     "agent.reporter": F(str, None, "reporter name in the agent's batches; with CURVE the agent's entry in the service's allow file (default agent/NODE)", nullable=True),
     # -- plausibility guards (routerd/core/guards.py), applied by the service before the engine --
     "guards.floor_fraction": F(float, 1.0, "a hop latency below this fraction of the link's propagation delay (or an estimate below it of the shortest propagation distance) is rejected as below_floor (0 = off)", lo=0, hi=1, tunable=True),
@@ -150,12 +157,12 @@ SCHEMA: dict[str, Field] = {
     "guards.rate.burst_rows": F(float, 1.0e6, "per-reporter token bucket: row burst", lo=1, tunable=True),
     "guards.rate.max_reporters": F(int, 4096, "reporters with a token bucket (the least recently seen is forgotten first)", lo=1, tunable=True),
     # -- security (routerd/io/security.py): CURVE and reporter authorisation ------------------
-    "security.server_key": F(str, None, "the service's CURVE secret certificate (NAME.key_secret from routerd keys); with security.allow: CURVE on every ZeroMQ endpoint", nullable=True),
-    "security.allow": F(str, None, "allow file (YAML): reporter name -> public_key (Z85 or a .key file) and nodes it may speak for", nullable=True),
-    "security.control_readonly": F(str, None, "a second control endpoint without CURVE serving read-only ops only (tables, estimates, health, nodes)", nullable=True),
+    "security.server_key": F(str, None, "the service's CURVE secret certificate (NAME.key_secret from routerd keys); with security.allow: CURVE on every ZeroMQ endpoint", nullable=True, form="path"),
+    "security.allow": F(str, None, "allow file (YAML): reporter name -> public_key (Z85 or a .key file) and nodes it may speak for", nullable=True, form="path"),
+    "security.control_readonly": F(str, None, "a second control endpoint without CURVE serving read-only ops only (tables, estimates, health, nodes)", nullable=True, form="endpoint"),
     "service.storage_retry_s": F(float, 1.0, "after a journal write failed (disk full, unwritable), how often the service tries to resume", lo=0.01),
     # -- sharding by destination (routerd/service/shard.py: serve --shards N, --shard K/N) ---------
-    "shard.map": F(str, None, "YAML map node -> shard index (nodes it does not name: crc32 of the name mod N); the front and every worker need the same one", nullable=True),
+    "shard.map": F(str, None, "YAML map node -> shard index (nodes it does not name: crc32 of the name mod N); the front and every worker need the same one", nullable=True, form="path"),
     "shard.timeout_s": F(float, 30.0, "front: a batch whose pieces are not all acknowledged by then is answered unavailable (the reporter sends it again)", lo=0, lo_open=True),
     "shard.hello_interval_s": F(float, 1.0, "worker: how often it announces itself to the front (--upstream); 3 missed announcements count as down", lo=0.01),
     "shard.start_timeout_s": F(float, 60.0, "front: how long to wait for every worker's first announcement at start-up", lo=0, lo_open=True),
@@ -206,11 +213,8 @@ def check_value(path: str, value: Any, where: str) -> tuple[Any, Problem | None]
     v = value
     if float in kinds and isinstance(value, int) and not isinstance(value, bool):
         v = float(value)
-    if float in kinds and isinstance(value, str):
-        try:
-            v = float(value)
-        except ValueError:
-            pass
+    if float in kinds and isinstance(value, str) and as_number(value) is not None:
+        v = float(as_number(value))  # type: ignore[arg-type]  # the one number rule
     if int in kinds and isinstance(value, float) and value.is_integer():
         v = int(value)
     if isinstance(v, bool) and bool not in kinds:
@@ -219,6 +223,12 @@ def check_value(path: str, value: Any, where: str) -> tuple[Any, Problem | None]
         return None, Problem(loc, value, f"must be {_kind_name(kinds)}")
     if isinstance(v, float) and not math.isfinite(v):
         return None, Problem(loc, value, "must be a finite number")
+    if isinstance(v, str) and f.form in ("endpoint", "address"):
+        why = (endpoint_problem if f.form == "endpoint" else address_problem)(v)
+        if why is not None:
+            return None, Problem(loc, value, why)
+    if isinstance(v, str) and f.form in ("path", "key") and not v:
+        return None, Problem(loc, value, "is empty (give a path, or null for none)")
     if f.choices is not None and v not in f.choices:
         return None, Problem(loc, value, f"is not one of {', '.join(map(str, f.choices))}")
     if f.lo is not None and isinstance(v, (int, float)):
@@ -254,11 +264,14 @@ def _cross_checks(flat: dict[str, Any], where: str) -> list[Problem]:
 class Config:
     """A checked, immutable config. ``cfg["a.b.c"]`` gives one value; ``cfg.section("a.b")`` a dict."""
 
-    __slots__ = ("_flat", "source")
+    __slots__ = ("_flat", "source", "given")
 
-    def __init__(self, flat: Mapping[str, Any], source: str = "<defaults>"):
+    def __init__(self, flat: Mapping[str, Any], source: str = "<defaults>",
+                 given: Iterable[str] = ()):
         self._flat = dict(flat)
         self.source = source
+        #: the keys the source file itself set (its paths resolve against its folder)
+        self.given: frozenset[str] = frozenset(given)
 
     def __getitem__(self, path: str) -> Any:
         return self._flat[path]
@@ -318,22 +331,40 @@ def from_mapping(doc: Any, where: str = "<mapping>", base: Config | None = None)
     if not isinstance(doc, Mapping):
         raise ConfigError(Problem(where, type(doc).__name__, "must be a mapping of sections"))
     flat = dict(_flatten(doc))
-    return from_mapping_flat(flat, where, base)
+    cfg = from_mapping_flat(flat, where, base)
+    return Config(cfg.flat(), where, given=flat)
 
 
 def load(path: str | Mapping[str, Any] | None = None, overrides: Iterable[str] = ()) -> Config:
     """Load a YAML config file (or the defaults) and apply ``KEY=VALUE`` overrides.  A
     mapping in place of the path is the file's parsed document (a sweep's spec carries its
-    config inline, so it runs on a host without the file)."""
+    config inline, so it runs on a host without the file).
+
+    Paths stay as written: commands read configs through :func:`routerd.io.inputs.
+    load_config`, which resolves them against the config file's folder."""
     cfg = Config({k: f.default for k, f in SCHEMA.items()})
     if isinstance(path, Mapping):
         cfg = from_mapping(path, "<inline config>")
         path = "<inline config>"
     elif path is not None:
-        cfg = from_mapping(read_yaml(path, ConfigError), path)
+        doc = read_yaml(path, ConfigError)
+        if doc is None:
+            # a truncated or wrong file would otherwise run on the defaults unnoticed
+            raise ConfigError(Problem(path, None, "is empty: a config file names at least one "
+                                      "section (for the defaults, give no config)"))
+        cfg = from_mapping(doc, path)
+    ov = parse_overrides(overrides)
+    if ov:
+        cfg = from_mapping_flat(ov, (path or "defaults") + " + --set", base=cfg)
+    return cfg
+
+
+def parse_overrides(items: Iterable[str]) -> dict[str, Any]:
+    """``--set KEY=VALUE`` items → {key: value} (YAML scalar rules), unchecked against the
+    schema; ConfigError for every item that is not ``KEY=VALUE``."""
     ov: dict[str, Any] = {}
     problems: list[Problem] = []
-    for item in overrides:
+    for item in items:
         if "=" not in item:
             problems.append(Problem("--set", item, "must look like KEY=VALUE"))
             continue
@@ -341,9 +372,7 @@ def load(path: str | Mapping[str, Any] | None = None, overrides: Iterable[str] =
         ov[k.strip()] = parse_scalar(raw)
     if problems:
         raise ConfigError(problems)
-    if ov:
-        cfg = from_mapping_flat(ov, (path or "defaults") + " + --set", base=cfg)
-    return cfg
+    return ov
 
 
 def parse_scalar(raw: str) -> Any:
@@ -351,7 +380,7 @@ def parse_scalar(raw: str) -> Any:
     import yaml
 
     try:
-        return yaml.safe_load(raw)
+        return parse_yaml(raw)
     except yaml.YAMLError:
         return raw
 
@@ -368,5 +397,7 @@ def describe() -> str:
             hi = "inf" if f.hi is None else f"{f.hi:g}"
             rng = f" {'(' if f.lo_open else '['}{lo}, {hi}{')' if f.hi_open else ']'}"
         tun = " (reloadable)" if f.tunable else ""
+        if f.form in ("path", "key"):
+            tun += " (relative to the config file)"
         lines.append(f"{k} = {f.default!r}{rng}{tun}\n    {f.doc}")
     return "\n".join(lines)

@@ -7,19 +7,23 @@ service (:mod:`routerd.service.metrics`), the shard front and the agent
 (:mod:`routerd.agent.forwarder`) read it here, so the agent needs nothing of the service.
 Starting the page is prometheus_client's ``start_http_server`` in each of them.
 
-Must not import: anything of routerd, prometheus_client, sockets.
+Must not import: anything of routerd but :mod:`routerd.io.values`, prometheus_client,
+sockets.
 """
 from __future__ import annotations
+
+from . import values as _values
 
 __all__ = ["page_url", "parse_address"]
 
 
 def parse_address(addr: str) -> tuple[str, int]:
-    """``HOST:PORT`` (``[v6]:PORT`` too) → (host, port); ValueError naming the rule."""
-    host, sep, port = addr.rpartition(":")
-    if not sep or not host or not port.isdigit() or not 0 <= int(port) <= 65535:
-        raise ValueError(f"metrics address {addr!r} is not HOST:PORT (PORT 0-65535, 0 = any free port)")
-    return host.strip("[]"), int(port)
+    """``HOST:PORT`` (``[v6]:PORT`` too) → (host, port); ValueError naming the rule
+    (the one HOST:PORT rule, :func:`routerd.io.values.parse_address`)."""
+    try:
+        return _values.parse_address(addr)
+    except ValueError as e:
+        raise ValueError(f"metrics {e}") from None
 
 
 def page_url(host: str, port: int) -> str:

@@ -3,7 +3,8 @@
 Owns: the scenario format, its checking (every problem with file, key path, value and
 rule, as :class:`routerd.core.errors.InputError`), the load factor as a function of time and
 the binding of link names to a topology's link indices.
-Must not import: the engine, zmq, prometheus, matplotlib.
+Also owns :class:`LinkEvent`, a link change bound to link indices (the simulator runs them).
+Must not import: the engine, zmq, prometheus, matplotlib, ``routerd.sim``.
 
 Format (YAML; our own)::
 
@@ -34,10 +35,25 @@ from typing import Any
 
 import numpy as np
 
-from routerd.core.errors import InputError, Problem, read_yaml
+from routerd.core.errors import InputError, Problem
 from routerd.core.topology import Topology
 
-from routerd.sim.core import LinkEvent
+from .files import read_yaml
+from .values import as_number
+
+
+@dataclass(frozen=True, slots=True)
+class LinkEvent:
+    """A scheduled change to one or more directed links (indices into the topology): what
+    a scenario's link entries become once bound to a topology, and what the simulator's
+    event loop (:mod:`routerd.sim.core`) and link traces (:mod:`routerd.sim.linktrace`)
+    schedule."""
+
+    t: float
+    links: tuple[int, ...]
+    action: str  # "down" | "up" | "capacity" | "delay"
+    capacity_bps: float | None = None
+    delay_s: float | None = None  # "delay": the propagation delay of packets sent from t on
 
 
 @dataclass(frozen=True, slots=True)
@@ -144,10 +160,11 @@ _TOP = {"name", "description", "load", "links"}
 
 def _num(v: Any, where: str, problems: list[Problem], *, lo: float | None = 0.0,
          lo_open: bool = False) -> float | None:
-    if isinstance(v, bool) or not isinstance(v, (int, float)):
+    num = as_number(v)          # the one number rule: 1.0e6 as text is a number too
+    if num is None:
         problems.append(Problem(where, v, "must be a number"))
         return None
-    fv = float(v)
+    fv = float(num)
     if not math.isfinite(fv):
         problems.append(Problem(where, v, "must be a finite number"))
         return None

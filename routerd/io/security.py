@@ -57,6 +57,7 @@ from typing import Any
 import numpy as np
 
 from routerd.core.errors import InputError, Problem
+from routerd.io.files import parse_yaml
 from routerd.core.topology import Topology
 
 #: Control operations that change state: need a key with ``control: true``.
@@ -231,7 +232,7 @@ def load_allow(path: str, topo: Topology) -> Allow:
     except (OSError, UnicodeDecodeError) as e:
         raise InputError(f"{path}: cannot read the allow file: {e}") from None
     try:
-        doc = yaml.safe_load(text)
+        doc = parse_yaml(text)          # the one YAML loader (routerd.io.files)
     except yaml.YAMLError as e:
         mark = getattr(e, "problem_mark", None)
         at = f":{mark.line + 1}" if mark is not None else ""

@@ -26,7 +26,9 @@ from typing import Any
 from . import config as _config
 from routerd.core import topology as _topology
 from .config import Config
-from routerd.core.errors import InputError, Problem, read_yaml
+from routerd.core.errors import InputError, Problem
+from . import topofiles as _topofiles
+from .files import Dumper, read_yaml
 from .fsmode import open_private, private_dir
 from routerd.core.topology import Topology
 
@@ -234,7 +236,7 @@ def content_id(data: bytes) -> str:
 
 
 def topology_bytes(topo: Topology) -> bytes:
-    """The canonical document of a topology: reads back (:func:`routerd.core.topology.load`) as
+    """The canonical document of a topology: reads back (:func:`routerd.io.topofiles.load`) as
     the same nodes, links in the same order, the same values bit for bit and the same id."""
     return _yaml_bytes(_topology.to_mapping(topo), sort_keys=False)
 
@@ -247,10 +249,10 @@ def config_bytes(cfg: Config) -> bytes:
 def _yaml_bytes(doc: Any, *, sort_keys: bool) -> bytes:
     # libyaml's emitter when present (a 1,000-node topology: 0.65 s -> a fraction); the
     # representers, and so every value's text, are PyYAML's own either way
+    # (files.Dumper: a string the readers would take for a number is quoted)
     import yaml
 
-    dumper = getattr(yaml, "CSafeDumper", yaml.SafeDumper)
-    return yaml.dump(doc, Dumper=dumper, sort_keys=sort_keys, allow_unicode=True,
+    return yaml.dump(doc, Dumper=Dumper, sort_keys=sort_keys, allow_unicode=True,
                      width=1 << 16).encode("utf-8")
 
 
@@ -373,7 +375,7 @@ def _read_doc(state_dir: str, kind: str, cid: str) -> tuple[str, bytes]:
 def load_topology(state_dir: str, cid: str) -> Topology:
     """The recorded topology document ``cid`` (checked against its id)."""
     path, _ = _read_doc(state_dir, "topology", cid)
-    return _topology.load(path)
+    return _topofiles.load(path)
 
 
 def load_config(state_dir: str, cid: str) -> Config:

@@ -87,7 +87,6 @@ import warnings
 from collections import OrderedDict
 from collections.abc import Iterable, Mapping
 from dataclasses import asdict
-from importlib import resources
 from typing import Any
 
 
@@ -103,6 +102,8 @@ from . import listeners as _listeners
 from routerd.io import security as _security
 from routerd.io import statedir as _statedir
 from routerd.core import topology as _topology
+from routerd.io.inputs import load_config, load_topology
+from routerd.io.values import endpoint_problem
 from . import dedup as _dedup
 from . import pipeline as _pipeline
 from routerd.io import clock as _clock
@@ -129,13 +130,6 @@ SNAPSHOT_CHILD_LIMIT_S = 600.0
 #: Exit statuses of the snapshot child.
 SNAPSHOT_CHILD_EXITS = {1: "the child could not write the file (I/O error, disk full)",
                         2: "the child failed unexpectedly", -9: "killed (overdue)"}
-
-_FLAG_KEYS = {"ingest": "service.ingest", "pull": "service.pull", "publish": "service.publish",
-              "control": "service.control", "metrics": "service.metrics",
-              "state_dir": "service.state_dir", "server_key": "security.server_key",
-              "allow": "security.allow", "control_readonly": "security.control_readonly"}
-_PATH_KEYS = ("security.server_key", "security.allow")
-
 
 class _Deferred(Exception):
     """A control request answered later (a snapshot being written by a child)."""
@@ -164,45 +158,9 @@ def configure(p: argparse.ArgumentParser) -> None:
                    "and the nodes it may report for; needs --server-key")
     p.add_argument("--control-readonly", metavar="EP", help="a second control endpoint without "
                    "CURVE for read-only ops (tables, estimates, health, nodes); default: off")
-
-
-def load_config(args: argparse.Namespace, base: _config.Config | None = None) -> _config.Config:
-    """The config file (or ``base``, a state dir's recorded config, or the defaults) with
-    the command-line flags on top."""
-    if base is not None and not getattr(args, "config", None):
-        cfg = base
-    else:
-        cfg = _config.load(getattr(args, "config", None))
-    ov: dict[str, Any] = {}
-    for attr, key in _FLAG_KEYS.items():
-        v = getattr(args, attr, None)
-        if v is not None:
-            ov[key] = os.path.abspath(v) if key in _PATH_KEYS else v
-    if getattr(args, "config", None):
-        for key in _PATH_KEYS:   # a config's key and allow files are relative to the config file
-            f = cfg[key]
-            if key not in ov and f and not os.path.isabs(f):
-                ov[key] = os.path.normpath(os.path.join(os.path.dirname(os.path.abspath(args.config)), f))
-    if getattr(args, "topology", None):
-        ov["topology.file"] = os.path.abspath(args.topology) if not args.topology.startswith(
-            "topohub:") else args.topology
-    elif cfg["topology.file"] and getattr(args, "config", None):
-        tf = cfg["topology.file"]
-        if not tf.startswith("topohub:") and not os.path.isabs(tf):
-            # a config's topology file is relative to the config file (as `validate` reads it)
-            ov["topology.file"] = os.path.normpath(os.path.join(os.path.dirname(
-                os.path.abspath(args.config)), tf))
-    return cfg.with_overrides(ov, where=f"{args.config or 'defaults'} + command line") if ov else cfg
-
-
-def load_topology(cfg: _config.Config) -> _topology.Topology:
-    d = _topology.LinkDefaults(cfg["topology.default_capacity_bps"], cfg["topology.default_buffer_pkts"])
-    spec = cfg["topology.file"]
-    if spec:
-        return _topology.load(spec, d)
-    ref = resources.files("routerd") / "data" / "demo-lab.yaml"
-    with resources.as_file(ref) as path:
-        return _topology.load(str(path), d)
+    p.add_argument("--set", metavar="KEY=VALUE", action="append", default=[], dest="overrides",
+                   help="override one config setting, e.g. --set engine.hysteresis.margin=0.1 "
+                        "(repeatable; after --config and the flags)")
 
 
 def choose_inputs(args: argparse.Namespace, docs_dir: str | None = None,
@@ -473,7 +431,8 @@ class Service:
             (k, cfg[f"service.{k}"]) for k in ("ingest", "pull", "publish", "control")]
         open_eps.append(("control-readonly", cfg["security.control_readonly"]))
         for name, ep in open_eps:
-            if _security.exposed(ep):
+            # a malformed endpoint is not "reachable": it is refused (routerd.io.values)
+            if endpoint_problem(ep) is None and _security.exposed(ep):
                 self.log.warning("endpoint reachable from other hosts without CURVE: anyone "
                                  "there can use it (give --server-key and --allow, or bind "
                                  "to 127.0.0.1)", endpoint=name, address=ep)

@@ -171,8 +171,10 @@ def run(args: argparse.Namespace) -> int:
     """``routerd serve --shards N`` (the front, and its workers unless external) or
     ``routerd serve --shard K/N`` (one worker); :func:`routerd.service.serve.run` sends
     those here."""
+    from routerd.io import inputs as _inputs
+
     try:
-        root = _service.load_config(args)["service.state_dir"]
+        root = _inputs.load_config(args)["service.state_dir"]
         if args.shard is not None:
             if args.shards is not None:
                 raise InputError("give --shards N (front and workers) or --shard K/N (one "

@@ -94,6 +94,12 @@ def configure(p: argparse.ArgumentParser) -> None:
                    help="random seed of the traffic and of every policy (default 1)")
     p.add_argument("--speed", metavar="X", type=float, default=1.0,
                    help="virtual seconds per wall-clock second in the live run (default 1, real time)")
+    p.add_argument("--config", metavar="FILE", default=None,
+                   help="routerd config for the service and the in-process runs (engine, guards, "
+                        "sim keys); its topology.file must keep the demo lab's nodes and links "
+                        "(e.g. the demo lab with other capacities)")
+    p.add_argument("--set", metavar="KEY=VALUE", action="append", default=[], dest="overrides",
+                   help="override one config setting, e.g. --set engine.variant=dual (repeatable)")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -110,8 +116,13 @@ def run(args: argparse.Namespace) -> int:
     except ImportError:
         print("routerd demo: the plots need matplotlib: pip install 'routerd[plot]'", file=sys.stderr)
         return 2
-    demo = Demo(os.path.abspath(args.out), args.duration, args.seed, args.speed)
+    demo = Demo(os.path.abspath(args.out), args.duration, args.seed, args.speed,
+                config=getattr(args, "config", None), overrides=getattr(args, "overrides", None) or ())
     try:
+        from routerd.io.files import output_dir
+
+        output_dir(args.out)
+        demo.load_inputs()          # before anything is started or written
         return demo.main()
     except InputError as e:
         print(f"routerd demo: cannot run:\n{e}", file=sys.stderr)
@@ -126,9 +137,9 @@ def packaged(name: str) -> str:
 
 def stretched_scenario(duration_s: float) -> dict[str, Any]:
     """The packaged demo scenario with every time multiplied by duration / 30 s."""
-    import yaml
+    from routerd.io.files import parse_yaml
 
-    doc = yaml.safe_load(packaged("demo-scenario.yaml"))
+    doc = parse_yaml(packaged("demo-scenario.yaml"))
     f = duration_s / SCENARIO_SPAN_S
     sc = doc["scenario"]
     for entry in list(sc.get("load", [])) + list(sc.get("links", [])):
@@ -207,8 +218,13 @@ class IntervalTail:
 
 # ---- the demo -------------------------------------------------------------------------------
 class Demo:
-    def __init__(self, out: str, duration_s: float, seed: int, speed: float):
+    def __init__(self, out: str, duration_s: float, seed: int, speed: float, *,
+                 config: str | None = None, overrides: Sequence[str] = ()):
         self.out = out
+        self.config = config
+        self.overrides = tuple(overrides)
+        self.cfg: Any = None
+        self.topo: Any = None
         self.duration = float(duration_s)
         self.seed = int(seed)
         self.speed = float(speed)
@@ -233,21 +249,42 @@ class Demo:
     def spec(self, policy: str) -> dict[str, Any]:
         return {"policy": policy, "rate_pps": BASE_RATE_PPS, "duration_s": self.duration,
                 "seed": self.seed, "scenario": self.scenario_doc, "warmup_s": 0.0,
-                "overrides": (f"sim.service.speed={self.speed:g}",), "series": True}
+                "config": self.config, "topology": self.topo,
+                "overrides": (*self.overrides, f"sim.service.speed={self.speed:g}"), "series": True}
 
-    def main(self) -> int:
-        from routerd.io import config as _config
-        from routerd.core import topology as _topology
-        from routerd.sim import closedloop
+    def load_inputs(self) -> None:
+        """Config and topology by the one input rule (:mod:`routerd.io.inputs`: the
+        config's topology.file relative to its folder, its link defaults, ``--set`` on
+        top), the stretched scenario, and the check that the topology is the demo lab's
+        shape (the scenario's links, the trunk and the detour); InputError otherwise."""
+        import argparse as _argparse
+
+        from routerd.core.errors import Problem
+        from routerd.io import inputs as _inputs
         from routerd.io import scenario as _scenario
 
-        self._prepare_out()
+        self.cfg = _inputs.load_config(_argparse.Namespace(
+            config=self.config, overrides=[*self.overrides, f"sim.service.speed={self.speed:g}"]))
+        self.topo = _inputs.load_topology(self.cfg)
         self.scenario_doc = stretched_scenario(self.duration)
         self.scenario = _scenario.from_mapping(self.scenario_doc, source="demo-scenario.yaml")
+        self.scenario.link_events(self.topo)
+        missing = [f"{a}-{b}" for a, b in (TRUNK, *DETOUR_ENTRIES)
+                   if a not in self.topo.index or b not in self.topo.index
+                   or (self.topo.index[a], self.topo.index[b]) not in self.topo.link_index]
+        if missing:
+            raise InputError(Problem(self.topo.source or self.topo.name, ", ".join(missing),
+                                     "are links the demo follows (trunk and detour): it runs "
+                                     "on the demo lab's shape only"))
+
+    def main(self) -> int:
+        from routerd.sim import closedloop
+
+        if self.cfg is None:
+            self.load_inputs()
+        cfg = self.cfg
+        self._prepare_out()
         self._write_text("scenario.yaml", self._scenario_yaml())
-        cfg = _config.load(None, [f"sim.service.speed={self.speed:g}"])
-        with resources.as_file(resources.files("routerd") / "data" / "demo-lab.yaml") as p:
-            self.topo = _topology.load(str(p))
         self.link_events = [(c.at_s, c.action, c.ends[0]) for c in self.scenario.links]
         print(f"routerd demo: the demo lab ({self.topo.n} nodes, {self.topo.n_links} directed "
               f"links: two halls, a thin trunk {TRUNK[0]}-{TRUNK[1]} and a wider detour), "

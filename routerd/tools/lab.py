@@ -453,7 +453,8 @@ class Lab:
            check=not up)
 
     def _write_files(self) -> None:
-        import yaml
+        # files.dump_yaml: a node name the readers would take for a number stays a string
+        from routerd.io.files import dump_yaml
 
         links = [{"between": [self.topo.nodes[p.a], self.topo.nodes[p.b]],
                   "addresses": [f"{p.addr_a}:{AGENT_PORT}", f"{p.addr_b}:{AGENT_PORT}"]}
@@ -461,10 +462,10 @@ class Lab:
         ul = os.path.join(self.run_dir, "underlay.yaml")
         with open(ul, "w", encoding="utf-8") as fh:
             fh.write("# written by routerd lab: veth addresses inside the lab's namespaces only\n")
-            yaml.safe_dump({"underlay": {"links": links}}, fh, sort_keys=False)
+            fh.write(dump_yaml({"underlay": {"links": links}}, sort_keys=False))
         with open(self.config_path, "w", encoding="utf-8") as fh:
             fh.write("# written by routerd lab for its service and agents\n")
-            yaml.safe_dump(self.cfg_doc, fh, sort_keys=False)
+            fh.write(dump_yaml(self.cfg_doc, sort_keys=False))
         os.makedirs(os.path.join(self.run_dir, "agents"), exist_ok=True)
 
     # -- processes ------------------------------------------------------------------------
@@ -863,8 +864,9 @@ def write_outputs(out: str, summary: dict[str, Any], lab: Lab, res: dict[str, An
 
 # ---- command line --------------------------------------------------------------------------
 def configure(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--topology", required=True, metavar="FILE",
-                   help="topology file (e.g. configs/lab-small.yaml): one namespace per node, one veth pair per link")
+    p.add_argument("--topology", metavar="FILE",
+                   help="topology file (e.g. configs/lab-small.yaml): one namespace per node, one "
+                        "veth pair per link (default: the config's topology.file)")
     p.add_argument("--duration", required=True, type=float, metavar="S", help="seconds of offered traffic")
     p.add_argument("--rate", required=True, type=float, metavar="PPS", help="network-wide packets/s (Poisson)")
     p.add_argument("--out", required=True, metavar="DIR", help="output directory: summary.json (the "
@@ -877,6 +879,9 @@ def configure(p: argparse.ArgumentParser) -> None:
                    help="statistics cover packets sent after this (default: a tenth of --duration)")
     p.add_argument("--config", metavar="FILE", help="routerd config whose engine/service/agent "
                    "settings the lab starts from (endpoints and lab-specific agent keys are set by the lab)")
+    p.add_argument("--set", metavar="KEY=VALUE", action="append", default=[], dest="overrides",
+                   help="override one config setting, e.g. --set engine.explore.max_rate=0.05 "
+                        "(repeatable; endpoints and lab-specific agent keys are the lab's)")
     p.add_argument("--scenario", metavar="FILE", default=None,
                    help="the simulator's scenario YAML: its load steps, ramps and bursts shape the "
                         "traffic; its link events cut links (down/up) and change tbf rates (capacity_bps)")
@@ -909,7 +914,8 @@ def compare_with_sim(args: argparse.Namespace, lab_summary: dict[str, Any], topo
     spec = {"policy": args.compare_sim, "rate_pps": args.rate, "duration_s": args.duration,
             "seed": args.seed, "topology": topo_path, "packet_bytes": args.packet_bytes + WIRE_OVERHEAD,
             "scenario": getattr(args, "scenario", None), "demands": args.demands,
-            "warmup_s": lab_summary["warmup_s"], "config": args.config}
+            "warmup_s": lab_summary["warmup_s"], "config": args.config,
+            "overrides": tuple(getattr(args, "overrides", None) or ())}
     res = sim_run(spec)
     sim_write(res, os.path.join(args.out, "sim"))
     ss = res["summary"]
@@ -937,11 +943,15 @@ def compare_with_sim(args: argparse.Namespace, lab_summary: dict[str, Any], topo
     return ss
 
 
-def lab_config(base: str | None, topo_path: str, run_dir: str) -> dict[str, Any]:
-    """The config the lab's service and agents read: the user's, plus the lab's own keys."""
+def lab_config(base: str | None, topo_path: str, run_dir: str,
+               overrides: Sequence[str] = ()) -> dict[str, Any]:
+    """The config the lab's service and agents read: the user's (by the one input rule,
+    :mod:`routerd.io.inputs`: its paths made absolute, so they hold in the run directory;
+    its link defaults kept), ``--set`` on top, plus the lab's own keys."""
     from routerd.io import config as _config
+    from routerd.io import inputs as _inputs
 
-    cfg = _config.load(base)
+    cfg = _inputs.config_file(base, overrides)
     flat = cfg.flat()
     flat.update({
         "topology.file": topo_path,
@@ -953,24 +963,37 @@ def lab_config(base: str | None, topo_path: str, run_dir: str) -> dict[str, Any]
         "agent.deliver": f"127.0.0.1:{DELIVER_PORT}", "agent.metrics": "127.0.0.1:9308",
         "agent.latency": "one_way", "agent.propagation": "emulate",
     })
-    if base is None:
+    if base is None and not overrides:
         flat["service.publish_interval_s"] = 1.0
         flat["agent.table_stale_s"] = 2.5
     checked = _config.from_mapping_flat(flat, "lab config", base=None)
     return checked.nested()
 
 
-def run(args: argparse.Namespace) -> int:
-    from routerd.core import topology as _topology
+def lab_inputs(args: argparse.Namespace) -> tuple[Any, str, Any]:
+    """(config, topology path or topohub reference, topology) by the one input rule: a
+    relative ``topology.file`` against the config's folder, the config's link defaults."""
+    from routerd.io import inputs as _inputs
 
+    cfg = _inputs.load_config(args)
+    spec = cfg["topology.file"]
+    if not spec:
+        raise InputError(Problem("--topology", None, "is needed (or a --config whose "
+                                 "topology.file names the lab's network)"))
+    return cfg, spec, _inputs.load_topology(cfg)
+
+
+def run(args: argparse.Namespace) -> int:
     try:
         check_host()
     except LabError as e:
         print(f"routerd lab: cannot run here: {e}", file=sys.stderr)
         return 2
     try:
-        topo_path = os.path.abspath(args.topology)
-        topo = _topology.load(topo_path)
+        from routerd.io.files import output_dir
+
+        _cfg, topo_path, topo = lab_inputs(args)
+        output_dir(args.out)
         if topo.n > 250:
             raise InputError(Problem("--topology", topo.n, "nodes are too many for a one-host lab (250 at most)"))
         from routerd.io import scenario as _scenario
@@ -1023,7 +1046,7 @@ def _run(args: argparse.Namespace, topo: Any, topo_path: str, events: list[Event
     t_start = time.perf_counter()
     try:
         try:
-            doc = lab_config(args.config, topo_path, run_dir)
+            doc = lab_config(args.config, topo_path, run_dir, getattr(args, "overrides", ()))
         except InputError as e:
             print(f"routerd lab: {e}", file=sys.stderr)
             return 2

@@ -125,6 +125,11 @@ def configure(p: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     lock: _statedir.StateLock | None = None
     try:
+        from routerd.io.files import output_dir, output_file
+
+        output_dir(args.out)                 # before the replay: a bad --out costs nothing
+        if args.export_link_trace:
+            output_file(args.export_link_trace, "--export-link-trace")
         into = _statedir.enclosing_state_dir(args.out)
         if into is not None:
             # writing into a state dir: only while no service (or other replay) uses it
@@ -499,7 +504,7 @@ def _load_config_and_topology(args: argparse.Namespace, src: Source, *, recorded
     given (a what-if), and the whole choice (with ``recorded_config``, the recorded config
     is read too: a sharded dir's ``shard.map``; replay itself takes the engine settings
     from the records)."""
-    from routerd.service.daemon import load_config, load_topology  # the service's own rules for both
+    from routerd.io.inputs import load_config, load_topology  # the one input rule (routerd.io.inputs)
 
     ns = argparse.Namespace(config=args.config, topology=args.topology)
     where = src.state_dir or src.journal_dir

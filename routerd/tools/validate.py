@@ -1,14 +1,24 @@
-"""``routerd validate FILE...``: check config, topology and scenario files.
+"""``routerd validate FILE...``: check config, topology and scenario files as the commands
+that read them would.
 
 Prints ``OK`` and a one-line summary per good file, or every problem found, each naming
-the file, the key path or element, the bad value and the rule.  Exit 1 if any file is bad.
+the file, the key path or element, the bad value and the rule.  Exit 1 if any file is bad;
+exit 2 for bad usage.
 
 The file's kind is told from its content: a mapping with a ``topology`` mapping holding
 ``nodes`` is a topology; one with a ``scenario`` key is a scenario; one with an
 ``underlay`` key is an agent's underlay map (its form; node names are checked through a
-config that names it); other mappings are configs.  GraphML and node-link JSON files are
-topologies.  A config that names a topology file or an underlay map (``agent.underlay``,
-relative to the config file) has it checked too, the underlay map against the topology.
+config that names it with its topology); other mappings are configs.  GraphML and node-link JSON files are topologies.  An empty file, a directory or
+a binary file is a problem, not a config of defaults.
+
+What a config gets (what ``serve``, ``agent``, ``simulate`` ... check before they start):
+the schema (values, ranges, endpoints and addresses), its paths by the one input rule
+(:mod:`routerd.io.inputs`: relative to the config's folder), the topology it names with
+its link defaults, the CURVE key and allow files (both or neither; the allow file's nodes
+against the topology), and the agent's underlay map against the topology.  Files given
+together are checked together: a scenario must fit a topology on the command line (or
+named by a config there) — its links must be links of it (of one of them, when several
+are given).
 """
 from __future__ import annotations
 
@@ -17,18 +27,24 @@ import os
 import sys
 from typing import Any
 
+from routerd.core.errors import InputError, Problem
+from routerd.core.topology import Topology, from_mapping
 from routerd.io import config as _config
-from routerd.core import topology as _topology
-from routerd.core.errors import InputError, Problem, read_yaml
+from routerd.io import inputs as _inputs
+from routerd.io import topofiles
+from routerd.io.files import read_yaml
 
 
 def configure(p: argparse.ArgumentParser) -> None:
     p.add_argument("files", nargs="*", metavar="FILE", help="config, topology or scenario files "
-                   "(topohub:GROUP/NAME references work too)")
+                   "(topohub:GROUP/NAME references work too); files given together are "
+                   "cross-checked (a scenario against the topologies)")
     p.add_argument("--capacity-bps", type=float, default=None,
-                   help="capacity for topology links that give none")
+                   help="capacity for topology links that give none (as topology.default_capacity_bps)")
     p.add_argument("--buffer-pkts", type=int, default=None,
-                   help="buffer for topology links that give none")
+                   help="buffer for topology links that give none (as topology.default_buffer_pkts)")
+    p.add_argument("--set", metavar="KEY=VALUE", action="append", default=[], dest="overrides",
+                   help="override one setting of every config checked (repeatable)")
     p.add_argument("--schema", action="store_true", help="print every config setting with its default and range")
 
 
@@ -40,6 +56,9 @@ def kind_of(path: str) -> tuple[str, Any]:
     if ext in (".graphml", ".json"):
         return "topology", None
     doc = read_yaml(path)
+    if doc is None:
+        raise InputError(Problem(path, None, "is empty: not a config, topology or scenario "
+                                 "(an empty --config would silently run on the defaults)"))
     if isinstance(doc, dict) and isinstance(doc.get("topology"), dict) and "nodes" in doc["topology"]:
         return "topology", doc
     if isinstance(doc, dict) and "scenario" in doc:
@@ -55,60 +74,128 @@ def kind_of(path: str) -> tuple[str, Any]:
     return "config", doc
 
 
-def check_file(path: str, defaults: _topology.LinkDefaults) -> str:
-    """Summary line for a good file; raises InputError listing every problem otherwise."""
+class Checked:
+    """What one file turned out to be (for the cross-checks)."""
+
+    def __init__(self, path: str, kind: str, summary: str, topo: Topology | None = None,
+                 scenario: Any = None):
+        self.path, self.kind, self.summary, self.topo, self.scenario = path, kind, summary, topo, scenario
+
+
+def _flags(args: argparse.Namespace) -> argparse.Namespace:
+    return argparse.Namespace(capacity_bps=getattr(args, "capacity_bps", None),
+                              buffer_pkts=getattr(args, "buffer_pkts", None),
+                              overrides=list(getattr(args, "overrides", None) or []))
+
+
+def check_file(path: str, args: argparse.Namespace | None = None) -> Checked:
+    """One file checked as the commands would read it; raises InputError listing every
+    problem otherwise.  ``args``: the command line's ``--capacity-bps``, ``--buffer-pkts``
+    and ``--set``."""
+    fl = _flags(args if args is not None else argparse.Namespace())
     kind, doc = kind_of(path)
     if kind == "topology":
-        if doc is not None:
-            t = _topology.from_mapping(doc, source=path, defaults=defaults)
-        else:
-            t = _topology.load(path, defaults)
-        return t.summary()
+        # link defaults by the one rule, from the command line (no config here)
+        d = _inputs.link_defaults(_inputs.load_config(argparse.Namespace(
+            capacity_bps=fl.capacity_bps, buffer_pkts=fl.buffer_pkts)))
+        t = from_mapping(doc, source=path, defaults=d) if doc is not None else topofiles.load(path, d)
+        return Checked(path, kind, t.summary(), topo=t)
     if kind == "scenario":
-        from routerd.io import scenario as _scenario  # the simulator owns the scenario format
+        from routerd.io import scenario as _scenario
 
         sc = _scenario.from_mapping(doc, source=path)
-        return sc.summary()
+        return Checked(path, kind, sc.summary(), scenario=sc)
     if kind == "underlay":
         from routerd.agent.forwarder import underlay_entries  # the agent owns the format
 
         ents = underlay_entries(path)
         hosts = {addr[0] for _, _, pa, pb in ents for addr in (pa, pb)}
-        return (f"underlay map: {len(ents)} link(s), {len(hosts)} host address(es) "
-                "(node names are checked through a config naming it with its topology)")
-    cfg = _config.from_mapping(doc, path)
-    tfile = cfg["topology.file"]
-    extra = ""
-    if tfile:
-        base = os.path.dirname(path)
-        tpath = tfile if tfile.startswith("topohub:") or os.path.isabs(tfile) else os.path.join(base, tfile)
-        d = _topology.LinkDefaults(
-            cfg["topology.default_capacity_bps"] if cfg["topology.default_capacity_bps"] else defaults.capacity_bps,
-            cfg["topology.default_buffer_pkts"] if cfg["topology.default_buffer_pkts"] else defaults.buffer_pkts,
-        )
-        topo = _topology.load(tpath, d)
-        extra = "; " + topo.summary()
-    else:
-        topo = None
+        return Checked(path, kind, f"underlay map: {len(ents)} link(s), {len(hosts)} host "
+                       "address(es) (node names are checked through a config naming it with "
+                       "its topology)")
+        return Checked(path, kind, sc.summary(), scenario=sc)
+    _config.from_mapping(doc, path)          # the schema, with this file's name on each problem
+    cfg = _inputs.load_config(argparse.Namespace(config=path, **vars(fl)))
+    topo = _inputs.load_topology(cfg)
+    problems: list[Problem | str] = []
+    problems += _security_problems(cfg, topo)
+    problems += _agent_problems(cfg, topo)
+    if problems:
+        raise InputError(problems)  # type: ignore[arg-type]
+    changed = sum(1 for k, f in _config.SCHEMA.items() if cfg[k] != f.default)
+    extra = f"; {topo.summary()}" if cfg["topology.file"] else ""
     if cfg["agent.underlay"]:
-        from routerd.agent.forwarder import load_underlay, underlay_entries
+        from routerd.agent.forwarder import underlay_entries
 
-        u = cfg["agent.underlay"]
-        upath = u if os.path.isabs(u) else os.path.join(os.path.dirname(path), u)
-        if topo is not None:
-            ul = load_underlay(upath, topo)
+        written = (doc.get("agent") or {}).get("underlay", cfg["agent.underlay"])
+        extra += f"; underlay map {written}: {len(underlay_entries(cfg['agent.underlay']))} link(s)"
+    return Checked(path, kind, f"config: {changed} setting(s) differ from the defaults{extra}",
+                   topo=topo if cfg["topology.file"] else None)
+
+
+def _security_problems(cfg: _config.Config, topo: Topology) -> list[Problem | str]:
+    """The service's CURVE files, as ``serve`` checks them before it binds."""
+    from routerd.io import security as _security
+
+    out: list[Problem | str] = []
+    try:
+        sk, al = _security.check_pair(cfg)
+        if sk is not None and al is not None:
+            for fn, arg in ((_security.load_server_key, (sk,)), (_security.load_allow, (al, topo))):
+                try:
+                    fn(*arg)   # type: ignore[operator]
+                except InputError as e:
+                    out += e.problems
+    except InputError as e:
+        out += e.problems
+    return out
+
+
+def _agent_problems(cfg: _config.Config, topo: Topology) -> list[Problem | str]:
+    """The agent's underlay map and CURVE files, as ``routerd agent`` reads them."""
+    from routerd.io import security as _security
+
+    out: list[Problem | str] = []
+    if cfg["agent.underlay"]:
+        from routerd.agent.forwarder import load_underlay
+
+        try:
+            ul = load_underlay(cfg["agent.underlay"], topo)
+        except InputError as e:
+            out += e.problems
+        else:
             missing = sorted({tuple(sorted((topo.nodes[a], topo.nodes[b])))
                               for a, b in zip(topo.src.tolist(), topo.dst.tolist()) if (a, b) not in ul})
             if missing:   # an agent on either end would refuse to start
-                raise InputError(Problem(f"{upath}: underlay.links", [list(m) for m in missing],
-                                         f"gives no addresses for these links of topology "
-                                         f"{topo.name!r} (every link needs an entry)"))
-            n = len(ul) // 2
+                out.append(Problem(f"{cfg['agent.underlay']}: underlay.links", [list(m) for m in missing],
+                                   f"gives no addresses for these links of topology "
+                                   f"{topo.name!r} (every link needs an entry)"))
+    try:
+        _security.client_keys(cfg["agent.client_key"], cfg["agent.server_key"], "agent")
+    except InputError as e:
+        out += e.problems
+    return out
+
+
+def cross_check(done: list[Checked]) -> dict[str, list[Problem | str]]:
+    """Problems between files given together: a scenario must fit a topology on the
+    command line (a config's included) — one of them when several are given (``validate
+    configs/*.yaml``), else every problem against each is listed."""
+    topos = [c for c in done if c.topo is not None]
+    out: dict[str, list[Problem | str]] = {}
+    for c in done:
+        if c.scenario is None or not topos:
+            continue
+        misfits: list[Problem | str] = []
+        for t in topos:
+            try:
+                c.scenario.link_events(t.topo)
+                break                              # it fits this one
+            except InputError as e:
+                misfits += [f"{p} (with {t.path})" for p in dict.fromkeys(e.problems)]
         else:
-            n = len(underlay_entries(upath))
-        extra += f"; underlay map {u}: {n} link(s)"
-    changed = sum(1 for k, f in _config.SCHEMA.items() if cfg[k] != f.default)
-    return f"config: {changed} setting(s) differ from the defaults{extra}"
+            out[c.path] = misfits
+    return out
 
 
 def run(args: argparse.Namespace) -> int:
@@ -118,16 +205,23 @@ def run(args: argparse.Namespace) -> int:
     if not args.files:
         print("routerd validate: name at least one FILE (or --schema)", file=sys.stderr)
         return 2
-    defaults = _topology.LinkDefaults(args.capacity_bps, args.buffer_pkts)
     bad = 0
+    done: list[Checked] = []
+    failed: dict[str, list[Problem | str]] = {}
     for path in args.files:
         try:
-            summary = check_file(path, defaults)
+            done.append(check_file(path, args))
         except InputError as e:
+            failed[path] = list(e.problems)
+    for path, probs in cross_check(done).items():
+        failed.setdefault(path, []).extend(probs)
+    summaries = {c.path: c.summary for c in done}
+    for path in args.files:
+        if path in failed:
             bad += 1
-            print(f"{path}: {len(e.problems)} problem(s)")
-            for p in e.problems:
+            print(f"{path}: {len(failed[path])} problem(s)")
+            for p in failed[path]:
                 print(f"  {p}")
-            continue
-        print(f"OK {path}: {summary}")
+        else:
+            print(f"OK {path}: {summaries[path]}")
     return 1 if bad else 0
