@@ -26,7 +26,7 @@ with atheris.instrument_imports():
     import msgpack
     import numpy as np
 
-    from routerd.core import topology as T
+    from routerd.io import topofiles as T
     from routerd.core.engine import Engine, EngineSettings
     from routerd.io import config, journal, security, wire
     from routerd.service.metrics import Counters

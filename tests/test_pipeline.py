@@ -9,7 +9,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from routerd.core import topology as T
+from routerd.io import topofiles as TF
 from routerd.core.engine import Engine, EngineSettings
 from routerd.io import config, journal, security, wire
 from routerd.io.clock import FakeClock
@@ -18,7 +18,7 @@ from routerd.service.daemon import Service
 from routerd.service.metrics import Counters
 
 DEMO = os.path.join(os.path.dirname(__file__), "..", "routerd", "data", "demo-lab.yaml")
-TOPO = T.load(DEMO)
+TOPO = TF.load(DEMO)
 GOOD = ["w1", "w2", "w3", 0.002]
 
 

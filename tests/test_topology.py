@@ -380,7 +380,7 @@ def test_topohub_missing_names_the_extra(monkeypatch: pytest.MonkeyPatch, tmp_pa
 
     monkeypatch.setitem(sys.modules, "topohub", None)     # `import topohub` raises ImportError
     with pytest.raises(T.TopologyError) as e:
-        T.load("topohub:sndlib/abilene", DEF)
+        TF.load("topohub:sndlib/abilene", DEF)
     assert "pip install 'routerd[topohub]'" in str(e.value) and "topohub:sndlib/abilene" in str(e.value)
     rc = main(["simulate", "--policy", "shortest", "--rate", "10", "--duration", "1", "--seed", "1",
                "--topology", "topohub:sndlib/abilene", "--out", str(tmp_path / "o"), "--quiet"])

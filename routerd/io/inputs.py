@@ -76,19 +76,25 @@ def resolve_paths(cfg: _config.Config, base: str,
     return cfg.with_overrides(ov, where=cfg.source) if ov else cfg
 
 
-def config_file(path: str | None, overrides: Iterable[str] = (),
+def config_file(path: str | Mapping[str, Any] | None, overrides: Iterable[str] = (),
                 flags: Mapping[str, Any] | None = None,
                 base: _config.Config | None = None) -> _config.Config:
     """The config file at ``path`` (else ``base``, a state dir's recorded config, else the
     defaults) with its paths resolved against its folder, then ``flags`` (config key →
     value; None: not given) and the ``--set KEY=VALUE`` items on top, both relative to the
     working directory."""
-    if path is not None:
+    if isinstance(path, Mapping):
+        # a config carried inline (a sweep's spec on another host): its paths were made
+        # absolute where it was read, so nothing here resolves against a folder
+        cfg = _config.load(path)
+        where = "<inline config>"
+    elif path is not None:
         cfg = _config.load(path)      # only what the file sets resolves; defaults stay
         cfg = resolve_paths(cfg, os.path.dirname(os.path.abspath(path)), cfg.given)
+        where = path
     else:
         cfg = base if base is not None else _config.load(None)
-    where = path or ("recorded config" if base is not None else "defaults")
+        where = "recorded config" if base is not None else "defaults"
     ov = {k: resolve(k, v, os.getcwd()) for k, v in (flags or {}).items() if v is not None}
     if ov:
         cfg = cfg.with_overrides(ov, where=f"{where} + command line")

@@ -177,7 +177,8 @@ def topohub_doc(key: str) -> dict[str, Any]:
 
         import topohub  # type: ignore[import-not-found]
     except ImportError:
-        raise TopologyError(Problem(where, key, "needs the 'topohub' package (pip install topohub)")) from None
+        raise TopologyError(Problem(where, key, "needs the topohub package, which is not installed: "
+                                    "pip install 'routerd[topohub]'")) from None
     parts = key.split("/")
     if not key or any(p in ("", ".", "..") or not all(c.isalnum() or c in "-_." for c in p)
                       for p in parts):
