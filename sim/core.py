@@ -45,6 +45,14 @@ what is booked beyond t is one unbroken stretch ending at ``free_at[k]``.  So bu
 up to t is ``busy[k] - max(free_at[k] - t, 0)``, read at every sample, at the warm-up
 mark and at the end.
 
+Two paths.  The loop below is the reference.  ``routerd.sim._hops`` (Cython, optional,
+built by setup.py) is the same loop compiled: same heap algorithm and layout, same IEEE
+operations in the same order, same calls into the policy at the same virtual times, so
+a run gives the same result to the bit (``tests/test_sim_hops.py``).  ``kernels``
+(``engine.kernels``: ``auto`` | ``compiled`` | ``reference``) chooses; :func:`hops_status`
+says which path runs and why.  On the compiled path a policy that provides
+``on_hops`` gets its hop observations in batches (see :mod:`routerd.sim.policy`).
+
 Accounting.  ``offered``, ``delivered``, ``dropped`` and ``ttl_expired`` and every delivery
 statistic count packets *injected* at or after the warm-up; the time series counts every
 packet, by the interval it left the network in.  The number of packets in the
@@ -61,9 +69,31 @@ from dataclasses import dataclass
 from heapq import heappop, heappush
 from typing import Any
 
+from routerd.core import kernels as _kernels
 from routerd.core.topology import Topology
 
 from .policy import Policy
+
+try:  # optional: an install without a C compiler runs the reference loop
+    from . import _hops as _compiled_hops  # type: ignore[attr-defined]  # built by setup.py
+    _HOPS_WHY = "routerd.sim._hops is built"
+except ImportError as e:  # pragma: no cover - depends on the install
+    _compiled_hops = None
+    _HOPS_WHY = (f"routerd.sim._hops could not be imported ({e}); the package was installed "
+                 "without a working C compiler (reinstall with one for the compiled path)")
+
+
+def hops_status(mode: str = "auto") -> dict[str, str]:
+    """Which path the simulator's event loop takes for ``engine.kernels = mode``, and why:
+    ``{"path", "mode", "reason"}`` (the engine's rule, :func:`routerd.core.kernels.status_of`)."""
+    return _kernels.status_of(mode, _compiled_hops is not None, _HOPS_WHY)
+
+
+def _hops_module(mode: str) -> Any:
+    st = hops_status(mode)
+    if st["path"] == "unavailable":
+        raise RuntimeError(f"engine.kernels is compiled, but {_HOPS_WHY}")
+    return _compiled_hops if st["path"] == "compiled" else None
 
 # control event codes (packet ids are >= 0)
 _INJECT = -1
@@ -146,6 +176,7 @@ def run_core(
     link_events: Sequence[LinkEvent] = (),
     progress: Callable[[float, int], None] | None = None,
     observer: Callable[[dict[str, Any]], None] | None = None,
+    kernels: str = "auto",
 ) -> CoreResult:
     """Simulate until ``duration_s`` of virtual time; return raw counts, samples and series.
 
@@ -155,8 +186,10 @@ def run_core(
     ``observer(view)`` (live displays, partial results after an interrupt) is called at
     every series sample with ``t_s``, all-packet totals (``delivered``, ``dropped``,
     ``ttl_expired``, ``in_network``) and live references to the measured ``deliveries``
-    list and the ``series`` lists so far; it must not modify them.
+    list and the ``series`` lists so far; it must not modify them.  ``kernels``: which
+    loop runs (:func:`hops_status`); both give the same result.
     """
+    compiled = _hops_module(kernels)
     n = topo.n
     nl = topo.n_links
     src_l = topo.src.tolist()
@@ -248,6 +281,32 @@ def run_core(
     inj_pushed = 1 if pending is not None else 0
     t = 0.0
     wall0 = time.perf_counter()
+
+    if compiled is not None:
+        on_hops = getattr(policy, "on_hops", None) if on_hop is not None else None
+        r = compiled.loop(
+            (src_l, dst_l, delay, inv_cap, buf), policy, table, pending, nxt,
+            {"n": n, "next_hop": next_hop, "on_hop": on_hop, "on_hops": on_hops,
+             "hop_flow": hop_flow, "tick_interval_s": tick_iv},
+            end, warm, int(ttl), ivl, events_sorted, progress, observer)
+        return CoreResult(
+            offered=r["offered"], delivered=r["delivered"],
+            dropped=r["drop_buf"] + r["drop_down"] + r["drop_noroute"],
+            dropped_buffer=r["drop_buf"], dropped_link_down=r["drop_down"],
+            dropped_no_route=r["drop_noroute"], ttl_expired=r["ttl_expired"],
+            in_flight_end=r["in_net"], offered_all=r["offered_all"],
+            delivered_all=r["delivered_all"], dropped_all=r["dropped_all"],
+            ttl_expired_all=r["ttl_all"], deliveries=r["deliveries"], hops_sum=r["hops_sum"],
+            events=r["events"], wall_s=time.perf_counter() - wall0,
+            window_s=max(end - warm, 0.0), little_area=r["area"], left=r["left"],
+            sys_sum=r["sys_sum"], busy_s=r["busy"], carried=r["carried"],
+            series=CoreSeries(t_s=r["s_t"], delivered=r["s_deliv"],
+                              delivery_sum_s=r["s_dsum"], dropped=r["s_drop"],
+                              ttl_expired=r["s_ttl"], in_network=r["s_in_net"],
+                              link_util=r["s_busy"]),
+            series_interval_s=ivl, end_s=end,
+            busy_window_s=[b - w for b, w in zip(r["busy"], r["busy_warm"])],
+        )
 
     while True:
         t, c = heappop(heap)

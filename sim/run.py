@@ -176,7 +176,8 @@ def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
         progress = _progress_printer(sp.duration_s) if sp.progress else None
         raw = run_core(topo, policy, traffic.packets(), duration_s=sp.duration_s, warmup_s=warm,
                        ttl=cfg["sim.ttl"], series_interval_s=cfg["sim.series_interval_s"],
-                       link_events=link_events, progress=progress, observer=observer)
+                       link_events=link_events, progress=progress, observer=observer,
+                       kernels=cfg["engine.kernels"])
         if progress is not None:
             progress(sp.duration_s, raw.events, final=True)
         result = reduce(raw, sp, topo, policy.name, warm, policy.stats())
