@@ -173,7 +173,7 @@ def _timed(obj: Any, name: str, acc: list[float]) -> None:
 
 
 def sim_once(topo: topology.Topology, name: str, pkts: list[tuple],
-             end: float) -> tuple[int, float, CoreResult, float]:
+             end: float, kernels: str = "auto") -> tuple[int, float, CoreResult, float]:
     cfg = config.load(None)
     pol = policies.make(name)
     pol.attach(topo, np.random.default_rng(2), cfg)
@@ -184,7 +184,8 @@ def sim_once(topo: topology.Topology, name: str, pkts: list[tuple],
             _timed(eng, meth, in_engine)
     gc.collect()
     t0 = time.process_time()
-    raw = run_core(topo, pol, iter(pkts), duration_s=end, series_interval_s=end / 10)
+    raw = run_core(topo, pol, iter(pkts), duration_s=end, series_interval_s=end / 10,
+                   kernels=kernels)
     wall = time.process_time() - t0
     return sum(raw.carried), wall, raw, in_engine[0]
 

@@ -122,7 +122,15 @@ class QRouting(Policy):
         self._prop: list[dict[int, float]] = [{} for _ in range(n)]
         for k, (a, b) in enumerate(zip(topology.src.tolist(), topology.dst.tolist())):
             self._prop[a][b] = 0.0 if self.instant else float(topology.delay_s[k])
+        # rows not yet due: carried over from earlier ticks (an array), then the rows
+        # reported since the last tick, per hop (on_hop: tuples) or batched (on_hops:
+        # arrays); a run uses one of the two
         self._rows: list[tuple[float, int, int, int, float, float]] = []
+        self._carry = np.empty((0, 6))
+        self._chunks: list[np.ndarray] = []
+        self._propn = np.zeros((n, n))                   # _prop as a matrix, for on_hops
+        if not self.instant:
+            self._propn[topology.src, topology.dst] = topology.delay_s
         self.table = [[-1] * n for _ in range(n)]
         self._split: list[dict[int, tuple[tuple[int, ...], tuple[float, ...]]]] = [
             {} for _ in range(n)]
@@ -147,7 +155,7 @@ class QRouting(Policy):
         self._nbrs = [set(nb) for nb in topology.neighbours]
         self.backward_rows = 0
         self._refresh(range(n))
-        self._V = self._estimates()
+        self._set_estimates()
 
     # -- forwarding ----------------------------------------------------------------
     def _refresh(self, nodes: Any) -> None:
@@ -238,20 +246,53 @@ class QRouting(Policy):
                     self._rows.append((now, y, x, s, latency_s, self._V[x][s]))
                     self.backward_rows += 1
 
+    def on_hops(self, x: np.ndarray, y: np.ndarray, d: np.ndarray, latency_s: np.ndarray,
+                now: np.ndarray, flow: np.ndarray) -> None:
+        """:meth:`on_hop` for a batch of hops in order (the compiled loop's): the same rows."""
+        if self.hop_flow:  # dual's backward rows interleave: row by row
+            for row in zip(x.tolist(), y.tolist(), d.tolist(), latency_s.tolist(),
+                           now.tolist(), flow.tolist()):
+                self.on_hop(*row)
+            return
+        if not (x >= 0).all():
+            keep = x >= 0
+            x, y, d, latency_s, now = x[keep], y[keep], d[keep], latency_s[keep], now[keep]
+        a = np.empty((x.size, 6))
+        np.add(now, self._propn[x, y], out=a[:, 0])
+        a[:, 1] = x
+        a[:, 2] = y
+        a[:, 3] = d
+        a[:, 4] = latency_s
+        a[:, 5] = self._Vn[y, d]
+        self._chunks.append(a)
+
+    def _pending(self) -> np.ndarray:
+        """Every row not yet applied, as an (m, 6) array in the order they were reported."""
+        parts = [self._carry] if self._carry.shape[0] else []
+        if self._rows:
+            # one flat pass over the tuples: much cheaper than np.array(list of tuples)
+            parts.append(np.fromiter(chain.from_iterable(self._rows), dtype=np.float64,
+                                     count=6 * len(self._rows)).reshape(-1, 6))
+            self._rows = []
+        parts += self._chunks
+        self._chunks = []
+        if len(parts) == 1:
+            return parts[0]
+        return np.concatenate(parts) if parts else self._carry
+
     def tick(self, now: float) -> None:
-        rows = self._rows
-        if rows:
+        rows = self._pending()
+        self._carry = rows[:0]
+        if rows.shape[0]:
             if self.instant:
                 due = rows
-                self._rows = []
             else:
-                due = [r for r in rows if r[0] <= now]
-                self._rows = [r for r in rows if r[0] > now]
-            if due:
-                due.sort(key=lambda r: r[0])  # stable: ties keep arrival order
-                # one flat pass over the tuples: much cheaper than np.array(list of tuples)
-                a = np.fromiter(chain.from_iterable(due), dtype=np.float64,
-                                count=6 * len(due)).reshape(-1, 6)
+                late = rows[:, 0] > now
+                due = rows[~late]
+                self._carry = rows[late]
+            if due.shape[0]:
+                # stable: ties keep arrival order
+                a = due[np.argsort(due[:, 0], kind="stable")]
                 res = self.engine.observe(
                     HopBatch.of(a[:, 1].astype(np.int64), a[:, 2].astype(np.int64),
                                 a[:, 3].astype(np.int64), a[:, 4], a[:, 5]), now)
@@ -273,7 +314,7 @@ class QRouting(Policy):
             self._refresh(sorted(dec.changed_nodes))
         if (written is None or self.estimate_mode != "published"
                 or self.engine.settings.variant != "plain"):
-            self._V = self._estimates()
+            self._set_estimates()
             return
         keys = np.unique(np.concatenate([written, *self._moved]))
         if keys.size == 0:
@@ -281,16 +322,18 @@ class QRouting(Policy):
         n = self.engine.n
         xk, dk = np.divmod(keys, n)
         V = self._V
-        for x, d, v in zip(xk.tolist(), dk.tolist(),
-                           self.engine.published_estimates(xk, dk).tolist()):
+        vals = self.engine.published_estimates(xk, dk)
+        self._Vn[xk, dk] = vals
+        for x, d, v in zip(xk.tolist(), dk.tolist(), vals.tolist()):
             V[x][d] = v
 
-    def _estimates(self) -> list[list[float]]:
-        """Each node's remaining estimate per destination, as it would report it."""
+    def _set_estimates(self) -> None:
+        """Each node's remaining estimate per destination, as it would report it: ``_Vn``
+        (an array, read by on_hops) and ``_V`` (the same as lists, read by on_hop)."""
         eng = self.engine
-        if self.estimate_mode == "min":
-            return eng.values().tolist()
-        return eng.published_estimates().tolist()
+        vn = eng.values() if self.estimate_mode == "min" else eng.published_estimates()
+        self._Vn = np.array(vn, dtype=np.float64)
+        self._V = self._Vn.tolist()
 
     def on_link(self, x: int, y: int, up: bool, now: float) -> None:
         self.engine.set_link(x, y, up, now)
