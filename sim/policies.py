@@ -107,6 +107,14 @@ class Ecmp(Policy):
         return hops[_mix(flow, x) % len(hops)]
 
 
+def _any_last(a: np.ndarray) -> np.ndarray:
+    """``a.any(axis=-1)`` for a bool array, several times faster for short last axes
+    (numpy's reduction over a short inner axis is slow; a byte sum is not)."""
+    if a.shape[-1] >= 256:  # a byte sum could wrap
+        return a.any(axis=-1)
+    return np.einsum("...k->...", a.view(np.uint8)) > 0
+
+
 class QRouting(Policy):
     """The learning engine in the loop.  See the module docstring."""
 
@@ -173,20 +181,35 @@ class QRouting(Policy):
         nh = np.where(g >= 0, np.take_along_axis(self._slots[xs], np.maximum(g, 0), axis=1), -1)
         e = eng.eps[xs]
         alt = eng.alt[xs]
-        explore = (g >= 0) & alt.any(axis=2) & (e > 0)                # zero share: greedy only
+        explore = (g >= 0) & _any_last(alt) & (e > 0)                 # zero share: greedy only
         vals = np.where(explore, -2, nh)
         moved = np.nonzero(self._gh[xs] != nh)                        # greedy hops that moved
         self._moved.append(xs[moved[0]] * self.engine.n + moved[1])
         # only entries whose inputs (greedy hop, share, candidates) changed are rewritten;
         # the others, and their cached splits, are what a rebuild would give again
-        ii, dd = np.nonzero((self._gh[xs] != nh) | (self._eps_np[xs] != e)
-                            | (self._alt_np[xs] != alt).any(axis=2))
+        changed = ((self._gh[xs] != nh) | (self._eps_np[xs] != e)
+                   | _any_last(self._alt_np[xs] != alt))
         self._gh[xs] = nh
         self._eps_np[xs] = e
         self._alt_np[xs] = alt
         table = self.table
         assert table is not None
         gh, er, sp = self._greedy_hop, self._eps_row, self._split
+        per_row = changed.sum(axis=1)
+        # a row with many changes is rewritten whole (in place: the simulator holds the
+        # row lists), which is cheaper than entry by entry and gives the same lists
+        whole = per_row > max(8, self.engine.n // 16)
+        for i in np.flatnonzero(whole).tolist():
+            x = int(xs[i])
+            table[x][:] = vals[i].tolist()
+            gh[x][:] = nh[i].tolist()
+            er[x][:] = e[i].tolist()
+            spx = sp[x]
+            if spx:
+                for d in np.flatnonzero(changed[i]).tolist():
+                    spx.pop(d, None)
+        changed[whole] = False
+        ii, dd = np.nonzero(changed)
         for x, d, v, h, ev in zip(xs[ii].tolist(), dd.tolist(), vals[ii, dd].tolist(),
                                   nh[ii, dd].tolist(), e[ii, dd].tolist()):
             table[x][d] = v
@@ -238,6 +261,8 @@ class QRouting(Policy):
 
     # -- learning ------------------------------------------------------------------
     def on_hop(self, x: int, y: int, d: int, latency_s: float, now: float, flow: int = -1) -> None:
+        if self._V_lag:
+            self._sync_V()
         if x >= 0:
             self._rows.append((now + self._prop[x][y], x, y, d, latency_s, self._V[y][d]))
             if flow >= 0:  # dual: the backward row, at y about x towards the packet's source
@@ -321,11 +346,27 @@ class QRouting(Policy):
             return
         n = self.engine.n
         xk, dk = np.divmod(keys, n)
-        V = self._V
         vals = self.engine.published_estimates(xk, dk)
         self._Vn[xk, dk] = vals
-        for x, d, v in zip(xk.tolist(), dk.tolist(), vals.tolist()):
-            V[x][d] = v
+        # the list twin (on_hop's) catches up on its first use: on_hops never needs it;
+        # a lag as large as the table is dropped (the twin is then rebuilt whole)
+        self._V_lag.append((xk, dk, vals))
+        self._V_lag_rows += keys.size
+        if self._V_lag_rows > n * n:
+            self._V_lag = [(np.empty(0, np.int64),) * 2 + (np.empty(0),)]
+            self._V = None
+
+    def _sync_V(self) -> None:
+        """Bring ``_V`` (lists, per-hop reads) up to ``_Vn`` (the array)."""
+        V = self._V
+        if V is None:
+            self._V = self._Vn.tolist()
+        else:
+            for xk, dk, vals in self._V_lag:
+                for x, d, v in zip(xk.tolist(), dk.tolist(), vals.tolist()):
+                    V[x][d] = v
+        self._V_lag = []
+        self._V_lag_rows = 0
 
     def _set_estimates(self) -> None:
         """Each node's remaining estimate per destination, as it would report it: ``_Vn``
@@ -333,7 +374,9 @@ class QRouting(Policy):
         eng = self.engine
         vn = eng.values() if self.estimate_mode == "min" else eng.published_estimates()
         self._Vn = np.array(vn, dtype=np.float64)
-        self._V = self._Vn.tolist()
+        self._V: list[list[float]] | None = self._Vn.tolist()
+        self._V_lag: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
+        self._V_lag_rows = 0
 
     def on_link(self, x: int, y: int, up: bool, now: float) -> None:
         self.engine.set_link(x, y, up, now)
