@@ -636,3 +636,56 @@ def loop(object topo_lists, object policy, object table, object first, object pa
         "s_t": s_t, "s_deliv": s_deliv, "s_dsum": s_dsum, "s_drop": s_drop, "s_ttl": s_ttl,
         "s_in_net": s_in_net, "s_busy": s_busy,
     }
+
+
+def refresh(const int64_t[:, ::1] greedy, const double[:, ::1] eps,
+            const unsigned char[:, :, ::1] alt, const int64_t[:, ::1] slots,
+            int64_t[:, ::1] gh, double[:, ::1] epsc, unsigned char[:, :, ::1] altc,
+            const int64_t[::1] xs, list table, list gh_rows, list er_rows, list splits,
+            int64_t[::1] moved):
+    """``QRouting._refresh`` (sim/policies.py) for nodes ``xs``: bring the cached greedy
+    hop, share and candidates (``gh``, ``epsc``, ``altc``) and the fast-path rows up to
+    the engine's tables, rewriting only entries whose inputs changed (the same Python
+    values the reference writes) and dropping their cached splits.  Writes the keys
+    ``x * n + d`` whose greedy hop moved into ``moved`` (row-major, as ``np.nonzero``);
+    returns how many."""
+    cdef Py_ssize_t n = greedy.shape[1], K = alt.shape[2]
+    cdef Py_ssize_t i, d, j, nm = 0
+    cdef int64_t x, gs, h
+    cdef double ev
+    cdef bint anyalt, altchg, mv
+    cdef unsigned char a
+    cdef list row_t, row_g, row_e
+    cdef dict sp
+    for i in range(xs.shape[0]):
+        x = xs[i]
+        row_t = table[x]
+        row_g = gh_rows[x]
+        row_e = er_rows[x]
+        sp = splits[x]
+        for d in range(n):
+            gs = greedy[x, d]
+            h = slots[x, gs] if gs >= 0 else -1
+            ev = eps[x, d]
+            anyalt = False
+            altchg = False
+            for j in range(K):
+                a = alt[x, d, j]
+                if a:
+                    anyalt = True
+                if a != altc[x, d, j]:
+                    altchg = True
+                    altc[x, d, j] = a
+            mv = gh[x, d] != h
+            if mv:
+                moved[nm] = x * n + d
+                nm += 1
+            if mv or epsc[x, d] != ev or altchg:   # NaN (never set) counts as changed
+                gh[x, d] = h
+                epsc[x, d] = ev
+                row_t[d] = -2 if (gs >= 0 and anyalt and ev > 0) else h
+                row_g[d] = h
+                row_e[d] = ev
+                if sp:
+                    sp.pop(d, None)
+    return nm

@@ -89,7 +89,9 @@ def hops_status(mode: str = "auto") -> dict[str, str]:
     return _kernels.status_of(mode, _compiled_hops is not None, _HOPS_WHY)
 
 
-def _hops_module(mode: str) -> Any:
+def hops_module(mode: str) -> Any:
+    """The compiled module for ``engine.kernels = mode``, or None for the reference;
+    ``compiled`` without it raises ``RuntimeError`` saying why."""
     st = hops_status(mode)
     if st["path"] == "unavailable":
         raise RuntimeError(f"engine.kernels is compiled, but {_HOPS_WHY}")
@@ -189,7 +191,7 @@ def run_core(
     list and the ``series`` lists so far; it must not modify them.  ``kernels``: which
     loop runs (:func:`hops_status`); both give the same result.
     """
-    compiled = _hops_module(kernels)
+    compiled = hops_module(kernels)
     n = topo.n
     nl = topo.n_links
     src_l = topo.src.tolist()

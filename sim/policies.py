@@ -40,6 +40,7 @@ from routerd.core.engine import Engine, EngineSettings, HopBatch
 from routerd.core.errors import InputError, Problem
 from routerd.core.topology import Topology
 
+from .core import hops_module
 from .policy import Policy
 
 
@@ -143,6 +144,13 @@ class QRouting(Policy):
         self._split: list[dict[int, tuple[tuple[int, ...], tuple[float, ...]]]] = [
             {} for _ in range(n)]
         self._slots = topology.slots.astype(np.int64)
+        # the compiled refresh where engine.kernels allows it and the arrays suit it
+        self._hops = hops_module(es.kernels)
+        eng_arrays = (self.engine.greedy, self.engine.eps, self.engine.alt)
+        if not all(a.flags.c_contiguous for a in eng_arrays) or self.engine.greedy.dtype != np.int64:
+            self._hops = None
+        self._slots_ext = np.concatenate(
+            [self._slots, np.full((n, 1), -1, dtype=np.int64)], axis=1)
         self._slot_rows: list[list[int]] = self._slots.tolist()
         self._greedy_hop: list[list[int]] = [[-1] * n for _ in range(n)]
         self._eps_row: list[list[float]] = [[0.0] * n for _ in range(n)]
@@ -177,21 +185,33 @@ class QRouting(Policy):
         if xs.size == 0:
             return
         eng = self.engine
-        g = eng.greedy[xs]                                             # (m, n) slot
-        nh = np.where(g >= 0, np.take_along_axis(self._slots[xs], np.maximum(g, 0), axis=1), -1)
-        e = eng.eps[xs]
-        alt = eng.alt[xs]
+        if self._hops is not None:  # the same loop, compiled (routerd.sim._hops.refresh)
+            moved_keys = np.empty(xs.size * eng.n, dtype=np.int64)
+            nm = self._hops.refresh(
+                eng.greedy, eng.eps, eng.alt.view(np.uint8), self._slots, self._gh,
+                self._eps_np, self._alt_np.view(np.uint8), xs, self.table, self._greedy_hop,
+                self._eps_row, self._split, moved_keys)
+            self._moved.append(moved_keys[:nm])
+            return
+        # every node (the usual case on a busy network): views instead of gathered copies
+        sel: Any = slice(None) if xs.size == eng.n else xs
+        g = eng.greedy[sel]                                            # (m, n) slot
+        # slot -1 (no next hop) reads the appended -1 column
+        nh = self._slots_ext[xs[:, None], g]
+        e = eng.eps[sel]
+        alt = eng.alt[sel]
         explore = (g >= 0) & _any_last(alt) & (e > 0)                 # zero share: greedy only
         vals = np.where(explore, -2, nh)
-        moved = np.nonzero(self._gh[xs] != nh)                        # greedy hops that moved
+        gh_old = self._gh[sel]
+        moved_now = gh_old != nh
+        moved = np.nonzero(moved_now)                                  # greedy hops that moved
         self._moved.append(xs[moved[0]] * self.engine.n + moved[1])
         # only entries whose inputs (greedy hop, share, candidates) changed are rewritten;
         # the others, and their cached splits, are what a rebuild would give again
-        changed = ((self._gh[xs] != nh) | (self._eps_np[xs] != e)
-                   | _any_last(self._alt_np[xs] != alt))
-        self._gh[xs] = nh
-        self._eps_np[xs] = e
-        self._alt_np[xs] = alt
+        changed = moved_now | (self._eps_np[sel] != e) | _any_last(self._alt_np[sel] != alt)
+        self._gh[sel] = nh
+        self._eps_np[sel] = e
+        self._alt_np[sel] = alt
         table = self.table
         assert table is not None
         gh, er, sp = self._greedy_hop, self._eps_row, self._split
