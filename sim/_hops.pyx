@@ -265,6 +265,72 @@ cdef class _HopBuffer:
         return 0
 
 
+cdef class _Splits:
+    """Random splits (table entry -2) sampled here instead of by ``policy.next_hop``, for a
+    policy that describes them (``split_arrays()``, ``draws()`` / ``set_draws()``; see
+    ``QRouting``): greedy hop ``gh[x, d]`` with weight 1 - eps, then each candidate slot in
+    slot order with eps / count, cumulated left to right with the last weight set to 1,
+    and one uniform draw per packet from the policy's own blocks of 4096 (the same draws,
+    the same sums, the same comparisons as ``QRouting.next_hop``)."""
+    cdef object arrays_fn, rng, block
+    cdef const int64_t[:, ::1] gh
+    cdef const double[:, ::1] eps
+    cdef const unsigned char[:, :, ::1] alt
+    cdef const int64_t[:, ::1] slots
+    cdef const double[::1] u
+    cdef Py_ssize_t ui, K
+
+    def __cinit__(self, object policy):
+        self.arrays_fn = policy.split_arrays
+        self.rng = policy.rng
+        block, self.ui = policy.draws()
+        self.block = np.ascontiguousarray(block, dtype=np.float64)
+        self.u = self.block
+        self.update()
+
+    cdef int update(self) except -1:
+        gh, eps, alt, slots = self.arrays_fn()
+        self.gh = gh
+        self.eps = eps
+        self.alt = alt
+        self.slots = slots
+        self.K = alt.shape[2]
+        return 0
+
+    cdef int64_t sample(self, int64_t x, int64_t d) except? -3:
+        cdef double uu, e, share, acc, c
+        cdef Py_ssize_t j, nalt = 0, cnt = 0
+        cdef int64_t last = -1
+        if self.ui >= self.u.shape[0]:
+            self.block = self.rng.random(4096)
+            self.u = self.block
+            self.ui = 0
+        uu = self.u[self.ui]
+        self.ui += 1
+        for j in range(self.K):
+            if self.alt[x, d, j]:
+                nalt += 1
+        if nalt == 0:
+            return self.gh[x, d]
+        e = self.eps[x, d]
+        share = e / nalt
+        acc = 1.0 - e
+        if uu < acc:
+            return self.gh[x, d]
+        for j in range(self.K):
+            if self.alt[x, d, j]:
+                cnt += 1
+                acc += share
+                c = 1.0 if cnt == nalt else acc
+                last = self.slots[x, j]
+                if uu < c:
+                    return last
+        return last
+
+    def give_back(self, object policy):
+        policy.set_draws(self.block, self.ui)
+
+
 cdef inline Py_ssize_t _link(const int64_t* nb_start, const int64_t* nb_node,
                              const int64_t* nb_link, int64_t x, int64_t h) noexcept:
     cdef Py_ssize_t i
@@ -319,6 +385,7 @@ def loop(object topo_lists, object policy, object table, object first, object pa
     cdef Py_ssize_t n_free = 0, cap_free = 0
     cdef _Heap heap = _Heap()
     cdef _HopBuffer hb = _HopBuffer() if on_hops is not None else None
+    cdef _Splits splits = _Splits(policy) if hooks["splits"] else None
 
     # the table: a list of n lists read in place (fast), anything else through indexing
     cdef bint fast_table = type(table) is list and len(table) == n
@@ -459,6 +526,8 @@ def loop(object topo_lists, object policy, object table, object first, object pa
                 if hb is not None:
                     hb.flush(on_hops)
                 policy.tick(t)
+                if splits is not None:
+                    splits.update()
                 heap.push(t + tick_iv, TICK)
                 ctrl_pushed += 1
                 continue
@@ -537,6 +606,8 @@ def loop(object topo_lists, object policy, object table, object first, object pa
                             free_at[k] = t
                         queues.clear(k)
                     policy.on_link(src_l[k], dst_l[k], going_up, t)
+                    if splits is not None:
+                        splits.update()
                 continue
 
             # ---- forward packet c from node x ----
@@ -553,7 +624,10 @@ def loop(object topo_lists, object policy, object table, object first, object pa
                 else:
                     h = table[x][d]
                 if h < -1:
-                    h = next_hop(x, d, P.flow[c], t)
+                    if splits is not None:
+                        h = splits.sample(x, d)
+                    else:
+                        h = next_hop(x, d, P.flow[c], t)
                 if h < 0:
                     reason = 2
                 else:
@@ -614,6 +688,8 @@ def loop(object topo_lists, object policy, object table, object first, object pa
             hb.flush(on_hops)
     finally:
         free(free_ids)
+        if splits is not None:
+            splits.give_back(policy)
 
     for k in range(nl):
         if free_at[k] > end:

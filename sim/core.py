@@ -289,7 +289,8 @@ def run_core(
         r = compiled.loop(
             (src_l, dst_l, delay, inv_cap, buf), policy, table, pending, nxt,
             {"n": n, "next_hop": next_hop, "on_hop": on_hop, "on_hops": on_hops,
-             "hop_flow": hop_flow, "tick_interval_s": tick_iv},
+             "hop_flow": hop_flow, "tick_interval_s": tick_iv,
+             "splits": callable(getattr(policy, "split_arrays", None))},
             end, warm, int(ttl), ivl, events_sorted, progress, observer)
         return CoreResult(
             offered=r["offered"], delivered=r["delivered"],

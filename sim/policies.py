@@ -264,6 +264,21 @@ class QRouting(Policy):
             self._split[x][d] = sp
         return sp
 
+    def split_arrays(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """What the compiled loop (``routerd.sim._hops``) samples a split entry from, with
+        :meth:`next_hop`'s arithmetic: greedy hops and shares as refreshed, the engine's
+        candidate slots (bytes), the slot table.  None of them is copied."""
+        return self._gh, self._eps_np, self.engine.alt.view(np.uint8), self._slots
+
+    def draws(self) -> tuple[list[float], int]:
+        """The forwarding draws: the current block and the index of the next unused one."""
+        return self._u, self._ui
+
+    def set_draws(self, block: Any, index: int) -> None:
+        """Hand the draws back after the compiled loop used them (same rng, same order)."""
+        self._u = block.tolist() if isinstance(block, np.ndarray) else list(block)
+        self._ui = index
+
     def next_hop(self, x: int, d: int, flow: int, now: float) -> int:
         if self.table[x][d] != -2:  # type: ignore[index]
             return self.table[x][d]  # type: ignore[index]
