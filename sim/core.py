@@ -166,6 +166,18 @@ class CoreResult:
     busy_window_s: list[float]       # per link: seconds transmitting within the window
 
 
+def _hook_applies(policy: Policy, hook: str, replaces: str) -> bool:
+    """Whether the compiled loop may use ``policy``'s optional ``hook`` in place of
+    ``replaces``: only where the class that defines the hook also defines what it stands
+    for (a subclass that overrides ``next_hop`` or ``on_hop`` alone, or an instance
+    patched with its own, keeps its method)."""
+    if not callable(getattr(policy, hook, None)) or replaces in vars(policy):
+        return False
+    mro = type(policy).__mro__
+    owner = next((c for c in mro if hook in c.__dict__), None)
+    return owner is not None and owner is next((c for c in mro if replaces in c.__dict__), None)
+
+
 def run_core(
     topo: Topology,
     policy: Policy,
@@ -285,12 +297,12 @@ def run_core(
     wall0 = time.perf_counter()
 
     if compiled is not None:
-        on_hops = getattr(policy, "on_hops", None) if on_hop is not None else None
+        on_hops = policy.on_hops if _hook_applies(policy, "on_hops", "on_hop") else None
         r = compiled.loop(
             (src_l, dst_l, delay, inv_cap, buf), policy, table, pending, nxt,
             {"n": n, "next_hop": next_hop, "on_hop": on_hop, "on_hops": on_hops,
              "hop_flow": hop_flow, "tick_interval_s": tick_iv,
-             "splits": callable(getattr(policy, "split_arrays", None))},
+             "splits": _hook_applies(policy, "split_arrays", "next_hop")},
             end, warm, int(ttl), ivl, events_sorted, progress, observer)
         return CoreResult(
             offered=r["offered"], delivered=r["delivered"],

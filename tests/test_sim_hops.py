@@ -201,3 +201,33 @@ def test_bad_node_from_a_traffic_source_is_a_clear_error() -> None:
     pol.attach(topo, np.random.default_rng(0), None)
     with pytest.raises(ValueError, match="node 9; nodes are 0..5"):
         run_core(topo, pol, iter([(0.1, 0, 9, 8000.0, 1)]), duration_s=1.0, kernels="compiled")
+
+
+class _OwnSplit(QRouting):
+    """A subclass with its own next_hop: the compiled loop must call it, not sample."""
+
+    made: list[_OwnSplit] = []
+
+    def __init__(self) -> None:
+        self.calls = 0
+        _OwnSplit.made.append(self)
+
+    def next_hop(self, x: int, d: int, flow: int, now: float) -> int:
+        self.calls += 1
+        return super().next_hop(x, d, flow, now)
+
+
+@needs_hops
+def test_a_subclass_next_hop_is_not_bypassed() -> None:
+    spec = {"policy": "qrouting", "rate_pps": 1400.0, "duration_s": 1.5, "seed": 5,
+            "topology": LAB}
+    _OwnSplit.made.clear()
+    ref, comp = _both(spec, _OwnSplit)
+    _assert_identical(ref, comp)
+    on_ref, on_comp = _OwnSplit.made[:2]
+    # every split still went through the subclass's next_hop on the compiled loop
+    assert on_comp.calls == on_ref.calls > 0
+    # and QRouting itself takes the compiled sampling and batching
+    assert core._hook_applies(QRouting(), "split_arrays", "next_hop")
+    assert core._hook_applies(QRouting(), "on_hops", "on_hop")
+    assert not core._hook_applies(_OwnSplit(), "split_arrays", "next_hop")
