@@ -158,9 +158,9 @@ def test_compiled_kernels_are_built_and_active(installed: Installed) -> None:
     _check(r, "kernels.status()")
     status = json.loads(r.stdout.splitlines()[0])
     assert status["path"] == "compiled", status
-    r = installed.run(installed.exe("python"), "-c", _HOPS_STATUS)
-    _check(r, "hops_status()")
-    assert json.loads(r.stdout)["path"] == "compiled", r.stdout
+    r2 = installed.run(installed.exe("python"), "-c", _HOPS_STATUS)
+    _check(r2, "hops_status()")
+    assert json.loads(r2.stdout)["path"] == "compiled", r2.stdout
     assert os.path.realpath(r.stdout.splitlines()[1]).startswith(
         os.path.realpath(installed.venv) + os.sep)
 
