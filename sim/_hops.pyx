@@ -20,7 +20,7 @@ Python call at the same virtual time as on the reference path.  No numpy C API: 
 imported only to hand hop batches over.
 """
 from libc.stdlib cimport malloc, realloc, free
-from libc.string cimport memcpy
+from libc.string cimport memcmp
 from libc.stdint cimport int64_t
 from cpython.object cimport PyObject
 
@@ -743,20 +743,18 @@ def refresh(const int64_t[:, ::1] greedy, const double[:, ::1] eps,
             gs = greedy[x, d]
             h = slots[x, gs] if gs >= 0 else -1
             ev = eps[x, d]
-            anyalt = False
-            altchg = False
-            for j in range(K):
-                a = alt[x, d, j]
-                if a:
-                    anyalt = True
-                if a != altc[x, d, j]:
-                    altchg = True
-                    altc[x, d, j] = a
             mv = gh[x, d] != h
             if mv:
                 moved[nm] = x * n + d
                 nm += 1
+            altchg = K > 0 and memcmp(&alt[x, d, 0], &altc[x, d, 0], K) != 0
             if mv or epsc[x, d] != ev or altchg:   # NaN (never set) counts as changed
+                anyalt = False
+                for j in range(K):
+                    a = alt[x, d, j]
+                    altc[x, d, j] = a
+                    if a:
+                        anyalt = True
                 gh[x, d] = h
                 epsc[x, d] = ev
                 row_t[d] = -2 if (gs >= 0 and anyalt and ev > 0) else h
