@@ -26,6 +26,11 @@ stays on the shortest path.  Measured on the demo lab at 1800 packets/s: ``min``
 mean delivery and 10% drops, ``published`` 6.7 ms and none.
 Forwarding samples the published weights (``Engine.weights``) with the run's generator;
 entries with a single next hop go straight into the fast-path ``table``.
+On the simulator's compiled loop (``routerd.sim._hops``, ``engine.kernels``) the same work
+takes three shortcuts with the same results: hops arrive in batches (``on_hops``, rows
+built with numpy), split entries are sampled in C from ``split_arrays()`` with this
+module's draws and arithmetic, and the table refresh after each decide is compiled
+(``_hops.refresh``; the numpy ``_refresh`` is the reference).
 """
 from __future__ import annotations
 

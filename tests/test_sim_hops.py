@@ -231,3 +231,36 @@ def test_a_subclass_next_hop_is_not_bypassed() -> None:
     assert core._hook_applies(QRouting(), "split_arrays", "next_hop")
     assert core._hook_applies(QRouting(), "on_hops", "on_hop")
     assert not core._hook_applies(_OwnSplit(), "split_arrays", "next_hop")
+
+
+class _ArrayTable(Policy):
+    """A table that is not a list of lists (a numpy array): read by plain indexing."""
+
+    name = "arraytable"
+
+    def attach(self, topology: Any, rng: Any, settings: Any) -> None:
+        super().attach(topology, rng, settings)
+        self.table = topology.spt_next_hops()  # type: ignore[assignment]
+
+    def next_hop(self, x: int, d: int, flow: int, now: float) -> int:
+        return int(self.table[x][d])  # type: ignore[index]
+
+
+@needs_hops
+def test_progress_observer_and_other_tables_alike() -> None:
+    topo = topology.from_mapping(LAB)
+    seen: dict[str, list] = {}
+    for path in ("reference", "compiled"):
+        pol = _ArrayTable()
+        pol.attach(topo, np.random.default_rng(0), None)
+        calls: list = []
+        tr = PoissonTraffic(topo.n, 900.0, np.random.default_rng(8))
+        raw = run_core(topo, pol, tr.packets(), duration_s=1.0, series_interval_s=0.2,
+                       progress=lambda t, ev: calls.append(("p", t, ev)),
+                       observer=lambda v: calls.append(
+                           ("o", v["t_s"], v["delivered"], v["dropped"], v["in_network"],
+                            len(v["deliveries"]), json.dumps(v["series"]))),
+                       kernels=path)
+        seen[path] = [calls, raw.events, raw.deliveries]
+    assert seen["reference"] == seen["compiled"]
+    assert len(seen["compiled"][0]) == 10 and seen["compiled"][1] > 1000
