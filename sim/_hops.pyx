@@ -15,9 +15,13 @@ value is computed, so a run gives the same bits on either path (the build passes
   ``on_hops``, in batches of arrays flushed before every ``tick``, every ``on_link`` and
   at the end, so the policy has seen every hop before anything it does depends on them.
 
+* a table entry -2 is sampled here for a policy that describes its splits
+  (``split_arrays``; qrouting), with its own uniform draws and ``next_hop``'s arithmetic.
+
 Everything that calls back (policy ticks and link events, progress, observer) stays a
-Python call at the same virtual time as on the reference path.  No numpy C API: numpy is
-imported only to hand hop batches over.
+Python call at the same virtual time as on the reference path.  ``refresh`` is qrouting's
+table refresh (sim/policies.py, ``QRouting._refresh``) compiled.  No numpy C API (typed
+memoryviews only); numpy makes the arrays handed over.  Imports nothing of routerd.
 """
 from libc.stdlib cimport malloc, realloc, free
 from libc.string cimport memcmp
