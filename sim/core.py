@@ -45,6 +45,14 @@ what is booked beyond t is one unbroken stretch ending at ``free_at[k]``.  So bu
 up to t is ``busy[k] - max(free_at[k] - t, 0)``, read at every sample, at the warm-up
 mark and at the end.
 
+Two paths.  The loop below is the reference.  ``routerd.sim._hops`` (Cython, optional,
+built by setup.py) is the same loop compiled: same heap algorithm and layout, same IEEE
+operations in the same order, same calls into the policy at the same virtual times, so
+a run gives the same result to the bit (``tests/test_sim_hops.py``).  ``kernels``
+(``engine.kernels``: ``auto`` | ``compiled`` | ``reference``) chooses; :func:`hops_status`
+says which path runs and why.  On the compiled path a policy that provides
+``on_hops`` gets its hop observations in batches (see :mod:`routerd.sim.policy`).
+
 Accounting.  ``offered``, ``delivered``, ``dropped`` and ``ttl_expired`` and every delivery
 statistic count packets *injected* at or after the warm-up; the time series counts every
 packet, by the interval it left the network in.  The number of packets in the
@@ -70,10 +78,34 @@ from dataclasses import dataclass
 from heapq import heappop, heappush
 from typing import Any
 
+from routerd.core import kernels as _kernels
 from routerd.core.topology import Topology
 from routerd.io.scenario import LinkEvent  # defined with the scenario format; re-exported here
 
 from .policy import Policy
+
+try:  # optional: an install without a C compiler runs the reference loop
+    from . import _hops as _compiled_hops  # type: ignore[attr-defined]  # built by setup.py
+    _HOPS_WHY = "routerd.sim._hops is built"
+except ImportError as e:  # pragma: no cover - depends on the install
+    _compiled_hops = None
+    _HOPS_WHY = (f"routerd.sim._hops could not be imported ({e}); the package was installed "
+                 "without a working C compiler (reinstall with one for the compiled path)")
+
+
+def hops_status(mode: str = "auto") -> dict[str, str]:
+    """Which path the simulator's event loop takes for ``engine.kernels = mode``, and why:
+    ``{"path", "mode", "reason"}`` (the engine's rule, :func:`routerd.core.kernels.status_of`)."""
+    return _kernels.status_of(mode, _compiled_hops is not None, _HOPS_WHY)
+
+
+def hops_module(mode: str) -> Any:
+    """The compiled module for ``engine.kernels = mode``, or None for the reference;
+    ``compiled`` without it raises ``RuntimeError`` saying why."""
+    st = hops_status(mode)
+    if st["path"] == "unavailable":
+        raise RuntimeError(f"engine.kernels is compiled, but {_HOPS_WHY}")
+    return _compiled_hops if st["path"] == "compiled" else None
 
 # control event codes (packet ids are >= 0)
 _INJECT = -1
@@ -151,6 +183,18 @@ class CoreResult:
     stopped: bool = False            # ended early by a StopRequest (at end_s)
 
 
+def _hook_applies(policy: Policy, hook: str, replaces: str) -> bool:
+    """Whether the compiled loop may use ``policy``'s optional ``hook`` in place of
+    ``replaces``: only where the class that defines the hook also defines what it stands
+    for (a subclass that overrides ``next_hop`` or ``on_hop`` alone, or an instance
+    patched with its own, keeps its method)."""
+    if not callable(getattr(policy, hook, None)) or replaces in vars(policy):
+        return False
+    mro = type(policy).__mro__
+    owner = next((c for c in mro if hook in c.__dict__), None)
+    return owner is not None and owner is next((c for c in mro if replaces in c.__dict__), None)
+
+
 def run_core(
     topo: Topology,
     policy: Policy,
@@ -164,6 +208,7 @@ def run_core(
     progress: Callable[[float, int], None] | None = None,
     observer: Callable[[dict[str, Any]], None] | None = None,
     stop: StopRequest | None = None,
+    kernels: str = "auto",
 ) -> CoreResult:
     """Simulate until ``duration_s`` of virtual time; return raw counts, samples and series.
 
@@ -174,8 +219,11 @@ def run_core(
     every series sample with ``t_s``, all-packet totals (``delivered``, ``dropped``,
     ``ttl_expired``, ``in_network``) and live references to the measured ``deliveries``
     list and the ``series`` lists so far; it must not modify them.  ``stop``: see
-    "Stopping early" in the module docstring.
+    "Stopping early" in the module docstring (the compiled loop looks at it at every tick
+    and sample, so its cut comes at the first of those after the request).  ``kernels``:
+    which loop runs (:func:`hops_status`); both give the same result.
     """
+    compiled = hops_module(kernels)
     n = topo.n
     nl = topo.n_links
     src_l = topo.src.tolist()
@@ -271,6 +319,38 @@ def run_core(
     stopped = False
     if stop is not None:   # disarmed after the loop; an exception out of it leaves a harmless push
         stop._push = lambda: heappush(heap, (-math.inf, stop_code))
+
+    if compiled is not None:
+        on_hops = policy.on_hops if _hook_applies(policy, "on_hops", "on_hop") else None
+        try:
+            r = compiled.loop(
+                (src_l, dst_l, delay, inv_cap, buf), policy, table, pending, nxt,
+                {"n": n, "next_hop": next_hop, "on_hop": on_hop, "on_hops": on_hops,
+                 "hop_flow": hop_flow, "tick_interval_s": tick_iv,
+                 "splits": _hook_applies(policy, "split_arrays", "next_hop")},
+                end, warm, int(ttl), ivl, events_sorted, progress, observer, stop)
+        finally:
+            if stop is not None:
+                stop._push = None
+        end = r["end"]
+        return CoreResult(
+            offered=r["offered"], delivered=r["delivered"],
+            dropped=r["drop_buf"] + r["drop_down"] + r["drop_noroute"],
+            dropped_buffer=r["drop_buf"], dropped_link_down=r["drop_down"],
+            dropped_no_route=r["drop_noroute"], ttl_expired=r["ttl_expired"],
+            in_flight_end=r["in_net"], offered_all=r["offered_all"],
+            delivered_all=r["delivered_all"], dropped_all=r["dropped_all"],
+            ttl_expired_all=r["ttl_all"], deliveries=r["deliveries"], hops_sum=r["hops_sum"],
+            events=r["events"], wall_s=time.perf_counter() - wall0,
+            window_s=max(end - warm, 0.0), little_area=r["area"], left=r["left"],
+            sys_sum=r["sys_sum"], busy_s=r["busy"], carried=r["carried"],
+            series=CoreSeries(t_s=r["s_t"], delivered=r["s_deliv"],
+                              delivery_sum_s=r["s_dsum"], dropped=r["s_drop"],
+                              ttl_expired=r["s_ttl"], in_network=r["s_in_net"],
+                              link_util=r["s_busy"]),
+            series_interval_s=ivl, end_s=end, stopped=r["stopped"],
+            busy_window_s=[b - w for b, w in zip(r["busy"], r["busy_warm"])],
+        )
 
     while True:
         t, c = heappop(heap)

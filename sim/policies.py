@@ -26,6 +26,11 @@ stays on the shortest path.  Measured on the demo lab at 1800 packets/s: ``min``
 mean delivery and 10% drops, ``published`` 6.7 ms and none.
 Forwarding samples the published weights (``Engine.weights``) with the run's generator;
 entries with a single next hop go straight into the fast-path ``table``.
+On the simulator's compiled loop (``routerd.sim._hops``, ``engine.kernels``) the same work
+takes three shortcuts with the same results: hops arrive in batches (``on_hops``, rows
+built with numpy), split entries are sampled in C from ``split_arrays()`` with this
+module's draws and arithmetic, and the table refresh after each decide is compiled
+(``_hops.refresh``; the numpy ``_refresh`` is the reference).
 """
 from __future__ import annotations
 
@@ -40,6 +45,7 @@ from routerd.core.engine import Engine, EngineSettings, HopBatch
 from routerd.core.errors import InputError, Problem
 from routerd.core.topology import Topology
 
+from .core import hops_module
 from .policy import Policy
 
 
@@ -107,6 +113,14 @@ class Ecmp(Policy):
         return hops[_mix(flow, x) % len(hops)]
 
 
+def _any_last(a: np.ndarray) -> np.ndarray:
+    """``a.any(axis=-1)`` for a bool array, several times faster for short last axes
+    (numpy's reduction over a short inner axis is slow; a byte sum is not)."""
+    if a.shape[-1] >= 256:  # a byte sum could wrap
+        return a.any(axis=-1)
+    return np.einsum("...k->...", a.view(np.uint8)) > 0
+
+
 class QRouting(Policy):
     """The learning engine in the loop.  See the module docstring."""
 
@@ -122,11 +136,26 @@ class QRouting(Policy):
         self._prop: list[dict[int, float]] = [{} for _ in range(n)]
         for k, (a, b) in enumerate(zip(topology.src.tolist(), topology.dst.tolist())):
             self._prop[a][b] = 0.0 if self.instant else float(topology.delay_s[k])
+        # rows not yet due: carried over from earlier ticks (an array), then the rows
+        # reported since the last tick, per hop (on_hop: tuples) or batched (on_hops:
+        # arrays); a run uses one of the two
         self._rows: list[tuple[float, int, int, int, float, float]] = []
+        self._carry = np.empty((0, 6))
+        self._chunks: list[np.ndarray] = []
+        self._propn = np.zeros((n, n))                   # _prop as a matrix, for on_hops
+        if not self.instant:
+            self._propn[topology.src, topology.dst] = topology.delay_s
         self.table = [[-1] * n for _ in range(n)]
         self._split: list[dict[int, tuple[tuple[int, ...], tuple[float, ...]]]] = [
             {} for _ in range(n)]
         self._slots = topology.slots.astype(np.int64)
+        # the compiled refresh where engine.kernels allows it and the arrays suit it
+        self._hops = hops_module(es.kernels)
+        eng_arrays = (self.engine.greedy, self.engine.eps, self.engine.alt)
+        if not all(a.flags.c_contiguous for a in eng_arrays) or self.engine.greedy.dtype != np.int64:
+            self._hops = None
+        self._slots_ext = np.concatenate(
+            [self._slots, np.full((n, 1), -1, dtype=np.int64)], axis=1)
         self._slot_rows: list[list[int]] = self._slots.tolist()
         self._greedy_hop: list[list[int]] = [[-1] * n for _ in range(n)]
         self._eps_row: list[list[float]] = [[0.0] * n for _ in range(n)]
@@ -147,7 +176,7 @@ class QRouting(Policy):
         self._nbrs = [set(nb) for nb in topology.neighbours]
         self.backward_rows = 0
         self._refresh(range(n))
-        self._V = self._estimates()
+        self._set_estimates()
 
     # -- forwarding ----------------------------------------------------------------
     def _refresh(self, nodes: Any) -> None:
@@ -161,24 +190,51 @@ class QRouting(Policy):
         if xs.size == 0:
             return
         eng = self.engine
-        g = eng.greedy[xs]                                             # (m, n) slot
-        nh = np.where(g >= 0, np.take_along_axis(self._slots[xs], np.maximum(g, 0), axis=1), -1)
-        e = eng.eps[xs]
-        alt = eng.alt[xs]
-        explore = (g >= 0) & alt.any(axis=2) & (e > 0)                # zero share: greedy only
+        if self._hops is not None:  # the same loop, compiled (routerd.sim._hops.refresh)
+            moved_keys = np.empty(xs.size * eng.n, dtype=np.int64)
+            nm = self._hops.refresh(
+                eng.greedy, eng.eps, eng.alt.view(np.uint8), self._slots, self._gh,
+                self._eps_np, self._alt_np.view(np.uint8), xs, self.table, self._greedy_hop,
+                self._eps_row, self._split, moved_keys)
+            self._moved.append(moved_keys[:nm])
+            return
+        # every node (the usual case on a busy network): views instead of gathered copies
+        sel: Any = slice(None) if xs.size == eng.n else xs
+        g = eng.greedy[sel]                                            # (m, n) slot
+        # slot -1 (no next hop) reads the appended -1 column
+        nh = self._slots_ext[xs[:, None], g]
+        e = eng.eps[sel]
+        alt = eng.alt[sel]
+        explore = (g >= 0) & _any_last(alt) & (e > 0)                 # zero share: greedy only
         vals = np.where(explore, -2, nh)
-        moved = np.nonzero(self._gh[xs] != nh)                        # greedy hops that moved
+        gh_old = self._gh[sel]
+        moved_now = gh_old != nh
+        moved = np.nonzero(moved_now)                                  # greedy hops that moved
         self._moved.append(xs[moved[0]] * self.engine.n + moved[1])
         # only entries whose inputs (greedy hop, share, candidates) changed are rewritten;
         # the others, and their cached splits, are what a rebuild would give again
-        ii, dd = np.nonzero((self._gh[xs] != nh) | (self._eps_np[xs] != e)
-                            | (self._alt_np[xs] != alt).any(axis=2))
-        self._gh[xs] = nh
-        self._eps_np[xs] = e
-        self._alt_np[xs] = alt
+        changed = moved_now | (self._eps_np[sel] != e) | _any_last(self._alt_np[sel] != alt)
+        self._gh[sel] = nh
+        self._eps_np[sel] = e
+        self._alt_np[sel] = alt
         table = self.table
         assert table is not None
         gh, er, sp = self._greedy_hop, self._eps_row, self._split
+        per_row = changed.sum(axis=1)
+        # a row with many changes is rewritten whole (in place: the simulator holds the
+        # row lists), which is cheaper than entry by entry and gives the same lists
+        whole = per_row > max(8, self.engine.n // 16)
+        for i in np.flatnonzero(whole).tolist():
+            x = int(xs[i])
+            table[x][:] = vals[i].tolist()
+            gh[x][:] = nh[i].tolist()
+            er[x][:] = e[i].tolist()
+            spx = sp[x]
+            if spx:
+                for d in np.flatnonzero(changed[i]).tolist():
+                    spx.pop(d, None)
+        changed[whole] = False
+        ii, dd = np.nonzero(changed)
         for x, d, v, h, ev in zip(xs[ii].tolist(), dd.tolist(), vals[ii, dd].tolist(),
                                   nh[ii, dd].tolist(), e[ii, dd].tolist()):
             table[x][d] = v
@@ -213,6 +269,21 @@ class QRouting(Policy):
             self._split[x][d] = sp
         return sp
 
+    def split_arrays(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """What the compiled loop (``routerd.sim._hops``) samples a split entry from, with
+        :meth:`next_hop`'s arithmetic: greedy hops and shares as refreshed, the engine's
+        candidate slots (bytes), the slot table.  None of them is copied."""
+        return self._gh, self._eps_np, self.engine.alt.view(np.uint8), self._slots
+
+    def draws(self) -> tuple[list[float], int]:
+        """The forwarding draws: the current block and the index of the next unused one."""
+        return self._u, self._ui
+
+    def set_draws(self, block: Any, index: int) -> None:
+        """Hand the draws back after the compiled loop used them (same rng, same order)."""
+        self._u = block.tolist() if isinstance(block, np.ndarray) else list(block)
+        self._ui = index
+
     def next_hop(self, x: int, d: int, flow: int, now: float) -> int:
         if self.table[x][d] != -2:  # type: ignore[index]
             return self.table[x][d]  # type: ignore[index]
@@ -230,6 +301,8 @@ class QRouting(Policy):
 
     # -- learning ------------------------------------------------------------------
     def on_hop(self, x: int, y: int, d: int, latency_s: float, now: float, flow: int = -1) -> None:
+        if self._V_lag:
+            self._sync_V()
         if x >= 0:
             self._rows.append((now + self._prop[x][y], x, y, d, latency_s, self._V[y][d]))
             if flow >= 0:  # dual: the backward row, at y about x towards the packet's source
@@ -238,20 +311,53 @@ class QRouting(Policy):
                     self._rows.append((now, y, x, s, latency_s, self._V[x][s]))
                     self.backward_rows += 1
 
+    def on_hops(self, x: np.ndarray, y: np.ndarray, d: np.ndarray, latency_s: np.ndarray,
+                now: np.ndarray, flow: np.ndarray) -> None:
+        """:meth:`on_hop` for a batch of hops in order (the compiled loop's): the same rows."""
+        if self.hop_flow:  # dual's backward rows interleave: row by row
+            for row in zip(x.tolist(), y.tolist(), d.tolist(), latency_s.tolist(),
+                           now.tolist(), flow.tolist()):
+                self.on_hop(*row)
+            return
+        if not (x >= 0).all():
+            keep = x >= 0
+            x, y, d, latency_s, now = x[keep], y[keep], d[keep], latency_s[keep], now[keep]
+        a = np.empty((x.size, 6))
+        np.add(now, self._propn[x, y], out=a[:, 0])
+        a[:, 1] = x
+        a[:, 2] = y
+        a[:, 3] = d
+        a[:, 4] = latency_s
+        a[:, 5] = self._Vn[y, d]
+        self._chunks.append(a)
+
+    def _pending(self) -> np.ndarray:
+        """Every row not yet applied, as an (m, 6) array in the order they were reported."""
+        parts = [self._carry] if self._carry.shape[0] else []
+        if self._rows:
+            # one flat pass over the tuples: much cheaper than np.array(list of tuples)
+            parts.append(np.fromiter(chain.from_iterable(self._rows), dtype=np.float64,
+                                     count=6 * len(self._rows)).reshape(-1, 6))
+            self._rows = []
+        parts += self._chunks
+        self._chunks = []
+        if len(parts) == 1:
+            return parts[0]
+        return np.concatenate(parts) if parts else self._carry
+
     def tick(self, now: float) -> None:
-        rows = self._rows
-        if rows:
+        rows = self._pending()
+        self._carry = rows[:0]
+        if rows.shape[0]:
             if self.instant:
                 due = rows
-                self._rows = []
             else:
-                due = [r for r in rows if r[0] <= now]
-                self._rows = [r for r in rows if r[0] > now]
-            if due:
-                due.sort(key=lambda r: r[0])  # stable: ties keep arrival order
-                # one flat pass over the tuples: much cheaper than np.array(list of tuples)
-                a = np.fromiter(chain.from_iterable(due), dtype=np.float64,
-                                count=6 * len(due)).reshape(-1, 6)
+                late = rows[:, 0] > now
+                due = rows[~late]
+                self._carry = rows[late]
+            if due.shape[0]:
+                # stable: ties keep arrival order
+                a = due[np.argsort(due[:, 0], kind="stable")]
                 res = self.engine.observe(
                     HopBatch.of(a[:, 1].astype(np.int64), a[:, 2].astype(np.int64),
                                 a[:, 3].astype(np.int64), a[:, 4], a[:, 5]), now)
@@ -273,24 +379,44 @@ class QRouting(Policy):
             self._refresh(sorted(dec.changed_nodes))
         if (written is None or self.estimate_mode != "published"
                 or self.engine.settings.variant != "plain"):
-            self._V = self._estimates()
+            self._set_estimates()
             return
         keys = np.unique(np.concatenate([written, *self._moved]))
         if keys.size == 0:
             return
         n = self.engine.n
         xk, dk = np.divmod(keys, n)
-        V = self._V
-        for x, d, v in zip(xk.tolist(), dk.tolist(),
-                           self.engine.published_estimates(xk, dk).tolist()):
-            V[x][d] = v
+        vals = self.engine.published_estimates(xk, dk)
+        self._Vn[xk, dk] = vals
+        # the list twin (on_hop's) catches up on its first use: on_hops never needs it;
+        # a lag as large as the table is dropped (the twin is then rebuilt whole)
+        self._V_lag.append((xk, dk, vals))
+        self._V_lag_rows += keys.size
+        if self._V_lag_rows > n * n:
+            self._V_lag = [(np.empty(0, np.int64),) * 2 + (np.empty(0),)]
+            self._V = None
 
-    def _estimates(self) -> list[list[float]]:
-        """Each node's remaining estimate per destination, as it would report it."""
+    def _sync_V(self) -> None:
+        """Bring ``_V`` (lists, per-hop reads) up to ``_Vn`` (the array)."""
+        V = self._V
+        if V is None:
+            self._V = self._Vn.tolist()
+        else:
+            for xk, dk, vals in self._V_lag:
+                for x, d, v in zip(xk.tolist(), dk.tolist(), vals.tolist()):
+                    V[x][d] = v
+        self._V_lag = []
+        self._V_lag_rows = 0
+
+    def _set_estimates(self) -> None:
+        """Each node's remaining estimate per destination, as it would report it: ``_Vn``
+        (an array, read by on_hops) and ``_V`` (the same as lists, read by on_hop)."""
         eng = self.engine
-        if self.estimate_mode == "min":
-            return eng.values().tolist()
-        return eng.published_estimates().tolist()
+        vn = eng.values() if self.estimate_mode == "min" else eng.published_estimates()
+        self._Vn = np.array(vn, dtype=np.float64)
+        self._V: list[list[float]] | None = self._Vn.tolist()
+        self._V_lag: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
+        self._V_lag_rows = 0
 
     def on_link(self, x: int, y: int, up: bool, now: float) -> None:
         self.engine.set_link(x, y, up, now)

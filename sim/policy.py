@@ -23,6 +23,17 @@ before calling ``next_hop``: ``table[x][d] >= 0`` is the next hop, ``-1`` means 
 that changes its routes mutates the rows in place; the simulator keeps a reference.  A
 policy that leaves ``table`` as None is asked on every hop.  ``on_hop`` is only called
 when a subclass overrides it.
+
+Optional hooks the compiled loop (``routerd.sim._hops``, ``engine.kernels``) uses when a
+policy has them; the reference loop never does, and the results must be the same:
+
+``on_hops(x, y, d, latency_s, now, flow)``  numpy arrays: every hop since the last call, in
+    order, instead of one ``on_hop`` each; called before every ``tick`` and ``on_link`` and
+    at the end.  ``next_hop`` may be called while hops are still buffered, so provide it
+    only when ``next_hop`` does not depend on what ``on_hop`` learned.
+``split_arrays()``, ``draws()``, ``set_draws(block, index)``  the loop samples ``table``
+    entries -2 itself (see ``routerd.sim.policies.QRouting``); refreshed after every
+    ``tick`` and ``on_link``.
 """
 from __future__ import annotations
 

@@ -180,7 +180,7 @@ def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
         raw = run_core(topo, policy, traffic.packets(), duration_s=sp.duration_s, warmup_s=warm,
                        ttl=cfg["sim.ttl"], series_interval_s=cfg["sim.series_interval_s"],
                        link_events=link_events, progress=printer or progress,
-                       observer=observer, stop=stop)
+                       observer=observer, stop=stop, kernels=cfg["engine.kernels"])
         if printer is not None:
             printer(raw.end_s, raw.events, final=True, stopped=raw.stopped)
         result = reduce(raw, sp, topo, policy.name, warm, policy.stats())

@@ -93,7 +93,8 @@ def _build_wheel(base: Any, extra_env: dict[str, str] | None = None
         a = os.path.join(ROOT, rel)
         if os.path.isdir(a):
             shutil.copytree(a, src / rel, ignore=shutil.ignore_patterns(
-                "__pycache__", "*.pyc", "*.egg-info", "*.so", "_kernels.c", "_kernels.html"))
+                "__pycache__", "*.pyc", "*.egg-info", "*.so", "_kernels.c", "_kernels.html",
+                "_hops.c", "_hops.html"))
         else:
             shutil.copy2(a, src / rel)
     dist = base / "dist"
@@ -139,6 +140,9 @@ _STATUS = ("import json; from routerd.core import kernels; print(json.dumps(kern
            "print(kernels.__file__)")
 
 
+_HOPS_STATUS = "import json; from routerd.sim import core; print(json.dumps(core.hops_status()))"
+
+
 @pytest.mark.slow
 def test_compiled_kernels_are_built_and_active(installed: Installed) -> None:
     """With a C compiler (this machine has one), the wheel carries routerd.core._kernels, is
@@ -147,11 +151,16 @@ def test_compiled_kernels_are_built_and_active(installed: Installed) -> None:
         pytest.skip("no C compiler here: the wheel is built without the kernels")
     names = zipfile.ZipFile(installed.wheel).namelist()
     assert [n for n in names if re.fullmatch(r"routerd/core/_kernels\..*\.so", n)], names
+    # the simulator's loop: its source is in sim/, installed as routerd.sim
+    assert [n for n in names if re.fullmatch(r"routerd/sim/_hops\..*\.so", n)], names
     assert not installed.wheel.endswith("-none-any.whl"), installed.wheel
     r = installed.run(installed.exe("python"), "-c", _STATUS)
     _check(r, "kernels.status()")
     status = json.loads(r.stdout.splitlines()[0])
     assert status["path"] == "compiled", status
+    r2 = installed.run(installed.exe("python"), "-c", _HOPS_STATUS)
+    _check(r2, "hops_status()")
+    assert json.loads(r2.stdout)["path"] == "compiled", r2.stdout
     assert os.path.realpath(r.stdout.splitlines()[1]).startswith(
         os.path.realpath(installed.venv) + os.sep)
 
@@ -165,6 +174,7 @@ def test_without_a_compiler_the_install_runs_on_the_reference_path(
     wheel, built = _build_wheel(base, {"CC": "/bin/false", "LDSHARED": "/bin/false"})
     said = built.stdout + built.stderr
     assert "the compiled kernels (routerd.core._kernels) could not be built" in said
+    assert "the compiled kernels (routerd.sim._hops) could not be built" in said
     assert not [n for n in zipfile.ZipFile(wheel).namelist() if n.endswith(".so")]
     venv = _fresh_venv(base, wheel)
     work = base / "elsewhere"
@@ -173,6 +183,10 @@ def test_without_a_compiler_the_install_runs_on_the_reference_path(
     r = inst.run(inst.exe("python"), "-c", _STATUS)
     _check(r, "kernels.status()")
     status = json.loads(r.stdout.splitlines()[0])
+    assert status["path"] == "reference" and "without a working C compiler" in status["reason"]
+    r = inst.run(inst.exe("python"), "-c", _HOPS_STATUS)
+    _check(r, "hops_status()")
+    status = json.loads(r.stdout)
     assert status["path"] == "reference" and "without a working C compiler" in status["reason"]
     out = os.path.join(inst.work, "sim-out")
     r = inst.run(inst.exe("routerd"), "simulate", "--policy", "qrouting", "--seed", "1",
@@ -383,7 +397,8 @@ def test_source_distribution_carries_the_kernel_source(tmp_path: Any) -> None:
     (MANIFEST.in), the generated C is not (it is rebuilt from the .pyx)."""
     src = tmp_path / "src"
     shutil.copytree(ROOT, src, ignore=shutil.ignore_patterns(
-        ".git", ".venv", "__pycache__", "*.pyc", "*.egg-info", "*.so", "_kernels.c", "build",
+        ".git", ".venv", "__pycache__", "*.pyc", "*.egg-info", "*.so", "_kernels.c", "_hops.c",
+        "build",
         "dist", ".hypothesis", ".pytest_cache", "out"))
     r = subprocess.run([sys.executable, "setup.py", "-q", "sdist", "-d", str(tmp_path / "sd")],
                        cwd=str(src), env=_clean_env(None), capture_output=True, text=True,
@@ -395,3 +410,4 @@ def test_source_distribution_carries_the_kernel_source(tmp_path: Any) -> None:
         names = [n.split("/", 1)[1] for n in tf.getnames() if "/" in n]
     assert "routerd/core/_kernels.pyx" in names and "setup.py" in names, names
     assert "routerd/core/_kernels.c" not in names
+    assert "sim/_hops.pyx" in names and "sim/_hops.c" not in names, names

@@ -266,14 +266,18 @@ def test_long_run_utilisation_is_rho() -> None:
 
 
 # ---- stopping early (routerd simulate's Ctrl-C) ----------------------------------------------
-def test_a_stopped_run_counts_exactly_what_happened_before_the_cut() -> None:
+@pytest.mark.parametrize("loop", ["reference", "compiled"])
+def test_a_stopped_run_counts_exactly_what_happened_before_the_cut(loop: str) -> None:
     """A StopRequest made at the sample at t = 3 s ends the run there, between two events:
     its counts equal those of a run of 3 s (the series, deliveries, drops, events), and it
-    says where it stopped."""
-    from routerd.sim.core import StopRequest
+    says where it stopped.  Both loops (the compiled one looks at the request at every tick
+    and sample)."""
+    from routerd.sim.core import StopRequest, hops_status
 
+    if loop == "compiled" and hops_status("auto")["path"] != "compiled":
+        pytest.skip(hops_status("auto")["reason"])
     spec = {"policy": "shortest", "rate_pps": 1800.0, "duration_s": 20.0, "seed": 5,
-            "warmup_s": 0.5, "series": True}
+            "warmup_s": 0.5, "series": True, "overrides": [f"engine.kernels={loop}"]}
     stop = StopRequest()
     cut_at = []
 

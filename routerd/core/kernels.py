@@ -61,12 +61,21 @@ def select(mode: str) -> Any:
 
 def status(mode: str = "auto") -> dict[str, str]:
     """Which path ``mode`` runs on in this install, and why: ``{"path", "mode", "reason"}``."""
+    return status_of(mode, _compiled is not None, _WHY)
+
+
+def status_of(mode: str, built: bool, why: str) -> dict[str, str]:
+    """The ``engine.kernels`` rule for any compiled module (the engine's, the simulator's
+    loop): ``reference`` runs the reference; ``auto`` the compiled module when ``built``;
+    ``compiled`` without it is ``unavailable`` (its user raises, saying ``why``)."""
+    if mode not in MODES:
+        raise ValueError(f"engine.kernels: {mode!r} is not one of {', '.join(MODES)}")
     if mode == "reference":
         return {"path": "reference", "mode": mode, "reason": "engine.kernels is reference"}
-    if _compiled is None:
+    if not built:
         return {"path": "reference" if mode == "auto" else "unavailable", "mode": mode,
-                "reason": _WHY}
-    return {"path": "compiled", "mode": mode, "reason": _WHY}
+                "reason": why}
+    return {"path": "compiled", "mode": mode, "reason": why}
 
 
 def describe(mode: str = "auto") -> str:
