@@ -419,3 +419,23 @@ def test_serve_reads_the_records_when_the_pointer_is_gone(tmp_path: Any) -> None
     ch = choose_inputs(ns(state_dir=d))
     same_topology(ch.topo, ring)
     assert ch.cfg["engine.ceiling_s"] == 7.0 and ch.cfg["service.state_dir"] == d
+
+
+def test_a_file_where_the_state_dir_should_be_is_refused_before_anything(tmp_path: Any) -> None:
+    # a newcomer's slip: --state-dir naming a file, or a folder under a file (was a
+    # NotADirectoryError traceback from the journal listing)
+    import subprocess
+    import sys
+
+    f = tmp_path / "afile"
+    f.write_text("x")
+    assert statedir.unusable(str(f)) == "is a file, not a folder"
+    assert statedir.unusable(str(f / "x")) == f"cannot be made: {f} is a file, not a folder"
+    assert statedir.unusable(str(tmp_path / "new" / "deeper")) is None
+    assert statedir.unusable(str(tmp_path)) is None
+    for bad in (f, f / "x"):
+        r = subprocess.run([sys.executable, "-m", "routerd", "serve", "--state-dir", str(bad)],
+                           capture_output=True, text=True, timeout=60)
+        assert r.returncode == 2 and "Traceback" not in r.stderr, r.stderr
+        assert f"service.state_dir (--state-dir): '{bad}'" in r.stderr
+    assert f.read_text() == "x" and not (tmp_path / "new").exists()

@@ -148,6 +148,27 @@ def busy(directory: str) -> StateDirBusy | None:
         os.close(fd)
 
 
+def unusable(directory: str) -> str | None:
+    """Why ``directory`` cannot be a state dir for a writer (None: it can): a file in its
+    place or on its way, or a folder this process may not write.  Looks only; creates
+    nothing (so a command refuses before anything is written)."""
+    path = os.path.abspath(directory)
+    if os.path.exists(path):
+        if not os.path.isdir(path):
+            return "is a file, not a folder"
+        if not os.access(path, os.W_OK | os.X_OK):
+            return "is a folder this user may not write"
+        return None
+    up = os.path.dirname(path)
+    while not os.path.exists(up):
+        up = os.path.dirname(up)
+    if not os.path.isdir(up):
+        return f"cannot be made: {up} is a file, not a folder"
+    if not os.access(up, os.W_OK | os.X_OK):
+        return f"cannot be made: this user may not write {up}"
+    return None
+
+
 def _is_state_dir(p: str) -> bool:
     # a service's dir has journal/; a sharded front's root has its lock file beside the
     # shards' dirs.  A stray file named "lock" alone does not make a state dir: it is

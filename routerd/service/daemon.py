@@ -110,7 +110,7 @@ from routerd.io import clock as _clock
 from routerd.io.cautions import CAUTIONS
 from .dedup import Dedup
 from routerd.core.engine import Engine, EngineSettings
-from routerd.core.errors import InputError
+from routerd.core.errors import InputError, Problem
 from routerd.io.journal import engine_state as _engine_state
 
 # the ingest pipeline's reason sets and helpers, where callers have always found them
@@ -172,6 +172,9 @@ def choose_inputs(args: argparse.Namespace, docs_dir: str | None = None,
     ``refs``: which of them (default: its ``current.yaml``); ``journals``: the state dirs
     whose journals say which network the directory was written for (default: ``docs_dir``)."""
     root = load_config(args)["service.state_dir"]
+    why = _statedir.unusable(root)
+    if why is not None:    # before anything reads or writes there
+        raise InputError(Problem("service.state_dir (--state-dir)", root, why))
     where = docs_dir or root
     dirs = list(journals) if journals is not None else [where]
 
