@@ -102,6 +102,8 @@ SCHEMA: dict[str, Field] = {
     "sim.feedback": F(str, "delayed", "estimate returns after the link's propagation delay, or instantly", choices=("delayed", "instant")),
     "sim.series_interval_s": F(float, 1.0, "virtual time per row of the simulator's time series (CSV, plots)", lo=0, lo_open=True),
     "sim.flows_per_pair": F(int, 8, "flow ids per (source, destination) pair; ecmp hashes the flow id", lo=1),
+    "sim.reroute.detect_s": F(float, 0.3, "reroute baseline: seconds from a link event until the routes are recomputed (failure detection, e.g. 3 probes missed at 100 ms)", lo=0),
+    "sim.reroute.tick_s": F(float, 0.01, "reroute baseline: how often due link events are checked (the recomputation lands at the first check at or after the detection time)", lo=0, lo_open=True),
     "sim.estimate": F(str, "published", "qrouting: the estimate a node reports: the Q of the next hop it publishes, or the minimum over its live next hops (engine.estimate)", choices=("published", "min")),
     # -- simulator, closed loop (--policy service): sim/closedloop.py ----------------------
     "sim.service.speed": F(float, 1.0, "closed loop: virtual seconds per wall-clock second (1 = real time)", lo=0.01, hi=1000),
