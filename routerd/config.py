@@ -62,6 +62,13 @@ SCHEMA: dict[str, Field] = {
     "engine.explore.td_smoothing": F(float, 0.1, "weight of a new |TD error| in its moving average", lo=0, hi=1, lo_open=True, tunable=True),
     "engine.explore.visits_half": F(float, 50.0, "visits at which the share is halfway down to min_rate", lo=0, lo_open=True, tunable=True),
     # -- engine: published refinements (routerd/variants.py) ---------------------------
+    "engine.mode": F(str, "greedy", "learning mode: greedy (one next hop per destination, Q-routing with hysteresis and exploration) or split (shares over strictly downhill next hops moved by measured marginal delay; routerd/splitting.py)", choices=("greedy", "split")),
+    "engine.split.step": F(float, 1.0, "split: fraction of the curvature-scaled (Newton) share step taken per rate window (scaled by the time since the last decision)", lo=0, hi=1, lo_open=True, tunable=True),
+    "engine.split.max_step": F(float, 0.1, "split: most share one next hop gives up per decision", lo=0, hi=1, lo_open=True, tunable=True),
+    "engine.split.publish_threshold": F(float, 0.02, "split: a key's table is republished only when one of its shares moved by more than this", lo=0, hi=1, hi_open=True, tunable=True),
+    "engine.split.rate_window_s": F(float, 1.0, "split: time constant of the per-link rate and latency estimates and the per-key traffic rate", lo=0, lo_open=True, tunable=True),
+    "engine.split.refresh": F(float, 0.5, "split: step of the per-decision refresh of every entry of a used link from its link latency plus the neighbour's published estimate", lo=0, hi=1, lo_open=True, tunable=True),
+    "engine.split.prior_samples": F(float, 2.0, "split: weight (in samples) of a link's idle latency in its latency estimate", lo=0, lo_open=True, tunable=True),
     "engine.variant": F(str, "plain", "learning rule: plain Q-routing, full_echo (all neighbours' estimates), predictive (recovery-rate prediction), dual (backward rows carried by packets), confidence (confidence-weighted steps)", choices=("plain", "full_echo", "predictive", "dual", "confidence")),
     "engine.full_echo.damping": F(float, 0.5, "full_echo: step multiplier of the echo updates of the hops not taken (1 = the published rule)", lo=0, hi=1, lo_open=True, tunable=True),
     "engine.full_echo.latency_smoothing": F(float, 0.2, "full_echo: weight of a new hop latency in a link's expected latency", lo=0, hi=1, lo_open=True, tunable=True),

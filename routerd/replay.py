@@ -56,6 +56,7 @@ import numpy as np
 from . import config as _config
 from . import journal as J
 from . import topology as _topology
+from . import splitting as _splitting
 from . import variants as _variants
 from . import wire
 from .engine import Decision, Engine, EngineSettings
@@ -73,6 +74,7 @@ ENGINE_KEYS: dict[str, str] = {
     "engine.explore.td_ref": "td_ref", "engine.explore.td_smoothing": "td_smoothing",
     "engine.explore.visits_half": "visits_half",
     **{key: f for f, (key, _) in _variants.FIELDS.items()},
+    **{key: f for f, (key, _) in _splitting.FIELDS.items()},
 }
 _KEY_OF = {f: k for k, f in ENGINE_KEYS.items()}
 RECORDED = "recorded"

@@ -229,6 +229,9 @@ class QRouting(Policy):
         if xs.size == 0:
             return
         eng = self.engine
+        if eng.settings.mode == "split":
+            self._refresh_split(xs)
+            return
         g = eng.greedy[xs]                                             # (m, n) slot
         nh = np.where(g >= 0, np.take_along_axis(self._slots[xs], np.maximum(g, 0), axis=1), -1)
         e = eng.eps[xs]
@@ -254,6 +257,23 @@ class QRouting(Policy):
             er[x][d] = ev
             sp[x].pop(d, None)
 
+    def _refresh_split(self, xs: np.ndarray) -> None:
+        """Split mode: every entry of ``xs`` from the published shares (greedy = largest)."""
+        eng = self.engine
+        table = self.table
+        assert table is not None
+        g = eng.greedy[xs]
+        nh = np.where(g >= 0, np.take_along_axis(self._slots[xs], np.maximum(g, 0), axis=1), -1)
+        multi = (eng.alt[xs].any(axis=2)) & (g >= 0)
+        vals = np.where(multi, -2, nh)
+        moved = np.nonzero(self._gh[xs] != nh)
+        self._moved.append(xs[moved[0]] * eng.n + moved[1])
+        self._gh[xs] = nh
+        for i, x in enumerate(xs.tolist()):
+            table[x][:] = vals[i].tolist()
+            self._greedy_hop[x][:] = nh[i].tolist()
+            self._split[x].clear()
+
     def split(self, x: int, d: int) -> tuple[tuple[int, ...], tuple[float, ...]]:
         """(next hops, cumulative weights) of x for d, cached until x's table changes.
 
@@ -262,6 +282,16 @@ class QRouting(Policy):
         built from the rows cached at the last refresh instead of a numpy call per entry.
         """
         sp = self._split[x].get(d)
+        if sp is None and self.engine.settings.mode == "split":
+            ws = self.engine.weights(x, d)
+            acc = 0.0
+            cum = []
+            for _, wv in ws:
+                acc += wv
+                cum.append(acc)
+            cum[-1] = 1.0
+            sp = (tuple(h for h, _ in ws), tuple(cum))
+            self._split[x][d] = sp
         if sp is None:
             sl = self._slot_rows[x]
             alts = [sl[j] for j, on in enumerate(self.engine.alt[x, d].tolist()) if on]
@@ -340,7 +370,8 @@ class QRouting(Policy):
         if dec.changed_nodes:
             self._refresh(sorted(dec.changed_nodes))
         if (written is None or self.estimate_mode != "published"
-                or self.engine.settings.variant != "plain"):
+                or self.engine.settings.variant != "plain"
+                or self.engine.settings.mode == "split"):
             self._V = self._estimates()
             return
         keys = np.unique(np.concatenate([written, *self._moved]))
@@ -374,6 +405,9 @@ class QRouting(Policy):
             "engine_decisions": float(s.decisions),
             "engine_exploration_share": float(s.exploration_share),
             "engine_td_error_mean_s": float(s.td_error_mean_s),
+            "engine_split_publications": float(s.split_publications),
+            "engine_split_whole_publications": float(s.split_whole_publications),
+            "engine_split_fallbacks": float(s.split_fallbacks),
         }
 
 
