@@ -117,7 +117,7 @@ def test_engine_keys_are_the_inverse_of_from_config() -> None:
     base_cfg = config.load(None)
     assert set(R.ENGINE_KEYS) == {k for k in config.SCHEMA if k.startswith("engine.")}
     alt = {"engine.step.mode": "constant", "engine.initial.mode": "constant",
-           "engine.explore.basis": "visits", "engine.variant": "predictive"}
+           "engine.explore.basis": "visits", "engine.variant": "predictive", "engine.mode": "split"}
     for key, fld in R.ENGINE_KEYS.items():
         f = config.SCHEMA[key]
         if key in alt:
