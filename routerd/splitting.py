@@ -168,8 +168,7 @@ def service_time(L: np.ndarray, F: np.ndarray, prop: np.ndarray) -> np.ndarray:
 
 
 def share_step(w: np.ndarray, delta: np.ndarray, H: np.ndarray, cand: np.ndarray,
-               t: np.ndarray, step: float, max_step: float,
-               leave: np.ndarray | None = None) -> np.ndarray:
+               t: np.ndarray, step: float, max_step: float) -> np.ndarray:
     """One projection step of the shares ``w`` (..., K) towards the least marginal cost.
 
     ``delta``: marginal delivery cost per slot, ``H``: downstream curvature per slot,
@@ -186,8 +185,6 @@ def share_step(w: np.ndarray, delta: np.ndarray, H: np.ndarray, cand: np.ndarray
         raw = step * (delta - dstar) / (t[..., None] * (H + hstar))
     raw = np.where(np.isnan(raw), np.inf, raw)   # 0/0: no traffic and no curvature
     raw = np.maximum(raw, 0.0)
-    if leave is not None:   # slots being left: at least max_step per step
-        raw = np.where(leave, np.maximum(raw, max_step), raw)
     give = np.where(cand, np.minimum(np.minimum(w, max_step), raw), w)
     slot = np.arange(w.shape[-1])
     give = np.where(slot == js, 0.0, give)
