@@ -58,6 +58,28 @@ x's published greedy next hop (0 at the destination, the ceiling without a route
 node reports for the route it actually uses: hysteresis and loop prevention can keep x off
 its argmin, and the min would then report optimistic entries x never forwards on.
 
+Modes (``engine.mode``).  Everything above is ``greedy`` (the default, the classic
+Q-routing baseline: one next hop per (node, destination), exploration the only load
+splitting).  Its known weaknesses against the flow-deviation optimum (issue 14): entries of
+next hops not in use keep optimistic propagation-only values, so the argmin is often a
+stale entry that loop repair then undoes; a greedy switch moves a key's whole traffic at
+once, so routes herd and oscillate.  ``split`` (:mod:`routerd.splitting`, whose docstring
+is its theory of operation) keeps the same Q-values and TD update and adds: per-link rate
+and latency estimates from every accepted row (exponentially weighted over ``now``); a
+refresh, at each decision, of every entry of a used link for every destination from that
+link's latency plus the neighbour's published estimate; and per (node, destination) *shares*
+moved by a curvature-scaled gradient projection step toward the next hop of least marginal
+delivery cost (Q plus the measured M/M/1 externality downstream; Gallager, IEEE Trans.
+Comm. 25, 1977; Bertsekas & Gallager, Data Networks §5.7).  New shares only go to next hops
+of strictly lower link-marginal distance, the share graph is checked for cycles (new edges
+on a cycle are cut), and a key is republished only when a share moved by more than
+``split_threshold``; the published graph is checked after every decision.  In split mode
+``decide`` recomputes every destination on every call, ``greedy`` holds each key's largest
+share, ``eps`` the rest and ``alt`` the other next hops in use; :meth:`Engine.weights`
+returns the shares, :meth:`Engine.published_estimate` their weighted Q.  Observations feed
+the split state after the core update (the same rows in the same order, so batched ==
+sequential still holds); its arrays ride in ``export_state()["split"]``.
+
 Link state.  A link marked down leaves every decision at once (its slot is not live), and
 its estimates are set to the ceiling, so no count-to-infinity can build on them.  Marked
 up, it is re-admitted with a fresh estimate: the link's delay plus the neighbour's current
