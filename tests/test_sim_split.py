@@ -129,3 +129,39 @@ def test_split_link_cut_loses_only_what_was_queued_and_recovers() -> None:
     res = M.for_topology(cut, M.offered_demand(cut, 0.6 * saturation()), 1000.0)
     assert res.feasible
     assert during <= 1.10 * res.delay_s + 0.002, (during, res.delay_s)
+
+
+class _Reseeded:
+    """In-process split qrouting with its own draw stream (the traffic, seeded by the run,
+    stays the same): the same construction as tests/test_closedloop.py's."""
+
+    def __new__(cls, k: int) -> Any:
+        from sim.policies import QRouting
+
+        class R(QRouting):
+            def attach(self, topology: Any, rng: np.random.Generator, settings: Any) -> None:
+                super().attach(topology, np.random.default_rng([20261203, k]), settings)
+
+        return R()
+
+
+def test_closed_loop_split_matches_in_process() -> None:
+    """The live service in split mode (``--policy service``, engine.mode=split) against
+    five in-process runs that differ only in their draws: inside the two-sided 99%
+    prediction interval mean ± t(4, 0.995) · s · sqrt(1 + 1/5) (Student's t prediction
+    interval for one new observation, Hahn & Meeker, Statistical Intervals, 1991, ch. 4;
+    t(4, 0.995) = 4.604 from standard t tables), with a floor of 3% of the mean for the
+    decisions reaching packets one or two intervals later (sim/closedloop.py).  At real
+    time (speed 1): split measures link rates on the service's own clock, so at another
+    speed its rates would be off by that factor against the simulated latencies."""
+    spec = {"topology": bridges(), "policy": "qrouting", "rate_pps": 0.9 * saturation(),
+            "duration_s": 12.0, "warmup_s": 4.0, "seed": 1, "series": False, "size_dist": "exp",
+            "overrides": ["engine.mode=split", "sim.service.speed=1"]}
+    means = [run(spec, policy=_Reseeded(k))["summary"]["mean_delivery_s"] for k in range(5)]
+    m, s = float(np.mean(means)), float(np.std(means, ddof=1))
+    half = max(4.604 * s * math.sqrt(1 + 1 / 5), 0.03 * m)
+    live = run({**spec, "policy": "service"})["summary"]
+    assert live["policy"] == "service" and live["policy_service_rows_rejected"] == 0
+    assert abs(live["mean_delivery_s"] - m) <= half, (live["mean_delivery_s"], m, half, means)
+    static = run({**spec, "policy": "shortest"})["summary"]
+    assert static["mean_delivery_s"] - m > 3 * half       # the band is not vacuous
