@@ -64,7 +64,7 @@ SCHEMA: dict[str, Field] = {
     # -- engine: published refinements (routerd/variants.py) ---------------------------
     "engine.mode": F(str, "greedy", "learning mode: greedy (one next hop per destination, Q-routing with hysteresis and exploration) or split (shares over strictly downhill next hops moved by measured marginal delay; routerd/splitting.py)", choices=("greedy", "split")),
     "engine.split.step": F(float, 1.0, "split: fraction of the curvature-scaled (Newton) share step taken per rate window (scaled by the time since the last decision)", lo=0, hi=1, lo_open=True, tunable=True),
-    "engine.split.max_step": F(float, 0.1, "split: most share one next hop gives up per decision", lo=0, hi=1, lo_open=True, tunable=True),
+    "engine.split.max_step": F(float, 1.0, "split: most share one next hop gives up per rate window (scaled by the time since the last decision)", lo=0, hi=1, lo_open=True, tunable=True),
     "engine.split.publish_threshold": F(float, 0.02, "split: a key's table is republished only when one of its shares moved by more than this", lo=0, hi=1, hi_open=True, tunable=True),
     "engine.split.rate_window_s": F(float, 1.0, "split: time constant of the per-link rate and latency estimates and the per-key traffic rate", lo=0, lo_open=True, tunable=True),
     "engine.split.refresh": F(float, 0.5, "split: step of the per-decision refresh of every entry of a used link from its link latency plus the neighbour's published estimate", lo=0, hi=1, lo_open=True, tunable=True),

@@ -149,7 +149,7 @@ class EngineSettings:
     # the learning mode (routerd.splitting): greedy next hop, or shares by marginal cost
     mode: str = "greedy"
     split_step: float = 1.0
-    split_max_step: float = 0.1
+    split_max_step: float = 1.0
     split_threshold: float = 0.02
     split_window_s: float = 1.0
     split_refresh: float = 0.5
@@ -348,8 +348,10 @@ class Engine:
         self._loops_prevented = 0
 
     def _start_split(self) -> None:
-        """Split mode from the current greedy tables: one share on each greedy hop."""
+        """Split mode: one share on each next hop of the live delay-shortest tree."""
         self._split = _splitting.SplitState(self)
+        pub = self._split.pub
+        self.greedy[:] = np.where(pub.sum(axis=2) > 0, np.argmax(pub, axis=2), -1)
         self.eps[:] = 0.0
         self.alt[:] = False
         self._dirty[:] = True

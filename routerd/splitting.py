@@ -10,6 +10,9 @@ this module and hands itself in; only its arrays are used).
 
 Theory of operation
 -------------------
+Start: one share on each next hop of the live delay-shortest tree (what ``reroute``
+routes), whatever the initial estimates.
+
 Still Q-routing at the core: ``Q[x, d, j]`` is learned from hop rows by the engine's own
 TD update with Robbins–Monro steps (Boyan & Littman 1994), unchanged.  Split mode adds
 three things around it.
@@ -27,15 +30,16 @@ three things around it.
    updates are plain ordered sums (``np.add.at`` adds in index order): batched ==
    sequential holds bit for bit.
 
-2. *Every entry fresh.*  At each decision, every live slot whose link carried a row since
-   the last decision is refreshed for *every* destination, whichever destination's
-   traffic measured it::
+2. *Every entry fresh.*  At each decision, every live slot is refreshed for *every*
+   destination from its link's latency estimate, whichever destination's traffic
+   measured it::
 
        Q[x, d, j] += refresh * (L[x, j] + V[y, d] - Q[x, d, j])        (V[d, d] = 0)
 
    with ``V[y, d] = sum_z w[y, d, z] Q[y, d, z]`` y's published estimate (its shares
-   ``w``).  No entry keeps its initial value while its link carries traffic; entries of
-   idle links stay where they are (and their link's L0 is what the marginal reads).
+   ``w``).  No entry keeps its initial value: a used link's entries follow its measured
+   latency, an idle link's its idle latency L0 plus the neighbour's estimate (not the
+   optimistic propagation-only start value that made greedy's argmin a stale entry).
 
 3. *Shares moved by marginal cost* (Gallager, "A minimum delay routing algorithm using
    distributed computation", IEEE Trans. Comm. 25, 1977; Bertsekas & Gallager, Data
@@ -53,7 +57,7 @@ three things around it.
 
        M[x, d] = sum_j w_j (m[x, j] + M[y_j, d])         link marginal distance
        E[x, d] = sum_j w_j (e[x, j] + E[y_j, d])         downstream externality
-       H[x, d] = sum_j w_j^2 (h[x, j] + H[y_j, d])       downstream curvature
+       H[x, d] = sum_j w_j (h[x, j] F[x, j] + H[y_j, d]) downstream flow-weighted curvature
 
    The marginal delivery cost of next hop j is the learned estimate plus the
    externality, ``delta_j = Q[x, d, j] + e[x, j] + E[y_j, d]`` (with accurate estimates
@@ -61,24 +65,37 @@ three things around it.
    strictly lower potential ``M[y, d] < M[x, d]``; j* is the candidate of least delta;
    every other candidate gives up::
 
-       dw_j = min(w_j, max_step, step * (delta_j - delta_j*) / (t[x, d] (H_j + H_j*)))
+       dw_j = min(w_j, max_step', eta * (delta_j - delta_j*) / (H_j + H_j*))
 
-   to j*, where ``H_j = h[x, j] + H[y_j, d]`` — the second-derivative-scaled projection
-   step of Bertsekas & Gallager §5.7: moving ``dF`` from path j to j* changes the cost by
-   ``-(delta_j - delta_j*) dF + (H_j + H_j*) dF^2 / 2``, least at the quotient above
-   (``step = 1`` is that Newton step, capped at the share held).  Near capacity h grows
-   like ``(C - F)^-3`` and the step shrinks: the shares do not oscillate across a
-   saturating link.  Non-candidates (uphill or dead) give up their whole share at once.
+   to j*, where ``H_j = g[x, j] + H[y_j, d]`` sums the *flow-weighted* curvature
+   ``g = h F`` along the path: the second-derivative-scaled projection step of Bertsekas &
+   Gallager §5.7 (moving ``dF`` from path j to j* changes the cost by
+   ``-(delta_j - delta_j*) dF + (H_j + H_j*) dF^2 / 2``), written per unit *share* of every
+   key crossing the path at once: if all of them take the same step, the total flow moved
+   is one Newton step, so many nodes acting on the same congested link do not herd.  Near
+   capacity h grows like ``(C - F)^-3`` and the step onto a loaded path shrinks: the shares
+   do not oscillate across a saturating link.  The price: on an *overloaded* link the
+   measured rate is the carried one and the sojourn is capped by the buffer, so its M/M/1
+   curvature is enormous and flow leaves it slowly (tried and measured: capping the
+   leaving path's curvature at 3-10x the receiving one's fixed a two-bridge network at
+   1.2x load but made geant and a random geometric graph collapse there).
+   ``eta = step * dt / window`` and ``max_step' = max_step * dt /
+   window`` (dt: time since the previous decision), so a full step takes about one rate
+   window however often decisions come.  Next hops already used may keep a share even
+   when uphill (they move by the gradient only: forcing them to zero at once made the
+   noisy potential flip whole shares); only a *new* share must go downhill.
 
 4. *Loop freedom at every instant.*  ``M[x, d] = sum_j w_j (m_j + M[y_j, d])`` with
    ``m > 0`` exceeds ``M`` of at least one next hop x uses, so every routed node has a
-   candidate, and all shares after the step descend the strict order of M: the new
-   share graph is acyclic.  Before the step, shares on dead links are dropped (the rest
-   renormalised: a subgraph of an acyclic graph), keys left with nothing, or newly
-   reachable, take the live shortest-path next hop, and :func:`cyclic` (peeling sinks
-   off the weighted graph) finds any cycle that makes; its nodes fall back to the live
-   shortest-path tree until none is left (counted as loops prevented; the tree cannot
-   loop, so this ends).
+   downhill next hop to give share to.  Before the step, shares on dead links are
+   dropped (the rest renormalised: a subgraph of an acyclic graph), keys left with
+   nothing, or newly reachable, take the live shortest-path next hop, and :func:`cyclic`
+   (peeling sinks off the weighted graph) finds any cycle that makes; its nodes fall back
+   to the live shortest-path tree until none is left (the tree cannot loop, so this
+   ends).  After the step, a cycle can only run through an edge the step added (the old
+   graph was acyclic); such new edges on a cycle are cut and their share given back to
+   the key's other next hops, until no cycle is left (:func:`_revert_cycles`).  Both
+   repairs count as loops prevented.
 
 5. *Bounded churn.*  The internal shares move every decision; a key's published shares
    are replaced by them only when one share differs by more than
@@ -102,11 +119,12 @@ import numpy as np
 
 MODES = ("greedy", "split")
 
+
 #: EngineSettings field -> (config key, default)
 FIELDS: dict[str, tuple[str, Any]] = {
     "mode": ("engine.mode", "greedy"),
     "split_step": ("engine.split.step", 1.0),
-    "split_max_step": ("engine.split.max_step", 0.1),
+    "split_max_step": ("engine.split.max_step", 1.0),
     "split_threshold": ("engine.split.publish_threshold", 0.02),
     "split_window_s": ("engine.split.rate_window_s", 1.0),
     "split_refresh": ("engine.split.refresh", 0.5),
@@ -246,7 +264,7 @@ def dag_sums(w: np.ndarray, slots: np.ndarray, m: np.ndarray, e: np.ndarray, h: 
 class SplitState:
     """The split mode's arrays for one engine (see the module docstring)."""
 
-    ARRAYS = ("lk_cnt", "lk_sum", "lk_t", "key_cnt", "key_t", "seen", "w", "pub")
+    ARRAYS = ("lk_cnt", "lk_sum", "lk_t", "key_cnt", "key_t", "w", "pub")
     SCALARS = ("publications", "share_moves", "forced", "fallbacks", "whole_publications")
     FLOATS = ("last_now",)
 
@@ -257,9 +275,9 @@ class SplitState:
         self.lk_t = np.zeros((n, K))
         self.key_cnt = np.zeros((n, n))
         self.key_t = np.zeros((n, n))
-        self.seen = np.zeros((n, K), dtype=bool)
         self.w = np.zeros((n, n, K))
-        g = eng.greedy
+        spt = eng._spt_live()    # start on the live delay-shortest tree (what reroute routes)
+        g = np.where(spt >= 0, eng._slot_of[np.arange(n)[:, None], np.maximum(spt, 0)], -1)
         xs, ds = np.nonzero(g >= 0)
         self.w[xs, ds, g[xs, ds]] = 1.0
         self.pub = self.w.copy()
@@ -296,7 +314,6 @@ class SplitState:
                 np.add.at(sf, idx, lat)
             tf[u] = now
             np.add.at(cf, idx, 1.0)
-        self.seen.reshape(-1)[lk] = True
 
     def link_estimates(self, now: float, window: float, prior: float
                        ) -> tuple[np.ndarray, np.ndarray]:
@@ -364,7 +381,7 @@ def decide(st: SplitState, eng: Any, now: float) -> tuple[set[int], int, int]:
     ceil = s.ceiling_s
     L, F = st.link_estimates(now, s.split_window_s, s.split_prior)
     # 1. refresh the entries of every live slot whose link carried rows, all destinations
-    fresh = st.seen & live
+    fresh = live.copy()
     if fresh.any():
         V = published_values(st.pub, eng.Q, ceil)
         xr, jr = np.nonzero(fresh)
@@ -373,7 +390,6 @@ def decide(st: SplitState, eng: Any, now: float) -> tuple[set[int], int, int]:
         q = eng.Q[xr, :, jr]
         new = q + s.split_refresh * (tgt - q)
         eng.Q[xr, :, jr] = np.minimum(np.maximum(new, 0.0), ceil)
-    st.seen[:] = False
     # 2. repair: no share on a dead link, every reachable key routed, no cycle
     spt = eng._spt_live()                                      # (n, n) node, -1
     spt_slot = np.where(spt >= 0, eng._slot_of[np.arange(n)[:, None], np.maximum(spt, 0)], -1)
@@ -411,7 +427,7 @@ def decide(st: SplitState, eng: Any, now: float) -> tuple[set[int], int, int]:
     dt = min(max(now - st.last_now, 0.0), s.split_window_s)
     st.last_now = now
     eta = s.split_step * dt / s.split_window_s
-    new = share_step(w, delta, Hj, cand, np.ones((n, n)), eta, s.split_max_step)
+    new = share_step(w, delta, Hj, cand, np.ones((n, n)), eta, s.split_max_step * dt / s.split_window_s)
     new, reverted = _revert_cycles(new, w, slots, n)
     prevented += reverted
     moved = np.abs(new - st.w).max(axis=2) > 0

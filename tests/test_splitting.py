@@ -54,6 +54,9 @@ def test_share_step_by_hand() -> None:
     assert S.share_step(w, d, np.array([0.02, 0.03]), cand, t, 1.0, 0.1) == pytest.approx([0.7, 0.3])
     # a step larger than the share held empties it (projection onto w >= 0)
     assert S.share_step(w, d, np.array([0.005, 0.005]), cand, t, 1.0, 1.0) == pytest.approx([1.0, 0.0])
+    # a steep leaving path slows the step: 0.01 / (0.5 + 0.01) of a share
+    assert S.share_step(w, d, np.array([0.01, 0.5]), cand, t, 1.0, 1.0) == pytest.approx(
+        [0.6 + 0.01 / 0.51, 0.4 - 0.01 / 0.51])
     # a non-candidate gives up everything at once; the third hop is not allowed
     w3 = np.array([0.5, 0.3, 0.2])
     out3 = S.share_step(w3, np.array([0.01, 0.02, np.inf]), np.array([0.05, 0.05, 0.0]),
