@@ -505,9 +505,9 @@ def split_targets(summ: dict[str, Any]) -> list[dict[str, Any]]:
 def targets_md(summ: dict[str, Any]) -> list[str]:
     rows = split_targets(summ)
     L = ["", "## split against issue 14's steady-state aims", "",
-         "Aims: delivery <= 1.05 x mindelay; drops <= mindelay's + 0.1 percentage point; CV of "
-         "the per-second delay in the second half <= 1.5 x mindelay's; at 0.2x within 2% of "
-         "shortest; loop repairs per second near zero at 0.2x.", "",
+         ("Aims: delivery <= 1.05 x mindelay; drops <= mindelay's + 0.1 percentage point; CV of "
+          "the per-second delay in the second half <= 1.5 x mindelay's; at 0.2x within 2% of "
+          "shortest; loop repairs per second near zero at 0.2x."), "",
          "| topology | load | split (ms) | / mindelay | extra drops (pp) | CV / mindelay's | / shortest | loop repairs/s |",
          "|---|---|---|---|---|---|---|---|"]
 
@@ -526,8 +526,8 @@ def targets_md(summ: dict[str, Any]) -> list[str]:
                  f"{f(r.get('over_shortest'), '.3f', 1.02 if r['load'] <= 0.2 else None)} | "
                  f"{r['loops_per_s']:.1f} |")
     met = sum(1 for r in rows if r.get("over_mindelay", math.inf) <= 1.05)
-    L += ["", f"split within 1.05 x mindelay at {met} of {len(rows)} points "
-          "(points where mindelay is infeasible have no ratio).", ""]
+    L += ["", (f"split within 1.05 x mindelay at {met} of {len(rows)} points "
+               "(points where mindelay is infeasible have no ratio)."), ""]
     return L
 
 

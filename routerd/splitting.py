@@ -194,7 +194,7 @@ def share_step(w: np.ndarray, delta: np.ndarray, H: np.ndarray, cand: np.ndarray
     Non-candidates give up everything; every candidate but the cheapest gives up
     ``min(w, max_step, step (delta - delta*) / (t (H + H*)))``; the cheapest takes it all.
     Keys without a candidate are returned unchanged (the caller repairs them first)."""
-    has = cand.any(axis=-1)
+    has = np.asarray(cand.any(axis=-1))
     dm = np.where(cand, delta, np.inf)
     js = np.argmin(dm, axis=-1)[..., None]
     dstar = np.take_along_axis(dm, js, axis=-1)
@@ -219,11 +219,11 @@ def cyclic(w: np.ndarray, slots: np.ndarray) -> np.ndarray:
     n = w.shape[0]
     edge = w > 0                                             # (n, n, K)
     ys = np.maximum(slots, 0)                                # (n, K)
-    alive = edge.any(axis=2)
+    alive = np.asarray(edge.any(axis=2))
     alive[np.arange(n), np.arange(n)] = False
     while True:
         succ = alive[ys].transpose(0, 2, 1)                  # (n, n, K): alive[y_j, d]
-        keep = alive & (edge & succ).any(axis=2)
+        keep = np.asarray(alive & (edge & succ).any(axis=2))
         if np.array_equal(keep, alive):
             return keep
         alive = keep
@@ -238,7 +238,6 @@ def dag_sums(w: np.ndarray, slots: np.ndarray, m: np.ndarray, e: np.ndarray, h: 
     on = w > 0
     routed = on.any(axis=2)
     diag = np.arange(n)
-    w2 = w * w
     M = np.zeros((n, n))
     E = np.zeros((n, n))
     H = np.zeros((n, n))
@@ -488,7 +487,7 @@ def _revert_cycles(new: np.ndarray, old: np.ndarray, slots: np.ndarray, n: int
         if not cyc.any():
             return new, reverted
         cut = cyc[:, :, None] & fresh               # new edges out of nodes on a cycle
-        keys = cut.any(axis=2)
+        keys = np.asarray(cut.any(axis=2))
         if not keys.any():
             raise AssertionError("split: a cycle made of old edges only")
         # the cut edges' shares go back to the key's other next hops, pro rata

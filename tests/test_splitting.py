@@ -210,7 +210,7 @@ def test_every_entry_of_a_used_link_is_refreshed(small_ring: T.Topology) -> None
     others = [v for v in range(t.n) if v not in (x, d)]
     assert all(eng.Q[x, v, j] != q0[x, v, j] for v in others)
     # and the link's latency estimate is the measured one (prior weight 2 of 302 samples)
-    L, F = eng._split.link_estimates(0.5, 1.0, 2.0)
+    L, _ = eng._split.link_estimates(0.5, 1.0, 2.0)
     assert L[x, j] == pytest.approx(0.02, rel=0.02)
 
 
