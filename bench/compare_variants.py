@@ -1,5 +1,6 @@
-"""Measured comparison of the engine variants (routerd/variants.py) against ``mindelay``
-(the flow-deviation optimum) and ``shortest``: one report with tables and plots.
+"""Measured comparison of the engine variants (routerd/variants.py) and the split mode
+(routerd/splitting.py) against ``mindelay`` (the flow-deviation optimum), ``shortest`` and
+``reroute`` (shortest paths recomputed after link events): one report with tables and plots.
 
 Usage: ``python bench/compare_variants.py [--out DIR] [--quick] [--jobs N] [--seeds N]``
 (default ``bench/reports/variants``).  Writes ``DIR/report.md``, ``DIR/steady.csv``,
@@ -23,7 +24,14 @@ What is measured (every figure from :func:`sim.run.run`, the simulator the polic
   rolling mean is within 5% of the pre-spike mean and stays there for 3 s;
 * a link failure (the busiest link under ``shortest``, both directions) and its repair:
   after the failure, time to settle within 10% of the level at the end of the outage;
-  after the repair, time to return within 5% of the pre-failure mean.
+  after the repair, time to return within 5% of the pre-failure mean.  At 0.8x the network without that link is overloaded on abilene (mindelay proves it
+  infeasible), so a second cut at ``CUT_LOAD`` (0.5x) is measured against the optimum
+  recomputed without the link (:func:`optimum_without`): packets lost to the dead link,
+  time to settle within 10% of that optimum, time back within 10% of the level before;
+* a second cold start at ``COLD_MID_LOAD`` (0.6x);
+* our own topologies (``ours:two-clusters``, ``ours:geometric``, built here with uniform
+  pairs) beside topohub's; every run uses exponential packet sizes (mindelay's M/M/1
+  model); the per-second CV of the delivery time in each steady run's second half.
 
 A time that never comes is reported as the rest of the run, marked ``>``.
 Must not import: zmq, prometheus.  matplotlib only inside the plotting function.

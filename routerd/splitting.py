@@ -334,6 +334,31 @@ class SplitState:
     def key_rate(self, now: float, window: float) -> np.ndarray:
         return self.key_cnt * np.exp(-np.maximum(now - self.key_t, 0.0) / window) / window
 
+    # -- measured demand (for the live optimality gap: sim.mindelay fed measured demand) --
+    def measured_demand(self, now: float, window: float) -> np.ndarray:
+        """(n, n) packets/s entering the network at x for d, estimated from the key rates:
+        the rate of d's traffic leaving x minus what x's neighbours send it for d (their
+        rate times their published share towards x), floored at 0.  The shape
+        ``sim.mindelay.flow_deviation`` / ``for_topology`` take as ``demand_pps``."""
+        t = self.key_rate(now, window)                       # (n, n): x, d
+        n, K = t.shape[0], self.pub.shape[2]
+        inflow = np.zeros((n, n))
+        ys = np.maximum(self.slots, 0)
+        for j in range(K):                                   # y -> slots[y, j] carries t[y] pub[y, :, j]
+            ok = self.slots[:, j] >= 0
+            np.add.at(inflow, ys[ok, j], t[ok] * self.pub[ok, :, j])
+        dem = np.maximum(t - inflow, 0.0)
+        dem[np.arange(n), np.arange(n)] = 0.0
+        return dem
+
+    def mean_packet_bytes(self, now: float, window: float, prior: float) -> float:
+        """The mean packet size the link estimates imply (median over busy links of
+        capacity x service time / 8), 0 before any link has carried traffic."""
+        L, F = self.link_estimates(now, window, prior)
+        tau = service_time(L, F, self.prop)
+        busy = (F * window >= 4.0) & np.isfinite(self.cap_bps)
+        return float(np.median(tau[busy] * self.cap_bps[busy])) / 8.0 if busy.any() else 0.0
+
     # -- state ------------------------------------------------------------------------
     def export(self) -> dict[str, Any]:
         out: dict[str, Any] = {k: getattr(self, k).copy() for k in self.ARRAYS}

@@ -221,3 +221,26 @@ def test_greedy_mode_has_no_split_state(small_ring: T.Topology) -> None:
         EngineSettings(mode="split", variant="predictive")
     with pytest.raises(ValueError, match="mode 'fast'"):
         EngineSettings(mode="fast")
+
+
+def test_measured_demand_recovers_what_enters_the_network() -> None:
+    # a -> b -> c for destination c at 100 rows/s on each hop: only a injects (100/s);
+    # b's rows are a's traffic passing through (hand-worked: 100 - 1.0 x 100 = 0)
+    t = _tri()
+    a, b, c = (t.index[x] for x in "abc")
+    eng = Engine(t, EngineSettings(mode="split"))
+    st_ = eng._split
+    K = t.slots.shape[1]
+    st_.pub[a, c] = 0.0
+    st_.pub[a, c, t.slot_of[a, b]] = 1.0
+    for i in range(1, 41):                       # 40 batches of 5 rows per 0.05 s, each hop
+        now = 0.05 * i
+        eng.observe(HopBatch.of([a] * 5 + [b] * 5, [b] * 5 + [c] * 5, [c] * 10, [0.002] * 10), now)
+    dem = st_.measured_demand(2.0, eng.settings.split_window_s)
+    rate = st_.key_rate(2.0, eng.settings.split_window_s)
+    assert rate[a, c] == pytest.approx(rate[b, c])
+    assert dem[a, c] == pytest.approx(rate[a, c]) and dem[b, c] == pytest.approx(0.0, abs=1e-9)
+    # an exponentially weighted count over 1 s windows of a steady 100/s: 100 (1 - e^-2)
+    # after 2 s, plus the discretisation of 5-row batches every 0.05 s
+    assert 80.0 < rate[a, c] < 100.0
+    assert K == st_.pub.shape[2]
