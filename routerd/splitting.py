@@ -264,8 +264,9 @@ class SplitState:
     """The split mode's arrays for one engine (see the module docstring)."""
 
     ARRAYS = ("lk_cnt", "lk_sum", "lk_t", "key_cnt", "key_t", "w", "pub")
-    SCALARS = ("publications", "share_moves", "forced", "fallbacks", "whole_publications")
-    FLOATS = ("last_now",)
+    SCALARS = ("publications", "share_moves", "forced", "fallbacks", "whole_publications",
+               "started")
+    FLOATS = ("last_now", "last_obs")
 
     def __init__(self, eng: Any):
         n, K = eng.n, eng.k
@@ -286,6 +287,8 @@ class SplitState:
         self.fallbacks = 0          # keys put on the live shortest-path tree
         self.whole_publications = 0  # destinations published whole to keep the graph acyclic
         self.last_now = eng.now      # the previous decision's time (the step scales with it)
+        self.last_obs = -math.inf    # the newest observation's time
+        self.started = 0             # 1 once a row has been observed
         topo = eng.topo
         sl = np.maximum(topo.slot_link, 0)
         self.prop = np.where(eng._present, topo.delay_s[sl], 0.0)
@@ -297,6 +300,10 @@ class SplitState:
     def observe(self, x: np.ndarray, j: np.ndarray, d: np.ndarray, lat: np.ndarray,
                 now: float, window: float) -> None:
         """Accepted rows, in order: decay what they touch to ``now``, then add them."""
+        if not self.started:          # the first rows: the step clock starts here
+            self.started = 1
+            self.last_now = now
+        self.last_obs = max(self.last_obs, now)
         n, K = self.key_cnt.shape[0], self.lk_cnt.shape[1]
         lk = x * K + j
         ky = x * n + d
@@ -380,7 +387,8 @@ class SplitState:
     def same(self, other: SplitState | None) -> bool:
         return other is not None and all(
             np.array_equal(getattr(self, k), getattr(other, k)) for k in self.ARRAYS) and (
-            self.last_now == other.last_now)
+            self.last_now == other.last_now and self.last_obs == other.last_obs
+            and self.started == other.started)
 
 
 def onehot_slots(slot: np.ndarray, K: int) -> np.ndarray:
@@ -448,7 +456,10 @@ def decide(st: SplitState, eng: Any, now: float) -> tuple[set[int], int, int]:
     with np.errstate(invalid="ignore"):
         delta = np.where(cand, eng.Q + e[:, None, :] + Ey, np.inf)
         Hj = np.where(cand, g[:, None, :] + Hy, 0.0)
-    dt = min(max(now - st.last_now, 0.0), s.split_window_s)
+    # the step scales with the time the estimates had to move since the last decision:
+    # from then to now, but not past the newest observation (a shell that decides long
+    # after its last rows, or for the first time after starting, moves nothing on no news)
+    dt = min(max(min(now, st.last_obs) - st.last_now, 0.0), s.split_window_s)
     st.last_now = now
     eta = s.split_step * dt / s.split_window_s
     new = share_step(w, delta, Hj, cand, np.ones((n, n)), eta, s.split_max_step * dt / s.split_window_s)
