@@ -379,6 +379,9 @@ class ServicePolicy(Policy):
         self.speed = float(cfg["sim.service.speed"])
         self.timeout_s = float(cfg["sim.service.timeout_s"])
         self.ceiling = float(cfg["engine.ceiling_s"])
+        # split mode: a node reports the share-weighted mean of its published next hops'
+        # estimates (Engine.published_estimate's rule), not its largest share's
+        self.split_mode = cfg["engine.mode"] == "split"
         n = topology.n
         self.n = n
         self.names = topology.nodes
@@ -426,6 +429,7 @@ class ServicePolicy(Policy):
         self._split: list[dict[int, tuple[tuple[int, ...], tuple[float, ...]]]] = [{} for _ in range(n)]
         self._greedy = [[-1] * n for _ in range(n)]
         self._off = [[0.0] * n for _ in range(n)]     # off-greedy weight per (x, d)
+        self._weights: list[dict[int, list[tuple[int, float]]]] = [{} for _ in range(n)]
         self._est: list[dict[int, dict[int, float]]] = [{} for _ in range(n)]
         self._V = [[0.0 if x == d else self.ceiling for d in range(n)] for x in range(n)]
         self._seen: dict[str, int] = {}
@@ -468,6 +472,7 @@ class ServicePolicy(Policy):
         greedy = [-1] * self.n
         off = [0.0] * self.n
         split: dict[int, tuple[tuple[int, ...], tuple[float, ...]]] = {}
+        weights: dict[int, list[tuple[int, float]]] = {}
         for d_name, ws in routes.items():
             d = ix.get(d_name)
             if d is None or not ws:
@@ -476,6 +481,7 @@ class ServicePolicy(Policy):
             if not hops:
                 continue
             greedy[d] = ix[ws[0][0]] if ws[0][0] in ix else hops[0][0]
+            weights[d] = hops
             off[d] = 1.0 - float(ws[0][1])
             if len(hops) == 1:
                 row[d] = hops[0][0]
@@ -488,6 +494,7 @@ class ServicePolicy(Policy):
         self._split[x] = split
         self._greedy[x] = greedy
         self._off[x] = off
+        self._weights[x] = weights
         self._update_v(x)
 
     def next_hop(self, x: int, d: int, flow: int, now: float) -> int:
@@ -542,6 +549,12 @@ class ServicePolicy(Policy):
                 row[d] = min(by.values())
             elif g[d] < 0:
                 row[d] = self.ceiling          # no route: as the engine reports it
+            elif self.split_mode:
+                ws = self._weights[y].get(d, ())
+                if all(h in by for h, _ in ws):
+                    row[d] = min(sum(w * by[h] for h, w in ws), self.ceiling)
+                else:
+                    row[d] = min(by.values())
             else:
                 # the tables and the estimates come from slightly different moments:
                 # a greedy hop missing from the estimates (its link just went down) falls

@@ -66,7 +66,7 @@ LEAD = ("policy", "rate_pps", "seed", "offered", "delivered", "dropped", "ttl_ex
         "p95_delivery_s", "p99_delivery_s", "mean_hops", "throughput_pps", "link_util_max",
         "events", "wall_s")
 
-DEFAULT_POLICIES = "shortest,qrouting,mindelay"
+DEFAULT_POLICIES = "shortest,reroute,qrouting,mindelay"
 
 
 def t975(df: int) -> float:
@@ -555,7 +555,7 @@ def _fmt(v: Any) -> str:
 
 
 #: a fixed colour per policy, so the same policy looks the same in every sweep
-COLOURS = {"shortest": "#d62728", "ecmp": "#ff7f0e", "qrouting": "#1f77b4", "mindelay": "#2ca02c"}
+COLOURS = {"shortest": "#d62728", "reroute": "#8c564b", "ecmp": "#ff7f0e", "qrouting": "#1f77b4", "mindelay": "#2ca02c"}
 
 
 #: a point losing at least this share of its packets is ringed on the delivery-time line

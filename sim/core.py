@@ -327,7 +327,8 @@ def run_core(
                 (src_l, dst_l, delay, inv_cap, buf), policy, table, pending, nxt,
                 {"n": n, "next_hop": next_hop, "on_hop": on_hop, "on_hops": on_hops,
                  "hop_flow": hop_flow, "tick_interval_s": tick_iv,
-                 "splits": _hook_applies(policy, "split_arrays", "next_hop")},
+                 "splits": (_hook_applies(policy, "split_arrays", "next_hop")
+                        and getattr(policy, "compiled_splits", True))},
                 end, warm, int(ttl), ivl, events_sorted, progress, observer, stop)
         finally:
             if stop is not None:

@@ -1,8 +1,9 @@
 """The simulator's routing policies (thin adapters over :class:`routerd.sim.policy.Policy`) and
 the registry that names them.
 
-Owns: ``shortest`` (static delay-shortest paths), ``ecmp`` (equal-cost multipath by a
-hash of the flow id), ``qrouting`` (drives :class:`routerd.core.engine.Engine` with the hop
+Owns: ``shortest`` (static delay-shortest paths), ``reroute`` (delay-shortest paths
+recomputed over the live links after a detection delay: the honest baseline for link
+failures), ``ecmp`` (equal-cost multipath by a hash of the flow id), ``qrouting`` (drives :class:`routerd.core.engine.Engine` with the hop
 observations a real network would give) and :func:`get` / :data:`NAMES`.  ``mindelay``
 lives in :mod:`routerd.sim.mindelay` and is imported only when asked for.
 Must not import: zmq, prometheus, matplotlib.
@@ -64,6 +65,73 @@ class Shortest(Policy):
     def next_hop(self, x: int, d: int, flow: int, now: float) -> int:
         assert self.table is not None
         return self.table[x][d]
+
+
+class Reroute(Policy):
+    """Delay-shortest paths recomputed over the live links, ``sim.reroute.detect_s``
+    after each link event (what a link-state routing protocol gives an operator: the
+    failure is detected — e.g. 3 missed probes at 100 ms, ``agent.detect_multiplier`` x
+    ``agent.probe_interval_s`` — then every node runs shortest paths on the new map).
+
+    Theory of operation.  ``on_link`` only notes ``(now + detect_s, link, up)``; ticks
+    every ``sim.reroute.tick_s`` apply the notes that are due, in order, and when the set
+    of live links changed recompute every route (Dijkstra per destination on link delays,
+    dead links at infinite weight: :meth:`Topology.shortest_paths`, the same tree
+    ``shortest`` uses when nothing is down) and rewrite the fast-path table in place.  So
+    a recomputation happens at the first tick at or after the detection time.  Until then
+    packets sent onto the dead link are dropped, as they would be in the network.  A
+    destination cut off from a node gets no route (-1: dropped as no route).  Every node
+    switches at the same instant (no per-node flooding delay), which flatters the
+    baseline slightly; no transient micro-loops either.
+    """
+
+    name = "reroute"
+
+    def attach(self, topology: Topology, rng: np.random.Generator, settings: Any) -> None:
+        super().attach(topology, rng, settings)
+        self.detect_s = float(settings["sim.reroute.detect_s"]) if settings is not None else 0.3
+        self.tick_interval_s = float(settings["sim.reroute.tick_s"]) if settings is not None else 0.01
+        self.table = topology.spt_next_hops().tolist()
+        self._up = np.ones(topology.n_links, dtype=bool)       # as the routing knows it
+        self._pending: list[tuple[float, int, bool]] = []
+        self.recomputations = 0
+        self.events_seen = 0
+
+    def on_link(self, x: int, y: int, up: bool, now: float) -> None:
+        self._pending.append((now + self.detect_s, self.topo.link_index[(x, y)], up))
+        self.events_seen += 1
+
+    def tick(self, now: float) -> None:
+        if not self._pending or self._pending[0][0] > now:
+            return
+        due = [p for p in self._pending if p[0] <= now]
+        self._pending = [p for p in self._pending if p[0] > now]
+        before = self._up.copy()
+        for _, k, up in due:   # in event order: a down then an up within one tick cancel
+            self._up[k] = up
+        if np.array_equal(before, self._up):
+            return
+        self.recompute()
+
+    def recompute(self) -> None:
+        """Shortest paths over the links currently known to be up, into ``table``."""
+        t = self.topo
+        if self._up.all():
+            nh = t.spt_next_hops()
+        else:
+            nh = t.shortest_paths(np.where(self._up, t.delay_s, np.inf))[1]
+        assert self.table is not None
+        for x, row in enumerate(nh.tolist()):
+            self.table[x][:] = row
+        self.recomputations += 1
+
+    def next_hop(self, x: int, d: int, flow: int, now: float) -> int:
+        assert self.table is not None
+        return self.table[x][d]
+
+    def stats(self) -> dict[str, float]:
+        return {"reroute_recomputations": float(self.recomputations),
+                "reroute_detect_s": self.detect_s}
 
 
 def _mix(flow: int, x: int) -> int:
@@ -190,6 +258,9 @@ class QRouting(Policy):
         if xs.size == 0:
             return
         eng = self.engine
+        if eng.settings.mode == "split":
+            self._refresh_split(xs)
+            return
         if self._hops is not None:  # the same loop, compiled (routerd.sim._hops.refresh)
             moved_keys = np.empty(xs.size * eng.n, dtype=np.int64)
             nm = self._hops.refresh(
@@ -242,6 +313,23 @@ class QRouting(Policy):
             er[x][d] = ev
             sp[x].pop(d, None)
 
+    def _refresh_split(self, xs: np.ndarray) -> None:
+        """Split mode: every entry of ``xs`` from the published shares (greedy = largest)."""
+        eng = self.engine
+        table = self.table
+        assert table is not None
+        g = eng.greedy[xs]
+        nh = np.where(g >= 0, np.take_along_axis(self._slots[xs], np.maximum(g, 0), axis=1), -1)
+        multi = (eng.alt[xs].any(axis=2)) & (g >= 0)
+        vals = np.where(multi, -2, nh)
+        moved = np.nonzero(self._gh[xs] != nh)
+        self._moved.append(xs[moved[0]] * eng.n + moved[1])
+        self._gh[xs] = nh
+        for i, x in enumerate(xs.tolist()):
+            table[x][:] = vals[i].tolist()
+            self._greedy_hop[x][:] = nh[i].tolist()
+            self._split[x].clear()
+
     def split(self, x: int, d: int) -> tuple[tuple[int, ...], tuple[float, ...]]:
         """(next hops, cumulative weights) of x for d, cached until x's table changes.
 
@@ -250,6 +338,16 @@ class QRouting(Policy):
         built from the rows cached at the last refresh instead of a numpy call per entry.
         """
         sp = self._split[x].get(d)
+        if sp is None and self.engine.settings.mode == "split":
+            ws = self.engine.weights(x, d)
+            acc = 0.0
+            cum = []
+            for _, wv in ws:
+                acc += wv
+                cum.append(acc)
+            cum[-1] = 1.0
+            sp = (tuple(h for h, _ in ws), tuple(cum))
+            self._split[x][d] = sp
         if sp is None:
             sl = self._slot_rows[x]
             alts = [sl[j] for j, on in enumerate(self.engine.alt[x, d].tolist()) if on]
@@ -268,6 +366,13 @@ class QRouting(Policy):
                 sp = (hops, tuple(cum))
             self._split[x][d] = sp
         return sp
+
+    @property
+    def compiled_splits(self) -> bool:
+        """Whether the compiled loop may sample this policy's split entries (-2) from
+        :meth:`split_arrays`: greedy mode's exploration shares; split mode's shares come
+        from the engine's weights, which only :meth:`next_hop` reads."""
+        return self.engine.settings.mode != "split"
 
     def split_arrays(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """What the compiled loop (``routerd.sim._hops``) samples a split entry from, with
@@ -378,7 +483,8 @@ class QRouting(Policy):
         if dec.changed_nodes:
             self._refresh(sorted(dec.changed_nodes))
         if (written is None or self.estimate_mode != "published"
-                or self.engine.settings.variant != "plain"):
+                or self.engine.settings.variant != "plain"
+                or self.engine.settings.mode == "split"):
             self._set_estimates()
             return
         keys = np.unique(np.concatenate([written, *self._moved]))
@@ -432,6 +538,9 @@ class QRouting(Policy):
             "engine_decisions": float(s.decisions),
             "engine_exploration_share": float(s.exploration_share),
             "engine_td_error_mean_s": float(s.td_error_mean_s),
+            "engine_split_publications": float(s.split_publications),
+            "engine_split_whole_publications": float(s.split_whole_publications),
+            "engine_split_fallbacks": float(s.split_fallbacks),
         }
 
 
@@ -439,6 +548,7 @@ class QRouting(Policy):
 #: yet (or needs an optional dependency) breaks only its own name.
 REGISTRY: dict[str, str] = {
     "shortest": "routerd.sim.policies:Shortest",
+    "reroute": "routerd.sim.policies:Reroute",
     "ecmp": "routerd.sim.policies:Ecmp",
     "qrouting": "routerd.sim.policies:QRouting",
     "mindelay": "routerd.sim.mindelay:MinDelay",

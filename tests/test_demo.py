@@ -128,7 +128,7 @@ def test_progress_plain_lines_when_not_a_terminal() -> None:
 # ---- the figures and the table, from in-process runs (no service) -----------------------------
 @pytest.fixture(scope="module")
 def offline(tmp_path_factory: Any) -> demo.Demo:
-    """A Demo whose three results are in-process runs (the 'service' one: qrouting with
+    """A Demo whose four results are in-process runs (the 'service' one: qrouting with
     another seed, so its line differs a little from the in-process learner's)."""
     from routerd.core import topology
     from routerd.io import topofiles
@@ -141,7 +141,7 @@ def offline(tmp_path_factory: Any) -> demo.Demo:
     d.scenario = scenario.from_mapping(d.scenario_doc)
     d.topo = topofiles.load(DEMO_TOPOLOGY)
     d.link_events = [(c.at_s, c.action, c.ends[0]) for c in d.scenario.links]
-    for pol in ("shortest", "qrouting"):
+    for pol in ("shortest", "reroute", "qrouting"):
         d.results[pol] = d.run_in_process(pol)
     d.seed = 2
     d.results["service"] = d.run_in_process("qrouting")
@@ -214,7 +214,7 @@ def test_load_figure_agrees_with_delivery_on_time_and_shows_unclipped_utilisatio
         assert np.array_equal(ln.get_ydata(), u[:, trunk].max(axis=1) * 100)
         assert ln.get_ydata().max() <= 100.0 + 1e-9
     styles = [_style(ln) for ln in lines]
-    assert len(set(styles)) == 3
+    assert len(set(styles)) == len(demo.POLICIES) == 4
     assert ax.get_ylim()[0] == 0 and ax2.get_ylim() == (0.0, 105.0)
     lfig.canvas.draw()
     leg = ax.get_legend()

@@ -229,3 +229,25 @@ def test_connection_families_cover_every_listening_socket() -> None:
     assert fams["routerd_ingest_connection_pauses"].samples[0].value == 1
     assert fams["routerd_ingest_connection_cap"].samples[0].value == 112
     assert fams["routerd_ingest_paused"].samples[0].value == 1
+
+
+def test_split_counters_are_exported() -> None:
+    from routerd.core.engine import EngineSettings
+
+    src = FakeSource()
+    eng = Engine(DEMO, EngineSettings(mode="split"))
+    rng = np.random.default_rng(6)
+    for i in range(4):
+        link = rng.integers(0, DEMO.n_links, 400)
+        d = rng.integers(0, DEMO.n, 400)
+        d = np.where(d == DEMO.src[link], DEMO.dst[link], d)
+        eng.observe(HopBatch.of(DEMO.src[link], DEMO.dst[link], d, DEMO.delay_s[link] * 5), 0.5 * (i + 1))
+        eng.decide(0.5 * (i + 1))
+    src.engine = eng
+    reg = CollectorRegistry()
+    reg.register(metrics.RouterdCollector(src))
+    fams = {f.name: f for f in text_string_to_metric_families(generate_latest(reg).decode())}
+    st = eng.statistics()
+    assert st.split_publications > 0
+    assert fams["routerd_split_key_publications"].samples[0].value == st.split_publications
+    assert fams["routerd_split_fallbacks"].samples[0].value == st.split_fallbacks

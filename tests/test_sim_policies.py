@@ -152,3 +152,79 @@ def test_qrouting_beats_shortest_on_the_demo_bottleneck() -> None:
     assert hi_s["dropped"] > 1000
     assert hi_q["dropped"] <= hi_s["dropped"] / 10
 
+
+
+# ---- reroute: shortest paths recomputed after a detection delay -------------------------------
+def _networkx_next_hops(topo: topology.Topology, down: set[tuple[int, int]]) -> dict:
+    """Reference: networkx's Dijkstra (networkx.shortest_path_length, weight = delay_s)
+    over the live directed links; every neighbour on some shortest path is acceptable."""
+    import networkx as nx
+
+    g = nx.DiGraph()
+    g.add_nodes_from(range(topo.n))
+    for k, (a, b) in enumerate(zip(topo.src.tolist(), topo.dst.tolist())):
+        if (a, b) not in down:
+            g.add_edge(a, b, w=float(topo.delay_s[k]))
+    dist = {d: nx.single_source_dijkstra_path_length(g.reverse(), d, weight="w") for d in range(topo.n)}
+    ok: dict = {}
+    for x in range(topo.n):
+        for d in range(topo.n):
+            if x == d or x not in dist[d]:
+                continue
+            ok[(x, d)] = {y for y in g.successors(x)
+                          if y in dist[d] and abs(g[x][y]["w"] + dist[d][y] - dist[d][x]) < 1e-12}
+    return ok
+
+
+def test_reroute_recomputes_after_the_detection_delay_and_avoids_the_dead_link() -> None:
+    # our own mesh: a-d (a chord) carries a's traffic to d until it fails
+    t = topology.from_mapping(mesh())
+    cfg = config.load(None, ["sim.reroute.detect_s=0.3", "sim.reroute.tick_s=0.01"])
+    p = policies.make("reroute")
+    p.attach(t, np.random.default_rng(0), cfg)
+    a, d = t.index["a"], t.index["d"]
+    assert p.table[a][d] == d
+    p.on_link(a, d, False, 1.0)
+    p.on_link(d, a, False, 1.0)
+    for now in (1.0, 1.1, 1.29):           # before the detection time: routes unchanged
+        p.tick(now)
+        assert p.table[a][d] == d
+    p.tick(1.3)                              # detected: every route avoids a-d
+    ref = _networkx_next_hops(t, {(a, d), (d, a)})
+    for (x, dd), hops in ref.items():
+        assert p.table[x][dd] in hops, (t.nodes[x], t.nodes[dd])
+    assert all(p.table[x][dd] >= 0 for x, dd in ref)
+    p.on_link(a, d, True, 5.0)
+    p.on_link(d, a, True, 5.0)
+    p.tick(5.2)
+    assert p.table[a][d] != d                # repair not yet detected
+    p.tick(5.31)
+    assert p.table == t.spt_next_hops().tolist()
+    assert p.stats()["reroute_recomputations"] == 2
+
+
+def test_reroute_gives_no_route_to_a_cut_off_node() -> None:
+    doc = {"topology": {"name": "line", "nodes": ["a", "b", "c"], "defaults": {"capacity_bps": 1e6, "buffer_pkts": 64},
+                        "links": [{"between": ["a", "b"], "delay_s": 0.001},
+                                  {"between": ["b", "c"], "delay_s": 0.001}]}}
+    t = topology.from_mapping(doc)
+    p = policies.make("reroute")
+    p.attach(t, np.random.default_rng(0), config.load(None, ["sim.reroute.detect_s=0"]))
+    p.on_link(1, 2, False, 0.5)
+    p.tick(0.5)
+    assert p.table[0][2] == -1 and p.table[1][2] == -1 and p.table[0][1] == 1
+
+
+def test_reroute_in_the_simulator_loses_only_what_the_detection_delay_costs() -> None:
+    # the mesh's chord a-d fails at 4 s: shortest keeps sending onto it, reroute stops
+    # after 0.3 s of detection (what was queued plus 0.3 s of sends are lost)
+    scen = {"scenario": {"name": "cut", "links": [{"at_s": 4, "between": ["a", "d"], "down": True}]}}
+    spec = {"rate_pps": 1500.0, "duration_s": 10.0, "seed": 2, "topology": mesh(),
+            "scenario": scen, "size_dist": "exp", "warmup_s": 1.0, "series": False}
+    sh = run({**spec, "policy": "shortest"})["summary"]
+    rr = run({**spec, "policy": "reroute", "overrides": ["sim.reroute.detect_s=0.3"]})["summary"]
+    for s in (sh, rr):
+        assert_little(s)
+    # shortest loses the chord's share of the traffic for 6 s; reroute about 0.3 s of it
+    per_s = sh["dropped_link_down"] / 6.0    # what the chord carried per second
+    assert 0 < rr["dropped_link_down"] <= per_s * (0.3 + 0.01) * 1.3 + 10, (rr, per_s)

@@ -66,6 +66,28 @@ x's published greedy next hop (0 at the destination, the ceiling without a route
 node reports for the route it actually uses: hysteresis and loop prevention can keep x off
 its argmin, and the min would then report optimistic entries x never forwards on.
 
+Modes (``engine.mode``).  Everything above is ``greedy`` (the default, the classic
+Q-routing baseline: one next hop per (node, destination), exploration the only load
+splitting).  Its known weaknesses against the flow-deviation optimum (issue 14): entries of
+next hops not in use keep optimistic propagation-only values, so the argmin is often a
+stale entry that loop repair then undoes; a greedy switch moves a key's whole traffic at
+once, so routes herd and oscillate.  ``split`` (:mod:`routerd.core.splitting`, whose docstring
+is its theory of operation) keeps the same Q-values and TD update and adds: per-link rate
+and latency estimates from every accepted row (exponentially weighted over ``now``); a
+refresh, at each decision, of every entry of a used link for every destination from that
+link's latency plus the neighbour's published estimate; and per (node, destination) *shares*
+moved by a curvature-scaled gradient projection step toward the next hop of least marginal
+delivery cost (Q plus the measured M/M/1 externality downstream; Gallager, IEEE Trans.
+Comm. 25, 1977; Bertsekas & Gallager, Data Networks §5.7).  New shares only go to next hops
+of strictly lower link-marginal distance, the share graph is checked for cycles (new edges
+on a cycle are cut), and a key is republished only when a share moved by more than
+``split_threshold``; the published graph is checked after every decision.  In split mode
+``decide`` recomputes every destination on every call, ``greedy`` holds each key's largest
+share, ``eps`` the rest and ``alt`` the other next hops in use; :meth:`Engine.weights`
+returns the shares, :meth:`Engine.published_estimate` their weighted Q.  Observations feed
+the split state after the core update (the same rows in the same order, so batched ==
+sequential still holds); its arrays ride in ``export_state()["split"]``.
+
 Link state.  A link marked down leaves every decision at once (its slot is not live), and
 its estimates are set to the ceiling, so no count-to-infinity can build on them.  Marked
 up, it is re-admitted with a fresh estimate: the link's delay plus the neighbour's current
@@ -82,6 +104,7 @@ import numpy as np
 
 from . import kernels as _kernels
 from . import loops as _loops
+from . import splitting as _splitting
 from . import variants as _variants
 from .topology import Topology
 
@@ -137,6 +160,14 @@ class EngineSettings:
     conf_min_step: float = 0.05
     # which implementation runs the hot paths (routerd.core.kernels): the same results either way
     kernels: str = "auto"
+    # the learning mode (routerd.core.splitting): greedy next hop, or shares by marginal cost
+    mode: str = "greedy"
+    split_step: float = 1.0
+    split_max_step: float = 1.0
+    split_threshold: float = 0.02
+    split_window_s: float = 1.0
+    split_refresh: float = 0.5
+    split_prior: float = 2.0
 
     def __post_init__(self) -> None:
         bad: list[str] = []
@@ -166,6 +197,7 @@ class EngineSettings:
         if not self.td_ref > 0 or not 0 < self.td_smoothing <= 1 or not self.visits_half > 0:
             bad.append("td_ref and visits_half must be > 0, td_smoothing in (0, 1]")
         bad += _variants.problems(self)
+        bad += _splitting.problems(self)
         if bad:
             raise ValueError("; ".join(bad))
 
@@ -189,6 +221,7 @@ class EngineSettings:
             visits_half=cfg["engine.explore.visits_half"],
             kernels=cfg["engine.kernels"],
             **_variants.from_config(cfg),
+            **_splitting.from_config(cfg),
         )
 
 
@@ -274,6 +307,11 @@ class EngineStats:
     decisions: int
     links_down: int
     pending_destinations: int
+    # split mode (routerd.core.splitting); zero in greedy mode
+    split_publications: int = 0       # (node, destination) keys whose published shares changed
+    split_share_moves: int = 0        # keys whose internal shares moved
+    split_whole_publications: int = 0  # destinations published whole to stay loop-free
+    split_fallbacks: int = 0          # keys put on the live shortest-path tree
 
 
 class Engine:
@@ -332,10 +370,22 @@ class Engine:
         self._full_pass_destinations = 0   # destinations the full pass took (not state)
         self._variant = _variants.make(self)   # None: the plain core path
         self._qdec = self.Q                     # the values decide() compares
+        self._split: _splitting.SplitState | None = None
         self.decide(0.0)
+        if self.settings.mode == "split":
+            self._start_split()
         # the first tables are the starting point, not changes or prevented loops
         self._route_changes = 0
         self._loops_prevented = 0
+
+    def _start_split(self) -> None:
+        """Split mode: one share on each next hop of the live delay-shortest tree."""
+        self._split = _splitting.SplitState(self)
+        pub = self._split.pub
+        self.greedy[:] = np.where(pub.sum(axis=2) > 0, np.argmax(pub, axis=2), -1)
+        self.eps[:] = 0.0
+        self.alt[:] = False
+        self._dirty[:] = True
 
     # ---- set-up ---------------------------------------------------------------------
     def _initial_q(self) -> np.ndarray:
@@ -362,6 +412,10 @@ class Engine:
         q[np.broadcast_to((self._present & ~self.live)[:, None, :], q.shape)] = settings.ceiling_s
         self.Q = np.ascontiguousarray(q)
         self._variant = _variants.make(self, self._variant)
+        if settings.mode == "split" and self._split is None:
+            self._start_split()
+        elif settings.mode != "split":
+            self._split = None
         self._dirty[:] = True
 
     # ---- observations ---------------------------------------------------------------
@@ -429,10 +483,32 @@ class Engine:
 
         Small batches (< SCALAR_BATCH rows) take a per-row path; larger ones the
         vectorised rounds.  Both give bit-for-bit the result of applying the rows one by
-        one in order (see the module docstring).
+        one in order (see the module docstring).  In split mode the accepted rows then
+        feed the link and key rate estimates (routerd.core.splitting), also in order.
         """
         if now is not None:
             self.now = float(now)
+        res = self._observe_core(batch, confidence)
+        if self._split is not None:
+            self._split_rows(batch, res)
+        return res
+
+    def _split_rows(self, batch: HopBatch, res: ObserveResult) -> None:
+        m = len(batch)
+        if res.accepted == 0:
+            return
+        if res.rejected:
+            keep = np.ones(m, dtype=bool)
+            keep[[i for i, _ in res.rejected]] = False
+            batch = batch.take(np.flatnonzero(keep))
+        x = np.asarray(batch.src, dtype=np.int64)
+        j = self._slot_of[x, np.asarray(batch.via, dtype=np.int64)].astype(np.int64)
+        assert self._split is not None
+        self._split.observe(x, j, np.asarray(batch.dst, dtype=np.int64),
+                            np.asarray(batch.latency, dtype=np.float64), self.now,
+                            self.settings.split_window_s)
+
+    def _observe_core(self, batch: HopBatch, confidence: np.ndarray | None) -> ObserveResult:
         if self._variant is not None:  # rows one by one, the variant's rule (routerd.core.variants)
             return self._variant.observe(self, batch, confidence, ObserveResult, REJECT_REASONS)
         if self._kern is not None:  # the compiled loop: checks and applies in order
@@ -476,7 +552,7 @@ class Engine:
         if now is not None:
             self.now = float(now)
         e = math.nan if estimate is None else float(estimate)
-        if self._variant is not None:
+        if self._variant is not None or self._split is not None:
             return self.observe(HopBatch.of([src], [via], [dst], [latency], [e]))
         return self._observe_rows([int(src)], [int(via)], [int(dst)], [float(latency)], [e])
 
@@ -770,6 +846,9 @@ class Engine:
             fresh = self._link_delay[src, j] + np.where(np.arange(self.n) == dst, 0.0, vy)
             self.Q[src, :, j] = np.minimum(fresh, ceil)
             self.N[src, :, j] = 0
+            if self._split is not None:   # measured afresh: the old traffic is gone
+                self._split.lk_cnt[src, j] = 0.0
+                self._split.lk_sum[src, j] = 0.0
         else:
             self.Q[src, :, j] = ceil
         if self._variant is not None:
@@ -813,6 +892,11 @@ class Engine:
         update applies when a row carries no estimate."""
         if x == d:
             return 0.0
+        if self._split is not None:
+            p = self._split.pub[x, d]
+            if not (p > 0).any():
+                return self.settings.ceiling_s
+            return float(min(np.where(p > 0, p * self.Q[x, d], 0.0).sum(), self.settings.ceiling_s))
         g = int(self.greedy[x, d])
         return float(self.Q[x, d, g]) if g >= 0 else self.settings.ceiling_s
 
@@ -827,6 +911,8 @@ class Engine:
             d = np.broadcast_to(np.arange(n), x.shape)
         else:
             x, d = np.asarray(xs, dtype=np.int64), np.asarray(ds, dtype=np.int64)
+        if self._split is not None:
+            return _splitting.published_values(self._split.pub, self.Q, self.settings.ceiling_s)[x, d]
         w = x * n + d
         g = _flat(self.greedy).take(w)
         q = _flat(self.Q).take(w * K + np.maximum(g, 0))
@@ -844,6 +930,10 @@ class Engine:
         g = int(self.greedy[x, d])
         if g < 0:
             return []
+        if self._split is not None:
+            p = self._split.pub[x, d].tolist()
+            sl = self._slots[x].tolist()
+            return [(sl[g], p[g])] + [(sl[j], v) for j, v in enumerate(p) if v > 0 and j != g]
         alts = np.flatnonzero(self.alt[x, d]).tolist()
         y = int(self._slots[x, g])
         if not alts:
@@ -861,6 +951,8 @@ class Engine:
         arrays instead of one :meth:`weights` call per destination; the same tables, the
         same floats (greedy 1 - eps, each alternate eps / count, in slot order)."""
         rows = np.arange(self.n) if xs is None else np.asarray(xs, dtype=np.int64).reshape(-1)
+        if self._split is not None:
+            return [self.routes(int(x)) for x in rows.tolist()]
         if self._kern is not None:
             return _kernels.routes(self, rows)
         g = self.greedy[rows]
@@ -907,6 +999,8 @@ class Engine:
         """Recompute tables for every destination touched since the last call."""
         if now is not None:
             self.now = float(now)
+        if self._split is not None:
+            return self._decide_split()
         # the values compared: Q, or a variant's (predictive marks moving destinations dirty)
         self._qdec = self.Q if self._variant is None else self._variant.decision_values(self)
         extra: frozenset[int] = frozenset()
@@ -1034,6 +1128,18 @@ class Engine:
         self._stable[ds] = ~(forced & ~c1.T).any(axis=0)
         nodes = frozenset(np.flatnonzero(changed_w.any(axis=1)).tolist())
         return nodes, int(changed_g.sum()), prevented
+
+    def _decide_split(self) -> Decision:
+        """Split mode: every destination, every call (routerd.core.splitting)."""
+        assert self._split is not None
+        self._kdirty[:] = False
+        self._kcols[:] = False
+        self._dirty[:] = False
+        self._decisions += 1
+        nodes, changes, prevented = _splitting.decide(self._split, self, self.now)
+        self._route_changes += changes
+        self._loops_prevented += prevented
+        return Decision(frozenset(nodes), changes, prevented)
 
     def _decide_keys(self) -> frozenset[int]:
         """The key-level lane of :meth:`decide`, exact: the same tables as the full pass.
@@ -1163,6 +1269,11 @@ class Engine:
             decisions=self._decisions,
             links_down=int((self._present & ~self.live).sum()),
             pending_destinations=int((self._dirty | self._kcols).sum()),
+            **({} if self._split is None else {
+                "split_publications": self._split.publications,
+                "split_share_moves": self._split.share_moves,
+                "split_whole_publications": self._split.whole_publications,
+                "split_fallbacks": self._split.fallbacks}),
         )
 
     _ARRAYS = ("Q", "N", "td", "greedy", "eps", "alt", "live", "_dirty")
@@ -1182,6 +1293,8 @@ class Engine:
         out["topology"] = self.topo.digest
         if self._variant is not None:
             out["variant"] = self._variant.export()
+        if self._split is not None:
+            out["split"] = self._split.export()
         return out
 
     @classmethod
@@ -1216,6 +1329,8 @@ class Engine:
         eng._stable[:] = False
         if eng._variant is not None and "variant" in state:
             eng._variant.restore(state["variant"])
+        if eng._split is not None and "split" in state:
+            eng._split.restore(state["split"])
         # saved under another ceiling: restore the invariants the update relies on
         # (present slots within [0, ceiling], dead ones exactly at it, absent ones inf)
         ceil = settings.ceiling_s
@@ -1231,7 +1346,9 @@ class Engine:
         return all(np.array_equal(getattr(self, k), getattr(other, k), equal_nan=True)
                    for k in ("Q", "N", "td", "greedy", "eps", "alt", "live")) and (
             self._variant is None and other._variant is None
-            or self._variant is not None and self._variant.same(other._variant))
+            or self._variant is not None and self._variant.same(other._variant)) and (
+            self._split is None and other._split is None
+            or self._split is not None and self._split.same(other._split))
 
 
 def _flat(a: np.ndarray) -> np.ndarray:

@@ -71,6 +71,13 @@ SCHEMA: dict[str, Field] = {
     # -- engine: implementation (routerd/core/kernels.py) -----------------------------------
     "engine.kernels": F(str, "auto", "hot paths: compiled kernels when built (auto), insist on them (compiled), or the numpy reference; the same results either way", choices=("auto", "compiled", "reference")),
     # -- engine: published refinements (routerd/core/variants.py) ---------------------------
+    "engine.mode": F(str, "greedy", "learning mode: greedy (one next hop per destination, Q-routing with hysteresis and exploration) or split (shares over strictly downhill next hops moved by measured marginal delay; routerd/core/splitting.py)", choices=("greedy", "split")),
+    "engine.split.step": F(float, 1.0, "split: fraction of the curvature-scaled (Newton) share step taken per rate window (scaled by the time since the last decision)", lo=0, hi=1, lo_open=True, tunable=True),
+    "engine.split.max_step": F(float, 1.0, "split: most share one next hop gives up per rate window (scaled by the time since the last decision)", lo=0, hi=1, lo_open=True, tunable=True),
+    "engine.split.publish_threshold": F(float, 0.02, "split: a key's table is republished only when one of its shares moved by more than this", lo=0, hi=1, hi_open=True, tunable=True),
+    "engine.split.rate_window_s": F(float, 1.0, "split: time constant of the per-link rate and latency estimates and the per-key traffic rate", lo=0, lo_open=True, tunable=True),
+    "engine.split.refresh": F(float, 0.5, "split: step of the per-decision refresh of every entry of a used link from its link latency plus the neighbour's published estimate", lo=0, hi=1, lo_open=True, tunable=True),
+    "engine.split.prior_samples": F(float, 2.0, "split: weight (in samples) of a link's idle latency in its latency estimate", lo=0, lo_open=True, tunable=True),
     "engine.variant": F(str, "plain", "learning rule: plain Q-routing, full_echo (all neighbours' estimates), predictive (recovery-rate prediction), dual (backward rows carried by packets), confidence (confidence-weighted steps)", choices=("plain", "full_echo", "predictive", "dual", "confidence")),
     "engine.full_echo.damping": F(float, 0.5, "full_echo: step multiplier of the echo updates of the hops not taken (1 = the published rule)", lo=0, hi=1, lo_open=True, tunable=True),
     "engine.full_echo.latency_smoothing": F(float, 0.2, "full_echo: weight of a new hop latency in a link's expected latency", lo=0, hi=1, lo_open=True, tunable=True),
@@ -117,6 +124,8 @@ SCHEMA: dict[str, Field] = {
     "sim.feedback": F(str, "delayed", "estimate returns after the link's propagation delay, or instantly", choices=("delayed", "instant")),
     "sim.series_interval_s": F(float, 1.0, "virtual time per row of the simulator's time series (CSV, plots)", lo=0, lo_open=True),
     "sim.flows_per_pair": F(int, 8, "flow ids per (source, destination) pair; ecmp hashes the flow id", lo=1),
+    "sim.reroute.detect_s": F(float, 0.3, "reroute baseline: seconds from a link event until the routes are recomputed (failure detection, e.g. 3 probes missed at 100 ms)", lo=0),
+    "sim.reroute.tick_s": F(float, 0.01, "reroute baseline: how often due link events are checked (the recomputation lands at the first check at or after the detection time)", lo=0, lo_open=True),
     "sim.estimate": F(str, "published", "qrouting: the estimate a node reports: the Q of the next hop it publishes, or the minimum over its live next hops (engine.estimate)", choices=("published", "min")),
     # -- simulator, closed loop (--policy service): sim/closedloop.py ----------------------
     "sim.service.speed": F(float, 1.0, "closed loop: virtual seconds per wall-clock second (1 = real time)", lo=0.01, hi=1000),

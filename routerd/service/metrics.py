@@ -256,6 +256,16 @@ class RouterdCollector(Collector):
         yield _counter("routerd_loops_prevented", "(node, destination) pairs newly held off a choice that would have formed a forwarding loop (once per change)",
                        st.loops_prevented)
         yield _counter("routerd_decisions", "Table recomputations (engine decide calls)", st.decisions)
+        # split mode (engine.mode=split); zero in greedy mode
+        yield _counter("routerd_split_key_publications",
+                       "(node, destination) keys whose published shares changed (split mode)",
+                       st.split_publications)
+        yield _counter("routerd_split_whole_publications",
+                       "Destinations published whole because mixing keys would have closed a loop (split mode)",
+                       st.split_whole_publications)
+        yield _counter("routerd_split_fallbacks",
+                       "Keys put on the live shortest-path tree: route lost, gained, or on a cycle (split mode)",
+                       st.split_fallbacks)
         yield _counter("routerd_engine_updates", "Q-value updates applied by the engine", st.updates)
 
         yield _gauge("routerd_exploration_share",

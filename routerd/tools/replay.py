@@ -69,6 +69,7 @@ from routerd.io import config as _config
 from routerd.io import journal as J
 from routerd.io import shards as _shards
 from routerd.io import statedir as _statedir
+from routerd.core import splitting as _splitting
 from routerd.core import topology as _topology
 from routerd.core import variants as _variants
 from routerd.io import wire
@@ -87,6 +88,7 @@ ENGINE_KEYS: dict[str, str] = {
     "engine.explore.td_ref": "td_ref", "engine.explore.td_smoothing": "td_smoothing",
     "engine.explore.visits_half": "visits_half", "engine.kernels": "kernels",
     **{key: f for f, (key, _) in _variants.FIELDS.items()},
+    **{key: f for f, (key, _) in _splitting.FIELDS.items()},
 }
 _KEY_OF = {f: k for k, f in ENGINE_KEYS.items()}
 RECORDED = "recorded"

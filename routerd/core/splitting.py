@@ -1,0 +1,553 @@
+"""The ``split`` learning mode of the engine: load splitting by marginal delivery cost.
+
+Owns: the settings of ``engine.mode = split`` (:data:`FIELDS`), the per-link rate and
+latency estimates, the marginal-cost arithmetic (:func:`link_marginals`), the share step
+(:func:`share_step`), the weighted-graph loop check (:func:`cyclic`) and the split state
+(:class:`SplitState`: export, restore, comparison).
+Pure: numpy and the standard library only — no sockets, files, clocks, YAML or metrics;
+time comes in as the engine's ``now``.  Must not import routerd.core.engine (the engine imports
+this module and hands itself in; only its arrays are used).
+
+Theory of operation
+-------------------
+Start: one share on each next hop of the live delay-shortest tree (what ``reroute``
+routes), whatever the initial estimates.
+
+Still Q-routing at the core: ``Q[x, d, j]`` is learned from hop rows by the engine's own
+TD update with Robbins–Monro steps (Boyan & Littman 1994), unchanged.  Split mode adds
+three things around it.
+
+1. *Link estimates from every hop.*  Each accepted row ``(x, y, d, l)`` also feeds the
+   link x → y (slot j): an exponentially weighted count ``cnt`` and latency sum ``sum``,
+   both decayed with ``exp(-(now - t) / window)`` (``split_window_s``) when a row arrives
+   at a later ``now``.  So ``F = cnt / window`` is the link's measured rate (packets/s)
+   and ``L = (sum + k L0) / (cnt + k)`` its measured mean hop latency, pulled towards the
+   idle latency ``L0 = p + tau`` by ``k = split_prior`` samples' worth of prior (p the
+   propagation delay, tau the link's service time, see below).  A link that stops
+   carrying traffic drifts back to ``L0`` within a few windows instead of keeping a stale
+   value.  The same rows also count per (node, destination) key: ``t[x, d]`` is the rate
+   of d's traffic at x.  Within one ``now`` the decay factor is exactly 1, so these
+   updates are plain ordered sums (``np.add.at`` adds in index order): batched ==
+   sequential holds bit for bit.
+
+2. *Every entry fresh.*  At each decision, every live slot is refreshed for *every*
+   destination from its link's latency estimate, whichever destination's traffic
+   measured it::
+
+       Q[x, d, j] += refresh * (L[x, j] + V[y, d] - Q[x, d, j])        (V[d, d] = 0)
+
+   with ``V[y, d] = sum_z w[y, d, z] Q[y, d, z]`` y's published estimate (its shares
+   ``w``).  No entry keeps its initial value: a used link's entries follow its measured
+   latency, an idle link's its idle latency L0 plus the neighbour's estimate (not the
+   optimistic propagation-only start value that made greedy's argmin a stale entry).
+
+3. *Shares moved by marginal cost* (Gallager, "A minimum delay routing algorithm using
+   distributed computation", IEEE Trans. Comm. 25, 1977; Bertsekas & Gallager, Data
+   Networks, 2nd ed., §5.7).  Per link, from the measured rate F and queueing-plus-
+   transmission time ``s = L - p`` (M/M/1: ``s = 1/(C - F)``, so ``C = F + 1/s``)::
+
+       marginal   m = d/dF [F L(F)] = L + F s^2         (= C/(C-F)^2 + p, Kleinrock)
+       externality e = m - L = F s^2                     (what one more packet costs the others)
+       curvature  h = d2/dF2 [F L] = 2 s^2 + 2 F s^3    (= 2C/(C-F)^3)
+
+   The service time tau of an idle link is its capacity over the mean packet size,
+   estimated as the median over links with traffic of ``s / (1 + F s)`` (= 1/C) times
+   their capacity: so an idle link's marginal is ``p + tau``, not an optimistic ``p``.
+   Along the current share graph (acyclic, see 4) the engine sums, per (x, d)::
+
+       M[x, d] = sum_j w_j (m[x, j] + M[y_j, d])         link marginal distance
+       E[x, d] = sum_j w_j (e[x, j] + E[y_j, d])         downstream externality
+       H[x, d] = sum_j w_j (h[x, j] F[x, j] + H[y_j, d]) downstream flow-weighted curvature
+
+   The marginal delivery cost of next hop j is the learned estimate plus the
+   externality, ``delta_j = Q[x, d, j] + e[x, j] + E[y_j, d]`` (with accurate estimates
+   ``Q = L + V_y``, this is Gallager's ``m + M_y``).  Candidates are the live next hops of
+   strictly lower potential ``M[y, d] < M[x, d]``; j* is the candidate of least delta;
+   every other candidate gives up::
+
+       dw_j = min(w_j, max_step', eta * (delta_j - delta_j*) / (H_j + H_j*))
+
+   to j*, where ``H_j = g[x, j] + H[y_j, d]`` sums the *flow-weighted* curvature
+   ``g = h F`` along the path: the second-derivative-scaled projection step of Bertsekas &
+   Gallager §5.7 (moving ``dF`` from path j to j* changes the cost by
+   ``-(delta_j - delta_j*) dF + (H_j + H_j*) dF^2 / 2``), written per unit *share* of every
+   key crossing the path at once: if all of them take the same step, the total flow moved
+   is one Newton step, so many nodes acting on the same congested link do not herd.  Near
+   capacity h grows like ``(C - F)^-3`` and the step onto a loaded path shrinks: the shares
+   do not oscillate across a saturating link.  The price: on an *overloaded* link the
+   measured rate is the carried one and the sojourn is capped by the buffer, so its M/M/1
+   curvature is enormous and flow leaves it slowly (tried and measured: capping the
+   leaving path's curvature at 3-10x the receiving one's fixed a two-bridge network at
+   1.2x load but made geant and a random geometric graph collapse there).
+   ``eta = step * dt / window`` and ``max_step' = max_step * dt /
+   window`` (dt: time since the previous decision), so a full step takes about one rate
+   window however often decisions come.  Next hops already used may keep a share even
+   when uphill (they move by the gradient only: forcing them to zero at once made the
+   noisy potential flip whole shares); only a *new* share must go downhill.
+
+4. *Loop freedom at every instant.*  ``M[x, d] = sum_j w_j (m_j + M[y_j, d])`` with
+   ``m > 0`` exceeds ``M`` of at least one next hop x uses, so every routed node has a
+   downhill next hop to give share to.  Before the step, shares on dead links are
+   dropped (the rest renormalised: a subgraph of an acyclic graph), keys left with
+   nothing, or newly reachable, take the live shortest-path next hop, and :func:`cyclic`
+   (peeling sinks off the weighted graph) finds any cycle that makes; its nodes fall back
+   to the live shortest-path tree until none is left (the tree cannot loop, so this
+   ends).  After the step, a cycle can only run through an edge the step added (the old
+   graph was acyclic); such new edges on a cycle are cut and their share given back to
+   the key's other next hops, until no cycle is left (:func:`_revert_cycles`).  Both
+   repairs count as loops prevented.
+
+5. *Bounded churn.*  The internal shares move every decision; a key's published shares
+   are replaced by them only when one share differs by more than
+   ``split_threshold`` (or the published key uses a dead link, or gained or lost its
+   route).  Mixing keys published at different moments could close a cycle, so the
+   published graph is checked after every decision and a destination whose published
+   graph would loop is published whole from the internal (acyclic) shares — counted.
+   The published graph is therefore acyclic after every decision; a cycle found after
+   that repair is a bug and raises AssertionError.
+
+No exploration draws: the shares are the load splitting, and the refresh keeps entries
+of used links fresh without sampling (the engine's ``eps`` holds the off-greedy share
+for the statistics, at most ``1 - 1/K`` by construction, not an exploration rate).
+"""
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+
+MODES = ("greedy", "split")
+
+
+#: EngineSettings field -> (config key, default)
+FIELDS: dict[str, tuple[str, Any]] = {
+    "mode": ("engine.mode", "greedy"),
+    "split_step": ("engine.split.step", 1.0),
+    "split_max_step": ("engine.split.max_step", 1.0),
+    "split_threshold": ("engine.split.publish_threshold", 0.02),
+    "split_window_s": ("engine.split.rate_window_s", 1.0),
+    "split_refresh": ("engine.split.refresh", 0.5),
+    "split_prior": ("engine.split.prior_samples", 2.0),
+}
+
+
+def problems(s: Any) -> list[str]:
+    """What is wrong with the split fields of an EngineSettings (empty: fine)."""
+    bad: list[str] = []
+    if s.mode not in MODES:
+        bad.append(f"mode {s.mode!r} is not one of {', '.join(MODES)}")
+    if s.mode == "split" and s.variant != "plain":
+        bad.append(f"mode split needs variant plain, not {s.variant!r}")
+    if not 0 < s.split_step <= 1:
+        bad.append(f"split_step {s.split_step} is not in (0, 1]")
+    if not 0 < s.split_max_step <= 1:
+        bad.append(f"split_max_step {s.split_max_step} is not in (0, 1]")
+    if not 0 <= s.split_threshold < 1:
+        bad.append(f"split_threshold {s.split_threshold} is not in [0, 1)")
+    if not (s.split_window_s > 0 and math.isfinite(s.split_window_s)):
+        bad.append(f"split_window_s {s.split_window_s} is not a positive finite number")
+    if not 0 < s.split_refresh <= 1:
+        bad.append(f"split_refresh {s.split_refresh} is not in (0, 1]")
+    if not (s.split_prior > 0 and math.isfinite(s.split_prior)):
+        bad.append(f"split_prior {s.split_prior} is not a positive finite number")
+    return bad
+
+
+def from_config(cfg: Any) -> dict[str, Any]:
+    """The split fields from a Config (keys absent from an older mapping get defaults)."""
+    get = getattr(cfg, "get", None)
+    out: dict[str, Any] = {}
+    for f, (key, default) in FIELDS.items():
+        try:
+            out[f] = cfg[key]
+        except KeyError:
+            out[f] = get(key, default) if get is not None else default
+    return out
+
+
+# ---- the arithmetic (hand-checked in tests/test_splitting.py) ---------------------------------
+
+def link_marginals(L: np.ndarray, F: np.ndarray, prop: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(marginal m, externality e, curvature h) of links with mean hop latency L (s),
+    rate F (packets/s) and propagation delay prop (s), under the M/M/1 link model:
+    s = L - p = 1/(C - F) gives m = L + F s^2, e = F s^2, h = 2 s^2 + 2 F s^3
+    (Kleinrock; Bertsekas & Gallager §5.4-5.7: d/dF [F/(C-F)] = C/(C-F)^2)."""
+    s = np.maximum(L - prop, 0.0)
+    s2 = s * s
+    e = F * s2
+    return L + e, e, 2.0 * s2 + 2.0 * F * s2 * s
+
+
+def service_time(L: np.ndarray, F: np.ndarray, prop: np.ndarray) -> np.ndarray:
+    """1/C of an M/M/1 link from its measured latency and rate: s / (1 + F s), s = L - p."""
+    s = np.maximum(L - prop, 0.0)
+    return s / (1.0 + F * s)
+
+
+def share_step(w: np.ndarray, delta: np.ndarray, H: np.ndarray, cand: np.ndarray,
+               t: np.ndarray, step: float, max_step: float) -> np.ndarray:
+    """One projection step of the shares ``w`` (..., K) towards the least marginal cost.
+
+    ``delta``: marginal delivery cost per slot, ``H``: downstream curvature per slot,
+    ``cand``: slots allowed to hold a share, ``t``: traffic of the key (packets/s).
+    Non-candidates give up everything; every candidate but the cheapest gives up
+    ``min(w, max_step, step (delta - delta*) / (t (H + H*)))``; the cheapest takes it all.
+    Keys without a candidate are returned unchanged (the caller repairs them first)."""
+    has = np.asarray(cand.any(axis=-1))
+    dm = np.where(cand, delta, np.inf)
+    js = np.argmin(dm, axis=-1)[..., None]
+    dstar = np.take_along_axis(dm, js, axis=-1)
+    hstar = np.take_along_axis(np.where(cand, H, 0.0), js, axis=-1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        raw = step * (delta - dstar) / (t[..., None] * (H + hstar))
+    raw = np.where(np.isnan(raw), np.inf, raw)   # 0/0: no traffic and no curvature
+    raw = np.maximum(raw, 0.0)
+    give = np.where(cand, np.minimum(np.minimum(w, max_step), raw), w)
+    slot = np.arange(w.shape[-1])
+    give = np.where(slot == js, 0.0, give)
+    new = w - give
+    np.put_along_axis(new, js, np.take_along_axis(new, js, axis=-1) + give.sum(axis=-1, keepdims=True),
+                      axis=-1)
+    return np.where(has[..., None], new, w)
+
+
+def cyclic(w: np.ndarray, slots: np.ndarray) -> np.ndarray:
+    """(n, n) bool: nodes x of destination d's weighted graph (edge x -> slots[x, j] where
+    ``w[x, d, j] > 0``) that lie on a cycle or only lead into one.  Peels sinks: a node
+    all of whose successors are gone is gone (the destination first).  Exact for any graph."""
+    n = w.shape[0]
+    edge = w > 0                                             # (n, n, K)
+    ys = np.maximum(slots, 0)                                # (n, K)
+    alive = np.asarray(edge.any(axis=2))
+    alive[np.arange(n), np.arange(n)] = False
+    while True:
+        succ = alive[ys].transpose(0, 2, 1)                  # (n, n, K): alive[y_j, d]
+        keep = np.asarray(alive & (edge & succ).any(axis=2))
+        if np.array_equal(keep, alive):
+            return keep
+        alive = keep
+
+
+def dag_sums(w: np.ndarray, slots: np.ndarray, m: np.ndarray, e: np.ndarray, h: np.ndarray
+             ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(M, E, H) of the module docstring over an acyclic share graph (n, n, K): exact
+    after (longest path + 1) sweeps; unrouted keys get M = inf."""
+    n = w.shape[0]
+    ys = np.maximum(slots, 0)
+    on = w > 0
+    routed = on.any(axis=2)
+    diag = np.arange(n)
+    M = np.zeros((n, n))
+    E = np.zeros((n, n))
+    H = np.zeros((n, n))
+    mm, ee, hh = m[:, None, :], e[:, None, :], h[:, None, :]
+    for _ in range(n + 2):
+        My = M[ys].transpose(0, 2, 1)
+        Ey = E[ys].transpose(0, 2, 1)
+        Hy = H[ys].transpose(0, 2, 1)
+        with np.errstate(invalid="ignore"):
+            M2 = np.where(on, w * (mm + My), 0.0).sum(axis=2)
+            E2 = np.where(on, w * (ee + Ey), 0.0).sum(axis=2)
+            H2 = np.where(on, w * (hh + Hy), 0.0).sum(axis=2)
+        M2 = np.where(routed, M2, np.inf)
+        M2[diag, diag] = 0.0
+        E2[diag, diag] = 0.0
+        H2[diag, diag] = 0.0
+        if np.array_equal(M2, M) and np.array_equal(E2, E) and np.array_equal(H2, H):
+            return M, E, H
+        M, E, H = M2, E2, H2
+    raise AssertionError("split: the share graph is not acyclic (marginal sums did not settle)")
+
+
+class SplitState:
+    """The split mode's arrays for one engine (see the module docstring)."""
+
+    ARRAYS = ("lk_cnt", "lk_sum", "lk_t", "key_cnt", "key_t", "w", "pub")
+    SCALARS = ("publications", "share_moves", "forced", "fallbacks", "whole_publications",
+               "started")
+    FLOATS = ("last_now", "last_obs")
+
+    def __init__(self, eng: Any):
+        n, K = eng.n, eng.k
+        self.lk_cnt = np.zeros((n, K))
+        self.lk_sum = np.zeros((n, K))
+        self.lk_t = np.zeros((n, K))
+        self.key_cnt = np.zeros((n, n))
+        self.key_t = np.zeros((n, n))
+        self.w = np.zeros((n, n, K))
+        spt = eng._spt_live()    # start on the live delay-shortest tree (what reroute routes)
+        g = np.where(spt >= 0, eng._slot_of[np.arange(n)[:, None], np.maximum(spt, 0)], -1)
+        xs, ds = np.nonzero(g >= 0)
+        self.w[xs, ds, g[xs, ds]] = 1.0
+        self.pub = self.w.copy()
+        self.publications = 0       # keys whose published shares were replaced
+        self.share_moves = 0        # keys whose internal shares moved
+        self.forced = 0             # keys published for a dead link or a route gained/lost
+        self.fallbacks = 0          # keys put on the live shortest-path tree
+        self.whole_publications = 0  # destinations published whole to keep the graph acyclic
+        self.last_now = eng.now      # the previous decision's time (the step scales with it)
+        self.last_obs = -math.inf    # the newest observation's time
+        self.started = 0             # 1 once a row has been observed
+        topo = eng.topo
+        sl = np.maximum(topo.slot_link, 0)
+        self.prop = np.where(eng._present, topo.delay_s[sl], 0.0)
+        self.slots = eng._slots
+        self._last_uncycled = 0
+        self.cap_bps = np.where(eng._present, topo.capacity_bps[sl], np.inf)
+
+    # -- observations ---------------------------------------------------------------
+    def observe(self, x: np.ndarray, j: np.ndarray, d: np.ndarray, lat: np.ndarray,
+                now: float, window: float) -> None:
+        """Accepted rows, in order: decay what they touch to ``now``, then add them."""
+        if not self.started:          # the first rows: the step clock starts here
+            self.started = 1
+            self.last_now = now
+        self.last_obs = max(self.last_obs, now)
+        n, K = self.key_cnt.shape[0], self.lk_cnt.shape[1]
+        lk = x * K + j
+        ky = x * n + d
+        for cnt, tt, sm, idx in ((self.lk_cnt, self.lk_t, self.lk_sum, lk),
+                                 (self.key_cnt, self.key_t, None, ky)):
+            cf, tf = cnt.reshape(-1), tt.reshape(-1)
+            u = np.unique(idx)
+            f = np.exp(-(now - tf[u]) / window)
+            f = np.where(tf[u] == now, 1.0, f)     # exactly 1 within one now
+            cf[u] *= f
+            if sm is not None:
+                sf = sm.reshape(-1)
+                sf[u] *= f
+                np.add.at(sf, idx, lat)
+            tf[u] = now
+            np.add.at(cf, idx, 1.0)
+
+    def link_estimates(self, now: float, window: float, prior: float
+                       ) -> tuple[np.ndarray, np.ndarray]:
+        """(L, F) per slot at ``now``: measured mean latency (with the idle prior) and rate."""
+        f = np.exp(-np.maximum(now - self.lk_t, 0.0) / window)
+        cnt = self.lk_cnt * f
+        sm = self.lk_sum * f
+        F = cnt / window
+        with np.errstate(invalid="ignore", divide="ignore"):
+            Lm = np.where(cnt > 0, sm / np.where(cnt > 0, cnt, 1.0), self.prop)
+        tau = service_time(Lm, F, self.prop)
+        busy = (cnt >= 4.0) & np.isfinite(self.cap_bps)
+        bits = float(np.median(tau[busy] * self.cap_bps[busy])) if busy.any() else 0.0
+        tau0 = np.where(np.isfinite(self.cap_bps), bits / self.cap_bps, 0.0)
+        L0 = self.prop + tau0
+        L = (sm + prior * L0) / (cnt + prior)
+        return L, F
+
+    def key_rate(self, now: float, window: float) -> np.ndarray:
+        return self.key_cnt * np.exp(-np.maximum(now - self.key_t, 0.0) / window) / window
+
+    # -- measured demand (for the live optimality gap: routerd.sim.mindelay fed measured demand) --
+    def measured_demand(self, now: float, window: float) -> np.ndarray:
+        """(n, n) packets/s entering the network at x for d, estimated from the key rates:
+        the rate of d's traffic leaving x minus what x's neighbours send it for d (their
+        rate times their published share towards x), floored at 0.  The shape
+        ``routerd.sim.mindelay.flow_deviation`` / ``for_topology`` take as ``demand_pps``."""
+        t = self.key_rate(now, window)                       # (n, n): x, d
+        n, K = t.shape[0], self.pub.shape[2]
+        inflow = np.zeros((n, n))
+        ys = np.maximum(self.slots, 0)
+        for j in range(K):                                   # y -> slots[y, j] carries t[y] pub[y, :, j]
+            ok = self.slots[:, j] >= 0
+            np.add.at(inflow, ys[ok, j], t[ok] * self.pub[ok, :, j])
+        dem = np.maximum(t - inflow, 0.0)
+        dem[np.arange(n), np.arange(n)] = 0.0
+        return dem
+
+    def mean_packet_bytes(self, now: float, window: float, prior: float) -> float:
+        """The mean packet size the link estimates imply (median over busy links of
+        capacity x service time / 8), 0 before any link has carried traffic."""
+        L, F = self.link_estimates(now, window, prior)
+        tau = service_time(L, F, self.prop)
+        busy = (F * window >= 4.0) & np.isfinite(self.cap_bps)
+        return float(np.median(tau[busy] * self.cap_bps[busy])) / 8.0 if busy.any() else 0.0
+
+    # -- state ------------------------------------------------------------------------
+    def export(self) -> dict[str, Any]:
+        out: dict[str, Any] = {k: getattr(self, k).copy() for k in self.ARRAYS}
+        out.update({k: getattr(self, k) for k in self.SCALARS + self.FLOATS})
+        return out
+
+    def restore(self, st: dict[str, Any]) -> None:
+        for k in self.ARRAYS:
+            a = np.asarray(st[k])
+            cur = getattr(self, k)
+            if a.shape != cur.shape:
+                raise ValueError(f"split state array {k} has shape {a.shape}, expected {cur.shape}")
+            setattr(self, k, np.array(a, dtype=cur.dtype, order="C", copy=True))
+        for k in self.SCALARS:
+            setattr(self, k, int(st[k]))
+        for k in self.FLOATS:
+            setattr(self, k, float(st[k]))
+
+    def same(self, other: SplitState | None) -> bool:
+        return other is not None and all(
+            np.array_equal(getattr(self, k), getattr(other, k)) for k in self.ARRAYS) and (
+            self.last_now == other.last_now and self.last_obs == other.last_obs
+            and self.started == other.started)
+
+
+def onehot_slots(slot: np.ndarray, K: int) -> np.ndarray:
+    """(..., K) shares with 1 on ``slot`` (none where slot < 0)."""
+    out = np.zeros(slot.shape + (K,))
+    ok = slot >= 0
+    idx = np.nonzero(ok)
+    out[idx + (slot[ok],)] = 1.0
+    return out
+
+
+def decide(st: SplitState, eng: Any, now: float) -> tuple[set[int], int, int]:
+    """One split-mode decision over every destination (see the module docstring).
+    Returns (nodes whose published table changed, greedy hops changed, loops prevented)."""
+    s = eng.settings
+    n, K = eng.n, eng.k
+    slots = eng._slots
+    ys = np.maximum(slots, 0)
+    live = eng.live
+    live3 = live[:, None, :]
+    diag = np.arange(n)
+    ceil = s.ceiling_s
+    L, F = st.link_estimates(now, s.split_window_s, s.split_prior)
+    # 1. refresh the entries of every live slot whose link carried rows, all destinations
+    fresh = live.copy()
+    if fresh.any():
+        V = published_values(st.pub, eng.Q, ceil)
+        xr, jr = np.nonzero(fresh)
+        yr = slots[xr, jr]
+        tgt = L[xr, jr][:, None] + V[yr]                      # (r, n); V[y, y] = 0
+        q = eng.Q[xr, :, jr]
+        new = q + s.split_refresh * (tgt - q)
+        eng.Q[xr, :, jr] = np.minimum(np.maximum(new, 0.0), ceil)
+    # 2. repair: no share on a dead link, every reachable key routed, no cycle
+    spt = eng._spt_live()                                      # (n, n) node, -1
+    spt_slot = np.where(spt >= 0, eng._slot_of[np.arange(n)[:, None], np.maximum(spt, 0)], -1)
+    reach = spt_slot >= 0
+    w = st.w
+    lost = (w * (~live3)).sum(axis=2) > 0
+    w = np.where(live3, w, 0.0)
+    tot = w.sum(axis=2)
+    ren = lost & (tot > 0)
+    if ren.any():
+        w[ren] /= tot[ren][:, None]
+    w[~reach] = 0.0
+    need = reach & ~(tot > 0)
+    prevented = 0
+    if need.any():
+        w[need] = onehot_slots(spt_slot[need], K)
+        st.fallbacks += int(need.sum())
+    w = _uncycle(st, w, spt_slot, n)
+    prevented += st._last_uncycled
+    # 3. marginals along the (acyclic) share graph, then one projection step
+    m, e, h = link_marginals(L, F, st.prop)
+    m = np.maximum(m, 1e-12)
+    g = h * F                                       # flow-weighted curvature (s)
+    M, E, H = dag_sums(w, slots, m, e, g)
+    My = M[ys].transpose(0, 2, 1)
+    Ey = E[ys].transpose(0, 2, 1)
+    Hy = H[ys].transpose(0, 2, 1)
+    # a share may be gained only by a strictly downhill next hop (a new edge cannot close
+    # a cycle through the order of M); next hops already used keep moving by the gradient
+    cand = live3 & eng._present[:, None, :] & ((My < M[:, :, None]) | (w > 0))
+    cand[diag, diag] = False
+    with np.errstate(invalid="ignore"):
+        delta = np.where(cand, eng.Q + e[:, None, :] + Ey, np.inf)
+        Hj = np.where(cand, g[:, None, :] + Hy, 0.0)
+    # the step scales with the time the estimates had to move since the last decision:
+    # from then to now, but not past the newest observation (a shell that decides long
+    # after its last rows, or for the first time after starting, moves nothing on no news)
+    dt = min(max(min(now, st.last_obs) - st.last_now, 0.0), s.split_window_s)
+    st.last_now = now
+    eta = s.split_step * dt / s.split_window_s
+    new = share_step(w, delta, Hj, cand, np.ones((n, n)), eta, s.split_max_step * dt / s.split_window_s)
+    new, reverted = _revert_cycles(new, w, slots, n)
+    prevented += reverted
+    moved = np.abs(new - st.w).max(axis=2) > 0
+    st.share_moves += int(moved.sum())
+    st.w = new
+    # 4. publish keys that moved enough, keep the published graph acyclic
+    pub = st.pub
+    on_new = new.sum(axis=2) > 0
+    upd = (np.abs(new - pub).max(axis=2) > s.split_threshold)
+    forced = ((pub * (~live3)).sum(axis=2) > 0) | ((pub.sum(axis=2) > 0) != on_new)
+    upd |= forced
+    st.forced += int((forced & ~(np.abs(new - pub).max(axis=2) > s.split_threshold)).sum())
+    old_pub = pub.copy()
+    pub[upd] = new[upd]
+    cyc = cyclic(pub, slots)
+    if cyc.any():
+        bad_d = np.flatnonzero(cyc.any(axis=0))
+        pub[:, bad_d, :] = new[:, bad_d, :]
+        st.whole_publications += int(bad_d.size)
+        if cyclic(pub, slots).any():  # cannot happen: new is acyclic
+            raise AssertionError("split: the published share graph has a cycle")
+    changed = np.abs(pub - old_pub).max(axis=2) > 0
+    st.publications += int(changed.sum())
+    # readers: greedy = the largest published share, eps = the rest, alt = the others
+    routed = pub.sum(axis=2) > 0
+    g = np.where(routed, np.argmax(pub, axis=2), -1)
+    route_changes = int((g != eng.greedy).sum())
+    eng.greedy[:] = g
+    eng.eps[:] = np.where(routed, 1.0 - pub.max(axis=2), 0.0)
+    eng.alt[:] = (pub > 0) & (np.arange(K)[None, None, :] != g[:, :, None])
+    nodes = set(np.flatnonzero(changed.any(axis=1)).tolist())
+    return nodes, route_changes, prevented
+
+
+def _uncycle(st: SplitState, w: np.ndarray, spt_slot: np.ndarray, n: int) -> np.ndarray:
+    """Put nodes on (or only leading into) a cycle on the live shortest-path tree until
+    none is left; the count goes to ``st._last_uncycled``."""
+    st._last_uncycled = 0
+    K = w.shape[2]
+    for _ in range(n + 2):
+        cyc = cyclic(w, st_slots(st))
+        if not cyc.any():
+            return w
+        st._last_uncycled += int(cyc.sum())
+        w[cyc] = onehot_slots(spt_slot[cyc], K)
+        st.fallbacks += int(cyc.sum())
+    raise AssertionError("split: loop repair did not converge")
+
+
+def _revert_cycles(new: np.ndarray, old: np.ndarray, slots: np.ndarray, n: int
+                   ) -> tuple[np.ndarray, int]:
+    """Keys on a cycle of ``new`` go back to their shares in ``old`` (acyclic), until no
+    cycle is left: a key reverted has only old edges, so at worst this ends at ``old``."""
+    reverted = 0
+    fresh = (new > 0) & ~(old > 0)                  # edges this step added
+    for _ in range(n * n + 1):
+        cyc = cyclic(new, slots)
+        if not cyc.any():
+            return new, reverted
+        cut = cyc[:, :, None] & fresh               # new edges out of nodes on a cycle
+        keys = np.asarray(cut.any(axis=2))
+        if not keys.any():
+            raise AssertionError("split: a cycle made of old edges only")
+        # the cut edges' shares go back to the key's other next hops, pro rata
+        kept = np.where(cut, 0.0, new)
+        tot = kept.sum(axis=2)
+        alone = keys & ~(tot > 0)
+        kept[alone] = old[alone]
+        scale = np.where(keys & (tot > 0), 1.0 / np.where(tot > 0, tot, 1.0), 1.0)
+        new = np.where(keys[:, :, None], kept * scale[:, :, None], new)
+        fresh &= ~cut
+        reverted += int(keys.sum())
+    raise AssertionError("split: cycle reversion did not converge")
+
+
+def st_slots(st: SplitState) -> np.ndarray:
+    return st.slots
+
+
+def published_values(pub: np.ndarray, Q: np.ndarray, ceiling: float) -> np.ndarray:
+    """(n, n) V[x, d] = sum_j pub[x, d, j] Q[x, d, j]: the expected remaining time on the
+    published split (0 at the destination, the ceiling without a route)."""
+    n = pub.shape[0]
+    with np.errstate(invalid="ignore"):
+        v = np.where(pub > 0, pub * Q, 0.0).sum(axis=2)
+    v = np.where(pub.sum(axis=2) > 0, np.minimum(v, ceiling), ceiling)
+    v[np.arange(n), np.arange(n)] = 0.0
+    return v

@@ -1,0 +1,246 @@
+"""The split learning mode (routerd/core/splitting.py): hand-worked marginal costs and share
+steps, the loop check, hypothesis properties (batched == sequential, acyclic published
+graph after every decision, shares summing to 1 over live next hops), state round trips,
+and simulated targets on a network of our own (slow)."""
+from __future__ import annotations
+
+import math
+
+import networkx as nx
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from routerd.core import splitting as S
+from routerd.core import topology as T
+from routerd.core.engine import Engine, EngineSettings, HopBatch
+
+HYP = settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow,
+                                                                     HealthCheck.function_scoped_fixture])
+SPLIT = EngineSettings(mode="split")
+
+
+# ---- hand-worked arithmetic ---------------------------------------------------------------
+def test_marginal_of_an_mm1_link_by_hand() -> None:
+    # M/M/1 link (Kleinrock; Bertsekas & Gallager, Data Networks §5.4): C = 1000 packets/s,
+    # F = 500 packets/s, p = 1 ms.  Sojourn s = 1/(C - F) = 2 ms, so L = 3 ms.
+    # d/dF [F/(C-F)] = C/(C-F)^2 = 1000/500^2 = 4 ms, plus p: 5 ms.
+    # d2/dF2 [F/(C-F)] = 2C/(C-F)^3 = 2000/1.25e8 = 1.6e-5 s^2.
+    L, F, p = np.array([0.003]), np.array([500.0]), np.array([0.001])
+    m, e, h = S.link_marginals(L, F, p)
+    assert m[0] == pytest.approx(0.005, rel=1e-12)
+    assert e[0] == pytest.approx(0.002, rel=1e-12)        # m - L: the others' extra delay
+    assert h[0] == pytest.approx(1.6e-5, rel=1e-12)
+    # and the service time it implies is 1/C
+    assert S.service_time(L, F, p)[0] == pytest.approx(0.001, rel=1e-12)
+    # an idle link: marginal = its latency, no externality, no curvature
+    m0, e0, h0 = S.link_marginals(np.array([0.001]), np.array([0.0]), p)
+    assert (m0[0], e0[0], h0[0]) == (0.001, 0.0, 0.0)
+
+
+def test_share_step_by_hand() -> None:
+    # two next hops, delta 10 ms and 20 ms, curvatures 0.02 and 0.03 (shares of one key,
+    # t = 1): the scaled projection step (Bertsekas & Gallager §5.7) moves
+    # (0.020 - 0.010) / (0.03 + 0.02) = 0.2 from the dearer to the cheaper hop
+    w = np.array([0.6, 0.4])
+    d = np.array([0.010, 0.020])
+    cand = np.array([True, True])
+    t = np.array(1.0)
+    out = S.share_step(w, d, np.array([0.02, 0.03]), cand, t, 1.0, 1.0)
+    assert out == pytest.approx([0.8, 0.2], abs=1e-15)
+    # half the step with step = 0.5; capped at max_step = 0.1
+    assert S.share_step(w, d, np.array([0.02, 0.03]), cand, t, 0.5, 1.0) == pytest.approx([0.7, 0.3])
+    assert S.share_step(w, d, np.array([0.02, 0.03]), cand, t, 1.0, 0.1) == pytest.approx([0.7, 0.3])
+    # a step larger than the share held empties it (projection onto w >= 0)
+    assert S.share_step(w, d, np.array([0.005, 0.005]), cand, t, 1.0, 1.0) == pytest.approx([1.0, 0.0])
+    # a steep leaving path slows the step: 0.01 / (0.5 + 0.01) of a share
+    assert S.share_step(w, d, np.array([0.01, 0.5]), cand, t, 1.0, 1.0) == pytest.approx(
+        [0.6 + 0.01 / 0.51, 0.4 - 0.01 / 0.51])
+    # a non-candidate gives up everything at once; the third hop is not allowed
+    w3 = np.array([0.5, 0.3, 0.2])
+    out3 = S.share_step(w3, np.array([0.01, 0.02, np.inf]), np.array([0.05, 0.05, 0.0]),
+                        np.array([True, True, False]), t, 1.0, 1.0)
+    assert out3 == pytest.approx([0.8, 0.2, 0.0])
+    # no candidate: unchanged (the engine repairs such keys before stepping)
+    assert S.share_step(w, d, np.array([0.0, 0.0]), np.array([False, False]), t, 1.0, 1.0).tolist() == w.tolist()
+
+
+def _tri() -> T.Topology:
+    doc = {"topology": {"name": "tri", "nodes": ["a", "b", "c"],
+                        "defaults": {"capacity_bps": 1e6, "buffer_pkts": 64},
+                        "links": [{"between": ["a", "b"], "delay_s": 0.001},
+                                  {"between": ["b", "c"], "delay_s": 0.001},
+                                  {"between": ["a", "c"], "delay_s": 0.003}]}}
+    return T.from_mapping(doc)
+
+
+def test_cyclic_finds_a_two_node_cycle_and_nothing_else() -> None:
+    t = _tri()
+    n, K = t.n, t.slots.shape[1]
+    a, b, c = (t.index[x] for x in "abc")
+    w = np.zeros((n, n, K))
+    w[a, c, t.slot_of[a, b]] = 1.0              # a -> b for c
+    w[b, c, t.slot_of[b, c]] = 1.0              # b -> c
+    assert not S.cyclic(w, t.slots).any()
+    w[b, c, t.slot_of[b, c]] = 0.5
+    w[b, c, t.slot_of[b, a]] = 0.5              # b also back to a: a <-> b
+    cyc = S.cyclic(w, t.slots)
+    assert cyc[a, c] and cyc[b, c] and cyc.sum() == 2
+
+
+# ---- the engine in split mode ---------------------------------------------------------------
+def _rows(draw: st.DrawFn, t: T.Topology, lo: int, hi: int) -> list[tuple]:
+    m = draw(st.integers(lo, hi))
+    out = []
+    for _ in range(m):
+        k = draw(st.integers(0, t.n_links - 1))
+        x, y = int(t.src[k]), int(t.dst[k])
+        d = draw(st.integers(0, t.n - 1))
+        if d == x:
+            d = y
+        lat = draw(st.floats(0.0, 0.05))
+        est = draw(st.one_of(st.just(math.nan), st.floats(0.0, 0.2)))
+        out.append((x, y, d, lat, est))
+    return out
+
+
+rows_of = st.composite(_rows)
+
+
+@HYP
+@given(data=st.data())
+def test_split_batched_equals_sequential(small_ring: T.Topology, data: st.DataObject) -> None:
+    t = small_ring
+    a, b = Engine(t, SPLIT), Engine(t, SPLIT)
+    now = 0.0
+    for _ in range(data.draw(st.integers(1, 4))):
+        rows = data.draw(rows_of(t, 1, 60))
+        now += data.draw(st.floats(0.0, 0.5))
+        a.observe(HopBatch.from_rows(rows), now)
+        for r in rows:
+            b.observe_one(*r[:4], estimate=None if r[4] != r[4] else r[4], now=now)
+        da, db = a.decide(now), b.decide(now)
+        assert da == db
+        assert a.same_state(b)
+
+
+def _check_published(eng: Engine) -> None:
+    st_ = eng._split
+    assert st_ is not None
+    pub = st_.pub
+    n = eng.n
+    live = eng.live
+    for d in range(n):
+        g = nx.DiGraph()
+        for x in range(n):
+            ws = eng.weights(x, d)
+            if x == d:
+                assert not ws
+                continue
+            if ws:
+                # shares sum to 1 over live next hops, every one live and positive
+                assert sum(w for _, w in ws) == pytest.approx(1.0, abs=1e-9)
+                for y, w in ws:
+                    assert w > 0 and bool(live[x, eng._slot_of[x, y]])
+                    g.add_edge(x, y)
+        # reference: networkx.is_directed_acyclic_graph on the weighted forwarding graph
+        assert nx.is_directed_acyclic_graph(g), d
+    assert not S.cyclic(pub, eng._slots).any()
+
+
+@HYP
+@given(data=st.data())
+def test_split_published_graph_acyclic_after_every_decide(small_ring: T.Topology,
+                                                          data: st.DataObject) -> None:
+    t = small_ring
+    eng = Engine(t, EngineSettings(mode="split", split_threshold=data.draw(st.sampled_from([0.0, 0.02, 0.3])),
+                                   initial_mode=data.draw(st.sampled_from(["shortest", "constant"]))))
+    now = 0.0
+    for _ in range(data.draw(st.integers(1, 6))):
+        rows = data.draw(rows_of(t, 0, 80))
+        now += data.draw(st.floats(0.01, 0.3))
+        if rows:
+            eng.observe(HopBatch.from_rows(rows), now)
+        if data.draw(st.booleans()):
+            k = data.draw(st.integers(0, t.n_links - 1))
+            eng.set_link(int(t.src[k]), int(t.dst[k]), data.draw(st.booleans()), now)
+        eng.decide(now)
+        _check_published(eng)
+
+
+def test_split_state_round_trip_and_same_future(small_ring: T.Topology) -> None:
+    t = small_ring
+    rng = np.random.default_rng(5)
+    eng = Engine(t, SPLIT)
+
+    def batch(m: int) -> HopBatch:
+        k = rng.integers(0, t.n_links, m)
+        x, y = t.src[k].astype(int), t.dst[k].astype(int)
+        d = rng.integers(0, t.n, m)
+        d = np.where(d == x, y, d)
+        return HopBatch.of(x, y, d, rng.uniform(0.001, 0.02, m))
+
+    for i in range(5):
+        eng.observe(batch(200), 0.1 * (i + 1))
+        eng.decide(0.1 * (i + 1))
+    st = eng.export_state()
+    assert "split" in st
+    back = Engine.from_state(t, SPLIT, st)
+    assert back.same_state(eng)
+    b1 = batch(300)
+    eng.observe(b1, 0.7)
+    back.observe(b1, 0.7)
+    assert eng.decide(0.7) == back.decide(0.7)
+    assert back.same_state(eng)
+
+
+def test_every_entry_of_a_used_link_is_refreshed(small_ring: T.Topology) -> None:
+    # rows for one destination only: the link's entries for *every* destination move
+    # from their initial values (the issue's stale-entry cause)
+    t = small_ring
+    eng = Engine(t, SPLIT)
+    q0 = eng.Q.copy()
+    x, y = int(t.src[0]), int(t.dst[0])
+    d = next(v for v in range(t.n) if v not in (x, y))
+    j = t.slot_of[x, y]
+    for i in range(10):
+        eng.observe(HopBatch.of([x] * 30, [y] * 30, [d] * 30, [0.02] * 30), 0.05 * (i + 1))
+        eng.decide(0.05 * (i + 1))
+    others = [v for v in range(t.n) if v not in (x, d)]
+    assert all(eng.Q[x, v, j] != q0[x, v, j] for v in others)
+    # and the link's latency estimate is the measured one (prior weight 2 of 302 samples)
+    L, _ = eng._split.link_estimates(0.5, 1.0, 2.0)
+    assert L[x, j] == pytest.approx(0.02, rel=0.02)
+
+
+def test_greedy_mode_has_no_split_state(small_ring: T.Topology) -> None:
+    eng = Engine(small_ring, EngineSettings())
+    assert eng._split is None and "split" not in eng.export_state()
+    with pytest.raises(ValueError, match="mode split needs variant plain"):
+        EngineSettings(mode="split", variant="predictive")
+    with pytest.raises(ValueError, match="mode 'fast'"):
+        EngineSettings(mode="fast")
+
+
+def test_measured_demand_recovers_what_enters_the_network() -> None:
+    # a -> b -> c for destination c at 100 rows/s on each hop: only a injects (100/s);
+    # b's rows are a's traffic passing through (hand-worked: 100 - 1.0 x 100 = 0)
+    t = _tri()
+    a, b, c = (t.index[x] for x in "abc")
+    eng = Engine(t, EngineSettings(mode="split"))
+    st_ = eng._split
+    K = t.slots.shape[1]
+    st_.pub[a, c] = 0.0
+    st_.pub[a, c, t.slot_of[a, b]] = 1.0
+    for i in range(1, 41):                       # 40 batches of 5 rows per 0.05 s, each hop
+        now = 0.05 * i
+        eng.observe(HopBatch.of([a] * 5 + [b] * 5, [b] * 5 + [c] * 5, [c] * 10, [0.002] * 10), now)
+    dem = st_.measured_demand(2.0, eng.settings.split_window_s)
+    rate = st_.key_rate(2.0, eng.settings.split_window_s)
+    assert rate[a, c] == pytest.approx(rate[b, c])
+    assert dem[a, c] == pytest.approx(rate[a, c]) and dem[b, c] == pytest.approx(0.0, abs=1e-9)
+    # an exponentially weighted count over 1 s windows of a steady 100/s: 100 (1 - e^-2)
+    # after 2 s, plus the discretisation of 5-row batches every 0.05 s
+    assert 80.0 < rate[a, c] < 100.0
+    assert K == st_.pub.shape[2]
