@@ -131,20 +131,6 @@ def test_split_link_cut_loses_only_what_was_queued_and_recovers() -> None:
     assert during <= 1.10 * res.delay_s + 0.002, (during, res.delay_s)
 
 
-class _Reseeded:
-    """In-process split qrouting with its own draw stream (the traffic, seeded by the run,
-    stays the same): the same construction as tests/test_closedloop.py's."""
-
-    def __new__(cls, k: int) -> Any:
-        from routerd.sim.policies import QRouting
-
-        class R(QRouting):
-            def attach(self, topology: Any, rng: np.random.Generator, settings: Any) -> None:
-                super().attach(topology, np.random.default_rng([20261203, k]), settings)
-
-        return R()
-
-
 @pytest.mark.xfail(strict=False, reason=(
     "issue 14 target not reliably met: the closed loop in split mode lands outside the seeds' "
     "99% interval in about half the runs here (18.8 ms against 16.5 +- 2.1 ms), since split "
