@@ -36,7 +36,6 @@ sys.path.insert(0, ROOT)
 
 from routerd.tools import lab as L
 from routerd.agent import overlay as ov
-from routerd.core import topology as T
 from routerd.io import topofiles as TF
 
 PORT = 7400

@@ -2,24 +2,29 @@
 
 Measured in one run on this machine (two cores shared by the client, the front and the
 workers), ipc:// endpoints in a tmp dir, ``service.journal.fsync: never`` (an fsync per
-group commit measures the disk, not the split), columnar batches of 1,024 rows on a
+group commit measures the disk, not the split), the optimality gap's runner off (one
+optimiser per process would bill the split), columnar batches of 1,024 rows on a
 ring-with-chords graph of our own (200 nodes, 400 links: enough engine work per row that
 the split has something to spread), 16 batches in flight (like ``routerd.agent.client.Reporter``):
 
 * ``shard_ingest_w1_rows_per_s`` — the front with one worker, ratio to one plain process;
 * ``shard_ingest_w2_rows_per_s`` — the front with two workers, ratio to the front with one
   (the scaling figure: on two cores the client, the front and the workers share them);
+* ``shard_ingest_w4_rows_per_s`` — the front with four workers, ratio to the front with one;
 * ``shard_front_rows_per_s`` — what the front's own work (decode, split, encode the
   pieces, combine the acks) costs per row, in this process: its ceiling, ratio to the
   plain process's measured ingest;
-* ``shard_engine_*_n1000`` — on a 1,000-node graph: engine state bytes per worker (each
-  worker holds the whole (n, n, K) arrays: ratio 1.0 to one process — the split saves CPU,
-  not memory), update rate (observe + the decide that follows) of one process against one
-  worker of two taking its half of the same rows.
+* ``shard_engine_*_n1000`` — on a 1,000-node graph: engine state bytes of the largest
+  worker of N = 2 and 4 (each holds only its destinations' columns, ``Engine(owned=)``),
+  ratio to one process's; update rate (observe + the decide that follows) of one process
+  against one worker of two and of four taking its share of the same rows;
+* ``shard_rss_*_n1000`` (full runs) — resident memory of real processes at 1,000 nodes after
+  the same 8 batches: one process and the largest worker for N = 1, 2, 4; the ratio is
+  the worker's share of the whole engine's state, (worker - base) / (one - base), base =
+  one process less its engine state bytes (what a process holds besides the engine).
 """
 from __future__ import annotations
 
-import copy
 import os
 import shutil
 import subprocess
@@ -38,7 +43,7 @@ for p in (ROOT, HERE):
     if p not in sys.path:
         sys.path.insert(0, p)
 
-from bench_engine import random_rows, ring_with_chords
+from bench_engine import random_rows, ring_with_chords, write_node_link
 from bench_ingest import Frames, acked
 
 from routerd.service import shard
@@ -49,8 +54,13 @@ from routerd.io.childproc import parse_ready
 from routerd.core.engine import Engine, EngineSettings
 
 ROWS = 1024
+# the optimality gap's runner off (engine.optimum.interval_s 0): each service and each
+# worker would start its own optimiser child and run it every 5 s on the same topology,
+# about a second of a core each — four workers' worth of it against one worker's in the
+# scaling figures, and about ten child interpreters starting beside the measurements
 CONF = {"service": {"journal": {"fsync": "never"}, "snapshot_interval_s": 3600,
-                    "publish_interval_s": 2.0}}
+                    "publish_interval_s": 2.0},
+        "engine": {"optimum": {"interval_s": 0}}}
 
 
 def _fig(value: float, unit: str, ratio: float, against: str, **kw: Any) -> dict[str, Any]:
@@ -122,45 +132,119 @@ def _front_ceiling(topo: T.Topology, frames: Frames, smap: shard.ShardMap, budge
     return n * frames.rows / (time.perf_counter() - t0)
 
 
+def _state_bytes(eng: Engine) -> int:
+    return sum(v.nbytes for v in eng.export_state().values() if isinstance(v, np.ndarray))
+
+
 def _engine_split(quick: bool) -> dict[str, dict[str, Any]]:
     t = ring_with_chords(1000, 1000, seed=1000)
     rng = np.random.default_rng(5)
-    smap = shard.ShardMap.build(t, 2)
-    own0 = smap.owner == 0
-    eng_one = Engine(t, EngineSettings())
-    eng_w0 = copy.deepcopy(eng_one)   # the same start, built once
-    state = sum(v.nbytes for v in eng_one.export_state().values() if isinstance(v, np.ndarray))
+    # through a saved state, as the workers' engines below: every array's pages touched
+    # (a fresh engine's zero arrays fault in on first write, which would bill one side)
+    start = Engine(t, EngineSettings()).export_state()   # the same start for the workers' engines
+    eng_one = Engine.from_state(t, EngineSettings(), start)
+    state = _state_bytes(eng_one)
     batches = [random_rows(t, 4096, rng) for _ in range(1 if quick else 8)]
-    rows_one = rows_w0 = 0
-    t_one = t_w0 = 0.0
+    t_one = 0.0
+    rows_one = 0
     for i, b in enumerate(batches):
         t0 = time.perf_counter()
         eng_one.observe(b, now=float(i))
         eng_one.decide(float(i))
         t_one += time.perf_counter() - t0
         rows_one += len(b)
-        mine = b.take(np.flatnonzero(own0[b.dst]))
-        t0 = time.perf_counter()
-        eng_w0.observe(mine, now=float(i))
-        eng_w0.decide(float(i))
-        t_w0 += time.perf_counter() - t0
-        rows_w0 += len(mine)
-    r_one, r_w0 = rows_one / t_one, rows_w0 / t_w0
-    return {
-        "shard_engine_state_bytes_n1000": _fig(
-            state, "bytes", 1.0, "one process's engine: each worker holds the same (n, n, K) "
-            "arrays (no owned-destination mask in the engine yet)", nodes=t.n, slots=eng_one.k),
+    r_one = rows_one / t_one
+    figs = {
+        "shard_engine_state_bytes_n1000_one": _fig(
+            state, "bytes", 1.0, "itself: one process's engine, (n, n, K) arrays",
+            nodes=t.n, slots=eng_one.k),
         "shard_engine_rows_per_s_n1000_one": _fig(
             r_one, "rows/s", 1.0, "itself: observe 4,096 rows for every destination + decide",
             nodes=t.n),
-        "shard_engine_rows_per_s_n1000_w0of2": _fig(
-            r_w0, "rows/s", r_w0 / r_one, "one process on the whole batch: worker 0 of 2 "
-            "takes its half (observe + decide of its destinations)", nodes=t.n,
-            destinations=int(own0.sum())),
-        "shard_engine_batch_s_n1000_w0of2": _fig(
-            t_w0 / len(batches), "s", t_w0 / t_one, "one process's time for the whole batch "
-            "(2 workers on 2 cores: the batch takes the larger half)", nodes=t.n),
     }
+    for n in (2, 4):
+        smap = shard.ShardMap.build(t, n)
+        # every worker's engine (its columns only); the largest is the figure
+        sizes = [_state_bytes(Engine(t, EngineSettings(), owned=smap.owned(k))) for k in range(n)]
+        own0 = smap.owner == 0
+        # worker 0 from the same start as the whole engine: its columns (exact)
+        w0 = Engine.from_state(t, EngineSettings(), start, owned=smap.owned(0))
+        t_w0, rows_w0 = 0.0, 0
+        for i, b in enumerate(batches):
+            mine = b.take(np.flatnonzero(own0[b.dst]))
+            t0 = time.perf_counter()
+            w0.observe(mine, now=float(i))
+            w0.decide(float(i))
+            t_w0 += time.perf_counter() - t0
+            rows_w0 += len(mine)
+        r_w0 = rows_w0 / t_w0
+        figs[f"shard_engine_state_bytes_n1000_w{n}"] = _fig(
+            max(sizes), "bytes", max(sizes) / state, f"one process's engine: the largest of {n} "
+            "workers holds only its destinations' columns", nodes=t.n, workers=n,
+            per_worker=sizes)
+        figs[f"shard_engine_rows_per_s_n1000_w0of{n}"] = _fig(
+            r_w0, "rows/s", r_w0 / r_one, f"one process on the whole batch: worker 0 of {n} "
+            "takes its share (observe + decide of its destinations)", nodes=t.n,
+            destinations=int(own0.sum()))
+        figs[f"shard_engine_batch_s_n1000_w0of{n}"] = _fig(
+            t_w0 / len(batches), "s", t_w0 / t_one, "one process's time for the whole batch",
+            nodes=t.n, workers=n)
+    return figs
+
+
+def _rss(pid: int) -> int:
+    with open(f"/proc/{pid}/status") as fh:
+        for line in fh:
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1]) * 1024
+    raise RuntimeError(f"no VmRSS for {pid}")
+
+
+def _rss_figs(ctx: zmq.Context, base: str) -> dict[str, dict[str, Any]]:
+    """Resident memory of real processes at 1,000 nodes, after the same 8 batches of
+    1,024 rows (the engines' pages touched as in service), one process then N = 1, 2, 4."""
+    import msgpack
+
+    topo = ring_with_chords(1000, 1000, seed=1000)
+    tfile = os.path.join(base, "ring1000.yaml")
+    with open(tfile, "w") as fh:
+        yaml.safe_dump(T.to_mapping(topo), fh)
+    topo = TF.load(tfile)
+    conf = os.path.join(base, "conf_rss.yaml")
+    with open(conf, "w") as fh:
+        yaml.safe_dump({**CONF, "service": {**CONF["service"], "publish_interval_s": 600.0}}, fh)
+    frames = Frames("cols", ROWS, topo, np.random.default_rng(9))
+    whole = _state_bytes(Engine(topo, EngineSettings()))
+    out: dict[str, dict[str, Any]] = {}
+    one_rss = 0
+    for n in (0, 1, 2, 4):
+        p = _Proc(base, f"rss{n}", tfile, conf, *(("--shards", str(n)) if n else ()))
+        try:
+            p.ready()
+            for i in range(8):   # duration 0: one batch, acknowledged
+                acked(ctx, p.ep["ingest"], frames, 0.0, 7_000_000 + n * 1000 + i)
+            if not n:
+                one_rss = _rss(p.proc.pid)
+                out["shard_rss_bytes_n1000_one"] = _fig(one_rss, "bytes", 1.0, "itself",
+                                                        nodes=topo.n)
+                continue
+            s = ctx.socket(zmq.REQ)
+            s.linger = 0
+            s.connect(p.ep["control"])
+            s.send(msgpack.packb({"op": "health"}))
+            h = msgpack.unpackb(s.recv(), raw=False, strict_map_key=False)
+            s.close(0)
+            ws = [_rss(w["pid"]) for w in h["shards"]]
+            base_rss = one_rss - whole
+            out[f"shard_rss_bytes_n1000_w{n}"] = _fig(
+                max(ws), "bytes", (max(ws) - base_rss) / whole,
+                "one process's engine state: the largest worker's resident memory less what "
+                "a process holds besides its engine (one process's RSS less its engine "
+                "state)", nodes=topo.n, workers=n, per_worker=ws, front=_rss(p.proc.pid),
+                engine_state=whole)
+        finally:
+            p.stop()
+    return out
 
 
 def run(quick: bool) -> dict[str, dict[str, Any]]:
@@ -171,9 +255,11 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
     figs: dict[str, dict[str, Any]] = {}
     try:
         topo = ring_with_chords(200, 200, seed=200)
-        tfile = os.path.join(base, "ring200.yaml")
-        with open(tfile, "w") as fh:
-            yaml.safe_dump(T.to_mapping(topo), fh)
+        # node-link JSON: eleven services start below (front and workers), and the
+        # pure-Python YAML parser took about 0.8 s of a core in each (none of the figures
+        # is about start-up; the same topology and digest as the YAML file)
+        tfile = os.path.join(base, "ring200.json")
+        write_node_link(topo, tfile)
         topo = TF.load(tfile)
         frames = Frames("cols", ROWS, topo, np.random.default_rng(3))
         # debounce 0.5 s: few table rounds, so the figure is about ingest; the default
@@ -183,23 +269,25 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
         for tag, deb in settings:
             conf = os.path.join(base, f"conf{tag}.yaml")
             with open(conf, "w") as fh:
-                yaml.safe_dump({"service": {**CONF["service"], "debounce_s": deb}}, fh)
-            names = [f"one{tag}", f"w1{tag}", f"w2{tag}"]
+                yaml.safe_dump({**CONF, "service": {**CONF["service"], "debounce_s": deb}}, fh)
+            names = [f"one{tag}", f"w1{tag}", f"w2{tag}", f"w4{tag}"]
             group = [_Proc(base, nm, tfile, conf, *extra) for nm, extra in
-                     zip(names, ((), ("--shards", "1"), ("--shards", "2")))]
+                     zip(names, ((), ("--shards", "1"), ("--shards", "2"), ("--shards", "4")))]
             procs += group
             for p in group:       # started together, waited for together
                 p.ready()
             # interleaved rounds, best of each: the machine is shared, load comes and goes
             for r in range(1 if quick else 3):
                 for i, (name, p) in enumerate(zip(names, group)):
-                    rate = _ingest(ctx, p, frames, dt, (r * 3 + i) * 1_000_000)
+                    rate = _ingest(ctx, p, frames, dt, (r * 4 + i) * 1_000_000)
                     rates[name] = max(rates.get(name, 0.0), rate)
-            for p in group:
-                p.proc.terminate()
+            for p in group:   # their figures are in: no final decisions and snapshots,
+                p.proc.kill()    # which ran beside the measurements below
+                p.proc.wait(10)
         front = _front_ceiling(topo, frames, shard.ShardMap.build(topo, 2), 0.5 if quick else 2.0)
         for tag, deb in settings:
             one, w1, w2 = rates[f"one{tag}"], rates[f"w1{tag}"], rates[f"w2{tag}"]
+            w4 = rates[f"w4{tag}"]
             figs[f"shard_ingest_one{tag}_rows_per_s"] = _fig(
                 one, "rows/s", 1.0, "itself: one routerd serve process", nodes=topo.n,
                 debounce_s=deb)
@@ -210,11 +298,17 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
                 w2, "rows/s", w2 / w1, "the front with one worker (this machine: "
                 f"{os.cpu_count()} cores for client, front and workers)", nodes=topo.n,
                 debounce_s=deb)
+            figs[f"shard_ingest_w4{tag}_rows_per_s"] = _fig(
+                w4, "rows/s", w4 / w1, "the front with one worker (this machine: "
+                f"{os.cpu_count()} cores for client, front and workers)", nodes=topo.n,
+                debounce_s=deb)
         figs["shard_front_rows_per_s"] = _fig(
             front, "rows/s", front / rates["one"], "one plain process's ingest: the front's "
             "own work per row (decode, split into 2, encode, combine) is its ceiling",
             batch=ROWS)
         figs.update(_engine_split(quick))
+        if not quick:
+            figs.update(_rss_figs(ctx, base))
     finally:
         for p in procs:
             p.stop()

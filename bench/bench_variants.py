@@ -58,9 +58,7 @@ def observe_rates(t: Topology, rows: int) -> dict[str, float]:
 
 def run(quick: bool) -> dict[str, dict[str, Any]]:
     key = C.TOPOLOGIES[0]
-    topo = C.load_topology(key)
-    sat, link = C.shortest_saturation_pps(topo)
-    info = {"topo": topo, "sat_pps": sat, "busiest_link": link, "mindelay_limit": 1.0}
+    info = C.topology_info(key)
     variants = ("plain", "predictive", "dual", "confidence") if quick else C.VARIANTS
     dur, scale = (8.0, 0.5) if quick else (30.0, 1.0)
     steady = [j for j in C.steady_jobs({key: info}, (1.0,), dur, 1)
@@ -79,7 +77,7 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
     out: dict[str, dict[str, Any]] = {
         "variants_best_over_mindelay": {
             "value": per[best], "unit": "ms", "ratio": per[best] / md_ms,
-            "against": f"mindelay {md_ms:.1f} ms, same run ({key}, {sat:.0f} packets/s = "
+            "against": f"mindelay {md_ms:.1f} ms, same run ({key}, {info['sat_pps']:.0f} packets/s = "
                        f"shortest's saturation; best: {best})"}}
     for exp, fig, name in (("cold", "learn_s", "variants_cold_start_speedup"),
                            ("spike", "spike_recovery_s", "variants_spike_recovery_speedup")):
@@ -92,7 +90,7 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
         note = "" if reached["plain"] else " (plain never settled: the ratio is a lower bound)"
         out[name] = {"value": others[fast], "unit": "s", "ratio": ts["plain"] / tb,
                      "against": f"plain Q-routing {ts['plain']:.1f} s, same run (fastest: {fast}){note}"}
-    rates = observe_rates(topo, 20_000 if quick else 100_000)
+    rates = observe_rates(info["topo"], 20_000 if quick else 100_000)
     for v in ("full_echo", "predictive", "confidence"):
         out[f"variants_{v}_rows_per_s"] = {
             "value": rates[v], "unit": "rows/s", "ratio": rates[v] / rates["plain"],

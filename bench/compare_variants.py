@@ -220,7 +220,7 @@ def one(job: dict[str, Any]) -> dict[str, Any]:
     if spec.get("series") and job["exp"] != "steady":
         sr = res["series"]
         out["series"] = {"t_s": sr["t_s"], "mean_delivery_s": sr["mean_delivery_s"],
-                         "delivered": sr["delivered"]}
+                         "delivered": sr["delivered"], "dropped": sr["dropped"]}
     return out
 
 
@@ -233,18 +233,21 @@ def run_jobs(jobs: list[dict[str, Any]], n_jobs: int) -> list[dict[str, Any]]:
 
 # ---- reading the time series ---------------------------------------------------------------
 
+def trailing_sum(x: Any, window_s: float = 2.0) -> np.ndarray:
+    """Per bin, the sum of ``x`` over the bins of the last ``window_s`` seconds."""
+    w = max(1, round(window_s / BIN_S))
+    cs = np.concatenate([[0.0], np.cumsum(np.asarray(x, dtype=float))])
+    idx = np.arange(len(cs) - 1)
+    return cs[idx + 1] - cs[np.maximum(0, idx + 1 - w)]
+
+
 def rolling(series: dict[str, Any], window_s: float = 2.0) -> tuple[np.ndarray, np.ndarray]:
     """(bin end times, delivery-weighted rolling mean delivery time over window_s)."""
     t = np.asarray(series["t_s"], dtype=float)
     m = np.asarray(series["mean_delivery_s"], dtype=float)
     c = np.asarray(series["delivered"], dtype=float)
     s = np.where(c > 0, np.nan_to_num(m) * c, 0.0)
-    w = max(1, round(window_s / BIN_S))
-    cs = np.concatenate([[0.0], np.cumsum(s)])
-    cc = np.concatenate([[0.0], np.cumsum(c)])
-    idx = np.arange(len(t))
-    lo = np.maximum(0, idx + 1 - w)
-    num, den = cs[idx + 1] - cs[lo], cc[idx + 1] - cc[lo]
+    num, den = trailing_sum(s, window_s), trailing_sum(c, window_s)
     with np.errstate(invalid="ignore", divide="ignore"):
         return t, np.where(den > 0, num / den, np.nan)
 
@@ -276,6 +279,17 @@ def settle_time(series: dict[str, Any], start: float, ref: float, tol: float, en
 
 
 # ---- the experiments --------------------------------------------------------------------------
+
+def topology_info(key: str) -> dict[str, Any]:
+    """What the jobs need to know of one topology: the model, shortest's saturation rate and
+    busiest link, whether it runs on its demand matrix, and how far mindelay stays feasible."""
+    topo = load_topology(key)
+    dem = uses_demands(key)
+    sat, link = shortest_saturation_pps(topo, dem)
+    return {"topo": topo, "sat_pps": sat, "busiest_link": link, "demands": dem,
+            "mindelay_limit": mindelay_limit(topo, sat, dem),
+            "busiest": f"{topo.nodes[int(topo.src[link])]} -> {topo.nodes[int(topo.dst[link])]}"}
+
 
 def steady_jobs(topos: dict[str, dict[str, Any]], loads: tuple[float, ...], duration: float,
                 seeds: int) -> list[dict[str, Any]]:
@@ -480,51 +494,95 @@ def write_csv(path: str, rows: list[dict[str, Any]]) -> None:
         w.writerows(rows)
 
 
+#: how each policy is drawn (ours): the optimum and the static baseline dashed and wide,
+#: under the learners; split last and on top, with its own marker
+STYLE = {"shortest": dict(color="#1f4e9c", ls="--", lw=2.2, marker="s", zorder=2),
+         "reroute": dict(color="#6f9fd8", ls="--", lw=1.8, marker="D", zorder=2),
+         "mindelay": dict(color="#e07b00", ls="--", lw=3.2, marker="o", zorder=1),
+         "plain": dict(color="#2e8b3a", ls="-", lw=1.2, marker=".", zorder=3),
+         "full_echo": dict(color="#c0392b", ls="-", lw=1.2, marker=".", zorder=3),
+         "predictive": dict(color="#8e5fb5", ls="-", lw=1.2, marker=".", zorder=3),
+         "dual": dict(color="#8a5a44", ls="-", lw=1.2, marker=".", zorder=3),
+         "confidence": dict(color="#d46aa8", ls="-", lw=1.2, marker=".", zorder=3),
+         "split": dict(color="#111111", ls="-", lw=1.6, marker="^", zorder=4)}
+
+
 def plots(out: str, summ: dict[str, Any], scen: list[dict[str, Any]]) -> list[str]:
-    import matplotlib
+    """steady.png (delivery time and drops against load, per topology) and one figure per
+    scenario (seed 1: delivery time and the share of packets dropped per 2 s, the link
+    failure shaded), in the project's figure conventions (routerd.sim.plotstyle)."""
+    from routerd.sim import plotstyle as PS
 
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
+    plt = PS.pyplot()
     files = []
     topos = sorted({r["topology"] for r in summ["steady"]})
-    fig, axes = plt.subplots(1, len(topos), figsize=(6 * len(topos), 4.2), squeeze=False)
-    for ax, topo in zip(axes[0], topos):
+    fig, axes = plt.subplots(2, len(topos), figsize=(5 * len(topos) + 1.6, 6.4), squeeze=False,
+                             sharex=True, gridspec_kw={"height_ratios": [2.2, 1]})
+    for col, topo in enumerate(topos):
+        ax, axd = axes[0][col], axes[1][col]
+        rows_t = [r for r in summ["steady"] if r["topology"] == topo]
         for pol in BASELINES + VARIANTS:
-            rows = [r for r in summ["steady"] if r["topology"] == topo and r["policy"] == pol]
-            if rows:
-                ax.plot([r["load"] for r in rows], [r["mean_delivery_ms"] for r in rows],
-                        marker="o", lw=2.2 if pol in ("shortest", "mindelay") else 1.4,
-                        ls="--" if pol in ("shortest", "mindelay") else "-", label=pol)
-        ax.axvline(1.0, color="grey", lw=0.8, ls=":")
-        ax.set_yscale("log")
-        ax.set_xlabel("offered load (x shortest's saturation rate)")
-        ax.set_ylabel("mean delivery time (ms, log)")
+            rows = [r for r in rows_t if r["policy"] == pol]
+            if not rows:
+                continue
+            st = {k: v for k, v in STYLE[pol].items() if k != "marker"}
+            x = [r["load"] for r in rows]
+            ax.plot(x, [r["mean_delivery_ms"] for r in rows], marker=STYLE[pol]["marker"],
+                    ms=5, label=pol, **st)
+            axd.plot(x, [100.0 * (1.0 - r["delivery_ratio"]) for r in rows],
+                     marker=STYLE[pol]["marker"], ms=4, **st)
+        PS.ms_log_axis(ax, *PS.log_limits(r["mean_delivery_ms"] for r in rows_t))
+        PS.zero_visible(axd, 1.15 * max([100.0 * (1.0 - r["delivery_ratio"]) for r in rows_t]
+                                        + [0.5]))
+        for a_ in (ax, axd):
+            a_.axvline(1.0, color="grey", lw=0.8, ls=":")
+            a_.grid(alpha=0.3)
         ax.set_title(topo.split("/")[-1])
-        ax.grid(alpha=0.3)
-        ax.legend(fontsize=7)
+        axd.set_xlabel("offered load (x shortest's saturation rate)")
+        if col == 0:
+            ax.set_ylabel("mean delivery time (ms, log)")
+            axd.set_ylabel("dropped (%)")
+    PS.legend_outside(axes[0][-1])
     fig.tight_layout()
     p = os.path.join(out, "steady.png")
     fig.savefig(p, dpi=80)
     plt.close(fig)
     files.append(p)
-    for exp, title in (("cold", "cold start"), ("spike", "congestion spike (load x2)"),
-                       ("failure", "link failure and repair")):
+    for exp, title in (("cold", "cold start (every estimate equal)"),
+                       ("spike", "congestion spike (load x2)"),
+                       ("failure", "link failure and repair"),
+                       ("cut", "busiest link cut and restored")):
         rs = [r for r in scen if r["exp"] == exp and r["seed"] == 1 and "series" in r]
         if not rs:
             continue
-        fig, ax = plt.subplots(figsize=(8, 4))
+        fig, (ax, axd) = PS.time_figure(plt, 2, 6.0, ratios=(2.2, 1))
+        top = 0.5
         for r in rs:
+            st = {k: v for k, v in STYLE[r["label"]].items() if k != "marker"}
             t, m = rolling(r["series"])
-            ax.plot(t, 1e3 * m, label=r["label"], lw=2.0 if r["label"] == "shortest" else 1.2,
-                    ls="--" if r["label"] == "shortest" else "-")
-        ax.set_yscale("log")
-        ax.set_xlabel("time (s)")
-        ax.set_ylabel("mean delivery time, 2-s rolling (ms, log)")
-        ax.set_title(f"{rs[0]['topology'].split('/')[-1]}: {title} (seed 1)")
-        ax.grid(alpha=0.3)
-        ax.legend(fontsize=7)
-        fig.tight_layout()
+            ax.plot(t, 1e3 * m, label=r["label"], **st)
+            td = np.asarray(r["series"]["t_s"], dtype=float)
+            dr = np.asarray(r["series"]["dropped"], dtype=float)
+            dl = np.asarray(r["series"]["delivered"], dtype=float)
+            dsum, tot = trailing_sum(dr), trailing_sum(dr + dl)   # the delays' 2-s window
+            share = 100.0 * np.divide(dsum, tot, out=np.zeros_like(dsum), where=tot > 0)
+            axd.plot(td, share, **st)
+            top = max(top, float(share.max(initial=0.0)))
+        PS.ms_log_axis(ax, *PS.log_limits(1e3 * v for r in rs for v in rolling(r["series"])[1]))
+        PS.zero_visible(axd, 1.15 * top)
+        links = rs[0]["spec"]["scenario"]["scenario"].get("links", [])
+        events = [(float(e["at_s"]), "down" if e.get("down") else "up",
+                   "-".join(e["between"])) for e in links]
+        spans, _ = PS.link_spans(events, float(rs[0]["spec"]["duration_s"]))
+        PS.mark_link_spans((ax, axd), spans, label_ax=ax)
+        ax.set_ylabel("delivery time, 2-s rolling (ms, log)")
+        axd.set_ylabel("dropped, 2-s (%)")
+        axd.set_xlabel("time (s)")
+        for a_ in (ax, axd):
+            a_.grid(alpha=0.3)
+        ax.set_title(f"{rs[0]['topology'].split('/')[-1]}: {title} (seed 1, "
+                     f"{rs[0]['load']:g}x load)")
+        PS.legend_outside(ax)
         p = os.path.join(out, f"{exp}.png")
         fig.savefig(p, dpi=80)
         plt.close(fig)
@@ -663,7 +721,7 @@ def report_md(out: str, summ: dict[str, Any], meta: dict[str, Any]) -> str:
           "link, so its delivery time there counts only the packets that avoid it (see its "
           "delivery ratio).  `reroute` is the honest baseline: delay-shortest paths recomputed "
           "over the live links 0.3 s after each link event (`sim.reroute.detect_s`).")]
-    L += ["", "![cold](cold.png)", "", "![spike](spike.png)", "", "![failure](failure.png)", "",
+    L += ["", "![cold](cold.png)", "", "![spike](spike.png)", "", "![failure](failure.png)", "", "![cut](cut.png)", "",
           ("Definitions: see the module docstring of `bench/compare_variants.py`.  Times are "
           "means over seeds; a run that never settles counts as the rest of its run."), ""]
     L += targets_md(summ)
@@ -689,13 +747,8 @@ def main(argv: list[str] | None = None) -> int:
     keys = TOPOLOGIES[:1] if a.quick else TOPOLOGIES
     topos: dict[str, dict[str, Any]] = {}
     for k in keys:
-        topo = load_topology(k)
-        dem = uses_demands(k)
-        sat, link = shortest_saturation_pps(topo, dem)
-        topos[k] = {"topo": topo, "sat_pps": sat, "busiest_link": link, "demands": dem,
-                    "mindelay_limit": mindelay_limit(topo, sat, dem),
-                    "busiest": f"{topo.nodes[int(topo.src[link])]} -> {topo.nodes[int(topo.dst[link])]}"}
-        print(f"{k}: shortest saturates at {sat:.0f} packets/s; mindelay feasible to "
+        topos[k] = topology_info(k)
+        print(f"{k}: shortest saturates at {topos[k]['sat_pps']:.0f} packets/s; mindelay feasible to "
               f"x{topos[k]['mindelay_limit']:.2f}", file=sys.stderr)
     loads = (0.2, 0.9, 1.2) if a.quick else LOADS
     scale = 0.5 if a.quick else 1.0

@@ -13,7 +13,9 @@ value is computed, so a run gives the same bits on either path (the build passes
   hop, so a policy that rewrites entries is seen at once); ``-2`` calls ``next_hop``;
 * hop observations go to the policy one call per hop (``on_hop``) or, for a policy with
   ``on_hops``, in batches of arrays flushed before every ``tick``, every ``on_link`` and
-  at the end, so the policy has seen every hop before anything it does depends on them.
+  at the end, so the policy has seen every hop before anything it does depends on them;
+  or, for a policy with ``hop_rows`` (qrouting), written as rows into its :class:`QRows`,
+  which also does that policy's ordering, cut, table refresh and estimates at each tick.
 
 * a table entry -2 is sampled here for a policy that describes its splits
   (``split_arrays``; qrouting), with its own uniform draws and ``next_hop``'s arithmetic.
@@ -24,7 +26,7 @@ table refresh (sim/policies.py, ``QRouting._refresh``) compiled.  No numpy C API
 memoryviews only); numpy makes the arrays handed over.  Imports nothing of routerd.
 """
 from libc.stdlib cimport malloc, realloc, free
-from libc.string cimport memcmp
+from libc.string cimport memcmp, memset
 from libc.stdint cimport int64_t
 from cpython.object cimport PyObject
 
@@ -276,7 +278,7 @@ cdef class _Splits:
     slot order with eps / count, cumulated left to right with the last weight set to 1,
     and one uniform draw per packet from the policy's own blocks of 4096 (the same draws,
     the same sums, the same comparisons as ``QRouting.next_hop``)."""
-    cdef object arrays_fn, rng, block
+    cdef object arrays_fn, rng, block, arrays
     cdef const int64_t[:, ::1] gh
     cdef const double[:, ::1] eps
     cdef const unsigned char[:, :, ::1] alt
@@ -293,7 +295,11 @@ cdef class _Splits:
         self.update()
 
     cdef int update(self) except -1:
-        gh, eps, alt, slots = self.arrays_fn()
+        arrays = self.arrays_fn()
+        if self.arrays is not None and all(a is b for a, b in zip(arrays, self.arrays)):
+            return 0   # the same arrays (written in place): already bound
+        self.arrays = arrays
+        gh, eps, alt, slots = arrays
         self.gh = gh
         self.eps = eps
         self.alt = alt
@@ -333,6 +339,46 @@ cdef class _Splits:
 
     def give_back(self, object policy):
         policy.set_draws(self.block, self.ui)
+
+
+cdef class _FreeIds:
+    """Packet ids free for reuse (a stack)."""
+    cdef int64_t* a
+    cdef Py_ssize_t n, cap
+
+    def __cinit__(self):
+        self.a = NULL
+        self.n = 0
+        self.cap = 0
+
+    def __dealloc__(self):
+        free(self.a)
+
+    cdef inline int push(self, int64_t c) except -1:
+        if self.n == self.cap:
+            self.cap = 1024 if self.cap == 0 else 2 * self.cap
+            self.a = <int64_t*>_re(self.a, self.cap * sizeof(int64_t))
+        self.a[self.n] = c
+        self.n += 1
+        return 0
+
+
+cdef inline int _retire(_Packets P, _FreeIds free_ids, int64_t c, double t, bint measuring,
+                        double* area, double* last_t, int64_t* in_net) except -1:
+    """Packet ``c`` leaves the network at ``t`` (delivered, dropped or out of TTL): the
+    packets-in-network area up to ``t`` (Little's law), one packet fewer, its id free."""
+    if measuring:
+        area[0] += in_net[0] * (t - last_t[0])
+        last_t[0] = t
+    in_net[0] -= 1
+    P.dst[c] = -1
+    return free_ids.push(c)
+
+
+cdef inline double _cut(_Heap heap, double end) noexcept:
+    """Where a stop request ends the run (routerd.sim.core "Stopping early"): the time of
+    the next pending event, at most ``end``."""
+    return heap.a[0].t if heap.n > 0 and heap.a[0].t < end else end
 
 
 cdef inline Py_ssize_t _link(const int64_t* nb_start, const int64_t* nb_node,
@@ -385,10 +431,11 @@ def loop(object topo_lists, object policy, object table, object first, object pa
     cdef int64_t[::1] carried = np.zeros(max(nl, 1), dtype=np.int64)
     cdef _Queues queues = _Queues(nl)
     cdef _Packets P = _Packets()
-    cdef int64_t* free_ids = NULL
-    cdef Py_ssize_t n_free = 0, cap_free = 0
+    cdef _FreeIds free_ids = _FreeIds()
     cdef _Heap heap = _Heap()
-    cdef _HopBuffer hb = _HopBuffer() if on_hops is not None else None
+    # a policy's compiled row store (QRows) takes every hop in place of on_hop / on_hops
+    cdef QRows rows = hooks.get("rows")
+    cdef _HopBuffer hb = _HopBuffer() if on_hops is not None and rows is None else None
     cdef _Splits splits = _Splits(policy) if hooks["splits"] else None
 
     # the table: a list of n lists read in place (fast), anything else through indexing
@@ -450,14 +497,12 @@ def loop(object topo_lists, object policy, object table, object first, object pa
                 d = P.dst[c]
                 if d < 0:  # dropped at a link cut while on its way: now the id is free
                     P.dst[c] = -1
-                    if n_free == cap_free:
-                        cap_free = 1024 if cap_free == 0 else 2 * cap_free
-                        free_ids = <int64_t*>_re(free_ids, cap_free * sizeof(int64_t))
-                    free_ids[n_free] = c
-                    n_free += 1
+                    free_ids.push(c)
                     continue
                 y = P.node[c]
-                if hb is not None:
+                if rows is not None:
+                    rows.add(P.prev[c], y, d, t - P.enq[c], t)
+                elif hb is not None:
                     if hb.n == HOPBUF:
                         hb.flush(on_hops)
                     i = hb.n
@@ -481,16 +526,7 @@ def loop(object topo_lists, object policy, object table, object first, object pa
                     b_deliv += 1
                     b_dsum += t - t0
                     delivered_all += 1
-                    if measuring:
-                        area += in_net * (t - last_t)
-                        last_t = t
-                    in_net -= 1
-                    P.dst[c] = -1
-                    if n_free == cap_free:
-                        cap_free = 1024 if cap_free == 0 else 2 * cap_free
-                        free_ids = <int64_t*>_re(free_ids, cap_free * sizeof(int64_t))
-                    free_ids[n_free] = c
-                    n_free += 1
+                    _retire(P, free_ids, c, t, measuring, &area, &last_t, &in_net)
                     continue
                 x = y
             elif c == INJECT:
@@ -508,9 +544,9 @@ def loop(object topo_lists, object policy, object table, object first, object pa
                 if not (0 <= x < n and 0 <= d < n):
                     raise ValueError(f"traffic source produced a packet from node {x} to "
                                      f"node {d}; nodes are 0..{n - 1}")
-                if n_free:
-                    n_free -= 1
-                    c = free_ids[n_free]
+                if free_ids.n:
+                    free_ids.n -= 1
+                    c = free_ids.a[free_ids.n]
                 else:
                     if P.n == P.cap:
                         P.grow()
@@ -536,10 +572,8 @@ def loop(object topo_lists, object policy, object table, object first, object pa
                 heap.push(t + tick_iv, TICK)
                 ctrl_pushed += 1
                 if stop is not None and stop.requested:
-                    # the cut (routerd.sim.core "Stopping early"): the next pending event
                     stopped = True
-                    t = heap.a[0].t if heap.n > 0 and heap.a[0].t < end else end
-                    end = t
+                    t = end = _cut(heap, end)
                     break
                 continue
             elif c == SAMPLE:
@@ -566,10 +600,8 @@ def loop(object topo_lists, object policy, object table, object first, object pa
                                          "ttl_expired": s_ttl, "in_network": s_in_net,
                                          "link_util": s_busy}})
                 if stop is not None and stop.requested:
-                    # the cut (routerd.sim.core "Stopping early"): the next pending event
                     stopped = True
-                    t = heap.a[0].t if heap.n > 0 and heap.a[0].t < end else end
-                    end = t
+                    t = end = _cut(heap, end)
                     break
                 continue
             elif c == WARMUP:
@@ -691,20 +723,10 @@ def loop(object topo_lists, object policy, object table, object first, object pa
                 ttl_all += 1
             else:
                 dropped_all += 1
-            if measuring:
-                area += in_net * (t - last_t)
-                last_t = t
-            in_net -= 1
-            P.dst[c] = -1
-            if n_free == cap_free:
-                cap_free = 1024 if cap_free == 0 else 2 * cap_free
-                free_ids = <int64_t*>_re(free_ids, cap_free * sizeof(int64_t))
-            free_ids[n_free] = c
-            n_free += 1
+            _retire(P, free_ids, c, t, measuring, &area, &last_t, &in_net)
         if hb is not None:
             hb.flush(on_hops)
     finally:
-        free(free_ids)
         if splits is not None:
             splits.give_back(policy)
 
@@ -744,41 +766,332 @@ def refresh(const int64_t[:, ::1] greedy, const double[:, ::1] eps,
     values the reference writes) and dropping their cached splits.  Writes the keys
     ``x * n + d`` whose greedy hop moved into ``moved`` (row-major, as ``np.nonzero``);
     returns how many."""
-    cdef Py_ssize_t n = greedy.shape[1], K = alt.shape[2]
-    cdef Py_ssize_t i, d, j, nm = 0
-    cdef int64_t x, gs, h
-    cdef double ev
-    cdef bint anyalt, altchg, mv
-    cdef unsigned char a
-    cdef list row_t, row_g, row_e
-    cdef dict sp
+    cdef Py_ssize_t i, nm = 0
     for i in range(xs.shape[0]):
-        x = xs[i]
-        row_t = table[x]
-        row_g = gh_rows[x]
-        row_e = er_rows[x]
-        sp = splits[x]
-        for d in range(n):
-            gs = greedy[x, d]
-            h = slots[x, gs] if gs >= 0 else -1
-            ev = eps[x, d]
-            mv = gh[x, d] != h
-            if mv:
-                moved[nm] = x * n + d
-                nm += 1
-            altchg = K > 0 and memcmp(&alt[x, d, 0], &altc[x, d, 0], K) != 0
-            if mv or epsc[x, d] != ev or altchg:   # NaN (never set) counts as changed
-                anyalt = False
-                for j in range(K):
-                    a = alt[x, d, j]
-                    altc[x, d, j] = a
-                    if a:
-                        anyalt = True
-                gh[x, d] = h
-                epsc[x, d] = ev
-                row_t[d] = -2 if (gs >= 0 and anyalt and ev > 0) else h
-                row_g[d] = h
-                row_e[d] = ev
-                if sp:
-                    sp.pop(d, None)
+        nm = _refresh_row(greedy, eps, alt, slots, gh, epsc, altc, xs[i], table, gh_rows,
+                          er_rows, splits, &moved[0] if moved.shape[0] else NULL, nm)
     return nm
+
+
+cdef Py_ssize_t _refresh_row(const int64_t[:, ::1] greedy, const double[:, ::1] eps,
+                             const unsigned char[:, :, ::1] alt, const int64_t[:, ::1] slots,
+                             int64_t[:, ::1] gh, double[:, ::1] epsc,
+                             unsigned char[:, :, ::1] altc, int64_t x, list table,
+                             list gh_rows, list er_rows, list splits, int64_t* moved,
+                             Py_ssize_t nm) except -1:
+    """:func:`refresh` for node ``x``: appends its moved keys to ``moved`` from ``nm`` on,
+    returns the new count."""
+    cdef Py_ssize_t n = greedy.shape[1], K = alt.shape[2]
+    cdef Py_ssize_t d, j
+    cdef int64_t gs, h
+    cdef double ev
+    cdef bint anyalt, altchg, mv, rowalt
+    cdef unsigned char a
+    cdef list row_t = table[x], row_g = gh_rows[x], row_e = er_rows[x]
+    cdef dict sp = splits[x]
+    # the candidates of a whole row compared at once: where they are equal, no entry's
+    # are (the same outcome as the per-entry compare, one call a row)
+    rowalt = K > 0 and n > 0 and memcmp(&alt[x, 0, 0], &altc[x, 0, 0], n * K) != 0
+    for d in range(n):
+        gs = greedy[x, d]
+        h = slots[x, gs] if gs >= 0 else -1
+        ev = eps[x, d]
+        mv = gh[x, d] != h
+        if mv:
+            moved[nm] = x * n + d
+            nm += 1
+        altchg = rowalt and memcmp(&alt[x, d, 0], &altc[x, d, 0], K) != 0
+        if mv or epsc[x, d] != ev or altchg:   # NaN (never set) counts as changed
+            anyalt = False
+            for j in range(K):
+                a = alt[x, d, j]
+                altc[x, d, j] = a
+                if a:
+                    anyalt = True
+            gh[x, d] = h
+            epsc[x, d] = ev
+            row_t[d] = -2 if (gs >= 0 and anyalt and ev > 0) else h
+            row_g[d] = h
+            row_e[d] = ev
+            if sp:
+                sp.pop(d, None)
+    return nm
+
+
+cdef void _stable_order(const double* key, int64_t* perm, int64_t* tmp, Py_ssize_t m) noexcept:
+    """``perm``: 0..m-1 in the order of ``key``, ties in index order (numpy's stable
+    argsort: a bottom-up merge sort; ``tmp`` is scratch of m entries)."""
+    cdef Py_ssize_t w, lo, mid, hi, i, j, o
+    cdef int64_t* a = perm
+    cdef int64_t* b = tmp
+    cdef int64_t* sw
+    for i in range(m):
+        a[i] = i
+    w = 1
+    while w < m:
+        lo = 0
+        while lo < m:
+            mid = lo + w if lo + w < m else m
+            hi = lo + 2 * w if lo + 2 * w < m else m
+            i = lo
+            j = mid
+            o = lo
+            while i < mid and j < hi:
+                if key[a[j]] < key[a[i]]:   # the left one first on a tie: stable
+                    b[o] = a[j]
+                    j += 1
+                else:
+                    b[o] = a[i]
+                    i += 1
+                o += 1
+            while i < mid:
+                b[o] = a[i]
+                i += 1
+                o += 1
+            while j < hi:
+                b[o] = a[j]
+                j += 1
+                o += 1
+            lo = hi
+        sw = a
+        a = b
+        b = sw
+        w *= 2
+    if a != perm:
+        for i in range(m):
+            perm[i] = a[i]
+
+
+cdef class QRows:
+    """QRouting's work between two ticks and at a tick, compiled (``QRouting.hop_rows``;
+    sim/policies.py keeps the numpy reference: ``on_hops``, ``tick``, ``_decide``).
+
+    * :meth:`add` (the loop, every hop): the row ``(due, x, y, d, latency, estimate)`` with
+      ``due = now + prop[x, y]`` and the estimate ``values[y, d]`` read at the hop, as
+      ``on_hops`` builds it (the values only change at a tick or a link event, after the
+      loop has handed over every earlier hop);
+    * :meth:`take` (the tick): every row not yet applied in due-time order, stable (the
+      rows carried over first, already in that order, then the new ones as reported: a
+      stable sort of all of them, numpy's ``argsort(kind="stable")``), and the due prefix
+      as the columns of one ``HopBatch`` (every row with ``instant``);
+    * :meth:`step` (after ``Engine.decide``): the table refresh of the changed nodes
+      (:func:`refresh`), then, with ``estimates``, each node's published estimate
+      (``Engine.published_estimates``: the Q-value of the greedy slot, the ceiling without
+      one, 0 at the destination) rewritten where a row was just applied or a greedy hop
+      moved; then the applied rows are dropped.
+
+    Every array is bound once (:meth:`bind_values` after the policy replaces its values);
+    the engine must own every destination (column d is destination d)."""
+    cdef Py_ssize_t n, m, cap, k
+    cdef object ax, ay, ad, adue, alat, aest
+    cdef int64_t[::1] x, y, d
+    cdef double[::1] due, lat, est
+    cdef int64_t* perm
+    cdef int64_t* tmp
+    cdef const double[:, ::1] prop
+    cdef double[:, ::1] values
+    cdef const double[:, :, ::1] Q
+    cdef double ceiling
+    cdef const int64_t[:, ::1] greedy
+    cdef const double[:, ::1] eps
+    cdef const unsigned char[:, :, ::1] alt
+    cdef const int64_t[:, ::1] slots
+    cdef int64_t[:, ::1] gh
+    cdef double[:, ::1] epsc
+    cdef unsigned char[:, :, ::1] altc
+    cdef list table, gh_rows, er_rows, splits
+    cdef object akeys
+    cdef int64_t[::1] keys
+    cdef unsigned char* mark
+
+    def __cinit__(self):
+        self.perm = NULL
+        self.tmp = NULL
+        self.mark = NULL
+
+    def __init__(self, const double[:, ::1] prop, double[:, ::1] values,
+                 const double[:, :, ::1] Q, double ceiling,
+                 const int64_t[:, ::1] greedy, const double[:, ::1] eps,
+                 const unsigned char[:, :, ::1] alt, const int64_t[:, ::1] slots,
+                 int64_t[:, ::1] gh, double[:, ::1] epsc, unsigned char[:, :, ::1] altc,
+                 list table, list gh_rows, list er_rows, list splits):
+        self.n = greedy.shape[0]
+        self.prop = prop
+        self.values = values
+        self.Q = Q
+        self.ceiling = ceiling
+        self.greedy = greedy
+        self.eps = eps
+        self.alt = alt
+        self.slots = slots
+        self.gh = gh
+        self.epsc = epsc
+        self.altc = altc
+        self.table = table
+        self.gh_rows = gh_rows
+        self.er_rows = er_rows
+        self.splits = splits
+        # moved keys of one step (a node's row at most n of them), applied keys' marks
+        self.akeys = np.empty(self.n * self.n, dtype=np.int64)
+        self.keys = self.akeys
+        self.mark = <unsigned char*>_re(NULL, self.n * self.n if self.n else 1)
+        memset(self.mark, 0, self.n * self.n)
+        self.m = 0
+        self.k = 0
+        self.cap = 0
+        self._grow(1024)
+
+    def __dealloc__(self):
+        free(self.perm)
+        free(self.tmp)
+        free(self.mark)
+
+    def bind_values(self, double[:, ::1] values):
+        """The estimates the rows carry from now on (the policy's new ``_Vn``)."""
+        self.values = values
+
+    def bind_q(self, const double[:, :, ::1] Q):
+        """The engine's Q-values (where the engine replaced its array)."""
+        self.Q = Q
+
+    @property
+    def pending(self):
+        """Rows not yet applied."""
+        return self.m
+
+    cdef int _grow(self, Py_ssize_t cap) except -1:
+        cdef Py_ssize_t m = self.m
+        cols = [np.empty(cap, dtype=np.int64) for _ in range(3)]
+        fcols = [np.empty(cap, dtype=np.float64) for _ in range(3)]
+        if m:
+            cols[0][:m] = self.ax[:m]; cols[1][:m] = self.ay[:m]; cols[2][:m] = self.ad[:m]
+            fcols[0][:m] = self.adue[:m]; fcols[1][:m] = self.alat[:m]
+            fcols[2][:m] = self.aest[:m]
+        self.ax, self.ay, self.ad = cols
+        self.adue, self.alat, self.aest = fcols
+        self.x = self.ax; self.y = self.ay; self.d = self.ad
+        self.due = self.adue; self.lat = self.alat; self.est = self.aest
+        self.perm = <int64_t*>_re(self.perm, cap * sizeof(int64_t))
+        self.tmp = <int64_t*>_re(self.tmp, cap * sizeof(int64_t))
+        self.cap = cap
+        return 0
+
+    cdef inline int add(self, int64_t x, int64_t y, int64_t d, double lat, double now) except -1:
+        cdef Py_ssize_t i = self.m
+        if x < 0:      # an injection: no sender, no row (as on_hops)
+            return 0
+        if i == self.cap:
+            self._grow(2 * self.cap)
+        self.due[i] = now + self.prop[x, y]
+        self.x[i] = x
+        self.y[i] = y
+        self.d[i] = d
+        self.lat[i] = lat
+        self.est[i] = self.values[y, d]
+        self.m = i + 1
+        return 0
+
+    def extend(self, const int64_t[::1] x, const int64_t[::1] y, const int64_t[::1] d,
+               const double[::1] lat, const double[::1] now):
+        """:meth:`add` for arrays of hops in order (``on_hops``' arguments, without flow);
+        every node index must be one of the network's (ValueError naming the row)."""
+        cdef Py_ssize_t i, m = x.shape[0]
+        if not (y.shape[0] == d.shape[0] == lat.shape[0] == now.shape[0] == m):
+            raise ValueError("QRows.extend: the columns must all have the same length")
+        for i in range(m):
+            if not (-1 <= x[i] < self.n and 0 <= y[i] < self.n and 0 <= d[i] < self.n):
+                raise ValueError(f"QRows.extend: row {i} ({x[i]}, {y[i]}, {d[i]}) names a "
+                                 f"node outside 0..{self.n - 1}")
+        for i in range(m):
+            self.add(x[i], y[i], d[i], lat[i], now[i])
+
+    def take(self, double now, bint instant):
+        """Order the rows (see the class) and return the due ones as the columns
+        ``(src, via, dst, latency, estimate)`` of a ``HopBatch``, or None when none is
+        due.  They stay the first rows until :meth:`step` drops them."""
+        cdef Py_ssize_t m = self.m, i, k
+        cdef bint ordered = True
+        for i in range(1, m):
+            if self.due[i] < self.due[i - 1]:
+                ordered = False
+                break
+        if not ordered:
+            _stable_order(&self.due[0], self.perm, self.tmp, m)
+            self._permute_i(self.x)
+            self._permute_i(self.y)
+            self._permute_i(self.d)
+            self._permute_f(self.due)
+            self._permute_f(self.lat)
+            self._permute_f(self.est)
+        if instant:
+            k = m
+        else:
+            k = 0
+            while k < m and self.due[k] <= now:   # searchsorted(side="right")
+                k += 1
+        self.k = k
+        if k == 0:
+            return None
+        return self.ax[:k], self.ay[:k], self.ad[:k], self.alat[:k], self.aest[:k]
+
+    cdef void _permute_i(self, int64_t[::1] col) noexcept:
+        cdef Py_ssize_t i, m = self.m
+        cdef int64_t* t = self.tmp
+        for i in range(m):
+            t[i] = col[self.perm[i]]
+        for i in range(m):
+            col[i] = t[i]
+
+    cdef void _permute_f(self, double[::1] col) noexcept:
+        cdef Py_ssize_t i, m = self.m
+        cdef double* t = <double*>self.tmp   # int64 and double: the same width
+        for i in range(m):
+            t[i] = col[self.perm[i]]
+        for i in range(m):
+            col[i] = t[i]
+
+    def step(self, object nodes, bint estimates):
+        """After ``Engine.decide``: refresh the tables of ``nodes`` (sorted node indices),
+        then with ``estimates`` rewrite the published estimates where a row of the last
+        :meth:`take` was applied or a greedy hop moved; drop those rows.  Returns how many
+        estimates were rewritten."""
+        cdef Py_ssize_t nm = 0, i, j, n = self.n, k = self.k, m = self.m, nk = 0
+        cdef int64_t key, x, dd, g
+        cdef int64_t* kp = &self.keys[0] if n else NULL
+        for x in nodes:
+            nm = _refresh_row(self.greedy, self.eps, self.alt, self.slots, self.gh, self.epsc,
+                              self.altc, x, self.table, self.gh_rows, self.er_rows,
+                              self.splits, kp, nm)
+        if estimates:
+            # the keys: applied rows', then moved ones, each once
+            for i in range(k):
+                key = self.x[i] * n + self.d[i]
+                if not self.mark[key]:
+                    self.mark[key] = 1
+                    nk += 1
+            for i in range(nm):
+                key = kp[i]
+                if not self.mark[key]:
+                    self.mark[key] = 1
+                    nk += 1
+            for j in range(2):
+                for i in range(k if j == 0 else nm):
+                    key = self.x[i] * n + self.d[i] if j == 0 else kp[i]
+                    if not self.mark[key]:
+                        continue
+                    self.mark[key] = 0
+                    x = key // n
+                    dd = key - x * n
+                    if x == dd:
+                        self.values[x, dd] = 0.0
+                    else:
+                        g = self.greedy[x, dd]
+                        self.values[x, dd] = self.Q[x, dd, g] if g >= 0 else self.ceiling
+        if k:
+            for i in range(k, m):
+                self.x[i - k] = self.x[i]; self.y[i - k] = self.y[i]
+                self.d[i - k] = self.d[i]; self.due[i - k] = self.due[i]
+                self.lat[i - k] = self.lat[i]; self.est[i - k] = self.est[i]
+            self.m = m - k
+            self.k = 0
+        return nk

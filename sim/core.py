@@ -51,7 +51,8 @@ operations in the same order, same calls into the policy at the same virtual tim
 a run gives the same result to the bit (``tests/test_sim_hops.py``).  ``kernels``
 (``engine.kernels``: ``auto`` | ``compiled`` | ``reference``) chooses; :func:`hops_status`
 says which path runs and why.  On the compiled path a policy that provides
-``on_hops`` gets its hop observations in batches (see :mod:`routerd.sim.policy`).
+``on_hops`` gets its hop observations in batches, and one that provides ``hop_rows``
+has the loop write them into its compiled row store (see :mod:`routerd.sim.policy`).
 
 Accounting.  ``offered``, ``delivered``, ``dropped`` and ``ttl_expired`` and every delivery
 statistic count packets *injected* at or after the warm-up; the time series counts every
@@ -321,11 +322,13 @@ def run_core(
         stop._push = lambda: heappush(heap, (-math.inf, stop_code))
 
     if compiled is not None:
-        on_hops = policy.on_hops if _hook_applies(policy, "on_hops", "on_hop") else None
+        rows = policy.hop_rows() if _hook_applies(policy, "hop_rows", "on_hop") else None
+        on_hops = (policy.on_hops if rows is None and _hook_applies(policy, "on_hops", "on_hop")
+                   else None)
         try:
             r = compiled.loop(
                 (src_l, dst_l, delay, inv_cap, buf), policy, table, pending, nxt,
-                {"n": n, "next_hop": next_hop, "on_hop": on_hop, "on_hops": on_hops,
+                {"n": n, "next_hop": next_hop, "on_hop": on_hop, "on_hops": on_hops, "rows": rows,
                  "hop_flow": hop_flow, "tick_interval_s": tick_iv,
                  "splits": (_hook_applies(policy, "split_arrays", "next_hop")
                         and getattr(policy, "compiled_splits", True))},

@@ -28,10 +28,14 @@ mean delivery and 10% drops, ``published`` 6.7 ms and none.
 Forwarding samples the published weights (``Engine.weights``) with the run's generator;
 entries with a single next hop go straight into the fast-path ``table``.
 On the simulator's compiled loop (``routerd.sim._hops``, ``engine.kernels``) the same work
-takes three shortcuts with the same results: hops arrive in batches (``on_hops``, rows
-built with numpy), split entries are sampled in C from ``split_arrays()`` with this
-module's draws and arithmetic, and the table refresh after each decide is compiled
-(``_hops.refresh``; the numpy ``_refresh`` is the reference).
+takes shortcuts with the same results: split entries are sampled in C from
+``split_arrays()`` with this module's draws and arithmetic, the table refresh after each
+decide is compiled (``_hops.refresh``; the numpy ``_refresh`` is the reference), and the
+rows go into a compiled row store (:meth:`QRouting.hop_rows`, ``_hops.QRows``) that
+orders and cuts them at a tick and, after ``Engine.decide``, refreshes the tables and the
+published estimates (the numpy reference: :meth:`on_hops`, :meth:`tick`,
+:meth:`_decide`); where it does not apply (split mode, dual) hops arrive in batches
+(:meth:`on_hops`).
 """
 from __future__ import annotations
 
@@ -189,6 +193,11 @@ def _any_last(a: np.ndarray) -> np.ndarray:
     return np.einsum("...k->...", a.view(np.uint8)) > 0
 
 
+#: up to this many (node, destination) keys, the keys a tick refreshes are collected in a
+#: mask (a fixed cost per tick) rather than by np.unique (a cost per key and per call)
+_KEY_MASK_MAX = 1 << 16
+
+
 class QRouting(Policy):
     """The learning engine in the loop.  See the module docstring."""
 
@@ -206,9 +215,10 @@ class QRouting(Policy):
             self._prop[a][b] = 0.0 if self.instant else float(topology.delay_s[k])
         # rows not yet due: carried over from earlier ticks (an array), then the rows
         # reported since the last tick, per hop (on_hop: tuples) or batched (on_hops:
-        # arrays); a run uses one of the two
+        # arrays); a run uses one of the two.  The arrays are column-major, (6, m): due
+        # time, x, y, d, hop latency, estimate
         self._rows: list[tuple[float, int, int, int, float, float]] = []
-        self._carry = np.empty((0, 6))
+        self._carry = np.empty((6, 0))
         self._chunks: list[np.ndarray] = []
         self._propn = np.zeros((n, n))                   # _prop as a matrix, for on_hops
         if not self.instant:
@@ -244,6 +254,9 @@ class QRouting(Policy):
         self._nbrs = [set(nb) for nb in topology.neighbours]
         self.backward_rows = 0
         self._refresh(range(n))
+        self._alt_u8: np.ndarray | None = None   # split_arrays' view of engine.alt
+        self._qrows: Any = None      # the compiled row store (hop_rows), made on first use
+        self._q_bound: Any = None    # the Q array it reads
         self._set_estimates()
 
     # -- forwarding ----------------------------------------------------------------
@@ -378,7 +391,10 @@ class QRouting(Policy):
         """What the compiled loop (``routerd.sim._hops``) samples a split entry from, with
         :meth:`next_hop`'s arithmetic: greedy hops and shares as refreshed, the engine's
         candidate slots (bytes), the slot table.  None of them is copied."""
-        return self._gh, self._eps_np, self.engine.alt.view(np.uint8), self._slots
+        alt = self.engine.alt
+        if self._alt_u8 is None or self._alt_u8.base is not alt:   # one view while alt stays
+            self._alt_u8 = alt.view(np.uint8)
+        return self._gh, self._eps_np, self._alt_u8, self._slots
 
     def draws(self) -> tuple[list[float], int]:
         """The forwarding draws: the current block and the index of the next unused one."""
@@ -427,48 +443,100 @@ class QRouting(Policy):
         if not (x >= 0).all():
             keep = x >= 0
             x, y, d, latency_s, now = x[keep], y[keep], d[keep], latency_s[keep], now[keep]
-        a = np.empty((x.size, 6))
-        np.add(now, self._propn[x, y], out=a[:, 0])
-        a[:, 1] = x
-        a[:, 2] = y
-        a[:, 3] = d
-        a[:, 4] = latency_s
-        a[:, 5] = self._Vn[y, d]
+        a = np.empty((6, x.size))
+        np.add(now, self._propn[x, y], out=a[0])
+        a[1] = x
+        a[2] = y
+        a[3] = d
+        a[4] = latency_s
+        a[5] = self._Vn[y, d]
         self._chunks.append(a)
 
+    def hop_rows(self) -> Any:
+        """The compiled loop's row store (``routerd.sim._hops.QRows``: :meth:`on_hops`, the
+        ordering and cut of :meth:`tick` and the refresh and estimates of :meth:`_decide`
+        compiled, with the same results), or None where it does not apply: the numpy
+        path (``engine.kernels``), split mode, dual's backward rows, an engine that does
+        not own every destination, rows already buffered the numpy way."""
+        eng = self.engine
+        if (self._hops is None or eng.settings.mode == "split" or self.hop_flow
+                or eng.partial or self._rows or self._chunks or self._carry.shape[1]
+                or eng.Q.dtype != np.float64 or not eng.Q.flags.c_contiguous):
+            return None
+        if self._qrows is None:
+            self._qrows = self._hops.QRows(
+                self._propn, self._Vn, eng.Q, float(eng.settings.ceiling_s), eng.greedy,
+                eng.eps, eng.alt.view(np.uint8), self._slots, self._gh, self._eps_np,
+                self._alt_np.view(np.uint8), self.table, self._greedy_hop, self._eps_row,
+                self._split)
+            self._q_bound = eng.Q
+        return self._qrows
+
+    def _tick_rows(self, now: float) -> None:
+        """:meth:`tick` on the compiled row store: the same batches, the same decide,
+        the same tables and estimates (``_hops.QRows``)."""
+        qr = self._qrows
+        eng = self.engine
+        cols = qr.take(now, self.instant)
+        if cols is not None:
+            res = eng.observe(HopBatch(*cols), now)
+            self.rows_applied += res.accepted
+            self.rows_rejected += len(res.rejected)
+        dec = eng.decide(now)
+        self.ticks += 1
+        self._moved = []
+        if eng.Q is not self._q_bound:   # the engine replaced its array
+            qr.bind_q(eng.Q)
+            self._q_bound = eng.Q
+        # with the plain engine only the applied keys' Q-values changed (see _decide)
+        inc = self.estimate_mode == "published" and eng.settings.variant == "plain"
+        nk = qr.step(sorted(dec.changed_nodes) if dec.changed_nodes else (), inc)
+        if not inc:
+            self._set_estimates()
+        elif nk:  # the list twin (on_hop's) is rebuilt on its first use
+            self._V = None
+            self._V_lag = [(np.empty(0, np.int64),) * 2 + (np.empty(0),)]
+
     def _pending(self) -> np.ndarray:
-        """Every row not yet applied, as an (m, 6) array in the order they were reported."""
-        parts = [self._carry] if self._carry.shape[0] else []
+        """Every row not yet applied, as a (6, m) array: the rows carried over (in the
+        order of their due times, ties in the order reported), then the new ones in the
+        order they were reported."""
+        parts = [self._carry] if self._carry.shape[1] else []
         if self._rows:
             # one flat pass over the tuples: much cheaper than np.array(list of tuples)
             parts.append(np.fromiter(chain.from_iterable(self._rows), dtype=np.float64,
-                                     count=6 * len(self._rows)).reshape(-1, 6))
+                                     count=6 * len(self._rows)).reshape(-1, 6).T)
             self._rows = []
         parts += self._chunks
         self._chunks = []
         if len(parts) == 1:
             return parts[0]
-        return np.concatenate(parts) if parts else self._carry
+        return np.concatenate(parts, axis=1) if parts else self._carry
 
     def tick(self, now: float) -> None:
+        if self._qrows is not None:
+            if self._rows or self._chunks or self._carry.shape[1]:
+                raise RuntimeError("qrouting: hops reported both to the compiled row store "
+                                   "and to on_hop/on_hops in one run")
+            self._tick_rows(now)
+            return
         rows = self._pending()
-        self._carry = rows[:0]
-        if rows.shape[0]:
-            if self.instant:
-                due = rows
-            else:
-                late = rows[:, 0] > now
-                due = rows[~late]
-                self._carry = rows[late]
-            if due.shape[0]:
-                # stable: ties keep arrival order
-                a = due[np.argsort(due[:, 0], kind="stable")]
-                res = self.engine.observe(
-                    HopBatch.of(a[:, 1].astype(np.int64), a[:, 2].astype(np.int64),
-                                a[:, 3].astype(np.int64), a[:, 4], a[:, 5]), now)
+        self._carry = rows[:, :0]
+        if rows.shape[1]:
+            # every row in due-time order, stable (ties keep the order reported; the rows
+            # carried over are already in that order and come first): the due rows, in
+            # the order they are applied, are a prefix, the rest is carried over (a
+            # stable sort of the due rows alone gives the same order)
+            a = rows.take(np.argsort(rows[0], kind="stable"), axis=1)
+            k = a.shape[1] if self.instant else int(np.searchsorted(a[0], now, side="right"))
+            self._carry = a[:, k:]
+            if k:
+                a = a[:, :k]
+                ids = a[1:4].astype(np.int64)
+                res = self.engine.observe(HopBatch(ids[0], ids[1], ids[2], a[4], a[5]), now)
                 self.rows_applied += res.accepted
                 self.rows_rejected += len(res.rejected)
-                self._decide(now, (a[:, 1] * self.engine.n + a[:, 3]).astype(np.int64))
+                self._decide(now, ids[0] * self.engine.n + ids[2])
                 return
         self._decide(now, np.empty(0, dtype=np.int64))
 
@@ -487,13 +555,20 @@ class QRouting(Policy):
                 or self.engine.settings.mode == "split"):
             self._set_estimates()
             return
-        keys = np.unique(np.concatenate([written, *self._moved]))
+        n = self.engine.n
+        if n * n <= _KEY_MASK_MAX:  # sorted unique keys by a mask: np.unique's result, cheaper
+            mask = np.zeros(n * n, dtype=bool)
+            mask[written] = True
+            for mv in self._moved:
+                mask[mv] = True
+            keys = np.flatnonzero(mask)
+        else:
+            keys = np.unique(np.concatenate([written, *self._moved]))
         if keys.size == 0:
             return
-        n = self.engine.n
         xk, dk = np.divmod(keys, n)
         vals = self.engine.published_estimates(xk, dk)
-        self._Vn[xk, dk] = vals
+        self._Vn.reshape(-1)[keys] = vals
         # the list twin (on_hop's) catches up on its first use: on_hops never needs it;
         # a lag as large as the table is dropped (the twin is then rebuilt whole)
         self._V_lag.append((xk, dk, vals))
@@ -519,10 +594,12 @@ class QRouting(Policy):
         (an array, read by on_hops) and ``_V`` (the same as lists, read by on_hop)."""
         eng = self.engine
         vn = eng.values() if self.estimate_mode == "min" else eng.published_estimates()
-        self._Vn = np.array(vn, dtype=np.float64)
+        self._Vn = np.array(vn, dtype=np.float64, order="C")   # C: _decide writes it flat
         self._V: list[list[float]] | None = self._Vn.tolist()
         self._V_lag: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
         self._V_lag_rows = 0
+        if self._qrows is not None:
+            self._qrows.bind_values(self._Vn)
 
     def on_link(self, x: int, y: int, up: bool, now: float) -> None:
         self.engine.set_link(x, y, up, now)

@@ -34,6 +34,9 @@ policy has them; the reference loop never does, and the results must be the same
 ``split_arrays()``, ``draws()``, ``set_draws(block, index)``  the loop samples ``table``
     entries -2 itself (see ``routerd.sim.policies.QRouting``); refreshed after every
     ``tick`` and ``on_link``.
+``hop_rows()``  a ``routerd.sim._hops.QRows`` (or None): the loop writes every hop's row
+    into it instead of calling ``on_hop`` / ``on_hops``; the policy's ``tick`` takes them
+    from it (``QRouting``).
 """
 from __future__ import annotations
 

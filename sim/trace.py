@@ -70,6 +70,7 @@ SKIP_REASONS: tuple[str, ...] = (
     "unmapped_destination",
     "unmapped_both",
     "same_node",          # both ends map to one node: nothing crosses the network
+    "bad_time",           # a time past what a signed 64-bit nanosecond count holds (2262)
     "after_duration",     # the run ended before its time (set by the simulator run)
 )
 
@@ -78,6 +79,8 @@ _MAX_RECORD = 262144
 _PCAP_MAGICS = {b"\xa1\xb2\xc3\xd4", b"\xd4\xc3\xb2\xa1", b"\xa1\xb2\x3c\x4d", b"\x4d\x3c\xb2\xa1"}
 _PCAPNG_MAGIC = b"\x0a\x0d\x0d\x0a"
 _NS = 1_000_000_000
+#: record times are nanoseconds since 1970 in a signed 64-bit count (numpy int64)
+_TS_LIMIT = 1 << 63
 
 # link-layer header types (the tcpdump.org LINKTYPE_ registry values as they appear in files)
 LINKTYPE_NULL, LINKTYPE_ETHERNET, LINKTYPE_RAW, LINKTYPE_LOOP = 0, 1, 101, 108
@@ -611,6 +614,9 @@ def load_capture(path: str, topo: Topology, amap: AddressMap | None, *, speed: f
         if s == d:
             rep.skip("same_node")
             continue
+        if not 0 <= r.ts_ns < _TS_LIMIT:     # a damaged or absurd timestamp (pcapng's
+            rep.skip("bad_time")             # resolution times 2^64 ticks goes far past it)
+            continue
         ts.append(r.ts_ns); src.append(s); dst.append(d); nb.append(float(ln))
         fk.append(zlib.crc32(sa + da + bytes((proto,)) + sp.to_bytes(2, "big") + dp.to_bytes(2, "big")))
     return _finish(topo.n, ts, src, dst, nb, fk, rep, speed, flows_per_pair)
@@ -712,6 +718,8 @@ def load_flow_log(path: str, topo: Topology, amap: AddressMap | None, *, speed: 
             size = _num(r["bytes"], "bytes", lo_open=True)
             k = int(_num(r.get("packets") or 1, "packets", lo_open=True))
             dur_ns = int(Decimal(str(_num(r.get("duration_s") or 0, "duration_s"))) * _NS)
+            if not -_TS_LIMIT // 2 <= t < _TS_LIMIT // 2 or dur_ns >= _TS_LIMIT // 2:
+                raise ValueError("time or duration_s more than 2^62 ns (146 years) from 0")
         except (ValueError, TypeError, InvalidOperation) as e:
             problems.append(Problem(where, str(r.get("time")), f"a bad value: {e}"))
             continue

@@ -219,7 +219,10 @@ class Diamond:
         pkt = ov.data_packet(self.tag, i[src], i[dst], flow, seq, time.time_ns(), ttl, 64)
         self.tx.sendto(pkt, ("127.0.0.1", self.ports[src]["local"]))
 
-    def received(self, node: str, timeout: float = 1.0) -> list[ov.Header]:
+    def received(self, node: str, timeout: float = 1.0,
+                 expect: int | None = None) -> list[ov.Header]:
+        """Headers arriving at ``node``'s sink until ``timeout`` s pass (or, with ``expect``,
+        until that many came and 0.2 s more brought nothing)."""
         out = []
         end = time.monotonic() + timeout
         s = self.sink[node]
@@ -231,7 +234,8 @@ class Diamond:
             h = ov.decode(data, nodes=self.topo.n, topo=self.tag)
             assert not isinstance(h, ov.Malformed)
             out.append(h[0])
-            end = max(end, time.monotonic() + 0.2)
+            end = (time.monotonic() + 0.2 if expect is not None and len(out) >= expect
+                   else max(end, time.monotonic() + 0.2))
         return out
 
     def forwarded(self, name: str) -> int:
@@ -474,10 +478,10 @@ def test_ttl_expiry_and_malformed_packets_are_counted(diamond: Callable[..., Dia
     d.send("s", "t", flow=1, seq=1, ttl=0)           # cannot leave s
     d.send("s", "t", flow=1, seq=2, ttl=1)           # reaches y with 0 left: expires there
     d.send("s", "t", flow=1, seq=3, ttl=2)           # just enough
-    got = d.received("t")
+    got = d.received("t", 10.0, expect=1)
     assert [h.seq for h in got] == [3]
     assert wait_until(lambda: d.agents["s"].agent.counts["ttl_expired"] == 1
-                      and d.agents["y"].agent.counts["ttl_expired"] == 1, 3)
+                      and d.agents["y"].agent.counts["ttl_expired"] == 1, 10)
     assert d.agents["s"].metric("routerd_agent_ttl_expired_total") == 1
     local = ("127.0.0.1", d.ports["s"]["local"])
     d.tx.sendto(b"\x01\x00", local)                                            # short
@@ -485,12 +489,12 @@ def test_ttl_expiry_and_malformed_packets_are_counted(diamond: Callable[..., Dia
     d.tx.sendto(ov.data_packet(d.tag, 0, 3, 1, 1, 1, 5, 40) + b"!", local)     # bad_length
     d.tx.sendto(ov.probe(d.tag, 0, 1, 1, 1), local)                            # not data: dropped
     s = d.agents["s"]
-    assert wait_until(lambda: s.agent.counts["malformed"] == 3, 3)
+    assert wait_until(lambda: s.agent.counts["malformed"] == 3, 10)
     for reason in ("short", "wrong_topology", "bad_length"):
         assert s.metric("routerd_agent_malformed_packets_total", {"reason": reason}) == 1
     # the probe was sent last and travels its own path through the agent: wait for it too
     assert wait_until(
-        lambda: s.metric("routerd_agent_packets_dropped_total", {"reason": "not_data"}) == 1, 3)
+        lambda: s.metric("routerd_agent_packets_dropped_total", {"reason": "not_data"}) == 1, 10)
     # on a link socket too: garbage from the neighbour's address is counted, not fatal
     x_end = d.underlay[(1, 0)][0]          # x's address on the s-x link
     s_end = d.underlay[(0, 1)][0]
@@ -502,7 +506,7 @@ def test_ttl_expiry_and_malformed_packets_are_counted(diamond: Callable[..., Dia
     g.bind(x_end)
     g.sendto(b"\x09" * 40, s_end)
     g.close()
-    assert wait_until(lambda: s.metric("routerd_agent_malformed_packets_total", {"reason": "bad_version"}) == 1, 3)
+    assert wait_until(lambda: s.metric("routerd_agent_malformed_packets_total", {"reason": "bad_version"}) == 1, 10)
 
 
 def test_table_hold_and_resync(diamond: Callable[..., Diamond]) -> None:

@@ -11,7 +11,6 @@ import pytest
 import zmq
 
 from routerd.agent import client
-from routerd.core import topology
 from routerd.io import topofiles
 from routerd.io.clock import SYSTEM, Clock, FakeClock, SystemClock
 

@@ -11,7 +11,6 @@ import pytest
 
 from routerd.io import config, journal, wire
 from routerd.service import dedup as D
-from routerd.core import topology as T
 from routerd.io import topofiles as TF
 from routerd.service.daemon import SERVICE_REASONS, Service
 

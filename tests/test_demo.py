@@ -99,7 +99,7 @@ def _figures(sh_mean: float, q_mean: float, sv_mean: float, sv_lost_fail: int) -
 def test_reading_follows_the_figures() -> None:
     d = demo.Demo("/nonexistent", 30.0, 1, 1.0)
     good = d.reading(_figures(0.0447, 0.0063, 0.0064, 0))
-    assert "44.7 ms" in good and "7.1 times faster" in good and "saturated" in good
+    assert "44.7 ms" in good and "7.1 times faster than static routes" in good and "saturated" in good
     assert "every hall-to-hall packet over the trunk" in good
     assert "1.6% above the in-process learner — the same behaviour" in good
     assert "40 of them while w3-w4 was down" in good
@@ -108,6 +108,24 @@ def test_reading_follows_the_figures() -> None:
     assert "did no better here" in bad and "a real difference" in bad
     assert "lost 12 packets against 0 in process" in bad
     assert good != bad
+
+
+def test_reading_gives_the_services_optimality_gap_or_why_not() -> None:
+    d = demo.Demo("/nonexistent", 30.0, 1, 1.0)
+    figs = _figures(0.0447, 0.0063, 0.0064, 0)
+    assert "optimum" not in d.reading(figs)
+    figs["optimum"] = {"available": True, "demand_pps": 1234.4, "optimal_delay_s": 0.0041,
+                       "published_delay_s": 0.00533, "gap_ratio": 0.00533 / 0.0041, "age_s": 1.2,
+                       "published_reason": None}
+    text = d.reading(figs)
+    assert "1234 packets/s" in text and "optimum's mean delay at 4.1 ms" in text
+    assert "published tables' at 5.3 ms: 1.30 times the optimum" in text
+    figs["optimum"] = {"available": False, "reason": "no_demand"}
+    assert "not available at the end: it had measured no demand" in d.reading(figs)
+    figs["optimum"] = {**figs["optimum"], "available": True, "demand_pps": 10.0,
+                       "optimal_delay_s": 0.004, "published_delay_s": None, "gap_ratio": None,
+                       "published_reason": "a link at or over capacity"}
+    assert "could not rate its published tables (a link at or over capacity)" in d.reading(figs)
 
 
 def test_progress_plain_lines_when_not_a_terminal() -> None:
@@ -130,7 +148,6 @@ def test_progress_plain_lines_when_not_a_terminal() -> None:
 def offline(tmp_path_factory: Any) -> demo.Demo:
     """A Demo whose four results are in-process runs (the 'service' one: qrouting with
     another seed, so its line differs a little from the in-process learner's)."""
-    from routerd.core import topology
     from routerd.io import topofiles
     from routerd.io import scenario
     from routerd.sim.run import DEMO_TOPOLOGY
@@ -302,6 +319,17 @@ def test_demo_completes_in_time_and_writes_every_file(tmp_path: Path) -> None:
     csv_rows = (out / "comparison.csv").read_text().splitlines()
     assert csv_rows[0].startswith("figure,shortest (static),qrouting (in process)")
     assert not math.isnan(f["service"]["trunk_util_peak"])
+    # the replay command the demo prints works as printed (the state dir carries its own
+    # topology and config: no --topology needed)
+    hint = re.search(r"offline \(or try other settings with --compare KEY=VALUE\): (routerd replay .+)$",
+                     cp.stdout, re.M)
+    assert hint, cp.stdout[-2000:]
+    words = hint.group(1).split()
+    assert "--topology" not in words
+    rp = subprocess.run([sys.executable, "-m", "routerd", *words[1:], "--no-plot", "--quiet"],
+                        capture_output=True, text=True, timeout=180, check=False)
+    assert rp.returncode == 0, rp.stdout[-2000:] + rp.stderr[-2000:]
+    assert (out / "replay").is_dir() and any((out / "replay").iterdir())
 
 
 @pytest.mark.slow

@@ -21,7 +21,6 @@ from routerd.agent import forwarder as A
 from routerd.tools import cli
 from routerd.io import wire
 from routerd.service import metrics as M
-from routerd.core import topology as T
 from routerd.io import topofiles as TF
 from routerd.core.engine import Engine
 
@@ -140,14 +139,70 @@ def test_units_are_hardened_and_call_real_flags(unit: str, command: str) -> None
     cli.build_parser().parse_args(argv[1:])     # every flag exists (SystemExit otherwise)
 
 
+def _env(name: str) -> dict[str, str]:
+    with open(os.path.join(DEPLOY, name)) as fh:
+        return dict(ln.strip().split("=", 1) for ln in fh if ln.strip() and not ln.startswith("#"))
+
+
+def _argv(unit: str, instance: str = "0") -> list[str]:
+    """A unit's ExecStart as systemd would run it: %i and ${VAR}s from its EnvironmentFile
+    (deploy/ holds the example, installed as /etc/routerd/NAME)."""
+    k = _unit(unit)
+    line = k["ExecStart"][0].replace("%i", instance)
+    for f in k.get("EnvironmentFile", []):
+        for var, val in _env(os.path.basename(f)).items():
+            line = line.replace("${" + var + "}", val)
+    assert "${" not in line, line
+    return shlex.split(line)
+
+
+@pytest.mark.parametrize("unit", ["routerd-front.service", "routerd-shard@.service"])
+def test_shard_units_are_hardened_and_call_real_flags(unit: str) -> None:
+    k = _unit(unit)
+    for key, val in (("DynamicUser", "yes"), ("ProtectSystem", "strict"), ("Restart", "on-failure"),
+                     ("NoNewPrivileges", "yes"), ("ProtectHome", "yes"), ("PrivateTmp", "yes"),
+                     ("StateDirectory", "routerd"), ("User", "routerd"),
+                     ("Conflicts", "routerd.service")):
+        assert k.get(key) == [val], (unit, key)
+    argv = _argv(unit)
+    assert argv[0].endswith("/routerd") and argv[1] == "serve"
+    cli.build_parser().parse_args(argv[1:])     # every flag exists (SystemExit otherwise)
+
+
+def test_shard_units_agree_with_each_other_and_with_prometheus() -> None:
+    """The front waits for ROUTERD_SHARDS external workers on the endpoint every worker
+    announces itself to, both run on one state dir, and Prometheus scrapes one page per
+    worker (shard.metrics_port_base + K, the base named in the file's comment)."""
+    parser = cli.build_parser()
+    n = int(_env("shards.env")["ROUTERD_SHARDS"])
+    front = parser.parse_args(_argv("routerd-front.service")[1:])
+    assert front.shards == n and front.external_workers and front.shard is None
+    ws = [parser.parse_args(_argv("routerd-shard@.service", str(i))[1:]) for i in range(n)]
+    assert [w.shard for w in ws] == [f"{i}/{n}" for i in range(n)]
+    for w in ws:
+        assert w.upstream == front.shard_listen and w.state_dir == front.state_dir
+        assert w.config == front.config and w.metrics is None   # port from the config's base
+    assert len({w.ingest for w in ws}) == n               # each its own endpoints
+    with open(os.path.join(DEPLOY, "prometheus.yml")) as fh:
+        prom = yaml.safe_load(fh)
+    job = next(j for j in prom["scrape_configs"] if j["job_name"] == "routerd-shard")
+    with open(os.path.join(DEPLOY, job["file_sd_configs"][0]["files"][0])) as fh:
+        text = fh.read()
+    base = int(re.search(r"\((\d+) \+ K here\)", text).group(1))   # type: ignore[union-attr]
+    targets = [t for g in yaml.safe_load(text) for t in g["targets"]]
+    assert targets == [f"127.0.0.1:{base + i}" for i in range(n)]
+
+
 @pytest.mark.skipif(shutil.which("systemd-analyze") is None, reason="systemd-analyze not installed")
 def test_systemd_analyze_verify(tmp_path: object) -> None:
-    units = [os.path.join(DEPLOY, "routerd.service")]
+    units = [os.path.join(DEPLOY, "routerd.service"), os.path.join(DEPLOY, "routerd-front.service")]
     # a template is verified through an instance of it
     inst = os.path.join(str(tmp_path), "routerd-agent@w1.service")
     shutil.copy(os.path.join(DEPLOY, "routerd-agent@.service"), inst)
-    r = subprocess.run(["systemd-analyze", "verify", *units, inst], capture_output=True, text=True,
-                       timeout=60, check=False)
+    winst = os.path.join(str(tmp_path), "routerd-shard@0.service")
+    shutil.copy(os.path.join(DEPLOY, "routerd-shard@.service"), winst)
+    r = subprocess.run(["systemd-analyze", "verify", *units, inst, winst], capture_output=True,
+                       text=True, timeout=60, check=False)
     lines = [ln for ln in (r.stdout + r.stderr).splitlines()
              if ln.strip() and "is not executable" not in ln]   # routerd is not installed here
     assert lines == [], lines

@@ -367,11 +367,13 @@ def test_step_sizes_bounded_and_identical_to_the_unbounded_table(kw: dict) -> No
     old = _old_step_table(s, int(counts.max()))
     new = e.step_sizes(counts)
     np.testing.assert_array_equal(new, old[counts])   # bit for bit
-    # the scalar path (one observe_one per count) applies the same bits: preset N, step
+    # the scalar path (one observe_one per count) applies the same bits: preset N, step.
+    # Counts saturate at the engine's cap: a saturated count must still step like the
+    # true count (the unbounded table's entry for nn)
     x, y, d = 0, 1, 2
     j = slot(e.topo, "a", "b")
     for nn in [1, 2, max(1, top - 1), top, top + 1, top + 2, 10 ** 6, 10 ** 7 + 3]:
-        e.N[x, d, j] = nn - 1
+        e.N[x, d, j] = min(nn - 1, e._count_cap)
         e.Q[x, d, j] = 0.5
         e.observe_one(x, y, d, 0.25, estimate=1.0)
         assert e.Q[x, d, j] == 0.5 + old[nn] * (1.25 - 0.5), nn
@@ -382,11 +384,18 @@ def test_step_table_stays_small_after_huge_counts() -> None:
     # issue 13: the table grew with the busiest entry's count (441 MB at 4.5 M updates)
     e = Engine(line("a", "b", "c"))
     j = slot(e.topo, "a", "b")
-    e.N[0, 2, j] = 50_000_000
+    e.N[0, 2, j] = e._count_cap          # the defaults' counts saturate (uint8)
     e.observe(HopBatch.of([0] * 30, [1] * 30, [2] * 30, [0.01] * 30))   # vector path
     e.observe_one(0, 1, 2, 0.01)                                        # scalar path
-    assert e.N[0, 2, j] == 50_000_031
+    assert e.N.dtype == np.uint8 and e.N[0, 2, j] == e._count_cap
     assert len(e._alphas_list) < 1024 and e._alphas is not None and e._alphas.size < 1024
+    # without a floor the step never settles: 32-bit counts, the table at its bound
+    e = Engine(line("a", "b", "c"), EngineSettings(floor=0.0))
+    e.N[0, 2, j] = 50_000_000
+    e.observe(HopBatch.of([0] * 30, [1] * 30, [2] * 30, [0.01] * 30))
+    e.observe_one(0, 1, 2, 0.01)
+    assert e.N.dtype == np.uint32 and e.N[0, 2, j] == 50_000_031
+    assert len(e._alphas_list) <= E.STEP_TABLE_MAX + 1
 
 
 def test_constant_step() -> None:
@@ -624,15 +633,16 @@ def test_every_reject_reason_is_produced_counted_and_good_rows_still_apply(pad: 
         "bad_estimate": (a, b, d, 0.001, -2.0),
         "link_down": (c, d, d, 0.001, math.nan),
     }
-    assert set(bad) == set(E.REJECT_REASONS)
+    # not_owned: only an engine with owned destinations (test_owned_destination_rows_...)
+    assert set(bad) | {"not_owned"} == set(E.REJECT_REASONS)
     good = [(a, b, d, 0.002, math.nan), (b, c, d, 0.003, 0.01)] + [(b, a, a, 0.001, math.nan)] * pad
     rows = [good[0]] + list(bad.values()) + good[1:]
     r = e.observe(HopBatch.of(*zip(*rows)))
     assert r.accepted == len(good)
-    assert r.rejected_by_reason == dict.fromkeys(E.REJECT_REASONS, 1)
+    assert r.rejected_by_reason == dict.fromkeys(bad, 1)
     assert [i for i, _ in r.rejected] == list(range(1, 1 + len(bad)))
     assert [reason for _, reason in r.rejected] == list(bad)
-    assert e.statistics().rejected == dict.fromkeys(E.REJECT_REASONS, 1)
+    assert e.statistics().rejected == {**dict.fromkeys(bad, 1), "not_owned": 0}
     ref.observe(HopBatch.of(*zip(*good)))
     assert e.same_state(ref)
     # more variants of each rule
@@ -876,3 +886,278 @@ def test_a_new_fallback_counts_again(kernel_path: str) -> None:
         e._dirty[c] = True                # even the full pass does not count it again
         assert e.decide(4.0 + i).loops_prevented == 0
     assert e.statistics().loops_prevented == 2
+
+
+# ---- owned destinations (a shard worker's engine) ----------------------------------------------
+
+def test_owned_destination_rows_are_refused_last_and_counted() -> None:
+    t = line("a", "b", "c", "d")
+    a, b, c, d = (t.index[k] for k in "abcd")
+    e = Engine(t, EngineSettings(), owned=[d, b])
+    assert e.owned.tolist() == [b, d] and e.partial and e.Q.shape == (4, 2, t.slots.shape[1])
+    e.set_link(c, d, False)
+    rows = [(a, b, d, 0.002, math.nan),     # owned: applied
+            (b, c, a, 0.001, math.nan),     # a is not owned
+            (c, d, a, 0.001, math.nan),     # link down and not owned: the earlier rule
+            (a, b, a, 0.001, math.nan)]     # at_destination before not_owned
+    for pad in (0, 40):
+        r = e.observe(HopBatch.of(*zip(*(rows + [(a, b, b, 0.001, math.nan)] * pad))))
+        assert r.rejected == ((1, "not_owned"), (2, "link_down"), (3, "at_destination"))
+    assert e.statistics().rejected["not_owned"] == 2
+    assert e.weights(a, c) == [] and e.weights(a, d) != []
+    assert set(e.routes(a)) == {b, d}
+    with pytest.raises(KeyError, match="not owned"):
+        e.estimate(a, c)
+
+
+def test_owned_destinations_state_restores_the_same_layout() -> None:
+    t = line("a", "b", "c", "d")
+    a, b, _c, d = (t.index[k] for k in "abcd")
+    e = Engine(t, EngineSettings(), owned=[d])
+    e.observe_one(a, b, d, 0.004)
+    e.decide(1.0)
+    st = e.export_state()
+    assert st["owned"].tolist() == [d]
+    f = Engine.from_state(t, EngineSettings(), st)
+    assert f.owned.tolist() == [d] and f.same_state(e)
+    assert Engine.from_state(t, EngineSettings(), st, owned=[d]).same_state(e)
+    with pytest.raises(ValueError, match="owned destinations"):
+        Engine.from_state(t, EngineSettings(), st, owned=[b, d])
+    whole = Engine(t, EngineSettings())
+    assert "owned" not in whole.export_state()       # a whole engine's state is as before
+    assert not whole.same_state(f)
+    # a whole engine's state (a shard's, saved before engines had owned destinations)
+    # restores into an owning one by its columns: the same state as learning owned-only
+    whole.observe_one(a, b, d, 0.004)
+    whole.observe_one(a, b, b, 0.003)                # another destination's row: dropped
+    whole.decide(1.0)
+    cut = Engine.from_state(t, EngineSettings(), whole.export_state(), owned=[d])
+    assert cut.owned.tolist() == [d] and cut.same_state(e)
+
+
+def test_owned_destinations_checks() -> None:
+    t = line("a", "b", "c")
+    with pytest.raises(ValueError, match="outside the 3 nodes"):
+        Engine(t, EngineSettings(), owned=[0, 3])
+    with pytest.raises(ValueError, match="empty"):
+        Engine(t, EngineSettings(), owned=[])
+    with pytest.raises(ValueError, match="plain variant"):
+        Engine(t, EngineSettings(variant="predictive"), owned=[1])
+    e = Engine(t, EngineSettings(), owned=[1])
+    with pytest.raises(ValueError, match="plain variant"):
+        e.reconfigure(EngineSettings(variant="predictive"))
+    assert not Engine(t, EngineSettings(), owned=[0, 1, 2]).partial
+    # split mode measures link rates over every destination: a shard keeps a whole engine
+    with pytest.raises(ValueError, match="greedy mode"):
+        Engine(t, EngineSettings(mode="split"), owned=[1])
+    with pytest.raises(ValueError, match="greedy mode"):
+        e.reconfigure(EngineSettings(mode="split"))
+    from routerd.io.shards import ShardMap, engine_owned
+
+    smap = ShardMap(n_shards=2, owner=np.array([0, 1, 1]), source="test")
+    assert engine_owned(smap, 0, "plain").tolist() == [0]
+    assert engine_owned(smap, 0, "plain", "split") is None
+
+
+def test_an_owning_state_restores_whole_under_a_variant() -> None:
+    """A shard worker restarted with a variant (which needs every destination): its saved
+    columns in place, the other destinations fresh."""
+    t = line("a", "b", "c", "d")
+    a, b, _c, d = (t.index[k] for k in "abcd")
+    e = Engine(t, EngineSettings(), owned=[d])
+    e.observe_one(a, b, d, 0.004)
+    e.set_link(b, a, False)
+    e.decide(1.0)
+    f = Engine.from_state(t, EngineSettings(variant="predictive"), e.export_state())
+    assert not f.partial and f._variant is not None
+    for k in ("Q", "N", "td", "greedy", "eps", "alt"):
+        assert np.array_equal(getattr(f, k)[:, [d]], getattr(e, k)), k
+    assert np.array_equal(f.live, e.live)
+    fresh = Engine(t, EngineSettings(variant="predictive"))
+    fresh.set_link(b, a, False)
+    assert np.array_equal(f.Q[:, [a, b]], fresh.Q[:, [a, b]])
+    f.decide(2.0)
+    assert f.weights(a, d) == e.weights(a, d)
+
+
+# ---- counts: a narrow type that saturates (issue 15) ----------------------------------------
+
+def _wide(e: Engine) -> Engine:
+    """``e`` with the int64 counts every engine kept before counts were narrowed, never
+    saturating (the numpy reference reads them alike): the yardstick."""
+    e.N = e.N.astype(np.int64)
+    e._count_cap = int(np.iinfo(np.int64).max)
+    return e
+
+
+def _busy_rows(t: T.Topology, rng: np.random.Generator, m: int) -> HopBatch:
+    """Rows on a handful of keys, so counts run far past 255 within a short test."""
+    x = rng.integers(0, 2, m)                                   # a or b
+    y = x + 1
+    d = np.full(m, t.n - 1)
+    est = np.where(rng.random(m) < 0.5, rng.uniform(0.001, 0.01, m), np.nan)
+    return HopBatch.of(x, y, d, rng.uniform(0.0005, 0.02, m), est)
+
+
+@pytest.mark.parametrize("kw,dtype", [
+    ({}, np.uint8),                                            # the defaults: floor at count 148
+    ({"step_mode": "constant", "alpha": 0.3}, np.uint8),
+    ({"c": 0.7, "kappa": 0.75, "floor": 0.001}, np.uint16),    # floor near count 6,000
+])
+def test_saturating_counts_give_what_wide_counts_give(kw: dict, dtype: type, kernel_path: str) -> None:
+    t = line("a", "b", "c", "d")
+    s = EngineSettings(kernels=kernel_path, **kw)
+    e = Engine(t, s)
+    w = _wide(Engine(t, dataclasses.replace(s, kernels="reference")))
+    assert e.N.dtype == dtype and e._count_cap == np.iinfo(dtype).max
+    rng = np.random.default_rng(3)
+    for i in range(60):
+        b = _busy_rows(t, rng, 64 if i % 3 else 7)             # vector and per-row paths
+        ra, rb = e.observe(b, now=i), w.observe(b, now=i)
+        assert np.array_equal(ra.td_errors, rb.td_errors)
+        e.observe_one(0, 1, 3, 0.004, now=i)
+        w.observe_one(0, 1, 3, 0.004, now=i)
+        if i % 5 == 0:
+            e.decide(i)
+            w.decide(i)
+    assert int(w.N.max()) > 1000                               # well past a uint8's range
+    np.testing.assert_array_equal(e.N, np.minimum(w.N, e._count_cap))
+    saturated = int(w.N.max()) > e._count_cap
+    assert e.same_state(w) == (not saturated)                  # N itself differs once saturated
+    for k in ("Q", "td", "greedy", "eps", "alt"):
+        assert np.array_equal(getattr(e, k), getattr(w, k)), k
+
+
+@pytest.mark.parametrize("kw", [{"floor": 0.0}, {"c": 1.0, "kappa": 0.6, "floor": 1e-4},
+                                {"explore_basis": "visits"}, {"variant": "full_echo"}])
+def test_counts_that_matter_unboundedly_are_32_bit(kw: dict) -> None:
+    # a step that does not settle within the table, the visits basis (it sums counts)
+    # and the variants keep counts good for 4.29e9 updates of one entry
+    e = Engine(line("a", "b", "c"), EngineSettings(**kw))
+    assert e.N.dtype == np.uint32 and e._count_cap == 2 ** 32 - 1
+
+
+def test_a_state_with_int64_counts_restores_saturated_and_goes_on_the_same(kernel_path: str) -> None:
+    # states saved before counts were narrowed hold int64 counts past any narrow range
+    t = line("a", "b", "c", "d")
+    s = EngineSettings(kernels=kernel_path)
+    w = _wide(Engine(t, dataclasses.replace(s, kernels="reference")))
+    rng = np.random.default_rng(5)
+    for i in range(40):
+        w.observe(_busy_rows(t, rng, 64), now=i)
+    w.decide(40.0)
+    st_ = w.export_state()
+    assert st_["N"].dtype == np.int64 and int(st_["N"].max()) > 1000
+    e = Engine.from_state(t, s, st_)
+    assert e.N.dtype == np.uint8
+    np.testing.assert_array_equal(e.N, np.minimum(st_["N"], 255))
+    for i in range(40, 60):
+        b = _busy_rows(t, rng, 64)
+        e.observe(b, now=i)
+        w.observe(b, now=i)
+    e.decide(61.0)
+    w.decide(61.0)
+    for k in ("Q", "td", "greedy", "eps", "alt"):
+        assert np.array_equal(getattr(e, k), getattr(w, k)), k
+
+
+def test_reconfigure_widens_and_narrows_counts() -> None:
+    t = line("a", "b", "c")
+    e = Engine(t)
+    j = slot(t, "a", "b")
+    e.N[0, 2, j] = 255                      # saturated under the defaults
+    e.N[1, 2, 0] = 7
+    e.reconfigure(EngineSettings(floor=0.0))
+    assert e.N.dtype == np.uint32 and e.N[0, 2, j] == 255 and e.N[1, 2, 0] == 7
+    e.N[0, 2, j] = 100_000
+    e.observe_one(0, 1, 2, 0.01)
+    assert e.N[0, 2, j] == 100_001
+    e.reconfigure(EngineSettings())
+    assert e.N.dtype == np.uint8 and e.N[0, 2, j] == 255 and e.N[1, 2, 0] == 7
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_reference_decide_in_destination_blocks_equals_one_block(make_ring, seed: int,  # type: ignore[no-untyped-def]
+                                                                 monkeypatch: pytest.MonkeyPatch) -> None:
+    """The reference full pass works through destinations in blocks (bounded
+    temporaries, issue 15): blocks of 1, 3 and 7 destinations give the tables, counters
+    and changed nodes of one block over all of them, through loops and link flaps."""
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(8, 24))
+    t = make_ring(n, n // 2, seed, zero_delay=seed % 2 == 1)
+    s = EngineSettings(kernels="reference", margin=(0.0, 0.3)[seed % 2],
+                       explore_basis=("td", "visits")[seed % 2])
+    blocks = (n, 1, 3, 7)
+    es = [Engine(t, s) for _ in blocks]
+    for it in range(8):
+        q = rng.uniform(1e-3, 0.05, es[0].Q.shape)
+        td = rng.uniform(0, 0.02, es[0].td.shape)
+        nn = rng.integers(0, 200, es[0].N.shape)
+        k = int(rng.integers(0, t.n_links))
+        for e in es:
+            e.set_link(int(t.src[k]), int(t.dst[k]), bool(it % 3))
+            e.Q[:] = np.where(e._present[:, None, :], q, np.inf)
+            e.Q[np.broadcast_to((e._present & ~e.live)[:, None, :], e.Q.shape)] = s.ceiling_s
+            e.td[:] = td
+            e.N[:] = nn
+            e._dirty[:] = True
+        out = []
+        for e, b in zip(es, blocks):
+            monkeypatch.setattr(E, "DECIDE_BLOCK_BYTES", 8 * n * b)
+            assert E._decide_block_size(n) == b
+            out.append(e.decide(float(it)))
+        assert all(d == out[0] for d in out[1:])
+        for e in es[1:]:
+            assert e.same_state(es[0]) and e.statistics() == es[0].statistics()
+            assert np.array_equal(e._hyst, es[0]._hyst) and np.array_equal(e._forced, es[0]._forced)
+            assert np.array_equal(e._stable, es[0]._stable)
+    assert es[0].statistics().loops_prevented > 0      # the fallback ladder was exercised
+
+
+def test_a_limited_decide_takes_the_due_destinations_in_turn(make_ring, kernel_path: str) -> None:  # type: ignore[no-untyped-def]
+    """decide(limit=L) takes at most L due destinations (the rest stay due, pending()),
+    in a rotating order; once none is pending the tables, candidates, shares and counters
+    are those of one unlimited decide, and a state round trip keeps the order."""
+    t = make_ring(20, 10, 4)
+    s = EngineSettings(kernels=kernel_path)
+    rng = np.random.default_rng(4)
+    a, b = Engine(t, s), Engine(t, s)
+    for it in range(6):
+        q = rng.uniform(1e-3, 0.05, a.Q.shape)
+        for e in (a, b):
+            e.Q[:] = np.where(e._present[:, None, :], q, np.inf)
+            e._dirty[:] = True
+        full = a.decide(float(it))
+        assert a.pending() == 0
+        nodes: set[int] = set()
+        changes = prevented = calls = 0
+        taken = []
+        while b.pending():
+            before = b._dirty.copy()
+            d = b.decide(float(it), limit=7)
+            taken.append(np.flatnonzero(before & ~b._dirty))
+            assert taken[-1].size == min(7, int(before.sum()))
+            nodes |= d.changed_nodes
+            changes += d.route_changes
+            prevented += d.loops_prevented
+            calls += 1
+            if calls == 2:                   # a restart in the middle keeps what is due
+                b = Engine.from_state(t, s, b.export_state())
+        assert calls == 3 and sorted(np.concatenate(taken).tolist()) == list(range(20))
+        assert (frozenset(nodes), changes, prevented) == (full.changed_nodes, full.route_changes,
+                                                          full.loops_prevented)
+        # (_stable is not state: a restored engine starts with none, see from_state)
+        for k in ("greedy", "eps", "alt", "_hyst", "_forced"):
+            assert np.array_equal(getattr(a, k), getattr(b, k)), k
+        b._stable[:] = a._stable
+    # rotating: with every destination due at every call, each is taken once per 3 calls
+    e = Engine(t, s)
+    seen = np.zeros(20, dtype=int)
+    for i in range(9):
+        e._dirty[:] = True
+        before = e._dirty.copy()
+        e.decide(float(i), limit=7)
+        seen += before & ~e._dirty
+    assert seen.min() >= 3 and seen.max() <= 4
+    with pytest.raises(ValueError, match="below 1"):
+        e.decide(1.0, limit=0)

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import os
 from pathlib import Path
+from typing import Any
 
 import pytest
 import yaml
@@ -198,3 +199,15 @@ def test_simulate_names_a_directory_given_as_a_file(tmp_path: Path,
         assert cli.main([*base, *extra]) == 2, extra
         err = capsys.readouterr().err
         assert str(tmp_path) in err and "directory" in err.lower(), err
+
+
+def test_invalid_yaml_is_named_with_its_line_and_column(tmp_path: Any) -> None:
+    from routerd.core.errors import InputError
+    from routerd.io.files import read_yaml
+
+    p = tmp_path / "bad.yaml"
+    p.write_text("engine:\n  mode: split\n  step: a: b\n")
+    with pytest.raises(InputError) as ei:
+        read_yaml(str(p))
+    assert str(ei.value) == (f"{p}: is not valid YAML: mapping values are not allowed in "
+                             "this context, at line 3, column 10")

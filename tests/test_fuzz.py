@@ -17,7 +17,6 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from routerd.io import config, journal, security, wire
-from routerd.core import topology as T
 from routerd.io import topofiles as TF
 from routerd.core.engine import EngineSettings
 from routerd.service.daemon import SERVICE_FRAME_ERRORS, Service

@@ -247,3 +247,33 @@ def test_estimates_the_engine_builds_at_the_floor_pass_it() -> None:
         r = g.check(s_, v, d, t.delay_s[k][ok], est)
         assert r.rejected == ()
         eng.observe(HopBatch.of(s_, v, d, t.delay_s[k][ok], est), now=1.0)
+
+
+class _FullCheck(Guards):
+    """The guards without the screen: every batch takes the full check."""
+
+    def _clean(self, *a: object) -> bool:
+        return False
+
+
+@settings(max_examples=150, deadline=None)
+@given(st.lists(st.tuples(st.integers(-1, 4), st.integers(-1, 4), st.integers(-1, 4),
+                          st.sampled_from([0.0, 0.0005, 0.001, 0.0015, 0.004, 0.009, 61.0,
+                                           math.inf, math.nan, -0.001]),
+                          st.sampled_from([math.nan, 0.0, 0.002, 0.006, 0.0071, 70.0, math.inf,
+                                           -1.0])), min_size=1, max_size=40),
+       st.sampled_from([0.0, 0.5, 1.0]), st.sampled_from([60.0, math.inf]))
+def test_property_the_screen_of_clean_batches_changes_no_outcome(
+        rows: list[tuple], floor: float, ceiling: float) -> None:
+    """check() with its screen (a batch nothing can mark passes untouched) == the full
+    check, on rows of every kind: in and out of range, non-neighbours, at and across the
+    floors and the ceiling, NaN, inf, negative."""
+    t = _line()
+    gs = GuardSettings(floor_fraction=floor, ceiling_s=ceiling)
+    cols = [np.array([r[i] for r in rows], dtype=np.int64 if i < 3 else np.float64)
+            for i in range(5)]
+    a = Guards(t, gs).check(*cols)
+    b = _FullCheck(t, gs).check(*cols)
+    assert a.keep.tolist() == b.keep.tolist() and a.rejected == b.rejected
+    assert a.clipped == b.clipped
+    np.testing.assert_array_equal(a.latency, b.latency)

@@ -280,6 +280,20 @@ def test_simulate_on_the_built_in_demo_lab(installed: Installed) -> None:
 
 
 @pytest.mark.slow
+def test_demo_runs_from_the_plain_install_without_the_plot_extra(installed: Installed) -> None:
+    """A plain install has no matplotlib: the demo still runs (live service, table, reading)
+    and says the plots were skipped and how to get them."""
+    out = os.path.join(installed.work, "demo-out")
+    r = installed.run(installed.exe("routerd"), "demo", "--duration", "3", "--speed", "3",
+                      "--out", out, timeout=240)
+    _check(r, "routerd demo")
+    assert "no plots (delivery.png, load.png): matplotlib is not installed" in r.stderr, r.stderr
+    assert "pip install 'routerd[plot]'" in r.stderr
+    assert os.path.exists(os.path.join(out, "reading.txt"))
+    assert not os.path.exists(os.path.join(out, "delivery.png"))
+
+
+@pytest.mark.slow
 def test_serve_starts_on_the_built_in_demo_lab_and_stops(installed: Installed) -> None:
     """What deploy/Containerfile runs: `routerd serve`, ready, then SIGTERM → exit 0."""
     ipc = tempfile.mkdtemp(prefix="rdinst-", dir="/tmp")   # ipc paths must stay short

@@ -3,6 +3,7 @@ segments and retirement, snapshots with fallback, and exact engine state after r
 from __future__ import annotations
 
 import errno
+import itertools
 import os
 import shutil
 import struct
@@ -473,6 +474,42 @@ def test_snapshot_plus_tail_equals_live(topo: topology.Topology, tmp_path: pytes
     assert r2.engine.same_state(dr.eng)
 
 
+class LimitedDriver(Driver):
+    """A service that bounds each decision to a few destinations (issue 15) and journals
+    the limit with the tick."""
+
+    def step(self) -> None:
+        self.t += 0.05
+        self.batch += 1
+        hops = self.hops(int(self.rng.integers(1, 80)))
+        res, _ = J.apply_batch(self.eng, hops, [], self.t)
+        self.j.append("batch", J.batch_body("r", self.batch, self.t,
+                                            J.accepted_part(hops, res.rejected), [],
+                                            ack={"accepted": res.accepted,
+                                                 "rejected": [list(r) for r in res.rejected]}))
+        limit = int(self.rng.integers(1, 4))
+        dec = self.eng.decide(self.t, limit=limit)
+        self.j.append("tick", {"t": self.t, "limit": limit})
+        self.decisions.append((self.t, dec.changed_nodes))
+
+
+def test_limited_decisions_replay_exactly(topo: topology.Topology, tmp_path: pytest.TempPathFactory) -> None:
+    dr = LimitedDriver(topo, str(tmp_path), seed=3)
+    for i in range(120):
+        dr.step()
+        if i == 60:
+            dr.snapshot()
+    dr.j.close()
+    assert dr.eng.pending() > 0 and dr.eng._cursor > 0     # decisions were left for later
+    seen: list[tuple[float, frozenset[int]]] = []
+    r = J.restore(str(tmp_path), topo, E.EngineSettings(),
+                  on_tick=lambda rec, d: seen.append((rec.body["t"], d.changed_nodes)))
+    assert r.snapshot_record > 0
+    assert r.engine.same_state(dr.eng) and r.engine.pending() == dr.eng.pending()
+    assert wire.tables_by_name(r.engine) == wire.tables_by_name(dr.eng)
+    assert seen == [x for x in dr.decisions if x[0] > 61 * 0.05 + 1e-9]
+
+
 def test_replay_refuses_unknown_kind_and_other_topology(topo: topology.Topology) -> None:
     eng = E.Engine(topo)
     with pytest.raises(J.JournalError, match="unknown kind"):
@@ -507,6 +544,54 @@ def test_snapshot_first_format_still_reads(tmp_path: pytest.TempPathFactory) -> 
     J.SnapshotStore(d).write(st, 9)                      # the new format next to it
     assert _read(os.path.join(d, "upto-000000000009.rdsnap"))[:8] == J.SNAP2_MAGIC
     assert [n for n, _ in J.SnapshotStore(d).list()] == [7, 9]
+
+
+@pytest.mark.parametrize("fmt", [1, 2])
+def test_a_snapshot_with_int64_counts_restores_saturated(tmp_path: pytest.TempPathFactory,
+                                                         fmt: int) -> None:
+    """Snapshots written before counts were narrowed (issue 15) hold N as int64: they
+    restore, the counts saturated at the engine's cap, and the engine goes on exactly as
+    the one that wrote them (whose counts never saturate)."""
+    names = ["a", "b", "c", "d"]
+    t = topology.build("line", names, [topology.LinkSpec(a, b, 0.001, 1e6, 10, f"{a}{b}")
+                                       for p, q in itertools.pairwise(names) for a, b in ((p, q), (q, p))])
+    s = E.EngineSettings()
+    w = E.Engine(t, s)
+    w.N = w.N.astype(np.int64)              # the old engine: int64 counts, no cap
+    w._count_cap = int(np.iinfo(np.int64).max)
+    rng = np.random.default_rng(8)
+
+    def rows(m: int) -> E.HopBatch:           # few keys: counts far past 255
+        x = rng.integers(0, 2, m)
+        return E.HopBatch.of(x, x + 1, np.full(m, 3), rng.uniform(0.0005, 0.02, m))
+
+    for i in range(40):
+        w.observe(rows(64), now=float(i))
+    w.decide(40.0)
+    st = J.engine_state(w)
+    assert st["engine"]["N"].dtype == np.int64 and int(st["engine"]["N"].max()) > 1000
+    d = str(tmp_path)
+    if fmt == 1:
+        _write_format1(os.path.join(d, "snap-00000000000000000003.rs"), st, 3)
+    else:
+        J.SnapshotStore(d).write(st, 3)
+    got, no = J.SnapshotStore(d).latest()
+    assert no == 3 and got["engine"]["N"].dtype == np.int64
+    e = E.Engine.from_state(t, s, got["engine"])
+    assert e.N.dtype == np.uint8
+    np.testing.assert_array_equal(e.N, np.minimum(w.N, 255))
+    for i in range(40, 50):
+        b = rows(64)
+        e.observe(b, now=float(i))
+        w.observe(b, now=float(i))
+    e.decide(51.0)
+    w.decide(51.0)
+    for k in ("Q", "td", "greedy", "eps", "alt"):
+        assert np.array_equal(getattr(e, k), getattr(w, k)), k
+    # and what the narrow engine writes reads back the same
+    J.SnapshotStore(d).write(J.engine_state(e), 4)
+    again = E.Engine.from_state(t, s, J.SnapshotStore(d).latest()[0]["engine"])
+    assert again.same_state(e) and again.N.dtype == np.uint8
 
 
 def test_snapshot_stream_checks_every_byte(tmp_path: pytest.TempPathFactory) -> None:

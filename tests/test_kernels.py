@@ -8,6 +8,7 @@ paths are compared directly, on random batches and decisions.
 """
 from __future__ import annotations
 
+import dataclasses
 import math
 import os
 import subprocess
@@ -100,6 +101,126 @@ def test_compiled_equals_reference_on_random_batches(make_ring, seed: int, n: in
     assert b.routes_many([n - 1, 0]) == [tb[n - 1], tb[0]]
 
 
+def _columns(whole: Engine, part: Engine) -> None:
+    """A partial engine's state is the whole engine's owned columns, bit for bit."""
+    own = part.owned
+    for k in ("Q", "N", "td", "greedy", "eps", "alt", "_hyst", "_forced"):
+        assert np.array_equal(getattr(whole, k)[:, own], getattr(part, k), equal_nan=True), k
+    assert np.array_equal(whole.live, part.live)
+
+
+@needs_compiled
+@settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(seed=st.integers(0, 2 ** 32 - 1), n=st.integers(3, 30),
+       basis=st.sampled_from(["td", "visits"]), share=st.sampled_from([0.0, 0.3, 0.5, 1.0]))
+def test_owned_destinations_compiled_equals_reference_equals_whole_columns(
+        make_ring, seed: int, n: int, basis: str, share: float) -> None:  # type: ignore[no-untyped-def]
+    """An engine owning some destinations (a shard worker's): compiled == reference, and
+    both hold exactly the whole engine's columns of those destinations, fed the same rows
+    (the whole engine gets only the owned destinations' rows, as a shard does)."""
+    rng = np.random.default_rng(seed)
+    t = make_ring(n, int(rng.integers(0, n + 1)), seed=seed % 997)
+    own = np.flatnonzero(rng.random(t.n) < share)
+    if own.size == 0:
+        own = np.array([int(rng.integers(0, t.n))])
+    kw = dict(explore_basis=basis, explore_min=0.01)
+    a = Engine(t, EngineSettings(kernels="reference", **kw), owned=own)   # type: ignore[arg-type]
+    b = Engine(t, EngineSettings(kernels="compiled", **kw), owned=own)    # type: ignore[arg-type]
+    whole = Engine(t, EngineSettings(kernels="reference", **kw))           # type: ignore[arg-type]
+    _same(a, b)
+    _columns(whole, a)
+    is_own = np.zeros(t.n, dtype=bool)
+    is_own[own] = True
+    for it in range(8):
+        if rng.random() < 0.2:
+            k = int(rng.integers(0, t.n_links))
+            up = bool(rng.random() < 0.4)
+            for e in (a, b, whole):
+                e.set_link(int(t.src[k]), int(t.dst[k]), up, now=it)
+        m = int(rng.choice([1, 5, 23, 24, 100, 700]))
+        hb = _rows(t, rng, m, bad=float(rng.choice([0.0, 0.1])))
+        ra, rb = a.observe(hb, now=it), b.observe(hb, now=it)
+        assert ra.accepted == rb.accepted and ra.rejected == rb.rejected
+        assert ra.td_errors.tobytes() == rb.td_errors.tobytes()
+        mine = (hb.dst >= 0) & (hb.dst < t.n) & is_own[np.clip(hb.dst, 0, t.n - 1)]
+        rw = whole.observe(hb.take(np.flatnonzero(mine)), now=it)
+        assert rw.td_errors.tobytes() == ra.td_errors.tobytes()
+        # the rows of other destinations are refused as not_owned, unless an earlier rule
+        # refuses them (REJECT_REASONS order)
+        codes = whole.check(hb)
+        other = ~mine & (codes == -1)
+        assert {i for i, r in ra.rejected if r == "not_owned"} == set(np.flatnonzero(other).tolist())
+        _same(a, b)
+        if rng.random() < 0.3:
+            for e in (a, b, whole):
+                e._dirty[:] = True
+        da, db = a.decide(it), b.decide(it)
+        assert da == db
+        whole.decide(it)
+        _same(a, b)
+        _columns(whole, a)
+    ta, tb, tw = a.routes_many(), b.routes_many(), whole.routes_many()
+    assert ta == tb
+    assert ta == [{d: w for d, w in tab.items() if is_own[d]} for tab in tw]
+    assert [a.routes(x) for x in range(t.n)] == ta
+    assert np.array_equal(a.values(), whole.values()[:, own])
+    assert np.array_equal(a.next_hops(), whole.next_hops()[:, own])
+    assert np.array_equal(a.published_estimates(), whole.published_estimates()[:, own])
+
+
+@needs_compiled
+@pytest.mark.parametrize("basis", ["td", "visits"])
+@pytest.mark.parametrize("share", [1.0, 0.4])
+def test_compiled_key_lane_equals_reference(make_ring, monkeypatch, basis: str,  # type: ignore[no-untyped-def]
+                                            share: float) -> None:
+    """decide's key lane (Engine._decide_keys) compiled (kernels.decide_keys, or inside
+    kernels.decide_due on the engine's bound arrays): small
+    batches after a first full pass, so most decisions go through the lane; every
+    decision, the columns it sends to the full pass, the shares it writes and the nodes
+    it returns equal the reference's, bit for bit, on whole and owned-destination engines
+    and with link events between."""
+    calls = [0]
+    real = kernels.decide_keys
+
+    def counted(eng):  # type: ignore[no-untyped-def]
+        calls[0] += 1
+        return real(eng)
+
+    real_due = kernels.decide_due
+
+    def counted_due(eng):  # type: ignore[no-untyped-def]  # the lane inside the bound decide
+        calls[0] += bool(eng._kcols.any())
+        return real_due(eng)
+
+    monkeypatch.setattr(kernels, "decide_keys", counted)
+    monkeypatch.setattr(kernels, "decide_due", counted_due)
+    t = make_ring(14, 9, seed=3)
+    rng = np.random.default_rng(5)
+    own = None if share == 1.0 else np.flatnonzero(rng.random(t.n) < share)
+    kw = dict(explore_basis=basis, explore_min=0.01, margin=0.05)
+    a = Engine(t, EngineSettings(kernels="reference", **kw), owned=own)   # type: ignore[arg-type]
+    b = Engine(t, EngineSettings(kernels="compiled", **kw), owned=own)    # type: ignore[arg-type]
+    lane = 0
+    for it in range(60):
+        if it % 17 == 16:
+            k = int(rng.integers(0, t.n_links))
+            up = bool(it % 34 == 33)
+            assert a.set_link(int(t.src[k]), int(t.dst[k]), up, now=it) == \
+                b.set_link(int(t.src[k]), int(t.dst[k]), up, now=it)
+        hb = _rows(t, rng, int(rng.choice([1, 3, 8, 30])), bad=0.0)
+        a.observe(hb, now=float(it))
+        b.observe(hb, now=float(it))
+        before = b.full_pass_destinations
+        touched = int(np.count_nonzero(b._kcols & ~b._dirty))   # columns the lane looks at
+        da, db = a.decide(float(it)), b.decide(float(it))
+        assert da == db, it
+        _same(a, b)
+        lane += touched > 0 and b.full_pass_destinations - before < touched
+    assert calls[0] > 20          # the compiled lane ran
+    assert lane > 10              # and spared the full pass to some destinations
+    assert a.routes_many() == b.routes_many()
+
+
 @needs_compiled
 @pytest.mark.parametrize("variant", ["predictive", "confidence"])
 def test_compiled_decide_equals_reference_under_a_variant(make_ring, variant: str) -> None:  # type: ignore[no-untyped-def]
@@ -128,19 +249,19 @@ def test_compiled_steps_past_the_table_are_the_reference_steps(kw: dict) -> None
     j = int(t.slot_of[0, 1])
     for start in (1, 140, 150, E.STEP_TABLE_MAX - 3, 10 ** 7):
         for e in (a, b):
-            e.N[0, 2, j] = start
+            e.N[0, 2, j] = min(start, e._count_cap)     # counts saturate at the cap
         hb = HopBatch.of([0] * 30, [1] * 30, [2] * 30, np.linspace(0.001, 0.02, 30))
         a.observe(hb)
         b.observe(hb)
         _same(a, b)
-    assert a.N[0, 2, j] == 10 ** 7 + 30
+    assert a.N[0, 2, j] == min(10 ** 7 + 30, a._count_cap)
 
 
 @needs_compiled
 def test_reason_codes_follow_reject_reasons() -> None:
     # the kernel numbers reasons by their index in REJECT_REASONS
     assert E.REJECT_REASONS == ("unknown_node", "not_neighbour", "at_destination",
-                                "bad_latency", "bad_estimate", "link_down")
+                                "bad_latency", "bad_estimate", "link_down", "not_owned")
 
 
 @needs_compiled
@@ -224,3 +345,53 @@ def test_step_table_clamp_is_what_the_kernel_reads() -> None:
     assert e._alphas is not None and e._alphas.tolist() == tab
     assert e._alphas.dtype == np.float64 and e._alphas.flags.c_contiguous
     assert math.isclose(tab[-1], e.settings.floor)
+
+
+@needs_compiled
+def test_bound_arrays_follow_the_engine_when_it_replaces_them(make_ring) -> None:  # type: ignore[no-untyped-def]
+    """The compiled path binds the engine's arrays once (kernels.bound: observe, the key
+    lane and the full pass, which a reload makes take every destination); a reload that
+    replaces Q, N (a narrower count type) and the step table, a restore-style
+    replacement of one array, and columns of other kinds all keep it equal to the
+    reference, and a stale binding writes nothing."""
+    rng = np.random.default_rng(7)
+    t = make_ring(12, 5, seed=3)
+    a, b = _pair(t, step_mode="decaying", floor=0.0, kappa=1.0)  # 32-bit counts
+    assert b.N.dtype == np.uint32
+
+    def step(hb: HopBatch, it: int) -> None:
+        ra, rb = a.observe(hb, now=it), b.observe(hb, now=it)
+        assert ra.accepted == rb.accepted and ra.rejected == rb.rejected
+        assert ra.td_errors.tobytes() == rb.td_errors.tobytes()
+        assert a.decide(it) == b.decide(it)
+        _same(a, b)
+
+    for it in range(3):
+        step(_rows(t, rng, 40, bad=0.1), it)
+    first = b._bound
+    assert first is not None and first.fresh(b)
+    for e in (a, b):    # a narrower count type, a new ceiling: N, Q, settings, steps replaced
+        e.reconfigure(dataclasses.replace(e.settings, step_mode="constant", ceiling_s=0.5))
+    assert b.N.dtype == np.uint8 and not first.fresh(b)
+    # a stale binding refuses and writes nothing
+    q0 = b.Q.copy()
+    hb = _rows(t, rng, 30, bad=0.0)
+    assert first.observe(b, hb.src, hb.via, hb.dst, hb.latency, hb.estimate) is None
+    assert first.decide_keys(b) is None and first.decide_due(b) is None
+    assert first.decide_full(b, np.arange(b.nd, dtype=np.int64), b._spt_live()) is None
+    assert np.array_equal(b.Q, q0)
+    for it in range(3, 6):
+        step(_rows(t, rng, 40, bad=0.1), it)
+    assert b._bound is not first and b._bound.fresh(b)
+    for e in (a, b):    # one array replaced by an equal copy, as a restore does
+        e.td = e.td.copy()
+    step(_rows(t, rng, 40, bad=0.1), 6)
+    assert b._bound.fresh(b)
+    # int32 and float32 columns are converted (the bound view takes int64 and float64 only)
+    hb = _rows(t, rng, 40, bad=0.1)
+    hb32 = HopBatch(hb.src.astype(np.int32), hb.via.astype(np.int32), hb.dst.astype(np.int32),
+                    hb.latency, hb.estimate)
+    ra, rb = a.observe(hb32, now=7), b.observe(hb32, now=7)
+    assert ra.accepted == rb.accepted and ra.rejected == rb.rejected
+    assert ra.td_errors.tobytes() == rb.td_errors.tobytes()
+    _same(a, b)

@@ -23,7 +23,6 @@ import networkx as nx
 import pytest
 
 from routerd.tools import lab as L
-from routerd.core import topology as T
 from routerd.io import topofiles as TF
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
@@ -195,7 +194,10 @@ def test_capacity_cut_moves_routes_and_delivery_recovers(outdir: str) -> None:
     before = mean_delivery(rows, 1.0, 4.0)
     hurt = max(mean_delivery(rows, t, t + 0.5) for t in (4.0, 4.5, 5.0, 5.5, 6.0))
     after = mean_delivery(rows, 11.0, 14.0)
-    assert hurt > 5 * before, (before, hurt)          # the cut is felt ...
+    # the cut is felt: three times the delivery time before it and 80 ms more (a
+    # 64 kbit/s link's queue; a busy machine's scheduling inflates "before" too, so a
+    # ratio alone judged the load, not the cut)
+    assert hurt > max(3 * before, before + 0.08), (before, hurt)
     assert after < 2 * before + 0.005, (before, after)  # ... and delivery time recovers
     # the service moved a1's traffic for b1 off m at some point after the cut
     samples = [(t, tb) for t, tb in x["table_samples"] if tb is not None]
@@ -234,24 +236,35 @@ def test_agents_forward_through_a_service_kill_and_resynchronise(outdir: str) ->
     assert_nothing_left(pid, r.stderr)
 
 
+def _start_long_lab(outdir: str) -> subprocess.Popen[str]:
+    """A 60 s lab run on the test topology, its stderr piped for :func:`_until_agents_up`."""
+    return subprocess.Popen([sys.executable, "-m", "routerd", "lab", "--topology", TOPO,
+                             "--duration", "60", "--rate", "50", "--out", outdir, "--quiet"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+
+
+def _until_agents_up(p: subprocess.Popen[str]) -> list[str]:
+    """The lab's stderr lines up to its "agents up" line (asserted, within 60 s)."""
+    assert p.stderr is not None
+    deadline = time.monotonic() + 60
+    seen = []
+    while time.monotonic() < deadline:
+        line = p.stderr.readline()
+        if not line:
+            break
+        seen.append(line)
+        if "agents up" in line:
+            break
+    assert any("agents up" in ln for ln in seen), "".join(seen)
+    return seen
+
+
 @pytest.mark.slow
 @needs_lab
 def test_ctrl_c_tears_everything_down(outdir: str) -> None:
-    p = subprocess.Popen([sys.executable, "-m", "routerd", "lab", "--topology", TOPO,
-                          "--duration", "60", "--rate", "50", "--out", outdir, "--quiet"],
-                         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    p = _start_long_lab(outdir)
     try:
-        assert p.stderr is not None
-        deadline = time.monotonic() + 60
-        seen = []
-        while time.monotonic() < deadline:
-            line = p.stderr.readline()
-            if not line:
-                break
-            seen.append(line)
-            if "agents up" in line:
-                break
-        assert any("agents up" in ln for ln in seen), "".join(seen)
+        seen = _until_agents_up(p)
         assert [n for n in L.list_namespaces() if n.startswith(f"{L.PREFIX}{p.pid}-")]
         time.sleep(1.0)
         p.send_signal(signal.SIGINT)
@@ -371,23 +384,11 @@ def test_the_next_run_removes_what_a_kill_9_of_the_lab_left(outdir: str) -> None
     """kill -9 of `routerd lab` runs no teardown: its agents (in its namespaces) and its
     service (in the host's, its own session) stay.  The next lab stops that service,
     deletes those namespaces and the dead lab's run directory, and nothing else."""
-    p = subprocess.Popen([sys.executable, "-m", "routerd", "lab", "--topology", TOPO,
-                          "--duration", "60", "--rate", "50", "--out", outdir, "--quiet"],
-                         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    p = _start_long_lab(outdir)
     serve: list[int] = []
     run_dir = ""
     try:
-        assert p.stderr is not None
-        deadline = time.monotonic() + 60
-        seen = []
-        while time.monotonic() < deadline:
-            line = p.stderr.readline()
-            if not line:
-                break
-            seen.append(line)
-            if "agents up" in line:
-                break
-        assert any("agents up" in ln for ln in seen), "".join(seen)
+        seen = _until_agents_up(p)
         run_dir = run_dir_of("".join(seen))
         serve = [int(x.split(":")[0]) for x in lab_processes(run_dir) if " serve " in x]
         assert len(serve) == 1, lab_processes(run_dir)

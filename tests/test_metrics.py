@@ -251,3 +251,22 @@ def test_split_counters_are_exported() -> None:
     assert st.split_publications > 0
     assert fams["routerd_split_key_publications"].samples[0].value == st.split_publications
     assert fams["routerd_split_fallbacks"].samples[0].value == st.split_fallbacks
+
+
+def test_a_shard_workers_page_labels_every_sample_with_its_shard() -> None:
+    """A shard worker's page (metrics.serve(..., labels=)): the same families and values
+    as the plain page, every sample with shard="K" added (read back by prometheus_client's
+    own parser; histograms keep their le label)."""
+    src = FakeSource()
+    plain = families(page(src))
+    reg = CollectorRegistry(auto_describe=False)
+    reg.register(metrics.LabelledCollector(metrics.RouterdCollector(src), {"shard": "3"}))
+    got = families(generate_latest(reg).decode())
+    assert set(got) == set(plain)
+    for name, fam in got.items():
+        assert fam.type == plain[name].type, name
+        assert all(s.labels.get("shard") == "3" for s in fam.samples), name
+        want = sorted((s.name, tuple(sorted(s.labels.items())), s.value) for s in plain[name].samples)
+        strip = sorted((s.name, tuple(sorted((k, v) for k, v in s.labels.items() if k != "shard")),
+                        s.value) for s in fam.samples)
+        assert strip == want, name

@@ -2,21 +2,12 @@
 and the three commands' progress through it."""
 from __future__ import annotations
 
-import io
 
 import pytest
 
 from routerd.io.clock import FakeClock
 from routerd.io.progress import StatusLine
-
-
-class _Stream(io.StringIO):
-    def __init__(self, tty: bool):
-        super().__init__()
-        self._tty = tty
-
-    def isatty(self) -> bool:
-        return self._tty
+from sim_helpers import FakeTerminal as _Stream
 
 
 def test_terminal_line_is_redrawn_in_place_and_padded() -> None:

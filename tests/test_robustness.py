@@ -199,10 +199,12 @@ def test_overload_memory_bounded_refusals_counted_everything_acknowledged_applie
 # ---- crash loop --------------------------------------------------------------------------------
 @pytest.mark.slow
 def test_crash_loop_20_kills_under_load_lose_nothing_acknowledged(base: str) -> None:
-    # snapshots every 0.25 s land at random points too; segments are not retired here (the
-    # default segment size is never reached), so every acknowledged batch can be looked up
-    # in the journal one by one (tests/test_service_crash.py covers retiring)
-    conf = _conf(base, "service:\n  snapshot_interval_s: 0.25\n  debounce_s: 0.01\n")
+    # snapshots every 0.25 s land at random points too; segments are not retired here (one
+    # 4 GiB segment is never filled: with the default 64 MiB, a fast service rolled over and
+    # the snapshots retired the early segments), so every acknowledged batch can be looked
+    # up in the journal one by one (tests/test_service_crash.py covers retiring)
+    conf = _conf(base, "service:\n  snapshot_interval_s: 0.25\n  debounce_s: 0.01\n"
+                       "  journal:\n    segment_bytes: 4294967296\n")
     args = [*service_args(base), "--config", conf]
     rng = np.random.default_rng(2026)
     acked: dict[tuple[str, int], dict[str, Any]] = {}

@@ -339,20 +339,25 @@ def test_a_server_key_others_can_read_is_warned_about_once(tmp_path: Any) -> Non
         shutil.rmtree(base, ignore_errors=True)
 
 
-@pytest.mark.slow
-def test_unknown_keys_and_plain_peers_get_nothing(curve: Curve) -> None:
+def _strangers_get_nothing(c: Curve) -> None:
+    """A wrong key, or none, gets nothing: no ack, no control answer, no tables."""
     for who in ("stranger", None):
         with pytest.raises(zmq.Again):
-            curve.send(who, _batch("w1", 9, [["w1", "w2", "e1", 0.01]]), timeout_ms=800)
+            c.send(who, _batch("w1", 9, [["w1", "w2", "e1", 0.01]]), timeout_ms=800)
         with pytest.raises(zmq.Again):
-            curve.control(who, {"op": "health"}, timeout_ms=800)
-        sub = curve.sock(zmq.SUB, "publish", who, timeout_ms=800)
+            c.control(who, {"op": "health"}, timeout_ms=800)
+        sub = c.sock(zmq.SUB, "publish", who, timeout_ms=800)
         sub.subscribe(b"")
         try:
             with pytest.raises(zmq.Again):
                 sub.recv_multipart()
         finally:
             sub.close(0)
+
+
+@pytest.mark.slow
+def test_unknown_keys_and_plain_peers_get_nothing(curve: Curve) -> None:
+    _strangers_get_nothing(curve)
     # an allowed key does get tables (every publish interval, at once for a new subscriber)
     sub = curve.sock(zmq.SUB, "publish", "e3", timeout_ms=5000)
     sub.subscribe(b"tables/")
@@ -443,3 +448,49 @@ def test_client_keys_from_files_or_z85_text_and_config_pairs(tmp_path: Any) -> N
         assert s.getsockopt(zmq.MECHANISM) == zmq.CURVE and not s.getsockopt(zmq.CURVE_SERVER)
     finally:
         s.close(0)
+
+
+@pytest.mark.slow
+def test_a_sharded_front_speaks_curve_as_one_service(tmp_path: Any) -> None:
+    """``serve --shards 2`` with --server-key/--allow: the front holds the reporters to
+    their keys and nodes, the control right and the read-only endpoint exactly as one
+    service does (the workers it starts run on local ipc:// without CURVE)."""
+    base = short_base(tmp_path)
+    c = Curve(base, tmp_path, "--shards", "2", "--control-readonly", f"ipc://{base}/ro")
+    try:
+        out = c.sp.stdout_lines
+        assert any("CURVE on every ZeroMQ endpoint but the workers'; 3 keys allowed" in ln
+                   for ln in out), out
+        ack = c.send("w1", _batch("w1", 1, [["w1", "w2", "e1", 0.01], ["w2", "w1", "e1", 0.01],
+                                            ["w1", "w6", "e6", 0.01]],
+                                  [["w1", "w2", "down"], ["w3", "e3", "down"], ["w2", "w1", "up"]]))
+        assert ack["accepted"] == 3, ack
+        assert ack["rejected"] == [[1, "not_authorised"], [4, "not_authorised"], [5, "not_authorised"]]
+        err = c.send("w1", _batch("e3", 2, [["e3", "w3", "w1", 0.01]]))
+        assert err["error"].startswith("not_authorised:") and err["batch"] == 2
+        # a wrong key, or none, gets nothing: no ack, no control answer, no tables
+        _strangers_get_nothing(c)
+        # control: state changes need the control right; reads any allowed key
+        r = c.control("w1", {"op": "link", "from": "w1", "to": "w2", "state": "down"})
+        assert r["error"].startswith("not_authorised:") and "control: true" in r["error"], r
+        assert c.control("w1", {"op": "tables"})["tables"]["w1"]
+        r = c.control("ops", {"op": "link", "from": "w3", "to": "w2", "state": "down"})
+        assert r["link"]["changed"] is True, r
+        h = c.control("e3", {"op": "health"})
+        assert h["shards_up"] == 2 and h["security"] == {"curve": True,
+                                                         "reporters": ["w1", "e3", "ops"]}
+        assert h["front"]["batches_accepted"] == 1 and h["front"]["batches_refused"] == 1, h
+        # the read-only endpoint: no CURVE, read-only ops only
+        assert c.control(None, {"op": "health"}, name="control_ro")["status"] == "ok"
+        r = c.control(None, {"op": "snapshot"}, name="control_ro")
+        assert r["error"].startswith("not_authorised: op 'snapshot' changes state")
+        # an allowed key gets tables
+        sub = c.sock(zmq.SUB, "publish", "e3", timeout_ms=5000)
+        sub.subscribe(b"tables/")
+        try:
+            assert sub.recv_multipart()[0].startswith(b"tables/")
+        finally:
+            sub.close(0)
+    finally:
+        c.close()
+        shutil.rmtree(base, ignore_errors=True)

@@ -9,7 +9,6 @@ from typing import Any
 import numpy as np
 
 from routerd.io import config, journal, wire
-from routerd.core import topology as T
 from routerd.io import topofiles as TF
 from routerd.core.engine import Engine, EngineSettings
 from routerd.service.daemon import Service
@@ -158,3 +157,38 @@ def test_control_snapshot_is_answered_once_the_child_has_written_it(tmp_path: An
         assert s.counters.control[("snapshot", "ok")] == 1
     finally:
         s.close()
+
+
+def test_control_tables_is_built_over_turns_and_equals_the_one_go_reply(tmp_path: Any,
+                                                                      monkeypatch: Any) -> None:
+    """The control ``tables`` reply is encoded a slice per loop turn (so a big network's
+    reply cannot hold the loop), and its bytes are the one-go reply's (dicts packed by
+    msgpack) for the same engine."""
+    import zmq
+
+    from routerd.service import daemon
+
+    for mode in ("greedy", "split"):
+        s = _start(str(tmp_path / mode), **{"engine.mode": mode})
+        try:
+            _feed(s, "a", 1, 20, seed=6)
+            s.engine.decide(s.clock.wall())
+            want = wire.encode_reply({"tables": wire.tables_by_name(s.engine)})
+            # whole in the first slice
+            sock = _FakeRep(wire.encode_request({"op": "tables"}))
+            assert s._control_one(zmq, sock) is None and sock.sent == [want]
+            # three nodes a pass, no time: one pass a turn, answered only when whole
+            monkeypatch.setattr(daemon, "TABLE_ENTRIES_AHEAD", 3 * TOPO.n)
+            monkeypatch.setattr(daemon, "TABLES_REPLY_SLICE_S", 0.0)
+            sock = _FakeRep(wire.encode_request({"op": "tables"}))
+            assert s._control_one(zmq, sock) is None and not sock.sent
+            turns = 1
+            while not sock.sent:
+                assert s._timeout_ms() == 0          # the loop comes back at once
+                s._tables_reply_work(daemon.TABLES_REPLY_SLICE_S)   # a turn's slice
+                turns += 1
+            assert turns == -(-TOPO.n // 3) and sock.sent == [want]
+            assert not s._tables_replies and s.counters.control[("tables", "ok")] == 2
+            monkeypatch.undo()
+        finally:
+            s.close()

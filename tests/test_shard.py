@@ -30,9 +30,14 @@ from routerd.io import wire
 from routerd.agent.client import Reporter, TableSubscriber
 from routerd.io.inputs import load_topology
 
+# a decision after every batch (no debounce, no decision cap, every due destination): the
+# engine's state depends on where the decisions fall in the batch stream, so one process and
+# N shards compare only when that is the same
 CONF = """\
 service:
   debounce_s: 0
+  max_decisions_per_s: 0
+  decide_budget_s: 0
   publish_interval_s: 0.3
   snapshot_interval_s: 3600
   journal:
@@ -153,15 +158,26 @@ def test_same_tables_and_acks_with_1_2_and_4_shards(base: str) -> None:
                 rl = sp.control({"op": "reload"})["reload"]   # every worker re-reads its config
                 assert [r["applied"] for r in rl] == [True, True], rl
                 assert all(r["needs_restart"] == [] for r in rl), rl
-                text = sp.metrics_text()
-                assert 'routerd_observations_total{result="accepted",shard="1"}' in text
-                assert 'shard="0"' in text and 'shard="front"' in text
-                # the page parses (prometheus_client's own parser) and every sample is
-                # labelled with its shard
+                # the front's page: its own series only (no worker is scraped from it);
+                # each worker's page: every series labelled with its shard.  Parsed by
+                # prometheus_client's own parser
+                import urllib.request
+
                 from prometheus_client.parser import text_string_to_metric_families
 
-                fams = list(text_string_to_metric_families(text))
-                assert all("shard" in smp.labels for f in fams for smp in f.samples)
+                fams = list(text_string_to_metric_families(sp.metrics_text()))
+                assert {smp.labels.get("shard") for f in fams for smp in f.samples} <= \
+                    {"front", "0", "1"}
+                assert not any(f.name == "routerd_observations" for f in fams)
+                assert any(f.name == "routerd_shard_front_batches" for f in fams)
+                for s_ in h["shards"]:
+                    with urllib.request.urlopen(s_["metrics"], timeout=10) as r:
+                        wf = list(text_string_to_metric_families(r.read().decode()))
+                    assert all(smp.labels.get("shard") == str(s_["shard"])
+                               for f in wf for smp in f.samples)
+                    obs = [smp for f in wf if f.name == "routerd_observations"
+                           for smp in f.samples if smp.labels.get("result") == "accepted"]
+                    assert len(obs) == 1 and obs[0].value > 0
         finally:
             sp.kill()
         # the journals of every shard, replayed offline and merged, give the same tables
@@ -355,6 +371,33 @@ def test_map_file_and_command_line_refusals(base: str, tmp_path: Any) -> None:
         assert r.returncode == 2 and msg in r.stderr, (bad, r.stderr)
 
 
+def test_workers_run_without_curve_on_local_endpoints_only() -> None:
+    """CURVE is the front's: a worker drops the security keys (and never binds the
+    read-only control endpoint), and refuses to start with them when one of its own
+    endpoints could be reached from other hosts without CURVE."""
+    off = {"security.server_key": None, "security.allow": None, "security.control_readonly": None}
+    plain = _config.load().with_overrides({"security.control_readonly": "ipc:///tmp/x"})
+    assert shard.worker_security(plain, 0, 2) == off
+    keyed = {"security.server_key": "svc.key_secret", "security.allow": "allow.yaml"}
+    local = _config.load().with_overrides(
+        {**keyed, "service.ingest": "ipc:///tmp/w0-in", "service.control": "tcp://127.0.0.1:7001"})
+    assert shard.worker_security(local, 0, 2) == off
+    far = local.with_overrides({"service.publish": "tcp://0.0.0.0:7002"})
+    with pytest.raises(shard.InputError, match=r"shard 1/2: .*publish endpoint tcp://0\.0\.0\.0:7002"):
+        shard.worker_security(far, 1, 2)
+
+
+def test_worker_metrics_ports_follow_the_base() -> None:
+    cfg = _config.load()
+    assert shard.worker_metrics(cfg, 3) is None            # base 0: the worker's own address
+    cfg = cfg.with_overrides({"shard.metrics_port_base": 9320, "service.metrics": "10.1.2.3:9307"})
+    assert [shard.worker_metrics(cfg, k) for k in (0, 3)] == ["10.1.2.3:9320", "10.1.2.3:9323"]
+    v6 = cfg.with_overrides({"service.metrics": "[::1]:9307"})
+    assert shard.worker_metrics(v6, 1) == "[::1]:9321"
+    with pytest.raises(shard.InputError, match="above port 65535"):
+        shard.worker_metrics(cfg.with_overrides({"shard.metrics_port_base": 65535}), 1)
+
+
 def test_combine_acks_maps_piece_rows_back() -> None:
     # batch: hop rows 0..5 (row 2 refused at decode), link rows 6, 7; shard 0 got hop
     # rows [0, 3], shard 1 rows [1, 4, 5]; both got both links (piece rows h, h + 1); an
@@ -407,3 +450,136 @@ def test_front_reads_time_from_its_clock(tmp_path: Any) -> None:
                    for k in ("ingest", "publish", "control", "metrics", "shards")}
     f._banner()
     assert parse_ready(out.getvalue().splitlines()[-1]) == (os.getpid(), epoch0)
+
+
+def _rss_bytes(pid: int) -> int:
+    """Resident set size of a process (Linux /proc/PID/status, VmRSS in kB)."""
+    with open(f"/proc/{pid}/status") as fh:
+        for line in fh:
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1]) * 1024
+    raise AssertionError(f"no VmRSS for pid {pid}")
+
+
+@pytest.mark.slow
+def test_1000_nodes_2_workers_memory_tables_and_a_killed_worker(
+        base: str, monkeypatch: pytest.MonkeyPatch) -> None:
+    """At 1,000 nodes: each of 2 workers holds only its destinations (its resident memory
+    above the front's, which holds no engine, is well under one process's), the front
+    serves the tables one process serves for the same batches, and a worker killed with
+    SIGKILL mid-stream loses no acknowledged batch (the reporter re-sends what was
+    answered unavailable; the tables still match, every batch journaled once per shard)."""
+    import service_harness
+    import yaml
+    from conftest import ring_with_chords
+
+    from routerd.core import topology as T
+    from routerd.io import topofiles as TF
+
+    monkeypatch.setattr(service_harness, "START_TIMEOUT_S", 120.0)   # 1,000-node start-up
+    topo = ring_with_chords(1000, 1000, seed=1000)
+    tfile = os.path.join(base, "ring1000.yaml")
+    with open(tfile, "w") as fh:
+        yaml.safe_dump(T.to_mapping(topo), fh)
+    topo = TF.load(tfile)
+    # few whole-table rounds; a decision after every batch, with every due destination (a
+    # deferred or bounded one falls at other points in one process than in the shards, and
+    # where decisions fall changes the tables: CONF's reason), one batch in flight (several
+    # taken in one loop turn share one decision)
+    with open(os.path.join(base, "conf.yaml"), "w") as fh:
+        fh.write("service:\n  publish_interval_s: 600\n  snapshot_interval_s: 3600\n"
+                 "  decide_budget_s: 0\n  debounce_s: 0\n  max_decisions_per_s: 0\n"
+                 "  journal:\n    fsync: never\nshard:\n  restart_delay_s: 0.5\n"
+                 # a worker's 1,000-node tables can take seconds on a busy 2-core machine
+                 "  control_timeout_s: 60\n")
+    procs: dict[str, ServiceProc] = {}
+    try:
+        procs["one"] = _start(base, "one", "--topology", tfile)
+        procs["two"] = _start(base, "two", "--topology", tfile, "--shards", "2")
+        one, two = procs["one"], procs["two"]
+        h = two.control({"op": "health"})
+        pids = [s["pid"] for s in h["shards"]]
+        assert [s["health"]["shard"]["destinations"] for s in h["shards"]] == \
+            shard.ShardMap.build(topo, 2).counts()
+        rng = np.random.default_rng(17)
+        m = len(topo.src)
+        names = topo.nodes
+        acked: dict[str, dict[int, Any]] = {"one": {}, "two": {}}
+        reps = {nm: Reporter(sp.endpoints["ingest"], "rep-m", topology_nodes=topo,
+                             batch_rows=1000, max_pending=1, timeout_s=2.0, retries=60,
+                             first_batch=1, context=sp._ctx,
+                             on_ack=lambda a, nm=nm: acked[nm].__setitem__(a.batch, a))
+                for nm, sp in procs.items()}
+
+        def send(n_batches: int) -> None:
+            for _ in range(n_batches):
+                li = rng.integers(m, size=1000)
+                cols = (topo.src[li], topo.dst[li], rng.integers(topo.n, size=1000),
+                        topo.delay_s[li] * (1.0 + rng.exponential(0.5, 1000)))
+                keep = cols[0] != cols[2]
+                rows = list(zip(*(c[keep].tolist() for c in cols)))
+                for rep in reps.values():
+                    for s_, v, d, lat in rows:
+                        rep.add_hop(names[s_], names[v], names[d], lat)
+                    rep.send_now()
+            for rep in reps.values():
+                rep.flush()
+
+        send(12)
+        rss = {"one": _rss_bytes(one.proc.pid), "front": _rss_bytes(two.proc.pid),
+               **{f"w{k}": _rss_bytes(p) for k, p in enumerate(pids)}}
+        os.kill(pids[1], signal.SIGKILL)
+        send(12)
+        for rep in reps.values():
+            rep.close()
+        assert sorted(acked["one"]) == sorted(acked["two"]) == list(range(1, 25))
+        assert [acked["two"][b].accepted for b in range(1, 25)] == \
+            [acked["one"][b].accepted for b in range(1, 25)]
+        h = two.control({"op": "health"})
+        assert h["shards"][1]["restarts"] == 1 and h["shards_up"] == 2, h
+        t0 = time.monotonic()
+        ref = one.control({"op": "tables"}, timeout_ms=130000)
+        got = two.control({"op": "tables"}, timeout_ms=130000)
+        assert "tables" in ref and "tables" in got, (ref.get("error"), got.get("error"))
+        ref, got = ref["tables"], got["tables"]
+        print(f"\ntables by control: {time.monotonic() - t0:.1f} s")
+        assert got == ref
+    finally:
+        for sp in procs.values():
+            sp.kill()
+    print(f"\nRSS at 1,000 nodes (MB): {({k: round(v / 1e6) for k, v in rss.items()})}")
+    # memory: the front runs the same code without an engine, so what a process holds
+    # above it is (mostly) its engine; each worker's is about half of one process's
+    base_rss = rss["front"]
+    for k in ("w0", "w1"):
+        assert rss[k] - base_rss < 0.65 * (rss["one"] - base_rss), rss
+    # every batch is in each shard's journal exactly once
+    for k in range(2):
+        nos = [r.body["batch"] for r in J.iter_records(J.journal_dir(shard.shard_dir(
+            os.path.join(base, "two", "state"), k, 2))) if r.kind == "batch"]
+        assert sorted(nos) == list(range(1, 25)), (k, nos)
+
+
+def test_a_worker_keeps_its_owned_engine_through_a_reload_asking_for_a_variant(
+        tmp_path: Any) -> None:
+    """A worker's engine holds its destinations only (the plain rule); engine.variant is
+    not a tunable, so a reload asking for one says it needs a restart and keeps the engine."""
+    import argparse
+
+    conf = tmp_path / "w.yaml"
+    conf.write_text(f"service:\n  state_dir: {tmp_path / 'st'}\n")
+    topo = _topo()
+    cfg = _config.load(str(conf))
+    smap = shard.ShardMap.build(topo, 2)
+    args = argparse.Namespace(config=str(conf), set=[], topology=None, state_dir=None)
+    w = shard.ShardWorker(cfg, topo, smap, 0, None, reload_args=args)
+    try:
+        w.restore(str(tmp_path / "st"))
+        assert w.engine is not None and w.engine.partial
+        assert w.engine.owned.tolist() == smap.owned(0).tolist()
+        conf.write_text(f"service:\n  state_dir: {tmp_path / 'st'}\nengine:\n  variant: predictive\n")
+        r = w._do_reload()
+        assert r["needs_restart"] == ["engine.variant"], r
+        assert w.engine.settings.variant == "plain" and w.engine.partial
+    finally:
+        w.close()

@@ -264,3 +264,87 @@ def test_progress_observer_and_other_tables_alike() -> None:
         seen[path] = [calls, raw.events, raw.deliveries]
     assert seen["reference"] == seen["compiled"]
     assert len(seen["compiled"][0]) == 10 and seen["compiled"][1] > 1000
+
+
+def _qrouting(topo: Any, overrides: list[str]) -> QRouting:
+    from routerd.io import config
+    cfg = config.load(None, overrides=[*overrides, "engine.kernels=compiled"])
+    pol = QRouting()
+    pol.attach(topo, np.random.default_rng(0), cfg)
+    return pol
+
+
+@needs_hops
+@pytest.mark.parametrize("overrides", [[], ["sim.feedback=instant"], ["sim.estimate=min"]])
+def test_the_row_store_ticks_like_the_numpy_path(overrides: list[str]) -> None:
+    # the same hops, in batches whose due times are out of order with many ties
+    # (whole-millisecond hop times, link delays of 1, 2 and 30 ms), to a policy on the
+    # numpy path (on_hops, tick) and to one on the compiled row store (QRows.extend,
+    # tick): the engines see the same batches and end in the same state, with the same
+    # tables and estimates after every tick
+    doc = {"topology": {"name": "ties", "nodes": list("abcdefg"), "links": [
+        {"between": [a, b], "delay_s": dl, "capacity_bps": 10e6, "buffer_pkts": 20}
+        for (a, b), dl in zip(["ab", "bc", "cd", "de", "ef", "fg", "ga", "ad", "be", "cf"],
+                              [0.001, 0.002, 0.03] * 4)]}}
+    topo = topology.from_mapping(doc)
+    ref, comp = _qrouting(topo, overrides), _qrouting(topo, overrides)
+    store = comp.hop_rows()
+    assert store is not None and ref._qrows is None
+    seen: list[list] = [[], []]
+    for pol, log in zip((ref, comp), seen):
+        inner = pol.engine.observe
+
+        def observe(batch: Any, now: float, inner: Any = inner, log: list = log) -> Any:
+            log.append((now, [np.asarray(c, dtype=np.float64).tolist() for c in
+                              (batch.src, batch.via, batch.dst, batch.latency, batch.estimate)]))
+            return inner(batch, now)
+
+        pol.engine.observe = observe  # type: ignore[method-assign]
+    rng = np.random.default_rng(3)
+    t = 0.0
+    for _ in range(40):
+        m = int(rng.integers(0, 120))
+        k = rng.integers(0, topo.n_links, m)
+        x, y = topo.src[k].astype(np.int64), topo.dst[k].astype(np.int64)
+        d = rng.integers(0, topo.n, m).astype(np.int64)
+        keep = d != y
+        x, y, d = x[keep], y[keep], d[keep]
+        now = np.sort(t + rng.integers(0, 50, x.size) / 1000.0)
+        lat = rng.integers(1, 40, x.size) / 1000.0
+        ref.on_hops(x, y, d, lat, now, np.zeros(x.size, dtype=np.int64))
+        store.extend(x, y, d, lat, now)
+        t += 0.05
+        ref.tick(t)
+        comp.tick(t)
+        assert ref.table == comp.table
+        assert np.array_equal(ref._Vn, comp._Vn)
+        assert ref.engine.same_state(comp.engine)
+    assert seen[0] == seen[1] and sum(len(c[0]) for _, c in seen[0]) > 1000
+    # a row naming a node the network does not have is refused, not written
+    with pytest.raises(ValueError, match=r"row 1 \(0, 1, 9\) names a node outside 0..6"):
+        store.extend(*(np.array(v, dtype=np.int64) for v in ([0, 0], [1, 1], [2, 9])),
+                     np.zeros(2), np.zeros(2))
+    # the rows not yet due are carried over alike (instant feedback: none)
+    assert store.pending == ref._carry.shape[1]
+    assert (store.pending > 0) == (overrides != ["sim.feedback=instant"])
+
+
+@needs_hops
+def test_qrouting_takes_the_row_store_on_the_compiled_loop() -> None:
+    topo = topology.from_mapping(LAB)
+    for overrides, used in [([], True), (["sim.estimate=min"], True),
+                            (["engine.variant=dual"], False)]:
+        pol = _qrouting(topo, overrides)
+        tr = PoissonTraffic(topo.n, 1400.0, np.random.default_rng(4))
+        run_core(topo, pol, tr.packets(), duration_s=1.0, kernels="compiled")
+        assert (pol._qrows is not None) == used, overrides
+        # the estimates kept key by key are the engine's published ones, to the bit
+        want = (pol.engine.values() if overrides == ["sim.estimate=min"]
+                else pol.engine.published_estimates())
+        assert np.array_equal(pol._Vn, want)
+    # the numpy path never makes one
+    pol = QRouting()
+    pol.attach(topo, np.random.default_rng(0), None)
+    tr = PoissonTraffic(topo.n, 1400.0, np.random.default_rng(4))
+    run_core(topo, pol, tr.packets(), duration_s=0.5, kernels="reference")
+    assert pol._qrows is None

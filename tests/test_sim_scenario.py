@@ -5,7 +5,6 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from routerd.core import topology
 
 from routerd.io import topofiles
 from routerd.core.errors import InputError

@@ -12,6 +12,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from routerd.core import kernels
 from routerd.core import splitting as S
 from routerd.core import topology as T
 from routerd.core.engine import Engine, EngineSettings, HopBatch
@@ -66,6 +67,26 @@ def test_share_step_by_hand() -> None:
     assert S.share_step(w, d, np.array([0.0, 0.0]), np.array([False, False]), t, 1.0, 1.0).tolist() == w.tolist()
 
 
+def test_share_step_drains_an_uphill_share_by_hand() -> None:
+    # slot 0 is the cheapest (delta 10 ms); slot 1 holds 0.5 but is uphill; its gradient
+    # step alone is (0.011 - 0.010) / (1.0 + 1.0) = 0.0005 (a steep path, as across an
+    # overloaded link); with drain 0.1 it gives up at least min(0.5, 0.1) = 0.1
+    w = np.array([0.5, 0.5])
+    d = np.array([0.010, 0.011])
+    H = np.array([1.0, 1.0])
+    cand = np.array([True, True])
+    up = np.array([False, True])
+    t = np.array(1.0)
+    assert S.share_step(w, d, H, cand, t, 1.0, 1.0) == pytest.approx([0.5005, 0.4995])
+    assert S.share_step(w, d, H, cand, t, 1.0, 1.0, up, 0.1) == pytest.approx([0.6, 0.4])
+    # the gradient's step wins when larger; a share below the drain goes whole
+    assert S.share_step(w, np.array([0.010, 0.5]), H, cand, t, 1.0, 1.0, up, 0.1) == pytest.approx(
+        [0.5 + 0.49 / 2.0, 0.5 - 0.49 / 2.0])
+    assert S.share_step(np.array([0.95, 0.05]), d, H, cand, t, 1.0, 1.0, up, 0.1) == pytest.approx([1.0, 0.0])
+    # the cheapest slot is never drained, even when uphill
+    assert S.share_step(w, d, H, cand, t, 1.0, 1.0, np.array([True, True]), 0.1) == pytest.approx([0.6, 0.4])
+
+
 def _tri() -> T.Topology:
     doc = {"topology": {"name": "tri", "nodes": ["a", "b", "c"],
                         "defaults": {"capacity_bps": 1e6, "buffer_pkts": 64},
@@ -73,6 +94,67 @@ def _tri() -> T.Topology:
                                   {"between": ["b", "c"], "delay_s": 0.001},
                                   {"between": ["a", "c"], "delay_s": 0.003}]}}
     return T.from_mapping(doc)
+
+
+def test_rate_model_latency_by_hand() -> None:
+    # M/M/1 (Kleinrock): service time tau = 4 ms (C = 250 packets/s), p = 1 ms.
+    # F = 125/s: rho = 0.5, sojourn tau / (1 - rho) = 8 ms, latency 9 ms.  F = 300/s is
+    # past capacity: rho capped at 0.97, sojourn 4 ms / 0.03.  No capacity known (tau 0): p.
+    tau, p = np.array([0.004, 0.004, 0.0]), np.array([0.001, 0.001, 0.001])
+    L = S.rate_model_latency(np.array([125.0, 300.0, 50.0]), p, tau, 0.97)
+    assert L == pytest.approx([0.009, 0.001 + 0.004 / 0.03, 0.001], rel=1e-12)
+    # the decision takes the larger of the measured and the model latency: a link whose
+    # queue has not built up yet (measured 5 ms at 240/s on C = 250) is costed at the
+    # model's 4 ms / (1 - 0.96) + p = 101 ms
+    Lm = np.maximum(np.array([0.005]), S.rate_model_latency(np.array([240.0]), p[:1], tau[:1], 0.97))
+    assert Lm[0] == pytest.approx(0.101, rel=1e-12)
+
+
+def test_event_boost_by_hand() -> None:
+    # 1 + (B - 1) exp(-(now - since) / tau): B at the event, 1 + (B - 1)/e one tau later
+    # (the "search then converge" idea, Darken & Moody 1992, with a floor of 1), 1 before
+    # any event and with B = 1
+    assert S.event_boost(5.0, 5.0, 3.0, 2.0) == 3.0
+    assert S.event_boost(7.0, 5.0, 3.0, 2.0) == pytest.approx(1.0 + 2.0 / math.e, rel=1e-12)
+    assert S.event_boost(45.0, 5.0, 3.0, 2.0) == pytest.approx(1.0, abs=1e-8)
+    assert S.event_boost(5.0, -math.inf, 3.0, 2.0) == 1.0
+    assert S.event_boost(4.0, 5.0, 3.0, 2.0) == 1.0        # a clock behind the event
+    assert S.event_boost(5.0, 5.0, 1.0, 2.0) == 1.0
+
+
+def test_a_link_event_boosts_the_next_share_step(small_ring: T.Topology) -> None:
+    # the same rows and the same link cut in two engines, one without the boost: right
+    # after the cut the boosted one moves its shares further (engine.split.event_boost);
+    # with no link event the two are the same to the bit
+    t = small_ring
+    rng = np.random.default_rng(3)
+    k = rng.integers(0, t.n_links, 600)
+    x, y = t.src[k].astype(int), t.dst[k].astype(int)
+    d = rng.integers(0, t.n, 600)
+    d = np.where(d == x, y, d)
+    lat = rng.uniform(0.001, 0.05, 600)
+    engs = [Engine(t, EngineSettings(mode="split", split_boost=b, split_threshold=0.0))
+            for b in (1.0, 4.0)]
+    for i in range(3):
+        for e in engs:
+            e.observe(HopBatch.of(x[200 * i:200 * (i + 1)], y[200 * i:200 * (i + 1)],
+                                  d[200 * i:200 * (i + 1)], lat[200 * i:200 * (i + 1)]), 0.1 * (i + 1))
+            e.decide(0.1 * (i + 1))
+    assert np.array_equal(engs[0]._split.w, engs[1]._split.w)      # no event yet: equal
+    assert np.array_equal(engs[0].Q, engs[1].Q)
+    before = [e._split.w.copy() for e in engs]
+    for e in engs:
+        e.set_link(int(t.src[0]), int(t.dst[0]), False, 0.3)
+        assert e._split.last_event == 0.3
+        e.observe(HopBatch.of(x[:200], y[:200], d[:200], lat[:200]), 0.4)
+        e.decide(0.4)
+    moved = [float(np.abs(e._split.w - b).sum()) for e, b in zip(engs, before)]
+    assert moved[1] > moved[0] > 0
+    # a state saved before the boost existed restores with no boost pending
+    st = engs[1].export_state()
+    del st["split"]["last_event"]
+    back = Engine.from_state(t, engs[1].settings, st)
+    assert back._split.last_event == -math.inf
 
 
 def test_cyclic_finds_a_two_node_cycle_and_nothing_else() -> None:
@@ -123,6 +205,77 @@ def test_split_batched_equals_sequential(small_ring: T.Topology, data: st.DataOb
         da, db = a.decide(now), b.decide(now)
         assert da == db
         assert a.same_state(b)
+
+
+def _slow_links(t: T.Topology, bps: float) -> T.Topology:
+    """``t`` with every link at ``bps``: the rows' latencies then load the links (idle
+    prior, marginals and curvatures of their own size)."""
+    specs = [T.LinkSpec(t.nodes[int(t.src[k])], t.nodes[int(t.dst[k])], float(t.delay_s[k]), bps, 64,
+                        f"l{k}") for k in range(t.n_links)]
+    return T.build(f"{t.name}-slow", list(t.nodes), specs)
+
+
+@pytest.mark.skipif(not kernels.available(), reason="routerd.core._kernels is not built")
+@HYP
+@given(data=st.data())
+def test_split_compiled_equals_reference(small_ring: T.Topology, data: st.DataObject) -> None:
+    # the compiled pass (routerd.core._kernels.split_decide, one destination at a time)
+    # against the numpy reference (every destination at once): the same decisions, Q,
+    # shares, published shares, readers and counters, to the bit, through link failures
+    t = small_ring if data.draw(st.booleans()) else _slow_links(small_ring, 2e5)
+    kw = {"mode": "split", "split_threshold": data.draw(st.sampled_from([0.0, 0.02, 0.3])),
+          "initial_mode": data.draw(st.sampled_from(["shortest", "constant"])),
+          "split_step": data.draw(st.sampled_from([1.0, 0.3])),
+          "split_max_step": data.draw(st.sampled_from([1.0, 0.2])),
+          "split_uphill_drain": data.draw(st.sampled_from([0.0, 0.1, 1.0])),
+          "split_boost": data.draw(st.sampled_from([1.0, 3.0])),
+          "split_rate_model": data.draw(st.sampled_from([0.0, 0.5, 0.97]))}
+    a = Engine(t, EngineSettings(kernels="compiled", **kw))
+    b = Engine(t, EngineSettings(kernels="reference", **kw))
+    now = 0.0
+    for _ in range(data.draw(st.integers(1, 8))):
+        rows = data.draw(rows_of(t, 0, 80))
+        now += data.draw(st.floats(0.01, 0.6))
+        if rows:
+            hb = HopBatch.from_rows(rows)
+            a.observe(hb, now)
+            b.observe(hb, now)
+        if data.draw(st.booleans()):
+            k = data.draw(st.integers(0, t.n_links - 1))
+            up = data.draw(st.booleans())
+            a.set_link(int(t.src[k]), int(t.dst[k]), up, now)
+            b.set_link(int(t.src[k]), int(t.dst[k]), up, now)
+        assert a.decide(now) == b.decide(now)
+        assert a.same_state(b)
+        assert a.statistics() == b.statistics()
+
+
+def test_split_compiled_equals_reference_at_a_hundred_nodes() -> None:
+    # a larger graph than hypothesis draws (deeper share graphs, more reversions), seeded
+    if not kernels.available():
+        pytest.skip("routerd.core._kernels is not built")
+    from conftest import ring_with_chords
+    t = _slow_links(ring_with_chords(100, 100, seed=3), 2e6)
+    rng = np.random.default_rng(11)
+    a = Engine(t, EngineSettings(mode="split", kernels="compiled"))
+    b = Engine(t, EngineSettings(mode="split", kernels="reference"))
+    moved = 0
+    for i in range(12):
+        now = 0.1 * (i + 1)
+        k = rng.integers(0, t.n_links, 800)
+        x, y = t.src[k].astype(int), t.dst[k].astype(int)
+        d = rng.integers(0, t.n, 800)
+        d = np.where(d == x, y, d)
+        hb = HopBatch.of(x, y, d, rng.uniform(0.001, 0.03, 800))
+        a.observe(hb, now)
+        b.observe(hb, now)
+        if i in (4, 8):
+            a.set_link(int(t.src[i]), int(t.dst[i]), i == 8, now)
+            b.set_link(int(t.src[i]), int(t.dst[i]), i == 8, now)
+        assert a.decide(now) == b.decide(now)
+        assert a.same_state(b)
+    moved = a.statistics().split_share_moves
+    assert moved > 1000 and a.statistics().loops_prevented > 0   # the test exercised the step and repairs
 
 
 def _check_published(eng: Engine) -> None:

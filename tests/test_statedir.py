@@ -319,7 +319,7 @@ def test_state_dir_alone_after_the_topology_is_deleted_and_a_kill_9(base: str, t
         last = [r for r in J.iter_records(J.journal_dir(sd)) if r.kind == "start"][-1]
         running = statedir.load_config(sd, last.body["documents"]["config"])
         assert running["engine.hysteresis.margin"] == 0.15
-        assert running["service.snapshot_interval_s"] == 1.0     # from the deleted file
+        assert running["service.snapshot_interval_s"] == 3600     # from the deleted file
         sp.signal(signal.SIGTERM)
         assert sp.wait(20) == 0
     finally:

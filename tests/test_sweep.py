@@ -3,7 +3,6 @@ plot, determinism across worker counts, and bad input."""
 from __future__ import annotations
 
 import csv
-import io
 import json
 import math
 import os
@@ -13,6 +12,7 @@ import pytest
 
 from routerd.tools import cli
 from routerd.sim import commands_sweep as sw
+from sim_helpers import FakeTerminal as _Stream
 
 ARGS = ["sweep", "--rates", "300,1500", "--policies", "shortest,mindelay", "--seeds", "2",
         "--duration", "3", "--jobs", "2", "--quiet"]
@@ -137,15 +137,6 @@ def test_rate_range_and_policy_lists() -> None:
     assert sw.parse_rates(None, "100:400:4") == [100.0, 200.0, 300.0, 400.0]
     assert sw.parse_rates("400, 100,400", None) == [100.0, 400.0]
     assert sw.parse_policies("qrouting,shortest,qrouting") == ["qrouting", "shortest"]
-
-
-class _Stream(io.StringIO):
-    def __init__(self, tty: bool):
-        super().__init__()
-        self._tty = tty
-
-    def isatty(self) -> bool:
-        return self._tty
 
 
 def test_progress_bar_only_after_a_few_seconds() -> None:

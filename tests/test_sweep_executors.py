@@ -123,7 +123,7 @@ def test_progress_arrives_from_within_runs(monkeypatch: pytest.MonkeyPatch) -> N
     monkeypatch.setattr(sw, "REPORT_EVERY_S", 0.0)
     # the reference loop: the compiled one can finish a run before its first report has
     # crossed the pool's queue, and then there is no "while" to see
-    specs = [{"policy": "mindelay", "rate_pps": 2000.0, "seed": s, "duration_s": 10.0,
+    specs = [{"policy": "mindelay", "rate_pps": 2000.0, "seed": s, "duration_s": 40.0,
               "series": False, "overrides": ["engine.kernels=reference"]} for s in (1, 2)]
     for jobs in (1, 2):
         calls: list[tuple[int, int, float]] = []
@@ -279,7 +279,7 @@ def test_dask_workers_report_progress_within_runs(dask_pool: ex.Pool) -> None:
     # one run of a second or two (REPORT_EVERY_S = 0.5 on the workers): reports arrive
     # through the scheduler's queue before the run finishes
     spec = sw.inline_specs([{"policy": "mindelay", "rate_pps": 5000.0, "seed": 1,
-                             "duration_s": 20.0, "series": False}])[0]
+                             "duration_s": 60.0, "series": False}])[0]
     calls: list[tuple[int, int, float]] = []
     rows = sw.run_grid([spec], on_done=_recorder(calls), pool=dask_pool)
     assert "error" not in rows[0]

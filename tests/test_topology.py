@@ -386,3 +386,32 @@ def test_topohub_missing_names_the_extra(monkeypatch: pytest.MonkeyPatch, tmp_pa
                "--topology", "topohub:sndlib/abilene", "--out", str(tmp_path / "o"), "--quiet"])
     err = capsys.readouterr().err
     assert rc == 2 and "routerd[topohub]" in err and "Traceback" not in err
+
+
+@pytest.mark.parametrize("equal", [False, True])
+def test_shortest_paths_without_links_is_the_full_run(equal: bool) -> None:
+    """Links taken out (weight inf, the engine's live tree after a link goes down): only
+    destinations whose delay tree used one are grown again, and the result is the full
+    all-pairs run's, bit for bit — with equal delays too, where ties abound."""
+    import sys
+
+    from routerd.core.topology import _all_pairs
+
+    sys.path.insert(0, os.path.join(os.path.dirname(os.path.dirname(__file__)), "bench"))
+    from bench_engine import ring_with_chords
+
+    t = ring_with_chords(60, 60)
+    if equal:
+        doc = T.to_mapping(t)
+        for lk in doc["topology"]["links"]:
+            lk["delay_s"] = 0.001
+        t = T.from_mapping(doc)
+    rng = np.random.default_rng(5)
+    for k in (0, 1, 1, 2, 5, 40):
+        w = t.delay_s.copy()
+        w[rng.choice(t.n_links, k, replace=False)] = np.inf
+        D, NH = t.shortest_paths(w)
+        D2, NH2 = _all_pairs(t.n, t.src, t.dst, w)
+        np.testing.assert_array_equal(D, D2)
+        np.testing.assert_array_equal(NH, NH2)
+        assert D.flags.writeable and NH.flags.writeable

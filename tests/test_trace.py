@@ -478,3 +478,42 @@ def test_damaged_captures_never_crash(tmp_path_factory: Any, data: Any) -> None:
     rep = src.report
     assert rep.injected + sum(rep.skipped.values()) == rep.records
     assert (np.diff(src.t) >= 0).all()
+
+
+def test_a_timestamp_past_a_64_bit_nanosecond_count_is_skipped(tmp_path: Any, amap: str) -> None:
+    """pcapng keeps 64-bit tick counts (pcapng spec, Enhanced Packet Block: Timestamp
+    Upper/Lower); at microsecond resolution the top values are far past 2^63 ns (the
+    hypothesis test above once found one that crashed the load).  Such a record is counted
+    as bad_time; the others load as usual."""
+    import struct
+
+    p = str(tmp_path / "c.pcapng")
+    write_pcapng(p, frames())
+    buf = bytearray(_get(p))
+    off = 0
+    while True:                                   # walk the blocks to the first EPB (type 6)
+        btype, blen = struct.unpack_from("<II", buf, off)
+        if btype == 6:
+            break
+        off += blen
+    struct.pack_into("<I", buf, off + 12, 0xFFFFFFFF)   # its timestamp's upper 32 bits
+    _put(p, bytes(buf))
+    src = TR.load_traffic(p, DEMO, amap)
+    rep = src.report
+    assert rep.skipped["bad_time"] == 1
+    assert rep.injected == len(frames()) - 1 - sum(v for k, v in rep.skipped.items() if k != "bad_time")
+    assert (np.diff(src.t) >= 0).all()
+
+
+def test_a_flow_log_time_or_duration_past_a_64_bit_nanosecond_count_is_refused(
+        tmp_path: Any) -> None:
+    j = tmp_path / "far.jsonl"
+    j.write_text('{"time": 1, "source": "w1", "destination": "e3", "bytes": 10}\n'
+                 '{"time": 1e30, "source": "w1", "destination": "e3", "bytes": 10}\n'
+                 '{"time": 2, "source": "w1", "destination": "e3", "bytes": 10, '
+                 '"duration_s": 1e300}\n')
+    with pytest.raises(TR.TraceError) as ei:
+        TR.load_traffic(str(j), DEMO, None)
+    msg = str(ei.value)
+    assert f"{j}:2:" in msg and f"{j}:3:" in msg and f"{j}:1:" not in msg, msg
+    assert msg.count("more than 2^62 ns (146 years) from 0") == 2, msg

@@ -7,7 +7,7 @@ for operation, so the results are the same to the bit (the build passes
 numpy is not a build dependency.  Pure: no I/O, no global state.
 """
 from libc.math cimport INFINITY, fabs, isfinite
-from libc.stdint cimport int64_t, uint8_t, INT64_MAX
+from libc.stdint cimport int16_t, int32_t, int64_t, uint8_t, uint16_t, uint32_t, INT64_MAX
 from libc.stdlib cimport malloc, free
 
 cdef extern from *:
@@ -19,6 +19,17 @@ cdef extern from *:
     #endif
     """
     void RD_PREFETCH(const void* p) noexcept nogil
+
+# the engine's update counts N: the narrow saturating types of engine.COUNT_TYPES
+ctypedef fused count_t:
+    uint8_t
+    uint16_t
+    uint32_t
+
+# topology.slot_of: int16, or int32 for a node with 32,000 neighbours or more
+ctypedef fused slot_t:
+    int16_t
+    int32_t
 
 # rows ahead whose state is fetched into cache while a row is applied: the update is
 # bound by random reads of Q, N and td (a prefetch changes no value)
@@ -33,25 +44,30 @@ cdef enum:
     BAD_LATENCY = 3
     BAD_ESTIMATE = 4
     LINK_DOWN = 5
+    NOT_OWNED = 6
 
 
-def observe(double[:, :, ::1] Q, int64_t[:, :, ::1] N, double[:, ::1] td,
-            const uint8_t[:, ::1] live, const int64_t[:, ::1] slot_of,
+cdef Py_ssize_t _observe(double[:, :, ::1] Q, count_t[:, :, ::1] N, int64_t cap, double[:, ::1] td,
+            const uint8_t[:, ::1] live, const slot_t[:, ::1] slot_of,
             const double[::1] steps, bint clamped, object beyond, double ceil, double sm,
             const int64_t[::1] xs, const int64_t[::1] ys, const int64_t[::1] ds,
             const double[::1] lats, const double[::1] ests,
             int64_t[::1] code, double[::1] tde,
-            uint8_t[::1] kdirty, uint8_t[::1] kcols):
+            uint8_t[::1] kdirty, uint8_t[::1] kcols, const int64_t[::1] dcol) except -1:
     """Check and apply hop rows one by one, in order (Engine._observe_rows' rules).
+
+    ``dcol[d]``: destination d's column in Q, N, td, kcols (-1: not owned); Q is
+    (n, owned, K).  A count stores at most ``cap`` (Engine._count_cap: it saturates).
 
     code[i]: -1 accepted, else the reason index; tde[:accepted]: the accepted rows' TD
     errors in order.  Returns the number accepted.  Past the step table: its last entry
     when ``clamped`` (Engine._step_beyond's rule), else ``beyond(nn)``, the engine's own
     code (counts past STEP_TABLE_MAX with a far or zero floor: rare, exact by construction).
     """
-    cdef Py_ssize_t n = Q.shape[0], K = Q.shape[2], m = xs.shape[0], lim = steps.shape[0]
+    cdef Py_ssize_t n = Q.shape[0], nd = Q.shape[1], K = Q.shape[2], m = xs.shape[0]
+    cdef Py_ssize_t lim = steps.shape[0]
     cdef Py_ssize_t i, c, acc = 0
-    cdef int64_t x, y, d, j, nn, px, py, pd
+    cdef int64_t x, y, d, dc, j, nn, px, py, pd
     cdef double lat, e, tail, v, target, old, delta, a, new, keep = 1.0 - sm
     for i in range(min(m, AHEAD)):
         px = xs[i]; py = ys[i]
@@ -60,7 +76,8 @@ def observe(double[:, :, ::1] Q, int64_t[:, :, ::1] N, double[:, ::1] td,
     for i in range(m):
         if i + AHEAD < m:
             px = xs[i + AHEAD]; py = ys[i + AHEAD]; pd = ds[i + AHEAD]
-            if 0 <= px < n and 0 <= py < n and 0 <= pd < n:
+            if 0 <= px < n and 0 <= py < n and 0 <= pd < n and dcol[pd] >= 0:
+                pd = dcol[pd]
                 RD_PREFETCH(&slot_of[px, py])
                 RD_PREFETCH(&Q[px, pd, 0])
                 RD_PREFETCH(&Q[px, pd, K - 1])
@@ -84,22 +101,25 @@ def observe(double[:, :, ::1] Q, int64_t[:, :, ::1] N, double[:, ::1] td,
             code[i] = BAD_ESTIMATE
         elif not live[x, j]:
             code[i] = LINK_DOWN
+        elif dcol[d] < 0:
+            code[i] = NOT_OWNED
         else:
             code[i] = -1
+            dc = dcol[d]
             if y == d:
                 tail = 0.0
             elif e == e:        # not NaN: the neighbour's own estimate
                 tail = e
             else:               # absent slots hold inf, dead ones exactly the ceiling
-                tail = Q[y, d, 0]
+                tail = Q[y, dc, 0]
                 for c in range(1, K):
-                    v = Q[y, d, c]
+                    v = Q[y, dc, c]
                     if v < tail:
                         tail = v
             target = lat + tail
-            old = Q[x, d, j]
-            nn = N[x, d, j] + 1
-            N[x, d, j] = nn
+            old = Q[x, dc, j]
+            nn = <int64_t> N[x, dc, j] + 1
+            N[x, dc, j] = <count_t> (nn if nn <= cap else cap)
             delta = target - old
             if nn < lim:
                 a = steps[nn]
@@ -108,13 +128,25 @@ def observe(double[:, :, ::1] Q, int64_t[:, :, ::1] N, double[:, ::1] td,
             else:
                 a = beyond(nn)
             new = old + a * delta
-            Q[x, d, j] = ceil if new > ceil else (0.0 if new < 0.0 else new)
-            td[x, d] = keep * td[x, d] + sm * fabs(delta)
-            kdirty[x * n + d] = 1
-            kcols[d] = 1
+            Q[x, dc, j] = ceil if new > ceil else (0.0 if new < 0.0 else new)
+            td[x, dc] = keep * td[x, dc] + sm * fabs(delta)
+            kdirty[x * nd + dc] = 1
+            kcols[dc] = 1
             tde[acc] = delta
             acc += 1
     return acc
+
+
+def observe(double[:, :, ::1] Q, count_t[:, :, ::1] N, int64_t cap, double[:, ::1] td,
+            const uint8_t[:, ::1] live, const slot_t[:, ::1] slot_of,
+            const double[::1] steps, bint clamped, object beyond, double ceil, double sm,
+            const int64_t[::1] xs, const int64_t[::1] ys, const int64_t[::1] ds,
+            const double[::1] lats, const double[::1] ests,
+            int64_t[::1] code, double[::1] tde,
+            uint8_t[::1] kdirty, uint8_t[::1] kcols, const int64_t[::1] dcol):
+    """:func:`_observe` with every array passed (the bound form: :class:`Bound`)."""
+    return _observe(Q, N, cap, td, live, slot_of, steps, clamped, beyond, ceil, sm,
+                    xs, ys, ds, lats, ests, code, tde, kdirty, kcols, dcol)
 
 
 cdef int _cycles(const int64_t* nh, uint8_t* cyc, uint8_t* col, int64_t* path,
@@ -186,17 +218,42 @@ cdef void _depths(const int64_t* nh, int64_t d, int64_t* dep, int64_t* path,
             dep[x] = n + 1
 
 
-def decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const int64_t[:, ::1] slots,
-           const int64_t[:, ::1] slot_of, const int64_t[:, ::1] spt, const int64_t[::1] ds,
+cdef inline double _share(bint visits, double v, double tdv, int64_t tot, bint anyalt,
+                          double ceil, double td_ref, double emin, double espan,
+                          double eps_max, double visits_half) noexcept nogil:
+    """A key's exploration share (Engine._explore's rule), for the full pass and the key
+    lane alike: by TD error over the greedy value v (``visits`` off) or by the key's
+    update count tot; 0 without an alternative next hop."""
+    cdef double vv, r, fr, e
+    if not visits:
+        vv = v if isfinite(v) else ceil
+        if not (vv >= 1e-12):
+            vv = 1e-12
+        r = tdv / vv / td_ref
+        fr = r if r < 1.0 else 1.0
+    else:
+        fr = visits_half / (visits_half + <double> tot)
+    e = emin + espan * fr
+    if not (e < eps_max):
+        e = eps_max
+    if not anyalt:
+        e = 0.0
+    return e
+
+
+cdef object _decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const int64_t[:, ::1] slots,
+           const slot_t[:, ::1] slot_of, const int32_t[:, ::1] spt, const int64_t[::1] ds,
            int64_t[:, ::1] greedy, double[:, ::1] eps, uint8_t[:, :, ::1] alt,
-           uint8_t[:, ::1] forced, int64_t[:, ::1] hyst_st, uint8_t[::1] stable,
-           const double[:, ::1] td, const int64_t[:, :, ::1] N, bint visits,
+           uint8_t[:, ::1] forced, slot_t[:, ::1] hyst_st, uint8_t[::1] stable,
+           const double[:, ::1] td, const count_t[:, :, ::1] N, bint visits,
            double keepf, double ceil, double td_ref, double emin, double espan,
            double eps_max, double visits_half,
            int64_t[:, ::1] choice, int64_t[:, ::1] hy, double[:, ::1] vx,
            int64_t[:, ::1] pot, int64_t[:, ::1] nhT, int64_t[:, ::1] prevT,
-           int64_t[:, ::1] potT, const int64_t[::1] deg, uint8_t[::1] changed):
-    """Engine._decide_full for destinations ds.  Returns (route changes, loops newly
+           int64_t[:, ::1] potT, const int64_t[::1] deg, uint8_t[::1] changed,
+           const int64_t[::1] cs):
+    """Engine._decide_full for destinations ds, whose columns (in q, greedy, eps, alt,
+    forced, hyst_st, stable, td, N) are cs: node indices (x == d, spt, depths) use ds.  Returns (route changes, loops newly
     prevented); prevented is -1 if the fallback ladder failed to converge (a bug).
 
     Destinations go in blocks of B (the scratch arrays' width, choice: (n, B)): per block
@@ -209,8 +266,8 @@ def decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const int64_t[
     """
     cdef Py_ssize_t n = q.shape[0], K = q.shape[2], m = ds.shape[0], B = choice.shape[1]
     cdef Py_ssize_t x, ii, i0, nb, c, it
-    cdef int64_t d, best, inc, ch, h, pv, bound, p, tot
-    cdef double bv, v, incv, vv, fr, e, r
+    cdef int64_t d, dc, best, inc, ch, h, pv, bound, p, tot
+    cdef double bv, v, incv, e
     cdef const double* qr
     cdef bint keep, anyalt, cg, cw, fnew, unstable, failed = False
     cdef int64_t changes = 0, prevented = 0
@@ -237,7 +294,8 @@ def decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const int64_t[
                 kx = deg[x]
                 for ii in range(nb):
                     d = ds[i0 + ii]
-                    qr = &q[x, d, 0]
+                    dc = cs[i0 + ii]
+                    qr = &q[x, dc, 0]
                     best = 0
                     bv = qr[0] if live[x, 0] else INFINITY
                     for c in range(1, kx):
@@ -245,7 +303,7 @@ def decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const int64_t[
                         if v < bv:
                             best = c
                             bv = v
-                    inc = greedy[x, d]
+                    inc = greedy[x, dc]
                     incv = qr[inc] if (inc >= 0 and live[x, inc]) else INFINITY
                     keep = isfinite(incv) and not (bv < incv * keepf)
                     ch = inc if keep else best
@@ -296,7 +354,7 @@ def decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const int64_t[
                         if choice[x, ii] != hy[x, ii] and not c1[x]:
                             unstable = True
                     pt[x] = dep[x] * n + x
-                stable[d] = not unstable
+                stable[cs[i0 + ii]] = not unstable
             if failed:
                 break
             for x in range(n):          # potentials back to node-major for phase 3
@@ -308,7 +366,7 @@ def decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const int64_t[
             for x in range(n):
                 kx = deg[x]
                 for ii in range(nb):
-                    d = ds[i0 + ii]
+                    dc = cs[i0 + ii]
                     ch = choice[x, ii]
                     h = hy[x, ii]
                     if ch >= 0:
@@ -321,47 +379,37 @@ def decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const int64_t[
                     for c in range(kx):         # branch-free: the outcomes are data
                         au = live[x, c] & (ch != c) & (pot[slots[x, c], ii] < bound)
                         anyu |= au
-                        if alt[x, d, c] != au:  # written only when it changes: no
+                        if alt[x, dc, c] != au:  # written only when it changes: no
                             cwu = 1             # write-back of untouched lines
-                            alt[x, d, c] = au
+                            alt[x, dc, c] = au
                     anyalt = anyu
                     cw = cwu
                     if ch == h:
                         v = vx[x, ii]
                     else:
-                        v = q[x, d, ch] if (ch >= 0 and live[x, ch]) else INFINITY
-                    if not visits:
-                        vv = v if isfinite(v) else ceil
-                        if not (vv >= 1e-12):
-                            vv = 1e-12
-                        r = td[x, d] / vv / td_ref
-                        fr = r if r < 1.0 else 1.0
-                    else:
-                        tot = N[x, d, 0]
-                        for c in range(1, K):
-                            tot += N[x, d, c]
-                        fr = visits_half / (visits_half + <double> tot)
-                    e = emin + espan * fr
-                    if not (e < eps_max):
-                        e = eps_max
-                    if not anyalt:
-                        e = 0.0
-                    cg = greedy[x, d] != ch
-                    if cg or fabs(eps[x, d] - e) > 1e-9:
+                        v = q[x, dc, ch] if (ch >= 0 and live[x, ch]) else INFINITY
+                    tot = 0
+                    if visits:
+                        for c in range(K):
+                            tot += <int64_t> N[x, dc, c]
+                    e = _share(visits, v, td[x, dc], tot, anyalt, ceil, td_ref, emin, espan,
+                               eps_max, visits_half)
+                    cg = greedy[x, dc] != ch
+                    if cg or fabs(eps[x, dc] - e) > 1e-9:
                         cw = True
                     fnew = ch != h
-                    if fnew and not (forced[x, d] and not cg):
+                    if fnew and not (forced[x, dc] and not cg):
                         prevented += 1
                     if cg:
                         changes += 1
                     if cg:
-                        greedy[x, d] = ch
-                    if eps[x, d] != e:
-                        eps[x, d] = e
-                    if forced[x, d] != fnew:
-                        forced[x, d] = fnew
-                    if hyst_st[x, d] != h:
-                        hyst_st[x, d] = h
+                        greedy[x, dc] = ch
+                    if eps[x, dc] != e:
+                        eps[x, dc] = e
+                    if forced[x, dc] != fnew:
+                        forced[x, dc] = fnew
+                    if hyst_st[x, dc] != h:
+                        hyst_st[x, dc] = <slot_t> h
                     if cw:
                         changed[x] = 1
     finally:
@@ -371,34 +419,1156 @@ def decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const int64_t[
     return changes, prevented
 
 
+def decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const int64_t[:, ::1] slots,
+           const slot_t[:, ::1] slot_of, const int32_t[:, ::1] spt, const int64_t[::1] ds,
+           int64_t[:, ::1] greedy, double[:, ::1] eps, uint8_t[:, :, ::1] alt,
+           uint8_t[:, ::1] forced, slot_t[:, ::1] hyst_st, uint8_t[::1] stable,
+           const double[:, ::1] td, const count_t[:, :, ::1] N, bint visits,
+           double keepf, double ceil, double td_ref, double emin, double espan,
+           double eps_max, double visits_half,
+           int64_t[:, ::1] choice, int64_t[:, ::1] hy, double[:, ::1] vx,
+           int64_t[:, ::1] pot, int64_t[:, ::1] nhT, int64_t[:, ::1] prevT,
+           int64_t[:, ::1] potT, const int64_t[::1] deg, uint8_t[::1] changed,
+           const int64_t[::1] cs):
+    """:func:`_decide` with every array passed (the bound form: :class:`Bound`)."""
+    return _decide(q, live, slots, slot_of, spt, ds, greedy, eps, alt, forced, hyst_st, stable,
+                   td, N, visits, keepf, ceil, td_ref, emin, espan, eps_max, visits_half,
+                   choice, hy, vx, pot, nhT, prevT, potT, deg, changed, cs)
+
+
 def routes(const int64_t[::1] rows, const int64_t[:, ::1] greedy, const int64_t[:, ::1] slots,
-           const uint8_t[:, :, ::1] alt, const double[:, ::1] eps, list out):
+           const uint8_t[:, :, ::1] alt, const double[:, ::1] eps, list out,
+           const int64_t[::1] owned):
     """Engine.routes_many for nodes ``rows``: appends to ``out`` one dict per node,
     destination -> [(next_hop, weight), ...], greedy first, then alternates in slot order;
-    weights 1 - eps and eps / count (the reference's operations), 1.0 without alternates."""
-    cdef Py_ssize_t n = greedy.shape[1], K = slots.shape[1], r, c, d, cnt
-    cdef int64_t x, g
+    weights 1 - eps and eps / count (the reference's operations), 1.0 without alternates.
+    Column dc of greedy, alt and eps is destination owned[dc]."""
+    cdef Py_ssize_t n = greedy.shape[1], K = slots.shape[1], r, c, dc, cnt
+    cdef int64_t x, g, d
     cdef double e, share
     cdef dict table
     cdef list ws
     for r in range(rows.shape[0]):
         x = rows[r]
         table = {}
-        for d in range(n):
-            g = greedy[x, d]
+        for dc in range(n):
+            g = greedy[x, dc]
+            d = owned[dc]
             if g < 0 or d == x:
                 continue
             cnt = 0
             for c in range(K):
-                cnt += alt[x, d, c]
+                cnt += alt[x, dc, c]
             if cnt:
-                e = eps[x, d]
+                e = eps[x, dc]
                 share = e / <double> cnt
                 ws = [(slots[x, g], 1.0 - e)]
                 for c in range(K):
-                    if alt[x, d, c]:
+                    if alt[x, dc, c]:
                         ws.append((slots[x, c], share))
             else:
                 ws = [(slots[x, g], 1.0)]
             table[d] = ws
         out.append(table)
+
+
+cdef object _decide_keys(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const int64_t[::1] owned,
+                const int64_t[:, ::1] greedy, double[:, ::1] eps, const uint8_t[:, :, ::1] alt,
+                const uint8_t[:, ::1] forced, const slot_t[:, ::1] hyst_st,
+                const uint8_t[::1] stable, const double[:, ::1] td, const count_t[:, :, ::1] N,
+                bint visits, double keepf, double ceil, double td_ref, double emin,
+                double espan, double eps_max, double visits_half,
+                const uint8_t[::1] kdirty, const uint8_t[::1] kcols, uint8_t[::1] dirty,
+                const int64_t[::1] deg, int64_t[::1] cols, uint8_t[::1] full):
+    """Engine._decide_keys (the key lane of decide), the same comparisons and arithmetic:
+    marks in ``dirty`` the destination columns the full pass must take, writes the
+    exploration shares of the written keys of the others, and returns the nodes whose
+    weights changed (a frozenset).  kdirty is the flat (n * nd) key mask; cols and full
+    are scratch of nd entries.  The arithmetic of a share is the full pass's (decide)."""
+    cdef Py_ssize_t n = q.shape[0], nd = q.shape[1], K = q.shape[2]
+    cdef Py_ssize_t x, i, c, nc = 0
+    cdef int64_t dc, best, inc, ch, ref, tot
+    cdef double bv, v, incv, e
+    cdef const double* qr
+    cdef bint keep, anyalt
+    cdef set out = set()
+    for dc in range(nd):                # the columns the lane takes: touched, not due
+        full[dc] = 0
+        if kcols[dc] and not dirty[dc]:
+            cols[nc] = dc
+            nc += 1
+    if nc == 0:
+        return frozenset()
+    # pass 1: does any key of a column move its hysteresis choice (or hold an unstable
+    # fallback)?  then the column goes to the full pass
+    for x in range(n):
+        for i in range(nc):
+            dc = cols[i]
+            if full[dc] or not (kdirty[x * nd + dc] or forced[x, dc]):
+                continue
+            qr = &q[x, dc, 0]
+            best = 0
+            bv = qr[0] if live[x, 0] else INFINITY
+            for c in range(1, deg[x]):
+                v = qr[c] if live[x, c] else INFINITY
+                if v < bv:
+                    best = c
+                    bv = v
+            inc = greedy[x, dc]
+            incv = qr[inc] if (inc >= 0 and live[x, inc]) else INFINITY
+            keep = isfinite(incv) and not (bv < incv * keepf)
+            ch = inc if keep else best
+            if not isfinite(bv) or x == owned[dc]:
+                ch = -1
+            ref = hyst_st[x, dc] if forced[x, dc] else inc
+            if ch != ref or (forced[x, dc] and not stable[dc]):
+                full[dc] = 1
+    for i in range(nc):
+        dc = cols[i]
+        if full[dc]:
+            dirty[dc] = 1
+    # pass 2: the written keys of the columns that keep their graph: shares only
+    for x in range(n):
+        for i in range(nc):
+            dc = cols[i]
+            if full[dc] or not kdirty[x * nd + dc]:
+                continue
+            anyalt = False
+            for c in range(K):
+                if alt[x, dc, c]:
+                    anyalt = True
+            inc = greedy[x, dc]
+            v = q[x, dc, inc] if (inc >= 0 and live[x, inc]) else INFINITY
+            tot = 0
+            if visits:
+                for c in range(K):
+                    tot += <int64_t> N[x, dc, c]
+            e = _share(visits, v, td[x, dc], tot, anyalt, ceil, td_ref, emin, espan, eps_max,
+                       visits_half)
+            if fabs(eps[x, dc] - e) > 1e-9:
+                out.add(x)
+            eps[x, dc] = e
+    return frozenset(out)
+
+
+def decide_keys(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const int64_t[::1] owned,
+                const int64_t[:, ::1] greedy, double[:, ::1] eps, const uint8_t[:, :, ::1] alt,
+                const uint8_t[:, ::1] forced, const slot_t[:, ::1] hyst_st,
+                const uint8_t[::1] stable, const double[:, ::1] td, const count_t[:, :, ::1] N,
+                bint visits, double keepf, double ceil, double td_ref, double emin,
+                double espan, double eps_max, double visits_half,
+                const uint8_t[::1] kdirty, const uint8_t[::1] kcols, uint8_t[::1] dirty,
+                const int64_t[::1] deg, int64_t[::1] cols, uint8_t[::1] full):
+    """:func:`_decide_keys` with every array passed (the bound form: :class:`Bound`)."""
+    return _decide_keys(q, live, owned, greedy, eps, alt, forced, hyst_st, stable, td, N,
+                        visits, keepf, ceil, td_ref, emin, espan, eps_max, visits_half,
+                        kdirty, kcols, dirty, deg, cols, full)
+
+# ---- split mode (routerd.core.splitting) -------------------------------------------------
+# error codes of split_decide (the glue raises AssertionError with the reference's words)
+cdef enum:
+    SPLIT_UNCYCLE = -1       # loop repair did not converge
+    SPLIT_OLD_CYCLE = -2     # a cycle made of old edges only
+    SPLIT_REVERT = -3        # cycle reversion did not converge
+    SPLIT_PUBLISHED = -5     # the published share graph has a cycle
+    SPLIT_BLOCK = 8          # destinations gathered per block (scratch: 24 n K B bytes)
+
+
+cdef inline bint _any(const uint8_t* a, Py_ssize_t n) noexcept nogil:
+    cdef Py_ssize_t i
+    for i in range(n):
+        if a[i]:
+            return True
+    return False
+
+
+cdef Py_ssize_t _peel(const double* wc, const int64_t* slots, const int64_t* in_ptr,
+                      const int64_t* in_x, const int64_t* in_j, int64_t d, Py_ssize_t n,
+                      Py_ssize_t K, uint8_t* alive, int64_t* cnt, int64_t* order) noexcept nogil:
+    """Peel sinks off destination d's weighted graph (``wc[x * K + j] > 0``: edge x ->
+    slots[x, j]): ``order`` gets the peeled nodes, every successor before its
+    predecessors; nodes left with ``alive[x] = 1`` lie on a cycle or lead only into one
+    (routerd.core.splitting.cyclic's set).  Returns how many were peeled.  O(n K)."""
+    cdef Py_ssize_t x, j, top = 0, head = 0, i
+    cdef int64_t y, c
+    for x in range(n):
+        alive[x] = 0
+        if x == d:
+            continue
+        for j in range(K):
+            if wc[x * K + j] > 0:
+                alive[x] = 1
+                break
+    for x in range(n):
+        c = 0
+        if alive[x]:
+            for j in range(K):
+                if wc[x * K + j] > 0 and alive[slots[x * K + j]]:
+                    c += 1
+            if c == 0:
+                order[top] = x
+                top += 1
+        cnt[x] = c
+    while head < top:
+        y = order[head]
+        head += 1
+        alive[y] = 0
+        for i in range(in_ptr[y], in_ptr[y + 1]):
+            x = in_x[i]
+            if alive[x] and cnt[x] > 0 and wc[x * K + in_j[i]] > 0:
+                cnt[x] -= 1
+                if cnt[x] == 0:
+                    order[top] = x
+                    top += 1
+    return top
+
+
+cdef inline double _dmin(double a, double b) noexcept nogil:
+    return a if (a <= b or a != a) else b        # numpy.minimum's rule
+
+
+cdef inline double _dmax(double a, double b) noexcept nogil:
+    return a if (a >= b or a != a) else b        # numpy.maximum's rule
+
+
+def split_decide(double[:, :, ::1] Q, double[:, :, ::1] w, double[:, :, ::1] pub,
+                 const uint8_t[:, ::1] live, const uint8_t[:, ::1] present,
+                 const int64_t[:, ::1] slots, const int64_t[:, ::1] rev, const int64_t[::1] in_ptr,
+                 const int64_t[::1] in_x, const int64_t[::1] in_j,
+                 const double[:, ::1] L, const double[:, ::1] mg, const double[:, ::1] ex,
+                 const double[:, ::1] cv, const int64_t[:, ::1] spt_slot,
+                 double refresh, double ceil, double eta, double max_step, double drain,
+                 double threshold,
+                 int64_t[:, ::1] greedy, double[:, ::1] eps, uint8_t[:, :, ::1] alt,
+                 uint8_t[::1] changed, int64_t[::1] counts):
+    """One split-mode decision, destination by destination (routerd.core.splitting.decide's
+    per-destination part, operation for operation: the refresh, the repair and loop
+    fallback, the marginal sums in peel order, the share step, the cycle reversion, the
+    publication and the readers).  ``mg``, ``ex``, ``cv``: per-slot marginal, externality,
+    flow-weighted curvature; ``drain``: least share an uphill used next hop gives up.  counts[:] += fallbacks, uncycled, reverted, share moves,
+    forced, whole publications, publications, route changes.  Returns 0, or an error
+    code (< 0) when a repair did not converge."""
+    cdef Py_ssize_t n = Q.shape[0], K = Q.shape[2]
+    cdef Py_ssize_t d, x, j, it, top, js, ps
+    cdef int64_t y, s0, gx
+    cdef double v, q, tgt, nv, tot, p, best, dstar, hstar, raw, give, acc, mx
+    cdef bint anyp, lost, has, anykey, upd, forced, anyn, diffc, anyupd
+    cdef Py_ssize_t nfresh
+    cdef double* V = <double*>malloc(n * sizeof(double))
+    cdef double* Mv = <double*>malloc(n * sizeof(double))
+    cdef double* Ev = <double*>malloc(n * sizeof(double))
+    cdef double* Hv = <double*>malloc(n * sizeof(double))
+    cdef double* wo = <double*>malloc(n * K * sizeof(double))
+    cdef double* wc = <double*>malloc(n * K * sizeof(double))
+    cdef double* nw = <double*>malloc(n * K * sizeof(double))
+    cdef double* pc = <double*>malloc(n * K * sizeof(double))
+    cdef double* po = <double*>malloc(n * K * sizeof(double))
+    cdef double* dl = <double*>malloc(K * sizeof(double))
+    cdef double* hj = <double*>malloc(K * sizeof(double))
+    cdef double* gv = <double*>malloc(K * sizeof(double))
+    cdef uint8_t* cand = <uint8_t*>malloc(K * sizeof(uint8_t))
+    cdef uint8_t* upj = <uint8_t*>malloc(K * sizeof(uint8_t))
+    cdef uint8_t* fresh = <uint8_t*>malloc(n * K * sizeof(uint8_t))
+    cdef uint8_t* alive = <uint8_t*>malloc(n * sizeof(uint8_t))
+    cdef uint8_t* cyc = <uint8_t*>malloc(n * sizeof(uint8_t))
+    cdef int64_t* cnt = <int64_t*>malloc(n * sizeof(int64_t))
+    cdef int64_t* order = <int64_t*>malloc(n * sizeof(int64_t))
+    cdef int64_t* jsall = <int64_t*>malloc(n * sizeof(int64_t))
+    cdef int64_t r
+    cdef const int64_t* sl = &slots[0, 0]
+    # a block of destinations' columns of Q, w and pub, gathered into contiguous scratch:
+    # Q[x, d0:d0 + B, :] is one run of memory, Q[x, d, :] alone a stride of n K apart
+    cdef Py_ssize_t B = SPLIT_BLOCK if n >= SPLIT_BLOCK else n, nb, b, d0, nK = n * K
+    cdef double* qb = <double*>malloc(B * nK * sizeof(double))
+    cdef double* wb = <double*>malloc(B * nK * sizeof(double))
+    cdef double* pbk = <double*>malloc(B * nK * sizeof(double))
+    cdef double* qd
+    cdef double* wd
+    cdef double* pd
+    cdef int64_t err = 0
+    cdef int64_t fallbacks = 0, uncycled = 0, reverted = 0, moves = 0, nforced = 0
+    cdef int64_t whole = 0, pubs = 0, rchanges = 0
+    if not (V and Mv and Ev and Hv and wo and wc and nw and pc and po and dl and hj and gv
+            and cand and upj and fresh and alive and cyc and cnt and order and qb and wb and pbk
+            and jsall):
+        free(V); free(Mv); free(Ev); free(Hv); free(wo); free(wc); free(nw); free(pc)
+        free(po); free(dl); free(hj); free(gv); free(cand); free(upj); free(fresh); free(alive)
+        free(cyc); free(cnt); free(order); free(qb); free(wb); free(pbk); free(jsall)
+        raise MemoryError("split_decide: scratch")
+    with nogil:
+      d0 = 0
+      while d0 < n and not err:
+        nb = B if d0 + B <= n else n - d0
+        for x in range(n):
+            for b in range(nb):
+                for j in range(K):
+                    qb[b * nK + x * K + j] = Q[x, d0 + b, j]
+                    wb[b * nK + x * K + j] = w[x, d0 + b, j]
+                    pbk[b * nK + x * K + j] = pub[x, d0 + b, j]
+        for b in range(nb):
+            d = d0 + b
+            qd = &qb[b * nK]
+            wd = &wb[b * nK]
+            pd = &pbk[b * nK]
+            # 0. V[y] = published estimate (old Q), 1. refresh every live slot's entry
+            for y in range(n):
+                v = 0.0
+                anyp = False
+                for j in range(K):
+                    p = pd[y * K + j]
+                    if p > 0:
+                        v = v + p * qd[y * K + j]
+                        anyp = True
+                    else:
+                        v = v + 0.0
+                    pc[y * K + j] = p
+                V[y] = _dmin(v, ceil) if anyp else ceil
+            V[d] = 0.0
+            for x in range(n):
+                for j in range(K):
+                    if live[x, j]:
+                        q = qd[x * K + j]
+                        tgt = L[x, j] + V[sl[x * K + j]]
+                        nv = q + refresh * (tgt - q)
+                        qd[x * K + j] = _dmin(_dmax(nv, 0.0), ceil)
+            # 2. repair: no share on a dead link, reachable keys routed
+            for x in range(n):
+                lost = False
+                tot = 0.0
+                for j in range(K):
+                    p = wd[x * K + j]
+                    wo[x * K + j] = p
+                    if p > 0 and not live[x, j]:
+                        lost = True
+                    wc[x * K + j] = p if live[x, j] else 0.0
+                    tot = tot + wc[x * K + j]
+                if lost and tot > 0:
+                    for j in range(K):
+                        wc[x * K + j] = wc[x * K + j] / tot
+                s0 = spt_slot[x, d]
+                if s0 < 0:
+                    for j in range(K):
+                        wc[x * K + j] = 0.0
+                elif not (tot > 0):
+                    for j in range(K):
+                        wc[x * K + j] = 1.0 if j == s0 else 0.0
+                    fallbacks += 1
+            # loop fallback: nodes on (or into) a cycle take the live shortest-path tree
+            # (the last peel, of an acyclic graph, is the order of the marginal sums)
+            it = 0
+            while True:
+                top = _peel(wc, sl, &in_ptr[0], &in_x[0], &in_j[0], d, n, K, alive, cnt, order)
+                if not _any(alive, n):
+                    break
+                it += 1
+                if it > n + 2:
+                    err = SPLIT_UNCYCLE
+                    break
+                for x in range(n):
+                    if alive[x]:
+                        s0 = spt_slot[x, d]
+                        for j in range(K):
+                            wc[x * K + j] = 1.0 if j == s0 else 0.0
+                        uncycled += 1
+                        fallbacks += 1
+            if err:
+                break
+            # 3. marginal sums in peel order (successors first)
+            for x in range(n):
+                Mv[x] = INFINITY if x != d else 0.0
+                Ev[x] = 0.0
+                Hv[x] = 0.0
+            for it in range(top):
+                x = order[it]
+                v = 0.0
+                tot = 0.0
+                acc = 0.0
+                for j in range(K):
+                    p = wc[x * K + j]
+                    if p > 0:
+                        y = sl[x * K + j]
+                        v = v + p * (mg[x, j] + Mv[y])
+                        tot = tot + p * (ex[x, j] + Ev[y])
+                        acc = acc + p * (cv[x, j] + Hv[y])
+                    else:
+                        v = v + 0.0
+                        tot = tot + 0.0
+                        acc = acc + 0.0
+                Mv[x] = v
+                Ev[x] = tot
+                Hv[x] = acc
+            # the share step, key by key: pass 0 finds every key's cheapest slot (an
+            # uphill share is drained when its neighbour's cheapest is the edge back),
+            # pass 1 steps
+            for ps in range(2):
+              for x in range(n):
+                has = False
+                for j in range(K):
+                    y = sl[x * K + j]
+                    cand[j] = 0
+                    upj[j] = 0
+                    if x != d and live[x, j] and present[x, j] and y >= 0:
+                        if Mv[y] < Mv[x]:
+                            cand[j] = 1
+                        elif wc[x * K + j] > 0:
+                            cand[j] = 1
+                            upj[j] = 1          # used, not downhill: drained (drain)
+                    if cand[j]:
+                        has = True
+                        dl[j] = (qd[x * K + j] + ex[x, j]) + Ev[y]
+                        hj[j] = cv[x, j] + Hv[y]
+                    else:
+                        dl[j] = INFINITY
+                        hj[j] = 0.0
+                if not has:
+                    if ps == 0:
+                        jsall[x] = -1
+                    else:
+                        for j in range(K):
+                            nw[x * K + j] = wc[x * K + j]
+                    continue
+                js = 0
+                best = dl[0]
+                for j in range(1, K):
+                    if dl[j] < best:
+                        best = dl[j]
+                        js = j
+                if ps == 0:
+                    jsall[x] = js
+                    continue
+                dstar = best
+                hstar = hj[js]
+                acc = 0.0
+                for j in range(K):
+                    p = wc[x * K + j]
+                    if j == js:
+                        give = 0.0
+                    elif cand[j]:
+                        raw = eta * (dl[j] - dstar) / (1.0 * (hj[j] + hstar))
+                        if raw != raw:
+                            raw = INFINITY
+                        raw = _dmax(raw, 0.0)
+                        give = _dmin(_dmin(p, max_step), raw)
+                        if upj[j]:
+                            y = sl[x * K + j]
+                            r = rev[x, j]
+                            if r >= 0 and jsall[y] == r and wc[y * K + r] == 0:
+                                give = _dmax(give, _dmin(p, drain))
+                    else:
+                        give = p
+                    nw[x * K + j] = p - give
+                    acc = acc + give
+                nw[x * K + js] = nw[x * K + js] + acc
+            # revert new edges that close a cycle (none added: a subgraph of wc, acyclic)
+            nfresh = 0
+            for x in range(n * K):
+                fresh[x] = nw[x] > 0 and not (wc[x] > 0)
+                nfresh += fresh[x]
+            it = 0
+            while nfresh:
+                top = _peel(nw, sl, &in_ptr[0], &in_x[0], &in_j[0], d, n, K, alive, cnt, order)
+                if not _any(alive, n):
+                    break
+                it += 1
+                if it > n * n + 1:
+                    err = SPLIT_REVERT
+                    break
+                anykey = False
+                for x in range(n):
+                    cyc[x] = 0
+                    if alive[x]:
+                        for j in range(K):
+                            if fresh[x * K + j]:
+                                cyc[x] = 1
+                                anykey = True
+                                break
+                if not anykey:
+                    err = SPLIT_OLD_CYCLE
+                    break
+                for x in range(n):
+                    if not cyc[x]:
+                        continue
+                    tot = 0.0
+                    for j in range(K):
+                        if fresh[x * K + j]:
+                            gv[j] = 0.0
+                        else:
+                            gv[j] = nw[x * K + j]
+                        tot = tot + gv[j]
+                    if tot > 0:
+                        mx = 1.0 / tot
+                        for j in range(K):
+                            nw[x * K + j] = gv[j] * mx
+                    else:
+                        for j in range(K):
+                            nw[x * K + j] = wc[x * K + j] * 1.0
+                    for j in range(K):
+                        fresh[x * K + j] = 0
+                    reverted += 1
+            if err:
+                break
+            # 4. moved / publish (threshold, forced), keep the published graph acyclic
+            # (nothing replaced: the published graph is the last one, acyclic)
+            anyupd = False
+            for x in range(n):
+                diffc = False
+                upd = False
+                anyp = False
+                anyn = False
+                forced = False
+                mx = 0.0
+                for j in range(K):
+                    if nw[x * K + j] != wo[x * K + j]:
+                        diffc = True
+                    wd[x * K + j] = nw[x * K + j]
+                    p = pc[x * K + j]
+                    mx = _dmax(mx, fabs(nw[x * K + j] - p))
+                    if p > 0:
+                        anyp = True
+                        if not live[x, j]:
+                            forced = True
+                    if nw[x * K + j] > 0:
+                        anyn = True
+                    po[x * K + j] = p
+                if diffc:
+                    moves += 1
+                upd = mx > threshold
+                if anyp != anyn:
+                    forced = True
+                if forced and not upd:
+                    nforced += 1
+                if upd or forced:
+                    anyupd = True
+                    for j in range(K):
+                        pc[x * K + j] = nw[x * K + j]
+            if anyupd:
+                _peel(pc, sl, &in_ptr[0], &in_x[0], &in_j[0], d, n, K, alive, cnt, order)
+            if anyupd and _any(alive, n):
+                for x in range(n * K):
+                    pc[x] = nw[x]
+                whole += 1
+                _peel(pc, sl, &in_ptr[0], &in_x[0], &in_j[0], d, n, K, alive, cnt, order)
+                if _any(alive, n):
+                    err = SPLIT_PUBLISHED
+                    break
+            # readers: greedy = the largest published share, eps = the rest
+            for x in range(n):
+                diffc = False
+                anyp = False
+                gx = 0
+                best = pc[x * K]
+                for j in range(K):
+                    p = pc[x * K + j]
+                    if p != po[x * K + j]:
+                        diffc = True
+                    pd[x * K + j] = p
+                    if p > 0:
+                        anyp = True
+                    if p > best:
+                        best = p
+                        gx = j
+                if diffc:
+                    pubs += 1
+                    changed[x] = 1
+                if not anyp:
+                    gx = -1
+                if gx != greedy[x, d]:
+                    rchanges += 1
+                greedy[x, d] = gx
+                eps[x, d] = 1.0 - best if anyp else 0.0
+                for j in range(K):
+                    alt[x, d, j] = pc[x * K + j] > 0 and j != gx
+        for x in range(n):
+            for b in range(nb):
+                for j in range(K):
+                    Q[x, d0 + b, j] = qb[b * nK + x * K + j]
+                    w[x, d0 + b, j] = wb[b * nK + x * K + j]
+                    pub[x, d0 + b, j] = pbk[b * nK + x * K + j]
+        d0 += nb
+    free(V); free(Mv); free(Ev); free(Hv); free(wo); free(wc); free(nw); free(pc)
+    free(po); free(dl); free(hj); free(gv); free(cand); free(upj); free(fresh); free(alive)
+    free(cyc); free(cnt); free(order); free(qb); free(wb); free(pbk); free(jsall)
+    counts[0] += fallbacks
+    counts[1] += uncycled
+    counts[2] += reverted
+    counts[3] += moves
+    counts[4] += nforced
+    counts[5] += whole
+    counts[6] += pubs
+    counts[7] += rchanges
+    return err
+
+
+# ==== ingest: the service's columnar ingest ===================================================
+# (routerd.io.wire's columnar decode, routerd.core.guards' screen, routerd.service.optimum's
+# meter).  Each is the one-pass transcription of its numpy reference, which stays the
+# reference (tests/test_ingest_kernels.py: compiled == reference on random and malformed
+# input).  This block is separate from the engine's kernels above on purpose.
+from libc.math cimport NAN
+from libc.stdint cimport uint64_t
+from libc.string cimport memcpy
+
+
+def cols_decode(const uint8_t[::1] fb, const uint8_t[::1] vb, const uint8_t[::1] db,
+                const uint8_t[::1] lb, const uint8_t[::1] eb, int64_t n,
+                int64_t[::1] xs, int64_t[::1] ys, int64_t[::1] ds, double[::1] lat,
+                double[::1] est):
+    """A columnar frame's columns (``from``/``via``/``dst`` int32, ``latency_s``/``estimate_s``
+    float64, little-endian bytes of m rows each; ``eb`` None: no estimates, NaN) widened
+    into ``xs``/``ys``/``ds`` (int64) and ``lat``/``est`` (float64) of m rows, read with
+    memcpy (the bytes need no alignment).  The caller checked the lengths and that the host
+    is little-endian.  Returns how many rows name a node index outside [0, n) (the rows are
+    written all the same)."""
+    cdef Py_ssize_t m = xs.shape[0], i
+    cdef int32_t a, b, c
+    cdef int64_t bad = 0
+    cdef bint has_e = eb is not None
+    with nogil:
+        for i in range(m):
+            memcpy(&a, &fb[4 * i], 4)
+            memcpy(&b, &vb[4 * i], 4)
+            memcpy(&c, &db[4 * i], 4)
+            xs[i] = a
+            ys[i] = b
+            ds[i] = c
+            if a < 0 or a >= n or b < 0 or b >= n or c < 0 or c >= n:
+                bad += 1
+        if m:
+            memcpy(&lat[0], &lb[0], 8 * m)
+            if has_e:
+                memcpy(&est[0], &eb[0], 8 * m)
+            else:
+                for i in range(m):
+                    est[i] = NAN
+    return bad
+
+
+def guards_clean(const int64_t[::1] xs, const int64_t[::1] ys, const int64_t[::1] ds,
+                 const double[::1] lat, const double[::1] est, int64_t n,
+                 const int64_t[::1] lk_flat, const double[::1] floor_link,
+                 const double[::1] floor_dist, double ceiling):
+    """:meth:`routerd.core.guards.Guards._clean` in one pass: True when every index is in
+    [0, n) and no row reaches a floor or the ceiling (NaN compares false everywhere, as in
+    numpy); ``floor_link``'s last entry is the one for a via that is no neighbour."""
+    cdef Py_ssize_t m = xs.shape[0], i
+    cdef int64_t x, y, d, lk
+    cdef Py_ssize_t last = floor_link.shape[0] - 1
+    cdef double l, e, fl
+    cdef bint ok = True
+    with nogil:
+        for i in range(m):
+            x = xs[i]
+            y = ys[i]
+            d = ds[i]
+            if <uint64_t>x >= <uint64_t>n or <uint64_t>y >= <uint64_t>n or <uint64_t>d >= <uint64_t>n:
+                ok = False
+                break
+            lk = lk_flat[x * n + y]
+            fl = floor_link[lk] if lk >= 0 else floor_link[last]
+            l = lat[i]
+            e = est[i]
+            if l < fl or l > ceiling or e > ceiling:
+                ok = False
+                break
+            if lk >= 0 and e < floor_dist[y * n + d]:
+                ok = False
+                break
+    return ok
+
+
+def meter_add(double[::1] out, double[::1] into, double[::1] lk, double[::1] latsum,
+              const int64_t[::1] link_of, const int64_t[::1] src, const int64_t[::1] via,
+              const int64_t[::1] dst, const double[::1] latency, int64_t n):
+    """:meth:`routerd.service.optimum.Meter.add`'s four ``np.add.at`` in one pass, in row
+    order (the same additions in the same order): per row one out of (src, dst), one into
+    (via, dst), one on the link and its latency on the link's sum; a link index of -1
+    counts on the last link, as numpy's negative index does.  Indices are in range (the
+    rows were accepted by the engine)."""
+    cdef Py_ssize_t m = src.shape[0], i
+    cdef Py_ssize_t nl = lk.shape[0]
+    cdef int64_t k
+    with nogil:
+        for i in range(m):
+            out[src[i] * n + dst[i]] += 1.0
+            into[via[i] * n + dst[i]] += 1.0
+            k = link_of[src[i] * n + via[i]]
+            if k < 0:
+                k += nl
+            lk[k] += 1.0
+            latsum[k] += latency[i]
+
+
+def histo_add(int64_t[::1] counts, const double[::1] bounds, const double[::1] values,
+              const int64_t[::1] lut):
+    """:meth:`routerd.service.metrics.Histo`'s binning in one pass: each value counted in the
+    first bucket whose bound it does not exceed (``np.searchsorted(..., side="left")``: a
+    value equal to a bound is in that bound's bucket; NaN goes past every bound, into the
+    last, as numpy sorts it); returns the values' sum, added in order.  ``lut`` (2048
+    entries, one per binary exponent) holds how many bounds lie below the smallest
+    non-negative double of that exponent (0 for exponent 0): a value >= 0 starts there and
+    steps over the few bounds left in its binade; a negative one counts every bound."""
+    cdef Py_ssize_t m = values.shape[0], nb = bounds.shape[0], i, j, lo
+    cdef double v, s = 0.0
+    cdef uint64_t bits
+    with nogil:
+        for i in range(m):
+            v = values[i]
+            s += v
+            if v != v:
+                lo = nb
+            elif v >= 0:
+                memcpy(&bits, &v, 8)
+                lo = lut[(bits >> 52) & 0x7FF]
+                while lo < nb and bounds[lo] < v:
+                    lo += 1
+            else:
+                lo = 0
+                for j in range(nb):
+                    lo += bounds[j] < v
+            counts[lo] += 1
+    return s
+
+
+cdef extern from *:
+    """
+    static inline unsigned long long rd_bswap64(unsigned long long x) {
+    #if defined(__GNUC__) || defined(__clang__)
+        return __builtin_bswap64(x);
+    #else
+        x = ((x & 0x00000000FFFFFFFFull) << 32) | ((x & 0xFFFFFFFF00000000ull) >> 32);
+        x = ((x & 0x0000FFFF0000FFFFull) << 16) | ((x & 0xFFFF0000FFFF0000ull) >> 16);
+        return ((x & 0x00FF00FF00FF00FFull) << 8) | ((x & 0xFF00FF00FF00FF00ull) >> 8);
+    #endif
+    }
+    """
+    unsigned long long rd_bswap64(unsigned long long x) noexcept nogil
+
+
+def table_gather(const uint8_t[::1] static, const int64_t[::1] key_off,
+                 const int64_t[::1] key_len, const int64_t[::1] head_off,
+                 const int64_t[::1] hop_off, const int64_t[::1] hop_len,
+                 const int64_t[::1] dsts, const int64_t[::1] counts, const int64_t[::1] hops,
+                 const double[::1] weights, int64_t[::1] entry_at):
+    """:meth:`routerd.io.wire.TableCodec._gather` by copying: per entry its packed key, its
+    list head, then per hop the ``[name, `` piece and the weight's big-endian float64
+    bytes, in a row.  ``entry_at`` (m + 1) gets each entry's byte offset and the total.
+    Returns the bytes (a bytearray).  The caller checked that every count is below 16 and
+    that the host is little-endian."""
+    cdef Py_ssize_t m = dsts.shape[0], i, j, h = 0
+    cdef int64_t total = 0, at
+    cdef unsigned long long bits
+    if m == 0:
+        entry_at[0] = 0
+        return bytearray()
+    for i in range(m):
+        total += key_len[dsts[i]] + 1
+        for j in range(counts[i]):
+            total += hop_len[hops[h]] + 8
+            h += 1
+    out = bytearray(total)
+    cdef uint8_t[::1] o = out
+    h = 0
+    at = 0
+    with nogil:
+        for i in range(m):
+            entry_at[i] = at
+            memcpy(&o[at], &static[key_off[dsts[i]]], key_len[dsts[i]])
+            at += key_len[dsts[i]]
+            o[at] = static[head_off[counts[i]]]
+            at += 1
+            for j in range(counts[i]):
+                memcpy(&o[at], &static[hop_off[hops[h]]], hop_len[hops[h]])
+                at += hop_len[hops[h]]
+                memcpy(&bits, &weights[h], 8)
+                bits = rd_bswap64(bits)
+                memcpy(&o[at], &bits, 8)
+                at += 8
+                h += 1
+        entry_at[m] = at
+    return out
+
+
+def meter_add_cols(double[::1] out, double[::1] into, double[::1] lk, double[::1] latsum,
+                   const int64_t[::1] link_of, const uint8_t[::1] fb, const uint8_t[::1] vb,
+                   const uint8_t[::1] db, const uint8_t[::1] lb, int64_t n):
+    """:func:`meter_add` on a ``batch`` record's column bytes as they are (int32 / float64
+    little-endian, read with memcpy: no alignment needed, no widened copies); the caller
+    checked the lengths and that the host is little-endian."""
+    cdef Py_ssize_t m = fb.shape[0] // 4, i
+    cdef Py_ssize_t nl = lk.shape[0]
+    cdef int32_t x, y, d
+    cdef int64_t k
+    cdef double l
+    with nogil:
+        for i in range(m):
+            memcpy(&x, &fb[4 * i], 4)
+            memcpy(&y, &vb[4 * i], 4)
+            memcpy(&d, &db[4 * i], 4)
+            memcpy(&l, &lb[8 * i], 8)
+            out[<int64_t>x * n + d] += 1.0
+            into[<int64_t>y * n + d] += 1.0
+            k = link_of[<int64_t>x * n + y]
+            if k < 0:
+                k += nl
+            lk[k] += 1.0
+            latsum[k] += l
+
+
+# ---- an engine's arrays, bound once (routerd.core.kernels.bound) -------------------------
+
+cdef class Bound:
+    """One engine's arrays as typed views, acquired once: :meth:`observe` and
+    :meth:`decide_keys` then take only the per-call inputs (converting twenty-odd arrays
+    on every call was most of a small batch's cost).  Every call first checks that the
+    engine still holds the very arrays (and settings, and step table) bound here, by
+    identity; when the engine has replaced one (a reload, a restore, a resize) the call
+    returns ``None`` without touching anything and the glue binds afresh.  The kernels are
+    the module's own (:func:`observe`, :func:`decide_keys`): the same results to the bit.
+    Construction raises ValueError when an array is not of a kind the kernels take (the
+    glue then keeps to the unbound functions' rules)."""
+    cdef object o_Q, o_N, o_td, o_live, o_slot, o_col, o_kdirty, o_kcols, o_alphas, o_settings
+    cdef object o_owned, o_greedy, o_eps, o_alt, o_forced, o_hyst, o_stable, o_dirty, o_deg
+    cdef object beyond, empty, code_o, o_slots
+    cdef int64_t[:, ::1] slots, s_choice, s_hy, s_pot, s_nhT, s_prevT, s_potT
+    cdef double[:, ::1] s_vx
+    cdef uint8_t[::1] s_changed
+    cdef double[:, :, ::1] Q
+    cdef uint8_t[:, :, ::1] N8
+    cdef uint16_t[:, :, ::1] N16
+    cdef uint32_t[:, :, ::1] N32
+    cdef int nkind, skind
+    cdef double[:, ::1] td
+    cdef uint8_t[:, ::1] live
+    cdef int16_t[:, ::1] so16
+    cdef int16_t[:, ::1] hy16
+    cdef int32_t[:, ::1] so32
+    cdef int32_t[:, ::1] hy32
+    cdef int64_t[::1] col, owned, deg, cols, code
+    cdef uint8_t[::1] kdirty, kcols, stable, dirty, full
+    cdef int64_t[:, ::1] greedy
+    cdef double[:, ::1] eps
+    cdef uint8_t[:, :, ::1] alt
+    cdef uint8_t[:, ::1] forced
+    cdef double[::1] steps
+    cdef bint clamped, visits
+    cdef int64_t cap
+    cdef double ceil, sm, keepf, td_ref, emin, espan, eps_max, visits_half
+
+    def __init__(self, eng, slot_of, empty, Py_ssize_t block):
+        """``slot_of``: the engine's ``_slot_of``, C-ordered; ``empty``: ``numpy.empty``
+        (the scratch and the TD errors returned are numpy arrays); ``block``: the full
+        pass's destinations per block (the width of its scratch)."""
+        s = eng.settings
+        eng._steps()                    # builds the step table (eng._alphas) when needed
+        self.o_Q = eng.Q; self.o_N = eng.N; self.o_td = eng.td; self.o_live = eng.live
+        self.o_slot = eng._slot_of; self.o_col = eng._col; self.o_kdirty = eng._kdirty
+        self.o_kcols = eng._kcols; self.o_alphas = eng._alphas; self.o_settings = s
+        self.o_owned = eng.owned; self.o_greedy = eng.greedy; self.o_eps = eng.eps
+        self.o_alt = eng.alt; self.o_forced = eng._forced; self.o_hyst = eng._hyst
+        self.o_stable = eng._stable; self.o_dirty = eng._dirty; self.o_deg = eng._slot_deg
+        self.Q = eng.Q
+        N = eng.N
+        if N.dtype.itemsize == 1:
+            self.N8 = N; self.nkind = 1
+        elif N.dtype.itemsize == 2:
+            self.N16 = N; self.nkind = 2
+        else:
+            self.N32 = N; self.nkind = 3
+        h = eng._hyst
+        if h.dtype != slot_of.dtype:
+            raise ValueError("the hysteresis choices and the slot map differ in type")
+        if slot_of.dtype.itemsize == 2:
+            self.so16 = slot_of; self.hy16 = h; self.skind = 1
+        else:
+            self.so32 = slot_of; self.hy32 = h; self.skind = 2
+        self.td = eng.td
+        self.live = eng.live.view("u1")
+        self.col = eng._col
+        self.kdirty = eng._kdirty.view("u1")
+        self.kcols = eng._kcols.view("u1")
+        self.owned = eng.owned
+        self.greedy = eng.greedy
+        self.eps = eng.eps
+        self.alt = eng.alt.view("u1")
+        self.forced = eng._forced.view("u1")
+        self.stable = eng._stable.view("u1")
+        self.dirty = eng._dirty.view("u1")
+        self.deg = eng._slot_deg
+        self.steps = eng._alphas
+        self.clamped = eng._alpha_clamped
+        self.beyond = eng._step_beyond
+        self.cap = eng._count_cap
+        self.ceil = s.ceiling_s
+        self.sm = s.td_smoothing
+        self.visits = s.explore_basis != "td"
+        self.keepf = 1.0 - s.margin
+        self.td_ref = s.td_ref
+        self.emin = s.explore_min
+        self.espan = s.explore_max - s.explore_min
+        self.eps_max = s.eps_max
+        self.visits_half = s.visits_half
+        self.empty = empty
+        nd = eng.nd
+        self.cols = empty(nd, dtype="i8")
+        self.full = empty(nd, dtype="u1")
+        self.code_o = empty(64, dtype="i8")
+        self.code = self.code_o
+        self.o_slots = eng._slots
+        self.slots = eng._slots
+        n = eng.n
+        # the full pass's scratch for a block of destinations (every entry it reads it
+        # writes first; `changed` is cleared at each call)
+        self.s_choice = empty((n, block), dtype="i8")
+        self.s_hy = empty((n, block), dtype="i8")
+        self.s_vx = empty((n, block), dtype="f8")
+        self.s_pot = empty((n + 1, block), dtype="i8")
+        self.s_nhT = empty((block, n), dtype="i8")
+        self.s_prevT = empty((block, n), dtype="i8")
+        self.s_potT = empty((block, n), dtype="i8")
+        self.s_changed = empty(n, dtype="u1")
+
+    cdef bint _fresh(self, e) except -1:
+        return (e.Q is self.o_Q and e.N is self.o_N and e.td is self.o_td
+                and e.live is self.o_live and e._slot_of is self.o_slot and e._col is self.o_col
+                and e._kdirty is self.o_kdirty and e._kcols is self.o_kcols
+                and e._alphas is self.o_alphas and e.settings is self.o_settings
+                and e.owned is self.o_owned and e.greedy is self.o_greedy and e.eps is self.o_eps
+                and e.alt is self.o_alt and e._forced is self.o_forced and e._hyst is self.o_hyst
+                and e._stable is self.o_stable and e._dirty is self.o_dirty
+                and e._slot_deg is self.o_deg and e._slots is self.o_slots)
+
+    def fresh(self, eng):
+        """Whether ``eng`` still holds the arrays bound here."""
+        return self._fresh(eng)
+
+    def codes(self):
+        """The last :meth:`observe`'s reason codes (scratch: its first rows' worth)."""
+        return self.code_o
+
+    def observe(self, eng, src, via, dst, latency, estimate):
+        """:func:`observe` on the bound arrays: ``(accepted, tde)`` (``tde`` a fresh array
+        of one entry per row, the first ``accepted`` of them set; the codes in
+        :meth:`codes`); None when the engine no longer holds the bound arrays; False when
+        the columns are not C-ordered int64 (src, via, dst) and float64 of one length (the
+        caller converts them).  Nothing is written unless a tuple is returned."""
+        cdef const int64_t[::1] xs
+        cdef const int64_t[::1] ys
+        cdef const int64_t[::1] ds
+        cdef const double[::1] lats
+        cdef const double[::1] ests
+        cdef Py_ssize_t m, acc
+        if not self._fresh(eng):
+            return None
+        try:
+            xs = src; ys = via; ds = dst; lats = latency; ests = estimate
+        except (ValueError, TypeError, BufferError):
+            return False
+        m = xs.shape[0]
+        if ys.shape[0] != m or ds.shape[0] != m or lats.shape[0] != m or ests.shape[0] != m:
+            return False
+        if self.code.shape[0] < m:
+            self.code_o = self.empty(max(m, 2 * self.code.shape[0]), dtype="i8")
+            self.code = self.code_o
+        tde_o = self.empty(m)
+        cdef double[::1] tde = tde_o
+        if self.nkind == 1:
+            if self.skind == 1:
+                acc = _observe(self.Q, self.N8, self.cap, self.td, self.live, self.so16,
+                               self.steps, self.clamped, self.beyond, self.ceil, self.sm,
+                               xs, ys, ds, lats, ests, self.code, tde, self.kdirty, self.kcols,
+                               self.col)
+            else:
+                acc = _observe(self.Q, self.N8, self.cap, self.td, self.live, self.so32,
+                               self.steps, self.clamped, self.beyond, self.ceil, self.sm,
+                               xs, ys, ds, lats, ests, self.code, tde, self.kdirty, self.kcols,
+                               self.col)
+        elif self.nkind == 2:
+            if self.skind == 1:
+                acc = _observe(self.Q, self.N16, self.cap, self.td, self.live, self.so16,
+                               self.steps, self.clamped, self.beyond, self.ceil, self.sm,
+                               xs, ys, ds, lats, ests, self.code, tde, self.kdirty, self.kcols,
+                               self.col)
+            else:
+                acc = _observe(self.Q, self.N16, self.cap, self.td, self.live, self.so32,
+                               self.steps, self.clamped, self.beyond, self.ceil, self.sm,
+                               xs, ys, ds, lats, ests, self.code, tde, self.kdirty, self.kcols,
+                               self.col)
+        else:
+            if self.skind == 1:
+                acc = _observe(self.Q, self.N32, self.cap, self.td, self.live, self.so16,
+                               self.steps, self.clamped, self.beyond, self.ceil, self.sm,
+                               xs, ys, ds, lats, ests, self.code, tde, self.kdirty, self.kcols,
+                               self.col)
+            else:
+                acc = _observe(self.Q, self.N32, self.cap, self.td, self.live, self.so32,
+                               self.steps, self.clamped, self.beyond, self.ceil, self.sm,
+                               xs, ys, ds, lats, ests, self.code, tde, self.kdirty, self.kcols,
+                               self.col)
+        return acc, tde_o
+
+    def decide_keys(self, eng):
+        """:func:`decide_keys` on the bound arrays (the same frozenset), or None when the
+        engine no longer holds the bound arrays."""
+        if not self._fresh(eng):
+            return None
+        return self._keys()
+
+    cdef object _keys(self):
+        if self.nkind == 1:
+            if self.skind == 1:
+                return _decide_keys(self.Q, self.live, self.owned, self.greedy, self.eps,
+                                    self.alt, self.forced, self.hy16, self.stable, self.td,
+                                    self.N8, self.visits, self.keepf, self.ceil, self.td_ref,
+                                    self.emin, self.espan, self.eps_max, self.visits_half,
+                                    self.kdirty, self.kcols, self.dirty, self.deg, self.cols,
+                                    self.full)
+            return _decide_keys(self.Q, self.live, self.owned, self.greedy, self.eps,
+                                self.alt, self.forced, self.hy32, self.stable, self.td,
+                                self.N8, self.visits, self.keepf, self.ceil, self.td_ref,
+                                self.emin, self.espan, self.eps_max, self.visits_half,
+                                self.kdirty, self.kcols, self.dirty, self.deg, self.cols,
+                                self.full)
+        elif self.nkind == 2:
+            if self.skind == 1:
+                return _decide_keys(self.Q, self.live, self.owned, self.greedy, self.eps,
+                                    self.alt, self.forced, self.hy16, self.stable, self.td,
+                                    self.N16, self.visits, self.keepf, self.ceil, self.td_ref,
+                                    self.emin, self.espan, self.eps_max, self.visits_half,
+                                    self.kdirty, self.kcols, self.dirty, self.deg, self.cols,
+                                    self.full)
+            return _decide_keys(self.Q, self.live, self.owned, self.greedy, self.eps,
+                                self.alt, self.forced, self.hy32, self.stable, self.td,
+                                self.N16, self.visits, self.keepf, self.ceil, self.td_ref,
+                                self.emin, self.espan, self.eps_max, self.visits_half,
+                                self.kdirty, self.kcols, self.dirty, self.deg, self.cols,
+                                self.full)
+        if self.skind == 1:
+            return _decide_keys(self.Q, self.live, self.owned, self.greedy, self.eps,
+                                self.alt, self.forced, self.hy16, self.stable, self.td,
+                                self.N32, self.visits, self.keepf, self.ceil, self.td_ref,
+                                self.emin, self.espan, self.eps_max, self.visits_half,
+                                self.kdirty, self.kcols, self.dirty, self.deg, self.cols,
+                                self.full)
+        return _decide_keys(self.Q, self.live, self.owned, self.greedy, self.eps,
+                            self.alt, self.forced, self.hy32, self.stable, self.td,
+                            self.N32, self.visits, self.keepf, self.ceil, self.td_ref,
+                            self.emin, self.espan, self.eps_max, self.visits_half,
+                            self.kdirty, self.kcols, self.dirty, self.deg, self.cols,
+                            self.full)
+
+    def decide_full(self, eng, cs_o, spt_o):
+        """:func:`decide` on the bound arrays for destination columns ``cs`` (C-ordered
+        int64) and the live shortest-path tree ``spt`` (int32): ``(changed nodes,
+        route changes, loops newly prevented)`` (prevented -1: the fallback did not
+        converge); None when the engine no longer holds the bound arrays or the values
+        decided on are not Q (a variant's); False when ``cs`` or ``spt`` is not of the
+        kind taken.  Nothing is written unless a tuple is returned."""
+        cdef const int64_t[::1] cs
+        cdef const int32_t[:, ::1] spt
+        if not self._fresh(eng) or eng._qdec is not self.o_Q:
+            return None
+        try:
+            cs = cs_o; spt = spt_o
+        except (ValueError, TypeError, BufferError):
+            return False
+        return self._full(cs, spt)
+
+    cdef object _full(self, const int64_t[::1] cs, const int32_t[:, ::1] spt):
+        cdef Py_ssize_t i, m, x, n = self.Q.shape[0]
+        m = cs.shape[0]
+        ds_o = self.empty(m, dtype="i8")
+        cdef int64_t[::1] ds = ds_o
+        for i in range(m):      # owned.take(cs): numpy's rules for the column indices
+            if not 0 <= cs[i] < self.owned.shape[0]:
+                return False
+            ds[i] = self.owned[cs[i]]
+        self.s_changed[:] = 0
+        if self.nkind == 1:
+            if self.skind == 1:
+                r = _decide(self.Q, self.live, self.slots, self.so16, spt, ds, self.greedy,
+                            self.eps, self.alt, self.forced, self.hy16, self.stable, self.td,
+                            self.N8, self.visits, self.keepf, self.ceil, self.td_ref, self.emin,
+                            self.espan, self.eps_max, self.visits_half, self.s_choice,
+                            self.s_hy, self.s_vx, self.s_pot, self.s_nhT, self.s_prevT,
+                            self.s_potT, self.deg, self.s_changed, cs)
+            else:
+                r = _decide(self.Q, self.live, self.slots, self.so32, spt, ds, self.greedy,
+                            self.eps, self.alt, self.forced, self.hy32, self.stable, self.td,
+                            self.N8, self.visits, self.keepf, self.ceil, self.td_ref, self.emin,
+                            self.espan, self.eps_max, self.visits_half, self.s_choice,
+                            self.s_hy, self.s_vx, self.s_pot, self.s_nhT, self.s_prevT,
+                            self.s_potT, self.deg, self.s_changed, cs)
+        elif self.nkind == 2:
+            if self.skind == 1:
+                r = _decide(self.Q, self.live, self.slots, self.so16, spt, ds, self.greedy,
+                            self.eps, self.alt, self.forced, self.hy16, self.stable, self.td,
+                            self.N16, self.visits, self.keepf, self.ceil, self.td_ref, self.emin,
+                            self.espan, self.eps_max, self.visits_half, self.s_choice,
+                            self.s_hy, self.s_vx, self.s_pot, self.s_nhT, self.s_prevT,
+                            self.s_potT, self.deg, self.s_changed, cs)
+            else:
+                r = _decide(self.Q, self.live, self.slots, self.so32, spt, ds, self.greedy,
+                            self.eps, self.alt, self.forced, self.hy32, self.stable, self.td,
+                            self.N16, self.visits, self.keepf, self.ceil, self.td_ref, self.emin,
+                            self.espan, self.eps_max, self.visits_half, self.s_choice,
+                            self.s_hy, self.s_vx, self.s_pot, self.s_nhT, self.s_prevT,
+                            self.s_potT, self.deg, self.s_changed, cs)
+        else:
+            if self.skind == 1:
+                r = _decide(self.Q, self.live, self.slots, self.so16, spt, ds, self.greedy,
+                            self.eps, self.alt, self.forced, self.hy16, self.stable, self.td,
+                            self.N32, self.visits, self.keepf, self.ceil, self.td_ref, self.emin,
+                            self.espan, self.eps_max, self.visits_half, self.s_choice,
+                            self.s_hy, self.s_vx, self.s_pot, self.s_nhT, self.s_prevT,
+                            self.s_potT, self.deg, self.s_changed, cs)
+            else:
+                r = _decide(self.Q, self.live, self.slots, self.so32, spt, ds, self.greedy,
+                            self.eps, self.alt, self.forced, self.hy32, self.stable, self.td,
+                            self.N32, self.visits, self.keepf, self.ceil, self.td_ref, self.emin,
+                            self.espan, self.eps_max, self.visits_half, self.s_choice,
+                            self.s_hy, self.s_vx, self.s_pot, self.s_nhT, self.s_prevT,
+                            self.s_potT, self.deg, self.s_changed, cs)
+        out = set()
+        for x in range(n):
+            if self.s_changed[x]:
+                out.add(x)
+        changes, prevented = r
+        return frozenset(out), changes, prevented
+
+    def decide_due(self, eng):
+        """:meth:`Engine.decide`'s unlimited step on the bound arrays, for the plain rule
+        (the values decided on are Q): the key lane when a key was written (its masks
+        then cleared), then the full pass over every due destination (the due mask
+        cleared).  Returns ``(changed nodes, route changes, loops newly prevented,
+        destinations in the full pass)``, or None, having written nothing, when the engine
+        no longer holds the bound arrays (prevented -1: the fallback did not converge)."""
+        cdef Py_ssize_t dc, nd = self.dirty.shape[0], nk = self.kdirty.shape[0], nc = 0
+        cdef int64_t[::1] cs
+        cdef bint keyed = False
+        if not self._fresh(eng) or eng._qdec is not self.o_Q:
+            return None
+        for dc in range(nd):
+            if self.kcols[dc]:
+                keyed = True
+                break
+        extra = frozenset()
+        if keyed:
+            extra = self._keys()
+            self.kdirty[:] = 0
+            self.kcols[:] = 0
+        for dc in range(nd):
+            if self.dirty[dc]:
+                nc += 1
+        if nc == 0:
+            return extra, 0, 0, 0
+        cs_o = self.empty(nc, dtype="i8")
+        cs = cs_o
+        nc = 0
+        for dc in range(nd):
+            if self.dirty[dc]:
+                cs[nc] = dc
+                nc += 1
+        self.dirty[:] = 0
+        out = self._full(cs, eng._spt_live())
+        nodes, changes, prevented = out
+        return nodes | extra, changes, prevented, nc

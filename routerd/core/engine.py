@@ -12,6 +12,18 @@ arrive when handed to x's j-th neighbour (``topology.slots[x, j]``); absent slot
 never read.  ``N[x, d, j]`` counts updates of each entry (for per-entry step sizes);
 ``td[x, d]`` is a moving average of |TD error| per (node, destination).
 
+Counts.  ``N`` is a narrow unsigned type that saturates: a count past ``_count_cap``
+stays there.  The decaying step is exactly its floor from some finite count on (the step
+table ends there, ``_alpha_top``: 148 with the defaults), so with the plain rule and the
+TD exploration basis, where a count is read only for its step, any cap from that count on
+gives the same steps as the true count, bit for bit: uint8 with the defaults (1,000 nodes
+x 11 slots: 10.5 MB instead of 84 MB as int64), uint16 when the floor lies further out.
+Where counts matter past any such point (a step that does not reach its floor within the
+table, the visits exploration basis, the variants) they are uint32, saturating after
+4.29e9 updates of one entry.  A state saved with wider counts (int64, before this) loads
+saturated at the cap; a reconfigure that needs a wider type widens N (counts already
+saturated stay at the old cap).
+
 Update (Q-routing; Boyan & Littman, NIPS 6, 1994).  A hop observation says x handed a
 packet for d to neighbour y and the hop took l seconds (queueing + transmission +
 propagation), optionally with y's own remaining estimate e::
@@ -87,6 +99,27 @@ share, ``eps`` the rest and ``alt`` the other next hops in use; :meth:`Engine.we
 returns the shares, :meth:`Engine.published_estimate` their weighted Q.  Observations feed
 the split state after the core update (the same rows in the same order, so batched ==
 sequential still holds); its arrays ride in ``export_state()["split"]``.
+:meth:`Engine.seed_shares` (split mode) replaces whole destinations' internal shares from
+outside — the service's ``engine.optimum.guide`` seeds them with the flow-deviation optimum
+for the demand it measured — keeping every route and the graph acyclic
+(:func:`routerd.core.splitting.seed`); the service journals each seeding as a ``guide``
+record and replay applies it at the same place.  :meth:`Engine.published_shares` reads the
+published tables as one (n, n, K) array (the service's live optimality gap).
+
+Owned destinations.  ``Engine(topology, settings, owned=[...])`` keeps state for some
+destinations only (a shard worker's, :mod:`routerd.service.shard`): every per-destination
+array is indexed by a *column*, ``Q[x, c, j]`` with ``c = column(d)``, and ``owned[c]`` is
+the destination of column c (sorted; ``owned = arange(n)`` and ``column(d) = d`` for a
+whole engine, the default, so nothing changes there).  This is exact: the update for d
+reads and writes column d only (the neighbour's estimate ``Q[y, d, :]`` is the same
+destination), and ``decide`` works destination by destination (its loop check, depths
+and fallback trees are per destination, on node indices).  Memory is n x len(owned) x K
+instead of n x n x K.  A row for a destination not owned is rejected (``not_owned``); the
+readers answer per owned destination (``values``, ``next_hops``: (n, len(owned)); ``weights``
+of another destination: no route).  The state saved carries the owned set (``owned``,
+only when partial) and :meth:`from_state` restores that layout.  Only the plain rule in greedy mode: the
+variants and split mode keep state across destinations (a ValueError otherwise); an owning state restored
+under a variant becomes a whole engine, its columns in place and the others fresh.
 
 Link state.  A link marked down leaves every decision at once (its slot is not live), and
 its estimates are set to the ceiling, so no count-to-infinity can build on them.  Marked
@@ -116,6 +149,7 @@ REJECT_REASONS = (
     "bad_latency",     # NaN, infinite or negative latency
     "bad_estimate",    # infinite or negative estimate
     "link_down",       # the hop used a link that is marked down
+    "not_owned",       # dst is not one of this engine's owned destinations (a shard's)
 )
 _R = {r: i for i, r in enumerate(REJECT_REASONS)}
 _OK = -1
@@ -125,6 +159,12 @@ SCALAR_BATCH = 24
 # The step-size table never grows past this many counts (64 Ki: 0.5 MB as float64 plus its
 # list); a decaying step whose floor lies further out (or floor 0) is computed past it.
 STEP_TABLE_MAX = 1 << 16
+# The update counts N are stored in the narrowest of these that holds every count whose
+# value still matters (``Engine._count_cap``); a count saturates there (see "Counts").
+COUNT_TYPES = (np.uint8, np.uint16, np.uint32)
+# The reference decide's full pass works through destinations in blocks whose (n, block)
+# int64 temporaries take about this many bytes (``_decide_block_size``).
+DECIDE_BLOCK_BYTES = 1 << 21
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -168,6 +208,10 @@ class EngineSettings:
     split_window_s: float = 1.0
     split_refresh: float = 0.5
     split_prior: float = 2.0
+    split_uphill_drain: float = 0.1
+    split_boost: float = 3.0
+    split_boost_s: float = 2.0
+    split_rate_model: float = 0.97
 
     def __post_init__(self) -> None:
         bad: list[str] = []
@@ -317,16 +361,26 @@ class EngineStats:
 class Engine:
     """Q-routing over one topology.  See the module docstring for the rules."""
 
-    def __init__(self, topology: Topology, settings: EngineSettings | None = None):
+    def __init__(self, topology: Topology, settings: EngineSettings | None = None, *,
+                 owned: Any = None):
         self.topo = topology
         self.settings = settings or EngineSettings()
         n, k = topology.n, topology.slots.shape[1]
         self.n, self.k = n, k
+        # owned destinations (see "Owned destinations" in the module docstring): column c
+        # of every per-destination array is destination owned[c]; _col maps back
+        self.owned, self._col = _owned_columns(n, owned)
+        self.nd = nd = int(self.owned.size)
+        self.partial = nd < n
+        if self.partial and (self.settings.variant != "plain" or self.settings.mode != "greedy"):
+            raise ValueError(f"owned destinations need the plain variant in greedy mode (variant "
+                             f"{self.settings.variant!r}, mode {self.settings.mode!r} keeps state "
+                             f"across destinations)")
         self._slots = topology.slots.astype(np.int64)
         self._present = self._slots >= 0
         self._slot_of = topology.slot_of
         self._slot_flat = np.ascontiguousarray(topology.slot_of).reshape(-1)
-        self._slot_of_i64 = np.ascontiguousarray(topology.slot_of, dtype=np.int64)
+        self._slot_of_wide: np.ndarray | None = None      # _slot_of_i64, made on demand
         # slots the compiled decide scans per node: the present ones when they are a prefix
         # of the row (as topology builds them), else all (absent slots are never live)
         deg = self._present.sum(axis=1).astype(np.int64)
@@ -336,29 +390,41 @@ class Engine:
         self.live = self._present.copy()
         self._static_dist = topology.shortest_delays()
         self.Q = self._initial_q()
-        self.N = np.zeros((n, n, k), dtype=np.int64)
-        self.td = np.zeros((n, n), dtype=np.float64)
-        self.greedy = np.full((n, n), -1, dtype=np.int64)   # slot, -1 = none
-        self.eps = np.zeros((n, n), dtype=np.float64)
-        self.alt = np.zeros((n, n, k), dtype=bool)          # exploration candidates
-        self._dirty = np.ones(n, dtype=bool)
-        # the key-level fast lane of decide(): (x, d) keys the core observe path wrote,
-        # their destinations, and keys whose published choice is a loop fallback
-        self._kdirty = np.zeros(n * n, dtype=bool)
-        self._kcols = np.zeros(n, dtype=bool)
-        self._forced = np.ones((n, n), dtype=bool)
-        # the hysteresis choice behind each published one (differs where _forced), and per
-        # destination whether its fallbacks are exactly reproduced by the next full pass
-        self._hyst = np.full((n, n), -1, dtype=np.int64)
-        self._stable = np.zeros(n, dtype=bool)
-        self._kern = _kernels.select(self.settings.kernels)   # None: the numpy reference
         self._alphas: np.ndarray | None = None     # step sizes by count (_steps)
         self._alphas_list: list[float] = []
         self._alpha_top = 0
         self._alpha_clamped = True
+        self._count_dtype, self._count_cap = self._count_layout()
+        # np.full, not np.zeros: the pages are written now, so the first batch does not pay
+        # for faulting in the whole array (a 1,000-node service's first turn took 0.25 s)
+        self.N = np.full((n, nd, k), 0, dtype=self._count_dtype)
+        self.td = np.full((n, nd), 0.0, dtype=np.float64)
+        self.greedy = np.full((n, nd), -1, dtype=np.int64)   # slot, -1 = none
+        self.eps = np.zeros((n, nd), dtype=np.float64)
+        self.alt = np.zeros((n, nd, k), dtype=bool)          # exploration candidates
+        self._dirty = np.ones(nd, dtype=bool)
+        # the key-level fast lane of decide(): (x, d) keys the core observe path wrote,
+        # their destinations, and keys whose published choice is a loop fallback
+        self._kdirty = np.zeros(n * nd, dtype=bool)
+        self._kcols = np.zeros(nd, dtype=bool)
+        self._forced = np.ones((n, nd), dtype=bool)
+        # the hysteresis choice behind each published one (differs where _forced), and per
+        # destination whether its fallbacks are exactly reproduced by the next full pass
+        # (slot indices: the topology's slot type, int16 unless a node has 32,000 neighbours)
+        self._hyst = np.full((n, nd), -1, dtype=self._slot_of.dtype)
+        self._stable = np.zeros(nd, dtype=bool)
+        # where a limited decide (decide(limit=...)) starts taking due destinations
+        self._cursor = 0
+        self._kern = _kernels.select(self.settings.kernels)   # None: the numpy reference
         self._live_spt: np.ndarray | None = None
-        # one slot per (node, destination) key plus a sentinel no row writes
-        self._scratch = np.full(n * n + 1, np.iinfo(np.int64).max, dtype=np.int64)
+        # the compiled full pass's scratch (routerd.core.kernels.decide_full; not state)
+        self._decide_scratch: tuple[np.ndarray, ...] | None = None
+        # the compiled kernels' view of this engine's arrays (routerd.core.kernels.bound; not
+        # state: bound afresh whenever an array, the settings or the step table is replaced)
+        self._bound: Any = None
+        # the reference rounds' scratch: one slot per (node, destination) key plus a
+        # sentinel no row writes; made on first use (the compiled path never needs it)
+        self._scratch: np.ndarray | None = None
         self.now = 0.0
         self._updates = 0
         self._rejected = dict.fromkeys(REJECT_REASONS, 0)
@@ -378,6 +444,14 @@ class Engine:
         self._route_changes = 0
         self._loops_prevented = 0
 
+    @property
+    def _slot_of_i64(self) -> np.ndarray:
+        """``slot_of`` as int64 (n x n x 8 bytes), made on first use: the compiled kernels
+        take the topology's own int16 array."""
+        if self._slot_of_wide is None:
+            self._slot_of_wide = np.ascontiguousarray(self._slot_of, dtype=np.int64)
+        return self._slot_of_wide
+
     def _start_split(self) -> None:
         """Split mode: one share on each next hop of the live delay-shortest tree."""
         self._split = _splitting.SplitState(self)
@@ -389,24 +463,38 @@ class Engine:
 
     # ---- set-up ---------------------------------------------------------------------
     def _initial_q(self) -> np.ndarray:
-        n, k = self.n, self.k
+        n, k, nd = self.n, self.k, self.nd
         s = self.settings
         ys = np.maximum(self._slots, 0)
-        q = np.empty((n, n, k))  # C order: the update paths index flat views of Q
+        own = None if not self.partial else self.owned[None, :]
+        q = np.empty((n, nd, k))  # C order: the update paths index flat views of Q
         for c in range(k):  # one slot column at a time: no (n, K, n) temporary
             if s.initial_mode == "shortest":
                 # Q[x, d, j] = delay(x, y_j) + D(y_j, d)
-                col = self._link_delay[:, c, None] + self._static_dist[ys[:, c]]
+                dist = (self._static_dist[ys[:, c]] if own is None
+                        else self._static_dist[ys[:, c][:, None], own])
+                col = self._link_delay[:, c, None] + dist
             else:
-                col = np.full((n, n), s.initial_value_s)
+                col = np.full((n, nd), s.initial_value_s)
             q[:, :, c] = np.where(self._present[:, c, None], np.minimum(col, s.ceiling_s), np.inf)
         return q
 
     def reconfigure(self, settings: EngineSettings) -> None:
         """Adopt new tunables (a reload), keeping all learned state."""
+        if self.partial and (settings.variant != "plain" or settings.mode != "greedy"):
+            raise ValueError(f"owned destinations need the plain variant in greedy mode (variant "
+                             f"{settings.variant!r}, mode {settings.mode!r} keeps state across "
+                             f"destinations)")
         self.settings = settings
         self._alphas = None
+        self._bound = None   # holds the arrays replaced below: let each go as it is
         self._kern = _kernels.select(settings.kernels)
+        dtype, cap = self._count_layout()
+        if dtype != self.N.dtype or cap != self._count_cap:
+            # counts saturated under the old settings stay at the old cap (what they
+            # were past it is not known); a narrower type saturates the rest at the new one
+            self.N = _saturated(self.N, cap, dtype)
+        self._count_dtype, self._count_cap = dtype, cap
         q = np.where(self._present[:, None, :], np.minimum(self.Q, settings.ceiling_s), np.inf)
         # dead links hold exactly the (new) ceiling: the update reads mins without a live mask
         q[np.broadcast_to((self._present & ~self.live)[:, None, :], q.shape)] = settings.ceiling_s
@@ -446,7 +534,8 @@ class Engine:
                         and float(lat.min()) >= 0.0 and float(lat.max()) < math.inf
                         and not float(np.fmin.reduce(est)) < 0.0
                         and float(np.fmax.reduce(est)) != math.inf
-                        and (self.live.all() or self._live_flat_take(s * self.k + slot))):
+                        and (self.live.all() or self._live_flat_take(s * self.k + slot))
+                        and (not self.partial or int(self._col.take(d).min()) >= 0)):
                     return None, slot
         if s.dtype == v.dtype == d.dtype == np.int64:  # negatives wrap to huge: one compare each
             inr = (s.view(np.uint64) < n) & (v.view(np.uint64) < n) & (d.view(np.uint64) < n)
@@ -461,10 +550,13 @@ class Engine:
         live = self.live[ss, slot]                     # slot -1 reads garbage: masked by nb
         lat_ok = (lat >= 0) & (lat < math.inf)         # False for NaN
         est_ok = ~((est < 0) | (est == math.inf))      # NaN (absent) passes both
-        good = inr & nb & (s != d) & lat_ok & est_ok & live
+        own = self._col[np.where(inr, d, 0)] >= 0 if self.partial else True
+        good = inr & nb & (s != d) & lat_ok & est_ok & live & own
         if good.all():
             return None, slot
         code = np.full(len(b), _OK, dtype=np.int64)
+        if self.partial:
+            code[~own] = _R["not_owned"]
         code[~live] = _R["link_down"]
         code[~est_ok] = _R["bad_estimate"]
         code[~lat_ok] = _R["bad_latency"]
@@ -540,8 +632,9 @@ class Engine:
                                good.latency, good.estimate, tde)
         else:
             self._apply_rounds(good.src, good.via, good.dst, slot, good.latency, good.estimate, tde)
-        self._kdirty[good.src * self.n + good.dst] = True
-        self._kcols[good.dst] = True
+        dc = self._col.take(good.dst)
+        self._kdirty[good.src * self.nd + dc] = True
+        self._kcols[dc] = True
         a = np.abs(tde)
         self._account(m, float(a.sum()) / m, float(a.max()))   # sum / m: np.mean's own value
         return ObserveResult(m, rejected, tde)
@@ -569,14 +662,16 @@ class Engine:
         Checks in REJECT_REASONS order, exactly like :meth:`_check`; the update is the
         same arithmetic as :meth:`_apply_vector`, one IEEE operation at a time.
         """
-        n, K = self.n, self.k
+        n, K, nd = self.n, self.k, self.nd
         Qf, Nf, tdf = _flat(self.Q), _flat(self.N), _flat(self.td)
         slot_of, live, kdirty, kcols = self._slot_of, self.live, self._kdirty, self._kcols
+        dcol = self._col
         s = self.settings
         ceil, sm = s.ceiling_s, s.td_smoothing
         keep = 1.0 - sm
         tab = self._steps()
         lim = len(tab)
+        cap = self._count_cap
         inf = math.inf
         rejected: list[tuple[int, str]] = []
         tde: list[float] = []
@@ -595,26 +690,29 @@ class Engine:
                     reason = "bad_estimate"
                 elif not live.item(x, j):
                     reason = "link_down"
+                elif (dc := dcol.item(d)) < 0:
+                    reason = "not_owned"
                 else:
                     if y == d:
                         tail = 0.0
                     elif e == e:  # not NaN: the neighbour's own estimate
                         tail = e
                     else:  # absent slots hold inf, dead ones exactly the ceiling
-                        rb = (y * n + d) * K
+                        rb = (y * nd + dc) * K
                         tail = min(Qf[rb:rb + K].tolist())
                     target = lat + tail
-                    w = x * n + d
+                    w = x * nd + dc
                     k = w * K + j
                     old = Qf.item(k)
                     nn = Nf.item(k) + 1
-                    Nf[k] = nn
+                    # saturates ("Counts"); an expression, not min(): no call per row
+                    Nf[k] = nn if nn <= cap else cap  # noqa: FURB136
                     delta = target - old
                     new = old + (tab[nn] if nn < lim else self._step_beyond(nn)) * delta
                     Qf[k] = ceil if new > ceil else (0.0 if new < 0.0 else new)
                     tdf[w] = keep * tdf.item(w) + sm * abs(delta)
                     kdirty[w] = True
-                    kcols[d] = True
+                    kcols[dc] = True
                     tde.append(delta)
                     continue
             rejected.append((i, reason))
@@ -669,6 +767,30 @@ class Engine:
         self._alpha_top = top
         self._alpha_clamped = clamped
 
+    def _count_layout(self) -> tuple[np.dtype, int]:
+        """(dtype, cap) of the update counts N under the current settings (see "Counts" in
+        the module docstring): the narrowest of COUNT_TYPES holding every count that still
+        changes a result.  With the plain rule and the TD exploration basis a count is
+        read only for its step size, which is the floor from ``_alpha_top`` on (a constant
+        step: from count 1), so a count saturating at ``cap >= _alpha_top - 1`` gives the
+        same step at its next update as the true count would, bit for bit.  A step that
+        never reaches its floor within the table, the visits basis (which sums counts) and
+        the variants (their own rules read N) keep 32-bit counts."""
+        s = self.settings
+        need: int | None = None
+        if s.variant == "plain" and s.explore_basis == "td":
+            if s.step_mode == "constant":
+                need = 1
+            else:
+                self._build_steps()
+                if self._alpha_clamped:
+                    need = max(1, self._alpha_top - 1)
+        for t in COUNT_TYPES:
+            top = int(np.iinfo(t).max)
+            if need is not None and need <= top:
+                return np.dtype(t), top
+        return np.dtype(COUNT_TYPES[-1]), int(np.iinfo(COUNT_TYPES[-1]).max)
+
     def _step_beyond(self, nn: int) -> float:
         """The step for a count past the table (scalar paths)."""
         if self._alpha_clamped:
@@ -699,13 +821,15 @@ class Engine:
     def _apply_scalar(self, rows: np.ndarray, f: np.ndarray, v: np.ndarray, d: np.ndarray,
                       slot: np.ndarray, lat: np.ndarray, est: np.ndarray, tde: np.ndarray) -> None:
         """Checked rows, one at a time, in the order of ``rows``; TD errors into ``tde``."""
-        n, K = self.n, self.k
+        nd, K = self.nd, self.k
+        dcol = self._col
         Qf, Nf, tdf = _flat(self.Q), _flat(self.N), _flat(self.td)
         ceil = self.settings.ceiling_s
         sm = self.settings.td_smoothing
         keep = 1.0 - sm
         tab = self._steps()
         lim = len(tab)
+        cap = self._count_cap
         r = rows.tolist()
         for i, x, y, dd, j, la, e in zip(r, f[rows].tolist(), v[rows].tolist(), d[rows].tolist(),
                                          slot[rows].tolist(), lat[rows].tolist(),
@@ -715,14 +839,14 @@ class Engine:
             elif e == e:  # not NaN
                 tail = e
             else:
-                rb = (y * n + dd) * K
+                rb = (y * nd + dcol.item(dd)) * K
                 tail = min(Qf[rb:rb + K].tolist())
             target = la + tail
-            w = x * n + dd
+            w = x * nd + dcol.item(dd)
             k = w * K + j
             old = Qf.item(k)
             nn = Nf.item(k) + 1
-            Nf[k] = nn
+            Nf[k] = nn if nn <= cap else cap  # noqa: FURB136  (saturates; no call per row)
             delta = target - old
             new = old + (tab[nn] if nn < lim else self._step_beyond(nn)) * delta
             Qf[k] = ceil if new > ceil else (0.0 if new < 0.0 else new)
@@ -733,18 +857,22 @@ class Engine:
                       lat: np.ndarray, est: np.ndarray, tde: np.ndarray) -> None:
         """Checked rows in exact order, vectorised in rounds (see the module docstring).
 
-        Keys are (node, destination) pairs ``x * n + d``; a row that reads nothing (y == d,
-        or an estimate given) reads the sentinel key ``n * n``, which no row writes.
+        Keys are (node, destination column) pairs ``x * nd + col(d)``; a row that reads
+        nothing (y == d, or an estimate given) reads the sentinel key ``n * nd``, which no
+        row writes.
         """
-        n, K = self.n, self.k
+        nd, K = self.nd, self.k
         big = np.iinfo(np.int64).max
         scratch = self._scratch
-        sentinel = n * n
-        wkey = f * n + d
+        if scratch is None:
+            scratch = self._scratch = np.full(self.n * nd + 1, big, dtype=np.int64)
+        sentinel = self.n * nd
+        dc = d if not self.partial else self._col.take(d)
+        wkey = f * nd + dc
         at_d = v == d
         nan = np.isnan(est)
         need = nan & ~at_d
-        rrow = v * n + d                            # the (y, d) row read (valid even if unused)
+        rrow = v * nd + dc                            # the (y, d) row read (valid even if unused)
         rkey = np.where(need, rrow, sentinel)
         kflat = wkey * K + slot
         tail0 = np.where(nan | at_d, 0.0, est)      # y == d: nothing left to go
@@ -795,7 +923,7 @@ class Engine:
         Reads all happen before writes, so a row reading a key that a *later* row of the
         same round writes sees the old value, as it would in order.
         """
-        n, K = self.n, self.k
+        nK, K = self.n * self.nd, self.k
         Qf, Nf, tdf = _flat(self.Q), _flat(self.N), _flat(self.td)
         s = self.settings
         if rows is None:
@@ -806,14 +934,14 @@ class Engine:
         # so no live mask is needed (an all-dead node reads the ceiling, as it should).
         # Rows that read nothing get a min too (of a valid row) and drop it: no masking
         if need.all():
-            tail = _row_min(self.Q.reshape(n * n, K).take(rr, axis=0))
+            tail = _row_min(self.Q.reshape(nK, K).take(rr, axis=0))
         elif need.any():
-            tail = np.where(need, _row_min(self.Q.reshape(n * n, K).take(rr, axis=0)), tail)
+            tail = np.where(need, _row_min(self.Q.reshape(nK, K).take(rr, axis=0)), tail)
         target = la + tail
         old = Qf.take(k)
-        nn = Nf.take(k)
+        nn = Nf.take(k).astype(np.int64)
         nn += 1
-        Nf[k] = nn
+        Nf[k] = np.minimum(nn, self._count_cap)     # saturates (see "Counts")
         delta = target - old
         alpha = self.step_sizes(nn)
         new = alpha * delta
@@ -840,10 +968,12 @@ class Engine:
             return False
         self.live[src, j] = up
         ceil = self.settings.ceiling_s
+        if self._split is not None:      # the share step's boost restarts (splitting.event_boost)
+            self._split.last_event = self.now
         if up:
             qd = np.where(self.live[dst][None, :], self.Q[dst], np.inf).min(axis=1)
             vy = np.where(np.isfinite(qd), qd, ceil)   # y's current best per destination
-            fresh = self._link_delay[src, j] + np.where(np.arange(self.n) == dst, 0.0, vy)
+            fresh = self._link_delay[src, j] + np.where(self.owned == dst, 0.0, vy)
             self.Q[src, :, j] = np.minimum(fresh, ceil)
             self.N[src, :, j] = 0
             if self._split is not None:   # measured afresh: the old traffic is gone
@@ -862,12 +992,13 @@ class Engine:
 
     # ---- reading ----------------------------------------------------------------------
     def values(self) -> np.ndarray:
-        """(n, n) V[x, d] = min over x's live slots of Q[x, d, :] (0 on the diagonal)."""
+        """(n, nd) V[x, c] = min over x's live slots of Q[x, c, :] (0 where x is the
+        destination); (n, n) with every destination owned."""
         # dead slots hold exactly the ceiling and absent ones inf, so the plain min over
         # all slots is the min over live ones (the ceiling when none is live)
-        n, K = self.n, self.k
-        q = np.empty((n, n))
-        step = max(1, (1 << 19) // max(1, n * K))   # about 4 MB of Q per block
+        n, K, nd = self.n, self.k, self.nd
+        q = np.empty((n, nd))
+        step = max(1, (1 << 19) // max(1, nd * K))   # about 4 MB of Q per block
         for x0 in range(0, n, step):
             qb = self.Q[x0:x0 + step]
             out = q[x0:x0 + step]
@@ -875,14 +1006,23 @@ class Engine:
             for c in range(1, K):
                 np.minimum(out, qb[:, :, c], out=out)
         np.minimum(q, self.settings.ceiling_s, out=q)
-        np.fill_diagonal(q, 0.0)
+        q[self.owned, np.arange(nd)] = 0.0
         return q
+
+    def column(self, d: int) -> int:
+        """The column of destination d in the per-destination arrays; KeyError when this
+        engine does not own d."""
+        c = int(self._col[d]) if 0 <= d < self.n else -1
+        if c < 0:
+            raise KeyError(f"destination {self.topo.nodes[d] if 0 <= d < self.n else d} "
+                           "is not owned by this engine")
+        return c
 
     def estimate(self, x: int, d: int) -> float:
         """x's current remaining-time estimate for d (what x reports as its own estimate)."""
         if x == d:
             return 0.0
-        qy = self.Q[x, d][self.live[x]]
+        qy = self.Q[x, self.column(d)][self.live[x]]
         return float(qy.min()) if qy.size else self.settings.ceiling_s
 
     def published_estimate(self, x: int, d: int) -> float:
@@ -897,23 +1037,29 @@ class Engine:
             if not (p > 0).any():
                 return self.settings.ceiling_s
             return float(min(np.where(p > 0, p * self.Q[x, d], 0.0).sum(), self.settings.ceiling_s))
-        g = int(self.greedy[x, d])
-        return float(self.Q[x, d, g]) if g >= 0 else self.settings.ceiling_s
+        c = self.column(d)
+        g = int(self.greedy[x, c])
+        return float(self.Q[x, c, g]) if g >= 0 else self.settings.ceiling_s
 
     def published_estimates(self, xs: Any = None, ds: Any = None) -> np.ndarray:
         """:meth:`published_estimate` vectorised: for node and destination index arrays of
-        one shape, that shape; with ``ds`` None, the (len(xs), n) rows of nodes ``xs``
-        (every node when ``xs`` is None too)."""
-        n, K = self.n, self.k
+        one shape, that shape; with ``ds`` None, the (len(xs), nd) rows of nodes ``xs``
+        (every node when ``xs`` is None too) over the owned destinations.  A destination
+        this engine does not own: KeyError."""
+        n, K, nd = self.n, self.k, self.nd
         if ds is None:
             rows = np.arange(n) if xs is None else np.asarray(xs, dtype=np.int64)
-            x = np.repeat(rows, n).reshape(len(rows), n)
-            d = np.broadcast_to(np.arange(n), x.shape)
+            x = np.repeat(rows, nd).reshape(len(rows), nd)
+            d = np.broadcast_to(self.owned, x.shape)
+            c = np.broadcast_to(np.arange(nd), x.shape)
         else:
             x, d = np.asarray(xs, dtype=np.int64), np.asarray(ds, dtype=np.int64)
-        if self._split is not None:
+            c = self._col[d] if self.partial else d
+            if self.partial and c.size and int(c.min()) < 0:
+                raise KeyError("published_estimates: a destination is not owned by this engine")
+        if self._split is not None:   # split mode keeps a whole engine: column d is d
             return _splitting.published_values(self._split.pub, self.Q, self.settings.ceiling_s)[x, d]
-        w = x * n + d
+        w = x * nd + c
         g = _flat(self.greedy).take(w)
         q = _flat(self.Q).take(w * K + np.maximum(g, 0))
         out = np.where(g >= 0, q, self.settings.ceiling_s)
@@ -921,30 +1067,60 @@ class Engine:
         return out
 
     def next_hops(self) -> np.ndarray:
-        """(n, n) greedy next-hop node per (node, destination), -1 for none."""
+        """(n, nd) greedy next-hop node per (node, owned destination), -1 for none."""
         g = self.greedy
         return np.where(g >= 0, np.take_along_axis(self._slots, np.maximum(g, 0), axis=1), -1)
 
     def weights(self, x: int, d: int) -> list[tuple[int, float]]:
-        """Published weights of x for d: ``[(next_hop, weight), ...]``, greedy first; sum 1."""
-        g = int(self.greedy[x, d])
+        """Published weights of x for d: ``[(next_hop, weight), ...]``, greedy first; sum 1.
+        Empty when x has no route to d, or this engine does not own d."""
+        c = int(self._col[d]) if 0 <= d < self.n else -1
+        g = int(self.greedy[x, c]) if c >= 0 else -1
         if g < 0:
             return []
         if self._split is not None:
             p = self._split.pub[x, d].tolist()
             sl = self._slots[x].tolist()
             return [(sl[g], p[g])] + [(sl[j], v) for j, v in enumerate(p) if v > 0 and j != g]
-        alts = np.flatnonzero(self.alt[x, d]).tolist()
+        alts = np.flatnonzero(self.alt[x, c]).tolist()
         y = int(self._slots[x, g])
         if not alts:
             return [(y, 1.0)]
-        e = float(self.eps[x, d])
+        e = float(self.eps[x, c])
         share = e / len(alts)
         return [(y, 1.0 - e)] + [(int(self._slots[x, a]), share) for a in alts]
 
+    def seed_shares(self, W: np.ndarray) -> tuple[int, int]:
+        """Split mode: replace whole destinations' internal shares with ``W`` (n, n, K)
+        where that keeps every route and the graph acyclic (:func:`routerd.core.splitting.seed`);
+        the next :meth:`decide` publishes them by its threshold.  Greedy mode: nothing
+        (0, 0).  Journaled by the service as a ``guide`` record, replayed in place."""
+        if self._split is None:
+            return 0, 0
+        return _splitting.seed(self._split, self, W)
+
+    def published_shares(self) -> np.ndarray:
+        """(n, columns, K) the published tables as slot shares ``W[x, c, j]`` (the layout
+        of :meth:`weights`, every key at once: greedy ``1 - eps``, each alternate
+        ``eps / count``; split mode its published shares).  A new array; keys without a
+        route are all zero.  Read by the service's live optimality gap."""
+        if self._split is not None:
+            return self._split.pub.copy()
+        g = self.greedy
+        routed = g >= 0
+        cnt = self.alt.sum(axis=2)
+        has = cnt > 0
+        share = np.where(has, self.eps / np.maximum(cnt, 1), 0.0)
+        W = np.where(self.alt, share[:, :, None], 0.0)
+        gw = np.where(has, 1.0 - self.eps, 1.0)
+        xs, cs = np.nonzero(routed)
+        W[xs, cs, g[xs, cs]] = gw[xs, cs]
+        W[~routed] = 0.0
+        return W
+
     def routes(self, x: int) -> dict[int, list[tuple[int, float]]]:
         """x's whole table: destination → weights."""
-        return {d: w for d in range(self.n) if d != x and (w := self.weights(x, d))}
+        return {d: w for d in self.owned.tolist() if d != x and (w := self.weights(x, d))}
 
     def routes_many(self, xs: Any = None) -> list[dict[int, list[tuple[int, float]]]]:
         """:meth:`routes` of each node in ``xs`` (every node by default), from whole-table
@@ -965,22 +1141,64 @@ class Engine:
         gw = np.where(has, 1.0 - e, 1.0)
         share = np.where(has, e / np.maximum(cnt, 1), 0.0)
         out: list[dict[int, list[tuple[int, float]]]] = []
+        own = self.owned.tolist()
         for i, x in enumerate(rows.tolist()):
             nhi, gwi, shi, hasi = (a.tolist() for a in (nh[i], gw[i], share[i], has[i]))
             sli = sl[i].tolist()
             alti = alt[i].tolist() if any(hasi) else None
             table: dict[int, list[tuple[int, float]]] = {}
-            for d in np.flatnonzero(g[i] >= 0).tolist():
+            for c in np.flatnonzero(g[i] >= 0).tolist():
+                d = own[c]
                 if d == x:
                     continue
-                if hasi[d] and alti is not None:
-                    s_ = shi[d]
-                    table[d] = [(nhi[d], gwi[d])] + [(sli[j], s_) for j, on in enumerate(alti[d])
+                if hasi[c] and alti is not None:
+                    s_ = shi[c]
+                    table[d] = [(nhi[c], gwi[c])] + [(sli[j], s_) for j, on in enumerate(alti[c])
                                                      if on]
                 else:
-                    table[d] = [(nhi[d], gwi[d])]
+                    table[d] = [(nhi[c], gwi[c])]
             out.append(table)
         return out
+
+    def table_arrays(self, x: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """x's table (:meth:`routes`) as arrays, for encoding without a dict per entry:
+        ``(dsts, counts, hops, weights)`` — the destinations in ascending order, how many
+        next hops each has, and the next hops and weights of all of them in a row (per
+        destination the greedy one first, then the alternates in slot order).  The same
+        floats as :meth:`routes_many`."""
+        _, dsts, counts, hops, w = self.table_arrays_many([x])
+        return dsts, counts, hops, w
+
+    def table_arrays_many(self, xs: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray,
+                                                    np.ndarray, np.ndarray]:
+        """:meth:`table_arrays` of several nodes at once: ``(owner, dsts, counts, hops,
+        weights)``, ``owner[i]`` the position in ``xs`` of destination entry i (entries
+        grouped by node in the order of ``xs``, destinations ascending within each)."""
+        rows = np.asarray(xs, dtype=np.int64).reshape(-1)
+        g = self.greedy[rows]
+        ok = g >= 0
+        ok[np.arange(len(rows)), rows] = False
+        owner, dsts = np.nonzero(ok)
+        xr = rows[owner]
+        sl = self._slots[xr]                         # (m, K)
+        gd = g[owner, dsts]
+        alt = self.alt[xr, dsts]                     # (m, K)
+        cnt = alt.sum(axis=1)
+        e = self.eps[xr, dsts]
+        has = cnt > 0
+        gw = np.where(has, 1.0 - e, 1.0)
+        share = np.where(has, e / np.maximum(cnt, 1), 0.0)
+        m, k = alt.shape
+        hops = np.empty((m, k + 1), dtype=np.int64)
+        w = np.empty((m, k + 1), dtype=np.float64)
+        hops[:, 0] = np.take_along_axis(sl, gd[:, None], axis=1)[:, 0]
+        w[:, 0] = gw
+        hops[:, 1:] = sl
+        w[:, 1:] = share[:, None]
+        keep = np.empty((m, k + 1), dtype=bool)
+        keep[:, 0] = True
+        keep[:, 1:] = alt
+        return owner, dsts, cnt + 1, hops[keep], w[keep]
 
     # ---- decisions ------------------------------------------------------------------
     def _spt_live(self) -> np.ndarray:
@@ -992,51 +1210,113 @@ class Engine:
                 nh = t.spt_next_hops()
             else:
                 nh = t.shortest_paths(np.where(up, t.delay_s, np.inf))[1]
-            self._live_spt = nh.astype(np.int64)
+            # int32 as the topology keeps it: the static tree is its read-only array, no copy
+            self._live_spt = np.ascontiguousarray(nh, dtype=np.int32)
         return self._live_spt
 
-    def decide(self, now: float | None = None) -> Decision:
-        """Recompute tables for every destination touched since the last call."""
+    def decide(self, now: float | None = None, limit: int | None = None) -> Decision:
+        """Recompute tables for every destination touched since the last call.
+
+        ``limit``: at most this many destinations take the full pass now; the others stay
+        due (:meth:`pending`) and go first at the next calls, in a rotating order from
+        the column after the last one taken (``_cursor``, part of the state), so none
+        waits behind busier ones.  Every destination is decided on its own, so a limited
+        call gives those destinations exactly what an unlimited one would; a shell that
+        bounds its time per decision this way journals the limit, and replay passes it
+        back.  The key lane (cheap, per key) is never limited; split mode decides every
+        destination at every call and ignores it.
+        """
+        if limit is not None and limit < 1:
+            raise ValueError(f"decide limit {limit} is below 1")
         if now is not None:
             self.now = float(now)
         if self._split is not None:
             return self._decide_split()
         # the values compared: Q, or a variant's (predictive marks moving destinations dirty)
         self._qdec = self.Q if self._variant is None else self._variant.decision_values(self)
+        if self._kern is not None and limit is None and self._variant is None:
+            # the key lane and the full pass in one compiled call on the engine's bound
+            # arrays (routerd.core.kernels.decide_due: the same steps as below)
+            got = _kernels.decide_due(self)
+            if got is not None:
+                nodes, changes, prevented, taken = got
+                self._decisions += 1
+                self._full_pass_destinations += taken
+                self._route_changes += changes
+                self._loops_prevented += prevented
+                return Decision(nodes, changes, prevented)
         extra: frozenset[int] = frozenset()
         if self._kcols.any():
             if self._variant is None:
-                extra = self._decide_keys()
+                if self._kern is not None and _kernels.decide_ok(self):
+                    extra = _kernels.decide_keys(self)
+                else:
+                    extra = self._decide_keys()
             else:
                 self._dirty |= self._kcols
             self._kdirty[:] = False
             self._kcols[:] = False
-        ds = np.flatnonzero(self._dirty)
-        self._dirty[:] = False
-        self._decisions += 1
-        if ds.size == 0:
-            return Decision(extra, 0, 0)
-        self._full_pass_destinations += int(ds.size)
-        if self._kern is not None and _kernels.decide_ok(self):
-            nodes, changes, prevented = _kernels.decide_full(self, ds)
+        cs = np.flatnonzero(self._dirty)      # columns due (destinations owned[cs])
+        if limit is not None and cs.size > limit:
+            k = int(np.searchsorted(cs, self._cursor))
+            cs = np.concatenate((cs[k:], cs[:k]))[:limit]
+            self._cursor = (int(cs[-1]) + 1) % self.nd
+            self._dirty[cs] = False           # the rest stay due
+            cs = np.sort(cs)
         else:
-            nodes, changes, prevented = self._decide_full(ds)
+            self._dirty[:] = False
+        self._decisions += 1
+        if cs.size == 0:
+            return Decision(extra, 0, 0)
+        self._full_pass_destinations += int(cs.size)
+        if self._kern is not None and _kernels.decide_ok(self):
+            nodes, changes, prevented = _kernels.decide_full(self, cs)
+        else:
+            nodes, changes, prevented = self._decide_full(cs)
         self._route_changes += changes
         self._loops_prevented += prevented
         return Decision(nodes | extra, changes, prevented)
 
-    def _decide_full(self, ds: np.ndarray) -> tuple[frozenset[int], int, int]:
-        """The full pass over destinations ``ds`` (the numpy reference): writes the
-        tables and returns (changed nodes, route changes, loops newly prevented)."""
+    @property
+    def full_pass_destinations(self) -> int:
+        """Destinations the full pass of :meth:`decide` has taken so far (not state: a
+        measure for shells sizing ``decide(limit=...)``, and for benchmarks)."""
+        return self._full_pass_destinations
+
+    def pending(self) -> int:
+        """Destinations due for the next :meth:`decide` (touched, or left by a limited one)."""
+        return int(np.count_nonzero(self._dirty | self._kcols))
+
+    def _decide_full(self, cs: np.ndarray) -> tuple[frozenset[int], int, int]:
+        """The full pass over destination columns ``cs`` (destinations ``owned[cs]``; the
+        numpy reference): writes the tables and returns (changed nodes, route changes,
+        loops newly prevented).  In blocks of destinations (``_decide_block_size``), so its
+        temporaries are (n, block) and (K, n, block), not (K, n, n): every step of the
+        pass is per destination, so the blocks give the same tables and counters."""
+        b = _decide_block_size(self.n)
+        if cs.size <= b:
+            return self._decide_block(cs)
+        nodes: set[int] = set()
+        changes = prevented = 0
+        for i in range(0, cs.size, b):
+            nb, cb, pb = self._decide_block(cs[i:i + b])
+            nodes |= nb
+            changes += cb
+            prevented += pb
+        return frozenset(nodes), changes, prevented
+
+    def _decide_block(self, cs: np.ndarray) -> tuple[frozenset[int], int, int]:
+        """:meth:`_decide_full` for one block of destination columns."""
         s = self.settings
         n, K = self.n, self.k
-        m = ds.size
-        sel: Any = slice(None) if m == n else ds       # a view, not a copy, when all are due
+        m = cs.size
+        ds = self.owned[cs]                            # the destinations, as nodes
+        sel: Any = slice(None) if m == self.nd else cs  # a view, not a copy, when all are due
         xs = np.arange(n)
         live2 = self.live                                           # (n, K)
         best, bestv = self._best_live(sel, m)                       # (n, m)
         inc = self.greedy[:, sel]
-        incv = self._q_at(ds, inc)
+        incv = self._q_at(cs, inc)
         keep = np.isfinite(incv) & ~(bestv < incv * (1.0 - s.margin))
         choice = np.where(keep, inc, best)
         choice = np.where(np.isfinite(bestv), choice, -1)
@@ -1095,12 +1375,12 @@ class Engine:
         alt = np.ascontiguousarray(altk.transpose(1, 2, 0))          # (n, m, K)
         # exploration share per (x, d)
         if s.explore_basis == "td":
-            vx = self._q_at(ds, choice)
+            vx = self._q_at(cs, choice)
             rel = self.td[:, sel] / np.maximum(np.where(np.isfinite(vx), vx, s.ceiling_s), 1e-12)
             frac = np.minimum(1.0, rel / s.td_ref)
         else:
             Nd = self.N[:, sel, :]
-            visits = Nd[:, :, 0].copy()
+            visits = Nd[:, :, 0].astype(np.int64)      # counts are narrow: sum wide
             for c in range(1, K):
                 visits += Nd[:, :, c]
             frac = s.visits_half / (s.visits_half + visits)
@@ -1125,7 +1405,7 @@ class Engine:
         # the next full pass, with these choices as incumbents and the same hysteresis
         # graph, lands on these choices again when every key held off its hysteresis
         # choice was on a loop of the hysteresis graph itself (see _decide_keys)
-        self._stable[ds] = ~(forced & ~c1.T).any(axis=0)
+        self._stable[cs] = ~(forced & ~c1.T).any(axis=0)
         nodes = frozenset(np.flatnonzero(changed_w.any(axis=1)).tolist())
         return nodes, int(changed_g.sum()), prevented
 
@@ -1161,16 +1441,16 @@ class Engine:
         can move (their TD error, visits and Q-values changed), computed here with the
         full pass's formula.  Returns the nodes whose weights changed.
         """
-        n, K = self.n, self.k
+        n, K, nd = self.n, self.k, self.nd
         s = self.settings
         cols = self._kcols & ~self._dirty
-        kd = self._kdirty.reshape(n, n) & cols[None, :]
+        kd = self._kdirty.reshape(n, nd) & cols[None, :]
         wk = np.flatnonzero(kd | (self._forced & cols[None, :]))
         if wk.size == 0:
             return frozenset()
-        xk = wk // n
-        dk = wk - xk * n
-        Q2 = self.Q.reshape(n * n, K)
+        xk = wk // nd
+        dk = wk - xk * nd                            # columns; destinations owned[dk]
+        Q2 = self.Q.reshape(n * nd, K)
         r = np.arange(wk.size)
         q = Q2.take(wk, axis=0)
         lv = self.live.take(xk, axis=0)
@@ -1183,11 +1463,11 @@ class Engine:
         keep = np.isfinite(incv) & ~(bestv < incv * (1.0 - s.margin))
         ch = np.where(keep, inc, best)
         ch = np.where(np.isfinite(bestv), ch, -1)
-        ch[xk == dk] = -1
+        ch[xk == self.owned.take(dk)] = -1
         fw = _flat(self._forced).take(wk)
         moved = ch != np.where(fw, _flat(self._hyst).take(wk), inc)
         moved |= fw & ~self._stable.take(dk)
-        full = np.zeros(n, dtype=bool)
+        full = np.zeros(nd, dtype=bool)
         full[dk[moved]] = True
         self._dirty |= full
         # written keys of destinations that keep their greedy graph: shares only
@@ -1195,15 +1475,15 @@ class Engine:
         if not obs.any():
             return frozenset()
         wo, xo, ro, g = wk[obs], xk[obs], r[obs], inc[obs]
-        any_alt = self.alt.reshape(n * n, K).take(wo, axis=0).any(axis=1)
+        any_alt = self.alt.reshape(n * nd, K).take(wo, axis=0).any(axis=1)
         if s.explore_basis == "td":
             vx = np.where(g >= 0, incv[ro], np.inf)   # the incumbent's value (live or inf)
             vxc = np.where(np.isfinite(vx), vx, s.ceiling_s)
             rel = _flat(self.td).take(wo) / np.maximum(vxc, 1e-12)
             frac = np.minimum(1.0, rel / s.td_ref)
         else:
-            Nd = self.N.reshape(n * n, K).take(wo, axis=0)
-            visits = Nd[:, 0].copy()
+            Nd = self.N.reshape(n * nd, K).take(wo, axis=0)
+            visits = Nd[:, 0].astype(np.int64)          # counts are narrow: sum wide
             for c in range(1, K):
                 visits += Nd[:, c]
             frac = s.visits_half / (s.visits_half + visits)
@@ -1241,12 +1521,12 @@ class Engine:
                 np.minimum(bv, col, out=bv)
         return best, bestv
 
-    def _q_at(self, ds: np.ndarray, slot: np.ndarray) -> np.ndarray:
-        """Q[x, ds[i], slot[x, i]] where that slot is live, else inf (slot -1: inf)."""
+    def _q_at(self, cs: np.ndarray, slot: np.ndarray) -> np.ndarray:
+        """Q[x, cs[i], slot[x, i]] (cs: columns) where that slot is live, else inf (slot -1: inf)."""
         n, K = self.n, self.k
         xs = np.arange(n)[:, None]
         sl = np.maximum(slot, 0)
-        v = _flat(self._qdec).take((xs * n + ds[None, :]) * K + sl)
+        v = _flat(self._qdec).take((xs * self.nd + cs[None, :]) * K + sl)
         ok = (slot >= 0) & _flat(self.live).take(xs * K + sl)
         return np.where(ok, v, np.inf)
 
@@ -1289,8 +1569,11 @@ class Engine:
         out.update({k: getattr(self, k) for k in self._SCALARS})
         out["_dirty"] = self._dirty | self._kcols   # the key lane's destinations are due too
         out["_hyst"] = self._hyst.copy()
+        out["_cursor"] = self._cursor
         out["rejected"] = dict(self._rejected)
         out["topology"] = self.topo.digest
+        if self.partial:      # a whole engine's state has no key: older states read the same
+            out["owned"] = self.owned.copy()
         if self._variant is not None:
             out["variant"] = self._variant.export()
         if self._split is not None:
@@ -1299,16 +1582,55 @@ class Engine:
 
     @classmethod
     def from_state(cls, topology: Topology, settings: EngineSettings,
-                   state: Mapping[str, Any]) -> Engine:
+                   state: Mapping[str, Any], *, owned: Any = None) -> Engine:
+        """The engine :meth:`export_state` saved, with the owned destinations it was saved
+        with; ``owned`` (None: whatever the state says) must then be the same set, or the
+        state a whole engine's (its owned columns are taken: exact, see the module
+        docstring; a shard's state from before engines had owned destinations)."""
         if state.get("topology") != topology.digest:
             raise ValueError("state was saved for another topology "
                              f"({state.get('topology')} != {topology.digest})")
-        eng = cls(topology, settings)
+        n = topology.n
+        saved = _owned_columns(n, state.get("owned"))[0]
+        cut: np.ndarray | None = None
+        # an owning engine's state under a variant (a shard worker restarted with one): a
+        # whole engine, the saved columns in place, the others fresh (never published)
+        spread: np.ndarray | None = None
+        if saved.size < n and owned is None and settings.variant != "plain":
+            spread, saved = saved, np.arange(n, dtype=np.int64)
+        if owned is not None:
+            want = _owned_columns(n, owned)[0]
+            if saved.size == n and want.size < n:
+                cut, saved = want, want
+            elif not np.array_equal(saved, want):
+                raise ValueError(f"state was saved for {saved.size} owned destinations, not "
+                                 f"the {want.size} asked for (another shard's state, or "
+                                 "another shard map)")
+        eng = cls(topology, settings, owned=saved if saved.size < n else None)
+
+        def columns(k: str, a: np.ndarray) -> np.ndarray:
+            if spread is not None and k != "live":
+                full = getattr(eng, k).copy()
+                if k == "_dirty":
+                    full[:] = True            # every destination due once
+                else:
+                    full[:, spread] = a
+                return full
+            if cut is None or k == "live":
+                return a
+            return a[cut] if k == "_dirty" else a[:, cut]
+
+        eng._bound = None   # holds the arrays replaced below: let each go as it is
         for k in cls._ARRAYS:
-            a = np.asarray(state[k])
+            a = columns(k, np.asarray(state[k]))
             cur = getattr(eng, k)
             if a.shape != cur.shape:
                 raise ValueError(f"state array {k} has shape {a.shape}, expected {cur.shape}")
+            if k == "N":
+                # counts saved wider (int64 before they were narrowed, or under other
+                # settings) saturate at this engine's cap: the same steps from here on
+                setattr(eng, k, _saturated(a, eng._count_cap, cur.dtype))
+                continue
             setattr(eng, k, np.array(a, dtype=cur.dtype, order="C", copy=True))
         for k in cls._SCALARS:
             setattr(eng, k, type(getattr(eng, k))(state[k]))
@@ -1318,15 +1640,18 @@ class Engine:
         # as the published ones); which destinations are stable is not saved, so any
         # fallback of a due destination sends it to the full pass once
         if "_hyst" in state:
-            h = np.asarray(state["_hyst"])
+            h = columns("_hyst", np.asarray(state["_hyst"]))
             if h.shape != eng.greedy.shape:
                 raise ValueError(f"state array _hyst has shape {h.shape}, "
                                  f"expected {eng.greedy.shape}")
-            eng._hyst = np.array(h, dtype=np.int64, order="C", copy=True)
+            eng._hyst = np.array(h, dtype=eng._hyst.dtype, order="C", copy=True)
         else:
-            eng._hyst = eng.greedy.copy()
+            eng._hyst = eng.greedy.astype(eng._hyst.dtype)
         eng._forced = eng.greedy != eng._hyst
         eng._stable[:] = False
+        # older states have no cursor: nothing was left by a limited decide then
+        cur = int(state.get("_cursor", 0))
+        eng._cursor = cur if 0 <= cur < eng.nd and spread is None and cut is None else 0
         if eng._variant is not None and "variant" in state:
             eng._variant.restore(state["variant"])
         if eng._split is not None and "split" in state:
@@ -1344,11 +1669,48 @@ class Engine:
     def same_state(self, other: Engine) -> bool:
         """Bit-for-bit equality of learned state (for restart and replay checks)."""
         return all(np.array_equal(getattr(self, k), getattr(other, k), equal_nan=True)
-                   for k in ("Q", "N", "td", "greedy", "eps", "alt", "live")) and (
+                   for k in ("owned", "Q", "N", "td", "greedy", "eps", "alt", "live")) and (
+            self._cursor == other._cursor) and (
             self._variant is None and other._variant is None
             or self._variant is not None and self._variant.same(other._variant)) and (
             self._split is None and other._split is None
             or self._split is not None and self._split.same(other._split))
+
+
+def _owned_columns(n: int, owned: Any) -> tuple[np.ndarray, np.ndarray]:
+    """(owned destinations sorted, column of each node or -1) for ``owned`` node indices
+    (None: all n).  ValueError for an index outside the node list or an empty set."""
+    if owned is None:
+        own = np.arange(n, dtype=np.int64)
+    else:
+        own = np.unique(np.asarray(owned, dtype=np.int64).reshape(-1))
+        if own.size == 0:
+            raise ValueError("owned destinations: the set is empty")
+        if int(own[0]) < 0 or int(own[-1]) >= n:
+            raise ValueError(f"owned destinations: index {int(own[0]) if own[0] < 0 else int(own[-1])} "
+                             f"is outside the {n} nodes")
+    col = np.full(n, -1, dtype=np.int64)
+    col[own] = np.arange(own.size, dtype=np.int64)
+    return own, col
+
+
+def _decide_block_size(n: int) -> int:
+    """Destinations per block of the reference full pass: its (n, block) int64
+    temporaries stay near 2 MB each (the compiled pass has its own, smaller blocks)."""
+    return max(1, DECIDE_BLOCK_BYTES // (8 * max(1, n)))
+
+
+def _saturated(a: np.ndarray, cap: int, dtype: np.dtype) -> np.ndarray:
+    """A C-ordered copy of counts ``a`` in ``dtype``, each at most ``cap`` (and at least
+    0), converted a block of rows at a time (no full-size wide temporary)."""
+    out = np.empty(a.shape, dtype=dtype)
+    if a.ndim == 0 or a.shape[0] == 0:
+        out[...] = np.clip(a, 0, cap)
+        return out
+    step = max(1, (1 << 20) // max(1, a[0].size))
+    for i in range(0, a.shape[0], step):
+        out[i:i + step] = np.clip(a[i:i + step], 0, cap)
+    return out
 
 
 def _flat(a: np.ndarray) -> np.ndarray:

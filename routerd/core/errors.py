@@ -9,7 +9,6 @@ Must not import: anything (the standard library's dataclasses only).
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
 
 
 @dataclass(frozen=True, slots=True)

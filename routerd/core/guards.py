@@ -5,7 +5,8 @@ Owns the physical and statistical checks applied to a decoded batch *before*
 can apply the same object to the same rows), the per-reporter token buckets, and the
 fixed set of reasons they count under.
 
-Pure: numpy and the project's topology model only — no sockets, files, clocks, metrics.
+Pure: numpy, the project's topology model and the compiled kernels' selector
+(:mod:`routerd.core.kernels`: the screen in one pass) only — no sockets, files, clocks, metrics.
 Time comes in as ``now`` (seconds, any monotonic origin).  Must not import the engine's
 state, zmq, prometheus, the service or the simulator.
 
@@ -59,7 +60,11 @@ from typing import Any
 
 import numpy as np
 
+from . import kernels as _kern
 from .topology import Topology
+
+#: ``Guards(kernels=...)`` left out: the compiled kernels when built, else the reference.
+_AUTO: Any = object()
 
 #: Row rejection reasons added by the guards (a fixed tuple: metrics labels use it).
 REASONS: tuple[str, ...] = ("below_floor", "above_ceiling", "jump_held")
@@ -140,6 +145,21 @@ class Checked:
     clipped: int = 0
 
 
+_ARANGE = np.arange(0, dtype=np.int64)
+
+
+def row_numbers(m: int) -> np.ndarray:
+    """``np.arange(m)`` (int64) as a read-only view of one cached array: a clean batch's
+    ``keep`` here, a decoded batch's row numbers in :mod:`routerd.io.wire`.  A cache of a
+    constant, not state: every caller gets the same values whatever came before."""
+    global _ARANGE
+    if _ARANGE.shape[0] < m:
+        grown = np.arange(max(m, 4096), dtype=np.int64)
+        grown.flags.writeable = False
+        _ARANGE = grown
+    return _ARANGE[:m]
+
+
 @dataclass
 class _Bucket:
     batches: float
@@ -161,8 +181,12 @@ class Guards:
     """The guards of one topology.  :meth:`check` filters hop rows, :meth:`admit` applies
     the rate limits; both take ``now`` from the caller."""
 
-    def __init__(self, topo: Topology, settings: GuardSettings | None = None):
+    def __init__(self, topo: Topology, settings: GuardSettings | None = None, *,
+                 kernels: Any = _AUTO):
         self.topo = topo
+        #: the compiled module whose ``guards_clean`` runs the screen (:meth:`_clean`) in
+        #: one pass, or None for the numpy reference (:func:`routerd.core.kernels.select`)
+        self.kernels = _kern.select("auto") if kernels is _AUTO else kernels
         self.settings = settings or GuardSettings()
         n = topo.n
         self._n = n
@@ -178,9 +202,26 @@ class Guards:
         self._pending = np.zeros((max(topo.n_links, 1), 2), dtype=np.int64)   # side 0 low, 1 high
         self._buckets: OrderedDict[str, _Bucket] = OrderedDict()
         self.stats = GuardStats()
+        self._lk_flat = lk.ravel()
+        self._floors()
+
+    def _floors(self) -> None:
+        """The screen :meth:`check` runs first: per link (plus -inf at index -1, where a
+        row's via is no neighbour) the latency floor, per (via, destination) the estimate
+        floor, both flat.  A batch none of whose rows reaches a floor or the ceiling needs
+        nothing more (the common case: a few array passes instead of the full check)."""
+        s = self.settings
+        f_eff = s.floor_fraction * (1.0 - FLOOR_SLACK) if s.floor_fraction > 0 else 0.0
+        with np.errstate(invalid="ignore"):
+            fl = np.append(f_eff * self._delay, -np.inf) if f_eff else \
+                np.full(self._delay.shape[0] + 1, -np.inf)
+            fd = (f_eff * self._dist).ravel() if f_eff else np.full(self._n * self._n, -np.inf)
+        self._floor_link = fl
+        self._floor_dist = np.where(np.isnan(fd), -np.inf, fd)
 
     def reconfigure(self, settings: GuardSettings) -> None:
         self.settings = settings
+        self._floors()
         while len(self._buckets) > settings.max_reporters:
             self._buckets.popitem(last=False)
 
@@ -233,6 +274,8 @@ class Guards:
         lat = np.asarray(latency, dtype=np.float64)
         est = np.asarray(estimate, dtype=np.float64)
         m = src.shape[0]
+        if m and s.jump_factor <= 0 and self._clean(src, via, dst, lat, est):
+            return Checked(row_numbers(m), lat, ())
         code = np.full(m, -1, dtype=np.int64)
         if m == 0:
             return Checked(np.empty(0, np.int64), np.empty(0), ())
@@ -274,6 +317,30 @@ class Guards:
             self.stats.rejected[r] += 1
         self.stats.clipped += clipped
         return Checked(keep, out_lat[keep], rejected, clipped)
+
+    def _clean(self, src: np.ndarray, via: np.ndarray, dst: np.ndarray, lat: np.ndarray,
+               est: np.ndarray) -> bool:
+        """True when no row can be marked by the floor or the ceiling (indices in range; a
+        NaN compares false everywhere, and a row the engine refuses is never the guards'):
+        then the full check would keep every row as it is.  False: run the full check."""
+        n = self._n
+        k = self.kernels
+        if k is not None and src.flags.c_contiguous and via.flags.c_contiguous \
+                and dst.flags.c_contiguous and lat.flags.c_contiguous and est.flags.c_contiguous:
+            return bool(k.guards_clean(src, via, dst, lat, est, n, self._lk_flat,
+                                       self._floor_link, self._floor_dist,
+                                       float(self.settings.ceiling_s)))
+        if max(src.view(np.uint64).max(), via.view(np.uint64).max(),
+               dst.view(np.uint64).max()) >= n:     # read as unsigned, a negative is huge
+            return False
+        link = self._lk_flat[src * n + via]
+        ceil = self.settings.ceiling_s
+        flag = lat < self._floor_link[link]
+        flag |= lat > ceil
+        flag |= est > ceil
+        # an estimate's floor holds only where via is x's neighbour (link >= 0)
+        flag |= (est < self._floor_dist[via * n + dst]) & (link >= 0)
+        return not flag.any()
 
     def _jumps(self, code: np.ndarray, link: np.ndarray, known: np.ndarray,
                out_lat: np.ndarray) -> int:

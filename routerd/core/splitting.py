@@ -2,8 +2,8 @@
 
 Owns: the settings of ``engine.mode = split`` (:data:`FIELDS`), the per-link rate and
 latency estimates, the marginal-cost arithmetic (:func:`link_marginals`), the share step
-(:func:`share_step`), the weighted-graph loop check (:func:`cyclic`) and the split state
-(:class:`SplitState`: export, restore, comparison).
+(:func:`share_step`), the weighted-graph loop check (:func:`cyclic`), seeding shares from
+outside (:func:`seed`) and the split state (:class:`SplitState`: export, restore, comparison).
 Pure: numpy and the standard library only — no sockets, files, clocks, YAML or metrics;
 time comes in as the engine's ``now``.  Must not import routerd.core.engine (the engine imports
 this module and hands itself in; only its arrays are used).
@@ -53,6 +53,27 @@ three things around it.
    The service time tau of an idle link is its capacity over the mean packet size,
    estimated as the median over links with traffic of ``s / (1 + F s)`` (= 1/C) times
    their capacity: so an idle link's marginal is ``p + tau``, not an optimistic ``p``.
+   *The rate as a leading signal* (``split_rate_model``, 0.97).  Near capacity the
+   measured latency lags: the queue takes seconds to build (an M/M/1 queue's relaxation
+   time grows like ``(1 - sqrt(rho))^-2``), so shares kept moving onto a link until its
+   queue showed, then left it, and link loads swung between 0.7 and 1.0 over ~5 s on the
+   geometric graph at 1.2x.  The measured rate answers a share change within the rate
+   window.  So the latency the marginal, externality and curvature are computed from is
+   ``max(L, p + tau / (1 - min(F tau, rho_max)))``: the measured one, or the stationary
+   M/M/1 sojourn (Kleinrock: ``1/(C - F)``) of the measured rate on the link's known
+   capacity (``tau`` as above, from its capacity in b/s), with the utilisation capped at
+   ``rho_max`` (past it the carried rate says nothing more; the queue, i.e. the measured
+   latency, does).  The refresh of the entries (2) keeps the measured latency.  Measured
+   (``bench/split_points.py``, 3 seeds): geometric 1.2x 1.28 -> 1.22 of mindelay, geant
+   1.2x 1.11 -> 1.06, abilene 1.2x's per-second CV 2.0 -> 1.1 of mindelay's.  Tried and
+   dropped: taking the curvature from the model alone (or the smaller of the two) makes
+   flow leave an overloaded link fast, but every key leaves at once and the network
+   collapsed into sustained overload (geometric, geant 1.2x: 2.1-2.4x, 3-7% drops).
+   Nor only on links whose queue holds over half the buffer, with ``max_step`` 0.1-0.3
+   against the herd: abilene's cold start at 1.2x came to 9-11 s, but the geometric graph
+   at 1.2x went to 1.24-1.39x with up to +0.9 points of drops; ``max_step`` 0.2 alone:
+   geometric 1.16x, abilene 1.11x and its cold start 20-29 s.  The settings trade one
+   network against another there.
    Along the current share graph (acyclic, see 4) the engine sums, per (x, d)::
 
        M[x, d] = sum_j w_j (m[x, j] + M[y_j, d])         link marginal distance
@@ -79,11 +100,28 @@ three things around it.
    curvature is enormous and flow leaves it slowly (tried and measured: capping the
    leaving path's curvature at 3-10x the receiving one's fixed a two-bridge network at
    1.2x load but made geant and a random geometric graph collapse there).
-   ``eta = step * dt / window`` and ``max_step' = max_step * dt /
-   window`` (dt: time since the previous decision), so a full step takes about one rate
-   window however often decisions come.  Next hops already used may keep a share even
-   when uphill (they move by the gradient only: forcing them to zero at once made the
-   noisy potential flip whole shares); only a *new* share must go downhill.
+   ``eta = step * b * dt / window`` and ``max_step' = min(max_step * b * dt /
+   window, 1)`` (dt: time since the previous decision), so a full step takes about one rate
+   window however often decisions come.  ``b`` (:func:`event_boost`) is 1 but after a
+   link goes down or up: ``1 + (boost - 1) exp(-(now - t_event) / boost_s)``
+   (``split_boost`` 3, ``split_boost_s`` 2 s), a large step while the shares are far from
+   the new optimum, decaying to the tracking step (Darken & Moody's "search then
+   converge" schedule, 1992, with a floor: Benveniste, Métivier & Priouret 1990).
+   Measured on abilene's busiest link cut at 0.5x: back within 10% of the level before
+   4.0-4.3 s after the repair, against 5.3 s without.  Not at the start: a boost there
+   did not shorten the cold start (abilene 1.2x, 3 seeds: 10-40 s, against 10-25 s),
+   whose first seconds are one overloaded link draining at the curvature-limited pace.  Next hops already used may keep a share even
+   when uphill (forcing them to zero at once made the noisy potential flip whole
+   shares); only a *new* share must go downhill.  But an uphill share blocks: a
+   neighbour's new downhill edge back towards it closes a cycle and is cut (4), so while
+   it lingers the neighbour cannot move its traffic (measured: 20,000 such cuts in 30 s
+   on two clusters at 1.2x, the short bridge stuck overloaded at 6x the optimum's delay,
+   its curvature making the gradient alone drain the blocking shares at under 1% a
+   second).  So an uphill share x -> y that blocks (y's cheapest candidate is the slot
+   back to x, which y does not use yet) gives up at least ``uphill_drain * max_step'``
+   per step (``split_uphill_drain``, 0.1: a tenth of a share per rate window), more
+   when its gradient says so.  Only blocking ones: draining every uphill share (noisy
+   near capacity) cost geometric 1.2x 1.42 against 1.24 of mindelay.
 
 4. *Loop freedom at every instant.*  ``M[x, d] = sum_j w_j (m_j + M[y_j, d])`` with
    ``m > 0`` exceeds ``M`` of at least one next hop x uses, so every routed node has a
@@ -105,6 +143,23 @@ three things around it.
    graph would loop is published whole from the internal (acyclic) shares — counted.
    The published graph is therefore acyclic after every decision; a cycle found after
    that repair is a bug and raises AssertionError.
+
+6. *Seeding* (:func:`seed`, the service's ``engine.optimum.guide``).  Shares from outside
+   (the flow-deviation optimum for the measured demand) replace the internal shares of
+   whole destinations: dead slots dropped, keys renormalised, and a destination is taken
+   only if every key the live tree routes keeps a share and its graph is acyclic
+   (:func:`cyclic`); otherwise it keeps its own.  So 4's invariant holds after a seed, and
+   the published shares change only at the next decision, by 5.
+
+7. *Two paths, one result.*  Everything above but the shared link estimates, the live
+   tree and the step size is per destination.  The compiled pass
+   (``routerd.core._kernels.split_decide``) takes destinations one at a time: it peels
+   sinks off the share graph once (Kahn's order, O(n K)) and uses that order both as the
+   loop check and for the marginal sums; skips the reversion check when the step added no
+   edge and the publication check when no key was replaced (a subgraph of an acyclic
+   graph is acyclic).  The numpy reference (:func:`_decide_reference`) takes every
+   destination at once and iterates to the fixed point.  Sums over slots are added in
+   slot order on both (:func:`ksum`), so the two give the same bits.
 
 No exploration draws: the shares are the load splitting, and the refresh keeps entries
 of used links fresh without sampling (the engine's ``eps`` holds the off-greedy share
@@ -129,6 +184,10 @@ FIELDS: dict[str, tuple[str, Any]] = {
     "split_window_s": ("engine.split.rate_window_s", 1.0),
     "split_refresh": ("engine.split.refresh", 0.5),
     "split_prior": ("engine.split.prior_samples", 2.0),
+    "split_uphill_drain": ("engine.split.uphill_drain", 0.1),
+    "split_boost": ("engine.split.event_boost", 3.0),
+    "split_boost_s": ("engine.split.event_boost_s", 2.0),
+    "split_rate_model": ("engine.split.rate_model", 0.97),
 }
 
 
@@ -151,6 +210,14 @@ def problems(s: Any) -> list[str]:
         bad.append(f"split_refresh {s.split_refresh} is not in (0, 1]")
     if not (s.split_prior > 0 and math.isfinite(s.split_prior)):
         bad.append(f"split_prior {s.split_prior} is not a positive finite number")
+    if not 0 <= s.split_uphill_drain <= 1:
+        bad.append(f"split_uphill_drain {s.split_uphill_drain} is not in [0, 1]")
+    if not (1 <= s.split_boost <= 100):
+        bad.append(f"split_boost {s.split_boost} is not in [1, 100]")
+    if not 0 <= s.split_rate_model < 1:
+        bad.append(f"split_rate_model {s.split_rate_model} is not in [0, 1)")
+    if not (s.split_boost_s > 0 and math.isfinite(s.split_boost_s)):
+        bad.append(f"split_boost_s {s.split_boost_s} is not a positive finite number")
     return bad
 
 
@@ -179,6 +246,31 @@ def link_marginals(L: np.ndarray, F: np.ndarray, prop: np.ndarray) -> tuple[np.n
     return L + e, e, 2.0 * s2 + 2.0 * F * s2 * s
 
 
+def event_boost(now: float, since: float, boost: float, tau: float) -> float:
+    """Step multiplier ``1 + (boost - 1) exp(-(now - since) / tau)``: ``boost`` right after
+    a link changed state (``since``), decaying to 1 with time constant ``tau``.  A large step while the shares are far from their goal, the constant tracking
+    step after: the "search then converge" schedule (Darken & Moody, "Towards faster
+    stochastic gradient search", NIPS 4, 1992) with a floor instead of a decay to zero, as a
+    tracking stochastic approximation needs (Benveniste, Métivier & Priouret, Adaptive
+    Algorithms and Stochastic Approximations, 1990, Part I ch. 1)."""
+    if boost == 1.0 or not now >= since:
+        return 1.0
+    return 1.0 + (boost - 1.0) * math.exp(-(now - since) / tau)
+
+
+def rate_model_latency(F: np.ndarray, prop: np.ndarray, tau: np.ndarray, rho_max: float
+                       ) -> np.ndarray:
+    """The stationary M/M/1 latency ``p + tau / (1 - rho)`` of a link with service time
+    ``tau`` (1/C) carrying ``F`` packets/s, ``rho = F tau`` capped at ``rho_max``
+    (Kleinrock's M/M/1 sojourn 1/(C - F)); ``p`` where tau is 0 (no capacity known).  It
+    answers a change of the link's rate at once, where the measured mean latency follows the
+    queue, which near capacity takes seconds to build (its relaxation time grows like
+    (1 - sqrt(rho))^-2: Cohen, The Single Server Queue; common practice to take it as a
+    lagging signal)."""
+    rho = np.minimum(F * tau, rho_max)
+    return prop + np.where(tau > 0, tau / (1.0 - rho), 0.0)
+
+
 def service_time(L: np.ndarray, F: np.ndarray, prop: np.ndarray) -> np.ndarray:
     """1/C of an M/M/1 link from its measured latency and rate: s / (1 + F s), s = L - p."""
     s = np.maximum(L - prop, 0.0)
@@ -186,14 +278,18 @@ def service_time(L: np.ndarray, F: np.ndarray, prop: np.ndarray) -> np.ndarray:
 
 
 def share_step(w: np.ndarray, delta: np.ndarray, H: np.ndarray, cand: np.ndarray,
-               t: np.ndarray, step: float, max_step: float) -> np.ndarray:
+               t: np.ndarray, step: float, max_step: float,
+               uphill: np.ndarray | None = None, drain: float = 0.0) -> np.ndarray:
     """One projection step of the shares ``w`` (..., K) towards the least marginal cost.
 
     ``delta``: marginal delivery cost per slot, ``H``: downstream curvature per slot,
     ``cand``: slots allowed to hold a share, ``t``: traffic of the key (packets/s).
     Non-candidates give up everything; every candidate but the cheapest gives up
     ``min(w, max_step, step (delta - delta*) / (t (H + H*)))``; the cheapest takes it all.
-    Keys without a candidate are returned unchanged (the caller repairs them first)."""
+    ``uphill``: candidates that already hold a share but are not downhill and block a
+    neighbour's new downhill edge (see the module docstring); each gives up at least
+    ``min(w, drain)``.  Keys without a candidate are returned unchanged (the caller repairs
+    them first)."""
     has = np.asarray(cand.any(axis=-1))
     dm = np.where(cand, delta, np.inf)
     js = np.argmin(dm, axis=-1)[..., None]
@@ -204,12 +300,24 @@ def share_step(w: np.ndarray, delta: np.ndarray, H: np.ndarray, cand: np.ndarray
     raw = np.where(np.isnan(raw), np.inf, raw)   # 0/0: no traffic and no curvature
     raw = np.maximum(raw, 0.0)
     give = np.where(cand, np.minimum(np.minimum(w, max_step), raw), w)
+    if uphill is not None:
+        give = np.where(uphill, np.maximum(give, np.minimum(w, drain)), give)
     slot = np.arange(w.shape[-1])
     give = np.where(slot == js, 0.0, give)
     new = w - give
-    np.put_along_axis(new, js, np.take_along_axis(new, js, axis=-1) + give.sum(axis=-1, keepdims=True),
+    np.put_along_axis(new, js, np.take_along_axis(new, js, axis=-1) + ksum(give)[..., None],
                       axis=-1)
     return np.where(has[..., None], new, w)
+
+
+def ksum(a: np.ndarray) -> np.ndarray:
+    """Sum over the last (slot) axis in slot order, one addition at a time from 0.0: the
+    order the compiled pass (routerd.core._kernels.split_decide) adds in, so both paths
+    round alike (numpy's own reduction order depends on the length and the layout)."""
+    out = np.zeros(a.shape[:-1])
+    for j in range(a.shape[-1]):
+        out = out + a[..., j]
+    return out
 
 
 def cyclic(w: np.ndarray, slots: np.ndarray) -> np.ndarray:
@@ -247,9 +355,9 @@ def dag_sums(w: np.ndarray, slots: np.ndarray, m: np.ndarray, e: np.ndarray, h: 
         Ey = E[ys].transpose(0, 2, 1)
         Hy = H[ys].transpose(0, 2, 1)
         with np.errstate(invalid="ignore"):
-            M2 = np.where(on, w * (mm + My), 0.0).sum(axis=2)
-            E2 = np.where(on, w * (ee + Ey), 0.0).sum(axis=2)
-            H2 = np.where(on, w * (hh + Hy), 0.0).sum(axis=2)
+            M2 = ksum(np.where(on, w * (mm + My), 0.0))
+            E2 = ksum(np.where(on, w * (ee + Ey), 0.0))
+            H2 = ksum(np.where(on, w * (hh + Hy), 0.0))
         M2 = np.where(routed, M2, np.inf)
         M2[diag, diag] = 0.0
         E2[diag, diag] = 0.0
@@ -266,7 +374,7 @@ class SplitState:
     ARRAYS = ("lk_cnt", "lk_sum", "lk_t", "key_cnt", "key_t", "w", "pub")
     SCALARS = ("publications", "share_moves", "forced", "fallbacks", "whole_publications",
                "started")
-    FLOATS = ("last_now", "last_obs")
+    FLOATS = ("last_now", "last_obs", "last_event")
 
     def __init__(self, eng: Any):
         n, K = eng.n, eng.k
@@ -289,12 +397,25 @@ class SplitState:
         self.last_now = eng.now      # the previous decision's time (the step scales with it)
         self.last_obs = -math.inf    # the newest observation's time
         self.started = 0             # 1 once a row has been observed
+        self.last_event = -math.inf  # the last link state change (the step's boost decays from it)
         topo = eng.topo
         sl = np.maximum(topo.slot_link, 0)
         self.prop = np.where(eng._present, topo.delay_s[sl], 0.0)
         self.slots = eng._slots
         self._last_uncycled = 0
         self.cap_bps = np.where(eng._present, topo.capacity_bps[sl], np.inf)
+        # the slot back: rev[x, j] = y's slot towards x (y = slots[x, j]), -1 without one
+        present = self.slots >= 0
+        self.rev = np.where(present, eng._slot_of[np.maximum(self.slots, 0), np.arange(n)[:, None]], -1
+                            ).astype(np.int64)
+        # who reaches each node through which slot (CSR by node): the compiled pass peels
+        # sinks off a destination's graph in O(n K) with it
+        xs_, js_ = np.nonzero(self.slots >= 0)
+        order = np.argsort(self.slots[xs_, js_], kind="stable")
+        self.in_slots = (
+            np.concatenate(([0], np.cumsum(np.bincount(self.slots[xs_, js_], minlength=n)))).astype(np.int64),
+            np.ascontiguousarray(xs_[order], dtype=np.int64),
+            np.ascontiguousarray(js_[order], dtype=np.int64))
 
     # -- observations ---------------------------------------------------------------
     def observe(self, x: np.ndarray, j: np.ndarray, d: np.ndarray, lat: np.ndarray,
@@ -324,6 +445,14 @@ class SplitState:
     def link_estimates(self, now: float, window: float, prior: float
                        ) -> tuple[np.ndarray, np.ndarray]:
         """(L, F) per slot at ``now``: measured mean latency (with the idle prior) and rate."""
+        L, F, _ = self.link_estimates_tau(now, window, prior)
+        return L, F
+
+    def link_estimates_tau(self, now: float, window: float, prior: float
+                           ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(L, F, tau) per slot at ``now``: :meth:`link_estimates` and each link's service
+        time (its capacity over the estimated mean packet size; 0 before any link carried
+        enough traffic to estimate it, or where the capacity is not known)."""
         f = np.exp(-np.maximum(now - self.lk_t, 0.0) / window)
         cnt = self.lk_cnt * f
         sm = self.lk_sum * f
@@ -336,7 +465,7 @@ class SplitState:
         tau0 = np.where(np.isfinite(self.cap_bps), bits / self.cap_bps, 0.0)
         L0 = self.prop + tau0
         L = (sm + prior * L0) / (cnt + prior)
-        return L, F
+        return L, F, tau0
 
     def key_rate(self, now: float, window: float) -> np.ndarray:
         return self.key_cnt * np.exp(-np.maximum(now - self.key_t, 0.0) / window) / window
@@ -381,14 +510,14 @@ class SplitState:
             setattr(self, k, np.array(a, dtype=cur.dtype, order="C", copy=True))
         for k in self.SCALARS:
             setattr(self, k, int(st[k]))
-        for k in self.FLOATS:
-            setattr(self, k, float(st[k]))
+        for k in self.FLOATS:   # a state saved before last_event existed: no boost
+            setattr(self, k, float(st.get(k, -math.inf)) if k == "last_event" else float(st[k]))
 
     def same(self, other: SplitState | None) -> bool:
         return other is not None and all(
             np.array_equal(getattr(self, k), getattr(other, k)) for k in self.ARRAYS) and (
             self.last_now == other.last_now and self.last_obs == other.last_obs
-            and self.started == other.started)
+            and self.last_event == other.last_event and self.started == other.started)
 
 
 def onehot_slots(slot: np.ndarray, K: int) -> np.ndarray:
@@ -402,7 +531,79 @@ def onehot_slots(slot: np.ndarray, K: int) -> np.ndarray:
 
 def decide(st: SplitState, eng: Any, now: float) -> tuple[set[int], int, int]:
     """One split-mode decision over every destination (see the module docstring).
-    Returns (nodes whose published table changed, greedy hops changed, loops prevented)."""
+    Returns (nodes whose published table changed, greedy hops changed, loops prevented).
+
+    What is shared by all destinations (link estimates and marginals, the live
+    shortest-path tree, the step) is computed here; the per-destination part runs on the
+    compiled pass (:func:`routerd.core._kernels.split_decide`, one destination at a
+    time, O(n K) each) when the engine's kernels are compiled, else on the numpy
+    reference (:func:`_decide_reference`, all destinations at once).  Both give the same
+    state to the bit (tests/test_splitting.py)."""
+    s = eng.settings
+    n = eng.n
+    L, F, tau0 = st.link_estimates_tau(now, s.split_window_s, s.split_prior)
+    spt = eng._spt_live()                                      # (n, n) node, -1
+    spt_slot = np.where(spt >= 0, eng._slot_of[np.arange(n)[:, None], np.maximum(spt, 0)], -1)
+    Lm = L
+    if s.split_rate_model > 0:
+        Lr = rate_model_latency(F, st.prop, tau0, s.split_rate_model)
+        Lm = np.maximum(L, Lr)
+    m, e, h = link_marginals(Lm, F, st.prop)
+    m = np.maximum(m, 1e-12)
+    g = h * F                                       # flow-weighted curvature (s)
+    # the step scales with the time the estimates had to move since the last decision:
+    # from then to now, but not past the newest observation (a shell that decides long
+    # after its last rows, or for the first time after starting, moves nothing on no news)
+    dt = min(max(min(now, st.last_obs) - st.last_now, 0.0), s.split_window_s)
+    st.last_now = now
+    b = event_boost(now, st.last_event, s.split_boost, s.split_boost_s)
+    eta = s.split_step * b * dt / s.split_window_s
+    mx = min(s.split_max_step * b * dt / s.split_window_s, 1.0)
+    drain = s.split_uphill_drain * mx
+    kern = getattr(eng, "_kern", None)
+    if kern is not None and hasattr(kern, "split_decide"):
+        return _decide_compiled(kern, st, eng, L, m, e, g, spt_slot, eta, mx, drain)
+    return _decide_reference(st, eng, L, m, e, g, spt_slot, eta, mx, drain)
+
+
+_SPLIT_ERRORS = {-1: "loop repair did not converge", -2: "a cycle made of old edges only",
+                 -3: "cycle reversion did not converge",
+                 -5: "the published share graph has a cycle"}
+
+
+def _decide_compiled(kern: Any, st: SplitState, eng: Any, L: np.ndarray, m: np.ndarray,
+                     e: np.ndarray, g: np.ndarray, spt_slot: np.ndarray, eta: float,
+                     mx: float, drain: float) -> tuple[set[int], int, int]:
+    s = eng.settings
+    n = eng.n
+    c64 = np.ascontiguousarray
+    counts = np.zeros(8, dtype=np.int64)
+    changed = np.zeros(n, dtype=np.uint8)
+    in_ptr, in_x, in_j = st.in_slots
+    err = kern.split_decide(eng.Q, st.w, st.pub, eng.live.view(np.uint8),
+                            eng._present.view(np.uint8), st.slots, st.rev, in_ptr, in_x, in_j,
+                            c64(L, dtype=np.float64), c64(m, dtype=np.float64),
+                            c64(e, dtype=np.float64), c64(g, dtype=np.float64),
+                            c64(spt_slot, dtype=np.int64), float(s.split_refresh),
+                            float(s.ceiling_s), float(eta), float(mx), float(drain),
+                            float(s.split_threshold),
+                            eng.greedy, eng.eps, eng.alt.view(np.uint8), changed, counts)
+    if err < 0:
+        raise AssertionError(f"split: {_SPLIT_ERRORS.get(int(err), err)}")
+    fallbacks, uncycled, reverted, moves, forced, whole, pubs, changes = counts.tolist()
+    st.fallbacks += fallbacks
+    st._last_uncycled = uncycled
+    st.share_moves += moves
+    st.forced += forced
+    st.whole_publications += whole
+    st.publications += pubs
+    return set(np.flatnonzero(changed).tolist()), changes, uncycled + reverted
+
+
+def _decide_reference(st: SplitState, eng: Any, L: np.ndarray, m: np.ndarray, e: np.ndarray,
+                      g: np.ndarray, spt_slot: np.ndarray, eta: float, mx: float,
+                      drain: float) -> tuple[set[int], int, int]:
+    """:func:`decide`'s per-destination part in numpy, every destination at once."""
     s = eng.settings
     n, K = eng.n, eng.k
     slots = eng._slots
@@ -411,7 +612,6 @@ def decide(st: SplitState, eng: Any, now: float) -> tuple[set[int], int, int]:
     live3 = live[:, None, :]
     diag = np.arange(n)
     ceil = s.ceiling_s
-    L, F = st.link_estimates(now, s.split_window_s, s.split_prior)
     # 1. refresh the entries of every live slot whose link carried rows, all destinations
     fresh = live.copy()
     if fresh.any():
@@ -423,13 +623,11 @@ def decide(st: SplitState, eng: Any, now: float) -> tuple[set[int], int, int]:
         new = q + s.split_refresh * (tgt - q)
         eng.Q[xr, :, jr] = np.minimum(np.maximum(new, 0.0), ceil)
     # 2. repair: no share on a dead link, every reachable key routed, no cycle
-    spt = eng._spt_live()                                      # (n, n) node, -1
-    spt_slot = np.where(spt >= 0, eng._slot_of[np.arange(n)[:, None], np.maximum(spt, 0)], -1)
     reach = spt_slot >= 0
     w = st.w
     lost = (w * (~live3)).sum(axis=2) > 0
     w = np.where(live3, w, 0.0)
-    tot = w.sum(axis=2)
+    tot = ksum(w)
     ren = lost & (tot > 0)
     if ren.any():
         w[ren] /= tot[ren][:, None]
@@ -442,9 +640,6 @@ def decide(st: SplitState, eng: Any, now: float) -> tuple[set[int], int, int]:
     w = _uncycle(st, w, spt_slot, n)
     prevented += st._last_uncycled
     # 3. marginals along the (acyclic) share graph, then one projection step
-    m, e, h = link_marginals(L, F, st.prop)
-    m = np.maximum(m, 1e-12)
-    g = h * F                                       # flow-weighted curvature (s)
     M, E, H = dag_sums(w, slots, m, e, g)
     My = M[ys].transpose(0, 2, 1)
     Ey = E[ys].transpose(0, 2, 1)
@@ -456,13 +651,14 @@ def decide(st: SplitState, eng: Any, now: float) -> tuple[set[int], int, int]:
     with np.errstate(invalid="ignore"):
         delta = np.where(cand, eng.Q + e[:, None, :] + Ey, np.inf)
         Hj = np.where(cand, g[:, None, :] + Hy, 0.0)
-    # the step scales with the time the estimates had to move since the last decision:
-    # from then to now, but not past the newest observation (a shell that decides long
-    # after its last rows, or for the first time after starting, moves nothing on no news)
-    dt = min(max(min(now, st.last_obs) - st.last_now, 0.0), s.split_window_s)
-    st.last_now = now
-    eta = s.split_step * dt / s.split_window_s
-    new = share_step(w, delta, Hj, cand, np.ones((n, n)), eta, s.split_max_step * dt / s.split_window_s)
+    # uphill shares that block: y_j's cheapest next hop is the new edge back to x
+    rev = st.rev
+    hasc = cand.any(axis=2)
+    js_all = np.where(hasc, np.argmin(np.where(cand, delta, np.inf), axis=2), -1)
+    yy, dd, rr = ys[:, None, :], np.arange(n)[None, :, None], np.maximum(rev, 0)[:, None, :]
+    block = (rev[:, None, :] >= 0) & (js_all[yy, dd] == rev[:, None, :]) & (w[yy, dd, rr] == 0)
+    uphill = cand & (w > 0) & ~(My < M[:, :, None]) & block
+    new = share_step(w, delta, Hj, cand, np.ones((n, n)), eta, mx, uphill, drain)
     new, reverted = _revert_cycles(new, w, slots, n)
     prevented += reverted
     moved = np.abs(new - st.w).max(axis=2) > 0
@@ -488,13 +684,47 @@ def decide(st: SplitState, eng: Any, now: float) -> tuple[set[int], int, int]:
     st.publications += int(changed.sum())
     # readers: greedy = the largest published share, eps = the rest, alt = the others
     routed = pub.sum(axis=2) > 0
-    g = np.where(routed, np.argmax(pub, axis=2), -1)
-    route_changes = int((g != eng.greedy).sum())
-    eng.greedy[:] = g
+    gs = np.where(routed, np.argmax(pub, axis=2), -1)
+    route_changes = int((gs != eng.greedy).sum())
+    eng.greedy[:] = gs
     eng.eps[:] = np.where(routed, 1.0 - pub.max(axis=2), 0.0)
-    eng.alt[:] = (pub > 0) & (np.arange(K)[None, None, :] != g[:, :, None])
+    eng.alt[:] = (pub > 0) & (np.arange(K)[None, None, :] != gs[:, :, None])
     nodes = set(np.flatnonzero(changed.any(axis=1)).tolist())
     return nodes, route_changes, prevented
+
+
+def seed(st: SplitState, eng: Any, W: np.ndarray) -> tuple[int, int]:
+    """Replace the internal shares of whole destinations with ``W`` (n, n, K), e.g. the
+    flow-deviation optimum's splits (the service's ``engine.optimum.guide``).
+
+    Safe by construction, destination by destination: shares on dead or absent slots are
+    dropped and each key renormalised; a destination is taken only if every key the live
+    shortest-path tree routes still has a share, no key keeps a share where there is no
+    route, and its weighted graph is acyclic (:func:`cyclic`); otherwise it keeps its
+    shares.  So the graph stays acyclic, shares sum to 1 over live next hops, and
+    the next :func:`decide` moves and publishes them by its own rules (published shares are
+    not touched here).  Returns (destinations seeded, destinations left alone)."""
+    n = eng.n
+    W = np.asarray(W, dtype=float)
+    if W.shape != st.w.shape:
+        raise ValueError(f"seed shares have shape {W.shape}, expected {st.w.shape}")
+    ok_slot = (eng.live & eng._present)[:, None, :]
+    Wl = np.where(ok_slot & np.isfinite(W) & (W > 0), W, 0.0)
+    tot = Wl.sum(axis=2)
+    diag = np.arange(n)
+    spt = eng._spt_live()
+    reach = spt >= 0
+    reach[diag, diag] = False
+    routed = tot > 0
+    routed[diag, diag] = False
+    bad = (reach != routed).any(axis=0)              # (d,): a key would gain or lose a route
+    with np.errstate(invalid="ignore", divide="ignore"):
+        Wn = np.where(routed[:, :, None], Wl / np.where(routed, tot, 1.0)[:, :, None], 0.0)
+    Wn[diag, diag] = 0.0
+    bad |= cyclic(Wn, st.slots).any(axis=0)
+    good = ~bad
+    st.w[:, good, :] = Wn[:, good, :]
+    return int(good.sum()), int(bad.sum())
 
 
 def _uncycle(st: SplitState, w: np.ndarray, spt_slot: np.ndarray, n: int) -> np.ndarray:
@@ -528,7 +758,7 @@ def _revert_cycles(new: np.ndarray, old: np.ndarray, slots: np.ndarray, n: int
             raise AssertionError("split: a cycle made of old edges only")
         # the cut edges' shares go back to the key's other next hops, pro rata
         kept = np.where(cut, 0.0, new)
-        tot = kept.sum(axis=2)
+        tot = ksum(kept)
         alone = keys & ~(tot > 0)
         kept[alone] = old[alone]
         scale = np.where(keys & (tot > 0), 1.0 / np.where(tot > 0, tot, 1.0), 1.0)
@@ -547,7 +777,7 @@ def published_values(pub: np.ndarray, Q: np.ndarray, ceiling: float) -> np.ndarr
     published split (0 at the destination, the ceiling without a route)."""
     n = pub.shape[0]
     with np.errstate(invalid="ignore"):
-        v = np.where(pub > 0, pub * Q, 0.0).sum(axis=2)
+        v = ksum(np.where(pub > 0, pub * Q, 0.0))
     v = np.where(pub.sum(axis=2) > 0, np.minimum(v, ceiling), ceiling)
     v[np.arange(n), np.arange(n)] = 0.0
     return v

@@ -169,7 +169,30 @@ class Topology:
         """
         if weights is None:
             return self._paths
-        return _all_pairs(self.n, self.src, self.dst, np.asarray(weights, dtype=float))
+        w = np.asarray(weights, dtype=float)
+        if w.shape == self.delay_s.shape:
+            out = np.isinf(w) & np.isfinite(self.delay_s)
+            if np.array_equal(np.where(out, self.delay_s, w), self.delay_s):
+                return self._without(out)
+        return _all_pairs(self.n, self.src, self.dst, w)
+
+    def _without(self, out: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`shortest_paths` with the links ``out`` taken out (weight inf) and every
+        other at its delay: only destinations whose delay tree uses one of them are grown
+        again.  For any other destination Dijkstra's run is the same without those links —
+        a link off the tree never won a relaxation (``<`` is strict: a tie keeps the first
+        finder), so it left at most a stale heap entry, skipped — so its column is the
+        delay tree's, bit for bit (``test_shortest_paths_without_links_is_the_full_run``)."""
+        D0, NH0 = self._paths
+        D, NH = D0.copy(), NH0.copy()
+        k = np.flatnonzero(out)
+        if k.size:
+            hit = (NH0[self.src[k]] == self.dst[k][:, None]).any(axis=0)
+            ds = np.flatnonzero(hit)
+            if ds.size:
+                w = np.where(out, np.inf, self.delay_s)
+                D[:, ds], NH[:, ds] = _to_targets(self.n, self.src, self.dst, w, ds.tolist())
+        return D, NH
 
     def shortest_from(self, source: int,
                       weights: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
@@ -280,14 +303,21 @@ def _replace(t: Topology, **kw: Any) -> Topology:
 def _all_pairs(n: int, src: np.ndarray, dst: np.ndarray,
                w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """All-pairs least weights (n, n) and next hops (n, n) int32 by one Dijkstra per target."""
+    return _to_targets(n, src, dst, w, range(n))
+
+
+def _to_targets(n: int, src: np.ndarray, dst: np.ndarray, w: np.ndarray,
+                targets: Any) -> tuple[np.ndarray, np.ndarray]:
+    """Least weights and next hops towards each of ``targets``: (n, k) columns."""
     rev: list[list[tuple[int, float]]] = [[] for _ in range(n)]
     for a, b, c in zip(src.tolist(), dst.tolist(), w.tolist()):
         if c < math.inf:
             rev[b].append((a, c))
-    D = np.full((n, n), np.inf)
-    NH = np.full((n, n), -1, dtype=np.int32)
+    k = len(targets)
+    D = np.full((n, k), np.inf)
+    NH = np.full((n, k), -1, dtype=np.int32)
     pop, push = heapq.heappop, heapq.heappush
-    for d in range(n):
+    for col, d in enumerate(targets):
         dist = [math.inf] * n
         via = [-1] * n
         dist[d] = 0.0
@@ -302,8 +332,8 @@ def _all_pairs(n: int, src: np.ndarray, dst: np.ndarray,
                     dist[v] = nd
                     via[v] = u
                     push(heap, (nd, v))
-        D[:, d] = dist
-        NH[:, d] = via
+        D[:, col] = dist
+        NH[:, col] = via
     return D, NH
 
 

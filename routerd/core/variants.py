@@ -255,9 +255,18 @@ class VariantState:
         """Count one more update of flat entry k; its core step size."""
         Nf = engine.N.reshape(-1)
         nn = int(Nf[k]) + 1
-        Nf[k] = nn
+        Nf[k] = min(nn, engine._count_cap)     # counts saturate (engine: "Counts")
         tab = engine._steps()
         return float(tab[nn]) if nn < len(tab) else engine._step_beyond(nn)
+
+    def _update(self, engine: Any, Qf: np.ndarray, k: int, y: int, d: int, lat: float,
+                e: float, ceil: float) -> tuple[float, float]:
+        """The core TD update of flat entry k from one row: (delta, the new clipped value);
+        counts the update.  The caller stores the value."""
+        old = float(Qf[k])
+        a = self._step(engine, k)
+        delta = lat + self._tail(engine, y, d, e) - old
+        return delta, _clip(old + a * delta, ceil)
 
     @staticmethod
     def _td(engine: Any, w: int, delta: float) -> None:
@@ -294,10 +303,8 @@ class FullEcho(VariantState):
         for x, y, d, j, lat, e in zip(rows.xs, rows.ys, rows.ds, rows.js, rows.lats, rows.ests):
             w = x * n + d
             k = w * K + j
-            old = float(Qf[k])
-            a = self._step(engine, k)
-            delta = lat + self._tail(engine, y, d, e) - old
-            Qf[k] = _clip(old + a * delta, ceil)
+            delta, q = self._update(engine, Qf, k, y, d, lat, e, ceil)
+            Qf[k] = q
             self._td(engine, w, delta)
             lj = x * K + j
             Lf[lj] = (1.0 - ws) * float(Lf[lj]) + ws * lat
@@ -342,10 +349,7 @@ class Predictive(VariantState):
         for x, y, d, j, lat, e in zip(rows.xs, rows.ys, rows.ds, rows.js, rows.lats, rows.ests):
             w = x * n + d
             k = w * K + j
-            old = float(Qf[k])
-            a = self._step(engine, k)
-            delta = lat + self._tail(engine, y, d, e) - old
-            q = _clip(old + a * delta, ceil)
+            delta, q = self._update(engine, Qf, k, y, d, lat, e, ceil)
             Qf[k] = q
             Bf[k] = min(Bf[k], q)
             u = float(Uf[k])
@@ -416,7 +420,7 @@ class Confidence(VariantState):
                 c_new = float(decayed(float(Cf[rb + zb]), now - float(Uf[rb + zb]), lam, iv))
             eta = max(c_new, 1.0 - c_old, floor)
             Nf = engine.N.reshape(-1)
-            Nf[k] = int(Nf[k]) + 1
+            Nf[k] = min(int(Nf[k]) + 1, engine._count_cap)
             delta = lat + self._tail(engine, y, d, e) - old
             Qf[k] = _clip(old + eta * delta, ceil)
             Cf[k] = c_old + eta * (c_new - c_old)

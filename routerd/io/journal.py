@@ -45,12 +45,17 @@ Record kinds (bodies are maps):
   the first one also fixes the engine settings a replay from scratch starts with.
 * ``batch``  — accepted observations: ``reporter``, ``batch``, ``t`` (the engine's ``now``),
   columns ``from``/``via``/``dst`` (int32 LE bytes), ``latency_s``/``estimate_s`` (float64 LE
-  bytes, NaN = absent), ``links`` ``[[src, dst, up], ...]`` (indices), ``ack`` (what was sent
+  bytes, NaN = absent; the whole ``estimate_s`` column is left out when the received
+  columnar frame had none: every estimate absent), ``links`` ``[[src, dst, up], ...]`` (indices), ``ack`` (what was sent
   back).  Applied as hops first, then links (:func:`apply_batch`) — the service must use the
   same function.
 * ``link``   — an operator override: ``from``, ``to`` (indices), ``up``, ``t``.
-* ``tick``   — the service called ``Engine.decide(t)``: ``t``.
+* ``tick``   — the service called ``Engine.decide(t)``: ``t``; ``limit`` when it bounded
+  the destinations that decision took (``Engine.decide(t, limit=...)``; older ticks lack it).
 * ``config`` — a reload: ``settings`` (every :class:`EngineSettings` field).
+* ``guide``  — split shares that seeded the engine (the service's ``engine.optimum.guide``):
+  ``t``, ``shape`` and the nonzero entries ``x``, ``d``, ``j`` (int32 LE) and ``w``
+  (float64 LE) bytes; applied with :func:`apply_guide` (:meth:`Engine.seed_shares`).
 
 * ``snapshot`` — a note written right after a snapshot: ``record`` (what it covers) and
   ``kept`` (the snapshot records present after writing it); recovery reads the last note to
@@ -94,6 +99,7 @@ import glob
 import os
 import re
 import struct
+import threading
 import time
 import zlib
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
@@ -108,7 +114,7 @@ from routerd.core.engine import Decision, Engine, EngineSettings, HopBatch, Obse
 from .fsmode import open_private, private_dir
 from routerd.core.topology import Topology
 
-KINDS: tuple[str, ...] = ("start", "batch", "link", "tick", "config", "snapshot")
+KINDS: tuple[str, ...] = ("start", "batch", "link", "tick", "config", "snapshot", "guide")
 FSYNC_POLICIES: tuple[str, ...] = ("batch", "interval", "never")
 
 SEG_MAGIC = b"RDJOURN1"
@@ -843,6 +849,9 @@ class Journal:
         self._fd = -1
         self._dirty = False
         self._last_sync = time.monotonic()
+        # held while the descriptor is synced from another thread (Syncer) and while it is
+        # closed or replaced (roll, close), so a sync never meets a closed or reused fd
+        self._fd_lock = threading.Lock()
         if segs and segs[-1][0] <= self._next and (self._next - segs[-1][0]) == \
                 self._count_in(segs[-1][1], segs[-1][0]):
             first, path = segs[-1]
@@ -875,11 +884,12 @@ class Journal:
         self._sizes[path] = SEG_HEADER.size
 
     def _roll(self) -> None:
-        if self.fsync != "never":
-            self._sync()
-        os.close(self._fd)
-        self._fd = -1
-        self._open_new()
+        with self._fd_lock:
+            if self.fsync != "never":
+                self._sync()
+            os.close(self._fd)
+            self._fd = -1
+            self._open_new()
 
     def append(self, kind: str, body: Mapping[str, Any], *, sync: bool | None = None) -> int:
         """Write one record; returns its number.  ``sync``: True forces an fsync, False
@@ -939,6 +949,19 @@ class Journal:
         if self._fd >= 0:
             self._sync()
 
+    def sync_written(self) -> None:
+        """fdatasync every record written so far, callable from another thread while the
+        owner goes on appending (:class:`Syncer`): what was written before the call is on
+        disk when it returns.  Leaves the owner's bookkeeping alone (a later :meth:`commit`
+        syncs again, harmlessly)."""
+        with self._fd_lock:
+            if self._fd < 0:
+                raise JournalError(f"journal {self.dir} is closed")
+            if hasattr(os, "fdatasync"):
+                os.fdatasync(self._fd)
+            else:  # pragma: no cover - not Linux
+                os.fsync(self._fd)
+
     def maybe_sync(self) -> bool:
         """fsync if something is unsynced and the interval has passed.  True if it did."""
         if self._dirty and time.monotonic() - self._last_sync >= self.fsync_interval_s:
@@ -987,17 +1010,95 @@ class Journal:
         return len(self._sizes)
 
     def close(self) -> None:
-        if self._fd >= 0:
-            if self.fsync != "never":
-                self._sync()
-            os.close(self._fd)
-            self._fd = -1
+        with self._fd_lock:
+            if self._fd >= 0:
+                try:
+                    if self.fsync != "never":
+                        self._sync()
+                finally:
+                    os.close(self._fd)
+                    self._fd = -1
 
     def __enter__(self) -> Journal:
         return self
 
     def __exit__(self, *exc: object) -> None:
         self.close()
+
+
+class Syncer:
+    """Group commit off the caller's thread: a writer thread that fdatasyncs a
+    :class:`Journal` while its owner goes on appending.
+
+    The owner appends records as usual (``sync=False``) and calls :meth:`request` with
+    the last record number it wants durable; the thread syncs (:meth:`Journal.sync_written`),
+    which covers every record written before the sync started, then publishes that number
+    as :attr:`durable` and writes one byte to a pipe whose read end (:attr:`wake_fd`) the
+    owner polls next to its sockets.  Requests that arrive during a sync are covered by the
+    next one (one fsync for all of them).  An ``OSError`` of the sync is kept in
+    :attr:`error` and the thread stops syncing: nothing numbered above :attr:`durable` may
+    then be acknowledged.  The owner must :meth:`close` the syncer before the journal.
+    Uses no clock and no sockets: a pipe, a condition variable, a thread."""
+
+    def __init__(self, journal: Journal):
+        self.journal = journal
+        self._cond = threading.Condition()
+        self._target = 0
+        self._durable = journal.last_record     # everything before us was synced by its writer
+        self.syncs = 0
+        self.error: BaseException | None = None
+        self._stop = False
+        self.wake_fd, self._wake_w = os.pipe()
+        os.set_blocking(self.wake_fd, False)
+        os.set_blocking(self._wake_w, False)
+        self._thread = threading.Thread(target=self._run, name="routerd-journal-sync", daemon=True)
+        self._thread.start()
+
+    @property
+    def durable(self) -> int:
+        """The highest record number known to be on disk."""
+        return self._durable
+
+    def request(self, upto: int) -> None:
+        """Ask for every record up to ``upto`` (already written) to be made durable."""
+        with self._cond:
+            if upto > self._target:
+                self._target = upto
+                self._cond.notify()
+
+    def drain(self) -> None:
+        """Empty the wake pipe (call when :attr:`wake_fd` is readable)."""
+        with contextlib.suppress(BlockingIOError, OSError):
+            while os.read(self.wake_fd, 4096):
+                pass
+
+    def _run(self) -> None:
+        while True:
+            with self._cond:
+                while not self._stop and (self._target <= self._durable or self.error is not None):
+                    self._cond.wait()
+                if self._stop:
+                    return
+                upto = self._target
+            try:
+                self.journal.sync_written()
+            except (OSError, JournalError) as e:
+                self.error = e
+            else:
+                self.syncs += 1
+                self._durable = upto
+            with contextlib.suppress(BlockingIOError, OSError):
+                os.write(self._wake_w, b"s")
+
+    def close(self) -> None:
+        """Stop the thread (a sync in progress finishes first) and close the pipe."""
+        with self._cond:
+            self._stop = True
+            self._cond.notify()
+        self._thread.join()
+        for fd in (self.wake_fd, self._wake_w):
+            with contextlib.suppress(OSError):
+                os.close(fd)
 
 
 def _write_all(fd: int, data: bytes) -> None:
@@ -1306,16 +1407,26 @@ def accepted_part(hops: HopBatch, rejected: Sequence[tuple[int, str]]) -> HopBat
 
 
 def batch_body(reporter: str, batch: int, t: float, hops: HopBatch,
-               links: Iterable[Sequence[Any]] = (), ack: Mapping[str, Any] | None = None
-               ) -> dict[str, Any]:
-    """A ``batch`` record body from the accepted hops and link events."""
+               links: Iterable[Sequence[Any]] = (), ack: Mapping[str, Any] | None = None,
+               *, raw: Mapping[str, bytes] | None = None) -> dict[str, Any]:
+    """A ``batch`` record body from the accepted hops and link events.  ``raw``: the
+    received frame's columns (``from``, ``via``, ``dst`` int32 LE, ``latency_s`` and
+    optionally ``estimate_s`` float64 LE bytes) when they hold exactly ``hops`` — taken
+    as they are instead of encoding the rows again (no ``estimate_s`` column in the frame:
+    none in the record, read back as NaN, as the decoder reads it).  Either way
+    :func:`batch_hops` reads back the same arrays."""
+    if raw is not None:
+        # a frame without estimates: no column of NaNs (a third of the record) to pack,
+        # checksum and write; batch_hops reads its absence as NaN, as the decoder did
+        cols = {k: raw[k] for k in ("from", "via", "dst", "latency_s", "estimate_s") if k in raw}
+    else:
+        cols = {"from": np.ascontiguousarray(hops.src, dtype="<i4").tobytes(),
+                "via": np.ascontiguousarray(hops.via, dtype="<i4").tobytes(),
+                "dst": np.ascontiguousarray(hops.dst, dtype="<i4").tobytes(),
+                "latency_s": np.ascontiguousarray(hops.latency, dtype="<f8").tobytes(),
+                "estimate_s": np.ascontiguousarray(hops.estimate, dtype="<f8").tobytes()}
     body: dict[str, Any] = {
-        "reporter": reporter, "batch": int(batch), "t": float(t),
-        "from": np.ascontiguousarray(hops.src, dtype="<i4").tobytes(),
-        "via": np.ascontiguousarray(hops.via, dtype="<i4").tobytes(),
-        "dst": np.ascontiguousarray(hops.dst, dtype="<i4").tobytes(),
-        "latency_s": np.ascontiguousarray(hops.latency, dtype="<f8").tobytes(),
-        "estimate_s": np.ascontiguousarray(hops.estimate, dtype="<f8").tobytes(),
+        "reporter": reporter, "batch": int(batch), "t": float(t), **cols,
         "links": [[int(a), int(b), bool(u)] for a, b, u in links],
     }
     if ack is not None:
@@ -1327,9 +1438,10 @@ def batch_hops(body: Mapping[str, Any]) -> HopBatch:
     """The HopBatch a ``batch`` record holds."""
     def col(k: str, dt: str) -> np.ndarray:
         return np.frombuffer(body[k], dtype=dt)
+    lat = col("latency_s", "<f8").copy()
+    est = col("estimate_s", "<f8").copy() if "estimate_s" in body else np.full(len(lat), np.nan)
     return HopBatch(col("from", "<i4").astype(np.int64), col("via", "<i4").astype(np.int64),
-                    col("dst", "<i4").astype(np.int64), col("latency_s", "<f8").copy(),
-                    col("estimate_s", "<f8").copy())
+                    col("dst", "<i4").astype(np.int64), lat, est)
 
 
 def apply_batch(engine: Engine, hops: HopBatch, links: Iterable[Sequence[Any]], now: float
@@ -1350,7 +1462,27 @@ class ReplayReport:
     configs: int = 0
     starts: int = 0
     snapshots: int = 0
+    guides: int = 0
     last_record: int = 0
+
+
+def guide_body(t: float, W: np.ndarray) -> dict[str, Any]:
+    """A ``guide`` record body: split shares (n, n, K) to seed the engine with (the
+    service's ``engine.optimum.guide``), as their nonzero entries (``x``, ``d``, ``j``
+    int32 LE and ``w`` float64 LE bytes)."""
+    x, d, j = np.nonzero(np.asarray(W) > 0)
+    return {"t": float(t), "shape": [int(v) for v in np.shape(W)],
+            "x": x.astype("<i4").tobytes(), "d": d.astype("<i4").tobytes(),
+            "j": j.astype("<i4").tobytes(), "w": np.asarray(W)[x, d, j].astype("<f8").tobytes()}
+
+
+def apply_guide(engine: Engine, body: Mapping[str, Any]) -> tuple[int, int]:
+    """Seed ``engine`` from a ``guide`` record body (:meth:`Engine.seed_shares`), the one way
+    both the service and replay do it: (destinations seeded, left alone)."""
+    W = np.zeros(tuple(int(v) for v in body["shape"]))
+    x, d, j = (np.frombuffer(body[k], dtype="<i4") for k in ("x", "d", "j"))
+    W[x, d, j] = np.frombuffer(body["w"], dtype="<f8")
+    return engine.seed_shares(W)
 
 
 def replay_into(engine: Engine, journal_records: Iterable[Record], *,
@@ -1367,8 +1499,8 @@ def replay_into(engine: Engine, journal_records: Iterable[Record], *,
             rep.batches += 1
             rep.hops += len(hops)
             rep.links += len(b.get("links", ()))
-        elif r.kind == "tick":
-            d = engine.decide(float(b["t"]))
+        elif r.kind == "tick":     # "limit": the service bounded that decision (Engine.decide)
+            d = engine.decide(float(b["t"]), limit=b.get("limit"))
             rep.ticks += 1
             if on_tick is not None:
                 on_tick(r, d)
@@ -1378,6 +1510,9 @@ def replay_into(engine: Engine, journal_records: Iterable[Record], *,
         elif r.kind == "config":
             engine.reconfigure(settings_from_dict(b["settings"]))
             rep.configs += 1
+        elif r.kind == "guide":
+            apply_guide(engine, b)
+            rep.guides += 1
         elif r.kind == "snapshot":
             rep.snapshots += 1          # a note for recovery; the engine is not touched
         elif r.kind == "start":
@@ -1432,11 +1567,12 @@ class Restored:
 def restore(state_dir: str, topo: Topology, settings: EngineSettings, *,
             on_tick: Callable[[Record, Decision], None] | None = None,
             on_record: Callable[[Record], None] | None = None,
-            recovery: Recovery | None = None) -> Restored:
+            recovery: Recovery | None = None, owned: Any = None) -> Restored:
     """The recovery's base (its snapshot, or the first ``start`` record's settings, else
     ``settings``) plus the journal records it keeps → an engine.  ``recovery``: what
     :func:`recover_state` returned (the service passes the one it applied); None: run it
-    read-only here."""
+    read-only here.  ``owned``: the destinations the engine holds (a shard's,
+    ``Engine(owned=)``; None: all, or what the snapshot was saved with)."""
     rec = recovery if recovery is not None else recover_state(state_dir, apply=False)
     rep = rec.report
     jdir = journal_dir(state_dir)
@@ -1444,14 +1580,14 @@ def restore(state_dir: str, topo: Topology, settings: EngineSettings, *,
     if rec.state is not None:
         state, after = rec.state, rep.base
         s_snap = settings_from_dict(state["settings"]) if "settings" in state else settings
-        eng = Engine.from_state(topo, s_snap, state["engine"])
+        eng = Engine.from_state(topo, s_snap, state["engine"], owned=owned)
     else:
         state, after = {}, 0
         first = next(iter_records(jdir, 0, until=rep.last_record), None) if rep.last_record else None
         s0 = settings
         if first is not None and first.kind == "start" and "settings" in first.body:
             s0 = settings_from_dict(first.body["settings"])
-        eng = Engine(topo, s0)
+        eng = Engine(topo, s0, owned=owned)
     records = iter_records(jdir, after, read, until=rep.last_record) if rep.last_record > after else iter(())
     res = replay_into(eng, records, on_tick=on_tick, on_record=on_record)
     return Restored(eng, after, state, res, read, list(rep.snapshots_skipped), rep)

@@ -436,6 +436,30 @@ def may_control(rep: Reporter | None, op: str) -> bool:
     return rep is not None and rep.control
 
 
+def recv_with_peer(sock: Any, flags: int, allow: Allow | None) -> tuple[list[bytes], Reporter | None]:
+    """One message from ``sock`` (``recv_multipart(flags)``: zmq.Again when none waits)
+    and, with CURVE on (``allow`` set), the allowed reporter its last frame's ``User-Id``
+    belongs to (None for a key not in the allow file, and without CURVE)."""
+    if allow is None:
+        return sock.recv_multipart(flags), None
+    frames = sock.recv_multipart(flags, copy=False)
+    return [f.bytes for f in frames], allow.for_user_id(user_id(frames[-1]))
+
+
+def control_refusal(op: str, peer: Reporter | None, *, curve: bool, readonly: bool) -> str | None:
+    """Why control ``op`` from ``peer`` is refused (the error text), or None when it may
+    run: on the read-only endpoint only :data:`READ_OPS`; under CURVE a state-changing op
+    needs a key with the control right."""
+    if readonly and op not in READ_OPS:
+        return (f"not_authorised: op {op!r} changes state; the read-only control endpoint "
+                f"serves {', '.join(READ_OPS)}")
+    if curve and not may_control(peer, op):
+        who = "no allowed key" if peer is None else f"the key of {peer.name!r}"
+        return (f"not_authorised: op {op!r} changes state and came with {who}, which has no "
+                "control right (control: true in the allow file)")
+    return None
+
+
 def exposed(endpoint: str | None) -> bool:
     """True when a ZeroMQ endpoint or a HOST:PORT address can be reached from other hosts
     (TCP on anything but a loopback address; ipc:// and inproc:// never)."""
@@ -478,6 +502,18 @@ def key_file_exposure(path: str) -> str | None:
     who = " and ".join(w for w, m in (("its group", 0o070), ("other users", 0o007)) if bits & m)
     return (f"secret key file {path} has mode {mode:04o}: {who} can read or change it, and "
             f"whoever reads it can act as this service; fix: chmod 600 {path}")
+
+
+def load_configured(cfg: Any, topo: Topology) -> tuple[tuple[bytes, bytes], Allow, str | None] | None:
+    """A config's CURVE setting loaded and checked: (server keys, allowed reporters, why the
+    secret key file is open to others or None), or None when CURVE is off.  Raises
+    :class:`InputError` (one key without the other, a bad key or allow file).  The service
+    and the shard front both start from this."""
+    sk, al = check_pair(cfg)
+    if sk is None or al is None:
+        return None
+    keys = load_server_key(sk)
+    return keys, load_allow(al, topo), key_file_exposure(sk)
 
 
 def check_pair(cfg: Any) -> tuple[str | None, str | None]:

@@ -29,7 +29,7 @@ import numpy as np
 from routerd.core import topology as _topology
 from routerd.core.errors import InputError
 
-__all__ = ["ShardMap", "merge_tables", "owned_routes", "replay_shards", "shard_dir",
+__all__ = ["ShardMap", "engine_owned", "merge_tables", "owned_routes", "replay_shards", "shard_dir",
            "sharded_state", "stable_hash"]
 
 _SHARD_DIR_RE = re.compile(r"^shard-(\d+)-of-(\d+)$")
@@ -101,6 +101,16 @@ def sharded_state(path: str) -> int | None:
     return max(ns) if ns else None
 
 
+def engine_owned(smap: ShardMap, k: int, variant: str, mode: str = "greedy") -> np.ndarray | None:
+    """The destinations shard k's engine holds (``Engine(owned=)``): its own, or None (all)
+    under a variant or in split mode, whose state spans destinations (the plain rule in
+    greedy mode only: per-link rates in split mode are measured over every destination)."""
+    own = smap.owned(k)
+    # (a shard that owns nothing keeps a whole engine: an engine has at least one column)
+    return own if (variant == "plain" and mode == "greedy"
+                   and 0 < own.size < smap.owner.size) else None
+
+
 # ---- tables ----------------------------------------------------------------------------------
 def owned_routes(engine: Any, x: int, mask: np.ndarray) -> dict[str, list[list[Any]]]:
     """:func:`routerd.io.wire.routes_by_name` restricted to the destinations where ``mask``
@@ -111,7 +121,8 @@ def owned_routes(engine: Any, x: int, mask: np.ndarray) -> dict[str, list[list[A
     # the whole-table path costs a whole row whatever is owned; per destination is
     # cheaper once a worker owns a quarter or less (200 nodes: 76 vs 97 ms at 1/4,
     # 82 vs 36 ms at 1/8 for every node's table)
-    if many is not None and 4 * int(mask.sum()) > mask.size:
+    # (an engine owning only its destinations has only those rows: the whole-table path)
+    if many is not None and (getattr(engine, "partial", False) or 4 * int(mask.sum()) > mask.size):
         table = many([x])[0]
         own = mask.tolist()
         return {names[d]: [[names[y], float(w)] for y, w in ws]
@@ -144,7 +155,9 @@ def replay_shards(state_root: str, topo: _topology.Topology, n_shards: int,
     smap = ShardMap.build(topo, n_shards, map_file)
     parts = []
     for k in range(n_shards):
-        r = _journal.restore(shard_dir(state_root, k, n_shards), topo, settings or EngineSettings())
+        s = settings or EngineSettings()
+        r = _journal.restore(shard_dir(state_root, k, n_shards), topo, s,
+                             owned=engine_owned(smap, k, s.variant, s.mode))
         own = smap.owner == k
         parts.append({topo.nodes[x]: owned_routes(r.engine, x, own) for x in range(topo.n)})
     return merge_tables(parts)

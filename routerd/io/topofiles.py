@@ -72,15 +72,15 @@ def load_graphml(path: str, defaults: LinkDefaults = LinkDefaults()) -> Topology
     nodes = [nd.get("id", "") for nd in g.iter(f"{ns}node")]
     specs: list[LinkSpec] = []
     problems: list[Problem] = []
-    for i, e in enumerate(g.iter(f"{ns}edge")):
+    for i, edge in enumerate(g.iter(f"{ns}edge")):
         data = {keys.get(d.get("key", ""), d.get("key", "")): (d.text or "").strip()
-                for d in e.iter(f"{ns}data")}
-        w = f"{path}: edge[{i}] ({e.get('source')} - {e.get('target')})"
+                for d in edge.iter(f"{ns}data")}
+        w = f"{path}: edge[{i}] ({edge.get('source')} - {edge.get('target')})"
         if "delay_s" not in data:
             problems.append(Problem(f"{w}.delay_s", None, "is missing"))
             continue
-        a, b = e.get("source", ""), e.get("target", "")
-        edir = e.get("directed")
+        a, b = edge.get("source", ""), edge.get("target", "")
+        edir = edge.get("directed")
         is_dir = directed if edir is None else edir == "true"
         for s, t in ([(a, b)] if is_dir else [(a, b), (b, a)]):
             specs.append(LinkSpec(s, t, _num(data.get("delay_s")), _num(data.get("capacity_bps")),

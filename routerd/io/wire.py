@@ -7,7 +7,8 @@ returns a value (:class:`Ingest`, a dict) or a :class:`WireError` that says whic
 held which value and which rule it broke.
 
 Must not import: zmq, prometheus, files or clocks.  Imports numpy, msgpack, the
-topology model and the engine's value types (``HopBatch``, ``REJECT_REASONS``) only.
+topology model, the engine's value types (``HopBatch``, ``REJECT_REASONS``) and the
+compiled kernels' selector (:mod:`routerd.core.kernels`: the columnar decode) only.
 Never pickle: only plain msgpack types cross the wire.
 
 Messages (all msgpack maps; strings UTF-8, byte strings msgpack ``bin``)
@@ -66,9 +67,10 @@ a hop over a link marked down).
 from __future__ import annotations
 
 import math
+import sys
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from itertools import chain
+from itertools import chain, repeat
 from operator import itemgetter
 from types import SimpleNamespace
 from typing import Any
@@ -78,7 +80,9 @@ import numpy as np
 
 from routerd.core.engine import REJECT_REASONS as _ENGINE_REASONS
 from routerd.core.engine import HopBatch
+from routerd.core.guards import row_numbers
 from routerd.core.topology import Topology
+from routerd.core import kernels as _kernels
 
 VERSION = 1
 
@@ -120,7 +124,12 @@ _INGEST_KEYS = frozenset({"v", "reporter", "batch", "hops", "links", "cols", "to
 _COLS_REQUIRED = ("from", "via", "dst", "latency_s")
 _COLS_KEYS = frozenset(_COLS_REQUIRED + ("estimate_s",))
 _I4 = np.dtype("<i4")
+_U4 = np.dtype("<u4")
 _F8 = np.dtype("<f8")
+#: The compiled decode reads the column bytes as the host's int32/float64: little-endian only.
+_LITTLE = sys.byteorder == "little"
+#: ``decode_ingest(kernels=AUTO)``: the compiled kernels when built, else the reference.
+AUTO: Any = object()
 
 
 # ---- values ------------------------------------------------------------------------------
@@ -157,6 +166,10 @@ class Ingest:
     rejected: tuple[tuple[int, str], ...]
     rows_total: int = 0
     columnar: bool = False
+    #: a columnar frame whose every hop row decoded: its column bytes as received
+    #: (little-endian int32 / float64, the journal's ``batch`` record layout), so an
+    #: applied batch nobody trimmed is journaled without encoding its rows again
+    raw_cols: Mapping[str, bytes] | None = None
 
     def rejections(self, engine_rejected: Sequence[tuple[int, str]] = ()) -> list[list[Any]]:
         """Every rejected row in wire numbering, sorted: decode-time ones plus the engine's
@@ -165,7 +178,7 @@ class Ingest:
         if len(engine_rejected):
             rows = self.hop_rows
             out += [[int(rows[i]), s] for i, s in engine_rejected]
-        out.sort(key=lambda p: int(p[0]))
+        out.sort(key=itemgetter(0))      # ints already: no conversion per comparison
         return out
 
 
@@ -250,17 +263,23 @@ def _header(obj: Any) -> tuple[str, int] | WireError:
 
 # ---- ingest ------------------------------------------------------------------------------
 def decode_ingest(frame: bytes, topo: Topology, *, max_rows: int | None = None,
-                  max_bytes: int | None = None) -> Ingest | WireError:
-    """Decode one ingest frame against ``topo``.  Never raises on any input."""
+                  max_bytes: int | None = None, kernels: Any = AUTO) -> Ingest | WireError:
+    """Decode one ingest frame against ``topo``.  Never raises on any input.
+
+    ``kernels``: the compiled module (:func:`routerd.core.kernels.select`) whose
+    ``cols_decode`` widens a columnar frame's columns and checks their indices in one
+    pass, or None for the numpy reference (the same values either way:
+    ``tests/test_ingest_kernels.py``); by default the compiled one when it is built."""
     try:
-        return _decode_ingest(frame, topo, max_rows, max_bytes)
+        return _decode_ingest(frame, topo, max_rows, max_bytes,
+                              _kernels.select("auto") if kernels is AUTO else kernels)
     except Exception as e:  # noqa: BLE001 -  # a bug of ours must not take the service down; say so loudly
         return WireError(f"bad_request: internal decoder error {type(e).__name__}: "
                          f"{_show(str(e), 80)} (please report)")
 
 
 def _decode_ingest(frame: Any, topo: Topology, max_rows: int | None,
-                   max_bytes: int | None) -> Ingest | WireError:
+                   max_bytes: int | None, kern: Any = None) -> Ingest | WireError:
     obj = _unpack(frame, max_bytes)
     if isinstance(obj, WireError):
         return obj
@@ -280,11 +299,12 @@ def _decode_ingest(frame: Any, topo: Topology, max_rows: int | None,
     if "cols" in obj:
         if "hops" in obj:
             return err("conflicting_formats: a batch has 'hops' or 'cols', not both")
-        cols = _decode_cols(obj, topo, err)
+        cols = _decode_cols(obj, topo, err, kern)
         if isinstance(cols, WireError):
             return cols
         hops, hop_rows, rej = cols
         columnar = True
+        raw = None if rej else obj["cols"]
     else:
         if "topology" in obj and obj["topology"] != topo.digest:
             return err(f"wrong_topology: field 'topology' is {_show(obj['topology'])}, the "
@@ -301,19 +321,20 @@ def _decode_ingest(frame: Any, topo: Topology, max_rows: int | None,
             res = _rows_slow(hops_in, topo)
         hops, hop_rows, rej = res
         columnar = False
+        raw = None
     n_h = _hop_count(hop_rows, rej)
     if max_rows is not None and n_h + len(links_in) > max_rows:
         return err(f"too_many_rows: {n_h + len(links_in)} rows, the limit is {max_rows}")
     links, link_rows, lrej = _decode_links(links_in, topo, n_h)
     return Ingest(reporter, batch, hops, hop_rows, links, link_rows, tuple(rej) + lrej,
-                  n_h + len(links_in), columnar)
+                  n_h + len(links_in), columnar, raw)
 
 
 def _hop_count(hop_rows: np.ndarray, rej: Sequence[tuple[int, str]]) -> int:
     return int(hop_rows.shape[0]) + len(rej)
 
 
-def _decode_cols(obj: dict[Any, Any], topo: Topology, err: Any
+def _decode_cols(obj: dict[Any, Any], topo: Topology, err: Any, kern: Any = None
                  ) -> tuple[HopBatch, np.ndarray, list[tuple[int, str]]] | WireError:
     if "topology" not in obj:
         return err("wrong_topology: a columnar batch needs field 'topology' (the service's "
@@ -341,30 +362,65 @@ def _decode_cols(obj: dict[Any, Any], topo: Topology, err: Any
         dt = _I4 if k in ("from", "via", "dst") else _F8
         if len(b) % dt.itemsize:
             return err(f"bad_cols: column {k!r} has {len(b)} bytes, not a multiple of {dt.itemsize}")
-        a = np.frombuffer(b, dtype=dt)
+        rows = len(b) // dt.itemsize
         if m is None:
-            m = a.shape[0]
-        elif a.shape[0] != m:
-            return err(f"bad_cols: column {k!r} has {a.shape[0]} rows, column 'from' has {m}")
-        arrs[k] = a
+            m = rows
+        elif rows != m:
+            return err(f"bad_cols: column {k!r} has {rows} rows, column 'from' has {m}")
+        if kern is None or not _LITTLE:
+            arrs[k] = np.frombuffer(b, dtype=dt)
     assert m is not None
     n = topo.n
+    if kern is not None and _LITTLE:
+        # one compiled pass: widen the columns, count indices out of [0, n)
+        ii = np.empty((3, m), dtype=np.int64)
+        ff = np.empty((2, m), dtype=np.float64)
+        s, v, d = ii
+        lat, est = ff
+        bad_n = kern.cols_decode(cols["from"], cols["via"], cols["dst"], cols["latency_s"],
+                                 cols.get("estimate_s"), n, s, v, d, lat, est)
+        if not bad_n:
+            return HopBatch(s, v, d, lat, est), row_numbers(m), []
+        return _unknown_nodes(s, v, d, lat, est, n)
     s = arrs["from"].astype(np.int64)
     v = arrs["via"].astype(np.int64)
     d = arrs["dst"].astype(np.int64)
     lat = arrs["latency_s"].astype(np.float64)
-    est = arrs["estimate_s"].astype(np.float64) if "estimate_s" in arrs else np.full(m, np.nan)
+    est = arrs["estimate_s"].astype(np.float64) if "estimate_s" in arrs else _nans(m)
+    if m == 0 or max(arrs[k].view(_U4).max() for k in ("from", "via", "dst")) < n:
+        # every index in range, the common case (read as unsigned, a negative one is huge)
+        return HopBatch(s, v, d, lat, est), row_numbers(m), []
+    return _unknown_nodes(s, v, d, lat, est, n)
+
+
+def _unknown_nodes(s: np.ndarray, v: np.ndarray, d: np.ndarray, lat: np.ndarray,
+                   est: np.ndarray, n: int
+                   ) -> tuple[HopBatch, np.ndarray, list[tuple[int, str]]]:
+    """Rows naming a node index outside [0, n) rejected ``unknown_node``, the rest kept."""
     bad = (s < 0) | (s >= n) | (v < 0) | (v >= n) | (d < 0) | (d >= n)
     if bad.any():
         keep = np.flatnonzero(~bad)
         rej = [(int(i), "unknown_node") for i in np.flatnonzero(bad)]
         return (HopBatch(s[keep], v[keep], d[keep], lat[keep], est[keep]), keep, rej)
-    return HopBatch(s, v, d, lat, est), np.arange(m, dtype=np.int64), []
+    return HopBatch(s, v, d, lat, est), np.arange(s.shape[0], dtype=np.int64), []
+
+
+_NANS = np.full(0, np.nan)
+
+
+def _nans(m: int) -> np.ndarray:
+    """``np.full(m, nan)`` (absent estimates) as a read-only view of one cached array."""
+    global _NANS
+    if _NANS.shape[0] < m:
+        _NANS = np.full(max(m, 4096), np.nan)
+        _NANS.flags.writeable = False
+    return _NANS[:m]
 
 
 def _rows_fast(rows: list[Any], topo: Topology
                ) -> tuple[HopBatch, np.ndarray, list[tuple[int, str]]] | None:
-    """All rows well formed (the common case) in C-level loops; None → take the slow path."""
+    """All rows well formed (the common case) in C-level loops, rows naming a node that
+    does not exist rejected ``unknown_node``; None → take the slow path."""
     m = len(rows)
     if m == 0:
         e = np.empty(0, dtype=np.int64)
@@ -382,7 +438,18 @@ def _rows_fast(rows: list[Any], topo: Topology
         # topo.index has only str keys, so any other type fails the lookup (KeyError or
         # TypeError) and the row goes to the slow path: no separate type check needed.
         # one C-level lookup of all 3m names (itemgetter of >= 3 keys returns a tuple)
-        sv = np.array(itemgetter(*chain(cols[0], cols[1], cols[2]))(topo.index), dtype=np.int64)
+        names = list(chain(cols[0], cols[1], cols[2]))
+        unknown = None
+        try:
+            sv = np.array(itemgetter(*names)(topo.index), dtype=np.int64)
+        except KeyError:
+            # some name is not a node: still C-level when every name is a string (the
+            # slow path's reason for such a row is then unknown_node, whatever its values)
+            if set(map(type, names)) != {str}:
+                return None
+            sv = np.fromiter(map(topo.index.get, names, repeat(-1)), dtype=np.int64,
+                             count=3 * m)
+            unknown = (sv[:m] < 0) | (sv[m:2 * m] < 0) | (sv[2 * m:] < 0)
         s, v, d = sv[:m], sv[m:2 * m], sv[2 * m:]
         if not set(map(type, cols[3])) <= {float, int}:
             return None
@@ -399,6 +466,10 @@ def _rows_fast(rows: list[Any], topo: Topology
             est = np.full(m, np.nan)
     except (KeyError, TypeError, OverflowError, ValueError):
         return None
+    if unknown is not None:
+        keep = np.flatnonzero(~unknown)
+        rej = [(i, "unknown_node") for i in np.flatnonzero(unknown).tolist()]
+        return HopBatch(s[keep], v[keep], d[keep], lat[keep], est[keep]), keep, rej
     return HopBatch(s, v, d, lat, est), np.arange(m, dtype=np.int64), []
 
 
@@ -572,8 +643,137 @@ def decode_reply(data: bytes) -> dict[str, Any]:
 def table_message(node_name: str, seq: int, epoch: int | str,
                   routes: Mapping[str, Sequence[Sequence[Any]]]) -> list[bytes]:
     """The two frames of one table publication."""
-    body = _pack({"v": VERSION, "node": node_name, "seq": int(seq), "epoch": epoch,
-                  "routes": {d: [[h, float(w)] for h, w in ws] for d, ws in routes.items()}})
+    return table_message_encoded(node_name, seq, epoch, table_routes(routes))
+
+
+def table_routes(routes: Mapping[str, Sequence[Sequence[Any]]]) -> bytes:
+    """A table's ``routes`` map, encoded once: :func:`table_message_encoded` splices these
+    bytes into every publication of the table until it changes."""
+    return _pack({d: [[h, float(w)] for h, w in ws] for d, ws in routes.items()})
+
+
+_TABLE_KEYS = [msgpack.packb(k) for k in ("v", "node", "seq", "epoch", "routes")]
+
+
+def _container_head(n: int, fix: int, b16: bytes, b32: bytes) -> bytes:
+    if n < 16:
+        return bytes((fix | n,))
+    if n < 1 << 16:
+        return b16 + n.to_bytes(2, "big")
+    return b32 + n.to_bytes(4, "big")
+
+
+class TableCodec:
+    """Encodes tables straight from :meth:`Engine.table_arrays`, with no object per entry:
+    every byte of the msgpack map is gathered in one numpy pass from a source buffer that
+    holds each node's packed name (once per topology), the list heads and the weights'
+    big-endian float64 bytes.  The bytes are those :func:`table_routes` gives for the same
+    table (tested)."""
+
+    def __init__(self, names: Sequence[str], kernels: Any = AUTO):
+        #: the compiled ``table_gather`` (the same bytes by copying), or None: the numpy gather
+        self.kernels = _kernels.select("auto") if kernels is AUTO else kernels
+        keys = [_pack(nm) for nm in names]
+        hops = [b"\x92" + k + b"\xcb" for k in keys]    # [name, float64 ...
+        heads = [bytes((0x90 | c,)) for c in range(16)]
+        blobs = (hops, keys, heads)
+        self._static = b"".join(b"".join(x) for x in blobs)
+        offs, lens, at = [], [], 0
+        for group in blobs:
+            ln = np.array([len(b) for b in group], dtype=np.int64)
+            offs.append(at + np.concatenate(([0], np.cumsum(ln)[:-1])))
+            lens.append(ln)
+            at += int(ln.sum())
+        (self._hop_off, self._key_off, self._head_off) = offs
+        (self._hop_len, self._key_len, _) = lens
+        self._names = list(names)
+
+    def routes(self, dsts: np.ndarray, counts: np.ndarray, hops: np.ndarray,
+               weights: np.ndarray) -> bytes:
+        m = len(dsts)
+        if m and int(counts.max()) >= 16:      # long lists: the general encoder
+            ws = weights.tolist()
+            hl = hops.tolist()
+            routes: dict[str, list[list[Any]]] = {}
+            i = 0
+            for d, c in zip(dsts.tolist(), counts.tolist()):
+                routes[self._names[d]] = [[self._names[hl[j]], ws[j]] for j in range(i, i + c)]
+                i += c
+            return table_routes(routes)
+        body, _ = self._gather(dsts, counts, hops, weights)
+        return _container_head(m, 0x80, b"\xde", b"\xdf") + body
+
+    def routes_many(self, owner: np.ndarray, dsts: np.ndarray, counts: np.ndarray,
+                    hops: np.ndarray, weights: np.ndarray, nodes: int) -> list[bytes]:
+        """:meth:`routes` of several tables at once, from :meth:`Engine.table_arrays_many`
+        (``owner[i]``: which of the ``nodes`` tables entry i belongs to, entries grouped by
+        owner in order): one numpy pass for all of them, the same bytes table by table."""
+        m = len(dsts)
+        per = np.bincount(owner, minlength=nodes) if m else np.zeros(nodes, dtype=np.int64)
+        if m and int(counts.max()) >= 16:      # long lists somewhere: table by table
+            out, ei, hi = [], 0, 0
+            for c in per.tolist():
+                cs = counts[ei:ei + c]
+                nh = int(cs.sum())
+                out.append(self.routes(dsts[ei:ei + c], cs, hops[hi:hi + nh], weights[hi:hi + nh]))
+                ei, hi = ei + c, hi + nh
+            return out
+        body, entry_at = self._gather(dsts, counts, hops, weights)
+        bounds = entry_at[np.concatenate(([0], np.cumsum(per)))].tolist()
+        return [_container_head(c, 0x80, b"\xde", b"\xdf") + body[a:b]
+                for c, a, b in zip(per.tolist(), bounds[:-1], bounds[1:])]
+
+    def _gather(self, dsts: np.ndarray, counts: np.ndarray, hops: np.ndarray,
+                weights: np.ndarray) -> tuple[bytes, np.ndarray]:
+        """The entries' bytes (each: key, list head, its [name, weight] pairs) in a row,
+        and the byte offset where each entry starts (plus the total at the end)."""
+        m, e = len(dsts), len(hops)
+        kern = self.kernels
+        if kern is not None and _LITTLE:
+            i8 = np.int64
+            entry_at = np.empty(m + 1, dtype=i8)
+            body = kern.table_gather(
+                self._static, self._key_off, self._key_len, self._head_off, self._hop_off,
+                self._hop_len, np.ascontiguousarray(dsts, dtype=i8),
+                np.ascontiguousarray(counts, dtype=i8), np.ascontiguousarray(hops, dtype=i8),
+                np.ascontiguousarray(weights, dtype=np.float64), entry_at)
+            return bytes(body), entry_at
+        base = len(self._static)
+        wsrc = base + 8 * np.arange(e, dtype=np.int64)
+        src = np.frombuffer(self._static + np.ascontiguousarray(weights, dtype=">f8").tobytes(),
+                            dtype=np.uint8)
+        first = np.concatenate(([0], np.cumsum(counts)[:-1])).astype(np.int64) if m else \
+            np.zeros(0, dtype=np.int64)
+        owner = np.repeat(np.arange(m, dtype=np.int64), counts)
+        off = np.empty(2 * (m + e), dtype=np.int64)
+        ln = np.empty(2 * (m + e), dtype=np.int64)
+        at = 2 * np.arange(m, dtype=np.int64) + 2 * first
+        off[at], ln[at] = self._key_off[dsts], self._key_len[dsts]
+        off[at + 1], ln[at + 1] = self._head_off[counts], 1
+        at = 2 * (owner + 1 + np.arange(e, dtype=np.int64))
+        off[at], ln[at] = self._hop_off[hops], self._hop_len[hops]
+        off[at + 1], ln[at + 1] = wsrc, 8
+        ends = np.cumsum(ln)
+        total = int(ends[-1]) if len(ends) else 0
+        starts = ends - ln
+        # the source index of every output byte: +1 within a piece, a jump at each piece's
+        # start (every piece is at least one byte long), summed up in one pass
+        step = np.ones(total, dtype=np.int32)
+        if len(off):
+            jump = off.copy()
+            jump[1:] -= off[:-1] + ln[:-1] - 1
+            step[starts] = jump
+        idx = np.cumsum(step, dtype=np.int32)
+        entry_at = np.append(starts[2 * np.arange(m, dtype=np.int64) + 2 * first], total)
+        return src[idx].tobytes(), entry_at
+
+
+def table_message_encoded(node_name: str, seq: int, epoch: int | str, routes: bytes) -> list[bytes]:
+    """The two frames of one table publication from the routes :func:`table_routes`
+    encoded: byte for byte what :func:`table_message` gives for the same table."""
+    k = _TABLE_KEYS
+    body = b"".join((b"\x85", k[0], _pack(VERSION), k[1], _pack(node_name), k[2], _pack(int(seq)),
+                     k[3], _pack(epoch), k[4], routes))
     return [TABLE_TOPIC + node_name.encode(), body]
 
 
@@ -618,9 +818,11 @@ def estimates_by_name(engine: Any, x: int) -> dict[str, dict[str, float]]:
     slots = engine.topo.slots[x]
     live = [(j, names[int(y)]) for j, y in enumerate(slots.tolist())
             if y >= 0 and bool(engine.live[x, j])]
-    q = engine.Q[x]
-    return {names[d]: {nm: float(q[d, j]) for j, nm in live}
-            for d in range(engine.n) if d != x}
+    q = engine.Q[x]          # columns: the engine's owned destinations (all by default)
+    owned = getattr(engine, "owned", None)
+    dests = range(engine.n) if owned is None else owned.tolist()
+    return {names[d]: {nm: float(q[c, j]) for j, nm in live}
+            for c, d in enumerate(dests) if d != x}
 
 
 def nodes_reply(topo: Topology) -> dict[str, Any]:

@@ -15,21 +15,39 @@ handlers write to).  The poll timeout is the time to the next deadline
 (debounced decision, periodic publication, snapshot), so there are no sleeps.  One loop
 iteration:
 
-1. drain up to ``service.max_drain`` frames from the ingest sockets; hand each to the
+1. drain up to ``service.max_drain`` frames from the ingest sockets (with the journal
+   writer thread, for at most :data:`INGEST_SLICE_S` per turn); hand each to the
    ingest pipeline (:mod:`routerd.service.pipeline`: decode, CURVE binding, storage
    state, duplicates, rate limits, rights, guards, engine — a pure object whose
    docstring is the theory of operation) with the clock's time, append the journal
    records it returns and take its counts;
-2. group commit: one :meth:`Journal.flush_sync` (one fsync) for everything appended,
-   *then* send every acknowledgement — an ack always means "durably journaled";
-3. answer at most one control request (REP) — state-changing ones after step 2's commit;
-4. when tables are pending and ``service.debounce_s`` has passed since the last decision,
-   call :meth:`Engine.decide` (journaled as a ``tick`` so replay makes the same calls in
-   the same places) and queue the nodes whose table changed; every
-   ``service.publish_interval_s`` queue every node.  Queued tables go out oldest first
+2. group commit (policy ``batch``): one fsync covers everything appended so far, and an
+   acknowledgement goes out only once the fsync covering its batch has returned — an ack
+   always means "durably journaled".  The fsync goes to the journal writer thread
+   (:class:`journal.Syncer`): the turn's answers wait in ``_pending`` tagged with the
+   last record appended, the loop goes on (the next slice, decisions, tables: no fsync
+   sits in front of them), and the thread's pipe wakes the poll when the fsync is done
+   (``_synced`` → ``_release``, in arrival order).  Without the thread
+   (``service.journal.sync_thread: false``), and for a turn whose control request
+   wrote a record, the loop syncs itself.  Every answer waits, duplicates and errors
+   included, so none can overtake the batch it answers for.  A failed fsync in the thread is a storage failure
+   like any other: every waiting answer becomes ``unavailable``;
+3. answer at most one control request (REP) — one that appended a record only after an
+   fsync in the loop;
+4. when tables are pending, ``service.debounce_s`` has passed since the last decision and
+   the decision token bucket (``service.max_decisions_per_s``, a burst of 0.1 s worth) has
+   a token, call :meth:`Engine.decide` (journaled as a ``tick`` so replay makes the same
+   calls in the same places) and queue the nodes whose table changed; a batch (or a
+   control ``link``) that changed a link's state is decided at once, past the debounce and
+   the cap (its token is still taken, down to a debt of one burst, so the next ordinary
+   decisions wait instead), and its links' source nodes lead the change queue: their
+   tables are encoded on their own and sent before any other.  Every ``service.publish_interval_s``
+   queue every node.  Changed tables go out first, then the interval round oldest first,
    for at most ``service.publish_budget_s`` per turn (a node queued twice goes out once,
    with its latest table), so a round of changes on a large network never holds ingest
-   up for long;
+   up for long.  A node's routes are encoded once per change from the engine's arrays
+   (:meth:`Engine.table_arrays`, :class:`wire.TableCodec`) and the bytes reused for every
+   send until its table changes again;
 5. every ``service.snapshot_interval_s`` take a snapshot and, once it is durable, retire
    the journal segments it covers.
 
@@ -48,6 +66,13 @@ engine's size, only under heavy ingest).  A control ``snapshot`` forks the same 
 REP answer is held back (the socket takes no other request meanwhile) and sent when the
 child's file is installed.  Shutdown, a request while a child is already running, and
 hosts where fork is off or fails write in the loop (streamed, no full copy; the loop waits).
+
+The live optimality gap (:mod:`routerd.service.optimum`, its own thread and child
+process): the loop only hands it each accepted ``batch`` record (it counts the rows); its
+thread takes ``self.lock`` briefly every ``engine.optimum.interval_s`` to copy the
+published shares, and ``health``/the metrics page read its last result.  With
+``engine.optimum.guide`` the loop's housekeeping applies a waiting result's splits
+(:func:`journal.apply_guide`) and journals the ``guide`` record, like a ``tick``.
 
 Start-up takes the config and topology the flags give, else the ones the state dir
 recorded (:func:`statedir.choose`), restores the newest readable snapshot, then replays
@@ -77,6 +102,7 @@ import contextlib
 import dataclasses
 import gc
 import glob
+import itertools
 import math
 import os
 import signal
@@ -84,7 +110,8 @@ import sys
 import threading
 import time
 import warnings
-from collections import OrderedDict
+import zlib
+from collections import OrderedDict, deque
 from collections.abc import Iterable, Mapping
 from dataclasses import asdict
 from typing import Any
@@ -106,6 +133,7 @@ from routerd.io.inputs import load_config, load_topology
 from routerd.io.values import endpoint_problem
 from . import dedup as _dedup
 from . import pipeline as _pipeline
+from . import optimum as _optimum
 from routerd.io import clock as _clock
 from routerd.io.cautions import CAUTIONS
 from .dedup import Dedup
@@ -125,6 +153,25 @@ OVERSIZE_ANSWER_SLACK = 1 << 20
 #: Rejections remembered per deduplicated batch (a re-ack repeats at most this many).
 DEDUP_REJECTIONS = _dedup.REJECTIONS_KEPT
 
+#: With the journal writer thread: ingest work per loop turn before the turn's fsync is
+#: handed to the thread (the next slice is taken while it runs) and housekeeping runs.
+INGEST_SLICE_S = 0.002
+#: Table entries (destinations) encoded ahead in one pass when tables are due.
+TABLE_ENTRIES_AHEAD = 2048
+#: Loop time per turn spent encoding a control ``tables`` reply (it is built over as many
+#: turns as it takes; 100 nodes: 20-80 ms of encoding that held the loop in one turn).
+TABLES_REPLY_SLICE_S = 0.004
+
+
+@dataclasses.dataclass
+class _TablesReply:
+    """A control ``tables`` reply being encoded over loop turns: the REP socket owed it
+    and the encoded (name, routes) pairs of nodes ``0 .. next - 1`` so far."""
+    sock: Any
+    parts: list[bytes] = dataclasses.field(default_factory=list)
+    next: int = 0
+#: The interpreter's thread switch interval while the journal writer thread runs.
+SYNC_SWITCH_INTERVAL_S = 0.0005
 #: A snapshot child still running after this long is killed (and its file removed).
 SNAPSHOT_CHILD_LIMIT_S = 600.0
 #: Exit statuses of the snapshot child.
@@ -144,7 +191,8 @@ def configure(p: argparse.ArgumentParser) -> None:
     p.add_argument("--config", metavar="FILE", help="YAML config (sections topology, engine, "
                    "service, guards, security, shard, ...); every key: routerd validate --schema")
     p.add_argument("--topology", metavar="FILE", help="topology file or topohub:GROUP/NAME "
-                   "(default: the config's topology.file, else the built-in demo lab)")
+                   "(default: the one the state dir recorded, else the config's topology.file, "
+                   "else the built-in demo lab)")
     p.add_argument("--ingest", metavar="EP", help="ingest endpoint, ROUTER (default tcp://127.0.0.1:7301)")
     p.add_argument("--pull", metavar="EP", help="fire-and-forget ingest endpoint, PULL (default: off)")
     p.add_argument("--publish", metavar="EP", help="tables endpoint, PUB (default tcp://127.0.0.1:7302)")
@@ -283,8 +331,43 @@ class Service:
         self.last_snapshot_record: int | None = None
         self.restored: dict[str, Any] = {}
         self._pub_queue: OrderedDict[int, str] = OrderedDict()   # node → why it is due
+        # nodes whose table changed: they go out before the interval round
+        self._pub_changed: OrderedDict[int, str] = OrderedDict()
+        # link sources at the head of _pub_changed: encoded and sent before any other table
+        self._pub_lead: set[int] = set()
+        self._pub_deferred = False      # the last turn's decision overran: it published none
+        # a node's encoded routes (wire.table_routes) zlib-compressed, reused by the interval
+        # rounds until it changes (see _publish)
+        self._table_bytes: dict[int, bytes] = {}
+        # due tables encoded ahead in one pass (_encode_ahead), as they are: taken by _publish
+        self._ahead: dict[int, bytes] = {}
+        # answers waiting for the writer thread's fsync: (record they wait for, socket, frames)
+        self._pending: deque[tuple[int, Any, list[Any], int | None]] = deque()
+        self._syncer: _journal.Syncer | None = None
+        self._synced_upto = 0             # the last record made durable in the loop itself
+        self._requested = 0               # the last record the writer thread was asked for
+        self._decide_tokens = 1.0
+        # source nodes of link rows since the last decision: decided without waiting for a
+        # token (down to a debt of one burst) and their tables published first
+        self._urgent: set[int] = set()
+        self._tokens_at = -math.inf
+        #: the longest loop turn (s): receive, pipeline, journal, answers, housekeeping
+        self.max_turn_s = 0.0
+        #: where the longest turn's time went: ingest (receive + pipeline + journal
+        #: appends + control), commit (an fsync in the loop), answers, housekeeping
+        #: (decisions, publishing, snapshots)
+        self.max_turn_parts: dict[str, float] = {}
+        self.max_turn_cpu_s = 0.0                      # the turn that took the most CPU
+        self.max_turn_cpu_parts: dict[str, float] = {}
         self._touched = False
         self._last_decide = -math.inf
+        # a whole decision's cost (Engine.decide with its key lane, the tick journaled, the
+        # changes queued) as fixed seconds plus seconds per full-pass destination (EWMAs
+        # that rise fast and fall slowly): sizes the limit that keeps a decision within
+        # service.decide_budget_s (None: not measured yet)
+        self._decide_cost: float | None = None
+        self._decide_fixed = 0.0
+        self._decide_max: tuple[float, int, int | None] = (0.0, 0, None)   # took, f, limit
         self._next_publish_all = 0.0
         self._next_snapshot = 0.0
         self._stop = False
@@ -299,9 +382,12 @@ class Service:
         self._snap_child: tuple[int, str, int, float] | None = None   # pid, tmp, record, start
         self._snap_cause = "interval"
         self._snap_reply: Any = None     # the control socket owed the answer to a "snapshot"
+        self._tables_replies: list[_TablesReply] = []   # control "tables" replies being built
+        self._house_parts: dict[str, float] = {}         # the last turn's housekeeping steps
         self.state_lock: _statedir.StateLock | None = None
         self.recovery: _journal.RecoveryReport | None = None   # what start-up recovery found
         self._snapshot_mark: int | None = None    # the last record when the last snapshot was noted
+        self.optimum = _optimum.Optimum.for_service(self)   # the live optimality gap (its own thread)
 
     # -- the pipeline's state, as the rest of the service has always named it ----------
     @property
@@ -311,10 +397,21 @@ class Service:
     @engine.setter
     def engine(self, engine: Engine | None) -> None:
         self.pipeline.engine = engine
+        getattr(self, "_table_bytes", {}).clear()    # another engine: encode its tables afresh
+        getattr(self, "_ahead", {}).clear()
 
     @property
     def dedup(self) -> Dedup:
         return self.pipeline.dedup
+
+    def metrics_labels(self) -> dict[str, str]:
+        """Constant labels on every series of the metrics page (a shard worker: its index)."""
+        return {}
+
+    def _engine_owned(self, settings: EngineSettings) -> Any:
+        """The destinations the engine holds (``Engine(owned=)``): None, all of them; a
+        shard worker its own."""
+        return None
 
     @dedup.setter
     def dedup(self, dedup: Dedup) -> None:
@@ -410,6 +507,7 @@ class Service:
             self.auth = _security.start_authenticator(self.ctx, self.allow)
         self._bind_all(zmq)
         self._start_metrics()
+        self.optimum.start()
         self._cap_connections()
         self._install_signals()
         now = self.clock.monotonic()
@@ -446,16 +544,13 @@ class Service:
     def _load_security(self) -> None:
         """Key and allow file, checked before anything binds or is written."""
         try:
-            sk, al = _security.check_pair(self.cfg)
-            if sk is None or al is None:
-                return
-            self.server_keys = _security.load_server_key(sk)
-            self.allow = _security.load_allow(al, self.topo)
+            loaded = _security.load_configured(self.cfg, self.topo)
         except InputError as e:
             raise StartError(f"security:\n{e}") from None
-        exposure = _security.key_file_exposure(sk)
-        if exposure:
-            self.log.warning(exposure)   # once, at start-up
+        if loaded is not None:
+            self.server_keys, self.allow, exposure = loaded
+            if exposure:
+                self.log.warning(exposure)   # once, at start-up
 
     def restore(self, state_dir: str | None = None) -> None:
         """Recover the state dir (:func:`journal.recover_state`: the newest intact snapshot,
@@ -487,7 +582,7 @@ class Service:
             self.log.warning("recovery", detail=line)
         try:
             r = _journal.restore(state_dir, self.topo, want, on_record=self._remember_record,
-                                 recovery=rec)
+                                 recovery=rec, owned=self._engine_owned(want))
         except (ValueError, _journal.JournalError) as e:
             raise StartError(f"state dir {state_dir}: {e} (another topology needs another "
                              "--state-dir)") from None
@@ -596,7 +691,8 @@ class Service:
 
         addr = self.cfg["service.metrics"]
         try:
-            self.metrics_server, self.metrics_port, _ = _metrics.serve(addr, self)
+            self.metrics_server, self.metrics_port, _ = _metrics.serve(
+                addr, self, labels=self.metrics_labels())
         except OSError as e:
             raise StartError(f"metrics address {addr}: {e.strerror or e}") from None
         self.endpoints["metrics"] = page_url(_metrics.parse_address(addr)[0], self.metrics_port)
@@ -679,8 +775,9 @@ class Service:
     def _journal_link(self, a: int, b: int, up: bool, t: float) -> None:
         self._append("link", {"from": a, "to": b, "up": up, "t": t})
 
-    def _journal_tick(self, t: float) -> None:
-        self._append("tick", {"t": t})
+    def _journal_tick(self, t: float, limit: int | None = None) -> None:
+        # a bounded decision's limit: replay passes it back to Engine.decide
+        self._append("tick", {"t": t} if limit is None else {"t": t, "limit": limit})
 
     def _journal_config(self) -> None:
         assert self.engine is not None
@@ -699,12 +796,18 @@ class Service:
         """Make this turn's appends durable as the fsync policy promises (group commit):
         ``batch`` — one fsync now; ``interval`` — once ``fsync_interval_s`` has passed since
         the first unsynced append (the poll wakes for it); ``never`` — the OS decides."""
-        if not self._unsynced or self.journal is None:
+        if self.journal is None:
             return
         pol = self.journal.fsync
+        if pol == "batch" and self._last_record <= self._durable():
+            self._unsynced = False      # the writer thread (or an earlier commit) covered it
+            return
+        if not self._unsynced and pol != "batch":
+            return
         try:
             if pol == "batch":
                 self.journal.commit()
+                self._synced_upto = self._last_record
                 self.counters.fsyncs += 1
             elif pol == "interval":
                 if not self.journal.maybe_sync():
@@ -722,6 +825,8 @@ class Service:
         what the journal holds (it may have applied a batch or a decision that is not
         stored).  :meth:`try_resume` reopens the journal every ``service.storage_retry_s``."""
         first = self._down is None
+        self._stop_syncer()      # its pending answers are not known durable: unavailable
+        self._synced_upto = 0
         self._down = reason
         self._turn_failed = True
         self._unsynced = False
@@ -746,8 +851,10 @@ class Service:
         fresh = make_dedup(cfg)
         old, self.dedup = self.dedup, fresh
         try:
-            r = _journal.restore(cfg["service.state_dir"], self.topo, EngineSettings.from_config(cfg),
-                                 on_record=self._remember_record)
+            want = EngineSettings.from_config(cfg)
+            r = _journal.restore(cfg["service.state_dir"], self.topo, want,
+                                 on_record=self._remember_record,
+                                 owned=self._engine_owned(want))
         except Exception as e:  # noqa: BLE001 - reading back failed too: keep what we have
             self.dedup = old
             self.log.error("storage: cannot read the state back; tables stay as they are",
@@ -814,9 +921,21 @@ class Service:
         for s in (ingest, pull, control, control_ro, self._sig_rx, *monitors):
             if s is not None:
                 poller.register(s, zmq.POLLIN)
+        wake: int | None = None
         try:
             while not self._stop:
+                syncer = self._syncer_for_journal()
+                if (syncer.wake_fd if syncer is not None else None) != wake:
+                    if wake is not None:
+                        poller.unregister(wake)
+                    wake = syncer.wake_fd if syncer is not None else None
+                    if wake is not None:
+                        poller.register(wake, zmq.POLLIN)
                 events = dict(poller.poll(self._timeout_ms()))
+                t_turn = time.perf_counter()
+                cpu_turn = time.thread_time()
+                if wake is not None and wake in events:
+                    self._synced(zmq)
                 if self._sig_rx in events:
                     self._read_signals(zmq)
                 if any(m in events for m in monitors):
@@ -824,36 +943,79 @@ class Service:
                 if self._reload:
                     self._reload = False
                     self._do_reload()
-                acks: list[tuple[Any, list[Any], int | None]] = []
+                # (socket, reply parts, batch number, the last record appended when it
+                # was answered: the record that must be durable before it goes out)
+                acks: list[tuple[Any, list[Any], int | None, int]] = []
                 reply: bytes | None = None
                 reply_ro: bytes | None = None
                 self._turn_failed = False
+                t_in = time.perf_counter()
                 with self.lock:
                     if ingest in events:
                         self._drain(zmq, ingest, "router", acks)
                     if pull is not None and pull in events:
                         self._drain(zmq, pull, "pull", None)
+                    before_control = self._last_record
                     if control in events:
                         reply = self._control_one(zmq, control)
                     if control_ro is not None and control_ro in events:
                         reply_ro = self._control_one(zmq, control_ro, readonly=True)
-                # group commit: one fsync (policy "batch") covers every batch of this turn
-                with contextlib.suppress(StorageDown):
-                    self.commit()
+                    control_wrote = self._last_record != before_control
+                t_commit = time.perf_counter()
+                syncer = self._syncer if self.journal is not None else None
+                if syncer is not None and not self._turn_failed and not control_wrote \
+                        and (self._unsynced or self._last_record > self._durable()):
+                    # group commit in the writer thread: each answer waits for the fsync
+                    # that covers the last record appended when it was answered (its own
+                    # batch's, or the one before: nothing overtakes a batch it answers for)
+                    # while the loop goes on (the next slice of frames, decisions, tables:
+                    # none waits behind it).  A turn that appended nothing while a sync is
+                    # still running waits for that sync too, never for one in the loop.
+                    # (Asking for the sync after each batch instead of once a turn was
+                    # tried: 2-2.5x the fsyncs, and the writer thread's GIL hand-offs
+                    # cost more loop time a batch than the earlier start saved.)
+                    self._pending.extend((tag, sk, parts, b) for sk, parts, b, tag in acks)
+                    acks = []
+                    if self._unsynced:
+                        self._request_sync()
+                else:
+                    # group commit in the loop: one fsync (policy "batch") covers every batch
+                    # of this turn (a control request that wrote a record is answered only
+                    # once it is durable, and so is everything before it)
+                    with contextlib.suppress(StorageDown):
+                        self.commit()
                 if self._turn_failed:
                     # something of this turn may not be stored: acknowledge none of it
-                    acks = [(sk, parts[:-1] + [self._unacknowledge(parts[-1], b)], b)
-                            for sk, parts, b in acks]
+                    self._fail_pending(zmq)
+                    acks = [(sk, parts[:-1] + [self._unacknowledge(parts[-1], b)], b, tag)
+                            for sk, parts, b, tag in acks]
                     if reply is not None:
                         reply = wire.encode_error(f"unavailable: the journal cannot be written "
                                                   f"({self._down})")
-                for sock, parts, _ in acks:
+                t_ans = time.perf_counter()
+                self._release(zmq)
+                for sock, parts, _, _ in acks:
                     self._send_ack(zmq, sock, parts)
                 if reply is not None:
                     control.send(reply)
                 if reply_ro is not None and control_ro is not None:
                     control_ro.send(reply_ro)
+                t_house = time.perf_counter()
                 self._housekeeping()
+                t_end = time.perf_counter()
+                dt = t_end - t_turn
+                cpu = time.thread_time() - cpu_turn
+                if dt > self.max_turn_s or cpu > self.max_turn_cpu_s:
+                    # "cpu": the loop thread's own CPU time in the turn (the rest of the turn
+                    # it waited: for a core, the GIL, the lock, the disk)
+                    parts = {"signals": t_in - t_turn, "ingest": t_commit - t_in,
+                             "commit": t_ans - t_commit, "answers": t_house - t_ans,
+                             "housekeeping": t_end - t_house, "cpu": cpu,
+                             **{f"housekeeping.{k}": v for k, v in self._house_parts.items()}}
+                    if dt > self.max_turn_s:
+                        self.max_turn_s, self.max_turn_parts = dt, parts
+                    if cpu > self.max_turn_cpu_s:
+                        self.max_turn_cpu_s, self.max_turn_cpu_parts = cpu, parts
         except Exception as e:  # noqa: BLE001 - a bug of ours: say so loudly, keep the journal consistent
             import traceback
 
@@ -864,9 +1026,93 @@ class Service:
             return 1
         return self._shutdown()
 
+    # -- group commit in the writer thread (policy ``batch``) -----------------------------
+    def _syncer_for_journal(self) -> _journal.Syncer | None:
+        """The writer thread of the open journal (policy ``batch``; started on first use,
+        and again after storage came back with a new journal), else None."""
+        j = self.journal
+        if self._syncer is not None and self._syncer.journal is not j:
+            self._stop_syncer()
+        if j is None or j.fsync != "batch" or not self.cfg["service.journal.sync_thread"]:
+            return None
+        if self._syncer is None:
+            with contextlib.suppress(StorageDown):
+                self.commit()          # the writer thread starts from a durable journal
+            if self.journal is None:
+                return None
+            self._syncer = _journal.Syncer(self.journal)
+            self._syncs_seen = 0
+            # the writer thread needs the GIL for a few bytecodes after each fsync; with
+            # the default 5 ms switch interval every acknowledgement could wait that long
+            sys.setswitchinterval(min(sys.getswitchinterval(), SYNC_SWITCH_INTERVAL_S))
+            self._requested = self._synced_upto = self.journal.last_record
+        return self._syncer
+
+    def _stop_syncer(self) -> None:
+        syncer, self._syncer = self._syncer, None
+        if syncer is not None:
+            syncer.close()
+            if syncer.error is None:
+                self._synced_upto = max(self._synced_upto, syncer.durable)
+
+    def _request_sync(self) -> None:
+        assert self._syncer is not None
+        self._syncer.request(self._last_record)
+        self._requested = self._last_record
+        self._unsynced = False
+
+    def _durable(self) -> int:
+        syncer = self._syncer
+        if syncer is not None and syncer.error is None:
+            return max(self._synced_upto, syncer.durable)
+        return self._synced_upto
+
+    def _synced(self, zmq: Any) -> None:
+        """The writer thread finished a sync (or failed one): release the answers it
+        covers, or put the service down and answer them ``unavailable``."""
+        syncer = self._syncer
+        assert syncer is not None
+        syncer.drain()
+        done = syncer.syncs - getattr(self, "_syncs_seen", 0)
+        self._syncs_seen = syncer.syncs
+        self.counters.fsyncs += done
+        self.counters.group_commits += done
+        if syncer.error is not None:
+            with self.lock:
+                self._storage_failed(f"journal fsync: {_os_reason(syncer.error)}")
+            self._fail_pending(zmq)
+            return
+        self._release(zmq)
+
+    def _release(self, zmq: Any) -> None:
+        """Send every waiting answer whose records are durable (in arrival order)."""
+        q = self._pending
+        if not q:
+            return
+        upto = self._durable()
+        while q and q[0][0] <= upto:
+            _, sock, parts, _ = q.popleft()
+            self._send_ack(zmq, sock, parts)
+
+    def _release_ready(self) -> None:
+        """:meth:`_release` from inside housekeeping: answers whose fsync the writer thread
+        finished meanwhile go out now, not after the rest of the turn (a decision, a round
+        of tables); the wake pipe is drained when the loop polls again."""
+        if self._pending and self._syncer is not None:
+            import zmq
+
+            self._release(zmq)
+
+    def _fail_pending(self, zmq: Any) -> None:
+        """Storage failed: no waiting answer is known durable; each becomes ``unavailable``
+        (errors stay errors)."""
+        q, self._pending = self._pending, deque()
+        for _, sock, parts, b in q:
+            self._send_ack(zmq, sock, parts[:-1] + [self._unacknowledge(parts[-1], b)])
+
     def _timeout_ms(self) -> int:
         now = self.clock.monotonic()
-        if self._pub_queue:
+        if self._pub_queue or self._pub_changed or self._tables_replies:
             return 0          # tables still due: take what arrived, then publish more
         t = min(self._next_publish_all, self._next_snapshot)
         if self.listeners is not None and self.listeners.waiting():
@@ -874,7 +1120,7 @@ class Service:
         if self._snap_child is not None:
             t = min(t, now + 0.05)      # look for the snapshot child's end
         if self._touched:
-            t = min(t, self._last_decide + self.cfg["service.debounce_s"])
+            t = min(t, self._decision_at())
         if self._unsynced:
             t = min(t, self._unsynced_since + self.cfg["service.journal.fsync_interval_s"])
         return max(0, math.ceil((t - now) * 1000))
@@ -902,17 +1148,17 @@ class Service:
     def _recv(self, zmq: Any, sock: Any, curve: bool) -> tuple[list[bytes], _security.Reporter | None]:
         """One waiting message (raises zmq.Again if none) and, under CURVE, the allowed
         reporter its ZAP User-Id belongs to (None for a key not in the allow file)."""
-        if not curve:
-            return sock.recv_multipart(zmq.NOBLOCK), None
-        frames = sock.recv_multipart(zmq.NOBLOCK, copy=False)
-        assert self.allow is not None
-        peer = self.allow.for_user_id(_security.user_id(frames[-1]))
-        return [f.bytes for f in frames], peer
+        return _security.recv_with_peer(sock, zmq.NOBLOCK, self.allow if curve else None)
 
     def _drain(self, zmq: Any, sock: Any, name: str, acks: list[Any] | None) -> None:
         routed = acks is not None
         curve = self.allow is not None
+        # with the writer thread, a turn takes a slice of INGEST_SLICE_S: its fsync then
+        # runs while the loop takes the next slice, and decisions are not held up long
+        end = time.perf_counter() + INGEST_SLICE_S if self._syncer is not None else math.inf
         for _ in range(self.cfg["service.max_drain"]):
+            if time.perf_counter() >= end:
+                return
             try:
                 parts, peer = self._recv(zmq, sock, curve)
             except zmq.Again:
@@ -927,7 +1173,7 @@ class Service:
             else:
                 out, bno = self.ingest(body[0], peer)
             if acks is not None:
-                acks.append((sock, env + [out], bno))
+                acks.append((sock, env + [out], bno, self._last_record))
 
     def ingest(self, payload: bytes, peer: _security.Reporter | None = None
                ) -> tuple[bytes, int | None]:
@@ -947,6 +1193,11 @@ class Service:
         self.counters.add(fed.counts)
         if fed.touched:
             self._touched = True
+            self._urgent.update(fed.urgent)
+            if self.optimum.meter is not None:          # engine.optimum: count the demand
+                for kind, body in fed.records:
+                    if kind == "batch":
+                        self.optimum.feed(body)
         return fed.answer, fed.batch
 
     def _envelope(self, env: list[bytes], body: list[bytes]) -> tuple[list[bytes], list[bytes]]:
@@ -957,6 +1208,19 @@ class Service:
         """Hook (routerd.service.shard's worker): the table of node x as published."""
         assert self.engine is not None
         return wire.routes_by_name(self.engine, x)
+
+    def _encoded_routes(self, x: int) -> bytes:
+        """x's table as published, encoded (:func:`wire.table_routes` bytes): from the
+        engine's arrays (:class:`wire.TableCodec`) unless a subclass publishes other
+        routes (the shard worker's :meth:`_routes`)."""
+        if type(self)._routes is not Service._routes:
+            return wire.table_routes(self._routes(x))
+        eng = self.engine
+        assert eng is not None
+        codec = getattr(self, "_codec", None)
+        if codec is None:
+            codec = self._codec = wire.TableCodec(self.topo.nodes)
+        return codec.routes(*eng.table_arrays(x))
 
     def _send_ack(self, zmq: Any, sock: Any, parts: list[Any]) -> None:
         try:
@@ -979,16 +1243,15 @@ class Service:
             self.counters.control_request("other", False)
             return wire.encode_error(req.reason)
         op = req["op"]
-        if readonly and op not in _security.READ_OPS:
+        refused = _security.control_refusal(op, peer, curve=curve, readonly=readonly)
+        if refused is not None:
             self.counters.control_request(op, False)
-            return wire.encode_error(f"not_authorised: op {op!r} changes state; the read-only "
-                                     f"control endpoint serves {', '.join(_security.READ_OPS)}")
-        if curve and not _security.may_control(peer, op):
-            self.counters.control_request(op, False)
-            who = "no allowed key" if peer is None else f"the key of {peer.name!r}"
-            return wire.encode_error(f"not_authorised: op {op!r} changes state and came with "
-                                     f"{who}, which has no control right (control: true in "
-                                     "the allow file)")
+            return wire.encode_error(refused)
+        if op == "tables" and self._tables_in_turns():
+            # built over the next turns (a slice each), answered when whole
+            self._tables_replies.append(_TablesReply(sock))
+            self._tables_reply_work(TABLES_REPLY_SLICE_S)
+            return None
         try:
             out = self._control(op, req)
         except _Deferred:
@@ -1034,12 +1297,72 @@ class Service:
             if changed:
                 self._journal_link(a, b, up, now)
                 self._touched = True
+                self._urgent.add(a)
             self.counters.link_reports_accepted += 1
             self.log.info("link override", link=f"{req['from']}->{req['to']}", state=req["state"],
                           changed=changed)
             return {"link": {"from": req["from"], "to": req["to"], "state": req["state"],
                              "changed": changed}}
         raise StartError(f"op {op!r} is not served")  # wire.decode_control admits only known ops
+
+    def _tables_in_turns(self) -> bool:
+        """Whether a ``tables`` reply can be encoded from the engine's arrays over several
+        turns (a subclass with its own routes or its own ``tables`` answers in one go)."""
+        cls = type(self)
+        return cls._routes is Service._routes and cls._control is Service._control \
+            and self.engine is not None
+
+    def _tables_reply_work(self, budget_s: float) -> None:
+        """Encode the waiting ``tables`` replies for about ``budget_s``, a pass of
+        ``TABLE_ENTRIES_AHEAD`` entries at a time (:meth:`Engine.table_arrays_many`,
+        :class:`wire.TableCodec`: the bytes published for the same tables), and send each
+        one that is whole.  The bytes are those of ``wire.encode_reply({"tables":
+        wire.tables_by_name(engine)})`` (split mode: node by node from :meth:`Engine.routes`)
+        for the engine as it is when each node is encoded
+        (every node's table is at least as new as the request; nodes encoded in later turns
+        may be newer than earlier ones, as published tables are)."""
+        import msgpack
+        import zmq
+
+        eng = self.engine
+        if eng is None:
+            return
+        end = time.perf_counter() + budget_s
+        n = self.topo.n
+        want = max(1, TABLE_ENTRIES_AHEAD // max(1, n))
+        codec = getattr(self, "_codec", None)
+        if codec is None:
+            codec = self._codec = wire.TableCodec(self.topo.nodes)
+        names = getattr(self, "_packed_names", None)
+        if names is None:
+            names = self._packed_names = [msgpack.packb(nm) for nm in self.topo.nodes]
+        while self._tables_replies:
+            job = self._tables_replies[0]
+            while job.next < n:
+                xs = list(range(job.next, min(n, job.next + want)))
+                if eng.settings.mode == "split":
+                    # split mode's reply is its shares' floats (Engine.routes), which the
+                    # arrays of table_arrays_many approximate in the last bits: node by node
+                    enc = [msgpack.packb(wire.routes_by_name(eng, x), use_bin_type=True)
+                           for x in xs]
+                else:
+                    enc = codec.routes_many(*eng.table_arrays_many(xs), len(xs))
+                for x, b in zip(xs, enc):
+                    job.parts += (names[x], b)
+                job.next = xs[-1] + 1
+                if time.perf_counter() >= end:
+                    break
+            if job.next < n:
+                return
+            self._tables_replies.pop(0)
+            head = wire.encode_reply({"tables": {}})
+            assert head.endswith(b"\x80")      # the empty map last: replaced by n entries
+            body = b"".join((head[:-1], msgpack.Packer().pack_map_header(n), *job.parts))
+            with contextlib.suppress(zmq.ZMQError):
+                job.sock.send(body, zmq.NOBLOCK)
+            self.counters.control_request("tables", True)
+            if time.perf_counter() >= end:
+                return
 
     def health(self) -> dict[str, Any]:
         c = self.counters
@@ -1080,6 +1403,17 @@ class Service:
                        "rate_limited_batches": self.guards.stats.rate_limited_batches,
                        "reporters_tracked": self.guards.reporters_tracked},
             "connections": self.connection_state(),
+            "loop": {"max_turn_s": self.max_turn_s, "max_turn_parts_s": dict(self.max_turn_parts),
+                     "max_turn_cpu_s": self.max_turn_cpu_s,
+                     "max_turn_cpu_parts_s": dict(self.max_turn_cpu_parts),
+                     "acks_waiting_fsync": len(self._pending),
+                     # how decisions are sized to service.decide_budget_s, and the longest
+                     "decide": {"cost_per_destination_s": self._decide_cost,
+                                "fixed_s": self._decide_fixed,
+                                "max_s": self._decide_max[0],
+                                "max_destinations": self._decide_max[1],
+                                "max_limit": self._decide_max[2]}},
+            "optimum": self.optimum.health(),
             "security": {"curve": self.allow is not None,
                          "reporters": [] if self.allow is None else
                          [r.name for r in self.allow.reporters]},
@@ -1087,11 +1421,23 @@ class Service:
 
     # -- decisions, tables, snapshots ----------------------------------------------------
     def _housekeeping(self) -> None:
+        parts = self._house_parts = {}
+        t0 = time.perf_counter()
+        self._housekeeping_steps(parts)
+        parts["rest"] = time.perf_counter() - t0 - sum(parts.values())
+
+    def _housekeeping_steps(self, parts: dict[str, float]) -> None:
+        """Housekeeping's steps; ``parts`` gets the seconds of the ones that may take long
+        (for health's ``loop.max_turn_parts_s``)."""
         now = self.clock.monotonic()
         cfg = self.cfg
         if self.listeners is not None and now >= self._next_gate_tick:
             self.listeners.tick()
             self._next_gate_tick = now + 1.0
+        if self._tables_replies:
+            t0 = time.perf_counter()
+            self._tables_reply_work(TABLES_REPLY_SLICE_S)
+            parts["tables_reply"] = time.perf_counter() - t0
         if self._down is not None:
             # no decisions (they would be journaled) and no snapshots; tables keep going out
             self.try_resume()
@@ -1099,20 +1445,39 @@ class Service:
             if now >= self._next_publish_all:
                 self._queue_publish(range(self.topo.n), "interval")
                 self._next_publish_all = now + cfg["service.publish_interval_s"]
-            if self._pub_queue:
+            if self._pub_queue or self._pub_changed:
                 self._publish_due(cfg["service.publish_budget_s"])
             return
-        if self._touched and now - self._last_decide >= cfg["service.debounce_s"]:
+        if self.optimum.guide_due() and self.engine is not None:   # engine.optimum.guide
+            with self.lock, contextlib.suppress(StorageDown):       # (a failure rebuilds the engine)
+                body = self.optimum.take_guide(self.clock.wall())
+                self.optimum.guided(_journal.apply_guide(self.engine, body))
+                self._append("guide", body)
+                self._touched = True
+        overran = False
+        if self._touched and self._decision_due(now):
+            t0 = time.perf_counter()
             self._decide_and_publish(now)
+            self._release_ready()
+            parts["decide"] = took = time.perf_counter() - t0
+            # a decision that overran its budget (a busy machine, or a link change deciding
+            # everything) leaves this turn's publishing to the next turn, which comes at
+            # once (tables due: no wait) after the frames that arrived meanwhile — except a
+            # link's source tables, which lead; never two turns running (no starving)
+            budget = cfg["service.decide_budget_s"]
+            overran = 0 < budget < took and not self._pub_lead and not self._pub_deferred
+        self._pub_deferred = overran
         if now >= self._next_publish_all:
-            if self._touched:
-                self._decide_and_publish(now)
             self._queue_publish(range(self.topo.n), "interval")
             self._next_publish_all = now + cfg["service.publish_interval_s"]
-        if self._pub_queue:
+        if (self._pub_queue or self._pub_changed) and not overran:
+            t0 = time.perf_counter()
             self._publish_due(cfg["service.publish_budget_s"])
+            parts["publish"] = time.perf_counter() - t0
         if self._snap_child is not None:
+            t0 = time.perf_counter()
             self._reap_snapshot()
+            parts["snapshot_reap"] = time.perf_counter() - t0
         if now >= self._next_snapshot and self._down is None:
             if self._last_record != self._snapshot_mark:
                 with contextlib.suppress(StartError, StorageDown):   # logged, retried next interval
@@ -1120,39 +1485,169 @@ class Service:
                         self._snapshot("interval")
             self._next_snapshot = now + cfg["service.snapshot_interval_s"]
 
-    def _decide_and_publish(self, now_mono: float) -> None:
+    def _decision_at(self) -> float:
+        """When the next decision may run: ``service.debounce_s`` after the last one and,
+        with ``service.max_decisions_per_s``, once a token is there (a bucket holding a
+        tenth of a second's worth, at least one)."""
+        cfg = self.cfg
+        if self._urgent:
+            # a link changed state: decided now, past the debounce and the cap (its token
+            # is still taken, down to a debt of one burst: the next decisions wait instead)
+            return -math.inf
+        t = self._last_decide + cfg["service.debounce_s"]
+        rate = cfg["service.max_decisions_per_s"]
+        if rate > 0:
+            tokens = self._tokens(rate)
+            if tokens < 1.0:
+                t = max(t, self.clock.monotonic() + (1.0 - tokens) / rate)
+        return t
+
+    def _tokens(self, rate: float) -> float:
+        now = self.clock.monotonic()
+        burst = max(1.0, rate * 0.1)
+        self._decide_tokens = min(burst, self._decide_tokens + (now - self._tokens_at) * rate) \
+            if self._tokens_at > -math.inf else burst
+        self._tokens_at = now
+        return self._decide_tokens
+
+    def _decision_due(self, now: float) -> bool:
+        return now >= self._decision_at()
+
+    def _decide_limit(self, eng: Any) -> int | None:
+        """How many due destinations this decision may take (None: all) so that it fits
+        ``service.decide_budget_s``, from the measured cost per destination (before any
+        measurement, a guess of 20 ns per node and slot).  Link rows decide everything."""
+        budget = self.cfg["service.decide_budget_s"]
+        if budget <= 0 or self._urgent:
+            return None
+        cost = self._decide_cost if self._decide_cost is not None else 2e-8 * eng.n * eng.k
+        # the key lane and the bookkeeping come first: the full pass gets what they leave
+        room = budget - self._decide_fixed
+        limit = max(1, int(room / max(cost, 1e-9))) if room > 0 else 1
+        # no more due than that: no limit (and none journaled)
+        return None if limit >= eng.pending() else limit
+
+    def _decide_and_publish(self, now_mono: float, bounded: bool = True) -> None:
         eng = self.engine
         assert eng is not None
+        limit = self._decide_limit(eng) if bounded else None
         with self.lock:
             t = self.clock.wall()
-            d = eng.decide(t)
+            f0, t0 = eng.full_pass_destinations, time.perf_counter()
+            d = eng.decide(t, limit=limit)
+            f = eng.full_pass_destinations - f0
             try:
-                self._journal_tick(t)
+                self._journal_tick(t, limit)
             except StorageDown:
                 return   # the engine was put back to what is stored; decide again on resume
-        self._touched = False
+        self._touched = eng.pending() > 0     # a bounded decision left some for the next
         self._last_decide = now_mono
+        rate = self.cfg["service.max_decisions_per_s"]
+        if rate > 0:
+            self._tokens(rate)
+            self._decide_tokens = max(-max(1.0, rate * 0.1), self._decide_tokens - 1.0)
+        urgent, self._urgent = self._urgent, set()
         if d.changed_nodes:
+            for x in d.changed_nodes:
+                self._table_bytes.pop(x, None)
+                self._ahead.pop(x, None)
+            first = sorted(urgent & d.changed_nodes)
+            for x in first:       # a link's source goes to the front of the change queue
+                self._pub_changed.pop(x, None)
+            self._queue_publish(first, "change")
+            for x in reversed(first):
+                self._pub_changed.move_to_end(x, last=False)
+            self._pub_lead = set(first)
             self._queue_publish(sorted(d.changed_nodes), "change")
+        took = time.perf_counter() - t0
+        if took > self._decide_max[0] and bounded:
+            self._decide_max = (took, f, limit)
+        self._decide_took(took, f)
+
+    def _decide_took(self, took: float, f: int) -> None:
+        """Learn a whole decision's cost from one that took ``took`` seconds with ``f``
+        full-pass destinations: the part not explained by ``f`` destinations at the current
+        cost per destination is the fixed part (the key lane, which is never limited, the
+        journal, the queueing); with 16 or more destinations, what is left after the fixed
+        part (at least half) gives the cost of one.  Both take a dearer sample at once
+        and fall slowly (an EWMA), so one cheap decision does not let the next overrun:
+        under load the cost of a destination moved 2x between decisions, and going half
+        way up let a 90-destination decision take 41 ms against its 20 ms."""
+        def ewma(old: float | None, new: float) -> float:
+            return new if old is None or new > old else 0.8 * old + 0.2 * new
+
+        cost = self._decide_cost
+        if f >= 16:        # enough destinations to measure the cost of one
+            self._decide_cost = ewma(cost, max(took - self._decide_fixed, 0.5 * took) / f)
+        if cost is not None:
+            self._decide_fixed = ewma(self._decide_fixed, max(0.0, took - f * cost))
 
     def _queue_publish(self, nodes: Iterable[int], cause: str) -> None:
-        """Mark tables due.  A node already due keeps its place: it goes out once, with the
-        table as it is when its turn comes (changes coalesce, memory stays <= n)."""
+        """Mark tables due.  Changed tables go in their own queue, served before the
+        interval round; a node already due keeps its place: it goes out once, with the
+        table as it is when its turn comes (changes coalesce, memory stays <= 2n)."""
+        if cause == "change":
+            q = self._pub_changed
+            for x in nodes:
+                if x not in q:
+                    q[x] = cause
+                self._pub_queue.pop(x, None)    # the change round sends it now
+            return
         q = self._pub_queue
+        changed = self._pub_changed
         for x in nodes:
-            if x not in q:
+            if x not in q and x not in changed:
                 q[x] = cause
 
     def _publish_due(self, budget_s: float) -> None:
-        """Publish due tables, oldest first, for at most ``budget_s`` this turn — so a big
-        round of changes cannot hold up ingest for longer than that."""
-        q = self._pub_queue
+        """Publish due tables, changed ones first, then the interval round oldest first,
+        for at most ``budget_s`` this turn — so a big round cannot hold up ingest for longer
+        than that."""
         end = time.perf_counter() + budget_s
-        while q:
-            x, cause = q.popitem(last=False)
-            self._publish((x,), cause)
-            if time.perf_counter() >= end:
+        cache, ahead = self._table_bytes, self._ahead
+        for q in (self._pub_changed, self._pub_queue):
+            while q:
+                nxt = next(iter(q))
+                if nxt not in cache and nxt not in ahead:
+                    self._encode_ahead()
+                x, cause = q.popitem(last=False)
+                self._publish((x,), cause)
+                self._release_ready()
+                if time.perf_counter() >= end:
+                    return
+
+    def _encode_ahead(self) -> None:
+        """Encode the next due tables that have no bytes yet in one pass
+        (:meth:`Engine.table_arrays_many`, :meth:`wire.TableCodec.routes_many`): about
+        ``TABLE_ENTRIES_AHEAD`` entries' worth, in queue order, so a round of changes costs a
+        few numpy calls instead of a few dozen per table."""
+        if type(self)._routes is not Service._routes:
+            return          # a subclass publishes other routes: table by table
+        eng = self.engine
+        assert eng is not None
+        cache, ahead = self._table_bytes, self._ahead
+        want = max(1, TABLE_ENTRIES_AHEAD // max(1, self.topo.n))
+        lead = self._pub_lead
+        if lead:
+            # a link's source nodes lead the queue: encoded on their own, sent at once
+            want = sum(1 for _ in itertools.takewhile(lead.__contains__, self._pub_changed))
+            lead.clear()
+        todo: list[int] = []
+        for q in (self._pub_changed, self._pub_queue):
+            for x in q:
+                if x not in cache and x not in ahead:
+                    todo.append(x)
+                    if len(todo) >= want:
+                        break
+            if len(todo) >= want:
                 break
+        if len(todo) < 2:
+            return          # one table: _publish encodes it as it goes (no extra pass)
+        codec = getattr(self, "_codec", None)
+        if codec is None:
+            codec = self._codec = wire.TableCodec(self.topo.nodes)
+        for x, b in zip(todo, codec.routes_many(*eng.table_arrays_many(todo), len(todo))):
+            ahead[x] = b
 
     def _publish(self, nodes: Iterable[int], cause: str) -> None:
         import zmq
@@ -1162,9 +1657,23 @@ class Service:
         pub = self.sockets["publish"]
         names = self.topo.nodes
         n = 0
+        cache = self._table_bytes
         for x in nodes:
             self.seq[x] += 1
-            frames = wire.table_message(names[x], self.seq[x], self.epoch, self._routes(x))
+            packed = cache.get(x)
+            if packed is not None:
+                routes = zlib.decompress(packed)
+            else:
+                routes = self._ahead.pop(x, None)
+                if routes is None:
+                    routes = self._encoded_routes(x)
+                if cause != "change":
+                    # kept for the next interval rounds, compressed: at 1,000 nodes the
+                    # tables took 34 MB as they are, 8 MB at zlib level 1 (0.35 ms a table
+                    # to pack once, 0.15 ms to unpack against 0.5 ms to encode).  A changed
+                    # table is not kept: under load the next decision changes it again
+                    cache[x] = zlib.compress(routes, 1)
+            frames = wire.table_message_encoded(names[x], self.seq[x], self.epoch, routes)
             try:
                 pub.send_multipart(frames, zmq.NOBLOCK)
             except zmq.Again:  # PUB drops rather than blocks; subscribers see the seq gap
@@ -1369,25 +1878,42 @@ class Service:
         dog.daemon = True
         dog.start()
         try:
+            self._flush_pending()
             if self._down is not None:
                 self.log.warning("stopping while the journal cannot be written: no final "
                                  "snapshot; what is stored is what was acknowledged",
                                  reason=self._down)
             else:
                 if self._touched:
-                    self._decide_and_publish(self.clock.monotonic())
+                    self._decide_and_publish(self.clock.monotonic(), bounded=False)
                 with contextlib.suppress(StartError, StorageDown):   # logged; the journal has it all
                     self._snapshot("shutdown")
             self._pub_queue.clear()
             self._publish(range(self.topo.n), "final")
+            self._tables_reply_work(math.inf)     # a tables reply still being built
         finally:
             self.close()
             dog.cancel()
         self.log.info("stopped", record=self._last_record)
         return 0
 
+    def _flush_pending(self) -> None:
+        """At shutdown: make everything appended durable, then send the answers that
+        waited for it (``unavailable`` if that fails)."""
+        if not self._pending:
+            return
+        import zmq
+
+        with contextlib.suppress(StorageDown):
+            self.commit()
+        if self._down is not None:
+            self._fail_pending(zmq)
+        self._release(zmq)
+
     def close(self) -> None:
         """Release everything (idempotent); queued replies get ``service.linger_s``."""
+        self._stop_syncer()
+        self.optimum.close()
         if self._snap_child is not None:     # an unfinished snapshot: never installed
             pid, tmp, _, _ = self._snap_child
             self._snap_child = None
@@ -1396,27 +1922,10 @@ class Service:
                 os.waitpid(pid, 0)
             with contextlib.suppress(OSError):
                 os.unlink(tmp)
-        if self.metrics_server is not None:
-            self.metrics_server.shutdown()
-            self.metrics_server.server_close()
-            self.metrics_server = None
-        if getattr(self, "listeners", None) is not None:
-            self.listeners.close()
+        if not hasattr(self, "listeners"):
             self.listeners = None
-        for s in self.sockets.values():
-            s.close()
-        self.sockets = {}
-        for s in (self._sig_tx, self._sig_rx):
-            if s is not None:
-                s.close(0)
+        _listeners.close_transport(self, (self._sig_tx, self._sig_rx))
         self._sig_tx = self._sig_rx = None
-        if self.auth is not None:
-            self.auth.stop()
-            self.auth = None
-        if self.ctx is not None:
-            self.ctx.term()
-            self.ctx = None
-            _listeners.release_ipc(self.endpoints.values())   # bound by us (claimed first)
         if self.journal is not None:
             with contextlib.suppress(StorageDown):
                 self.commit()

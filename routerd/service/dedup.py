@@ -48,6 +48,7 @@ from __future__ import annotations
 from collections import OrderedDict
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
+from itertools import islice
 from typing import Any
 
 import numpy as np
@@ -192,18 +193,14 @@ class Dedup:
         self._entries -= 1
 
     def _pack(self, rejected: Iterable[Any]) -> bytes:
-        rows: list[int] = []
-        codes: list[int] = []
-        for r, s in rejected:
-            if len(rows) >= REJECTIONS_KEPT:
-                break
-            rows.append(int(r))
-            codes.append(self._code[str(s)])   # a reason outside the set is our bug: KeyError
-        if not rows:
+        kept = list(islice(rejected, REJECTIONS_KEPT))
+        if not kept:
             return b""
-        a = np.empty(len(rows), dtype=_REJ)
-        a["row"] = rows
-        a["why"] = codes
+        rows, reasons = zip(*kept)
+        a = np.empty(len(kept), dtype=_REJ)
+        a["row"] = [int(r) for r in rows]
+        # a reason outside the set is our bug: KeyError
+        a["why"] = list(map(self._code.__getitem__, map(str, reasons)))
         return a.tobytes()
 
     def _unpack(self, blob: bytes) -> tuple[tuple[int, str], ...]:

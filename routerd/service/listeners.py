@@ -210,6 +210,33 @@ def release_ipc(endpoints: Iterable[str]) -> None:
 
 
 # ---- the descriptor budget -------------------------------------------------------------
+def close_transport(owner: Any, extra: Iterable[Any] = ()) -> None:
+    """Close what a service or shard front opened, in a safe order (idempotent): its
+    metrics server, then ``extra`` sockets (closed at once, linger 0), its listeners, its
+    bound sockets, its authenticator, and last the ZeroMQ context, whose ipc files it claimed
+    are then released.  The caller clears its own references to ``extra``."""
+    if owner.metrics_server is not None:
+        owner.metrics_server.shutdown()
+        owner.metrics_server.server_close()
+        owner.metrics_server = None
+    for s in extra:
+        if s is not None:
+            s.close(0)
+    if owner.listeners is not None:
+        owner.listeners.close()
+        owner.listeners = None
+    for s in owner.sockets.values():
+        s.close()
+    owner.sockets = {}
+    if owner.auth is not None:
+        owner.auth.stop()
+        owner.auth = None
+    if owner.ctx is not None:
+        owner.ctx.term()
+        owner.ctx = None
+        release_ipc(owner.endpoints.values())   # bound by us (claimed first)
+
+
 def raise_nofile(log: Any = None) -> tuple[int, int, int]:
     """Raise the soft RLIMIT_NOFILE to the hard limit: (soft before, soft now, hard);
     said on ``log`` when it changed."""

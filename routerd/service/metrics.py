@@ -31,9 +31,14 @@ from prometheus_client.core import (
 )
 from prometheus_client.registry import Collector, CollectorRegistry
 
+from routerd.core import kernels as _kernels
 from routerd.io.metricsaddr import parse_address
 
-__all__ = ["Counters", "Histo", "MetricsSource", "RouterdCollector", "connection_families",
+#: the compiled histogram binning when built (the same bucket counts as the numpy one)
+_KERNELS = _kernels.select("auto")
+
+__all__ = ["Counters", "Histo", "LabelledCollector", "MetricsSource", "RouterdCollector",
+           "connection_families", "optimum_families", "with_labels",
            "parse_address", "serve"]
 
 #: |TD error| buckets, seconds (the demo lab's hop delays are 0.5–2 ms; estimates reach
@@ -71,10 +76,12 @@ class Histo:
     Counts are per bucket (not cumulative) until exported; ``+Inf`` is the last bucket.
     """
 
-    __slots__ = ("_blist", "_lock", "bounds", "counts", "sum")
+    __slots__ = ("_blist", "_counts", "_lock", "_pending", "_pending_n", "_sum", "bounds")
 
     #: Below this many values a Python bisect beats numpy's per-call overhead.
     SMALL = 16
+    #: Values held by :meth:`defer` before they are folded in without a reader asking.
+    PENDING_MAX = 1 << 16
 
     def __init__(self, bounds: Sequence[float]):
         b = np.asarray(bounds, dtype=np.float64)
@@ -82,9 +89,24 @@ class Histo:
             raise ValueError("histogram bounds must be a rising sequence")
         self.bounds = b
         self._blist = b.tolist()
-        self.counts = np.zeros(b.size + 1, dtype=np.int64)
-        self.sum = 0.0
+        self._counts = np.zeros(b.size + 1, dtype=np.int64)
+        self._sum = 0.0
         self._lock = threading.Lock()
+        self._pending: list[np.ndarray] = []
+        self._pending_n = 0
+
+    @property
+    def counts(self) -> np.ndarray:
+        """Per-bucket counts (deferred values folded in first)."""
+        with self._lock:
+            self._fold()
+            return self._counts
+
+    @property
+    def sum(self) -> float:
+        with self._lock:
+            self._fold()
+            return self._sum
 
     def observe_many(self, values: np.ndarray) -> None:
         v = np.asarray(values, dtype=np.float64)
@@ -94,31 +116,82 @@ class Histo:
             for x in v.tolist():
                 self.observe(x)
             return
+        add, s = self._binned(v)
+        with self._lock:
+            self._counts += add
+            self._sum += s
+
+    def defer(self, values: np.ndarray) -> None:
+        """:meth:`observe_many` later: the array is kept (not copied: the caller hands it
+        over) and folded in with the others in one numpy pass when anyone reads the
+        histogram, or once :data:`PENDING_MAX` values wait.  The ingest loop counts a
+        batch's |TD errors| this way: one pass per scrape instead of four numpy calls per
+        batch.  Same counts; the sum may differ in the last bits (one pairwise sum over
+        the concatenation instead of one per array)."""
+        with self._lock:
+            self._pending.append(values)
+            self._pending_n += values.shape[0]
+            if self._pending_n >= self.PENDING_MAX:
+                self._fold()
+
+    def _fold(self) -> None:
+        # under self._lock
+        if not self._pending:
+            return
+        p, self._pending, self._pending_n = self._pending, [], 0
+        v = np.asarray(p[0] if len(p) == 1 else np.concatenate(p), dtype=np.float64)
+        if v.size:
+            add, s = self._binned(v)
+            self._counts += add
+            self._sum += s
+
+    def _binned(self, v: np.ndarray) -> tuple[np.ndarray, float]:
+        kern = _KERNELS
+        if kern is not None:
+            # one compiled pass, the same buckets (routerd/core/_kernels.pyx: histo_add)
+            add = np.zeros(self._counts.size, dtype=np.int64)
+            s = kern.histo_add(add, self.bounds, np.ascontiguousarray(v, dtype=np.float64),
+                               _binade_starts(self.bounds))
+            return add, float(s)
         # Prometheus buckets are "less than or equal": side="left" puts v == bound in it
         idx = np.searchsorted(self.bounds, v, side="left")
-        add = np.bincount(idx, minlength=self.counts.size)
-        s = float(v.sum())
-        with self._lock:
-            self.counts += add
-            self.sum += s
+        return np.bincount(idx, minlength=self._counts.size), float(v.sum())
 
     def observe(self, value: float) -> None:
         i = bisect.bisect_left(self._blist, value)   # the same rule as side="left"
         with self._lock:
-            self.counts[i] += 1
-            self.sum += value
+            self._counts[i] += 1
+            self._sum += value
 
     def exported(self) -> tuple[list[tuple[str, float]], float]:
         """(cumulative ``[(le, count), ...]`` ending in ``+Inf``, sum)."""
         with self._lock:
-            c = np.cumsum(self.counts)
-            s = self.sum
+            self._fold()
+            c = np.cumsum(self._counts)
+            s = self._sum
         les = [_fmt(float(x)) for x in self.bounds] + ["+Inf"]
         return list(zip(les, (float(x) for x in c))), s
 
     @property
     def count(self) -> int:
         return int(self.counts.sum())
+
+
+_LUTS: dict[bytes, np.ndarray] = {}
+
+
+def _binade_starts(bounds: np.ndarray) -> np.ndarray:
+    """Per binary exponent (2048), how many ``bounds`` lie below the smallest non-negative
+    double of that exponent (0.0 for exponent 0): where the compiled binning starts a value
+    (``_kernels.histo_add``).  Cached per set of bounds."""
+    key = bounds.tobytes()
+    lut = _LUTS.get(key)
+    if lut is None:
+        with np.errstate(over="ignore"):      # exponent 2047: inf and NaN, +inf here
+            low = np.ldexp(1.0, np.arange(2048) - 1023)
+        low[0] = 0.0
+        lut = _LUTS[key] = np.searchsorted(bounds, low, side="left").astype(np.int64)
+    return lut
 
 
 def _fmt(x: float) -> str:
@@ -185,7 +258,7 @@ class Counters:
         self.observations_accepted += counts.observations
         self.link_reports_accepted += counts.link_reports
         if counts.td_errors is not None:
-            self.td_error.observe_many(counts.td_errors)
+            self.td_error.defer(counts.td_errors)
         if counts.update_s is not None:
             self.update_duration.observe(counts.update_s)
 
@@ -336,6 +409,9 @@ class RouterdCollector(Collector):
                          "forgotten)", d["marks"])
             yield _gauge("routerd_dedup_marks_bytes", "Estimated bytes of the high-water marks",
                          d["marks_bytes"])
+        opt = getattr(src, "optimum", None)   # the live optimality gap (routerd.service.optimum)
+        if opt is not None:
+            yield from optimum_families(opt.stats())
         yield _gauge("routerd_uptime_seconds", "Seconds since the service started", src.uptime_s())
         info = GaugeMetricFamily("routerd_build_info", "Constant 1, labelled with version and topology digest",
                                  labels=sorted(src.info()))
@@ -372,6 +448,46 @@ def connection_families(st: Mapping[str, Any]) -> Iterator[Metric]:
                  "connections (connection cap reached)", 1.0 if "ingest" in st["paused"] else 0.0)
 
 
+def optimum_families(f: Mapping[str, float]) -> Iterator[Metric]:
+    """The live optimality gap (:meth:`routerd.service.optimum.Optimum.stats`).  The delay
+    series are absent until a run has given them (and the published one while the tables
+    leave measured demand unrouted or a link over capacity): ``absent()`` tells, not NaN."""
+    runs = CounterMetricFamily("routerd_optimum_runs", "Optimiser runs on the measured demand, "
+                               "by outcome (skipped: intervals that passed while a run was going)",
+                               labels=["outcome"])
+    runs.add_metric(["ok"], f["runs"])
+    runs.add_metric(["failed"], f["failed"])
+    runs.add_metric(["skipped"], f["skipped"])
+    yield runs
+    yield _counter("routerd_optimum_run_seconds", "Time spent in optimiser runs (child process)",
+                   f["run_s_total"])
+    yield _gauge("routerd_optimum_enabled", "1 when the live optimality gap runs "
+                 "(engine.optimum.interval_s > 0, network within engine.optimum.max_nodes, not a shard worker)",
+                 f["enabled"])
+    yield _counter("routerd_optimum_guides", "Optimum splits that seeded split mode's shares "
+                   "(engine.optimum.guide; journaled guide records)", f["guides"])
+    yield _gauge("routerd_optimum_guided_destinations", "Destinations the last guide seeded "
+                 "(the others kept their shares: a route or a loop would have changed)", f["guided"])
+    yield _gauge("routerd_measured_demand_packets_per_second", "Offered demand measured from "
+                 "hop rows (packets entering the network per second, all pairs)", f["demand_pps"])
+    for name, key, doc in (
+            ("routerd_model_delay_optimal_seconds", "optimal",
+             "Model (M/M/1 links + propagation) mean delay of the flow-deviation optimum for the measured demand"),
+            ("routerd_model_delay_optimal_lower_seconds", "lower",
+             "Lower bound on the model's optimal mean delay (the optimum lies between this and the optimal series)"),
+            ("routerd_model_delay_published_seconds", "published",
+             "Model mean delay of the published tables for the measured demand"),
+            ("routerd_model_delay_gap_ratio", "ratio",
+             "Published over optimal model delay (1 = the tables are at the model's optimum)"),
+            ("routerd_optimum_last_run_duration_seconds", "run_s", "Duration of the last optimiser run"),
+            ("routerd_optimum_relative_gap", "rel_gap",
+             "Duality gap over cost of the last optimiser run (0 = converged exactly)"),
+            ("routerd_optimum_age_seconds", "age_s", "Seconds since the last optimiser result")):
+        v = f[key]
+        if v == v and v not in (float("inf"), float("-inf")):
+            yield _gauge(name, doc, v)
+
+
 def _counter(name: str, doc: str, value: float) -> CounterMetricFamily:
     f = CounterMetricFamily(name, doc)
     f.add_metric([], float(value))
@@ -389,8 +505,34 @@ def _histogram(name: str, doc: str, h: Histo) -> HistogramMetricFamily:
     return f
 
 
-def serve(addr: str, source: MetricsSource) -> tuple[Any, int, CollectorRegistry]:
+class LabelledCollector(Collector):
+    """Another collector's families with constant labels added to every sample (a shard
+    worker's page: ``shard="K"`` on every series, so one Prometheus job scrapes all
+    workers and their series never collide)."""
+
+    def __init__(self, inner: Collector, labels: Mapping[str, str]):
+        self.inner = inner
+        self.labels = dict(labels)
+
+    def describe(self) -> Iterable[Metric]:
+        return []
+
+    def collect(self) -> Iterator[Metric]:
+        for m in self.inner.collect():
+            yield with_labels(m, self.labels)
+
+
+def with_labels(m: Metric, labels: Mapping[str, str]) -> Metric:
+    """A copy of family ``m`` with ``labels`` on every sample."""
+    out = Metric(m.name, m.documentation, m.type, m.unit)
+    out.samples = [s._replace(labels={**s.labels, **labels}) for s in m.samples]
+    return out
+
+
+def serve(addr: str, source: MetricsSource,
+          labels: Mapping[str, str] | None = None) -> tuple[Any, int, CollectorRegistry]:
     """Start the HTTP page on ``addr`` in a daemon thread: (server, bound port, registry).
+    ``labels``: constant labels on every sample (:class:`LabelledCollector`).
 
     Stop it with ``server.shutdown(); server.server_close()``.
     """
@@ -398,6 +540,7 @@ def serve(addr: str, source: MetricsSource) -> tuple[Any, int, CollectorRegistry
 
     host, port = parse_address(addr)
     registry = CollectorRegistry(auto_describe=False)
-    registry.register(RouterdCollector(source))
+    col: Collector = RouterdCollector(source)
+    registry.register(LabelledCollector(col, labels) if labels else col)
     server, _thread = start_http_server(port, addr=host, registry=registry)
     return server, int(server.server_address[1]), registry

@@ -55,13 +55,16 @@ The contract with the shell — why an acknowledgement always means "journaled":
 from __future__ import annotations
 
 import dataclasses
+from collections import Counter
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
+from operator import itemgetter
 from typing import Any
 
 import numpy as np
 
 from routerd.core import guards as _guards
+from routerd.core import kernels as _kernels
 from routerd.core.engine import Engine, HopBatch
 from routerd.core.topology import Topology
 from routerd.io import journal as _journal
@@ -118,14 +121,17 @@ class Counts:
 class Fed:
     """The outcome of one frame: ``answer`` (the reply frame's bytes: an ack or an error),
     ``batch`` (its number when it could be read), ``records`` (to append to the journal
-    before the answer may go out), ``counts`` and ``touched`` (the engine changed: a
-    decision is due)."""
+    before the answer may go out), ``counts``, ``touched`` (the engine changed: a
+    decision is due) and ``urgent`` (the source nodes of links that changed state: the
+    shell decides at once and publishes their tables first)."""
 
     answer: bytes
     batch: int | None
     counts: Counts
     records: tuple[Record, ...] = ()
     touched: bool = False
+    #: source nodes of the batch's links whose state changed (decided and published first)
+    urgent: tuple[int, ...] = ()
 
     @property
     def refused(self) -> bool:
@@ -201,7 +207,11 @@ class Pipeline:
         self.max_bytes: int = cfg["service.max_message_bytes"]
         self.engine = engine
         self.dedup = dedup if dedup is not None else make_dedup(cfg)
-        self.guards = _guards.Guards(topo, _guards.GuardSettings.from_config(cfg))
+        #: the compiled ingest kernels (columnar decode, guard screen) or None: the numpy
+        #: reference (``engine.kernels``, as for the engine)
+        self.kernels = _kernels.select(cfg["engine.kernels"])
+        self.guards = _guards.Guards(topo, _guards.GuardSettings.from_config(cfg),
+                                     kernels=self.kernels)
         self.allow = allow
         self.down: str | None = None
         self._timer = timer
@@ -215,7 +225,8 @@ class Pipeline:
               ) -> wire.Ingest | Fed:
         """Decode to rights: the batch that may go on (rows outside the reporter's rights
         already among its rejections), or the :class:`Fed` that answers the frame."""
-        ing = wire.decode_ingest(frame, self.topo, max_rows=self.max_rows, max_bytes=self.max_bytes)
+        ing = wire.decode_ingest(frame, self.topo, max_rows=self.max_rows, max_bytes=self.max_bytes,
+                                 kernels=self.kernels)
         if isinstance(ing, wire.WireError):
             return _refused(ing.code, wire.encode_error(ing), ing.batch)
         if self.allow is not None and (peer is None or peer.name != ing.reporter):
@@ -277,7 +288,7 @@ class Pipeline:
         if hops is ing.hops and links is ing.links:
             return ing
         return dataclasses.replace(ing, hops=hops, hop_rows=rows, links=links,
-                                   link_rows=link_rows, rejected=tuple(rej))
+                                   link_rows=link_rows, rejected=tuple(rej), raw_cols=None)
 
     def _guard(self, ing: wire.Ingest) -> wire.Ingest:
         """The plausibility guards on the hop rows; rejections join the batch's."""
@@ -288,7 +299,8 @@ class Pipeline:
         k = chk.keep
         rej = list(ing.rejected) + [(int(rows[i]), r) for i, r in chk.rejected]
         hops = HopBatch(hops.src[k], hops.via[k], hops.dst[k], chk.latency, hops.estimate[k])
-        return dataclasses.replace(ing, hops=hops, hop_rows=rows[k], rejected=tuple(rej))
+        return dataclasses.replace(ing, hops=hops, hop_rows=rows[k], rejected=tuple(rej),
+                                   raw_cols=None)
 
     def _apply(self, ing: wire.Ingest, wall: float) -> Fed:
         eng = self.engine
@@ -300,15 +312,16 @@ class Pipeline:
         dt = timer() - t0 if timer is not None else None
         rejected = ing.rejections(res.rejected)
         accepted = res.accepted + len(ing.links)
+        # every row as received was applied: journal the frame's own column bytes
+        raw = ing.raw_cols if not len(res.rejected) else None
         record = ("batch", _journal.batch_body(
             ing.reporter, ing.batch, wall, _journal.accepted_part(ing.hops, res.rejected),
-            ing.links, {"accepted": accepted, "rejected": rejected}))
+            ing.links, {"accepted": accepted, "rejected": rejected}, raw=raw))
         self.dedup.put(ing.reporter, ing.batch, accepted, rejected)
-        by_reason: dict[str, int] = {}
-        for _, reason in rejected:
-            by_reason[reason] = by_reason.get(reason, 0) + 1
+        by_reason = Counter(map(itemgetter(1), rejected)) if rejected else {}
         counts = Counts(result="accepted", rejected=tuple(by_reason.items()),
                         observations=res.accepted, link_reports=len(ing.links),
                         td_errors=np.abs(res.td_errors) if res.accepted else None, update_s=dt)
         return Fed(answer=wire.encode_ack(ing.batch, accepted, rejected), batch=ing.batch,
-                   counts=counts, records=(record,), touched=bool(res.accepted or any(changed)))
+                   counts=counts, records=(record,), touched=bool(res.accepted or any(changed)),
+                   urgent=tuple(int(lk[0]) for lk, c in zip(ing.links, changed) if c))

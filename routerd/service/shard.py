@@ -23,9 +23,10 @@ that receives exactly the hop rows whose destination it owns, in the same order,
 link rows, holds for its destinations the very values one process would hold — bit for
 bit — as long as ``decide`` runs at the same places in each destination's stream (it
 does when a reporter waits for each acknowledgement, and ``service.debounce_s`` is 0).
-Each worker still computes ``decide`` for other destinations after a link change (every
-destination is marked due then); that work is wasted but harmless: those values are never
-published or answered.
+A worker's engine holds only its own destinations (``Engine(owned=)``, its columns of
+every per-destination array: memory about 1/N of one process's engine, and ``decide``
+after a link change works on those only); under a variant other than plain, whose state
+spans destinations, it holds them all (:func:`routerd.io.shards.engine_owned`).
 
 Ingest path.  The front decodes each frame once (:func:`wire.decode_ingest`, the same
 checks as one process: frame errors and decode-time row rejections are answered by the
@@ -67,8 +68,19 @@ stays in the merged tables and the other workers' changes keep going out.
 Control.  ``nodes`` is answered by the front; ``tables``, ``estimates``, ``snapshot``,
 ``link`` and ``reload`` go to every worker and their answers are merged (``link`` and
 ``reload``: every worker applies them); ``health`` adds each worker's health under
-``shards``.  Metrics: the front's page carries every worker's series with a ``shard``
-label (``"0"`` .. ``"N-1"``), and the front's own with ``shard="front"``.
+``shards``.
+
+Security.  CURVE is the front's, as one service's: the ZAP authenticator over the allow
+file, CURVE on ingest, pull, publish and control, each frame's ``User-Id`` into the
+pipeline (a reporter held to its name and nodes), the control right for state-changing
+ops, the read-only control endpoint without CURVE.  The front talks to workers without
+it: a worker drops the keys and refuses to start with them when one of its own endpoints
+could be reached from other hosts (:func:`worker_security`).
+
+Metrics.  Each worker serves its own page with ``shard="K"`` on every series (at
+``shard.metrics_port_base + K`` when set, :func:`worker_metrics`), scraped directly by
+Prometheus; the front's page has only its own series (``shard="front"``), so a hung
+worker never stalls a scrape of the front.
 
 Workers and hosts.  ``routerd serve --shard K/N`` runs worker K of N with its state in
 ``STATE/shard-K-of-N``.  ``--upstream EP`` is the front's *shard endpoint* (a PULL the
@@ -103,6 +115,7 @@ from routerd import __version__
 from routerd.core import topology as _topology
 from routerd.core.errors import InputError
 from routerd.io import config as _config
+from routerd.io import security as _security
 from routerd.io import statedir as _statedir
 from routerd.io import wire
 from routerd.io.childproc import die_with_parent, ready_line
@@ -112,6 +125,7 @@ from routerd.io.metricsaddr import page_url, parse_address
 # reads sharded state dirs with them too); re-exported here for the service's callers
 from routerd.io.shards import (  # noqa: F401 - re-exported
     ShardMap,
+    engine_owned,
     merge_tables,
     owned_routes,
     replay_shards,
@@ -138,6 +152,18 @@ INEXACT_VARIANTS: dict[str, str] = {
 #: Keys a worker runs with whatever its config says: rate limits are the front's (per
 #: reporter, whole batches).
 WORKER_OVERRIDES: dict[str, Any] = {"guards.rate.batches_per_s": 0.0, "guards.rate.rows_per_s": 0.0}
+
+
+def worker_metrics(cfg: _config.Config, k: int) -> str | None:
+    """Worker k's metrics address by ``shard.metrics_port_base`` (the host of
+    ``service.metrics``, port base + k), or None when the base is 0."""
+    base = int(cfg["shard.metrics_port_base"])
+    if not base:
+        return None
+    if base + k > 65535:
+        raise InputError(f"shard.metrics_port_base {base} + shard {k} is above port 65535")
+    host = parse_address(cfg["service.metrics"])[0]
+    return f"[{host}]:{base + k}" if ":" in host else f"{host}:{base + k}"
 
 
 # ---- the worker's flag ------------------------------------------------------------------
@@ -192,15 +218,14 @@ def run(args: argparse.Namespace) -> int:
             chosen = _front_inputs(args, root, args.shards)
             cfg, topo = chosen.cfg, chosen.topo
             smap = ShardMap.build(topo, args.shards, cfg["shard.map"])
-        if cfg["security.server_key"] or cfg["security.allow"]:
-            raise InputError("sharding does not carry CURVE yet: run a sharded service "
-                             "without --server-key/--allow (on one host its internal "
-                             "endpoints are ipc:// files in the state dir)")
+        worker_metrics(cfg, (k if args.shard is not None else smap.n_shards - 1))  # port in range
+        if args.shard is not None:
+            wsec = worker_security(cfg, k, smap.n_shards)
     except (InputError, ValueError) as e:
         print(f"routerd serve: cannot start:\n{e}", file=sys.stderr)
         return 2
     if args.shard is not None:
-        return _run_worker(args, cfg, topo, smap, k, chosen)
+        return _run_worker(args, cfg, topo, smap, k, chosen, wsec)
     front = Front(cfg, topo, smap, args, inputs=chosen)
     try:
         front.start()
@@ -230,15 +255,40 @@ def _front_inputs(args: argparse.Namespace, root: str, n: int) -> Any:
     return _service.choose_inputs(args, root, journals=shards)
 
 
+def worker_security(cfg: _config.Config, k: int, n: int) -> dict[str, Any]:
+    """The security keys a worker runs with: none.  CURVE is the front's (its reporters,
+    their rights, the control right, the read-only endpoint); the front speaks to its
+    workers without it, so a worker's endpoints must be local (ipc://, or TCP on a loopback
+    address) when the config turns CURVE on — InputError otherwise."""
+    if cfg["security.server_key"] or cfg["security.allow"]:
+        for name in ("ingest", "pull", "publish", "control"):
+            ep = cfg[f"service.{name}"]
+            if ep and _security.exposed(ep):
+                raise InputError(
+                    f"shard {k}/{n}: the config turns CURVE on (security.server_key, "
+                    f"security.allow), and the worker's {name} endpoint {ep} can be reached "
+                    "from other hosts without it: CURVE runs on the front, which talks to "
+                    "its workers without it; bind the worker's endpoints to ipc:// (or "
+                    "127.0.0.1)")
+    return {"security.server_key": None, "security.allow": None,
+            "security.control_readonly": None}
+
+
 def _run_worker(args: argparse.Namespace, cfg: _config.Config, topo: _topology.Topology,
-                smap: ShardMap, k: int, chosen: Any = None) -> int:
+                smap: ShardMap, k: int, chosen: Any = None,
+                security: Mapping[str, Any] | None = None) -> int:
     _follow_front()
     n = smap.n_shards
-    over = {"service.state_dir": shard_dir(cfg["service.state_dir"], k, n), **WORKER_OVERRIDES}
+    sec = dict(security if security is not None else worker_security(cfg, k, n))
+    over = {"service.state_dir": shard_dir(cfg["service.state_dir"], k, n), **WORKER_OVERRIDES,
+            **sec}
+    if getattr(args, "metrics", None) is None and (mp := worker_metrics(cfg, k)) is not None:
+        over["service.metrics"] = mp
     wcfg = cfg.with_overrides(over, where=f"shard {k}/{n}")
     rargs = argparse.Namespace(**vars(args))
     rargs.state_dir = over["service.state_dir"]     # a reload re-reads the same state dir
-    svc = ShardWorker(wcfg, topo, smap, k, args.upstream, reload_args=rargs, inputs=chosen)
+    svc = ShardWorker(wcfg, topo, smap, k, args.upstream, reload_args=rargs, inputs=chosen,
+                      overrides=sec)
     try:
         svc.start()
     except _service.StartError as e:
@@ -265,9 +315,14 @@ class ShardWorker(Service):
     ``clock``: every time it reads, announcements included (:mod:`routerd.io.clock`), as
     the :class:`Service`'s."""
 
+    #: the live optimality gap needs every destination's rows and tables (health says so)
+    optimum_off = True
+
     def __init__(self, cfg: _config.Config, topo: _topology.Topology, smap: ShardMap,
-                 k: int, upstream: str | None, *, clock: Clock = SYSTEM, **kw: Any):
+                 k: int, upstream: str | None, *, clock: Clock = SYSTEM,
+                 overrides: Mapping[str, Any] | None = None, **kw: Any):
         super().__init__(cfg, topo, clock=clock, **kw)
+        self._overrides = {**WORKER_OVERRIDES, **(overrides or {})}
         self.smap = smap
         self.shard = k
         self.own = smap.owned(k)
@@ -277,7 +332,14 @@ class ShardWorker(Service):
         self._hello: Any = None
         self._next_hello = 0.0
 
-    # -- what the worker publishes and answers: its own destinations --------------
+    # -- what the worker holds, publishes and answers: its own destinations --------
+    def metrics_labels(self) -> dict[str, str]:
+        return {"shard": str(self.shard)}
+
+    def _engine_owned(self, settings: Any) -> Any:
+        # only its destinations' columns (memory 1/N); under a variant, every one
+        return engine_owned(self.smap, self.shard, settings.variant, settings.mode)
+
     def _routes(self, x: int) -> dict[str, list[list[Any]]]:
         return owned_routes(self.engine, x, self.own_mask)
 
@@ -303,8 +365,8 @@ class ShardWorker(Service):
         return {"index": self.shard, "of": self.smap.n_shards, "destinations": int(self.own.size)}
 
     def _effective(self, cfg: _config.Config) -> _config.Config:
-        # a reload keeps the rate limits the front's (and records the config as run)
-        return cfg.with_overrides(WORKER_OVERRIDES, where="shard worker")
+        # a reload keeps the rate limits and CURVE the front's (and records the config as run)
+        return cfg.with_overrides(self._overrides, where="shard worker")
 
     def info(self) -> Mapping[str, str]:
         return {**super().info(), "shard": f"{self.shard}/{self.smap.n_shards}"}
@@ -450,8 +512,30 @@ class Front:
             "batches_accepted", "batches_duplicate", "batches_refused", "batches_unavailable", "pieces_sent",
             "pieces_acked", "pieces_late", "publications", "parts_received", "acks_undeliverable")}
         self.state_lock: _statedir.StateLock | None = None
+        # CURVE as on one service (routerd.io.security): the server keys, and the ZAP
+        # authenticator over the allow file (the pipeline holds the allow list itself)
+        self.server_keys: tuple[bytes, bytes] | None = None
+        self.auth: Any = None
+
+    @property
+    def allow(self) -> _security.Allow | None:
+        """The allowed reporters: CURVE is on when set."""
+        return self.pipeline.allow
 
     # -- start-up ---------------------------------------------------------------------
+    def _load_security(self) -> None:
+        """Key and allow file, checked before anything binds (as the service's)."""
+        from .daemon import StartError
+
+        try:
+            loaded = _security.load_configured(self.cfg, self.topo)
+        except InputError as e:
+            raise StartError(f"security:\n{e}") from None
+        if loaded is not None:
+            self.server_keys, self.pipeline.allow, exposure = loaded
+            if exposure:
+                self.log.warning(exposure)
+
     def start(self) -> None:
         import zmq
 
@@ -471,20 +555,30 @@ class Front:
             raise StartError(str(e)) from None
         except OSError as e:
             raise StartError(f"state dir {self.state_root}: {e.strerror}") from None
+        self._load_security()
         self.ctx = zmq.Context()
+        if self.allow is not None:
+            # the ZAP handler must run before the first CURVE socket binds
+            self.auth = _security.start_authenticator(self.ctx, self.allow)
         listen = getattr(self.args, "shard_listen", None) or f"ipc://{self._ipc('front-shards')}"
-        # the service's socket options (routerd.service.listeners); sharding refuses CURVE (run())
+        # the service's socket options (routerd.service.listeners) and CURVE: the reporters'
+        # and operators' endpoints as on one service; the workers' announcements (and the
+        # front's connections to them) without it: local ipc:// (see worker_security)
         opts = _listeners.SocketOptions.from_config(cfg, slack=OVERSIZE_ANSWER_SLACK)
 
-        def mk(kind: int, name: str, ep: str) -> Any:
-            return bind_endpoint(self, kind, name, ep, opts)   # claims ipc files first
+        def mk(kind: int, name: str, ep: str, curve: bool = True) -> Any:
+            return bind_endpoint(self, kind, name, ep, opts,   # claims ipc files first
+                                 curve=self.server_keys if curve else None)
 
         mk(zmq.ROUTER, "ingest", cfg["service.ingest"])
         if cfg["service.pull"]:
             mk(zmq.PULL, "pull", cfg["service.pull"])
         mk(zmq.PUB, "publish", cfg["service.publish"])
         mk(zmq.REP, "control", cfg["service.control"])
-        mk(zmq.PULL, "shards", listen)
+        if cfg["security.control_readonly"]:
+            mk(zmq.REP, "control_ro", cfg["security.control_readonly"], curve=False)
+        mk(zmq.PULL, "shards", listen, curve=False)
+        self._warn_exposed(listen)
         self._start_metrics()
         self._install_signals()
         if not self.external:
@@ -501,6 +595,18 @@ class Front:
                              f"config: {e.strerror or e}") from None
         self._cap_connections()
         self._banner()
+
+    def _warn_exposed(self, listen: str) -> None:
+        """Endpoints other hosts can reach without CURVE, said at start-up (as the service)."""
+        cfg = self.cfg
+        open_eps = [] if self.allow is not None else [
+            (k, cfg[f"service.{k}"]) for k in ("ingest", "pull", "publish", "control")]
+        open_eps += [("control-readonly", cfg["security.control_readonly"]), ("shards", listen)]
+        for name, ep in open_eps:
+            if ep and _security.exposed(ep):
+                self.log.warning("endpoint reachable from other hosts without CURVE: anyone "
+                                 "there can use it (give --server-key and --allow, or bind "
+                                 "to 127.0.0.1)", endpoint=name, address=ep)
 
     def _cap_connections(self) -> None:
         """The connection cap over the front's listening sockets (as the service's, see
@@ -531,7 +637,8 @@ class Front:
         argv = [sys.executable, "-m", "routerd", "serve", "--shard", f"{w.k}/{n}",
                 "--upstream", self.endpoints["shards"],
                 "--ingest", f"ipc://{base}-in", "--publish", f"ipc://{base}-pub",
-                "--control", f"ipc://{base}-ctl", "--metrics", "127.0.0.1:0",
+                "--control", f"ipc://{base}-ctl",
+                "--metrics", worker_metrics(self.cfg, w.k) or "127.0.0.1:0",
                 "--state-dir", self.state_root]
         if a is not None and getattr(a, "config", None):
             argv += ["--config", os.path.abspath(a.config)]
@@ -615,8 +722,16 @@ class Front:
             f"  pull     {self.endpoints.get('pull', '- (off)')}   PULL: the same batches, fire-and-forget",
             f"  publish  {self.endpoints['publish']}   PUB: tables/<node>, merged from every worker",
             (f"  control  {self.endpoints['control']}   REP: tables, estimates, health, nodes; "
-             "snapshot, link, reload (answered for the whole network)"),
-            f"  metrics  {self.endpoints['metrics']}   (every worker's series, label shard)",
+             "snapshot, link, reload (answered for the whole network)"
+             + (" (control keys only)" if self.allow is not None else "")),
+            *([f"  control-readonly  {self.endpoints['control_ro']}   REP without CURVE: "
+               "tables, estimates, health, nodes"] if "control_ro" in self.endpoints else []),
+            (f"  metrics  {self.endpoints['metrics']}   (the front's own series; each worker "
+             "serves its own page, label shard)"),
+            (f"  security CURVE on every ZeroMQ endpoint but the workers'; {len(self.allow)} "
+             f"keys allowed ({'; '.join(_security.describe(self.allow))})"
+             if self.allow is not None
+             else "  security off: any local peer may report (give --server-key and --allow)"),
             (f"  shards   {self.endpoints['shards']}   PULL: workers announce themselves here "
              f"(map: {self.smap.source}; destinations per shard {self.smap.counts()})"),
         ]
@@ -750,6 +865,8 @@ class Front:
                     self._drain(self.sockets["pull"], routed=False)
                 if self.sockets["control"] in ev:
                     self._control_one()
+                if "control_ro" in self.sockets and self.sockets["control_ro"] in ev:
+                    self._control_one("control_ro")
                 self._expire()
                 self._supervise()
                 self._publish_due(self.cfg["service.publish_budget_s"])
@@ -767,16 +884,17 @@ class Front:
     def _drain(self, sock: Any, routed: bool) -> None:
         import zmq
 
+        allow = self.allow
         for _ in range(self.cfg["service.max_drain"]):
-            try:
-                parts = sock.recv_multipart(zmq.NOBLOCK)
+            try:   # under CURVE, with the allowed reporter of the frame's User-Id
+                parts, peer = _security.recv_with_peer(sock, zmq.NOBLOCK, allow)
             except zmq.Again:
                 return
             env, body = envelope(parts, routed)
             if len(body) != 1:
                 self._answer(env if routed else None, self._count(extra_frames(len(body))))
                 continue
-            self._ingest_one(env if routed else None, body[0])
+            self._ingest_one(env if routed else None, body[0], peer)
 
     def _count(self, fed: Fed) -> bytes:
         """A pipeline outcome in the front's counts; its answer."""
@@ -795,11 +913,12 @@ class Front:
         except zmq.ZMQError:
             self.counts["acks_undeliverable"] += 1
 
-    def _ingest_one(self, env: list[bytes] | None, payload: bytes) -> None:
+    def _ingest_one(self, env: list[bytes] | None, payload: bytes,
+                    peer: _security.Reporter | None = None) -> None:
         import zmq
 
         cfg = self.cfg
-        ing = self.pipeline.admit(payload, None, time.monotonic())
+        ing = self.pipeline.admit(payload, peer, self.clock.monotonic())
         if isinstance(ing, Fed):   # refused, or a duplicate answered from the window
             self._answer(env, self._count(ing))
             return
@@ -832,7 +951,7 @@ class Front:
             return
         token = TOKEN_PREFIX + _TOKEN.pack(self._next_token)
         self._next_token += 1
-        p = _Pending(env, ing.reporter, ing.batch, time.monotonic() + cfg["shard.timeout_s"], decode_rej,
+        p = _Pending(env, ing.reporter, ing.batch, self.clock.monotonic() + cfg["shard.timeout_s"], decode_rej,
                      len(links), pieces)
         for k, fr in frames.items():
             try:
@@ -987,20 +1106,28 @@ class Front:
     def _fan_out(self, req: Mapping[str, Any]) -> list[dict[str, Any]]:
         return [self._ask(w, req) for w in self.workers]
 
-    def _control_one(self) -> None:
+    def _control_one(self, name: str = "control") -> None:
         import zmq
 
-        sock = self.sockets["control"]
+        sock = self.sockets[name]
+        readonly = name == "control_ro"
+        curve = self.allow is not None and not readonly
         try:
-            parts = sock.recv_multipart(zmq.NOBLOCK)
+            parts, peer = _security.recv_with_peer(sock, zmq.NOBLOCK,
+                                                   self.allow if curve else None)
         except zmq.Again:
             return
         if len(parts) != 1:
             out = wire.encode_error(f"extra_frames: a control request is one frame, got {len(parts)}")
         else:
             req = wire.decode_control(parts[0], self.topo)
-            out = wire.encode_error(req.reason) if isinstance(req, wire.WireError) \
-                else wire.encode_reply(self.control(req))
+            if isinstance(req, wire.WireError):
+                out = wire.encode_error(req.reason)
+            elif (why := _security.control_refusal(req["op"], peer, curve=curve,
+                                                   readonly=readonly)) is not None:
+                out = wire.encode_error(why)
+            else:
+                out = wire.encode_reply(self.control(req))
         sock.send(out)
 
     def control(self, req: Mapping[str, Any]) -> dict[str, Any]:
@@ -1038,7 +1165,8 @@ class Front:
         for w in self.workers:
             h = self._ask(w, {"op": "health"}) if self._up(w) else {"error": "down"}
             shards.append({"shard": w.k, "up": "error" not in h, "restarts": w.restarts,
-                           "pid": (w.hello or {}).get("pid"), "health": h})
+                           "pid": (w.hello or {}).get("pid"),
+                           "metrics": (w.hello or {}).get("metrics"), "health": h})
         up = sum(1 for s in shards if s["up"])
         return {"status": "stopping" if self._stop else ("ok" if up == len(shards) else "degraded"),
                 "uptime_s": self.clock.monotonic() - self.started, "epoch": self.epoch,
@@ -1047,6 +1175,9 @@ class Front:
                              "nodes": self.topo.n, "links": self.topo.n_links},
                 "front": {"in_flight": len(self.pending), **self.counts},
                 "connections": self.listeners.figures() if self.listeners is not None else {},
+                "security": {"curve": self.allow is not None,
+                             "reporters": [] if self.allow is None else
+                             [r.name for r in self.allow.reporters]},
                 "shards_up": up, "shards": shards}
 
     # -- supervision and shutdown -------------------------------------------------------------------
@@ -1115,25 +1246,9 @@ class Front:
                     except subprocess.TimeoutExpired:
                         w.proc.kill()
                         w.proc.wait(5)
-        if self.metrics_server is not None:
-            self.metrics_server.shutdown()
-            self.metrics_server.server_close()
-            self.metrics_server = None
+        _listeners.close_transport(self, [s for w in self.workers for s in (w.dealer, w.sub)])
         for w in self.workers:
-            for s in (w.dealer, w.sub):
-                if s is not None:
-                    s.close(0)
             w.dealer = w.sub = None
-        if self.listeners is not None:
-            self.listeners.close()
-            self.listeners = None
-        for s in self.sockets.values():
-            s.close()
-        self.sockets = {}
-        if self.ctx is not None:
-            self.ctx.term()
-            self.ctx = None
-            _listeners.release_ipc(self.endpoints.values())   # bound by us (claimed first)
         if self._ipc_dir is not None:
             import shutil
 
@@ -1214,8 +1329,9 @@ def combine_acks(decode_rejected: Sequence[Sequence[Any]], n_links: int,
 
 
 class _FrontCollector:
-    """The front's metrics page: each worker's page with a ``shard`` label, and the
-    front's own counters with ``shard="front"``.
+    """The front's metrics page: its own series only, with ``shard="front"`` (each worker
+    serves its own page, every series labelled ``shard="K"``, and Prometheus scrapes them
+    directly: deploy/prometheus.yml; a scrape here never waits for a worker).
 
     It runs in the HTTP server's thread and takes no lock: it reads only values the loop
     replaces whole or counts in place (``counts``, a dict with fixed keys of ints; ``len``
@@ -1230,39 +1346,15 @@ class _FrontCollector:
         return []
 
     def collect(self) -> Iterable[Any]:
-        import urllib.request
+        from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 
-        from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
-        from prometheus_client.parser import text_string_to_metric_families
+        from .metrics import connection_families, with_labels
 
         f = self.front
-        fam: dict[str, Any] = {}
-        for w in f.workers:
-            url = (w.hello or {}).get("metrics")
-            if not url or not f._up(w):
-                continue
-            try:
-                with urllib.request.urlopen(url, timeout=f.cfg["shard.control_timeout_s"]) as r:
-                    text = r.read().decode()
-            except OSError:
-                continue
-            for m in text_string_to_metric_families(text):
-                out = fam.get(m.name)
-                if out is None:
-                    out = fam[m.name] = Metric(m.name, m.documentation, m.type)
-                for s in m.samples:
-                    out.add_sample(s.name, {**s.labels, "shard": str(w.k)}, s.value)
         lst = f.listeners
-        if lst is not None:   # the front's own connection figures, in the same families
-            from .metrics import connection_families
-
+        if lst is not None:   # the front's own connection figures
             for m in connection_families(lst.figures()):
-                out = fam.get(m.name)
-                if out is None:
-                    out = fam[m.name] = Metric(m.name, m.documentation, m.type)
-                for s in m.samples:
-                    out.add_sample(s.name, {**s.labels, "shard": "front"}, s.value)
-        yield from fam.values()
+                yield with_labels(m, {"shard": "front"})
         c = CounterMetricFamily("routerd_shard_front_batches", "Batches at the front, by result",
                                 labels=["shard", "result"])
         for k in ("accepted", "duplicate", "refused", "unavailable"):

@@ -46,6 +46,11 @@ BASE_RATE_PPS = 1300.0
 #: the scenario file's times are written for this many seconds; --duration stretches them
 SCENARIO_SPAN_S = 30.0
 DEFAULT_DURATION_S = 30.0
+#: the live optimality gap on a 30 s demo: a run every 2 s on 5 s of measured demand; the
+#: demo knows its packets' size (BASE_RATE_PPS's 1000 bytes), so the model is not left to
+#: infer it from the latencies
+OPTIMUM_OVERRIDES = {"engine.optimum.interval_s": 2.0, "engine.optimum.window_s": 5.0,
+                     "engine.optimum.packet_bytes": 1000.0}
 #: the trunk of the demo lab: the congested bottleneck the plots and the reading follow
 TRUNK = ("w3", "e3")
 #: the detour's links out of each hall (cross-hall traffic that avoids the trunk)
@@ -102,6 +107,9 @@ def configure(p: argparse.ArgumentParser) -> None:
                         "(e.g. the demo lab with other capacities)")
     p.add_argument("--set", metavar="KEY=VALUE", action="append", default=[], dest="overrides",
                    help="override one config setting, e.g. --set engine.variant=dual (repeatable)")
+    p.add_argument("--no-plot", action="store_true",
+                   help="skip delivery.png and load.png (without matplotlib, i.e. without the "
+                        "plot extra, the demo skips them anyway and says so)")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -113,13 +121,17 @@ def run(args: argparse.Namespace) -> int:
     if problems:
         print("routerd demo: " + "; ".join(problems), file=sys.stderr)
         return 2
-    try:
-        import matplotlib  # noqa: F401
-    except ImportError:
-        print("routerd demo: the plots need matplotlib: pip install 'routerd[plot]'", file=sys.stderr)
-        return 2
+    plots = not getattr(args, "no_plot", False)
+    if plots:
+        try:
+            import matplotlib  # noqa: F401
+        except ImportError:
+            plots = False
+            print("routerd demo: no plots (delivery.png, load.png): matplotlib is not installed; "
+                  "pip install 'routerd[plot]' for them", file=sys.stderr)
     demo = Demo(os.path.abspath(args.out), args.duration, args.seed, args.speed,
-                config=getattr(args, "config", None), overrides=getattr(args, "overrides", None) or ())
+                config=getattr(args, "config", None), overrides=getattr(args, "overrides", None) or (),
+                plots=plots)
     try:
         from routerd.io.files import output_dir
 
@@ -190,6 +202,27 @@ class Progress:
         self.status.done()
 
 
+def optimum_sentence(opt: Mapping[str, Any]) -> str:
+    """The reading's sentence on the service's live optimality gap (health's ``optimum``)."""
+    if not opt.get("available"):
+        why = {"waiting": "no run had finished yet", "no_demand": "it had measured no demand",
+               "no_packet_size": "no link was busy enough to infer the packet size",
+               "off": "engine.optimum.interval_s is 0", "too_large": "the network is too large",
+               "failed": f"its last run failed ({opt.get('error')})"}.get(str(opt.get("reason")),
+                                                                        str(opt.get("reason")))
+        return f"The service's own optimality gap was not available at the end: {why}."
+    head = (f"The service's own model (M/M/1 links plus propagation, fed the demand it "
+            f"measured from the hop reports, {opt['demand_pps']:.0f} packets/s) put the "
+            f"optimum's mean delay at {_msv(opt['optimal_delay_s'])}")
+    pub, ratio = opt.get("published_delay_s"), opt.get("gap_ratio")
+    if pub is None or ratio is None:
+        return (head + f" and could not rate its published tables "
+                f"({opt.get('published_reason') or 'no figure'}).")
+    return (head + f" and its published tables' at {_msv(pub)}: {ratio:.2f} times the optimum "
+            f"(model figures, {opt['age_s']:.0f} s before the end; the delivery times above "
+            f"are measured).")
+
+
 def _ms(v: float) -> str:
     return "   n/a  " if not math.isfinite(v) else f"{v * 1e3:6.1f} ms"
 
@@ -221,7 +254,8 @@ class IntervalTail:
 # ---- the demo -------------------------------------------------------------------------------
 class Demo:
     def __init__(self, out: str, duration_s: float, seed: int, speed: float, *,
-                 config: str | None = None, overrides: Sequence[str] = ()):
+                 config: str | None = None, overrides: Sequence[str] = (), plots: bool = True):
+        self.plots = plots
         self.out = out
         self.config = config
         self.overrides = tuple(overrides)
@@ -297,7 +331,8 @@ class Demo:
         try:
             self.proc = closedloop.ServiceProcess(
                 self.topo, cfg, base=os.path.join(self.out, "service"), state_dir=self.state_dir,
-                transport="tcp", overrides=closedloop.service_overrides(cfg, durable=True))
+                transport="tcp", overrides={**closedloop.service_overrides(cfg, durable=True),
+                                            **OPTIMUM_OVERRIDES})
             eps = self.proc.start()
             self.metrics_url = eps.get("metrics")
             print(f"service: routerd serve, pid {self.proc.pid}")
@@ -466,8 +501,9 @@ class Demo:
         self.written.append(self._path("comparison.csv"))
         reading = self.reading(figs)
         self._write_text("reading.txt", reading + "\n")
-        self.written += [self.plot_delivery(self._path("delivery.png")),
-                         self.plot_load(self._path("load.png"))]
+        if self.plots:
+            self.written += [self.plot_delivery(self._path("delivery.png")),
+                             self.plot_load(self._path("load.png"))]
         self._write_summary(figs, reading, interrupted=False)
         # the table, the reading, the files
         print()
@@ -492,12 +528,11 @@ class Demo:
             prom = os.path.join(self.out, "metrics.prom")
             print(f"metrics were served at {self.metrics_url} during the run"
                   + (f" (its last page: {prom})" if os.path.exists(prom) else ""))
-        topo = os.path.join(self.out, "service", "topology.yaml")
+        # the state dir carries its own topology and config (routerd.io.statedir)
         print(f"replay the run offline (or try other settings with --compare KEY=VALUE): "
-              f"routerd replay {self.state_dir} --topology {topo} --out "
-              f"{os.path.join(self.out, 'replay')}")
+              f"routerd replay {self.state_dir} --out {os.path.join(self.out, 'replay')}")
         print(f"bring the service back from that state and scrape it again: routerd serve "
-              f"--topology {topo} --state-dir {self.state_dir} --metrics 127.0.0.1:9307")
+              f"--state-dir {self.state_dir} --metrics 127.0.0.1:9307")
 
     def _write_summary(self, figs: dict[str, Any] | None, reading: str | None,
                        interrupted: bool) -> None:
@@ -551,7 +586,7 @@ class Demo:
                 fh.write("\n")
             self.written.append(self._path("runs/service/summary.json"))
             self._write_series(series, self._path("runs/service/series.csv"))
-        if self.results:
+        if self.results and self.plots:
             try:
                 self.written.append(self.plot_delivery(self._path("delivery.png")))
             except Exception as e:  # noqa: BLE001 - a partial plot is a nicety, the data is kept
@@ -612,7 +647,9 @@ class Demo:
                                "peak_from_s": peak_from,
                                "peak_rate_pps": BASE_RATE_PPS * self.scenario.max_factor(),
                                "failures": [{"link": f"{e[0]}-{e[1]}", "down_s": a, "up_s": b}
-                                            for a, b, e in downs]}
+                                            for a, b, e in downs],
+                               # the service's live optimality gap at the end (health)
+                               "optimum": (self.health or {}).get("optimum")}
         for pol in POLICIES:
             r = self.results[pol]
             s, se, links = r["summary"], r["series"], r.get("links", [])
@@ -721,7 +758,7 @@ class Demo:
                          f"(static routes: {sh['detour_share'] * 100:.0f}%, the relays' own "
                          f"traffic) and delivered in "
                          f"{_msv(q['mean_delivery_s'])} on average (p99 {_msv(q['p99_delivery_s'])}), "
-                         f"{ratio:.1f} times faster, losing {_packets(q['lost'])}{_share(q)}.")
+                         f"{ratio:.1f} times faster than static routes, losing {_packets(q['lost'])}{_share(q)}.")
         else:
             parts.append(f"The learner, in process, did no better here: "
                          f"{_msv(q['mean_delivery_s'])} on average (p99 {_msv(q['p99_delivery_s'])}),"
@@ -748,6 +785,9 @@ class Demo:
                 parts.append(f"Around the failure of {fail['link']} it lost "
                              f"{sv['lost_during_failure']} packets ({q['lost_during_failure']} in "
                              f"process): its new tables arrived before the losses could build up.")
+        opt = figs.get("optimum")
+        if opt:
+            parts.append(optimum_sentence(opt))
         return " ".join(parts)
 
     # -- plots ---------------------------------------------------------------------------------

@@ -263,8 +263,14 @@ def remove_orphans(base: str = RUN_BASE, log: Any = None) -> list[str]:
             say(msg)
             done.append(msg)
         if not doc.get("keep"):
-            shutil.rmtree(run_dir, ignore_errors=True)
-            msg = f"removed the run directory {run_dir} of lab {lab_pid}"
+            for _ in range(20):   # a process still writing there can refill a folder once
+                shutil.rmtree(run_dir, ignore_errors=True)
+                if not os.path.lexists(run_dir):
+                    break
+                time.sleep(0.05)
+            msg = (f"could not remove the run directory {run_dir} of lab {lab_pid}"
+                   if os.path.lexists(run_dir) else
+                   f"removed the run directory {run_dir} of lab {lab_pid}")
             say(msg)
             done.append(msg)
     return done
@@ -1030,10 +1036,12 @@ def _run(args: argparse.Namespace, topo: Any, topo_path: str, events: list[Event
 
     from routerd.io import config as _config
 
-    remove_orphans(log=lambda msg: print(f"routerd lab: {msg}", file=sys.stderr))
+    # namespaces first: a dead lab's agents run in them and keep writing their status files
+    # into its run directory, which remove_orphans is about to delete
     removed = remove_leftovers()
     if removed:
         print(f"routerd lab: removed {len(removed)} namespaces left by earlier labs", file=sys.stderr)
+    remove_orphans(log=lambda msg: print(f"routerd lab: {msg}", file=sys.stderr))
     run_dir = tempfile.mkdtemp(prefix=f"{PREFIX}-", dir=RUN_BASE)
     warm = args.duration / 10.0 if args.warmup is None else float(args.warmup)
 

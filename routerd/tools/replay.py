@@ -106,8 +106,8 @@ def configure(p: argparse.ArgumentParser) -> None:
                    help="the service's state dir (journal/ and snapshots/), a journal dir, or one segment file")
     p.add_argument("--config", metavar="FILE", help="routerd config: its topology, and its engine.* "
                    "settings where they differ from the recorded ones (a what-if)")
-    p.add_argument("--topology", metavar="FILE", help="topology file or topohub:GROUP/NAME (default: "
-                   "the config's topology.file, else the built-in demo lab)")
+    p.add_argument("--topology", metavar="FILE", help="topology file or topohub:GROUP/NAME; must "
+                   "have the recorded network's id (default: the one the state dir recorded)")
     p.add_argument("--set", metavar="KEY=VALUE", action="append", default=[], dest="overrides",
                    help="change one engine.* setting for the what-if, e.g. --set "
                         "engine.hysteresis.margin=0.2 (repeatable)")
@@ -193,7 +193,11 @@ def parse_changes(items: Sequence[str], where: str) -> dict[str, Any]:
                 continue
             k, raw = (s.strip() for s in part.split("=", 1))
             if k not in ENGINE_KEYS:
-                if k in _config.SCHEMA:
+                if k.startswith("engine.optimum.") and k in _config.SCHEMA:
+                    problems.append(Problem(f"{where}: {k}", raw, "is the service's live optimality "
+                                            "gap, not an engine setting (a replay applies the "
+                                            "journal's guide records as they are)"))
+                elif k in _config.SCHEMA:
                     problems.append(Problem(f"{where}: {k}", raw, "is not an engine setting (only "
                                             "engine.* settings change what a replay computes)"))
                 else:
