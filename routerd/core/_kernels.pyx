@@ -1372,38 +1372,11 @@ cdef class Bound:
         tde_o = self.empty(m)
         cdef double[::1] tde = tde_o
         if self.nkind == 1:
-            if self.skind == 1:
-                acc = _observe(self.Q, self.N8, self.cap, self.td, self.live, self.so16,
-                               self.steps, self.clamped, self.beyond, self.ceil, self.sm,
-                               xs, ys, ds, lats, ests, self.code, tde, self.kdirty, self.kcols,
-                               self.col)
-            else:
-                acc = _observe(self.Q, self.N8, self.cap, self.td, self.live, self.so32,
-                               self.steps, self.clamped, self.beyond, self.ceil, self.sm,
-                               xs, ys, ds, lats, ests, self.code, tde, self.kdirty, self.kcols,
-                               self.col)
+            acc = _b_observe(self, self.N8, xs, ys, ds, lats, ests, tde)
         elif self.nkind == 2:
-            if self.skind == 1:
-                acc = _observe(self.Q, self.N16, self.cap, self.td, self.live, self.so16,
-                               self.steps, self.clamped, self.beyond, self.ceil, self.sm,
-                               xs, ys, ds, lats, ests, self.code, tde, self.kdirty, self.kcols,
-                               self.col)
-            else:
-                acc = _observe(self.Q, self.N16, self.cap, self.td, self.live, self.so32,
-                               self.steps, self.clamped, self.beyond, self.ceil, self.sm,
-                               xs, ys, ds, lats, ests, self.code, tde, self.kdirty, self.kcols,
-                               self.col)
+            acc = _b_observe(self, self.N16, xs, ys, ds, lats, ests, tde)
         else:
-            if self.skind == 1:
-                acc = _observe(self.Q, self.N32, self.cap, self.td, self.live, self.so16,
-                               self.steps, self.clamped, self.beyond, self.ceil, self.sm,
-                               xs, ys, ds, lats, ests, self.code, tde, self.kdirty, self.kcols,
-                               self.col)
-            else:
-                acc = _observe(self.Q, self.N32, self.cap, self.td, self.live, self.so32,
-                               self.steps, self.clamped, self.beyond, self.ceil, self.sm,
-                               xs, ys, ds, lats, ests, self.code, tde, self.kdirty, self.kcols,
-                               self.col)
+            acc = _b_observe(self, self.N32, xs, ys, ds, lats, ests, tde)
         return acc, tde_o
 
     def decide_keys(self, eng):
@@ -1415,46 +1388,10 @@ cdef class Bound:
 
     cdef object _keys(self):
         if self.nkind == 1:
-            if self.skind == 1:
-                return _decide_keys(self.Q, self.live, self.owned, self.greedy, self.eps,
-                                    self.alt, self.forced, self.hy16, self.stable, self.td,
-                                    self.N8, self.visits, self.keepf, self.ceil, self.td_ref,
-                                    self.emin, self.espan, self.eps_max, self.visits_half,
-                                    self.kdirty, self.kcols, self.dirty, self.deg, self.cols,
-                                    self.full)
-            return _decide_keys(self.Q, self.live, self.owned, self.greedy, self.eps,
-                                self.alt, self.forced, self.hy32, self.stable, self.td,
-                                self.N8, self.visits, self.keepf, self.ceil, self.td_ref,
-                                self.emin, self.espan, self.eps_max, self.visits_half,
-                                self.kdirty, self.kcols, self.dirty, self.deg, self.cols,
-                                self.full)
+            return _b_keys(self, self.N8)
         elif self.nkind == 2:
-            if self.skind == 1:
-                return _decide_keys(self.Q, self.live, self.owned, self.greedy, self.eps,
-                                    self.alt, self.forced, self.hy16, self.stable, self.td,
-                                    self.N16, self.visits, self.keepf, self.ceil, self.td_ref,
-                                    self.emin, self.espan, self.eps_max, self.visits_half,
-                                    self.kdirty, self.kcols, self.dirty, self.deg, self.cols,
-                                    self.full)
-            return _decide_keys(self.Q, self.live, self.owned, self.greedy, self.eps,
-                                self.alt, self.forced, self.hy32, self.stable, self.td,
-                                self.N16, self.visits, self.keepf, self.ceil, self.td_ref,
-                                self.emin, self.espan, self.eps_max, self.visits_half,
-                                self.kdirty, self.kcols, self.dirty, self.deg, self.cols,
-                                self.full)
-        if self.skind == 1:
-            return _decide_keys(self.Q, self.live, self.owned, self.greedy, self.eps,
-                                self.alt, self.forced, self.hy16, self.stable, self.td,
-                                self.N32, self.visits, self.keepf, self.ceil, self.td_ref,
-                                self.emin, self.espan, self.eps_max, self.visits_half,
-                                self.kdirty, self.kcols, self.dirty, self.deg, self.cols,
-                                self.full)
-        return _decide_keys(self.Q, self.live, self.owned, self.greedy, self.eps,
-                            self.alt, self.forced, self.hy32, self.stable, self.td,
-                            self.N32, self.visits, self.keepf, self.ceil, self.td_ref,
-                            self.emin, self.espan, self.eps_max, self.visits_half,
-                            self.kdirty, self.kcols, self.dirty, self.deg, self.cols,
-                            self.full)
+            return _b_keys(self, self.N16)
+        return _b_keys(self, self.N32)
 
     def decide_full(self, eng, cs_o, spt_o):
         """:func:`decide` on the bound arrays for destination columns ``cs`` (C-ordered
@@ -1484,50 +1421,11 @@ cdef class Bound:
             ds[i] = self.owned[cs[i]]
         self.s_changed[:] = 0
         if self.nkind == 1:
-            if self.skind == 1:
-                r = _decide(self.Q, self.live, self.slots, self.so16, spt, ds, self.greedy,
-                            self.eps, self.alt, self.forced, self.hy16, self.stable, self.td,
-                            self.N8, self.visits, self.keepf, self.ceil, self.td_ref, self.emin,
-                            self.espan, self.eps_max, self.visits_half, self.s_choice,
-                            self.s_hy, self.s_vx, self.s_pot, self.s_nhT, self.s_prevT,
-                            self.s_potT, self.deg, self.s_changed, cs)
-            else:
-                r = _decide(self.Q, self.live, self.slots, self.so32, spt, ds, self.greedy,
-                            self.eps, self.alt, self.forced, self.hy32, self.stable, self.td,
-                            self.N8, self.visits, self.keepf, self.ceil, self.td_ref, self.emin,
-                            self.espan, self.eps_max, self.visits_half, self.s_choice,
-                            self.s_hy, self.s_vx, self.s_pot, self.s_nhT, self.s_prevT,
-                            self.s_potT, self.deg, self.s_changed, cs)
+            r = _b_full(self, self.N8, spt, ds, cs)
         elif self.nkind == 2:
-            if self.skind == 1:
-                r = _decide(self.Q, self.live, self.slots, self.so16, spt, ds, self.greedy,
-                            self.eps, self.alt, self.forced, self.hy16, self.stable, self.td,
-                            self.N16, self.visits, self.keepf, self.ceil, self.td_ref, self.emin,
-                            self.espan, self.eps_max, self.visits_half, self.s_choice,
-                            self.s_hy, self.s_vx, self.s_pot, self.s_nhT, self.s_prevT,
-                            self.s_potT, self.deg, self.s_changed, cs)
-            else:
-                r = _decide(self.Q, self.live, self.slots, self.so32, spt, ds, self.greedy,
-                            self.eps, self.alt, self.forced, self.hy32, self.stable, self.td,
-                            self.N16, self.visits, self.keepf, self.ceil, self.td_ref, self.emin,
-                            self.espan, self.eps_max, self.visits_half, self.s_choice,
-                            self.s_hy, self.s_vx, self.s_pot, self.s_nhT, self.s_prevT,
-                            self.s_potT, self.deg, self.s_changed, cs)
+            r = _b_full(self, self.N16, spt, ds, cs)
         else:
-            if self.skind == 1:
-                r = _decide(self.Q, self.live, self.slots, self.so16, spt, ds, self.greedy,
-                            self.eps, self.alt, self.forced, self.hy16, self.stable, self.td,
-                            self.N32, self.visits, self.keepf, self.ceil, self.td_ref, self.emin,
-                            self.espan, self.eps_max, self.visits_half, self.s_choice,
-                            self.s_hy, self.s_vx, self.s_pot, self.s_nhT, self.s_prevT,
-                            self.s_potT, self.deg, self.s_changed, cs)
-            else:
-                r = _decide(self.Q, self.live, self.slots, self.so32, spt, ds, self.greedy,
-                            self.eps, self.alt, self.forced, self.hy32, self.stable, self.td,
-                            self.N32, self.visits, self.keepf, self.ceil, self.td_ref, self.emin,
-                            self.espan, self.eps_max, self.visits_half, self.s_choice,
-                            self.s_hy, self.s_vx, self.s_pot, self.s_nhT, self.s_prevT,
-                            self.s_potT, self.deg, self.s_changed, cs)
+            r = _b_full(self, self.N32, spt, ds, cs)
         out = set()
         for x in range(n):
             if self.s_changed[x]:
@@ -1572,3 +1470,51 @@ cdef class Bound:
         out = self._full(cs, eng._spt_live())
         nodes, changes, prevented = out
         return nodes | extra, changes, prevented, nc
+
+
+# Bound's kernel calls, one call site per kernel: the engine's count type (count_t) and its
+# slot map's type (slot_t, the same for the hysteresis choices) pick the specialisation.
+cdef Py_ssize_t _b_observe(Bound b, count_t[:, :, ::1] N, const int64_t[::1] xs,
+                           const int64_t[::1] ys, const int64_t[::1] ds,
+                           const double[::1] lats, const double[::1] ests,
+                           double[::1] tde) except -1:
+    if b.skind == 1:
+        return _b_observe_s(b, N, b.so16, xs, ys, ds, lats, ests, tde)
+    return _b_observe_s(b, N, b.so32, xs, ys, ds, lats, ests, tde)
+
+
+cdef Py_ssize_t _b_observe_s(Bound b, count_t[:, :, ::1] N, const slot_t[:, ::1] so,
+                             const int64_t[::1] xs, const int64_t[::1] ys,
+                             const int64_t[::1] ds, const double[::1] lats,
+                             const double[::1] ests, double[::1] tde) except -1:
+    return _observe(b.Q, N, b.cap, b.td, b.live, so, b.steps, b.clamped, b.beyond, b.ceil,
+                    b.sm, xs, ys, ds, lats, ests, b.code, tde, b.kdirty, b.kcols, b.col)
+
+
+cdef object _b_keys(Bound b, count_t[:, :, ::1] N):
+    if b.skind == 1:
+        return _b_keys_s(b, N, b.hy16)
+    return _b_keys_s(b, N, b.hy32)
+
+
+cdef object _b_keys_s(Bound b, count_t[:, :, ::1] N, slot_t[:, ::1] hy):
+    return _decide_keys(b.Q, b.live, b.owned, b.greedy, b.eps, b.alt, b.forced, hy,
+                        b.stable, b.td, N, b.visits, b.keepf, b.ceil, b.td_ref, b.emin,
+                        b.espan, b.eps_max, b.visits_half, b.kdirty, b.kcols, b.dirty,
+                        b.deg, b.cols, b.full)
+
+
+cdef object _b_full(Bound b, count_t[:, :, ::1] N, const int32_t[:, ::1] spt,
+                    const int64_t[::1] ds, const int64_t[::1] cs):
+    if b.skind == 1:
+        return _b_full_s(b, N, b.so16, b.hy16, spt, ds, cs)
+    return _b_full_s(b, N, b.so32, b.hy32, spt, ds, cs)
+
+
+cdef object _b_full_s(Bound b, count_t[:, :, ::1] N, const slot_t[:, ::1] so,
+                      slot_t[:, ::1] hy, const int32_t[:, ::1] spt, const int64_t[::1] ds,
+                      const int64_t[::1] cs):
+    return _decide(b.Q, b.live, b.slots, so, spt, ds, b.greedy, b.eps, b.alt, b.forced, hy,
+                   b.stable, b.td, N, b.visits, b.keepf, b.ceil, b.td_ref, b.emin, b.espan,
+                   b.eps_max, b.visits_half, b.s_choice, b.s_hy, b.s_vx, b.s_pot, b.s_nhT,
+                   b.s_prevT, b.s_potT, b.deg, b.s_changed, cs)
