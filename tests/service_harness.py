@@ -7,8 +7,10 @@ whatever happens in the test.
 from __future__ import annotations
 
 import os
+import random
 import re
 import signal
+import socket
 import subprocess
 import sys
 import threading
@@ -221,3 +223,25 @@ def short_base(tmp_path: Any) -> str:
 def stop_gracefully(sp: ServiceProc, timeout: float = 20.0) -> int:
     sp.signal(signal.SIGTERM)
     return sp.wait(timeout)
+
+
+def free_udp_ports(k: int) -> list[int]:
+    """k distinct UDP ports on 127.0.0.1, each bound until all are chosen (so none repeats),
+    drawn below Linux's default ephemeral range (32768-60999, net.ipv4.ip_local_port_range:
+    common practice), where no other process's bind to port 0 lands between our choice and
+    the agents' own bind."""
+    rng = random.Random()
+    held: list[socket.socket] = []
+    try:
+        while len(held) < k:
+            s = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+            try:
+                s.bind(("127.0.0.1", rng.randrange(20000, 32000)))
+            except OSError:
+                s.close()
+                continue
+            held.append(s)
+        return [s.getsockname()[1] for s in held]
+    finally:
+        for s in held:
+            s.close()

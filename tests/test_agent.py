@@ -24,6 +24,7 @@ import yaml
 import zmq
 from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.parser import text_string_to_metric_families
+from service_harness import free_udp_ports
 
 from routerd.agent import forwarder as A
 from routerd.io import config as C
@@ -40,14 +41,6 @@ TOPO_DOC = {"topology": {"name": "diamond", "defaults": {"capacity_bps": 1e7, "b
                                    {"between": ["s", "y"], "delay_s": 0.001},
                                    {"between": ["x", "t"], "delay_s": 0.001},
                                    {"between": ["y", "t"], "delay_s": 0.001}]}}
-
-
-def free_udp_port() -> int:
-    s = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
-    s.bind(("127.0.0.1", 0))
-    p = s.getsockname()[1]
-    s.close()
-    return p
 
 
 def wait_until(pred: Callable[[], bool], timeout: float = 10.0) -> bool:
@@ -166,11 +159,13 @@ class Diamond:
         with open(tp, "w") as fh:
             yaml.safe_dump(TOPO_DOC, fh)
         self.topo = TF.load(tp)
-        self.ports = {n: {"local": free_udp_port(), "deliver": free_udp_port()} for n in NODES}
+        pairs = (("s", "x"), ("s", "y"), ("x", "t"), ("y", "t"))
+        ports = iter(free_udp_ports(2 * len(NODES) + 2 * len(pairs)))
+        self.ports = {n: {"local": next(ports), "deliver": next(ports)} for n in NODES}
         links = []
-        for a, b in (("s", "x"), ("s", "y"), ("x", "t"), ("y", "t")):
-            links.append({"between": [a, b], "addresses": [f"127.0.0.1:{free_udp_port()}",
-                                                           f"127.0.0.1:{free_udp_port()}"]})
+        for a, b in pairs:
+            links.append({"between": [a, b], "addresses": [f"127.0.0.1:{next(ports)}",
+                                                           f"127.0.0.1:{next(ports)}"]})
         ul = os.path.join(base, "underlay.yaml")
         with open(ul, "w") as fh:
             yaml.safe_dump({"underlay": {"links": links}}, fh)

@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 import pytest
 import zmq
-from service_harness import ServiceProc, service_args, short_base
+from service_harness import ServiceProc, free_udp_ports, service_args, short_base
 
 from routerd.agent import client
 from routerd.io import security, wire
@@ -609,19 +609,18 @@ def test_agent_reports_and_takes_tables_over_curve(topo: topology.Topology,
     neighbours' agents are not running, so it detects its three links down, reports them
     (w1's own link rows, within its rights) and takes w1's table — all through CURVE."""
     import json
-    import socket
     import subprocess
     import sys
 
     import yaml
 
-    def port() -> int:
-        with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as s:
-            s.bind(("127.0.0.1", 0))
-            return int(s.getsockname()[1])
-
     base = curve_svc.base
     x = topo.index["w1"]
+    ports = iter(free_udp_ports(2 * len(topo.neighbours[x]) + 2))
+
+    def port() -> int:
+        return next(ports)
+
     links = [{"between": ["w1", topo.nodes[y]], "addresses": [f"127.0.0.1:{port()}",
                                                              f"127.0.0.1:{port()}"]}
              for y in topo.neighbours[x]]
