@@ -165,10 +165,6 @@ def test_the_boost_after_a_link_event_brings_traffic_back_to_a_repaired_link_soo
     assert back < lv["1"][1], lv
 
 
-@pytest.mark.xfail(strict=False, reason=(
-    "issue 14 target not reliably met: the closed loop in split mode lands outside the seeds' "
-    "99% interval in about half the runs here (18.8 ms against 16.5 +- 2.1 ms), since split "
-    "measures link rates on the service's wall clock; kept as a measurement until fixed"))
 def test_closed_loop_split_matches_in_process() -> None:
     """The live service in split mode (``--policy service``, engine.mode=split) against
     five in-process runs over five traffic seeds (the issue's "within the seeds'

@@ -157,6 +157,67 @@ def test_a_link_event_boosts_the_next_share_step(small_ring: T.Topology) -> None
     assert back._split.last_event == -math.inf
 
 
+def _steps(monkeypatch: pytest.MonkeyPatch) -> list[tuple[float, float]]:
+    """(eta, max_step') of every split decision from now on (both decide paths)."""
+    got: list[tuple[float, float]] = []
+    for name in ("_decide_compiled", "_decide_reference"):
+        f = getattr(S, name)
+
+        def spy(*a: object, _f: object = f) -> object:
+            got.append((float(a[-3]), float(a[-2])))      # ..., eta, mx, drain
+            return _f(*a)                                   # type: ignore[operator]
+        monkeypatch.setattr(S, name, spy)
+    return got
+
+
+def test_the_step_follows_observed_time_not_when_decisions_run(small_ring: T.Topology,
+                                                               monkeypatch: pytest.MonkeyPatch) -> None:
+    # The same rows every 50 ms, observed at the same times; one shell decides at once
+    # (the simulator), the other 0-45 ms later (the service: debounced, on its own
+    # clock), sometimes twice between two batches and sometimes once for two.  The share
+    # step is eta = step * dt / window with dt the observed time since the previous
+    # decision (the module docstring), so both take the same steps in all: the sum of dt
+    # is the time the rows span, however the decisions fall.  (Measured in the closed
+    # loop before: dt from the previous decision's own time lost the decision's lag at
+    # every decision, half the step.)
+    t = small_ring
+    rng = np.random.default_rng(11)
+    batches = []
+    for i in range(40):
+        k = rng.integers(0, t.n_links, 60)
+        x, y = t.src[k].astype(int), t.dst[k].astype(int)
+        d = rng.integers(0, t.n, 60)
+        d = np.where(d == x, y, d)
+        batches.append((HopBatch.of(x, y, d, rng.uniform(0.001, 0.05, 60)), 0.05 * (i + 1)))
+    steps = _steps(monkeypatch)
+    prompt = Engine(t, SPLIT)
+    for b, now in batches:
+        prompt.observe(b, now)
+        prompt.decide(now)
+    at_once = list(steps)
+    steps.clear()
+    late = Engine(t, SPLIT)
+    lags = rng.uniform(0.0, 0.045, len(batches))
+    for i, (b, now) in enumerate(batches):
+        late.observe(b, now)
+        if i % 7 == 3:
+            continue                                       # one decision for two batches
+        late.decide(now + lags[i])
+        if i % 5 == 1:
+            late.decide(now + lags[i] + 0.003)             # a second one, no new rows: no step
+    window = SPLIT.split_window_s
+    assert len(at_once) == 40
+    assert at_once[0] == (0.0, 0.0)                        # the first rows start the step clock
+    assert all(e == pytest.approx(0.05 / window, rel=1e-9) for e, _ in at_once[1:])
+    assert sum(e for e, _ in steps) == pytest.approx(sum(e for e, _ in at_once), rel=1e-9)
+    assert sum(e for e, _ in at_once) == pytest.approx(39 * 0.05 / window, rel=1e-9)
+    assert sum(1 for e, _ in steps if e == 0.0) == 1 + sum(1 for i in range(40) if i % 5 == 1 and i % 7 != 3)
+    # decisions long after the last rows move nothing (no news), nor does the first one
+    steps.clear()
+    late.decide(batches[-1][1] + 5.0)
+    assert steps == [(0.0, 0.0)]
+
+
 def test_cyclic_finds_a_two_node_cycle_and_nothing_else() -> None:
     t = _tri()
     n, K = t.n, t.slots.shape[1]

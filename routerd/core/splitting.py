@@ -101,7 +101,8 @@ three things around it.
    leaving path's curvature at 3-10x the receiving one's fixed a two-bridge network at
    1.2x load but made geant and a random geometric graph collapse there).
    ``eta = step * b * dt / window`` and ``max_step' = min(max_step * b * dt /
-   window, 1)`` (dt: time since the previous decision), so a full step takes about one rate
+   window, 1)`` (dt: the observed time since the previous decision, i.e. from the newest
+   observation it had seen to the newest one now), so a full step takes about one rate
    window however often decisions come.  ``b`` (:func:`event_boost`) is 1 but after a
    link goes down or up: ``1 + (boost - 1) exp(-(now - t_event) / boost_s)``
    (``split_boost`` 3, ``split_boost_s`` 2 s), a large step while the shares are far from
@@ -394,7 +395,7 @@ class SplitState:
         self.forced = 0             # keys published for a dead link or a route gained/lost
         self.fallbacks = 0          # keys put on the live shortest-path tree
         self.whole_publications = 0  # destinations published whole to keep the graph acyclic
-        self.last_now = eng.now      # the previous decision's time (the step scales with it)
+        self.last_now = eng.now      # the step clock: the newest observation time a decision has seen
         self.last_obs = -math.inf    # the newest observation's time
         self.started = 0             # 1 once a row has been observed
         self.last_event = -math.inf  # the last link state change (the step's boost decays from it)
@@ -551,11 +552,16 @@ def decide(st: SplitState, eng: Any, now: float) -> tuple[set[int], int, int]:
     m, e, h = link_marginals(Lm, F, st.prop)
     m = np.maximum(m, 1e-12)
     g = h * F                                       # flow-weighted curvature (s)
-    # the step scales with the time the estimates had to move since the last decision:
-    # from then to now, but not past the newest observation (a shell that decides long
-    # after its last rows, or for the first time after starting, moves nothing on no news)
-    dt = min(max(min(now, st.last_obs) - st.last_now, 0.0), s.split_window_s)
-    st.last_now = now
+    # the step scales with the observed time since the last decision: from the newest
+    # observation that decision had seen to the newest one now (a shell that decides long
+    # after its last rows, or for the first time after starting, moves nothing on no news).
+    # Not from the last decision's own time: a shell whose decisions come a while after
+    # the rows (the service: debounced, on its own clock) would lose that while at every
+    # decision (measured: half the step in the closed loop, issue 14)
+    seen = min(now, st.last_obs)
+    dt = min(max(seen - st.last_now, 0.0), s.split_window_s)
+    if st.started:                # else no rows yet: the first ones start the step clock
+        st.last_now = seen
     b = event_boost(now, st.last_event, s.split_boost, s.split_boost_s)
     eta = s.split_step * b * dt / s.split_window_s
     mx = min(s.split_max_step * b * dt / s.split_window_s, 1.0)
