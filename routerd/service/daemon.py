@@ -280,7 +280,24 @@ def bind_endpoint(owner: Any, kind: int, name: str, ep: str, opts: _listeners.So
     return s
 
 
-# ---- logging -----------------------------------------------------------------------------
+# ---- security at start-up ------------------------------------------------------------
+def load_security(cfg: Any, topo: Any, log: Any) -> tuple[Any, Any] | None:
+    """The configured server key and allow file (``security.*``), checked before anything
+    binds or is written — for the service and the shard front alike: ``(server keys,
+    allow)``, or None when CURVE is off; a StartError naming the file and the fault; a
+    warning logged once when an endpoint is reachable from other hosts."""
+    try:
+        loaded = _security.load_configured(cfg, topo)
+    except InputError as e:
+        raise StartError(f"security:\n{e}") from None
+    if loaded is None:
+        return None
+    keys, allow, exposure = loaded
+    if exposure:
+        log.warning(exposure)   # once, at start-up
+    return keys, allow
+
+
 # ---- the service -------------------------------------------------------------------------
 class Service:
     """One running daemon.  ``start()`` binds and restores, ``serve()`` loops until a
@@ -543,14 +560,9 @@ class Service:
 
     def _load_security(self) -> None:
         """Key and allow file, checked before anything binds or is written."""
-        try:
-            loaded = _security.load_configured(self.cfg, self.topo)
-        except InputError as e:
-            raise StartError(f"security:\n{e}") from None
+        loaded = load_security(self.cfg, self.topo, self.log)
         if loaded is not None:
-            self.server_keys, self.allow, exposure = loaded
-            if exposure:
-                self.log.warning(exposure)   # once, at start-up
+            self.server_keys, self.allow = loaded
 
     def restore(self, state_dir: str | None = None) -> None:
         """Recover the state dir (:func:`journal.recover_state`: the newest intact snapshot,

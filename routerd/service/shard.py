@@ -525,16 +525,11 @@ class Front:
     # -- start-up ---------------------------------------------------------------------
     def _load_security(self) -> None:
         """Key and allow file, checked before anything binds (as the service's)."""
-        from .daemon import StartError
+        from .daemon import load_security
 
-        try:
-            loaded = _security.load_configured(self.cfg, self.topo)
-        except InputError as e:
-            raise StartError(f"security:\n{e}") from None
+        loaded = load_security(self.cfg, self.topo, self.log)
         if loaded is not None:
-            self.server_keys, self.pipeline.allow, exposure = loaded
-            if exposure:
-                self.log.warning(exposure)
+            self.server_keys, self.pipeline.allow = loaded
 
     def start(self) -> None:
         import zmq
