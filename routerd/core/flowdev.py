@@ -361,21 +361,26 @@ def _line_search(F: np.ndarray, step: np.ndarray, cap: np.ndarray, prop: np.ndar
     g_hi, _ = d1(amax)
     if g_hi <= 0:
         return amax
-    lo, hi = 0.0, amax
-    a = 0.5 * amax
+    return _root(d1, 0.0, amax, 1e-14 * amax)
+
+
+def _root(d1: Callable[[float], tuple[float, float]], lo: float, hi: float, tol: float) -> float:
+    """The root in [lo, hi] of a monotone increasing derivative ``d1(x) -> (g, g')`` (g < 0 at
+    lo, > 0 at hi): Newton steps, bisection whenever a step would leave the bracket, until
+    the bracket is ``tol`` wide (safeguarded Newton: Press et al., Numerical Recipes, 3rd
+    ed. 2007, section 9.4, "rtsafe"; cited from memory)."""
+    x = 0.5 * (lo + hi)
     for _ in range(60):
-        g, h = d1(a)
+        g, h = d1(x)
         if g > 0:
-            hi = a
+            hi = x
         else:
-            lo = a
-        if hi - lo < 1e-14 * amax or g == 0:
+            lo = x
+        if hi - lo <= tol or g == 0:
             break
-        nxt = a - g / h if h > 0 else 0.5 * (lo + hi)
-        if not (lo < nxt < hi):
-            nxt = 0.5 * (lo + hi)
-        a = nxt
-    return a
+        nxt = x - g / h if h > 0 else 0.5 * (lo + hi)
+        x = nxt if lo < nxt < hi else 0.5 * (lo + hi)
+    return x
 
 
 def _all_or_nothing(n: int, src: np.ndarray, dst: np.ndarray, lengths: np.ndarray,
@@ -682,19 +687,7 @@ def _shift(F: list[float], cap: list[float], prop: list[float], rho: float,
         if least >= 0 or d1(least)[0] >= 0:
             return min(least, 0.0)
         lo, hi = least, 0.0
-    width = hi - lo
-    x = 0.5 * (lo + hi)
-    for _ in range(60):
-        g, h = d1(x)
-        if g > 0:
-            hi = x
-        else:
-            lo = x
-        if hi - lo <= 1e-13 * width or g == 0:
-            break
-        nxt = x - g / h if h > 0 else 0.5 * (lo + hi)
-        x = nxt if lo < nxt < hi else 0.5 * (lo + hi)
-    return x
+    return _root(d1, lo, hi, 1e-13 * (hi - lo))
 
 
 def _gd(f: float, c: float, rho: float) -> tuple[float, float]:
