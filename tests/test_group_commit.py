@@ -315,15 +315,20 @@ def test_a_decision_takes_what_fits_its_budget_and_replay_follows(base: str) -> 
 
 
 # ---- tables from arrays ----------------------------------------------------------------------
+@pytest.mark.parametrize("mode", ["greedy", "split"])
 @pytest.mark.parametrize("n", [12, 40])
-def test_table_codec_gives_the_bytes_of_the_dict_encoder(n: int, kernel_path: str) -> None:
+def test_table_codec_gives_the_bytes_of_the_dict_encoder(n: int, kernel_path: str,
+                                                         mode: str) -> None:
+    """Published tables (arrays through the codec) == the dict encoder over Engine.routes,
+    to the bit: split mode's shares too (they were once rebuilt from 1 - eps and an equal
+    eps share, which differed in the last bits)."""
     import sys
 
     sys.path.insert(0, os.path.join(os.path.dirname(os.path.dirname(__file__)), "bench"))
     from bench_engine import ring_with_chords
 
     topo = ring_with_chords(n, n)
-    eng = Engine(topo, EngineSettings(kernels=kernel_path))
+    eng = Engine(topo, EngineSettings(kernels=kernel_path, mode=mode))
     codec = wire.TableCodec(topo.nodes)
     rng = np.random.default_rng(n)
     for step in range(4):

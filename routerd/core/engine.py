@@ -1198,6 +1198,12 @@ class Engine:
         keep = np.empty((m, k + 1), dtype=bool)
         keep[:, 0] = True
         keep[:, 1:] = alt
+        if self._split is not None:   # its published shares themselves (:meth:`weights`)
+            P = self._split.pub[xr, dsts]            # split mode keeps a whole engine: column d is d
+            w[:, 0] = P[np.arange(m), gd]
+            w[:, 1:] = P
+            keep[:, 1:] = (P > 0) & (np.arange(k)[None, :] != gd[:, None])
+            cnt = keep[:, 1:].sum(axis=1)
         return owner, dsts, cnt + 1, hops[keep], w[keep]
 
     # ---- decisions ------------------------------------------------------------------

@@ -1329,8 +1329,7 @@ class Service:
         ``TABLE_ENTRIES_AHEAD`` entries at a time (:meth:`Engine.table_arrays_many`,
         :class:`wire.TableCodec`: the bytes published for the same tables), and send each
         one that is whole.  The bytes are those of ``wire.encode_reply({"tables":
-        wire.tables_by_name(engine)})`` (split mode: node by node from :meth:`Engine.routes`)
-        for the engine as it is when each node is encoded
+        wire.tables_by_name(engine)})`` for the engine as it is when each node is encoded
         (every node's table is at least as new as the request; nodes encoded in later turns
         may be newer than earlier ones, as published tables are)."""
         import msgpack
@@ -1352,13 +1351,7 @@ class Service:
             job = self._tables_replies[0]
             while job.next < n:
                 xs = list(range(job.next, min(n, job.next + want)))
-                if eng.settings.mode == "split":
-                    # split mode's reply is its shares' floats (Engine.routes), which the
-                    # arrays of table_arrays_many approximate in the last bits: node by node
-                    enc = [msgpack.packb(wire.routes_by_name(eng, x), use_bin_type=True)
-                           for x in xs]
-                else:
-                    enc = codec.routes_many(*eng.table_arrays_many(xs), len(xs))
+                enc = codec.routes_many(*eng.table_arrays_many(xs), len(xs))
                 for x, b in zip(xs, enc):
                     job.parts += (names[x], b)
                 job.next = xs[-1] + 1
