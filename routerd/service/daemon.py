@@ -377,6 +377,9 @@ class Service:
         self._last_record = 0
         self._unsynced = False
         self._unsynced_since = 0.0
+        # while the loop drains a socket: ingest's batch records are held by the journal
+        # and written together when the drain ends (_flush_held: one write a turn)
+        self._holding = False
         self.listeners: _listeners.Listeners | None = None
         self._next_gate_tick = 0.0
         self._snap_child: tuple[int, str, int, float] | None = None   # pid, tmp, record, start
@@ -759,12 +762,13 @@ class Service:
                       **{k: v for k, v in self.endpoints.items()})
 
     # -- journal records (bodies are journal.py's; the service only fills them) ---------
-    def _append(self, kind: str, body: Mapping[str, Any]) -> None:
-        # sync=False: the loop commits once per turn (group commit) before any ack
+    def _append(self, kind: str, body: Mapping[str, Any], hold: bool = False) -> None:
+        # sync=False: the loop commits once per turn (group commit) before any ack;
+        # hold: written with the others of the drain (_flush_held), before any commit
         if self.journal is None:
             raise StorageDown(self._down or "the journal is closed")
         try:
-            self._last_record = self.journal.append(kind, body, sync=False)
+            self._last_record = self.journal.append(kind, body, sync=False, hold=hold)
         except (OSError, _journal.JournalError) as e:
             self._storage_failed(f"journal append: {_os_reason(e)}")
             raise StorageDown(self._down) from None
@@ -792,12 +796,29 @@ class Service:
             self.dedup.put(b["reporter"], b["batch"], ack.get("accepted", 0),
                            [x for x in ack.get("rejected", ()) if self.dedup.knows(str(x[1]))])
 
+    def _flush_held(self) -> None:
+        """Write the records the drain held (one write for all of them).  A failure is a
+        storage failure: the engine goes back to what is stored and the turn's answers
+        become ``unavailable`` (``_turn_failed``)."""
+        j = self.journal
+        if j is None or not j.held:
+            return
+        try:
+            j.flush()
+        except (OSError, _journal.JournalError) as e:
+            self._storage_failed(f"journal append: {_os_reason(e)}")
+            return
+        self._last_record = j.last_record
+
     def commit(self) -> None:
         """Make this turn's appends durable as the fsync policy promises (group commit):
         ``batch`` — one fsync now; ``interval`` — once ``fsync_interval_s`` has passed since
         the first unsynced append (the poll wakes for it); ``never`` — the OS decides."""
         if self.journal is None:
             return
+        self._flush_held()
+        if self.journal is None:
+            raise StorageDown(self._down or "the journal is closed")
         pol = self.journal.fsync
         if pol == "batch" and self._last_record <= self._durable():
             self._unsynced = False      # the writer thread (or an earlier commit) covered it
@@ -837,6 +858,7 @@ class Service:
                            state_dir=os.path.abspath(self.cfg["service.state_dir"]))
         j, self.journal = self.journal, None
         if j is not None:
+            j.drop_held()       # records of a turn that will not be acknowledged
             try:
                 j.close()
             except OSError:
@@ -1057,6 +1079,9 @@ class Service:
 
     def _request_sync(self) -> None:
         assert self._syncer is not None
+        self._flush_held()          # the thread syncs what is written
+        if self._syncer is None:    # the write failed: storage is down
+            return
         self._syncer.request(self._last_record)
         self._requested = self._last_record
         self._unsynced = False
@@ -1156,6 +1181,15 @@ class Service:
         # with the writer thread, a turn takes a slice of INGEST_SLICE_S: its fsync then
         # runs while the loop takes the next slice, and decisions are not held up long
         end = time.perf_counter() + INGEST_SLICE_S if self._syncer is not None else math.inf
+        self._holding = True
+        try:
+            self._drain_frames(zmq, sock, name, acks, routed, curve, end)
+        finally:
+            self._holding = False
+            self._flush_held()
+
+    def _drain_frames(self, zmq: Any, sock: Any, name: str, acks: list[Any] | None,
+                      routed: bool, curve: bool, end: float) -> None:
         for _ in range(self.cfg["service.max_drain"]):
             if time.perf_counter() >= end:
                 return
@@ -1187,7 +1221,7 @@ class Service:
             for kind, body in fed.records:
                 # StorageDown here: the engine holds a batch the journal lacks — the
                 # failure handler has already put the engine back to what is stored
-                self._append(kind, body)
+                self._append(kind, body, self._holding)
         except StorageDown:
             return self._unavailable(fed.batch), fed.batch
         self.counters.add(fed.counts)
