@@ -1173,7 +1173,9 @@ class Service:
     def _recv(self, zmq: Any, sock: Any, curve: bool) -> tuple[list[bytes], _security.Reporter | None]:
         """One waiting message (raises zmq.Again if none) and, under CURVE, the allowed
         reporter its ZAP User-Id belongs to (None for a key not in the allow file)."""
-        return _security.recv_with_peer(sock, zmq.NOBLOCK, self.allow if curve else None)
+        if not curve:
+            return recv_frames(zmq, sock), None
+        return _security.recv_with_peer(sock, zmq.NOBLOCK, self.allow)
 
     def _drain(self, zmq: Any, sock: Any, name: str, acks: list[Any] | None) -> None:
         routed = acks is not None
@@ -1258,7 +1260,7 @@ class Service:
 
     def _send_ack(self, zmq: Any, sock: Any, parts: list[Any]) -> None:
         try:
-            sock.send_multipart(parts, zmq.NOBLOCK)
+            send_frames(zmq, sock, parts)
         except zmq.ZMQError:  # EHOSTUNREACH (peer gone) or EAGAIN (its queue is full)
             self.counters.acks_undeliverable += 1
 
@@ -1709,7 +1711,7 @@ class Service:
                     cache[x] = zlib.compress(routes, 1)
             frames = wire.table_message_encoded(names[x], self.seq[x], self.epoch, routes)
             try:
-                pub.send_multipart(frames, zmq.NOBLOCK)
+                send_frames(zmq, pub, frames)
             except zmq.Again:  # PUB drops rather than blocks; subscribers see the seq gap
                 pass
             n += 1
@@ -1970,6 +1972,46 @@ class Service:
         if self.state_lock is not None:
             self.state_lock.release()
             self.state_lock = None
+
+
+_FAST_IO: tuple[Any, Any, Any, int, int, int] | None = None
+
+
+def _fast_io(zmq: Any) -> tuple[Any, Any, Any, int, int, int]:
+    """The backend socket's ``send``, ``recv`` and ``get`` and the flags as plain ints
+    (NOBLOCK, SNDMORE | NOBLOCK, RCVMORE): see :func:`send_frames`."""
+    global _FAST_IO
+    if _FAST_IO is None:
+        b = zmq.backend.Socket
+        nb = int(zmq.NOBLOCK)
+        _FAST_IO = (b.send, b.recv, b.get, nb, int(zmq.SNDMORE) | nb, int(zmq.RCVMORE))
+    return _FAST_IO
+
+
+def send_frames(zmq: Any, sock: Any, parts: list[Any]) -> None:
+    """``sock.send_multipart(parts, zmq.NOBLOCK)``, frame by frame through the backend
+    socket with plain int flags: pyzmq's ``send_multipart`` combines its flag enums anew
+    for every frame, which measured 18 us an acknowledgement here against 3 us.  Raises
+    as ``send_multipart`` does (``zmq.Again``; ``EHOSTUNREACH`` on the first frame of a
+    ROUTER's message to a peer that is gone: nothing of it was sent)."""
+    send, _, _, nb, more, _ = _FAST_IO or _fast_io(zmq)
+    if not isinstance(sock, zmq.backend.Socket):     # a stand-in (tests)
+        sock.send_multipart(parts, nb)
+        return
+    last = len(parts) - 1
+    for i in range(last):
+        send(sock, parts[i], more)
+    send(sock, parts[last], nb)
+
+
+def recv_frames(zmq: Any, sock: Any) -> list[bytes]:
+    """``sock.recv_multipart(zmq.NOBLOCK)`` through the backend socket with plain int
+    flags (see :func:`send_frames`); ``zmq.Again`` when nothing waits."""
+    _, recv, get, nb, _, rcvmore = _FAST_IO or _fast_io(zmq)
+    parts = [recv(sock, nb)]
+    while get(sock, rcvmore):
+        parts.append(recv(sock, nb))
+    return parts
 
 
 def _snapshot_child(store: Any, tmp: str, state: Any, rec: int) -> None:
