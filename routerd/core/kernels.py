@@ -308,6 +308,17 @@ def decide_keys(eng: Any) -> frozenset[int]:
 
 # ---- tables ------------------------------------------------------------------------------
 
+def table_arrays(eng: Any, rows: np.ndarray) -> Any:
+    """:meth:`Engine.table_arrays_many` on the compiled path (the same arrays, the same
+    floats), or None for an engine whose columns are not its nodes (owned destinations:
+    the reference runs)."""
+    if eng.nd != eng.n:
+        return None
+    # numpy's indexing rules for the node list (negative from the end, IndexError beyond)
+    r = np.ascontiguousarray(np.arange(eng.n, dtype=np.int64)[rows])
+    return _compiled.table_arrays(r, eng.greedy, eng._slots, _u8(eng.alt), eng.eps, np.empty)
+
+
 def routes(eng: Any, rows: np.ndarray) -> list[dict[int, list[tuple[int, float]]]]:
     """:meth:`Engine.routes_many` on the compiled path: the same dicts, the same floats."""
     out: list[dict[int, list[tuple[int, float]]]] = []
