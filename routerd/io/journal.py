@@ -855,6 +855,9 @@ class Journal:
         self._held_n = 0
         self._held_bytes = 0
         self._held_first = 0
+        # one packer for this journal's records (pack()'s settings; msgpack.packb makes
+        # a new one per call): the journal is appended to from one thread
+        self._packer = msgpack.Packer(use_bin_type=True, default=_default)
         # held while the descriptor is synced from another thread (Syncer) and while it is
         # closed or replaced (roll, close), so a sync never meets a closed or reused fd
         self._fd_lock = threading.Lock()
@@ -911,7 +914,7 @@ class Journal:
             raise JournalError(f"journal {self.dir} is closed")
         if kind not in KINDS:
             raise ValueError(f"record kind {kind!r} is not one of {', '.join(KINDS)}")
-        payload = pack({"kind": kind, "body": body if type(body) is dict else dict(body)})
+        payload = self._packer.pack({"kind": kind, "body": body if type(body) is dict else dict(body)})
         if len(payload) > MAX_RECORD:
             raise ValueError(f"a {kind} record of {len(payload)} bytes is above {MAX_RECORD}")
         if self._seg_records and self._sizes[self._seg_path] >= self.segment_bytes:
