@@ -174,6 +174,8 @@ class Ingest:
     def rejections(self, engine_rejected: Sequence[tuple[int, str]] = ()) -> list[list[Any]]:
         """Every rejected row in wire numbering, sorted: decode-time ones plus the engine's
         (whose indices point into ``hops`` and are mapped back through ``hop_rows``)."""
+        if not self.rejected and not len(engine_rejected):
+            return []
         out: list[list[Any]] = [[int(r), s] for r, s in self.rejected]
         if len(engine_rejected):
             rows = self.hop_rows
@@ -602,7 +604,7 @@ def _pack(obj: Any) -> bytes:
 
 def encode_ack(batch: int, accepted: int, rejected: Sequence[Sequence[Any]] = ()) -> bytes:
     return _pack({"v": VERSION, "batch": int(batch), "accepted": int(accepted),
-                  "rejected": [[int(r), str(s)] for r, s in rejected]})
+                  "rejected": [[int(r), str(s)] for r, s in rejected] if len(rejected) else []})
 
 
 def encode_error(reason: str | WireError, batch: int | None = None) -> bytes:
