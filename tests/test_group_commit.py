@@ -86,63 +86,6 @@ def test_syncer_makes_requested_records_durable_and_reports_through_its_pipe(bas
         j.close()
 
 
-def test_handed_records_are_written_by_the_writer_thread_in_order(base: str) -> None:
-    """Held records handed off (Journal.hand_off) are written by the writer thread before
-    its fsync; a record the owner writes itself meanwhile (a plain append) goes after
-    them, never before, and a flush or close writes whatever is still handed off."""
-    d = os.path.join(base, "j")
-    j = journal.Journal(d, fsync="batch")
-    s = journal.Syncer(j)
-    try:
-        for i in range(3):
-            j.append("tick", {"t": float(i)}, sync=False, hold=True)
-        j.hand_off()
-        assert j.held == 3 and os.path.getsize(j._seg_path) == journal.SEG_HEADER.size
-        s.request(j.last_record)
-        _wait_wake(s.wake_fd)
-        s.drain()
-        assert s.durable == 3 and s.error is None and j.held == 0
-        j.append("tick", {"t": 3.0}, sync=False, hold=True)
-        j.hand_off()
-        j.append("tick", {"t": 4.0}, sync=False)         # the owner's own write: after 3.0
-        j.append("tick", {"t": 5.0}, sync=False, hold=True)
-        j.hand_off()
-    finally:
-        s.close()
-        j.close()                                         # writes the handed 5.0
-    assert journal.recover(d).clean
-    assert [r.body["t"] for r in journal.iter_records(d)] == [0.0, 1.0, 2.0, 3.0, 4.0, 5.0]
-    assert [r.no for r in journal.iter_records(d)] == [1, 2, 3, 4, 5, 6]
-
-
-def test_a_failed_handed_write_is_cut_back_and_kept_as_the_error(base: str, monkeypatch: Any) -> None:
-    d = os.path.join(base, "j")
-    j = journal.Journal(d, fsync="batch")
-    j.append("tick", {"t": 0.0}, sync=True)
-    size = os.path.getsize(j._seg_path)
-    s = journal.Syncer(j)
-    real = os.writev
-
-    def half(fd: int, parts: Any) -> int:
-        b = b"".join(parts)
-        os.write(fd, b[: len(b) // 2])
-        raise OSError(errno.ENOSPC, "No space left on device")
-    try:
-        monkeypatch.setattr(journal.os, "writev", half)
-        j.append("tick", {"t": 1.0}, sync=False, hold=True)
-        j.hand_off()
-        s.request(j.last_record)
-        _wait_wake(s.wake_fd)
-        assert isinstance(s.error, OSError) and s.error.errno == errno.ENOSPC
-        assert s.durable == 1 and os.path.getsize(j._seg_path) == size   # no half record
-    finally:
-        monkeypatch.setattr(journal.os, "writev", real)
-        s.close()
-        j.drop_held()
-        j.close()
-    assert journal.recover(d).clean and [r.body["t"] for r in journal.iter_records(d)] == [0.0]
-
-
 def test_syncer_keeps_the_error_and_nothing_more_becomes_durable(base: str, monkeypatch: Any) -> None:
     j = journal.Journal(os.path.join(base, "j"), fsync="batch")
     j.append("tick", {"t": 0.0}, sync=True)

@@ -855,15 +855,6 @@ class Journal:
         self._held_n = 0
         self._held_bytes = 0
         self._held_first = 0
-        # held records handed to the writer thread (hand_off), written by write_handed
-        # before its next sync; _q_lock guards this list, _w_lock orders every write to the
-        # segment (the thread's and the owner's), _fd_lock the descriptor's life
-        self._handed: list[bytes] = []
-        self._handed_n = 0
-        self._handed_bytes = 0
-        self._handed_first = 0
-        self._q_lock = threading.Lock()
-        self._w_lock = threading.Lock()
         # one packer for this journal's records (pack()'s settings; msgpack.packb makes
         # a new one per call): the journal is appended to from one thread
         self._packer = msgpack.Packer(use_bin_type=True, default=_default)
@@ -903,9 +894,9 @@ class Journal:
 
     def _roll(self) -> None:
         self.flush()
-        with self._fd_lock, self._w_lock:
+        with self._fd_lock:
             if self.fsync != "never":
-                self._fdatasync()
+                self._sync()
             os.close(self._fd)
             self._fd = -1
             self._open_new()
@@ -940,16 +931,14 @@ class Journal:
             self._held_n += 1
             self._held_bytes += n
         else:
-            with self._w_lock:
-                if self._held_n or self._handed_n:
-                    self._flush_w()
-                    size = self._sizes[self._seg_path]
-                try:
-                    _write_all(self._fd, [head, payload])
-                except BaseException:
-                    # never leave half a record in the middle of a segment
-                    os.ftruncate(self._fd, size)
-                    raise
+            if self._held_n:
+                self.flush()
+            try:
+                _write_all(self._fd, [head, payload])
+            except BaseException:
+                # never leave half a record in the middle of a segment
+                os.ftruncate(self._fd, size)
+                raise
         self._sizes[self._seg_path] = size + n
         self._next += 1
         self._seg_records += 1
@@ -966,31 +955,16 @@ class Journal:
         return no
 
     def flush(self) -> None:
-        """Write every record held (:meth:`append` with ``hold=True``), those handed to the
-        writer thread first, in one go.  If the write fails, the segment is cut back to
-        where it was, none of them is kept (their numbers are free again) and the error is
-        raised."""
-        if not self._held_n and not self._handed_n:
+        """Write every record held (:meth:`append` with ``hold=True``) in one go.  If the
+        write fails, the segment is cut back to where it was, none of them is kept (their
+        numbers are free again) and the error is raised."""
+        if not self._held_n:
             return
-        with self._w_lock:
-            self._flush_w()
-
-    def _flush_w(self) -> None:
-        # under _w_lock: no write of the writer thread is under way
-        with self._q_lock:
-            parts, n, nbytes = self._handed, self._handed_n, self._handed_bytes
-            first = self._handed_first if n else self._held_first
-            self._handed, self._handed_n, self._handed_bytes = [], 0, 0
-        if self._held_n:
-            parts = parts + self._held if parts else self._held
-            n += self._held_n
-            nbytes += self._held_bytes
-            self._held, self._held_n, self._held_bytes = [], 0, 0
-        if not n:
-            return
+        held, n, nbytes, first = self._held, self._held_n, self._held_bytes, self._held_first
+        self._held, self._held_n, self._held_bytes = [], 0, 0
         size = self._sizes[self._seg_path] - nbytes
         try:
-            _write_all(self._fd, parts)
+            _write_all(self._fd, held)
         except BaseException:
             # never leave half a record in the middle of a segment
             os.ftruncate(self._fd, size)
@@ -999,65 +973,23 @@ class Journal:
             self._seg_records -= n
             raise
 
-    def hand_off(self) -> None:
-        """Give the held records to the writer thread (:class:`Syncer`): it writes them
-        (:meth:`write_handed`, one ``writev``) before its next sync, off the owner's
-        thread.  Anything the owner writes itself later goes after them."""
-        if not self._held_n:
-            return
-        with self._q_lock:
-            if not self._handed_n:
-                self._handed_first = self._held_first
-            self._handed += self._held
-            self._handed_n += self._held_n
-            self._handed_bytes += self._held_bytes
-        self._held, self._held_n, self._held_bytes = [], 0, 0
-
-    def write_handed(self) -> None:
-        """Write the records handed off (:meth:`hand_off`) — from the writer thread.  A
-        failure cuts the segment back to where it was and raises; the owner must then give
-        the journal up (a storage failure: :meth:`drop_held`, :meth:`close`)."""
-        with self._w_lock:
-            with self._q_lock:
-                parts, n = self._handed, self._handed_n
-                self._handed, self._handed_n, self._handed_bytes = [], 0, 0
-            if not n:
-                return
-            if self._fd < 0:
-                raise JournalError(f"journal {self.dir} is closed")
-            size = os.fstat(self._fd).st_size
-            try:
-                _write_all(self._fd, parts)
-            except BaseException:
-                with contextlib.suppress(OSError):
-                    os.ftruncate(self._fd, size)
-                raise
-
     @property
     def held(self) -> int:
-        """How many appended records are not written yet (held, or handed off)."""
-        return self._held_n + self._handed_n
+        """How many appended records wait for :meth:`flush`."""
+        return self._held_n
 
     def drop_held(self) -> None:
-        """Forget the records not written yet (held or handed off; their numbers are free
-        again): for an owner that gave up on the journal after a storage failure."""
-        with self._w_lock, self._q_lock:
-            n = self._handed_n + self._held_n
-            if not n:
-                return
-            first = self._handed_first if self._handed_n else self._held_first
-            self._sizes[self._seg_path] -= self._handed_bytes + self._held_bytes
-            self._next = first
-            self._seg_records -= n
-            self._handed, self._handed_n, self._handed_bytes = [], 0, 0
+        """Forget the held records without writing them (their numbers are free again):
+        for an owner that gave up on the journal after a storage failure."""
+        if self._held_n:
+            self._sizes[self._seg_path] -= self._held_bytes
+            self._next = self._held_first
+            self._seg_records -= self._held_n
             self._held, self._held_n, self._held_bytes = [], 0, 0
 
     def _sync(self) -> None:
-        if self._held_n or self._handed_n:
+        if self._held_n:
             self.flush()
-        self._fdatasync()
-
-    def _fdatasync(self) -> None:
         if hasattr(os, "fdatasync"):
             os.fdatasync(self._fd)
         else:  # pragma: no cover - not Linux
@@ -1068,7 +1000,7 @@ class Journal:
     def commit(self) -> None:
         """Make every append so far durable as the policy promises (``batch``: fsync now if
         anything is unsynced; ``interval``: as :meth:`maybe_sync`; ``never``: nothing)."""
-        if self._held_n or self._handed_n:
+        if self._held_n:
             self.flush()
         if self._dirty:
             if self.fsync == "batch":
@@ -1096,7 +1028,7 @@ class Journal:
 
     def maybe_sync(self) -> bool:
         """fsync if something is unsynced and the interval has passed.  True if it did."""
-        if self._held_n or self._handed_n:
+        if self._held_n:
             self.flush()
         if self._dirty and time.monotonic() - self._last_sync >= self.fsync_interval_s:
             self._sync()
@@ -1145,18 +1077,15 @@ class Journal:
         return len(self._sizes)
 
     def close(self) -> None:
-        try:
+        with self._fd_lock:
             if self._fd >= 0:
-                self.flush()
-        finally:
-            with self._fd_lock, self._w_lock:
-                if self._fd >= 0:
-                    try:
-                        if self.fsync != "never":
-                            self._fdatasync()
-                    finally:
-                        os.close(self._fd)
-                        self._fd = -1
+                try:
+                    self.flush()
+                    if self.fsync != "never":
+                        self._sync()
+                finally:
+                    os.close(self._fd)
+                    self._fd = -1
 
     def __enter__(self) -> Journal:
         return self
@@ -1232,7 +1161,6 @@ class Syncer:
             if upto <= self._durable or self.error is not None:
                 continue
             try:
-                self.journal.write_handed()
                 self.journal.sync_written()
             except (OSError, JournalError) as e:
                 self.error = e

@@ -797,23 +797,18 @@ class Service:
                            [x for x in ack.get("rejected", ()) if self.dedup.knows(str(x[1]))])
 
     def _flush_held(self) -> None:
-        """Write the records the drain held (one write for all of them), or hand them to
-        the journal writer thread, which writes them before its next fsync.  A failure is
-        a storage failure: the engine goes back to what is stored and the turn's answers
+        """Write the records the drain held (one write for all of them).  A failure is a
+        storage failure: the engine goes back to what is stored and the turn's answers
         become ``unavailable`` (``_turn_failed``)."""
         j = self.journal
         if j is None or not j.held:
-            return
-        syncer = self._syncer
-        if syncer is not None and syncer.journal is j and syncer.error is None:
-            # the writer thread writes them (one writev) before its next fsync: the loop
-            # goes on meanwhile; a failure there is an fsync failure (_synced)
-            j.hand_off()
             return
         try:
             j.flush()
         except (OSError, _journal.JournalError) as e:
             self._storage_failed(f"journal append: {_os_reason(e)}")
+            return
+        self._last_record = j.last_record
 
     def commit(self) -> None:
         """Make this turn's appends durable as the fsync policy promises (group commit):
@@ -1084,7 +1079,7 @@ class Service:
 
     def _request_sync(self) -> None:
         assert self._syncer is not None
-        self._flush_held()          # the thread writes what is handed off, then syncs
+        self._flush_held()          # the thread syncs what is written
         if self._syncer is None:    # the write failed: storage is down
             return
         self._syncer.request(self._last_record)
