@@ -1106,25 +1106,16 @@ class Syncer:
     next one (one fsync for all of them).  An ``OSError`` of the sync is kept in
     :attr:`error` and the thread stops syncing: nothing numbered above :attr:`durable` may
     then be acknowledged.  The owner must :meth:`close` the syncer before the journal.
-    Uses no clock and no sockets: a pipe, a lock, a thread.
-
-    The thread waits on a plain lock used as a binary semaphore (:meth:`request` releases
-    it, the thread takes it), not on a condition variable: a sync then costs the thread
-    three takes of the interpreter lock (woken, synced, pipe written) and the owner one
-    C call, where the condition's Python code made the two threads hand the interpreter
-    lock back and forth several times more on every sync (the owner's loop waits each
-    time).  Only the owner writes the target; the thread reads it after waking, so a
-    request made while a sync runs wakes it once more."""
+    Uses no clock and no sockets: a pipe, a condition variable, a thread."""
 
     def __init__(self, journal: Journal):
         self.journal = journal
+        self._cond = threading.Condition()
         self._target = 0
         self._durable = journal.last_record     # everything before us was synced by its writer
         self.syncs = 0
         self.error: BaseException | None = None
         self._stop = False
-        self._go = threading.Lock()
-        self._go.acquire()                      # held: the thread waits for a request
         self.wake_fd, self._wake_w = os.pipe()
         os.set_blocking(self.wake_fd, False)
         os.set_blocking(self._wake_w, False)
@@ -1138,13 +1129,10 @@ class Syncer:
 
     def request(self, upto: int) -> None:
         """Ask for every record up to ``upto`` (already written) to be made durable."""
-        if upto > self._target:
-            self._target = upto
-            self._wake()
-
-    def _wake(self) -> None:
-        with contextlib.suppress(RuntimeError):   # already released: the thread will look
-            self._go.release()
+        with self._cond:
+            if upto > self._target:
+                self._target = upto
+                self._cond.notify()
 
     def drain(self) -> None:
         """Empty the wake pipe (call when :attr:`wake_fd` is readable)."""
@@ -1154,12 +1142,12 @@ class Syncer:
 
     def _run(self) -> None:
         while True:
-            self._go.acquire()
-            if self._stop:
-                return
-            upto = self._target
-            if upto <= self._durable or self.error is not None:
-                continue
+            with self._cond:
+                while not self._stop and (self._target <= self._durable or self.error is not None):
+                    self._cond.wait()
+                if self._stop:
+                    return
+                upto = self._target
             try:
                 self.journal.sync_written()
             except (OSError, JournalError) as e:
@@ -1172,8 +1160,9 @@ class Syncer:
 
     def close(self) -> None:
         """Stop the thread (a sync in progress finishes first) and close the pipe."""
-        self._stop = True
-        self._wake()
+        with self._cond:
+            self._stop = True
+            self._cond.notify()
         self._thread.join()
         for fd in (self.wake_fd, self._wake_w):
             with contextlib.suppress(OSError):
