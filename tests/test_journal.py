@@ -8,6 +8,7 @@ import os
 import shutil
 import struct
 import zlib
+from typing import Any
 
 import numpy as np
 import pytest
@@ -289,17 +290,33 @@ def test_failed_write_leaves_no_half_record(tmp_path: pytest.TempPathFactory,
     size = os.path.getsize(j._seg_path)
     real = os.write
 
-    def half(fd: int, data: bytes) -> int:
-        real(fd, bytes(data[: len(data) // 2]))
+    def half(fd: int, data: Any) -> int:
+        b = b"".join(data) if isinstance(data, list) else bytes(data)
+        real(fd, b[: len(b) // 2])
         raise OSError(errno.ENOSPC, "No space left on device")
     monkeypatch.setattr(J.os, "write", half)
+    monkeypatch.setattr(J.os, "writev", half)
     with pytest.raises(OSError):
         j.append("tick", {"t": 5.0})
-    monkeypatch.setattr(J.os, "write", real)
     assert os.path.getsize(j._seg_path) == size
+    # held records: numbered at once, written by flush; a failed flush keeps none of them
+    # and takes their numbers back
+    assert [j.append("tick", {"t": t}, hold=True) for t in (5.5, 5.6)] == [3, 4]
+    assert j.held == 2 and os.path.getsize(j._seg_path) == size
+    with pytest.raises(OSError):
+        j.flush()
+    assert j.held == 0 and j.last_record == 2 and os.path.getsize(j._seg_path) == size
+    monkeypatch.setattr(J.os, "write", real)
+    monkeypatch.undo()
     assert j.append("tick", {"t": 6.0}) == 3
-    j.close()
-    assert J.recover(d).clean and [r.body["t"] for r in J.iter_records(d)] == [0.0, 1.0, 6.0]
+    # held, then a plain append: written in order (the plain one flushes them first)
+    assert j.append("tick", {"t": 7.0}, hold=True) == 4
+    assert j.append("tick", {"t": 8.0}, hold=True) == 5
+    assert j.append("tick", {"t": 9.0}, sync=False) == 6 and j.held == 0
+    j.append("tick", {"t": 10.0}, hold=True)
+    j.close()                            # close writes what is held
+    assert J.recover(d).clean and [r.body["t"] for r in J.iter_records(d)] == \
+        [0.0, 1.0, 6.0, 7.0, 8.0, 9.0, 10.0]
 
 
 # ---- snapshots ----------------------------------------------------------------------------------

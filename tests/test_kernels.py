@@ -222,6 +222,45 @@ def test_compiled_key_lane_equals_reference(make_ring, monkeypatch, basis: str, 
 
 
 @needs_compiled
+@pytest.mark.parametrize("seed", range(3))
+def test_compiled_table_arrays_equal_reference(make_ring, seed: int) -> None:  # type: ignore[no-untyped-def]
+    """Engine.table_arrays_many compiled (kernels.table_arrays) gives the reference's
+    arrays — owners, destinations, counts, next hops and weights (1 - eps, eps / count),
+    dtypes too — bit for bit, for node lists in any order with repeats and negative
+    indices, after decisions with exploration and a link down; and the engine's whole
+    tables (routes_many) agree with them entry for entry."""
+    t = make_ring(16, 10, seed=seed)
+    rng = np.random.default_rng(70 + seed)
+    kw = dict(explore_min=0.02, explore_max=0.2, margin=0.05)
+    a, b = _pair(t, **kw)
+    for it in range(12):
+        if it == 6:
+            k = int(rng.integers(0, t.n_links))
+            for e in (a, b):
+                e.set_link(int(t.src[k]), int(t.dst[k]), False, now=it)
+        hb = _rows(t, rng, 300, bad=0.0)
+        a.observe(hb, now=float(it))
+        b.observe(hb, now=float(it))
+        a.decide(float(it))
+        b.decide(float(it))
+        _same(a, b)
+    assert bool(b.alt.any())             # alternates exist: shares are compared too
+    for xs in (np.arange(t.n), rng.permutation(t.n)[:5], np.array([3, 3, -1, 0]),
+               np.zeros(0, dtype=np.int64)):
+        ref, got = a.table_arrays_many(xs), b.table_arrays_many(xs)
+        for r_, g_ in zip(ref, got):
+            assert r_.dtype == g_.dtype and np.array_equal(r_, g_)
+            assert r_.tobytes() == g_.tobytes()
+    # the arrays hold the same tables as routes_many (weights as the same floats)
+    owner, dsts, counts, hops, w = b.table_arrays_many(np.arange(t.n))
+    at = np.concatenate(([0], np.cumsum(counts)))
+    tables = b.routes_many()
+    for i in range(len(owner)):
+        got_entry = list(zip(hops[at[i]:at[i + 1]].tolist(), w[at[i]:at[i + 1]].tolist()))
+        assert tables[int(owner[i])][int(dsts[i])] == got_entry
+
+
+@needs_compiled
 @pytest.mark.parametrize("variant", ["predictive", "confidence"])
 def test_compiled_decide_equals_reference_under_a_variant(make_ring, variant: str) -> None:  # type: ignore[no-untyped-def]
     # variants observe on their own (reference) rule; decide's full pass is compiled

@@ -472,6 +472,67 @@ def routes(const int64_t[::1] rows, const int64_t[:, ::1] greedy, const int64_t[
         out.append(table)
 
 
+def table_arrays(const int64_t[::1] rows, const int64_t[:, ::1] greedy,
+                 const int64_t[:, ::1] slots, const uint8_t[:, :, ::1] alt,
+                 const double[:, ::1] eps, empty):
+    """Engine.table_arrays_many for nodes ``rows`` of a whole engine (column c of greedy,
+    alt and eps is destination c): ``(owner, dsts, counts, hops, weights)`` as new arrays
+    made by ``empty`` (numpy.empty) — an entry per (node, destination) with a greedy slot,
+    destination not the node itself, nodes in the order of ``rows`` and destinations
+    ascending (numpy's nonzero order); per entry the greedy next hop with 1 - eps (1.0
+    without alternates), then the alternates in slot order with eps / count: the
+    reference's operations, the same floats."""
+    cdef Py_ssize_t nr = rows.shape[0], nd = greedy.shape[1], K = slots.shape[1]
+    cdef Py_ssize_t r, c, j, m = 0, h = 0, i, cnt
+    cdef int64_t x, g
+    cdef double e, share
+    for r in range(nr):
+        x = rows[r]
+        for c in range(nd):
+            if greedy[x, c] >= 0 and c != x:
+                m += 1
+                h += 1
+                for j in range(K):
+                    h += alt[x, c, j]
+    owner_o = empty(m, dtype="i8")
+    dsts_o = empty(m, dtype="i8")
+    counts_o = empty(m, dtype="i8")
+    hops_o = empty(h, dtype="i8")
+    w_o = empty(h, dtype="f8")
+    cdef int64_t[::1] owner = owner_o, dsts = dsts_o, counts = counts_o, hops = hops_o
+    cdef double[::1] w = w_o
+    i = 0
+    h = 0
+    for r in range(nr):
+        x = rows[r]
+        for c in range(nd):
+            g = greedy[x, c]
+            if g < 0 or c == x:
+                continue
+            owner[i] = r
+            dsts[i] = c
+            cnt = 0
+            for j in range(K):
+                cnt += alt[x, c, j]
+            counts[i] = cnt + 1
+            i += 1
+            hops[h] = slots[x, g]
+            if cnt:
+                e = eps[x, c]
+                share = e / <double> cnt
+                w[h] = 1.0 - e
+                h += 1
+                for j in range(K):
+                    if alt[x, c, j]:
+                        hops[h] = slots[x, j]
+                        w[h] = share
+                        h += 1
+            else:
+                w[h] = 1.0
+                h += 1
+    return owner_o, dsts_o, counts_o, hops_o, w_o
+
+
 cdef object _decide_keys(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const int64_t[::1] owned,
                 const int64_t[:, ::1] greedy, double[:, ::1] eps, const uint8_t[:, :, ::1] alt,
                 const uint8_t[:, ::1] forced, const slot_t[:, ::1] hyst_st,

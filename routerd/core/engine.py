@@ -1175,6 +1175,10 @@ class Engine:
         weights)``, ``owner[i]`` the position in ``xs`` of destination entry i (entries
         grouped by node in the order of ``xs``, destinations ascending within each)."""
         rows = np.asarray(xs, dtype=np.int64).reshape(-1)
+        if self._kern is not None:      # one compiled pass, the same arrays
+            got = _kernels.table_arrays(self, rows)
+            if got is not None:
+                return got
         g = self.greedy[rows]
         ok = g >= 0
         ok[np.arange(len(rows)), rows] = False

@@ -103,6 +103,10 @@ _COUNTS = frozenset(np.dtype(t) for t in (np.uint8, np.uint16, np.uint32))
 _SLOTS = frozenset(np.dtype(t) for t in (np.int16, np.int32))
 
 
+_ADD = np.add.reduce
+_MAX = np.maximum.reduce
+
+
 def _kinds_ok(eng: Any) -> bool:
     """Whether the engine's counts and slot map are of the kinds the kernels take (the
     engine's own always are; anything else runs on the reference path)."""
@@ -206,7 +210,8 @@ def _observed(eng: Any, m: int, acc: int, code: np.ndarray, tde: np.ndarray, res
             eng._account(acc, sum(a) / acc, max(a))
         else:
             a_ = np.abs(tde)
-            eng._account(acc, float(a_.sum()) / acc, float(a_.max()))
+            # ndarray.sum / .max are these reductions behind two Python wrappers
+            eng._account(acc, float(_ADD(a_)) / acc, float(_MAX(a_)))
     return result_cls(acc, rejected, tde)
 
 
@@ -307,6 +312,17 @@ def decide_keys(eng: Any) -> frozenset[int]:
 
 
 # ---- tables ------------------------------------------------------------------------------
+
+def table_arrays(eng: Any, rows: np.ndarray) -> Any:
+    """:meth:`Engine.table_arrays_many` on the compiled path (the same arrays, the same
+    floats), or None for an engine whose columns are not its nodes (owned destinations:
+    the reference runs)."""
+    if eng.nd != eng.n:
+        return None
+    # numpy's indexing rules for the node list (negative from the end, IndexError beyond)
+    r = np.ascontiguousarray(np.arange(eng.n, dtype=np.int64)[rows])
+    return _compiled.table_arrays(r, eng.greedy, eng._slots, _u8(eng.alt), eng.eps, np.empty)
+
 
 def routes(eng: Any, rows: np.ndarray) -> list[dict[int, list[tuple[int, float]]]]:
     """:meth:`Engine.routes_many` on the compiled path: the same dicts, the same floats."""

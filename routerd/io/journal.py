@@ -849,6 +849,15 @@ class Journal:
         self._fd = -1
         self._dirty = False
         self._last_sync = time.monotonic()
+        # records appended with ``hold=True`` and not yet written (:meth:`flush`): their
+        # bytes (header + CRC, payload) in order, how many, their size and the first number
+        self._held: list[bytes] = []
+        self._held_n = 0
+        self._held_bytes = 0
+        self._held_first = 0
+        # one packer for this journal's records (pack()'s settings; msgpack.packb makes
+        # a new one per call): the journal is appended to from one thread
+        self._packer = msgpack.Packer(use_bin_type=True, default=_default)
         # held while the descriptor is synced from another thread (Syncer) and while it is
         # closed or replaced (roll, close), so a sync never meets a closed or reused fd
         self._fd_lock = threading.Lock()
@@ -884,6 +893,7 @@ class Journal:
         self._sizes[path] = SEG_HEADER.size
 
     def _roll(self) -> None:
+        self.flush()
         with self._fd_lock:
             if self.fsync != "never":
                 self._sync()
@@ -891,33 +901,50 @@ class Journal:
             self._fd = -1
             self._open_new()
 
-    def append(self, kind: str, body: Mapping[str, Any], *, sync: bool | None = None) -> int:
+    def append(self, kind: str, body: Mapping[str, Any], *, sync: bool | None = None,
+               hold: bool = False) -> int:
         """Write one record; returns its number.  ``sync``: True forces an fsync, False
-        defers it (under ``batch``; then :meth:`commit` before acknowledging)."""
+        defers it (under ``batch``; then :meth:`commit` before acknowledging).  ``hold``:
+        keep the record's bytes and write them with the next :meth:`flush` (one write for
+        every record held since; the caller flushes before it asks for an fsync or reads
+        the journal — every other method here flushes first by itself).  The record is
+        numbered now; a failed flush writes none of the held records and takes their
+        numbers back."""
         if self._fd < 0:
             raise JournalError(f"journal {self.dir} is closed")
         if kind not in KINDS:
             raise ValueError(f"record kind {kind!r} is not one of {', '.join(KINDS)}")
-        payload = pack({"kind": kind, "body": dict(body)})
+        payload = self._packer.pack({"kind": kind, "body": body if type(body) is dict else dict(body)})
         if len(payload) > MAX_RECORD:
             raise ValueError(f"a {kind} record of {len(payload)} bytes is above {MAX_RECORD}")
         if self._seg_records and self._sizes[self._seg_path] >= self.segment_bytes:
             self._roll()
         no = self._next
         head = REC_HEAD.pack(REC_MAGIC, 0, len(payload), no)
-        crc = zlib.crc32(payload, zlib.crc32(head))
-        data = head + REC_CRC.pack(crc) + payload
+        head += REC_CRC.pack(zlib.crc32(payload, zlib.crc32(head)))
         size = self._sizes[self._seg_path]
-        try:
-            _write_all(self._fd, data)
-        except BaseException:
-            # never leave half a record in the middle of a segment
-            os.ftruncate(self._fd, size)
-            raise
-        self._sizes[self._seg_path] = size + len(data)
+        n = len(head) + len(payload)
+        if hold:
+            if not self._held_n:
+                self._held_first = no
+            self._held += (head, payload)
+            self._held_n += 1
+            self._held_bytes += n
+        else:
+            if self._held_n:
+                self.flush()
+            try:
+                _write_all(self._fd, [head, payload])
+            except BaseException:
+                # never leave half a record in the middle of a segment
+                os.ftruncate(self._fd, size)
+                raise
+        self._sizes[self._seg_path] = size + n
         self._next += 1
         self._seg_records += 1
         self._dirty = True
+        if hold:
+            return no
         if sync is True:
             self._sync()
         elif sync is None:
@@ -927,7 +954,42 @@ class Journal:
                 self.maybe_sync()
         return no
 
+    def flush(self) -> None:
+        """Write every record held (:meth:`append` with ``hold=True``) in one go.  If the
+        write fails, the segment is cut back to where it was, none of them is kept (their
+        numbers are free again) and the error is raised."""
+        if not self._held_n:
+            return
+        held, n, nbytes, first = self._held, self._held_n, self._held_bytes, self._held_first
+        self._held, self._held_n, self._held_bytes = [], 0, 0
+        size = self._sizes[self._seg_path] - nbytes
+        try:
+            _write_all(self._fd, held)
+        except BaseException:
+            # never leave half a record in the middle of a segment
+            os.ftruncate(self._fd, size)
+            self._sizes[self._seg_path] = size
+            self._next = first
+            self._seg_records -= n
+            raise
+
+    @property
+    def held(self) -> int:
+        """How many appended records wait for :meth:`flush`."""
+        return self._held_n
+
+    def drop_held(self) -> None:
+        """Forget the held records without writing them (their numbers are free again):
+        for an owner that gave up on the journal after a storage failure."""
+        if self._held_n:
+            self._sizes[self._seg_path] -= self._held_bytes
+            self._next = self._held_first
+            self._seg_records -= self._held_n
+            self._held, self._held_n, self._held_bytes = [], 0, 0
+
     def _sync(self) -> None:
+        if self._held_n:
+            self.flush()
         if hasattr(os, "fdatasync"):
             os.fdatasync(self._fd)
         else:  # pragma: no cover - not Linux
@@ -938,6 +1000,8 @@ class Journal:
     def commit(self) -> None:
         """Make every append so far durable as the policy promises (``batch``: fsync now if
         anything is unsynced; ``interval``: as :meth:`maybe_sync`; ``never``: nothing)."""
+        if self._held_n:
+            self.flush()
         if self._dirty:
             if self.fsync == "batch":
                 self._sync()
@@ -964,6 +1028,8 @@ class Journal:
 
     def maybe_sync(self) -> bool:
         """fsync if something is unsynced and the interval has passed.  True if it did."""
+        if self._held_n:
+            self.flush()
         if self._dirty and time.monotonic() - self._last_sync >= self.fsync_interval_s:
             self._sync()
             return True
@@ -973,6 +1039,7 @@ class Journal:
     def records(self, after: int = 0) -> Iterator[Record]:
         """Records numbered above ``after``, in order.  Corruption found here (after the
         start-up recovery) raises :class:`JournalError`."""
+        self.flush()
         rep = ReadReport()
         yield from iter_records(self.dir, after, rep)
         if rep.stopped is not None:
@@ -1013,6 +1080,7 @@ class Journal:
         with self._fd_lock:
             if self._fd >= 0:
                 try:
+                    self.flush()
                     if self.fsync != "never":
                         self._sync()
                 finally:
@@ -1101,11 +1169,31 @@ class Syncer:
                 os.close(fd)
 
 
-def _write_all(fd: int, data: bytes) -> None:
+def _write_all(fd: int, data: Any) -> None:
+    """Write ``data`` (a bytes-like object, or a list of them written in order with as
+    few system calls as the OS takes: ``os.writev``, at most ``_IOV_MAX`` pieces a call)."""
+    if isinstance(data, list):
+        i = 0
+        while i < len(data):
+            part = data[i:i + _IOV_MAX]
+            n = os.writev(fd, part)
+            for b in part:
+                k = len(b)
+                if n < k:           # a short write: the rest of this piece, then go on
+                    _write_all(fd, memoryview(b)[n:])
+                    n = 0
+                else:
+                    n -= k
+            i += len(part)
+        return
     mv = memoryview(data)
     while mv:
         n = os.write(fd, mv)
         mv = mv[n:]
+
+
+#: pieces per ``os.writev`` call (Linux's IOV_MAX is 1024)
+_IOV_MAX = 512
 
 
 # ---- snapshots ----------------------------------------------------------------------------

@@ -66,6 +66,7 @@ a hop over a link marked down).
 """
 from __future__ import annotations
 
+import functools
 import math
 import sys
 from collections.abc import Mapping, Sequence
@@ -174,6 +175,8 @@ class Ingest:
     def rejections(self, engine_rejected: Sequence[tuple[int, str]] = ()) -> list[list[Any]]:
         """Every rejected row in wire numbering, sorted: decode-time ones plus the engine's
         (whose indices point into ``hops`` and are mapped back through ``hop_rows``)."""
+        if not self.rejected and not len(engine_rejected):
+            return []
         out: list[list[Any]] = [[int(r), s] for r, s in self.rejected]
         if len(engine_rejected):
             rows = self.hop_rows
@@ -602,7 +605,7 @@ def _pack(obj: Any) -> bytes:
 
 def encode_ack(batch: int, accepted: int, rejected: Sequence[Sequence[Any]] = ()) -> bytes:
     return _pack({"v": VERSION, "batch": int(batch), "accepted": int(accepted),
-                  "rejected": [[int(r), str(s)] for r, s in rejected]})
+                  "rejected": [[int(r), str(s)] for r, s in rejected] if len(rejected) else []})
 
 
 def encode_error(reason: str | WireError, batch: int | None = None) -> bytes:
@@ -768,13 +771,22 @@ class TableCodec:
         return src[idx].tobytes(), entry_at
 
 
+@functools.lru_cache(maxsize=8192, typed=True)
+def _table_parts(node_name: str, epoch: int | str) -> tuple[bytes, bytes, bytes]:
+    """The parts of a node's table publication that do not change from one to the next:
+    (topic frame, the body up to the ``seq`` value, the ``epoch`` key and value with the
+    ``routes`` key) — a service publishes the same few names under one epoch."""
+    k = _TABLE_KEYS
+    return (TABLE_TOPIC + node_name.encode(),
+            b"".join((b"\x85", k[0], _pack(VERSION), k[1], _pack(node_name), k[2])),
+            b"".join((k[3], _pack(epoch), k[4])))
+
+
 def table_message_encoded(node_name: str, seq: int, epoch: int | str, routes: bytes) -> list[bytes]:
     """The two frames of one table publication from the routes :func:`table_routes`
     encoded: byte for byte what :func:`table_message` gives for the same table."""
-    k = _TABLE_KEYS
-    body = b"".join((b"\x85", k[0], _pack(VERSION), k[1], _pack(node_name), k[2], _pack(int(seq)),
-                     k[3], _pack(epoch), k[4], routes))
-    return [TABLE_TOPIC + node_name.encode(), body]
+    topic, head, mid = _table_parts(node_name, epoch)
+    return [topic, b"".join((head, _pack(int(seq)), mid, routes))]
 
 
 def decode_table(frames: Sequence[bytes]) -> dict[str, Any]:

@@ -106,6 +106,7 @@ __all__ = ["REASONS", "REST_FACTOR", "Meter", "Optimum", "Rates", "compute", "es
 REASONS = ("off", "too_large", "sharded", "waiting", "no_demand", "no_packet_size", "failed")
 #: Least rows a link needs in the window to count towards the packet-size estimate.
 BUSY_ROWS = 4.0
+_LITTLE = sys.byteorder == "little"     # record columns are little-endian
 #: After a run of r seconds the next starts no sooner than REST_FACTOR * r later: the
 #: optimiser's child takes at most 1 / (1 + REST_FACTOR) of one core, whatever the network.
 REST_FACTOR = 4.0
@@ -167,20 +168,21 @@ class Meter:
     def add_record(self, body: Mapping[str, Any]) -> None:
         """Count the accepted hops of a journal ``batch`` record body (its int32/float64
         column bytes, :func:`routerd.io.journal.batch_body`), without copying them."""
-        src = np.frombuffer(body["from"], dtype="<i4")
-        if not len(src):
+        fb = body["from"]
+        m = len(fb) // 4
+        if not m:
             return
         kern = self.kernels
-        if kern is not None and sys.byteorder == "little":
-            fb, vb, db, lb = body["from"], body["via"], body["dst"], body["latency_s"]
-            m = len(src)
-            if len(vb) == len(db) == 4 * m and len(lb) == 8 * m:
+        if kern is not None and _LITTLE:
+            vb, db, lb = body["via"], body["dst"], body["latency_s"]
+            if len(vb) == len(db) == len(fb) == 4 * m and len(lb) == 8 * m:
                 with self._lock:
                     kern.meter_add_cols(self._out, self._in, self._lk, self._lat, self._link_of,
                                         fb, vb, db, lb, self.n)
                     self.rows += m
                 return
-        self.add(src, np.frombuffer(body["via"], dtype="<i4"), np.frombuffer(body["dst"], dtype="<i4"),
+        self.add(np.frombuffer(fb, dtype="<i4"), np.frombuffer(body["via"], dtype="<i4"),
+                 np.frombuffer(body["dst"], dtype="<i4"),
                  np.frombuffer(body["latency_s"], dtype="<f8"))
 
     def take(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
