@@ -1175,7 +1175,7 @@ class Engine:
         weights)``, ``owner[i]`` the position in ``xs`` of destination entry i (entries
         grouped by node in the order of ``xs``, destinations ascending within each)."""
         rows = np.asarray(xs, dtype=np.int64).reshape(-1)
-        if self._kern is not None:      # one compiled pass, the same arrays
+        if self._kern is not None and self._split is None:   # one compiled pass, the same arrays
             got = _kernels.table_arrays(self, rows)
             if got is not None:
                 return got
