@@ -67,7 +67,10 @@ STYLES: dict[str, dict[str, Any]] = {
                  "alpha": 0.75},
     "service": {"color": "#d9730d", "ls": (0, (4, 2)), "marker": "^", "ms": 5.5, "mfc": "none",
                 "mew": 1.2, "lw": 1.3},
-    "reroute": {"color": "#7a4a2a", "ls": (0, (1, 1.5)), "marker": "D", "ms": 3.5, "lw": 1.5},
+    # reroute equals shortest until a link event: drawn last, hollow and dotted, so the
+    # static line under it still shows through
+    "reroute": {"color": "#7a4a2a", "ls": (0, (1, 1.5)), "marker": "D", "ms": 5.5, "mfc": "none",
+                "mew": 1.1, "lw": 1.5},
 }
 COLOURS = {p: st["color"] for p, st in STYLES.items()}
 
