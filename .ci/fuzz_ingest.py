@@ -26,9 +26,9 @@ with atheris.instrument_imports():
     import msgpack
     import numpy as np
 
-    from routerd.io import topofiles as T
     from routerd.core.engine import Engine, EngineSettings
     from routerd.io import config, journal, security, wire
+    from routerd.io import topofiles as T
     from routerd.service.metrics import Counters
     from routerd.service.pipeline import SERVICE_FRAME_ERRORS, SERVICE_REASONS, Pipeline
 

@@ -34,9 +34,9 @@ from typing import Any
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 sys.path.insert(0, ROOT)
 
-from routerd.tools import lab as L
 from routerd.agent import overlay as ov
 from routerd.io import topofiles as TF
+from routerd.tools import lab as L
 
 PORT = 7400
 BARE = r"""

@@ -344,7 +344,6 @@ def throughput_topology(base: str) -> tuple[Any, str]:
     about start-up."""
     sys.path.insert(0, HERE)
     from bench_engine import ring_with_chords, write_node_link
-
     from routerd.io import topofiles as TF
 
     t = ring_with_chords(100, 100)

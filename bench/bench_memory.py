@@ -66,7 +66,6 @@ def _engine_worker(n: int) -> dict[str, object]:
 
     sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
     from bench_engine import random_rows, ring_with_chords
-
     from routerd.core.engine import Engine
 
     def status(key: str) -> float:

@@ -32,7 +32,6 @@ sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
 def _case(n: int) -> tuple[object, object, np.ndarray]:
     from bench_engine import ring_with_chords
-
     from routerd.core import flowdev
     from routerd.core.engine import Engine
 

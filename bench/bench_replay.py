@@ -28,12 +28,12 @@ import time
 from typing import Any
 
 import numpy as np
-from bench_engine import ring_with_chords
 
-from routerd.io import journal as J
-from routerd.tools import replay as R
+from bench_engine import ring_with_chords
 from routerd.core import topology as T
 from routerd.core.engine import Engine, EngineSettings, HopBatch
+from routerd.io import journal as J
+from routerd.tools import replay as R
 
 
 def ring(n: int, seed: int = 0) -> T.Topology:

@@ -45,7 +45,6 @@ for p in (ROOT, HERE):
         sys.path.insert(0, p)
 
 from bench_ingest import Service, req, table_watch  # noqa: E402
-
 from routerd.io import wire  # noqa: E402
 
 RATE = 100_000          # background observations per second
@@ -60,7 +59,6 @@ def ring_file(base: str, n: int, node_link: bool = False) -> tuple[Any, str]:
     import yaml
 
     from bench_engine import ring_with_chords, write_node_link
-
     from routerd.core import topology as T
 
     t = ring_with_chords(n, n)

@@ -45,13 +45,12 @@ for p in (ROOT, HERE):
 
 from bench_engine import random_rows, ring_with_chords, write_node_link
 from bench_ingest import Frames, acked
-
-from routerd.service import shard
-from routerd.io import wire
 from routerd.core import topology as T
-from routerd.io import topofiles as TF
-from routerd.io.childproc import parse_ready
 from routerd.core.engine import Engine, EngineSettings
+from routerd.io import topofiles as TF
+from routerd.io import wire
+from routerd.io.childproc import parse_ready
+from routerd.service import shard
 
 ROWS = 1024
 # the optimality gap's runner off (engine.optimum.interval_s 0): each service and each

@@ -28,14 +28,12 @@ import numpy as np
 
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
-from routerd.io import config
 from routerd.core import topology
-from routerd.io import topofiles
+from routerd.io import config, topofiles
 from routerd.sim import policies
 from routerd.sim.core import CoreResult, hops_status, run_core
 from routerd.sim.run import DEMO_TOPOLOGY
 from routerd.sim.traffic import PoissonTraffic
-
 
 #: the simulator's two event loops (routerd.sim.core.hops_status), measured side by side
 PATHS = ("reference", "compiled")

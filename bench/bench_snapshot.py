@@ -75,9 +75,8 @@ def _private_mb(pid: int) -> float:
 def _worker(way: str, n: int) -> dict[str, Any]:
     sys.path.insert(0, HERE)
     from bench_engine import ring_with_chords
-
-    from routerd.io import config
     from routerd.core.engine import HopBatch
+    from routerd.io import config
     from routerd.service.daemon import Service
 
     topo = ring_with_chords(n, n, seed=1)

@@ -18,8 +18,8 @@ import time
 from typing import Any
 
 import numpy as np
-from bench_engine import random_rows, ring_with_chords
 
+from bench_engine import random_rows, ring_with_chords
 from routerd.core import kernels as _kernels
 from routerd.core import topology as T
 from routerd.core.engine import Engine, EngineSettings

@@ -28,9 +28,9 @@ sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
 import time
 
-import compare_variants as C
 import numpy as np
 
+import compare_variants as C
 from routerd.core.engine import Engine, EngineSettings, HopBatch
 from routerd.core.topology import Topology
 

@@ -28,8 +28,14 @@ from __future__ import annotations
 
 import numpy as np
 
-from routerd.core.flowdev import (all_distances, by_source, find_cycle, flows_from_fractions,
-                                  link_arrays, tree_flows)
+from routerd.core.flowdev import (
+    all_distances,
+    by_source,
+    find_cycle,
+    flows_from_fractions,
+    link_arrays,
+    tree_flows,
+)
 from routerd.core.topology import Topology
 
 # the array form and its loads live in the pure core (routerd.core.flowdev: the service's

@@ -82,10 +82,10 @@ from typing import Any
 
 import numpy as np
 
-from routerd.io import config as _config
 from routerd.core import topology as _topology
-from routerd.io.childproc import parse_ready
 from routerd.core.errors import InputError, Problem
+from routerd.io import config as _config
+from routerd.io.childproc import parse_ready
 
 from .policy import Policy
 

@@ -22,9 +22,18 @@ from typing import Any
 
 import numpy as np
 
-from routerd.core.flowdev import (RHO_LEVELS, MinDelayResult, flow_deviation,
-                                  for_topology, mm1_cost, mm1_delay, mm1_marginal, routing_delay,
-                                  slot_fractions, slot_shares)
+from routerd.core.flowdev import (
+    RHO_LEVELS,
+    MinDelayResult,
+    flow_deviation,
+    for_topology,
+    mm1_cost,
+    mm1_delay,
+    mm1_marginal,
+    routing_delay,
+    slot_fractions,
+    slot_shares,
+)
 from routerd.core.topology import Topology
 
 from .policy import Policy

@@ -22,8 +22,9 @@ from typing import Any
 
 import numpy as np
 
-from . import plotstyle as ps
 from routerd.core.topology import Topology
+
+from . import plotstyle as ps
 
 #: an interval whose lost share exceeds this is marked on the delivery-time line
 LOSS_MARK = 0.01

@@ -21,15 +21,15 @@ from typing import Any
 
 import numpy as np
 
-from routerd.io import config as _config
-from routerd.io import inputs as _inputs
 from routerd.core import topology as _topology
 from routerd.core.errors import InputError, Problem
-from .stats import delivery_stats
+from routerd.io import config as _config
+from routerd.io import inputs as _inputs
+from routerd.io import scenario as _scenario
 
 from . import policies as _policies
-from routerd.io import scenario as _scenario
 from .core import CoreResult, StopRequest, run_core
+from .stats import delivery_stats
 from .traffic import PoissonTraffic
 
 DEMO_TOPOLOGY = os.path.join(os.path.dirname(os.path.dirname(_topology.__file__)), "data", _inputs.DEMO_LAB)

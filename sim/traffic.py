@@ -17,8 +17,9 @@ from typing import Protocol
 
 import numpy as np
 
-from .core import PacketTuple
 from routerd.io.scenario import Scenario
+
+from .core import PacketTuple
 
 #: packets drawn per numpy block
 _BLOCK = 8192

@@ -24,15 +24,15 @@ import yaml
 import zmq
 from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.parser import text_string_to_metric_families
-from service_harness import free_udp_ports
 
 from routerd.agent import forwarder as A
-from routerd.io import config as C
 from routerd.agent import overlay as ov
 from routerd.core import topology as T
+from routerd.io import config as C
 from routerd.io import topofiles as TF
 from routerd.io import wire
 from routerd.io.clock import SYSTEM, FakeClock
+from service_harness import free_udp_ports
 
 NODES = ["s", "x", "y", "t"]
 TOPO_DOC = {"topology": {"name": "diamond", "defaults": {"capacity_bps": 1e7, "buffer_pkts": 50},

@@ -15,12 +15,11 @@ from typing import Any
 import numpy as np
 import pytest
 import zmq
-from service_harness import ServiceProc, free_udp_ports, service_args, short_base
 
 from routerd.agent import client
-from routerd.io import security, wire
 from routerd.core import topology
-from routerd.io import topofiles
+from routerd.io import security, topofiles, wire
+from service_harness import ServiceProc, free_udp_ports, service_args, short_base
 
 DEMO = "routerd/data/demo-lab.yaml"
 

@@ -18,9 +18,9 @@ import networkx as nx
 import numpy as np
 import pytest
 
-from routerd.io import config as C
 from routerd.core import topology as T
 from routerd.core.errors import InputError
+from routerd.io import config as C
 from routerd.sim import closedloop, policies
 from routerd.sim.policies import QRouting
 from routerd.sim.run import run

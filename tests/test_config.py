@@ -10,9 +10,9 @@ import dataclasses
 import pytest
 import yaml
 
-from routerd.io import config
 from routerd.core.engine import EngineSettings
 from routerd.core.errors import ConfigError
+from routerd.io import config
 
 
 def _write(tmp_path, doc, name: str = "lab.yaml") -> str:  # type: ignore[no-untyped-def]

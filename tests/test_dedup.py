@@ -10,8 +10,8 @@ from typing import Any
 import pytest
 
 from routerd.io import config, journal, wire
-from routerd.service import dedup as D
 from routerd.io import topofiles as TF
+from routerd.service import dedup as D
 from routerd.service.daemon import SERVICE_REASONS, Service
 
 REASONS = wire.REASONS + SERVICE_REASONS

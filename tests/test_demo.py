@@ -148,8 +148,7 @@ def test_progress_plain_lines_when_not_a_terminal() -> None:
 def offline(tmp_path_factory: Any) -> demo.Demo:
     """A Demo whose four results are in-process runs (the 'service' one: qrouting with
     another seed, so its line differs a little from the in-process learner's)."""
-    from routerd.io import topofiles
-    from routerd.io import scenario
+    from routerd.io import scenario, topofiles
     from routerd.sim.run import DEMO_TOPOLOGY
 
     dur = 8.0

@@ -18,11 +18,11 @@ from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.parser import text_string_to_metric_families
 
 from routerd.agent import forwarder as A
-from routerd.tools import cli
+from routerd.core.engine import Engine
+from routerd.io import topofiles as TF
 from routerd.io import wire
 from routerd.service import metrics as M
-from routerd.io import topofiles as TF
-from routerd.core.engine import Engine
+from routerd.tools import cli
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 DEPLOY = os.path.join(ROOT, "deploy")

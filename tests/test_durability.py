@@ -15,9 +15,9 @@ import msgpack
 import numpy as np
 import pytest
 import zmq
-from service_harness import DEMO, ServiceProc, service_args, stream_until_killed
 
 from routerd.io import journal, wire
+from service_harness import DEMO, ServiceProc, service_args, stream_until_killed
 
 
 def journal_bytes(state_dir: str) -> dict[str, bytes]:

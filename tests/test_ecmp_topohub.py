@@ -23,7 +23,6 @@ import numpy as np
 import pytest
 
 from routerd.core import topology
-
 from routerd.io import topofiles
 from routerd.sim import analytic, policies
 from routerd.sim.run import run

@@ -21,12 +21,12 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from routerd.io import config
-from routerd.core import loops
 from routerd.core import engine as E
+from routerd.core import loops
 from routerd.core import topology as T
-from routerd.io import topofiles as TF
 from routerd.core.engine import Engine, EngineSettings, HopBatch
+from routerd.io import config
+from routerd.io import topofiles as TF
 
 FIBRE = 5e-6  # s/km, ITU-T G.114 planning figure (the topohub import's rule)
 HYP = settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow,

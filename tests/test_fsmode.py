@@ -10,10 +10,10 @@ from contextlib import contextmanager
 
 import numpy as np
 import pytest
-from service_harness import running, short_base, stop_gracefully
 
 from routerd.io import fsmode
 from routerd.io import journal as J
+from service_harness import running, short_base, stop_gracefully
 
 
 def _mode(path: str) -> int:

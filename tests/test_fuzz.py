@@ -16,9 +16,9 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from routerd.core.engine import EngineSettings
 from routerd.io import config, journal, security, wire
 from routerd.io import topofiles as TF
-from routerd.core.engine import EngineSettings
 from routerd.service.daemon import SERVICE_FRAME_ERRORS, Service
 
 DEMO = os.path.join(os.path.dirname(__file__), "..", "routerd", "data", "demo-lab.yaml")

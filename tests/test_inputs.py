@@ -144,8 +144,8 @@ def test_every_command_resolves_a_config_identically(sub_config: Path, tmp_path:
     from routerd.agent import forwarder
     from routerd.service.daemon import choose_inputs
     from routerd.sim import commands_sweep
-    from routerd.sim.run import SimSpec, load_inputs
     from routerd.sim.commands_simulate import spec_from_args
+    from routerd.sim.run import SimSpec, load_inputs
     from routerd.tools import demo, lab, validate
 
     c = str(sub_config)
@@ -169,7 +169,7 @@ def test_every_command_resolves_a_config_identically(sub_config: Path, tmp_path:
     d = demo.Demo(str(tmp_path / "d"), 30.0, 1, 1.0, config=c)
     d.load_inputs()
     got["demo"] = (d.topo.digest, d.cfg["topology.file"])
-    from routerd.tools.replay import _load_config_and_topology, Source
+    from routerd.tools.replay import Source, _load_config_and_topology
 
     os.makedirs(os.path.join(str(tmp_path), "j"), exist_ok=True)
     r = _parse("replay", str(tmp_path / "j"), "--config", c, "--out", "o")

@@ -17,6 +17,7 @@ package, where a fresh interpreter without any start-up hooks does not provide i
 from __future__ import annotations
 
 import ast
+import importlib.util
 import json
 import os
 import re
@@ -24,15 +25,13 @@ import shutil
 import signal
 import subprocess
 import sys
+import sysconfig
 import tempfile
 import time
 import zipfile
 from collections.abc import Iterator
 from dataclasses import dataclass
 from typing import Any
-
-import importlib.util
-import sysconfig
 
 import pytest
 

@@ -14,10 +14,9 @@ import numpy as np
 import pytest
 
 from routerd.core import engine as E
-from routerd.io import journal as J
 from routerd.core import topology
-from routerd.io import topofiles
-from routerd.io import wire
+from routerd.io import journal as J
+from routerd.io import topofiles, wire
 
 DEMO = "routerd/data/demo-lab.yaml"
 

@@ -19,11 +19,11 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from routerd.io import config
-from routerd.core import kernels
 from routerd.core import engine as E
+from routerd.core import kernels
 from routerd.core import topology as T
 from routerd.core.engine import Engine, EngineSettings, HopBatch
+from routerd.io import config
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 needs_compiled = pytest.mark.skipif(not kernels.available(),

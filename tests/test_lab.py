@@ -22,8 +22,8 @@ from typing import Any
 import networkx as nx
 import pytest
 
-from routerd.tools import lab as L
 from routerd.io import topofiles as TF
+from routerd.tools import lab as L
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 TOPO = os.path.join(ROOT, "configs", "lab-small.yaml")
@@ -311,6 +311,7 @@ def test_orphan_removal_acts_only_on_a_dead_labs_own_service(tmp_path: Any) -> N
     import tempfile
 
     import yaml
+
     from routerd.io.childproc import READY_RE as READY
 
     base = tempfile.mkdtemp(prefix="rdo-", dir="/tmp")     # ipc paths must stay short

@@ -11,8 +11,8 @@ from typing import Any
 
 import pytest
 
-from routerd.io import config
 from routerd.core.errors import InputError
+from routerd.io import config
 from routerd.io.inputs import load_topology
 from routerd.sim import linktrace as LT
 from routerd.sim.run import run as run_sim

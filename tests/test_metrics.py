@@ -19,10 +19,10 @@ from prometheus_client import generate_latest
 from prometheus_client.parser import text_string_to_metric_families
 from prometheus_client.registry import CollectorRegistry
 
-from routerd.io import config, wire
-from routerd.service import metrics
 from routerd.core.engine import Engine, HopBatch
+from routerd.io import config, wire
 from routerd.io.inputs import load_topology
+from routerd.service import metrics
 from routerd.service.daemon import SERVICE_REASONS
 
 DEMO = load_topology(config.load(None))
@@ -181,9 +181,8 @@ def test_promtool_accepts_the_page() -> None:
 
 @pytest.mark.slow
 def test_live_service_page_over_http(base: str) -> None:
-    from service_harness import running
-
     from routerd.agent import client
+    from service_harness import running
 
     with running(base) as sp:
         with client.Reporter(sp.endpoints["ingest"], "m", control=sp.endpoints["control"],

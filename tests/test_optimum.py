@@ -421,9 +421,8 @@ def test_the_runner_hands_the_loop_a_guide_in_split_mode_only() -> None:
 # ---- a real service ------------------------------------------------------------------------------
 @pytest.mark.slow
 def test_a_running_service_exports_the_gap_in_metrics_and_health(base: str) -> None:
-    from service_harness import running
-
     from routerd.agent import client
+    from service_harness import running
 
     # the rows arrive in a burst far faster than the packets they describe would: small
     # packets keep the measured rate within the model's capacities
@@ -463,9 +462,8 @@ def test_a_running_service_exports_the_gap_in_metrics_and_health(base: str) -> N
 def test_a_guided_split_service_replays_to_its_own_final_state(base: str) -> None:
     import signal
 
-    from service_harness import running
-
     from routerd.agent import client
+    from service_harness import running
 
     with running(base, "--set", "engine.mode=split", "--set", "engine.optimum.guide=true",
                  "--set", "engine.optimum.interval_s=0.3",

@@ -9,9 +9,9 @@ from typing import Any
 import numpy as np
 import pytest
 
-from routerd.io import topofiles as TF
 from routerd.core.engine import Engine, EngineSettings
 from routerd.io import config, journal, security, wire
+from routerd.io import topofiles as TF
 from routerd.io.clock import FakeClock
 from routerd.service import pipeline as P
 from routerd.service.daemon import Service

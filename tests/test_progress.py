@@ -2,7 +2,6 @@
 and the three commands' progress through it."""
 from __future__ import annotations
 
-
 import pytest
 
 from routerd.io.clock import FakeClock

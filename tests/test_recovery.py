@@ -17,12 +17,12 @@ import struct
 import numpy as np
 import pytest
 
-from routerd.io import config, wire
 from routerd.core import engine as E
+from routerd.io import config, wire
 from routerd.io import journal as J
-from routerd.tools import replay as R
 from routerd.io.inputs import load_topology
 from routerd.service.daemon import Service
+from routerd.tools import replay as R
 
 DEMO = load_topology(config.load(None))
 

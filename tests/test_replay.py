@@ -19,15 +19,15 @@ from typing import Any
 
 import numpy as np
 import pytest
-from service_harness import ServiceProc, service_args
 
 from routerd.agent import client
-from routerd.io import config, wire
 from routerd.core import engine as E
+from routerd.io import config, wire
 from routerd.io import journal as J
+from routerd.io.inputs import load_topology
 from routerd.tools import replay as R
 from routerd.tools.cli import main
-from routerd.io.inputs import load_topology
+from service_harness import ServiceProc, service_args
 
 DEMO = load_topology(config.load(None))
 

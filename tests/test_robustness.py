@@ -20,12 +20,12 @@ import msgpack
 import numpy as np
 import pytest
 import zmq
-from service_harness import ServiceProc, service_args
 
 from routerd.agent import client
-from routerd.io import config, journal, security, wire
 from routerd.core.engine import EngineSettings
+from routerd.io import config, journal, security, wire
 from routerd.io.inputs import load_topology
+from service_harness import ServiceProc, service_args
 
 DEMO = load_topology(config.load(None))
 

@@ -15,15 +15,14 @@ import msgpack
 import pytest
 import zmq
 import zmq.auth
-from service_harness import ServiceProc, service_args, short_base
 
-from routerd.io import security
-from routerd.io import inputs
+from routerd.core import topology as T
+from routerd.core.errors import InputError
+from routerd.io import inputs, security
+from routerd.io import topofiles as TF
 from routerd.io.logs import EventLog
 from routerd.service import daemon as service
-from routerd.core import topology as T
-from routerd.io import topofiles as TF
-from routerd.core.errors import InputError
+from service_harness import ServiceProc, service_args, short_base
 
 DEMO = os.path.join(os.path.dirname(__file__), "..", "routerd", "data", "demo-lab.yaml")
 

@@ -17,12 +17,12 @@ import networkx as nx
 import numpy as np
 import pytest
 import zmq
-from service_harness import ServiceProc, running, service_args
 
 from routerd.agent import client
 from routerd.core import kernels
 from routerd.io import config, journal, wire
 from routerd.io.inputs import load_config, load_topology
+from service_harness import ServiceProc, running, service_args
 
 DEMO = load_topology(config.load(None))
 
@@ -453,7 +453,7 @@ def test_flags_override_the_config_and_topology_paths_are_relative_to_it(tmp_pat
 
 
 def test_serve_flags_are_exactly_the_documented_ones() -> None:
-    from routerd.service.serve import configure   # the command: the service's flags + sharding
+    from routerd.service.serve import configure  # the command: the service's flags + sharding
 
     p = argparse.ArgumentParser()
     configure(p)

@@ -17,12 +17,12 @@ import msgpack
 import numpy as np
 import pytest
 import zmq
-from service_harness import ServiceProc, service_args, stream_until_killed
 
 from routerd.agent import client
-from routerd.io import config, journal, wire
 from routerd.core.engine import Engine, EngineSettings
+from routerd.io import config, journal, wire
 from routerd.io.inputs import load_topology
+from service_harness import ServiceProc, service_args, stream_until_killed
 
 DEMO = load_topology(config.load(None))
 

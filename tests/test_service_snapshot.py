@@ -8,9 +8,9 @@ from typing import Any
 
 import numpy as np
 
+from routerd.core.engine import Engine, EngineSettings
 from routerd.io import config, journal, wire
 from routerd.io import topofiles as TF
-from routerd.core.engine import Engine, EngineSettings
 from routerd.service.daemon import Service
 
 DEMO = os.path.join(os.path.dirname(__file__), "..", "routerd", "data", "demo-lab.yaml")

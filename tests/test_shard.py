@@ -21,14 +21,14 @@ import msgpack
 import numpy as np
 import pytest
 import zmq
-from service_harness import ServiceProc, service_args
 
+from routerd.agent.client import Reporter, TableSubscriber
 from routerd.io import config as _config
 from routerd.io import journal as J
-from routerd.service import shard
 from routerd.io import wire
-from routerd.agent.client import Reporter, TableSubscriber
 from routerd.io.inputs import load_topology
+from routerd.service import shard
+from service_harness import ServiceProc, service_args
 
 # a decision after every batch (no debounce, no decision cap, every due destination): the
 # engine's state depends on where the decisions fall in the batch stream, so one process and
@@ -469,10 +469,10 @@ def test_1000_nodes_2_workers_memory_tables_and_a_killed_worker(
     serves the tables one process serves for the same batches, and a worker killed with
     SIGKILL mid-stream loses no acknowledged batch (the reporter re-sends what was
     answered unavailable; the tables still match, every batch journaled once per shard)."""
-    import service_harness
     import yaml
-    from conftest import ring_with_chords
 
+    import service_harness
+    from conftest import ring_with_chords
     from routerd.core import topology as T
     from routerd.io import topofiles as TF
 

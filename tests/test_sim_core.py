@@ -10,15 +10,15 @@ import math
 
 import numpy as np
 import pytest
-from sim_helpers import assert_little, assert_little_raw
 
-from routerd.io import config
 from routerd.core import topology
+from routerd.io import config
 from routerd.sim.core import CoreResult, CoreSeries, LinkEvent, run_core
 from routerd.sim.policies import Shortest
 from routerd.sim.policy import Policy
 from routerd.sim.run import run
 from routerd.sim.traffic import PoissonTraffic
+from sim_helpers import assert_little, assert_little_raw
 
 MU = 1000.0  # packets/s: 8 Mbit/s over 1000-byte packets
 

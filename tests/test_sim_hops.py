@@ -11,7 +11,6 @@ from typing import Any
 
 import numpy as np
 import pytest
-from sim_helpers import assert_little, assert_little_raw
 
 from routerd.core import topology
 from routerd.sim import core
@@ -20,6 +19,7 @@ from routerd.sim.policies import QRouting
 from routerd.sim.policy import Policy
 from routerd.sim.run import run
 from routerd.sim.traffic import PoissonTraffic
+from sim_helpers import assert_little, assert_little_raw
 
 needs_hops = pytest.mark.skipif(hops_status("auto")["path"] != "compiled",
                                 reason=hops_status("auto")["reason"])

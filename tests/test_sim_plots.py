@@ -8,7 +8,6 @@ import numpy as np
 import pytest
 
 from routerd.core import topology
-
 from routerd.io import topofiles
 from routerd.sim import plots
 from routerd.sim.run import DEMO_TOPOLOGY, run

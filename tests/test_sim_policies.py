@@ -5,14 +5,13 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from sim_helpers import assert_little
 
-from routerd.io import config
 from routerd.core import topology
-from routerd.io import topofiles
 from routerd.core.errors import InputError
+from routerd.io import config, topofiles
 from routerd.sim import policies
 from routerd.sim.run import DEMO_TOPOLOGY, run
+from sim_helpers import assert_little
 
 
 def mesh() -> dict:

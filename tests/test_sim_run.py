@@ -6,10 +6,10 @@ import pickle
 from concurrent.futures import ProcessPoolExecutor
 
 import pytest
-from sim_helpers import assert_little
 
 from routerd.core.errors import InputError
 from routerd.sim.run import SimSpec, run
+from sim_helpers import assert_little
 
 REQUIRED = ("policy", "offered", "delivered", "dropped", "ttl_expired", "mean_delivery_s",
             "p50_delivery_s", "p95_delivery_s", "p99_delivery_s", "mean_hops", "events", "wall_s")

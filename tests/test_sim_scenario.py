@@ -5,12 +5,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-
-from routerd.io import topofiles
 from routerd.core.errors import InputError
-from routerd.tools.validate import check_file
-from routerd.io import scenario
+from routerd.io import scenario, topofiles
 from routerd.sim.run import DEMO_TOPOLOGY
+from routerd.tools.validate import check_file
 
 
 def sc(**body: object) -> scenario.Scenario:

@@ -10,12 +10,12 @@ from typing import Any
 
 import numpy as np
 import pytest
-from sim_helpers import assert_little
 
 from routerd.core import topology as T
 from routerd.sim import analytic as A
 from routerd.sim import mindelay as M
 from routerd.sim.run import run
+from sim_helpers import assert_little
 
 pytestmark = pytest.mark.slow
 

@@ -23,19 +23,19 @@ from typing import Any
 
 import numpy as np
 import pytest
+
 from conftest import ring_with_chords
+from routerd.agent import client
+from routerd.core import engine as E
+from routerd.core import topology as T
+from routerd.io import config, statedir, wire
+from routerd.io import journal as J
+from routerd.io import topofiles as TF
+from routerd.io.inputs import load_config, load_topology
+from routerd.service import shard
+from routerd.tools.cli import main
 from service_harness import ServiceProc, service_args
 from test_replay import SERVICE_CFG, Writer, rows
-
-from routerd.agent import client
-from routerd.io import config, statedir, wire
-from routerd.service import shard
-from routerd.core import engine as E
-from routerd.io import journal as J
-from routerd.core import topology as T
-from routerd.io import topofiles as TF
-from routerd.tools.cli import main
-from routerd.io.inputs import load_config, load_topology
 
 DEMO = load_topology(config.load(None))
 

@@ -10,8 +10,8 @@ import os
 import numpy as np
 import pytest
 
-from routerd.tools import cli
 from routerd.sim import commands_sweep as sw
+from routerd.tools import cli
 from sim_helpers import FakeTerminal as _Stream
 
 ARGS = ["sweep", "--rates", "300,1500", "--policies", "shortest,mindelay", "--seeds", "2",

@@ -20,9 +20,9 @@ from contextlib import redirect_stdout
 from typing import Any
 
 import pytest
+
 from routerd.sim import commands_sweep as sw
 from routerd.sim import executors as ex
-
 from routerd.tools import cli
 
 TOPO = """\

@@ -20,8 +20,8 @@ import topohub
 import yaml
 
 from routerd.core import topology as T
-from routerd.io import topofiles as TF
 from routerd.core.errors import TopologyError
+from routerd.io import topofiles as TF
 
 DEF = T.LinkDefaults(1e9, 100)
 NAMED = ["sndlib/abilene", "sndlib/geant", "gabriel/50/0"]

@@ -13,8 +13,8 @@ import networkx as nx
 import pytest
 import yaml
 
-from routerd.tools import cli
 from routerd.io import config
+from routerd.tools import cli
 
 GOOD_TOPO = {"topology": {
     "name": "bench-lab", "defaults": {"capacity_bps": 1.0e7, "buffer_pkts": 20},

@@ -22,16 +22,16 @@ import numpy as np
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
-from test_engine import HYP, _forwarding_graphs, _random_q, line, row_lists, slot
 
-from routerd.io import config
 from routerd.core import loops
 from routerd.core import topology as T
 from routerd.core import variants as V
 from routerd.core.engine import Engine, EngineSettings, HopBatch, settings_with
 from routerd.core.errors import ConfigError
+from routerd.io import config
 from routerd.sim.policies import QRouting
 from routerd.sim.run import run
+from test_engine import HYP, _forwarding_graphs, _random_q, line, row_lists, slot
 
 VARIANTS = ("full_echo", "predictive", "dual", "confidence")
 

@@ -14,8 +14,7 @@ from hypothesis import strategies as st
 
 from routerd.core import engine as E
 from routerd.core import topology
-from routerd.io import topofiles
-from routerd.io import wire
+from routerd.io import topofiles, wire
 
 DEMO = "routerd/data/demo-lab.yaml"
 

@@ -97,12 +97,13 @@ from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Any
 
-from . import overlay as ov
-from routerd.io.clock import SYSTEM, Clock
 from routerd.core.errors import InputError, Problem
 from routerd.io import inputs as _inputs
+from routerd.io.clock import SYSTEM, Clock
 from routerd.io.files import read_yaml
 from routerd.io.values import address_problem, parse_address
+
+from . import overlay as ov
 
 #: Why a packet is dropped by the agent (a fixed set: a metrics label uses it).
 DROP_REASONS = ("no_route", "send_error", "hold_full", "not_data")

@@ -38,6 +38,7 @@ import numpy as np
 
 from .errors import Problem, TopologyError
 
+
 @dataclass(frozen=True, slots=True)
 class LinkSpec:
     """One directed link as read from a file, before it is checked."""

@@ -111,8 +111,9 @@ import numpy as np
 
 from routerd.core import kernels as _kernels
 from routerd.core.engine import Decision, Engine, EngineSettings, HopBatch, ObserveResult
-from .fsmode import open_private, private_dir
 from routerd.core.topology import Topology
+
+from .fsmode import open_private, private_dir
 
 KINDS: tuple[str, ...] = ("start", "batch", "link", "tick", "config", "snapshot", "guide")
 FSYNC_POLICIES: tuple[str, ...] = ("batch", "interval", "never")

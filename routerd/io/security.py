@@ -57,8 +57,8 @@ from typing import Any
 import numpy as np
 
 from routerd.core.errors import InputError, Problem
-from routerd.io.files import parse_yaml
 from routerd.core.topology import Topology
+from routerd.io.files import parse_yaml
 
 #: Control operations that change state: need a key with ``control: true``.
 STATE_OPS: tuple[str, ...] = ("link", "snapshot", "reload")

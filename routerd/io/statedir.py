@@ -23,15 +23,15 @@ from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from typing import Any
 
-from . import config as _config
 from routerd.core import topology as _topology
-from .config import Config
 from routerd.core.errors import InputError, Problem
-from . import topofiles as _topofiles
-from .files import Dumper, read_yaml
-from .fsmode import open_private, private_dir
 from routerd.core.topology import Topology
 
+from . import config as _config
+from . import topofiles as _topofiles
+from .config import Config
+from .files import Dumper, read_yaml
+from .fsmode import open_private, private_dir
 
 # ---- lock ---------------------------------------------------------------------------------
 # (one writer per state directory: service, replay into a directory, shard workers)

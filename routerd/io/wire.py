@@ -79,11 +79,11 @@ from typing import Any
 import msgpack
 import numpy as np
 
+from routerd.core import kernels as _kernels
 from routerd.core.engine import REJECT_REASONS as _ENGINE_REASONS
 from routerd.core.engine import HopBatch
 from routerd.core.guards import row_numbers
 from routerd.core.topology import Topology
-from routerd.core import kernels as _kernels
 
 VERSION = 1
 

@@ -116,30 +116,30 @@ from collections.abc import Iterable, Mapping
 from dataclasses import asdict
 from typing import Any
 
-
 from routerd import __version__
-from routerd.io import wire
-from routerd.io import config as _config
 from routerd.core import guards as _guards
 from routerd.core import kernels as _kernels
-from routerd.io import journal as _journal
-from routerd.io.logs import EventLog
-from routerd.io.metricsaddr import page_url
-from . import listeners as _listeners
-from routerd.io import security as _security
-from routerd.io import statedir as _statedir
 from routerd.core import topology as _topology
-from routerd.io.inputs import load_config, load_topology
-from routerd.io.values import endpoint_problem
-from . import dedup as _dedup
-from . import pipeline as _pipeline
-from . import optimum as _optimum
-from routerd.io import clock as _clock
-from routerd.io.cautions import CAUTIONS
-from .dedup import Dedup
 from routerd.core.engine import Engine, EngineSettings
 from routerd.core.errors import InputError, Problem
+from routerd.io import clock as _clock
+from routerd.io import config as _config
+from routerd.io import journal as _journal
+from routerd.io import security as _security
+from routerd.io import statedir as _statedir
+from routerd.io import wire
+from routerd.io.cautions import CAUTIONS
+from routerd.io.inputs import load_config, load_topology
 from routerd.io.journal import engine_state as _engine_state
+from routerd.io.logs import EventLog
+from routerd.io.metricsaddr import page_url
+from routerd.io.values import endpoint_problem
+
+from . import dedup as _dedup
+from . import listeners as _listeners
+from . import optimum as _optimum
+from . import pipeline as _pipeline
+from .dedup import Dedup
 
 # the ingest pipeline's reason sets and helpers, where callers have always found them
 SERVICE_REASONS = _pipeline.SERVICE_REASONS
@@ -492,8 +492,9 @@ class Service:
     def start(self) -> None:
         import zmq
 
-        from . import metrics as _metrics
         from routerd.io.fsmode import private_dir
+
+        from . import metrics as _metrics
 
         cfg = self.cfg
         if cfg["engine.kernels"] == "compiled" and not _kernels.available():

@@ -95,9 +95,9 @@ import numpy as np
 
 from routerd.core import flowdev as _fd
 from routerd.core import kernels as _kernels
-from routerd.io import journal as _journal
 from routerd.core.splitting import service_time
 from routerd.core.topology import Topology
+from routerd.io import journal as _journal
 
 __all__ = ["REASONS", "REST_FACTOR", "Meter", "Optimum", "Rates", "compute", "estimate", "inputs_for",
            "next_start"]

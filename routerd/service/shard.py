@@ -121,6 +121,7 @@ from routerd.io import wire
 from routerd.io.childproc import die_with_parent, ready_line
 from routerd.io.clock import SYSTEM, Clock
 from routerd.io.metricsaddr import page_url, parse_address
+
 # the map, the shard dirs and the table merge live below this module (``routerd replay``
 # reads sharded state dirs with them too); re-exported here for the service's callers
 from routerd.io.shards import (  # noqa: F401 - re-exported
@@ -535,6 +536,7 @@ class Front:
         import zmq
 
         from routerd.io.fsmode import private_dir
+
         from .daemon import OVERSIZE_ANSWER_SLACK, StartError, bind_endpoint
 
         cfg = self.cfg

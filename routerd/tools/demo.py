@@ -38,8 +38,8 @@ from collections.abc import Mapping, Sequence
 from importlib import resources
 from typing import Any
 
-from routerd.io.cautions import CAUTIONS
 from routerd.core.errors import InputError
+from routerd.io.cautions import CAUTIONS
 
 #: the demo's base rate: the scenario's load factors multiply it (1000-byte packets)
 BASE_RATE_PPS = 1300.0
@@ -819,9 +819,8 @@ class Demo:
         """delivery.png: mean and p99 delivery time per second (log ms), lost share per second."""
         import numpy as np
 
-        from routerd.sim.plots import LOSS_MARK, lost_share
-
         from routerd.sim import plotstyle as ps
+        from routerd.sim.plots import LOSS_MARK, lost_share
 
         plt = ps.pyplot()
         fig, (ax, axp, ax2) = ps.time_figure(plt, 3, 8.5, (2.4, 2.0, 1.3))

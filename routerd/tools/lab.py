@@ -51,10 +51,10 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from routerd.agent import overlay as ov
+from routerd.core.errors import InputError, Problem
 from routerd.io.childproc import parse_ready
 from routerd.io.clock import SYSTEM, Clock
 from routerd.io.progress import StatusLine
-from routerd.core.errors import InputError, Problem
 
 PREFIX = "rdlab"
 _NS_RE = re.compile(rf"^{PREFIX}(\d+)-(\d+)$")
@@ -1032,9 +1032,8 @@ def _run(args: argparse.Namespace, topo: Any, topo_path: str, events: list[Event
          scen: Any = None) -> int:
     import numpy as np
 
-    from routerd.sim.traffic import PoissonTraffic
-
     from routerd.io import config as _config
+    from routerd.sim.traffic import PoissonTraffic
 
     # namespaces first: a dead lab's agents run in them and keep writing their status files
     # into its run directory, which remove_orphans is about to delete

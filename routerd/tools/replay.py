@@ -65,16 +65,16 @@ from typing import Any
 
 import numpy as np
 
+from routerd.core import splitting as _splitting
+from routerd.core import topology as _topology
+from routerd.core import variants as _variants
+from routerd.core.engine import Decision, Engine, EngineSettings
+from routerd.core.errors import InputError, Problem
 from routerd.io import config as _config
 from routerd.io import journal as J
 from routerd.io import shards as _shards
 from routerd.io import statedir as _statedir
-from routerd.core import splitting as _splitting
-from routerd.core import topology as _topology
-from routerd.core import variants as _variants
 from routerd.io import wire
-from routerd.core.engine import Decision, Engine, EngineSettings
-from routerd.core.errors import InputError, Problem
 
 #: config key → EngineSettings field (the inverse of EngineSettings.from_config; a test
 #: checks the two agree)
@@ -510,7 +510,10 @@ def _load_config_and_topology(args: argparse.Namespace, src: Source, *, recorded
     given (a what-if), and the whole choice (with ``recorded_config``, the recorded config
     is read too: a sharded dir's ``shard.map``; replay itself takes the engine settings
     from the records)."""
-    from routerd.io.inputs import load_config, load_topology  # the one input rule (routerd.io.inputs)
+    from routerd.io.inputs import (  # the one input rule (routerd.io.inputs)
+        load_config,
+        load_topology,
+    )
 
     ns = argparse.Namespace(config=args.config, topology=args.topology)
     where = src.state_dir or src.journal_dir
