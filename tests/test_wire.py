@@ -215,6 +215,9 @@ def test_columnar_decoding_does_not_loop_over_rows(topo: topology.Topology) -> N
             sys.setprofile(None)
         assert isinstance(ing, wire.Ingest) and len(ing.hops) == m
         return n
+    # the first decode on a topology builds its cached name and link indexes (a few calls,
+    # once per topology, not per row): counted before the comparison, not in it
+    calls(10)
     assert calls(10) == calls(200_000)
 
 
