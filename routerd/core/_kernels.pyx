@@ -1579,3 +1579,89 @@ cdef object _b_full_s(Bound b, count_t[:, :, ::1] N, const slot_t[:, ::1] so,
                    b.stable, b.td, N, b.visits, b.keepf, b.ceil, b.td_ref, b.emin, b.espan,
                    b.eps_max, b.visits_half, b.s_choice, b.s_hy, b.s_vx, b.s_pot, b.s_nhT,
                    b.s_prevT, b.s_potT, b.deg, b.s_changed, cs)
+
+
+# ==== topology: least-weight paths ==============================================================
+# routerd.core.topology._to_targets_reference, compiled: one Dijkstra per target over reversed
+# links, with the same pop order (a binary heap of (distance, node) pairs compared like
+# Python's tuples; every pair pushed is distinct, since a node is pushed again only at a
+# strictly smaller distance, so any correct heap pops the same sequence), the same
+# relaxation order (each node's in-links in link order) and the same IEEE additions: the
+# same distances and next hops to the bit (tests/test_topology.py).
+
+cdef inline bint _hless(double da, int64_t va, double db, int64_t vb) noexcept nogil:
+    return da < db or (da == db and va < vb)
+
+
+def to_targets(const int64_t[::1] ptr, const int64_t[::1] frm, const double[::1] wt,
+               const int64_t[::1] targets, double[:, ::1] D, int32_t[:, ::1] NH):
+    """Columns ``D[:, k]``, ``NH[:, k]`` for each target ``targets[k]``: least weight to it
+    and the next hop on such a path (-1: the target itself, or unreachable).  The reversed
+    links in CSR form: node b's in-links are ``frm[ptr[b]:ptr[b + 1]]`` (their tails, in
+    link order) with weights ``wt`` (only finite ones are given).  D and NH come filled
+    with inf and -1."""
+    cdef Py_ssize_t n = ptr.shape[0] - 1, nt = targets.shape[0], m = frm.shape[0]
+    cdef Py_ssize_t k, i, hn, j, ch, cap = m + 2
+    cdef int64_t t, u, v, hv
+    cdef double du, nd, hd
+    cdef double* dist = <double*> malloc(n * sizeof(double))
+    cdef int64_t* via = <int64_t*> malloc(n * sizeof(int64_t))
+    cdef double* hk = <double*> malloc(cap * sizeof(double))
+    cdef int64_t* hx = <int64_t*> malloc(cap * sizeof(int64_t))
+    if not (dist and via and hk and hx):
+        free(dist); free(via); free(hk); free(hx)
+        raise MemoryError()
+    with nogil:
+        for k in range(nt):
+            t = targets[k]
+            for i in range(n):
+                dist[i] = INFINITY
+                via[i] = -1
+            dist[t] = 0.0
+            hk[0] = 0.0
+            hx[0] = t
+            hn = 1
+            while hn > 0:
+                du = hk[0]
+                u = hx[0]
+                hn -= 1                      # pop: the last entry sifts down from the root
+                if hn > 0:
+                    hd = hk[hn]
+                    hv = hx[hn]
+                    j = 0
+                    while True:
+                        ch = 2 * j + 1
+                        if ch >= hn:
+                            break
+                        if ch + 1 < hn and _hless(hk[ch + 1], hx[ch + 1], hk[ch], hx[ch]):
+                            ch += 1
+                        if not _hless(hk[ch], hx[ch], hd, hv):
+                            break
+                        hk[j] = hk[ch]
+                        hx[j] = hx[ch]
+                        j = ch
+                    hk[j] = hd
+                    hx[j] = hv
+                if du > dist[u]:
+                    continue
+                for i in range(ptr[u], ptr[u + 1]):
+                    v = frm[i]
+                    nd = du + wt[i]
+                    if nd < dist[v]:
+                        dist[v] = nd
+                        via[v] = u
+                        j = hn               # push: sift up
+                        hn += 1
+                        while j > 0:
+                            ch = (j - 1) // 2
+                            if not _hless(nd, v, hk[ch], hx[ch]):
+                                break
+                            hk[j] = hk[ch]
+                            hx[j] = hx[ch]
+                            j = ch
+                        hk[j] = nd
+                        hx[j] = v
+            for i in range(n):
+                D[i, k] = dist[i]
+                NH[i, k] = <int32_t> via[i]
+    free(dist); free(via); free(hk); free(hx)

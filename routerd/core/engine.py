@@ -466,17 +466,22 @@ class Engine:
         n, k, nd = self.n, self.k, self.nd
         s = self.settings
         ys = np.maximum(self._slots, 0)
-        own = None if not self.partial else self.owned[None, :]
         q = np.empty((n, nd, k))  # C order: the update paths index flat views of Q
-        for c in range(k):  # one slot column at a time: no (n, K, n) temporary
+        # in blocks of nodes (about 4 MB of Q each), built slot-major and written back in
+        # Q's order once: no (n, n) temporaries per slot, no strided pass per slot
+        step = max(1, (1 << 19) // max(1, nd * k))
+        for x0 in range(0, n, step):
+            x1 = min(n, x0 + step)
             if s.initial_mode == "shortest":
                 # Q[x, d, j] = delay(x, y_j) + D(y_j, d)
-                dist = (self._static_dist[ys[:, c]] if own is None
-                        else self._static_dist[ys[:, c][:, None], own])
-                col = self._link_delay[:, c, None] + dist
+                dist = self._static_dist[ys[x0:x1]]                  # (b, k, n)
+                if self.partial:
+                    dist = dist[:, :, self.owned]
+                col = self._link_delay[x0:x1, :, None] + dist
             else:
-                col = np.full((n, nd), s.initial_value_s)
-            q[:, :, c] = np.where(self._present[:, c, None], np.minimum(col, s.ceiling_s), np.inf)
+                col = np.full((x1 - x0, k, nd), s.initial_value_s)
+            col = np.where(self._present[x0:x1, :, None], np.minimum(col, s.ceiling_s), np.inf)
+            q[x0:x1] = col.transpose(0, 2, 1)
         return q
 
     def reconfigure(self, settings: EngineSettings) -> None:
@@ -709,7 +714,7 @@ class Engine:
                     Nf[k] = nn if nn <= cap else cap  # noqa: FURB136
                     delta = target - old
                     new = old + (tab[nn] if nn < lim else self._step_beyond(nn)) * delta
-                    Qf[k] = ceil if new > ceil else (0.0 if new < 0.0 else new)
+                    Qf[k] = ceil if new > ceil else (max(new, 0.0))
                     tdf[w] = keep * tdf.item(w) + sm * abs(delta)
                     kdirty[w] = True
                     kcols[dc] = True
@@ -849,7 +854,7 @@ class Engine:
             Nf[k] = nn if nn <= cap else cap  # noqa: FURB136  (saturates; no call per row)
             delta = target - old
             new = old + (tab[nn] if nn < lim else self._step_beyond(nn)) * delta
-            Qf[k] = ceil if new > ceil else (0.0 if new < 0.0 else new)
+            Qf[k] = ceil if new > ceil else (max(new, 0.0))
             tdf[w] = keep * tdf.item(w) + sm * abs(delta)
             tde[i] = delta
 

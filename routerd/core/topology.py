@@ -309,7 +309,40 @@ def _all_pairs(n: int, src: np.ndarray, dst: np.ndarray,
 
 def _to_targets(n: int, src: np.ndarray, dst: np.ndarray, w: np.ndarray,
                 targets: Any) -> tuple[np.ndarray, np.ndarray]:
-    """Least weights and next hops towards each of ``targets``: (n, k) columns."""
+    """Least weights and next hops towards each of ``targets``: (n, k) columns.
+
+    On the compiled kernel (``routerd.core._kernels.to_targets``) when the install has it,
+    else :func:`_to_targets_reference`; both give the same arrays to the bit
+    (tests/test_topology.py).  All pairs at 1,000 nodes: about 3 s in Python, the most of
+    an engine's construction."""
+    comp = _compiled_paths()
+    if comp is None:
+        return _to_targets_reference(n, src, dst, w, targets)
+    tg = np.asarray(list(targets) if not isinstance(targets, np.ndarray) else targets,
+                    dtype=np.int64).reshape(-1)
+    w = np.asarray(w, dtype=float)
+    ok = w < math.inf                       # as the reference: only finite weights are links
+    b = np.asarray(dst, dtype=np.int64)[ok]
+    order = np.argsort(b, kind="stable")    # in-links of each node, in link order
+    ptr = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(np.bincount(b, minlength=n), out=ptr[1:])
+    frm = np.ascontiguousarray(np.asarray(src, dtype=np.int64)[ok][order])
+    wt = np.ascontiguousarray(w[ok][order])
+    D = np.full((n, tg.size), np.inf)
+    NH = np.full((n, tg.size), -1, dtype=np.int32)
+    comp.to_targets(ptr, frm, wt, tg, D, NH)
+    return D, NH
+
+
+def _compiled_paths() -> Any:
+    """The compiled module when this install has it, else None (the reference runs)."""
+    from . import kernels  # imports numpy and the extension only
+    return kernels.select("auto")
+
+
+def _to_targets_reference(n: int, src: np.ndarray, dst: np.ndarray, w: np.ndarray,
+                          targets: Any) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_to_targets` in Python (heapq): the reference."""
     rev: list[list[tuple[int, float]]] = [[] for _ in range(n)]
     for a, b, c in zip(src.tolist(), dst.tolist(), w.tolist()):
         if c < math.inf:
