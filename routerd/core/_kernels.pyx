@@ -1593,6 +1593,33 @@ cdef inline bint _hless(double da, int64_t va, double db, int64_t vb) noexcept n
     return da < db or (da == db and va < vb)
 
 
+cdef inline void _hput(double* hk, int64_t* hx, Py_ssize_t j, Py_ssize_t hn, double kd,
+                       int64_t kv, bint up) noexcept nogil:
+    """Place (kd, kv) in the binary heap (hk, hx) of hn entries from hole j: up toward the
+    root (a push) or down toward the leaves (the last entry refilling the root, a pop)."""
+    cdef Py_ssize_t c
+    while True:
+        if up:
+            if j == 0:
+                break
+            c = (j - 1) // 2
+            if not _hless(kd, kv, hk[c], hx[c]):
+                break
+        else:
+            c = 2 * j + 1
+            if c >= hn:
+                break
+            if c + 1 < hn and _hless(hk[c + 1], hx[c + 1], hk[c], hx[c]):
+                c += 1
+            if not _hless(hk[c], hx[c], kd, kv):
+                break
+        hk[j] = hk[c]
+        hx[j] = hx[c]
+        j = c
+    hk[j] = kd
+    hx[j] = kv
+
+
 def to_targets(const int64_t[::1] ptr, const int64_t[::1] frm, const double[::1] wt,
                const int64_t[::1] targets, double[:, ::1] D, int32_t[:, ::1] NH):
     """Columns ``D[:, k]``, ``NH[:, k]`` for each target ``targets[k]``: least weight to it
@@ -1601,9 +1628,9 @@ def to_targets(const int64_t[::1] ptr, const int64_t[::1] frm, const double[::1]
     link order) with weights ``wt`` (only finite ones are given).  D and NH come filled
     with inf and -1."""
     cdef Py_ssize_t n = ptr.shape[0] - 1, nt = targets.shape[0], m = frm.shape[0]
-    cdef Py_ssize_t k, i, hn, j, ch, cap = m + 2
-    cdef int64_t t, u, v, hv
-    cdef double du, nd, hd
+    cdef Py_ssize_t k, i, hn, cap = m + 2
+    cdef int64_t t, u, v
+    cdef double du, nd
     cdef double* dist = <double*> malloc(n * sizeof(double))
     cdef int64_t* via = <int64_t*> malloc(n * sizeof(int64_t))
     cdef double* hk = <double*> malloc(cap * sizeof(double))
@@ -1624,24 +1651,9 @@ def to_targets(const int64_t[::1] ptr, const int64_t[::1] frm, const double[::1]
             while hn > 0:
                 du = hk[0]
                 u = hx[0]
-                hn -= 1                      # pop: the last entry sifts down from the root
+                hn -= 1                      # pop: the last entry refills the root
                 if hn > 0:
-                    hd = hk[hn]
-                    hv = hx[hn]
-                    j = 0
-                    while True:
-                        ch = 2 * j + 1
-                        if ch >= hn:
-                            break
-                        if ch + 1 < hn and _hless(hk[ch + 1], hx[ch + 1], hk[ch], hx[ch]):
-                            ch += 1
-                        if not _hless(hk[ch], hx[ch], hd, hv):
-                            break
-                        hk[j] = hk[ch]
-                        hx[j] = hx[ch]
-                        j = ch
-                    hk[j] = hd
-                    hx[j] = hv
+                    _hput(hk, hx, 0, hn, hk[hn], hx[hn], False)
                 if du > dist[u]:
                     continue
                 for i in range(ptr[u], ptr[u + 1]):
@@ -1650,17 +1662,8 @@ def to_targets(const int64_t[::1] ptr, const int64_t[::1] frm, const double[::1]
                     if nd < dist[v]:
                         dist[v] = nd
                         via[v] = u
-                        j = hn               # push: sift up
+                        _hput(hk, hx, hn, hn + 1, nd, v, True)    # push
                         hn += 1
-                        while j > 0:
-                            ch = (j - 1) // 2
-                            if not _hless(nd, v, hk[ch], hx[ch]):
-                                break
-                            hk[j] = hk[ch]
-                            hx[j] = hx[ch]
-                            j = ch
-                        hk[j] = nd
-                        hx[j] = v
             for i in range(n):
                 D[i, k] = dist[i]
                 NH[i, k] = <int32_t> via[i]
