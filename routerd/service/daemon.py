@@ -1209,15 +1209,9 @@ class Service:
 
     def _drain_frames(self, zmq: Any, sock: Any, name: str, acks: list[Any] | None,
                       routed: bool, curve: bool, end: float) -> None:
-        pending = self._pending
         for _ in range(self.cfg["service.max_drain"]):
             if time.perf_counter() >= end:
                 return
-            if pending and pending[0][0] <= self._durable():
-                # answers of earlier turns whose fsync the writer thread finished meanwhile
-                # go out now, not after this slice and the housekeeping (their reporters
-                # send the next batches sooner); this turn's answers are not among them
-                self._release(zmq)
             try:
                 parts, peer = self._recv(zmq, sock, curve)
             except zmq.Again:
