@@ -221,17 +221,18 @@ cdef void _depths(const int32_t* nh, int64_t d, int64_t* dep, int64_t* path,
             dep[x] = n + 1
 
 
-cdef int _jump(const int32_t* nh, int64_t d, int64_t* dep, int32_t* p, int32_t* s,
-               Py_ssize_t n) noexcept nogil:
+cdef int _jump(const int32_t* nh, int64_t d, int64_t* pt, Py_ssize_t stride, int32_t* p,
+               int32_t* s, Py_ssize_t n) noexcept nogil:
     """:func:`_cycles` and :func:`_depths` in one pass for the common table without a
     loop, by pointer jumping (the sweeps have no branch that depends on the data): p[x] is
     a node ahead of x on its path and s[x] the hops to it; each sweep sets p[x] = p[p[x]]
     (in place: a sweep goes at least as far as a doubling) until none moves.  Roots (d,
     and the nodes whose next hop is -1) point at themselves with s = 0.  A fixed point
-    that is not a root lies on a loop: returns 1 (dep unusable; the caller runs the
+    that is not a root lies on a loop: returns 1 (pt unusable; the caller runs the
     ladder, which finds the loop again).  Without a loop every path ends at a root within
-    n hops, so ceil(log2 n) + 2 sweeps settle (else: a loop, 1).  Returns 0 with dep[x] =
-    s[x] for the nodes that reach d, n + 1 for the others: :func:`_depths`' values."""
+    n hops, so ceil(log2 n) + 2 sweeps settle (else: a loop, 1).  Returns 0 with the
+    potentials pt[x * stride] = dep[x] * n + x, dep[x] = s[x] for the nodes that reach d
+    and n + 1 for the others: :func:`_depths`' values."""
     cdef Py_ssize_t x, r, lim = 2
     cdef int32_t y, z, moved
     while (<Py_ssize_t> 1 << (lim - 2)) < n:
@@ -260,7 +261,7 @@ cdef int _jump(const int32_t* nh, int64_t d, int64_t* dep, int32_t* p, int32_t* 
         y = p[x]
         if y != d and nh[y] >= 0:
             return 1
-        dep[x] = s[x] if y == d else n + 1
+        pt[x * stride] = (<int64_t> s[x] if y == d else n + 1) * n + x
     return 0
 
 
@@ -315,8 +316,10 @@ cdef object _decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const
     each read and written once, in order, and only Q is a large read (as in values()).
     Phase 1 (node-major) writes each destination's next-hop row (nhT: (B, n)); phase 2
     checks it once per destination (:func:`_jump`: loop check and depths together), and
-    only a table with a loop runs the fallback ladder (its choices in ``choice``; the
-    others keep phase 1's, ``hy``); it writes the potentials node-major (pot) for phase 3.
+    only a table with a loop runs the fallback ladder (:func:`_cycles` finds the loop's
+    nodes, :func:`_jump` checks again after each round; its choices in ``choice``, the
+    other tables keep phase 1's, ``hy``); it writes the potentials node-major (pot) for
+    phase 3.
     The rows of the next node are prefetched while a node is done (phases 1 and 3: the
     state is read in short runs, a block's columns, that the hardware does not foresee).
     deg[x] is x's number of present slots: they are a prefix of its slot row
@@ -414,10 +417,8 @@ cdef object _decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const
                 d = ds[i0 + ii]
                 dc = cs[i0 + ii]
                 nh = &nhT[ii, 0]
-                if not _jump(nh, d, dep, jp, js, n):
+                if not _jump(nh, d, &pot[0, ii], pot.shape[1], jp, js, n):
                     looped[ii] = 0          # every choice as phase 1 made it: stable
-                    for x in range(n):
-                        pot[x, ii] = dep[x] * n + x
                     stable[dc] = True
                     continue
                 looped[ii] = 1
@@ -425,7 +426,15 @@ cdef object _decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const
                     level[x] = 0
                     c1[x] = 0
                 for it in range(2 * n + 3):
-                    if not _cycles(nh, cyc, col, path, n):
+                    # after a round of the ladder, _jump checks the table again and, when
+                    # the loops are gone, writes its potentials (the same verdict as
+                    # _cycles, and _depths' values); with a loop, _cycles finds its nodes
+                    if it > 0 and not _jump(nh, d, &pot[0, ii], pot.shape[1], jp, js, n):
+                        break
+                    if not _cycles(nh, cyc, col, path, n):  # (not after _jump's verdict)
+                        _depths(nh, d, dep, path, n)
+                        for x in range(n):
+                            pot[x, ii] = dep[x] * n + x
                         break
                     if it == 0:
                         for x in range(n):
@@ -448,7 +457,6 @@ cdef object _decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const
                 else:
                     failed = True
                     break
-                _depths(nh, d, dep, path, n)
                 unstable = False
                 for x in range(n):
                     ch = hy[x, ii]
@@ -457,7 +465,6 @@ cdef object _decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const
                         if ch != hy[x, ii] and not c1[x]:
                             unstable = True
                     choice[x, ii] = <int32_t> ch
-                    pot[x, ii] = dep[x] * n + x
                 stable[dc] = not unstable
             if failed:
                 break

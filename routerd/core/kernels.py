@@ -36,7 +36,7 @@ from typing import Any
 import numpy as np
 
 MODES = ("auto", "compiled", "reference")
-# destinations per block of the compiled decide (its scratch: about 32 * n * B bytes)
+# destinations per block of the compiled decide (its scratch: about 28 * n * B bytes)
 DECIDE_BLOCK = 32
 
 try:  # the extension is optional: an install without a C compiler has only the reference
