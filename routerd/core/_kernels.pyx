@@ -14,11 +14,14 @@ cdef extern from *:
     """
     #if defined(__GNUC__) || defined(__clang__)
     #define RD_PREFETCH(p) __builtin_prefetch((const void *)(p), 1, 3)
+    #define RD_PREFETCH_R(p) __builtin_prefetch((const void *)(p), 0, 3)
     #else
     #define RD_PREFETCH(p) ((void)0)
+    #define RD_PREFETCH_R(p) ((void)0)
     #endif
     """
     void RD_PREFETCH(const void* p) noexcept nogil
+    void RD_PREFETCH_R(const void* p) noexcept nogil
 
 # the engine's update counts N: the narrow saturating types of engine.COUNT_TYPES
 ctypedef fused count_t:
@@ -149,7 +152,7 @@ def observe(double[:, :, ::1] Q, count_t[:, :, ::1] N, int64_t cap, double[:, ::
                     xs, ys, ds, lats, ests, code, tde, kdirty, kcols, dcol)
 
 
-cdef int _cycles(const int64_t* nh, uint8_t* cyc, uint8_t* col, int64_t* path,
+cdef int _cycles(const int32_t* nh, uint8_t* cyc, uint8_t* col, int64_t* path,
                  Py_ssize_t n) noexcept nogil:
     """cyc[x] = x lies on a loop of the functional graph nh (-1: terminal).  Returns
     whether any loop exists.  O(n): each node is walked once."""
@@ -182,7 +185,7 @@ cdef int _cycles(const int64_t* nh, uint8_t* cyc, uint8_t* col, int64_t* path,
     return found
 
 
-cdef void _depths(const int64_t* nh, int64_t d, int64_t* dep, int64_t* path,
+cdef void _depths(const int32_t* nh, int64_t d, int64_t* dep, int64_t* path,
                   Py_ssize_t n) noexcept nogil:
     """Hops from each node to d along nh (loop-free), n + 1 where the path ends elsewhere
     (routerd.core.loops.depths for one table)."""
@@ -218,6 +221,58 @@ cdef void _depths(const int64_t* nh, int64_t d, int64_t* dep, int64_t* path,
             dep[x] = n + 1
 
 
+cdef int _jump(const int32_t* nh, int64_t d, int64_t* pt, Py_ssize_t stride, int32_t* p,
+               int32_t* s, Py_ssize_t n) noexcept nogil:
+    """:func:`_cycles` and :func:`_depths` in one pass for the common table without a
+    loop, by pointer jumping (the sweeps have no branch that depends on the data): p[x] is
+    a node ahead of x on its path and s[x] the hops to it; each sweep sets p[x] = p[p[x]]
+    (in place: a sweep goes at least as far as a doubling) until none moves.  Roots (d,
+    and the nodes whose next hop is -1) point at themselves with s = 0.  A fixed point
+    that is not a root lies on a loop: returns 1 (pt unusable; the caller runs the
+    ladder, which finds the loop again).  Without a loop every path ends at a root within
+    n hops, so ceil(log2 n) + 2 sweeps settle (else: a loop, 1).  Returns 0 with the
+    potentials pt[x * stride] = dep[x] * n + x, dep[x] = s[x] for the nodes that reach d
+    and n + 1 for the others: :func:`_depths`' values."""
+    cdef Py_ssize_t x, r, lim = 2
+    cdef int32_t y, z, moved
+    while (<Py_ssize_t> 1 << (lim - 2)) < n:
+        lim += 1
+    for x in range(n):
+        y = nh[x]
+        if y < 0 or x == d:
+            p[x] = <int32_t> x
+            s[x] = 0
+        else:
+            p[x] = y
+            s[x] = 1
+    for r in range(lim):
+        moved = 0
+        for x in range(n):
+            y = p[x]
+            z = p[y]
+            moved |= z ^ y
+            s[x] += s[y]
+            p[x] = z
+        if not moved:
+            break
+    else:
+        return 1
+    for x in range(n):
+        y = p[x]
+        if y != d and nh[y] >= 0:
+            return 1
+        pt[x * stride] = (<int64_t> s[x] if y == d else n + 1) * n + x
+    return 0
+
+
+cdef inline void _prefetch(const void* a, Py_ssize_t nbytes) noexcept nogil:
+    """Fetch into cache the lines of nbytes from a (a hint: changes no value)."""
+    cdef const char* p = <const char*> a
+    cdef Py_ssize_t i
+    for i in range(0, nbytes + 63, 64):
+        RD_PREFETCH_R(p + i)
+
+
 cdef inline double _share(bint visits, double v, double tdv, int64_t tot, bint anyalt,
                           double ceil, double td_ref, double emin, double espan,
                           double eps_max, double visits_half) noexcept nogil:
@@ -225,6 +280,8 @@ cdef inline double _share(bint visits, double v, double tdv, int64_t tot, bint a
     lane alike: by TD error over the greedy value v (``visits`` off) or by the key's
     update count tot; 0 without an alternative next hop."""
     cdef double vv, r, fr, e
+    if not anyalt:
+        return 0.0
     if not visits:
         vv = v if isfinite(v) else ceil
         if not (vv >= 1e-12):
@@ -236,8 +293,6 @@ cdef inline double _share(bint visits, double v, double tdv, int64_t tot, bint a
     e = emin + espan * fr
     if not (e < eps_max):
         e = eps_max
-    if not anyalt:
-        e = 0.0
     return e
 
 
@@ -248,82 +303,138 @@ cdef object _decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const
            const double[:, ::1] td, const count_t[:, :, ::1] N, bint visits,
            double keepf, double ceil, double td_ref, double emin, double espan,
            double eps_max, double visits_half,
-           int64_t[:, ::1] choice, int64_t[:, ::1] hy, double[:, ::1] vx,
-           int64_t[:, ::1] pot, int64_t[:, ::1] nhT, int64_t[:, ::1] prevT,
-           int64_t[:, ::1] potT, const int64_t[::1] deg, uint8_t[::1] changed,
-           const int64_t[::1] cs):
+           int32_t[:, ::1] choice, int32_t[:, ::1] hy, double[:, ::1] vx,
+           int64_t[:, ::1] pot, int32_t[:, ::1] nhT, const int64_t[::1] deg,
+           uint8_t[::1] changed, const int64_t[::1] cs):
     """Engine._decide_full for destinations ds, whose columns (in q, greedy, eps, alt,
-    forced, hyst_st, stable, td, N) are cs: node indices (x == d, spt, depths) use ds.  Returns (route changes, loops newly
-    prevented); prevented is -1 if the fallback ladder failed to converge (a bug).
+    forced, hyst_st, stable, td, N) are cs: node indices (x == d, spt, depths) use ds.
+    Returns (route changes, loops newly prevented); prevented is -1 if the fallback
+    ladder failed to converge (a bug).
 
-    Destinations go in blocks of B (the scratch arrays' width, choice: (n, B)): per block
+    Destinations go in blocks of B (the scratch arrays' width, hy: (n, B)): per block
     the three phases below run on scratch that stays in cache, so the state arrays are
     each read and written once, in order, and only Q is a large read (as in values()).
-    Phase 2 works on per-destination rows (nhT, prevT, potT: (B, n)), written and read
-    back node-major by phases 1 and 3.  deg[x] is x's number of present slots: they are a
-    prefix of its slot row (topology.slots), and absent slots are never live, never
-    chosen and never candidates, so the slot loops stop there.
+    Phase 1 (node-major) writes each destination's next-hop row (nhT: (B, n)); phase 2
+    checks it once per destination (:func:`_jump`: loop check and depths together), and
+    only a table with a loop runs the fallback ladder (:func:`_cycles` finds the loop's
+    nodes, :func:`_jump` checks again after each round; its choices in ``choice``, the
+    other tables keep phase 1's, ``hy``); it writes the potentials node-major (pot) for
+    phase 3.
+    The rows of the next node are prefetched while a node is done (phases 1 and 3: the
+    state is read in short runs, a block's columns, that the hardware does not foresee).
+    deg[x] is x's number of present slots: they are a prefix of its slot row
+    (topology.slots), and absent slots are never live, never chosen and never
+    candidates, so the slot loops stop there.
     """
-    cdef Py_ssize_t n = q.shape[0], K = q.shape[2], m = ds.shape[0], B = choice.shape[1]
-    cdef Py_ssize_t x, ii, i0, nb, c, it
-    cdef int64_t d, dc, best, inc, ch, h, pv, bound, p, tot
-    cdef double bv, v, incv, e
+    cdef Py_ssize_t n = q.shape[0], nd = q.shape[1], K = q.shape[2], m = ds.shape[0]
+    cdef Py_ssize_t B = hy.shape[1]
+    cdef Py_ssize_t x, ii, i0, nb, c, it, ln
+    cdef int64_t d, dc, dc0, dcl, best, inc, ch, h, g, pv, bound, p, tot
+    cdef bint span
+    cdef const uint8_t* lv
+    cdef const double* qx
+    cdef const int64_t* sx
+    cdef int64_t* gx
+    cdef double* epx
+    cdef const double* tdx
+    cdef uint8_t* ax
+    cdef uint8_t* ar
+    cdef uint8_t* fx
+    cdef slot_t* hsx
+    cdef int32_t* hyx
+    cdef int32_t* chx
+    cdef double* vxx
+    cdef int64_t* ptx
+    cdef uint8_t wx
+    cdef bint lt
+    cdef double bv, v, incv, e, tdv
     cdef const double* qr
-    cdef bint keep, anyalt, cg, cw, fnew, unstable, failed = False
+    cdef bint keep, cg, cw, fnew, unstable, failed = False
     cdef int64_t changes = 0, prevented = 0
     cdef int64_t big = (n + 1) * n
-    cdef int64_t* nh
-    cdef int64_t* prev
-    cdef int64_t* pt
-    cdef int64_t kx
+    cdef int32_t* nh
     cdef uint8_t au, cwu, anyu
+    cdef Py_ssize_t kx
     cdef int64_t* path = <int64_t*> malloc((n + 2) * sizeof(int64_t))
     cdef int64_t* dep = <int64_t*> malloc(n * sizeof(int64_t))
     cdef uint8_t* level = <uint8_t*> malloc(n)
     cdef uint8_t* cyc = <uint8_t*> malloc(n)
     cdef uint8_t* c1 = <uint8_t*> malloc(n)
     cdef uint8_t* col = <uint8_t*> malloc(n)
-    if not (path and dep and level and cyc and c1 and col):
-        free(path); free(dep); free(level); free(cyc); free(c1); free(col)
+    cdef uint8_t* looped = <uint8_t*> malloc(B)
+    cdef int64_t** prow = <int64_t**> malloc((K + 1) * sizeof(int64_t*))
+    cdef int32_t* jp = <int32_t*> malloc((n + 1) * sizeof(int32_t))
+    cdef int32_t* js = <int32_t*> malloc((n + 1) * sizeof(int32_t))
+    if not (path and dep and level and cyc and c1 and col and looped and prow and jp and js):
+        free(path); free(dep); free(level); free(cyc); free(c1); free(col); free(looped)
+        free(prow); free(jp); free(js)
         raise MemoryError()
     try:
         for i0 in range(0, m, B):
             nb = min(B, m - i0)
             # phase 1, node-major: greedy with hysteresis, and the chosen value
+            dc0 = cs[i0]
+            dcl = cs[i0 + nb - 1]
+            span = dc0 <= dcl and dcl - dc0 < 2 * nb     # the block's columns: one short run
             for x in range(n):
                 kx = deg[x]
+                lv = &live[x, 0]
+                qx = &q[x, 0, 0]
+                gx = &greedy[x, 0]
+                sx = &slots[x, 0]
+                hyx = &hy[x, 0]
+                vxx = &vx[x, 0]
+                if x + 1 < n and span:  # the next node's run of Q and greedy
+                    _prefetch(qx + nd * K + dc0 * K, (dcl - dc0 + 1) * K * sizeof(double))
+                    _prefetch(gx + nd + dc0, (dcl - dc0 + 1) * sizeof(int64_t))
                 for ii in range(nb):
                     d = ds[i0 + ii]
                     dc = cs[i0 + ii]
-                    qr = &q[x, dc, 0]
+                    qr = qx + dc * K
+                    if x + 1 < n and not span:
+                        RD_PREFETCH_R(qr + nd * K)
+                        RD_PREFETCH_R(qr + nd * K + K - 1)
+                        RD_PREFETCH_R(gx + nd + dc)
                     best = 0
-                    bv = qr[0] if live[x, 0] else INFINITY
-                    for c in range(1, kx):
-                        v = qr[c] if live[x, c] else INFINITY
-                        if v < bv:
-                            best = c
-                            bv = v
-                    inc = greedy[x, dc]
-                    incv = qr[inc] if (inc >= 0 and live[x, inc]) else INFINITY
+                    bv = qr[0] if lv[0] else INFINITY
+                    for c in range(1, kx):      # branch-free: which slot wins is data
+                        v = qr[c] if lv[c] else INFINITY
+                        lt = v < bv
+                        best = c if lt else best
+                        bv = v if lt else bv
+                    inc = gx[dc]
+                    incv = qr[inc] if (inc >= 0 and lv[inc]) else INFINITY
                     keep = isfinite(incv) and not (bv < incv * keepf)
                     ch = inc if keep else best
                     if not isfinite(bv) or x == d:
                         ch = -1
-                    hy[x, ii] = ch
-                    choice[x, ii] = ch
-                    vx[x, ii] = qr[ch] if (ch >= 0 and live[x, ch]) else INFINITY
-                    nhT[ii, x] = slots[x, ch] if ch >= 0 else -1
-                    prevT[ii, x] = slots[x, inc] if inc >= 0 else -1
-            # phase 2, per destination: the loop fallback ladder, depths, potentials
+                    hyx[ii] = <int32_t> ch
+                    vxx[ii] = qr[ch] if (ch >= 0 and lv[ch]) else INFINITY
+                    nhT[ii, x] = <int32_t> sx[ch] if ch >= 0 else -1
+            # phase 2, per destination: loop check and depths in one walk; the loop
+            # fallback ladder only for a table with a loop; the potentials
             for ii in range(nb):
                 d = ds[i0 + ii]
+                dc = cs[i0 + ii]
                 nh = &nhT[ii, 0]
-                prev = &prevT[ii, 0]
+                if not _jump(nh, d, &pot[0, ii], pot.shape[1], jp, js, n):
+                    looped[ii] = 0          # every choice as phase 1 made it: stable
+                    stable[dc] = True
+                    continue
+                looped[ii] = 1
                 for x in range(n):
                     level[x] = 0
                     c1[x] = 0
                 for it in range(2 * n + 3):
-                    if not _cycles(nh, cyc, col, path, n):
+                    # after a round of the ladder, _jump checks the table again and, when
+                    # the loops are gone, writes its potentials (the same verdict as
+                    # _cycles, and _depths' values); with a loop, _cycles finds its nodes
+                    if it > 0 and not _jump(nh, d, &pot[0, ii], pot.shape[1], jp, js, n):
+                        break
+                    if not _cycles(nh, cyc, col, path, n):  # (not after _jump's verdict)
+                        _depths(nh, d, dep, path, n)
+                        for x in range(n):
+                            pot[x, ii] = dep[x] * n + x
                         break
                     if it == 0:
                         for x in range(n):
@@ -332,9 +443,10 @@ cdef object _decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const
                         if not cyc[x]:
                             continue
                         if level[x] == 0:
-                            pv = prev[x]
+                            inc = greedy[x, dc]     # the previous choice (phase 3 has not
+                            pv = slots[x, inc] if inc >= 0 else -1  # written it yet)
                             if pv >= 0 and live[x, slot_of[x, pv]]:
-                                nh[x] = pv
+                                nh[x] = <int32_t> pv
                                 level[x] = 1
                             else:
                                 nh[x] = spt[x, d]
@@ -345,75 +457,110 @@ cdef object _decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const
                 else:
                     failed = True
                     break
-                _depths(nh, d, dep, path, n)
                 unstable = False
-                pt = &potT[ii, 0]
                 for x in range(n):
+                    ch = hy[x, ii]
                     if level[x]:        # moved by the ladder: its slot (unmoved: as chosen)
-                        choice[x, ii] = slot_of[x, nh[x]] if nh[x] >= 0 else -1
-                        if choice[x, ii] != hy[x, ii] and not c1[x]:
+                        ch = slot_of[x, nh[x]] if nh[x] >= 0 else -1
+                        if ch != hy[x, ii] and not c1[x]:
                             unstable = True
-                    pt[x] = dep[x] * n + x
-                stable[cs[i0 + ii]] = not unstable
+                    choice[x, ii] = <int32_t> ch
+                stable[dc] = not unstable
             if failed:
                 break
-            for x in range(n):          # potentials back to node-major for phase 3
-                for ii in range(nb):
-                    pot[x, ii] = potT[ii, x]
             for ii in range(nb):
                 pot[n, ii] = INT64_MAX
             # phase 3, node-major: candidates, shares, what changed, the writes
             for x in range(n):
                 kx = deg[x]
+                lv = &live[x, 0]
+                gx = &greedy[x, 0]
+                epx = &eps[x, 0]
+                tdx = &td[x, 0]
+                ax = &alt[x, 0, 0]
+                fx = &forced[x, 0]
+                hsx = &hyst_st[x, 0]
+                hyx = &hy[x, 0]
+                chx = &choice[x, 0]
+                vxx = &vx[x, 0]
+                ptx = &pot[x, 0]
+                for c in range(kx):             # the neighbours' potentials, by slot
+                    prow[c] = &pot[slots[x, c], 0]
+                if x + 1 < n and span:  # the next node's runs of the state read here
+                    ln = dcl - dc0 + 1
+                    _prefetch(ax + nd * K + dc0 * K, ln * K)
+                    _prefetch(epx + nd + dc0, ln * sizeof(double))
+                    _prefetch(tdx + nd + dc0, ln * sizeof(double))
+                    _prefetch(gx + nd + dc0, ln * sizeof(int64_t))
+                    _prefetch(fx + nd + dc0, ln)
+                    _prefetch(hsx + nd + dc0, ln * sizeof(slot_t))
+                    if visits:
+                        _prefetch(&N[x, 0, 0] + nd * K + dc0 * K, ln * K * sizeof(count_t))
+                wx = 0
                 for ii in range(nb):
                     dc = cs[i0 + ii]
-                    ch = choice[x, ii]
-                    h = hy[x, ii]
+                    ar = ax + dc * K
+                    if x + 1 < n and not span:
+                        RD_PREFETCH_R(ar + nd * K)
+                        RD_PREFETCH_R(ar + nd * K + K - 1)
+                        RD_PREFETCH_R(epx + nd + dc)
+                        RD_PREFETCH_R(tdx + nd + dc)
+                        RD_PREFETCH_R(fx + nd + dc)
+                        RD_PREFETCH_R(hsx + nd + dc)
+                    h = hyx[ii]
+                    ch = chx[ii] if looped[ii] else h
                     if ch >= 0:
-                        p = pot[x, ii]
+                        p = ptx[ii]
                         bound = p if p < big else big
                     else:
                         bound = -1
                     anyu = 0
                     cwu = 0
                     for c in range(kx):         # branch-free: the outcomes are data
-                        au = live[x, c] & (ch != c) & (pot[slots[x, c], ii] < bound)
+                        au = lv[c] & (ch != c) & (prow[c][ii] < bound)
                         anyu |= au
-                        if alt[x, dc, c] != au:  # written only when it changes: no
+                        if ar[c] != au:         # written only when it changes: no
                             cwu = 1             # write-back of untouched lines
-                            alt[x, dc, c] = au
-                    anyalt = anyu
+                            ar[c] = au
                     cw = cwu
-                    if ch == h:
-                        v = vx[x, ii]
-                    else:
-                        v = q[x, dc, ch] if (ch >= 0 and live[x, ch]) else INFINITY
-                    tot = 0
-                    if visits:
-                        for c in range(K):
-                            tot += <int64_t> N[x, dc, c]
-                    e = _share(visits, v, td[x, dc], tot, anyalt, ceil, td_ref, emin, espan,
-                               eps_max, visits_half)
-                    cg = greedy[x, dc] != ch
-                    if cg or fabs(eps[x, dc] - e) > 1e-9:
+                    e = 0.0                     # no alternative: no share (_share's rule)
+                    if anyu:
+                        tot = 0
+                        v = 0.0
+                        tdv = 0.0
+                        if visits:
+                            for c in range(K):
+                                tot += <int64_t> N[x, dc, c]
+                        else:
+                            if ch == h:
+                                v = vxx[ii]
+                            else:
+                                v = q[x, dc, ch] if (ch >= 0 and lv[ch]) else INFINITY
+                            tdv = tdx[dc]
+                        e = _share(visits, v, tdv, tot, True, ceil, td_ref, emin, espan,
+                                   eps_max, visits_half)
+                    g = gx[dc]
+                    cg = g != ch
+                    if cg or fabs(epx[dc] - e) > 1e-9:
                         cw = True
                     fnew = ch != h
-                    if fnew and not (forced[x, dc] and not cg):
+                    if fnew and not (fx[dc] and not cg):
                         prevented += 1
                     if cg:
                         changes += 1
-                    if cg:
-                        greedy[x, dc] = ch
-                    if eps[x, dc] != e:
-                        eps[x, dc] = e
-                    if forced[x, dc] != fnew:
-                        forced[x, dc] = fnew
-                    if hyst_st[x, dc] != h:
-                        hyst_st[x, dc] = <slot_t> h
-                    if cw:
-                        changed[x] = 1
+                        gx[dc] = ch
+                    if epx[dc] != e:
+                        epx[dc] = e
+                    if fx[dc] != fnew:
+                        fx[dc] = fnew
+                    if hsx[dc] != h:
+                        hsx[dc] = <slot_t> h
+                    wx |= cw
+                if wx:
+                    changed[x] = 1
     finally:
-        free(path); free(dep); free(level); free(cyc); free(c1); free(col)
+        free(path); free(dep); free(level); free(cyc); free(c1); free(col); free(looped)
+        free(prow); free(jp); free(js)
     if failed:
         return changes, -1
     return changes, prevented
@@ -426,14 +573,17 @@ def decide(const double[:, :, ::1] q, const uint8_t[:, ::1] live, const int64_t[
            const double[:, ::1] td, const count_t[:, :, ::1] N, bint visits,
            double keepf, double ceil, double td_ref, double emin, double espan,
            double eps_max, double visits_half,
-           int64_t[:, ::1] choice, int64_t[:, ::1] hy, double[:, ::1] vx,
-           int64_t[:, ::1] pot, int64_t[:, ::1] nhT, int64_t[:, ::1] prevT,
-           int64_t[:, ::1] potT, const int64_t[::1] deg, uint8_t[::1] changed,
-           const int64_t[::1] cs):
+           int32_t[:, ::1] choice, int32_t[:, ::1] hy, double[:, ::1] vx,
+           int64_t[:, ::1] pot, int32_t[:, ::1] nhT, const int64_t[::1] deg,
+           uint8_t[::1] changed, const int64_t[::1] cs):
     """:func:`_decide` with every array passed (the bound form: :class:`Bound`)."""
+    if not (choice.shape[0] == hy.shape[0] == vx.shape[0] == pot.shape[0] - 1 == nhT.shape[1]
+            == q.shape[0] and choice.shape[1] == vx.shape[1] == pot.shape[1] == nhT.shape[0]
+            == hy.shape[1]):
+        raise ValueError("decide: scratch shapes do not match (n, B), (n + 1, B), (B, n)")
     return _decide(q, live, slots, slot_of, spt, ds, greedy, eps, alt, forced, hyst_st, stable,
                    td, N, visits, keepf, ceil, td_ref, emin, espan, eps_max, visits_half,
-                   choice, hy, vx, pot, nhT, prevT, potT, deg, changed, cs)
+                   choice, hy, vx, pot, nhT, deg, changed, cs)
 
 
 def routes(const int64_t[::1] rows, const int64_t[:, ::1] greedy, const int64_t[:, ::1] slots,
@@ -1290,7 +1440,8 @@ cdef class Bound:
     cdef object o_Q, o_N, o_td, o_live, o_slot, o_col, o_kdirty, o_kcols, o_alphas, o_settings
     cdef object o_owned, o_greedy, o_eps, o_alt, o_forced, o_hyst, o_stable, o_dirty, o_deg
     cdef object beyond, empty, code_o, o_slots
-    cdef int64_t[:, ::1] slots, s_choice, s_hy, s_pot, s_nhT, s_prevT, s_potT
+    cdef int64_t[:, ::1] slots, s_pot
+    cdef int32_t[:, ::1] s_choice, s_hy, s_nhT
     cdef double[:, ::1] s_vx
     cdef uint8_t[::1] s_changed
     cdef double[:, :, ::1] Q
@@ -1379,13 +1530,11 @@ cdef class Bound:
         n = eng.n
         # the full pass's scratch for a block of destinations (every entry it reads it
         # writes first; `changed` is cleared at each call)
-        self.s_choice = empty((n, block), dtype="i8")
-        self.s_hy = empty((n, block), dtype="i8")
+        self.s_choice = empty((n, block), dtype="i4")
+        self.s_hy = empty((n, block), dtype="i4")
         self.s_vx = empty((n, block), dtype="f8")
         self.s_pot = empty((n + 1, block), dtype="i8")
-        self.s_nhT = empty((block, n), dtype="i8")
-        self.s_prevT = empty((block, n), dtype="i8")
-        self.s_potT = empty((block, n), dtype="i8")
+        self.s_nhT = empty((block, n), dtype="i4")
         self.s_changed = empty(n, dtype="u1")
 
     cdef bint _fresh(self, e) except -1:
@@ -1578,7 +1727,7 @@ cdef object _b_full_s(Bound b, count_t[:, :, ::1] N, const slot_t[:, ::1] so,
     return _decide(b.Q, b.live, b.slots, so, spt, ds, b.greedy, b.eps, b.alt, b.forced, hy,
                    b.stable, b.td, N, b.visits, b.keepf, b.ceil, b.td_ref, b.emin, b.espan,
                    b.eps_max, b.visits_half, b.s_choice, b.s_hy, b.s_vx, b.s_pot, b.s_nhT,
-                   b.s_prevT, b.s_potT, b.deg, b.s_changed, cs)
+                   b.deg, b.s_changed, cs)
 
 
 # ==== topology: least-weight paths ==============================================================

@@ -36,7 +36,7 @@ from typing import Any
 import numpy as np
 
 MODES = ("auto", "compiled", "reference")
-# destinations per block of the compiled decide (its scratch: about 32 * n * B bytes)
+# destinations per block of the compiled decide (its scratch: about 28 * n * B bytes)
 DECIDE_BLOCK = 32
 
 try:  # the extension is optional: an install without a C compiler has only the reference
@@ -251,11 +251,10 @@ def decide_full(eng: Any, cs: np.ndarray) -> tuple[frozenset[int], int, int]:
     scratch = eng._decide_scratch
     if scratch is None or scratch[0].shape != (n, b):
         scratch = eng._decide_scratch = (
-            np.empty((n, b), dtype=np.int64), np.empty((n, b), dtype=np.int64),
+            np.empty((n, b), dtype=np.int32), np.empty((n, b), dtype=np.int32),
             np.empty((n, b), dtype=np.float64), np.empty((n + 1, b), dtype=np.int64),
-            np.empty((b, n), dtype=np.int64), np.empty((b, n), dtype=np.int64),
-            np.empty((b, n), dtype=np.int64), np.zeros(n, dtype=np.uint8))
-    choice, hyst, vx, pot, nhT, prevT, potT, changed = scratch
+            np.empty((b, n), dtype=np.int32), np.zeros(n, dtype=np.uint8))
+    choice, hyst, vx, pot, nhT, changed = scratch
     changed[:] = 0
     visits = s.explore_basis != "td"
     changes, prevented = _compiled.decide(
@@ -264,7 +263,7 @@ def decide_full(eng: Any, cs: np.ndarray) -> tuple[frozenset[int], int, int]:
         eng.td, eng.N, bool(visits),
         1.0 - s.margin, s.ceiling_s, s.td_ref, s.explore_min, s.explore_max - s.explore_min,
         s.eps_max, s.visits_half,
-        choice, hyst, vx, pot, nhT, prevT, potT, eng._slot_deg, changed, cs)
+        choice, hyst, vx, pot, nhT, eng._slot_deg, changed, cs)
     if prevented < 0:  # unreachable: the live shortest-path tree has no loop
         raise AssertionError("loop fallback did not converge")
     return frozenset(np.flatnonzero(changed).tolist()), int(changes), int(prevented)
