@@ -51,7 +51,11 @@ def ring_with_chords(n: int, chords: int, seed: int = 0) -> T.Topology:
     rng = np.random.default_rng(seed)
     names = [f"h{i}" for i in range(n)]
     pairs = {tuple(sorted((i, (i + 1) % n))) for i in range(n)}
-    while len(pairs) < n + chords:
+    if len(pairs) + chords > n * (n - 1) // 2:
+        raise ValueError(f"a ring of {n} nodes has room for {n * (n - 1) // 2 - len(pairs)} "
+                         f"chords, not {chords}")
+    want = len(pairs) + chords
+    while len(pairs) < want:
         a, b = (int(v) for v in rng.integers(0, n, 2))
         if a != b:
             pairs.add((min(a, b), max(a, b)))
