@@ -9,6 +9,7 @@ import errno
 import os
 import select
 import tempfile
+import time
 from collections.abc import Iterator
 from typing import Any
 
@@ -295,7 +296,19 @@ def test_a_decision_takes_what_fits_its_budget_and_replay_follows(base: str) -> 
             assert eng.full_pass_destinations - before <= 3   # never more than the limit
             calls += 1
         assert calls >= 2 and eng.pending() == 0
+        # the clock ends a decision: one whose budget is already spent stops after its
+        # first part (a quarter of its limit, rounded up), whatever the estimate planned
         svc.ingest(_frame(rng, 5, 200))
+        svc.commit()
+        due, before = eng.pending(), eng.full_pass_destinations
+        assert due > 8
+        with svc.lock:
+            svc._decide_in_parts(eng, clock.wall(), due - 1, time.perf_counter() - 10.0)
+        assert eng.full_pass_destinations - before == -(-(due - 1) // 4)
+        while svc._touched:                                # the rest, within the budget
+            svc._decide_and_publish(clock.monotonic())
+        assert eng.pending() == 0
+        svc.ingest(_frame(rng, 8, 200))
         a, z = DEMO.nodes[int(DEMO.src[0])], DEMO.nodes[int(DEMO.dst[0])]
         svc.ingest(wire.encode_ingest_rows("gc", 6, [], [[a, z, "down"]]))
         svc._decide_and_publish(clock.monotonic())       # a link row: everything at once
@@ -308,8 +321,10 @@ def test_a_decision_takes_what_fits_its_budget_and_replay_follows(base: str) -> 
     r = journal.restore(os.path.join(base, "st"), DEMO, live.settings,
                         on_tick=lambda rec, d: ticks.append(rec.body))
     limits = [t_.get("limit") for t_ in ticks]
-    # journaled only where it bound (the last call of the loop may have had 3 or fewer due)
-    assert set(limits) == {None, 3} and limits.count(3) >= calls - 1 >= 1
+    # journaled only where it bound (the last call of the loop may have had 3 or fewer due),
+    # a tick per part: a limit of 3 runs as three parts of 1
+    assert set(limits) - {None} == {1, -(-(due - 1) // 4)}
+    assert limits.count(1) >= 3 * (calls - 1) >= 3
     assert limits[-1] is None                          # the link row's decision
     assert r.engine.same_state(live) and r.engine.pending() == 0
 
