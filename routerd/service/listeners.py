@@ -485,6 +485,10 @@ class Listeners:
         ``sockets``; logged.  ValueError when the limit leaves no room."""
         import resource
 
+        # imported here, at start-up: its first import pulls in asyncio (about 40 ms), which
+        # otherwise landed in the loop turn of the first connection event (read())
+        import zmq.utils.monitor  # noqa: F401
+
         names = list(sockets)
         soft = resource.getrlimit(resource.RLIMIT_NOFILE)[0]
         # each monitor adds two sockets (ours and libzmq's end of the pair)
