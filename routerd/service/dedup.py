@@ -198,7 +198,7 @@ class Dedup:
             return b""
         rows, reasons = zip(*kept)
         a = np.empty(len(kept), dtype=_REJ)
-        a["row"] = [int(r) for r in rows]
+        a["row"] = rows
         # a reason outside the set is our bug: KeyError
         a["why"] = list(map(self._code.__getitem__, map(str, reasons)))
         return a.tobytes()
