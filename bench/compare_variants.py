@@ -174,12 +174,13 @@ def shortest_saturation_pps(topo: T.Topology, demands: bool = True) -> tuple[flo
     return float(r[k]), k
 
 
-def mindelay_limit(topo: T.Topology, sat: float, demands: bool = True) -> float:
-    """The largest load factor (x shortest's saturation) mindelay routes within capacity."""
+def mindelay_limit(topo: T.Topology, sat: float, demands: bool = True, steps: int = 8) -> float:
+    """The largest load factor (x shortest's saturation) mindelay routes within capacity,
+    found to ``2 / 2**steps`` above 1x (1.0 when it is not feasible above 1x, or steps=0)."""
     lo, hi = 1.0, 3.0
     if not M.for_topology(topo, M.offered_demand(topo, sat * lo, use_demands=demands), PACKET_BYTES).feasible:
         return lo
-    for _ in range(8):
+    for _ in range(steps):
         mid = 0.5 * (lo + hi)
         ok = M.for_topology(topo, M.offered_demand(topo, sat * mid, use_demands=demands), PACKET_BYTES).feasible
         lo, hi = (mid, hi) if ok else (lo, mid)
@@ -280,14 +281,16 @@ def settle_time(series: dict[str, Any], start: float, ref: float, tol: float, en
 
 # ---- the experiments --------------------------------------------------------------------------
 
-def topology_info(key: str) -> dict[str, Any]:
+def topology_info(key: str, limit_steps: int = 8) -> dict[str, Any]:
     """What the jobs need to know of one topology: the model, shortest's saturation rate and
-    busiest link, whether it runs on its demand matrix, and how far mindelay stays feasible."""
+    busiest link, whether it runs on its demand matrix, and how far mindelay stays feasible
+    (``limit_steps`` bisection steps above 1x; 0 when only load 1x is run: one optimisation
+    instead of nine, most of a quick run's time)."""
     topo = load_topology(key)
     dem = uses_demands(key)
     sat, link = shortest_saturation_pps(topo, dem)
     return {"topo": topo, "sat_pps": sat, "busiest_link": link, "demands": dem,
-            "mindelay_limit": mindelay_limit(topo, sat, dem),
+            "mindelay_limit": mindelay_limit(topo, sat, dem, limit_steps),
             "busiest": f"{topo.nodes[int(topo.src[link])]} -> {topo.nodes[int(topo.dst[link])]}"}
 
 
