@@ -170,12 +170,27 @@ class Ecmp(Policy):
             cost = w[:, None] + D[ys, :]                     # (deg, n)
             best = cost.min(axis=0)
             eq = cost <= best * (1 + self.rel_tol) + 1e-15
-            for d in range(n):
-                if d == x or not math.isfinite(best[d]):
-                    continue
-                hops = tuple(int(y) for y in ys[eq[:, d]])
-                self.choices[x][d] = hops
-                table[x][d] = hops[0] if len(hops) == 1 else -2
+            live = np.isfinite(best)
+            live[x] = False
+            if len(ys) > 62:   # one bit per neighbour would not fit an int64: per destination
+                for d in np.flatnonzero(live).tolist():
+                    hops = tuple(int(y) for y in ys[eq[:, d]])
+                    self.choices[x][d] = hops
+                    table[x][d] = hops[0] if len(hops) == 1 else -2
+                continue
+            # each destination's set of next hops as a bit mask over the neighbours (in
+            # their order), each distinct set built once: n tuples per node were most of a
+            # 500-node attach
+            masks = np.where(live, (eq.astype(np.int64) << np.arange(len(ys))[:, None]).sum(axis=0), 0)
+            sets: dict[int, tuple[int, ...]] = {0: ()}
+            firsts: dict[int, int] = {0: -1}
+            for m in set(masks.tolist()) - {0}:
+                hops = tuple(int(ys[k]) for k in range(len(ys)) if m >> k & 1)
+                sets[m] = hops
+                firsts[m] = hops[0] if len(hops) == 1 else -2
+            ml = masks.tolist()
+            self.choices[x] = list(map(sets.__getitem__, ml))
+            table[x] = list(map(firsts.__getitem__, ml))
         self.table = table
 
     def next_hop(self, x: int, d: int, flow: int, now: float) -> int:
