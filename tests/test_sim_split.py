@@ -187,3 +187,19 @@ def test_closed_loop_split_matches_in_process() -> None:
     assert abs(live["mean_delivery_s"] - m) <= half, (live["mean_delivery_s"], m, half, means)
     static = run({**spec, "policy": "shortest"})["summary"]
     assert static["mean_delivery_s"] - m > 3 * half       # the band is not vacuous
+
+
+def test_report_drops_leave_out_packets_still_in_flight() -> None:
+    # the comparison report's drop share (bench/compare_variants.py) counts packets a queue
+    # dropped or a TTL expired, not those still travelling when the run ends; conservation
+    # of packets (common practice): offered = delivered + dropped + expired + in flight
+    import os
+    import sys
+    sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "bench"))
+    import compare_variants as CV
+    s = sim("split", 1.2, duration_s=6.0, warmup_s=0.0)["summary"]
+    assert s["offered"] == s["delivered"] + s["dropped"] + s["ttl_expired"] + s["in_flight_at_end"]
+    assert s["in_flight_at_end"] > 0 and s["dropped"] > 0, s
+    assert CV.lost_share(s) == pytest.approx((s["dropped"] + s["ttl_expired"]) / s["offered"])
+    assert 1.0 - s["delivery_ratio"] - CV.lost_share(s) == pytest.approx(
+        s["in_flight_at_end"] / s["offered"])
