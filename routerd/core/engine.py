@@ -714,7 +714,7 @@ class Engine:
                     Nf[k] = nn if nn <= cap else cap  # noqa: FURB136
                     delta = target - old
                     new = old + (tab[nn] if nn < lim else self._step_beyond(nn)) * delta
-                    Qf[k] = ceil if new > ceil else (max(new, 0.0))
+                    Qf[k] = ceil if new > ceil else max(new, 0.0)
                     tdf[w] = keep * tdf.item(w) + sm * abs(delta)
                     kdirty[w] = True
                     kcols[dc] = True
@@ -854,7 +854,7 @@ class Engine:
             Nf[k] = nn if nn <= cap else cap  # noqa: FURB136  (saturates; no call per row)
             delta = target - old
             new = old + (tab[nn] if nn < lim else self._step_beyond(nn)) * delta
-            Qf[k] = ceil if new > ceil else (max(new, 0.0))
+            Qf[k] = ceil if new > ceil else max(new, 0.0)
             tdf[w] = keep * tdf.item(w) + sm * abs(delta)
             tde[i] = delta
 

@@ -176,6 +176,8 @@ SYNC_SWITCH_INTERVAL_S = 0.0005
 SNAPSHOT_CHILD_LIMIT_S = 600.0
 # routine decisions wait this long at most for a snapshot child to end (copy-on-write)
 SNAPSHOT_DEFER_S = 1.0
+#: while a snapshot child lives, the loop wakes at least this often to see it end
+SNAPSHOT_POLL_S = 0.05
 #: Exit statuses of the snapshot child.
 SNAPSHOT_CHILD_EXITS = {1: "the child could not write the file (I/O error, disk full)",
                         2: "the child failed unexpectedly", -9: "killed (overdue)"}
@@ -1162,7 +1164,7 @@ class Service:
         if self.listeners is not None and self.listeners.waiting():
             t = min(t, self._next_gate_tick)
         if self._snap_child is not None:
-            t = min(t, now + 0.05)      # look for the snapshot child's end
+            t = min(t, now + SNAPSHOT_POLL_S)      # look for the snapshot child's end
         if self._touched:
             t = min(t, self._decision_at())
         if self._unsynced:
@@ -1551,7 +1553,7 @@ class Service:
             now = self.clock.monotonic()
             started = self._snap_child[3]
             if now < started + SNAPSHOT_DEFER_S:
-                t = max(t, min(now + 0.05, started + SNAPSHOT_DEFER_S))
+                t = max(t, min(now + SNAPSHOT_POLL_S, started + SNAPSHOT_DEFER_S))
         rate = cfg["service.max_decisions_per_s"]
         if rate > 0:
             tokens = self._tokens(rate)
