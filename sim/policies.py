@@ -40,12 +40,12 @@ published estimates (the numpy reference: :meth:`on_hops`, :meth:`tick`,
 from __future__ import annotations
 
 import importlib
-import math
 from itertools import chain
 from typing import Any
 
 import numpy as np
 
+from routerd.core.demand import Meter, Rates, estimate, guide_shares, inputs_for, solve
 from routerd.core.engine import Engine, EngineSettings, HopBatch
 from routerd.core.errors import InputError, Problem
 from routerd.core.topology import Topology
@@ -213,6 +213,79 @@ def _any_last(a: np.ndarray) -> np.ndarray:
 _KEY_MASK_MAX = 1 << 16
 
 
+class _Guide:
+    """Split mode with ``engine.optimum.guide`` on simulated time: the service's background
+    optimiser (:mod:`routerd.service.optimum`) as the simulator can run it.
+
+    The rows the engine accepted are counted (:class:`routerd.core.demand.Meter`); every
+    ``engine.optimum.interval_s`` of simulated time the counts become smoothed rates
+    (``engine.optimum.window_s``), flow deviation runs on the measured demand over the
+    live links (:func:`routerd.core.demand.solve`, to its gap or 500 iterations: no wall
+    clock, so a run is reproducible), and a feasible result seeds the engine's shares
+    ``engine.optimum.budget_s`` later (the most a service run may take before its result
+    waits for the loop) through :meth:`Engine.seed_shares`, as the service's guide record
+    does.  Not modelled: the service's rest after a long run (at most a fifth of a core)
+    and a run stopped by its budget with a worse routing; so this is the guide at its best.
+    """
+
+    def __init__(self, topo: Topology, settings: Any, kernels: Any):
+        self.topo = topo
+        self.meter = Meter(topo, kernels)
+        self.rates = Rates.empty(topo.n, topo.n_links)
+        self.interval = float(settings["engine.optimum.interval_s"])
+        self.window = float(settings["engine.optimum.window_s"])
+        self.lag = float(settings["engine.optimum.budget_s"])
+        self.packet_bytes = float(settings["engine.optimum.packet_bytes"])
+        self.next_at = self.interval
+        self.taken_at = 0.0
+        self.pending: tuple[float, np.ndarray] | None = None
+        self.runs = self.infeasible = self.guides = self.seeded = self.left = 0
+
+    @classmethod
+    def for_policy(cls, topo: Topology, settings: Any, es: EngineSettings) -> _Guide | None:
+        """The guide where the service would run one (split mode, the optimiser on, the
+        network within ``engine.optimum.max_nodes``), else None."""
+        if (settings is None or es.mode != "split" or not settings["engine.optimum.guide"]
+                or float(settings["engine.optimum.interval_s"]) <= 0
+                or topo.n > int(settings["engine.optimum.max_nodes"])):
+            return None
+        return cls(topo, settings, es.kernels)
+
+    def count(self, ids: np.ndarray, latency: np.ndarray, rejected: Any) -> None:
+        """The rows of one observe (``ids``: from, via, destination), less those rejected."""
+        if len(rejected):
+            keep = np.ones(ids.shape[1], dtype=bool)
+            keep[[i for i, _ in rejected]] = False
+            ids, latency = ids[:, keep], latency[keep]
+        self.meter.add(ids[0], ids[1], ids[2], latency)
+
+    def step(self, engine: Engine, now: float) -> None:
+        """Apply a result that is due, then run the optimiser when its interval is up."""
+        if self.pending is not None and now >= self.pending[0]:
+            got = engine.seed_shares(self.pending[1])
+            self.pending = None
+            self.guides += 1
+            self.seeded += got[0]
+            self.left += got[1]
+        if now < self.next_at:
+            return
+        self.next_at = now + self.interval
+        self.rates.update(self.meter.take(), now - self.taken_at, now, self.window)
+        self.taken_at = now
+        demand = self.rates.demand()
+        size = estimate(self.topo, self.rates, self.window, self.packet_bytes)
+        if demand.sum() <= 0 or size <= 0:
+            return
+        job = inputs_for(self.topo, engine.published_shares(), engine.live & engine._present,
+                         demand, size, engine.owned)
+        res = solve(job)
+        self.runs += 1
+        if not res.feasible:
+            self.infeasible += 1
+            return
+        self.pending = (now + self.lag, guide_shares(self.topo, job["keep"], res.fractions))
+
+
 class QRouting(Policy):
     """The learning engine in the loop.  See the module docstring."""
 
@@ -269,6 +342,8 @@ class QRouting(Policy):
         self._nbrs = [set(nb) for nb in topology.neighbours]
         self.backward_rows = 0
         self._refresh(range(n))
+        #: split mode with engine.optimum.guide: the optimiser on simulated time
+        self.guide = _Guide.for_policy(topology, settings, es)
         self._alt_u8: np.ndarray | None = None   # split_arrays' view of engine.alt
         self._qrows: Any = None      # the compiled row store (hop_rows), made on first use
         self._q_bound: Any = None    # the Q array it reads
@@ -551,8 +626,13 @@ class QRouting(Policy):
                 res = self.engine.observe(HopBatch(ids[0], ids[1], ids[2], a[4], a[5]), now)
                 self.rows_applied += res.accepted
                 self.rows_rejected += len(res.rejected)
+                if self.guide is not None:
+                    self.guide.count(ids, a[4], res.rejected)
+                    self.guide.step(self.engine, now)
                 self._decide(now, ids[0] * self.engine.n + ids[2])
                 return
+        if self.guide is not None:
+            self.guide.step(self.engine, now)
         self._decide(now, np.empty(0, dtype=np.int64))
 
     def _decide(self, now: float, written: np.ndarray | None = None) -> None:
@@ -633,6 +713,12 @@ class QRouting(Policy):
             "engine_split_publications": float(s.split_publications),
             "engine_split_whole_publications": float(s.split_whole_publications),
             "engine_split_fallbacks": float(s.split_fallbacks),
+            **({} if self.guide is None else {
+                "optimum_runs": float(self.guide.runs),
+                "optimum_infeasible": float(self.guide.infeasible),
+                "optimum_guides": float(self.guide.guides),
+                "optimum_seeded_destinations": float(self.guide.seeded),
+                "optimum_left_destinations": float(self.guide.left)}),
         }
 
 

@@ -1,9 +1,11 @@
 """The live optimality gap: the model's optimal mean delay beside the published routing's.
 
-Owns: the measurement of the offered demand and the link rates from accepted hop rows
-(:class:`Meter`, :func:`estimate`), one optimiser run on plain arrays (:func:`compute`,
-run in a child process), and the background runner the service starts (:class:`Optimum`:
-a thread, a one-process pool, the last result, ``health()`` and the metrics figures).
+Owns: the locked counter of accepted hop rows (:class:`Meter`), one optimiser run on
+plain arrays within a wall-clock budget (:func:`compute`, run in a child process), and
+the background runner the service starts (:class:`Optimum`: a thread, a one-process
+pool, the last result, ``health()`` and the metrics figures).  The counting, the rates,
+the packet-size estimate, the run's inputs and the run itself are
+:mod:`routerd.core.demand`'s (the simulator's guided split mode uses them too).
 The method and the model are :mod:`routerd.core.flowdev` (flow deviation; Kleinrock's
 M/M/1 links plus propagation); the metric names are :mod:`routerd.service.metrics`'.
 
@@ -93,9 +95,9 @@ from typing import Any
 
 import numpy as np
 
+from routerd.core import demand as _demand
 from routerd.core import flowdev as _fd
-from routerd.core import kernels as _kernels
-from routerd.core.splitting import service_time
+from routerd.core.demand import Rates, estimate, guide_shares, inputs_for, solve
 from routerd.core.topology import Topology
 from routerd.io import journal as _journal
 
@@ -104,8 +106,6 @@ __all__ = ["REASONS", "REST_FACTOR", "Meter", "Optimum", "Rates", "compute", "es
 
 #: Why no optimum is shown (a fixed set: health's ``reason``).
 REASONS = ("off", "too_large", "sharded", "waiting", "no_demand", "no_packet_size", "failed")
-#: Least rows a link needs in the window to count towards the packet-size estimate.
-BUSY_ROWS = 4.0
 _LITTLE = sys.byteorder == "little"     # record columns are little-endian
 #: After a run of r seconds the next starts no sooner than REST_FACTOR * r later: the
 #: optimiser's child takes at most 1 / (1 + REST_FACTOR) of one core, whatever the network.
@@ -118,69 +118,28 @@ def next_start(start: float, end: float, interval: float) -> float:
     return max(start + interval, end + REST_FACTOR * (end - start))
 
 
-class Meter:
-    """Counts accepted hop rows per (node, destination) in and out and per link, since the
-    last :meth:`take`.  Thread-safe: the loop adds, the runner thread takes."""
+class Meter(_demand.Meter):
+    """:class:`routerd.core.demand.Meter` with a lock: the loop adds, the runner thread takes."""
 
     def __init__(self, topo: Topology, kernels: Any = "auto"):
-        #: the compiled ``meter_add`` (one pass, the same additions in the same order as
-        #: the four ``np.add.at`` of the reference), or None for the numpy reference
-        self.kernels = _kernels.select(kernels) if isinstance(kernels, str) else kernels
-        n = topo.n
-        self.n = n
-        self.n_links = topo.n_links
-        li = np.full(n * n, -1, dtype=np.int64)       # (x * n + y) -> link index
-        li[topo.src.astype(np.int64) * n + topo.dst.astype(np.int64)] = np.arange(topo.n_links)
-        self._link_of = li
         self._lock = threading.Lock()
-        self._zero()
-        self.rows = 0                                 # every row ever counted
-
-    def _zero(self) -> None:
-        n = self.n
-        self._out = np.zeros(n * n)
-        self._in = np.zeros(n * n)
-        self._lk = np.zeros(self.n_links)
-        self._lat = np.zeros(self.n_links)
+        super().__init__(topo, kernels)
 
     def add(self, src: np.ndarray, via: np.ndarray, dst: np.ndarray, latency: np.ndarray) -> None:
         """Count accepted rows (node indices; latency in seconds)."""
-        n = self.n
-        src = np.asarray(src, dtype=np.int64)
-        via = np.asarray(via, dtype=np.int64)
-        dst = np.asarray(dst, dtype=np.int64)
-        kern = self.kernels
-        if kern is not None:
-            lat = np.ascontiguousarray(latency, dtype=np.float64)
-            with self._lock:
-                kern.meter_add(self._out, self._in, self._lk, self._lat, self._link_of,
-                               src, via, dst, lat, n)
-                self.rows += len(src)
-            return
-        k = self._link_of[src * n + via]
         with self._lock:
-            np.add.at(self._out, src * n + dst, 1.0)
-            np.add.at(self._in, via * n + dst, 1.0)
-            np.add.at(self._lk, k, 1.0)
-            np.add.at(self._lat, k, np.asarray(latency, dtype=float))
-            self.rows += len(src)
+            super().add(src, via, dst, latency)
 
     def add_record(self, body: Mapping[str, Any]) -> None:
         """Count the accepted hops of a journal ``batch`` record body (its int32/float64
         column bytes, :func:`routerd.io.journal.batch_body`), without copying them."""
         fb = body["from"]
-        m = len(fb) // 4
-        if not m:
+        if not len(fb) // 4:
             return
-        kern = self.kernels
-        if kern is not None and _LITTLE:
-            vb, db, lb = body["via"], body["dst"], body["latency_s"]
-            if len(vb) == len(db) == len(fb) == 4 * m and len(lb) == 8 * m:
-                with self._lock:
-                    kern.meter_add_cols(self._out, self._in, self._lk, self._lat, self._link_of,
-                                        fb, vb, db, lb, self.n)
-                    self.rows += m
-                return
+        if _LITTLE:
+            with self._lock:
+                if self.add_columns(fb, body["via"], body["dst"], body["latency_s"]):
+                    return
         self.add(np.frombuffer(fb, dtype="<i4"), np.frombuffer(body["via"], dtype="<i4"),
                  np.frombuffer(body["dst"], dtype="<i4"),
                  np.frombuffer(body["latency_s"], dtype="<f8"))
@@ -188,73 +147,7 @@ class Meter:
     def take(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """(out, in, link rows, link latency sums) since the last take; counting restarts."""
         with self._lock:
-            got = (self._out.reshape(self.n, self.n), self._in.reshape(self.n, self.n),
-                   self._lk, self._lat)
-            self._zero()
-        return got
-
-
-@dataclass
-class Rates:
-    """Smoothed measurements (see the module docstring): ``out``/``into`` per (x, d) and
-    ``link``/``lat`` per link, in rows/s and latency-seconds/s."""
-
-    out: np.ndarray
-    into: np.ndarray
-    link: np.ndarray
-    lat: np.ndarray
-    t: float = -math.inf      # when they were last brought up to date (the caller's clock)
-
-    @classmethod
-    def empty(cls, n: int, n_links: int) -> Rates:
-        return cls(np.zeros((n, n)), np.zeros((n, n)), np.zeros(n_links), np.zeros(n_links))
-
-    def update(self, counts: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray],
-               dt: float, now: float, window: float) -> None:
-        """Fold in the counts of the last ``dt`` seconds (the first update takes them as they are)."""
-        if dt <= 0:
-            return
-        a = 1.0 if not math.isfinite(self.t) else 1.0 - math.exp(-dt / window)
-        for name, c in zip(("out", "into", "link", "lat"), counts):
-            cur = getattr(self, name)
-            cur += a * (c / dt - cur)
-        self.t = now
-
-    def demand(self) -> np.ndarray:
-        """(n, n) packets/s entering at x for d: out - in, floored at 0, no diagonal."""
-        r = np.maximum(self.out - self.into, 0.0)
-        np.fill_diagonal(r, 0.0)
-        return r
-
-
-def estimate(topo: Topology, rates: Rates, window: float, packet_bytes: float = 0.0) -> float:
-    """The mean packet size (bytes) for the model: ``packet_bytes`` when set, else the
-    median over busy links of capacity × M/M/1 service time / 8; 0.0 when unknown."""
-    if packet_bytes > 0:
-        return float(packet_bytes)
-    F = rates.link
-    busy = F * window >= BUSY_ROWS
-    if not busy.any():
-        return 0.0
-    L = rates.lat[busy] / F[busy]
-    tau = service_time(L, F[busy], topo.delay_s[busy])
-    size = float(np.median(tau * topo.capacity_bps[busy])) / 8.0
-    return size if size > 0 and math.isfinite(size) else 0.0
-
-
-def inputs_for(topo: Topology, shares: np.ndarray, live_slots: np.ndarray, demand: np.ndarray,
-               packet_bytes: float, owned: np.ndarray | None = None) -> dict[str, Any]:
-    """The plain arrays :func:`compute` takes: live links only (capacities in packets/s),
-    the published shares as per-link fractions over them, the demand."""
-    sl = topo.slot_link
-    alive = np.zeros(topo.n_links, dtype=bool)
-    alive[sl[(sl >= 0) & live_slots]] = True
-    keep = np.flatnonzero(alive)
-    frac = _fd.slot_fractions(topo, shares, owned)[:, keep]
-    return {"n": topo.n, "keep": keep,
-            "src": topo.src[keep].astype(np.int64), "dst": topo.dst[keep].astype(np.int64),
-            "cap_pps": topo.capacity_bps[keep] / (8.0 * packet_bytes), "prop_s": topo.delay_s[keep].copy(),
-            "frac": frac, "demand": demand, "packet_bytes": float(packet_bytes)}
+            return super().take()
 
 
 def compute(job: Mapping[str, Any], budget_s: float, max_iter: int = 500) -> dict[str, Any]:
@@ -265,8 +158,7 @@ def compute(job: Mapping[str, Any], budget_s: float, max_iter: int = 500) -> dic
     deadline = t0 + budget_s
     n, src, dst = int(job["n"]), job["src"], job["dst"]
     cap, prop, dem = job["cap_pps"], job["prop_s"], job["demand"]
-    res = _fd.flow_deviation(n, src, dst, cap, prop, dem, tol=1e-3, max_iter=max_iter,
-                             stop=lambda: time.perf_counter() > deadline)
+    res = solve(job, max_iter, stop=lambda: time.perf_counter() > deadline)
     out: dict[str, Any] = {
         "optimal_delay_s": float(res.delay_s) if res.feasible else math.inf,
         "optimal_lower_s": float(res.delay_lower_s),
@@ -464,9 +356,8 @@ class Optimum:
             st.run_s_total += float(res["run_s"])
             frac = res.pop("fractions", None)
             if frac is not None:
-                full = np.zeros((self.topo.n, self.topo.n_links))
-                full[:, job["keep"]] = frac
-                self._guide = _fd.slot_shares_of(self.topo, full)   # the newest replaces an untaken one
+                # the newest replaces an untaken one
+                self._guide = guide_shares(self.topo, job["keep"], frac)
         return res
 
     # -- guide: the loop takes, applies and journals -----------------------------------

@@ -1,0 +1,175 @@
+"""Measured demand and link rates from hop rows, and the flow-deviation optimum they feed.
+
+Owns: the counts of accepted hop rows (:class:`Meter`), their smoothing into rates
+(:class:`Rates`), the mean packet size the model needs (:func:`estimate`), the plain
+arrays of one optimiser run (:func:`inputs_for`), the run itself without any clock
+(:func:`solve`) and its splits as the engine's slot shares (:func:`guide_shares`).
+
+Two shells use them: the service's background optimiser (:mod:`routerd.service.optimum`,
+which adds a lock, a wall-clock budget, a child process and the health figures) and the
+simulator's ``qrouting`` adapter in split mode with ``engine.optimum.guide`` (which runs
+them on simulated time).  The theory (flow conservation per node, the exponential
+smoothing, the M/M/1 packet size) is in :mod:`routerd.service.optimum`'s docstring; the
+method is :mod:`routerd.core.flowdev`'s.
+"""
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from routerd.core import flowdev as _fd
+from routerd.core import kernels as _kernels
+from routerd.core.splitting import service_time
+from routerd.core.topology import Topology
+
+__all__ = ["BUSY_ROWS", "Meter", "Rates", "estimate", "guide_shares", "inputs_for", "solve"]
+
+#: Least rows a link needs in the window to count towards the packet-size estimate.
+BUSY_ROWS = 4.0
+
+
+class Meter:
+    """Counts hop rows per (node, destination) in and out and per link since the last
+    :meth:`take`.  Not thread-safe: the service's subclass adds a lock."""
+
+    def __init__(self, topo: Topology, kernels: Any = "auto"):
+        #: the compiled ``meter_add`` (one pass, the same additions in the same order as
+        #: the four ``np.add.at`` of the reference), or None for the numpy reference
+        self.kernels = _kernels.select(kernels) if isinstance(kernels, str) else kernels
+        n = topo.n
+        self.n = n
+        self.n_links = topo.n_links
+        li = np.full(n * n, -1, dtype=np.int64)       # (x * n + y) -> link index
+        li[topo.src.astype(np.int64) * n + topo.dst.astype(np.int64)] = np.arange(topo.n_links)
+        self._link_of = li
+        self._zero()
+        self.rows = 0                                 # every row ever counted
+
+    def _zero(self) -> None:
+        n = self.n
+        self._out = np.zeros(n * n)
+        self._in = np.zeros(n * n)
+        self._lk = np.zeros(self.n_links)
+        self._lat = np.zeros(self.n_links)
+
+    def add(self, src: np.ndarray, via: np.ndarray, dst: np.ndarray, latency: np.ndarray) -> None:
+        """Count rows (node indices; latency in seconds)."""
+        n = self.n
+        src = np.asarray(src, dtype=np.int64)
+        via = np.asarray(via, dtype=np.int64)
+        dst = np.asarray(dst, dtype=np.int64)
+        kern = self.kernels
+        if kern is not None:
+            lat = np.ascontiguousarray(latency, dtype=np.float64)
+            kern.meter_add(self._out, self._in, self._lk, self._lat, self._link_of,
+                           src, via, dst, lat, n)
+        else:
+            k = self._link_of[src * n + via]
+            np.add.at(self._out, src * n + dst, 1.0)
+            np.add.at(self._in, via * n + dst, 1.0)
+            np.add.at(self._lk, k, 1.0)
+            np.add.at(self._lat, k, np.asarray(latency, dtype=float))
+        self.rows += len(src)
+
+    def add_columns(self, fb: Any, vb: Any, db: Any, lb: Any) -> bool:
+        """Count rows given as little-endian int32 (from, via, destination) and float64
+        (latency) column bytes without copying them: True, or False (nothing counted)
+        where the compiled pass does not apply (then decode them and call :meth:`add`)."""
+        m = len(fb) // 4
+        kern = self.kernels
+        if kern is None or not (len(vb) == len(db) == len(fb) == 4 * m and len(lb) == 8 * m):
+            return False
+        kern.meter_add_cols(self._out, self._in, self._lk, self._lat, self._link_of,
+                            fb, vb, db, lb, self.n)
+        self.rows += m
+        return True
+
+    def take(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """(out, in, link rows, link latency sums) since the last take; counting restarts."""
+        got = (self._out.reshape(self.n, self.n), self._in.reshape(self.n, self.n),
+               self._lk, self._lat)
+        self._zero()
+        return got
+
+
+@dataclass
+class Rates:
+    """Smoothed measurements: ``out``/``into`` per (x, d) and ``link``/``lat`` per link,
+    in rows/s and latency-seconds/s."""
+
+    out: np.ndarray
+    into: np.ndarray
+    link: np.ndarray
+    lat: np.ndarray
+    t: float = -math.inf      # when they were last brought up to date (the caller's clock)
+
+    @classmethod
+    def empty(cls, n: int, n_links: int) -> Rates:
+        return cls(np.zeros((n, n)), np.zeros((n, n)), np.zeros(n_links), np.zeros(n_links))
+
+    def update(self, counts: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray],
+               dt: float, now: float, window: float) -> None:
+        """Fold in the counts of the last ``dt`` seconds (the first update takes them as they are)."""
+        if dt <= 0:
+            return
+        a = 1.0 if not math.isfinite(self.t) else 1.0 - math.exp(-dt / window)
+        for name, c in zip(("out", "into", "link", "lat"), counts):
+            cur = getattr(self, name)
+            cur += a * (c / dt - cur)
+        self.t = now
+
+    def demand(self) -> np.ndarray:
+        """(n, n) packets/s entering at x for d: out - in, floored at 0, no diagonal."""
+        r = np.maximum(self.out - self.into, 0.0)
+        np.fill_diagonal(r, 0.0)
+        return r
+
+
+def estimate(topo: Topology, rates: Rates, window: float, packet_bytes: float = 0.0) -> float:
+    """The mean packet size (bytes) for the model: ``packet_bytes`` when set, else the
+    median over busy links of capacity × M/M/1 service time / 8; 0.0 when unknown."""
+    if packet_bytes > 0:
+        return float(packet_bytes)
+    F = rates.link
+    busy = F * window >= BUSY_ROWS
+    if not busy.any():
+        return 0.0
+    L = rates.lat[busy] / F[busy]
+    tau = service_time(L, F[busy], topo.delay_s[busy])
+    size = float(np.median(tau * topo.capacity_bps[busy])) / 8.0
+    return size if size > 0 and math.isfinite(size) else 0.0
+
+
+def inputs_for(topo: Topology, shares: np.ndarray, live_slots: np.ndarray, demand: np.ndarray,
+               packet_bytes: float, owned: np.ndarray | None = None) -> dict[str, Any]:
+    """The plain arrays :func:`solve` takes: live links only (capacities in packets/s),
+    the published shares as per-link fractions over them, the demand."""
+    sl = topo.slot_link
+    alive = np.zeros(topo.n_links, dtype=bool)
+    alive[sl[(sl >= 0) & live_slots]] = True
+    keep = np.flatnonzero(alive)
+    frac = _fd.slot_fractions(topo, shares, owned)[:, keep]
+    return {"n": topo.n, "keep": keep,
+            "src": topo.src[keep].astype(np.int64), "dst": topo.dst[keep].astype(np.int64),
+            "cap_pps": topo.capacity_bps[keep] / (8.0 * packet_bytes), "prop_s": topo.delay_s[keep].copy(),
+            "frac": frac, "demand": demand, "packet_bytes": float(packet_bytes)}
+
+
+def solve(job: Mapping[str, Any], max_iter: int = 500,
+          stop: Callable[[], bool] | None = None) -> _fd.MinDelayResult:
+    """Flow deviation on :func:`inputs_for`'s arrays to a relative gap of 1e-3, at most
+    ``max_iter`` iterations, or until ``stop`` answers True (the caller's clock, if any)."""
+    return _fd.flow_deviation(int(job["n"]), job["src"], job["dst"], job["cap_pps"], job["prop_s"],
+                              job["demand"], tol=1e-3, max_iter=max_iter, stop=stop)
+
+
+def guide_shares(topo: Topology, keep: np.ndarray, fractions: np.ndarray) -> np.ndarray:
+    """A result's per-link fractions over the live links ``keep`` as (n, n, K) slot
+    shares, what :meth:`routerd.core.engine.Engine.seed_shares` takes."""
+    full = np.zeros((topo.n, topo.n_links))
+    full[:, keep] = fractions
+    return _fd.slot_shares_of(topo, full)
