@@ -59,9 +59,9 @@ class Meter:
     def add(self, src: np.ndarray, via: np.ndarray, dst: np.ndarray, latency: np.ndarray) -> None:
         """Count rows (node indices; latency in seconds)."""
         n = self.n
-        src = np.asarray(src, dtype=np.int64)
-        via = np.asarray(via, dtype=np.int64)
-        dst = np.asarray(dst, dtype=np.int64)
+        src = np.ascontiguousarray(src, dtype=np.int64)    # the compiled pass takes rows
+        via = np.ascontiguousarray(via, dtype=np.int64)    # of any array (a column of a
+        dst = np.ascontiguousarray(dst, dtype=np.int64)    # masked 2-D one is strided)
         kern = self.kernels
         if kern is not None:
             lat = np.ascontiguousarray(latency, dtype=np.float64)
