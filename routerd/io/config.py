@@ -87,7 +87,7 @@ SCHEMA: dict[str, Field] = {
     "engine.optimum.budget_s": F(float, 1.0, "most time one optimiser run may take; it then stops with the best routing so far and reports its gap", lo=0, lo_open=True),
     "engine.optimum.window_s": F(float, 10.0, "time constant of the measured demand and link rates the optimiser is fed", lo=0, lo_open=True),
     "engine.optimum.packet_bytes": F(float, 0.0, "mean packet size for the model (0 = estimated from the measured link latencies and rates, M/M/1 service time)", lo=0),
-    "engine.optimum.guide": F(bool, False, "split mode: each optimiser result seeds the learner's shares (whole destinations, live links only, kept acyclic; journaled as a guide record, so replay reproduces it)"),
+    "engine.optimum.guide": F(bool, False, "split mode: each optimiser result seeds the learner's shares (whole destinations, live links only, kept acyclic; journaled as a guide record, so replay reproduces it; the simulator runs the optimiser on simulated time)"),
     "engine.optimum.max_nodes": F(int, 300, "networks with more nodes get no optimum (its cost grows about as n^2 per iteration; measured in the README)", lo=2),
     "engine.variant": F(str, "plain", "learning rule: plain Q-routing, full_echo (all neighbours' estimates), predictive (recovery-rate prediction), dual (backward rows carried by packets), confidence (confidence-weighted steps)", choices=("plain", "full_echo", "predictive", "dual", "confidence")),
     "engine.full_echo.damping": F(float, 0.5, "full_echo: step multiplier of the echo updates of the hops not taken (1 = the published rule)", lo=0, hi=1, lo_open=True, tunable=True),
