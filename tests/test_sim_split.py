@@ -165,6 +165,18 @@ def test_the_boost_after_a_link_event_brings_traffic_back_to_a_repaired_link_soo
     assert back < lv["1"][1], lv
 
 
+def live_within_band(spec: dict[str, Any]) -> tuple[float, float]:
+    """Five in-process seeds, then the live service on seed 1's spec: asserts the live mean
+    inside their two-sided 95% prediction interval (see the test below); (mean, half width)."""
+    means = [run({**spec, "seed": k})["summary"]["mean_delivery_s"] for k in range(1, 6)]
+    m, s = float(np.mean(means)), float(np.std(means, ddof=1))
+    half = max(2.776 * s * math.sqrt(1 + 1 / 5), 0.03 * m)
+    live = run({**spec, "policy": "service"})["summary"]
+    assert live["policy"] == "service" and live["policy_service_rows_rejected"] == 0
+    assert abs(live["mean_delivery_s"] - m) <= half, (live["mean_delivery_s"], m, half, means)
+    return m, half
+
+
 def test_closed_loop_split_matches_in_process() -> None:
     """The live service in split mode (``--policy service``, engine.mode=split) against
     five in-process runs over five traffic seeds (the issue's "within the seeds'
@@ -179,12 +191,7 @@ def test_closed_loop_split_matches_in_process() -> None:
     spec = {"topology": bridges(), "policy": "qrouting", "rate_pps": 0.9 * saturation(),
             "duration_s": 12.0, "warmup_s": 4.0, "seed": 1, "series": False, "size_dist": "exp",
             "overrides": ["engine.mode=split", "sim.service.speed=1"]}
-    means = [run({**spec, "seed": k})["summary"]["mean_delivery_s"] for k in range(1, 6)]
-    m, s = float(np.mean(means)), float(np.std(means, ddof=1))
-    half = max(2.776 * s * math.sqrt(1 + 1 / 5), 0.03 * m)
-    live = run({**spec, "policy": "service"})["summary"]
-    assert live["policy"] == "service" and live["policy_service_rows_rejected"] == 0
-    assert abs(live["mean_delivery_s"] - m) <= half, (live["mean_delivery_s"], m, half, means)
+    m, half = live_within_band(spec)
     static = run({**spec, "policy": "shortest"})["summary"]
     assert static["mean_delivery_s"] - m > 3 * half       # the band is not vacuous
 
@@ -229,12 +236,7 @@ def test_closed_loop_guided_split_matches_in_process() -> None:
     spec = {"topology": bridges(), "policy": "qrouting", "rate_pps": 1.2 * saturation(),
             "duration_s": 16.0, "warmup_s": 6.0, "seed": 1, "series": False, "size_dist": "exp",
             "overrides": ov + ["engine.optimum.guide=true", "engine.optimum.interval_s=2"]}
-    means = [run({**spec, "seed": k})["summary"]["mean_delivery_s"] for k in range(1, 6)]
-    m, s = float(np.mean(means)), float(np.std(means, ddof=1))
-    half = max(2.776 * s * math.sqrt(1 + 1 / 5), 0.03 * m)
-    live = run({**spec, "policy": "service"})["summary"]
-    assert live["policy"] == "service" and live["policy_service_rows_rejected"] == 0
-    assert abs(live["mean_delivery_s"] - m) <= half, (live["mean_delivery_s"], m, half, means)
+    m, half = live_within_band(spec)
     alone = [run({**spec, "seed": k, "overrides": ov})["summary"]["mean_delivery_s"] for k in (1, 2, 3)]
     assert float(np.mean(alone)) - m > 3 * half, (alone, m, half)   # the band is not vacuous
 
