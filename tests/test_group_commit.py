@@ -18,6 +18,7 @@ import numpy as np
 import pytest
 import zmq
 
+from routerd.core import kernels as _kernels
 from routerd.core.engine import Engine, EngineSettings, HopBatch
 from routerd.core.topology import Topology
 from routerd.io import config, journal, wire
@@ -77,8 +78,7 @@ LOOPS = [pytest.param(False, id="python"),
 # the service picks the compiled loop unless every reference path is asked for
 SERVICE_LOOPS = [pytest.param({"engine.kernels": "reference"}, False, id="python"),
                  pytest.param({}, True, id="compiled", marks=pytest.mark.skipif(
-                     journal._fsync_core() is None or not __import__(
-                         "routerd.core.kernels", fromlist=["available"]).available(),
+                     journal._fsync_core() is None or not _kernels.available(),
                      reason="the compiled kernels or routerd.io._fsync are not built here"))]
 
 
