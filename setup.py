@@ -1,6 +1,7 @@
 """Build of routerd's optional compiled kernels (Cython): the engine's
-(routerd/core/_kernels.pyx → routerd.core._kernels) and the simulator's event loop
-(sim/_hops.pyx → routerd.sim._hops; sim/ installs as routerd.sim, see pyproject.toml).
+(routerd/core/_kernels.pyx → routerd.core._kernels), the simulator's event loop
+(sim/_hops.pyx → routerd.sim._hops; sim/ installs as routerd.sim, see pyproject.toml) and
+the journal writer thread's loop (routerd/io/_fsync.pyx → routerd.io._fsync).
 
 Everything else about the package is in pyproject.toml.  The extension is optional: if
 it cannot be built (no C compiler, a failing compile), the build says so in a warning and
@@ -19,7 +20,7 @@ from setuptools.command.build_ext import build_ext
 WARNING = ("routerd: the compiled kernels ({what}) could not be built ({why}); "
            "routerd will run on its reference path, correct but slower. Install a C "
            "compiler and reinstall for the compiled path.")
-ALL = "routerd.core._kernels, routerd.sim._hops"
+ALL = "routerd.core._kernels, routerd.sim._hops, routerd.io._fsync"
 
 
 class OptionalBuildExt(build_ext):
@@ -56,7 +57,8 @@ def extensions() -> list[Extension]:
     # the simulator's loop lives in sim/ (installed as routerd.sim): the module name is the
     # installed one, the source path the repository's
     for name, source in (("routerd.core._kernels", "routerd/core/_kernels.pyx"),
-                         ("routerd.sim._hops", "sim/_hops.pyx")):
+                         ("routerd.sim._hops", "sim/_hops.pyx"),
+                         ("routerd.io._fsync", "routerd/io/_fsync.pyx")):
         try:
             out += cythonize([Extension(name, [source], extra_compile_args=args)],
                              language_level=3, quiet=True)

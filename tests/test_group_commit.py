@@ -11,12 +11,14 @@ import select
 import tempfile
 import time
 from collections.abc import Iterator
+from contextlib import contextmanager, suppress
 from typing import Any
 
 import numpy as np
 import pytest
 import zmq
 
+from routerd.core import kernels as _kernels
 from routerd.core.engine import Engine, EngineSettings, HopBatch
 from routerd.core.topology import Topology
 from routerd.io import config, journal, wire
@@ -68,10 +70,47 @@ def _wait_wake(fd: int) -> None:
 
 
 # ---- journal.Syncer --------------------------------------------------------------------------
-def test_syncer_makes_requested_records_durable_and_reports_through_its_pipe(base: str) -> None:
-    j = journal.Journal(os.path.join(base, "j"), fsync="batch")
-    s = journal.Syncer(j)
+# Both writer loops: the Python one (the reference) and the compiled one (routerd.io._fsync,
+# no GIL), where built.
+LOOPS = [pytest.param(False, id="python"),
+         pytest.param(True, id="compiled", marks=pytest.mark.skipif(
+             journal._fsync_core() is None, reason="routerd.io._fsync is not built here"))]
+# the service picks the compiled loop unless every reference path is asked for
+SERVICE_LOOPS = [pytest.param({"engine.kernels": "reference"}, False, id="python"),
+                 pytest.param({}, True, id="compiled", marks=pytest.mark.skipif(
+                     journal._fsync_core() is None or not _kernels.available(),
+                     reason="the compiled kernels or routerd.io._fsync are not built here"))]
+
+
+@contextmanager
+def _failing_fsync(j: journal.Journal) -> Iterator[None]:
+    """Make the journal's fdatasync fail for real: under its descriptor lock (which both
+    writer loops respect) its descriptor becomes a pipe's, and fdatasync of a pipe is
+    EINVAL.  Records are appended before; the real descriptor comes back after (or is
+    closed, when the journal was closed meanwhile: a service whose storage failed)."""
+    r, w = os.pipe()
+    with j._fd_lock:
+        real, j._fd = j._fd, w
     try:
+        yield
+    finally:
+        with j._fd_lock:
+            if j._fd == w:
+                j._fd = real
+            else:                  # the journal gave up on it (closed): ours to close
+                os.close(real)
+        for fd in (r, w):
+            with suppress(OSError):
+                os.close(fd)
+
+
+@pytest.mark.parametrize("compiled", LOOPS)
+def test_syncer_makes_requested_records_durable_and_reports_through_its_pipe(
+        base: str, compiled: bool) -> None:
+    j = journal.Journal(os.path.join(base, "j"), fsync="batch")
+    s = journal.Syncer(j, compiled=compiled)
+    try:
+        assert s.compiled is compiled
         assert s.durable == 0
         for i in range(5):
             j.append("tick", {"t": float(i)}, sync=False)
@@ -90,7 +129,7 @@ def test_syncer_makes_requested_records_durable_and_reports_through_its_pipe(bas
 def test_syncer_keeps_the_error_and_nothing_more_becomes_durable(base: str, monkeypatch: Any) -> None:
     j = journal.Journal(os.path.join(base, "j"), fsync="batch")
     j.append("tick", {"t": 0.0}, sync=True)
-    s = journal.Syncer(j)
+    s = journal.Syncer(j, compiled=False)
     try:
         def broken() -> None:
             raise OSError(errno.EIO, "Input/output error")
@@ -106,30 +145,80 @@ def test_syncer_keeps_the_error_and_nothing_more_becomes_durable(base: str, monk
         j.close()
 
 
+@pytest.mark.parametrize("compiled", LOOPS)
+def test_a_real_fsync_failure_is_kept_and_nothing_more_becomes_durable(
+        base: str, compiled: bool) -> None:
+    j = journal.Journal(os.path.join(base, "j"), fsync="batch")
+    j.append("tick", {"t": 0.0}, sync=True)
+    s = journal.Syncer(j, compiled=compiled)
+    try:
+        j.append("tick", {"t": 1.0}, sync=False)
+        with _failing_fsync(j):
+            s.request(j.last_record)
+            _wait_wake(s.wake_fd)
+            assert isinstance(s.error, OSError) and s.error.errno == errno.EINVAL
+        assert s.durable == 1     # record 2 is written but not known to be on disk
+        s.drain()
+        j.append("tick", {"t": 2.0}, sync=False)
+        s.request(j.last_record)  # after a failure the thread syncs no more
+        assert not select.select([s.wake_fd], [], [], 0.05)[0] and s.durable == 1
+    finally:
+        s.close()
+        j.close()
+
+
+@pytest.mark.parametrize("compiled", LOOPS)
+def test_a_segment_roll_waits_for_the_sync_in_progress_and_the_next_sync_covers_the_new_segment(
+        base: str, compiled: bool) -> None:
+    # small segments: every few records the journal closes its descriptor and opens a new one
+    j = journal.Journal(os.path.join(base, "j"), fsync="batch", segment_bytes=1024)
+    s = journal.Syncer(j, compiled=compiled)
+    try:
+        for i in range(40):
+            j.append("tick", {"t": float(i), "pad": "x" * 200}, sync=False)
+            s.request(j.last_record)
+        while s.durable < j.last_record:
+            _wait_wake(s.wake_fd)
+            s.drain()
+        assert s.error is None and j.segments > 5
+    finally:
+        s.close()
+        j.close()
+    assert [r.body["t"] for r in journal.Journal(os.path.join(base, "j")).records()] == \
+        [float(i) for i in range(40)]
+
+
+def test_the_compiled_loop_is_refused_where_it_is_not_built(base: str, monkeypatch: Any) -> None:
+    j = journal.Journal(os.path.join(base, "j"), fsync="batch")
+    monkeypatch.setattr(journal, "_fsync_core", lambda: None)
+    try:
+        with pytest.raises(RuntimeError, match=r"routerd\.io\._fsync\) is not built"):
+            journal.Syncer(j, compiled=True)
+        s = journal.Syncer(j)            # the default falls back to the Python loop
+        assert s.compiled is False
+        s.close()
+    finally:
+        j.close()
+
+
 # ---- the service: answers wait for the fsync that covers them ---------------------------------
-def test_answers_wait_for_the_writer_threads_fsync(base: str, monkeypatch: Any) -> None:
-    svc = _service(base)
+@pytest.mark.parametrize("keys, compiled", SERVICE_LOOPS)
+def test_answers_wait_for_the_writer_threads_fsync(base: str, keys: dict[str, Any],
+                                                   compiled: bool) -> None:
+    svc = _service(base, **keys)
     rng = np.random.default_rng(3)
     sock = _Sock()
-    gate: list[int] = []
     try:
         syncer = svc._syncer_for_journal()
-        assert syncer is not None
-        real = syncer.journal.sync_written
-
-        def held() -> None:          # the fsync returns only once the test lets it
-            while not gate:
-                import time
-                time.sleep(0.001)
-            real()
-
-        monkeypatch.setattr(syncer.journal, "sync_written", held)
+        assert syncer is not None and syncer.compiled is compiled
         out, b = svc.ingest(_frame(rng, 1))
         svc._pending.append((svc._last_record, sock, [b"id", b"", out], b))
-        svc._request_sync()
-        svc._release(zmq)
-        assert sock.sent == []                       # not durable yet: nothing goes out
-        gate.append(1)
+        # the descriptor's lock held here: the thread's fsync cannot start (both loops)
+        with syncer.journal._fd_lock:
+            svc._request_sync()
+            assert not select.select([syncer.wake_fd], [], [], 0.05)[0]
+            svc._release(zmq)
+            assert sock.sent == []                       # not durable yet: nothing goes out
         _wait_wake(syncer.wake_fd)
         svc._synced(zmq)
         assert len(sock.sent) == 1 and "error" not in wire.decode_reply(sock.sent[0][-1])
@@ -138,27 +227,25 @@ def test_answers_wait_for_the_writer_threads_fsync(base: str, monkeypatch: Any) 
         svc.close()
 
 
+@pytest.mark.parametrize("keys, compiled", SERVICE_LOOPS)
 def test_a_failed_fsync_in_the_writer_thread_answers_unavailable_and_puts_the_service_down(
-        base: str, monkeypatch: Any) -> None:
-    svc = _service(base)
+        base: str, keys: dict[str, Any], compiled: bool) -> None:
+    svc = _service(base, **keys)
     rng = np.random.default_rng(4)
     sock = _Sock()
     try:
         syncer = svc._syncer_for_journal()
-        assert syncer is not None
-
-        def no_space() -> None:
-            raise OSError(errno.ENOSPC, "No space left on device")
-
-        monkeypatch.setattr(syncer.journal, "sync_written", no_space)
+        assert syncer is not None and syncer.compiled is compiled
         out, b = svc.ingest(_frame(rng, 1))
         assert "error" not in wire.decode_reply(out)
         svc._pending.append((svc._last_record, sock, [b"id", b"", out], b))
-        svc._request_sync()
-        _wait_wake(syncer.wake_fd)
-        svc._synced(zmq)
+        svc._flush_held()
+        with _failing_fsync(syncer.journal):
+            svc._request_sync()
+            _wait_wake(syncer.wake_fd)
+            svc._synced(zmq)
         rep = wire.decode_reply(sock.sent[0][-1])
-        assert rep["error"].startswith("unavailable:") and "ENOSPC" in rep["error"]
+        assert rep["error"].startswith("unavailable:") and "EINVAL" in rep["error"]
         assert svc.health()["storage"]["ok"] is False and svc._syncer is None
     finally:
         svc.close()

@@ -93,7 +93,7 @@ def _build_wheel(base: Any, extra_env: dict[str, str] | None = None
         if os.path.isdir(a):
             shutil.copytree(a, src / rel, ignore=shutil.ignore_patterns(
                 "__pycache__", "*.pyc", "*.egg-info", "*.so", "_kernels.c", "_kernels.html",
-                "_hops.c", "_hops.html"))
+                "_hops.c", "_hops.html", "_fsync.c", "_fsync.html"))
         else:
             shutil.copy2(a, src / rel)
     dist = base / "dist"
@@ -152,6 +152,8 @@ def test_compiled_kernels_are_built_and_active(installed: Installed) -> None:
     assert [n for n in names if re.fullmatch(r"routerd/core/_kernels\..*\.so", n)], names
     # the simulator's loop: its source is in sim/, installed as routerd.sim
     assert [n for n in names if re.fullmatch(r"routerd/sim/_hops\..*\.so", n)], names
+    # the journal writer thread's loop
+    assert [n for n in names if re.fullmatch(r"routerd/io/_fsync\..*\.so", n)], names
     assert not installed.wheel.endswith("-none-any.whl"), installed.wheel
     r = installed.run(installed.exe("python"), "-c", _STATUS)
     _check(r, "kernels.status()")
@@ -411,7 +413,7 @@ def test_source_distribution_carries_the_kernel_source(tmp_path: Any) -> None:
     src = tmp_path / "src"
     shutil.copytree(ROOT, src, ignore=shutil.ignore_patterns(
         ".git", ".venv", "__pycache__", "*.pyc", "*.egg-info", "*.so", "_kernels.c", "_hops.c",
-        "build",
+        "_fsync.c", "build",
         "dist", ".hypothesis", ".pytest_cache", "out"))
     r = subprocess.run([sys.executable, "setup.py", "-q", "sdist", "-d", str(tmp_path / "sd")],
                        cwd=str(src), env=_clean_env(None), capture_output=True, text=True,
@@ -424,3 +426,4 @@ def test_source_distribution_carries_the_kernel_source(tmp_path: Any) -> None:
     assert "routerd/core/_kernels.pyx" in names and "setup.py" in names, names
     assert "routerd/core/_kernels.c" not in names
     assert "sim/_hops.pyx" in names and "sim/_hops.c" not in names, names
+    assert "routerd/io/_fsync.pyx" in names and "routerd/io/_fsync.c" not in names, names

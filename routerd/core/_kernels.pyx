@@ -1281,7 +1281,9 @@ def guards_clean(const int64_t[::1] xs, const int64_t[::1] ys, const int64_t[::1
             if l < fl or l > ceiling or e > ceiling:
                 ok = False
                 break
-            if lk >= 0 and e < floor_dist[y * n + d]:
+            # a NaN estimate (absent) compares false: its floor is not read (a random
+            # read in an n x n table per row, the screen's costliest; same result)
+            if lk >= 0 and e == e and e < floor_dist[y * n + d]:
                 ok = False
                 break
     return ok

@@ -1095,6 +1095,32 @@ class Journal:
         self.close()
 
 
+def _fsync_core() -> Any:
+    """The compiled writer loop (``routerd.io._fsync``, built by setup.py beside the
+    engine's kernels), or None where it was not built."""
+    try:
+        from routerd.io import _fsync
+    except ImportError:
+        return None
+    return _fsync
+
+
+class _CoreFdLock:
+    """``Journal._fd_lock`` while a compiled writer loop syncs the journal: the loop's own
+    descriptor lock, handed the journal's descriptor as it is on every release (the
+    journal changes ``_fd`` only under this lock: a roll, a close)."""
+
+    def __init__(self, core: Any, journal: Journal):
+        self._core = core
+        self._journal = journal
+
+    def __enter__(self) -> None:
+        self._core.lock_fd()
+
+    def __exit__(self, *exc: object) -> None:
+        self._core.unlock_fd(self._journal._fd)
+
+
 class Syncer:
     """Group commit off the caller's thread: a writer thread that fdatasyncs a
     :class:`Journal` while its owner goes on appending.
@@ -1107,29 +1133,75 @@ class Syncer:
     next one (one fsync for all of them).  An ``OSError`` of the sync is kept in
     :attr:`error` and the thread stops syncing: nothing numbered above :attr:`durable` may
     then be acknowledged.  The owner must :meth:`close` the syncer before the journal.
-    Uses no clock and no sockets: a pipe, a condition variable, a thread."""
+    Uses no clock and no sockets: a pipe, a condition variable, a thread.
 
-    def __init__(self, journal: Journal):
+    ``compiled`` (default: when built): the thread runs the same loop in C without the
+    GIL (``routerd.io._fsync``, whose docstring says why: the Python loop took the GIL
+    back from the owner's thread after every sync); the journal's ``_fd_lock`` is then the
+    loop's descriptor lock until :meth:`close`.  False: this module's Python loop, which
+    syncs through :meth:`Journal.sync_written` (the reference; tests replace that method
+    to make a sync wait or fail)."""
+
+    def __init__(self, journal: Journal, compiled: bool | None = None):
         self.journal = journal
         self._cond = threading.Condition()
         self._target = 0
         self._durable = journal.last_record     # everything before us was synced by its writer
-        self.syncs = 0
-        self.error: BaseException | None = None
+        self._syncs = 0
+        self._error: BaseException | None = None
         self._stop = False
+        core = _fsync_core() if compiled is not False else None
+        if compiled and core is None:
+            raise RuntimeError("the compiled journal writer (routerd.io._fsync) is not built")
         self.wake_fd, self._wake_w = os.pipe()
         os.set_blocking(self.wake_fd, False)
         os.set_blocking(self._wake_w, False)
-        self._thread = threading.Thread(target=self._run, name="routerd-journal-sync", daemon=True)
+        self._core: Any = None
+        self._fd_lock_before: Any = None
+        if core is not None:
+            with journal._fd_lock:     # no roll or close while the descriptor is handed over
+                self._core = core.Writer(journal.last_record, journal._fd, self._wake_w)
+                self._fd_lock_before = journal._fd_lock
+                journal._fd_lock = _CoreFdLock(self._core, journal)
+            target = self._core.run
+        else:
+            target = self._run
+        self._thread = threading.Thread(target=target, name="routerd-journal-sync", daemon=True)
         self._thread.start()
+
+    @property
+    def compiled(self) -> bool:
+        """Whether the thread runs the compiled loop."""
+        return self._core is not None
 
     @property
     def durable(self) -> int:
         """The highest record number known to be on disk."""
+        if self._core is not None:
+            return int(self._core.durable)
         return self._durable
+
+    @property
+    def syncs(self) -> int:
+        """fdatasyncs done."""
+        if self._core is not None:
+            return int(self._core.state()[1])
+        return self._syncs
+
+    @property
+    def error(self) -> BaseException | None:
+        """The failed sync's error (then nothing more becomes durable), else None."""
+        if self._core is not None and self._error is None:
+            e = self._core.state()[2]
+            if e:
+                self._error = OSError(e, os.strerror(e))
+        return self._error
 
     def request(self, upto: int) -> None:
         """Ask for every record up to ``upto`` (already written) to be made durable."""
+        if self._core is not None:
+            self._core.request(upto)
+            return
         with self._cond:
             if upto > self._target:
                 self._target = upto
@@ -1144,7 +1216,7 @@ class Syncer:
     def _run(self) -> None:
         while True:
             with self._cond:
-                while not self._stop and (self._target <= self._durable or self.error is not None):
+                while not self._stop and (self._target <= self._durable or self._error is not None):
                     self._cond.wait()
                 if self._stop:
                     return
@@ -1152,19 +1224,26 @@ class Syncer:
             try:
                 self.journal.sync_written()
             except (OSError, JournalError) as e:
-                self.error = e
+                self._error = e
             else:
-                self.syncs += 1
+                self._syncs += 1
                 self._durable = upto
             with contextlib.suppress(BlockingIOError, OSError):
                 os.write(self._wake_w, b"s")
 
     def close(self) -> None:
         """Stop the thread (a sync in progress finishes first) and close the pipe."""
+        if self._core is not None:
+            self._core.stop()
         with self._cond:
             self._stop = True
             self._cond.notify()
         self._thread.join()
+        if self._core is not None and isinstance(self.journal._fd_lock, _CoreFdLock):
+            self.error    # noqa: B018 - keep the loop's last error before it goes
+            self._core.lock_fd()
+            self.journal._fd_lock = self._fd_lock_before
+            self._core.unlock_fd(-1)
         for fd in (self.wake_fd, self._wake_w):
             with contextlib.suppress(OSError):
                 os.close(fd)

@@ -1083,7 +1083,10 @@ class Service:
                 self.commit()          # the writer thread starts from a durable journal
             if self.journal is None:
                 return None
-            self._syncer = _journal.Syncer(self.journal)
+            # the writer loop in C without the GIL where built, unless every reference
+            # path was asked for (engine.kernels: reference)
+            self._syncer = _journal.Syncer(
+                self.journal, compiled=None if self.pipeline.kernels is not None else False)
             self._syncs_seen = 0
             # the writer thread needs the GIL for a few bytecodes after each fsync; with
             # the default 5 ms switch interval every acknowledgement could wait that long
