@@ -72,6 +72,8 @@ VARIANTS = ("plain", "full_echo", "predictive", "dual", "confidence", "split", "
 #: of simulated time seeds the shares (routerd.sim.policies._Guide; the service's default
 #: interval is 5 s)
 GUIDED = ("engine.mode=split", "engine.optimum.guide=true", "engine.optimum.interval_s=2")
+#: the settings of the labels that are not an engine.variant
+MODES = {"split": ("engine.mode=split",), "guided": GUIDED}
 #: the labels issue 14's targets are checked for
 SPLITS = ("split", "guided")
 #: baselines: static shortest paths, shortest paths recomputed after failures, the optimum
@@ -209,9 +211,8 @@ def one(job: dict[str, Any]) -> dict[str, Any]:
     pol = None
     if label in VARIANTS:
         spec["policy"] = "qrouting"
-        spec["overrides"] = list(spec.get("overrides", ())) + (
-            ["engine.mode=split"] if label == "split" else list(GUIDED) if label == "guided"
-            else [f"engine.variant={label}"])
+        spec["overrides"] = list(spec.get("overrides", ())) + list(
+            MODES.get(label, (f"engine.variant={label}",)))
         pol = CountingQRouting()
     else:
         spec["policy"] = label
@@ -621,9 +622,9 @@ def split_targets(summ: dict[str, Any]) -> list[dict[str, Any]]:
     (issue 14's steady aims)."""
     by = {(r["topology"], r["load"], r["policy"]): r for r in summ["steady"]}
     out = []
-    for (topo, lf, pol), r in sorted(by.items(), key=lambda kv: (SPLITS.index(kv[0][2]) if kv[0][2] in SPLITS else -1, kv[0])):
-        if pol not in SPLITS:
-            continue
+    for topo, lf, pol in sorted((k for k in by if k[2] in SPLITS),
+                                key=lambda k: (SPLITS.index(k[2]), k)):
+        r = by[(topo, lf, pol)]
         md, sh = by.get((topo, lf, "mindelay")), by.get((topo, lf, "shortest"))
         row: dict[str, Any] = {"policy": pol, "topology": topo, "load": lf, "split_ms": r["mean_delivery_ms"],
                                "loops_per_s": r["loops_prevented_per_s"]}
