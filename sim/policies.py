@@ -45,7 +45,8 @@ from typing import Any
 
 import numpy as np
 
-from routerd.core.demand import Meter, Rates, estimate, guide_shares, inputs_for, solve
+from routerd.core.demand import (Meter, Rates, estimate, guide_shares, inputs_for, published_view,
+                                 solve)
 from routerd.core.engine import Engine, EngineSettings, HopBatch
 from routerd.core.errors import InputError, Problem
 from routerd.core.topology import Topology
@@ -276,8 +277,8 @@ class _Guide:
         size = estimate(self.topo, self.rates, self.window, self.packet_bytes)
         if demand.sum() <= 0 or size <= 0:
             return
-        job = inputs_for(self.topo, engine.published_shares(), engine.live & engine._present,
-                         demand, size, engine.owned)
+        shares, live, owned = published_view(engine)
+        job = inputs_for(self.topo, shares, live, demand, size, owned)
         res = solve(job)
         self.runs += 1
         if not res.feasible:

@@ -26,7 +26,8 @@ from routerd.core import kernels as _kernels
 from routerd.core.splitting import service_time
 from routerd.core.topology import Topology
 
-__all__ = ["BUSY_ROWS", "Meter", "Rates", "estimate", "guide_shares", "inputs_for", "solve"]
+__all__ = ["BUSY_ROWS", "Meter", "Rates", "estimate", "guide_shares", "inputs_for", "published_view",
+           "solve"]
 
 #: Least rows a link needs in the window to count towards the packet-size estimate.
 BUSY_ROWS = 4.0
@@ -142,6 +143,12 @@ def estimate(topo: Topology, rates: Rates, window: float, packet_bytes: float = 
     tau = service_time(L, F[busy], topo.delay_s[busy])
     size = float(np.median(tau * topo.capacity_bps[busy])) / 8.0
     return size if size > 0 and math.isfinite(size) else 0.0
+
+
+def published_view(engine: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+    """What :func:`inputs_for` needs of an engine: its published shares, the slots of live
+    links that exist, the destinations it owns (the caller holds whatever lock guards it)."""
+    return engine.published_shares(), engine.live & engine._present, engine.owned
 
 
 def inputs_for(topo: Topology, shares: np.ndarray, live_slots: np.ndarray, demand: np.ndarray,

@@ -273,8 +273,7 @@ class Optimum:
         """The runner of a :class:`routerd.service.daemon.Service` (its config, topology,
         lock, clock and engine; a class attribute ``optimum_off`` turns it off)."""
         def view() -> tuple[Any, ...]:
-            eng = svc.engine
-            return svc.topo, eng.published_shares(), eng.live & eng._present, eng.owned
+            return (svc.topo, *_demand.published_view(svc.engine))
         return cls(svc.cfg, svc.topo, view, svc.lock, svc.clock.monotonic,
                    off="sharded" if getattr(svc, "optimum_off", None) else None)
 
