@@ -43,9 +43,15 @@ def test_gate_holds_work_sockets_at_the_limit_keeps_a_share_for_control_and_rele
     assert g.accepted("ingest", 132) == [("drop", 132)]
     assert g.refused["ingest"] == 1
     assert g.disconnected("ingest", 132) == []   # its disconnect takes it off the count
-    # control still takes connections, up to the cap
+    # a whole burst queued before the hold (BURST per socket) is cut off without taking
+    # the control share: control connections accepted while it is cut are kept
+    burst = range(300, 300 + L.BURST)
+    assert all(g.accepted("ingest", fd) == [("drop", fd)] for fd in burst)
+    assert g.total == 32 and g.refused["ingest"] == 1 + L.BURST
     for fd in range(200, 207):
         assert g.accepted("control", fd) == []
+    assert all(g.disconnected("ingest", fd) == [] for fd in burst)
+    assert g.total == 39 and g.cutting["ingest"] == set()
     assert g.accepted("control", 207) == [("pause", ("control",))]
     assert g.state == "paused" and g.total == 40 and g.pauses == 1
     # an over-cap control connection is cut off too

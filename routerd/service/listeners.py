@@ -36,7 +36,9 @@ what its descriptor limit allows:
   :data:`CONTROL_SHARE` connections of the cap for themselves, so an operator can still
   ask ``health`` while reporters flood the ingest;
 * a connection accepted over the cap anyway (queued before the hold) is cut off at once
-  (``shutdown`` of its descriptor; libzmq then closes it) and counted as refused;
+  (``shutdown`` of its descriptor; libzmq then closes it) and counted as refused; until
+  its disconnect event it is counted apart (it uses the BURST headroom, not the cap), so
+  a burst on the work sockets never takes the control share;
 * when the count falls to :data:`LOW_WATER` of the cap the listeners are released;
 * an ``EVENT_ACCEPT_FAILED`` (descriptors gone whatever we counted: something else used
   them) closes that listener, the only way to end the tcp spin, and it listens again a
@@ -310,12 +312,17 @@ class Gate:
     names: tuple[str, ...]
     state: str = "open"
     open: dict[str, set[int]] = field(default_factory=dict)
+    #: connections accepted over their limit and being cut off, until their disconnect
+    #: event: outside the cap (they use the :data:`BURST` headroom), so a burst queued on
+    #: the work sockets before a hold never takes the control share and holds control too
+    cutting: dict[str, set[int]] = field(default_factory=dict)
     refused: dict[str, int] = field(default_factory=dict)
     accept_failures: dict[str, int] = field(default_factory=dict)
     pauses: int = 0
 
     def __post_init__(self) -> None:
         self.open = {n: set() for n in self.names}
+        self.cutting = {n: set() for n in self.names}
         self.refused = dict.fromkeys(self.names, 0)
         self.accept_failures = dict.fromkeys(self.names, 0)
 
@@ -363,15 +370,18 @@ class Gate:
         return out
 
     def accepted(self, name: str, fd: int) -> list[tuple[str, Any]]:
-        self.open[name].add(fd)
         limit = self.cap if name in CONTROL_SOCKETS else self.work_limit
-        out: list[tuple[str, Any]] = []
-        if self.total > limit:
+        if self.total >= limit:
             self.refused[name] += 1
-            out.append(("drop", fd))           # its disconnect event takes it off the count
-        return out + self._move(self._level())
+            self.cutting[name].add(fd)         # its disconnect event takes it off
+            return [("drop", fd)]
+        self.open[name].add(fd)
+        return self._move(self._level())
 
     def disconnected(self, name: str, fd: int) -> list[tuple[str, Any]]:
+        if fd in self.cutting[name]:
+            self.cutting[name].discard(fd)
+            return []
         if fd not in self.open[name]:
             return []
         self.open[name].discard(fd)
@@ -388,6 +398,7 @@ class Gate:
         """``name``'s connections are gone without disconnect events (its listener was
         closed: libzmq closes the connections accepted through it)."""
         self.open[name].clear()
+        self.cutting[name].clear()
         return self._move(self._level())
 
     def tick(self) -> list[tuple[str, Any]]:
@@ -682,6 +693,7 @@ class Listeners:
     def figures(self) -> dict[str, Any]:
         g = self.gate
         return {"cap": g.cap, "open": {n: len(s) for n, s in g.open.items()},
+                "cutting": {n: len(s) for n, s in g.cutting.items()},
                 "refused": dict(g.refused), "accept_failures": dict(g.accept_failures),
                 "pauses": g.pauses, "paused": list(g.paused()), "fd_limit": self.budget.limit,
                 "resets": len(self._closed)}
