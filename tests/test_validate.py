@@ -117,6 +117,41 @@ def test_graphml_file(tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
     assert rc == 0 and lines[0].startswith(f"OK {path}: topology ")
 
 
+def test_node_link_json_from_networkx_and_every_malformed_shape(tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    import json
+
+    G = nx.Graph()
+    G.add_edge("p", "q", delay_s=0.001, capacity_bps=1e6, buffer_pkts=5)
+    G.add_edge("q", "r", delay_s=0.001, capacity_bps=1e6, buffer_pkts=5)
+    good = nx.node_link_data(G)   # networkx as the reference node-link writer
+    path = _w(tmp_path, "g.json", json.dumps(good))
+    rc, lines = _run(capsys, path)
+    assert rc == 0 and lines[0].startswith(f"OK {path}: topology "), lines
+    ekey = "edges" if "edges" in good else "links"
+    nodes = good["nodes"]
+    # each a shape the reader once crashed on (TypeError / AttributeError): now a named
+    # problem and exit 1
+    bad = {
+        "null-edges": ({**good, ekey: None}, f"{ekey}: is null, must be an array of edge objects"),
+        "int-nodes": ({**good, "nodes": [1, 2]}, "nodes[0]: is a number, must be an object"),
+        "object-nodes": ({**good, "nodes": {"p": {}}}, "nodes: is an object, must be an array"),
+        "array-edge": ({**good, ekey: [["p", "q"]]}, f"{ekey}[0]: is an array, must be an object"),
+        "list-id": ({**good, "nodes": [{"id": ["p"]}] + nodes[1:]},
+                    "nodes[0].id: ['p'] must be a number or a string"),
+        "no-id": ({**good, "nodes": [{}] + nodes[1:]}, "nodes[0].id: is missing"),
+        "same-id": ({**good, "nodes": nodes + nodes[:1]}, "'p' is an id given to more than one node"),
+        "list-end": ({**good, ekey: [{**good[ekey][0], "source": ["p"]}] + good[ekey][1:]},
+                     "names an unknown node id"),
+        "graph-str": ({**good, "graph": "lab"}, "graph: is a string, must be an object"),
+        "demand-row": ({**good, "graph": {"demands": {"p": [1]}}},
+                       "graph.demands[p]: is an array, must be an object of destination"),
+    }
+    for name, (doc, want) in bad.items():
+        path = _w(tmp_path, f"{name}.json", json.dumps(doc))
+        rc, lines = _run(capsys, path)
+        assert rc == 1 and any(want in x for x in lines), (name, lines)
+
+
 def test_schema_and_usage(capsys) -> None:  # type: ignore[no-untyped-def]
     rc, lines = _run(capsys, "--schema")
     assert rc == 0

@@ -102,6 +102,16 @@ def _num(s: str | None) -> Any:
     return s if v is None else float(v)  # a string: build() says "is not a number" and where
 
 
+def _json_kind(v: Any) -> str:
+    """What a decoded JSON value is, in JSON's words (for a message)."""
+    if v is None:
+        return "null"
+    if isinstance(v, bool):
+        return "true/false"
+    return {dict: "an object", list: "an array", str: "a string"}.get(
+        type(v), "a number" if isinstance(v, (int, float)) else type(v).__name__)
+
+
 def from_node_link(doc: Any, *, source: str = "<node-link>",
                    defaults: LinkDefaults = LinkDefaults()) -> Topology:
     """networkx node-link JSON (``edges`` or ``links`` key), topohub's flavour included.
@@ -113,18 +123,43 @@ def from_node_link(doc: Any, *, source: str = "<node-link>",
     if not isinstance(doc, dict) or "nodes" not in doc:
         raise TopologyError(Problem(source, type(doc).__name__, "is not a node-link document"))
     raw_nodes = doc["nodes"]
+    ekey = "edges" if "edges" in doc else "links"
+    edges = doc.get(ekey, [])
+    g = doc.get("graph") or {}
+    # the document's shape first: every later step reads it as lists of maps
+    shape = [Problem(f"{source}: {k}", None, f"is {_json_kind(v)}, must be {want}")
+             for k, v, ok, want in (
+                 ("nodes", raw_nodes, isinstance(raw_nodes, list), "an array of node objects"),
+                 (ekey, edges, isinstance(edges, list), "an array of edge objects"),
+                 ("graph", g, isinstance(g, dict), "an object"))
+             if not ok]
+    if not shape:
+        shape = [Problem(f"{source}: {k}[{i}]", None, f"is {_json_kind(v)}, must be an object")
+                 for k, items in (("nodes", raw_nodes), (ekey, edges))
+                 for i, v in enumerate(items) if not isinstance(v, dict)]
+    if not shape:
+        shape = [Problem(f"{source}: nodes[{i}].id", nd.get("id"),
+                         "must be a number or a string" if "id" in nd else "is missing")
+                 for i, nd in enumerate(raw_nodes)
+                 if isinstance(nd.get("id"), bool) or not isinstance(nd.get("id"), (int, float, str))]
+    if shape:
+        raise TopologyError(shape)
     ids = [nd.get("id") for nd in raw_nodes]
     names = [nd.get("name") for nd in raw_nodes]
     use_names = all(isinstance(x, str) and x for x in names) and len(set(names)) == len(names)
     label = {i: (str(nm) if use_names else str(i)) for i, nm in zip(ids, names)}
-    edges = doc.get("edges", doc.get("links", []))
+    if len(label) != len(ids):
+        seen: set[Any] = set()
+        dup = next(i for i in ids if i in seen or seen.add(i))   # type: ignore[func-returns-value]
+        raise TopologyError(Problem(f"{source}: nodes", dup, "is an id given to more than one node"))
     directed = bool(doc.get("directed", False))
     specs: list[LinkSpec] = []
     problems: list[Problem] = []
     for i, e in enumerate(edges):
-        w = f"{source}: edges[{i}] ({e.get('source')} - {e.get('target')})"
-        if e.get("source") not in label or e.get("target") not in label:
-            problems.append(Problem(w, (e.get("source"), e.get("target")), "names an unknown node id"))
+        w = f"{source}: {ekey}[{i}] ({e.get('source')} - {e.get('target')})"
+        ends = (e.get("source"), e.get("target"))
+        if not all(isinstance(x, (int, float, str)) and x in label for x in ends):
+            problems.append(Problem(w, ends, "names an unknown node id"))
             continue
         if "delay_s" in e:
             delay = e["delay_s"]
@@ -140,12 +175,16 @@ def from_node_link(doc: Any, *, source: str = "<node-link>",
         a, b = label[e["source"]], label[e["target"]]
         for s, t in ([(a, b)] if directed else [(a, b), (b, a)]):
             specs.append(LinkSpec(s, t, delay, e.get("capacity_bps"), e.get("buffer_pkts"), w))
-    g = doc.get("graph") or {}
     dem = None
     if isinstance(g.get("demands"), dict):
         dem = {}
         by_id = {str(k): v for k, v in label.items()}
         for a, row in g["demands"].items():
+            if row is not None and not isinstance(row, dict):
+                problems.append(Problem(f"{source}: graph.demands[{a}]", None,
+                                        f"is {_json_kind(row)}, must be an object of destination "
+                                        "-> demand"))
+                continue
             for b, v in (row or {}).items():
                 dem[(by_id.get(str(a), str(a)), by_id.get(str(b), str(b)))] = v
     name = str(g.get("name") or os.path.splitext(os.path.basename(source))[0])
