@@ -269,3 +269,54 @@ def test_validate_checks_what_the_commands_check(tmp_path, capsys) -> None:  # t
     # --set and --capacity-bps follow the one rule: the command line beats the config
     rc, lines = _run(capsys, cfg2, "--set", "engine.step.alpha=7")
     assert rc == 1 and any("engine.step.alpha: 7 is above 1" in ln for ln in lines)
+
+
+SHAPES = [None, 0, -1, 1.5, "x", "", [], [1], ["a", "b", "c"], {}, {"a": 1}, True, [[1, 2]],
+          [{"a": 1}]]
+
+
+def _key_paths(doc, pre=()):  # type: ignore[no-untyped-def]
+    yield pre
+    if isinstance(doc, dict):
+        for k, v in doc.items():
+            yield from _key_paths(v, pre + (k,))
+    elif isinstance(doc, list):
+        for i, v in enumerate(doc[:3]):
+            yield from _key_paths(v, pre + (i,))
+
+
+def test_any_value_of_the_wrong_kind_anywhere_in_a_shipped_file_is_a_problem_not_a_crash(
+        tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    """Every key path of every shipped YAML input (the demo lab and scenario, configs/) set in
+    turn to a value of each JSON/YAML kind: ``validate`` answers 0 or 1 with its report, never
+    an exception (it once crashed on a list as a topology default and a null underlay)."""
+    import copy
+    import shutil
+
+    root = os.path.dirname(CONFIGS)
+    work = tmp_path / "configs"
+    shutil.copytree(CONFIGS, work)         # the configs refer to each other by relative path
+    shutil.copy(os.path.join(root, "routerd", "data", "demo-scenario.yaml"), work)
+    shutil.copy(os.path.join(root, "routerd", "data", "demo-lab.yaml"), work)
+    names = ["demo-lab.yaml", "demo-scenario.yaml"] + sorted(os.listdir(CONFIGS))
+    cases = 0
+    for name in names:
+        path = work / name
+        base = yaml.safe_load(path.read_text())
+        for kp in list(_key_paths(base)):
+            for v in SHAPES:
+                doc = copy.deepcopy(base)
+                if kp:
+                    cur = doc
+                    for k in kp[:-1]:
+                        cur = cur[k]
+                    cur[kp[-1]] = v
+                else:
+                    doc = v
+                path.write_text(yaml.safe_dump(doc))
+                rc = cli.main(["validate", str(path)])
+                capsys.readouterr()
+                assert rc in (0, 1), (name, kp, v)
+                cases += 1
+        path.write_text(yaml.safe_dump(base))
+    assert cases > 1500

@@ -172,7 +172,8 @@ def _underlay_form(path: str) -> tuple[list[UnderlayEntry], list[tuple[int, Prob
     if not os.path.exists(path):
         raise InputError(Problem(path, path, "does not exist (agent.underlay)"))
     doc = read_yaml(path)
-    links = (doc or {}).get("underlay", {}).get("links") if isinstance(doc, dict) else None
+    section = doc.get("underlay") if isinstance(doc, dict) else None
+    links = section.get("links") if isinstance(section, dict) else None
     if not isinstance(links, list):
         raise InputError(Problem(f"{path}: underlay.links", links, "must be a list of links"))
     out: list[UnderlayEntry] = []

@@ -532,8 +532,9 @@ def build(
                 )
                 break
     if problems:
-        # an undirected link is two directed ones: report each problem once
-        raise TopologyError(list(dict.fromkeys(problems)))
+        # an undirected link is two directed ones: report each problem once (by its text,
+        # since a value may be a list or a map and so not hashable)
+        raise TopologyError(list({str(p): p for p in problems}.values()))
     return Topology(
         name=name,
         nodes=tuple(node_list),
