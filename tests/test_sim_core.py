@@ -271,7 +271,7 @@ def test_a_stopped_run_counts_exactly_what_happened_before_the_cut(loop: str) ->
     """A StopRequest made at the sample at t = 3 s ends the run there, between two events:
     its counts equal those of a run of 3 s (the series, deliveries, drops, events), and it
     says where it stopped.  Both loops (the compiled one looks at the request at every tick
-    and sample)."""
+    and sample, and every 65,536 events)."""
     from routerd.sim.core import StopRequest, hops_status
 
     if loop == "compiled" and hops_status("auto")["path"] != "compiled":
@@ -306,3 +306,35 @@ def test_a_stopped_run_counts_exactly_what_happened_before_the_cut(loop: str) ->
         stop.request()
     with pytest.raises(KeyboardInterrupt):
         StopRequest().request()
+
+
+def test_ctrl_c_ends_a_compiled_run_between_samples_at_a_very_high_rate() -> None:
+    """At 2 M packets/s the compiled loop takes seconds of wall time per simulated second, so
+    a Ctrl-C (SIGINT, turned into a StopRequest as ``routerd simulate`` does) must be seen
+    between two samples (it used to wait for the next tick or sample: tens of seconds at
+    10^9 packets/s).  The counts stay those of a run that ended at the cut."""
+    import os
+    import signal
+    import threading
+
+    from routerd.sim.core import StopRequest, hops_status
+
+    if hops_status("auto")["path"] != "compiled":
+        pytest.skip(hops_status("auto")["reason"])
+    spec = {"policy": "shortest", "rate_pps": 2e6, "duration_s": 10.0, "seed": 5,
+            "warmup_s": 0.0, "series": True, "overrides": ["engine.kernels=compiled"]}
+    stop = StopRequest()
+    old = signal.signal(signal.SIGINT, lambda signum, frame: stop.request())
+    timer = threading.Timer(0.3, os.kill, (os.getpid(), signal.SIGINT))
+    try:
+        timer.start()
+        part = run(spec, stop=stop)
+    finally:
+        timer.cancel()
+        signal.signal(signal.SIGINT, old)
+    p = part["summary"]
+    assert p["interrupted"] is True
+    assert 0.0 < p["reached_s"] < 1.0, p["reached_s"]     # before the first sample at 1 s
+    assert part["series"]["t_s"] == []
+    assert p["offered"] == p["delivered"] + p["dropped"] + p["ttl_expired"] + p["in_flight_at_end"]
+    assert p["offered"] > 1000
