@@ -108,8 +108,8 @@ def _json_kind(v: Any) -> str:
         return "null"
     if isinstance(v, bool):
         return "true/false"
-    return {dict: "an object", list: "an array", str: "a string"}.get(
-        type(v), "a number" if isinstance(v, (int, float)) else type(v).__name__)
+    kinds: dict[type, str] = {dict: "an object", list: "an array", str: "a string"}
+    return kinds.get(type(v), "a number" if isinstance(v, (int, float)) else type(v).__name__)
 
 
 def from_node_link(doc: Any, *, source: str = "<node-link>",
