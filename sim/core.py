@@ -221,7 +221,8 @@ def run_core(
     ``ttl_expired``, ``in_network``) and live references to the measured ``deliveries``
     list and the ``series`` lists so far; it must not modify them.  ``stop``: see
     "Stopping early" in the module docstring (the compiled loop looks at it at every tick
-    and sample, so its cut comes at the first of those after the request).  ``kernels``:
+    and sample, and every 65,536 events, when it also lets Python run its signal handlers;
+    its cut comes at the first of those after the request).  ``kernels``:
     which loop runs (:func:`hops_status`); both give the same result.
     """
     compiled = hops_module(kernels)
