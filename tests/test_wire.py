@@ -331,6 +331,25 @@ def test_ack_shape() -> None:
     assert wire.decode_reply(raw)["accepted"] == 3
 
 
+@given(st.integers(0, 2**64 - 1), st.integers(0, 2**64 - 1))
+@settings(max_examples=300, deadline=None)
+def test_an_ack_without_rejections_is_the_packed_map(batch: int, accepted: int) -> None:
+    # the spliced common answer against msgpack's own packing of the documented map (the
+    # reference library), at every width of a msgpack unsigned integer (msgpack spec:
+    # positive fixint, uint 8/16/32/64)
+    want = msgpack.packb({"v": 1, "batch": batch, "accepted": accepted, "rejected": []},
+                         use_bin_type=True)
+    assert wire.encode_ack(batch, accepted) == want
+    assert wire.encode_ack(np.uint64(batch), accepted, []) == want
+    assert wire.encode_ack(batch, accepted, ()) == want
+
+
+@pytest.mark.parametrize("v", [0, 127, 128, 255, 256, 65535, 65536, 2**32 - 1, 2**32, 2**64 - 1])
+def test_an_ack_at_each_integer_width_edge(v: int) -> None:
+    assert wire.encode_ack(v, v) == msgpack.packb(
+        {"v": 1, "batch": v, "accepted": v, "rejected": []}, use_bin_type=True)
+
+
 @pytest.mark.parametrize("data", [b"\xc1", msgpack.packb([1]), msgpack.packb({"v": 2})])
 def test_decode_reply_refuses_garbage(data: bytes) -> None:
     with pytest.raises(wire.BadReply):

@@ -193,6 +193,8 @@ class Dedup:
         self._entries -= 1
 
     def _pack(self, rejected: Iterable[Any]) -> bytes:
+        if type(rejected) is list and not rejected:
+            return b""
         kept = list(islice(rejected, REJECTIONS_KEPT))
         if not kept:
             return b""
