@@ -310,8 +310,6 @@ class Pipeline:
         t0 = timer() if timer is not None else 0.0
         res, changed = _journal.apply_batch(eng, ing.hops, ing.links, wall)
         dt = timer() - t0 if timer is not None else None
-        if not (ing.links or ing.rejected or len(res.rejected)):
-            return self._applied_whole(ing, res, wall, dt)
         rejected = ing.rejections(res.rejected)
         accepted = res.accepted + len(ing.links)
         # every row as received was applied: journal the frame's own column bytes
@@ -327,18 +325,3 @@ class Pipeline:
         return Fed(answer=wire.encode_ack(ing.batch, accepted, rejected), batch=ing.batch,
                    counts=counts, records=(record,), touched=bool(res.accepted or any(changed)),
                    urgent=tuple(int(lk[0]) for lk, c in zip(ing.links, changed) if c))
-
-    def _applied_whole(self, ing: wire.Ingest, res: Any, wall: float, dt: float | None) -> Fed:
-        """:meth:`_apply`'s outcome for a batch of hop rows only, every one applied (the
-        common case): the same answer, record and counts, without the steps that merge
-        rejections and link rows."""
-        acc = res.accepted
-        rejected: list[list[Any]] = []
-        record = ("batch", _journal.batch_body(
-            ing.reporter, ing.batch, wall, ing.hops, (), {"accepted": acc, "rejected": rejected},
-            raw=ing.raw_cols))
-        self.dedup.put(ing.reporter, ing.batch, acc, rejected)
-        counts = Counts(result="accepted", observations=acc,
-                        td_errors=np.abs(res.td_errors) if acc else None, update_s=dt)
-        return Fed(answer=wire.encode_ack(ing.batch, acc, rejected), batch=ing.batch,
-                   counts=counts, records=(record,), touched=bool(acc))
