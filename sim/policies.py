@@ -270,7 +270,10 @@ class _Guide:
             self.guides += 1
             self.seeded += got[0]
             self.left += got[1]
-        if now < self.next_at:
+        # one run at a time, as the service's runner waits for its child: a result still
+        # in flight is applied before the next run starts (with interval_s < budget_s each
+        # run used to replace the one before it unapplied, and nothing was ever seeded)
+        if now < self.next_at or self.pending is not None:
             return
         self.next_at = now + self.interval
         self.rates.update(self.meter.take(), now - self.taken_at, now, self.window)

@@ -239,6 +239,17 @@ def test_guided_cold_start_is_seeded_early_from_a_fair_demand() -> None:
     assert level(1.0, 4.0) <= 3.2 * level(10.0, 16.0), (level(1.0, 4.0), level(10.0, 16.0))
 
 
+def test_guide_runs_one_at_a_time_when_the_interval_is_shorter_than_the_budget() -> None:
+    # the service's runner waits for its child before the next run; the simulated guide
+    # too: a run every 0.5 s with results landing engine.optimum.budget_s (1 s) later seeds
+    # every other interval instead of replacing each result before it lands (0 guides)
+    r = sim("split", 0.6, duration_s=6.0, warmup_s=0.0,
+            overrides=["engine.optimum.guide=true", "engine.optimum.interval_s=0.5"])
+    s = r["summary"]
+    assert s["policy_optimum_guides"] >= 3, s
+    assert s["policy_optimum_runs"] <= s["policy_optimum_guides"] + 1, s
+
+
 def test_guided_split_through_a_link_cut_seeds_over_the_live_links() -> None:
     # rows the engine rejects while the bridge is down are left out of the counts (a
     # masked column is a strided array: the compiled meter once refused it), and every
