@@ -219,7 +219,8 @@ class _Guide:
     optimiser (:mod:`routerd.service.optimum`) as the simulator can run it.
 
     The rows the engine accepted are counted (:class:`routerd.core.demand.Meter`); every
-    ``engine.optimum.interval_s`` of simulated time the counts become smoothed rates
+    ``engine.optimum.interval_s`` of simulated time (the first time after
+    ``engine.optimum.first_s``) the counts become smoothed rates
     (``engine.optimum.window_s``), flow deviation runs on the measured demand over the
     live links (:func:`routerd.core.demand.solve`, to its gap or 500 iterations: no wall
     clock, so a run is reproducible), and a feasible result seeds the engine's shares
@@ -237,7 +238,8 @@ class _Guide:
         self.window = float(settings["engine.optimum.window_s"])
         self.lag = float(settings["engine.optimum.budget_s"])
         self.packet_bytes = float(settings["engine.optimum.packet_bytes"])
-        self.next_at = self.interval
+        # the first run after engine.optimum.first_s, as the service's runner does
+        self.next_at = min(float(settings["engine.optimum.first_s"]), self.interval)
         self.taken_at = 0.0
         self.pending: tuple[float, np.ndarray] | None = None
         self.runs = self.infeasible = self.guides = self.seeded = self.left = 0
@@ -268,7 +270,10 @@ class _Guide:
             self.guides += 1
             self.seeded += got[0]
             self.left += got[1]
-        if now < self.next_at:
+        # one run at a time, as the service's runner waits for its child: a result still
+        # in flight is applied before the next run starts (with interval_s < budget_s each
+        # run used to replace the one before it unapplied, and nothing was ever seeded)
+        if now < self.next_at or self.pending is not None:
             return
         self.next_at = now + self.interval
         self.rates.update(self.meter.take(), now - self.taken_at, now, self.window)

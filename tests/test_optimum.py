@@ -124,7 +124,19 @@ def test_rates_are_smoothed_with_the_window() -> None:
     assert rates.demand()[0, 1] == 10.0                     # the first interval as it is
     zero = (np.zeros((2, 2)), np.zeros((2, 2)), np.zeros(1), np.zeros(1))
     rates.update(zero, 1.0, 2.0, 5.0)
-    assert rates.demand()[0, 1] == pytest.approx(10.0 * math.exp(-1.0 / 5.0))
+    # normalised exponential weights (worked by hand): the older second weighs
+    # (1 - e^-0.2) e^-0.2, the newer 1 - e^-0.2, so 10 e^-0.2 / (1 + e^-0.2) = 4.50; the
+    # plain recursion would still say 10 e^-0.2 = 8.19, the first second at full weight
+    d = math.exp(-1.0 / 5.0)
+    assert rates.demand()[0, 1] == pytest.approx(10.0 * d / (1.0 + d))
+    assert rates.weight == pytest.approx(1.0 - d * d)
+    # once many windows old it is the plain recursion: rate += (1 - e^-dt/w) (new - rate)
+    for k in range(200):
+        rates.update(one if k % 2 else zero, 1.0, 3.0 + k, 5.0)
+    before = rates.demand()[0, 1]
+    rates.update(one, 1.0, 203.0, 5.0)
+    assert rates.weight == pytest.approx(1.0)
+    assert rates.demand()[0, 1] == pytest.approx(before + (1.0 - d) * (10.0 - before))
 
 
 def test_packet_size_is_inferred_from_mm1_link_latencies() -> None:
@@ -212,8 +224,11 @@ def test_the_runner_says_why_before_it_has_demand_then_reports_the_gap() -> None
         assert res is not None
         h = opt.health()
         assert h["available"] and h["reason"] is None and h["runs"] == 1
-        # the second interval (the first measured nothing): smoothed with the 10 s window
-        want = np.round(offered).sum() / 2.0 * (1 - math.exp(-2.0 / 10.0))
+        # the second interval (the first, 1 s, measured nothing): the normalised
+        # exponential mean with the 10 s window, each interval weighted by the share of
+        # the window it covers, the older one decayed by the newer one's 2 s
+        w1, w2 = (1 - math.exp(-1.0 / 10.0)) * math.exp(-2.0 / 10.0), 1 - math.exp(-2.0 / 10.0)
+        want = np.round(offered).sum() / 2.0 * w2 / (w1 + w2)
         assert h["demand_pps"] == pytest.approx(want, rel=1e-12)
         assert h["gap_ratio"] >= 1 - 1e-3
         assert h["published_delay_s"] >= h["optimal_lower_s"]

@@ -100,13 +100,26 @@ class Meter:
 @dataclass
 class Rates:
     """Smoothed measurements: ``out``/``into`` per (x, d) and ``link``/``lat`` per link,
-    in rows/s and latency-seconds/s."""
+    in rows/s and latency-seconds/s.
+
+    Each is the *normalised* exponentially weighted mean of the interval rates: an
+    interval of ``dt`` seconds that ended ``age`` seconds ago weighs
+    ``(1 - exp(-dt / window)) exp(-age / window)``, and the sum is divided by the total
+    weight (``weight``, which tends to 1).  Once the measurements are a few windows old this
+    is the plain recursion ``rate += (1 - exp(-dt / window)) (new - rate)``; before that it
+    is a time-weighted mean of every interval so far, where the plain recursion would keep
+    the first interval at full weight for a window or more.  That first interval is the
+    least representative one (from a cold start: queues filling, packets not yet through
+    their first hop, a bottleneck carrying only its capacity): measured on abilene's cold
+    start at 1.2x with the plain recursion, a first run at 0.5-1 s saw the demand 8-11% low
+    and the run at 10 s still 3% low (10 s window)."""
 
     out: np.ndarray
     into: np.ndarray
     link: np.ndarray
     lat: np.ndarray
     t: float = -math.inf      # when they were last brought up to date (the caller's clock)
+    weight: float = 0.0       # the total weight of the intervals so far (0: none yet)
 
     @classmethod
     def empty(cls, n: int, n_links: int) -> Rates:
@@ -114,10 +127,13 @@ class Rates:
 
     def update(self, counts: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray],
                dt: float, now: float, window: float) -> None:
-        """Fold in the counts of the last ``dt`` seconds (the first update takes them as they are)."""
+        """Fold in the counts of the last ``dt`` seconds (the first update takes them as
+        they are; see the class docstring)."""
         if dt <= 0:
             return
-        a = 1.0 if not math.isfinite(self.t) else 1.0 - math.exp(-dt / window)
+        fresh = 1.0 - math.exp(-dt / window)
+        self.weight = (1.0 - fresh) * self.weight + fresh
+        a = fresh / self.weight
         for name, c in zip(("out", "into", "link", "lat"), counts):
             cur = getattr(self, name)
             cur += a * (c / dt - cur)

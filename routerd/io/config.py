@@ -84,6 +84,7 @@ SCHEMA: dict[str, Field] = {
     "engine.split.event_boost_s": F(float, 2.0, "split: time constant (s) of the decay of engine.split.event_boost", lo=0, lo_open=True, tunable=True),
     # -- engine: the live optimality gap (routerd/service/optimum.py) -----------------------
     "engine.optimum.interval_s": F(float, 5.0, "every this often the service runs flow deviation on the measured demand and live links in a child process and exports the model's optimal mean delay beside its delay of the published tables (0 = off)", lo=0),
+    "engine.optimum.first_s": F(float, 0.5, "the optimiser's first run comes this long after the start (at most engine.optimum.interval_s; then every interval): with the guide, a cold start's first seconds are when a result helps most", lo=0),
     "engine.optimum.budget_s": F(float, 1.0, "most time one optimiser run may take; it then stops with the best routing so far and reports its gap", lo=0, lo_open=True),
     "engine.optimum.window_s": F(float, 10.0, "time constant of the measured demand and link rates the optimiser is fed", lo=0, lo_open=True),
     "engine.optimum.packet_bytes": F(float, 0.0, "mean packet size for the model (0 = estimated from the measured link latencies and rates, M/M/1 service time)", lo=0),

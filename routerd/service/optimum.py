@@ -27,7 +27,9 @@ both).  The :class:`Meter` counts ``out`` and ``in`` per (node, destination), an
 link the rows and their latency sum, in the ingest path (a few ``bincount``-like adds
 per batch, under its own small lock).  At each run the counts since the last run become
 rates (÷ the time between runs) and are smoothed with the time constant
-``engine.optimum.window_s`` (``rate += (1 - exp(-dt/window)) (new - rate)``).  Demand
+``engine.optimum.window_s`` (``rate += (1 - exp(-dt/window)) (new - rate)`` once the
+measurements are a few windows old; before that a normalised mean, so the first, least
+representative interval does not keep full weight: :class:`routerd.core.demand.Rates`).  Demand
 floors at 0 (a packet lost after arriving at x is in ``in`` but not ``out``).  Unlike
 split mode's ``SplitState.measured_demand`` it needs no published shares and works in
 every mode.
@@ -238,6 +240,8 @@ class Optimum:
                  lock: Any, monotonic: Callable[[], float], *,
                  executor: _futures.Executor | None = None, off: str | None = None):
         self.interval = float(cfg["engine.optimum.interval_s"])
+        #: the first run comes this long after the runner starts (then every interval)
+        self.first = min(float(cfg["engine.optimum.first_s"]), self.interval)
         self.budget = float(cfg["engine.optimum.budget_s"])
         self.window = float(cfg["engine.optimum.window_s"])
         self.packet_bytes_cfg = float(cfg["engine.optimum.packet_bytes"])
@@ -305,7 +309,7 @@ class Optimum:
 
     def _run(self) -> None:
         self._warm_up()
-        nxt = self._mono() + self.interval
+        nxt = self._mono() + self.first
         while not self._stop.wait(max(0.0, nxt - self._mono())):
             start = self._mono()
             self.run_once()
