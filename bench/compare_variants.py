@@ -204,6 +204,12 @@ def lost_share(summary: dict[str, Any]) -> float:
     return (float(summary["dropped"]) + float(summary["ttl_expired"])) / off if off else math.nan
 
 
+def label_overrides(label: str, own: Any = ()) -> list[str]:
+    """A learning label's settings, then the job's own overrides: the later one wins, so a
+    job can refine what its label sets (``guided``'s interval, say) instead of losing to it."""
+    return list(MODES.get(label, (f"engine.variant={label}",))) + list(own)
+
+
 def one(job: dict[str, Any]) -> dict[str, Any]:
     """One simulation; the policy label is ``shortest``, ``mindelay`` or a variant name."""
     label = job["label"]
@@ -211,8 +217,7 @@ def one(job: dict[str, Any]) -> dict[str, Any]:
     pol = None
     if label in VARIANTS:
         spec["policy"] = "qrouting"
-        spec["overrides"] = list(spec.get("overrides", ())) + list(
-            MODES.get(label, (f"engine.variant={label}",)))
+        spec["overrides"] = label_overrides(label, spec.get("overrides", ()))
         pol = CountingQRouting()
     else:
         spec["policy"] = label

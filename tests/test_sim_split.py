@@ -303,3 +303,19 @@ def test_report_drops_leave_out_packets_still_in_flight() -> None:
     assert CV.lost_share(s) == pytest.approx((s["dropped"] + s["ttl_expired"]) / s["offered"])
     assert 1.0 - s["delivery_ratio"] - CV.lost_share(s) == pytest.approx(
         s["in_flight_at_end"] / s["offered"])
+
+
+def test_a_report_job_can_refine_what_its_label_sets() -> None:
+    # bench/compare_variants.py: the label's settings come first and the job's own overrides
+    # after them, so a job's engine.optimum.interval_s wins over guided's (it used to lose)
+    import os
+    import sys
+
+    from routerd.io import config
+    sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "bench"))
+    import compare_variants as CV
+    cfg = config.load(None, CV.label_overrides("guided", ["engine.optimum.interval_s=7"]))
+    assert cfg["engine.mode"] == "split" and cfg["engine.optimum.guide"]
+    assert cfg["engine.optimum.interval_s"] == 7.0
+    assert config.load(None, CV.label_overrides("guided"))["engine.optimum.interval_s"] == 2.0
+    assert CV.label_overrides("dual", ["engine.variant=plain"])[-1] == "engine.variant=plain"
