@@ -173,6 +173,9 @@ def write_outputs(result: dict[str, Any], out: str) -> list[str]:
     return written
 
 
+#: a run that injects at least this many packets is announced as long before it starts
+LONG_RUN_PACKETS = 1e8
+
 #: problems printed before the rest are summarised in one line
 SHOW_PROBLEMS = 12
 
@@ -198,6 +201,12 @@ def run(args: argparse.Namespace) -> int:
         return 2
     spec = spec_from_args(args)
     stop = StopRequest()
+    n = (args.rate or 0.0) * (args.duration or 0.0)
+    if math.isfinite(n) and n >= LONG_RUN_PACKETS:
+        # a slip of the exponent (1e9 for 1e3) would otherwise look like a hang
+        print(f"routerd simulate: about {n:.3g} packets to inject (--rate x --duration): a long "
+              "run (the compiled loop does a few million hops a second); Ctrl-C ends it and "
+              "keeps what has finished", file=sys.stderr)
     try:
         output_dir(args.out)          # before the run: an unusable --out must not lose it
         with ctrl_c_stops(stop):

@@ -66,6 +66,20 @@ def test_same_inputs_same_summary(tmp_path) -> None:
     assert outs[0] == outs[1]
 
 
+def test_a_run_of_many_packets_is_announced_as_long(tmp_path, capsys, monkeypatch) -> None:  # type: ignore[no-untyped-def]
+    from routerd.sim import commands_simulate as CS
+
+    args = ["simulate", "--policy", "shortest", "--rate", "300", "--duration", "2", "--seed", "1",
+            "--quiet"]
+    assert main(args + ["--out", str(tmp_path / "a")]) == 0
+    assert "a long run" not in capsys.readouterr().err
+    monkeypatch.setattr(CS, "LONG_RUN_PACKETS", 600)      # 300/s x 2 s reaches it
+    assert main(args + ["--out", str(tmp_path / "b")]) == 0
+    err = capsys.readouterr().err
+    assert "about 600 packets to inject (--rate x --duration): a long run" in err, err
+    assert "Ctrl-C ends it" in err
+
+
 def test_bad_inputs_exit_2_with_every_problem(tmp_path, capsys) -> None:
     bad = tmp_path / "bad.yaml"
     bad.write_text("scenario:\n  load:\n    - {step: -2, at_s: 1}\n  links:\n    - {at_s: 1, from: w3, to: mars, down: true}\n")
