@@ -122,6 +122,9 @@ def test_ctrl_c_keeps_what_finished_marked_partial_exit_130(tmp_path) -> None:
          "--duration", "100000", "--warmup", "0.5", "--seed", "3", "--scenario", str(sc), "--plot", "--out", str(out)],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     try:
+        # 1.5e8 packets asked: announced as a long run before it starts
+        warned = proc.stderr.readline()
+        assert "a long run" in warned, warned
         # off a terminal the first progress line comes after 2 s of simulating: under way
         first = proc.stderr.readline()
         assert first.startswith("["), (first, proc.stderr.read() if proc.poll() is not None else "")
@@ -131,6 +134,8 @@ def test_ctrl_c_keeps_what_finished_marked_partial_exit_130(tmp_path) -> None:
         if proc.poll() is None:
             proc.kill()
             proc.wait()
+        proc.stdout.close()
+        proc.stderr.close()
     stderr = first + rest
     assert proc.returncode == 130, (stdout, stderr)
     assert "\r" not in stderr and "interrupted at t=" in stderr
