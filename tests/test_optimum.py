@@ -17,6 +17,7 @@ from prometheus_client.parser import text_string_to_metric_families
 from prometheus_client.registry import CollectorRegistry
 
 from routerd.core import flowdev
+from routerd.core.demand import BUSY_ROWS
 from routerd.core.engine import Engine, EngineSettings
 from routerd.io import config, journal
 from routerd.io.clock import FakeClock
@@ -151,6 +152,37 @@ def test_packet_size_is_inferred_from_mm1_link_latencies() -> None:
     assert O.estimate(DEMO, rates, 1.0) == pytest.approx(size, rel=1e-9)
     assert O.estimate(DEMO, rates, 1.0, packet_bytes=1500.0) == 1500.0
     assert O.estimate(DEMO, O.Rates.empty(DEMO.n, DEMO.n_links), 1.0) == 0.0
+
+
+def test_packet_size_pools_links_by_rows_and_leaves_out_far_ones() -> None:
+    # each link's figure is inverted from M/M/1 as above (Kleinrock; Bertsekas & Gallager
+    # §3.3); links are pooled by their rows (common practice for a ratio estimator): half the
+    # links see 900-byte packets at 3x the rows of the others' 1,200-byte ones, so the mean is
+    # (3 * 900 + 1 * 1200) / 4 = 975, where the links' median would say 900, 1,050 or 1,200
+    rates = O.Rates.empty(DEMO.n, DEMO.n_links)
+    half = np.arange(DEMO.n_links) % 2 == 0
+    size = np.where(half, 900.0, 1200.0)
+    C = DEMO.capacity_bps / (8 * size)
+    F = np.where(half, 3.0, 1.0) * 0.1 * C.min()
+
+    def load(F: np.ndarray, C: np.ndarray) -> None:
+        rates.link[:] = F
+        rates.lat[:] = F * (DEMO.delay_s + 1.0 / (C - F))
+
+    load(F, C)
+    assert (F * 1.0 >= BUSY_ROWS).all()
+    assert O.estimate(DEMO, rates, 1.0) == pytest.approx(975.0, rel=1e-9)
+    # a link whose figure is more than twice the median (a queue the model does not fit:
+    # here one that looks like 5,000-byte packets) is left out, however busy
+    far = int(np.flatnonzero(~half)[0])
+    size[far] = 5000.0
+    C = DEMO.capacity_bps / (8 * size)
+    F[far] = 0.5 * C[far]
+    load(F, C)
+    keep = np.arange(DEMO.n_links) != far
+    want = float(np.dot(F[keep], size[keep]) / F[keep].sum())
+    assert O.estimate(DEMO, rates, 1.0) == pytest.approx(want, rel=1e-9)
+    assert abs(want - 975.0) < 10.0
 
 
 # ---- the published routing against the optimum --------------------------------------------------

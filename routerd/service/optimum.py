@@ -38,7 +38,8 @@ every mode.
 ``engine.optimum.packet_bytes``, or (0) the one the links imply.  An M/M/1 link with
 rate F and measured sojourn ``s = L - p`` has service time ``1/C = s / (1 + F s)``
 (:func:`routerd.core.splitting.service_time`); ``C · 8 · bytes = capacity_bps`` gives
-the size; the median over links with at least 4 rows in the window is taken.
+the size; the row-weighted mean over links with at least 4 rows in the window is taken,
+links off the median by more than a factor of 2 left out (:func:`routerd.core.demand.estimate`).
 
 *Run.*  Every ``engine.optimum.interval_s`` the runner thread takes the service lock
 just long enough to copy the engine's published shares and live links, builds the
