@@ -177,6 +177,8 @@ def build_specs(args: argparse.Namespace) -> list[dict[str, Any]]:
         pols = []
     if args.seeds < 1:
         problems.append(Problem("--seeds", args.seeds, "must be >= 1"))
+    if args.first_seed < 0:
+        problems.append(Problem("--first-seed", args.first_seed, "must be >= 0"))
     if args.jobs is not None and args.jobs < 1:
         problems.append(Problem("--jobs", args.jobs, "must be >= 1"))
     if problems:

@@ -127,6 +127,10 @@ def test_bad_input_is_reported_before_anything_runs(tmp_path: os.PathLike[str],
     assert "'psychic' is not a policy" in err
     assert "--seeds: 0 must be >= 1" in err
     assert not os.path.exists(out)
+    # a negative first seed failed every run with numpy's "expected non-negative integer"
+    rc = cli.main(["sweep", "--rates", "100", "--first-seed", "-3", "--out", out])
+    assert rc == 2 and "--first-seed: -3 must be >= 0" in capsys.readouterr().err
+    assert not os.path.exists(out)
     rc = cli.main(["sweep", "--rate-range", "500:100:4", "--out", out])
     assert rc == 2 and "FIRST <= LAST" in capsys.readouterr().err
     rc = cli.main(["sweep", "--rates", "100", "--topology", "/no/such.yaml", "--out", out])
