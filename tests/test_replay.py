@@ -381,6 +381,25 @@ def test_retired_journal_without_snapshot_is_refused(tmp_path: Any) -> None:
         R.replay_command(args_for(d, str(tmp_path / "o")))
 
 
+def test_a_journal_with_no_readable_record_is_refused_without_naming_one(
+        tmp_path: Any, capsys: pytest.CaptureFixture[str]) -> None:
+    # an emptied segment and one whose header is overwritten: nothing is left, so the
+    # message must not name a "first record left" (it said '' and 2)
+    for name, damage in (("empty", b""), ("header", b"X" * 20)):
+        d = str(tmp_path / name)
+        synthetic(d)
+        seg = J._segments(J.journal_dir(d))[0][1]
+        if damage:
+            with open(seg, "r+b") as fh:
+                fh.write(damage)
+        else:
+            open(seg, "wb").close()
+        assert main(["replay", d, "--out", str(tmp_path / "o"), "--no-plot"]) == 2
+        err = capsys.readouterr().err
+        assert "holds no journal record that can be replayed" in err, err
+        assert "first journal record left" not in err and "''" not in err
+
+
 # ---- a real service --------------------------------------------------------------------------
 SERVICE_CFG = """\
 engine:

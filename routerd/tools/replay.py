@@ -304,11 +304,11 @@ def find_start(src: Source, fallback: EngineSettings, recovery: J.Recovery | Non
     if rep.base == 0:
         if not rep.records:
             stop = rep.stopped
+            # no record is left at all: there is no "first record left" to name
             why = "holds no journal records" if stop is None else (
-                "is the first journal record left and no intact snapshot covers the records "
-                f"before it ({stop.line(0)})")
-            at = stop.lost[1] + 1 if stop is not None and stop.lost else ""
-            raise ReplayError(Problem(src.journal_dir, at, why
+                "holds no journal record that can be replayed, and no intact snapshot covers "
+                f"the records lost ({stop.line(0)})")
+            raise ReplayError(Problem(src.journal_dir, None, why
                                       + (f" ({'; '.join(problems)})" if problems else "")))
         if rep.first_record != 1:
             raise ReplayError(Problem(src.journal_dir, rep.first_record,
