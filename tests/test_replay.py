@@ -400,6 +400,25 @@ def test_a_journal_with_no_readable_record_is_refused_without_naming_one(
         assert "first journal record left" not in err and "''" not in err
 
 
+def test_an_unreadable_state_dir_is_named_without_a_traceback(
+        tmp_path: Any, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch) -> None:
+    # another user's 0700 state dir (tests run as root here, so the refusal is simulated);
+    # it ended in a PermissionError traceback from os.listdir
+    d = str(tmp_path / "state")
+    synthetic(d)
+    real = os.listdir
+    for denied in (J.journal_dir(d),):
+        def listdir(path: Any = ".", denied: str = denied) -> list[str]:
+            if os.path.abspath(str(path)) == os.path.abspath(denied):
+                raise PermissionError(13, "Permission denied", str(path))
+            return real(path)
+        monkeypatch.setattr(os, "listdir", listdir)
+        assert main(["replay", d, "--out", str(tmp_path / "o"), "--no-plot"]) == 2
+        err = capsys.readouterr().err
+        assert f"routerd replay: {denied}: Permission denied" in err, err
+    monkeypatch.setattr(os, "listdir", real)
+
+
 # ---- a real service --------------------------------------------------------------------------
 SERVICE_CFG = """\
 engine:

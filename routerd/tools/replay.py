@@ -149,6 +149,11 @@ def run(args: argparse.Namespace) -> int:
         for pr in e.problems:
             print(f"  {pr}", file=sys.stderr)
         return 2
+    except OSError as e:
+        # an unreadable state dir, journal dir or segment (another user's service), or an
+        # output that cannot be written: name the file and the reason, not a traceback
+        print(f"routerd replay: {e.filename or args.source}: {e.strerror or e}", file=sys.stderr)
+        return 2
     finally:
         if lock is not None:
             lock.release()
