@@ -98,12 +98,16 @@ def create_keys(out: str, name: str, *, force: bool = False) -> tuple[str, str]:
 
     if not name or os.sep in name or name.startswith(".") or (os.altsep and os.altsep in name):
         raise InputError(f"key name {name!r}: use a plain file name (no path separators, not hidden)")
+    from routerd.io.files import output_dir
+
+    output_dir(out)          # a file in its place, or no write access: said as for every --out
     pub = os.path.join(out, f"{name}.key")
     sec = os.path.join(out, f"{name}.key_secret")
-    if not force:
-        for p in (pub, sec):
-            if os.path.exists(p):
-                raise InputError(f"{p} exists; refusing to overwrite a key (use --force)")
+    for p in (pub, sec):
+        if os.path.isdir(p):
+            raise InputError(f"{p} is a directory; a key file cannot be written there")
+        if os.path.exists(p) and not force:
+            raise InputError(f"{p} exists; refusing to overwrite a key (use --force)")
     try:
         os.makedirs(out, exist_ok=True)
         old = os.umask(0o077)
@@ -114,7 +118,7 @@ def create_keys(out: str, name: str, *, force: bool = False) -> tuple[str, str]:
         os.chmod(sec_p, 0o600)
         os.chmod(pub_p, 0o644)
     except OSError as e:
-        raise InputError(f"{out}: cannot write keys: {e.strerror or e}") from None
+        raise InputError(f"{e.filename or out}: cannot write keys: {e.strerror or e}") from None
     return str(pub_p), str(sec_p)
 
 
