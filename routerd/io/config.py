@@ -302,6 +302,29 @@ def _cross_checks(flat: dict[str, Any], where: str) -> list[Problem]:
     return p
 
 
+#: The endpoints a service binds, by the name its messages give them.
+SERVICE_ENDPOINTS = (("ingest", "service.ingest"), ("pull", "service.pull"),
+                     ("publish", "service.publish"), ("control", "service.control"),
+                     ("control-readonly", "security.control_readonly"))
+
+
+def endpoint_clashes(cfg: Config) -> list[tuple[str, str, str]]:
+    """``(name, endpoint, earlier name)`` for each endpoint a service would bind twice (a
+    wildcard port ``*`` excepted): ``routerd serve`` refuses to start on them and
+    ``routerd validate`` reports them."""
+    seen: dict[str, str] = {}
+    out = []
+    for name, key in SERVICE_ENDPOINTS:
+        ep = cfg[key]
+        if not ep:
+            continue
+        if ep in seen and "*" not in ep:
+            out.append((name, ep, seen[ep]))
+        else:
+            seen[ep] = name
+    return out
+
+
 class Config:
     """A checked, immutable config. ``cfg["a.b.c"]`` gives one value; ``cfg.section("a.b")`` a dict."""
 
