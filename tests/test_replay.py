@@ -419,6 +419,25 @@ def test_an_unreadable_state_dir_is_named_without_a_traceback(
     monkeypatch.setattr(os, "listdir", real)
 
 
+def test_an_earlier_replays_comparison_files_do_not_outlive_it(
+        tmp_path: Any, capsys: pytest.CaptureFixture[str]) -> None:
+    # a plain replay into the --out of a --compare run left its comparison.csv, pairs.csv
+    # and tables-*.json beside the new replay.json, which describes no such variant
+    d = str(tmp_path / "state")
+    synthetic(d)
+    out = tmp_path / "o"
+    assert main(["replay", d, "--out", str(out), "--no-plot", "--quiet",
+                 "--compare", "engine.hysteresis.margin=0.2"]) == 0
+    first = {"comparison.csv", "pairs.csv", "tables-recorded.json",
+             "tables-engine.hysteresis.margin=0.2.json"}
+    assert first <= set(os.listdir(out))
+    (out / "mine.txt").write_text("not replay's")
+    capsys.readouterr()
+    assert main(["replay", d, "--out", str(out), "--no-plot"]) == 0
+    assert sorted(os.listdir(out)) == ["mine.txt", "replay.json", "tables.json", "ticks.csv"]
+    assert "removed the earlier replay's comparison.csv" in capsys.readouterr().out
+
+
 # ---- a real service --------------------------------------------------------------------------
 SERVICE_CFG = """\
 engine:
