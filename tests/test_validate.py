@@ -268,6 +268,9 @@ def test_validate_checks_what_the_commands_check(tmp_path, capsys) -> None:  # t
     half = _w(tmp_path, "c3.yaml", {"security": {"allow": "allow.yaml"}})
     rc, lines = _run(capsys, half)
     assert rc == 1 and any("CURVE needs both --server-key and --allow" in ln for ln in lines)
+    # the file and its key are named: it said "--allow was given" of a config file's key
+    assert any(f"{half}: CURVE needs both" in ln and "security.allow (--allow) was given without "
+               "security.server_key (--server-key)" in ln for ln in lines), lines
     under = _w(tmp_path, "c4.yaml", {"topology": {"file": "lab.yaml"},
                                      "agent": {"underlay": "u.yaml"}})
     _w(tmp_path, "u.yaml", {"underlay": {"links": [

@@ -524,7 +524,11 @@ def check_pair(cfg: Any) -> tuple[str | None, str | None]:
     """(server_key, allow) from a config, both or neither (else InputError)."""
     sk, al = cfg["security.server_key"], cfg["security.allow"]
     if bool(sk) != bool(al):
-        have, need = ("--server-key", "--allow") if sk else ("--allow", "--server-key")
-        raise InputError(f"CURVE needs both --server-key and --allow: {have} was given "
+        # named as a config file spells them too: it may have come from one, not a flag
+        have, need = (("security.server_key (--server-key)", "security.allow (--allow)") if sk
+                      else ("security.allow (--allow)", "security.server_key (--server-key)"))
+        src = getattr(cfg, "source", None)
+        where = f"{src}: " if isinstance(src, str) and src and not src.startswith("<") else ""
+        raise InputError(f"{where}CURVE needs both --server-key and --allow: {have} was given "
                          f"without {need}")
     return sk, al
