@@ -236,7 +236,8 @@ def load_allow(path: str, topo: Topology) -> Allow:
     except (OSError, UnicodeDecodeError) as e:
         raise InputError(f"{path}: cannot read the allow file: {e}") from None
     try:
-        doc = parse_yaml(text)          # the one YAML loader (routerd.io.files)
+        # the one YAML loader (routerd.io.files); repeated names are listed below, every one
+        doc = parse_yaml(text, unique_keys=False)
     except yaml.YAMLError as e:
         mark = getattr(e, "problem_mark", None)
         at = f":{mark.line + 1}" if mark is not None else ""
