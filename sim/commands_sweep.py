@@ -49,7 +49,13 @@ from routerd.io.progress import StatusLine
 
 from . import executors as _executors
 from . import policies as _policies
-from .commands_simulate import _clean, add_config_options, add_packet_options, add_topology_option
+from .commands_simulate import (
+    LONG_RUN_PACKETS,
+    _clean,
+    add_config_options,
+    add_packet_options,
+    add_topology_option,
+)
 from .run import SimSpec, load_inputs
 from .run import run as run_sim
 
@@ -177,6 +183,8 @@ def build_specs(args: argparse.Namespace) -> list[dict[str, Any]]:
         pols = []
     if args.seeds < 1:
         problems.append(Problem("--seeds", args.seeds, "must be >= 1"))
+    if args.first_seed < 0:
+        problems.append(Problem("--first-seed", args.first_seed, "must be >= 0"))
     if args.jobs is not None and args.jobs < 1:
         problems.append(Problem("--jobs", args.jobs, "must be >= 1"))
     if problems:
@@ -728,6 +736,12 @@ def run(args: argparse.Namespace) -> int:
             print(f"  {p}", file=sys.stderr)
         return 2
     n_runs = len(specs)
+    big = max(float(sp["rate_pps"]) * float(sp["duration_s"]) for sp in specs)
+    if math.isfinite(big) and big >= LONG_RUN_PACKETS:
+        # as routerd simulate says it: a slip of the exponent would otherwise look like a hang
+        print(f"routerd sweep: about {big:.3g} packets to inject in the largest run (rate x "
+              "--duration): long runs (the compiled loop does a few million hops a second); "
+              "Ctrl-C keeps what has finished", file=sys.stderr)
     t0 = time.perf_counter()
     pool: _executors.Pool | None = None
     jobs = min(args.jobs or os.cpu_count() or 1, n_runs)

@@ -105,6 +105,9 @@ def _check(spec: SimSpec) -> list[Problem]:
         p.append(Problem("--packet-bytes", spec.packet_bytes, "must be > 0"))
     if spec.size_dist not in ("fixed", "exp"):
         p.append(Problem("--size-dist", spec.size_dist, "is not fixed or exp"))
+    if not (isinstance(spec.seed, (int, np.integer)) and spec.seed >= 0):
+        # numpy's SeedSequence takes whole numbers >= 0 only; refused here, not mid-run
+        p.append(Problem("--seed", spec.seed, "must be a whole number >= 0"))
     if spec.policy.partition(":")[0] not in _policies.NAMES:  # NAME[:ARG]
         p.append(Problem("--policy", spec.policy, f"is not a policy ({', '.join(_policies.NAMES)})"))
     return p

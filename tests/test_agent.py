@@ -692,3 +692,27 @@ def test_link_walk_from_start_up(tmp_path: Any) -> None:
     finally:
         ag.links = {}                        # no sockets of their own to close
         ag.close()
+
+
+def test_bad_duration_and_status_file_are_refused_and_a_failed_status_write_is_said(
+        tmp_path: Any, capsys: pytest.CaptureFixture[str]) -> None:
+    # --duration -1 stopped at once with exit 0, nan ran for ever; --status-file naming a
+    # directory (or a failed write later) lost every status without a word
+    import types
+
+    from routerd.agent import forwarder
+    from routerd.tools import cli
+
+    for extra, expect in ((["--duration", "-1"], "--duration: -1.0 must be a finite number"),
+                          (["--duration", "nan"], "--duration: nan must be a finite number"),
+                          (["--status-file", str(tmp_path)], "is a directory, not a file")):
+        args = cli.build_parser().parse_args(["agent", "--node", "a1", "--config",
+                                              str(tmp_path / "unused.yaml"), *extra])
+        assert forwarder.run(args) == 2
+        assert expect in capsys.readouterr().err
+    fake = types.SimpleNamespace(status_file=str(tmp_path / "gone" / "s.json"), status_error=None,
+                                 status=lambda: {"ok": 1})
+    forwarder.Agent.write_status(fake)  # type: ignore[arg-type]
+    forwarder.Agent.write_status(fake)  # type: ignore[arg-type]
+    err = capsys.readouterr().err
+    assert err.count("cannot write the status file") == 1 and "No such file or directory" in err

@@ -81,6 +81,14 @@ def test_load_a_file_with_units_in_names_and_coercion(tmp_path) -> None:  # type
     ({"engine": {"initial": {"mode": "constant", "value_s": 20.0}}},
      "engine.initial.value_s: 20.0 is above engine.ceiling_s (10.0)"),
     ({"engine": {"hysteresis": {"margin": 1.0}}}, "engine.hysteresis.margin: 1.0 is at or above 1 (must be below it)"),
+    # a section given a value is named as one (it said "not a known setting (did you mean
+    # engine.split.step?)")
+    ({"engine": {"step": 5}}, "engine.step: 5 must be a mapping: engine.step is a section (engine.step.mode, "),
+    # counts and sizes go to C (ZeroMQ options, deques): routerd serve ended in an
+    # OverflowError traceback on these
+    ({"service": {"max_message_bytes": 1e30}}, "service.max_message_bytes: 1e+30 is above 4611686018427387904"),
+    ({"service": {"hwm_msgs": 3e9}}, "service.hwm_msgs: 3000000000.0 is above 2147483647"),
+    ({"agent": {"report_buffer_rows": 10**30}}, "agent.report_buffer_rows: 1000000000000000000000000000000 is above 4611686018427387904"),
 ])
 def test_bad_values_name_file_key_value_and_rule(tmp_path, doc, expect) -> None:  # type: ignore[no-untyped-def]
     msgs = _errors(tmp_path, doc)

@@ -82,6 +82,10 @@ def test_bad_options_are_refused(capsys: Any) -> None:
     ns = argparse.Namespace(out="x", duration=0.5, seed=1, speed=1.0)
     assert demo.run(ns) == 2
     assert "--duration: 0.5 must be between 2 and 3600" in capsys.readouterr().err
+    # refused before the service starts (it ended in numpy's traceback after the live run)
+    ns = argparse.Namespace(out="x", duration=30.0, seed=-1, speed=1.0)
+    assert demo.run(ns) == 2
+    assert "--seed: -1 must be >= 0" in capsys.readouterr().err
 
 
 def _figures(sh_mean: float, q_mean: float, sv_mean: float, sv_lost_fail: int) -> dict[str, Any]:

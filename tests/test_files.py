@@ -211,3 +211,16 @@ def test_invalid_yaml_is_named_with_its_line_and_column(tmp_path: Any) -> None:
         read_yaml(str(p))
     assert str(ei.value) == (f"{p}: is not valid YAML: mapping values are not allowed in "
                              "this context, at line 3, column 10")
+
+
+def test_a_key_given_twice_in_one_mapping_is_refused_with_its_lines(tmp_path: Path) -> None:
+    # YAML 1.2 (yaml.org/spec/1.2.2, 3.2.1.1: "the keys of a mapping must be unique"); PyYAML
+    # kept the last one, so a second "links:" dropped every link of the first in silence
+    p = tmp_path / "t.yaml"
+    p.write_text("topology:\n  nodes: [a, b]\n  links:\n    - {between: [a, b], delay_s: 0.001}\n"
+                 "  links:\n    - {between: [b, a], delay_s: 0.002}\n")
+    with pytest.raises(InputError, match=r"found the key 'links' twice \(first at line 3\).*"
+                                         r"at line 5, column 3"):
+        files.read_yaml(str(p))
+    # a merge key's values may still be overridden: that is what merging is for
+    assert files.parse_yaml("b: &b {x: 1, y: 2}\no:\n  <<: *b\n  x: 3\n")["o"] == {"x": 3, "y": 2}

@@ -123,6 +123,24 @@ def test_refuses_without_root(monkeypatch: pytest.MonkeyPatch, capsys: pytest.Ca
     assert "needs root" in err and "network namespaces" in err
 
 
+def test_bad_numbers_are_refused_before_the_lab_is_built(
+        monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str], tmp_path: Any) -> None:
+    # --seed -1 ended in numpy's SeedSequence traceback once the namespaces and agents were up
+    from routerd.tools import cli
+
+    def no_lab(*_a: Any, **_k: Any) -> int:
+        raise AssertionError("the lab was started")
+
+    monkeypatch.setattr(L, "check_host", lambda: None)
+    monkeypatch.setattr(L, "_run", no_lab)
+    base = ["lab", "--topology", TOPO, "--duration", "2", "--rate", "10", "--out", str(tmp_path / "o")]
+    for extra, expect in ((["--seed", "-1"], "--seed: -1 must be >= 0"),
+                          (["--warmup", "5"], "--warmup: 5.0 must be >= 0 and below the duration"),
+                          (["--drain", "-1"], "--drain: -1.0 must be a number >= 0")):
+        assert L.run(cli.build_parser().parse_args(base + extra)) == 2
+        assert expect in capsys.readouterr().err
+
+
 def test_plan_addresses_are_private_slash30s() -> None:
     topo = TF.load(TOPO)
     pairs = L.plan_pairs(topo)

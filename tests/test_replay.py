@@ -381,6 +381,63 @@ def test_retired_journal_without_snapshot_is_refused(tmp_path: Any) -> None:
         R.replay_command(args_for(d, str(tmp_path / "o")))
 
 
+def test_a_journal_with_no_readable_record_is_refused_without_naming_one(
+        tmp_path: Any, capsys: pytest.CaptureFixture[str]) -> None:
+    # an emptied segment and one whose header is overwritten: nothing is left, so the
+    # message must not name a "first record left" (it said '' and 2)
+    for name, damage in (("empty", b""), ("header", b"X" * 20)):
+        d = str(tmp_path / name)
+        synthetic(d)
+        seg = J._segments(J.journal_dir(d))[0][1]
+        if damage:
+            with open(seg, "r+b") as fh:
+                fh.write(damage)
+        else:
+            open(seg, "wb").close()
+        assert main(["replay", d, "--out", str(tmp_path / "o"), "--no-plot"]) == 2
+        err = capsys.readouterr().err
+        assert "holds no journal record that can be replayed" in err, err
+        assert "first journal record left" not in err and "''" not in err
+
+
+def test_an_unreadable_state_dir_is_named_without_a_traceback(
+        tmp_path: Any, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch) -> None:
+    # another user's 0700 state dir (tests run as root here, so the refusal is simulated);
+    # it ended in a PermissionError traceback from os.listdir
+    d = str(tmp_path / "state")
+    synthetic(d)
+    real = os.listdir
+    for denied in (J.journal_dir(d),):
+        def listdir(path: Any = ".", denied: str = denied) -> list[str]:
+            if os.path.abspath(str(path)) == os.path.abspath(denied):
+                raise PermissionError(13, "Permission denied", str(path))
+            return real(path)
+        monkeypatch.setattr(os, "listdir", listdir)
+        assert main(["replay", d, "--out", str(tmp_path / "o"), "--no-plot"]) == 2
+        err = capsys.readouterr().err
+        assert f"routerd replay: {denied}: Permission denied" in err, err
+    monkeypatch.setattr(os, "listdir", real)
+
+
+def test_an_earlier_replays_comparison_files_do_not_outlive_it(
+        tmp_path: Any, capsys: pytest.CaptureFixture[str]) -> None:
+    # a plain replay into the --out of a --compare run left its comparison.csv, pairs.csv
+    # and tables-*.json beside the new replay.json, which describes no such variant
+    d = str(tmp_path / "state")
+    synthetic(d)
+    out = tmp_path / "o"
+    assert main(["replay", d, "--out", str(out), "--no-plot", "--quiet",
+                 "--compare", "engine.hysteresis.margin=0.2"]) == 0
+    first = {"comparison.csv", "pairs.csv", "tables-recorded.json",
+             "tables-engine.hysteresis.margin=0.2.json"}
+    assert first <= set(os.listdir(out))
+    (out / "mine.txt").write_text("not replay's")
+    capsys.readouterr()
+    assert main(["replay", d, "--out", str(out), "--no-plot"]) == 0
+    assert sorted(os.listdir(out)) == ["mine.txt", "replay.json", "tables.json", "ticks.csv"]
+    assert "removed the earlier replay's comparison.csv" in capsys.readouterr().out
+
+
 # ---- a real service --------------------------------------------------------------------------
 SERVICE_CFG = """\
 engine:

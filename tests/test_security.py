@@ -57,6 +57,18 @@ def test_keys_command_writes_a_zeromq_certificate_pair(tmp_path: Any) -> None:
     assert "NAME.key_secret" in _routerd("keys", "--help").stdout
 
 
+def test_keys_out_that_cannot_hold_keys_is_named(tmp_path: Any) -> None:
+    # --out a file said "cannot write keys: File exists"; a directory where NAME.key goes,
+    # with --force, named --out and "Is a directory"
+    f = tmp_path / "afile"
+    f.write_text("x")
+    with pytest.raises(InputError, match="--out: .*afile' is an existing file, not a directory"):
+        security.create_keys(str(f), "svc")
+    (tmp_path / "k" / "svc.key").mkdir(parents=True)
+    with pytest.raises(InputError, match=r"svc\.key is a directory; a key file cannot be written there"):
+        security.create_keys(str(tmp_path / "k"), "svc", force=True)
+
+
 def test_server_key_must_hold_a_secret(tmp_path: Any) -> None:
     pub, sec = security.create_keys(str(tmp_path), "svc")
     assert security.load_server_key(sec)[1]

@@ -583,3 +583,21 @@ def test_a_worker_keeps_its_owned_engine_through_a_reload_asking_for_a_variant(
         assert w.engine.settings.variant == "plain" and w.engine.partial
     finally:
         w.close()
+
+
+def test_sharding_flags_of_another_role_are_refused(tmp_path: Any) -> None:
+    # --upstream, --shard-listen or --external-workers without the role they belong to were
+    # ignored: a plain service (or a worker) started instead of what was asked for
+    import subprocess
+    import sys
+
+    eps = [f"--{k}=ipc://{tmp_path}/{k}" for k in ("ingest", "publish", "control")]
+    for flags, expect in ((["--upstream", f"ipc://{tmp_path}/up"], "--upstream belongs to a worker"),
+                          (["--external-workers"], "--external-workers belongs to a front"),
+                          (["--shard-listen", f"ipc://{tmp_path}/sl"], "--shard-listen belongs to a front"),
+                          (["--shard", "0/2", "--external-workers"], "--external-workers belongs to a front")):
+        r = subprocess.run([sys.executable, "-m", "routerd", "serve", *flags, *eps, "--metrics",
+                            "127.0.0.1:0", "--state-dir", str(tmp_path / "st")],
+                           capture_output=True, text=True, timeout=20, check=False)
+        assert r.returncode == 2 and expect in r.stderr, (flags, r.stderr)
+        assert not (tmp_path / "st").exists()

@@ -100,6 +100,15 @@ def test_bad_inputs_exit_2_with_every_problem(tmp_path, capsys) -> None:
     assert not (tmp_path / "o" / "summary.json").exists()
 
 
+def test_a_negative_seed_is_refused_before_the_run(tmp_path, capsys) -> None:
+    # numpy's SeedSequence takes whole numbers >= 0 only: --seed -1 ended in its traceback
+    rc = main(["simulate", "--policy", "shortest", "--rate", "10", "--duration", "1", "--seed", "-1",
+               "--out", str(tmp_path / "o")])
+    err = capsys.readouterr().err
+    assert rc == 2 and "--seed: -1 must be a whole number >= 0" in err
+    assert "Traceback" not in err and not (tmp_path / "o" / "summary.json").exists()
+
+
 def test_many_problems_are_summarised_with_a_hint(tmp_path, capsys) -> None:
     rc = main(["simulate", "--topology", "topohub:sndlib/abilene", "--policy", "shortest",
                "--rate", "10", "--duration", "1", "--seed", "1", "--out", str(tmp_path / "o")])

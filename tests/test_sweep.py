@@ -127,6 +127,10 @@ def test_bad_input_is_reported_before_anything_runs(tmp_path: os.PathLike[str],
     assert "'psychic' is not a policy" in err
     assert "--seeds: 0 must be >= 1" in err
     assert not os.path.exists(out)
+    # a negative first seed failed every run with numpy's "expected non-negative integer"
+    rc = cli.main(["sweep", "--rates", "100", "--first-seed", "-3", "--out", out])
+    assert rc == 2 and "--first-seed: -3 must be >= 0" in capsys.readouterr().err
+    assert not os.path.exists(out)
     rc = cli.main(["sweep", "--rate-range", "500:100:4", "--out", out])
     assert rc == 2 and "FIRST <= LAST" in capsys.readouterr().err
     rc = cli.main(["sweep", "--rates", "100", "--topology", "/no/such.yaml", "--out", out])
@@ -244,3 +248,18 @@ def test_sweep_figure_log_axis_ticks_are_plain_milliseconds() -> None:
     assert labels and all("$" not in lb and "^" not in lb for lb in labels)
     assert "10" in labels
     assert any("a tenth of the mean" in t.get_text() for t in ax.texts)
+
+
+def test_a_sweep_with_a_run_of_many_packets_is_announced_as_long(
+        tmp_path: os.PathLike[str], capsys: pytest.CaptureFixture[str],
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    # routerd simulate says so; a sweep with --rates 1e9 sat silent behind its progress bar
+    from routerd.sim import commands_sweep as CW
+
+    args = ["sweep", "--rates", "100,300", "--policies", "shortest", "--seeds", "1",
+            "--duration", "2", "--jobs", "1", "--quiet", "--no-plot"]
+    assert cli.main(args + ["--out", os.path.join(str(tmp_path), "a")]) == 0
+    assert "long runs" not in capsys.readouterr().err
+    monkeypatch.setattr(CW, "LONG_RUN_PACKETS", 600)      # 300/s x 2 s reaches it
+    assert cli.main(args + ["--out", os.path.join(str(tmp_path), "b")]) == 0
+    assert "about 600 packets to inject in the largest run" in capsys.readouterr().err

@@ -236,6 +236,14 @@ def test_validate_checks_what_the_commands_check(tmp_path, capsys) -> None:  # t
            "ipc://PATH or inproc://NAME)" in lines
     assert f"  {cfg}: service.control: 'tcp://127.0.0.1:99999' has no valid port (0-65535, " \
            "or * for any free one)" in lines
+    # one endpoint named twice: serve refuses it ("also given as the ingest endpoint"),
+    # validate called the file OK
+    cfg = _w(tmp_path, "twice.yaml", {"service": {"ingest": "tcp://127.0.0.1:7401",
+                                                  "publish": "tcp://127.0.0.1:7401"}})
+    rc, lines = _run(capsys, cfg)
+    assert rc == 1
+    assert f"  {cfg}: service.publish: 'tcp://127.0.0.1:7401' is also the ingest endpoint " \
+           "(routerd serve binds each once)" in lines
     topo = _w(tmp_path, "lab.yaml", GOOD_TOPO)
     scen = _w(tmp_path, "s.yaml", {"scenario": {"links": [
         {"at_s": 1, "between": ["a", "zz"], "down": True},
@@ -260,6 +268,9 @@ def test_validate_checks_what_the_commands_check(tmp_path, capsys) -> None:  # t
     half = _w(tmp_path, "c3.yaml", {"security": {"allow": "allow.yaml"}})
     rc, lines = _run(capsys, half)
     assert rc == 1 and any("CURVE needs both --server-key and --allow" in ln for ln in lines)
+    # the file and its key are named: it said "--allow was given" of a config file's key
+    assert any(f"{half}: CURVE needs both" in ln and "security.allow (--allow) was given without "
+               "security.server_key (--server-key)" in ln for ln in lines), lines
     under = _w(tmp_path, "c4.yaml", {"topology": {"file": "lab.yaml"},
                                      "agent": {"underlay": "u.yaml"}})
     _w(tmp_path, "u.yaml", {"underlay": {"links": [

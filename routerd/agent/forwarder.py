@@ -361,6 +361,7 @@ class Agent:
         self.local_addr = parse_hostport(local or cfg["agent.local"], "agent.local")
         self.deliver_addr = parse_hostport(deliver or cfg["agent.deliver"], "agent.deliver")
         self.status_file = status_file
+        self.status_error: str | None = None   # the last write failure, said once
         self.status_interval_s = status_interval_s
         self.interval = cfg["agent.probe_interval_s"]
         self.detect_s = cfg["agent.detect_multiplier"] * self.interval
@@ -940,8 +941,14 @@ class Agent:
             with open(tmp, "w", encoding="utf-8") as fh:
                 json.dump(self.status(), fh, default=str)
             os.replace(tmp, self.status_file)
-        except OSError:
-            pass
+        except OSError as e:
+            # the loop goes on without it, but not in silence (said again if the reason changes)
+            why = f"{e.filename or self.status_file}: {e.strerror or e}"
+            if why != self.status_error:
+                print(f"routerd agent: cannot write the status file {why}", file=sys.stderr, flush=True)
+            self.status_error = why
+        else:
+            self.status_error = None
 
     def close(self) -> None:
         for ln in self.links.values():
@@ -999,6 +1006,15 @@ def run(args: argparse.Namespace) -> int:
     from routerd.io.metricsaddr import parse_address
 
     try:
+        dur = getattr(args, "duration", None)
+        if dur is not None and not (math.isfinite(dur) and dur > 0):
+            # -1 stopped at once with exit 0, nan ran for ever
+            raise InputError(Problem("--duration", dur, "must be a finite number of seconds above 0"))
+        if getattr(args, "status_file", None):
+            from routerd.io.files import output_file
+
+            output_file(args.status_file, "--status-file")   # a directory, an unwritable place
+            os.makedirs(os.path.dirname(os.path.abspath(args.status_file)), exist_ok=True)
         cfg, topo = load(args)
         agent = Agent(cfg, topo, args.node, registry=(reg := CollectorRegistry()),
                       local=args.local, deliver=args.deliver, status_file=args.status_file)

@@ -118,7 +118,7 @@ SCHEMA: dict[str, Field] = {
     "service.journal.sync_thread": F(bool, True, "with fsync 'batch': fsync in a writer thread (group commit) while the loop goes on receiving; acknowledgements still wait for the fsync that covers their batch (false: the loop fsyncs each turn itself)"),
     "service.journal.fsync_interval_s": F(float, 0.05, "fsync interval when fsync is 'interval'", lo=0, lo_open=True),
     "service.journal.segment_bytes": F(int, 64 * 1024 * 1024, "journal segment size before a new one starts", lo=4096),
-    "service.hwm_msgs": F(int, 1000, "high-water mark of every socket, in messages (ingest: queued frames before the sender is held back; tables: dropped beyond it)", lo=1),
+    "service.hwm_msgs": F(int, 1000, "high-water mark of every socket, in messages (ingest: queued frames before the sender is held back; tables: dropped beyond it)", lo=1, hi=2**31 - 1),
     "service.linger_s": F(float, 1.0, "at shutdown, how long queued replies and final tables may still go out", lo=0),
     "service.heartbeat_s": F(float, 5.0, "ZMTP heartbeat interval; a peer silent for three intervals is dropped (0 = off)", lo=0),
     "service.max_rows": F(int, 262144, "rows (hops + links) taken in one batch; more is refused as too_many_rows", lo=1),
@@ -222,11 +222,25 @@ def _flatten(d: Mapping[str, Any], prefix: str = "") -> Iterable[tuple[str, Any]
             yield path, v
 
 
+#: The largest whole number any setting takes: counts and sizes end up in C (ZeroMQ socket
+#: options, deque lengths), where a larger one ended the command in an OverflowError.
+INT_MAX = 2**62
+
+
+def _bound(x: float) -> str:
+    return str(x) if isinstance(x, int) else f"{x:g}"
+
+
 def check_value(path: str, value: Any, where: str) -> tuple[Any, Problem | None]:
     """Coerce one value to its field's type, or say exactly what is wrong with it."""
     f = SCHEMA.get(path)
     loc = f"{where}: {path}"
     if f is None:
+        inside = [s for s in SCHEMA if s.startswith(path + ".")]
+        if inside:   # a section given a value: say so, not "not a known setting"
+            more = ", ..." if len(inside) > 3 else ""
+            return None, Problem(loc, value, f"must be a mapping: {path} is a section "
+                                             f"({', '.join(inside[:3])}{more})")
         near = [s for s in SCHEMA if s.rsplit(".", 1)[-1] == path.rsplit(".", 1)[-1]]
         hint = f" (did you mean {near[0]}?)" if near else ""
         return None, Problem(loc, value, f"is not a known setting{hint}")
@@ -248,6 +262,8 @@ def check_value(path: str, value: Any, where: str) -> tuple[Any, Problem | None]
         return None, Problem(loc, value, f"must be {_kind_name(kinds)}")
     if isinstance(v, float) and not math.isfinite(v):
         return None, Problem(loc, value, "must be a finite number")
+    if isinstance(v, int) and not isinstance(v, bool) and abs(v) > INT_MAX and f.hi is None:
+        return None, Problem(loc, value, f"is above {INT_MAX} (the largest whole number a setting takes)")
     if isinstance(v, str) and f.form in ("endpoint", "address"):
         why = (endpoint_problem if f.form == "endpoint" else address_problem)(v)
         if why is not None:
@@ -261,7 +277,7 @@ def check_value(path: str, value: Any, where: str) -> tuple[Any, Problem | None]
             return None, Problem(loc, value, f"is {'at or ' if f.lo_open and v == f.lo else ''}below {f.lo:g}" + (" (must be above it)" if f.lo_open else ""))
     if f.hi is not None and isinstance(v, (int, float)):
         if v > f.hi or (f.hi_open and v == f.hi):
-            return None, Problem(loc, value, f"is {'at or ' if f.hi_open and v == f.hi else ''}above {f.hi:g}" + (" (must be below it)" if f.hi_open else ""))
+            return None, Problem(loc, value, f"is {'at or ' if f.hi_open and v == f.hi else ''}above {_bound(f.hi)}" + (" (must be below it)" if f.hi_open else ""))
     return v, None
 
 
@@ -284,6 +300,29 @@ def _cross_checks(flat: dict[str, Any], where: str) -> list[Problem]:
     if 0 < jf <= 1:
         p.append(Problem(f"{where}: guards.jump.factor", jf, "must be 0 (off) or above 1"))
     return p
+
+
+#: The endpoints a service binds, by the name its messages give them.
+SERVICE_ENDPOINTS = (("ingest", "service.ingest"), ("pull", "service.pull"),
+                     ("publish", "service.publish"), ("control", "service.control"),
+                     ("control-readonly", "security.control_readonly"))
+
+
+def endpoint_clashes(cfg: Config) -> list[tuple[str, str, str]]:
+    """``(name, endpoint, earlier name)`` for each endpoint a service would bind twice (a
+    wildcard port ``*`` excepted): ``routerd serve`` refuses to start on them and
+    ``routerd validate`` reports them."""
+    seen: dict[str, str] = {}
+    out = []
+    for name, key in SERVICE_ENDPOINTS:
+        ep = cfg[key]
+        if not ep:
+            continue
+        if ep in seen and "*" not in ep:
+            out.append((name, ep, seen[ep]))
+        else:
+            seen[ep] = name
+    return out
 
 
 class Config:
@@ -419,7 +458,7 @@ def describe() -> str:
             rng = " {" + "|".join(map(str, f.choices)) + "}"
         elif f.lo is not None or f.hi is not None:
             lo = "-inf" if f.lo is None else f"{f.lo:g}"
-            hi = "inf" if f.hi is None else f"{f.hi:g}"
+            hi = "inf" if f.hi is None else _bound(f.hi)
             rng = f" {'(' if f.lo_open else '['}{lo}, {hi}{')' if f.hi_open else ']'}"
         tun = " (reloadable)" if f.tunable else ""
         if f.form in ("path", "key"):

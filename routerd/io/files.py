@@ -22,10 +22,32 @@ from routerd.core.errors import InputError, Problem
 from .values import EXPONENT_RE
 
 
-class Loader(getattr(yaml, "CSafeLoader", yaml.SafeLoader)):  # type: ignore[misc]
+class _SafeLoader(getattr(yaml, "CSafeLoader", yaml.SafeLoader)):  # type: ignore[misc]
     """The safe loader (libyaml's parser when present: a 200-node topology file read in
     about a tenth of the pure-Python parser's 0.8 s) plus YAML 1.2's exponent spellings as
-    floats."""
+    floats.  Keeps the last of a key given twice, as PyYAML does: for a reader that
+    reports every repeated key itself (the allow file's, :mod:`routerd.io.security`)."""
+
+
+class Loader(_SafeLoader):
+    """:class:`_SafeLoader` with a key given twice in one mapping refused (YAML 1.2 requires
+    keys to be unique; PyYAML keeps the last silently, so a second ``links:`` or ``alpha:``
+    dropped the first without a word).  Merge keys (``<<``) may still be overridden."""
+
+    def construct_mapping(self, node: Any, deep: bool = False) -> Any:
+        if isinstance(node, yaml.MappingNode):
+            seen: dict[Any, int] = {}
+            for key_node, _ in node.value:
+                if not isinstance(key_node, yaml.ScalarNode) or key_node.tag == "tag:yaml.org,2002:merge":
+                    continue
+                key = self.construct_object(key_node)
+                if key in seen:
+                    raise yaml.constructor.ConstructorError(
+                        "while constructing a mapping", node.start_mark,
+                        f"found the key {key!r} twice (first at line {seen[key] + 1})",
+                        key_node.start_mark)
+                seen[key] = key_node.start_mark.line
+        return super().construct_mapping(node, deep=deep)
 
 
 class Dumper(getattr(yaml, "CSafeDumper", yaml.SafeDumper)):  # type: ignore[misc]
@@ -36,13 +58,15 @@ class Dumper(getattr(yaml, "CSafeDumper", yaml.SafeDumper)):  # type: ignore[mis
 # PyYAML tries a resolver with re.match: anchored at both ends, or a plain string that
 # merely starts like a number ("19e1f497...", a content id) would be read as one
 _ANCHORED = re.compile(f"^(?:{EXPONENT_RE.pattern})$")
-for _cls in (Loader, Dumper):
+for _cls in (_SafeLoader, Dumper):
     _cls.add_implicit_resolver("tag:yaml.org,2002:float", _ANCHORED, list("-+0123456789."))
 
 
-def parse_yaml(text: str) -> Any:
-    """The document in ``text`` (:class:`Loader`); ``yaml.YAMLError`` as PyYAML raises it."""
-    return yaml.load(text, Loader=Loader)  # noqa: S506 - Loader is a SafeLoader
+def parse_yaml(text: str, *, unique_keys: bool = True) -> Any:
+    """The document in ``text`` (:class:`Loader`; ``unique_keys=False``: a repeated key's
+    last value, for a reader that reports repeats itself); ``yaml.YAMLError`` as PyYAML
+    raises it."""
+    return yaml.load(text, Loader=Loader if unique_keys else _SafeLoader)  # noqa: S506 - safe loaders
 
 
 def dump_yaml(doc: Any, **kw: Any) -> str:

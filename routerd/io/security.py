@@ -98,12 +98,16 @@ def create_keys(out: str, name: str, *, force: bool = False) -> tuple[str, str]:
 
     if not name or os.sep in name or name.startswith(".") or (os.altsep and os.altsep in name):
         raise InputError(f"key name {name!r}: use a plain file name (no path separators, not hidden)")
+    from routerd.io.files import output_dir
+
+    output_dir(out)          # a file in its place, or no write access: said as for every --out
     pub = os.path.join(out, f"{name}.key")
     sec = os.path.join(out, f"{name}.key_secret")
-    if not force:
-        for p in (pub, sec):
-            if os.path.exists(p):
-                raise InputError(f"{p} exists; refusing to overwrite a key (use --force)")
+    for p in (pub, sec):
+        if os.path.isdir(p):
+            raise InputError(f"{p} is a directory; a key file cannot be written there")
+        if os.path.exists(p) and not force:
+            raise InputError(f"{p} exists; refusing to overwrite a key (use --force)")
     try:
         os.makedirs(out, exist_ok=True)
         old = os.umask(0o077)
@@ -114,7 +118,7 @@ def create_keys(out: str, name: str, *, force: bool = False) -> tuple[str, str]:
         os.chmod(sec_p, 0o600)
         os.chmod(pub_p, 0o644)
     except OSError as e:
-        raise InputError(f"{out}: cannot write keys: {e.strerror or e}") from None
+        raise InputError(f"{e.filename or out}: cannot write keys: {e.strerror or e}") from None
     return str(pub_p), str(sec_p)
 
 
@@ -232,7 +236,8 @@ def load_allow(path: str, topo: Topology) -> Allow:
     except (OSError, UnicodeDecodeError) as e:
         raise InputError(f"{path}: cannot read the allow file: {e}") from None
     try:
-        doc = parse_yaml(text)          # the one YAML loader (routerd.io.files)
+        # the one YAML loader (routerd.io.files); repeated names are listed below, every one
+        doc = parse_yaml(text, unique_keys=False)
     except yaml.YAMLError as e:
         mark = getattr(e, "problem_mark", None)
         at = f":{mark.line + 1}" if mark is not None else ""
@@ -520,7 +525,11 @@ def check_pair(cfg: Any) -> tuple[str | None, str | None]:
     """(server_key, allow) from a config, both or neither (else InputError)."""
     sk, al = cfg["security.server_key"], cfg["security.allow"]
     if bool(sk) != bool(al):
-        have, need = ("--server-key", "--allow") if sk else ("--allow", "--server-key")
-        raise InputError(f"CURVE needs both --server-key and --allow: {have} was given "
+        # named as a config file spells them too: it may have come from one, not a flag
+        have, need = (("security.server_key (--server-key)", "security.allow (--allow)") if sk
+                      else ("security.allow (--allow)", "security.server_key (--server-key)"))
+        src = getattr(cfg, "source", None)
+        where = f"{src}: " if isinstance(src, str) and src and not src.startswith("<") else ""
+        raise InputError(f"{where}CURVE needs both --server-key and --allow: {have} was given "
                          f"without {need}")
     return sk, al

@@ -650,18 +650,13 @@ class Service:
         socket file (libzmq's bind would silently take the file over), a stale file from
         a crash removed (logged); one endpoint named twice is refused too."""
         cfg = self.cfg
-        seen: dict[str, str] = {}
-        for name in ("ingest", "pull", "publish", "control"):
-            ep = cfg[f"service.{name}"]
-            if ep:
-                self._claim(name, ep, seen)
-        if cfg["security.control_readonly"]:
-            self._claim("control-readonly", cfg["security.control_readonly"], seen)
+        for name, ep, other in _config.endpoint_clashes(cfg):
+            raise StartError(f"{name} endpoint {ep}: also given as the {other} endpoint")
+        for name, key in _config.SERVICE_ENDPOINTS:
+            if cfg[key]:
+                self._claim(name, cfg[key])
 
-    def _claim(self, name: str, ep: str, seen: dict[str, str]) -> None:
-        if ep in seen and "*" not in ep:
-            raise StartError(f"{name} endpoint {ep}: also given as the {seen[ep]} endpoint")
-        seen[ep] = name
+    def _claim(self, name: str, ep: str) -> None:
         try:
             note = _listeners.claim_ipc(ep)
         except _listeners.EndpointInUse as e:

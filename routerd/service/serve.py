@@ -11,6 +11,7 @@ Must not import: ``routerd.sim``, ``routerd.tools`` (as the rest of ``routerd.se
 from __future__ import annotations
 
 import argparse
+import sys
 
 from . import daemon, shard
 
@@ -26,4 +27,10 @@ def configure(p: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     if getattr(args, "shards", None) is not None or getattr(args, "shard", None) is not None:
         return shard.run(args)
+    # a sharding flag without --shards/--shard was ignored: a plain service started instead
+    # of the front or worker asked for
+    stray = shard.stray_flags(args, front=False, worker=False)
+    if stray:
+        print(f"routerd serve: cannot start:\n{stray}", file=sys.stderr)
+        return 2
     return daemon.run(args)

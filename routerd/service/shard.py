@@ -194,6 +194,18 @@ def configure(p: argparse.ArgumentParser) -> None:
                    "workers; wait for N to announce themselves on --shard-listen")
 
 
+def stray_flags(args: argparse.Namespace, *, front: bool, worker: bool) -> str | None:
+    """Why sharding flags do not fit the role asked for (None: they do): ``--upstream``
+    belongs to a worker, ``--shard-listen`` and ``--external-workers`` to a front."""
+    if getattr(args, "upstream", None) and not worker:
+        return "--upstream belongs to a worker (--shard K/N)"
+    for flag, given in (("--shard-listen", getattr(args, "shard_listen", None)),
+                        ("--external-workers", getattr(args, "external_workers", False))):
+        if given and not front:
+            return f"{flag} belongs to a front (--shards N)"
+    return None
+
+
 def run(args: argparse.Namespace) -> int:
     """``routerd serve --shards N`` (the front, and its workers unless external) or
     ``routerd serve --shard K/N`` (one worker); :func:`routerd.service.serve.run` sends
@@ -206,6 +218,9 @@ def run(args: argparse.Namespace) -> int:
             if args.shards is not None:
                 raise InputError("give --shards N (front and workers) or --shard K/N (one "
                                  "worker), not both")
+            stray = stray_flags(args, front=False, worker=True)
+            if stray:
+                raise InputError(stray)
             k, n = parse_shard(args.shard)
             # a worker's documents are in its own dir, the front's in the root
             chosen = _service.choose_inputs(args, shard_dir(root, k, n))
@@ -214,8 +229,9 @@ def run(args: argparse.Namespace) -> int:
         else:
             if args.shards < 1:
                 raise InputError(f"--shards {args.shards} is below 1")
-            if args.upstream:
-                raise InputError("--upstream belongs to a worker (--shard K/N)")
+            stray = stray_flags(args, front=True, worker=False)
+            if stray:
+                raise InputError(stray)
             chosen = _front_inputs(args, root, args.shards)
             cfg, topo = chosen.cfg, chosen.topo
             smap = ShardMap.build(topo, args.shards, cfg["shard.map"])

@@ -121,6 +121,8 @@ def run(args: argparse.Namespace) -> int:
         problems.append(f"--duration: {args.duration:g} must be between 2 and 3600 seconds")
     if not (math.isfinite(args.speed) and 0.01 <= args.speed <= 1000):
         problems.append(f"--speed: {args.speed:g} must be between 0.01 and 1000")
+    if args.seed < 0:
+        problems.append(f"--seed: {args.seed} must be >= 0")
     if problems:
         print("routerd demo: " + "; ".join(problems), file=sys.stderr)
         return 2

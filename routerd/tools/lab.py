@@ -899,7 +899,8 @@ def configure(p: argparse.ArgumentParser) -> None:
                    help="also simulate the same topology, rate, duration, seed and scenario with "
                         "POLICY (e.g. qrouting, shortest) into DIR/sim/ and print both side by side")
     p.add_argument("--drain", type=float, default=1.0, metavar="S",
-                   help="seconds to wait for packets still in flight after the last one is sent")
+                   help="seconds to wait for packets still in flight after the last one is sent "
+                        "(default 1)")
     p.add_argument("--keep", action="store_true", help="keep the run directory (configs, agent logs)")
     p.add_argument("--quiet", action="store_true", help="no progress line")
 
@@ -1013,6 +1014,15 @@ def run(args: argparse.Namespace) -> int:
         for name, v, lo in (("--duration", args.duration, 0.0), ("--rate", args.rate, 0.0)):
             if not (math.isfinite(v) and v > lo):
                 raise InputError(Problem(name, v, "must be a number above 0"))
+        # checked before any namespace is built: each of these failed only once the lab was up
+        # (a negative seed in numpy's SeedSequence)
+        if args.seed < 0:
+            raise InputError(Problem("--seed", args.seed, "must be >= 0"))
+        if args.warmup is not None and not (math.isfinite(args.warmup) and 0 <= args.warmup < args.duration):
+            raise InputError(Problem("--warmup", args.warmup,
+                                     f"must be >= 0 and below the duration ({args.duration:g} s)"))
+        if not (math.isfinite(args.drain) and args.drain >= 0):
+            raise InputError(Problem("--drain", args.drain, "must be a number >= 0 (seconds)"))
         if getattr(args, "compare_sim", None):
             from routerd.sim import policies as _policies
 

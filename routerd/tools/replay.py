@@ -149,6 +149,11 @@ def run(args: argparse.Namespace) -> int:
         for pr in e.problems:
             print(f"  {pr}", file=sys.stderr)
         return 2
+    except OSError as e:
+        # an unreadable state dir, journal dir or segment (another user's service), or an
+        # output that cannot be written: name the file and the reason, not a traceback
+        print(f"routerd replay: {e.filename or args.source}: {e.strerror or e}", file=sys.stderr)
+        return 2
     finally:
         if lock is not None:
             lock.release()
@@ -304,11 +309,11 @@ def find_start(src: Source, fallback: EngineSettings, recovery: J.Recovery | Non
     if rep.base == 0:
         if not rep.records:
             stop = rep.stopped
+            # no record is left at all: there is no "first record left" to name
             why = "holds no journal records" if stop is None else (
-                "is the first journal record left and no intact snapshot covers the records "
-                f"before it ({stop.line(0)})")
-            at = stop.lost[1] + 1 if stop is not None and stop.lost else ""
-            raise ReplayError(Problem(src.journal_dir, at, why
+                "holds no journal record that can be replayed, and no intact snapshot covers "
+                f"the records lost ({stop.line(0)})")
+            raise ReplayError(Problem(src.journal_dir, None, why
                                       + (f" ({'; '.join(problems)})" if problems else "")))
         if rep.first_record != 1:
             raise ReplayError(Problem(src.journal_dir, rep.first_record,
@@ -665,6 +670,7 @@ def write_outputs(args: argparse.Namespace, topo: _topology.Topology, res: dict[
                   primary: Variant | None, lt: LinkTrace | None) -> dict[str, Any]:
     out = args.out
     os.makedirs(out, exist_ok=True)
+    earlier = _earlier_outputs(out)
     base: Run = res["base"]
     others: list[Run] = res["others"]
     runs = [base, *others]
@@ -744,9 +750,36 @@ def write_outputs(args: argparse.Namespace, topo: _topology.Topology, res: dict[
                                 res.get("link_events", ()), res["t_end"]))
         except ImportError as e:
             notes.append(f"no PNG: matplotlib is not installed ({e}); pip install 'routerd[plot]'")
+    stale = sorted(earlier - {os.path.abspath(w) for w in written})
+    for path in stale:
+        try:
+            os.unlink(path)
+        except OSError as e:
+            notes.append(f"an earlier replay's {os.path.basename(path)} is left in {out}: "
+                         f"{e.strerror or e}")
+    if stale:
+        notes.append(f"removed the earlier replay's {', '.join(os.path.basename(p) for p in stale)} "
+                     f"from {out} (this run does not write them)")
     printed = _printed(info, summaries, bool(others), args.quiet, written, notes, stopped,
                        recovery.lines()[1:])
     return {"info": info, "written": written, "printed": printed}
+
+
+def _earlier_outputs(out: str) -> set[str]:
+    """The files an earlier replay wrote into ``out`` that a run may not write again (the
+    comparison files, the PNG, the variants' tables), found by its ``replay.json``: left
+    behind, a ``comparison.csv`` or ``replay.png`` of other variants sat beside this run's
+    ``replay.json``.  Nothing without an earlier ``replay.json``: only replay's own files go."""
+    try:
+        with open(os.path.join(out, "replay.json"), encoding="utf-8") as fh:
+            doc = json.load(fh)
+        labels = [v["variant"] for v in doc["variants"] if isinstance(v, dict)]
+    except (OSError, ValueError, KeyError, TypeError):
+        return set()
+    names = ["comparison.csv", "pairs.csv", "replay.png", f"tables-{RECORDED}.json"]
+    names += [f"tables-{_safe(str(lb))}.json" for lb in labels if lb != RECORDED]
+    return {os.path.abspath(os.path.join(out, n)) for n in names
+            if os.path.isfile(os.path.join(out, n))}
 
 
 def _printed(info: Mapping[str, Any], summaries: Sequence[Mapping[str, Any]], compare: bool,

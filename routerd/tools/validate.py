@@ -118,6 +118,9 @@ def check_file(path: str, args: argparse.Namespace | None = None) -> Checked:
     cfg = _inputs.load_config(argparse.Namespace(config=path, **vars(fl)))
     topo = _inputs.load_topology(cfg)
     problems: list[Problem | str] = []
+    problems += [Problem(f"{path}: {dict(_config.SERVICE_ENDPOINTS)[name]}", ep,
+                         f"is also the {other} endpoint (routerd serve binds each once)")
+                 for name, ep, other in _config.endpoint_clashes(cfg)]
     problems += _security_problems(cfg, topo)
     problems += _agent_problems(cfg, topo)
     if problems:
