@@ -89,6 +89,11 @@ def test_load_a_file_with_units_in_names_and_coercion(tmp_path) -> None:  # type
     ({"service": {"max_message_bytes": 1e30}}, "service.max_message_bytes: 1e+30 is above 4611686018427387904"),
     ({"service": {"hwm_msgs": 3e9}}, "service.hwm_msgs: 3000000000.0 is above 2147483647"),
     ({"agent": {"report_buffer_rows": 10**30}}, "agent.report_buffer_rows: 1000000000000000000000000000000 is above 4611686018427387904"),
+    # a pair the engine refuses (routerd.core.splitting.problems) is refused at load time,
+    # not by a traceback when serve or simulate builds the engine
+    ({"engine": {"mode": "split", "variant": "dual"}},
+     "engine.variant: 'dual' is a greedy-mode rule: engine.mode split takes the plain rule only "
+     "(set engine.mode: greedy to run this variant)"),
 ])
 def test_bad_values_name_file_key_value_and_rule(tmp_path, doc, expect) -> None:  # type: ignore[no-untyped-def]
     msgs = _errors(tmp_path, doc)

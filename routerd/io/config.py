@@ -296,6 +296,12 @@ def _cross_checks(flat: dict[str, Any], where: str) -> list[Problem]:
     if flat["engine.initial.value_s"] > flat["engine.ceiling_s"]:
         p.append(Problem(f"{where}: engine.initial.value_s", flat["engine.initial.value_s"],
                          f"is above engine.ceiling_s ({flat['engine.ceiling_s']})"))
+    if flat["engine.mode"] == "split" and flat["engine.variant"] != "plain":
+        # the engine refuses the pair (routerd.core.splitting.problems): say so at load time,
+        # with the way out, instead of a traceback when serve or simulate builds the engine
+        p.append(Problem(f"{where}: engine.variant", flat["engine.variant"],
+                         "is a greedy-mode rule: engine.mode split takes the plain rule only "
+                         "(set engine.mode: greedy to run this variant)"))
     jf = flat["guards.jump.factor"]
     if 0 < jf <= 1:
         p.append(Problem(f"{where}: guards.jump.factor", jf, "must be 0 (off) or above 1"))
