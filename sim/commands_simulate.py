@@ -176,6 +176,17 @@ def write_outputs(result: dict[str, Any], out: str) -> list[str]:
 #: a run that injects at least this many packets is announced as long before it starts
 LONG_RUN_PACKETS = 1e8
 
+def announce_long_run(command: str, packets: float, what: str, ctrl_c: str) -> None:
+    """Say on stderr, before it starts, that a run injects :data:`LONG_RUN_PACKETS` or more:
+    a slip of the exponent (1e9 for 1e3) would otherwise look like a hang.  ``what`` follows
+    the packet count, ``ctrl_c`` says what Ctrl-C does (``routerd simulate`` and ``routerd
+    sweep`` word both their own way)."""
+    if math.isfinite(packets) and packets >= LONG_RUN_PACKETS:
+        print(f"routerd {command}: about {packets:.3g} packets to inject {what} (the compiled "
+              f"loop does a few million hops a second); Ctrl-C {ctrl_c} what has finished",
+              file=sys.stderr)
+
+
 #: problems printed before the rest are summarised in one line
 SHOW_PROBLEMS = 12
 
@@ -201,12 +212,8 @@ def run(args: argparse.Namespace) -> int:
         return 2
     spec = spec_from_args(args)
     stop = StopRequest()
-    n = (args.rate or 0.0) * (args.duration or 0.0)
-    if math.isfinite(n) and n >= LONG_RUN_PACKETS:
-        # a slip of the exponent (1e9 for 1e3) would otherwise look like a hang
-        print(f"routerd simulate: about {n:.3g} packets to inject (--rate x --duration): a long "
-              "run (the compiled loop does a few million hops a second); Ctrl-C ends it and "
-              "keeps what has finished", file=sys.stderr)
+    announce_long_run("simulate", (args.rate or 0.0) * (args.duration or 0.0),
+                      "(--rate x --duration): a long run", "ends it and keeps")
     try:
         output_dir(args.out)          # before the run: an unusable --out must not lose it
         with ctrl_c_stops(stop):

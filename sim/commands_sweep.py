@@ -50,11 +50,11 @@ from routerd.io.progress import StatusLine
 from . import executors as _executors
 from . import policies as _policies
 from .commands_simulate import (
-    LONG_RUN_PACKETS,
     _clean,
     add_config_options,
     add_packet_options,
     add_topology_option,
+    announce_long_run,
 )
 from .run import SimSpec, load_inputs
 from .run import run as run_sim
@@ -736,12 +736,8 @@ def run(args: argparse.Namespace) -> int:
             print(f"  {p}", file=sys.stderr)
         return 2
     n_runs = len(specs)
-    big = max(float(sp["rate_pps"]) * float(sp["duration_s"]) for sp in specs)
-    if math.isfinite(big) and big >= LONG_RUN_PACKETS:
-        # as routerd simulate says it: a slip of the exponent would otherwise look like a hang
-        print(f"routerd sweep: about {big:.3g} packets to inject in the largest run (rate x "
-              "--duration): long runs (the compiled loop does a few million hops a second); "
-              "Ctrl-C keeps what has finished", file=sys.stderr)
+    announce_long_run("sweep", max(float(sp["rate_pps"]) * float(sp["duration_s"]) for sp in specs),
+                      "in the largest run (rate x --duration): long runs", "keeps")
     t0 = time.perf_counter()
     pool: _executors.Pool | None = None
     jobs = min(args.jobs or os.cpu_count() or 1, n_runs)

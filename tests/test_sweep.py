@@ -254,12 +254,12 @@ def test_a_sweep_with_a_run_of_many_packets_is_announced_as_long(
         tmp_path: os.PathLike[str], capsys: pytest.CaptureFixture[str],
         monkeypatch: pytest.MonkeyPatch) -> None:
     # routerd simulate says so; a sweep with --rates 1e9 sat silent behind its progress bar
-    from routerd.sim import commands_sweep as CW
+    from routerd.sim import commands_simulate as CS
 
     args = ["sweep", "--rates", "100,300", "--policies", "shortest", "--seeds", "1",
             "--duration", "2", "--jobs", "1", "--quiet", "--no-plot"]
     assert cli.main(args + ["--out", os.path.join(str(tmp_path), "a")]) == 0
     assert "long runs" not in capsys.readouterr().err
-    monkeypatch.setattr(CW, "LONG_RUN_PACKETS", 600)      # 300/s x 2 s reaches it
+    monkeypatch.setattr(CS, "LONG_RUN_PACKETS", 600)      # 300/s x 2 s reaches it
     assert cli.main(args + ["--out", os.path.join(str(tmp_path), "b")]) == 0
     assert "about 600 packets to inject in the largest run" in capsys.readouterr().err
