@@ -30,14 +30,16 @@ DEMO = load_topology(config.load(None))
 class Writer:
     """Journals engine calls exactly as the service does; snapshots like Service._snapshot."""
 
-    def __init__(self, d: str, seed: int = 1, segment_bytes: int = 2048):
+    def __init__(self, d: str, seed: int = 1, segment_bytes: int = 2048,
+                 settings: E.EngineSettings | None = None, drop: tuple[str, ...] = ()):
         self.dir = d
         self.rng = np.random.default_rng(seed)
-        self.eng = E.Engine(DEMO, E.EngineSettings())
+        self.eng = E.Engine(DEMO, settings or E.EngineSettings())
         self.j = J.Journal(J.journal_dir(d), segment_bytes=segment_bytes)
         self.snaps = J.SnapshotStore(J.snapshot_dir(d))
+        self.drop = drop          # settings fields left out, as a version before them wrote
         self.j.append("start", {"topology": DEMO.digest, "nodes": list(DEMO.nodes),
-                                "settings": J.settings_to_dict(self.eng.settings), "epoch": 1})
+                                "settings": self._settings(), "epoch": 1})
         self.t = 1000.0
         self.b = 0
         self.batch_records: dict[int, int] = {}      # batch number -> record number
@@ -58,9 +60,12 @@ class Writer:
             self.eng.decide(self.t)
             self.j.append("tick", {"t": self.t})
 
+    def _settings(self) -> dict:
+        return {k: v for k, v in J.settings_to_dict(self.eng.settings).items() if k not in self.drop}
+
     def snapshot(self) -> int:
         rec = self.j.last_record
-        self.snaps.write(J.engine_state(self.eng, dedup=[]), rec)
+        self.snaps.write({**J.engine_state(self.eng, dedup=[]), "settings": self._settings()}, rec)
         if "snapshot" in J.KINDS:
             self.j.append("snapshot", {"record": rec, "kept": [n for n, _ in self.snaps.list()]})
         self.j.retire_before(self.snaps.retire_point())
@@ -74,9 +79,9 @@ class Writer:
         self.j.close()
 
 
-def start_up(d: str) -> Service:
+def start_up(d: str, cfg: config.Config | None = None) -> Service:
     """What ``routerd serve`` does with the state dir before it binds anything."""
-    svc = Service(config.load(None), DEMO, out=open(os.devnull, "w"))  # noqa: SIM115
+    svc = Service(cfg or config.load(None), DEMO, out=open(os.devnull, "w"))  # noqa: SIM115
     svc.restore(d)
     return svc
 
@@ -401,3 +406,32 @@ def test_a_state_dir_with_the_old_file_names_recovers_replays_and_goes_on(
         assert svc.engine is not None and svc.engine.same_state(w.eng)
     finally:
         stop(svc)
+
+
+# ---- a state dir written before the learning mode existed --------------------------------------
+def test_a_state_dir_from_before_the_learning_mode_restores_the_greedy_engine_it_ran(
+        tmp_path: pytest.TempPathFactory) -> None:
+    """Its start record and snapshot carry no ``mode`` (nor ``split_*``) setting: that engine
+    was greedy, whatever the default is today (split), so start-up and replay rebuild it as
+    greedy — from the snapshot and, with the snapshot gone, from the start record."""
+    d = str(tmp_path / "s")
+    before = tuple(f for f in J.settings_to_dict(E.EngineSettings())
+                   if f == "mode" or f.startswith("split_"))
+    w = Writer(d, seed=11, settings=E.EngineSettings(mode="greedy"), drop=before)
+    w.run(70, snapshot_at=(40,))
+    greedy = config.load(None).with_overrides({"engine.mode": "greedy"})
+    for case in ("snapshot", "journal only"):
+        if case == "journal only":
+            ((_, snap),) = J.SnapshotStore(J.snapshot_dir(d)).list()
+            os.unlink(snap)
+        r = J.restore(d, DEMO, E.EngineSettings())
+        assert r.engine.settings.mode == "greedy" and r.engine.same_state(w.eng), case
+        res = _replay(d, str(tmp_path / f"out-{case}"))
+        with open(tmp_path / f"out-{case}" / "tables.json") as fh:
+            assert json.load(fh)["tables"] == json.loads(json.dumps(wire.tables_by_name(w.eng))), case
+        assert res["info"]["records"] >= 1
+        svc = start_up(d, greedy)        # its config asks for greedy too: nothing to change
+        try:
+            assert svc.engine is not None and svc.engine.same_state(w.eng), case
+        finally:
+            stop(svc)

@@ -1552,12 +1552,21 @@ def settings_to_dict(s: EngineSettings) -> dict[str, Any]:
     return dataclasses.asdict(s)
 
 
+#: a settings field a stored dict (a ``start``/``config`` record, a snapshot) lacks was written
+#: by a version before the field: the engine then ran as the field's introduction kept it,
+#: which is not always today's default — engine.mode came in as greedy (the behaviour until
+#: then) and the default became split later.  Fields not named here read as their default.
+BEFORE_THE_FIELD: dict[str, Any] = {"mode": "greedy"}
+
+
 def settings_from_dict(d: Mapping[str, Any]) -> EngineSettings:
+    """Stored settings → EngineSettings; a field the dict lacks reads as what the writer
+    ran (:data:`BEFORE_THE_FIELD`, else the field's default)."""
     known = {f.name for f in dataclasses.fields(EngineSettings)}
     unknown = set(d) - known
     if unknown:
         raise ValueError(f"unknown engine settings in the journal: {sorted(unknown)}")
-    d = dict(d)
+    d = {**BEFORE_THE_FIELD, **d}
     if d.get("kernels") == "compiled" and not _kernels.available():
         # a journal written where the kernels were built, read where they are not: both
         # paths give the same results, so the replay runs on the reference path
