@@ -160,7 +160,7 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
     for n in SIZES:
         t = ring_with_chords(n, n, seed=n)
         t0 = time.perf_counter()
-        eng = Engine(t, EngineSettings())
+        eng = Engine(t, EngineSettings(mode="greedy"))
         construct = time.perf_counter() - t0
         k = eng.k
         fill = best_time(lambda: (np.full((n, n, k), 0.1), np.zeros((n, n, k), np.int64),

@@ -354,9 +354,9 @@ def throughput_topology(base: str) -> tuple[Any, str]:
 
 def engine_only(topo: Any, frames: Frames, duration: float) -> float:
     """rows/s of decode + Engine.observe alone, in this process, on the same frames."""
-    from routerd.core.engine import Engine
+    from routerd.core.engine import Engine, EngineSettings
 
-    eng = Engine(topo)
+    eng = Engine(topo, EngineSettings(mode="greedy"))
     n = 0
     t0 = time.perf_counter()
     while time.perf_counter() - t0 < duration:

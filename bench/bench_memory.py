@@ -35,12 +35,12 @@ def _rss_mb() -> float:
 
 
 def _hammer(updates: int) -> tuple[float, float]:
-    from routerd.core.engine import Engine, HopBatch
+    from routerd.core.engine import Engine, EngineSettings, HopBatch
     from routerd.core.topology import from_mapping
 
     topo = from_mapping({"topology": {"name": "three", "nodes": ["a", "b", "c"], "defaults": {"capacity_bps": 1e7, "buffer_pkts": 50}, "links": [
         {"between": ["a", "b"], "delay_s": 0.001}, {"between": ["b", "c"], "delay_s": 0.001}]}})
-    e = Engine(topo)
+    e = Engine(topo, EngineSettings(mode="greedy"))
     rows = 64
     b = HopBatch.of([0] * rows, [1] * rows, [2] * rows, np.full(rows, 0.01))
     base = _rss_mb()
@@ -66,7 +66,7 @@ def _engine_worker(n: int) -> dict[str, object]:
 
     sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
     from bench_engine import random_rows, ring_with_chords
-    from routerd.core.engine import Engine
+    from routerd.core.engine import Engine, EngineSettings
 
     def status(key: str) -> float:
         with open("/proc/self/status") as fh:
@@ -80,7 +80,7 @@ def _engine_worker(n: int) -> dict[str, object]:
     with open("/proc/self/clear_refs", "w") as fh:
         fh.write("5")                       # VmHWM := VmRSS (Linux)
     base = status("VmRSS")
-    e = Engine(t)
+    e = Engine(t, EngineSettings(mode="greedy"))
     rng = np.random.default_rng(1)
     for i in range(50):
         e.observe(random_rows(t, 1000, rng), now=i * 0.01)

@@ -33,7 +33,7 @@ sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 def _case(n: int) -> tuple[object, object, np.ndarray]:
     from bench_engine import ring_with_chords
     from routerd.core import flowdev
-    from routerd.core.engine import Engine
+    from routerd.core.engine import Engine, EngineSettings
 
     t = ring_with_chords(n, n, seed=n)
     cap = t.capacity_bps / 8000.0
@@ -41,7 +41,7 @@ def _case(n: int) -> tuple[object, object, np.ndarray]:
     dem = rng.uniform(0.0, 1.0, (n, n))
     np.fill_diagonal(dem, 0.0)
     sp = flowdev.flow_deviation(n, t.src, t.dst, cap, t.delay_s, dem, max_iter=0)
-    return t, Engine(t), dem * (0.9 / sp.max_utilisation)
+    return t, Engine(t, EngineSettings(mode="greedy")), dem * (0.9 / sp.max_utilisation)
 
 
 def run(quick: bool = False) -> dict[str, dict]:

@@ -54,7 +54,7 @@ def batches(topo: T.Topology, count: int, m: int, seed: int = 1) -> list[HopBatc
 
 
 def write_journal(d: str, topo: T.Topology, bs: list[HopBatch], every: int) -> None:
-    s = EngineSettings()
+    s = EngineSettings(mode="greedy")
     j = J.Journal(J.journal_dir(d), fsync="never")
     j.append("start", {"topology": topo.digest, "nodes": list(topo.nodes),
                        "settings": J.settings_to_dict(s), "epoch": 1})
@@ -69,7 +69,7 @@ def write_journal(d: str, topo: T.Topology, bs: list[HopBatch], every: int) -> N
 
 
 def engine_rate(topo: T.Topology, bs: list[HopBatch], every: int) -> float:
-    eng = Engine(topo, EngineSettings())
+    eng = Engine(topo, EngineSettings(mode="greedy"))
     t0 = time.perf_counter()
     t = 0.0
     for i, b in enumerate(bs):

@@ -140,8 +140,8 @@ def _engine_split(quick: bool) -> dict[str, dict[str, Any]]:
     rng = np.random.default_rng(5)
     # through a saved state, as the workers' engines below: every array's pages touched
     # (a fresh engine's zero arrays fault in on first write, which would bill one side)
-    start = Engine(t, EngineSettings()).export_state()   # the same start for the workers' engines
-    eng_one = Engine.from_state(t, EngineSettings(), start)
+    start = Engine(t, EngineSettings(mode="greedy")).export_state()   # the same start for the workers' engines
+    eng_one = Engine.from_state(t, EngineSettings(mode="greedy"), start)
     state = _state_bytes(eng_one)
     batches = [random_rows(t, 4096, rng) for _ in range(1 if quick else 8)]
     t_one = 0.0
@@ -164,10 +164,10 @@ def _engine_split(quick: bool) -> dict[str, dict[str, Any]]:
     for n in (2, 4):
         smap = shard.ShardMap.build(t, n)
         # every worker's engine (its columns only); the largest is the figure
-        sizes = [_state_bytes(Engine(t, EngineSettings(), owned=smap.owned(k))) for k in range(n)]
+        sizes = [_state_bytes(Engine(t, EngineSettings(mode="greedy"), owned=smap.owned(k))) for k in range(n)]
         own0 = smap.owner == 0
         # worker 0 from the same start as the whole engine: its columns (exact)
-        w0 = Engine.from_state(t, EngineSettings(), start, owned=smap.owned(0))
+        w0 = Engine.from_state(t, EngineSettings(mode="greedy"), start, owned=smap.owned(0))
         t_w0, rows_w0 = 0.0, 0
         for i, b in enumerate(batches):
             mine = b.take(np.flatnonzero(own0[b.dst]))
@@ -213,7 +213,7 @@ def _rss_figs(ctx: zmq.Context, base: str) -> dict[str, dict[str, Any]]:
     with open(conf, "w") as fh:
         yaml.safe_dump({**CONF, "service": {**CONF["service"], "publish_interval_s": 600.0}}, fh)
     frames = Frames("cols", ROWS, topo, np.random.default_rng(9))
-    whole = _state_bytes(Engine(topo, EngineSettings()))
+    whole = _state_bytes(Engine(topo, EngineSettings(mode="greedy")))
     out: dict[str, dict[str, Any]] = {}
     one_rss = 0
     for n in (0, 1, 2, 4):

@@ -47,7 +47,7 @@ def observe_rates(t: Topology, rows: int) -> dict[str, float]:
     best: dict[str, float] = {}
     for _ in range(3):
         for v in ("plain", "full_echo", "predictive", "confidence"):
-            e = Engine(t, EngineSettings(variant=v))
+            e = Engine(t, EngineSettings(mode="greedy", variant=v))
             t0 = time.perf_counter()
             for i, c in enumerate(chunks):
                 e.observe(c, now=0.01 * i)

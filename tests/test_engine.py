@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from typing import Any
 
 import networkx as nx
 import numpy as np
@@ -24,13 +25,23 @@ from hypothesis import strategies as st
 from routerd.core import engine as E
 from routerd.core import loops
 from routerd.core import topology as T
-from routerd.core.engine import Engine, EngineSettings, HopBatch
+from routerd.core.engine import Engine, HopBatch
+from routerd.core.engine import EngineSettings as _EngineSettings
 from routerd.io import config
 from routerd.io import topofiles as TF
 
 FIBRE = 5e-6  # s/km, ITU-T G.114 planning figure (the topohub import's rule)
 HYP = settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow,
                                                                        HealthCheck.function_scoped_fixture])
+
+
+def EngineSettings(**kw: Any) -> _EngineSettings:
+    """This file tests the greedy engine (split mode: tests/test_splitting.py): greedy
+    unless a test asks otherwise; the default mode is split."""
+    return _EngineSettings(**{"mode": "greedy", **kw})
+
+
+EngineSettings.from_config = _EngineSettings.from_config  # type: ignore[attr-defined]
 
 
 def line(*names: str, delay: float = 0.001, extra: tuple[tuple[str, str], ...] = ()) -> T.Topology:
@@ -382,7 +393,7 @@ def test_step_sizes_bounded_and_identical_to_the_unbounded_table(kw: dict) -> No
 
 def test_step_table_stays_small_after_huge_counts() -> None:
     # issue 13: the table grew with the busiest entry's count (441 MB at 4.5 M updates)
-    e = Engine(line("a", "b", "c"))
+    e = Engine(line("a", "b", "c"), EngineSettings())
     j = slot(e.topo, "a", "b")
     e.N[0, 2, j] = e._count_cap          # the defaults' counts saturate (uint8)
     e.observe(HopBatch.of([0] * 30, [1] * 30, [2] * 30, [0.01] * 30))   # vector path
@@ -801,7 +812,7 @@ def test_published_estimate_is_the_greedy_entry(make_ring) -> None:  # type: ign
     """published_estimate = Q at the published greedy slot (0 at d, the ceiling without a
     route); estimate stays the min over live slots (the update's rule)."""
     t = make_ring(9, 4, 3)
-    e = Engine(t)
+    e = Engine(t, EngineSettings())
     rng = np.random.default_rng(3)
     _random_q(e, rng)
     e.decide(1.0)
@@ -1063,7 +1074,7 @@ def test_a_state_with_int64_counts_restores_saturated_and_goes_on_the_same(kerne
 
 def test_reconfigure_widens_and_narrows_counts() -> None:
     t = line("a", "b", "c")
-    e = Engine(t)
+    e = Engine(t, EngineSettings())
     j = slot(t, "a", "b")
     e.N[0, 2, j] = 255                      # saturated under the defaults
     e.N[1, 2, 0] = 7

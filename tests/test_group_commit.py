@@ -390,8 +390,10 @@ def test_a_decision_takes_what_fits_its_budget_and_replay_follows(base: str) -> 
     stay due and are decided next, the tick carries the limit and replay applies it, so
     the state after a restart is the live one.  Link rows and shutdown decide everything."""
     clock = FakeClock()
+    # greedy: split mode decides every destination at every call (Engine.decide ignores
+    # the limit), so only greedy mode has a budgeted decision to check
     svc = _service(base, clock, **{"service.max_decisions_per_s": 0.0, "service.debounce_s": 0.0,
-                                   "service.decide_budget_s": 3.0})
+                                   "service.decide_budget_s": 3.0, "engine.mode": "greedy"})
     rng = np.random.default_rng(2)
     try:
         eng = svc.engine

@@ -126,7 +126,8 @@ def test_one_wild_sample_cannot_swing_a_route() -> None:
         specs += [T.LinkSpec(x, y, dly, 1e9, 100, x + y), T.LinkSpec(y, x, dly, 1e9, 100, y + x)]
     t = T.build("square", ["s", "p", "q", "t"], specs)
     # constant step 1 and no hysteresis: the most a single sample can do to the engine
-    base = EngineSettings(step_mode="constant", alpha=1.0, margin=0.0)
+    # (greedy mode: split mode moves shares step by step, so one sample swings nothing)
+    base = EngineSettings(mode="greedy", step_mode="constant", alpha=1.0, margin=0.0)
 
     def route_after(guard: Guards | None) -> int:
         eng = Engine(t, base)

@@ -122,7 +122,7 @@ def test_demo_with_a_config_in_a_subfolder_and_its_link_defaults(sub_config: Pat
     from routerd.tools import demo
 
     d = demo.Demo(str(tmp_path / "d"), 30.0, 1, 1.0, config=str(sub_config),
-                  overrides=("engine.variant=dual",))
+                  overrides=("engine.mode=greedy", "engine.variant=dual"))
     d.load_inputs()
     _check_demo_shape(d.topo)
     assert d.cfg["engine.variant"] == "dual" and d.cfg["sim.service.speed"] == 1.0

@@ -393,11 +393,12 @@ def test_no_pickle_only_plain_arrays() -> None:
 class Driver:
     """Drives an engine the way the service does, journaling every step."""
 
-    def __init__(self, topo: topology.Topology, state_dir: str, seed: int):
+    def __init__(self, topo: topology.Topology, state_dir: str, seed: int,
+                 settings: E.EngineSettings | None = None):
         self.topo = topo
         self.dir = state_dir
         self.rng = np.random.default_rng(seed)
-        self.settings = E.EngineSettings()
+        self.settings = settings or E.EngineSettings()
         self.eng = E.Engine(topo, self.settings)
         self.j = J.Journal(J.journal_dir(state_dir), segment_bytes=8192)
         self.snaps = J.SnapshotStore(J.snapshot_dir(state_dir))
@@ -492,7 +493,11 @@ def test_snapshot_plus_tail_equals_live(topo: topology.Topology, tmp_path: pytes
 
 class LimitedDriver(Driver):
     """A service that bounds each decision to a few destinations (issue 15) and journals
-    the limit with the tick."""
+    the limit with the tick (greedy mode: split mode decides every destination at every
+    call and ignores the limit)."""
+
+    def __init__(self, topo: topology.Topology, state_dir: str, seed: int):
+        super().__init__(topo, state_dir, seed, E.EngineSettings(mode="greedy"))
 
     def step(self) -> None:
         self.t += 0.05

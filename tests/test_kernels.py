@@ -25,6 +25,10 @@ from routerd.core import topology as T
 from routerd.core.engine import Engine, EngineSettings, HopBatch
 from routerd.io import config
 
+#: the greedy engine's kernels: greedy unless a test asks for split (split mode's pass is
+#: checked in tests/test_splitting.py); the default mode is split
+GREEDY = {"mode": "greedy"}
+
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 needs_compiled = pytest.mark.skipif(not kernels.available(),
                                     reason=kernels.status("compiled")["reason"])
@@ -60,8 +64,8 @@ def _rows(t: T.Topology, rng: np.random.Generator, m: int, bad: float) -> HopBat
 
 
 def _pair(t: T.Topology, **kw: object) -> tuple[Engine, Engine]:
-    return (Engine(t, EngineSettings(kernels="reference", **kw)),  # type: ignore[arg-type]
-            Engine(t, EngineSettings(kernels="compiled", **kw)))   # type: ignore[arg-type]
+    return (Engine(t, EngineSettings(**{"kernels": "reference", **GREEDY, **kw})),  # type: ignore[arg-type]
+            Engine(t, EngineSettings(**{"kernels": "compiled", **GREEDY, **kw})))   # type: ignore[arg-type]
 
 
 @needs_compiled
@@ -124,9 +128,9 @@ def test_owned_destinations_compiled_equals_reference_equals_whole_columns(
     if own.size == 0:
         own = np.array([int(rng.integers(0, t.n))])
     kw = dict(explore_basis=basis, explore_min=0.01)
-    a = Engine(t, EngineSettings(kernels="reference", **kw), owned=own)   # type: ignore[arg-type]
-    b = Engine(t, EngineSettings(kernels="compiled", **kw), owned=own)    # type: ignore[arg-type]
-    whole = Engine(t, EngineSettings(kernels="reference", **kw))           # type: ignore[arg-type]
+    a = Engine(t, EngineSettings(**{"kernels": "reference", **GREEDY, **kw}), owned=own)   # type: ignore[arg-type]
+    b = Engine(t, EngineSettings(**{"kernels": "compiled", **GREEDY, **kw}), owned=own)    # type: ignore[arg-type]
+    whole = Engine(t, EngineSettings(**{"kernels": "reference", **GREEDY, **kw}))           # type: ignore[arg-type]
     _same(a, b)
     _columns(whole, a)
     is_own = np.zeros(t.n, dtype=bool)
@@ -198,8 +202,8 @@ def test_compiled_key_lane_equals_reference(make_ring, monkeypatch, basis: str, 
     rng = np.random.default_rng(5)
     own = None if share == 1.0 else np.flatnonzero(rng.random(t.n) < share)
     kw = dict(explore_basis=basis, explore_min=0.01, margin=0.05)
-    a = Engine(t, EngineSettings(kernels="reference", **kw), owned=own)   # type: ignore[arg-type]
-    b = Engine(t, EngineSettings(kernels="compiled", **kw), owned=own)    # type: ignore[arg-type]
+    a = Engine(t, EngineSettings(**{"kernels": "reference", **GREEDY, **kw}), owned=own)   # type: ignore[arg-type]
+    b = Engine(t, EngineSettings(**{"kernels": "compiled", **GREEDY, **kw}), owned=own)    # type: ignore[arg-type]
     lane = 0
     for it in range(60):
         if it % 17 == 16:

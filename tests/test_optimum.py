@@ -433,7 +433,7 @@ def test_a_guide_record_replays_to_the_same_engine() -> None:
     rep = journal.replay_into(again, recs)
     assert rep.guides == 1
     assert again.same_state(live)
-    greedy = Engine(DEMO)
+    greedy = Engine(DEMO, EngineSettings(mode="greedy"))
     assert journal.apply_guide(greedy, recs[2].body) == (0, 0)   # greedy: nothing to seed
 
 
@@ -460,7 +460,8 @@ def test_the_runner_hands_the_loop_a_guide_in_split_mode_only() -> None:
         _acyclic_and_normalised(eng)
     finally:
         opt.close()
-    greedy = O.Optimum(config.load(None).with_overrides({"engine.optimum.guide": True}), DEMO,
+    greedy = O.Optimum(config.load(None).with_overrides({"engine.optimum.guide": True,
+                                                         "engine.mode": "greedy"}), DEMO,
                        lambda: (), threading.RLock(), clock.monotonic)
     assert "not split" in greedy.health()["guide"]["why_off"]
 

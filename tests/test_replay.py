@@ -115,7 +115,8 @@ def synthetic(d: str, settings: E.EngineSettings | None = None) -> Writer:
 # ---- the key table ------------------------------------------------------------------------
 def test_engine_keys_are_the_inverse_of_from_config() -> None:
     # reference: EngineSettings.from_config, the one reading of engine.* keys
-    base_cfg = config.load(None)
+    # greedy base: the alternatives below include a variant (greedy only) and split mode
+    base_cfg = config.load(None).with_overrides({"engine.mode": "greedy"})
     # engine.optimum.* is the service's live optimality gap: it reads the engine, never
     # changes it, so a replay has nothing to recompute for it
     assert set(R.ENGINE_KEYS) == {k for k in config.SCHEMA if k.startswith("engine.")
@@ -209,7 +210,8 @@ def reference_variant(d: str, changes: dict[str, Any]) -> dict[str, Any]:
 
 def test_what_if_figures_match_an_independent_recomputation(tmp_path: Any) -> None:
     d = str(tmp_path / "state")
-    synthetic(d)
+    # greedy: the figures count next-hop changes, and the keys varied are greedy mode's
+    synthetic(d, E.EngineSettings(mode="greedy", step_mode="constant", alpha=0.4))
     out = str(tmp_path / "o")
     res = R.replay_command(args_for(d, out, "--set", "engine.hysteresis.margin=0.25",
                                     "--compare", "engine.step.alpha=0.9,engine.hysteresis.margin=0.0"))

@@ -562,12 +562,13 @@ def test_1000_nodes_2_workers_memory_tables_and_a_killed_worker(
 
 def test_a_worker_keeps_its_owned_engine_through_a_reload_asking_for_a_variant(
         tmp_path: Any) -> None:
-    """A worker's engine holds its destinations only (the plain rule); engine.variant is
+    """A worker's engine holds its destinations only (the plain rule in greedy mode; split
+    mode keeps state across destinations, so its workers hold every one); engine.variant is
     not a tunable, so a reload asking for one says it needs a restart and keeps the engine."""
     import argparse
 
     conf = tmp_path / "w.yaml"
-    conf.write_text(f"service:\n  state_dir: {tmp_path / 'st'}\n")
+    conf.write_text(f"service:\n  state_dir: {tmp_path / 'st'}\nengine:\n  mode: greedy\n")
     topo = _topo()
     cfg = _config.load(str(conf))
     smap = shard.ShardMap.build(topo, 2)
@@ -577,7 +578,8 @@ def test_a_worker_keeps_its_owned_engine_through_a_reload_asking_for_a_variant(
         w.restore(str(tmp_path / "st"))
         assert w.engine is not None and w.engine.partial
         assert w.engine.owned.tolist() == smap.owned(0).tolist()
-        conf.write_text(f"service:\n  state_dir: {tmp_path / 'st'}\nengine:\n  variant: predictive\n")
+        conf.write_text(f"service:\n  state_dir: {tmp_path / 'st'}\nengine:\n  mode: greedy\n"
+                        "  variant: predictive\n")
         r = w._do_reload()
         assert r["needs_restart"] == ["engine.variant"], r
         assert w.engine.settings.variant == "plain" and w.engine.partial

@@ -429,8 +429,9 @@ def test_every_entry_of_a_used_link_is_refreshed(small_ring: T.Topology) -> None
 
 
 def test_greedy_mode_has_no_split_state(small_ring: T.Topology) -> None:
-    eng = Engine(small_ring, EngineSettings())
+    eng = Engine(small_ring, EngineSettings(mode="greedy"))
     assert eng._split is None and "split" not in eng.export_state()
+    assert Engine(small_ring, EngineSettings())._split is not None     # split is the default
     with pytest.raises(ValueError, match="mode split needs variant plain"):
         EngineSettings(mode="split", variant="predictive")
     with pytest.raises(ValueError, match="mode 'fast'"):

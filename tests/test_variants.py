@@ -38,9 +38,10 @@ VARIANTS = ("full_echo", "predictive", "dual", "confidence")
 
 def cs(variant: str, **kw: object) -> EngineSettings:
     """Constant step, constant start values, no hysteresis: hand arithmetic stays simple."""
-    base: dict[str, object] = {"step_mode": "constant", "alpha": 0.5, "initial_mode": "constant",
-                                   "initial_value_s": 10.0, "ceiling_s": 100.0, "margin": 0.0,
-                                   "variant": variant}
+    # greedy mode: the variants are greedy-mode rules (split mode takes the plain rule only)
+    base: dict[str, object] = {"mode": "greedy", "step_mode": "constant", "alpha": 0.5,
+                               "initial_mode": "constant", "initial_value_s": 10.0,
+                               "ceiling_s": 100.0, "margin": 0.0, "variant": variant}
     base.update(kw)
     return EngineSettings(**base)  # type: ignore[arg-type]
 
@@ -57,7 +58,7 @@ def diamond() -> T.Topology:
 # ---- settings and config ---------------------------------------------------------------
 
 def test_config_keys_reach_the_settings() -> None:
-    cfg = config.load(None).with_overrides({"engine.variant": "confidence",
+    cfg = config.load(None).with_overrides({"engine.mode": "greedy", "engine.variant": "confidence",
                                             "engine.confidence.decay": 0.5})
     s = EngineSettings.from_config(cfg)
     assert s.variant == "confidence" and s.conf_decay == 0.5
@@ -209,7 +210,8 @@ def test_full_echo_damping_one_is_the_published_rule() -> None:
 # ---- dual (Kumar & Miikkulainen 1997): the simulator adapter's backward rows --------------
 
 def test_dual_adapter_emits_the_backward_row() -> None:
-    cfg = config.load(None).with_overrides({"engine.variant": "dual", "sim.flows_per_pair": 4})
+    cfg = config.load(None).with_overrides({"engine.mode": "greedy", "engine.variant": "dual",
+                                            "sim.flows_per_pair": 4})
     t = line("s", "x", "y", "d")
     p = QRouting()
     p.attach(t, np.random.default_rng(0), cfg)
@@ -222,7 +224,7 @@ def test_dual_adapter_emits_the_backward_row() -> None:
     # at y, about x, towards the packet's source s, with x's estimate for s
     assert back == (1.0, y, x, s_, 0.004, p._V[x][s_])
     plain = QRouting()
-    plain.attach(t, np.random.default_rng(0), config.load(None))
+    plain.attach(t, np.random.default_rng(0), config.load(None).with_overrides({"engine.mode": "greedy"}))
     assert not plain.hop_flow
 
 
@@ -262,7 +264,7 @@ def test_batched_equals_sequential_for_every_variant(small_ring: T.Topology, dat
     down = data.draw(st.lists(st.integers(0, small_ring.n_links - 1), max_size=2, unique=True))
     conf = ([data.draw(st.one_of(st.just(math.nan), st.floats(0, 1))) for _ in rows]
             if with_conf else None)
-    _seq_equal(small_ring, rows, EngineSettings(variant=variant), down, conf)
+    _seq_equal(small_ring, rows, EngineSettings(mode="greedy", variant=variant), down, conf)
 
 
 @HYP
@@ -271,7 +273,7 @@ def test_batched_equals_sequential_for_every_variant(small_ring: T.Topology, dat
 def test_exploration_bounded_and_no_loops_for_every_variant(make_ring, seed, n, chords, variant,  # type: ignore[no-untyped-def]
                                                             hi, downs) -> None:
     t = make_ring(n, chords, seed=seed % 1000)
-    s = EngineSettings(variant=variant, explore_max=hi, explore_cap=0.3, td_ref=0.05)
+    s = EngineSettings(mode="greedy", variant=variant, explore_max=hi, explore_cap=0.3, td_ref=0.05)
     e = Engine(t, s)
     rng = np.random.default_rng(seed)
     for k in rng.choice(t.n_links, size=min(downs, t.n_links), replace=False).tolist():

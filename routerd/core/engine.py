@@ -201,7 +201,7 @@ class EngineSettings:
     # which implementation runs the hot paths (routerd.core.kernels): the same results either way
     kernels: str = "auto"
     # the learning mode (routerd.core.splitting): greedy next hop, or shares by marginal cost
-    mode: str = "greedy"
+    mode: str = "split"
     split_step: float = 1.0
     split_max_step: float = 1.0
     split_threshold: float = 0.02

@@ -71,7 +71,7 @@ SCHEMA: dict[str, Field] = {
     # -- engine: implementation (routerd/core/kernels.py) -----------------------------------
     "engine.kernels": F(str, "auto", "hot paths: compiled kernels when built (auto), insist on them (compiled), or the numpy reference; the same results either way", choices=("auto", "compiled", "reference")),
     # -- engine: published refinements (routerd/core/variants.py) ---------------------------
-    "engine.mode": F(str, "greedy", "learning mode: greedy (one next hop per destination, Q-routing with hysteresis and exploration) or split (shares over strictly downhill next hops moved by measured marginal delay; routerd/core/splitting.py)", choices=("greedy", "split")),
+    "engine.mode": F(str, "split", "learning mode: greedy (one next hop per destination, Q-routing with hysteresis and exploration) or split (shares over strictly downhill next hops moved by measured marginal delay; routerd/core/splitting.py)", choices=("greedy", "split")),
     "engine.split.step": F(float, 1.0, "split: fraction of the curvature-scaled (Newton) share step taken per rate window (scaled by the time since the last decision)", lo=0, hi=1, lo_open=True, tunable=True),
     "engine.split.max_step": F(float, 1.0, "split: most share one next hop gives up per rate window (scaled by the time since the last decision)", lo=0, hi=1, lo_open=True, tunable=True),
     "engine.split.publish_threshold": F(float, 0.02, "split: a key's table is republished only when one of its shares moved by more than this", lo=0, hi=1, hi_open=True, tunable=True),
@@ -83,12 +83,12 @@ SCHEMA: dict[str, Field] = {
     "engine.split.rate_model": F(float, 0.97, "split: when above 0, a link's marginal cost uses the larger of its measured latency and the stationary M/M/1 latency of its measured rate on its known capacity (utilisation capped at this value), which answers a share change at once where the queue follows seconds later (0 = measured latency only)", lo=0, hi=1, hi_open=True, tunable=True),
     "engine.split.event_boost_s": F(float, 2.0, "split: time constant (s) of the decay of engine.split.event_boost", lo=0, lo_open=True, tunable=True),
     # -- engine: the live optimality gap (routerd/service/optimum.py) -----------------------
-    "engine.optimum.interval_s": F(float, 5.0, "every this often the service runs flow deviation on the measured demand and live links in a child process and exports the model's optimal mean delay beside its delay of the published tables (0 = off)", lo=0),
+    "engine.optimum.interval_s": F(float, 2.0, "every this often the service runs flow deviation on the measured demand and live links in a child process and exports the model's optimal mean delay beside its delay of the published tables (0 = off)", lo=0),
     "engine.optimum.first_s": F(float, 0.5, "the optimiser's first run comes this long after the start (at most engine.optimum.interval_s; then every interval): with the guide, a cold start's first seconds are when a result helps most", lo=0),
     "engine.optimum.budget_s": F(float, 1.0, "most time one optimiser run may take; it then stops with the best routing so far and reports its gap", lo=0, lo_open=True),
     "engine.optimum.window_s": F(float, 10.0, "time constant of the measured demand and link rates the optimiser is fed", lo=0, lo_open=True),
     "engine.optimum.packet_bytes": F(float, 0.0, "mean packet size for the model (0 = estimated from the measured link latencies and rates, M/M/1 service time)", lo=0),
-    "engine.optimum.guide": F(bool, False, "split mode: each optimiser result seeds the learner's shares (whole destinations, live links only, kept acyclic; journaled as a guide record, so replay reproduces it; the simulator runs the optimiser on simulated time)"),
+    "engine.optimum.guide": F(bool, True, "split mode: each optimiser result seeds the learner's shares (whole destinations, live links only, kept acyclic; journaled as a guide record, so replay reproduces it; the simulator runs the optimiser on simulated time)"),
     "engine.optimum.max_nodes": F(int, 300, "networks with more nodes get no optimum (its cost grows about as n^2 per iteration; measured in the README)", lo=2),
     "engine.variant": F(str, "plain", "learning rule: plain Q-routing, full_echo (all neighbours' estimates), predictive (recovery-rate prediction), dual (backward rows carried by packets), confidence (confidence-weighted steps)", choices=("plain", "full_echo", "predictive", "dual", "confidence")),
     "engine.full_echo.damping": F(float, 0.5, "full_echo: step multiplier of the echo updates of the hops not taken (1 = the published rule)", lo=0, hi=1, lo_open=True, tunable=True),

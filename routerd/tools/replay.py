@@ -440,7 +440,8 @@ def replay(src: Source, topo: _topology.Topology, variants: Sequence[Variant], *
            recovery: J.Recovery | None = None) -> dict[str, Any]:
     """Replay the journal once for the recorded run and every variant (in lockstep)."""
     recovery = recovery if recovery is not None else recovery_of(src)
-    start = find_start(src, fallback or EngineSettings(), recovery)
+    # no recorded settings at all: what a record without any field means (greedy mode)
+    start = find_start(src, fallback or J.settings_from_dict({}), recovery)
     base = Run(Variant(RECORDED), make_engine(topo, start, Variant(RECORDED)))
     others = [Run(v, make_engine(topo, start, v)) for v in variants]
     rejected0 = sum(base.engine.statistics().rejected.values())
@@ -559,7 +560,7 @@ def replay_command(args: argparse.Namespace) -> dict[str, Any]:
         cfg, topo, chosen = _load_config_and_topology(args, src)
         _check_topology(src, topo)
         recovery = recovery_of(src)
-        start = find_start(src, EngineSettings(), recovery)
+        start = find_start(src, J.settings_from_dict({}), recovery)
         start_settings = start.settings
         primary_changes: dict[str, Any] = {}
         if cfg is not None:
