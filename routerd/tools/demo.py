@@ -777,7 +777,10 @@ class Demo:
                      + (" — the same behaviour" if close else " — a real difference") +
                      f", losing {_packets(sv['lost'])}{_share(sv)}, "
                      f"with {int(sv['route_changes'])} route changes and "
-                     f"{sv['exploration_share'] * 100:.1f}% of traffic exploring at the end.")
+                     f"{sv['exploration_share'] * 100:.1f}% of traffic "
+                     + ("off each table's main next hop (its split shares)"
+                        if self.cfg is not None and self.cfg["engine.mode"] == "split"
+                        else "exploring") + " at the end.")
         if fail is not None:
             extra = sv["lost_during_failure"] - q["lost_during_failure"]
             if extra > 0:
