@@ -33,7 +33,13 @@ from service_harness import ServiceProc, service_args
 # a decision after every batch (no debounce, no decision cap, every due destination): the
 # engine's state depends on where the decisions fall in the batch stream, so one process and
 # N shards compare only when that is the same
+# greedy: a worker then holds 1/N of the engine, and the tables are a function of the
+# batches and where decisions fall; split mode's share steps scale with the wall-clock
+# time between decisions and its guide runs in one process only (workers have no optimum),
+# so one process and N workers fed the same batches do not publish the same split tables
 CONF = """\
+engine:
+  mode: greedy
 service:
   debounce_s: 0
   max_decisions_per_s: 0
@@ -487,7 +493,8 @@ def test_1000_nodes_2_workers_memory_tables_and_a_killed_worker(
     # where decisions fall changes the tables: CONF's reason), one batch in flight (several
     # taken in one loop turn share one decision)
     with open(os.path.join(base, "conf.yaml"), "w") as fh:
-        fh.write("service:\n  publish_interval_s: 600\n  snapshot_interval_s: 3600\n"
+        fh.write("engine:\n  mode: greedy\n"     # 1/N engines and equal tables: CONF's reason
+                 "service:\n  publish_interval_s: 600\n  snapshot_interval_s: 3600\n"
                  "  decide_budget_s: 0\n  debounce_s: 0\n  max_decisions_per_s: 0\n"
                  "  journal:\n    fsync: never\nshard:\n  restart_delay_s: 0.5\n"
                  # a worker's 1,000-node tables can take seconds on a busy 2-core machine
