@@ -69,11 +69,11 @@ TOPOLOGIES = ("topohub:sndlib/abilene", "topohub:sndlib/geant", "ours:two-cluste
 #: mode guided by the live optimum (``guided``: GUIDED's settings)
 VARIANTS = ("plain", "full_echo", "predictive", "dual", "confidence", "split", "guided")
 #: split mode with engine.optimum.guide: flow deviation on the measured demand every 2 s
-#: of simulated time seeds the shares (routerd.sim.policies._Guide; the service's default
-#: interval is 5 s)
+#: of simulated time seeds the shares (routerd.sim.policies._Guide; the defaults since
+#: issue 14, spelled out so the label keeps its meaning whatever the defaults)
 GUIDED = ("engine.mode=split", "engine.optimum.guide=true", "engine.optimum.interval_s=2")
-#: the settings of the labels that are not an engine.variant
-MODES = {"split": ("engine.mode=split",), "guided": GUIDED}
+#: the settings of the labels that are not an engine.variant (split: without the guide)
+MODES = {"split": ("engine.mode=split", "engine.optimum.guide=false"), "guided": GUIDED}
 #: the labels issue 14's targets are checked for
 SPLITS = ("split", "guided")
 #: baselines: static shortest paths, shortest paths recomputed after failures, the optimum
@@ -207,7 +207,7 @@ def lost_share(summary: dict[str, Any]) -> float:
 def label_overrides(label: str, own: Any = ()) -> list[str]:
     """A learning label's settings, then the job's own overrides: the later one wins, so a
     job can refine what its label sets (``guided``'s interval, say) instead of losing to it."""
-    return list(MODES.get(label, (f"engine.variant={label}",))) + list(own)
+    return list(MODES.get(label, ("engine.mode=greedy", f"engine.variant={label}"))) + list(own)
 
 
 def one(job: dict[str, Any]) -> dict[str, Any]:

@@ -319,3 +319,10 @@ def test_a_report_job_can_refine_what_its_label_sets() -> None:
     assert cfg["engine.optimum.interval_s"] == 7.0
     assert config.load(None, CV.label_overrides("guided"))["engine.optimum.interval_s"] == 2.0
     assert CV.label_overrides("dual", ["engine.variant=plain"])[-1] == "engine.variant=plain"
+    # every label means the same whatever the defaults: the variants are greedy mode's,
+    # split runs without the guide, guided with it
+    for label in CV.VARIANTS:
+        c = config.load(None, CV.label_overrides(label))
+        want = {"split": ("split", False), "guided": ("split", True)}.get(label, ("greedy", c["engine.optimum.guide"]))
+        assert (c["engine.mode"], c["engine.optimum.guide"]) == want, label
+        assert c["engine.variant"] == (label if label in CV.VARIANTS[:5] else "plain"), label

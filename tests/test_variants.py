@@ -322,7 +322,7 @@ def test_state_round_trip_and_reload_keep_variant_state(variant: str) -> None:
 
 def _run(variant: str, **kw: object) -> dict:
     spec = {"policy": "qrouting", "rate_pps": 1800, "duration_s": 10, "seed": 3, "series": True,
-                "overrides": [f"engine.variant={variant}"]}
+                "overrides": ["engine.mode=greedy", f"engine.variant={variant}"]}
     spec.update(kw)
     return run(spec)
 
@@ -366,7 +366,8 @@ def _two_ways(variant: str, seed: int, duration: float = 25.0) -> tuple[QRouting
 
     run({"policy": "qrouting", "topology": TWO_WAYS, "rate_pps": 300.0, "duration_s": duration,
          "seed": seed, "demands": True, "scenario": RUSH_THEN_CALM, "series": True,
-         "warmup_s": 0.0, "overrides": [f"engine.variant={variant}", "sim.series_interval_s=0.25"]},
+         "warmup_s": 0.0, "overrides": ["engine.mode=greedy", f"engine.variant={variant}",
+                                                    "sim.series_interval_s=0.25"]},
         policy=p, observer=obs)
     return p, samples
 
