@@ -367,7 +367,7 @@ def _two_ways(variant: str, seed: int, duration: float = 25.0) -> tuple[QRouting
     run({"policy": "qrouting", "topology": TWO_WAYS, "rate_pps": 300.0, "duration_s": duration,
          "seed": seed, "demands": True, "scenario": RUSH_THEN_CALM, "series": True,
          "warmup_s": 0.0, "overrides": ["engine.mode=greedy", f"engine.variant={variant}",
-                                                    "sim.series_interval_s=0.25"]},
+                                 "sim.series_interval_s=0.25"]},
         policy=p, observer=obs)
     return p, samples
 
