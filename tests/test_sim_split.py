@@ -44,7 +44,9 @@ def sim(policy: str, load: float, **kw: Any) -> dict[str, Any]:
     spec = {"topology": bridges(), "policy": "qrouting" if policy == "split" else policy,
             "rate_pps": load * saturation(), "duration_s": 20.0, "warmup_s": 5.0, "seed": 1,
             "series": True, "size_dist": "exp",
-            "overrides": (["engine.mode=split"] if policy == "split" else []) + kw.pop("overrides", [])}
+            # split learning alone (the guide is on by default; a test's own overrides win)
+            "overrides": (["engine.mode=split", "engine.optimum.guide=false"] if policy == "split"
+                          else []) + kw.pop("overrides", [])}
     spec.update(kw)
     r = run(spec)
     assert_little(r["summary"])
@@ -190,7 +192,7 @@ def test_closed_loop_split_matches_in_process() -> None:
     speed its rates would be off by that factor against the simulated latencies."""
     spec = {"topology": bridges(), "policy": "qrouting", "rate_pps": 0.9 * saturation(),
             "duration_s": 12.0, "warmup_s": 4.0, "seed": 1, "series": False, "size_dist": "exp",
-            "overrides": ["engine.mode=split", "sim.service.speed=1"]}
+            "overrides": ["engine.mode=split", "engine.optimum.guide=false", "sim.service.speed=1"]}
     m, half = live_within_band(spec)
     static = run({**spec, "policy": "shortest"})["summary"]
     assert static["mean_delivery_s"] - m > 3 * half       # the band is not vacuous
@@ -274,7 +276,8 @@ def test_closed_loop_guided_split_matches_in_process() -> None:
             "duration_s": 16.0, "warmup_s": 6.0, "seed": 1, "series": False, "size_dist": "exp",
             "overrides": ov + ["engine.optimum.guide=true", "engine.optimum.interval_s=2"]}
     m, half = live_within_band(spec)
-    alone = [run({**spec, "seed": k, "overrides": ov})["summary"]["mean_delivery_s"] for k in (1, 2, 3)]
+    alone = [run({**spec, "seed": k, "overrides": ov + ["engine.optimum.guide=false"]})["summary"]
+             ["mean_delivery_s"] for k in (1, 2, 3)]
     assert float(np.mean(alone)) - m > 3 * half, (alone, m, half)   # the band is not vacuous
 
 
