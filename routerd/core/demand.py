@@ -26,14 +26,21 @@ from routerd.core import kernels as _kernels
 from routerd.core.splitting import service_time
 from routerd.core.topology import Topology
 
-__all__ = ["BUSY_ROWS", "Meter", "Rates", "estimate", "guide_shares", "inputs_for", "published_view",
-           "solve"]
+__all__ = ["BUSY_ROWS", "SLOW_FACTOR", "SLOW_MEMORY_S", "SLOW_ROWS", "Meter", "Rates", "estimate",
+           "guide_shares", "inputs_for", "model_capacity", "published_view", "solve"]
 
 #: Least rows a link needs in the window to count towards the packet-size estimate.
 BUSY_ROWS = 4.0
 #: a link whose packet-size figure is off the median by more than this factor does not
 #: enter :func:`estimate`'s mean
 SIZE_TRIM = 2.0
+#: a link whose measured capacity is under 1/SLOW_FACTOR of its configured one is modelled
+#: at the measured figure (:func:`model_capacity`) ...
+SLOW_FACTOR = 4.0
+#: ... measured on at least this many rows in the window ...
+SLOW_ROWS = 20.0
+#: ... and keeps it while idle, fading back to the configured one with this time constant (s)
+SLOW_MEMORY_S = 10.0
 
 
 class Meter:
@@ -123,6 +130,10 @@ class Rates:
     lat: np.ndarray
     t: float = -math.inf      # when they were last brought up to date (the caller's clock)
     weight: float = 0.0       # the total weight of the intervals so far (0: none yet)
+    #: per link: the capacity (packets/s) last measured on a link found slow by
+    #: :func:`model_capacity` (inf: none), and when (the caller's clock)
+    slow_pps: np.ndarray | None = None
+    slow_t: np.ndarray | None = None
 
     @classmethod
     def empty(cls, n: int, n_links: int) -> Rates:
@@ -183,6 +194,46 @@ def estimate(topo: Topology, rates: Rates, window: float, packet_bytes: float = 
     return size if size > 0 and math.isfinite(size) else 0.0
 
 
+def model_capacity(topo: Topology, rates: Rates, window: float, packet_bytes: float) -> np.ndarray:
+    """(n_links,) capacities in packets/s for the model: each link's configured capacity
+    over the packet size, except where the link was measured slower.
+
+    A link's capacity follows from its measured rate F and queueing-plus-transmission
+    time s by M/M/1 (Kleinrock, Queueing Systems vol. 1, 1975: ``s = 1/(C - F)``, so
+    ``C = F + 1/s``).  Where that figure, on at least :data:`SLOW_ROWS` rows in the
+    window, is under 1/:data:`SLOW_FACTOR` of the configured capacity, the link is
+    slower than the topology file says (a degraded tunnel, a rate limit the file does not
+    know): the model takes the measured figure.  The trigger's factor is wide because the
+    M/M/1 fit of a queue far from its steady state is off by a factor up to about 2 near
+    capacity (the packet-size estimate trims at :data:`SIZE_TRIM` for that reason).
+    Once such a link's traffic has moved away nothing measures it any more, so the
+    figure is remembered (in ``rates``) and fades back to the configured one with time
+    constant :data:`SLOW_MEMORY_S`: without it the optimum put traffic back on the slow
+    link as soon as its rows stopped, and a guided learner followed (measured in
+    ``routerd lab`` with a 4 Mb/s link cut to 64 kb/s: delivery recovered, then went
+    back to 290 ms four seconds later).  A link measured at or above the trigger forgets
+    its figure at once.  Updates the memory in ``rates`` at ``rates.t``."""
+    cfg = topo.capacity_bps / (8.0 * float(packet_bytes))
+    nl = topo.n_links
+    if rates.slow_pps is None or rates.slow_t is None:
+        rates.slow_pps, rates.slow_t = np.full(nl, np.inf), np.full(nl, -np.inf)
+    F = rates.link
+    busy = (F * window >= SLOW_ROWS) & np.isfinite(cfg)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        s = np.where(busy, rates.lat / np.where(busy, F, 1.0) - topo.delay_s, 0.0)
+        meas = np.where(busy & (s > 0), F + 1.0 / np.where(s > 0, s, 1.0), np.inf)
+    slow = busy & (meas * SLOW_FACTOR < cfg)
+    rates.slow_pps[slow] = meas[slow]
+    rates.slow_t[slow] = rates.t
+    rates.slow_pps[busy & ~slow] = np.inf
+    out = cfg.copy()
+    rem = np.isfinite(rates.slow_pps)
+    if rem.any():
+        fade = np.exp(-np.maximum(rates.t - rates.slow_t[rem], 0.0) / SLOW_MEMORY_S)
+        out[rem] = cfg[rem] - (cfg[rem] - rates.slow_pps[rem]) * fade
+    return out
+
+
 def published_view(engine: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
     """What :func:`inputs_for` needs of an engine: its published shares, the slots of live
     links that exist, the destinations it owns (the caller holds whatever lock guards it)."""
@@ -190,9 +241,13 @@ def published_view(engine: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray | No
 
 
 def inputs_for(topo: Topology, shares: np.ndarray, live_slots: np.ndarray, demand: np.ndarray,
-               packet_bytes: float, owned: np.ndarray | None = None) -> dict[str, Any]:
-    """The plain arrays :func:`solve` takes: live links only (capacities in packets/s),
-    the published shares as per-link fractions over them, the demand."""
+               packet_bytes: float, owned: np.ndarray | None = None,
+               cap_pps: np.ndarray | None = None) -> dict[str, Any]:
+    """The plain arrays :func:`solve` takes: live links only (capacities in packets/s:
+    ``cap_pps`` per link, e.g. :func:`model_capacity`'s, else the configured ones), the
+    published shares as per-link fractions over them, the demand."""
+    if cap_pps is None:
+        cap_pps = topo.capacity_bps / (8.0 * packet_bytes)
     sl = topo.slot_link
     alive = np.zeros(topo.n_links, dtype=bool)
     alive[sl[(sl >= 0) & live_slots]] = True
@@ -200,7 +255,7 @@ def inputs_for(topo: Topology, shares: np.ndarray, live_slots: np.ndarray, deman
     frac = _fd.slot_fractions(topo, shares, owned)[:, keep]
     return {"n": topo.n, "keep": keep,
             "src": topo.src[keep].astype(np.int64), "dst": topo.dst[keep].astype(np.int64),
-            "cap_pps": topo.capacity_bps[keep] / (8.0 * packet_bytes), "prop_s": topo.delay_s[keep].copy(),
+            "cap_pps": np.asarray(cap_pps, dtype=float)[keep], "prop_s": topo.delay_s[keep].copy(),
             "frac": frac, "demand": demand, "packet_bytes": float(packet_bytes)}
 
 

@@ -100,7 +100,7 @@ import numpy as np
 
 from routerd.core import demand as _demand
 from routerd.core import flowdev as _fd
-from routerd.core.demand import Rates, estimate, guide_shares, inputs_for, solve
+from routerd.core.demand import Rates, estimate, guide_shares, inputs_for, model_capacity, solve
 from routerd.core.topology import Topology
 from routerd.io import journal as _journal
 
@@ -225,6 +225,7 @@ class _State:
     guides: int = 0                        # guide records applied
     guided: int = 0                        # destinations the last one seeded
     guide_left: int = 0                    # destinations it left alone (a route or a loop)
+    slow_links: int = 0                    # links the last run modelled below their configured capacity
 
 
 class Optimum:
@@ -341,7 +342,10 @@ class Optimum:
         try:
             with self._lock:
                 topo, shares, live, owned = self._view()
-            job = inputs_for(topo, shares, live, demand, size, owned)
+            cap = model_capacity(topo, self.rates, self.window, size)
+            with self._state_lock:
+                self.state.slow_links = int(np.count_nonzero(cap < topo.capacity_bps / (8.0 * size)))
+            job = inputs_for(topo, shares, live, demand, size, owned, cap)
             job["guide"] = self.guide and self.guide_off is None
             res = self._submit(job)
         except Exception as e:  # noqa: BLE001 - a failed run is reported, never fatal to the service
@@ -419,6 +423,7 @@ class Optimum:
                 "error": st.error,
                 "interval_s": self.interval, "budget_s": self.budget, "window_s": self.window,
                 "demand_pps": st.demand_pps, "packet_bytes": st.packet_bytes,
+                "slow_links": st.slow_links,
                 "runs": st.runs, "runs_failed": st.failed, "runs_skipped": st.skipped,
                 "age_s": None if st.last_at is None else max(0.0, self._mono() - st.last_at),
                 "guide": {"on": self.guide and self.guide_off is None, "why_off": self.guide_off,
