@@ -381,7 +381,7 @@ class ServicePolicy(Policy):
         self.ceiling = float(cfg["engine.ceiling_s"])
         # split mode: a node reports the share-weighted mean of its published next hops'
         # estimates (Engine.published_estimate's rule), not its largest share's
-        self.split_mode = cfg["engine.mode"] == "split"
+        self.split_mode = _config.split_fits(cfg, topology.n)[0]["engine.mode"] == "split"   # as the service runs
         n = topology.n
         self.n = n
         self.names = topology.nodes

@@ -50,6 +50,7 @@ from routerd.core.demand import (Meter, Rates, estimate, guide_shares, inputs_fo
 from routerd.core.engine import Engine, EngineSettings, HopBatch
 from routerd.core.errors import InputError, Problem
 from routerd.core.topology import Topology
+from routerd.io.config import split_fits
 
 from .core import hops_module
 from .policy import Policy
@@ -299,6 +300,8 @@ class QRouting(Policy):
     name = "qrouting"
 
     def attach(self, topology: Topology, rng: np.random.Generator, settings: Any) -> None:
+        if settings is not None:   # split mode above engine.split.max_nodes runs greedy
+            settings = split_fits(settings, topology.n)[0]
         super().attach(topology, rng, settings)
         es = EngineSettings.from_config(settings) if settings is not None else EngineSettings()
         self.engine = Engine(topology, es)

@@ -143,3 +143,45 @@ def test_describe_lists_every_key_with_range() -> None:
         assert f"\n{k} = " in "\n" + text
     assert "engine.step.kappa = 0.6 (0.5, 1] (reloadable)" in text
     assert "engine.step.mode = 'decaying' {constant|decaying}" in text
+
+
+def _ring(n: int):  # a plain ring of our own, n nodes
+    from routerd.core import topology as T
+
+    names = [f"r{i}" for i in range(n)]
+    specs = [T.LinkSpec(names[a], names[b], 0.001, 1e7, 64, f"ring[{a}-{b}]")
+             for i in range(n) for a, b in ((i, (i + 1) % n), ((i + 1) % n, i))]
+    return T.build(f"ring-{n}", names, specs)
+
+
+def test_split_runs_up_to_max_nodes_and_greedy_above_in_every_shell() -> None:
+    # the default is split; above engine.split.max_nodes (200) the shells run greedy and say why
+    base = config.load(None)
+    assert base["engine.mode"] == "split" and base["engine.split.max_nodes"] == 200
+    same, why = config.split_fits(base, 200)
+    assert same is base and why is None
+    big, why = config.split_fits(base, 201)
+    assert big["engine.mode"] == "greedy" and big["engine.split.max_nodes"] == 200
+    assert why is not None and "(200)" in why and "201" in why and "max_nodes: 0" in why
+    assert config.split_fits(base.with_overrides({"engine.split.max_nodes": 0}), 5000)[1] is None
+    greedy = base.with_overrides({"engine.mode": "greedy"})
+    assert config.split_fits(greedy, 5000) == (greedy, None)
+    # the service and the simulator's learner alike
+    import tempfile
+
+    import numpy as np
+
+    from routerd.service.daemon import Service
+    from sim.policies import QRouting
+
+    t = _ring(201)
+    with tempfile.TemporaryDirectory() as d:
+        svc = Service(base.with_overrides({"service.state_dir": d}), t)
+        assert svc.cfg["engine.mode"] == "greedy" and svc.mode_note == why
+        assert svc._mode_line().startswith("greedy: engine.mode split runs on networks of up to")
+    p = QRouting()
+    p.attach(t, np.random.default_rng(1), base)
+    assert p.engine.settings.mode == "greedy"
+    p = QRouting()
+    p.attach(_ring(20), np.random.default_rng(1), base)
+    assert p.engine.settings.mode == "split"

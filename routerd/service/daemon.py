@@ -312,6 +312,8 @@ class Service:
                  inputs: _statedir.Chosen | None = None, clock: _clock.Clock = _clock.SYSTEM):
         from . import metrics as _metrics
 
+        # split mode above engine.split.max_nodes runs greedy (said in the banner and health)
+        cfg, self.mode_note = _config.split_fits(cfg, topo.n)
         self.cfg = cfg
         #: every time the service reads (deadlines, the engine's and the journal's ``t``,
         #: the epoch); measured CPU durations use time.perf_counter
@@ -735,6 +737,15 @@ class Service:
         """Ask the loop to stop (thread-safe: only sets a flag the loop reads each turn)."""
         self._stop = True
 
+    def _mode_line(self) -> str:
+        """The learning mode the engine runs, in one line (banner)."""
+        cfg = self.cfg
+        if cfg["engine.mode"] != "split":
+            return "greedy: " + (self.mode_note or "one next hop per destination (engine.mode greedy)")
+        guide = (f"guided by the optimum every {cfg['engine.optimum.interval_s']:g} s"
+                 if cfg["engine.optimum.guide"] and cfg["engine.optimum.interval_s"] > 0 else "unguided")
+        return f"split: shares by measured marginal delay, {guide}"
+
     def _banner(self) -> None:
         t = self.topo
         w = self.out
@@ -754,6 +765,7 @@ class Service:
              f"({'; '.join(_security.describe(self.allow))})" if self.allow is not None
              else "  security off: any local peer may report (give --server-key and --allow)"),
             f"  metrics  {self.endpoints['metrics']}",
+            f"  engine   {self._mode_line()}",
             f"  {_kernels.describe(self.cfg['engine.kernels'])}",
             f"  state    {os.path.abspath(self.cfg['service.state_dir'])}   (journal fsync: "
             f"{self.cfg['service.journal.fsync']}; "
@@ -1421,6 +1433,7 @@ class Service:
             "epoch": self.epoch,
             "version": __version__,
             "kernels": _kernels.status(self.cfg["engine.kernels"]),
+            "mode": {"running": self.cfg["engine.mode"], "why": self.mode_note},
             "topology": {"name": self.topo.name, "id": self.topo.digest, "nodes": self.topo.n,
                          "links": self.topo.n_links},
             "counts": {
@@ -1919,6 +1932,7 @@ class Service:
             new = load_config(args, self.inputs.base if self.inputs is not None else None)
             tun, restart = self.cfg.tunable_diff(new)
             merged = self._effective(self.cfg.with_overrides(tun, where=f"{src or 'defaults'} (reload)"))
+            merged = _config.split_fits(merged, self.topo.n)[0]
             settings = EngineSettings.from_config(merged)
         except (InputError, ValueError) as e:
             self.counters.reloads["rejected"] += 1
