@@ -1512,8 +1512,9 @@ class Service:
         if self.optimum.guide_due() and self.engine is not None:   # engine.optimum.guide
             with self.lock, contextlib.suppress(StorageDown):       # (a failure rebuilds the engine)
                 body = self.optimum.take_guide(self.clock.wall())
-                self.optimum.guided(_journal.apply_guide(self.engine, body))
+                seeded = _journal.apply_guide(self.engine, body)
                 self._append("guide", body)
+                self.optimum.guided(seeded)    # counted once journaled (a failure rebuilds)
                 self._touched = True
         overran = False
         if self._touched and self._decision_due(now):
