@@ -207,11 +207,13 @@ def test_a_link_measured_far_slower_than_configured_is_modelled_at_its_measured_
     others = np.arange(DEMO.n_links) != cut
     assert np.array_equal(cap[others], C[others])          # measured at C: configured kept
     # the traffic leaves the slow link: nothing measures it, the figure fades back to the
-    # configured one with time constant SLOW_MEMORY_S (here one constant later: 1 - 1/e)
+    # configured one with time constant SLOW_MEMORY_S, in service time (1/C): one constant
+    # later 1/C = (1/e) / 8 + (1 - 1/e) / 1,250, i.e. 21.5 pkt/s, still a slow link
     rates.link[cut] = rates.lat[cut] = 0.0
     rates.t = 100.0 + Dm.SLOW_MEMORY_S
     cap = Dm.model_capacity(DEMO, rates, window, 1000.0)
-    assert cap[cut] == pytest.approx(C[cut] - (C[cut] - 8.0) / math.e, rel=1e-9)
+    assert cap[cut] == pytest.approx(1.0 / (1.0 / (8.0 * math.e) + (1.0 - 1.0 / math.e) / C[cut]), rel=1e-9)
+    assert 21 < cap[cut] < 22
     # measured again at (or near) its configured capacity: forgotten at once
     rates.link[cut] = 0.6 * C[cut]
     rates.lat[cut] = rates.link[cut] * (DEMO.delay_s[cut] + 1.0 / (0.4 * C[cut]))

@@ -208,7 +208,8 @@ def model_capacity(topo: Topology, rates: Rates, window: float, packet_bytes: fl
     capacity (the packet-size estimate trims at :data:`SIZE_TRIM` for that reason).
     Once such a link's traffic has moved away nothing measures it any more, so the
     figure is remembered (in ``rates``) and fades back to the configured one with time
-    constant :data:`SLOW_MEMORY_S`: without it the optimum put traffic back on the slow
+    constant :data:`SLOW_MEMORY_S` (in service time, 1/C; a 64 kb/s link on a 4 Mb/s line
+    looks half as fast as its line after about 40 s): without it the optimum put traffic back on the slow
     link as soon as its rows stopped, and a guided learner followed (measured in
     ``routerd lab`` with a 4 Mb/s link cut to 64 kb/s: delivery recovered, then went
     back to 290 ms four seconds later).  A link measured at or above the trigger forgets
@@ -230,7 +231,10 @@ def model_capacity(topo: Topology, rates: Rates, window: float, packet_bytes: fl
     rem = np.isfinite(rates.slow_pps)
     if rem.any():
         fade = np.exp(-np.maximum(rates.t - rates.slow_t[rem], 0.0) / SLOW_MEMORY_S)
-        out[rem] = cfg[rem] - (cfg[rem] - rates.slow_pps[rem]) * fade
+        # faded in service time (1/C, what the rows measure), not in capacity: halfway in
+        # capacity would make a 64 kb/s link on a 4 Mb/s line look fast within one time
+        # constant, where halfway in service time it still takes twice the measured one
+        out[rem] = 1.0 / (fade / rates.slow_pps[rem] + (1.0 - fade) / cfg[rem])
     return out
 
 
