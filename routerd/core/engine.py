@@ -78,9 +78,10 @@ x's published greedy next hop (0 at the destination, the ceiling without a route
 node reports for the route it actually uses: hysteresis and loop prevention can keep x off
 its argmin, and the min would then report optimistic entries x never forwards on.
 
-Modes (``engine.mode``).  Everything above is ``greedy`` (the default, the classic
-Q-routing baseline: one next hop per (node, destination), exploration the only load
-splitting).  Its known weaknesses against the flow-deviation optimum (issue 14): entries of
+Modes (``engine.mode``).  Everything above is ``greedy`` (the classic Q-routing baseline,
+kept bit for bit: one next hop per (node, destination), exploration the only load
+splitting; what :class:`EngineSettings` gave before ``split`` became the default, and what
+the shells run above ``engine.split.max_nodes``, :func:`routerd.io.config.split_fits`).  Its known weaknesses against the flow-deviation optimum (issue 14): entries of
 next hops not in use keep optimistic propagation-only values, so the argmin is often a
 stale entry that loop repair then undoes; a greedy switch moves a key's whole traffic at
 once, so routes herd and oscillate.  ``split`` (:mod:`routerd.core.splitting`, whose docstring
