@@ -119,8 +119,11 @@ def test_engine_keys_are_the_inverse_of_from_config() -> None:
     base_cfg = config.load(None).with_overrides({"engine.mode": "greedy"})
     # engine.optimum.* is the service's live optimality gap: it reads the engine, never
     # changes it, so a replay has nothing to recompute for it
+    # engine.split.max_nodes picks the mode a shell starts in (config.split_fits), not a field
     assert set(R.ENGINE_KEYS) == {k for k in config.SCHEMA if k.startswith("engine.")
-                                  and not k.startswith("engine.optimum.")}
+                                  and not k.startswith("engine.optimum.")} - {"engine.split.max_nodes"}
+    with pytest.raises(R.ReplayError, match="picks the mode a service or simulator starts in"):
+        R.parse_changes(["engine.split.max_nodes=0"], "--set")
     alt = {"engine.step.mode": "constant", "engine.initial.mode": "constant",
            "engine.explore.basis": "visits", "engine.variant": "predictive",
            "engine.kernels": "reference", "engine.mode": "split"}

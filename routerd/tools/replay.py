@@ -202,6 +202,11 @@ def parse_changes(items: Sequence[str], where: str) -> dict[str, Any]:
                     problems.append(Problem(f"{where}: {k}", raw, "is the service's live optimality "
                                             "gap, not an engine setting (a replay applies the "
                                             "journal's guide records as they are)"))
+                elif k == "engine.split.max_nodes":
+                    problems.append(Problem(f"{where}: {k}", raw, "picks the mode a service or "
+                                            "simulator starts in on a network of its size, not an "
+                                            "engine setting (a replay runs the recorded engine; "
+                                            "give engine.mode=split or greedy to compare modes)"))
                 elif k in _config.SCHEMA:
                     problems.append(Problem(f"{where}: {k}", raw, "is not an engine setting (only "
                                             "engine.* settings change what a replay computes)"))
