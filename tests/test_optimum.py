@@ -218,10 +218,9 @@ def test_a_link_measured_far_slower_than_configured_is_modelled_at_its_measured_
     rates.link[cut] = 0.6 * C[cut]
     rates.lat[cut] = rates.link[cut] * (DEMO.delay_s[cut] + 1.0 / (0.4 * C[cut]))
     assert Dm.model_capacity(DEMO, rates, window, 1000.0)[cut] == C[cut]
-    # measured at half the configured capacity: within the M/M/1 fit's error near
-    # capacity (the trigger is a quarter), not a cut
-    rates.link[cut] = 0.3 * C[cut]
-    rates.lat[cut] = rates.link[cut] * (DEMO.delay_s[cut] + 1.0 / (0.5 * C[cut] - 0.3 * C[cut]))
+    # measured at a fifth of the configured capacity: within the trigger (an eighth), not a cut
+    rates.link[cut] = 0.1 * C[cut]
+    rates.lat[cut] = rates.link[cut] * (DEMO.delay_s[cut] + 1.0 / (0.2 * C[cut] - 0.1 * C[cut]))
     assert Dm.model_capacity(DEMO, rates, window, 1000.0)[cut] == C[cut]
     # the optimiser's inputs take the capacities given (live links only)
     eng = Engine(DEMO)

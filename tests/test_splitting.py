@@ -459,3 +459,60 @@ def test_measured_demand_recovers_what_enters_the_network() -> None:
     # after 2 s, plus the discretisation of 5-row batches every 0.05 s
     assert 80.0 < rate[a, c] < 100.0
     assert K == st_.pub.shape[2]
+
+
+def test_a_link_measured_far_slower_than_configured_keeps_a_slow_idle_latency() -> None:
+    # the triangle's 1 Mb/s links: 1,000-byte packets take tau0 = 8 ms (the median over busy
+    # links of the M/M/1 service time s / (1 + F s), Kleinrock).  a -> b really runs at
+    # 16 kb/s (0.5 s a packet): its rows say so; then its traffic leaves
+    t = _tri()
+    eng = Engine(t, EngineSettings(mode="split"))
+    st = eng._split
+    ix = t.index
+    ab, bc, ac = t.link("a", "b"), t.link("b", "c"), t.link("a", "c")
+    j_ab = int(t.slot_of[ix["a"], ix["b"]])
+
+    def rows(link: int, m: int, s: float) -> HopBatch:   # m rows of sojourn s beyond propagation
+        x, y = int(t.src[link]), int(t.dst[link])
+        d = next(v for v in range(3) if v not in (x, y))
+        return HopBatch.of([x] * m, [y] * m, [d] * m, [float(t.delay_s[link]) + s] * m)
+
+    now = 0.0
+    for _ in range(60):           # 6 s: the rates' exponential means (1 s) are at 99.8%
+        now += 0.1
+        # 1 row/decision on the slow link is 10 rows/s: F = 10, s = 0.5 -> 0.5 / 6 = 83 ms
+        for link, m, s in ((bc, 10, 0.008 / (1 - 100 * 0.008)), (ac, 10, 0.008 / (1 - 100 * 0.008)),
+                           (ab, 1, 0.5)):
+            eng.observe(rows(link, m, s), now)
+        eng.decide(now)
+    tau0 = 0.008
+    _, _, _, tau, got0 = st._measured(now, 1.0)
+    # (rows come in steps of 0.1 s, so the decayed count just after a step is 10 / (1 - e^-0.1)
+    # = 10.5 per 0.1 s, not 10: hence 5%)
+    assert got0[ix["b"], int(t.slot_of[ix["b"], ix["c"]])] == pytest.approx(tau0, rel=0.05)
+    assert st.slow_tau[ix["a"], j_ab] == pytest.approx(0.5 / (1 + 10 * 0.5), rel=0.05)   # 83 ms > 8 x 8 ms
+    busy_figure = float(st.slow_tau[ix["a"], j_ab])
+    # a -> b's traffic leaves; 3 s later its idle latency is the remembered figure fading
+    # (time constant SLOW_MEMORY_S, linear in service time), not propagation + 8 ms
+    for _ in range(30):
+        now += 0.1
+        for link in (bc, ac):
+            eng.observe(rows(link, 10, 0.008 / (1 - 100 * 0.008)), now)
+        eng.decide(now)
+    # while its decayed row count was still >= SLOW_ROWS the figure kept being measured,
+    # growing as the rate decayed under the same mean latency (at most 1/F: 0.25 s at 4
+    # rows a second); since then it is remembered
+    slow, when = float(st.slow_tau[ix["a"], j_ab]), float(st.slow_t[ix["a"], j_ab])
+    assert busy_figure * 0.999 <= slow <= 0.25 and when < now - 1.5
+    L, _, taus = st.link_estimates_tau(now, 1.0, 2.0)
+    tau0 = float(st._measured(now, 1.0)[4][ix["a"], j_ab])                # 8 ms (+-5%)
+    fade = math.exp(-(now - when) / S.SLOW_MEMORY_S)
+    want_tau = fade * slow + (1 - fade) * tau0
+    assert taus[ix["a"], j_ab] == pytest.approx(want_tau, rel=1e-6)
+    assert L[ix["a"], j_ab] > float(t.delay_s[ab]) + 0.04                  # without: 1 ms + 8 ms
+    # a state saved before the memory existed restores with none
+    saved = st.export()
+    del saved["slow_tau"], saved["slow_t"]
+    st.restore(saved)
+    assert not st.slow_tau.any()
+    assert st.link_estimates_tau(now, 1.0, 2.0)[2][ix["a"], j_ab] == tau0

@@ -23,7 +23,7 @@ import numpy as np
 
 from routerd.core import flowdev as _fd
 from routerd.core import kernels as _kernels
-from routerd.core.splitting import service_time
+from routerd.core.splitting import SLOW_FACTOR, SLOW_MEMORY_S, SLOW_ROWS, service_time
 from routerd.core.topology import Topology
 
 __all__ = ["BUSY_ROWS", "SLOW_FACTOR", "SLOW_MEMORY_S", "SLOW_ROWS", "Meter", "Rates", "estimate",
@@ -35,12 +35,10 @@ BUSY_ROWS = 4.0
 #: enter :func:`estimate`'s mean
 SIZE_TRIM = 2.0
 #: a link whose measured capacity is under 1/SLOW_FACTOR of its configured one is modelled
-#: at the measured figure (:func:`model_capacity`) ...
-SLOW_FACTOR = 4.0
-#: ... measured on at least this many rows in the window ...
-SLOW_ROWS = 20.0
-#: ... and keeps it while idle, fading back to the configured one with this time constant (s)
-SLOW_MEMORY_S = 10.0
+#: at the measured figure (:func:`model_capacity`), measured on at least SLOW_ROWS rows in
+#: the optimiser's window, and keeps it while idle, fading back to the configured one with
+#: time constant SLOW_MEMORY_S (s): the learner's rule (routerd.core.splitting.note_slow),
+#: its constants, on the optimiser's longer window
 
 
 class Meter:
@@ -203,17 +201,18 @@ def model_capacity(topo: Topology, rates: Rates, window: float, packet_bytes: fl
     ``C = F + 1/s``).  Where that figure, on at least :data:`SLOW_ROWS` rows in the
     window, is under 1/:data:`SLOW_FACTOR` of the configured capacity, the link is
     slower than the topology file says (a degraded tunnel, a rate limit the file does not
-    know): the model takes the measured figure.  The trigger's factor is wide because the
-    M/M/1 fit of a queue far from its steady state is off by a factor up to about 2 near
-    capacity (the packet-size estimate trims at :data:`SIZE_TRIM` for that reason).
-    Once such a link's traffic has moved away nothing measures it any more, so the
-    figure is remembered (in ``rates``) and fades back to the configured one with time
-    constant :data:`SLOW_MEMORY_S` (in service time, 1/C; a 64 kb/s link on a 4 Mb/s line
-    looks half as fast as its line after about 40 s): without it the optimum put traffic back on the slow
-    link as soon as its rows stopped, and a guided learner followed (measured in
-    ``routerd lab`` with a 4 Mb/s link cut to 64 kb/s: delivery recovered, then went
-    back to 290 ms four seconds later).  A link measured at or above the trigger forgets
-    its figure at once.  Updates the memory in ``rates`` at ``rates.t``."""
+    know): the model takes the measured figure.  The factor is wide and the rows few for
+    the reasons :func:`routerd.core.splitting.SplitState.note_slow` gives (a slow link
+    carries few rows; the M/M/1 fit of a queue far from its steady state is off by a
+    factor up to about 2 near capacity).  Once such a link's traffic has moved away
+    nothing measures it any more, so the figure is remembered (in ``rates``) and fades
+    back to the configured one with time constant :data:`SLOW_MEMORY_S`, in service time
+    (1/C; a 64 kb/s link on a 4 Mb/s line looks half as fast as its line after about
+    40 s): without it the optimum put traffic back on the slow link as soon as its rows
+    stopped, and a guided learner followed (measured in ``routerd lab`` with a 4 Mb/s
+    link cut to 64 kb/s: delivery recovered, then went back to 290 ms four seconds
+    later).  A link measured at or above the trigger forgets its figure at once.
+    Updates the memory in ``rates`` at ``rates.t``."""
     cfg = topo.capacity_bps / (8.0 * float(packet_bytes))
     nl = topo.n_links
     if rates.slow_pps is None or rates.slow_t is None:
