@@ -13,6 +13,12 @@ a suffix are the default path (``engine.kernels = auto``: the compiled loop wher
 Topologies: the 16-node demo lab and two of our own random meshes (a ring plus random
 chords, mean degree about 4) with 100 and 500 nodes.  The rate keeps the busiest link
 at moderate load, so the learner does real work without the run drowning in drops.
+
+Policies: ``shortest``, ``ecmp``, ``qrouting`` with the default config (split mode up to
+``engine.split.max_nodes``, 200 nodes, guided by the optimum every 2 s of simulated time;
+greedy above: so the 500-node figure is greedy) and ``qrouting_greedy`` (``engine.mode:
+greedy`` everywhere: the learner's per-hop path without split's per-decision work, what
+the ``qrouting`` figures measured before split became the default).
 """
 from __future__ import annotations
 
@@ -185,6 +191,9 @@ def sim_once(topo: topology.Topology, name: str, pkts: list[tuple],
     time is only measured with ``instrument`` (its timers cost about 2 us a call, 4% of a
     16-node qrouting run: the runs the ratios come from leave them out)."""
     cfg = config.load(None)
+    if name == "qrouting_greedy":    # the greedy learner: the per-hop path without split's decisions
+        cfg = cfg.with_overrides({"engine.mode": "greedy"})
+        name = "qrouting"
     pol = policies.make(name)
     pol.attach(topo, np.random.default_rng(2), cfg)
     in_engine = [0.0]
@@ -217,7 +226,7 @@ def measure(topo: topology.Topology, rate: float, duration: float, policy: str,
     # the engine's share of a run, from one instrumented run of each path (learning
     # policies only; the timed runs below carry no timers)
     eng_s = {p: 0.0 for p in paths}
-    if policy == "qrouting":
+    if policy.startswith("qrouting"):
         for p in paths:
             _, w, _, e = sim_once(topo, policy, pkts, duration, p, instrument=True)
             eng_s[p] = e / w
@@ -288,7 +297,10 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
     repeats = 1 if quick else 3
     default = hops_status("auto")["path"]
     for n, topo, rate in cases:
-        for pol in ("shortest", "ecmp", "qrouting"):
+        # qrouting: the default config (split mode up to engine.split.max_nodes, 200 nodes,
+        # whose decisions cost O(n^2 K) every sim.decision_interval_s, with the guide's flow
+        # deviation every 2 s; greedy above); qrouting_greedy: engine.mode greedy throughout
+        for pol in ("shortest", "ecmp", "qrouting", "qrouting_greedy"):
             m = measure(topo, rate, duration[n], pol, repeats)
             bare = m["bare_hops_per_s"]
             # unsuffixed: the default path (engine.kernels = auto); then each path by name
@@ -304,9 +316,9 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
                     "against": f"bare heapq loop on {n} nodes ({m['bare_hops']} vs "
                                f"{m['sim_hops']} hops); {p} simulator loop",
                 }
-                if pol == "qrouting":
+                if pol.startswith("qrouting"):
                     sh = m["engine_share"][p]
-                    figs[f"sim_qrouting_engine_share_{n}{suffix}"] = {
+                    figs[f"sim_{pol}_engine_share_{n}{suffix}"] = {
                         "value": sh, "unit": "fraction", "ratio": sh,
                         "against": f"the qrouting run's CPU time on the {p} loop (share spent "
                                    "inside routerd.core.engine)",

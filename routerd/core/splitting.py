@@ -447,15 +447,18 @@ class SplitState:
         for cnt, tt, sm, idx in ((self.lk_cnt, self.lk_t, self.lk_sum, lk),
                                  (self.key_cnt, self.key_t, None, ky)):
             cf, tf = cnt.reshape(-1), tt.reshape(-1)
-            u = np.unique(idx)
-            f = np.exp(-(now - tf[u]) / window)
-            f = np.where(tf[u] == now, 1.0, f)     # exactly 1 within one now
-            cf[u] *= f
+            # every row's cell decayed once: a cell named by several rows gets the same
+            # value from each (all read before any write), so no np.unique is needed (it
+            # took ~75 us of a 1,024-row batch, twice)
+            t0 = tf[idx]
+            f = np.exp(-(now - t0) / window)
+            f = np.where(t0 == now, 1.0, f)        # exactly 1 within one now
+            cf[idx] = cf[idx] * f
             if sm is not None:
                 sf = sm.reshape(-1)
-                sf[u] *= f
+                sf[idx] = sf[idx] * f
                 np.add.at(sf, idx, lat)
-            tf[u] = now
+            tf[idx] = now
             np.add.at(cf, idx, 1.0)
 
     def link_estimates(self, now: float, window: float, prior: float
