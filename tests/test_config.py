@@ -6,6 +6,7 @@ Every error names the file, the key path, the value and the rule (house style, G
 from __future__ import annotations
 
 import dataclasses
+from typing import Any
 
 import pytest
 import yaml
@@ -185,3 +186,29 @@ def test_split_runs_up_to_max_nodes_and_greedy_above_in_every_shell() -> None:
     p = QRouting()
     p.attach(_ring(20), np.random.default_rng(1), base)
     assert p.engine.settings.mode == "split"
+
+
+def test_a_reload_on_a_network_above_max_nodes_changes_nothing_and_records_the_config_as_given(
+        tmp_path: Any) -> None:
+    # the running config says greedy (split_fits), the file split: not a change needing a
+    # restart; and the state dir records the file's config, so a later start with
+    # engine.split.max_nodes raised runs split as asked
+    import argparse
+
+    from routerd.service.daemon import Service
+
+    conf = tmp_path / "c.yaml"
+    conf.write_text(f"service:\n  state_dir: {tmp_path / 'st'}\n")
+    args = argparse.Namespace(config=str(conf), set=[], topology=None, state_dir=None)
+    svc = Service(config.load(str(conf)), _ring(201), reload_args=args)
+    try:
+        svc.restore(str(tmp_path / "st"))
+        assert svc.engine is not None and svc.engine.settings.mode == "greedy"
+        r = svc._do_reload()
+        assert r["applied"] and r["needs_restart"] == [] and r["changed"] == [], r
+        assert svc.cfg["engine.mode"] == "greedy" and svc.cfg_given["engine.mode"] == "split"
+        docs = [d for d in (tmp_path / "st").rglob("config*") if d.is_file()]
+        assert docs and all("mode: split" in d.read_text() and "greedy" not in d.read_text()
+                            for d in docs), [d.read_text()[:300] for d in docs]
+    finally:
+        svc.close()

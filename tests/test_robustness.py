@@ -425,10 +425,13 @@ def test_poisoning_outside_and_within_a_reporters_rights(base: str, mode: str) -
     # greedy: only the reporter's node learns from its rows.  split (the default): every
     # entry is refreshed from the neighbours' published estimates, so w1's claims spread
     # by design; how far they may is checked exactly on the core
-    # (test_split_poisoning_*); here, that nothing anywhere falls below physics.
+    # (test_split_poisoning_*); here, that nothing anywhere falls below physics.  The
+    # guide is off: its records move the state with no input (every 2 s), which the
+    # "nothing moved" checks below would read as the attack's doing.
     ix = DEMO.index
     cs = CurveService(base, {"rep-w1": ["w1"], "rep-e3": ["e3"]},
-                      "--config", _conf(base, f"engine:\n  mode: {mode}\n"))
+                      "--config", _conf(base, f"engine:\n  mode: {mode}\n"
+                                              "  optimum: {guide: false}\n"))
     try:
         # first an honest, loaded lab: every hop leaving w1 and e3 takes 3x its propagation delay
         for n, (who, node) in enumerate((("rep-w1", "w1"), ("rep-e3", "e3"))):
@@ -621,13 +624,16 @@ def test_split_poisoning_moves_the_packet_size_estimate_within_the_honest_links_
         assert (poisoned.Q[off] >= floor[off] - 1e-12).all()
         s, sp = poisoned.settings, poisoned._split
         now = float(sp.lk_t.max())
-        L, F = sp.link_estimates(now, s.split_window_s, s.split_prior)
+        # what the decision uses: each busy link's service time and the median's tau0
+        cnt, _, _, tau, tau0 = sp._measured(now, s.split_window_s)
         with np.errstate(invalid="ignore"):                     # absent slots: 0 x inf
-            per_link = S.service_time(L, F, sp.prop) * sp.cap_bps / 8.0
-        busy = (F * s.split_window_s >= 4.0) & np.isfinite(sp.cap_bps)
+            per_link = tau * sp.cap_bps / 8.0
+            est = tau0 * sp.cap_bps / 8.0
+        busy = (cnt >= 4.0) & np.isfinite(sp.cap_bps)
         others = busy & (np.arange(DEMO.n) != w1)[:, None]
-        est = sp.mean_packet_bytes(now, s.split_window_s, s.split_prior)
-        assert per_link[others].min() <= est <= per_link[others].max(), (est, per_link[others])
+        size = float(est[busy][0])                               # one size: bytes = tau0 C / 8
+        assert np.allclose(est[busy], size)
+        assert per_link[others].min() <= size <= per_link[others].max(), (size, per_link[others])
 
     poisoned, honest = _twins(DEMO, reporters, 6, check)
     # the attack took: w1's links' latency estimates are at its claims, not the twin's

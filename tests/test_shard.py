@@ -610,3 +610,23 @@ def test_sharding_flags_of_another_role_are_refused(tmp_path: Any) -> None:
                            capture_output=True, text=True, timeout=20, check=False)
         assert r.returncode == 2 and expect in r.stderr, (flags, r.stderr)
         assert not (tmp_path / "st").exists()
+
+
+def test_a_worker_runs_greedy_under_the_split_default_and_says_why(tmp_path: Any) -> None:
+    # split (the default) keeps state across destinations; a worker holds its own only: it
+    # runs greedy, on its 1/N engine, and says so.  A greedy worker's state dir from before
+    # the default changed restarts as it was (it crashed: a partial engine cannot be split)
+    conf = tmp_path / "w.yaml"
+    conf.write_text(f"service:\n  state_dir: {tmp_path / 'st'}\n")      # no engine.mode
+    topo = _topo()
+    smap = shard.ShardMap.build(topo, 2)
+    for _ in range(2):                  # a fresh state dir, then a restart on it
+        w = shard.ShardWorker(_config.load(str(conf)), topo, smap, 0, None)
+        try:
+            w.restore(str(tmp_path / "st"))
+            assert w.engine is not None and w.engine.partial
+            assert w.engine.settings.mode == "greedy" and w.cfg["engine.mode"] == "greedy"
+            assert w.mode_note is not None and w.mode_note.startswith("a shard worker runs greedy")
+            assert w.cfg_given["engine.mode"] == "split"
+        finally:
+            w.close()

@@ -985,6 +985,7 @@ class Engine:
             if self._split is not None:   # measured afresh: the old traffic is gone
                 self._split.lk_cnt[src, j] = 0.0
                 self._split.lk_sum[src, j] = 0.0
+                self._split.slow_tau[src, j] = 0.0    # a repaired link: no remembered slowness
         else:
             self.Q[src, :, j] = ceil
         if self._variant is not None:

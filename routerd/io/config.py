@@ -72,7 +72,7 @@ SCHEMA: dict[str, Field] = {
     "engine.kernels": F(str, "auto", "hot paths: compiled kernels when built (auto), insist on them (compiled), or the numpy reference; the same results either way", choices=("auto", "compiled", "reference")),
     # -- engine: published refinements (routerd/core/variants.py) ---------------------------
     "engine.mode": F(str, "split", "learning mode: greedy (one next hop per destination, Q-routing with hysteresis and exploration) or split (shares over strictly downhill next hops moved by measured marginal delay; routerd/core/splitting.py)", choices=("greedy", "split")),
-    "engine.split.max_nodes": F(int, 200, "split mode decides every destination at every decision, in time growing about as the square of the node count (measured: 5 ms at 100 nodes, 20 ms at 200, 50 ms at 300, 0.65 s at 1,000); on a network with more nodes than this the service and the simulator run greedy instead and say so at start-up and in health (0 = no bound)", lo=0),
+    "engine.split.max_nodes": F(int, 200, "split mode decides every destination at every decision, in time growing about as the square of the node count (measured: 5 ms at 100 nodes, 20 ms at 200, 50 ms at 300, 0.65 s at 1,000); on a network with more nodes than this the service, the simulator and the closed loop run greedy instead (the service says so at start-up and in health; shard workers always run greedy) (0 = no bound)", lo=0),
     "engine.split.step": F(float, 1.0, "split: fraction of the curvature-scaled (Newton) share step taken per rate window (scaled by the time since the last decision)", lo=0, hi=1, lo_open=True, tunable=True),
     "engine.split.max_step": F(float, 1.0, "split: most share one next hop gives up per rate window (scaled by the time since the last decision)", lo=0, hi=1, lo_open=True, tunable=True),
     "engine.split.publish_threshold": F(float, 0.02, "split: a key's table is republished only when one of its shares moved by more than this", lo=0, hi=1, hi_open=True, tunable=True),
@@ -315,12 +315,19 @@ SERVICE_ENDPOINTS = (("ingest", "service.ingest"), ("pull", "service.pull"),
                      ("control-readonly", "security.control_readonly"))
 
 
-def split_fits(cfg: Config, n: int) -> tuple[Config, str | None]:
+def split_fits(cfg: Config, n: int, shard_worker: bool = False) -> tuple[Config, str | None]:
     """The config a shell runs on a network of ``n`` nodes: ``engine.mode`` split turned
     to greedy above ``engine.split.max_nodes`` (a bound on split's decision time, see the
-    key's help), and the sentence that says so (None: unchanged)."""
+    key's help) and in a shard worker (its engine holds only its own destinations; split
+    mode's state spans all of them), and the sentence that says so (None: unchanged)."""
+    if cfg["engine.mode"] != "split":
+        return cfg, None
+    if shard_worker:
+        why = ("a shard worker runs greedy: its engine holds only its own destinations' "
+               "columns (1/N of the memory), and split mode's state spans every destination")
+        return cfg.with_overrides({"engine.mode": "greedy"}, where="shard worker"), why
     cap = int(cfg["engine.split.max_nodes"])
-    if cfg["engine.mode"] != "split" or cap <= 0 or n <= cap:
+    if cap <= 0 or n <= cap:
         return cfg, None
     why = (f"engine.mode split runs on networks of up to engine.split.max_nodes ({cap}) nodes; "
            f"this one has {n}: running greedy (split decides every destination at every decision, "

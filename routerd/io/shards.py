@@ -155,7 +155,7 @@ def replay_shards(state_root: str, topo: _topology.Topology, n_shards: int,
     smap = ShardMap.build(topo, n_shards, map_file)
     parts = []
     for k in range(n_shards):
-        s = settings or EngineSettings()
+        s = settings or EngineSettings(mode="greedy")     # what shard workers run (config.split_fits)
         r = _journal.restore(shard_dir(state_root, k, n_shards), topo, s,
                              owned=engine_owned(smap, k, s.variant, s.mode))
         own = smap.owner == k

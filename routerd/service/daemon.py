@@ -312,8 +312,10 @@ class Service:
                  inputs: _statedir.Chosen | None = None, clock: _clock.Clock = _clock.SYSTEM):
         from . import metrics as _metrics
 
-        # split mode above engine.split.max_nodes runs greedy (said in the banner and health)
-        cfg, self.mode_note = _config.split_fits(cfg, topo.n)
+        # split mode above engine.split.max_nodes (and in a shard worker) runs greedy, said
+        # in the banner and health; the state dir records the config as given
+        self.cfg_given = cfg
+        cfg, self.mode_note = self._fit_mode(cfg, topo.n)
         self.cfg = cfg
         #: every time the service reads (deadlines, the engine's and the journal's ``t``,
         #: the epoch); measured CPU durations use time.perf_counter
@@ -433,6 +435,10 @@ class Service:
     def metrics_labels(self) -> dict[str, str]:
         """Constant labels on every series of the metrics page (a shard worker: its index)."""
         return {}
+
+    def _fit_mode(self, cfg: _config.Config, n: int) -> tuple[_config.Config, str | None]:
+        """The config this process runs (``config.split_fits``) and why it differs."""
+        return _config.split_fits(cfg, n)
 
     def _engine_owned(self, settings: EngineSettings) -> Any:
         """The destinations the engine holds (``Engine(owned=)``): None, all of them; a
@@ -626,7 +632,7 @@ class Service:
         self._last_record = self.journal.last_record
         try:
             # the documents first, so the start record never names a missing one
-            self.documents = _statedir.store(state_dir, self.topo, self.cfg)
+            self.documents = _statedir.store(state_dir, self.topo, self.cfg_given)
         except OSError as e:
             raise StartError(f"state dir {state_dir}: recording the topology and config: "
                              f"{_os_reason(e)}") from None
@@ -742,8 +748,9 @@ class Service:
         cfg = self.cfg
         if cfg["engine.mode"] != "split":
             return "greedy: " + (self.mode_note or "one next hop per destination (engine.mode greedy)")
-        guide = (f"guided by the optimum every {cfg['engine.optimum.interval_s']:g} s"
-                 if cfg["engine.optimum.guide"] and cfg["engine.optimum.interval_s"] > 0 else "unguided")
+        opt = self.optimum
+        guide = (f"guided by the optimum every {opt.interval:g} s"
+                 if opt.enabled and opt.guide and opt.guide_off is None else "unguided")
         return f"split: shares by measured marginal delay, {guide}"
 
     def _banner(self) -> None:
@@ -1931,9 +1938,10 @@ class Service:
             if args is None:
                 raise InputError("the service was started without a command line to re-read")
             new = load_config(args, self.inputs.base if self.inputs is not None else None)
-            tun, restart = self.cfg.tunable_diff(new)
-            merged = self._effective(self.cfg.with_overrides(tun, where=f"{src or 'defaults'} (reload)"))
-            merged = _config.split_fits(merged, self.topo.n)[0]
+            # compared as this process would run it: a mode split_fits turned is no change
+            tun, restart = self.cfg.tunable_diff(self._fit_mode(new, self.topo.n)[0])
+            given = self._effective(self.cfg_given.with_overrides(tun, where=f"{src or 'defaults'} (reload)"))
+            merged = self._fit_mode(given, self.topo.n)[0]
             settings = EngineSettings.from_config(merged)
         except (InputError, ValueError) as e:
             self.counters.reloads["rejected"] += 1
@@ -1944,7 +1952,7 @@ class Service:
         state_dir = self.cfg["service.state_dir"]
         prev = self.documents
         try:
-            new_id = _statedir.store(state_dir, None, merged).config
+            new_id = _statedir.store(state_dir, None, given).config
         except OSError as e:
             new_id = None   # the config record then names none: never the previous one
             self.log.error("reload: cannot record the new config document; the journal "
@@ -1964,7 +1972,7 @@ class Service:
                 return {"applied": False, "reason": f"unavailable: {e}"}
             with contextlib.suppress(OSError):   # the record names it; the pointer is a shortcut
                 _statedir.set_current(state_dir, docs)
-        self.cfg = merged
+        self.cfg, self.cfg_given = merged, given
         self.pipeline.reconfigure(merged)
         self.counters.reloads["applied"] += 1
         self.log.info("reloaded", file=src, changed=",".join(sorted(tun)) or "-",

@@ -353,6 +353,9 @@ class ShardWorker(Service):
     def metrics_labels(self) -> dict[str, str]:
         return {"shard": str(self.shard)}
 
+    def _fit_mode(self, cfg: _config.Config, n: int) -> tuple[_config.Config, str | None]:
+        return _config.split_fits(cfg, n, shard_worker=True)
+
     def _engine_owned(self, settings: Any) -> Any:
         # only its destinations' columns (memory 1/N); under a variant, every one
         return engine_owned(self.smap, self.shard, settings.variant, settings.mode)

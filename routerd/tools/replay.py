@@ -571,7 +571,9 @@ def replay_command(args: argparse.Namespace) -> dict[str, Any]:
         if cfg is not None:
             # against the settings the service ended with: its config file as it is now
             last = last_settings(src, start)
-            primary_changes.update(diff_settings(last, EngineSettings.from_config(cfg)))
+            # as the service would run it on this network (engine.split.max_nodes)
+            primary_changes.update(diff_settings(last, EngineSettings.from_config(
+                _config.split_fits(cfg, topo.n)[0])))
         primary_changes.update(parse_changes(args.overrides, "--set"))
         variants: list[Variant] = []
         primary: Variant | None = None
