@@ -772,7 +772,7 @@ class Service:
              f"({'; '.join(_security.describe(self.allow))})" if self.allow is not None
              else "  security off: any local peer may report (give --server-key and --allow)"),
             f"  metrics  {self.endpoints['metrics']}",
-            f"  engine   {self._mode_line()}",
+            f"  mode     {self._mode_line()}",
             f"  {_kernels.describe(self.cfg['engine.kernels'])}",
             f"  state    {os.path.abspath(self.cfg['service.state_dir'])}   (journal fsync: "
             f"{self.cfg['service.journal.fsync']}; "
