@@ -331,3 +331,19 @@ def test_any_value_of_the_wrong_kind_anywhere_in_a_shipped_file_is_a_problem_not
                 cases += 1
         path.write_text(yaml.safe_dump(base))
     assert cases > 1500
+
+
+def test_a_config_says_when_its_topology_is_above_split_max_nodes(tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    # what routerd serve would run: greedy on the 3-node lab when split is bounded at 2 nodes
+    _w(tmp_path, "lab.yaml", GOOD_TOPO)
+    small = _w(tmp_path, "small.yaml", {"topology": {"file": "lab.yaml"},
+                                        "engine": {"split": {"max_nodes": 2}}})
+    rc, lines = _run(capsys, small)
+    assert rc == 0 and lines[0].endswith(
+        "on topology 'bench-lab': engine.mode split runs on networks of up to "
+        "engine.split.max_nodes (2) nodes; this one has 3: running greedy (split decides every "
+        "destination at every decision, in time growing as the square of the node count; set "
+        "engine.split.max_nodes: 0 to run it anyway)"), lines
+    fits = _w(tmp_path, "fits.yaml", {"topology": {"file": "lab.yaml"}})
+    rc, lines = _run(capsys, fits)
+    assert rc == 0 and "running greedy" not in lines[0]

@@ -127,6 +127,9 @@ def check_file(path: str, args: argparse.Namespace | None = None) -> Checked:
         raise InputError(problems)  # type: ignore[arg-type]
     changed = sum(1 for k, f in _config.SCHEMA.items() if cfg[k] != f.default)
     extra = f"; {topo.summary()}" if cfg["topology.file"] else ""
+    why = _config.split_fits(cfg, topo.n)[1]    # what routerd serve would run on its topology
+    if why is not None:
+        extra += f"; on topology {topo.name!r}: {why}"
     if cfg["agent.underlay"]:
         from routerd.agent.forwarder import underlay_entries
 
