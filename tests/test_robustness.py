@@ -295,7 +295,11 @@ def _fill(path: str) -> None:
 
 @pytest.mark.slow
 def test_disk_full_stops_acknowledging_says_why_and_resumes(base: str, small_disk: str) -> None:
-    conf = _conf(base, "service:\n  storage_retry_s: 0.2\n  snapshot_interval_s: 3600\n")
+    # greedy: the estimates read before the kill must equal the offline restore, which holds
+    # where only input moves them; split's decisions and guide records move them with no
+    # input (the kill -9 tests of test_service_crash check split's durability that way)
+    conf = _conf(base, "service:\n  storage_retry_s: 0.2\n  snapshot_interval_s: 3600\n"
+                       "engine:\n  mode: greedy\n")
     args = service_args(base, "--config", conf)
     state = os.path.join(small_disk, "state")
     args[args.index("--state-dir") + 1] = state
@@ -617,8 +621,6 @@ def test_split_poisoning_moves_the_packet_size_estimate_within_the_honest_links_
     w1 = DEMO.index["w1"]
 
     def check(poisoned: Any, honest: Any, before: tuple) -> None:
-        from routerd.core import splitting as S
-
         floor = _physics_floor(poisoned, DEMO)
         off = ~np.eye(DEMO.n, dtype=bool)[:, :, None] & np.isfinite(floor)
         assert (poisoned.Q[off] >= floor[off] - 1e-12).all()
