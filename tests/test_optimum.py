@@ -190,6 +190,7 @@ def test_a_link_measured_far_slower_than_configured_is_modelled_at_its_measured_
     # Every link at 60% of its configured C = 10 Mb/s / (8 x 1,000 B) = 1,250 pkt/s, except
     # one that really runs at 8 pkt/s (64 kb/s) carrying 6 pkt/s: measured 6 + 1/0.5 = 8
     from routerd.core import demand as Dm
+    from routerd.core import splitting as S
 
     rates = O.Rates.empty(DEMO.n, DEMO.n_links)
     C = DEMO.capacity_bps / (8 * 1000.0)
@@ -210,7 +211,7 @@ def test_a_link_measured_far_slower_than_configured_is_modelled_at_its_measured_
     # configured one with time constant SLOW_MEMORY_S, in service time (1/C): one constant
     # later 1/C = (1/e) / 8 + (1 - 1/e) / 1,250, i.e. 21.5 pkt/s, still a slow link
     rates.link[cut] = rates.lat[cut] = 0.0
-    rates.t = 100.0 + Dm.SLOW_MEMORY_S
+    rates.t = 100.0 + S.SLOW_MEMORY_S
     cap = Dm.model_capacity(DEMO, rates, window, 1000.0)
     assert cap[cut] == pytest.approx(1.0 / (1.0 / (8.0 * math.e) + (1.0 - 1.0 / math.e) / C[cut]), rel=1e-9)
     assert 21 < cap[cut] < 22

@@ -23,22 +23,17 @@ import numpy as np
 
 from routerd.core import flowdev as _fd
 from routerd.core import kernels as _kernels
-from routerd.core.splitting import SLOW_FACTOR, SLOW_MEMORY_S, SLOW_ROWS, service_time
+from routerd.core.splitting import SLOW_ROWS, remembered_service_time, service_time, slow_links
 from routerd.core.topology import Topology
 
-__all__ = ["BUSY_ROWS", "SLOW_FACTOR", "SLOW_MEMORY_S", "SLOW_ROWS", "Meter", "Rates", "estimate",
-           "guide_shares", "inputs_for", "model_capacity", "published_view", "solve"]
+__all__ = ["BUSY_ROWS", "Meter", "Rates", "estimate", "guide_shares", "inputs_for", "model_capacity",
+           "published_view", "solve"]
 
 #: Least rows a link needs in the window to count towards the packet-size estimate.
 BUSY_ROWS = 4.0
 #: a link whose packet-size figure is off the median by more than this factor does not
 #: enter :func:`estimate`'s mean
 SIZE_TRIM = 2.0
-#: a link whose measured capacity is under 1/SLOW_FACTOR of its configured one is modelled
-#: at the measured figure (:func:`model_capacity`), measured on at least SLOW_ROWS rows in
-#: the optimiser's window, and keeps it while idle, fading back to the configured one with
-#: time constant SLOW_MEMORY_S (s): the learner's rule (routerd.core.splitting.note_slow),
-#: its constants, on the optimiser's longer window
 
 
 class Meter:
@@ -128,9 +123,9 @@ class Rates:
     lat: np.ndarray
     t: float = -math.inf      # when they were last brought up to date (the caller's clock)
     weight: float = 0.0       # the total weight of the intervals so far (0: none yet)
-    #: per link: the capacity (packets/s) last measured on a link found slow by
-    #: :func:`model_capacity` (inf: none), and when (the caller's clock)
-    slow_pps: np.ndarray | None = None
+    #: per link: the service time (s) last measured on a link found slow by
+    #: :func:`model_capacity` (0: none), and when (the caller's clock)
+    slow_tau: np.ndarray | None = None
     slow_t: np.ndarray | None = None
 
     @classmethod
@@ -197,43 +192,42 @@ def model_capacity(topo: Topology, rates: Rates, window: float, packet_bytes: fl
     over the packet size, except where the link was measured slower.
 
     A link's capacity follows from its measured rate F and queueing-plus-transmission
-    time s by M/M/1 (Kleinrock, Queueing Systems vol. 1, 1975: ``s = 1/(C - F)``, so
-    ``C = F + 1/s``).  Where that figure, on at least :data:`SLOW_ROWS` rows in the
-    window, is under 1/:data:`SLOW_FACTOR` of the configured capacity, the link is
-    slower than the topology file says (a degraded tunnel, a rate limit the file does not
-    know): the model takes the measured figure.  The factor is wide and the rows few for
-    the reasons :func:`routerd.core.splitting.SplitState.note_slow` gives (a slow link
-    carries few rows; the M/M/1 fit of a queue far from its steady state is off by a
-    factor up to about 2 near capacity).  Once such a link's traffic has moved away
-    nothing measures it any more, so the figure is remembered (in ``rates``) and fades
-    back to the configured one with time constant :data:`SLOW_MEMORY_S`, in service time
-    (1/C; a 64 kb/s link on a 4 Mb/s line looks half as fast as its line after about
-    40 s): without it the optimum put traffic back on the slow link as soon as its rows
-    stopped, and a guided learner followed (measured in ``routerd lab`` with a 4 Mb/s
-    link cut to 64 kb/s: delivery recovered, then went back to 290 ms four seconds
-    later).  A link measured at or above the trigger forgets its figure at once.
-    Updates the memory in ``rates`` at ``rates.t``."""
-    cfg = topo.capacity_bps / (8.0 * float(packet_bytes))
+    time s by M/M/1 (Kleinrock, Queueing Systems vol. 1, 1975: ``s = 1/(C - F)``, so the
+    service time ``1/C = s / (1 + F s)``, :func:`routerd.core.splitting.service_time`).
+    Where that service time, on enough rows in the window, is over the configured one by
+    the learner's factor (:func:`routerd.core.splitting.slow_links`: a capacity under an
+    eighth of the configured one), the link is slower than the topology file says (a
+    degraded tunnel, a rate limit the file does not know): the model takes the measured
+    figure.  The factor is wide and the rows few for the reasons
+    :meth:`routerd.core.splitting.SplitState.note_slow` gives (a slow link carries few
+    rows; the M/M/1 fit of a queue far from its steady state is off by a factor up to
+    about 2 near capacity).  Once such a link's traffic has moved away nothing measures it
+    any more, so the figure is remembered (in ``rates``) and fades back to the configured
+    one as the learner's does (:func:`routerd.core.splitting.remembered_service_time`; a
+    64 kb/s link on a 4 Mb/s line looks half as fast as its line after about 40 s):
+    without it the optimum put traffic back on the slow link as soon as its rows stopped,
+    and a guided learner followed (measured in ``routerd lab`` with a 4 Mb/s link cut to
+    64 kb/s: delivery recovered, then went back to 290 ms four seconds later).  A link
+    measured within the factor forgets its figure at once.  Updates the memory in
+    ``rates`` at ``rates.t``."""
+    cfg = topo.capacity_bps / (8.0 * float(packet_bytes))        # packets/s
+    tau0 = 1.0 / cfg                                             # 0 where no capacity
     nl = topo.n_links
-    if rates.slow_pps is None or rates.slow_t is None:
-        rates.slow_pps, rates.slow_t = np.full(nl, np.inf), np.full(nl, -np.inf)
+    if rates.slow_tau is None or rates.slow_t is None:
+        rates.slow_tau, rates.slow_t = np.zeros(nl), np.zeros(nl)
     F = rates.link
-    busy = (F * window >= SLOW_ROWS) & np.isfinite(cfg)
+    rows = F * window
+    busy = rows > 0
     with np.errstate(invalid="ignore", divide="ignore"):
-        s = np.where(busy, rates.lat / np.where(busy, F, 1.0) - topo.delay_s, 0.0)
-        meas = np.where(busy & (s > 0), F + 1.0 / np.where(s > 0, s, 1.0), np.inf)
-    slow = busy & (meas * SLOW_FACTOR < cfg)
-    rates.slow_pps[slow] = meas[slow]
+        L = np.where(busy, rates.lat / np.where(busy, F, 1.0), topo.delay_s)
+    tau = service_time(L, F, topo.delay_s)
+    slow = slow_links(rows, tau, tau0)
+    rates.slow_tau[(rows >= SLOW_ROWS) & ~slow] = 0.0
+    rates.slow_tau[slow] = tau[slow]
     rates.slow_t[slow] = rates.t
-    rates.slow_pps[busy & ~slow] = np.inf
     out = cfg.copy()
-    rem = np.isfinite(rates.slow_pps)
-    if rem.any():
-        fade = np.exp(-np.maximum(rates.t - rates.slow_t[rem], 0.0) / SLOW_MEMORY_S)
-        # faded in service time (1/C, what the rows measure), not in capacity: halfway in
-        # capacity would make a 64 kb/s link on a 4 Mb/s line look fast within one time
-        # constant, where halfway in service time it still takes twice the measured one
-        out[rem] = 1.0 / (fade / rates.slow_pps[rem] + (1.0 - fade) / cfg[rem])
+    rem = rates.slow_tau > 0
+    out[rem] = 1.0 / remembered_service_time(tau0, rates.slow_tau, rates.slow_t, rates.t)[rem]
     return out
 
 

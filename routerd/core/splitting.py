@@ -378,6 +378,29 @@ SLOW_ROWS = 4.0
 SLOW_MEMORY_S = 10.0
 
 
+def slow_links(rows: np.ndarray, tau: np.ndarray, tau0: np.ndarray) -> np.ndarray:
+    """Where a link measured on ``rows`` rows at service time ``tau`` runs slower than its
+    configured service time ``tau0`` by over :data:`SLOW_FACTOR` (the rule of
+    :meth:`SplitState.note_slow`, which gives the reasons; the service's optimiser applies
+    it too, :func:`routerd.core.demand.model_capacity`)."""
+    return (rows >= SLOW_ROWS) & (tau0 > 0) & (tau > SLOW_FACTOR * tau0)
+
+
+def remembered_service_time(tau0: np.ndarray, slow_tau: np.ndarray, slow_t: np.ndarray,
+                            now: float) -> np.ndarray:
+    """Each link's service time: ``tau0``, or where a slow figure is remembered
+    (``slow_tau > 0``, measured at ``slow_t``) that figure fading back to ``tau0`` with
+    time constant :data:`SLOW_MEMORY_S`, linearly in service time (halfway in capacity
+    would make a 64 kb/s link on a 4 Mb/s line look fast within one time constant)."""
+    slow = slow_tau > 0
+    if not slow.any():
+        return tau0
+    fade = np.exp(-np.maximum(now - slow_t[slow], 0.0) / SLOW_MEMORY_S)
+    out = tau0.copy()
+    out[slow] = np.maximum(tau0[slow], fade * slow_tau[slow] + (1.0 - fade) * tau0[slow])
+    return out
+
+
 class SplitState:
     """The split mode's arrays for one engine (see the module docstring)."""
 
@@ -504,9 +527,8 @@ class SplitState:
         and a factor of 4 a quick recovery left too few rows on the cut link to trigger, and
         the shares went back.  A link measured at or below the factor forgets at once."""
         cnt, _, _, tau, tau0 = self._measured(now, window)
-        seen = cnt >= SLOW_ROWS
-        slow = seen & (tau0 > 0) & (tau > SLOW_FACTOR * tau0)
-        self.slow_tau[seen & ~slow] = 0.0
+        slow = slow_links(cnt, tau, tau0)
+        self.slow_tau[(cnt >= SLOW_ROWS) & ~slow] = 0.0
         self.slow_tau[slow] = tau[slow]
         self.slow_t[slow] = now
 
@@ -516,11 +538,7 @@ class SplitState:
         time: the configured one (see :meth:`_measured`), or for a link :meth:`note_slow`
         found slower, its measured one fading back to it (linearly in service time)."""
         cnt, sm, F, _, tau0 = self._measured(now, window)
-        slow = self.slow_tau > 0
-        if slow.any():
-            fade = np.exp(-np.maximum(now - self.slow_t[slow], 0.0) / SLOW_MEMORY_S)
-            tau0 = tau0.copy()
-            tau0[slow] = np.maximum(tau0[slow], fade * self.slow_tau[slow] + (1.0 - fade) * tau0[slow])
+        tau0 = remembered_service_time(tau0, self.slow_tau, self.slow_t, now)
         L0 = self.prop + tau0
         L = (sm + prior * L0) / (cnt + prior)
         return L, F, tau0
