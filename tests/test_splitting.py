@@ -516,3 +516,29 @@ def test_a_link_measured_far_slower_than_configured_keeps_a_slow_idle_latency() 
     st.restore(saved)
     assert not st.slow_tau.any()
     assert st.link_estimates_tau(now, 1.0, 2.0)[2][ix["a"], j_ab] == tau0
+
+
+def test_split_rates_compiled_equal_reference_rows_at_one_time() -> None:
+    # the link and key rate cells fed on the compiled path (split_observe_prep/apply) and
+    # the numpy reference: equal to the bit, with cells named many times in a batch and
+    # batches sharing one time (a cell stamped now must not be decayed again)
+    if not kernels.available():
+        pytest.skip("routerd.core._kernels is not built")
+    from conftest import ring_with_chords
+    t = ring_with_chords(40, 30, seed=5)
+    rng = np.random.default_rng(4)
+    a = Engine(t, EngineSettings(mode="split", kernels="compiled"))
+    b = Engine(t, EngineSettings(mode="split", kernels="reference"))
+    for now in (0.5, 0.5, 0.9, 2.0, 2.0, 2.0, 7.5):
+        k = rng.integers(0, t.n_links, 300)
+        x, y = t.src[k].astype(int), t.dst[k].astype(int)
+        d = rng.integers(0, t.n, 300)
+        d = np.where(d == x, y, d)
+        hb = HopBatch.of(x, y, d, rng.uniform(0.001, 0.03, 300))
+        a.observe(hb, now)
+        b.observe(hb, now)
+        sa, sb = a._split, b._split
+        assert sa is not None and sb is not None
+        for name in ("lk_cnt", "lk_sum", "lk_t", "key_cnt", "key_t"):
+            assert np.array_equal(getattr(sa, name), getattr(sb, name)), name
+        assert (sa.last_obs, sa.last_now, sa.started) == (sb.last_obs, sb.last_now, sb.started)

@@ -7,8 +7,9 @@ for operation, so the results are the same to the bit (the build passes
 numpy is not a build dependency.  Pure: no I/O, no global state.
 """
 from libc.math cimport INFINITY, fabs, isfinite
-from libc.stdint cimport int16_t, int32_t, int64_t, uint8_t, uint16_t, uint32_t, INT64_MAX
+from libc.stdint cimport int16_t, int32_t, int64_t, uint8_t, uint16_t, uint32_t, uint64_t, INT64_MAX
 from libc.stdlib cimport malloc, free
+from libc.string cimport memcpy
 
 cdef extern from *:
     """
@@ -1819,3 +1820,100 @@ def to_targets(const int64_t[::1] ptr, const int64_t[::1] frm, const double[::1]
                 D[i, k] = dist[i]
                 NH[i, k] = <int32_t> via[i]
     free(dist); free(via); free(hk); free(hx)
+
+
+
+def split_observe_prep(const int64_t[::1] xs, const int64_t[::1] vs, const int64_t[::1] ds,
+                       const slot_t[:, ::1] slot_of, double[::1] lk_t, double[::1] key_t,
+                       double now, double window, int64_t[:, ::1] cell, int64_t[:, ::1] fi,
+                       double[::1] arg):
+    """:meth:`routerd.core.splitting.SplitState.observe`'s first half on the compiled path.
+    Per row its link cell ``x K + slot`` and key cell ``x n + d`` (``cell[0]``, ``cell[1]``);
+    for a cell named for the first time in the batch whose time is not ``now``, the index in
+    ``arg`` of its decay exponent ``-(now - t0) / window`` (the reference's operations), else
+    -1 (``fi[0]``, ``fi[1]``); the cell's time is then stamped ``now``.  Cells of one old time
+    share one exponent: returns how many distinct exponents ``arg`` holds (the batches come at
+    a few distinct times, so a few dozen exps instead of two per row).  The caller takes
+    numpy's exp of them (the reference's own exp: C's may differ in the last bit) for
+    :func:`split_observe_apply`.  Rows are accepted ones (indices in range, link present)."""
+    cdef Py_ssize_t m = xs.shape[0], i, h, lane
+    cdef Py_ssize_t n = slot_of.shape[0]
+    cdef Py_ssize_t K = lk_t.shape[0] // n
+    cdef int64_t x, c, nu = 0
+    cdef double t0
+    cdef double* tt
+    cdef Py_ssize_t hs = 64
+    while hs < 4 * m:
+        hs *= 2
+    # open addressing on the old time's bits: slot -> index in arg (-1 empty)
+    cdef int64_t* tab = <int64_t*>malloc(hs * sizeof(int64_t))
+    cdef double* keyv = <double*>malloc(hs * sizeof(double))
+    cdef uint64_t bits
+    cdef double last_t0[2]
+    cdef int64_t last_i[2]
+    last_t0[0] = last_t0[1] = now      # never looked up: a time equal to now decays nothing
+    last_i[0] = last_i[1] = -1
+    if not tab or not keyv:
+        free(tab); free(keyv)
+        raise MemoryError("split_observe_prep: scratch")
+    with nogil:
+        for h in range(hs):
+            tab[h] = -1
+        for i in range(m):
+            x = xs[i]
+            cell[0, i] = x * K + <int64_t>slot_of[x, vs[i]]
+            cell[1, i] = x * n + ds[i]
+            for lane in range(2):
+                c = cell[lane, i]
+                tt = &lk_t[0] if lane == 0 else &key_t[0]
+                t0 = tt[c]
+                if t0 == now:
+                    fi[lane, i] = -1
+                    continue
+                if t0 == last_t0[lane]:     # most rows: the same old time as the last
+                    fi[lane, i] = last_i[lane]
+                    tt[c] = now
+                    continue
+                memcpy(&bits, &t0, sizeof(double))
+                h = <Py_ssize_t>(((bits ^ (bits >> 29)) * <uint64_t>0x9E3779B97F4A7C15ULL) >> 40) & (hs - 1)
+                while tab[h] >= 0 and keyv[h] != t0:
+                    h = (h + 1) & (hs - 1)
+                if tab[h] < 0:
+                    tab[h] = nu
+                    keyv[h] = t0
+                    arg[nu] = -(now - t0) / window
+                    nu += 1
+                fi[lane, i] = tab[h]
+                last_t0[lane] = t0
+                last_i[lane] = tab[h]
+                tt[c] = now
+    free(tab)
+    free(keyv)
+    return nu
+
+
+def split_observe_apply(double[::1] lk_cnt, double[::1] lk_sum, double[::1] key_cnt,
+                        const int64_t[:, ::1] cell, const int64_t[:, ::1] fi,
+                        const double[::1] lat, const double[::1] f):
+    """:meth:`routerd.core.splitting.SplitState.observe`'s second half, row by row: a cell's
+    first row decays it by its factor (``f[fi]``, from its time before the batch; none when
+    ``fi`` is -1), then every row adds 1 to both counts and its latency to the link's sum.
+    The reference decays each cell named once (all read before any write), then adds the
+    rows in order (``np.add.at``): the same multiplications and additions in the same order
+    for each cell."""
+    cdef Py_ssize_t m = cell.shape[1], i
+    cdef int64_t l, k, a
+    with nogil:
+        for i in range(m):
+            l = cell[0, i]
+            a = fi[0, i]
+            if a >= 0:
+                lk_cnt[l] = lk_cnt[l] * f[a]
+                lk_sum[l] = lk_sum[l] * f[a]
+            lk_sum[l] = lk_sum[l] + lat[i]
+            lk_cnt[l] = lk_cnt[l] + 1.0
+            k = cell[1, i]
+            a = fi[1, i]
+            if a >= 0:
+                key_cnt[k] = key_cnt[k] * f[a]
+            key_cnt[k] = key_cnt[k] + 1.0

@@ -600,8 +600,14 @@ class Engine:
             keep[[i for i, _ in res.rejected]] = False
             batch = batch.take(np.flatnonzero(keep))
         x = np.asarray(batch.src, dtype=np.int64)
-        j = self._slot_of[x, np.asarray(batch.via, dtype=np.int64)].astype(np.int64)
         assert self._split is not None
+        kern = self._kern
+        if kern is not None and hasattr(kern, "split_observe_apply"):
+            self._split.observe_compiled(kern, x, batch.via, batch.dst, batch.latency,
+                                         _kernels._slots_of(self), self.now,
+                                         self.settings.split_window_s)
+            return
+        j = self._slot_of[x, np.asarray(batch.via, dtype=np.int64)].astype(np.int64)
         self._split.observe(x, j, np.asarray(batch.dst, dtype=np.int64),
                             np.asarray(batch.latency, dtype=np.float64), self.now,
                             self.settings.split_window_s)

@@ -25,6 +25,10 @@ Both paths give bit-for-bit the same state, tables and counters (tests:
   destination by destination in O(n K) each, against the reference's whole-array passes
   (whose loop checks and marginal sums iterate up to the longest path); sums over slots
   are added in slot order on both paths (``splitting.ksum``).
+* split mode's link and key rates (``split_observe_prep`` / ``split_observe_apply``,
+  called from :meth:`routerd.core.splitting.SplitState.observe_compiled`): the rows'
+  cells and decays in one pass each; the decay factors are numpy's exp (the reference's
+  own, since C's may differ in the last bit), one per distinct old time.
 
 Pure like the engine: imports numpy and the compiled module only; never the engine at
 import time (the engine imports this module).

@@ -442,6 +442,7 @@ class SplitState:
         self.prop = np.where(eng._present, topo.delay_s[sl], 0.0)
         self.slots = eng._slots
         self._last_uncycled = 0
+        self._obs_scratch: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
         self.cap_bps = np.where(eng._present, topo.capacity_bps[sl], np.inf)
         # the slot back: rev[x, j] = y's slot towards x (y = slots[x, j]), -1 without one
         present = self.slots >= 0
@@ -460,10 +461,7 @@ class SplitState:
     def observe(self, x: np.ndarray, j: np.ndarray, d: np.ndarray, lat: np.ndarray,
                 now: float, window: float) -> None:
         """Accepted rows, in order: decay what they touch to ``now``, then add them."""
-        if not self.started:          # the first rows: the step clock starts here
-            self.started = 1
-            self.last_now = now
-        self.last_obs = max(self.last_obs, now)
+        self._clock(now)
         n, K = self.key_cnt.shape[0], self.lk_cnt.shape[1]
         lk = x * K + j
         ky = x * n + d
@@ -483,6 +481,37 @@ class SplitState:
                 np.add.at(sf, idx, lat)
             tf[idx] = now
             np.add.at(cf, idx, 1.0)
+
+    def _clock(self, now: float) -> None:
+        if not self.started:          # the first rows: the step clock starts here
+            self.started = 1
+            self.last_now = now
+        self.last_obs = max(self.last_obs, now)
+
+    def observe_compiled(self, kern: Any, x: np.ndarray, via: np.ndarray, d: np.ndarray,
+                         lat: np.ndarray, slot_of: np.ndarray, now: float,
+                         window: float) -> None:
+        """:meth:`observe` on the compiled path (``routerd.core._kernels``), to the bit:
+        rows by neighbour node ``via`` (the kernel looks up the slot in ``slot_of``).  The
+        decay factors are numpy's exp of the same exponents as in :meth:`observe`, one per
+        distinct old time (the exps were half of the reference's time)."""
+        self._clock(now)
+        m = x.shape[0]
+        c = np.ascontiguousarray
+        sc = self._obs_scratch
+        if sc is None or sc[0].shape[1] < m:
+            sc = self._obs_scratch = (np.empty((2, m), dtype=np.int64),
+                                      np.empty((2, m), dtype=np.int64), np.empty(2 * m))
+        cell, fi, f = sc[0][:, :m], sc[1][:, :m], sc[2]
+        if not cell.flags.c_contiguous:
+            cell, fi = c(cell), c(fi)
+        nu = kern.split_observe_prep(c(x, dtype=np.int64), c(via, dtype=np.int64),
+                                     c(d, dtype=np.int64), slot_of, _flat_view(self.lk_t),
+                                     _flat_view(self.key_t), now, window, cell, fi, f)
+        fu = f[:nu]
+        np.exp(fu, out=fu)
+        kern.split_observe_apply(_flat_view(self.lk_cnt), _flat_view(self.lk_sum),
+                                 _flat_view(self.key_cnt), cell, fi, c(lat, dtype=np.float64), f)
 
     def link_estimates(self, now: float, window: float, prior: float
                        ) -> tuple[np.ndarray, np.ndarray]:
@@ -597,6 +626,14 @@ class SplitState:
             np.array_equal(getattr(self, k), getattr(other, k)) for k in self.ARRAYS) and (
             self.last_now == other.last_now and self.last_obs == other.last_obs
             and self.last_event == other.last_event and self.started == other.started)
+
+
+def _flat_view(a: np.ndarray) -> np.ndarray:
+    """``a`` as one flat view (writes through): an error, not a silent copy, when ``a`` is
+    not one run of memory (the state's arrays always are: restore makes them C-ordered)."""
+    v = a.view()
+    v.shape = (-1,)
+    return v
 
 
 def onehot_slots(slot: np.ndarray, K: int) -> np.ndarray:
