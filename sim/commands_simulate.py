@@ -222,6 +222,8 @@ def run(args: argparse.Namespace) -> int:
         report_problems(e)
         return 2
     s = result["summary"]
+    for note in result.get("notes", ()):
+        print(f"routerd simulate: note: {note}", file=sys.stderr)
     partial = bool(s.get("interrupted"))
     written = write_outputs(result, args.out)
     if args.plot:

@@ -300,8 +300,10 @@ class QRouting(Policy):
     name = "qrouting"
 
     def attach(self, topology: Topology, rng: np.random.Generator, settings: Any) -> None:
+        #: why the engine runs another mode than the config's (None: it does not)
+        self.mode_why: str | None = None
         if settings is not None:   # split mode above engine.split.max_nodes runs greedy
-            settings = split_fits(settings, topology.n)[0]
+            settings, self.mode_why = split_fits(settings, topology.n)
         super().attach(topology, rng, settings)
         es = EngineSettings.from_config(settings) if settings is not None else EngineSettings()
         self.engine = Engine(topology, es)

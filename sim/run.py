@@ -187,6 +187,9 @@ def run(spec: SimSpec | Mapping[str, Any], *, policy: Any = None,
         if printer is not None:
             printer(raw.end_s, raw.events, final=True, stopped=raw.stopped)
         result = reduce(raw, sp, topo, policy.name, warm, policy.stats())
+        why = getattr(policy, "mode_why", None)
+        if why:      # the learner ran another mode than the config's (config.split_fits)
+            result["notes"] = [why]
         # the scenario's link events, for plots and readers of the result
         result["link_events"] = [
             {"t_s": ev.t, "action": ev.action,

@@ -329,3 +329,14 @@ def test_a_report_job_can_refine_what_its_label_sets() -> None:
         want = {"split": ("split", False), "guided": ("split", True)}.get(label, ("greedy", c["engine.optimum.guide"]))
         assert (c["engine.mode"], c["engine.optimum.guide"]) == want, label
         assert c["engine.variant"] == (label if label in CV.VARIANTS[:5] else "plain"), label
+
+
+def test_a_network_above_split_max_nodes_runs_greedy_and_the_result_says_why() -> None:
+    # config.split_fits: the simulator's learner runs greedy above engine.split.max_nodes,
+    # as the service would, and the result carries the sentence routerd simulate prints
+    base = {"topology": bridges(), "policy": "qrouting", "rate_pps": 0.2 * saturation(),
+            "duration_s": 1.0, "seed": 1}
+    small = run({**base, "overrides": ["engine.split.max_nodes=3"]})
+    assert len(small["notes"]) == 1 and "running greedy" in small["notes"][0]
+    assert "engine.split.max_nodes (3)" in small["notes"][0]
+    assert "notes" not in run(base)          # fits: runs split, nothing to say
