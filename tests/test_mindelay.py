@@ -338,3 +338,19 @@ def test_mindelay_at_or_below_shortest_and_qrouting_on_the_bottleneck_lab(rate: 
     assert m["dropped"] <= s["shortest"]["dropped"]
     if rate >= 1800.0:  # the trunk is saturated under shortest paths: several times worse
         assert s["shortest"]["mean_delivery_s"] > 5 * m["mean_delivery_s"]
+
+
+def test_sum_by_source_is_the_one_hot_product() -> None:
+    # flowdev.sum_by_source replaces ``v @ by_source(n, src)`` (a dense product sent to
+    # BLAS): the same per-node sums, to rounding (the order of additions differs), and 0
+    # for a node without outgoing links
+    from routerd.core import flowdev as F
+    rng = np.random.default_rng(3)
+    n, L = 40, 160
+    src = rng.integers(0, n - 1, L)          # node n - 1 has no outgoing link
+    v = rng.uniform(0.0, 1.0, (9, L))
+    got = F.sum_by_source(v, n, src)
+    assert got.shape == (9, n)
+    assert np.allclose(got, v @ F.by_source(n, src), rtol=1e-14, atol=0.0)
+    assert (got[:, n - 1] == 0.0).all()
+    assert F.sum_by_source(np.zeros((2, 0)), 3, np.zeros(0, dtype=np.int64)).shape == (2, 3)
