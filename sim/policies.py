@@ -45,8 +45,8 @@ from typing import Any
 
 import numpy as np
 
-from routerd.core.demand import (Meter, Rates, estimate, guide_shares, inputs_for, model_capacity,
-                                 published_view, solve)
+from routerd.core.demand import (Meter, Rates, estimate, guide_shares, inputs_for, learner_slow,
+                                 model_capacity, published_view, solve)
 from routerd.core.engine import Engine, EngineSettings, HopBatch
 from routerd.core.errors import InputError, Problem
 from routerd.core.topology import Topology
@@ -284,7 +284,7 @@ class _Guide:
         if demand.sum() <= 0 or size <= 0:
             return
         shares, live, owned = published_view(engine)
-        cap = model_capacity(self.topo, self.rates, self.window, size)
+        cap = model_capacity(self.topo, self.rates, self.window, size, learner_slow(engine))
         job = inputs_for(self.topo, shares, live, demand, size, owned, cap)
         res = solve(job)
         self.runs += 1

@@ -231,6 +231,53 @@ def test_a_link_measured_far_slower_than_configured_is_modelled_at_its_measured_
     assert np.array_equal(job["cap_pps"], cap[job["keep"]])
 
 
+def test_an_optimiser_without_memory_takes_the_learners_slow_links() -> None:
+    # a restarted service: the split learner's slow-link memory is restored from the state
+    # dir (journaled), the optimiser's Rates start empty.  model_capacity takes the
+    # learner's figure at the learner's age where it has none of its own and its window
+    # has too few rows to clear it; the fade is the learner's (remembered_service_time)
+    from routerd.core import demand as Dm
+    from routerd.core import splitting as S
+
+    eng = Engine(DEMO, EngineSettings(mode="split"))
+    assert eng._split is not None and Dm.learner_slow(Engine(DEMO, EngineSettings(mode="greedy"))) is None
+    x, j = int(DEMO.src[3]), int(DEMO.slot_of[int(DEMO.src[3]), int(DEMO.dst[3])])
+    eng._split.slow_tau[x, j] = 0.125          # measured at 8 pkt/s ...
+    eng._split.slow_t[x, j] = 40.0             # ... at t = 40 of the learner's clock
+    eng.now = 45.0
+    tau, age = Dm.learner_slow(eng)
+    assert tau[3] == 0.125 and age[3] == 5.0 and np.count_nonzero(tau) == 1
+    rates = O.Rates.empty(DEMO.n, DEMO.n_links)
+    rates.t = 1000.0                           # the optimiser's own clock
+    C = DEMO.capacity_bps / (8 * 1000.0)
+    cap = Dm.model_capacity(DEMO, rates, 10.0, 1000.0, (tau, age))
+    fade = math.exp(-5.0 / S.SLOW_MEMORY_S)
+    assert cap[3] == pytest.approx(1.0 / (fade * 0.125 + (1.0 - fade) / C[3]), rel=1e-12)
+    assert rates.slow_t[3] == 995.0 and rates.slow_tau[3] == 0.125
+    others = np.arange(DEMO.n_links) != 3
+    assert np.array_equal(cap[others], C[others])
+    # without the learner's memory (the way it was): the configured capacity
+    assert Dm.model_capacity(DEMO, O.Rates.empty(DEMO.n, DEMO.n_links), 10.0, 1000.0)[3] == C[3]
+    # the optimiser's own window measures the link fine on enough rows: not taken
+    fresh = O.Rates.empty(DEMO.n, DEMO.n_links)
+    fresh.t = 1000.0
+    fresh.link[3] = 0.6 * C[3]
+    fresh.lat[3] = fresh.link[3] * (DEMO.delay_s[3] + 1.0 / (0.4 * C[3]))
+    assert Dm.model_capacity(DEMO, fresh, 10.0, 1000.0, (tau, age))[3] == C[3]
+    # the service's runner passes the learner's memory (Optimum.for_service's view)
+    class Svc:
+        topo, engine, cfg = DEMO, eng, config.load(None)
+        lock = threading.RLock()
+        clock = FakeClock()
+    opt = O.Optimum.for_service(Svc)
+    try:
+        got = opt._view()
+        assert len(got) == 5 and got[4] is not None and got[4][0][3] == 0.125
+    finally:
+        opt.close()
+
+
+
 # ---- the published routing against the optimum --------------------------------------------------
 @pytest.mark.parametrize("mode", ["greedy", "split"])
 @pytest.mark.parametrize("load", [0.3, 0.6, 0.8])

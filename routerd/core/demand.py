@@ -187,7 +187,8 @@ def estimate(topo: Topology, rates: Rates, window: float, packet_bytes: float = 
     return size if size > 0 and math.isfinite(size) else 0.0
 
 
-def model_capacity(topo: Topology, rates: Rates, window: float, packet_bytes: float) -> np.ndarray:
+def model_capacity(topo: Topology, rates: Rates, window: float, packet_bytes: float,
+                   learner: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
     """(n_links,) capacities in packets/s for the model: each link's configured capacity
     over the packet size, except where the link was measured slower.
 
@@ -209,7 +210,14 @@ def model_capacity(topo: Topology, rates: Rates, window: float, packet_bytes: fl
     and a guided learner followed (measured in ``routerd lab`` with a 4 Mb/s link cut to
     64 kb/s: delivery recovered, then went back to 290 ms four seconds later).  A link
     measured within the factor forgets its figure at once.  Updates the memory in
-    ``rates`` at ``rates.t``."""
+    ``rates`` at ``rates.t``.
+
+    ``learner``: :func:`learner_slow`'s memory of the split learner, which is journaled
+    while this one is not.  A link this memory lacks, and its own measurements of the
+    window do not clear (fewer than the trigger's rows), takes the learner's figure at
+    the learner's age: after a restart the optimiser would otherwise model a link the
+    restored learner keeps its traffic off at its configured capacity, and the guide
+    would seed the traffic back onto it until it was measured slow again."""
     cfg = topo.capacity_bps / (8.0 * float(packet_bytes))        # packets/s
     tau0 = 1.0 / cfg                                             # 0 where no capacity
     nl = topo.n_links
@@ -225,6 +233,11 @@ def model_capacity(topo: Topology, rates: Rates, window: float, packet_bytes: fl
     rates.slow_tau[(rows >= SLOW_ROWS) & ~slow] = 0.0
     rates.slow_tau[slow] = tau[slow]
     rates.slow_t[slow] = rates.t
+    if learner is not None:
+        l_tau, l_age = learner
+        take = (l_tau > 0) & ~(rates.slow_tau > 0) & ~(rows >= SLOW_ROWS)
+        rates.slow_tau[take] = l_tau[take]
+        rates.slow_t[take] = rates.t - l_age[take]
     out = cfg.copy()
     rem = rates.slow_tau > 0
     out[rem] = 1.0 / remembered_service_time(tau0, rates.slow_tau, rates.slow_t, rates.t)[rem]
@@ -235,6 +248,25 @@ def published_view(engine: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray | No
     """What :func:`inputs_for` needs of an engine: its published shares, the slots of live
     links that exist, the destinations it owns (the caller holds whatever lock guards it)."""
     return engine.published_shares(), engine.live & engine._present, engine.owned
+
+
+def learner_slow(engine: Any) -> tuple[np.ndarray, np.ndarray] | None:
+    """Per link of the engine's topology, the split learner's memory of links it found
+    slow (:meth:`routerd.core.splitting.SplitState.note_slow`): ``(service time, age)``,
+    the service time 0 where it remembers none and the age in the learner's own time
+    (from when it measured it to its newest observation).  None without a split learner.
+    The learner's memory is journaled state; an optimiser that starts afresh (a
+    restarted service) takes it through :func:`model_capacity`."""
+    st = getattr(engine, "_split", None)
+    if st is None:
+        return None
+    sl = engine.topo.slot_link
+    tau = np.zeros(engine.topo.n_links)
+    age = np.zeros(engine.topo.n_links)
+    on = (sl >= 0) & (st.slow_tau > 0)
+    tau[sl[on]] = st.slow_tau[on]
+    age[sl[on]] = np.maximum(float(engine.now) - st.slow_t[on], 0.0)
+    return tau, age
 
 
 def inputs_for(topo: Topology, shares: np.ndarray, live_slots: np.ndarray, demand: np.ndarray,

@@ -233,7 +233,8 @@ class Optimum:
     accepted batch record; ``start``/``close`` by the service; ``health()`` and
     ``stats()`` from any thread.
 
-    ``engine_view``: returns ``(topology, published shares, live slots, owned)`` — called
+    ``engine_view``: returns ``(topology, published shares, live slots, owned)``, and
+    optionally the learner's slow-link memory (:func:`routerd.core.demand.learner_slow`) — called
     under ``lock`` by the runner thread.  ``clock``: the service's monotonic clock
     (ages, intervals).  ``executor``: where :func:`compute` runs (default: one spawned
     child process; tests may pass a thread pool)."""
@@ -279,7 +280,7 @@ class Optimum:
         """The runner of a :class:`routerd.service.daemon.Service` (its config, topology,
         lock, clock and engine; a class attribute ``optimum_off`` turns it off)."""
         def view() -> tuple[Any, ...]:
-            return (svc.topo, *_demand.published_view(svc.engine))
+            return (svc.topo, *_demand.published_view(svc.engine), _demand.learner_slow(svc.engine))
         return cls(svc.cfg, svc.topo, view, svc.lock, svc.clock.monotonic,
                    off="sharded" if getattr(svc, "optimum_off", None) else None)
 
@@ -341,8 +342,11 @@ class Optimum:
             return self._no("no_packet_size")
         try:
             with self._lock:
-                topo, shares, live, owned = self._view()
-            cap = model_capacity(topo, self.rates, self.window, size)
+                got = self._view()
+            topo, shares, live, owned = got[:4]
+            # the learner's journaled slow-link memory (a view may leave it out: none)
+            cap = model_capacity(topo, self.rates, self.window, size,
+                                 got[4] if len(got) > 4 else None)
             with self._state_lock:
                 self.state.slow_links = int(np.count_nonzero(cap < topo.capacity_bps / (8.0 * size)))
             job = inputs_for(topo, shares, live, demand, size, owned, cap)
