@@ -192,12 +192,19 @@ FIELDS: dict[str, tuple[str, Any]] = {
 }
 
 
+def takes_variant(mode: str, variant: str) -> bool:
+    """Whether an engine of ``mode`` runs update rule ``variant``: split mode runs the plain
+    rule only (its refresh replaces the variants' own targets).  The one rule that
+    :func:`problems` and the config's load-time check (routerd.io.config) both apply."""
+    return mode != "split" or variant == "plain"
+
+
 def problems(s: Any) -> list[str]:
     """What is wrong with the split fields of an EngineSettings (empty: fine)."""
     bad: list[str] = []
     if s.mode not in MODES:
         bad.append(f"mode {s.mode!r} is not one of {', '.join(MODES)}")
-    if s.mode == "split" and s.variant != "plain":
+    if not takes_variant(s.mode, s.variant):
         bad.append(f"mode split needs variant plain, not {s.variant!r}")
     if not 0 < s.split_step <= 1:
         bad.append(f"split_step {s.split_step} is not in (0, 1]")

@@ -297,7 +297,8 @@ def _cross_checks(flat: dict[str, Any], where: str) -> list[Problem]:
     if flat["engine.initial.value_s"] > flat["engine.ceiling_s"]:
         p.append(Problem(f"{where}: engine.initial.value_s", flat["engine.initial.value_s"],
                          f"is above engine.ceiling_s ({flat['engine.ceiling_s']})"))
-    if flat["engine.mode"] == "split" and flat["engine.variant"] != "plain":
+    from routerd.core.splitting import takes_variant   # here: numpy only when a config is checked
+    if not takes_variant(flat["engine.mode"], flat["engine.variant"]):
         # the engine refuses the pair (routerd.core.splitting.problems): say so at load time,
         # with the way out, instead of a traceback when serve or simulate builds the engine
         p.append(Problem(f"{where}: engine.variant", flat["engine.variant"],
