@@ -505,13 +505,11 @@ class SplitState:
         self._clock(now)
         m = x.shape[0]
         c = np.ascontiguousarray
-        sc = self._obs_scratch
-        if sc is None or sc[0].shape[1] < m:
-            sc = self._obs_scratch = (np.empty((2, m), dtype=np.int64),
-                                      np.empty((2, m), dtype=np.int64), np.empty(2 * m))
-        cell, fi, f = sc[0][:, :m], sc[1][:, :m], sc[2]
-        if not cell.flags.c_contiguous:
-            cell, fi = c(cell), c(fi)
+        sc = self._obs_scratch          # flat, reused: the first 2 m entries as (2, m)
+        if sc is None or sc[2].shape[0] < 2 * m:
+            sc = self._obs_scratch = (np.empty(2 * m, dtype=np.int64),
+                                      np.empty(2 * m, dtype=np.int64), np.empty(2 * m))
+        cell, fi, f = sc[0][:2 * m].reshape(2, m), sc[1][:2 * m].reshape(2, m), sc[2]
         nu = kern.split_observe_prep(c(x, dtype=np.int64), c(via, dtype=np.int64),
                                      c(d, dtype=np.int64), slot_of, _flat_view(self.lk_t),
                                      _flat_view(self.key_t), now, window, cell, fi, f)
