@@ -1065,7 +1065,8 @@ class Engine:
             if self.partial and c.size and int(c.min()) < 0:
                 raise KeyError("published_estimates: a destination is not owned by this engine")
         if self._split is not None:   # split mode keeps a whole engine: column d is d
-            return _splitting.published_values(self._split.pub, self.Q, self.settings.ceiling_s)[x, d]
+            return _splitting.published_values(self._split.pub, self.Q, self.settings.ceiling_s,
+                                               self._kern)[x, d]
         w = x * nd + c
         g = _flat(self.greedy).take(w)
         q = _flat(self.Q).take(w * K + np.maximum(g, 0))

@@ -502,8 +502,8 @@ def flow_deviation(
     fd = fd.copy()
     scale = max(float(fd.max()), 1e-300)
     fd[fd < 1e-12 * scale] = 0.0
-    for d in range(n):
-        _cancel_cycles(n, src, dst, fd[d])
+    for d in np.flatnonzero(_rows_with_cycles(n, src, dst, fd)).tolist():
+        _cancel_cycles(n, src, dst, fd[d])   # the others hold no cycle: nothing to cancel
     lengths = mm1_marginal(F, cap, prop, rho)
     frac = _fallback_fractions(n, src, dst, lengths, _shares(n, src, fd, min_share))
     dest_flows, _ = flows_from_fractions(n, src, dst, frac, r)
@@ -574,11 +574,13 @@ class _PathShift:
         # per destination: [(s, {path (tuple of links): flow}), ...]
         self.pairs: dict[int, list[tuple[int, dict[tuple[int, ...], float]]]] = {}
         bl = best.tolist()
+        rt = r.T.tolist()          # rt[d][s]: Python floats, read n^2 times
         for d in range(n):
             rows = []
+            rd = rt[d]
             for s_ in range(n):
-                if s_ != d and r[s_, d] > 0:
-                    rows.append((s_, {self._walk(bl[d], s_, d): float(r[s_, d])}))
+                if s_ != d and rd[s_] > 0:
+                    rows.append((s_, {self._walk(bl[d], s_, d): rd[s_]}))
             if rows:
                 self.pairs[d] = rows
 
@@ -699,6 +701,33 @@ def _gd(f: float, c: float, rho: float) -> tuple[float, float]:
     room = c - x0
     g2 = 2 * c / (room * room * room)
     return c / (room * room) + g2 * (f - x0), g2
+
+
+def _rows_with_cycles(n: int, src: np.ndarray, dst: np.ndarray, fd: np.ndarray) -> np.ndarray:
+    """(m,) bool: whether row i's flow graph (links with ``fd[i, k] > 0``) holds a directed
+    cycle, every row at once.  Peels sinks: a node none of whose flow-carrying links
+    leads to a node still in the graph leaves it; a graph is acyclic exactly when the
+    peel empties it (a non-empty acyclic graph always has a sink).  What
+    :func:`find_cycle` answers (None or not) row by row, without its Python walk."""
+    m = fd.shape[0]
+    if not len(src) or not m:
+        return np.zeros(m, dtype=bool)
+    order = np.argsort(src, kind="stable")
+    s_sorted = src[order]
+    starts = np.flatnonzero(np.r_[True, s_sorted[1:] != s_sorted[:-1]])
+    heads = s_sorted[starts]
+    live = fd[:, order] > 0                                   # (m, L) in source order
+    do = dst[order]
+    alive = np.zeros((m, n), dtype=bool)
+    alive[:, heads] = np.logical_or.reduceat(live, starts, axis=1)
+    for _ in range(n + 1):
+        keep = np.zeros((m, n), dtype=bool)
+        keep[:, heads] = np.logical_or.reduceat(live & alive[:, do], starts, axis=1)
+        keep &= alive
+        if np.array_equal(keep, alive):
+            return np.asarray(alive.any(axis=1))
+        alive = keep
+    raise AssertionError("sink peeling did not settle")   # each pass removes a node
 
 
 def _cancel_cycles(n: int, src: np.ndarray, dst: np.ndarray, f: np.ndarray) -> int:

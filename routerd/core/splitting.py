@@ -526,18 +526,26 @@ class SplitState:
         1e-10 (a Gamma tail, common practice).  Measured in ``routerd lab``: with 8 rows
         and a factor of 4 a quick recovery left too few rows on the cut link to trigger, and
         the shares went back.  A link measured at or below the factor forgets at once."""
-        cnt, _, _, tau, tau0 = self._measured(now, window)
+        self._note_slow(now, self._measured(now, window))
+
+    def _note_slow(self, now: float, meas: tuple[np.ndarray, ...]) -> None:
+        """:meth:`note_slow` on :meth:`_measured`'s figures at ``now`` (which it does not
+        change: :meth:`decide` hands the same figures on to :meth:`link_estimates_tau`)."""
+        cnt, _, _, tau, tau0 = meas
         slow = slow_links(cnt, tau, tau0)
         self.slow_tau[(cnt >= SLOW_ROWS) & ~slow] = 0.0
         self.slow_tau[slow] = tau[slow]
         self.slow_t[slow] = now
 
-    def link_estimates_tau(self, now: float, window: float, prior: float
+    def link_estimates_tau(self, now: float, window: float, prior: float,
+                           measured: tuple[np.ndarray, ...] | None = None
                            ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(L, F, tau) per slot at ``now``: :meth:`link_estimates` and each link's service
         time: the configured one (see :meth:`_measured`), or for a link :meth:`note_slow`
-        found slower, its measured one fading back to it (linearly in service time)."""
-        cnt, sm, F, _, tau0 = self._measured(now, window)
+        found slower, its measured one fading back to it (linearly in service time).
+        ``measured``: :meth:`_measured` at this ``now`` and ``window``, if already made
+        (it depends on the observations only, not on what :meth:`note_slow` remembers)."""
+        cnt, sm, F, _, tau0 = self._measured(now, window) if measured is None else measured
         tau0 = remembered_service_time(tau0, self.slow_tau, self.slow_t, now)
         L0 = self.prop + tau0
         L = (sm + prior * L0) / (cnt + prior)
@@ -620,8 +628,9 @@ def decide(st: SplitState, eng: Any, now: float) -> tuple[set[int], int, int]:
     state to the bit (tests/test_splitting.py)."""
     s = eng.settings
     n = eng.n
-    st.note_slow(now, s.split_window_s)
-    L, F, tau0 = st.link_estimates_tau(now, s.split_window_s, s.split_prior)
+    meas = st._measured(now, s.split_window_s)       # once: both steps read the same figures
+    st._note_slow(now, meas)
+    L, F, tau0 = st.link_estimates_tau(now, s.split_window_s, s.split_prior, meas)
     spt = eng._spt_live()                                      # (n, n) node, -1
     spt_slot = np.where(spt >= 0, eng._slot_of[np.arange(n)[:, None], np.maximum(spt, 0)], -1)
     Lm = L
@@ -857,10 +866,19 @@ def st_slots(st: SplitState) -> np.ndarray:
     return st.slots
 
 
-def published_values(pub: np.ndarray, Q: np.ndarray, ceiling: float) -> np.ndarray:
+def published_values(pub: np.ndarray, Q: np.ndarray, ceiling: float, kern: Any = None
+                     ) -> np.ndarray:
     """(n, n) V[x, d] = sum_j pub[x, d, j] Q[x, d, j]: the expected remaining time on the
-    published split (0 at the destination, the ceiling without a route)."""
+    published split (0 at the destination, the ceiling without a route).  ``kern``: the
+    engine's compiled kernels, if any (:func:`routerd.core._kernels.split_values`, the same
+    result to the bit without the (n, n, K) temporaries); this numpy code is the reference."""
     n = pub.shape[0]
+    if (kern is not None and hasattr(kern, "split_values") and pub.dtype == np.float64
+            and Q.dtype == np.float64 and pub.shape == Q.shape
+            and pub.flags.c_contiguous and Q.flags.c_contiguous):
+        out = np.empty(pub.shape[:2])
+        kern.split_values(pub, Q, float(ceiling), out)
+        return out
     with np.errstate(invalid="ignore"):
         v = ksum(np.where(pub > 0, pub * Q, 0.0))
     v = np.where(pub.sum(axis=2) > 0, np.minimum(v, ceiling), ceiling)
