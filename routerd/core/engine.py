@@ -1054,6 +1054,9 @@ class Engine:
         (every node when ``xs`` is None too) over the owned destinations.  A destination
         this engine does not own: KeyError."""
         n, K, nd = self.n, self.k, self.nd
+        if self._split is not None and xs is None and ds is None:   # the whole table, as is
+            return _splitting.published_values(self._split.pub, self.Q, self.settings.ceiling_s,
+                                               self._kern)
         if ds is None:
             rows = np.arange(n) if xs is None else np.asarray(xs, dtype=np.int64)
             x = np.repeat(rows, nd).reshape(len(rows), nd)

@@ -578,22 +578,37 @@ class _PathShift:
         for d in range(n):
             rows = []
             rd = rt[d]
+            walk = self._walker(bl[d], d)
             for s_ in range(n):
                 if s_ != d and rd[s_] > 0:
-                    rows.append((s_, {self._walk(bl[d], s_, d): rd[s_]}))
+                    rows.append((s_, {walk(s_): rd[s_]}))
             if rows:
                 self.pairs[d] = rows
 
-    def _walk(self, bl: list[int], s: int, d: int) -> tuple[int, ...]:
-        path: list[int] = []
-        x = s
-        for _ in range(self.n):
-            if x == d:
-                return tuple(path)
-            k = bl[x]
-            path.append(k)
-            x = self.dst_l[k]
-        raise AssertionError("shortest-route tree has a loop")  # lengths > 0: impossible
+    def _walker(self, bl: list[int], d: int) -> Callable[[int], tuple[int, ...]]:
+        """The links from any source to ``d`` along the tree ``bl`` (link per node), as a
+        function of the source: each node's path is made once (its next hop's path with its
+        link in front), not walked again from every source that passes through it."""
+        memo: dict[int, tuple[int, ...]] = {d: ()}
+        dst_l, n = self.dst_l, self.n
+
+        def walk(s: int) -> tuple[int, ...]:
+            p = memo.get(s)
+            if p is not None:
+                return p
+            stack = []
+            x = s
+            while x not in memo:
+                if len(stack) >= n:
+                    raise AssertionError("shortest-route tree has a loop")  # lengths > 0: impossible
+                stack.append(x)
+                x = dst_l[bl[x]]
+            p = memo[x]
+            for y in reversed(stack):
+                p = (bl[y],) + p
+                memo[y] = p
+            return p
+        return walk
 
     def _tree(self, d: int, lengths: np.ndarray) -> list[int]:
         n, order, starts, heads = self.n, self.order, self.starts, self.heads
@@ -625,9 +640,9 @@ class _PathShift:
             if self.stop is not None and self.stop():
                 break     # every shift so far kept the flows balanced: a valid point
             lengths = mm1_marginal(np.asarray(Fl), cap, prop, rho)
-            bl = self._tree(d, lengths)
+            walk = self._walker(self._tree(d, lengths), d)
             for s_, paths in rows:
-                best = self._walk(bl, s_, d)
+                best = walk(s_)
                 if best not in paths:
                     paths[best] = 0.0
                 for p in [q for q in paths if q != best]:
