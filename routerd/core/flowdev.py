@@ -462,7 +462,16 @@ def flow_deviation(
                               delay_lower_s=math.nan)
 
     fd, best0, _ = _all_or_nothing(n, src, dst, mm1_marginal(np.zeros(L), cap, prop), r)
-    step = _classic if method == "classic" else _PathShift(n, src, dst, r, best0, stop).sweep
+    shifter: list[_PathShift] = []   # made on the first step: a run that stops before needs none
+
+    def step(F: np.ndarray, fd: np.ndarray, V: np.ndarray, vd: np.ndarray, cap: np.ndarray,
+             prop: np.ndarray, rho: float) -> tuple[np.ndarray, np.ndarray]:
+        if method == "classic":
+            return _classic(F, fd, V, vd, cap, prop, rho)
+        if not shifter:
+            shifter.append(_PathShift(n, src, dst, r, best0, stop))
+        return shifter[0].sweep(F, fd, V, vd, cap, prop, rho)
+
     F = fd.sum(axis=0)
     it = 0
     rel_gap = math.inf
@@ -472,6 +481,7 @@ def flow_deviation(
     infeasible = False
     stopped = False
     lower = 0.0
+    last: tuple[np.ndarray, np.ndarray] | None = None   # the last lengths and their best links
     for rho in rho_levels:
         converged = False
         while it < max_iter:
@@ -484,7 +494,8 @@ def flow_deviation(
                     infeasible = True  # proven: no routing fits, stop here
                     break
             lengths = mm1_marginal(F, cap, prop, rho)
-            vd, _, _ = _all_or_nothing(n, src, dst, lengths, r)
+            vd, best_now, _ = _all_or_nothing(n, src, dst, lengths, r)
+            last = (lengths, best_now)
             V = vd.sum(axis=0)
             cost = mm1_cost(F, cap, prop, rho)
             gap = float(np.dot(lengths, F - V))
@@ -505,7 +516,10 @@ def flow_deviation(
     for d in np.flatnonzero(_rows_with_cycles(n, src, dst, fd)).tolist():
         _cancel_cycles(n, src, dst, fd[d])   # the others hold no cycle: nothing to cancel
     lengths = mm1_marginal(F, cap, prop, rho)
-    frac = _fallback_fractions(n, src, dst, lengths, _shares(n, src, fd, min_share))
+    # the flows have not moved since the last lengths (a run that converged): their best
+    # links are the ones the fallback would find again
+    known = last[1] if last is not None and last[0].tobytes() == lengths.tobytes() else None
+    frac = _fallback_fractions(n, src, dst, lengths, _shares(n, src, fd, min_share), known)
     dest_flows, _ = flows_from_fractions(n, src, dst, frac, r)
     flows = dest_flows.sum(axis=0)
     util = flows / cap
@@ -774,12 +788,14 @@ def _shares(n: int, src: np.ndarray, fd: np.ndarray, min_share: float) -> np.nda
 
 
 def _fallback_fractions(n: int, src: np.ndarray, dst: np.ndarray, lengths: np.ndarray,
-                        frac: np.ndarray) -> np.ndarray:
-    """Give every (x, d) without a share its shortest marginal-length link (share 1)."""
+                        frac: np.ndarray, best: np.ndarray | None = None) -> np.ndarray:
+    """Give every (x, d) without a share its shortest marginal-length link (share 1).
+    ``best``: :func:`_best_links` under these ``lengths``, if already known."""
     frac = frac.copy()
     tot = frac @ by_source(n, src)
-    D = all_distances(n, src, dst, lengths)
-    best = _best_links(n, src, dst, lengths, D)  # (d, x)
+    if best is None:
+        D = all_distances(n, src, dst, lengths)
+        best = _best_links(n, src, dst, lengths, D)  # (d, x)
     dd, xx = np.nonzero((tot == 0) & (best >= 0))
     frac[dd, best[dd, xx]] = 1.0
     return frac
