@@ -680,13 +680,16 @@ class _PathShift:
         return self.flows(fd.shape)
 
     def flows(self, shape: tuple[int, ...]) -> tuple[np.ndarray, np.ndarray]:
+        # each link's flow adds its paths' flows in the same order as a numpy row would
+        # (a tree path holds a link once), as Python floats: one list per destination
         fd = np.zeros(shape)
         for d, rows in self.pairs.items():
-            row = fd[d]
+            row = [0.0] * shape[1]
             for _, paths in rows:
                 for p, x in paths.items():
-                    if p:
-                        row[list(p)] += x
+                    for k in p:
+                        row[k] += x
+            fd[d] = row
         return fd.sum(axis=0), fd
 
 
