@@ -585,6 +585,7 @@ class _PathShift:
         self.group = np.repeat(np.arange(len(self.starts)),
                                np.diff(np.r_[self.starts, len(src)]))
         self.dst_l = dst.tolist()
+        self.dst_sorted = dst[order]
         # per destination: [(s, {path (tuple of links): flow}), ...]
         self.pairs: dict[int, list[tuple[int, dict[tuple[int, ...], float]]]] = {}
         bl = best.tolist()
@@ -629,13 +630,13 @@ class _PathShift:
         dist = np.full(n, np.inf)
         dist[d] = 0.0
         lo = lengths[order]
-        do = self.dst[order]
+        do = self.dst_sorted
         for _ in range(n):
             best = np.minimum.reduceat(lo + dist[do], starts)
             new = dist.copy()
             new[heads] = np.minimum(dist[heads], best)
             new[d] = 0.0
-            if np.array_equal(new, dist):
+            if (new == dist).all():     # np.array_equal of two (n,) arrays, without its checks
                 break
             dist = new
         cost = lo + dist[do]
