@@ -369,6 +369,23 @@ def test_split_values_compiled_equals_reference() -> None:
     assert got[0, 1] == pytest.approx(0.25, rel=1e-15) and got[1, 0] == 9.0 and got[0, 0] == 0.0
 
 
+def test_median_is_numpys_median() -> None:
+    # splitting.median (the link estimates' packet size) against numpy.median, the
+    # reference it stands in for: the same float, bytewise, for odd and even lengths,
+    # ties, zeros, inf and NaN
+    rng = np.random.default_rng(12)
+    for i in range(3000):
+        n = int(rng.integers(1, 30))
+        a = rng.lognormal(0.0, 2.0, n)
+        if i % 3 == 0:
+            a = np.round(a)
+        if i % 7 == 0:
+            a[int(rng.integers(0, n))] = np.inf
+        if i % 11 == 0:
+            a[int(rng.integers(0, n))] = np.nan
+        assert np.float64(S.median(a)).tobytes() == np.float64(np.median(a)).tobytes()
+
+
 def _check_published(eng: Engine) -> None:
     st_ = eng._split
     assert st_ is not None
