@@ -23,7 +23,13 @@ import numpy as np
 
 from routerd.core import flowdev as _fd
 from routerd.core import kernels as _kernels
-from routerd.core.splitting import SLOW_ROWS, median, remembered_service_time, service_time, slow_links
+from routerd.core.splitting import (
+    SLOW_ROWS,
+    median,
+    remembered_service_time,
+    service_time,
+    slow_links,
+)
 from routerd.core.topology import Topology
 
 __all__ = ["BUSY_ROWS", "Meter", "Rates", "estimate", "guide_shares", "inputs_for", "model_capacity",
