@@ -344,6 +344,7 @@ class QRouting(Policy):
         self._gh = np.full((n, n), -1, dtype=np.int64)   # greedy next hop per entry, as refreshed
         self._eps_np = np.full((n, n), np.nan)           # its share and candidates, as refreshed
         self._alt_np = np.zeros((n, n, topology.slots.shape[1]), dtype=bool)
+        self._vals_np = np.full((n, n), -1, dtype=np.int64)  # split mode: table as refreshed
         self._moved: list[np.ndarray] = []               # keys x * n + d whose greedy hop moved
         # dual (routerd.core.variants): a packet also carries its sender's estimate back towards
         # its source; the source is the flow id's pair, (src * n + dst) * flows_per_pair + r
@@ -436,14 +437,23 @@ class QRouting(Policy):
         nh = self._slots_ext[xs[:, None], g]       # slot -1 (no next hop) reads the -1 column
         multi = _any_last(eng.alt[sel]) & (g >= 0)
         vals = np.where(multi, -2, nh)
-        moved = np.nonzero(self._gh[sel] != nh)
+        hop_moved = self._gh[sel] != nh
+        moved = np.nonzero(hop_moved)
         self._moved.append(xs[moved[0]] * eng.n + moved[1])
+        # only the rows that differ from what they hold are rewritten (in place: the
+        # simulator holds the row lists); the others already hold these values
+        row_v = (vals != self._vals_np[sel]).any(axis=1)
+        row_h = hop_moved.any(axis=1)
         self._gh[sel] = nh
+        self._vals_np[sel] = vals
         gh, sp = self._greedy_hop, self._split
-        # rows rewritten in place (the simulator holds the row lists); one tolist each
-        for x, vrow, hrow in zip(xs.tolist(), vals.tolist(), nh.tolist()):
-            table[x][:] = vrow
-            gh[x][:] = hrow
+        for i in np.flatnonzero(row_v | row_h).tolist():
+            x = int(xs[i])
+            if row_v[i]:
+                table[x][:] = vals[i].tolist()
+            if row_h[i]:
+                gh[x][:] = nh[i].tolist()
+        for x in xs.tolist():   # every refreshed node's published shares changed
             sp[x].clear()
 
     def split(self, x: int, d: int) -> tuple[tuple[int, ...], tuple[float, ...]]:
