@@ -794,13 +794,21 @@ def _shares(n: int, src: np.ndarray, fd: np.ndarray, min_share: float) -> np.nda
 def _fallback_fractions(n: int, src: np.ndarray, dst: np.ndarray, lengths: np.ndarray,
                         frac: np.ndarray, best: np.ndarray | None = None) -> np.ndarray:
     """Give every (x, d) without a share its shortest marginal-length link (share 1).
-    ``best``: :func:`_best_links` under these ``lengths``, if already known."""
+    ``best``: :func:`_best_links` under these ``lengths``, if already known.  Shares are
+    >= 0 (:func:`_shares`' are, by its clean-up), so a node's shares sum to 0 exactly
+    when none is > 0: that is what is tested, per node, with no matrix product (a
+    threaded BLAS call on a loaded machine cost more than the rest of this function)."""
     frac = frac.copy()
-    tot = frac @ by_source(n, src)
+    unrouted = np.ones((frac.shape[0], n), dtype=bool)      # (d, x): no share out of x
+    if len(src):
+        order = np.argsort(src, kind="stable")
+        s_sorted = src[order]
+        starts = np.flatnonzero(np.r_[True, s_sorted[1:] != s_sorted[:-1]])
+        unrouted[:, s_sorted[starts]] = ~np.logical_or.reduceat(frac[:, order] > 0, starts, axis=1)
     if best is None:
         D = all_distances(n, src, dst, lengths)
         best = _best_links(n, src, dst, lengths, D)  # (d, x)
-    dd, xx = np.nonzero((tot == 0) & (best >= 0))
+    dd, xx = np.nonzero(unrouted & (best >= 0))
     frac[dd, best[dd, xx]] = 1.0
     return frac
 
