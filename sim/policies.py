@@ -346,6 +346,7 @@ class QRouting(Policy):
         self._gh = np.full((n, n), -1, dtype=np.int64)   # greedy next hop per entry, as refreshed
         self._eps_np = np.full((n, n), np.nan)           # its share and candidates, as refreshed
         self._alt_np = np.zeros((n, n, topology.slots.shape[1]), dtype=bool)
+        self._vals_np = np.full((n, n), -1, dtype=np.int64)  # split mode: table as refreshed
         self._moved: list[np.ndarray] = []               # keys x * n + d whose greedy hop moved
         # dual (routerd.core.variants): a packet also carries its sender's estimate back towards
         # its source; the source is the flow id's pair, (src * n + dst) * flows_per_pair + r
@@ -433,17 +434,29 @@ class QRouting(Policy):
         eng = self.engine
         table = self.table
         assert table is not None
-        g = eng.greedy[xs]
-        nh = np.where(g >= 0, np.take_along_axis(self._slots[xs], np.maximum(g, 0), axis=1), -1)
-        multi = (eng.alt[xs].any(axis=2)) & (g >= 0)
+        sel: Any = slice(None) if xs.size == eng.n else xs   # every node: views, not copies
+        g = eng.greedy[sel]
+        nh = self._slots_ext[xs[:, None], g]       # slot -1 (no next hop) reads the -1 column
+        multi = _any_last(eng.alt[sel]) & (g >= 0)
         vals = np.where(multi, -2, nh)
-        moved = np.nonzero(self._gh[xs] != nh)
+        hop_moved = self._gh[sel] != nh
+        moved = np.nonzero(hop_moved)
         self._moved.append(xs[moved[0]] * eng.n + moved[1])
-        self._gh[xs] = nh
-        for i, x in enumerate(xs.tolist()):
-            table[x][:] = vals[i].tolist()
-            self._greedy_hop[x][:] = nh[i].tolist()
-            self._split[x].clear()
+        # only the rows that differ from what they hold are rewritten (in place: the
+        # simulator holds the row lists); the others already hold these values
+        row_v = (vals != self._vals_np[sel]).any(axis=1)
+        row_h = hop_moved.any(axis=1)
+        self._gh[sel] = nh
+        self._vals_np[sel] = vals
+        gh, sp = self._greedy_hop, self._split
+        for i in np.flatnonzero(row_v | row_h).tolist():
+            x = int(xs[i])
+            if row_v[i]:
+                table[x][:] = vals[i].tolist()
+            if row_h[i]:
+                gh[x][:] = nh[i].tolist()
+        for x in xs.tolist():   # every refreshed node's published shares changed
+            sp[x].clear()
 
     def split(self, x: int, d: int) -> tuple[tuple[int, ...], tuple[float, ...]]:
         """(next hops, cumulative weights) of x for d, cached until x's table changes.
@@ -698,12 +711,16 @@ class QRouting(Policy):
 
     def _set_estimates(self) -> None:
         """Each node's remaining estimate per destination, as it would report it: ``_Vn``
-        (an array, read by on_hops) and ``_V`` (the same as lists, read by on_hop)."""
+        (an array, read by on_hops) and ``_V`` (the same as lists, read by on_hop, made
+        from ``_Vn`` on on_hop's first read: the batched paths never read it, and a
+        split-mode run sets the estimates at every decision)."""
         eng = self.engine
         vn = eng.values() if self.estimate_mode == "min" else eng.published_estimates()
         self._Vn = np.array(vn, dtype=np.float64, order="C")   # C: _decide writes it flat
-        self._V: list[list[float]] | None = self._Vn.tolist()
-        self._V_lag: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
+        self._V: list[list[float]] | None = None
+        # a lag entry makes on_hop call _sync_V, which rebuilds _V whole from _Vn
+        self._V_lag: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = [
+            (np.empty(0, np.int64),) * 2 + (np.empty(0),)]
         self._V_lag_rows = 0
         if self._qrows is not None:
             self._qrows.bind_values(self._Vn)

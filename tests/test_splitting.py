@@ -309,6 +309,8 @@ def test_split_compiled_equals_reference(small_ring: T.Topology, data: st.DataOb
         assert a.decide(now) == b.decide(now)
         assert a.same_state(b)
         assert a.statistics() == b.statistics()
+        # the published estimates: split_values against published_values' numpy, bytewise
+        assert a.published_estimates().tobytes() == b.published_estimates().tobytes()
 
 
 def test_split_compiled_equals_reference_at_a_hundred_nodes() -> None:
@@ -335,8 +337,53 @@ def test_split_compiled_equals_reference_at_a_hundred_nodes() -> None:
             b.set_link(int(t.src[i]), int(t.dst[i]), i == 8, now)
         assert a.decide(now) == b.decide(now)
         assert a.same_state(b)
+        assert a.published_estimates().tobytes() == b.published_estimates().tobytes()
     moved = a.statistics().split_share_moves
     assert moved > 1000 and a.statistics().loops_prevented > 0   # the test exercised the step and repairs
+
+
+def test_split_values_compiled_equals_reference() -> None:
+    # routerd.core._kernels.split_values against splitting.published_values' numpy, to the
+    # byte: shares of several slots (the slot-order sum), keys with no share (the
+    # ceiling), sums above the ceiling (capped), the diagonal (0), Q of every magnitude
+    if not kernels.available():
+        pytest.skip("routerd.core._kernels is not built")
+    kern = kernels.select("compiled")
+    rng = np.random.default_rng(7)
+    for n, K in ((1, 1), (5, 3), (40, 7), (64, 12)):
+        pub = rng.dirichlet(np.ones(K), size=(n, n)) * (rng.random((n, n, K)) < 0.6)
+        pub[rng.random((n, n)) < 0.2] = 0.0                     # keys without a route
+        pub[0, -1, :] = 0.0
+        Q = rng.lognormal(-4.0, 3.0, (n, n, K))                  # some above the ceiling
+        ceil = 2.0
+        want = S.published_values(pub, Q, ceil)
+        got = S.published_values(pub, Q, ceil, kern)
+        assert got.tobytes() == want.tobytes()
+        assert (np.diag(want) == 0.0).all() and (n == 1 or (want == ceil).any())
+    # by hand: shares 0.25 / 0.75 of Q 0.1 / 0.3 give 0.025 + 0.225 = 0.25
+    pub = np.zeros((2, 2, 2))
+    pub[0, 1] = [0.25, 0.75]
+    Q = np.zeros((2, 2, 2))
+    Q[0, 1] = [0.1, 0.3]
+    got = S.published_values(pub, Q, 9.0, kern)
+    assert got[0, 1] == pytest.approx(0.25, rel=1e-15) and got[1, 0] == 9.0 and got[0, 0] == 0.0
+
+
+def test_median_is_numpys_median() -> None:
+    # splitting.median (the link estimates' packet size) against numpy.median, the
+    # reference it stands in for: the same float, bytewise, for odd and even lengths,
+    # ties, zeros, inf and NaN
+    rng = np.random.default_rng(12)
+    for i in range(3000):
+        n = int(rng.integers(1, 30))
+        a = rng.lognormal(0.0, 2.0, n)
+        if i % 3 == 0:
+            a = np.round(a)
+        if i % 7 == 0:
+            a[int(rng.integers(0, n))] = np.inf
+        if i % 11 == 0:
+            a[int(rng.integers(0, n))] = np.nan
+        assert np.float64(S.median(a)).tobytes() == np.float64(np.median(a)).tobytes()
 
 
 def _check_published(eng: Engine) -> None:

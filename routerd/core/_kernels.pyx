@@ -843,6 +843,41 @@ cdef inline double _dmax(double a, double b) noexcept nogil:
     return a if (a >= b or a != a) else b        # numpy.maximum's rule
 
 
+def split_values(const double[:, :, ::1] pub, const double[:, :, ::1] Q, double ceil,
+                 double[:, ::1] out):
+    """out[x, d] = the published estimate of x for d (routerd.core.splitting.published_values,
+    operation for operation): sum_j of pub * Q over the slots with a share, added in slot
+    order from 0.0 as splitting.ksum adds (0.0 where a slot has none), then the ceiling
+    as a cap; the ceiling where x has no share (shares are never negative or NaN, so
+    "some share > 0" is the reference's "shares sum > 0"); 0 at the destination.  The
+    reference's (n, n, K) temporaries are not made."""
+    cdef Py_ssize_t n = pub.shape[0], nd = pub.shape[1], K = pub.shape[2]
+    cdef Py_ssize_t x, d, j
+    cdef double v, p
+    cdef bint anyp
+    cdef const double* pr
+    cdef const double* qr
+    if Q.shape[0] != n or Q.shape[1] != nd or Q.shape[2] != K or out.shape[0] != n or out.shape[1] != nd:
+        raise ValueError("split_values: pub, Q and out do not match")
+    with nogil:
+        for x in range(n):
+            for d in range(nd):
+                pr = &pub[x, d, 0] if K else NULL
+                qr = &Q[x, d, 0] if K else NULL
+                v = 0.0
+                anyp = False
+                for j in range(K):
+                    p = pr[j]
+                    if p > 0:
+                        v = v + p * qr[j]
+                        anyp = True
+                    else:
+                        v = v + 0.0
+                out[x, d] = _dmin(v, ceil) if anyp else ceil
+            if x < nd:
+                out[x, x] = 0.0
+
+
 def split_decide(double[:, :, ::1] Q, double[:, :, ::1] w, double[:, :, ::1] pub,
                  const uint8_t[:, ::1] live, const uint8_t[:, ::1] present,
                  const int64_t[:, ::1] slots, const int64_t[:, ::1] rev, const int64_t[::1] in_ptr,

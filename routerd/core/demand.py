@@ -23,7 +23,13 @@ import numpy as np
 
 from routerd.core import flowdev as _fd
 from routerd.core import kernels as _kernels
-from routerd.core.splitting import SLOW_ROWS, remembered_service_time, service_time, slow_links
+from routerd.core.splitting import (
+    SLOW_ROWS,
+    median,
+    remembered_service_time,
+    service_time,
+    slow_links,
+)
 from routerd.core.topology import Topology
 
 __all__ = ["BUSY_ROWS", "Meter", "Rates", "estimate", "guide_shares", "inputs_for", "model_capacity",
@@ -178,7 +184,7 @@ def estimate(topo: Topology, rates: Rates, window: float, packet_bytes: float = 
     L = rates.lat[busy] / F[busy]
     tau = service_time(L, F[busy], topo.delay_s[busy])
     sizes = tau * topo.capacity_bps[busy] / 8.0
-    mid = float(np.median(sizes))
+    mid = median(sizes)
     if not (mid > 0 and math.isfinite(mid)):
         return 0.0
     near = (sizes >= mid / SIZE_TRIM) & (sizes <= mid * SIZE_TRIM)

@@ -1060,6 +1060,9 @@ class Engine:
         (every node when ``xs`` is None too) over the owned destinations.  A destination
         this engine does not own: KeyError."""
         n, K, nd = self.n, self.k, self.nd
+        if self._split is not None and xs is None and ds is None:   # the whole table, as is
+            return _splitting.published_values(self._split.pub, self.Q, self.settings.ceiling_s,
+                                               self._kern)
         if ds is None:
             rows = np.arange(n) if xs is None else np.asarray(xs, dtype=np.int64)
             x = np.repeat(rows, nd).reshape(len(rows), nd)
@@ -1071,7 +1074,8 @@ class Engine:
             if self.partial and c.size and int(c.min()) < 0:
                 raise KeyError("published_estimates: a destination is not owned by this engine")
         if self._split is not None:   # split mode keeps a whole engine: column d is d
-            return _splitting.published_values(self._split.pub, self.Q, self.settings.ceiling_s)[x, d]
+            return _splitting.published_values(self._split.pub, self.Q, self.settings.ceiling_s,
+                                               self._kern)[x, d]
         w = x * nd + c
         g = _flat(self.greedy).take(w)
         q = _flat(self.Q).take(w * K + np.maximum(g, 0))

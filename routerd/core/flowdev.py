@@ -479,7 +479,16 @@ def flow_deviation(
                               delay_lower_s=math.nan)
 
     fd, best0, _ = _all_or_nothing(n, src, dst, mm1_marginal(np.zeros(L), cap, prop), r)
-    step = _classic if method == "classic" else _PathShift(n, src, dst, r, best0, stop).sweep
+    shifter: list[_PathShift] = []   # made on the first step: a run that stops before needs none
+
+    def step(F: np.ndarray, fd: np.ndarray, V: np.ndarray, vd: np.ndarray, cap: np.ndarray,
+             prop: np.ndarray, rho: float) -> tuple[np.ndarray, np.ndarray]:
+        if method == "classic":
+            return _classic(F, fd, V, vd, cap, prop, rho)
+        if not shifter:
+            shifter.append(_PathShift(n, src, dst, r, best0, stop))
+        return shifter[0].sweep(F, fd, V, vd, cap, prop, rho)
+
     F = fd.sum(axis=0)
     it = 0
     rel_gap = math.inf
@@ -489,6 +498,7 @@ def flow_deviation(
     infeasible = False
     stopped = False
     lower = 0.0
+    last: tuple[np.ndarray, np.ndarray] | None = None   # the last lengths and their best links
     for rho in rho_levels:
         converged = False
         while it < max_iter:
@@ -501,7 +511,8 @@ def flow_deviation(
                     infeasible = True  # proven: no routing fits, stop here
                     break
             lengths = mm1_marginal(F, cap, prop, rho)
-            vd, _, _ = _all_or_nothing(n, src, dst, lengths, r)
+            vd, best_now, _ = _all_or_nothing(n, src, dst, lengths, r)
+            last = (lengths, best_now)
             V = vd.sum(axis=0)
             cost = mm1_cost(F, cap, prop, rho)
             gap = float(np.dot(lengths, F - V))
@@ -519,10 +530,13 @@ def flow_deviation(
     fd = fd.copy()
     scale = max(float(fd.max()), 1e-300)
     fd[fd < 1e-12 * scale] = 0.0
-    for d in range(n):
-        _cancel_cycles(n, src, dst, fd[d])
+    for d in np.flatnonzero(_rows_with_cycles(n, src, dst, fd)).tolist():
+        _cancel_cycles(n, src, dst, fd[d])   # the others hold no cycle: nothing to cancel
     lengths = mm1_marginal(F, cap, prop, rho)
-    frac = _fallback_fractions(n, src, dst, lengths, _shares(n, src, fd, min_share))
+    # the flows have not moved since the last lengths (a run that converged): their best
+    # links are the ones the fallback would find again
+    known = last[1] if last is not None and last[0].tobytes() == lengths.tobytes() else None
+    frac = _fallback_fractions(n, src, dst, lengths, _shares(n, src, fd, min_share), known)
     dest_flows, _ = flows_from_fractions(n, src, dst, frac, r)
     flows = dest_flows.sum(axis=0)
     util = flows / cap
@@ -588,40 +602,58 @@ class _PathShift:
         self.group = np.repeat(np.arange(len(self.starts)),
                                np.diff(np.r_[self.starts, len(src)]))
         self.dst_l = dst.tolist()
+        self.dst_sorted = dst[order]
         # per destination: [(s, {path (tuple of links): flow}), ...]
         self.pairs: dict[int, list[tuple[int, dict[tuple[int, ...], float]]]] = {}
         bl = best.tolist()
+        rt = r.T.tolist()          # rt[d][s]: Python floats, read n^2 times
         for d in range(n):
             rows = []
+            rd = rt[d]
+            walk = self._walker(bl[d], d)
             for s_ in range(n):
-                if s_ != d and r[s_, d] > 0:
-                    rows.append((s_, {self._walk(bl[d], s_, d): float(r[s_, d])}))
+                if s_ != d and rd[s_] > 0:
+                    rows.append((s_, {walk(s_): rd[s_]}))
             if rows:
                 self.pairs[d] = rows
 
-    def _walk(self, bl: list[int], s: int, d: int) -> tuple[int, ...]:
-        path: list[int] = []
-        x = s
-        for _ in range(self.n):
-            if x == d:
-                return tuple(path)
-            k = bl[x]
-            path.append(k)
-            x = self.dst_l[k]
-        raise AssertionError("shortest-route tree has a loop")  # lengths > 0: impossible
+    def _walker(self, bl: list[int], d: int) -> Callable[[int], tuple[int, ...]]:
+        """The links from any source to ``d`` along the tree ``bl`` (link per node), as a
+        function of the source: each node's path is made once (its next hop's path with its
+        link in front), not walked again from every source that passes through it."""
+        memo: dict[int, tuple[int, ...]] = {d: ()}
+        dst_l, n = self.dst_l, self.n
+
+        def walk(s: int) -> tuple[int, ...]:
+            p = memo.get(s)
+            if p is not None:
+                return p
+            stack = []
+            x = s
+            while x not in memo:
+                if len(stack) >= n:
+                    raise AssertionError("shortest-route tree has a loop")  # lengths > 0: impossible
+                stack.append(x)
+                x = dst_l[bl[x]]
+            p = memo[x]
+            for y in reversed(stack):
+                p = (bl[y],) + p
+                memo[y] = p
+            return p
+        return walk
 
     def _tree(self, d: int, lengths: np.ndarray) -> list[int]:
         n, order, starts, heads = self.n, self.order, self.starts, self.heads
         dist = np.full(n, np.inf)
         dist[d] = 0.0
         lo = lengths[order]
-        do = self.dst[order]
+        do = self.dst_sorted
         for _ in range(n):
             best = np.minimum.reduceat(lo + dist[do], starts)
             new = dist.copy()
             new[heads] = np.minimum(dist[heads], best)
             new[d] = 0.0
-            if np.array_equal(new, dist):
+            if (new == dist).all():     # np.array_equal of two (n,) arrays, without its checks
                 break
             dist = new
         cost = lo + dist[do]
@@ -640,9 +672,9 @@ class _PathShift:
             if self.stop is not None and self.stop():
                 break     # every shift so far kept the flows balanced: a valid point
             lengths = mm1_marginal(np.asarray(Fl), cap, prop, rho)
-            bl = self._tree(d, lengths)
+            walk = self._walker(self._tree(d, lengths), d)
             for s_, paths in rows:
-                best = self._walk(bl, s_, d)
+                best = walk(s_)
                 if best not in paths:
                     paths[best] = 0.0
                 for p in [q for q in paths if q != best]:
@@ -666,13 +698,16 @@ class _PathShift:
         return self.flows(fd.shape)
 
     def flows(self, shape: tuple[int, ...]) -> tuple[np.ndarray, np.ndarray]:
+        # each link's flow adds its paths' flows in the same order as a numpy row would
+        # (a tree path holds a link once), as Python floats: one list per destination
         fd = np.zeros(shape)
         for d, rows in self.pairs.items():
-            row = fd[d]
+            row = [0.0] * shape[1]
             for _, paths in rows:
                 for p, x in paths.items():
-                    if p:
-                        row[list(p)] += x
+                    for k in p:
+                        row[k] += x
+            fd[d] = row
         return fd.sum(axis=0), fd
 
 
@@ -718,6 +753,33 @@ def _gd(f: float, c: float, rho: float) -> tuple[float, float]:
     return c / (room * room) + g2 * (f - x0), g2
 
 
+def _rows_with_cycles(n: int, src: np.ndarray, dst: np.ndarray, fd: np.ndarray) -> np.ndarray:
+    """(m,) bool: whether row i's flow graph (links with ``fd[i, k] > 0``) holds a directed
+    cycle, every row at once.  Peels sinks: a node none of whose flow-carrying links
+    leads to a node still in the graph leaves it; a graph is acyclic exactly when the
+    peel empties it (a non-empty acyclic graph always has a sink).  What
+    :func:`find_cycle` answers (None or not) row by row, without its Python walk."""
+    m = fd.shape[0]
+    if not len(src) or not m:
+        return np.zeros(m, dtype=bool)
+    order = np.argsort(src, kind="stable")
+    s_sorted = src[order]
+    starts = np.flatnonzero(np.r_[True, s_sorted[1:] != s_sorted[:-1]])
+    heads = s_sorted[starts]
+    live = fd[:, order] > 0                                   # (m, L) in source order
+    do = dst[order]
+    alive = np.zeros((m, n), dtype=bool)
+    alive[:, heads] = np.logical_or.reduceat(live, starts, axis=1)
+    for _ in range(n + 1):
+        keep = np.zeros((m, n), dtype=bool)
+        keep[:, heads] = np.logical_or.reduceat(live & alive[:, do], starts, axis=1)
+        keep &= alive
+        if np.array_equal(keep, alive):
+            return np.asarray(alive.any(axis=1))
+        alive = keep
+    raise AssertionError("sink peeling did not settle")   # each pass removes a node
+
+
 def _cancel_cycles(n: int, src: np.ndarray, dst: np.ndarray, f: np.ndarray) -> int:
     """Remove every directed cycle from one destination's flow ``f`` (in place); count them."""
     for count in range(len(f) + 1):  # each cancellation empties at least one link
@@ -746,13 +808,23 @@ def _shares(n: int, src: np.ndarray, fd: np.ndarray, min_share: float) -> np.nda
 
 
 def _fallback_fractions(n: int, src: np.ndarray, dst: np.ndarray, lengths: np.ndarray,
-                        frac: np.ndarray) -> np.ndarray:
-    """Give every (x, d) without a share its shortest marginal-length link (share 1)."""
+                        frac: np.ndarray, best: np.ndarray | None = None) -> np.ndarray:
+    """Give every (x, d) without a share its shortest marginal-length link (share 1).
+    ``best``: :func:`_best_links` under these ``lengths``, if already known.  Shares are
+    >= 0 (:func:`_shares`' are, by its clean-up), so a node's shares sum to 0 exactly
+    when none is > 0: that is what is tested, per node, with no matrix product (a
+    threaded BLAS call on a loaded machine cost more than the rest of this function)."""
     frac = frac.copy()
-    tot = sum_by_source(frac, n, src)
-    D = all_distances(n, src, dst, lengths)
-    best = _best_links(n, src, dst, lengths, D)  # (d, x)
-    dd, xx = np.nonzero((tot == 0) & (best >= 0))
+    unrouted = np.ones((frac.shape[0], n), dtype=bool)      # (d, x): no share out of x
+    if len(src):
+        order = np.argsort(src, kind="stable")
+        s_sorted = src[order]
+        starts = np.flatnonzero(np.r_[True, s_sorted[1:] != s_sorted[:-1]])
+        unrouted[:, s_sorted[starts]] = ~np.logical_or.reduceat(frac[:, order] > 0, starts, axis=1)
+    if best is None:
+        D = all_distances(n, src, dst, lengths)
+        best = _best_links(n, src, dst, lengths, D)  # (d, x)
+    dd, xx = np.nonzero(unrouted & (best >= 0))
     frac[dd, best[dd, xx]] = 1.0
     return frac
 

@@ -385,6 +385,21 @@ SLOW_ROWS = 4.0
 SLOW_MEMORY_S = 10.0
 
 
+def median(a: np.ndarray) -> float:
+    """``float(np.median(a))`` of a non-empty 1-D float array, the same float, without
+    np.median's general machinery (most of a decision's link estimates at 16 nodes): the
+    same partition (numpy's kth, its NaN check included), the middle value or the two
+    middle values added and halved (numpy's mean of them), NaN where any value is NaN."""
+    n = a.size
+    h = n // 2
+    part = np.partition(a, [h - 1, h, -1] if n % 2 == 0 else [h, -1])
+    if np.isnan(part[-1]):
+        return math.nan
+    if n % 2:
+        return float(part[h])
+    return float((part[h - 1] + part[h]) / 2.0)
+
+
 def slow_links(rows: np.ndarray, tau: np.ndarray, tau0: np.ndarray) -> np.ndarray:
     """Where a link measured on ``rows`` rows at service time ``tau`` runs slower than its
     configured service time ``tau0`` by over :data:`SLOW_FACTOR` (the rule of
@@ -538,7 +553,7 @@ class SplitState:
             Lm = np.where(cnt > 0, sm / np.where(cnt > 0, cnt, 1.0), self.prop)
         tau = service_time(Lm, F, self.prop)
         busy = (cnt >= 4.0) & np.isfinite(self.cap_bps)
-        bits = float(np.median(tau[busy] * self.cap_bps[busy])) if busy.any() else 0.0
+        bits = median(tau[busy] * self.cap_bps[busy]) if busy.any() else 0.0
         tau0 = np.where(np.isfinite(self.cap_bps), bits / self.cap_bps, 0.0)
         return cnt, sm, F, tau, tau0
 
@@ -560,18 +575,26 @@ class SplitState:
         1e-10 (a Gamma tail, common practice).  Measured in ``routerd lab``: with 8 rows
         and a factor of 4 a quick recovery left too few rows on the cut link to trigger, and
         the shares went back.  A link measured at or below the factor forgets at once."""
-        cnt, _, _, tau, tau0 = self._measured(now, window)
+        self._note_slow(now, self._measured(now, window))
+
+    def _note_slow(self, now: float, meas: tuple[np.ndarray, ...]) -> None:
+        """:meth:`note_slow` on :meth:`_measured`'s figures at ``now`` (which it does not
+        change: :meth:`decide` hands the same figures on to :meth:`link_estimates_tau`)."""
+        cnt, _, _, tau, tau0 = meas
         slow = slow_links(cnt, tau, tau0)
         self.slow_tau[(cnt >= SLOW_ROWS) & ~slow] = 0.0
         self.slow_tau[slow] = tau[slow]
         self.slow_t[slow] = now
 
-    def link_estimates_tau(self, now: float, window: float, prior: float
+    def link_estimates_tau(self, now: float, window: float, prior: float,
+                           measured: tuple[np.ndarray, ...] | None = None
                            ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(L, F, tau) per slot at ``now``: :meth:`link_estimates` and each link's service
         time: the configured one (see :meth:`_measured`), or for a link :meth:`note_slow`
-        found slower, its measured one fading back to it (linearly in service time)."""
-        cnt, sm, F, _, tau0 = self._measured(now, window)
+        found slower, its measured one fading back to it (linearly in service time).
+        ``measured``: :meth:`_measured` at this ``now`` and ``window``, if already made
+        (it depends on the observations only, not on what :meth:`note_slow` remembers)."""
+        cnt, sm, F, _, tau0 = self._measured(now, window) if measured is None else measured
         tau0 = remembered_service_time(tau0, self.slow_tau, self.slow_t, now)
         L0 = self.prop + tau0
         L = (sm + prior * L0) / (cnt + prior)
@@ -603,7 +626,7 @@ class SplitState:
         L, F = self.link_estimates(now, window, prior)
         tau = service_time(L, F, self.prop)
         busy = (F * window >= 4.0) & np.isfinite(self.cap_bps)
-        return float(np.median(tau[busy] * self.cap_bps[busy])) / 8.0 if busy.any() else 0.0
+        return median(tau[busy] * self.cap_bps[busy]) / 8.0 if busy.any() else 0.0
 
     # -- state ------------------------------------------------------------------------
     def export(self) -> dict[str, Any]:
@@ -662,8 +685,9 @@ def decide(st: SplitState, eng: Any, now: float) -> tuple[set[int], int, int]:
     state to the bit (tests/test_splitting.py)."""
     s = eng.settings
     n = eng.n
-    st.note_slow(now, s.split_window_s)
-    L, F, tau0 = st.link_estimates_tau(now, s.split_window_s, s.split_prior)
+    meas = st._measured(now, s.split_window_s)       # once: both steps read the same figures
+    st._note_slow(now, meas)
+    L, F, tau0 = st.link_estimates_tau(now, s.split_window_s, s.split_prior, meas)
     spt = eng._spt_live()                                      # (n, n) node, -1
     spt_slot = np.where(spt >= 0, eng._slot_of[np.arange(n)[:, None], np.maximum(spt, 0)], -1)
     Lm = L
@@ -899,10 +923,19 @@ def st_slots(st: SplitState) -> np.ndarray:
     return st.slots
 
 
-def published_values(pub: np.ndarray, Q: np.ndarray, ceiling: float) -> np.ndarray:
+def published_values(pub: np.ndarray, Q: np.ndarray, ceiling: float, kern: Any = None
+                     ) -> np.ndarray:
     """(n, n) V[x, d] = sum_j pub[x, d, j] Q[x, d, j]: the expected remaining time on the
-    published split (0 at the destination, the ceiling without a route)."""
+    published split (0 at the destination, the ceiling without a route).  ``kern``: the
+    engine's compiled kernels, if any (:func:`routerd.core._kernels.split_values`, the same
+    result to the bit without the (n, n, K) temporaries); this numpy code is the reference."""
     n = pub.shape[0]
+    if (kern is not None and hasattr(kern, "split_values") and pub.dtype == np.float64
+            and Q.dtype == np.float64 and pub.shape == Q.shape
+            and pub.flags.c_contiguous and Q.flags.c_contiguous):
+        out = np.empty(pub.shape[:2])
+        kern.split_values(pub, Q, float(ceiling), out)
+        return out
     with np.errstate(invalid="ignore"):
         v = ksum(np.where(pub > 0, pub * Q, 0.0))
     v = np.where(pub.sum(axis=2) > 0, np.minimum(v, ceiling), ceiling)
