@@ -313,6 +313,15 @@ def test_split_compiled_equals_reference(small_ring: T.Topology, data: st.DataOb
         assert a.published_estimates().tobytes() == b.published_estimates().tobytes()
 
 
+def _random_hops(t: T.Topology, rng: np.random.Generator, m: int) -> HopBatch:
+    """m hop rows on random links towards random destinations (not the hop's source)."""
+    k = rng.integers(0, t.n_links, m)
+    x, y = t.src[k].astype(int), t.dst[k].astype(int)
+    d = rng.integers(0, t.n, m)
+    d = np.where(d == x, y, d)
+    return HopBatch.of(x, y, d, rng.uniform(0.001, 0.03, m))
+
+
 def test_split_compiled_equals_reference_at_a_hundred_nodes() -> None:
     # a larger graph than hypothesis draws (deeper share graphs, more reversions), seeded
     if not kernels.available():
@@ -325,11 +334,7 @@ def test_split_compiled_equals_reference_at_a_hundred_nodes() -> None:
     moved = 0
     for i in range(12):
         now = 0.1 * (i + 1)
-        k = rng.integers(0, t.n_links, 800)
-        x, y = t.src[k].astype(int), t.dst[k].astype(int)
-        d = rng.integers(0, t.n, 800)
-        d = np.where(d == x, y, d)
-        hb = HopBatch.of(x, y, d, rng.uniform(0.001, 0.03, 800))
+        hb = _random_hops(t, rng, 800)
         a.observe(hb, now)
         b.observe(hb, now)
         if i in (4, 8):
@@ -577,11 +582,7 @@ def test_split_rates_compiled_equal_reference_rows_at_one_time() -> None:
     a = Engine(t, EngineSettings(mode="split", kernels="compiled"))
     b = Engine(t, EngineSettings(mode="split", kernels="reference"))
     for now in (0.5, 0.5, 0.9, 2.0, 2.0, 2.0, 7.5):
-        k = rng.integers(0, t.n_links, 300)
-        x, y = t.src[k].astype(int), t.dst[k].astype(int)
-        d = rng.integers(0, t.n, 300)
-        d = np.where(d == x, y, d)
-        hb = HopBatch.of(x, y, d, rng.uniform(0.001, 0.03, 300))
+        hb = _random_hops(t, rng, 300)
         a.observe(hb, now)
         b.observe(hb, now)
         sa, sb = a._split, b._split
