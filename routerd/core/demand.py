@@ -280,7 +280,8 @@ def inputs_for(topo: Topology, shares: np.ndarray, live_slots: np.ndarray, deman
                cap_pps: np.ndarray | None = None) -> dict[str, Any]:
     """The plain arrays :func:`solve` takes: live links only (capacities in packets/s:
     ``cap_pps`` per link, e.g. :func:`model_capacity`'s, else the configured ones), the
-    published shares as per-link fractions over them, the demand."""
+    published shares as per-link fractions over them, the demand less what the live links
+    cannot carry at all (``unroutable_pps``: between nodes they do not join)."""
     if cap_pps is None:
         cap_pps = topo.capacity_bps / (8.0 * packet_bytes)
     sl = topo.slot_link
@@ -288,10 +289,19 @@ def inputs_for(topo: Topology, shares: np.ndarray, live_slots: np.ndarray, deman
     alive[sl[(sl >= 0) & live_slots]] = True
     keep = np.flatnonzero(alive)
     frac = _fd.slot_fractions(topo, shares, owned)[:, keep]
-    return {"n": topo.n, "keep": keep,
-            "src": topo.src[keep].astype(np.int64), "dst": topo.dst[keep].astype(np.int64),
+    src, dst = topo.src[keep].astype(np.int64), topo.dst[keep].astype(np.int64)
+    # demand between nodes the live links do not join (a partition: a node cut off, its
+    # rows still in the window) can be carried by no routing: left out of the run, and
+    # said (``unroutable_pps``); flow deviation refuses demand without a route
+    hops = _fd.all_distances(topo.n, src, dst, np.ones(len(keep)))
+    cut = ~np.isfinite(hops) & (np.asarray(demand) > 0)
+    unroutable = float(np.asarray(demand)[cut].sum())
+    if unroutable > 0:
+        demand = np.where(cut, 0.0, demand)
+    return {"n": topo.n, "keep": keep, "src": src, "dst": dst,
             "cap_pps": np.asarray(cap_pps, dtype=float)[keep], "prop_s": topo.delay_s[keep].copy(),
-            "frac": frac, "demand": demand, "packet_bytes": float(packet_bytes)}
+            "frac": frac, "demand": demand, "packet_bytes": float(packet_bytes),
+            "unroutable_pps": unroutable}
 
 
 def solve(job: Mapping[str, Any], max_iter: int = 500,

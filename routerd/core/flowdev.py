@@ -135,6 +135,10 @@ def all_distances(n: int, src: np.ndarray, dst: np.ndarray, w: np.ndarray) -> np
         raise ValueError(f"weights have shape {w.shape}, links {src.shape}")
     if np.any(~(w >= 0)):
         raise ValueError("link weights must be >= 0 and not NaN")
+    if src.size == 0:         # no links (every one down): only each node reaches itself
+        D = np.full((n, n), np.inf)
+        np.fill_diagonal(D, 0.0)
+        return D
     order = np.argsort(src, kind="stable")
     s_sorted = src[order]
     starts = np.flatnonzero(np.r_[True, s_sorted[1:] != s_sorted[:-1]])
@@ -273,7 +277,10 @@ def tree_flows(n: int, src: np.ndarray, dst: np.ndarray, best_link: np.ndarray,
     dst = np.asarray(dst, dtype=np.int64)
     r = np.array(demand, dtype=float)
     np.fill_diagonal(r, 0.0)
-    nh = np.where(best_link >= 0, dst[np.maximum(best_link, 0)], -1)  # (d, x) next node
+    if len(dst):
+        nh = np.where(best_link >= 0, dst[np.maximum(best_link, 0)], -1)  # (d, x) next node
+    else:                     # no links: nobody has a next node
+        nh = np.full((n, n), -1, dtype=np.int64)
     dests = np.arange(n)
     depth = _loops.depths(nh, dests)
     stuck = depth > n  # no route to d (or a loop): allowed only where nothing is offered
@@ -412,6 +419,8 @@ def _best_links(n: int, src: np.ndarray, dst: np.ndarray, lengths: np.ndarray,
                 D: np.ndarray) -> np.ndarray:
     """(d, x) → the lowest-index link out of x on a shortest path to d (-1 for x == d)."""
     L = len(src)
+    if L == 0:                # no links: no node has a way out
+        return np.full((n, n), -1, dtype=np.int64)
     cost = lengths[:, None] + D[dst]  # (L, n): x → d through link k, then a shortest path
     order = np.argsort(src, kind="stable")
     s_sorted = src[order]

@@ -169,6 +169,8 @@ def compute(job: Mapping[str, Any], budget_s: float, max_iter: int = 500) -> dic
         "converged": bool(res.converged), "stopped": bool(res.stopped),
         "feasible": bool(res.feasible), "optimal_max_utilisation": float(res.max_utilisation),
         "demand_pps": float(res.gamma),
+        # measured demand the live links cannot carry at all (a partition), left out
+        "unroutable_pps": float(job.get("unroutable_pps", 0.0)),
     }
     if res.load_factor_bound < 1.0:
         out["load_factor_bound"] = float(res.load_factor_bound)
@@ -448,6 +450,7 @@ class Optimum:
                 "optimal_max_utilisation": _num(last["optimal_max_utilisation"]),
                 "published_max_utilisation": _num(last["published_max_utilisation"]),
                 "demand_pps_run": last["demand_pps"], "last_run_s": last["run_s"],
+                "unroutable_pps": last.get("unroutable_pps", 0.0),
             })
         return out
 
