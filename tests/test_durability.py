@@ -231,7 +231,14 @@ def test_crash_and_corrupt_loop(base: str) -> None:
             try:
                 for b in sorted(pending):
                     d.send_multipart([b"", pending[b]])
-                    ack = msgpack.unpackb(d.recv_multipart()[-1], raw=False)
+                    try:
+                        got = d.recv_multipart()
+                    except zmq.Again:      # say what the service was doing, not only "Again"
+                        raise AssertionError(
+                            f"round {rnd}: no ack in 10 s for resent batch {b} after {last_damage}; "
+                            f"service exit code {sp.proc.poll()}; stderr tail:\n"
+                            + "\n".join(sp.stderr_lines[-30:])) from None
+                    ack = msgpack.unpackb(got[-1], raw=False)
                     stats["resent"] += 1
                     feed(b, pending[b], ack)
             finally:
