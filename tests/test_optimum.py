@@ -364,8 +364,11 @@ def test_the_runner_says_why_before_it_has_demand_then_reports_the_gap() -> None
         fams = _families(st)
         for name in ("routerd_model_delay_optimal_seconds", "routerd_model_delay_published_seconds",
                      "routerd_model_delay_gap_ratio", "routerd_optimum_last_run_duration_seconds",
-                     "routerd_measured_demand_packets_per_second"):
+                     "routerd_measured_demand_packets_per_second",
+                     "routerd_measured_demand_unroutable_packets_per_second"):
             assert fams[name].type == "gauge", name
+        # nothing cut off: no demand left out
+        assert fams["routerd_measured_demand_unroutable_packets_per_second"].samples[0].value == 0.0
         runs = {s.labels["outcome"]: s.value for s in fams["routerd_optimum_runs"].samples
                 if s.name.endswith("_total")}
         assert runs == {"ok": 1.0, "failed": 0.0, "skipped": 0.0}

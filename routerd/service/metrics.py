@@ -482,7 +482,10 @@ def optimum_families(f: Mapping[str, float]) -> Iterator[Metric]:
             ("routerd_optimum_last_run_duration_seconds", "run_s", "Duration of the last optimiser run"),
             ("routerd_optimum_relative_gap", "rel_gap",
              "Duality gap over cost of the last optimiser run (0 = converged exactly)"),
-            ("routerd_optimum_age_seconds", "age_s", "Seconds since the last optimiser result")):
+            ("routerd_optimum_age_seconds", "age_s", "Seconds since the last optimiser result"),
+            ("routerd_measured_demand_unroutable_packets_per_second", "unroutable",
+             "Measured demand the last optimiser run left out: between nodes the live links do "
+             "not join (a partition), which no routing can carry")):
         v = f[key]
         if v == v and v not in (float("inf"), float("-inf")):
             yield _gauge(name, doc, v)

@@ -466,12 +466,14 @@ class Optimum:
                  "age_s": math.nan if st.last_at is None else max(0.0, self._mono() - st.last_at)}
         nan = math.nan
         if last is None:
-            f.update(optimal=nan, lower=nan, published=nan, ratio=nan, run_s=nan, rel_gap=nan)
+            f.update(optimal=nan, lower=nan, published=nan, ratio=nan, run_s=nan, rel_gap=nan,
+                     unroutable=nan)
         else:
             opt, pub = last["optimal_delay_s"], last["published_delay_s"]
             f.update(optimal=opt, lower=last["optimal_lower_s"], published=pub,
                      ratio=pub / opt if opt > 0 and math.isfinite(opt) else nan,
-                     run_s=last["run_s"], rel_gap=last["rel_gap"])
+                     run_s=last["run_s"], rel_gap=last["rel_gap"],
+                     unroutable=last.get("unroutable_pps", 0.0))
         return f
 
 
