@@ -99,6 +99,18 @@ def by_source(n: int, src: np.ndarray) -> np.ndarray:
     return S
 
 
+def link_runs(ends: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The links grouped by one of their ends (``src``: per source node; ``dst``: per
+    head), for per-node ``reduceat`` passes: ``(order, starts, heads)``, the links sorted
+    by that end (stable: link order within a node), where each node's run starts in that
+    order, and the node of each run.  Only nodes with a link have a run.  Links must be
+    non-empty (``reduceat`` takes no empty input)."""
+    order = np.argsort(ends, kind="stable")
+    e_sorted = ends[order]
+    starts = np.flatnonzero(np.r_[True, e_sorted[1:] != e_sorted[:-1]])
+    return order, starts, e_sorted[starts]
+
+
 def sum_by_source(v: np.ndarray, n: int, src: np.ndarray) -> np.ndarray:
     """(d, n) sums of per-link values ``v`` (d, L) over each node's outgoing links: what
     ``v @ by_source(n, src)`` computes, as segment sums over the links sorted by source
@@ -109,10 +121,8 @@ def sum_by_source(v: np.ndarray, n: int, src: np.ndarray) -> np.ndarray:
     out = np.zeros((v.shape[0], n))
     if src.size == 0:
         return out
-    order = np.argsort(src, kind="stable")
-    so = src[order]
-    starts = np.flatnonzero(np.r_[True, so[1:] != so[:-1]])
-    out[:, so[starts]] = np.add.reduceat(v[:, order], starts, axis=1)
+    order, starts, heads = link_runs(src)
+    out[:, heads] = np.add.reduceat(v[:, order], starts, axis=1)
     return out
 
 
@@ -139,10 +149,7 @@ def all_distances(n: int, src: np.ndarray, dst: np.ndarray, w: np.ndarray) -> np
         D = np.full((n, n), np.inf)
         np.fill_diagonal(D, 0.0)
         return D
-    order = np.argsort(src, kind="stable")
-    s_sorted = src[order]
-    starts = np.flatnonzero(np.r_[True, s_sorted[1:] != s_sorted[:-1]])
-    heads = s_sorted[starts]
+    order, starts, heads = link_runs(src)
     D = np.full((n, n), np.inf)
     np.fill_diagonal(D, 0.0)
     for _ in range(n):
@@ -192,12 +199,9 @@ def _propagate(n: int, src: np.ndarray, dst: np.ndarray, frac: np.ndarray,
     """t[d, x] of :func:`flows_from_fractions` by propagation; None when it does not
     settle within n + 1 passes (the splits hold a cycle)."""
     fr = np.where(src[None, :] == np.arange(n)[:, None], 0.0, frac)  # nothing leaves d for d
-    order = np.argsort(dst, kind="stable")
-    d_sorted = dst[order]
-    if not len(order):
+    if not len(dst):
         return r.T.copy()
-    starts = np.flatnonzero(np.r_[True, d_sorted[1:] != d_sorted[:-1]])
-    heads = d_sorted[starts]
+    order, starts, heads = link_runs(dst)
     fro = fr[:, order]
     so = src[order]
     R = np.ascontiguousarray(r.T)
@@ -422,10 +426,7 @@ def _best_links(n: int, src: np.ndarray, dst: np.ndarray, lengths: np.ndarray,
     if L == 0:                # no links: no node has a way out
         return np.full((n, n), -1, dtype=np.int64)
     cost = lengths[:, None] + D[dst]  # (L, n): x → d through link k, then a shortest path
-    order = np.argsort(src, kind="stable")
-    s_sorted = src[order]
-    starts = np.flatnonzero(np.r_[True, s_sorted[1:] != s_sorted[:-1]])
-    heads = s_sorted[starts]
+    order, starts, heads = link_runs(src)
     c_sorted = cost[order]
     low = np.minimum.reduceat(c_sorted, starts, axis=0)  # (groups, n)
     group = np.repeat(np.arange(len(starts)), np.diff(np.r_[starts, L]))
@@ -603,11 +604,8 @@ class _PathShift:
                  best: np.ndarray, stop: Callable[[], bool] | None = None):
         self.n, self.src, self.dst = n, src, dst
         self.stop = stop   # asked once per destination: a sweep may end part way
-        order = np.argsort(src, kind="stable")
+        order, self.starts, self.heads = link_runs(src)
         self.order = order
-        s_sorted = src[order]
-        self.starts = np.flatnonzero(np.r_[True, s_sorted[1:] != s_sorted[:-1]])
-        self.heads = s_sorted[self.starts]
         self.group = np.repeat(np.arange(len(self.starts)),
                                np.diff(np.r_[self.starts, len(src)]))
         self.dst_l = dst.tolist()
@@ -771,10 +769,7 @@ def _rows_with_cycles(n: int, src: np.ndarray, dst: np.ndarray, fd: np.ndarray) 
     m = fd.shape[0]
     if not len(src) or not m:
         return np.zeros(m, dtype=bool)
-    order = np.argsort(src, kind="stable")
-    s_sorted = src[order]
-    starts = np.flatnonzero(np.r_[True, s_sorted[1:] != s_sorted[:-1]])
-    heads = s_sorted[starts]
+    order, starts, heads = link_runs(src)
     live = fd[:, order] > 0                                   # (m, L) in source order
     do = dst[order]
     alive = np.zeros((m, n), dtype=bool)
@@ -826,10 +821,8 @@ def _fallback_fractions(n: int, src: np.ndarray, dst: np.ndarray, lengths: np.nd
     frac = frac.copy()
     unrouted = np.ones((frac.shape[0], n), dtype=bool)      # (d, x): no share out of x
     if len(src):
-        order = np.argsort(src, kind="stable")
-        s_sorted = src[order]
-        starts = np.flatnonzero(np.r_[True, s_sorted[1:] != s_sorted[:-1]])
-        unrouted[:, s_sorted[starts]] = ~np.logical_or.reduceat(frac[:, order] > 0, starts, axis=1)
+        order, starts, heads = link_runs(src)
+        unrouted[:, heads] = ~np.logical_or.reduceat(frac[:, order] > 0, starts, axis=1)
     if best is None:
         D = all_distances(n, src, dst, lengths)
         best = _best_links(n, src, dst, lengths, D)  # (d, x)
