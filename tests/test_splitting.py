@@ -164,7 +164,8 @@ def _steps(monkeypatch: pytest.MonkeyPatch) -> list[tuple[float, float]]:
         f = getattr(S, name)
 
         def spy(*a: object, _f: object = f) -> object:
-            got.append((float(a[-3]), float(a[-2])))      # ..., eta, mx, drain
+            eta, mx, ds = a[-4], a[-3], a[-1]              # ..., eta, mx, drain, dests
+            got.append((float(eta[ds[0]]), float(mx[ds[0]])))   # type: ignore[index]
             return _f(*a)                                   # type: ignore[operator]
         monkeypatch.setattr(S, name, spy)
     return got

@@ -884,21 +884,31 @@ def split_decide(double[:, :, ::1] Q, double[:, :, ::1] w, double[:, :, ::1] pub
                  const int64_t[::1] in_x, const int64_t[::1] in_j,
                  const double[:, ::1] L, const double[:, ::1] mg, const double[:, ::1] ex,
                  const double[:, ::1] cv, const int64_t[:, ::1] spt_slot,
-                 double refresh, double ceil, double eta, double max_step, double drain,
+                 double refresh, double ceil, const double[::1] etas,
+                 const double[::1] max_steps, const double[::1] drains,
                  double threshold,
                  int64_t[:, ::1] greedy, double[:, ::1] eps, uint8_t[:, :, ::1] alt,
-                 uint8_t[::1] changed, int64_t[::1] counts):
+                 uint8_t[::1] changed, int64_t[::1] counts, const int64_t[::1] dests):
     """One split-mode decision, destination by destination (routerd.core.splitting.decide's
     per-destination part, operation for operation: the refresh, the repair and loop
     fallback, the marginal sums in peel order, the share step, the cycle reversion, the
     publication and the readers).  ``mg``, ``ex``, ``cv``: per-slot marginal, externality,
-    flow-weighted curvature; ``drain``: least share an uphill used next hop gives up.  counts[:] += fallbacks, uncycled, reverted, share moves,
+    flow-weighted curvature; per destination: ``etas`` the step, ``max_steps`` its bound,
+    ``drains`` the least share an uphill used next hop gives up.  Only the destinations in
+    ``dests`` (distinct, in range) are decided, in that order; the others' columns are not
+    read or written.  counts[:] += fallbacks, uncycled, reverted, share moves,
     forced, whole publications, publications, route changes.  Returns 0, or an error
     code (< 0) when a repair did not converge."""
-    cdef Py_ssize_t n = Q.shape[0], K = Q.shape[2]
+    cdef Py_ssize_t n = Q.shape[0], K = Q.shape[2], nds = dests.shape[0]
     cdef Py_ssize_t d, x, j, it, top, js, ps
     cdef int64_t y, s0, gx
     cdef double v, q, tgt, nv, tot, p, best, dstar, hstar, raw, give, acc, mx
+    cdef double eta, max_step, drain
+    if etas.shape[0] != n or max_steps.shape[0] != n or drains.shape[0] != n:
+        raise ValueError("split_decide: etas, max_steps and drains need one entry per node")
+    for x in range(nds):
+        if dests[x] < 0 or dests[x] >= n:
+            raise ValueError(f"split_decide: destination {dests[x]} out of range")
     cdef bint anyp, lost, has, anykey, upd, forced, anyn, diffc, anyupd
     cdef Py_ssize_t nfresh
     cdef double* V = <double*>malloc(n * sizeof(double))
@@ -925,10 +935,10 @@ def split_decide(double[:, :, ::1] Q, double[:, :, ::1] w, double[:, :, ::1] pub
     cdef const int64_t* sl = &slots[0, 0]
     # a block of destinations' columns of Q, w and pub, gathered into contiguous scratch:
     # Q[x, d0:d0 + B, :] is one run of memory, Q[x, d, :] alone a stride of n K apart
-    cdef Py_ssize_t B = SPLIT_BLOCK if n >= SPLIT_BLOCK else n, nb, b, d0, nK = n * K
-    cdef double* qb = <double*>malloc(B * nK * sizeof(double))
-    cdef double* wb = <double*>malloc(B * nK * sizeof(double))
-    cdef double* pbk = <double*>malloc(B * nK * sizeof(double))
+    cdef Py_ssize_t B = SPLIT_BLOCK if nds >= SPLIT_BLOCK else nds, nb, b, d0, nK = n * K
+    cdef double* qb = <double*>malloc((B if B > 0 else 1) * nK * sizeof(double))
+    cdef double* wb = <double*>malloc((B if B > 0 else 1) * nK * sizeof(double))
+    cdef double* pbk = <double*>malloc((B if B > 0 else 1) * nK * sizeof(double))
     cdef double* qd
     cdef double* wd
     cdef double* pd
@@ -944,16 +954,20 @@ def split_decide(double[:, :, ::1] Q, double[:, :, ::1] w, double[:, :, ::1] pub
         raise MemoryError("split_decide: scratch")
     with nogil:
       d0 = 0
-      while d0 < n and not err:
-        nb = B if d0 + B <= n else n - d0
+      while d0 < nds and not err:
+        nb = B if d0 + B <= nds else nds - d0
         for x in range(n):
             for b in range(nb):
+                d = dests[d0 + b]
                 for j in range(K):
-                    qb[b * nK + x * K + j] = Q[x, d0 + b, j]
-                    wb[b * nK + x * K + j] = w[x, d0 + b, j]
-                    pbk[b * nK + x * K + j] = pub[x, d0 + b, j]
+                    qb[b * nK + x * K + j] = Q[x, d, j]
+                    wb[b * nK + x * K + j] = w[x, d, j]
+                    pbk[b * nK + x * K + j] = pub[x, d, j]
         for b in range(nb):
-            d = d0 + b
+            d = dests[d0 + b]
+            eta = etas[d]
+            max_step = max_steps[d]
+            drain = drains[d]
             qd = &qb[b * nK]
             wd = &wb[b * nK]
             pd = &pbk[b * nK]
@@ -1227,10 +1241,11 @@ def split_decide(double[:, :, ::1] Q, double[:, :, ::1] w, double[:, :, ::1] pub
                     alt[x, d, j] = pc[x * K + j] > 0 and j != gx
         for x in range(n):
             for b in range(nb):
+                d = dests[d0 + b]
                 for j in range(K):
-                    Q[x, d0 + b, j] = qb[b * nK + x * K + j]
-                    w[x, d0 + b, j] = wb[b * nK + x * K + j]
-                    pub[x, d0 + b, j] = pbk[b * nK + x * K + j]
+                    Q[x, d, j] = qb[b * nK + x * K + j]
+                    w[x, d, j] = wb[b * nK + x * K + j]
+                    pub[x, d, j] = pbk[b * nK + x * K + j]
         d0 += nb
     free(V); free(Mv); free(Ev); free(Hv); free(wo); free(wc); free(nw); free(pc)
     free(po); free(dl); free(hj); free(gv); free(cand); free(upj); free(fresh); free(alive)

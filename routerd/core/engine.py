@@ -213,6 +213,7 @@ class EngineSettings:
     split_boost: float = 3.0
     split_boost_s: float = 2.0
     split_rate_model: float = 0.97
+    split_per_decision: int = 0
 
     def __post_init__(self) -> None:
         bad: list[str] = []
@@ -982,6 +983,7 @@ class Engine:
         ceil = self.settings.ceiling_s
         if self._split is not None:      # the share step's boost restarts (splitting.event_boost)
             self._split.last_event = self.now
+            self._split.full_due = 1      # and the next decision takes every destination
         if up:
             qd = np.where(self.live[dst][None, :], self.Q[dst], np.inf).min(axis=1)
             vy = np.where(np.isfinite(qd), qd, ceil)   # y's current best per destination
@@ -1437,7 +1439,8 @@ class Engine:
         return nodes, int(changed_g.sum()), prevented
 
     def _decide_split(self) -> Decision:
-        """Split mode: every destination, every call (routerd.core.splitting)."""
+        """Split mode: every destination, or the next block of them in turn
+        (``split_per_decision``), every call (routerd.core.splitting)."""
         assert self._split is not None
         self._kdirty[:] = False
         self._kcols[:] = False

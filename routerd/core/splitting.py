@@ -189,6 +189,7 @@ FIELDS: dict[str, tuple[str, Any]] = {
     "split_boost": ("engine.split.event_boost", 3.0),
     "split_boost_s": ("engine.split.event_boost_s", 2.0),
     "split_rate_model": ("engine.split.rate_model", 0.97),
+    "split_per_decision": ("engine.split.destinations_per_decision", 0),
 }
 
 
@@ -226,6 +227,9 @@ def problems(s: Any) -> list[str]:
         bad.append(f"split_rate_model {s.split_rate_model} is not in [0, 1)")
     if not (s.split_boost_s > 0 and math.isfinite(s.split_boost_s)):
         bad.append(f"split_boost_s {s.split_boost_s} is not a positive finite number")
+    if isinstance(s.split_per_decision, bool) or not isinstance(s.split_per_decision, int) \
+            or s.split_per_decision < 0:
+        bad.append(f"split_per_decision {s.split_per_decision!r} is not a whole number >= 0")
     return bad
 
 
@@ -426,11 +430,15 @@ def remembered_service_time(tau0: np.ndarray, slow_tau: np.ndarray, slow_t: np.n
 class SplitState:
     """The split mode's arrays for one engine (see the module docstring)."""
 
-    ARRAYS = ("lk_cnt", "lk_sum", "lk_t", "key_cnt", "key_t", "w", "pub", "slow_tau", "slow_t")
-    #: arrays a state saved before they existed may lack (restored as "none")
-    OPTIONAL = ("slow_tau", "slow_t")
+    ARRAYS = ("lk_cnt", "lk_sum", "lk_t", "key_cnt", "key_t", "w", "pub", "slow_tau", "slow_t",
+              "dclock")
+    #: arrays a state saved before they existed may lack (restored as "none"; dclock as
+    #: last_now: every destination stepped at every decision then)
+    OPTIONAL = ("slow_tau", "slow_t", "dclock")
     SCALARS = ("publications", "share_moves", "forced", "fallbacks", "whole_publications",
-               "started")
+               "started", "rot", "full_due")
+    #: scalars a state saved before they existed may lack (restored as 0)
+    OPTIONAL_SCALARS = ("rot", "full_due")
     FLOATS = ("last_now", "last_obs", "last_event")
 
     def __init__(self, eng: Any):
@@ -456,6 +464,11 @@ class SplitState:
         self.fallbacks = 0          # keys put on the live shortest-path tree
         self.whole_publications = 0  # destinations published whole to keep the graph acyclic
         self.last_now = eng.now      # the step clock: the newest observation time a decision has seen
+        # each destination's own step clock: the newest observation time its last step had
+        # seen (== last_now for all while every decision takes every destination)
+        self.dclock = np.full(n, float(eng.now))
+        self.rot = 0                 # the first destination of the next partial decision
+        self.full_due = 0            # 1 after a link event: the next decision takes them all
         self.last_obs = -math.inf    # the newest observation's time
         self.started = 0             # 1 once a row has been observed
         self.last_event = -math.inf  # the last link state change (the step's boost decays from it)
@@ -508,6 +521,7 @@ class SplitState:
         if not self.started:          # the first rows: the step clock starts here
             self.started = 1
             self.last_now = now
+            self.dclock[:] = now
         self.last_obs = max(self.last_obs, now)
 
     def observe_compiled(self, kern: Any, x: np.ndarray, via: np.ndarray, d: np.ndarray,
@@ -644,8 +658,10 @@ class SplitState:
             if a.shape != cur.shape:
                 raise ValueError(f"split state array {k} has shape {a.shape}, expected {cur.shape}")
             setattr(self, k, np.array(a, dtype=cur.dtype, order="C", copy=True))
+        if "dclock" not in st:
+            self.dclock = np.full(self.dclock.shape, float(st["last_now"]))
         for k in self.SCALARS:
-            setattr(self, k, int(st[k]))
+            setattr(self, k, int(st.get(k, 0)) if k in self.OPTIONAL_SCALARS else int(st[k]))
         for k in self.FLOATS:   # a state saved before last_event existed: no boost
             setattr(self, k, float(st.get(k, -math.inf)) if k == "last_event" else float(st[k]))
 
@@ -653,7 +669,8 @@ class SplitState:
         return other is not None and all(
             np.array_equal(getattr(self, k), getattr(other, k)) for k in self.ARRAYS) and (
             self.last_now == other.last_now and self.last_obs == other.last_obs
-            and self.last_event == other.last_event and self.started == other.started)
+            and self.last_event == other.last_event and self.started == other.started
+            and self.rot == other.rot and self.full_due == other.full_due)
 
 
 def _flat_view(a: np.ndarray) -> np.ndarray:
@@ -673,8 +690,22 @@ def onehot_slots(slot: np.ndarray, K: int) -> np.ndarray:
     return out
 
 
+def decision_dests(st: SplitState, n: int, per: int) -> np.ndarray:
+    """The destinations one decision takes: all of them when ``per`` is 0 or at least n,
+    or after a link event (``st.full_due``: every key with a share on a dead link is
+    repaired at once); else the next ``per`` in turn, cyclically from ``st.rot`` (the
+    state's rotation moves on)."""
+    if per <= 0 or per >= n or st.full_due:
+        st.full_due = 0
+        return np.arange(n, dtype=np.int64)
+    ds = (st.rot + np.arange(per, dtype=np.int64)) % n
+    st.rot = int((st.rot + per) % n)
+    return ds
+
+
 def decide(st: SplitState, eng: Any, now: float) -> tuple[set[int], int, int]:
-    """One split-mode decision over every destination (see the module docstring).
+    """One split-mode decision over every destination, or over the next
+    ``split_per_decision`` of them (:func:`decision_dests`; see the module docstring).
     Returns (nodes whose published table changed, greedy hops changed, loops prevented).
 
     What is shared by all destinations (link estimates and marginals, the live
@@ -703,18 +734,23 @@ def decide(st: SplitState, eng: Any, now: float) -> tuple[set[int], int, int]:
     # Not from the last decision's own time: a shell whose decisions come a while after
     # the rows (the service: debounced, on its own clock) would lose that while at every
     # decision (measured: half the step in the closed loop, issue 14)
+    # Each destination has its own step clock (st.dclock): a decision that takes some of
+    # them steps each by the time since its own last step, so the shares move about as
+    # far per second whether a decision takes all destinations or a block in turn
     seen = min(now, st.last_obs)
-    dt = min(max(seen - st.last_now, 0.0), s.split_window_s)
+    ds = decision_dests(st, n, int(s.split_per_decision))
+    dt = np.minimum(np.maximum(seen - st.dclock, 0.0), s.split_window_s)
     if st.started:                # else no rows yet: the first ones start the step clock
         st.last_now = seen
+        st.dclock[ds] = seen
     b = event_boost(now, st.last_event, s.split_boost, s.split_boost_s)
     eta = s.split_step * b * dt / s.split_window_s
-    mx = min(s.split_max_step * b * dt / s.split_window_s, 1.0)
+    mx = np.minimum(s.split_max_step * b * dt / s.split_window_s, 1.0)
     drain = s.split_uphill_drain * mx
     kern = getattr(eng, "_kern", None)
     if kern is not None and hasattr(kern, "split_decide"):
-        return _decide_compiled(kern, st, eng, L, m, e, g, spt_slot, eta, mx, drain)
-    return _decide_reference(st, eng, L, m, e, g, spt_slot, eta, mx, drain)
+        return _decide_compiled(kern, st, eng, L, m, e, g, spt_slot, eta, mx, drain, ds)
+    return _decide_reference(st, eng, L, m, e, g, spt_slot, eta, mx, drain, ds)
 
 
 _SPLIT_ERRORS = {-1: "loop repair did not converge", -2: "a cycle made of old edges only",
@@ -723,8 +759,9 @@ _SPLIT_ERRORS = {-1: "loop repair did not converge", -2: "a cycle made of old ed
 
 
 def _decide_compiled(kern: Any, st: SplitState, eng: Any, L: np.ndarray, m: np.ndarray,
-                     e: np.ndarray, g: np.ndarray, spt_slot: np.ndarray, eta: float,
-                     mx: float, drain: float) -> tuple[set[int], int, int]:
+                     e: np.ndarray, g: np.ndarray, spt_slot: np.ndarray, eta: np.ndarray,
+                     mx: np.ndarray, drain: np.ndarray, ds: np.ndarray
+                     ) -> tuple[set[int], int, int]:
     s = eng.settings
     n = eng.n
     c64 = np.ascontiguousarray
@@ -736,9 +773,11 @@ def _decide_compiled(kern: Any, st: SplitState, eng: Any, L: np.ndarray, m: np.n
                             c64(L, dtype=np.float64), c64(m, dtype=np.float64),
                             c64(e, dtype=np.float64), c64(g, dtype=np.float64),
                             c64(spt_slot, dtype=np.int64), float(s.split_refresh),
-                            float(s.ceiling_s), float(eta), float(mx), float(drain),
+                            float(s.ceiling_s), c64(eta, dtype=np.float64),
+                            c64(mx, dtype=np.float64), c64(drain, dtype=np.float64),
                             float(s.split_threshold),
-                            eng.greedy, eng.eps, eng.alt.view(np.uint8), changed, counts)
+                            eng.greedy, eng.eps, eng.alt.view(np.uint8), changed, counts,
+                            c64(ds, dtype=np.int64))
     if err < 0:
         raise AssertionError(f"split: {_SPLIT_ERRORS.get(int(err), err)}")
     fallbacks, uncycled, reverted, moves, forced, whole, pubs, changes = counts.tolist()
@@ -752,9 +791,11 @@ def _decide_compiled(kern: Any, st: SplitState, eng: Any, L: np.ndarray, m: np.n
 
 
 def _decide_reference(st: SplitState, eng: Any, L: np.ndarray, m: np.ndarray, e: np.ndarray,
-                      g: np.ndarray, spt_slot: np.ndarray, eta: float, mx: float,
-                      drain: float) -> tuple[set[int], int, int]:
-    """:func:`decide`'s per-destination part in numpy, every destination at once."""
+                      g: np.ndarray, spt_slot: np.ndarray, eta: np.ndarray, mx: np.ndarray,
+                      drain: np.ndarray, ds: np.ndarray) -> tuple[set[int], int, int]:
+    """:func:`decide`'s per-destination part in numpy, every destination at once: each
+    destination's columns depend only on the shared figures and its own, so this computes
+    all of them and keeps (and counts) the columns of ``ds`` alone."""
     s = eng.settings
     n, K = eng.n, eng.k
     slots = eng._slots
@@ -763,16 +804,22 @@ def _decide_reference(st: SplitState, eng: Any, L: np.ndarray, m: np.ndarray, e:
     live3 = live[:, None, :]
     diag = np.arange(n)
     ceil = s.ceiling_s
+    sel = np.zeros(n, dtype=bool)                  # the destinations this decision takes
+    sel[ds] = True
+    col = sel[None, :]
+    # per destination (column): the step, its bound, the uphill drain
+    eta3, mx3, drain3 = eta[None, :, None], mx[None, :, None], drain[None, :, None]
     # 1. refresh the entries of every live slot whose link carried rows, all destinations
+    Q = eng.Q.copy()
     fresh = live.copy()
     if fresh.any():
         V = published_values(st.pub, eng.Q, ceil)
         xr, jr = np.nonzero(fresh)
         yr = slots[xr, jr]
         tgt = L[xr, jr][:, None] + V[yr]                      # (r, n); V[y, y] = 0
-        q = eng.Q[xr, :, jr]
+        q = Q[xr, :, jr]
         new = q + s.split_refresh * (tgt - q)
-        eng.Q[xr, :, jr] = np.minimum(np.maximum(new, 0.0), ceil)
+        Q[xr, :, jr] = np.minimum(np.maximum(new, 0.0), ceil)
     # 2. repair: no share on a dead link, every reachable key routed, no cycle
     reach = spt_slot >= 0
     w = st.w
@@ -787,8 +834,8 @@ def _decide_reference(st: SplitState, eng: Any, L: np.ndarray, m: np.ndarray, e:
     prevented = 0
     if need.any():
         w[need] = onehot_slots(spt_slot[need], K)
-        st.fallbacks += int(need.sum())
-    w = _uncycle(st, w, spt_slot, n)
+        st.fallbacks += int((need & col).sum())
+    w = _uncycle(st, w, spt_slot, n, sel)
     prevented += st._last_uncycled
     # 3. marginals along the (acyclic) share graph, then one projection step
     M, E, H = dag_sums(w, slots, m, e, g)
@@ -800,7 +847,7 @@ def _decide_reference(st: SplitState, eng: Any, L: np.ndarray, m: np.ndarray, e:
     cand = live3 & eng._present[:, None, :] & ((My < M[:, :, None]) | (w > 0))
     cand[diag, diag] = False
     with np.errstate(invalid="ignore"):
-        delta = np.where(cand, eng.Q + e[:, None, :] + Ey, np.inf)
+        delta = np.where(cand, Q + e[:, None, :] + Ey, np.inf)
         Hj = np.where(cand, g[:, None, :] + Hy, 0.0)
     # uphill shares that block: y_j's cheapest next hop is the new edge back to x
     rev = st.rev
@@ -809,37 +856,40 @@ def _decide_reference(st: SplitState, eng: Any, L: np.ndarray, m: np.ndarray, e:
     yy, dd, rr = ys[:, None, :], np.arange(n)[None, :, None], np.maximum(rev, 0)[:, None, :]
     block = (rev[:, None, :] >= 0) & (js_all[yy, dd] == rev[:, None, :]) & (w[yy, dd, rr] == 0)
     uphill = cand & (w > 0) & ~(My < M[:, :, None]) & block
-    new = share_step(w, delta, Hj, cand, np.ones((n, n)), eta, mx, uphill, drain)
-    new, reverted = _revert_cycles(new, w, slots, n)
+    new = share_step(w, delta, Hj, cand, np.ones((n, n)), eta3, mx3, uphill, drain3)
+    new, reverted = _revert_cycles(new, w, slots, n, sel)
     prevented += reverted
     moved = np.abs(new - st.w).max(axis=2) > 0
-    st.share_moves += int(moved.sum())
-    st.w = new
+    st.share_moves += int((moved & col).sum())
     # 4. publish keys that moved enough, keep the published graph acyclic
-    pub = st.pub
+    pub = st.pub.copy()
     on_new = new.sum(axis=2) > 0
     upd = (np.abs(new - pub).max(axis=2) > s.split_threshold)
     forced = ((pub * (~live3)).sum(axis=2) > 0) | ((pub.sum(axis=2) > 0) != on_new)
     upd |= forced
-    st.forced += int((forced & ~(np.abs(new - pub).max(axis=2) > s.split_threshold)).sum())
-    old_pub = pub.copy()
+    st.forced += int((forced & ~(np.abs(new - pub).max(axis=2) > s.split_threshold) & col).sum())
+    old_pub = st.pub
     pub[upd] = new[upd]
     cyc = cyclic(pub, slots)
     if cyc.any():
         bad_d = np.flatnonzero(cyc.any(axis=0))
         pub[:, bad_d, :] = new[:, bad_d, :]
-        st.whole_publications += int(bad_d.size)
+        st.whole_publications += int(sel[bad_d].sum())
         if cyclic(pub, slots).any():  # cannot happen: new is acyclic
             raise AssertionError("split: the published share graph has a cycle")
-    changed = np.abs(pub - old_pub).max(axis=2) > 0
+    changed = (np.abs(pub - old_pub).max(axis=2) > 0) & col
     st.publications += int(changed.sum())
     # readers: greedy = the largest published share, eps = the rest, alt = the others
     routed = pub.sum(axis=2) > 0
     gs = np.where(routed, np.argmax(pub, axis=2), -1)
-    route_changes = int((gs != eng.greedy).sum())
-    eng.greedy[:] = gs
-    eng.eps[:] = np.where(routed, 1.0 - pub.max(axis=2), 0.0)
-    eng.alt[:] = (pub > 0) & (np.arange(K)[None, None, :] != gs[:, :, None])
+    route_changes = int(((gs != eng.greedy) & col).sum())
+    # keep the columns of this decision's destinations only
+    eng.Q[:, ds, :] = Q[:, ds, :]
+    st.w[:, ds, :] = new[:, ds, :]
+    st.pub[:, ds, :] = pub[:, ds, :]
+    eng.greedy[:, ds] = gs[:, ds]
+    eng.eps[:, ds] = np.where(routed, 1.0 - pub.max(axis=2), 0.0)[:, ds]
+    eng.alt[:, ds, :] = ((pub > 0) & (np.arange(K)[None, None, :] != gs[:, :, None]))[:, ds, :]
     nodes = set(np.flatnonzero(changed.any(axis=1)).tolist())
     return nodes, route_changes, prevented
 
@@ -878,25 +928,28 @@ def seed(st: SplitState, eng: Any, W: np.ndarray) -> tuple[int, int]:
     return int(good.sum()), int(bad.sum())
 
 
-def _uncycle(st: SplitState, w: np.ndarray, spt_slot: np.ndarray, n: int) -> np.ndarray:
+def _uncycle(st: SplitState, w: np.ndarray, spt_slot: np.ndarray, n: int,
+             sel: np.ndarray) -> np.ndarray:
     """Put nodes on (or only leading into) a cycle on the live shortest-path tree until
-    none is left; the count goes to ``st._last_uncycled``."""
+    none is left; the count (of the destinations ``sel``) goes to ``st._last_uncycled``."""
     st._last_uncycled = 0
     K = w.shape[2]
     for _ in range(n + 2):
         cyc = cyclic(w, st_slots(st))
         if not cyc.any():
             return w
-        st._last_uncycled += int(cyc.sum())
+        k = int((cyc & sel[None, :]).sum())
+        st._last_uncycled += k
         w[cyc] = onehot_slots(spt_slot[cyc], K)
-        st.fallbacks += int(cyc.sum())
+        st.fallbacks += k
     raise AssertionError("split: loop repair did not converge")
 
 
-def _revert_cycles(new: np.ndarray, old: np.ndarray, slots: np.ndarray, n: int
-                   ) -> tuple[np.ndarray, int]:
+def _revert_cycles(new: np.ndarray, old: np.ndarray, slots: np.ndarray, n: int,
+                   sel: np.ndarray) -> tuple[np.ndarray, int]:
     """Keys on a cycle of ``new`` go back to their shares in ``old`` (acyclic), until no
-    cycle is left: a key reverted has only old edges, so at worst this ends at ``old``."""
+    cycle is left: a key reverted has only old edges, so at worst this ends at ``old``.
+    Returns the new shares and the keys reverted of the destinations ``sel``."""
     reverted = 0
     fresh = (new > 0) & ~(old > 0)                  # edges this step added
     for _ in range(n * n + 1):
@@ -915,7 +968,7 @@ def _revert_cycles(new: np.ndarray, old: np.ndarray, slots: np.ndarray, n: int
         scale = np.where(keys & (tot > 0), 1.0 / np.where(tot > 0, tot, 1.0), 1.0)
         new = np.where(keys[:, :, None], kept * scale[:, :, None], new)
         fresh &= ~cut
-        reverted += int(keys.sum())
+        reverted += int((keys & sel[None, :]).sum())
     raise AssertionError("split: cycle reversion did not converge")
 
 
