@@ -126,7 +126,8 @@ def test_engine_keys_are_the_inverse_of_from_config() -> None:
         R.parse_changes(["engine.split.max_nodes=0"], "--set")
     alt = {"engine.step.mode": "constant", "engine.initial.mode": "constant",
            "engine.explore.basis": "visits", "engine.variant": "predictive",
-           "engine.kernels": "reference", "engine.mode": "split"}
+           "engine.kernels": "reference", "engine.mode": "split",
+           "engine.split.destinations_per_decision": 3}
     for key, fld in R.ENGINE_KEYS.items():
         f = config.SCHEMA[key]
         if key in alt:

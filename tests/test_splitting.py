@@ -291,7 +291,8 @@ def test_split_compiled_equals_reference(small_ring: T.Topology, data: st.DataOb
           "split_max_step": data.draw(st.sampled_from([1.0, 0.2])),
           "split_uphill_drain": data.draw(st.sampled_from([0.0, 0.1, 1.0])),
           "split_boost": data.draw(st.sampled_from([1.0, 3.0])),
-          "split_rate_model": data.draw(st.sampled_from([0.0, 0.5, 0.97]))}
+          "split_rate_model": data.draw(st.sampled_from([0.0, 0.5, 0.97])),
+          "split_per_decision": data.draw(st.sampled_from([0, 1, 3]))}
     a = Engine(t, EngineSettings(kernels="compiled", **kw))
     b = Engine(t, EngineSettings(kernels="reference", **kw))
     now = 0.0
@@ -422,7 +423,8 @@ def test_split_published_graph_acyclic_after_every_decide(small_ring: T.Topology
                                                           data: st.DataObject) -> None:
     t = small_ring
     eng = Engine(t, EngineSettings(mode="split", split_threshold=data.draw(st.sampled_from([0.0, 0.02, 0.3])),
-                                   initial_mode=data.draw(st.sampled_from(["shortest", "constant"]))))
+                                   initial_mode=data.draw(st.sampled_from(["shortest", "constant"])),
+                                   split_per_decision=data.draw(st.sampled_from([0, 1, 2]))))
     now = 0.0
     for _ in range(data.draw(st.integers(1, 6))):
         rows = data.draw(rows_of(t, 0, 80))
@@ -436,9 +438,12 @@ def test_split_published_graph_acyclic_after_every_decide(small_ring: T.Topology
         _check_published(eng)
 
 
-def test_split_state_round_trip_and_same_future(small_ring: T.Topology) -> None:
+@pytest.mark.parametrize("per", [0, 2])
+def test_split_state_round_trip_and_same_future(small_ring: T.Topology, per: int) -> None:
+    # per > 0: the rotation, the destinations' step clocks and the due marks travel too
     t = small_ring
     rng = np.random.default_rng(5)
+    SPLIT = EngineSettings(mode="split", split_per_decision=per)
     eng = Engine(t, SPLIT)
 
     def batch(m: int) -> HopBatch:
@@ -451,8 +456,11 @@ def test_split_state_round_trip_and_same_future(small_ring: T.Topology) -> None:
     for i in range(5):
         eng.observe(batch(200), 0.1 * (i + 1))
         eng.decide(0.1 * (i + 1))
+    eng.set_link(int(t.src[0]), int(t.dst[0]), False, 0.55)     # due marks pending
     st = eng.export_state()
     assert "split" in st
+    if per:
+        assert st["split"]["rot"] == (5 * per) % t.n and st["split"]["due"].any()
     back = Engine.from_state(t, SPLIT, st)
     assert back.same_state(eng)
     b1 = batch(300)
@@ -591,3 +599,126 @@ def test_split_rates_compiled_equal_reference_rows_at_one_time() -> None:
         for name in ("lk_cnt", "lk_sum", "lk_t", "key_cnt", "key_t"):
             assert np.array_equal(getattr(sa, name), getattr(sb, name)), name
         assert (sa.last_obs, sa.last_now, sa.started) == (sb.last_obs, sb.last_now, sb.started)
+
+
+# ---- bounded decisions (engine.split.destinations_per_decision) ------------------------------
+def _split_engine(t: T.Topology, per: int, **kw: object) -> Engine:
+    return Engine(t, EngineSettings(mode="split", split_per_decision=per, **kw))  # type: ignore[arg-type]
+
+
+def test_blocks_take_every_destination_in_turn_each_stepped_by_its_own_time(
+        small_ring: T.Topology, monkeypatch: pytest.MonkeyPatch) -> None:
+    # n destinations, 3 a decision: each decision takes the next 3 cyclically; a
+    # destination's step covers the observed time since its own last step (the step
+    # scales with dt, so a destination taken every k decisions moves k times as far at a
+    # time): eta of a destination = step * dt_d / window
+    t = small_ring
+    n = t.n
+    per = 3
+    seen: list[tuple[list[int], list[float]]] = []
+    for name in ("_decide_compiled", "_decide_reference"):
+        f = getattr(S, name)
+
+        def spy(*a: object, _f: object = f) -> object:
+            eta, ds = a[-4], a[-1]
+            seen.append(([int(d) for d in ds], [float(eta[d]) for d in ds]))   # type: ignore[index]
+            return _f(*a)                                                       # type: ignore[operator]
+        monkeypatch.setattr(S, name, spy)
+    eng = _split_engine(t, per, split_boost=1.0)
+    rng = np.random.default_rng(4)
+    times = [0.05 * (i + 1) for i in range(2 * n)]
+    eng.observe(_random_hops(t, rng, 50), 0.0)                   # the step clock starts at 0
+    last = {d: 0.0 for d in range(n)}
+    for i, now in enumerate(times):
+        eng.observe(_random_hops(t, rng, 50), now)
+        eng.decide(now)
+        ds, etas = seen[-1]
+        want = sorted({(per * i + k) % n for k in range(per)})
+        assert ds == want
+        for d, eta in zip(ds, etas):
+            # step 1, window 1 s, no boost: eta is the time since d's last step
+            assert eta == pytest.approx(min(now - last[d], 1.0), abs=1e-12)
+            last[d] = now
+    # every destination was taken, and each one's clock is its last step's time
+    assert np.allclose(eng._split.dclock, [last[d] for d in range(n)])
+
+
+def test_blocks_are_the_whole_decision_when_per_covers_every_destination(small_ring: T.Topology) -> None:
+    # per >= n is per = 0: the same state to the bit
+    t = small_ring
+    rng = np.random.default_rng(8)
+    a, b = _split_engine(t, 0), _split_engine(t, t.n)
+    for i in range(6):
+        hb = _random_hops(t, rng, 120)
+        now = 0.07 * (i + 1)
+        a.observe(hb, now)
+        b.observe(hb, now)
+        assert a.decide(now) == b.decide(now)
+        assert a.same_state(b)
+
+
+def test_a_dead_link_is_left_at_the_next_decision_whatever_the_turn(small_ring: T.Topology) -> None:
+    # one destination a decision: a link goes down; at the very next decision no key of
+    # any destination keeps a published share on it (the due marks), though the turn
+    # would reach most of them only later
+    t = small_ring
+    rng = np.random.default_rng(9)
+    eng = _split_engine(t, 1)
+    for i in range(3 * t.n):
+        now = 0.05 * (i + 1)
+        eng.observe(_random_hops(t, rng, 80), now)
+        eng.decide(now)
+    st_ = eng._split
+    # the link carrying the most published shares
+    x, j = np.unravel_index(np.argmax((st_.pub > 0).sum(axis=1)), st_.lk_cnt.shape)
+    using = np.flatnonzero(st_.pub[x, :, j] > 0)
+    assert using.size >= 2
+    eng.set_link(int(x), int(eng._slots[x, j]), False, now + 0.01)
+    eng.decide(now + 0.02)
+    assert not (st_.pub[x, :, j] > 0).any()
+    assert not (st_.w[x, :, j] > 0).any()
+    _check_published(eng)
+
+
+def test_a_healed_partition_is_routed_at_the_next_decision() -> None:
+    # a line a - b - c with one destination a decision: cut b - c both ways, let the
+    # turn go round, heal it: at the very next decision every key has a route again
+    specs = [T.LinkSpec(a, b, 0.001, 1e7, 64, f"{a}{b}") for a, b in
+             (("a", "b"), ("b", "a"), ("b", "c"), ("c", "b"))]
+    t = T.build("line3", ["a", "b", "c"], specs)
+    eng = _split_engine(t, 1)
+    rng = np.random.default_rng(2)
+    now = 0.0
+    for i in range(4):
+        now += 0.05
+        eng.observe(_random_hops(t, rng, 20), now)
+        eng.decide(now)
+    eng.set_link(1, 2, False, now)
+    eng.set_link(2, 1, False, now)
+    for i in range(6):
+        now += 0.05
+        eng.decide(now)
+    assert not eng.weights(0, 2) and not eng.weights(2, 0)           # cut off
+    eng.set_link(1, 2, True, now)
+    eng.set_link(2, 1, True, now)
+    eng.decide(now + 0.05)
+    for x in range(3):
+        for d in range(3):
+            if x != d:
+                assert eng.weights(x, d), (x, d)
+    _check_published(eng)
+
+
+def test_a_state_saved_before_blocks_restores_with_every_clock_at_last_now(small_ring: T.Topology) -> None:
+    t = small_ring
+    rng = np.random.default_rng(6)
+    eng = _split_engine(t, 0)
+    for i in range(3):
+        eng.observe(_random_hops(t, rng, 100), 0.1 * (i + 1))
+        eng.decide(0.1 * (i + 1))
+    st_ = eng.export_state()
+    for k in ("dclock", "due", "rot"):
+        del st_["split"][k]
+    back = Engine.from_state(t, eng.settings, st_)
+    assert back.same_state(eng)
+    assert (back._split.dclock == eng._split.last_now).all() and back._split.rot == 0

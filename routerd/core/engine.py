@@ -983,7 +983,7 @@ class Engine:
         ceil = self.settings.ceiling_s
         if self._split is not None:      # the share step's boost restarts (splitting.event_boost)
             self._split.last_event = self.now
-            self._split.full_due = 1      # and the next decision takes every destination
+            self._split.link_event(src, j, up)   # what cannot wait for its turn
         if up:
             qd = np.where(self.live[dst][None, :], self.Q[dst], np.inf).min(axis=1)
             vy = np.where(np.isfinite(qd), qd, ceil)   # y's current best per destination

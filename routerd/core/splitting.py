@@ -162,6 +162,25 @@ three things around it.
    destination at once and iterates to the fixed point.  Sums over slots are added in
    slot order on both (:func:`ksum`), so the two give the same bits.
 
+8. *Bounded decisions* (``split_per_decision``, ``engine.split.destinations_per_decision``;
+   0, the default, takes every destination).  A decision costs O(n K) per destination, so
+   O(n^2 K) in all (about 6 ms at 100 nodes, 0.65 s at 1,000 on the development machine).
+   With ``per`` > 0 a decision takes the next ``per`` destinations in turn (cyclically, the
+   state keeps the rotation), so its time is bounded by about ``per`` n K.  Each destination
+   has its own step clock (``dclock``): its share step covers the observed time since its
+   *own* last step, so it moves about as far per second as before, in fewer and larger
+   steps.  What cannot wait for its turn is taken at the next decision whatever the turn
+   (:meth:`SplitState.link_event`): after a link goes down, every destination with a share,
+   internal or published, on it (no traffic is sent into a dead link for longer than one
+   decision); after a link comes up, every destination with a key that has no route (a
+   healed partition is routed at once).  The price, measured (``bench/split_points.py``, 3
+   seeds, 1.2x shortest's saturation, unguided, a quarter of the destinations a decision):
+   two-clusters 1.012 -> 1.040 of mindelay, abilene 1.023 -> 1.036 and its per-second CV
+   1.10 -> 1.27 of mindelay's, geant 1.060 -> 1.081 and CV 1.19 -> 1.56, geometric
+   1.216 -> 1.198.  Raising ``refresh`` to what four decisions would apply made it worse
+   (geant 1.114).  Hence off by default: a knob for networks where a whole decision costs
+   more CPU than the lab can give.
+
 No exploration draws: the shares are the load splitting, and the refresh keeps entries
 of used links fresh without sampling (the engine's ``eps`` holds the off-greedy share
 for the statistics, at most ``1 - 1/K`` by construction, not an exploration rate).
@@ -431,14 +450,14 @@ class SplitState:
     """The split mode's arrays for one engine (see the module docstring)."""
 
     ARRAYS = ("lk_cnt", "lk_sum", "lk_t", "key_cnt", "key_t", "w", "pub", "slow_tau", "slow_t",
-              "dclock")
+              "dclock", "due")
     #: arrays a state saved before they existed may lack (restored as "none"; dclock as
     #: last_now: every destination stepped at every decision then)
-    OPTIONAL = ("slow_tau", "slow_t", "dclock")
+    OPTIONAL = ("slow_tau", "slow_t", "dclock", "due")
     SCALARS = ("publications", "share_moves", "forced", "fallbacks", "whole_publications",
-               "started", "rot", "full_due")
+               "started", "rot")
     #: scalars a state saved before they existed may lack (restored as 0)
-    OPTIONAL_SCALARS = ("rot", "full_due")
+    OPTIONAL_SCALARS = ("rot",)
     FLOATS = ("last_now", "last_obs", "last_event")
 
     def __init__(self, eng: Any):
@@ -468,7 +487,8 @@ class SplitState:
         # seen (== last_now for all while every decision takes every destination)
         self.dclock = np.full(n, float(eng.now))
         self.rot = 0                 # the first destination of the next partial decision
-        self.full_due = 0            # 1 after a link event: the next decision takes them all
+        # destinations the next decision must take, whatever the turn (link_event)
+        self.due = np.zeros(n, dtype=np.uint8)
         self.last_obs = -math.inf    # the newest observation's time
         self.started = 0             # 1 once a row has been observed
         self.last_event = -math.inf  # the last link state change (the step's boost decays from it)
@@ -670,7 +690,21 @@ class SplitState:
             np.array_equal(getattr(self, k), getattr(other, k)) for k in self.ARRAYS) and (
             self.last_now == other.last_now and self.last_obs == other.last_obs
             and self.last_event == other.last_event and self.started == other.started
-            and self.rot == other.rot and self.full_due == other.full_due)
+            and self.rot == other.rot)
+
+    def link_event(self, x: int, j: int, up: bool) -> None:
+        """Slot j of node x went down or up: mark the destinations that cannot wait for
+        their turn (:func:`decision_dests`).  Down: those with a share, internal or
+        published, on the slot (their keys are repaired at once: no traffic is sent into a
+        dead link for longer than one decision).  Up: those with a key that has no share
+        (it may have a route again: a healed partition is routed at once)."""
+        if up:
+            lone = ~(self.w.sum(axis=2) > 0)
+            n = lone.shape[0]
+            lone[np.arange(n), np.arange(n)] = False
+            self.due |= lone.any(axis=0)
+        else:
+            self.due |= (self.w[x, :, j] > 0) | (self.pub[x, :, j] > 0)
 
 
 def _flat_view(a: np.ndarray) -> np.ndarray:
@@ -691,16 +725,17 @@ def onehot_slots(slot: np.ndarray, K: int) -> np.ndarray:
 
 
 def decision_dests(st: SplitState, n: int, per: int) -> np.ndarray:
-    """The destinations one decision takes: all of them when ``per`` is 0 or at least n,
-    or after a link event (``st.full_due``: every key with a share on a dead link is
-    repaired at once); else the next ``per`` in turn, cyclically from ``st.rot`` (the
-    state's rotation moves on)."""
-    if per <= 0 or per >= n or st.full_due:
-        st.full_due = 0
+    """The destinations one decision takes, ascending: all of them when ``per`` is 0 or
+    at least n; else the next ``per`` in turn, cyclically from ``st.rot`` (the rotation
+    moves on), and those a link event made due (:meth:`SplitState.link_event`)."""
+    if per <= 0 or per >= n:
+        st.due[:] = 0
         return np.arange(n, dtype=np.int64)
-    ds = (st.rot + np.arange(per, dtype=np.int64)) % n
+    take = st.due.astype(bool)
+    take[(st.rot + np.arange(per)) % n] = True
     st.rot = int((st.rot + per) % n)
-    return ds
+    st.due[:] = 0
+    return np.flatnonzero(take).astype(np.int64)
 
 
 def decide(st: SplitState, eng: Any, now: float) -> tuple[set[int], int, int]:
