@@ -16,9 +16,12 @@ at moderate load, so the learner does real work without the run drowning in drop
 
 Policies: ``shortest``, ``ecmp``, ``qrouting`` with the default config (split mode up to
 ``engine.split.max_nodes``, 200 nodes, guided by the optimum every 2 s of simulated time;
-greedy above: so the 500-node figure is greedy) and ``qrouting_greedy`` (``engine.mode:
+greedy above: so the 500-node figure is greedy), ``qrouting_greedy`` (``engine.mode:
 greedy`` everywhere: the learner's per-hop path without split's per-decision work, what
-the ``qrouting`` figures measured before split became the default).
+the ``qrouting`` figures measured before split became the default) and, for context on
+split's networks, ``qrouting_blocks`` (``engine.split.destinations_per_decision`` = n/8:
+the default config with decisions bounded, see bench/reports/split_blocks.md for what
+that costs in routing quality).
 """
 from __future__ import annotations
 
@@ -184,6 +187,11 @@ def _timed(obj: Any, name: str, acc: list[float]) -> None:
     setattr(obj, name, wrapper)
 
 
+def blocks_of(n: int) -> int:
+    """``engine.split.destinations_per_decision`` of the ``qrouting_blocks`` figures."""
+    return -(-n // 8)
+
+
 def sim_once(topo: topology.Topology, name: str, pkts: list[tuple],
              end: float, kernels: str = "auto",
              instrument: bool = False) -> tuple[int, float, CoreResult, float]:
@@ -193,6 +201,9 @@ def sim_once(topo: topology.Topology, name: str, pkts: list[tuple],
     cfg = config.load(None)
     if name == "qrouting_greedy":    # the greedy learner: the per-hop path without split's decisions
         cfg = cfg.with_overrides({"engine.mode": "greedy"})
+        name = "qrouting"
+    elif name == "qrouting_blocks":  # split deciding an eighth of the destinations at a time
+        cfg = cfg.with_overrides({"engine.split.destinations_per_decision": blocks_of(topo.n)})
         name = "qrouting"
     pol = policies.make(name)
     pol.attach(topo, np.random.default_rng(2), cfg)
@@ -300,7 +311,12 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
         # qrouting: the default config (split mode up to engine.split.max_nodes, 200 nodes,
         # whose decisions cost O(n^2 K) every sim.decision_interval_s, with the guide's flow
         # deviation every 2 s; greedy above); qrouting_greedy: engine.mode greedy throughout
-        for pol in ("shortest", "ecmp", "qrouting", "qrouting_greedy"):
+        # qrouting_blocks (context, split's networks only): engine.split.destinations_per_
+        # decision = n/8, the bound on a decision's cost and its price in quality in
+        # bench/reports/split_blocks.md
+        pols = ("shortest", "ecmp", "qrouting", "qrouting_greedy") + (
+            ("qrouting_blocks",) if n <= int(config.load(None)["engine.split.max_nodes"]) else ())
+        for pol in pols:
             m = measure(topo, rate, duration[n], pol, repeats)
             bare = m["bare_hops_per_s"]
             # unsuffixed: the default path (engine.kernels = auto); then each path by name

@@ -173,13 +173,22 @@ three things around it.
    (:meth:`SplitState.link_event`): after a link goes down, every destination with a share,
    internal or published, on it (no traffic is sent into a dead link for longer than one
    decision); after a link comes up, every destination with a key that has no route (a
-   healed partition is routed at once).  The price, measured (``bench/split_points.py``, 3
-   seeds, 1.2x shortest's saturation, unguided, a quarter of the destinations a decision):
-   two-clusters 1.012 -> 1.040 of mindelay, abilene 1.023 -> 1.036 and its per-second CV
-   1.10 -> 1.27 of mindelay's, geant 1.060 -> 1.081 and CV 1.19 -> 1.56, geometric
-   1.216 -> 1.198.  Raising ``refresh`` to what four decisions would apply made it worse
-   (geant 1.114).  Hence off by default: a knob for networks where a whole decision costs
-   more CPU than the lab can give.
+   healed partition is routed at once).  The price, measured against mindelay in the same
+   runs (3 seeds, ``--size-dist exp``, 1.2x shortest's saturation unless said):
+   - *unguided* (``bench/split_points.py``, a quarter of the destinations a decision):
+     two-clusters 1.012 -> 1.040 of mindelay, abilene 1.023 -> 1.036 and its per-second
+     CV 1.10 -> 1.27 of mindelay's, geant 1.060 -> 1.081 and CV 1.19 -> 1.56, geometric
+     1.216 -> 1.198.  Raising ``refresh`` to what four decisions would apply made it
+     worse (geant 1.114);
+   - *guided* (the default learner; ``bench/split_blocks.py``, topohub's geant, germany50
+     and ta2 with their demands, 0.9x and 1.2x, a quarter and an eighth): every point
+     within 1.011 of mindelay (1.007 with every destination), CV ratios 0.90-1.06, no
+     drops, the busiest-link cut losing 0-2 packets either way; the cold start the same
+     but on geant with an eighth (one seed 17 s against 7 s);
+     the simulation's CPU per simulated second 0.115 -> 0.063-0.075 on ta2 (65 nodes).
+   Hence off by default (it trades quality where the learner is alone, and a decision
+   with every destination costs little below ~50 nodes): a knob for networks where a whole
+   decision costs more CPU than the lab can give.
 
 No exploration draws: the shares are the load splitting, and the refresh keeps entries
 of used links fresh without sampling (the engine's ``eps`` holds the off-greedy share
