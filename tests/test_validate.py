@@ -343,7 +343,8 @@ def test_a_config_says_when_its_topology_is_above_split_max_nodes(tmp_path, caps
         "on topology 'bench-lab': engine.mode split runs on networks of up to "
         "engine.split.max_nodes (2) nodes; this one has 3: running greedy (split decides every "
         "destination at every decision, in time growing as the square of the node count; set "
-        "engine.split.max_nodes: 0 to run it anyway)"), lines
+        "engine.split.max_nodes: 0 to run it anyway, and engine.split.destinations_per_decision "
+        "to bound each decision)"), lines
     fits = _w(tmp_path, "fits.yaml", {"topology": {"file": "lab.yaml"}})
     rc, lines = _run(capsys, fits)
     assert rc == 0 and "running greedy" not in lines[0]

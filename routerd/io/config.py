@@ -72,7 +72,7 @@ SCHEMA: dict[str, Field] = {
     "engine.kernels": F(str, "auto", "hot paths: compiled kernels when built (auto), insist on them (compiled), or the numpy reference; the same results either way", choices=("auto", "compiled", "reference")),
     # -- engine: published refinements (routerd/core/variants.py) ---------------------------
     "engine.mode": F(str, "split", "learning mode: greedy (one next hop per destination, Q-routing with hysteresis and exploration) or split (shares over strictly downhill next hops moved by measured marginal delay; routerd/core/splitting.py)", choices=("greedy", "split")),
-    "engine.split.max_nodes": F(int, 200, "split mode decides every destination at every decision, in time growing about as the square of the node count (measured: 5 ms at 100 nodes, 20 ms at 200, 50 ms at 300, 0.65 s at 1,000); on a network with more nodes than this the service, the simulator and the closed loop run greedy instead (the service says so at start-up and in health; shard workers always run greedy) (0 = no bound)", lo=0),
+    "engine.split.max_nodes": F(int, 200, "split mode decides every destination at every decision, in time growing about as the square of the node count (measured: 5 ms at 100 nodes, 20 ms at 200, 50 ms at 300, 0.65 s at 1,000); on a network with more nodes than this the service, the simulator and the closed loop run greedy instead (the service says so at start-up and in health; shard workers always run greedy) (0 = no bound; engine.split.destinations_per_decision then bounds each decision's time)", lo=0),
     "engine.split.destinations_per_decision": F(int, 0, "split: how many destinations one decision takes, in turn (0 = all of them); each destination's share step covers the time since its own last step, and a link going down or up makes the next decision take them all.  Bounds a decision's time on large networks (about proportional to this times the node count) at the price of each destination being stepped and republished less often", lo=0, tunable=True),
     "engine.split.step": F(float, 1.0, "split: fraction of the curvature-scaled (Newton) share step taken per rate window (scaled by the time since the last decision)", lo=0, hi=1, lo_open=True, tunable=True),
     "engine.split.max_step": F(float, 1.0, "split: most share one next hop gives up per rate window (scaled by the time since the last decision)", lo=0, hi=1, lo_open=True, tunable=True),
@@ -333,7 +333,8 @@ def split_fits(cfg: Config, n: int, shard_worker: bool = False) -> tuple[Config,
         return cfg, None
     why = (f"engine.mode split runs on networks of up to engine.split.max_nodes ({cap}) nodes; "
            f"this one has {n}: running greedy (split decides every destination at every decision, "
-           f"in time growing as the square of the node count; set engine.split.max_nodes: 0 to run it anyway)")
+           f"in time growing as the square of the node count; set engine.split.max_nodes: 0 to run it anyway, "
+           f"and engine.split.destinations_per_decision to bound each decision)")
     return cfg.with_overrides({"engine.mode": "greedy"}, where="engine.split.max_nodes"), why
 
 
