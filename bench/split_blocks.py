@@ -2,7 +2,7 @@
 what they cost, against ``mindelay`` in the same runs.
 
 Usage: ``python bench/split_blocks.py [--topologies KEY ...] [--loads X ...] [--fractions F ...]
-[--seeds N] [--duration S] [--jobs N] [--no-cut] [--out FILE]``
+[--seeds N] [--duration S] [--jobs N] [--steady-only] [--out FILE]``
 
 For each topology, load (x shortest's saturation, as in ``bench/compare_variants.py``) and
 fraction f of the destinations a decision takes (1 = all, the default config; f < 1 sets
@@ -13,9 +13,10 @@ over mindelay's, drop shares, the coefficient of variation of per-second delay (
 half) over mindelay's, and the CPU seconds the learner's run took per simulated second
 (``time.process_time`` in the worker: the whole simulation, packets included).  With the
 cut scenario (the report's busiest-link cut and restore at 0.5x, default on): packets lost
-to the dead link and seconds to settle within 10% of the optimum without it; and the
+to the dead link and seconds to settle within 10% of the optimum without it, beside the
+rerouting baseline (``reroute``) in the same scenario; and the
 report's cold start (1.2x, 40 s: seconds until the 2-s rolling mean is within 10% of the
-last third's level for good).
+last third's level for good); ``--steady-only`` leaves both out.
 
 Topologies: topohub's SNDlib backbones with their demand matrices (germany50: 50 nodes,
 ta2: 65; geant: 22), the larger networks where a decision's cost matters.
@@ -28,6 +29,7 @@ import multiprocessing as mp
 import os
 import sys
 import time
+from collections.abc import Callable
 from concurrent.futures import ProcessPoolExecutor
 from typing import Any
 
@@ -51,6 +53,29 @@ def per_of(frac: float, n: int) -> int:
     return 0 if frac >= 1.0 else max(1, math.ceil(frac * n))
 
 
+def _scenario_table(ok: list[dict[str, Any]], exp: str, topologies: list[str],
+                    fractions: list[float], infos: dict[str, dict[str, Any]], head: str,
+                    cells: Callable[[list[dict[str, Any]]], list[str]]) -> list[str]:
+    """A markdown table of scenario ``exp``'s runs: a row per (topology, fraction) with
+    runs, its columns after the first two ``head`` (``|``-separated) and ``cells(runs)``."""
+    runs = [r for r in ok if r["exp"] == exp]
+    if not runs:
+        return []
+    cols = head.count("|") + 1
+    out = ["", f"| topology | destinations a decision | {head} |", "|---" * (cols + 2) + "|"]
+    for key in topologies:
+        n = infos[key]["topo"].n
+        rows: list[tuple[str, list[dict[str, Any]]]] = [
+            (str(per_of(f, n) or n), [r for r in runs if r["topology"] == key and r.get("frac") == f])
+            for f in fractions]
+        rows.append(("reroute (baseline)", [r for r in runs if r["topology"] == key
+                                            and r["label"] == "reroute"]))
+        for what, rs in rows:
+            if rs:
+                out.append(f"| {key.split(':')[-1]} | {what} | " + " | ".join(cells(rs)) + " |")
+    return out
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(prog="split_blocks", description=__doc__.split("\n")[0])
     ap.add_argument("--topologies", nargs="*", default=list(TOPOLOGIES))
@@ -59,7 +84,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--seeds", type=int, default=3)
     ap.add_argument("--duration", type=float, default=30.0)
     ap.add_argument("--jobs", type=int, default=2)
-    ap.add_argument("--no-cut", action="store_true")
+    ap.add_argument("--steady-only", action="store_true",
+                    help="leave out the cut and cold-start scenarios")
     ap.add_argument("--out", default="")
     a = ap.parse_args(argv)
     infos: dict[str, dict[str, Any]] = {}
@@ -79,8 +105,10 @@ def main(argv: list[str] | None = None) -> int:
                 for f in a.fractions:
                     jobs.append({**j, "frac": f, "spec": {**j["spec"], "overrides": [
                         f"{KEY}={per_of(f, n)}"]}})
-        if not a.no_cut:
+        if not a.steady_only:
             for j in C.scenario_jobs(key, infos[key], a.seeds, 1.0):
+                if j["exp"] == "cut" and j["label"] == "reroute":   # the rerouting baseline
+                    jobs.append(j)
                 if j["exp"] in ("cut", "cold") and j["label"] == "guided":
                     for f in a.fractions:
                         jobs.append({**j, "frac": f, "spec": {**j["spec"], "overrides": list(
@@ -89,10 +117,11 @@ def main(argv: list[str] | None = None) -> int:
     with ProcessPoolExecutor(max_workers=max(1, a.jobs), mp_context=mp.get_context("fork")) as pool:
         res = list(pool.map(_timed, jobs))
     wall = time.perf_counter() - t0
-    lines = [f"# Bounded split decisions against mindelay ({a.seeds} seeds, {a.duration:g} s, "
-             f"--size-dist exp, guided split; {wall:.0f} s wall)", "",
-             "| topology | n | load | destinations a decision | mean / mindelay | drops split / mindelay "
-             "| CV / mindelay's | CPU s per simulated s |", "|---|---|---|---|---|---|---|---|"]
+    lines = [(f"# Bounded split decisions against mindelay ({a.seeds} seeds, {a.duration:g} s, "
+              f"--size-dist exp, guided split; {wall:.0f} s wall)"), "",
+             ("| topology | n | load | destinations a decision | mean / mindelay "
+              "| drops split / mindelay | CV / mindelay's | CPU s per simulated s |"),
+             "|---|---|---|---|---|---|---|---|"]
     errors = [r for r in res if "error" in r]
     for r in errors:
         lines.append(f"error: {r['topology']} {r['load']} {r['label']}: {r['error']}")
@@ -117,33 +146,17 @@ def main(argv: list[str] | None = None) -> int:
                 lines.append(f"| {key.split(':')[-1]} | {n} | {lf:g}x | {per or n} "
                              f"| {m_sp / m_md:.3f} | {100 * dr_sp:.2f}% / {100 * dr_md:.2f}% "
                              f"| {cv:.2f} | {cpu:.3f} |")
-    colds = [r for r in ok if r["exp"] == "cold"]
-    if colds:
-        lines += ["", "| topology | destinations a decision | cold start (1.2x): s until within 10% "
-                  "of the last third's level for good, per seed |", "|---|---|---|"]
-        for key in a.topologies:
-            n = infos[key]["topo"].n
-            for f in a.fractions:
-                rs = [r for r in colds if r["topology"] == key and r.get("frac") == f]
-                if rs:
-                    figs = [C._scenario_times(r, 1.0) for r in rs]
-                    lines.append(f"| {key.split(':')[-1]} | {per_of(f, n) or n} | " + " ".join(
-                        f"{g['learn_s']:.1f}{'' if g['learn_reached'] else ' (not reached)'}"
-                        for g in figs) + " |")
-    cuts = [r for r in ok if r["exp"] == "cut"]
-    if cuts:
-        lines += ["", "| topology | destinations a decision | lost to the dead link (per seed) "
-                  "| settle within 10% of the optimum without it, s |", "|---|---|---|---|"]
-        for key in a.topologies:
-            n = infos[key]["topo"].n
-            for f in a.fractions:
-                rs = [r for r in cuts if r["topology"] == key and r.get("frac") == f]
-                if not rs:
-                    continue
-                figs = [C.scenario_figures(r, 1.0) for r in rs]
-                lines.append(f"| {key.split(':')[-1]} | {per_of(f, n) or n} | "
-                             + " ".join(f"{g['lost_link_down']:.0f}" for g in figs) + " | "
-                             + " ".join(f"{g['cut_settle_s']:.1f}" for g in figs) + " |")
+    lines += _scenario_table(
+        ok, "cold", a.topologies, a.fractions, infos,
+        "cold start (1.2x): s until within 10% of the last third's level for good, per seed",
+        lambda rs: [" ".join(f"{g['learn_s']:.1f}{'' if g['learn_reached'] else ' (not reached)'}"
+                             for g in (C._scenario_times(r, 1.0) for r in rs))])
+    lines += _scenario_table(
+        ok, "cut", a.topologies, a.fractions, infos,
+        "lost to the dead link (per seed) | settle within 10% of the optimum without it, s",
+        lambda rs: [" ".join(f"{g['lost_link_down']:.0f}" for g in figs)
+                    + " | " + " ".join(f"{g['cut_settle_s']:.1f}" for g in figs)
+                    for figs in [[C.scenario_figures(r, 1.0) for r in rs]]])
     text = "\n".join(lines) + "\n"
     print(text)
     if a.out:
