@@ -443,12 +443,17 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
         # the default fsync policy, and the garbage collector left alone: each run next to a
         # run of the reference service, best of two each, so load from elsewhere cancels out
         frames = Frames("cols", 1024, topo, rng)
-        sides = [("ingest_cols_ack_b1024_fsync_never_per_s", {"journal.fsync": "never"})]
-        if not quick:    # quick: the fsync comparison only (two service starts fewer)
-            sides += [("ingest_cols_ack_b1024_loop_fsync_per_s", {"journal.sync_thread": "false"}),
-                      ("ingest_cols_ack_b1024_no_gc_freeze_per_s", {"gc_freeze": "false"})]
-        for name, keys in sides:
-            svc = Service(base, name, tpath, **keys)
+        # and the greedy learner (engine.mode greedy, no share decisions): what split's
+        # decisions, publications and rate estimates cost the default service
+        sides: list[tuple[str, dict[str, Any] | None, dict[str, Any]]] = [
+            ("ingest_cols_ack_b1024_fsync_never_per_s", None, {"journal.fsync": "never"}),
+            ("ingest_cols_ack_b1024_greedy_per_s", {"mode": "greedy"}, {})]
+        if not quick:    # quick: the fsync and learner comparisons only (service starts)
+            sides += [("ingest_cols_ack_b1024_loop_fsync_per_s", None, {"journal.sync_thread": "false"}),
+                      ("ingest_cols_ack_b1024_no_gc_freeze_per_s", None, {"gc_freeze": "false"})]
+        bare_ack = figs["ingest_cols_ack_b1024_per_s"]["value"] / figs["ingest_cols_ack_b1024_per_s"]["ratio"]
+        for name, eng_keys, keys in sides:
+            svc = Service(base, name, tpath, engine=eng_keys, **keys)
             procs.append(svc)
             _, used = acked(ctx, svc.ep["ingest"], warm, dur / 2, first)
             first += used
@@ -463,6 +468,13 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
             figs[name] = _fig(best_v, "rows/s", best_v / best_ref,
                               f"the default service (fsync batch in the writer thread, gc.freeze) "
                               f"next to it ({best_ref:.4g} rows/s)")
+            if name.endswith("greedy_per_s"):
+                # context for issue 15's ingest target: the greedy learner's figure over
+                # the bare server's headline cell earlier in this run
+                figs["ingest_ratio_cols_greedy"] = _fig(
+                    best_v / bare_ack, "ratio", best_v / bare_ack,
+                    f"bare pyzmq+msgpack, 1,024-row batches, acknowledged ({bare_ack:.4g} rows/s): "
+                    f"the service with engine.mode greedy ({best_v:.4g} rows/s)")
             if name.endswith("fsync_never_per_s"):
                 figs["ingest_cols_ack_b1024_fsync_batch_per_s"] = _fig(
                     best_ref, "rows/s", best_ref / best_v, f"the same service with fsync never "

@@ -237,10 +237,12 @@ def measure(topo: topology.Topology, rate: float, duration: float, policy: str,
     # the engine's share of a run, from one instrumented run of each path (learning
     # policies only; the timed runs below carry no timers)
     eng_s = {p: 0.0 for p in paths}
+    eng_cpu = {p: 0.0 for p in paths}
     if policy.startswith("qrouting"):
         for p in paths:
             _, w, _, e = sim_once(topo, policy, pkts, duration, p, instrument=True)
             eng_s[p] = e / w
+            eng_cpu[p] = e
     bw = cw = float("inf")
     bh = ch = 0
     sw = {p: float("inf") for p in paths}
@@ -264,7 +266,7 @@ def measure(topo: topology.Topology, rate: float, duration: float, policy: str,
         assert (a.deliveries, a.carried, a.dropped_all) == (b.deliveries, b.carried, b.dropped_all)
     return {"paths": paths, "sim_hops_per_s": {p: sh[p] / sw[p] for p in paths},
             "bare_hops_per_s": bh / bw, "sim_hops": sh[paths[0]], "bare_hops": bh,
-            "engine_share": eng_s,
+            "engine_share": eng_s, "engine_cpu_s": eng_cpu, "bare_cpu_s": bw,
             "classic_hops_per_s": ch / cw}
 
 
@@ -339,6 +341,20 @@ def run(quick: bool) -> dict[str, dict[str, Any]]:
                         "against": f"the qrouting run's CPU time on the {p} loop (share spent "
                                    "inside routerd.core.engine)",
                     }
+                    # the most this run's sim_hops_ratio could be if nothing but the
+                    # engine took time (no event loop, no forwarding, no guide): the bare
+                    # loop's CPU time over the engine's in the instrumented run (its timers
+                    # add about 2 us a call, so the bound is a little low)
+                    ec = m["engine_cpu_s"][p]
+                    if ec > 0:
+                        figs[f"sim_{pol}_engine_bound_{n}{suffix}"] = {
+                            "value": m["bare_cpu_s"] / ec, "unit": "ratio",
+                            "ratio": m["bare_cpu_s"] / ec,
+                            "against": f"bare heapq loop CPU {m['bare_cpu_s'] * 1e3:.1f} ms "
+                                       f"over the engine's own {ec * 1e3:.1f} ms in the {p} "
+                                       "qrouting run: the sim_hops_ratio reachable if "
+                                       "everything else cost nothing",
+                        }
             hps = m["sim_hops_per_s"][default]
             figs[f"sim_hops_ratio_vs_classic_{pol}_{n}"] = {
                 "value": hps / m["classic_hops_per_s"], "unit": "ratio",
