@@ -376,3 +376,55 @@ def test_sum_by_source_is_the_one_hot_product() -> None:
     assert np.allclose(got, v @ F.by_source(n, src), rtol=1e-14, atol=0.0)
     assert (got[:, n - 1] == 0.0).all()
     assert F.sum_by_source(np.zeros((2, 0)), 3, np.zeros(0, dtype=np.int64)).shape == (2, 3)
+
+
+@pytest.mark.parametrize("weights", ["delay", "equal", "zeros", "some_down", "wide"])
+def test_all_distances_on_the_compiled_kernel_equal_bellman_ford_to_the_bit(weights: str) -> None:
+    """flowdev.all_distances on the compiled Dijkstra (topology.compiled_distances) gives
+    the numpy Bellman-Ford reference's array to the bit: ties, zero weights, dead links
+    (inf), parallel links, isolated nodes and weights over twelve orders of magnitude
+    (where the order of additions would show) on random graphs and on SNDlib backbones
+    from topohub; and it agrees with networkx's Dijkstra (a reference library, which adds
+    from the source: equal to rounding)."""
+    import importlib.resources
+    import os
+
+    import topohub
+
+    from routerd.core import kernels
+    if not kernels.available():
+        pytest.skip("no compiled kernels in this install (the reference is all there is)")
+    rng = np.random.default_rng(29)
+    graphs: list[tuple[int, np.ndarray, np.ndarray, np.ndarray]] = []
+    for n in (1, 2, 7, 40, 120):
+        m = 3 * n + 2
+        a, b = rng.integers(0, n, m), rng.integers(0, n, m)
+        keep = a != b
+        a, b = np.r_[a[keep], a[keep][:3]], np.r_[b[keep], b[keep][:3]]   # parallel links
+        graphs.append((n, a, b, rng.uniform(1e-4, 1e-2, a.size)))
+    sndlib = importlib.resources.files(topohub) / "data" / "sndlib"
+    for name in sorted(os.listdir(sndlib))[:4]:
+        t = topofiles.load(f"topohub:sndlib/{name[:-5]}", topology.LinkDefaults(1e9, 100))
+        graphs.append((t.n, t.src.astype(np.int64), t.dst.astype(np.int64), t.delay_s))
+    for n, src, dst, w in graphs:
+        if weights == "equal":
+            w = np.full(w.shape, 0.001)
+        elif weights == "zeros":
+            w = np.where(rng.random(w.shape) < 0.3, -0.0 if n % 2 else 0.0, np.round(w, 3))
+        elif weights == "some_down":
+            w = np.where(rng.random(w.shape) < 0.2, np.inf, w)
+        elif weights == "wide":
+            w = 10.0 ** rng.uniform(-9, 3, w.shape)
+        assert topology.compiled_distances(n, src, dst, w) is not None or not src.size
+        D = flowdev.all_distances(n, src, dst, w)
+        D0 = flowdev.all_distances_reference(n, src, dst, w)
+        np.testing.assert_array_equal(D, D0)
+        G = nx.MultiDiGraph()
+        G.add_nodes_from(range(n))
+        G.add_weighted_edges_from((int(a), int(b), float(x)) for a, b, x in zip(src, dst, w)
+                                  if x < math.inf)
+        ref = np.full((n, n), np.inf)
+        for s_, lengths in nx.all_pairs_dijkstra_path_length(G):
+            for d, v in lengths.items():
+                ref[s_, d] = v
+        np.testing.assert_allclose(D, ref, rtol=1e-12, atol=0.0)

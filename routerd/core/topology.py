@@ -334,6 +334,16 @@ def _to_targets(n: int, src: np.ndarray, dst: np.ndarray, w: np.ndarray,
     return D, NH
 
 
+def compiled_distances(n: int, src: np.ndarray, dst: np.ndarray, w: np.ndarray) -> np.ndarray | None:
+    """All-pairs least weights D[x, d] over links ``src[k] → dst[k]`` (weights >= 0, inf
+    for no link) on the compiled kernel, one Dijkstra per destination; None where this
+    install has no compiled kernels (the caller runs its own reference).  Unreachable
+    pairs are inf."""
+    if _compiled_paths() is None:
+        return None
+    return _to_targets(n, src, dst, w, range(n))[0]
+
+
 def _compiled_paths() -> Any:
     """The compiled module when this install has it, else None (the reference runs)."""
     from . import kernels  # imports numpy and the extension only
