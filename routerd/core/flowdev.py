@@ -140,7 +140,7 @@ def all_distances(n: int, src: np.ndarray, dst: np.ndarray, w: np.ndarray) -> np
     give the same array to the bit: each computes, for every pair, the least over paths
     of the path's weights added from the destination back (w1 + (w2 + (... + 0))), and
     rounding is monotone, so the order in which paths are tried does not change the
-    least (tests/test_flowdev.py holds them equal, ties and zero weights included).
+    least (tests/test_mindelay.py holds them equal, ties and zero weights included).
     """
     src = np.asarray(src, dtype=np.int64)
     dst = np.asarray(dst, dtype=np.int64)
