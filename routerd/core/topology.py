@@ -341,7 +341,7 @@ def compiled_distances(n: int, src: np.ndarray, dst: np.ndarray, w: np.ndarray) 
     pairs are inf."""
     if _compiled_paths() is None:
         return None
-    return _to_targets(n, src, dst, w, range(n))[0]
+    return _all_pairs(n, src, dst, w)[0]
 
 
 def _compiled_paths() -> Any:
